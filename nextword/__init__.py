@@ -1,0 +1,30 @@
+"""nextword: an embeddable next-word suggestion engine for keyboards and input methods.
+
+Train a compact interpolated bigram model from a corpus, then ask it on every keystroke
+for the k words the user most likely wants next or is in the middle of typing.
+"""
+
+from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables
+from .errors import InputDataError, InvalidArgumentError, ModelFormatError, NextwordError
+from .model import DEFAULT_LAMBDA, Model, Suggestion, TrainReport, load, train, train_texts
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "CountBuilder",
+    "CountTables",
+    "DEFAULT_LAMBDA",
+    "DEFAULT_MAX_VOCAB",
+    "DEFAULT_MIN_COUNT",
+    "InputDataError",
+    "InvalidArgumentError",
+    "Model",
+    "ModelFormatError",
+    "NextwordError",
+    "Suggestion",
+    "TrainReport",
+    "__version__",
+    "load",
+    "train",
+    "train_texts",
+]

@@ -1,0 +1,624 @@
+"""The read-only model: exact top-k next-word and completion queries, probabilities, perplexity.
+
+P(w | v) = λ·c(v,w)/c(v) + (1−λ)·c(w)/N, where c(v) counts v as a history, so that the
+probabilities of all words, ``</s>`` and ``<unk>`` after any history sum to 1. A history
+never seen (c(v) = 0) falls back to the unigram c(w)/N.
+
+Ranking is exact: the k words a call returns are the first k of *all* matching vocabulary
+words ordered by (probability descending, key ascending in code-point order). The
+implementation only ever looks at a bounded candidate set (see :meth:`Model._rank`);
+tests compare it with scoring every word.
+"""
+
+from __future__ import annotations
+
+import bisect
+import math
+import os
+import sys
+import time
+from dataclasses import dataclass
+from typing import Any, Iterable, Iterator
+
+import numpy as np
+
+from ._progress import Progress
+from .corpus import Format, iter_messages, open_sources
+from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables
+from .errors import InputDataError, InvalidArgumentError, ModelFormatError
+from .store import COUNT_ESCAPE, DEFAULT_LONG_ROW, DEFAULT_SKYBAND_K, TOPK_FANOUT, ModelArrays, read_model, write_model
+from .text import BOS, EOS, UNK, fold, parse_before_cursor, sentences
+
+__all__ = ["Model", "Suggestion", "TrainReport", "train", "train_texts", "load", "DEFAULT_LAMBDA"]
+
+#: Weight of the bigram estimate; a value near 0.9 is the usual starting point (common practice).
+DEFAULT_LAMBDA = 0.9
+
+
+@dataclass(frozen=True, slots=True)
+class Suggestion:
+    """One suggested word: ``word`` as it should be shown, ``prob`` = P(word | context)."""
+
+    word: str
+    prob: float
+
+
+@dataclass(frozen=True, slots=True)
+class TrainReport:
+    """What :func:`train` did: sizes, corpus statistics and timings."""
+
+    path: str
+    n_words: int
+    n_bigrams: int
+    word_tokens: int
+    messages: int
+    file_bytes: int
+    count_seconds: float
+    build_seconds: float
+
+    @property
+    def words_per_second(self) -> float:
+        total = self.count_seconds + self.build_seconds
+        return self.word_tokens / total if total > 0 else 0.0
+
+
+def _check_lam(lam: float) -> float:
+    if isinstance(lam, bool) or not isinstance(lam, (int, float)) or not 0.0 <= lam <= 1.0:
+        raise InvalidArgumentError(f"lam must be a number in [0, 1], got {lam!r}")
+    return float(lam)
+
+
+def _check_k(k: int) -> int:
+    if isinstance(k, bool) or not isinstance(k, int) or k < 1:
+        raise InvalidArgumentError(f"k must be an integer >= 1, got {k!r}")
+    return k
+
+
+def _native_view(arr: np.ndarray) -> memoryview:
+    """A memoryview for fast scalar reads (Python ints) of a little-endian array."""
+    if sys.byteorder != "little":  # pragma: no cover - no big-endian CI
+        arr = arr.astype(arr.dtype.newbyteorder("="))
+    fmt = {1: "B", 2: "H", 4: "I", 8: "Q"}[arr.dtype.itemsize]
+    return memoryview(np.ascontiguousarray(arr)).cast("B").cast(fmt)
+
+
+class _AlphaKeys:
+    """Sequence view of the vocabulary keys in alphabetical order, truncated to a length."""
+
+    __slots__ = ("restore", "amid", "length")
+
+    def __init__(self, restore: Any, amid: memoryview, length: int) -> None:
+        self.restore = restore
+        self.amid = amid
+        self.length = length
+
+    def __len__(self) -> int:
+        return len(self.amid)
+
+    def __getitem__(self, i: int) -> str:
+        return self.restore(self.amid[i])[: self.length]  # type: ignore[no-any-return]
+
+
+class Model:
+    """A loaded model file. Read-only and safe to share between threads.
+
+    Obtain one with :func:`load`. The arrays are memory-mapped; nothing is copied.
+    """
+
+    def __init__(self, arrays: ModelArrays, *, lam: float | None = None) -> None:
+        self._src = arrays
+        meta = arrays.meta
+        a = arrays.arrays
+        self.path = arrays.path
+        self.n_words: int = meta["n_words"]
+        self.n_bigrams: int = meta["bigrams"]
+        self.total: int = meta["total"]
+        self.stats: dict[str, int] = dict(meta.get("stats", {}))
+        self.stored_lam: float = meta["lambda"]
+        self.lam: float = self.stored_lam if lam is None else _check_lam(lam)
+        self.file_size = arrays.file_size
+        self.format_version = arrays.version
+        n = self.n_words
+        self._eos, self._unk, self._bos = n, n + 1, n + 2
+        self._long_row: int = meta["long_row"]
+        self._sky_k: int = meta["skyband_k"]
+        self._max_key: int = meta["max_key_chars"]
+        self._trie = arrays.trie
+        self._alph = a["ALPH"]
+        self._unig = a["UNIG"]
+        self._succ = a["SUCC"]
+        self._cnts = a["CNTS"]
+        self._bigi = a["BIGI"]
+        self._bigc = a["BIGC"]
+        self._skyi = a["SKYI"]
+        self._disb = arrays.raw["DISB"]
+        mv = {k: _native_view(v) for k, v in a.items() if k not in ("CNTS",)}
+        self._mv_tkid, self._mv_idtk, self._mv_amid = mv["TKID"], mv["IDTK"], mv["AMID"]
+        self._mv_alph, self._mv_apos, self._mv_unig = mv["ALPH"], mv["APOS"], mv["UNIG"]
+        self._mv_hist, self._mv_rows, self._mv_succ = mv["HIST"], mv["ROWS"], mv["SUCC"]
+        self._mv_skyp, self._mv_disi, self._mv_diso = mv["SKYP"], mv["DISI"], mv["DISO"]
+        self._mv_cnts = memoryview(np.ascontiguousarray(a["CNTS"])).cast("B")
+        self._mv_bigi, self._mv_bigc = mv["BIGI"], mv["BIGC"]
+        # multi-level prefix top lists as 2-D views (blocks x FANOUT)
+        self._levels: list[np.ndarray] = []
+        start = 0
+        from .store import topk_levels
+
+        for nb in topk_levels(n):
+            self._levels.append(a["TOPK"][start : start + nb * TOPK_FANOUT].reshape(nb, TOPK_FANOUT))
+            start += nb * TOPK_FANOUT
+        self._apos = a["APOS"]
+        self._range_cache: dict[str, tuple[int, int]] = {}
+
+    # -- context manager ----------------------------------------------------------------
+
+    def close(self) -> None:
+        """Release the mapping (when no query result still refers to it)."""
+        self._src.close()
+
+    def __enter__(self) -> Model:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def __repr__(self) -> str:
+        return f"<nextword.Model {self.path!r}: {self.n_words} words, {self.n_bigrams} bigrams, λ={self.lam}>"
+
+    # -- vocabulary -----------------------------------------------------------------------
+
+    def _key(self, wid: int) -> str:
+        return self._trie.restore_key(self._mv_idtk[wid])  # type: ignore[no-any-return]
+
+    def _word_id(self, key: str) -> int | None:
+        mid = self._trie.get(key)
+        return None if mid is None else self._mv_tkid[mid]
+
+    def display(self, wid: int) -> str:
+        """Display spelling of word id ``wid`` (its most frequent spelling)."""
+        disi = self._mv_disi
+        i = bisect.bisect_left(disi, wid)
+        if i < len(disi) and disi[i] == wid:
+            return bytes(self._disb[self._mv_diso[i] : self._mv_diso[i + 1]]).decode("utf-8")
+        return self._key(wid)
+
+    def words(self) -> Iterator[tuple[str, int]]:
+        """Yield (display spelling, count) for every vocabulary word, most frequent first."""
+        for wid in range(self.n_words):
+            yield self.display(wid), self._mv_unig[wid]
+
+    def __contains__(self, word: object) -> bool:
+        return isinstance(word, str) and self._word_id(fold(word)) is not None
+
+    def _history_id(self, previous_word: str | None) -> int:
+        if previous_word is None or previous_word == BOS:
+            return self._bos
+        if previous_word == UNK:
+            return self._unk
+        if previous_word == EOS:
+            raise InvalidArgumentError("'</s>' is never a history; use None or '<s>' for a sentence start")
+        wid = self._word_id(fold(previous_word))
+        return self._unk if wid is None else wid
+
+    def _predicted_id(self, word: str) -> int:
+        if word == EOS:
+            return self._eos
+        if word == UNK:
+            return self._unk
+        if word == BOS:
+            raise InvalidArgumentError("'<s>' is never predicted")
+        wid = self._word_id(fold(word))
+        return self._unk if wid is None else wid
+
+    # -- counts -----------------------------------------------------------------------------
+
+    def _count_at(self, i: int) -> int:
+        c = self._mv_cnts[i]
+        if c == COUNT_ESCAPE:
+            j = bisect.bisect_left(self._mv_bigi, i)
+            if j >= len(self._mv_bigi) or self._mv_bigi[j] != i:
+                raise ModelFormatError(f"{self.path}: escaped count without a value at entry {i}")
+            return self._mv_bigc[j]  # type: ignore[no-any-return]
+        return c  # type: ignore[no-any-return]
+
+    def _counts(self, idx: np.ndarray) -> np.ndarray:
+        c = self._cnts[idx].astype(np.int64)
+        esc = np.flatnonzero(c == COUNT_ESCAPE)
+        if len(esc):
+            j = np.searchsorted(self._bigi, idx[esc])
+            if np.any(j >= len(self._bigi)) or np.any(self._bigi[np.minimum(j, len(self._bigi) - 1)] != idx[esc]):
+                raise ModelFormatError(f"{self.path}: escaped count without a value")
+            c[esc] = self._bigc[j]
+        return c
+
+    def bigram_count(self, previous_word: str | None, word: str) -> int:
+        """c(previous_word, word) as counted in training (after case folding and OOV mapping)."""
+        return self._pair_count(self._history_id(previous_word), self._predicted_id(word))
+
+    def history_count(self, previous_word: str | None) -> int:
+        """c(v): how often ``previous_word`` was followed by anything (``None`` = sentence start)."""
+        return self._mv_hist[self._history_id(previous_word)]  # type: ignore[no-any-return]
+
+    def unigram_count(self, word: str) -> int:
+        """c(w): how often ``word`` was predicted in training."""
+        return self._mv_unig[self._predicted_id(word)]  # type: ignore[no-any-return]
+
+    def _pair_count(self, v: int, w: int) -> int:
+        rs, re_ = self._mv_rows[v], self._mv_rows[v + 1]
+        pos = self._mv_apos[w]
+        i = bisect.bisect_left(self._mv_succ, pos, rs, re_)
+        if i < re_ and self._mv_succ[i] == pos:
+            return self._count_at(i)
+        return 0
+
+    # -- probabilities ----------------------------------------------------------------------
+
+    def _prob_ids(self, v: int, w: int, lam: float) -> float:
+        cv = self._mv_hist[v]
+        u = self._mv_unig[w] / self.total
+        if cv == 0:
+            return u  # type: ignore[no-any-return]
+        return lam * (self._pair_count(v, w) / cv) + (1.0 - lam) * u  # type: ignore[no-any-return]
+
+    def prob(self, word: str, previous_word: str | None = None, *, lam: float | None = None) -> float:
+        """P(word | previous_word). ``None`` or ``'<s>'`` means the sentence start.
+
+        Words are case-insensitive. ``'</s>'`` asks for the end of the sentence; a word
+        outside the vocabulary gets the probability of ``<unk>``, as in perplexity.
+        """
+        lam = self.lam if lam is None else _check_lam(lam)
+        return self._prob_ids(self._history_id(previous_word), self._predicted_id(word), lam)
+
+    def perplexity(self, lines: Iterable[str], *, lam: float | None = None) -> float:
+        """Per-token perplexity of ``lines`` (messages), counting ``</s>`` and ``<unk>`` tokens.
+
+        Text is cut by the same rules as in training. Returns ``inf`` if a token has
+        probability 0 (possible only with λ = 1).
+        """
+        lam = self.lam if lam is None else _check_lam(lam)
+        if isinstance(lines, str):
+            raise InvalidArgumentError("perplexity() takes an iterable of messages, not one string")
+        log_sum = 0.0
+        events = 0
+        for line in lines:
+            for sent in sentences(line):
+                v = self._bos
+                for tok in sent:
+                    wid = None if tok is None else self._word_id(fold(tok))
+                    w = self._unk if wid is None else wid
+                    p = self._prob_ids(v, w, lam)
+                    if p <= 0.0:
+                        return math.inf
+                    log_sum += math.log(p)
+                    events += 1
+                    v = w
+                p = self._prob_ids(v, self._eos, lam)
+                if p <= 0.0:
+                    return math.inf
+                log_sum += math.log(p)
+                events += 1
+        if events == 0:
+            raise InvalidArgumentError("no words to score: the text is empty")
+        return math.exp(-log_sum / events)
+
+    # -- ranking ------------------------------------------------------------------------------
+
+    def _prefix_range(self, key: str) -> tuple[int, int]:
+        """Alphabetical positions [lo, hi) of the words whose key starts with ``key``."""
+        n = self.n_words
+        if not key:
+            return 0, n
+        hit = self._range_cache.get(key)
+        if hit is not None:
+            return hit
+        if len(key) > self._max_key or not self._trie.has_keys_with_prefix(key):
+            result = (0, 0)
+        else:
+            lo, hi = self._range_cache.get(key[:-1], (0, n))
+            seq = _AlphaKeys(self._trie.restore_key, self._mv_amid, len(key))
+            lo = bisect.bisect_left(seq, key, lo, hi)
+            hi = bisect.bisect_right(seq, key, lo, hi)
+            result = (lo, hi)
+        if len(self._range_cache) > 65536:
+            self._range_cache.clear()
+        self._range_cache[key] = result
+        return result
+
+    def _range_top_ids(self, lo: int, hi: int, k: int) -> np.ndarray:
+        """The k smallest word ids (= most frequent) among alphabetical positions [lo, hi).
+
+        Uses the stored top lists: the range splits into at most 2·(FANOUT−1) pieces per
+        level plus at most FANOUT top-level blocks, each contributing ≤ k ids, so the work
+        is bounded whatever the number of matching words (for k ≤ FANOUT).
+        """
+        F = TOPK_FANOUT
+        if hi - lo <= 2 * F or k > F:
+            vals = self._alph[lo:hi]
+        else:
+            pieces = []
+            unit, level, a, b = 1, 0, lo, hi
+            while True:
+                nxt = unit * F
+                A = -(-a // nxt) * nxt
+                B = (b // nxt) * nxt
+                top = level == len(self._levels)
+                if top or A >= B:
+                    pieces.append(self._units(level, a // unit, b // unit, k))
+                    break
+                pieces.append(self._units(level, a // unit, A // unit, k))
+                pieces.append(self._units(level, B // unit, b // unit, k))
+                a, b, unit, level = A, B, nxt, level + 1
+            vals = np.concatenate(pieces)
+        if len(vals) > k:
+            vals = np.partition(vals, k - 1)[:k]
+        vals = np.sort(vals)
+        return vals[vals < self.n_words]
+
+    def _units(self, level: int, i: int, j: int, k: int) -> np.ndarray:
+        if level == 0:
+            return self._alph[i:j]
+        return self._levels[level - 1][i:j, :k].ravel()
+
+    def _rank(self, v: int, lo: int, hi: int, k: int, lam: float) -> tuple[np.ndarray, np.ndarray]:
+        """Top-k word ids in alphabetical positions [lo, hi) after history v, with probabilities.
+
+        Candidates are (a) the k most frequent words of the range — every word that is
+        not a successor of v scores (1−λ)·c(w)/N, so no other non-successor can beat them
+        — and (b) the successors of v inside the range: found by binary search in the
+        row (sorted by alphabetical position) or, for long rows and no prefix, the row's
+        stored k-skyband, which holds every successor that can reach the top k for any
+        λ < 1 (see store._skyband).
+        """
+        cv = self._mv_hist[v]
+        total = self.total
+        if cv == 0:
+            lam = 0.0
+        n = self.n_words
+        alph, unig = self._alph, self._unig
+        if lam == 1.0:
+            return self._rank_bigram_only(v, lo, hi, k, cv)
+        top = self._range_top_ids(lo, hi, k).astype(np.int64)
+        top_pos = self._apos[top].astype(np.int64)
+        top_score = (1.0 - lam) * (unig[top] / total)
+        if lam == 0.0:
+            return top, top_score
+        rs, re_ = self._mv_rows[v], self._mv_rows[v + 1]
+        if lo == 0 and hi == n and re_ - rs > self._long_row and k <= self._sky_k:
+            skp = self._mv_skyp
+            entries = self._skyi[skp[v] : skp[v + 1]].astype(np.int64)
+        else:
+            s = bisect.bisect_left(self._mv_succ, lo, rs, re_)
+            e = bisect.bisect_left(self._mv_succ, hi, s, re_)
+            entries = np.arange(s, e)
+        if len(entries) == 0:
+            return top, top_score
+        pos = self._succ[entries].astype(np.int64)
+        ids = alph[pos].astype(np.int64)
+        score = lam * (self._counts(entries) / cv) + (1.0 - lam) * (unig[ids] / total)
+        # frequent words that are also successors are scored from the row already
+        at = np.minimum(np.searchsorted(pos, top_pos), len(pos) - 1)
+        fresh = pos[at] != top_pos
+        all_pos = np.concatenate([pos, top_pos[fresh]])
+        all_ids = np.concatenate([ids, top[fresh]])
+        all_score = np.concatenate([score, top_score[fresh]])
+        return self._select(all_ids, all_pos, all_score, k)
+
+    @staticmethod
+    def _select(ids: np.ndarray, pos: np.ndarray, score: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
+        if len(score) > k:
+            thr = np.partition(score, len(score) - k)[len(score) - k]
+            keep = np.flatnonzero(score >= thr)
+            ids, pos, score = ids[keep], pos[keep], score[keep]
+        order = np.lexsort((pos, -score))[:k]
+        return ids[order], score[order]
+
+    def _rank_bigram_only(self, v: int, lo: int, hi: int, k: int, cv: int) -> tuple[np.ndarray, np.ndarray]:
+        """λ = 1: successors by count, then zero-probability words alphabetically."""
+        rs, re_ = self._mv_rows[v], self._mv_rows[v + 1]
+        s = bisect.bisect_left(self._mv_succ, lo, rs, re_)
+        e = bisect.bisect_left(self._mv_succ, hi, s, re_)
+        entries = np.arange(s, e)
+        pos = self._succ[entries].astype(np.int64)
+        ids = self._alph[pos].astype(np.int64)
+        score = self._counts(entries) / cv
+        ids, score = self._select(ids, pos, score, k)
+        if len(ids) < k:
+            taken = set(pos.tolist())
+            extra = []
+            p = lo
+            while p < hi and len(ids) + len(extra) < k:
+                if p not in taken:
+                    extra.append(self._mv_alph[p])
+                p += 1
+            ids = np.concatenate([ids, np.asarray(extra, dtype=np.int64)])
+            score = np.concatenate([score, np.zeros(len(extra))])
+        return ids, score
+
+    def suggest(self, text_before_cursor: str, k: int = 3, *, lam: float | None = None) -> list[Suggestion]:
+        """The k words the user most likely wants at the cursor, best first.
+
+        If ``text_before_cursor`` ends inside a word, that partial word is completed
+        (case-insensitively); otherwise the next word is predicted. The context is the
+        last complete word of the same sentence (the sentence start if none, the unknown
+        symbol right after a number or symbol). Suggestions are capitalised at a sentence
+        start and after a capitalised prefix; an explicitly lowercase prefix stays lowercase.
+        """
+        if not isinstance(text_before_cursor, str):
+            raise InvalidArgumentError(f"text_before_cursor must be str, got {type(text_before_cursor).__name__}")
+        k = _check_k(k)
+        lam = self.lam if lam is None else _check_lam(lam)
+        ctx = parse_before_cursor(text_before_cursor)
+        if ctx.previous == BOS:
+            v = self._bos
+        elif ctx.previous == UNK:
+            v = self._unk
+        else:
+            wid = self._word_id(fold(ctx.previous))
+            v = self._unk if wid is None else wid
+        lo, hi = self._prefix_range(fold(ctx.prefix))
+        if lo >= hi:
+            return []
+        try:
+            ids, probs = self._rank(v, lo, hi, k, lam)
+        except (IndexError, ValueError) as e:
+            raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
+        at_start = v == self._bos
+        return [
+            Suggestion(_recase(self.display(i), ctx.prefix, at_start), p)
+            for i, p in zip(ids.tolist(), probs.tolist())
+        ]
+
+    def rank_ids(self, previous_word: str | None, prefix: str = "", k: int = 3, *, lam: float | None = None) -> list[tuple[str, float]]:
+        """(key, probability) of the top k after ``previous_word`` among words starting with ``prefix``.
+
+        The raw ranking behind :meth:`suggest`, without text parsing or capitalisation;
+        keys are the case-folded vocabulary keys.
+        """
+        k = _check_k(k)
+        lam = self.lam if lam is None else _check_lam(lam)
+        v = self._history_id(previous_word)
+        lo, hi = self._prefix_range(fold(prefix))
+        if lo >= hi:
+            return []
+        ids, probs = self._rank(v, lo, hi, k, lam)
+        return [(self._key(i), p) for i, p in zip(ids.tolist(), probs.tolist())]
+
+    def info(self) -> dict[str, Any]:
+        """Sizes, settings and corpus statistics, as plain data (for ``nextword info``)."""
+        a = self._src.arrays
+        bigram_bytes = sum(a[s].nbytes for s in ("SUCC", "CNTS", "BIGI", "BIGC", "ROWS", "HIST", "SKYP", "SKYI"))
+        return {
+            "path": self.path,
+            "format_version": "%d.%d" % self.format_version,
+            "file_bytes": self.file_size,
+            "vocabulary": self.n_words,
+            "bigrams": self.n_bigrams,
+            "bytes_per_bigram": self.file_size / self.n_bigrams if self.n_bigrams else None,
+            "bigram_section_bytes_per_bigram": bigram_bytes / self.n_bigrams if self.n_bigrams else None,
+            "lambda": self.stored_lam,
+            "tokens": self.total,
+            "corpus": self.stats,
+        }
+
+
+def _recase(word: str, prefix: str, at_start: bool) -> str:
+    if prefix:
+        if sum(c.isupper() for c in prefix) >= 2 and not any(c.islower() for c in prefix):
+            return word.upper()
+        if prefix[0].isupper():
+            return word[:1].upper() + word[1:]
+        if prefix[0].islower():
+            return word
+    if at_start:
+        return word[:1].upper() + word[1:]
+    return word
+
+
+# -- building and loading ---------------------------------------------------------------------
+
+
+def load(path: str | os.PathLike[str], *, lam: float | None = None, verify: bool = False) -> Model:
+    """Open a model file (memory-mapped). ``lam`` overrides the stored λ for every query.
+
+    ``verify=True`` reads and checks the whole file (checksums of every section and every
+    entry); without it only the header, metadata, trie and vocabulary-sized arrays are
+    checked, which keeps opening fast whatever the model size.
+    """
+    if lam is not None:
+        _check_lam(lam)
+    return Model(read_model(path, verify=verify), lam=lam)
+
+
+def _finish(
+    builder: CountBuilder,
+    output_path: str | os.PathLike[str],
+    *,
+    lam: float,
+    min_count: int,
+    max_vocab: int,
+    skyband_k: int,
+    long_row: int,
+    t0: float,
+) -> TrainReport:
+    t1 = time.perf_counter()
+    tables: CountTables = builder.tables(min_count=min_count, max_vocab=max_vocab)
+    if tables.stats["word_tokens"] == 0:
+        raise InputDataError("the input holds no words")
+    write_model(tables, output_path, lam=lam, skyband_k=skyband_k, long_row=long_row)
+    t2 = time.perf_counter()
+    return TrainReport(
+        path=os.fspath(output_path),
+        n_words=tables.n_words,
+        n_bigrams=len(tables.pair_count),
+        word_tokens=tables.stats["word_tokens"],
+        messages=tables.stats["messages"],
+        file_bytes=os.path.getsize(output_path),
+        count_seconds=t1 - t0,
+        build_seconds=t2 - t1,
+    )
+
+
+def _check_build_args(lam: float, skyband_k: int, long_row: int) -> float:
+    lam = _check_lam(lam)
+    if isinstance(skyband_k, bool) or not isinstance(skyband_k, int) or not 1 <= skyband_k <= 4096:
+        raise InvalidArgumentError(f"skyband_k must be an integer in [1, 4096], got {skyband_k!r}")
+    if isinstance(long_row, bool) or not isinstance(long_row, int) or long_row < 0:
+        raise InvalidArgumentError(f"long_row must be an integer >= 0, got {long_row!r}")
+    return lam
+
+
+def train(
+    inputs: str | os.PathLike[str] | Iterable[str | os.PathLike[str]],
+    output_path: str | os.PathLike[str],
+    *,
+    lam: float = DEFAULT_LAMBDA,
+    min_count: int = DEFAULT_MIN_COUNT,
+    max_vocab: int = DEFAULT_MAX_VOCAB,
+    fmt: Format = "auto",
+    field: str = "text",
+    skyband_k: int = DEFAULT_SKYBAND_K,
+    long_row: int = DEFAULT_LONG_ROW,
+    progress: bool | None = None,
+) -> TrainReport:
+    """Count the messages in ``inputs`` and write a model file to ``output_path``.
+
+    ``inputs`` is a path or a list of paths (``"-"`` = standard input): plain text with
+    one message per line, or JSON Lines with a ``field`` holding the message, optionally
+    gzip-compressed. Each input is read exactly once. The file is written atomically.
+    ``skyband_k`` and ``long_row`` trade file size for next-word query speed (see
+    docs/FORMAT.md); the defaults suit keyboards.
+    """
+    lam = _check_build_args(lam, skyband_k, long_row)
+    sources = open_sources(inputs, fmt=fmt, field=field)
+    t0 = time.perf_counter()
+    builder = CountBuilder()
+    bar = Progress("counting", enabled=progress)
+    builder.add_texts(iter_messages(sources, progress=bar.update))
+    bar.done()
+    return _finish(
+        builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
+        skyband_k=skyband_k, long_row=long_row, t0=t0,
+    )
+
+
+def train_texts(
+    texts: Iterable[str],
+    output_path: str | os.PathLike[str],
+    *,
+    lam: float = DEFAULT_LAMBDA,
+    min_count: int = DEFAULT_MIN_COUNT,
+    max_vocab: int = DEFAULT_MAX_VOCAB,
+    skyband_k: int = DEFAULT_SKYBAND_K,
+    long_row: int = DEFAULT_LONG_ROW,
+) -> TrainReport:
+    """Like :func:`train`, but from messages already in memory (consumed once)."""
+    lam = _check_build_args(lam, skyband_k, long_row)
+    if isinstance(texts, str):
+        raise InvalidArgumentError("train_texts() takes an iterable of messages, not one string")
+    t0 = time.perf_counter()
+    builder = CountBuilder()
+    builder.add_texts(texts)
+    return _finish(
+        builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
+        skyband_k=skyband_k, long_row=long_row, t0=t0,
+    )

@@ -1,0 +1,567 @@
+"""The model file: building its arrays from counts, writing it atomically, reading it safely.
+
+One file holds everything a query needs, laid out so that opening it is a few header
+reads plus ``mmap``: the bigram arrays are never copied or parsed, so load time does not
+grow with the model. Every number read from a file is checked before it is used as a
+length, offset or index; see docs/FORMAT.md for the byte-by-byte layout.
+"""
+
+from __future__ import annotations
+
+import heapq
+import mmap
+import os
+import struct
+import tempfile
+import zlib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Final
+
+import marisa_trie
+import msgpack
+import numpy as np
+
+from .counts import CountTables
+from .errors import InvalidArgumentError, ModelFormatError
+
+__all__ = [
+    "MAGIC",
+    "FORMAT_VERSION",
+    "write_model",
+    "read_model",
+    "ModelArrays",
+    "atomic_write",
+    "DEFAULT_SKYBAND_K",
+    "DEFAULT_LONG_ROW",
+    "TOPK_FANOUT",
+]
+
+MAGIC: Final = b"\x89NWM\r\n\x1a\n"
+FORMAT_VERSION: Final = (1, 0)
+HEADER = struct.Struct("<8sHHIQII")  # magic, major, minor, sections, file size, table crc, header crc
+ENTRY = struct.Struct("<4sB3xQQI4x")  # tag, dtype code, offset, length, crc
+MAX_SECTIONS: Final = 64
+MAX_META_BYTES: Final = 1 << 20
+ALIGN: Final = 8
+
+#: Rows with more successors than this get a precomputed skyband for next-word queries.
+DEFAULT_LONG_ROW: Final = 256
+#: Next-word queries with k up to this use the skyband of a long row.
+DEFAULT_SKYBAND_K: Final = 16
+#: Branching of the multi-level top lists used for prefix queries (see docs/FORMAT.md).
+TOPK_FANOUT: Final = 64
+COUNT_ESCAPE: Final = 255
+
+_DTYPES: Final = {0: None, 1: np.dtype("<u1"), 2: np.dtype("<u2"), 3: np.dtype("<u4"), 4: np.dtype("<u8")}
+_CODES: Final = {np.dtype("<u1"): 1, np.dtype("<u2"): 2, np.dtype("<u4"): 3, np.dtype("<u8"): 4}
+
+# tag -> (required, element type: "id" means u16 or u32 by vocabulary size)
+_SECTIONS: Final = {
+    b"META": "raw",
+    b"TRIE": "raw",
+    b"TKID": "id",
+    b"IDTK": "id",
+    b"AMID": "u4",
+    b"ALPH": "id",
+    b"APOS": "id",
+    b"TOPK": "id",
+    b"UNIG": "u4",
+    b"HIST": "u4",
+    b"ROWS": "u4",
+    b"SUCC": "id",
+    b"CNTS": "u1",
+    b"BIGI": "u4",
+    b"BIGC": "u4",
+    b"SKYP": "u4",
+    b"SKYI": "u4",
+    b"DISI": "id",
+    b"DISO": "u4",
+    b"DISB": "raw",
+}
+# sections small enough (vocabulary-sized) to checksum on every load
+_CHECKED_ON_LOAD: Final = (b"META", b"TRIE")
+_U32_MAX: Final = 0xFFFFFFFF
+
+
+def _id_dtype(n_words: int) -> np.dtype:
+    # positions/ids go up to n+2 (<s>), TOPK pads with the dtype maximum
+    return np.dtype("<u2") if n_words + 3 < 0xFFFF else np.dtype("<u4")
+
+
+def topk_levels(n_pos: int) -> list[int]:
+    """Number of blocks at each level of the prefix top lists, bottom level first."""
+    levels = []
+    size = TOPK_FANOUT
+    while True:
+        nb = -(-n_pos // size)
+        levels.append(nb)
+        if nb <= TOPK_FANOUT:
+            return levels
+        size *= TOPK_FANOUT
+
+
+# ----------------------------------------------------------------------------- writing
+
+
+def atomic_write(path: str | os.PathLike[str], chunks: list[bytes | memoryview]) -> None:
+    """Write ``chunks`` to ``path`` so that readers see the old file or the whole new one.
+
+    A temporary file in the same directory is written, fsync'd and renamed over the
+    target; the directory is fsync'd too so the rename survives a power cut.
+    """
+    target = Path(path)
+    directory = target.parent if str(target.parent) else Path(".")
+    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=directory)
+    try:
+        with os.fdopen(fd, "wb") as f:
+            for c in chunks:
+                f.write(c)
+            f.flush()
+            os.fsync(f.fileno())
+        os.chmod(tmp, 0o644)
+        os.replace(tmp, target)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+    try:
+        dfd = os.open(directory, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(dfd)
+    except OSError:
+        pass
+    finally:
+        os.close(dfd)
+
+
+def _skyband(ids: np.ndarray, counts: np.ndarray, k: int) -> np.ndarray:
+    """Indices of row entries that fewer than ``k`` other entries beat for every λ in [0, 1).
+
+    An entry x beats entry w whenever c(v,x) >= c(v,w) and x's id is smaller (which
+    implies c(x) >= c(w) and, on equal counts, an earlier word): then x scores at
+    least as high for any λ and wins ties. Scanning in (count desc, id asc) order, an
+    entry is in the k-skyband iff fewer than k earlier entries have a smaller id.
+    """
+    order = np.lexsort((ids, -counts))
+    seq = ids[order]
+    out: list[int] = []
+    heap: list[int] = []  # negated k smallest ids seen so far
+    pos = 0
+    chunk = 4096
+    while pos < len(seq):
+        part = seq[pos : pos + chunk]
+        if len(heap) < k:
+            cand = np.arange(len(part))
+        else:
+            cand = np.flatnonzero(part < -heap[0])
+        for i in cand.tolist():
+            x = int(part[i])
+            if len(heap) < k:
+                heapq.heappush(heap, -x)
+                out.append(pos + i)
+            elif x < -heap[0]:
+                heapq.heapreplace(heap, -x)
+                out.append(pos + i)
+        pos += chunk
+    return np.sort(order[np.asarray(out, dtype=np.int64)])
+
+
+def build_sections(
+    tables: CountTables,
+    *,
+    lam: float,
+    skyband_k: int = DEFAULT_SKYBAND_K,
+    long_row: int = DEFAULT_LONG_ROW,
+) -> list[tuple[bytes, np.dtype | None, bytes | np.ndarray]]:
+    """Turn counts into the arrays of a model file (the explicit build step)."""
+    n = tables.n_words
+    if n == 0:
+        raise InvalidArgumentError("the vocabulary is empty: no word reached min_count")
+    idt = _id_dtype(n)
+    eos, unk, bos = n, n + 1, n + 2
+    n_pos = n + 2
+    n_hist = n + 3
+
+    trie = marisa_trie.Trie(tables.keys)
+    tkid = np.empty(n, dtype=np.int64)
+    for wid, key in enumerate(tables.keys):
+        tkid[trie.key_id(key)] = wid
+    idtk = np.empty(n, dtype=np.int64)
+    idtk[tkid] = np.arange(n)
+    alpha_words = np.array(sorted(range(n), key=tables.keys.__getitem__), dtype=np.int64)
+    alph = np.concatenate([alpha_words, [eos, unk]])
+    apos = np.empty(n_pos, dtype=np.int64)
+    apos[alph] = np.arange(n_pos)
+    amid = idtk[alpha_words]
+
+    # multi-level top lists over alphabetical positions of words (ids are ranks)
+    pad = int(np.iinfo(idt).max)
+    levels = []
+    size = TOPK_FANOUT
+    for nb in topk_levels(n):
+        padded = np.full(nb * size, pad, dtype=np.int64)
+        padded[:n] = alpha_words
+        blocks = np.sort(padded.reshape(nb, size), axis=1)[:, :TOPK_FANOUT]
+        levels.append(blocks.reshape(-1))
+        size *= TOPK_FANOUT
+    topk = np.concatenate(levels)
+
+    unigram = tables.unigram
+    if unigram.max(initial=0) > _U32_MAX or unigram.sum() > (1 << 53):
+        raise InvalidArgumentError("corpus too large for 32-bit counts")
+
+    left = tables.pair_left
+    right_pos = apos[tables.pair_right]
+    counts = tables.pair_count
+    order = np.lexsort((right_pos, left))
+    left, right_pos, counts = left[order], right_pos[order], counts[order]
+    row_len = np.bincount(left, minlength=n_hist)
+    rows = np.concatenate([[0], np.cumsum(row_len)])
+    hist = np.bincount(left, weights=counts, minlength=n_hist).astype(np.int64)
+    if rows[-1] > _U32_MAX or hist.max(initial=0) > _U32_MAX:
+        raise InvalidArgumentError("too many bigrams for 32-bit offsets")
+    cnts = np.minimum(counts, COUNT_ESCAPE)
+    bigi = np.flatnonzero(counts >= COUNT_ESCAPE)
+    bigc = counts[bigi]
+
+    sky_ptr = np.zeros(n_hist + 1, dtype=np.int64)
+    sky_parts = []
+    for v in np.flatnonzero(row_len > long_row).tolist():
+        s, e = int(rows[v]), int(rows[v + 1])
+        pos = right_pos[s:e]
+        words = pos < n
+        idx = np.flatnonzero(words)
+        band = _skyband(alph[pos[idx]], counts[s:e][idx], skyband_k)
+        sky_parts.append(s + idx[band])
+        sky_ptr[v + 1] = len(band)
+    sky_ptr = np.cumsum(sky_ptr)
+    skyi = np.concatenate(sky_parts) if sky_parts else np.zeros(0, np.int64)
+
+    dis_ids = [i for i, (k, d) in enumerate(zip(tables.keys, tables.displays)) if k != d]
+    dis_bytes = [tables.displays[i].encode("utf-8") for i in dis_ids]
+    diso = np.concatenate([[0], np.cumsum([len(b) for b in dis_bytes], dtype=np.int64)])
+
+    meta: dict[str, Any] = {
+        "generator": "nextword",
+        "n_words": n,
+        "lambda": float(lam),
+        "total": int(unigram.sum()),
+        "bigrams": int(rows[-1]),
+        "skyband_k": int(skyband_k),
+        "long_row": int(long_row),
+        "topk_fanout": TOPK_FANOUT,
+        "max_key_chars": max(len(k) for k in tables.keys),
+        "stats": {k: int(v) for k, v in tables.stats.items()},
+    }
+    u4, u1 = np.dtype("<u4"), np.dtype("<u1")
+    return [
+        (b"META", None, msgpack.packb(meta, use_bin_type=True)),
+        (b"TRIE", None, trie.tobytes()),
+        (b"TKID", idt, tkid),
+        (b"IDTK", idt, idtk),
+        (b"AMID", u4, amid),
+        (b"ALPH", idt, alph),
+        (b"APOS", idt, apos),
+        (b"TOPK", idt, topk),
+        (b"UNIG", u4, unigram),
+        (b"HIST", u4, hist),
+        (b"ROWS", u4, rows),
+        (b"SUCC", idt, right_pos),
+        (b"CNTS", u1, cnts),
+        (b"BIGI", u4, bigi),
+        (b"BIGC", u4, bigc),
+        (b"SKYP", u4, sky_ptr),
+        (b"SKYI", u4, skyi),
+        (b"DISI", idt, np.asarray(dis_ids, dtype=np.int64)),
+        (b"DISO", u4, diso),
+        (b"DISB", None, b"".join(dis_bytes)),
+    ]
+
+
+def encode_sections(sections: list[tuple[bytes, np.dtype | None, bytes | np.ndarray]]) -> list[bytes]:
+    """Lay sections out after the header and table; returns the file as byte chunks."""
+    table_end = HEADER.size + ENTRY.size * len(sections)
+    offset = -(-table_end // ALIGN) * ALIGN
+    entries, payloads = [], []
+    for tag, dtype, data in sections:
+        if dtype is None:
+            raw = bytes(data)  # type: ignore[arg-type]
+            code = 0
+        else:
+            arr = np.asarray(data)
+            if arr.size and (arr.min() < 0 or arr.max() > np.iinfo(dtype).max):
+                raise InvalidArgumentError(f"section {tag.decode()} does not fit {dtype}")
+            raw = arr.astype(dtype).tobytes()
+            code = _CODES[dtype]
+        entries.append(ENTRY.pack(tag, code, offset, len(raw), zlib.crc32(raw)))
+        padding = -len(raw) % ALIGN
+        payloads.append(raw + b"\0" * padding)
+        offset += len(raw) + padding
+    table = b"".join(entries)
+    head = HEADER.pack(MAGIC, FORMAT_VERSION[0], FORMAT_VERSION[1], len(sections), offset, zlib.crc32(table), 0)
+    head = head[:-4] + struct.pack("<I", zlib.crc32(head[:-4]))
+    gap = b"\0" * (-(-table_end // ALIGN) * ALIGN - table_end)
+    return [head, table, gap, *payloads]
+
+
+def write_model(
+    tables: CountTables,
+    path: str | os.PathLike[str],
+    *,
+    lam: float,
+    skyband_k: int = DEFAULT_SKYBAND_K,
+    long_row: int = DEFAULT_LONG_ROW,
+) -> None:
+    """Build the model arrays from ``tables`` and write them atomically to ``path``."""
+    atomic_write(path, encode_sections(build_sections(tables, lam=lam, skyband_k=skyband_k, long_row=long_row)))
+
+
+# ----------------------------------------------------------------------------- reading
+
+
+@dataclass
+class ModelArrays:
+    """Validated, memory-mapped views of a model file's sections."""
+
+    path: str
+    version: tuple[int, int]
+    meta: dict[str, Any]
+    trie: marisa_trie.Trie
+    arrays: dict[str, np.ndarray]
+    raw: dict[str, memoryview]
+    file_size: int
+    _mmap: mmap.mmap
+
+    def close(self) -> None:
+        # arrays keep exporting the buffer while alive; let the GC unmap when they go
+        self.arrays.clear()
+        self.raw.clear()
+
+
+def _fail(path: str, msg: str) -> ModelFormatError:
+    return ModelFormatError(f"{path}: {msg}")
+
+
+def read_model(path: str | os.PathLike[str], *, verify: bool = False) -> ModelArrays:
+    """Open, map and validate a model file.
+
+    Always checked: magic, version, header and table checksums, file size, section
+    bounds, alignment and element types, the checksums of the metadata and the trie
+    (the trie library must never see damaged bytes), lengths of every array against the
+    metadata, and the vocabulary-sized arrays' internal consistency. ``verify=True``
+    also checksums the large bigram sections and checks every entry, which reads the
+    whole file.
+    """
+    name = os.fspath(path)
+    try:
+        f = open(name, "rb")
+    except OSError as e:
+        raise ModelFormatError(f"{name}: cannot open model: {e.strerror}") from None
+    with f:
+        size = os.fstat(f.fileno()).st_size
+        if size < HEADER.size:
+            raise _fail(name, f"not a nextword model (only {size} bytes)")
+        mm = mmap.mmap(f.fileno(), 0, access=mmap.ACCESS_READ)
+    try:
+        return _parse(name, mm, size, verify)
+    except ModelFormatError:
+        raise
+    except (ValueError, TypeError, IndexError, KeyError, OverflowError, msgpack.UnpackException) as e:
+        raise _fail(name, f"damaged model: {e}") from None
+
+
+def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
+    buf = memoryview(mm)
+    magic, major, minor, n_sec, file_size, table_crc, head_crc = HEADER.unpack_from(buf, 0)
+    if magic != MAGIC:
+        raise _fail(name, "not a nextword model (bad magic bytes)")
+    if zlib.crc32(buf[: HEADER.size - 4]) != head_crc:
+        raise _fail(name, "header checksum mismatch (damaged file)")
+    if major != FORMAT_VERSION[0]:
+        raise _fail(name, f"unsupported format version {major}.{minor} (this library reads {FORMAT_VERSION[0]}.x)")
+    if file_size != size:
+        raise _fail(name, f"file is {size} bytes but its header says {file_size} (truncated or appended)")
+    if not 1 <= n_sec <= MAX_SECTIONS:
+        raise _fail(name, f"bad section count {n_sec}")
+    table_end = HEADER.size + ENTRY.size * n_sec
+    if table_end > size:
+        raise _fail(name, "section table runs past the end of the file")
+    table = buf[HEADER.size : table_end]
+    if zlib.crc32(table) != table_crc:
+        raise _fail(name, "section table checksum mismatch (damaged file)")
+    sections: dict[bytes, tuple[int, int, int, int]] = {}
+    prev_end = table_end
+    for i in range(n_sec):
+        tag, code, off, length, crc = ENTRY.unpack_from(table, i * ENTRY.size)
+        label = tag.decode("ascii", "replace")
+        if tag in sections:
+            raise _fail(name, f"section {label} appears twice")
+        if code not in _DTYPES:
+            raise _fail(name, f"section {label} has unknown element type {code}")
+        if off % ALIGN or off < prev_end or off + length > size:
+            raise _fail(name, f"section {label} has bad offset {off} or length {length}")
+        item = 1 if _DTYPES[code] is None else _DTYPES[code].itemsize  # type: ignore[union-attr]
+        if length % item:
+            raise _fail(name, f"section {label} length {length} is not a multiple of {item}")
+        prev_end = off + length
+        sections[tag] = (code, off, length, crc)
+    missing = [t.decode() for t in _SECTIONS if t not in sections]
+    if missing:
+        raise _fail(name, f"missing sections {', '.join(missing)}")
+    for tag in (*_CHECKED_ON_LOAD, *(_SECTIONS if verify else ())):
+        code, off, length, crc = sections[tag]
+        if zlib.crc32(buf[off : off + length]) != crc:
+            raise _fail(name, f"section {tag.decode()} checksum mismatch (damaged file)")
+
+    code, off, length, _ = sections[b"META"]
+    if length > MAX_META_BYTES:
+        raise _fail(name, f"metadata of {length} bytes is too large")
+    meta = msgpack.unpackb(bytes(buf[off : off + length]), raw=False, strict_map_key=True)
+    meta = _check_meta(name, meta, size)
+    n = meta["n_words"]
+    idt = _id_dtype(n)
+
+    arrays: dict[str, np.ndarray] = {}
+    raw: dict[str, memoryview] = {}
+    for tag, kind in _SECTIONS.items():
+        code, off, length, _ = sections[tag]
+        label = tag.decode()
+        if kind == "raw":
+            if code != 0:
+                raise _fail(name, f"section {label} should hold raw bytes")
+            raw[label] = buf[off : off + length]
+            continue
+        want = idt if kind == "id" else np.dtype("<" + kind)
+        if _DTYPES[code] != want:
+            raise _fail(name, f"section {label} has element type {_DTYPES[code]}, expected {want}")
+        arrays[label] = np.frombuffer(mm, dtype=want, count=length // want.itemsize, offset=off)
+
+    trie = marisa_trie.Trie()
+    trie.map(raw["TRIE"])
+    _check_arrays(name, meta, trie, arrays, raw, full=verify)
+    return ModelArrays(name, (major, minor), meta, trie, arrays, raw, size, mm)
+
+
+def _check_meta(name: str, meta: Any, size: int) -> dict[str, Any]:
+    if not isinstance(meta, dict):
+        raise _fail(name, "metadata is not a map")
+
+    def need(key: str, typ: type | tuple[type, ...], lo: float, hi: float) -> Any:
+        v = meta.get(key)
+        if isinstance(v, bool) or not isinstance(v, typ) or not lo <= v <= hi:
+            raise _fail(name, f"metadata field {key!r} is invalid: {v!r}")
+        return v
+
+    need("n_words", int, 1, min(size, 0xFFFFFFF0))
+    lam = need("lambda", (float, int), 0.0, 1.0)
+    meta["lambda"] = float(lam)
+    need("total", int, 1, 1 << 53)
+    need("bigrams", int, 0, size)
+    need("skyband_k", int, 1, 4096)
+    need("long_row", int, 0, 1 << 32)
+    need("max_key_chars", int, 1, 1 << 20)
+    if meta.get("topk_fanout") != TOPK_FANOUT:
+        raise _fail(name, f"metadata field 'topk_fanout' is invalid: {meta.get('topk_fanout')!r}")
+    if not isinstance(meta.get("stats", {}), dict):
+        raise _fail(name, "metadata field 'stats' is invalid")
+    return meta
+
+
+def _check_arrays(
+    name: str,
+    meta: dict[str, Any],
+    trie: marisa_trie.Trie,
+    a: dict[str, np.ndarray],
+    raw: dict[str, memoryview],
+    *,
+    full: bool,
+) -> None:
+    n = meta["n_words"]
+    n_pos, n_hist = n + 2, n + 3
+    b = meta["bigrams"]
+    expected = {
+        "TKID": n,
+        "IDTK": n,
+        "AMID": n,
+        "ALPH": n_pos,
+        "APOS": n_pos,
+        "TOPK": sum(topk_levels(n)) * TOPK_FANOUT,
+        "UNIG": n_pos,
+        "HIST": n_hist,
+        "ROWS": n_hist + 1,
+        "SUCC": b,
+        "CNTS": b,
+        "SKYP": n_hist + 1,
+        "DISO": len(a["DISI"]) + 1,
+    }
+    for label, want in expected.items():
+        if len(a[label]) != want:
+            raise _fail(name, f"section {label} holds {len(a[label])} entries, expected {want}")
+    if len(a["BIGI"]) != len(a["BIGC"]):
+        raise _fail(name, "sections BIGI and BIGC differ in length")
+    if len(trie) != n:
+        raise _fail(name, f"trie holds {len(trie)} words, metadata says {n}")
+
+    def perm(label: str, arr: np.ndarray, inv: np.ndarray, m: int) -> None:
+        if arr.max(initial=0) >= m or inv.max(initial=0) >= m or not np.array_equal(inv[arr], np.arange(m)):
+            raise _fail(name, f"section {label} is not a valid permutation")
+
+    perm("TKID", a["TKID"], a["IDTK"], n)
+    perm("ALPH", a["ALPH"], a["APOS"], n_pos)
+    if a["ALPH"][n] != n or a["ALPH"][n + 1] != n + 1:
+        raise _fail(name, "section ALPH does not end with the reserved symbols")
+    if not np.array_equal(a["AMID"], a["IDTK"][a["ALPH"][:n]]):
+        raise _fail(name, "section AMID disagrees with ALPH and IDTK")
+    if a["UNIG"].sum(dtype=np.int64) != meta["total"]:
+        raise _fail(name, "unigram counts do not add up to the stored total")
+    for label, end in (("ROWS", b), ("SKYP", len(a["SKYI"])), ("DISO", len(raw["DISB"]))):
+        arr = a[label]
+        if arr[0] != 0 or arr[-1] != end or np.any(arr[1:] < arr[:-1]):
+            raise _fail(name, f"section {label} offsets are not increasing from 0 to {end}")
+    disi = a["DISI"]
+    if len(disi) and (disi[-1] >= n or np.any(disi[1:] <= disi[:-1])):
+        raise _fail(name, "section DISI is not an increasing list of word ids")
+    if not full:
+        return
+
+    rows, succ, cnts = a["ROWS"].astype(np.int64), a["SUCC"], a["CNTS"]
+    if b and succ.max() >= n_pos:
+        raise _fail(name, "section SUCC holds an id out of range")
+    row_of = np.repeat(np.arange(n_hist), np.diff(rows))
+    key = row_of * n_pos + succ
+    if b > 1 and np.any(key[1:] <= key[:-1]):
+        raise _fail(name, "section SUCC rows are not strictly increasing")
+    if b and (cnts.min() == 0 or (rows[n + 1] - rows[n]) != 0):
+        raise _fail(name, "section CNTS holds a zero count, or </s> has successors")
+    bigi, bigc = a["BIGI"].astype(np.int64), a["BIGC"].astype(np.int64)
+    if len(bigi) and (bigi.max() >= b or np.any(bigi[1:] <= bigi[:-1]) or bigc.min() < COUNT_ESCAPE):
+        raise _fail(name, "sections BIGI/BIGC are inconsistent")
+    if not np.array_equal(np.flatnonzero(cnts == COUNT_ESCAPE), bigi):
+        raise _fail(name, "sections CNTS and BIGI disagree")
+    full_counts = cnts.astype(np.int64)
+    full_counts[bigi] = bigc
+    if not np.array_equal(np.bincount(row_of, weights=full_counts, minlength=n_hist), a["HIST"]):
+        raise _fail(name, "section HIST disagrees with the row counts")
+    col = np.bincount(a["ALPH"][succ], weights=full_counts, minlength=n_pos)
+    if not np.array_equal(col, a["UNIG"]):
+        raise _fail(name, "section UNIG disagrees with the bigram counts")
+    skyi, skyp = a["SKYI"].astype(np.int64), a["SKYP"].astype(np.int64)
+    if len(skyi):
+        owner = np.repeat(np.arange(n_hist), np.diff(skyp))
+        if np.any(skyi < rows[owner]) or np.any(skyi >= rows[owner + 1]) or np.any(succ[skyi] >= n):
+            raise _fail(name, "section SKYI points outside its rows")
+    for i in range(n):
+        if trie.restore_key(int(a["IDTK"][i])) is None:
+            raise _fail(name, "trie is inconsistent")
+    keys = [trie.restore_key(int(m)) for m in a["AMID"]]
+    if any(keys[i] >= keys[i + 1] for i in range(len(keys) - 1)):
+        raise _fail(name, "section ALPH is not in alphabetical order")
+    try:
+        bytes(raw["DISB"]).decode("utf-8")
+    except UnicodeDecodeError:
+        raise _fail(name, "section DISB is not UTF-8") from None

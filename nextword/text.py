@@ -1,0 +1,189 @@
+"""Text rules: how raw typed text becomes words, sentence boundaries and context breaks.
+
+Training and querying must cut text the same way, or the model would be asked about
+contexts it never counted. Both go through this module. The rules (also in README):
+
+* Text is normalised to Unicode NFC first.
+* A *word* is a run of letters and digits (Python's ``str.isalnum``), possibly joined by
+  internal apostrophes (``'`` or ``’``) or hyphens (``-``, ``‐``, ``‑``), containing at
+  least one letter: ``don't``, ``well-known``, ``5pm``, ``mp3``.
+* A *number* (a run of digits, optionally with internal ``. , :`` as in ``7:30`` or
+  ``3.5``) and any *symbol* character (Unicode category S*: ``£ + = ©`` …) are non-words:
+  they are never suggested, and they *break the context*: the next word is predicted
+  from the unknown symbol, not from the word before the number. A run of consecutive
+  non-words counts as one.
+* Sentences end at ``. ! ? …`` (and their full-width forms) and at line ends. The first
+  word of a sentence is predicted from the sentence-start context.
+* Other punctuation (commas, quotes, brackets, dashes, ``& @ #`` …) separates words but
+  does not break the context.
+* Counting is case-insensitive: a word's *key* is its case-folded form, with curly
+  apostrophes and Unicode hyphens mapped to ``'`` and ``-``.
+"""
+
+from __future__ import annotations
+
+import re
+import unicodedata
+from dataclasses import dataclass
+from typing import Final, Iterator
+
+__all__ = [
+    "BOS",
+    "EOS",
+    "UNK",
+    "WORD",
+    "BREAK",
+    "END",
+    "Context",
+    "fold",
+    "normalize",
+    "tokens",
+    "sentences",
+    "parse_before_cursor",
+    "MAX_CONTEXT_CHARS",
+]
+
+#: Reserved symbols. None of them can be a word: words contain no ``<`` or ``>``.
+BOS: Final = "<s>"
+EOS: Final = "</s>"
+UNK: Final = "<unk>"
+
+#: Token kinds produced by :func:`tokens`.
+WORD: Final = 0
+BREAK: Final = 1
+END: Final = 2
+
+_SENTENCE_END_CHARS = ".!?…‼‽⁇⁈⁉。！？｡\n\r\u2028\u2029\u0085\x0b\x0c"
+_JOINERS = "'’\\-‐‑"
+_TOKEN_RE = re.compile(
+    r"(?P<num>\d+(?:[.,:]\d+)+)"
+    rf"|(?P<word>[^\W_]+(?:[{_JOINERS}][^\W_]+)*)"
+    rf"|(?P<end>[{re.escape(_SENTENCE_END_CHARS)}]+)"
+    r"|(?P<other>[^\w\s])"
+)
+_HAS_LETTER = re.compile(r"[^\W\d_]")
+_FOLD_TABLE = str.maketrans({"’": "'", "‐": "-", "‑": "-"})
+
+#: suggest() looks at no more than this many characters before the cursor, so a call
+#: costs the same whether the document is one line or a whole book.
+MAX_CONTEXT_CHARS: Final = 256
+
+
+def normalize(text: str) -> str:
+    """Return ``text`` in Unicode NFC, the form every rule here assumes."""
+    return unicodedata.normalize("NFC", text)
+
+
+def fold(word: str) -> str:
+    """Return the counting key of a word: case-folded, NFC, apostrophes and hyphens unified.
+
+    >>> fold("Don’t")
+    "don't"
+    """
+    return unicodedata.normalize("NFC", word.casefold()).translate(_FOLD_TABLE)
+
+
+def _is_word(token: str) -> bool:
+    return token.isalpha() or _HAS_LETTER.search(token) is not None
+
+
+def tokens(text: str) -> Iterator[tuple[int, str]]:
+    """Yield ``(kind, surface)`` for each token of already-normalised ``text``.
+
+    Kinds are :data:`WORD`, :data:`BREAK` (a number or symbol) and :data:`END` (a
+    sentence boundary). Soft punctuation yields nothing.
+    """
+    for m in _TOKEN_RE.finditer(text):
+        group = m.lastgroup
+        s = m.group()
+        if group == "word":
+            yield (WORD if _is_word(s) else BREAK), s
+        elif group == "end":
+            yield END, s
+        elif group == "num":
+            yield BREAK, s
+        elif not unicodedata.category(s).startswith("P"):
+            yield BREAK, s
+
+
+def sentences(text: str) -> list[list[str | None]]:
+    """Split one message into sentences of word surfaces, ``None`` marking a context break.
+
+    Consecutive breaks collapse to one ``None``. Empty sentences are dropped.
+
+    >>> sentences("Meet at 7:30 by the Mill. Thanks!")
+    [['Meet', 'at', None, 'by', 'the', 'Mill'], ['Thanks']]
+    """
+    out: list[list[str | None]] = []
+    cur: list[str | None] = []
+    for kind, s in tokens(normalize(text)):
+        if kind == WORD:
+            cur.append(s)
+        elif kind == BREAK:
+            if not cur or cur[-1] is not None:
+                cur.append(None)
+        elif cur:
+            out.append(cur)
+            cur = []
+    if cur:
+        out.append(cur)
+    return out
+
+
+@dataclass(frozen=True, slots=True)
+class Context:
+    """What :func:`parse_before_cursor` found at the end of the typed text.
+
+    ``previous`` is the surface of the last complete word in the same sentence, or
+    :data:`BOS` at a sentence start, or :data:`UNK` right after a number or symbol.
+    ``prefix`` is the partial word being typed (empty when the cursor follows a
+    separator), as typed, NFC-normalised.
+    """
+
+    previous: str
+    prefix: str
+
+
+def parse_before_cursor(text: str) -> Context:
+    """Find the context word and the partial word at the end of ``text``.
+
+    Only the last :data:`MAX_CONTEXT_CHARS` characters are examined, so the cost does
+    not grow with the document. If the cut lands inside a word, that fragment is
+    discarded; if the examined tail holds no word and no boundary, the context is the
+    sentence start.
+    """
+    truncated = len(text) > MAX_CONTEXT_CHARS
+    tail = normalize(text[-MAX_CONTEXT_CHARS:] if truncated else text)
+    toks = list(_TOKEN_RE.finditer(tail))
+    if truncated and toks and toks[0].start() == 0 and toks[0].lastgroup in ("word", "num"):
+        toks = toks[1:]
+    prefix = ""
+    if toks:
+        last = toks[-1]
+        if last.lastgroup in ("word", "num") and last.end() == len(tail):
+            prefix = last.group()
+            toks.pop()
+        elif (
+            last.lastgroup == "other"
+            and last.group() in _JOINERS
+            and last.end() == len(tail)
+            and len(toks) >= 2
+            and toks[-2].lastgroup == "word"
+            and toks[-2].end() == last.start()
+        ):
+            prefix = toks[-2].group() + last.group()
+            toks.pop()
+            toks.pop()
+    previous = BOS
+    for m in reversed(toks):
+        group = m.lastgroup
+        s = m.group()
+        if group == "word":
+            previous = s if _is_word(s) else UNK
+            break
+        if group == "end":
+            break
+        if group == "num" or not unicodedata.category(s).startswith("P"):
+            previous = UNK
+            break
+    return Context(previous, prefix)
