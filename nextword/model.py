@@ -311,7 +311,7 @@ class Model:
         hit = self._range_cache.get(key)
         if hit is not None:
             return hit
-        if len(key) > self._max_key or not self._trie.has_keys_with_prefix(key):
+        if len(key) > self._max_key or next(self._trie.iterkeys(key), None) is None:
             result = (0, 0)
         else:
             lo, hi = self._range_cache.get(key[:-1], (0, n))

@@ -79,8 +79,10 @@ _SECTIONS: Final = {
     b"DISO": "u4",
     b"DISB": "raw",
 }
-# sections small enough (vocabulary-sized) to checksum on every load
-_CHECKED_ON_LOAD: Final = (b"META", b"TRIE")
+# vocabulary-sized sections, checksummed on every load; the bigram-sized ones
+# (SUCC, CNTS, BIGI, BIGC, SKYI) only with verify=True, so opening stays fast
+_BIGRAM_SIZED: Final = (b"SUCC", b"CNTS", b"BIGI", b"BIGC", b"SKYI")
+_CHECKED_ON_LOAD: Final = tuple(t for t in _SECTIONS if t not in _BIGRAM_SIZED)
 _U32_MAX: Final = 0xFFFFFFFF
 
 
@@ -408,12 +410,16 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
         item = 1 if _DTYPES[code] is None else _DTYPES[code].itemsize  # type: ignore[union-attr]
         if length % item:
             raise _fail(name, f"section {label} length {length} is not a multiple of {item}")
+        if any(buf[prev_end:off]):
+            raise _fail(name, f"non-zero padding before section {label}")
         prev_end = off + length
         sections[tag] = (code, off, length, crc)
+    if -prev_end % ALIGN != size - prev_end or any(buf[prev_end:size]):
+        raise _fail(name, "unexpected bytes after the last section")
     missing = [t.decode() for t in _SECTIONS if t not in sections]
     if missing:
         raise _fail(name, f"missing sections {', '.join(missing)}")
-    for tag in (*_CHECKED_ON_LOAD, *(_SECTIONS if verify else ())):
+    for tag in _SECTIONS if verify else _CHECKED_ON_LOAD:
         code, off, length, crc = sections[tag]
         if zlib.crc32(buf[off : off + length]) != crc:
             raise _fail(name, f"section {tag.decode()} checksum mismatch (damaged file)")
