@@ -13,12 +13,13 @@ tests compare it with scoring every word.
 from __future__ import annotations
 
 import bisect
+import heapq
 import math
 import os
 import sys
 import time
 from dataclasses import dataclass
-from typing import Any, Iterable, Iterator
+from typing import Any, Iterable, Iterator, Sequence
 
 import numpy as np
 
@@ -33,6 +34,8 @@ __all__ = ["Model", "Suggestion", "TrainReport", "train", "train_texts", "load",
 
 #: Weight of the bigram estimate; a value near 0.9 is the usual starting point (common practice).
 DEFAULT_LAMBDA = 0.9
+# below this many successor candidates, plain Python beats numpy's per-call overhead
+_SMALL = 48
 
 
 @dataclass(frozen=True, slots=True)
@@ -138,7 +141,7 @@ class Model:
         self._mv_hist, self._mv_rows, self._mv_succ = mv["HIST"], mv["ROWS"], mv["SUCC"]
         self._mv_skyp, self._mv_disi, self._mv_diso = mv["SKYP"], mv["DISI"], mv["DISO"]
         self._mv_cnts = memoryview(np.ascontiguousarray(a["CNTS"])).cast("B")
-        self._mv_bigi, self._mv_bigc = mv["BIGI"], mv["BIGC"]
+        self._mv_bigi, self._mv_bigc, self._mv_skyi = mv["BIGI"], mv["BIGC"], mv["SKYI"]
         # multi-level prefix top lists as 2-D views (blocks x FANOUT)
         self._levels: list[np.ndarray] = []
         start = 0
@@ -223,6 +226,8 @@ class Model:
 
     def _counts(self, idx: np.ndarray) -> np.ndarray:
         c = self._cnts[idx].astype(np.int64)
+        if len(self._bigi) == 0:
+            return c
         esc = np.flatnonzero(c == COUNT_ESCAPE)
         if len(esc):
             j = np.searchsorted(self._bigi, idx[esc])
@@ -324,7 +329,7 @@ class Model:
         self._range_cache[key] = result
         return result
 
-    def _range_top_ids(self, lo: int, hi: int, k: int) -> np.ndarray:
+    def _range_top_ids(self, lo: int, hi: int, k: int) -> list[int]:
         """The k smallest word ids (= most frequent) among alphabetical positions [lo, hi).
 
         Uses the stored top lists: the range splits into at most 2·(FANOUT−1) pieces per
@@ -332,7 +337,11 @@ class Model:
         is bounded whatever the number of matching words (for k ≤ FANOUT).
         """
         F = TOPK_FANOUT
-        if hi - lo <= 2 * F or k > F:
+        if lo == 0 and hi == self.n_words:
+            return list(range(min(k, hi)))
+        if hi - lo <= 2 * F:
+            return heapq.nsmallest(k, self._mv_alph[lo:hi].tolist())
+        if k > F:
             vals = self._alph[lo:hi]
         else:
             pieces = []
@@ -341,8 +350,7 @@ class Model:
                 nxt = unit * F
                 A = -(-a // nxt) * nxt
                 B = (b // nxt) * nxt
-                top = level == len(self._levels)
-                if top or A >= B:
+                if level == len(self._levels) or A >= B:
                     pieces.append(self._units(level, a // unit, b // unit, k))
                     break
                 pieces.append(self._units(level, a // unit, A // unit, k))
@@ -352,87 +360,103 @@ class Model:
         if len(vals) > k:
             vals = np.partition(vals, k - 1)[:k]
         vals = np.sort(vals)
-        return vals[vals < self.n_words]
+        return vals[vals < self.n_words].tolist()  # type: ignore[no-any-return]
 
     def _units(self, level: int, i: int, j: int, k: int) -> np.ndarray:
         if level == 0:
             return self._alph[i:j]
         return self._levels[level - 1][i:j, :k].ravel()
 
-    def _rank(self, v: int, lo: int, hi: int, k: int, lam: float) -> tuple[np.ndarray, np.ndarray]:
-        """Top-k word ids in alphabetical positions [lo, hi) after history v, with probabilities.
+    def _rank(self, v: int, lo: int, hi: int, k: int, lam: float) -> list[tuple[int, float]]:
+        """Top-k (word id, probability) in alphabetical positions [lo, hi) after history v.
 
         Candidates are (a) the k most frequent words of the range — every word that is
         not a successor of v scores (1−λ)·c(w)/N, so no other non-successor can beat them
         — and (b) the successors of v inside the range: found by binary search in the
         row (sorted by alphabetical position) or, for long rows and no prefix, the row's
         stored k-skyband, which holds every successor that can reach the top k for any
-        λ < 1 (see store._skyband).
+        λ < 1 (see store._skyband). Ties go to the alphabetically first key.
         """
         cv = self._mv_hist[v]
-        total = self.total
         if cv == 0:
             lam = 0.0
-        n = self.n_words
-        alph, unig = self._alph, self._unig
         if lam == 1.0:
             return self._rank_bigram_only(v, lo, hi, k, cv)
-        top = self._range_top_ids(lo, hi, k).astype(np.int64)
-        top_pos = self._apos[top].astype(np.int64)
-        top_score = (1.0 - lam) * (unig[top] / total)
+        total = self.total
+        oml = 1.0 - lam
+        unig = self._mv_unig
+        top = self._range_top_ids(lo, hi, k)
         if lam == 0.0:
-            return top, top_score
+            return [(w, oml * (unig[w] / total)) for w in top]
         rs, re_ = self._mv_rows[v], self._mv_rows[v + 1]
-        if lo == 0 and hi == n and re_ - rs > self._long_row and k <= self._sky_k:
+        if lo == 0 and hi == self.n_words and re_ - rs > self._long_row and k <= self._sky_k:
             skp = self._mv_skyp
-            entries = self._skyi[skp[v] : skp[v + 1]].astype(np.int64)
+            entries: Sequence[int] = self._mv_skyi[skp[v] : skp[v + 1]].tolist()
         else:
             s = bisect.bisect_left(self._mv_succ, lo, rs, re_)
-            e = bisect.bisect_left(self._mv_succ, hi, s, re_)
-            entries = np.arange(s, e)
-        if len(entries) == 0:
-            return top, top_score
-        pos = self._succ[entries].astype(np.int64)
-        ids = alph[pos].astype(np.int64)
-        score = lam * (self._counts(entries) / cv) + (1.0 - lam) * (unig[ids] / total)
-        # frequent words that are also successors are scored from the row already
+            entries = range(s, bisect.bisect_left(self._mv_succ, hi, s, re_))
+        if len(entries) > _SMALL:
+            return self._rank_many(entries, top, cv, lam, k)
+        succ, alph, apos, cnts = self._mv_succ, self._mv_alph, self._mv_apos, self._mv_cnts
+        scored: dict[int, tuple[float, int]] = {}
+        for i in entries:
+            pos = succ[i]
+            wid = alph[pos]
+            c = cnts[i]
+            if c == COUNT_ESCAPE:
+                c = self._count_at(i)
+            scored[pos] = (lam * (c / cv) + oml * (unig[wid] / total), wid)
+        for wid in top:
+            pos = apos[wid]
+            if pos not in scored:
+                scored[pos] = (oml * (unig[wid] / total), wid)
+        best = heapq.nsmallest(k, [(-sc, pos, wid) for pos, (sc, wid) in scored.items()])
+        return [(wid, -neg) for neg, _, wid in best]
+
+    def _rank_many(self, entries: Sequence[int], top: list[int], cv: int, lam: float, k: int) -> list[tuple[int, float]]:
+        """The vectorised version of the candidate scoring in :meth:`_rank`, for many successors."""
+        if isinstance(entries, range):
+            idx = np.arange(entries.start, entries.stop)
+            pos = self._succ[entries.start : entries.stop].astype(np.int64)
+        else:
+            idx = np.asarray(entries, dtype=np.int64)
+            pos = self._succ[idx].astype(np.int64)
+        ids = self._alph[pos].astype(np.int64)
+        total = self.total
+        score = lam * (self._counts(idx) / cv) + (1.0 - lam) * (self._unig[ids] / total)
+        top_a = np.asarray(top, dtype=np.int64)
+        top_pos = self._apos[top_a].astype(np.int64)
         at = np.minimum(np.searchsorted(pos, top_pos), len(pos) - 1)
-        fresh = pos[at] != top_pos
+        fresh = pos[at] != top_pos  # frequent words that are also successors are scored already
+        all_ids = np.concatenate([ids, top_a[fresh]])
         all_pos = np.concatenate([pos, top_pos[fresh]])
-        all_ids = np.concatenate([ids, top[fresh]])
-        all_score = np.concatenate([score, top_score[fresh]])
+        all_score = np.concatenate([score, (1.0 - lam) * (self._unig[top_a[fresh]] / total)])
         return self._select(all_ids, all_pos, all_score, k)
 
     @staticmethod
-    def _select(ids: np.ndarray, pos: np.ndarray, score: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
+    def _select(ids: np.ndarray, pos: np.ndarray, score: np.ndarray, k: int) -> list[tuple[int, float]]:
         if len(score) > k:
             thr = np.partition(score, len(score) - k)[len(score) - k]
             keep = np.flatnonzero(score >= thr)
             ids, pos, score = ids[keep], pos[keep], score[keep]
         order = np.lexsort((pos, -score))[:k]
-        return ids[order], score[order]
+        return list(zip(ids[order].tolist(), score[order].tolist()))
 
-    def _rank_bigram_only(self, v: int, lo: int, hi: int, k: int, cv: int) -> tuple[np.ndarray, np.ndarray]:
+    def _rank_bigram_only(self, v: int, lo: int, hi: int, k: int, cv: int) -> list[tuple[int, float]]:
         """λ = 1: successors by count, then zero-probability words alphabetically."""
         rs, re_ = self._mv_rows[v], self._mv_rows[v + 1]
         s = bisect.bisect_left(self._mv_succ, lo, rs, re_)
         e = bisect.bisect_left(self._mv_succ, hi, s, re_)
-        entries = np.arange(s, e)
-        pos = self._succ[entries].astype(np.int64)
-        ids = self._alph[pos].astype(np.int64)
-        score = self._counts(entries) / cv
-        ids, score = self._select(ids, pos, score, k)
-        if len(ids) < k:
+        pos = self._succ[s:e].astype(np.int64)
+        ranked = self._select(self._alph[pos].astype(np.int64), pos, self._counts(np.arange(s, e)) / cv, k)
+        if len(ranked) < k:
             taken = set(pos.tolist())
-            extra = []
             p = lo
-            while p < hi and len(ids) + len(extra) < k:
+            while p < hi and len(ranked) < k:
                 if p not in taken:
-                    extra.append(self._mv_alph[p])
+                    ranked.append((self._mv_alph[p], 0.0))
                 p += 1
-            ids = np.concatenate([ids, np.asarray(extra, dtype=np.int64)])
-            score = np.concatenate([score, np.zeros(len(extra))])
-        return ids, score
+        return ranked
 
     def suggest(self, text_before_cursor: str, k: int = 3, *, lam: float | None = None) -> list[Suggestion]:
         """The k words the user most likely wants at the cursor, best first.
@@ -459,14 +483,11 @@ class Model:
         if lo >= hi:
             return []
         try:
-            ids, probs = self._rank(v, lo, hi, k, lam)
-        except (IndexError, ValueError) as e:
+            ranked = self._rank(v, lo, hi, k, lam)
+            at_start = v == self._bos
+            return [Suggestion(_recase(self.display(i), ctx.prefix, at_start), p) for i, p in ranked]
+        except (IndexError, ValueError, UnicodeDecodeError) as e:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
-        at_start = v == self._bos
-        return [
-            Suggestion(_recase(self.display(i), ctx.prefix, at_start), p)
-            for i, p in zip(ids.tolist(), probs.tolist())
-        ]
 
     def rank_ids(self, previous_word: str | None, prefix: str = "", k: int = 3, *, lam: float | None = None) -> list[tuple[str, float]]:
         """(key, probability) of the top k after ``previous_word`` among words starting with ``prefix``.
@@ -480,8 +501,10 @@ class Model:
         lo, hi = self._prefix_range(fold(prefix))
         if lo >= hi:
             return []
-        ids, probs = self._rank(v, lo, hi, k, lam)
-        return [(self._key(i), p) for i, p in zip(ids.tolist(), probs.tolist())]
+        try:
+            return [(self._key(i), p) for i, p in self._rank(v, lo, hi, k, lam)]
+        except (IndexError, ValueError) as e:
+            raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
 
     def info(self) -> dict[str, Any]:
         """Sizes, settings and corpus statistics, as plain data (for ``nextword info``)."""

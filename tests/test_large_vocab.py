@@ -67,4 +67,4 @@ def test_range_top_ids_equals_sorting_the_range(pair: tuple[nextword.Model, Dict
     hi = data.draw(st.integers(lo + 1, n))
     k = data.draw(st.integers(1, 70))
     want = np.sort(np.asarray(model._alph[lo:hi], dtype=np.int64))[:k]
-    assert model._range_top_ids(lo, hi, k).tolist() == want.tolist()
+    assert model._range_top_ids(lo, hi, k) == want.tolist()
