@@ -27,7 +27,17 @@ from ._progress import Progress
 from .corpus import Format, iter_messages, open_sources
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables
 from .errors import InputDataError, InvalidArgumentError, ModelFormatError
-from .store import COUNT_ESCAPE, DEFAULT_LONG_ROW, DEFAULT_SKYBAND_K, TOPK_FANOUT, ModelArrays, read_model, write_model
+from .store import (
+    COUNT_ESCAPE,
+    DEFAULT_SKYBAND_K,
+    DEFAULT_SKYBAND_MIN,
+    TOPK_FANOUT,
+    ModelArrays,
+    read_model,
+    key_head,
+    topk_levels,
+    write_model,
+)
 from .text import BOS, EOS, UNK, fold, parse_before_cursor, sentences
 
 __all__ = ["Model", "Suggestion", "TrainReport", "train", "train_texts", "load", "DEFAULT_LAMBDA"]
@@ -88,18 +98,19 @@ def _native_view(arr: np.ndarray) -> memoryview:
 class _AlphaKeys:
     """Sequence view of the vocabulary keys in alphabetical order, truncated to a length."""
 
-    __slots__ = ("restore", "amid", "length")
+    __slots__ = ("restore", "idtk", "alph", "length")
 
-    def __init__(self, restore: Any, amid: memoryview, length: int) -> None:
+    def __init__(self, restore: Any, idtk: memoryview, alph: memoryview, length: int) -> None:
         self.restore = restore
-        self.amid = amid
+        self.idtk = idtk
+        self.alph = alph
         self.length = length
 
     def __len__(self) -> int:
-        return len(self.amid)
+        return len(self.alph) - 2
 
     def __getitem__(self, i: int) -> str:
-        return self.restore(self.amid[i])[: self.length]  # type: ignore[no-any-return]
+        return self.restore(self.idtk[self.alph[i]])[: self.length]  # type: ignore[no-any-return]
 
 
 class Model:
@@ -123,7 +134,7 @@ class Model:
         self.format_version = arrays.version
         n = self.n_words
         self._eos, self._unk, self._bos = n, n + 1, n + 2
-        self._long_row: int = meta["long_row"]
+        self._sky_min: int = meta["skyband_min"]
         self._sky_k: int = meta["skyband_k"]
         self._max_key: int = meta["max_key_chars"]
         self._trie = arrays.trie
@@ -133,20 +144,18 @@ class Model:
         self._cnts = a["CNTS"]
         self._bigi = a["BIGI"]
         self._bigc = a["BIGC"]
-        self._skyi = a["SKYI"]
         self._disb = arrays.raw["DISB"]
         mv = {k: _native_view(v) for k, v in a.items() if k not in ("CNTS",)}
-        self._mv_tkid, self._mv_idtk, self._mv_amid = mv["TKID"], mv["IDTK"], mv["AMID"]
+        self._mv_tkid, self._mv_idtk = mv["TKID"], mv["IDTK"]
         self._mv_alph, self._mv_apos, self._mv_unig = mv["ALPH"], mv["APOS"], mv["UNIG"]
         self._mv_hist, self._mv_rows, self._mv_succ = mv["HIST"], mv["ROWS"], mv["SUCC"]
-        self._mv_skyp, self._mv_disi, self._mv_diso = mv["SKYP"], mv["DISI"], mv["DISO"]
+        self._mv_disi, self._mv_diso, self._mv_key4 = mv["DISI"], mv["DISO"], mv["KEY4"]
+        self._mv_segs, self._mv_sege, self._mv_skyp = mv["SEGS"], mv["SEGE"], mv["SKYP"]
         self._mv_cnts = memoryview(np.ascontiguousarray(a["CNTS"])).cast("B")
         self._mv_bigi, self._mv_bigc, self._mv_skyi = mv["BIGI"], mv["BIGC"], mv["SKYI"]
         # multi-level prefix top lists as 2-D views (blocks x FANOUT)
         self._levels: list[np.ndarray] = []
         start = 0
-        from .store import topk_levels
-
         for nb in topk_levels(n):
             self._levels.append(a["TOPK"][start : start + nb * TOPK_FANOUT].reshape(nb, TOPK_FANOUT))
             start += nb * TOPK_FANOUT
@@ -228,12 +237,8 @@ class Model:
         c = self._cnts[idx].astype(np.int64)
         if len(self._bigi) == 0:
             return c
-        esc = np.flatnonzero(c == COUNT_ESCAPE)
-        if len(esc):
-            j = np.searchsorted(self._bigi, idx[esc])
-            if np.any(j >= len(self._bigi)) or np.any(self._bigi[np.minimum(j, len(self._bigi) - 1)] != idx[esc]):
-                raise ModelFormatError(f"{self.path}: escaped count without a value")
-            c[esc] = self._bigc[j]
+        for j in np.flatnonzero(c == COUNT_ESCAPE).tolist():
+            c[j] = self._count_at(int(idx[j]))
         return c
 
     def bigram_count(self, previous_word: str | None, word: str) -> int:
@@ -309,20 +314,27 @@ class Model:
     # -- ranking ------------------------------------------------------------------------------
 
     def _prefix_range(self, key: str) -> tuple[int, int]:
-        """Alphabetical positions [lo, hi) of the words whose key starts with ``key``."""
+        """Alphabetical positions [lo, hi) of the words whose key starts with ``key``.
+
+        The 4-byte key heads (KEY4) give the range of prefixes up to 4 UTF-8 bytes with
+        two binary searches over integers; longer prefixes refine it over the keys.
+        """
         n = self.n_words
         if not key:
             return 0, n
         hit = self._range_cache.get(key)
         if hit is not None:
             return hit
-        if len(key) > self._max_key or next(self._trie.iterkeys(key), None) is None:
+        if len(key) > self._max_key:
             result = (0, 0)
         else:
-            lo, hi = self._range_cache.get(key[:-1], (0, n))
-            seq = _AlphaKeys(self._trie.restore_key, self._mv_amid, len(key))
-            lo = bisect.bisect_left(seq, key, lo, hi)
-            hi = bisect.bisect_right(seq, key, lo, hi)
+            head = self._mv_key4
+            lo = bisect.bisect_left(head, key_head(key, 0x00), 0, n)
+            hi = bisect.bisect_right(head, key_head(key, 0xFF), lo, n)
+            if len(key.encode("utf-8")) > 4 and lo < hi:
+                seq = _AlphaKeys(self._trie.restore_key, self._mv_idtk, self._mv_alph, len(key))
+                lo = bisect.bisect_left(seq, key, lo, hi)
+                hi = bisect.bisect_right(seq, key, lo, hi)
             result = (lo, hi)
         if len(self._range_cache) > 65536:
             self._range_cache.clear()
@@ -340,7 +352,7 @@ class Model:
         if lo == 0 and hi == self.n_words:
             return list(range(min(k, hi)))
         if hi - lo <= 2 * F:
-            return heapq.nsmallest(k, self._mv_alph[lo:hi].tolist())
+            return sorted(self._mv_alph[lo:hi].tolist())[:k]
         if k > F:
             vals = self._alph[lo:hi]
         else:
@@ -389,29 +401,42 @@ class Model:
         if lam == 0.0:
             return [(w, oml * (unig[w] / total)) for w in top]
         rs, re_ = self._mv_rows[v], self._mv_rows[v + 1]
-        if lo == 0 and hi == self.n_words and re_ - rs > self._long_row and k <= self._sky_k:
-            skp = self._mv_skyp
-            entries: Sequence[int] = self._mv_skyi[skp[v] : skp[v + 1]].tolist()
-        else:
-            s = bisect.bisect_left(self._mv_succ, lo, rs, re_)
-            entries = range(s, bisect.bisect_left(self._mv_succ, hi, s, re_))
+        s = bisect.bisect_left(self._mv_succ, lo, rs, re_)
+        e = bisect.bisect_left(self._mv_succ, hi, s, re_)
+        entries: Sequence[int] = range(s, e)
+        if e - s > self._sky_min and k <= self._sky_k:
+            entries = self._segment_band(s, e) or entries
         if len(entries) > _SMALL:
             return self._rank_many(entries, top, cv, lam, k)
-        succ, alph, apos, cnts = self._mv_succ, self._mv_alph, self._mv_apos, self._mv_cnts
-        scored: dict[int, tuple[float, int]] = {}
-        for i in entries:
-            pos = succ[i]
-            wid = alph[pos]
-            c = cnts[i]
-            if c == COUNT_ESCAPE:
-                c = self._count_at(i)
-            scored[pos] = (lam * (c / cv) + oml * (unig[wid] / total), wid)
+        succ, alph, apos = self._mv_succ, self._mv_alph, self._mv_apos
+        if isinstance(entries, range):
+            ps = succ[s:e].tolist()
+            cs = self._mv_cnts[s:e].tolist()
+        else:
+            ps = [succ[i] for i in entries]
+            cs = [self._mv_cnts[i] for i in entries]
+        if COUNT_ESCAPE in cs:
+            cs = [self._count_at(i) if c == COUNT_ESCAPE else c for i, c in zip(entries, cs)]
+        # same float operations, in the same order, as the brute-force formula
+        cands = [(-(lam * (c / cv) + oml * (unig[alph[p]] / total)), p) for p, c in zip(ps, cs)]
+        seen = set(ps)
         for wid in top:
-            pos = apos[wid]
-            if pos not in scored:
-                scored[pos] = (oml * (unig[wid] / total), wid)
-        best = heapq.nsmallest(k, [(-sc, pos, wid) for pos, (sc, wid) in scored.items()])
-        return [(wid, -neg) for neg, _, wid in best]
+            p = apos[wid]
+            if p not in seen:
+                cands.append((-(oml * (unig[wid] / total)), p))
+        cands.sort()
+        return [(alph[p], -neg) for neg, p in cands[:k]]
+
+    def _segment_band(self, s: int, e: int) -> list[int] | None:
+        """Row entries of the stored skyband of segment [s, e), if one was stored."""
+        segs, sege = self._mv_segs, self._mv_sege
+        i = bisect.bisect_left(segs, s)
+        while i < len(segs) and segs[i] == s:
+            if sege[i] == e:
+                skp = self._mv_skyp
+                return [s + o for o in self._mv_skyi[skp[i] : skp[i + 1]].tolist()]
+            i += 1
+        return None
 
     def _rank_many(self, entries: Sequence[int], top: list[int], cv: int, lam: float, k: int) -> list[tuple[int, float]]:
         """The vectorised version of the candidate scoring in :meth:`_rank`, for many successors."""
@@ -509,7 +534,9 @@ class Model:
     def info(self) -> dict[str, Any]:
         """Sizes, settings and corpus statistics, as plain data (for ``nextword info``)."""
         a = self._src.arrays
-        bigram_bytes = sum(a[s].nbytes for s in ("SUCC", "CNTS", "BIGI", "BIGC", "ROWS", "HIST", "SKYP", "SKYI"))
+        bigram_bytes = sum(
+            a[s].nbytes for s in ("SUCC", "CNTS", "BIGI", "BIGC", "ROWS", "HIST", "SEGS", "SEGE", "SKYP", "SKYI")
+        )
         return {
             "path": self.path,
             "format_version": "%d.%d" % self.format_version,
@@ -560,14 +587,14 @@ def _finish(
     min_count: int,
     max_vocab: int,
     skyband_k: int,
-    long_row: int,
+    skyband_min: int,
     t0: float,
 ) -> TrainReport:
     t1 = time.perf_counter()
     tables: CountTables = builder.tables(min_count=min_count, max_vocab=max_vocab)
     if tables.stats["word_tokens"] == 0:
         raise InputDataError("the input holds no words")
-    write_model(tables, output_path, lam=lam, skyband_k=skyband_k, long_row=long_row)
+    write_model(tables, output_path, lam=lam, skyband_k=skyband_k, skyband_min=skyband_min)
     t2 = time.perf_counter()
     return TrainReport(
         path=os.fspath(output_path),
@@ -581,12 +608,12 @@ def _finish(
     )
 
 
-def _check_build_args(lam: float, skyband_k: int, long_row: int) -> float:
+def _check_build_args(lam: float, skyband_k: int, skyband_min: int) -> float:
     lam = _check_lam(lam)
     if isinstance(skyband_k, bool) or not isinstance(skyband_k, int) or not 1 <= skyband_k <= 4096:
         raise InvalidArgumentError(f"skyband_k must be an integer in [1, 4096], got {skyband_k!r}")
-    if isinstance(long_row, bool) or not isinstance(long_row, int) or long_row < 0:
-        raise InvalidArgumentError(f"long_row must be an integer >= 0, got {long_row!r}")
+    if isinstance(skyband_min, bool) or not isinstance(skyband_min, int) or skyband_min < 0:
+        raise InvalidArgumentError(f"skyband_min must be an integer >= 0, got {skyband_min!r}")
     return lam
 
 
@@ -600,7 +627,7 @@ def train(
     fmt: Format = "auto",
     field: str = "text",
     skyband_k: int = DEFAULT_SKYBAND_K,
-    long_row: int = DEFAULT_LONG_ROW,
+    skyband_min: int = DEFAULT_SKYBAND_MIN,
     progress: bool | None = None,
 ) -> TrainReport:
     """Count the messages in ``inputs`` and write a model file to ``output_path``.
@@ -608,10 +635,10 @@ def train(
     ``inputs`` is a path or a list of paths (``"-"`` = standard input): plain text with
     one message per line, or JSON Lines with a ``field`` holding the message, optionally
     gzip-compressed. Each input is read exactly once. The file is written atomically.
-    ``skyband_k`` and ``long_row`` trade file size for next-word query speed (see
+    ``skyband_k`` and ``skyband_min`` trade file size for query speed (see
     docs/FORMAT.md); the defaults suit keyboards.
     """
-    lam = _check_build_args(lam, skyband_k, long_row)
+    lam = _check_build_args(lam, skyband_k, skyband_min)
     sources = open_sources(inputs, fmt=fmt, field=field)
     t0 = time.perf_counter()
     builder = CountBuilder()
@@ -620,7 +647,7 @@ def train(
     bar.done()
     return _finish(
         builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
-        skyband_k=skyband_k, long_row=long_row, t0=t0,
+        skyband_k=skyband_k, skyband_min=skyband_min, t0=t0,
     )
 
 
@@ -632,10 +659,10 @@ def train_texts(
     min_count: int = DEFAULT_MIN_COUNT,
     max_vocab: int = DEFAULT_MAX_VOCAB,
     skyband_k: int = DEFAULT_SKYBAND_K,
-    long_row: int = DEFAULT_LONG_ROW,
+    skyband_min: int = DEFAULT_SKYBAND_MIN,
 ) -> TrainReport:
     """Like :func:`train`, but from messages already in memory (consumed once)."""
-    lam = _check_build_args(lam, skyband_k, long_row)
+    lam = _check_build_args(lam, skyband_k, skyband_min)
     if isinstance(texts, str):
         raise InvalidArgumentError("train_texts() takes an iterable of messages, not one string")
     t0 = time.perf_counter()
@@ -643,5 +670,5 @@ def train_texts(
     builder.add_texts(texts)
     return _finish(
         builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
-        skyband_k=skyband_k, long_row=long_row, t0=t0,
+        skyband_k=skyband_k, skyband_min=skyband_min, t0=t0,
     )

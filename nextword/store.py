@@ -33,7 +33,7 @@ __all__ = [
     "ModelArrays",
     "atomic_write",
     "DEFAULT_SKYBAND_K",
-    "DEFAULT_LONG_ROW",
+    "DEFAULT_SKYBAND_MIN",
     "TOPK_FANOUT",
 ]
 
@@ -45,10 +45,11 @@ MAX_SECTIONS: Final = 64
 MAX_META_BYTES: Final = 1 << 20
 ALIGN: Final = 8
 
-#: Rows with more successors than this get a precomputed skyband for next-word queries.
-DEFAULT_LONG_ROW: Final = 256
-#: Next-word queries with k up to this use the skyband of a long row.
-DEFAULT_SKYBAND_K: Final = 16
+#: A row segment (the successors sharing a prefix) with more entries than this gets a
+#: stored skyband, so a query never scores more candidates than about this many.
+DEFAULT_SKYBAND_MIN: Final = 64
+#: Queries with k up to this use the stored skybands (larger k scan the segment).
+DEFAULT_SKYBAND_K: Final = 8
 #: Branching of the multi-level top lists used for prefix queries (see docs/FORMAT.md).
 TOPK_FANOUT: Final = 64
 COUNT_ESCAPE: Final = 255
@@ -62,9 +63,9 @@ _SECTIONS: Final = {
     b"TRIE": "raw",
     b"TKID": "id",
     b"IDTK": "id",
-    b"AMID": "u4",
     b"ALPH": "id",
     b"APOS": "id",
+    b"KEY4": "u4",
     b"TOPK": "id",
     b"UNIG": "u4",
     b"HIST": "u4",
@@ -73,15 +74,17 @@ _SECTIONS: Final = {
     b"CNTS": "u1",
     b"BIGI": "u4",
     b"BIGC": "u4",
+    b"SEGS": "u4",
+    b"SEGE": "u4",
     b"SKYP": "u4",
-    b"SKYI": "u4",
+    b"SKYI": "u2|u4",
     b"DISI": "id",
     b"DISO": "u4",
     b"DISB": "raw",
 }
 # vocabulary-sized sections, checksummed on every load; the bigram-sized ones
 # (SUCC, CNTS, BIGI, BIGC, SKYI) only with verify=True, so opening stays fast
-_BIGRAM_SIZED: Final = (b"SUCC", b"CNTS", b"BIGI", b"BIGC", b"SKYI")
+_BIGRAM_SIZED: Final = (b"SUCC", b"CNTS", b"BIGI", b"BIGC", b"SEGS", b"SEGE", b"SKYP", b"SKYI")
 _CHECKED_ON_LOAD: Final = tuple(t for t in _SECTIONS if t not in _BIGRAM_SIZED)
 _U32_MAX: Final = 0xFFFFFFFF
 
@@ -89,6 +92,17 @@ _U32_MAX: Final = 0xFFFFFFFF
 def _id_dtype(n_words: int) -> np.dtype:
     # positions/ids go up to n+2 (<s>), TOPK pads with the dtype maximum
     return np.dtype("<u2") if n_words + 3 < 0xFFFF else np.dtype("<u4")
+
+
+def key_head(key: str, pad: int = 0) -> int:
+    """First 4 UTF-8 bytes of a key as a big-endian number, padded with ``pad`` bytes.
+
+    UTF-8 byte order is code-point order, so these numbers sort like the keys and the
+    keys starting with a prefix of at most 4 bytes are exactly those whose head lies in
+    [key_head(prefix, 0x00), key_head(prefix, 0xFF)].
+    """
+    b = key.encode("utf-8")[:4]
+    return int.from_bytes(b + bytes([pad]) * (4 - len(b)), "big")
 
 
 def topk_levels(n_pos: int) -> list[int]:
@@ -173,12 +187,44 @@ def _skyband(ids: np.ndarray, counts: np.ndarray, k: int) -> np.ndarray:
     return np.sort(order[np.asarray(out, dtype=np.int64)])
 
 
+def _prefix_segments(keys: list[str], pos: np.ndarray, a: int, b: int, min_len: int) -> list[tuple[int, int]]:
+    """Row ranges [a, b) of successors sharing a prefix, for every prefix with > min_len of them.
+
+    ``pos`` holds alphabetical positions (sorted within the row), so the successors whose
+    keys start with any given string form one contiguous range; the ranges nest like the
+    prefixes do. The whole row (empty prefix) comes first.
+    """
+    out: list[tuple[int, int]] = []
+    stack = [(a, b, 0)]
+    seen: set[tuple[int, int]] = set()
+    while stack:
+        a, b, depth = stack.pop()
+        if b - a <= min_len:
+            continue
+        if (a, b) not in seen:
+            seen.add((a, b))
+            out.append((a, b))
+        ks = [keys[p] for p in pos[a:b].tolist()]
+        i = 0
+        while i < len(ks):
+            if len(ks[i]) <= depth:
+                i += 1
+                continue
+            c = ks[i][depth]
+            j = i + 1
+            while j < len(ks) and len(ks[j]) > depth and ks[j][depth] == c:
+                j += 1
+            stack.append((a + i, a + j, depth + 1))
+            i = j
+    return out
+
+
 def build_sections(
     tables: CountTables,
     *,
     lam: float,
     skyband_k: int = DEFAULT_SKYBAND_K,
-    long_row: int = DEFAULT_LONG_ROW,
+    skyband_min: int = DEFAULT_SKYBAND_MIN,
 ) -> list[tuple[bytes, np.dtype | None, bytes | np.ndarray]]:
     """Turn counts into the arrays of a model file (the explicit build step)."""
     n = tables.n_words
@@ -199,7 +245,7 @@ def build_sections(
     alph = np.concatenate([alpha_words, [eos, unk]])
     apos = np.empty(n_pos, dtype=np.int64)
     apos[alph] = np.arange(n_pos)
-    amid = idtk[alpha_words]
+    key4 = np.array([key_head(tables.keys[i]) for i in alpha_words.tolist()], dtype=np.int64)
 
     # multi-level top lists over alphabetical positions of words (ids are ranks)
     pad = int(np.iinfo(idt).max)
@@ -231,18 +277,25 @@ def build_sections(
     bigi = np.flatnonzero(counts >= COUNT_ESCAPE)
     bigc = counts[bigi]
 
-    sky_ptr = np.zeros(n_hist + 1, dtype=np.int64)
-    sky_parts = []
-    for v in np.flatnonzero(row_len > long_row).tolist():
-        s, e = int(rows[v]), int(rows[v + 1])
-        pos = right_pos[s:e]
-        words = pos < n
-        idx = np.flatnonzero(words)
-        band = _skyband(alph[pos[idx]], counts[s:e][idx], skyband_k)
-        sky_parts.append(s + idx[band])
-        sky_ptr[v + 1] = len(band)
-    sky_ptr = np.cumsum(sky_ptr)
-    skyi = np.concatenate(sky_parts) if sky_parts else np.zeros(0, np.int64)
+    alpha_keys = [tables.keys[i] for i in alpha_words.tolist()]
+    seg_s, seg_e, sky_ptr, sky_parts = [], [], [0], []
+    for v in np.flatnonzero(row_len > skyband_min).tolist():
+        rs = int(rows[v])
+        words_end = rs + int(np.searchsorted(right_pos[rs : int(rows[v + 1])], n))
+        for a, b in _prefix_segments(alpha_keys, right_pos, rs, words_end, skyband_min):
+            band = _skyband(alph[right_pos[a:b]], counts[a:b], skyband_k)
+            seg_s.append(a)
+            seg_e.append(b)
+            sky_parts.append(band)
+            sky_ptr.append(sky_ptr[-1] + len(band))
+    order = np.lexsort((seg_e, seg_s)) if seg_s else np.zeros(0, np.int64)
+    seg_s_a = np.asarray(seg_s, dtype=np.int64)[order]
+    seg_e_a = np.asarray(seg_e, dtype=np.int64)[order]
+    parts = [sky_parts[i] for i in order.tolist()]
+    sky_ptr_a = np.concatenate([[0], np.cumsum([len(p) for p in parts], dtype=np.int64)])
+    skyi = np.concatenate(parts) if parts else np.zeros(0, np.int64)
+    longest = int((seg_e_a - seg_s_a).max(initial=0))
+    sky_dtype = np.dtype("<u2") if longest <= 0xFFFF else np.dtype("<u4")
 
     dis_ids = [i for i, (k, d) in enumerate(zip(tables.keys, tables.displays)) if k != d]
     dis_bytes = [tables.displays[i].encode("utf-8") for i in dis_ids]
@@ -255,7 +308,7 @@ def build_sections(
         "total": int(unigram.sum()),
         "bigrams": int(rows[-1]),
         "skyband_k": int(skyband_k),
-        "long_row": int(long_row),
+        "skyband_min": int(skyband_min),
         "topk_fanout": TOPK_FANOUT,
         "max_key_chars": max(len(k) for k in tables.keys),
         "stats": {k: int(v) for k, v in tables.stats.items()},
@@ -266,9 +319,9 @@ def build_sections(
         (b"TRIE", None, trie.tobytes()),
         (b"TKID", idt, tkid),
         (b"IDTK", idt, idtk),
-        (b"AMID", u4, amid),
         (b"ALPH", idt, alph),
         (b"APOS", idt, apos),
+        (b"KEY4", u4, key4),
         (b"TOPK", idt, topk),
         (b"UNIG", u4, unigram),
         (b"HIST", u4, hist),
@@ -277,8 +330,10 @@ def build_sections(
         (b"CNTS", u1, cnts),
         (b"BIGI", u4, bigi),
         (b"BIGC", u4, bigc),
-        (b"SKYP", u4, sky_ptr),
-        (b"SKYI", u4, skyi),
+        (b"SEGS", u4, seg_s_a),
+        (b"SEGE", u4, seg_e_a),
+        (b"SKYP", u4, sky_ptr_a),
+        (b"SKYI", sky_dtype, skyi),
         (b"DISI", idt, np.asarray(dis_ids, dtype=np.int64)),
         (b"DISO", u4, diso),
         (b"DISB", None, b"".join(dis_bytes)),
@@ -317,10 +372,11 @@ def write_model(
     *,
     lam: float,
     skyband_k: int = DEFAULT_SKYBAND_K,
-    long_row: int = DEFAULT_LONG_ROW,
+    skyband_min: int = DEFAULT_SKYBAND_MIN,
 ) -> None:
     """Build the model arrays from ``tables`` and write them atomically to ``path``."""
-    atomic_write(path, encode_sections(build_sections(tables, lam=lam, skyband_k=skyband_k, long_row=long_row)))
+    sections = build_sections(tables, lam=lam, skyband_k=skyband_k, skyband_min=skyband_min)
+    atomic_write(path, encode_sections(sections))
 
 
 # ----------------------------------------------------------------------------- reading
@@ -442,7 +498,10 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
                 raise _fail(name, f"section {label} should hold raw bytes")
             raw[label] = buf[off : off + length]
             continue
-        want = idt if kind == "id" else np.dtype("<" + kind)
+        if kind == "u2|u4":
+            want = _DTYPES[code] if code in (2, 3) else np.dtype("<u4")
+        else:
+            want = idt if kind == "id" else np.dtype("<" + kind)
         if _DTYPES[code] != want:
             raise _fail(name, f"section {label} has element type {_DTYPES[code]}, expected {want}")
         arrays[label] = np.frombuffer(mm, dtype=want, count=length // want.itemsize, offset=off)
@@ -469,7 +528,7 @@ def _check_meta(name: str, meta: Any, size: int) -> dict[str, Any]:
     need("total", int, 1, 1 << 53)
     need("bigrams", int, 0, size)
     need("skyband_k", int, 1, 4096)
-    need("long_row", int, 0, 1 << 32)
+    need("skyband_min", int, 0, 1 << 32)
     need("max_key_chars", int, 1, 1 << 20)
     if meta.get("topk_fanout") != TOPK_FANOUT:
         raise _fail(name, f"metadata field 'topk_fanout' is invalid: {meta.get('topk_fanout')!r}")
@@ -493,16 +552,17 @@ def _check_arrays(
     expected = {
         "TKID": n,
         "IDTK": n,
-        "AMID": n,
         "ALPH": n_pos,
         "APOS": n_pos,
+        "KEY4": n,
         "TOPK": sum(topk_levels(n)) * TOPK_FANOUT,
         "UNIG": n_pos,
         "HIST": n_hist,
         "ROWS": n_hist + 1,
         "SUCC": b,
         "CNTS": b,
-        "SKYP": n_hist + 1,
+        "SEGE": len(a["SEGS"]),
+        "SKYP": len(a["SEGS"]) + 1,
         "DISO": len(a["DISI"]) + 1,
     }
     for label, want in expected.items():
@@ -521,11 +581,9 @@ def _check_arrays(
     perm("ALPH", a["ALPH"], a["APOS"], n_pos)
     if a["ALPH"][n] != n or a["ALPH"][n + 1] != n + 1:
         raise _fail(name, "section ALPH does not end with the reserved symbols")
-    if not np.array_equal(a["AMID"], a["IDTK"][a["ALPH"][:n]]):
-        raise _fail(name, "section AMID disagrees with ALPH and IDTK")
     if a["UNIG"].sum(dtype=np.int64) != meta["total"]:
         raise _fail(name, "unigram counts do not add up to the stored total")
-    for label, end in (("ROWS", b), ("SKYP", len(a["SKYI"])), ("DISO", len(raw["DISB"]))):
+    for label, end in (("ROWS", b), ("DISO", len(raw["DISB"]))):
         arr = a[label]
         if arr[0] != 0 or arr[-1] != end or np.any(arr[1:] < arr[:-1]):
             raise _fail(name, f"section {label} offsets are not increasing from 0 to {end}")
@@ -556,17 +614,27 @@ def _check_arrays(
     col = np.bincount(a["ALPH"][succ], weights=full_counts, minlength=n_pos)
     if not np.array_equal(col, a["UNIG"]):
         raise _fail(name, "section UNIG disagrees with the bigram counts")
-    skyi, skyp = a["SKYI"].astype(np.int64), a["SKYP"].astype(np.int64)
-    if len(skyi):
-        owner = np.repeat(np.arange(n_hist), np.diff(skyp))
-        if np.any(skyi < rows[owner]) or np.any(skyi >= rows[owner + 1]) or np.any(succ[skyi] >= n):
-            raise _fail(name, "section SKYI points outside its rows")
+    skyp = a["SKYP"].astype(np.int64)
+    if skyp[0] != 0 or skyp[-1] != len(a["SKYI"]) or np.any(skyp[1:] < skyp[:-1]):
+        raise _fail(name, "section SKYP offsets are not increasing from 0 to the end of SKYI")
+    seg_s, seg_e = a["SEGS"].astype(np.int64), a["SEGE"].astype(np.int64)
+    if len(seg_s):
+        seg_key = seg_s * (b + 1) + seg_e
+        row_s = rows[np.searchsorted(rows, seg_s, side="right") - 1]
+        row_e = rows[np.searchsorted(rows, seg_s, side="right")]
+        if np.any(seg_key[1:] <= seg_key[:-1]) or np.any(seg_e <= seg_s) or np.any(seg_e > row_e) or np.any(seg_s < row_s):
+            raise _fail(name, "sections SEGS/SEGE are not sorted ranges inside rows")
+        seg_len = np.repeat(seg_e - seg_s, np.diff(skyp))
+        if np.any(a["SKYI"].astype(np.int64) >= seg_len):
+            raise _fail(name, "section SKYI points outside its segment")
     for i in range(n):
         if trie.restore_key(int(a["IDTK"][i])) is None:
             raise _fail(name, "trie is inconsistent")
-    keys = [trie.restore_key(int(m)) for m in a["AMID"]]
+    keys = [trie.restore_key(int(a["IDTK"][w])) for w in a["ALPH"][:n]]
     if any(keys[i] >= keys[i + 1] for i in range(len(keys) - 1)):
         raise _fail(name, "section ALPH is not in alphabetical order")
+    if a["KEY4"].tolist() != [key_head(k) for k in keys]:
+        raise _fail(name, "section KEY4 disagrees with the keys")
     try:
         bytes(raw["DISB"]).decode("utf-8")
     except UnicodeDecodeError:

@@ -147,20 +147,32 @@ class Context:
 def parse_before_cursor(text: str) -> Context:
     """Find the context word and the partial word at the end of ``text``.
 
-    Only the last :data:`MAX_CONTEXT_CHARS` characters are examined, so the cost does
-    not grow with the document. If the cut lands inside a word, that fragment is
-    discarded; if the examined tail holds no word and no boundary, the context is the
-    sentence start.
+    Only the last :data:`MAX_CONTEXT_CHARS` characters are examined (the last 64 first,
+    which almost always suffice), so the cost does not grow with the document. If the
+    cut lands inside a word, that fragment is not taken as context; if the examined
+    tail holds no word, number, symbol or boundary, the context is the sentence start.
     """
-    truncated = len(text) > MAX_CONTEXT_CHARS
-    tail = normalize(text[-MAX_CONTEXT_CHARS:] if truncated else text)
+    if len(text) > _FIRST_WINDOW:
+        found = _parse_tail(text, _FIRST_WINDOW, final=False)
+        if found is not None:
+            return found
+    return _parse_tail(text, MAX_CONTEXT_CHARS, final=True)  # type: ignore[return-value]
+
+
+_FIRST_WINDOW = 64
+
+
+def _parse_tail(text: str, window: int, *, final: bool) -> Context | None:
+    truncated = len(text) > window
+    tail = normalize(text[-window:] if truncated else text)
     toks = list(_TOKEN_RE.finditer(tail))
-    if truncated and toks and toks[0].start() == 0 and toks[0].lastgroup in ("word", "num"):
-        toks = toks[1:]
+    cut = truncated and bool(toks) and toks[0].start() == 0 and toks[0].lastgroup in ("word", "num")
     prefix = ""
     if toks:
         last = toks[-1]
         if last.lastgroup in ("word", "num") and last.end() == len(tail):
+            if cut and len(toks) == 1 and not final:
+                return None  # the partial word may be longer than this window
             prefix = last.group()
             toks.pop()
         elif (
@@ -174,16 +186,17 @@ def parse_before_cursor(text: str) -> Context:
             prefix = toks[-2].group() + last.group()
             toks.pop()
             toks.pop()
-    previous = BOS
+    if cut and toks:
+        toks = toks[1:]
     for m in reversed(toks):
         group = m.lastgroup
         s = m.group()
         if group == "word":
-            previous = s if _is_word(s) else UNK
-            break
+            return Context(s if _is_word(s) else UNK, prefix)
         if group == "end":
-            break
+            return Context(BOS, prefix)
         if group == "num" or not unicodedata.category(s).startswith("P"):
-            previous = UNK
-            break
-    return Context(previous, prefix)
+            return Context(UNK, prefix)
+    if truncated and not final:
+        return None
+    return Context(BOS, prefix)

@@ -49,7 +49,7 @@ build = st.fixed_dictionaries(
     {
         "min_count": st.integers(1, 3),
         "max_vocab": st.integers(1, 20),
-        "long_row": st.integers(0, 4),
+        "skyband_min": st.integers(0, 4),
         "skyband_k": st.integers(1, 6),
     }
 )
@@ -119,7 +119,7 @@ def test_file_round_trip_preserves_every_count(msgs: list[str], params: dict[str
 def _model_bytes() -> bytes:
     path = Path(tempfile.mkdtemp()) / "m.nwm"
     msgs = ["the cat sat on the mat", "the dog sat. a cat ran", "Bo and Abe sat on a mat"] * 3
-    nextword.train_texts(msgs, path, min_count=1, long_row=1, skyband_k=2)
+    nextword.train_texts(msgs, path, min_count=1, skyband_min=1, skyband_k=2)
     return path.read_bytes()
 
 

@@ -1,0 +1,252 @@
+"""Core engine benchmark: training speed, file size, load time and suggest latency.
+
+Runs on the corpus made by ``bench/prepare_corpus.py`` (real public text, ≥ 5 million
+words) and compares, in the same run and on the same queries, the engine with the
+plain-dict implementation of the same formula (``bench/dict_baseline.py``). Figures
+are written to ``bench/out/core.json`` and into ``bench/RESULTS.md`` between the
+``core`` markers. This is a benchmark, not a test: nothing here fails on a slow machine.
+
+    python bench/prepare_corpus.py && python bench/bench_core.py
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import random
+import resource
+import statistics
+import subprocess
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE))
+
+import nextword  # noqa: E402
+from nextword.text import _TOKEN_RE, normalize  # noqa: E402
+
+
+def make_queries(lines: list[str], n: int, seed: int) -> list[tuple[str, str]]:
+    """(kind, text before cursor) pairs: next word, or 1–3 letters into a word, mixed evenly."""
+    rng = random.Random(seed)
+    out: list[tuple[str, str]] = []
+    while len(out) < n:
+        text = normalize(rng.choice(lines))
+        words = [m for m in _TOKEN_RE.finditer(text) if m.lastgroup == "word" and not m.group().isdigit()]
+        if not words:
+            continue
+        m = rng.choice(words)
+        j = rng.choice([0, 1, 2, 3])
+        if j and len(m.group()) <= j:
+            continue
+        out.append(("next" if j == 0 else f"prefix{j}", text[: m.start() + j]))
+    return out
+
+
+def percentiles(xs: list[float]) -> dict[str, float]:
+    a = np.asarray(xs) * 1e6
+    return {
+        "p50_us": float(np.percentile(a, 50)),
+        "p90_us": float(np.percentile(a, 90)),
+        "p99_us": float(np.percentile(a, 99)),
+        "max_us": float(a.max()),
+        "mean_us": float(a.mean()),
+    }
+
+
+def child_queries(model_path: str, queries_path: str, k: int) -> None:
+    """Run in a fresh process: load time, per-query latency, peak RSS of the engine alone."""
+    queries = json.loads(Path(queries_path).read_text())
+    loads = []
+    for _ in range(200):
+        t0 = time.perf_counter()
+        m = nextword.load(model_path)
+        loads.append(time.perf_counter() - t0)
+    for _, text in queries[:500]:  # warm-up
+        m.suggest(text, k)
+    times: dict[str, list[float]] = {}
+    all_times = []
+    results = []
+    for kind, text in queries:
+        t0 = time.perf_counter()
+        s = m.suggest(text, k)
+        dt = time.perf_counter() - t0
+        all_times.append(dt)
+        times.setdefault(kind, []).append(dt)
+        results.append([x.word for x in s])
+    t0 = time.perf_counter()
+    for _, text in queries:
+        m.suggest(text, k)
+    qps = len(queries) / (time.perf_counter() - t0)
+    out = {
+        "load_ms_median": statistics.median(loads) * 1e3,
+        "load_ms_max": max(loads) * 1e3,
+        "queries": len(queries),
+        "latency": percentiles(all_times),
+        "latency_by_kind": {kind: percentiles(v) for kind, v in sorted(times.items())},
+        "queries_per_second": qps,
+        "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
+        "answers": results,
+    }
+    print(json.dumps(out))
+
+
+def machine() -> str:
+    cpu = "unknown CPU"
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                cpu = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    return f"{cpu}, {os.cpu_count()} cores, Python {platform.python_version()}, numpy {np.__version__}"
+
+
+def update_results(md: str, marker: str) -> None:
+    path = HERE / "RESULTS.md"
+    text = path.read_text() if path.exists() else "# Benchmark results\n"
+    begin, end = f"<!-- {marker}:begin -->", f"<!-- {marker}:end -->"
+    block = f"{begin}\n{md}\n{end}"
+    if begin in text and end in text:
+        text = text[: text.index(begin)] + block + text[text.index(end) + len(end) :]
+    else:
+        text = text.rstrip("\n") + "\n\n" + block + "\n"
+    tmp = path.with_suffix(".md.tmp")
+    tmp.write_text(text)
+    os.replace(tmp, path)
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description="core engine benchmark")
+    ap.add_argument("--data", type=Path, default=HERE / "data")
+    ap.add_argument("--queries", type=int, default=12_000)
+    ap.add_argument("--baseline-queries", type=int, default=600, help="queries for the slow dict baseline")
+    ap.add_argument("-k", type=int, default=3)
+    ap.add_argument("--seed", type=int, default=1)
+    ap.add_argument("--no-results", action="store_true", help="do not edit bench/RESULTS.md")
+    ap.add_argument("--child", nargs=2, metavar=("MODEL", "QUERIES"), help=argparse.SUPPRESS)
+    args = ap.parse_args(argv)
+    if args.child:
+        child_queries(args.child[0], args.child[1], args.k)
+        return 0
+    train, test = args.data / "train.txt", args.data / "test.txt"
+    if not train.exists():
+        print("bench_core: run bench/prepare_corpus.py first", file=sys.stderr)
+        return 2
+    out_dir = HERE / "out"
+    out_dir.mkdir(exist_ok=True)
+    model_path = out_dir / "core.nwm"
+
+    # 1. training, in its own process so its peak RSS is its own
+    t0 = time.perf_counter()
+    proc = subprocess.run(
+        [sys.executable, "-m", "nextword", "train", str(train), "-o", str(model_path), "--json"],
+        check=True, capture_output=True, text=True,
+    )
+    train_wall = time.perf_counter() - t0
+    train_rss = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+    report = json.loads(proc.stdout)
+    info = nextword.load(model_path).info()
+
+    # 2. queries from held-out text, engine alone in a fresh process
+    lines = test.read_text(encoding="utf-8").splitlines()
+    queries = make_queries(lines, args.queries, args.seed)
+    qpath = out_dir / "queries.json"
+    qpath.write_text(json.dumps(queries))
+    proc = subprocess.run(
+        [sys.executable, __file__, "--child", str(model_path), str(qpath), "-k", str(args.k)],
+        check=True, capture_output=True, text=True,
+    )
+    engine = json.loads(proc.stdout)
+    answers = engine.pop("answers")
+
+    # 3. the plain-dict implementation of the same formula, same queries (a subset: it is slow)
+    t0 = time.perf_counter()
+    with open(train, encoding="utf-8") as f:
+        base = __import__("dict_baseline").DictBigram(f)
+    base_fit = time.perf_counter() - t0
+    model = nextword.load(model_path)
+    sub = queries[: args.baseline_queries]
+    bt, et, agree = [], [], 0
+    for i, (_, text) in enumerate(sub):
+        t0 = time.perf_counter()
+        want = base.suggest_keys(text, args.k, model.lam)
+        bt.append(time.perf_counter() - t0)
+        t0 = time.perf_counter()
+        model.suggest(text, args.k)
+        et.append(time.perf_counter() - t0)
+        got = [nextword.text.fold(w) for w in answers[i]]
+        agree += got == [w for w, _ in want]
+    base_lat, eng_lat = percentiles(bt), percentiles(et)
+
+    res: dict[str, Any] = {
+        "machine": machine(),
+        "corpus_words": report["word_tokens"],
+        "corpus_messages": report["messages"],
+        "train_seconds": train_wall,
+        "train_words_per_second": report["word_tokens"] / train_wall,
+        "train_peak_rss_mb": train_rss,
+        "file_bytes": info["file_bytes"],
+        "vocabulary": info["vocabulary"],
+        "bigrams": info["bigrams"],
+        "bytes_per_bigram": info["bytes_per_bigram"],
+        "engine": engine,
+        "baseline": {
+            "fit_seconds": base_fit,
+            "queries": len(sub),
+            "latency": base_lat,
+            "engine_latency_same_queries": eng_lat,
+            "median_ratio": base_lat["p50_us"] / eng_lat["p50_us"],
+            "p99_ratio": base_lat["p99_us"] / eng_lat["p99_us"],
+            "identical_rankings": agree,
+        },
+    }
+    (out_dir / "core.json").write_text(json.dumps(res, indent=2))
+    lat = engine["latency"]
+    by_kind = "\n".join(
+        f"| {kind} | {v['p50_us']:.1f} | {v['p99_us']:.1f} | {v['max_us']:.0f} |"
+        for kind, v in engine["latency_by_kind"].items()
+    )
+    md = f"""### Core engine (`bench/bench_core.py`)
+
+Command: `python bench/prepare_corpus.py && python bench/bench_core.py` — {time.strftime('%Y-%m-%d')}
+Machine: {res['machine']} (shared, noisy; compare ratios within one run).
+
+| figure | value | target |
+|---|---|---|
+| training corpus | {res['corpus_words']:,} words, {res['corpus_messages']:,} messages (GCIDE, FOLDOC, Jargon File, fortunes) | ≥ 5M words |
+| training time (whole CLI process) | {train_wall:.1f} s = {res['train_words_per_second']:,.0f} words/s | |
+| training peak RSS | {train_rss:,.0f} MB | |
+| model | {res['vocabulary']:,} words, {res['bigrams']:,} bigrams, {res['file_bytes']:,} bytes | |
+| bytes per stored bigram (whole file / bigrams) | {res['bytes_per_bigram']:.2f} | ≤ 4 |
+| load time, median of 200 (max) | {engine['load_ms_median']:.3f} ms ({engine['load_ms_max']:.3f} ms) | ≤ 5 ms |
+| suggest latency over {engine['queries']:,} held-out queries, k={args.k}: p50 / p90 / p99 / max | {lat['p50_us']:.1f} / {lat['p90_us']:.1f} / {lat['p99_us']:.1f} / {lat['max_us']:.0f} µs | p99 ≤ 100 µs |
+| throughput (one thread) | {engine['queries_per_second']:,.0f} queries/s | |
+| query process peak RSS (engine alone) | {engine['peak_rss_mb']:.0f} MB | |
+| plain-dict baseline, same {len(sub)} queries: p50 / p99 | {base_lat['p50_us']:,.0f} / {base_lat['p99_us']:,.0f} µs vs engine {eng_lat['p50_us']:.1f} / {eng_lat['p99_us']:.1f} µs | |
+| **speed-up over the dict baseline (p50 / p99 ratio)** | **{res['baseline']['median_ratio']:,.0f}× / {res['baseline']['p99_ratio']:,.0f}×** | |
+| rankings identical to the baseline's full scoring | {agree} of {len(sub)} | all |
+| dict baseline fit time | {base_fit:.1f} s | |
+
+Latency by query kind (µs):
+
+| kind | p50 | p99 | max |
+|---|---|---|---|
+{by_kind}
+"""
+    print(md)
+    if not args.no_results:
+        update_results(md, "core")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
