@@ -1,0 +1,63 @@
+"""The README stays true: its examples run, its commands work, CI runs its test command."""
+
+from __future__ import annotations
+
+import os
+import re
+import shlex
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parent.parent
+README = (ROOT / "README.md").read_text(encoding="utf-8")
+
+
+def _blocks(lang: str) -> list[str]:
+    return re.findall(rf"```{lang}\n(.*?)```", README, flags=re.S)
+
+
+def test_ci_runs_exactly_the_readme_test_command() -> None:
+    test_cmd = next(b.strip() for b in _blocks("sh") if "'.[test]'" in b)
+    ci = (ROOT / ".ci" / "run").read_text()
+    assert test_cmd in ci.splitlines()
+
+
+@pytest.fixture()
+def in_tmp_with_examples(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
+    (tmp_path / "examples").symlink_to(ROOT / "examples")
+    monkeypatch.chdir(tmp_path)
+    return tmp_path
+
+
+def test_python_examples_run(in_tmp_with_examples: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    blocks = _blocks("python")
+    assert blocks
+    for code in blocks:
+        exec(compile(code, "README.md", "exec"), {"__name__": "__readme__"})
+    out = capsys.readouterr().out
+    assert "workshop" in out and "truing" in out
+
+
+def _cli(args: list[str], cwd: Path) -> subprocess.CompletedProcess[str]:
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    return subprocess.run([sys.executable, "-m", "nextword", *args], cwd=cwd, env=env, capture_output=True, text=True)
+
+
+def test_demo_command_prints_what_the_readme_shows(in_tmp_with_examples: Path) -> None:
+    demo = next(b.strip() for b in _blocks("sh") if "nextword train" in b)
+    steps = [s.strip() for s in demo.split("&&") if ".venv/bin/nextword" in s]
+    outputs = []
+    for step in steps:
+        args = shlex.split(step)[1:]
+        proc = _cli(args, in_tmp_with_examples)
+        assert proc.returncode == 0, proc.stderr
+        outputs.append(proc.stdout)
+    shown = next(b for b in _blocks("text") if "wrote demo.nwm" in b)
+    strip_timing = lambda s: re.sub(r"\s+\[\d+ µs\]|\d[\d,.]* (ms|s)\b.*", "", s).rstrip()  # noqa: E731
+    want = [strip_timing(line) for line in shown.splitlines() if line.startswith('"')]
+    got = [strip_timing(line) for line in outputs[-1].splitlines() if line.startswith('"')]
+    assert [re.sub(r"\s+->", " ->", g) for g in got] == [re.sub(r"\s+->", " ->", w) for w in want]
+    assert shown.splitlines()[0].split(";")[0] == outputs[0].splitlines()[0].split(";")[0]
