@@ -16,7 +16,7 @@ import os
 import sys
 from dataclasses import dataclass
 from pathlib import Path
-from typing import BinaryIO, Callable, Iterable, Iterator, Literal
+from typing import Any, BinaryIO, Callable, Iterable, Iterator, Literal
 
 from .errors import InputDataError, InvalidArgumentError
 
@@ -82,7 +82,7 @@ def open_sources(
     return out
 
 
-def _open_binary(name: str) -> tuple[BinaryIO, BinaryIO, int]:
+def _open_binary(name: str) -> tuple[Any, BinaryIO, int]:
     """Open a source for reading bytes; returns (stream, raw file, size for progress)."""
     if name == "-":
         raw: BinaryIO = sys.stdin.buffer
@@ -93,10 +93,10 @@ def _open_binary(name: str) -> tuple[BinaryIO, BinaryIO, int]:
         except OSError as e:
             raise InputDataError(f"{name}: cannot open: {e.strerror}") from None
         size = os.fstat(raw.fileno()).st_size
-    peekable = raw if hasattr(raw, "peek") else io.BufferedReader(raw)  # type: ignore[arg-type]
-    head = peekable.peek(2)[:2]  # type: ignore[attr-defined]
+    peekable: Any = raw if hasattr(raw, "peek") else io.BufferedReader(raw)  # type: ignore[type-var]
+    head = peekable.peek(2)[:2]
     if head == _GZIP_MAGIC:
-        return gzip.GzipFile(fileobj=peekable, mode="rb"), raw, size  # type: ignore[return-value]
+        return gzip.GzipFile(fileobj=peekable, mode="rb"), raw, size
     return peekable, raw, size
 
 

@@ -92,7 +92,7 @@ def _native_view(arr: np.ndarray) -> memoryview:
     if sys.byteorder != "little":  # pragma: no cover - no big-endian CI
         arr = arr.astype(arr.dtype.newbyteorder("="))
     fmt = {1: "B", 2: "H", 4: "I", 8: "Q"}[arr.dtype.itemsize]
-    return memoryview(np.ascontiguousarray(arr)).cast("B").cast(fmt)
+    return memoryview(np.ascontiguousarray(arr)).cast("B").cast(fmt)  # type: ignore[arg-type,call-overload]
 
 
 class _AlphaKeys:
@@ -151,7 +151,7 @@ class Model:
         self._mv_hist, self._mv_rows, self._mv_succ = mv["HIST"], mv["ROWS"], mv["SUCC"]
         self._mv_disi, self._mv_diso, self._mv_key4 = mv["DISI"], mv["DISO"], mv["KEY4"]
         self._mv_segs, self._mv_sege, self._mv_skyp = mv["SEGS"], mv["SEGE"], mv["SKYP"]
-        self._mv_cnts = memoryview(np.ascontiguousarray(a["CNTS"])).cast("B")
+        self._mv_cnts = memoryview(np.ascontiguousarray(a["CNTS"])).cast("B")  # type: ignore[arg-type]
         self._mv_bigi, self._mv_bigc, self._mv_skyi = mv["BIGI"], mv["BIGC"], mv["SKYI"]
         # multi-level prefix top lists as 2-D views (blocks x FANOUT)
         self._levels: list[np.ndarray] = []

@@ -16,7 +16,7 @@ import tempfile
 import zlib
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Final
+from typing import Any, Final, Sequence, cast
 
 import marisa_trie
 import msgpack
@@ -120,7 +120,7 @@ def topk_levels(n_pos: int) -> list[int]:
 # ----------------------------------------------------------------------------- writing
 
 
-def atomic_write(path: str | os.PathLike[str], chunks: list[bytes | memoryview]) -> None:
+def atomic_write(path: str | os.PathLike[str], chunks: Sequence[bytes | memoryview]) -> None:
     """Write ``chunks`` to ``path`` so that readers see the old file or the whole new one.
 
     A temporary file in the same directory is written, fsync'd and renamed over the
@@ -463,7 +463,8 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
             raise _fail(name, f"section {label} has unknown element type {code}")
         if off % ALIGN or off < prev_end or off + length > size:
             raise _fail(name, f"section {label} has bad offset {off} or length {length}")
-        item = 1 if _DTYPES[code] is None else _DTYPES[code].itemsize  # type: ignore[union-attr]
+        dt = _DTYPES[code]
+        item = 1 if dt is None else dt.itemsize
         if length % item:
             raise _fail(name, f"section {label} length {length} is not a multiple of {item}")
         if any(buf[prev_end:off]):
@@ -498,8 +499,9 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
                 raise _fail(name, f"section {label} should hold raw bytes")
             raw[label] = buf[off : off + length]
             continue
+        want: np.dtype
         if kind == "u2|u4":
-            want = _DTYPES[code] if code in (2, 3) else np.dtype("<u4")
+            want = np.dtype("<u2") if code == 2 else np.dtype("<u4")
         else:
             want = idt if kind == "id" else np.dtype("<" + kind)
         if _DTYPES[code] != want:
@@ -515,10 +517,11 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
 def _check_meta(name: str, meta: Any, size: int) -> dict[str, Any]:
     if not isinstance(meta, dict):
         raise _fail(name, "metadata is not a map")
+    fields: dict[str, Any] = meta
 
     def need(key: str, typ: type | tuple[type, ...], lo: float, hi: float) -> Any:
-        v = meta.get(key)
-        if isinstance(v, bool) or not isinstance(v, typ) or not lo <= v <= hi:
+        v = fields.get(key)
+        if isinstance(v, bool) or not isinstance(v, typ) or not lo <= float(cast(Any, v)) <= hi:
             raise _fail(name, f"metadata field {key!r} is invalid: {v!r}")
         return v
 
