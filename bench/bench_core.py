@@ -12,6 +12,7 @@ are written to ``bench/out/core.json`` and into ``bench/RESULTS.md`` between the
 from __future__ import annotations
 
 import argparse
+import gc
 import json
 import os
 import platform
@@ -85,12 +86,23 @@ def child_queries(model_path: str, queries_path: str, k: int) -> None:
     for _, text in queries:
         m.suggest(text, k)
     qps = len(queries) / (time.perf_counter() - t0)
+    # best of 3 per query: the cost of the call itself, without the shared machine's
+    # scheduling noise (reported next to the single-call figures, not instead of them)
+    best = []
+    for _, text in queries:
+        b = 1.0
+        for _ in range(3):
+            t0 = time.perf_counter()
+            m.suggest(text, k)
+            b = min(b, time.perf_counter() - t0)
+        best.append(b)
     out = {
         "load_ms_median": statistics.median(loads) * 1e3,
         "load_ms_max": max(loads) * 1e3,
         "queries": len(queries),
         "latency": percentiles(all_times),
         "latency_by_kind": {kind: percentiles(v) for kind, v in sorted(times.items())},
+        "latency_best_of_3": percentiles(best),
         "queries_per_second": qps,
         "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
         "answers": results,
@@ -174,6 +186,8 @@ def main(argv: list[str] | None = None) -> int:
         base = __import__("dict_baseline").DictBigram(f)
     base_fit = time.perf_counter() - t0
     model = nextword.load(model_path)
+    gc.collect()
+    gc.freeze()  # the baseline's millions of objects would otherwise slow every GC pass
     sub = queries[: args.baseline_queries]
     bt, et, agree = [], [], 0
     for i, (_, text) in enumerate(sub):
@@ -211,6 +225,7 @@ def main(argv: list[str] | None = None) -> int:
     }
     (out_dir / "core.json").write_text(json.dumps(res, indent=2))
     lat = engine["latency"]
+    b3 = engine["latency_best_of_3"]
     by_kind = "\n".join(
         f"| {kind} | {v['p50_us']:.1f} | {v['p99_us']:.1f} | {v['max_us']:.0f} |"
         for kind, v in engine["latency_by_kind"].items()
@@ -228,7 +243,8 @@ Machine: {res['machine']} (shared, noisy; compare ratios within one run).
 | model | {res['vocabulary']:,} words, {res['bigrams']:,} bigrams, {res['file_bytes']:,} bytes | |
 | bytes per stored bigram (whole file / bigrams) | {res['bytes_per_bigram']:.2f} | ≤ 4 |
 | load time, median of 200 (max) | {engine['load_ms_median']:.3f} ms ({engine['load_ms_max']:.3f} ms) | ≤ 5 ms |
-| suggest latency over {engine['queries']:,} held-out queries, k={args.k}: p50 / p90 / p99 / max | {lat['p50_us']:.1f} / {lat['p90_us']:.1f} / {lat['p99_us']:.1f} / {lat['max_us']:.0f} µs | p99 ≤ 100 µs |
+| suggest latency over {engine['queries']:,} held-out queries, k={args.k}, single calls: p50 / p90 / p99 / max | {lat['p50_us']:.1f} / {lat['p90_us']:.1f} / {lat['p99_us']:.1f} / {lat['max_us']:.0f} µs | p99 ≤ 100 µs |
+| same queries, best of 3 calls each: p50 / p90 / p99 / max | {b3['p50_us']:.1f} / {b3['p90_us']:.1f} / {b3['p99_us']:.1f} / {b3['max_us']:.0f} µs | |
 | throughput (one thread) | {engine['queries_per_second']:,.0f} queries/s | |
 | query process peak RSS (engine alone) | {engine['peak_rss_mb']:.0f} MB | |
 | plain-dict baseline, same {len(sub)} queries: p50 / p99 | {base_lat['p50_us']:,.0f} / {base_lat['p99_us']:,.0f} µs vs engine {eng_lat['p50_us']:.1f} / {eng_lat['p99_us']:.1f} µs | |

@@ -40,11 +40,12 @@ def run_live(model: Model, *, k: int = 5, lam: float | None = None) -> int:
     fd_in, fd_out = sys.stdin.fileno(), sys.stdout.fileno()
     saved = termios.tcgetattr(fd_in)
     decoder = codecs.getincrementaldecoder("utf-8")(errors="replace")
-    os.write(fd_out, b"nextword live: Tab accepts the first suggestion, Alt+N the N-th, Ctrl-D quits\n\n")
     text = ""
     escape = False
     try:
-        tty.setcbreak(fd_in)
+        # cbreak before the banner: keys typed after it are never flushed away
+        tty.setcbreak(fd_in, termios.TCSANOW)
+        os.write(fd_out, b"nextword live: Tab accepts the first suggestion, Alt+N the N-th, Ctrl-D quits\n\n")
         while True:
             t0 = time.perf_counter()
             sugg = model.suggest(text, k, lam=lam)

@@ -160,7 +160,11 @@ class Model:
             self._levels.append(a["TOPK"][start : start + nb * TOPK_FANOUT].reshape(nb, TOPK_FANOUT))
             start += nb * TOPK_FANOUT
         self._apos = a["APOS"]
+        # small caches of pure functions of the file (keyboards repeat prefixes constantly);
+        # dict reads and writes are atomic, so sharing a Model between threads stays safe
         self._range_cache: dict[str, tuple[int, int]] = {}
+        self._top_cache: dict[tuple[int, int, int], list[int]] = {}
+        self._display_cache: dict[int, str] = {}
 
     # -- context manager ----------------------------------------------------------------
 
@@ -188,11 +192,19 @@ class Model:
 
     def display(self, wid: int) -> str:
         """Display spelling of word id ``wid`` (its most frequent spelling)."""
+        if isinstance(wid, bool) or not isinstance(wid, int) or not 0 <= wid < self.n_words:
+            raise InvalidArgumentError(f"word id must be an integer in [0, {self.n_words}), got {wid!r}")
+        hit = self._display_cache.get(wid)
+        if hit is not None:
+            return hit
         disi = self._mv_disi
         i = bisect.bisect_left(disi, wid)
         if i < len(disi) and disi[i] == wid:
-            return bytes(self._disb[self._mv_diso[i] : self._mv_diso[i + 1]]).decode("utf-8")
-        return self._key(wid)
+            shown = bytes(self._disb[self._mv_diso[i] : self._mv_diso[i + 1]]).decode("utf-8")
+        else:
+            shown = self._key(wid)
+        self._display_cache[wid] = shown
+        return shown
 
     def words(self) -> Iterator[tuple[str, int]]:
         """Yield (display spelling, count) for every vocabulary word, most frequent first."""
@@ -353,6 +365,9 @@ class Model:
             return list(range(min(k, hi)))
         if hi - lo <= 2 * F:
             return sorted(self._mv_alph[lo:hi].tolist())[:k]
+        hit = self._top_cache.get((lo, hi, k))
+        if hit is not None:
+            return hit
         if k > F:
             vals = self._alph[lo:hi]
         else:
@@ -372,7 +387,11 @@ class Model:
         if len(vals) > k:
             vals = np.partition(vals, k - 1)[:k]
         vals = np.sort(vals)
-        return vals[vals < self.n_words].tolist()  # type: ignore[no-any-return]
+        top: list[int] = vals[vals < self.n_words].tolist()
+        if len(self._top_cache) > 16384:
+            self._top_cache.clear()
+        self._top_cache[lo, hi, k] = top
+        return top
 
     def _units(self, level: int, i: int, j: int, k: int) -> np.ndarray:
         if level == 0:
@@ -384,10 +403,11 @@ class Model:
 
         Candidates are (a) the k most frequent words of the range — every word that is
         not a successor of v scores (1−λ)·c(w)/N, so no other non-successor can beat them
-        — and (b) the successors of v inside the range: found by binary search in the
-        row (sorted by alphabetical position) or, for long rows and no prefix, the row's
-        stored k-skyband, which holds every successor that can reach the top k for any
-        λ < 1 (see store._skyband). Ties go to the alphabetically first key.
+        — and (b) the successors of v inside the range: the row segment found by binary
+        search (rows are sorted by alphabetical position) or, when the segment has more
+        than ``skyband_min`` entries, its stored k-skyband, which holds every successor
+        that can reach the top k for any λ < 1 (see store._skyband). Ties go to the
+        alphabetically first key.
         """
         cv = self._mv_hist[v]
         if cv == 0:

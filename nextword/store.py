@@ -57,7 +57,8 @@ COUNT_ESCAPE: Final = 255
 _DTYPES: Final = {0: None, 1: np.dtype("<u1"), 2: np.dtype("<u2"), 3: np.dtype("<u4"), 4: np.dtype("<u8")}
 _CODES: Final = {np.dtype("<u1"): 1, np.dtype("<u2"): 2, np.dtype("<u4"): 3, np.dtype("<u8"): 4}
 
-# tag -> (required, element type: "id" means u16 or u32 by vocabulary size)
+# every section is required; tag -> element type ("raw" bytes, "id" = u16 or u32 by
+# vocabulary size, "u2|u4" = either, declared in the section table)
 _SECTIONS: Final = {
     b"META": "raw",
     b"TRIE": "raw",
@@ -82,8 +83,8 @@ _SECTIONS: Final = {
     b"DISO": "u4",
     b"DISB": "raw",
 }
-# vocabulary-sized sections, checksummed on every load; the bigram-sized ones
-# (SUCC, CNTS, BIGI, BIGC, SKYI) only with verify=True, so opening stays fast
+# sections whose size grows with the number of bigrams are checksummed only with
+# verify=True, so opening stays fast; all the others (vocabulary-sized) on every load
 _BIGRAM_SIZED: Final = (b"SUCC", b"CNTS", b"BIGI", b"BIGC", b"SEGS", b"SEGE", b"SKYP", b"SKYI")
 _CHECKED_ON_LOAD: Final = tuple(t for t in _SECTIONS if t not in _BIGRAM_SIZED)
 _U32_MAX: Final = 0xFFFFFFFF
@@ -409,11 +410,12 @@ def read_model(path: str | os.PathLike[str], *, verify: bool = False) -> ModelAr
     """Open, map and validate a model file.
 
     Always checked: magic, version, header and table checksums, file size, section
-    bounds, alignment and element types, the checksums of the metadata and the trie
-    (the trie library must never see damaged bytes), lengths of every array against the
-    metadata, and the vocabulary-sized arrays' internal consistency. ``verify=True``
-    also checksums the large bigram sections and checks every entry, which reads the
-    whole file.
+    bounds, alignment, zero padding and element types, the checksums of every
+    vocabulary-sized section (metadata and trie included: the trie library must never
+    see damaged bytes), lengths of every array against the metadata, and the
+    vocabulary-sized arrays' internal consistency. ``verify=True`` also checksums the
+    bigram-sized sections and checks every entry and every derived structure against a
+    recomputation, which reads the whole file.
     """
     name = os.fspath(path)
     try:
@@ -642,3 +644,41 @@ def _check_arrays(
         bytes(raw["DISB"]).decode("utf-8")
     except UnicodeDecodeError:
         raise _fail(name, "section DISB is not UTF-8") from None
+    _check_derived(name, meta, a, keys, full_counts)
+
+
+def _check_derived(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], keys: list[str], counts: np.ndarray) -> None:
+    """Recompute every structure the exact ranking relies on and compare (verify=True only)."""
+    n = meta["n_words"]
+    unig = a["UNIG"][:n].astype(np.int64)
+    key_of_id = [""] * n
+    for pos, wid in enumerate(a["ALPH"][:n].tolist()):
+        key_of_id[wid] = keys[pos]
+    if any((unig[i], key_of_id[i + 1]) <= (unig[i + 1], key_of_id[i]) for i in range(n - 1)):
+        raise _fail(name, "word ids are not in (count descending, key ascending) order")
+    alpha_words = a["ALPH"][:n].astype(np.int64)
+    pad = int(np.iinfo(a["TOPK"].dtype).max)
+    size, parts = TOPK_FANOUT, []
+    for nb in topk_levels(n):
+        padded = np.full(nb * size, pad, dtype=np.int64)
+        padded[:n] = alpha_words
+        parts.append(np.sort(padded.reshape(nb, size), axis=1)[:, :TOPK_FANOUT].reshape(-1))
+        size *= TOPK_FANOUT
+    if not np.array_equal(np.concatenate(parts), a["TOPK"]):
+        raise _fail(name, "section TOPK disagrees with ALPH")
+    rows = a["ROWS"].astype(np.int64)
+    succ = a["SUCC"].astype(np.int64)
+    expected = []
+    for v in np.flatnonzero(np.diff(rows) > meta["skyband_min"]).tolist():
+        rs = int(rows[v])
+        words_end = rs + int(np.searchsorted(succ[rs : int(rows[v + 1])], n))
+        expected.extend(_prefix_segments(keys, succ, rs, words_end, meta["skyband_min"]))
+    stored = list(zip(a["SEGS"].tolist(), a["SEGE"].tolist()))
+    if sorted(expected) != stored:
+        raise _fail(name, "sections SEGS/SEGE are not the prefix segments of the rows")
+    skyp, skyi = a["SKYP"].astype(np.int64), a["SKYI"].astype(np.int64)
+    alph = a["ALPH"].astype(np.int64)
+    for i, (s, e) in enumerate(stored):
+        band = _skyband(alph[succ[s:e]], counts[s:e], meta["skyband_k"])
+        if not np.array_equal(band, skyi[skyp[i] : skyp[i + 1]]):
+            raise _fail(name, f"section SKYI: segment {i} does not hold its skyband")

@@ -119,3 +119,24 @@ def test_suggest_time_reports_microseconds(tmp_path: Path, corpus: Path) -> None
     r = run("suggest", str(model), "see ", "--time", "--json")
     data = json.loads(r.stdout)
     assert data["results"][0]["microseconds"] > 0 and data["load_milliseconds"] > 0
+
+
+def test_progress_shows_only_on_a_terminal(tmp_path: Path, corpus: Path) -> None:
+    import io
+
+    from nextword._progress import Progress
+
+    class Tty(io.StringIO):
+        def isatty(self) -> bool:
+            return True
+
+    tty, pipe = Tty(), io.StringIO()
+    for stream in (tty, pipe):
+        bar = Progress("counting", stream=stream)
+        bar.update(50, 100)
+        bar.done("done")
+    assert "counting:  50.0%" in tty.getvalue() and "left" in tty.getvalue()
+    assert pipe.getvalue() == ""
+    # the CLI's stderr is a pipe here: no progress noise, only the result on stdout
+    r = run("train", str(corpus), "-o", str(tmp_path / "m.nwm"), "--min-count", "1")
+    assert r.returncode == 0 and r.stderr == ""
