@@ -1,0 +1,882 @@
+"""docs/FORMAT.md is a correct and current description of the model file.
+
+``NwmReader`` below is a second reader of ``.nwm`` files, written from docs/FORMAT.md
+alone. It uses only ``struct``, ``zlib``, ``msgpack``, ``marisa_trie`` and ``numpy``;
+it imports nothing from ``nextword.store`` or ``nextword.model``. The tests train
+models through the public API, read them with this reader, and require the same
+probabilities, rankings and display spellings as ``nextword.load(...)``. A last test
+retrains the worked example of FORMAT.md §10 and compares it with the bytes and arrays
+quoted there, so the document fails CI when the format changes.
+
+The main training corpus is real text: the first lines of the Python documentation
+topics in the standard library (``pydoc_data.topics``) and the "I am Sam" sentences of
+Jurafsky & Martin, *Speech and Language Processing* (3rd ed. draft, ch. 3), repeated so
+that some pair counts need the count escape. Expected values come from brute-force
+counting of the same text in this file (cut into sentences and keys by
+``nextword.text``, the documented tokenisation rules), or are worked out by hand from the
+Sam sentences.
+"""
+
+from __future__ import annotations
+
+import bisect
+import itertools
+import re
+import struct
+import zlib
+from collections import Counter, defaultdict
+from dataclasses import dataclass
+from pathlib import Path
+from pydoc_data.topics import topics  # standard library: the text of help() topics
+
+import marisa_trie
+import msgpack
+import numpy as np
+import pytest
+
+import nextword
+from nextword.text import fold, sentences
+
+DOC = Path(__file__).resolve().parent.parent / "docs" / "FORMAT.md"
+
+# ----------------------------------------------------------------------------- the reader
+# Everything in this block is transcribed from docs/FORMAT.md; section numbers refer to it.
+
+MAGIC = b"\x89NWM\r\n\x1a\n"  # §3
+HEADER = struct.Struct("<8sHHIQII")  # §3: 32 bytes
+ENTRY = struct.Struct("<4sB3sQQI4s")  # §4: 32 bytes, reserved fields kept to check them
+F = 64  # §7.5
+ESCAPE = 255  # §7.8
+ELEMENTS = {0: None, 1: np.dtype("<u1"), 2: np.dtype("<u2"), 3: np.dtype("<u4"), 4: np.dtype("<u8")}  # §5
+# §7: tag -> element type, in the order nextword writes them
+LAYOUT = {
+    "META": "raw", "TRIE": "raw", "TKID": "id", "IDTK": "id", "ALPH": "id", "APOS": "id",
+    "KEY4": "u32", "TOPK": "id", "UNIG": "u32", "HIST": "u32", "ROWS": "u32", "SUCC": "id",
+    "CNTS": "u8", "BIGI": "u32", "BIGC": "u32", "SEGS": "u32", "SEGE": "u32", "SKYP": "u32",
+    "SKYI": "u16|u32", "DISI": "id", "DISO": "u32", "DISB": "raw",
+}  # fmt: skip
+# §8 item 6: not checksummed on every load by the Python reader
+BIGRAM_SIZED = ("SUCC", "CNTS", "BIGI", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI")
+CODE_OF = {"raw": 0, "u8": 1, "u16": 2, "u32": 3}
+
+
+class FormatError(Exception):
+    """The independent reader rejected a file."""
+
+
+def id_type(n: int) -> str:
+    """§5: u16 if n + 3 < 65535, else u32."""
+    return "u16" if n + 3 < 65535 else "u32"
+
+
+def head(q: bytes, pad: int) -> int:
+    """§7.4: the first 4 bytes of ``q``, padded with ``pad``, as a big-endian number."""
+    return int.from_bytes(q[:4] + bytes([pad]) * (4 - len(q[:4])), "big")
+
+
+def topk_levels(n: int) -> list[int]:
+    """§7.5: nb_l = ceil(n / F^l) for l = 1, 2, … up to the first level with nb_l <= F."""
+    levels, size = [], F
+    while True:
+        levels.append(-(-n // size))
+        if levels[-1] <= F:
+            return levels
+        size *= F
+
+
+@dataclass
+class Entry:
+    tag: str
+    code: int
+    offset: int
+    length: int
+    crc: int
+    reserved: bytes
+
+
+class NwmReader:
+    """Reads and fully checks a model file following docs/FORMAT.md (§§3–8)."""
+
+    def __init__(self, path: str | Path) -> None:
+        data = Path(path).read_bytes()
+        self.data = data
+        if len(data) < HEADER.size:
+            raise FormatError("shorter than the header")
+        magic, major, minor, count, size, table_crc, head_crc = HEADER.unpack_from(data, 0)
+        if magic != MAGIC:
+            raise FormatError("bad magic")
+        if zlib.crc32(data[:28]) != head_crc:
+            raise FormatError("header CRC")
+        if major != 1:
+            raise FormatError("major version")
+        if size != len(data):
+            raise FormatError("file size")
+        if not 1 <= count <= 64:
+            raise FormatError("section count")
+        table_end = HEADER.size + ENTRY.size * count
+        if table_end > len(data) or zlib.crc32(data[HEADER.size : table_end]) != table_crc:
+            raise FormatError("table CRC")
+        self.version = (major, minor)
+        self.header = dict(magic=magic, major=major, minor=minor, count=count, size=size,
+                           table_crc=table_crc, head_crc=head_crc)  # fmt: skip
+        self.entries: list[Entry] = []
+        prev_end = table_end
+        for i in range(count):
+            tag_b, code, res1, off, length, crc, res2 = ENTRY.unpack_from(data, HEADER.size + i * ENTRY.size)
+            tag = tag_b.decode("ascii")
+            if tag in (e.tag for e in self.entries):
+                raise FormatError(f"{tag} twice")
+            if code not in ELEMENTS:
+                raise FormatError(f"{tag}: element code {code}")
+            item = 1 if ELEMENTS[code] is None else ELEMENTS[code].itemsize
+            if off % 8 or off < prev_end or off + length > len(data) or length % item:
+                raise FormatError(f"{tag}: bad offset or length")
+            if any(data[prev_end:off]):
+                raise FormatError(f"{tag}: non-zero padding before it")
+            prev_end = off + length
+            self.entries.append(Entry(tag, code, off, length, crc, res1 + res2))
+        if len(data) != prev_end + (-prev_end % 8) or any(data[prev_end:]):
+            raise FormatError("bytes after the last section")
+        self.sections = {e.tag: e for e in self.entries}
+        missing = set(LAYOUT) - set(self.sections)
+        if missing:
+            raise FormatError(f"missing {sorted(missing)}")
+        for e in self.entries:  # this reader always checks every CRC (§8, item 13)
+            if zlib.crc32(data[e.offset : e.offset + e.length]) != e.crc:
+                raise FormatError(f"{e.tag} CRC")
+
+        self.meta = msgpack.unpackb(self.raw("META"), raw=False, strict_map_key=True)
+        self._check_meta()
+        n = self.n = self.meta["n_words"]
+        self.id_type = id_type(n)
+        self.a: dict[str, np.ndarray] = {}
+        for tag, kind in LAYOUT.items():
+            want = self.id_type if kind == "id" else kind
+            e = self.sections[tag]
+            if e.code not in [CODE_OF[t] for t in want.split("|")]:
+                raise FormatError(f"{tag}: element code {e.code}, expected {want}")
+            if kind != "raw":
+                dt = ELEMENTS[e.code]
+                self.a[tag] = np.frombuffer(data, dtype=dt, count=e.length // dt.itemsize, offset=e.offset)
+        # §7.2: the trie is handed to marisa only after its CRC was checked above
+        self.trie = marisa_trie.Trie()
+        self.trie.frombytes(self.raw("TRIE"))
+        self.total = self.meta["total"]
+        self.lam = self.meta["lambda"]
+        self._check_arrays()
+        self.keys = [self.trie.restore_key(int(m)) for m in self.a["IDTK"]]  # key of each word id
+        self.alpha_keys = [self.keys[w] for w in self.a["ALPH"][: self.n]]  # key at each position
+
+    def raw(self, tag: str) -> bytes:
+        e = self.sections[tag]
+        return self.data[e.offset : e.offset + e.length]
+
+    def _check_meta(self) -> None:  # §7.1
+        m = self.meta
+        if not isinstance(m, dict) or len(self.raw("META")) > 1 << 20:
+            raise FormatError("META")
+
+        def need(key: str, types: tuple[type, ...], lo: float, hi: float) -> None:
+            v = m.get(key)
+            if isinstance(v, bool) or not isinstance(v, types) or not lo <= v <= hi:
+                raise FormatError(f"META {key} = {v!r}")
+
+        need("n_words", (int,), 1, min(len(self.data), 0xFFFFFFF0))
+        need("lambda", (float, int), 0.0, 1.0)
+        need("total", (int,), 1, 1 << 53)
+        need("bigrams", (int,), 0, len(self.data))
+        need("skyband_k", (int,), 1, 4096)
+        need("skyband_min", (int,), 0, 1 << 32)
+        need("max_key_chars", (int,), 1, 1 << 20)
+        if m.get("topk_fanout") != F or not isinstance(m.get("stats", {}), dict):
+            raise FormatError("META topk_fanout / stats")
+
+    def _check_arrays(self) -> None:  # §7 and §8 items 10–17
+        a, n, b = self.a, self.n, self.meta["bigrams"]
+        lengths = {
+            "TKID": n, "IDTK": n, "KEY4": n, "ALPH": n + 2, "APOS": n + 2, "UNIG": n + 2,
+            "HIST": n + 3, "ROWS": n + 4, "SUCC": b, "CNTS": b, "SEGE": len(a["SEGS"]),
+            "SKYP": len(a["SEGS"]) + 1,
+            "TOPK": F * sum(topk_levels(n)), "DISO": len(a["DISI"]) + 1, "BIGC": len(a["BIGI"]),
+        }  # fmt: skip
+        for tag, want in lengths.items():
+            if len(a[tag]) != want:
+                raise FormatError(f"{tag} has {len(a[tag])} entries, expected {want}")
+        if len(self.trie) != n:
+            raise FormatError("trie size")
+        def inverse_permutations(p: np.ndarray, inv: np.ndarray, m: int) -> bool:
+            return np.array_equal(np.sort(p), np.arange(m)) and np.array_equal(inv[p], np.arange(m))
+
+        if not inverse_permutations(a["TKID"], a["IDTK"], n):
+            raise FormatError("TKID/IDTK")
+        if not inverse_permutations(a["ALPH"], a["APOS"], n + 2):
+            raise FormatError("ALPH/APOS")
+        if a["ALPH"][n] != n or a["ALPH"][n + 1] != n + 1:
+            raise FormatError("ALPH does not end with </s>, <unk>")
+        if int(a["UNIG"].sum(dtype=np.int64)) != self.total:
+            raise FormatError("total")
+        for tag, end in (("ROWS", b), ("SKYP", len(a["SKYI"])), ("DISO", self.sections["DISB"].length)):
+            arr = a[tag].astype(np.int64)
+            if arr[0] != 0 or arr[-1] != end or np.any(np.diff(arr) < 0):
+                raise FormatError(f"{tag} offsets")
+        if np.any(np.diff(a["DISI"].astype(np.int64)) <= 0) or np.any(a["DISI"] >= n):
+            raise FormatError("DISI")
+        rows = a["ROWS"].astype(np.int64)
+        succ = a["SUCC"].astype(np.int64)
+        if np.any(succ >= n + 2) or rows[n + 1] != rows[n]:
+            raise FormatError("SUCC / row of </s>")
+        row_of = np.repeat(np.arange(n + 3), np.diff(rows))
+        if np.any(np.diff(row_of * (n + 2) + succ) <= 0):
+            raise FormatError("SUCC not strictly increasing within a row")
+        cnts, bigi = a["CNTS"], a["BIGI"].astype(np.int64)
+        if np.any(cnts == 0) or not np.array_equal(np.flatnonzero(cnts == ESCAPE), bigi) or np.any(a["BIGC"] < ESCAPE):
+            raise FormatError("CNTS/BIGI/BIGC")
+        # §7.9: segments inside one row, word successors only, sorted; bands inside them
+        segs, sege = a["SEGS"].astype(np.int64), a["SEGE"].astype(np.int64)
+        row_of_seg = np.searchsorted(rows, segs, side="right") - 1
+        if np.any(sege <= segs) or np.any(sege > rows[np.minimum(row_of_seg + 1, n + 3)]):
+            raise FormatError("SEGS/SEGE not inside one row")
+        if len(segs) and (np.any(succ[sege - 1] >= n) or np.any(np.diff(segs * (b + 1) + sege) <= 0)):
+            raise FormatError("SEGS/SEGE not sorted, or covering </s> or <unk>")
+        skyp, skyi = a["SKYP"].astype(np.int64), a["SKYI"].astype(np.int64)
+        if skyp[0] != 0 or skyp[-1] != len(skyi) or np.any(np.diff(skyp) < 0):
+            raise FormatError("SKYP offsets")
+        for i in range(len(segs)):
+            off = skyi[skyp[i] : skyp[i + 1]]
+            if np.any(off >= sege[i] - segs[i]) or np.any(np.diff(off) <= 0):
+                raise FormatError(f"SKYI of segment {i}")
+        keys = [self.trie.restore_key(int(a["IDTK"][w])) for w in a["ALPH"][:n]]
+        if any(x >= y for x, y in zip(keys, keys[1:])):
+            raise FormatError("ALPH not alphabetical")
+        if a["KEY4"].tolist() != [head(k.encode("utf-8"), 0) for k in keys]:
+            raise FormatError("KEY4")
+        self.raw("DISB").decode("utf-8")
+
+    # -- §7.8 full counts ------------------------------------------------------------------
+
+    def full_counts(self) -> np.ndarray:
+        c = self.a["CNTS"].astype(np.int64)
+        c[self.a["BIGI"].astype(np.int64)] = self.a["BIGC"]
+        return c
+
+    # -- §9.2 ids ----------------------------------------------------------------------------
+
+    def word_id(self, key: str) -> int | None:
+        return int(self.a["TKID"][self.trie.key_id(key)]) if key in self.trie else None
+
+    def history_id(self, word: str | None) -> int:
+        if word is None:
+            return self.n + 2
+        if word == "<unk>":
+            return self.n + 1
+        wid = self.word_id(word)
+        return self.n + 1 if wid is None else wid
+
+    def predicted_id(self, word: str) -> int:
+        if word == "</s>":
+            return self.n
+        if word == "<unk>":
+            return self.n + 1
+        wid = self.word_id(word)
+        return self.n + 1 if wid is None else wid
+
+    # -- §9.3 P(w | v) -------------------------------------------------------------------------
+
+    def pair_count(self, v: int, w: int) -> int:
+        s, e = int(self.a["ROWS"][v]), int(self.a["ROWS"][v + 1])
+        p = int(self.a["APOS"][w])
+        succ = self.a["SUCC"]
+        i = bisect.bisect_left(succ, p, s, e)
+        if i == e or succ[i] != p:
+            return 0
+        c = int(self.a["CNTS"][i])
+        if c == ESCAPE:
+            j = bisect.bisect_left(self.a["BIGI"], i)
+            assert self.a["BIGI"][j] == i
+            c = int(self.a["BIGC"][j])
+        return c
+
+    def prob(self, v: int, w: int, lam: float) -> float:
+        cv = int(self.a["HIST"][v])
+        u = int(self.a["UNIG"][w]) / self.total
+        if cv == 0:
+            return u
+        return lam * (self.pair_count(v, w) / cv) + (1.0 - lam) * u
+
+    # -- §7.10 display -----------------------------------------------------------------------
+
+    def display(self, wid: int) -> str:
+        disi, diso = self.a["DISI"], self.a["DISO"]
+        i = bisect.bisect_left(disi, wid)
+        if i < len(disi) and disi[i] == wid:
+            return self.raw("DISB")[int(diso[i]) : int(diso[i + 1])].decode("utf-8")
+        return self.keys[wid]
+
+    # -- §9.4 prefix range: KEY4, then UTF-8 bytes of the keys ----------------------------
+
+    def prefix_range(self, prefix: str) -> tuple[int, int]:
+        if not prefix:
+            return 0, self.n
+        if len(prefix) > self.meta["max_key_chars"]:
+            return 0, 0
+        q = prefix.encode("utf-8")
+        key4 = self.a["KEY4"]
+        lo = bisect.bisect_left(key4, head(q, 0x00))
+        hi = bisect.bisect_right(key4, head(q, 0xFF), lo)
+        if len(q) > 4 and lo < hi:
+            cut = [k.encode("utf-8")[: len(q)] for k in self.alpha_keys[lo:hi]]  # what each probe compares
+            lo, hi = lo + bisect.bisect_left(cut, q), lo + bisect.bisect_right(cut, q)
+        return lo, hi
+
+    # -- §9.5 k smallest ids of a position range through TOPK ------------------------------
+
+    def top_blocks(self, level: int) -> np.ndarray:
+        levels = topk_levels(self.n)
+        start = F * sum(levels[: level - 1])
+        return self.a["TOPK"][start : start + F * levels[level - 1]].reshape(-1, F)
+
+    def range_top_ids(self, lo: int, hi: int, k: int) -> list[int]:
+        alph = self.a["ALPH"]
+        if hi - lo <= 2 * F or k > F:
+            vals = alph[lo:hi].astype(np.int64)
+        else:
+            n_levels = len(topk_levels(self.n))
+            taken: list[np.ndarray] = []
+
+            def blocks(level: int, i: int, j: int) -> None:
+                taken.append(alph[i:j] if level == 0 else self.top_blocks(level)[i:j, :k].ravel())
+
+            a, b, unit, level = lo, hi, 1, 0
+            while True:
+                nxt = unit * F
+                A = -(-a // nxt) * nxt
+                B = (b // nxt) * nxt
+                if level == n_levels or A >= B:
+                    blocks(level, a // unit, b // unit)
+                    break
+                blocks(level, a // unit, A // unit)
+                blocks(level, B // unit, b // unit)
+                a, b, unit, level = A, B, nxt, level + 1
+            vals = np.concatenate(taken).astype(np.int64)
+        vals = np.sort(vals[vals < self.n])
+        return vals[:k].tolist()
+
+    # -- §9.6 top-k ---------------------------------------------------------------------------
+
+    def _score(self, v: int, entries: np.ndarray, lam: float, cv: int) -> tuple[np.ndarray, np.ndarray]:
+        full = self.full_counts()
+        pos = self.a["SUCC"][entries].astype(np.int64)
+        ids = self.a["ALPH"][pos].astype(np.int64)
+        return pos, lam * (full[entries] / cv) + (1.0 - lam) * (self.a["UNIG"][ids] / self.total)
+
+    def top_k(self, v: int, lo: int, hi: int, k: int, lam: float) -> list[tuple[str, float]]:
+        a = self.a
+        cv = int(a["HIST"][v])
+        if cv == 0:
+            lam = 0.0
+        rs, re_ = int(a["ROWS"][v]), int(a["ROWS"][v + 1])
+        succ = a["SUCC"]
+        s = bisect.bisect_left(succ, lo, rs, re_)
+        e = bisect.bisect_left(succ, hi, s, re_)
+        if lam == 1.0:
+            pos, score = self._score(v, np.arange(s, e), lam, cv)
+            cand = {int(p): float(x) for p, x in zip(pos, score)}
+            best = sorted(cand, key=lambda p: (-cand[p], p))[:k]
+            rest = [p for p in range(lo, hi) if p not in cand][: k - len(best)]
+            return [(self.alpha_keys[p], cand.get(p, 0.0)) for p in best + rest]
+        cand = {}
+        for wid in self.range_top_ids(lo, hi, k):  # (a)
+            cand[int(a["APOS"][wid])] = (1.0 - lam) * (int(a["UNIG"][wid]) / self.total)
+        if lam > 0.0:  # (b)
+            entries = np.arange(s, e)
+            if e - s > self.meta["skyband_min"] and k <= self.meta["skyband_k"]:
+                i = self.segment(s, e)
+                if i is not None:
+                    entries = s + a["SKYI"][a["SKYP"][i] : a["SKYP"][i + 1]].astype(np.int64)
+            pos, score = self._score(v, entries, lam, cv)
+            cand.update({int(p): float(x) for p, x in zip(pos, score)})
+        best = sorted(cand, key=lambda p: (-cand[p], p))[:k]
+        return [(self.alpha_keys[p], cand[p]) for p in best]
+
+    def segment(self, s: int, e: int) -> int | None:
+        """§9.6 step 5: the index of the segment [s, e), if stored."""
+        segs, sege = self.a["SEGS"], self.a["SEGE"]
+        i = bisect.bisect_left(segs, s)
+        while i < len(segs) and segs[i] == s:
+            if sege[i] == e:
+                return i
+            i += 1
+        return None
+
+    def brute_top_k(self, v: int, lo: int, hi: int, k: int, lam: float) -> list[tuple[str, float]]:
+        """Score every word of the range with §9.3 and sort by (probability desc, key asc)."""
+        a = self.a
+        cv = int(a["HIST"][v])
+        pos = np.arange(lo, hi)
+        ids = a["ALPH"][lo:hi].astype(np.int64)
+        u = a["UNIG"][ids] / self.total
+        if cv == 0:
+            p = u
+        else:
+            c = np.zeros(hi - lo, dtype=np.int64)
+            rs, re_ = int(a["ROWS"][v]), int(a["ROWS"][v + 1])
+            rpos = a["SUCC"][rs:re_].astype(np.int64)
+            inside = (rpos >= lo) & (rpos < hi)
+            c[rpos[inside] - lo] = self.full_counts()[rs:re_][inside]
+            p = lam * (c / cv) + (1.0 - lam) * u
+        order = np.lexsort((pos, -p))[:k]
+        return [(self.alpha_keys[int(pos[i])], float(p[i])) for i in order]
+
+
+# ----------------------------------------------------------------------------- fixtures
+
+def _pydoc_lines(count: int) -> list[str]:
+    """The first ``count`` non-empty lines of the documentation topics that ship with Python.
+
+    Source: ``pydoc_data.topics`` in the standard library (the text ``help()`` shows,
+    generated from the Python Language Reference), topics joined in sorted key order.
+    These lines start with the "assert" and "assignment" topics. The exact text varies a
+    little between Python versions, so every expected value below that depends on it is
+    recomputed from these lines by the test, never typed in.
+    """
+    text = "\n".join(topics[k] for k in sorted(topics))
+    return [line for line in text.splitlines() if line.strip()][:count]
+
+
+# Real English of the Python documentation: 120 lines are ~300 words with min_count=1,
+# small enough for the all-pairs probability test. The grammar rules in it ("::=", "=",
+# "|") and version numbers are symbols and numbers, so the <unk> history row is not empty.
+PYDOC = _pydoc_lines(120)
+
+# The "I am Sam" corpus of Jurafsky & Martin, Speech and Language Processing (3rd ed.
+# draft), chapter 3 (N-gram Language Models), §3.1. It is also the worked example of
+# docs/FORMAT.md §10.
+SAM_I_AM = ["I am Sam.", "Sam I am.", "I do not like green eggs and ham."]
+# Repeated 150 times so that two pairs pass 254 and exercise the count escape (CNTS = 255,
+# full count in BIGC; COUNT_ESCAPE in nextword/store.py): (<s>, i) starts "I am Sam" and
+# "I do not like…", (i, am) is in "I am Sam" and "Sam I am", so each is 2 × 150 = 300.
+# Every other Sam pair occurs once per repetition: 150 < 255, stored directly.
+SAM_REPEATS = 150
+REAL = PYDOC + SAM_I_AM * SAM_REPEATS
+
+
+@pytest.fixture(scope="module")
+def real(tmp_path_factory: pytest.TempPathFactory) -> tuple[NwmReader, nextword.Model, Path]:
+    # a small skyband_min and skyband_k so that there are segments in a small corpus
+    path = tmp_path_factory.mktemp("real") / "real.nwm"
+    nextword.train_texts(REAL, path, min_count=1, skyband_min=3, skyband_k=2)
+    return NwmReader(path), nextword.load(path), path
+
+
+def _brute_pair_counts(messages: list[str]) -> Counter[tuple[str, str]]:
+    """c(v, w) for every pair of keys, counted directly with a Counter (min_count=1, so no
+    word is out of vocabulary): each sentence of ``nextword.text.sentences`` is
+    ``<s> w1 … wk </s>``, a context break (``None``) is ``<unk>``."""
+    pairs: Counter[tuple[str, str]] = Counter()
+    for message in messages:
+        for sentence in sentences(message):
+            toks = ["<s>", *("<unk>" if w is None else fold(w) for w in sentence), "</s>"]
+            pairs.update(zip(toks, toks[1:]))
+    return pairs
+
+
+def _expected_displays(messages: list[str]) -> dict[str, str]:
+    """The display spelling of every key, recomputed from the rule documented on
+    ``nextword.counts.CountBuilder._display`` (and FORMAT.md §7.10): the most frequent
+    spelling away from sentence starts, ties preferring the key, then code point order;
+    a word seen only at sentence starts keeps the key when the spelling is just the key
+    with its first letter capitalised (the capital is explained by the position), else
+    its most frequent spelling there (same ties)."""
+    seen: dict[str, Counter[str]] = defaultdict(Counter)
+    first: dict[str, Counter[str]] = defaultdict(Counter)  # as the first word of a sentence
+    for message in messages:
+        for sentence in sentences(message):
+            for i, w in enumerate(sentence):
+                if w is not None:
+                    seen[fold(w)][w] += 1
+                    if i == 0:
+                        first[fold(w)][w] += 1
+    out = {}
+    for key, spellings in seen.items():
+        away = {s: c - first[key][s] for s, c in spellings.items()}
+        if max(away.values()) > 0:
+            out[key] = min(spellings, key=lambda s: (-away[s], s != key, s))
+        else:
+            s = min(spellings, key=lambda s: (-first[key][s], s != key, s))
+            out[key] = key if s == key[:1].upper() + key[1:] else s
+    return out
+
+
+def _syllable_words(count: int) -> list[str]:
+    cons, vowels = "bdfgklmnprstvz", "aeiou"
+    syl = [c + v for c in cons for v in vowels]
+    return ["".join(t) for t in itertools.islice(itertools.product(syl, repeat=3), count)]
+
+
+@pytest.fixture(scope="module")
+def boundary_corpus() -> list[str]:
+    # Synthetic random data for a structural limit, not content: 65 532 distinct
+    # syllable strings (no real text has that many words in a test-sized corpus) with
+    # Zipf-distributed counts, so that the id type switches from u16 to u32 at the size
+    # §5 gives, ids differ from the alphabetical order and TOPK has two levels.
+    rng = np.random.default_rng(2024)
+    words = _syllable_words(65532)
+    reps = np.minimum(rng.zipf(1.8, size=len(words)), 40)
+    tokens = np.repeat(np.arange(len(words)), reps)
+    rng.shuffle(tokens)
+    return [" ".join(words[t] for t in tokens[i : i + 11]) + "." for i in range(0, len(tokens), 11)]
+
+
+# ----------------------------------------------------------------------------- header and table
+
+
+def test_header_fields_and_crcs(real: tuple[NwmReader, nextword.Model, Path]) -> None:
+    r, model, path = real
+    data = path.read_bytes()
+    h = r.header
+    assert data[:8] == b"\x89NWM\r\n\x1a\n"
+    assert (h["major"], h["minor"]) == (1, 0) == model.format_version
+    assert h["count"] == 22
+    assert h["size"] == len(data) == model.file_size
+    assert h["table_crc"] == zlib.crc32(data[32 : 32 + 32 * 22])
+    assert h["head_crc"] == zlib.crc32(data[:28])
+    # zlib's CRC-32 is the IEEE 802.3 one: its standard check value (common practice)
+    assert zlib.crc32(b"123456789") == 0xCBF43926
+
+
+def test_section_table_entries(real: tuple[NwmReader, nextword.Model, Path]) -> None:
+    r, _, path = real
+    data = path.read_bytes()
+    assert [e.tag for e in r.entries] == list(LAYOUT)
+    assert r.entries[0].offset == 32 + 32 * len(r.entries)  # no gap after the table
+    for e in r.entries:
+        want = r.id_type if LAYOUT[e.tag] == "id" else LAYOUT[e.tag]
+        assert e.code == CODE_OF["u16" if e.tag == "SKYI" else want], e.tag  # all segments are short
+        assert e.reserved == b"\0" * 7, e.tag
+        assert e.offset % 8 == 0
+        assert e.crc == zlib.crc32(data[e.offset : e.offset + e.length])
+    ends = [e.offset + e.length for e in r.entries]
+    for e, prev_end in zip(r.entries[1:], ends):
+        assert e.offset == prev_end + (-prev_end % 8)  # written back to back, zero-padded
+    assert len(data) == ends[-1] + (-ends[-1] % 8)
+
+
+def test_meta_fields(real: tuple[NwmReader, nextword.Model, Path]) -> None:
+    r, model, _ = real
+    m = r.meta
+    assert m["generator"] == "nextword"
+    assert m["n_words"] == r.n == model.n_words == len(r.trie)
+    assert m["lambda"] == 0.9 == model.stored_lam
+    assert m["total"] == int(r.a["UNIG"].sum()) == model.total
+    assert m["bigrams"] == len(r.a["SUCC"]) == model.n_bigrams
+    assert (m["skyband_k"], m["skyband_min"], m["topk_fanout"]) == (2, 3, 64)
+    assert m["max_key_chars"] == max(len(k) for k in r.keys)
+    assert m["stats"]["messages"] == len(REAL)
+    assert r.id_type == "u16"
+
+
+# ----------------------------------------------------------------------------- section contents
+
+
+def test_id_space_and_permutations(real: tuple[NwmReader, nextword.Model, Path]) -> None:
+    r, _, _ = real
+    n, a = r.n, r.a
+    unig = a["UNIG"].astype(np.int64)
+    # words by descending count, ties by key (code point order)
+    order = sorted(range(n), key=lambda w: (-unig[w], r.keys[w]))
+    assert order == list(range(n))
+    assert r.alpha_keys == sorted(r.keys)
+    assert [r.keys[i] for i in a["ALPH"][:n]] == r.alpha_keys
+    # KEY4 = big-endian heads, stored as little-endian u32 (§7.4)
+    e = r.sections["KEY4"]
+    first = r.alpha_keys[0].encode("utf-8")[:4].ljust(4, b"\0")
+    assert r.data[e.offset : e.offset + 4] == first[::-1]
+    assert a["ALPH"][n:].tolist() == [n, n + 1]
+    assert all(r.word_id(k) == w for w, k in enumerate(r.keys))
+    assert not any(c in k for k in r.keys for c in "<>\0")
+    assert int(a["HIST"][n]) == 0 and int(a["HIST"][n + 2]) == unig[n]  # </s> no history; <s> = sentences
+    # numbers and symbols ("3.5", "::=", "|" in the pydoc text) break the context: the
+    # <unk> row holds one pair per run of them, counted here from the same lines
+    breaks = sum(c for (v, _), c in _brute_pair_counts(REAL).items() if v == "<unk>")
+    assert int(a["HIST"][n + 1]) == int(unig[n + 1]) == breaks > 0
+
+
+def test_rows_counts_and_escapes(real: tuple[NwmReader, nextword.Model, Path]) -> None:
+    r, model, _ = real
+    a, n = r.a, r.n
+    rows = a["ROWS"].astype(np.int64)
+    full = r.full_counts()
+    row_of = np.repeat(np.arange(n + 3), np.diff(rows))
+    assert np.array_equal(np.bincount(row_of, weights=full, minlength=n + 3), a["HIST"])
+    col = np.bincount(a["ALPH"][a["SUCC"]], weights=full, minlength=n + 2)
+    assert np.array_equal(col, a["UNIG"])
+    # every stored pair, decoded to keys, equals a direct count of the training text
+    hist_key = [*r.keys, "</s>", "<unk>", "<s>"]
+    succ_key = [*r.alpha_keys, "</s>", "<unk>"]
+    decoded = {(hist_key[v], succ_key[p]): int(c) for v, p, c in zip(row_of, a["SUCC"], full)}
+    brute = _brute_pair_counts(REAL)
+    assert decoded == dict(brute)
+    # the escapes are exactly the entries with a count >= 255
+    escaped = {(hist_key[row_of[i]], succ_key[a["SUCC"][i]]): int(c) for i, c in zip(a["BIGI"], a["BIGC"])}
+    assert escaped == {pair: c for pair, c in brute.items() if c >= 255}
+    # by hand from the Sam sentences (see SAM_I_AM): c(<s>, i) = c(i, am) = 2 × 150 = 300,
+    # plus whatever the pydoc lines add (nothing on Python 3.11: they contain no "I")
+    assert 2 * SAM_REPEATS == 300
+    pydoc = _brute_pair_counts(PYDOC)
+    want_si = 300 + pydoc["<s>", "i"]
+    want_ia = 300 + pydoc["i", "am"]
+    assert escaped["<s>", "i"] == want_si and escaped["i", "am"] == want_ia
+    i, am = r.word_id("i"), r.word_id("am")
+    assert i is not None and am is not None
+    assert r.pair_count(n + 2, i) == want_si == model.bigram_count(None, "i")
+    assert r.pair_count(i, am) == want_ia == model.bigram_count("i", "am")
+    # (am, </s>) ends "Sam I am" only: 150, below the escape, stored in CNTS directly
+    assert r.pair_count(am, n) == SAM_REPEATS + pydoc["am", "</s>"] == model.bigram_count("am", "</s>")
+
+
+def test_topk_blocks_hold_the_smallest_ids(real: tuple[NwmReader, nextword.Model, Path]) -> None:
+    _check_topk_blocks(real[0])
+
+
+def _check_topk_blocks(r: NwmReader) -> None:
+    pad = 0xFFFF if r.id_type == "u16" else 0xFFFFFFFF
+    alph = r.a["ALPH"][: r.n].astype(np.int64)
+    for level, nb in enumerate(topk_levels(r.n), start=1):
+        blocks = r.top_blocks(level)
+        assert blocks.shape == (nb, F)
+        size = F**level
+        for j in range(nb):
+            want = np.sort(alph[j * size : (j + 1) * size])[:F]
+            got = blocks[j].astype(np.int64)
+            assert np.array_equal(got[: len(want)], want)
+            assert np.all(got[len(want) :] == pad)
+
+
+def test_segments_and_skybands_follow_section_7_9(real: tuple[NwmReader, nextword.Model, Path]) -> None:
+    r, _, _ = real
+    a, n = r.a, r.n
+    K, M = r.meta["skyband_k"], r.meta["skyband_min"]
+    rows, full = a["ROWS"].astype(np.int64), r.full_counts()
+    # every range of word successors sharing a prefix, with more than M entries
+    want: set[tuple[int, int]] = set()
+    for v in range(n + 3):
+        words = [i for i in range(int(rows[v]), int(rows[v + 1])) if a["SUCC"][i] < n]
+        keys = [r.alpha_keys[a["SUCC"][i]] for i in words]
+        for key in keys:
+            for depth in range(len(key) + 1):
+                inside = [i for i, k in zip(words, keys) if k.startswith(key[:depth])]
+                if len(inside) > M:
+                    assert inside == list(range(inside[0], inside[-1] + 1))  # contiguous
+                    want.add((inside[0], inside[-1] + 1))
+    got = list(zip(a["SEGS"].tolist(), a["SEGE"].tolist()))
+    assert got == sorted(want)
+    assert len(got) >= 5
+    for i, (s, e) in enumerate(got):
+        wid = {j: int(a["ALPH"][a["SUCC"][j]]) for j in range(s, e)}
+        band = [w for w in range(s, e) if sum(full[x] >= full[w] and wid[x] < wid[w] for x in range(s, e)) < K]
+        assert [s + o for o in a["SKYI"][a["SKYP"][i] : a["SKYP"][i + 1]].tolist()] == band
+
+
+# ----------------------------------------------------------------------------- queries
+
+
+@pytest.mark.parametrize("lam", [None, 0.0, 0.37, 1.0])
+def test_every_probability_equals_the_public_api(
+    real: tuple[NwmReader, nextword.Model, Path], lam: float | None
+) -> None:
+    r, _, path = real
+    model = nextword.load(path, lam=lam)
+    use = r.lam if lam is None else lam
+    histories: list[str | None] = [*r.keys, "<unk>", None]
+    words = [*r.keys, "</s>", "<unk>"]
+    for h in histories:
+        v = r.history_id(h)
+        ps = [r.prob(v, r.predicted_id(w), use) for w in words]
+        for w, p in zip(words, ps):
+            assert p == pytest.approx(model.prob(w, h), abs=1e-12), (h, w)
+        assert sum(ps) == pytest.approx(1.0, abs=1e-12)
+
+
+def test_display_spellings_equal_the_public_api(real: tuple[NwmReader, nextword.Model, Path]) -> None:
+    r, model, _ = real
+    shown = [r.display(w) for w in range(r.n)]
+    assert shown == [model.display(w) for w in range(r.n)]
+    # every display equals the documented rule applied to the same text, here
+    want = _expected_displays(REAL)
+    assert {r.keys[w]: shown[w] for w in range(r.n)} == want
+    stored = {r.keys[w]: r.display(w) for w in r.a["DISI"].tolist()}
+    assert stored == {k: d for k, d in want.items() if d != k}  # only spellings that differ
+    # by hand from the Sam sentences: "I" and "Sam" occur away from sentence starts
+    # ("Sam I am", "I am Sam"), so they keep their capitals (FORMAT.md §7.10)
+    assert stored["i"] == "I" and stored["sam"] == "Sam"
+    # pydoc "assert" topic: "... raise AssertionError" is mid-sentence
+    assert stored["assertionerror"] == "AssertionError"
+    # "The" also occurs mid-sentence in the pydoc lines ("see section The standard type
+    # hierarchy"), but "the" is more frequent there, so nothing is stored
+    assert "the" not in stored
+    # words that only ever open a sentence, capitalised there by position alone, keep the
+    # key (in the pydoc lines of Python 3.11: "These equivalences assume…", "Assignments
+    # to "__debug__" are illegal.")
+    openers = [t[0] for m in REAL for t in sentences(m) if t[0] is not None]
+    inside = {fold(w) for m in REAL for t in sentences(m) for w in t[1:] if w is not None}
+    positional = {fold(w) for w in openers if w == fold(w)[:1].upper() + fold(w)[1:]} - inside
+    assert positional and not positional & set(stored)
+
+
+@pytest.mark.parametrize("lam", [None, 0.0, 0.5, 1.0])
+def test_rankings_follow_the_doc(real: tuple[NwmReader, nextword.Model, Path], lam: float | None) -> None:
+    r, _, path = real
+    model = nextword.load(path, lam=lam)
+    use = r.lam if lam is None else lam
+    # words of the pydoc lines ("the" has the largest row after <s>) and of the Sam sentences
+    histories = [None, "<unk>", "the", "is", "target", "i", "sam"]
+    # prefixes of up to 4 UTF-8 bytes use KEY4 alone; longer ones also compare keys (§9.4);
+    # "é…" and "zz" match no key
+    prefixes = ["", "t", "th", "a", "as", "s", "zz", "é", "asser", "assign", "target", "ébè", "expression1"]
+    assert all(r.prefix_range(q)[1] - r.prefix_range(q)[0] >= 2 for q in ("asser", "assign", "target"))
+    for h, prefix, k in itertools.product(histories, prefixes, [1, 2, 3, 5]):
+        lo, hi = r.prefix_range(prefix)
+        got = r.top_k(r.history_id(h), lo, hi, k, use) if lo < hi else []
+        if lo < hi:
+            assert got == r.brute_top_k(r.history_id(h), lo, hi, k, use)
+        api = model.rank_ids(h, prefix, k)
+        assert [w for w, _ in got] == [w for w, _ in api], (h, prefix, k)
+        assert [p for _, p in got] == pytest.approx([p for _, p in api], abs=1e-12)
+
+
+def test_load_checks_match_section_8(real: tuple[NwmReader, nextword.Model, Path], tmp_path: Path) -> None:
+    r, _, path = real
+    data = path.read_bytes()
+
+    def damaged(tag: str) -> Path:
+        e = r.sections[tag]
+        assert e.length > 0, tag
+        b = bytearray(data)
+        b[e.offset + e.length // 2] ^= 0x5A
+        out = tmp_path / f"{tag}.nwm"
+        out.write_bytes(bytes(b))
+        return out
+
+    for tag in (t for t in LAYOUT if t not in BIGRAM_SIZED):  # checked on every load
+        with pytest.raises(FormatError, match=f"{tag} CRC"):
+            NwmReader(damaged(tag))
+        with pytest.raises(nextword.ModelFormatError, match="checksum"):
+            nextword.load(damaged(tag))
+    for tag in ("SUCC", "CNTS", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI"):  # bigram-sized: only with verify=True
+        with pytest.raises(FormatError, match=f"{tag} CRC"):
+            NwmReader(damaged(tag))
+        nextword.load(damaged(tag)).close()
+        with pytest.raises(nextword.ModelFormatError, match="checksum"):
+            nextword.load(damaged(tag), verify=True)
+
+
+# ----------------------------------------------------------------------------- the id type boundary
+
+
+@pytest.mark.parametrize("n_words, want", [(65531, "u16"), (65532, "u32")])
+def test_id_type_switches_at_65532_words(boundary_corpus: list[str], tmp_path: Path, n_words: int, want: str) -> None:
+    path = tmp_path / "big.nwm"
+    nextword.train_texts(boundary_corpus, path, min_count=1, max_vocab=n_words)
+    r = NwmReader(path)
+    model = nextword.load(path)
+    assert r.n == n_words and r.id_type == want
+    for tag, kind in LAYOUT.items():
+        if kind == "id":
+            assert r.sections[tag].code == CODE_OF[want]
+    assert topk_levels(r.n) == [1024, 16]
+    _check_topk_blocks(r)
+
+    rng = np.random.default_rng(5)
+    hist = [r.keys[int(i)] for i in rng.choice(r.n, 12, replace=False)] + [r.keys[0], "<unk>", None]
+    words = [r.keys[int(i)] for i in rng.choice(r.n, 200, replace=False)] + [r.keys[0], "</s>", "<unk>"]
+    for h in hist:
+        v = r.history_id(h)
+        for w in words:
+            assert r.prob(v, r.predicted_id(w), r.lam) == pytest.approx(model.prob(w, h), abs=1e-12)
+
+    for prefix in ["", "ba", "di", "fo", "bab", "baba", "babab", "zu"]:
+        lo, hi = r.prefix_range(prefix)
+        assert (hi - lo > 2 * F) == (prefix in ("", "ba", "di", "fo", "bab"))  # large ranges go through TOPK
+        for k in (1, 7, 64, 65):
+            want_ids = np.sort(r.a["ALPH"][lo:hi].astype(np.int64))[:k].tolist()
+            assert r.range_top_ids(lo, hi, k) == want_ids
+        for h, k in itertools.product([None, r.keys[0], "<unk>"], (3, 8, 9)):
+            got = r.top_k(r.history_id(h), lo, hi, k, r.lam)
+            assert got == r.brute_top_k(r.history_id(h), lo, hi, k, r.lam)
+            api = model.rank_ids(h, prefix, k)
+            assert [w for w, _ in got] == [w for w, _ in api]
+            assert [p for _, p in got] == pytest.approx([p for _, p in api], abs=1e-12)
+    # the sentence start has segments for the empty prefix and for "ba", so the bands were used
+    bos = r.n + 2
+    s, e = int(r.a["ROWS"][bos]), int(r.a["ROWS"][bos + 1])
+    words_end = s + int(np.searchsorted(r.a["SUCC"][s:e], r.n))
+    assert r.segment(s, words_end) is not None
+    lo, hi = r.prefix_range("ba")
+    s_ba = bisect.bisect_left(r.a["SUCC"], lo, s, e)
+    assert r.segment(s_ba, bisect.bisect_left(r.a["SUCC"], hi, s_ba, e)) is not None
+
+
+# ----------------------------------------------------------------------------- the worked example
+
+
+TINY = SAM_I_AM  # the three sentences of the FORMAT.md §10 command
+
+
+def _doc_header_hex() -> str:
+    found = re.findall(r"^header-hex: ([0-9a-f]{64})$", DOC.read_text(encoding="utf-8"), flags=re.M)
+    assert len(found) == 1, "FORMAT.md must quote exactly one 'header-hex:' line"
+    return found[0]
+
+
+def _doc_arrays(label: str) -> dict[str, list[int]]:
+    """The ``TAG = [..]`` lines of the fenced block of FORMAT.md that starts with ``label:``."""
+    block = re.search(rf"^{label}:\n(.*?)^```", DOC.read_text(encoding="utf-8"), flags=re.M | re.S)
+    assert block, f"FORMAT.md must hold a '{label}:' block"
+    arrays = {}
+    for line in block.group(1).splitlines():
+        m = re.fullmatch(r"([A-Z0-9]{4}) = \[([0-9, ]*)\]", line.strip())
+        assert m, line
+        arrays[m.group(1)] = [int(x) for x in m.group(2).split(",") if x.strip()]
+    return arrays
+
+
+def test_worked_example_in_the_doc_is_current(tmp_path: Path) -> None:
+    path = tmp_path / "tiny.nwm"
+    nextword.train_texts(TINY, path, min_count=1)
+    data = path.read_bytes()
+    assert data[:32].hex() == _doc_header_hex(), (
+        "the model format or content changed: regenerate the worked example of docs/FORMAT.md §10 "
+        f"(new header: {data[:32].hex()})"
+    )
+    r = NwmReader(path)
+    arrays = _doc_arrays("decoded-sections")
+    assert set(arrays) == set(LAYOUT) - {"META", "TRIE", "TOPK", "DISB"}
+    for tag, values in arrays.items():
+        assert r.a[tag].tolist() == values, tag
+    assert r.a["TOPK"].tolist() == list(range(10)) + [0xFFFF] * 54
+    assert r.raw("DISB") == b"ISam"
+    assert r.raw("TRIE")[:16] == b"We love Marisa.\0"
+    assert [r.trie.restore_key(m) for m in range(10)] == "do eggs green ham i like not sam am and".split()
+    # §10.4: P(am | i) by hand
+    i, am = r.word_id("i"), r.word_id("am")
+    assert (i, am) == (0, 1)
+    assert r.prob(i, am, 0.9) == 0.9 * 2 / 3 + (1 - 0.9) * 2 / 17 == 0.6117647058823529
+    assert nextword.load(path).prob("am", "i") == 0.6117647058823529
+    # §10.5
+    assert r.prefix_range("a") == (0, 2)
+    assert [w for w, _ in r.top_k(0, 0, 10, 3, 0.9)] == ["am", "do", "i"]
+
+
+def test_worked_example_with_segments_is_current(tmp_path: Path) -> None:
+    path = tmp_path / "tiny_seg.nwm"
+    nextword.train_texts(TINY, path, min_count=1, skyband_min=1, skyband_k=1)
+    r = NwmReader(path)
+    for tag, values in _doc_arrays("decoded-segments").items():
+        assert r.a[tag].tolist() == values, tag
+    assert r.sections["SKYI"].code == 2
+    # §10.6: after <s>, k = 1, the band of segment 1 is the only successor candidate
+    bos = r.n + 2
+    assert r.segment(13, 15) == 1
+    (word, p), = r.top_k(bos, 0, r.n, 1, 0.9)
+    assert word == "i" and p == 0.9 * 2 / 3 + (1 - 0.9) * 3 / 17
+    assert nextword.load(path).rank_ids(None, "", 1) == [(word, p)]
