@@ -148,7 +148,8 @@ class Model:
         mv = {k: _native_view(v) for k, v in a.items() if k not in ("CNTS",)}
         self._mv_tkid, self._mv_idtk = mv["TKID"], mv["IDTK"]
         self._mv_alph, self._mv_apos, self._mv_unig = mv["ALPH"], mv["APOS"], mv["UNIG"]
-        self._mv_hist, self._mv_rows, self._mv_succ = mv["HIST"], mv["ROWS"], mv["SUCC"]
+        self._mv_rows, self._mv_succ = mv["ROWS"], mv["SUCC"]
+        self._mv_skyc = mv["SKYC"]
         self._mv_disi, self._mv_diso, self._mv_key4 = mv["DISI"], mv["DISO"], mv["KEY4"]
         self._mv_segs, self._mv_sege, self._mv_skyp = mv["SEGS"], mv["SEGE"], mv["SKYP"]
         self._mv_cnts = memoryview(np.ascontiguousarray(a["CNTS"])).cast("B")  # type: ignore[arg-type]
@@ -165,6 +166,7 @@ class Model:
         self._range_cache: dict[str, tuple[int, int]] = {}
         self._top_cache: dict[tuple[int, int, int], list[int]] = {}
         self._display_cache: dict[int, str] = {}
+        self._big: dict[int, int] | None = None
 
     # -- context manager ----------------------------------------------------------------
 
@@ -238,12 +240,15 @@ class Model:
 
     def _count_at(self, i: int) -> int:
         c = self._mv_cnts[i]
-        if c == COUNT_ESCAPE:
-            j = bisect.bisect_left(self._mv_bigi, i)
-            if j >= len(self._mv_bigi) or self._mv_bigi[j] != i:
-                raise ModelFormatError(f"{self.path}: escaped count without a value at entry {i}")
-            return self._mv_bigc[j]  # type: ignore[no-any-return]
-        return c  # type: ignore[no-any-return]
+        if c != COUNT_ESCAPE:
+            return c  # type: ignore[no-any-return]
+        big = self._big
+        if big is None:  # built on first use: escapes are rare (counts >= 255)
+            big = self._big = dict(zip(self._mv_bigi.tolist(), self._mv_bigc.tolist()))
+        value = big.get(i)
+        if value is None:
+            raise ModelFormatError(f"{self.path}: escaped count without a value at entry {i}")
+        return value
 
     def _counts(self, idx: np.ndarray) -> np.ndarray:
         c = self._cnts[idx].astype(np.int64)
@@ -259,7 +264,15 @@ class Model:
 
     def history_count(self, previous_word: str | None) -> int:
         """c(v): how often ``previous_word`` was followed by anything (``None`` = sentence start)."""
-        return self._mv_hist[self._history_id(previous_word)]  # type: ignore[no-any-return]
+        return self._hist(self._history_id(previous_word))
+
+    def _hist(self, v: int) -> int:
+        """c(v) as a history, derived from the unigram counts (see store.history_counts)."""
+        if v == self._eos:
+            return 0
+        if v == self._bos:
+            return self._mv_unig[self._eos]  # type: ignore[no-any-return]
+        return self._mv_unig[v]  # type: ignore[no-any-return]
 
     def unigram_count(self, word: str) -> int:
         """c(w): how often ``word`` was predicted in training."""
@@ -276,7 +289,7 @@ class Model:
     # -- probabilities ----------------------------------------------------------------------
 
     def _prob_ids(self, v: int, w: int, lam: float) -> float:
-        cv = self._mv_hist[v]
+        cv = self._hist(v)
         u = self._mv_unig[w] / self.total
         if cv == 0:
             return u  # type: ignore[no-any-return]
@@ -409,7 +422,7 @@ class Model:
         that can reach the top k for any λ < 1 (see store._skyband). Ties go to the
         alphabetically first key.
         """
-        cv = self._mv_hist[v]
+        cv = self._hist(v)
         if cv == 0:
             lam = 0.0
         if lam == 1.0:
@@ -425,7 +438,7 @@ class Model:
         e = bisect.bisect_left(self._mv_succ, hi, s, re_)
         entries: Sequence[int] = range(s, e)
         if e - s > self._sky_min and k <= self._sky_k:
-            entries = self._segment_band(s, e) or entries
+            entries = self._segment_band(s, e, k) or entries
         if len(entries) > _SMALL:
             return self._rank_many(entries, top, cv, lam, k)
         succ, alph, apos = self._mv_succ, self._mv_alph, self._mv_apos
@@ -447,14 +460,19 @@ class Model:
         cands.sort()
         return [(alph[p], -neg) for neg, p in cands[:k]]
 
-    def _segment_band(self, s: int, e: int) -> list[int] | None:
-        """Row entries of the stored skyband of segment [s, e), if one was stored."""
+    def _segment_band(self, s: int, e: int, k: int) -> list[int] | None:
+        """Row entries of segment [s, e) with fewer than k dominators, if its skyband is stored.
+
+        The stored skyband is ordered by number of dominators; SKYC says how many of its
+        entries have fewer than k, so a top-3 query reads only those.
+        """
         segs, sege = self._mv_segs, self._mv_sege
         i = bisect.bisect_left(segs, s)
         while i < len(segs) and segs[i] == s:
             if sege[i] == e:
-                skp = self._mv_skyp
-                return [s + o for o in self._mv_skyi[skp[i] : skp[i + 1]].tolist()]
+                start = self._mv_skyp[i]
+                stop = start + self._mv_skyc[i * self._sky_k + k - 1]
+                return [s + o for o in self._mv_skyi[start:stop].tolist()]
             i += 1
         return None
 
@@ -464,7 +482,7 @@ class Model:
             idx = np.arange(entries.start, entries.stop)
             pos = self._succ[entries.start : entries.stop].astype(np.int64)
         else:
-            idx = np.asarray(entries, dtype=np.int64)
+            idx = np.sort(np.asarray(entries, dtype=np.int64))  # skybands are stored by dominance
             pos = self._succ[idx].astype(np.int64)
         ids = self._alph[pos].astype(np.int64)
         total = self.total
@@ -555,7 +573,7 @@ class Model:
         """Sizes, settings and corpus statistics, as plain data (for ``nextword info``)."""
         a = self._src.arrays
         bigram_bytes = sum(
-            a[s].nbytes for s in ("SUCC", "CNTS", "BIGI", "BIGC", "ROWS", "HIST", "SEGS", "SEGE", "SKYP", "SKYI")
+            a[s].nbytes for s in ("SUCC", "CNTS", "BIGI", "BIGC", "ROWS", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC")
         )
         return {
             "path": self.path,
@@ -573,7 +591,7 @@ class Model:
 
 def _recase(word: str, prefix: str, at_start: bool) -> str:
     if prefix:
-        if sum(c.isupper() for c in prefix) >= 2 and not any(c.islower() for c in prefix):
+        if prefix.isupper() and sum(c.isupper() for c in prefix) >= 2:
             return word.upper()
         if prefix[0].isupper():
             return word[:1].upper() + word[1:]

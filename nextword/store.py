@@ -8,7 +8,7 @@ length, offset or index; see docs/FORMAT.md for the byte-by-byte layout.
 
 from __future__ import annotations
 
-import heapq
+import bisect
 import mmap
 import os
 import struct
@@ -69,7 +69,6 @@ _SECTIONS: Final = {
     b"KEY4": "u4",
     b"TOPK": "id",
     b"UNIG": "u4",
-    b"HIST": "u4",
     b"ROWS": "u4",
     b"SUCC": "id",
     b"CNTS": "u1",
@@ -79,13 +78,14 @@ _SECTIONS: Final = {
     b"SEGE": "u4",
     b"SKYP": "u4",
     b"SKYI": "u2|u4",
+    b"SKYC": "u2|u4",
     b"DISI": "id",
     b"DISO": "u4",
     b"DISB": "raw",
 }
 # sections whose size grows with the number of bigrams are checksummed only with
 # verify=True, so opening stays fast; all the others (vocabulary-sized) on every load
-_BIGRAM_SIZED: Final = (b"SUCC", b"CNTS", b"BIGI", b"BIGC", b"SEGS", b"SEGE", b"SKYP", b"SKYI")
+_BIGRAM_SIZED: Final = (b"SUCC", b"CNTS", b"BIGI", b"BIGC", b"SEGS", b"SEGE", b"SKYP", b"SKYI", b"SKYC")
 _CHECKED_ON_LOAD: Final = tuple(t for t in _SECTIONS if t not in _BIGRAM_SIZED)
 _U32_MAX: Final = 0xFFFFFFFF
 
@@ -156,36 +156,55 @@ def atomic_write(path: str | os.PathLike[str], chunks: Sequence[bytes | memoryvi
         os.close(dfd)
 
 
-def _skyband(ids: np.ndarray, counts: np.ndarray, k: int) -> np.ndarray:
-    """Indices of row entries that fewer than ``k`` other entries beat for every λ in [0, 1).
+def history_counts(unigram: np.ndarray, n: int) -> np.ndarray:
+    """c(v) for every history id, derived from the unigram counts (nothing is stored).
 
-    An entry x beats entry w whenever c(v,x) >= c(v,w) and x's id is smaller (which
-    implies c(x) >= c(w) and, on equal counts, an earlier word): then x scores at
-    least as high for any λ and wins ties. Scanning in (count desc, id asc) order, an
-    entry is in the k-skyband iff fewer than k earlier entries have a smaller id.
+    Every word or ``<unk>`` token is followed by exactly one token (a word, ``<unk>`` or
+    ``</s>``), so its count as a history equals its count as a predicted token; ``</s>``
+    is never a history; ``<s>`` starts each sentence, which ends with one ``</s>``.
+    """
+    hist = np.zeros(n + 3, dtype=np.int64)
+    hist[: n + 2] = unigram[: n + 2]
+    hist[n] = 0
+    hist[n + 2] = unigram[n]
+    return hist
+
+
+def _skyband(ids: np.ndarray, counts: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
+    """The k-skyband of a row segment, by number of dominators, and its size for each k.
+
+    Entry x dominates entry w when c(v,x) >= c(v,w) and x's id is smaller (which implies
+    c(x) >= c(w) and, on equal counts, an earlier word): x then scores at least as high
+    for any λ in [0, 1) and wins ties, so w cannot be among the top j if j entries
+    dominate it. Scanning in (count desc, id asc) order, w's dominators are exactly the
+    earlier entries with smaller ids. Returns the offsets of the entries with fewer than
+    k dominators, sorted by (dominators, offset), and for j = 1..k how many of them have
+    fewer than j dominators (a query for the top j reads only that many).
     """
     order = np.lexsort((ids, -counts))
     seq = ids[order]
-    out: list[int] = []
-    heap: list[int] = []  # negated k smallest ids seen so far
+    found: list[tuple[int, int]] = []  # (dominators, position in seq)
+    smallest: list[int] = []  # the k smallest ids seen so far, sorted
     pos = 0
     chunk = 4096
     while pos < len(seq):
         part = seq[pos : pos + chunk]
-        if len(heap) < k:
-            cand = np.arange(len(part))
-        else:
-            cand = np.flatnonzero(part < -heap[0])
+        cand = np.arange(len(part)) if len(smallest) < k else np.flatnonzero(part < smallest[-1])
         for i in cand.tolist():
             x = int(part[i])
-            if len(heap) < k:
-                heapq.heappush(heap, -x)
-                out.append(pos + i)
-            elif x < -heap[0]:
-                heapq.heapreplace(heap, -x)
-                out.append(pos + i)
+            if len(smallest) == k and x >= smallest[-1]:
+                continue
+            dom = bisect.bisect_left(smallest, x)
+            found.append((dom, pos + i))
+            bisect.insort(smallest, x)
+            if len(smallest) > k:
+                smallest.pop()
         pos += chunk
-    return np.sort(order[np.asarray(out, dtype=np.int64)])
+    offsets = order[np.asarray([p for _, p in found], dtype=np.int64)]
+    doms = np.asarray([d for d, _ in found], dtype=np.int64)
+    by = np.lexsort((offsets, doms))
+    cumulative = np.searchsorted(doms[by], np.arange(1, k + 1), side="left")
+    return offsets[by], cumulative
 
 
 def _prefix_segments(keys: list[str], pos: np.ndarray, a: int, b: int, min_len: int) -> list[tuple[int, int]]:
@@ -271,30 +290,30 @@ def build_sections(
     left, right_pos, counts = left[order], right_pos[order], counts[order]
     row_len = np.bincount(left, minlength=n_hist)
     rows = np.concatenate([[0], np.cumsum(row_len)])
-    hist = np.bincount(left, weights=counts, minlength=n_hist).astype(np.int64)
-    if rows[-1] > _U32_MAX or hist.max(initial=0) > _U32_MAX:
+    if rows[-1] > _U32_MAX:
         raise InvalidArgumentError("too many bigrams for 32-bit offsets")
     cnts = np.minimum(counts, COUNT_ESCAPE)
     bigi = np.flatnonzero(counts >= COUNT_ESCAPE)
     bigc = counts[bigi]
 
     alpha_keys = [tables.keys[i] for i in alpha_words.tolist()]
-    seg_s, seg_e, sky_ptr, sky_parts = [], [], [0], []
+    seg_s, seg_e, sky_parts, cum_parts = [], [], [], []
     for v in np.flatnonzero(row_len > skyband_min).tolist():
         rs = int(rows[v])
         words_end = rs + int(np.searchsorted(right_pos[rs : int(rows[v + 1])], n))
         for a, b in _prefix_segments(alpha_keys, right_pos, rs, words_end, skyband_min):
-            band = _skyband(alph[right_pos[a:b]], counts[a:b], skyband_k)
+            band, cum = _skyband(alph[right_pos[a:b]], counts[a:b], skyband_k)
             seg_s.append(a)
             seg_e.append(b)
             sky_parts.append(band)
-            sky_ptr.append(sky_ptr[-1] + len(band))
+            cum_parts.append(cum)
     order = np.lexsort((seg_e, seg_s)) if seg_s else np.zeros(0, np.int64)
     seg_s_a = np.asarray(seg_s, dtype=np.int64)[order]
     seg_e_a = np.asarray(seg_e, dtype=np.int64)[order]
     parts = [sky_parts[i] for i in order.tolist()]
     sky_ptr_a = np.concatenate([[0], np.cumsum([len(p) for p in parts], dtype=np.int64)])
     skyi = np.concatenate(parts) if parts else np.zeros(0, np.int64)
+    skyc = np.concatenate([cum_parts[i] for i in order.tolist()]) if parts else np.zeros(0, np.int64)
     longest = int((seg_e_a - seg_s_a).max(initial=0))
     sky_dtype = np.dtype("<u2") if longest <= 0xFFFF else np.dtype("<u4")
 
@@ -325,7 +344,6 @@ def build_sections(
         (b"KEY4", u4, key4),
         (b"TOPK", idt, topk),
         (b"UNIG", u4, unigram),
-        (b"HIST", u4, hist),
         (b"ROWS", u4, rows),
         (b"SUCC", idt, right_pos),
         (b"CNTS", u1, cnts),
@@ -335,6 +353,7 @@ def build_sections(
         (b"SEGE", u4, seg_e_a),
         (b"SKYP", u4, sky_ptr_a),
         (b"SKYI", sky_dtype, skyi),
+        (b"SKYC", sky_dtype, skyc),
         (b"DISI", idt, np.asarray(dis_ids, dtype=np.int64)),
         (b"DISO", u4, diso),
         (b"DISB", None, b"".join(dis_bytes)),
@@ -562,12 +581,12 @@ def _check_arrays(
         "KEY4": n,
         "TOPK": sum(topk_levels(n)) * TOPK_FANOUT,
         "UNIG": n_pos,
-        "HIST": n_hist,
         "ROWS": n_hist + 1,
         "SUCC": b,
         "CNTS": b,
         "SEGE": len(a["SEGS"]),
         "SKYP": len(a["SEGS"]) + 1,
+        "SKYC": len(a["SEGS"]) * meta["skyband_k"],
         "DISO": len(a["DISI"]) + 1,
     }
     for label, want in expected.items():
@@ -614,8 +633,8 @@ def _check_arrays(
         raise _fail(name, "sections CNTS and BIGI disagree")
     full_counts = cnts.astype(np.int64)
     full_counts[bigi] = bigc
-    if not np.array_equal(np.bincount(row_of, weights=full_counts, minlength=n_hist), a["HIST"]):
-        raise _fail(name, "section HIST disagrees with the row counts")
+    if not np.array_equal(np.bincount(row_of, weights=full_counts, minlength=n_hist), history_counts(a["UNIG"], n)):
+        raise _fail(name, "row counts disagree with the history counts implied by UNIG")
     col = np.bincount(a["ALPH"][succ], weights=full_counts, minlength=n_pos)
     if not np.array_equal(col, a["UNIG"]):
         raise _fail(name, "section UNIG disagrees with the bigram counts")
@@ -679,6 +698,7 @@ def _check_derived(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], ke
     skyp, skyi = a["SKYP"].astype(np.int64), a["SKYI"].astype(np.int64)
     alph = a["ALPH"].astype(np.int64)
     for i, (s, e) in enumerate(stored):
-        band = _skyband(alph[succ[s:e]], counts[s:e], meta["skyband_k"])
-        if not np.array_equal(band, skyi[skyp[i] : skyp[i + 1]]):
-            raise _fail(name, f"section SKYI: segment {i} does not hold its skyband")
+        K = meta["skyband_k"]
+        band, cum = _skyband(alph[succ[s:e]], counts[s:e], K)
+        if not np.array_equal(band, skyi[skyp[i] : skyp[i + 1]]) or not np.array_equal(cum, a["SKYC"][i * K : (i + 1) * K]):
+            raise _fail(name, f"sections SKYI/SKYC: segment {i} does not hold its skyband")

@@ -147,7 +147,7 @@ class Context:
 def parse_before_cursor(text: str) -> Context:
     """Find the context word and the partial word at the end of ``text``.
 
-    Only the last :data:`MAX_CONTEXT_CHARS` characters are examined (the last 64 first,
+    Only the last :data:`MAX_CONTEXT_CHARS` characters are examined (the last 40 first,
     which almost always suffice), so the cost does not grow with the document. If the
     cut lands inside a word, that fragment is not taken as context; if the examined
     tail holds no word, number, symbol or boundary, the context is the sentence start.
@@ -159,7 +159,7 @@ def parse_before_cursor(text: str) -> Context:
     return _parse_tail(text, MAX_CONTEXT_CHARS, final=True)  # type: ignore[return-value]
 
 
-_FIRST_WINDOW = 64
+_FIRST_WINDOW = 40
 
 
 def _parse_tail(text: str, window: int, *, final: bool) -> Context | None:
