@@ -471,7 +471,7 @@ class Model:
         while i < len(segs) and segs[i] == s:
             if sege[i] == e:
                 start = self._mv_skyp[i]
-                stop = start + self._mv_skyc[i * self._sky_k + k - 1]
+                stop = min(start + self._mv_skyc[i * self._sky_k + k - 1], self._mv_skyp[i + 1])
                 return [s + o for o in self._mv_skyi[start:stop].tolist()]
             i += 1
         return None

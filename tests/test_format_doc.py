@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import bisect
 import itertools
+import os
 import re
 import struct
 import zlib
@@ -51,12 +52,12 @@ ELEMENTS = {0: None, 1: np.dtype("<u1"), 2: np.dtype("<u2"), 3: np.dtype("<u4"),
 # §7: tag -> element type, in the order nextword writes them
 LAYOUT = {
     "META": "raw", "TRIE": "raw", "TKID": "id", "IDTK": "id", "ALPH": "id", "APOS": "id",
-    "KEY4": "u32", "TOPK": "id", "UNIG": "u32", "HIST": "u32", "ROWS": "u32", "SUCC": "id",
+    "KEY4": "u32", "TOPK": "id", "UNIG": "u32", "ROWS": "u32", "SUCC": "id",
     "CNTS": "u8", "BIGI": "u32", "BIGC": "u32", "SEGS": "u32", "SEGE": "u32", "SKYP": "u32",
-    "SKYI": "u16|u32", "DISI": "id", "DISO": "u32", "DISB": "raw",
+    "SKYI": "u16|u32", "SKYC": "u16|u32", "DISI": "id", "DISO": "u32", "DISB": "raw",
 }  # fmt: skip
 # §8 item 6: not checksummed on every load by the Python reader
-BIGRAM_SIZED = ("SUCC", "CNTS", "BIGI", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI")
+BIGRAM_SIZED = ("SUCC", "CNTS", "BIGI", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC")
 CODE_OF = {"raw": 0, "u8": 1, "u16": 2, "u32": 3}
 
 
@@ -192,11 +193,11 @@ class NwmReader:
             raise FormatError("META topk_fanout / stats")
 
     def _check_arrays(self) -> None:  # §7 and §8 items 10–17
-        a, n, b = self.a, self.n, self.meta["bigrams"]
+        a, n, b, K = self.a, self.n, self.meta["bigrams"], self.meta["skyband_k"]
         lengths = {
             "TKID": n, "IDTK": n, "KEY4": n, "ALPH": n + 2, "APOS": n + 2, "UNIG": n + 2,
-            "HIST": n + 3, "ROWS": n + 4, "SUCC": b, "CNTS": b, "SEGE": len(a["SEGS"]),
-            "SKYP": len(a["SEGS"]) + 1,
+            "ROWS": n + 4, "SUCC": b, "CNTS": b, "SEGE": len(a["SEGS"]),
+            "SKYP": len(a["SEGS"]) + 1, "SKYC": len(a["SEGS"]) * K,
             "TOPK": F * sum(topk_levels(n)), "DISO": len(a["DISI"]) + 1, "BIGC": len(a["BIGI"]),
         }  # fmt: skip
         for tag, want in lengths.items():
@@ -241,16 +242,32 @@ class NwmReader:
         skyp, skyi = a["SKYP"].astype(np.int64), a["SKYI"].astype(np.int64)
         if skyp[0] != 0 or skyp[-1] != len(skyi) or np.any(np.diff(skyp) < 0):
             raise FormatError("SKYP offsets")
+        skyc = a["SKYC"].astype(np.int64)
         for i in range(len(segs)):
+            # §7.9: distinct offsets inside the segment, in dominance order (not ascending)
             off = skyi[skyp[i] : skyp[i + 1]]
-            if np.any(off >= sege[i] - segs[i]) or np.any(np.diff(off) <= 0):
+            if np.any(off >= sege[i] - segs[i]) or len(np.unique(off)) != len(off):
                 raise FormatError(f"SKYI of segment {i}")
+            # §7.9: K non-decreasing counts, the first >= 1, the last = the band length
+            c = skyc[i * K : (i + 1) * K]
+            if c[0] < 1 or np.any(np.diff(c) < 0) or c[-1] != len(off):
+                raise FormatError(f"SKYC of segment {i}")
         keys = [self.trie.restore_key(int(a["IDTK"][w])) for w in a["ALPH"][:n]]
         if any(x >= y for x, y in zip(keys, keys[1:])):
             raise FormatError("ALPH not alphabetical")
         if a["KEY4"].tolist() != [head(k.encode("utf-8"), 0) for k in keys]:
             raise FormatError("KEY4")
         self.raw("DISB").decode("utf-8")
+
+    # -- §7.6 history counts, derived from UNIG ---------------------------------------------
+
+    def history_count(self, v: int) -> int:
+        """c(v): UNIG[v] for a word or <unk>, 0 for </s> (id n), UNIG[n] for <s> (id n+2)."""
+        if v == self.n:
+            return 0
+        if v == self.n + 2:
+            return int(self.a["UNIG"][self.n])
+        return int(self.a["UNIG"][v])
 
     # -- §7.8 full counts ------------------------------------------------------------------
 
@@ -297,7 +314,7 @@ class NwmReader:
         return c
 
     def prob(self, v: int, w: int, lam: float) -> float:
-        cv = int(self.a["HIST"][v])
+        cv = self.history_count(v)
         u = int(self.a["UNIG"][w]) / self.total
         if cv == 0:
             return u
@@ -371,7 +388,7 @@ class NwmReader:
 
     def top_k(self, v: int, lo: int, hi: int, k: int, lam: float) -> list[tuple[str, float]]:
         a = self.a
-        cv = int(a["HIST"][v])
+        cv = self.history_count(v)
         if cv == 0:
             lam = 0.0
         rs, re_ = int(a["ROWS"][v]), int(a["ROWS"][v + 1])
@@ -392,7 +409,7 @@ class NwmReader:
             if e - s > self.meta["skyband_min"] and k <= self.meta["skyband_k"]:
                 i = self.segment(s, e)
                 if i is not None:
-                    entries = s + a["SKYI"][a["SKYP"][i] : a["SKYP"][i + 1]].astype(np.int64)
+                    entries = self.band_entries(i, k)
             pos, score = self._score(v, entries, lam, cv)
             cand.update({int(p): float(x) for p, x in zip(pos, score)})
         best = sorted(cand, key=lambda p: (-cand[p], p))[:k]
@@ -408,10 +425,19 @@ class NwmReader:
             i += 1
         return None
 
+    def band_entries(self, i: int, k: int) -> np.ndarray:
+        """§9.6 step 5: the first SKYC[i·K + k − 1] band entries of segment i (k ≤ K), as
+        row entry indices, in their stored (dominance) order."""
+        a, K = self.a, self.meta["skyband_k"]
+        start = int(a["SKYP"][i])
+        stop = start + int(a["SKYC"][i * K + k - 1])
+        assert stop <= int(a["SKYP"][i + 1])  # §8: bound SKYC before reading that many
+        return int(a["SEGS"][i]) + a["SKYI"][start:stop].astype(np.int64)
+
     def brute_top_k(self, v: int, lo: int, hi: int, k: int, lam: float) -> list[tuple[str, float]]:
         """Score every word of the range with §9.3 and sort by (probability desc, key asc)."""
         a = self.a
-        cv = int(a["HIST"][v])
+        cv = self.history_count(v)
         pos = np.arange(lo, hi)
         ids = a["ALPH"][lo:hi].astype(np.int64)
         u = a["UNIG"][ids] / self.total
@@ -551,7 +577,7 @@ def test_section_table_entries(real: tuple[NwmReader, nextword.Model, Path]) -> 
     assert r.entries[0].offset == 32 + 32 * len(r.entries)  # no gap after the table
     for e in r.entries:
         want = r.id_type if LAYOUT[e.tag] == "id" else LAYOUT[e.tag]
-        assert e.code == CODE_OF["u16" if e.tag == "SKYI" else want], e.tag  # all segments are short
+        assert e.code == CODE_OF["u16" if e.tag in ("SKYI", "SKYC") else want], e.tag  # all segments are short
         assert e.reserved == b"\0" * 7, e.tag
         assert e.offset % 8 == 0
         assert e.crc == zlib.crc32(data[e.offset : e.offset + e.length])
@@ -594,11 +620,14 @@ def test_id_space_and_permutations(real: tuple[NwmReader, nextword.Model, Path])
     assert a["ALPH"][n:].tolist() == [n, n + 1]
     assert all(r.word_id(k) == w for w, k in enumerate(r.keys))
     assert not any(c in k for k in r.keys for c in "<>\0")
-    assert int(a["HIST"][n]) == 0 and int(a["HIST"][n + 2]) == unig[n]  # </s> no history; <s> = sentences
+    # §7.6: </s> is never a history; <s> starts every sentence, which ends with one </s>
+    sentence_count = sum(len(sentences(m)) for m in REAL)
+    assert r.history_count(n) == 0
+    assert r.history_count(n + 2) == unig[n] == sentence_count == r.meta["stats"]["sentences"]
     # numbers and symbols ("3.5", "::=", "|" in the pydoc text) break the context: the
     # <unk> row holds one pair per run of them, counted here from the same lines
     breaks = sum(c for (v, _), c in _brute_pair_counts(REAL).items() if v == "<unk>")
-    assert int(a["HIST"][n + 1]) == int(unig[n + 1]) == breaks > 0
+    assert r.history_count(n + 1) == int(unig[n + 1]) == breaks > 0
 
 
 def test_rows_counts_and_escapes(real: tuple[NwmReader, nextword.Model, Path]) -> None:
@@ -607,7 +636,9 @@ def test_rows_counts_and_escapes(real: tuple[NwmReader, nextword.Model, Path]) -
     rows = a["ROWS"].astype(np.int64)
     full = r.full_counts()
     row_of = np.repeat(np.arange(n + 3), np.diff(rows))
-    assert np.array_equal(np.bincount(row_of, weights=full, minlength=n + 3), a["HIST"])
+    # §7.6 / §8 item 15: the row sums are the history counts derived from UNIG
+    derived = [r.history_count(v) for v in range(n + 3)]
+    assert np.array_equal(np.bincount(row_of, weights=full, minlength=n + 3), derived)
     col = np.bincount(a["ALPH"][a["SUCC"]], weights=full, minlength=n + 2)
     assert np.array_equal(col, a["UNIG"])
     # every stored pair, decoded to keys, equals a direct count of the training text
@@ -616,6 +647,13 @@ def test_rows_counts_and_escapes(real: tuple[NwmReader, nextword.Model, Path]) -
     decoded = {(hist_key[v], succ_key[p]): int(c) for v, p, c in zip(row_of, a["SUCC"], full)}
     brute = _brute_pair_counts(REAL)
     assert decoded == dict(brute)
+    # the derived history counts equal how often each history is followed by anything in
+    # the text, and the public API's history_count
+    followed: Counter[str] = Counter()
+    for (v, _), c in brute.items():
+        followed[v] += c
+    assert {hist_key[v]: derived[v] for v in range(n + 3) if derived[v]} == dict(followed)
+    assert [model.history_count(h) for h in [*r.keys, "<unk>", None]] == derived[:n] + derived[n + 1 :]
     # the escapes are exactly the entries with a count >= 255
     escaped = {(hist_key[row_of[i]], succ_key[a["SUCC"][i]]): int(c) for i, c in zip(a["BIGI"], a["BIGC"])}
     assert escaped == {pair: c for pair, c in brute.items() if c >= 255}
@@ -652,8 +690,24 @@ def _check_topk_blocks(r: NwmReader) -> None:
             assert np.all(got[len(want) :] == pad)
 
 
+def _brute_band(ids: list[int], counts: list[int], K: int) -> tuple[list[int], list[int], list[int]]:
+    """§7.9 by its definition, all pairs: the dominators of every offset of a segment, the
+    K-skyband sorted by (dominators, offset), and SKYC (band entries with < j dominators)."""
+    doms = [sum(counts[x] >= counts[w] and ids[x] < ids[w] for x in range(len(ids))) for w in range(len(ids))]
+    band = sorted((o for o in range(len(ids)) if doms[o] < K), key=lambda o: (doms[o], o))
+    return doms, band, [sum(doms[o] < j for o in band) for j in range(1, K + 1)]
+
+
+def test_skyband_example_of_section_7_9() -> None:
+    ex = _doc_arrays("skyband-example")
+    K = 2  # as the example says
+    doms, band, skyc = _brute_band(ex["ids"], ex["counts"], K)
+    assert (doms, band, skyc) == (ex["dominators"], ex["SKYI"], ex["SKYC"])
+    assert band != sorted(band)  # the example shows the dominance order
+
+
 def test_segments_and_skybands_follow_section_7_9(real: tuple[NwmReader, nextword.Model, Path]) -> None:
-    r, _, _ = real
+    r, _, path = real
     a, n = r.a, r.n
     K, M = r.meta["skyband_k"], r.meta["skyband_min"]
     rows, full = a["ROWS"].astype(np.int64), r.full_counts()
@@ -671,10 +725,40 @@ def test_segments_and_skybands_follow_section_7_9(real: tuple[NwmReader, nextwor
     got = list(zip(a["SEGS"].tolist(), a["SEGE"].tolist()))
     assert got == sorted(want)
     assert len(got) >= 5
+    reordered = partial = 0
     for i, (s, e) in enumerate(got):
-        wid = {j: int(a["ALPH"][a["SUCC"][j]]) for j in range(s, e)}
-        band = [w for w in range(s, e) if sum(full[x] >= full[w] and wid[x] < wid[w] for x in range(s, e)) < K]
-        assert [s + o for o in a["SKYI"][a["SKYP"][i] : a["SKYP"][i + 1]].tolist()] == band
+        ids = [int(a["ALPH"][a["SUCC"][j]]) for j in range(s, e)]
+        doms, band, skyc = _brute_band(ids, full[s:e].tolist(), K)
+        stored = a["SKYI"][a["SKYP"][i] : a["SKYP"][i + 1]].tolist()
+        assert stored == band, i  # (dominators, offset) order
+        assert a["SKYC"][i * K : (i + 1) * K].tolist() == skyc, i
+        # the first SKYC[i·K + k − 1] entries are exactly those with fewer than k dominators
+        for k in range(1, K + 1):
+            assert sorted(r.band_entries(i, k).tolist()) == [s + o for o in range(e - s) if doms[o] < k]
+        reordered += stored != sorted(stored)
+        partial += skyc[0] < len(band)
+    # the real text exercises both: a band whose dominance order is not the offset order,
+    # and a top-1 query that reads only part of its band
+    assert reordered > 0 and partial > 0
+    # every segment as a query: its successors are those of the longest prefix their keys
+    # share, so the reader goes through the segment's band for k <= K; the answers equal
+    # the brute force and the public API
+    apis = {lam: nextword.load(path, lam=lam) for lam in (0.2, 0.9)}
+    for i, (s, e) in enumerate(got):
+        v = int(np.searchsorted(rows, s, side="right")) - 1
+        first, last = r.alpha_keys[a["SUCC"][s]], r.alpha_keys[a["SUCC"][e - 1]]
+        prefix = os.path.commonprefix([first, last])
+        lo, hi = r.prefix_range(prefix)
+        rs, re_ = int(rows[v]), int(rows[v + 1])
+        assert (bisect.bisect_left(a["SUCC"], lo, rs, re_), bisect.bisect_left(a["SUCC"], hi, rs, re_)) == (s, e)
+        assert r.segment(s, e) == i
+        h = None if v == n + 2 else "<unk>" if v == n + 1 else r.keys[v]
+        for lam, k in itertools.product((0.2, 0.9), range(1, K + 1)):
+            got_k = r.top_k(v, lo, hi, k, lam)
+            assert got_k == r.brute_top_k(v, lo, hi, k, lam)
+            api = apis[lam].rank_ids(h, prefix, k)
+            assert [w for w, _ in got_k] == [w for w, _ in api], (h, prefix, k)
+            assert [p for _, p in got_k] == pytest.approx([p for _, p in api], abs=1e-12)
 
 
 # ----------------------------------------------------------------------------- queries
@@ -762,7 +846,7 @@ def test_load_checks_match_section_8(real: tuple[NwmReader, nextword.Model, Path
             NwmReader(damaged(tag))
         with pytest.raises(nextword.ModelFormatError, match="checksum"):
             nextword.load(damaged(tag))
-    for tag in ("SUCC", "CNTS", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI"):  # bigram-sized: only with verify=True
+    for tag in ("SUCC", "CNTS", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC"):  # bigram-sized: only with verify=True
         with pytest.raises(FormatError, match=f"{tag} CRC"):
             NwmReader(damaged(tag))
         nextword.load(damaged(tag)).close()
@@ -829,12 +913,12 @@ def _doc_header_hex() -> str:
 
 
 def _doc_arrays(label: str) -> dict[str, list[int]]:
-    """The ``TAG = [..]`` lines of the fenced block of FORMAT.md that starts with ``label:``."""
+    """The ``NAME = [..]`` lines of the fenced block of FORMAT.md that starts with ``label:``."""
     block = re.search(rf"^{label}:\n(.*?)^```", DOC.read_text(encoding="utf-8"), flags=re.M | re.S)
     assert block, f"FORMAT.md must hold a '{label}:' block"
     arrays = {}
     for line in block.group(1).splitlines():
-        m = re.fullmatch(r"([A-Z0-9]{4}) = \[([0-9, ]*)\]", line.strip())
+        m = re.fullmatch(r"([A-Za-z0-9]+) = \[([0-9, ]*)\]", line.strip())
         assert m, line
         arrays[m.group(1)] = [int(x) for x in m.group(2).split(",") if x.strip()]
     return arrays
@@ -857,26 +941,52 @@ def test_worked_example_in_the_doc_is_current(tmp_path: Path) -> None:
     assert r.raw("DISB") == b"ISam"
     assert r.raw("TRIE")[:16] == b"We love Marisa.\0"
     assert [r.trie.restore_key(m) for m in range(10)] == "do eggs green ham i like not sam am and".split()
+    # §10 vocabulary table: history counts derived from UNIG (§7.6), none stored
+    assert [r.history_count(v) for v in range(13)] == [3, 2, 2, 1, 1, 1, 1, 1, 1, 1, 0, 0, 3]
     # §10.4: P(am | i) by hand
     i, am = r.word_id("i"), r.word_id("am")
-    assert (i, am) == (0, 1)
+    assert (i, am) == (0, 1) and i is not None and am is not None
     assert r.prob(i, am, 0.9) == 0.9 * 2 / 3 + (1 - 0.9) * 2 / 17 == 0.6117647058823529
     assert nextword.load(path).prob("am", "i") == 0.6117647058823529
+    assert r.prob(r.n + 2, i, 0.9) == 0.9 * 2 / 3 + (1 - 0.9) * 3 / 17 == nextword.load(path).prob("i", None)
+    assert r.prob(r.n + 1, i, 0.9) == 3 / 17 == nextword.load(path).prob("i", "<unk>")
     # §10.5
     assert r.prefix_range("a") == (0, 2)
     assert [w for w, _ in r.top_k(0, 0, 10, 3, 0.9)] == ["am", "do", "i"]
 
 
-def test_worked_example_with_segments_is_current(tmp_path: Path) -> None:
+@pytest.mark.parametrize("K, label", [(1, "decoded-segments"), (2, "decoded-segments-k2")])
+def test_worked_example_with_segments_is_current(tmp_path: Path, K: int, label: str) -> None:
     path = tmp_path / "tiny_seg.nwm"
-    nextword.train_texts(TINY, path, min_count=1, skyband_min=1, skyband_k=1)
+    nextword.train_texts(TINY, path, min_count=1, skyband_min=1, skyband_k=K)
     r = NwmReader(path)
-    for tag, values in _doc_arrays("decoded-segments").items():
+    quoted = _doc_arrays(label)
+    assert set(quoted) == {"SEGS", "SEGE", "SKYP", "SKYI", "SKYC"}
+    for tag, values in quoted.items():
         assert r.a[tag].tolist() == values, tag
-    assert r.sections["SKYI"].code == 2
-    # §10.6: after <s>, k = 1, the band of segment 1 is the only successor candidate
+    # "All other sections are as in §10.3 except META"
+    for tag, values in _doc_arrays("decoded-sections").items():
+        if tag not in quoted:
+            assert r.a[tag].tolist() == values, tag
+    assert r.raw("DISB") == b"ISam"
+    assert (r.meta["skyband_k"], r.meta["skyband_min"]) == (K, 1)
+    assert r.sections["SKYI"].code == r.sections["SKYC"].code == 2
+    # the bands by the §7.9 definition: in row 0 am dominates do, in row 12 i dominates sam
+    for i, (s, e) in enumerate([(0, 2), (13, 15)]):
+        ids = [int(r.a["ALPH"][r.a["SUCC"][j]]) for j in range(s, e)]
+        _, band, skyc = _brute_band(ids, r.full_counts()[s:e].tolist(), K)
+        assert r.a["SKYI"][r.a["SKYP"][i] : r.a["SKYP"][i + 1]].tolist() == band
+        assert r.a["SKYC"][i * K : (i + 1) * K].tolist() == skyc
+    # §10.6: after <s>, the first SKYC[1·K + k − 1] band entries of segment 1 are read:
+    # entry 13 (i) for k = 1, entries 13, 14 (i, sam) for k = 2
     bos = r.n + 2
     assert r.segment(13, 15) == 1
+    assert r.band_entries(1, 1).tolist() == [13]
+    if K == 2:
+        assert r.band_entries(1, 2).tolist() == [13, 14]
     (word, p), = r.top_k(bos, 0, r.n, 1, 0.9)
     assert word == "i" and p == 0.9 * 2 / 3 + (1 - 0.9) * 3 / 17
-    assert nextword.load(path).rank_ids(None, "", 1) == [(word, p)]
+    model = nextword.load(path)
+    assert model.rank_ids(None, "", 1) == [(word, p)]
+    assert r.top_k(bos, 0, r.n, K, 0.9) == r.brute_top_k(bos, 0, r.n, K, 0.9)
+    assert [w for w, _ in r.top_k(bos, 0, r.n, K, 0.9)] == [w for w, _ in model.rank_ids(None, "", K)]
