@@ -143,6 +143,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--baseline-queries", type=int, default=600, help="queries for the slow dict baseline")
     ap.add_argument("-k", type=int, default=3)
     ap.add_argument("--seed", type=int, default=1)
+    ap.add_argument("--rounds", type=int, default=5, help="fresh query processes; the median one is reported")
     ap.add_argument("--no-results", action="store_true", help="do not edit bench/RESULTS.md")
     ap.add_argument("--child", nargs=2, metavar=("MODEL", "QUERIES"), help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
@@ -173,12 +174,21 @@ def main(argv: list[str] | None = None) -> int:
     queries = make_queries(lines, args.queries, args.seed)
     qpath = out_dir / "queries.json"
     qpath.write_text(json.dumps(queries))
-    proc = subprocess.run(
-        [sys.executable, __file__, "--child", str(model_path), str(qpath), "-k", str(args.k)],
-        check=True, capture_output=True, text=True,
-    )
-    engine = json.loads(proc.stdout)
-    answers = engine.pop("answers")
+    # several rounds, each a fresh process: the shared machine's noise moves single-call
+    # tails by tens of percent between runs, so report the median round and the spread
+    rounds = []
+    for _ in range(args.rounds):
+        proc = subprocess.run(
+            [sys.executable, __file__, "--child", str(model_path), str(qpath), "-k", str(args.k)],
+            check=True, capture_output=True, text=True,
+        )
+        rounds.append(json.loads(proc.stdout))
+    answers = rounds[0]["answers"]
+    if any(r.pop("answers") != answers for r in rounds):
+        raise SystemExit("bench_core: rounds disagree on answers")
+    p99s = [r["latency"]["p99_us"] for r in rounds]
+    rounds.sort(key=lambda r: r["latency"]["p99_us"])
+    engine = rounds[len(rounds) // 2]
 
     # 3. the plain-dict implementation of the same formula, same queries (a subset: it is slow)
     t0 = time.perf_counter()
@@ -213,6 +223,7 @@ def main(argv: list[str] | None = None) -> int:
         "bigrams": info["bigrams"],
         "bytes_per_bigram": info["bytes_per_bigram"],
         "engine": engine,
+        "engine_p99_by_round": p99s,
         "baseline": {
             "fit_seconds": base_fit,
             "queries": len(sub),
@@ -243,7 +254,8 @@ Machine: {res['machine']} (shared, noisy; compare ratios within one run).
 | model | {res['vocabulary']:,} words, {res['bigrams']:,} bigrams, {res['file_bytes']:,} bytes | |
 | bytes per stored bigram (whole file / bigrams) | {res['bytes_per_bigram']:.2f} | ≤ 4 |
 | load time, median of 200 (max) | {engine['load_ms_median']:.3f} ms ({engine['load_ms_max']:.3f} ms) | ≤ 5 ms |
-| suggest latency over {engine['queries']:,} held-out queries, k={args.k}, single calls: p50 / p90 / p99 / max | {lat['p50_us']:.1f} / {lat['p90_us']:.1f} / {lat['p99_us']:.1f} / {lat['max_us']:.0f} µs | p99 ≤ 100 µs |
+| suggest latency over {engine['queries']:,} held-out queries, k={args.k}, single calls (median of {args.rounds} rounds by p99): p50 / p90 / p99 / max | {lat['p50_us']:.1f} / {lat['p90_us']:.1f} / {lat['p99_us']:.1f} / {lat['max_us']:.0f} µs | p99 ≤ 100 µs |
+| p99 of single calls in each round | {' / '.join(f'{x:.0f}' for x in p99s)} µs | |
 | same queries, best of 3 calls each: p50 / p90 / p99 / max | {b3['p50_us']:.1f} / {b3['p90_us']:.1f} / {b3['p99_us']:.1f} / {b3['max_us']:.0f} µs | |
 | throughput (one thread) | {engine['queries_per_second']:,.0f} queries/s | |
 | query process peak RSS (engine alone) | {engine['peak_rss_mb']:.0f} MB | |

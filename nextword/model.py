@@ -19,7 +19,7 @@ import os
 import sys
 import time
 from dataclasses import dataclass
-from typing import Any, Iterable, Iterator, Sequence
+from typing import Any, Iterable, Iterator, NamedTuple, Sequence
 
 import numpy as np
 
@@ -45,12 +45,15 @@ __all__ = ["Model", "Suggestion", "TrainReport", "train", "train_texts", "load",
 #: Weight of the bigram estimate; a value near 0.9 is the usual starting point (common practice).
 DEFAULT_LAMBDA = 0.9
 # below this many successor candidates, plain Python beats numpy's per-call overhead
-_SMALL = 48
+_SMALL = 80
 
 
-@dataclass(frozen=True, slots=True)
-class Suggestion:
-    """One suggested word: ``word`` as it should be shown, ``prob`` = P(word | context)."""
+class Suggestion(NamedTuple):
+    """One suggested word: ``word`` as it should be shown, ``prob`` = P(word | context).
+
+    A named tuple: immutable, and about five times cheaper to create than a frozen
+    dataclass, which matters at several per keystroke.
+    """
 
     word: str
     prob: float
