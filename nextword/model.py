@@ -551,7 +551,10 @@ class Model:
         try:
             ranked = self._rank(v, lo, hi, k, lam)
             at_start = v == self._bos
-            return [Suggestion(_recase(self.display(i), ctx.prefix, at_start), p) for i, p in ranked]
+            shown = self._display_cache
+            return [
+                Suggestion(_recase(shown.get(i) or self.display(i), ctx.prefix, at_start), p) for i, p in ranked
+            ]
         except (IndexError, ValueError, UnicodeDecodeError) as e:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
 
@@ -594,12 +597,13 @@ class Model:
 
 def _recase(word: str, prefix: str, at_start: bool) -> str:
     if prefix:
+        first = prefix[0]
+        if first.islower():  # the common case: an explicitly lowercase prefix wins
+            return word
         if prefix.isupper() and sum(c.isupper() for c in prefix) >= 2:
             return word.upper()
-        if prefix[0].isupper():
+        if first.isupper():
             return word[:1].upper() + word[1:]
-        if prefix[0].islower():
-            return word
     if at_start:
         return word[:1].upper() + word[1:]
     return word
