@@ -451,8 +451,14 @@ class Model:
         else:
             ps = [succ[i] for i in entries]
             cs = [self._mv_cnts[i] for i in entries]
-        if COUNT_ESCAPE in cs:
-            cs = [self._count_at(i) if c == COUNT_ESCAPE else c for i, c in zip(entries, cs)]
+        if COUNT_ESCAPE in cs:  # counts >= 255 are rare: replace them one by one
+            j = cs.index(COUNT_ESCAPE)
+            while True:
+                cs[j] = self._count_at(entries[j])
+                try:
+                    j = cs.index(COUNT_ESCAPE, j + 1)
+                except ValueError:
+                    break
         # same float operations, in the same order, as the brute-force formula
         cands = [(-(lam * (c / cv) + oml * (unig[alph[p]] / total)), p) for p, c in zip(ps, cs)]
         seen = set(ps)
