@@ -193,3 +193,21 @@ def test_unsupported_version_is_named() -> None:
     head[28:32] = struct.pack("<I", zlib.crc32(bytes(head[:28])))
     with pytest.raises(ModelFormatError, match="unsupported format version 7.0"):
         nextword.load(_write(bytes(head) + model_bytes[32:]))
+
+
+@pytest.mark.parametrize("skyband_min", [0, 64])
+def test_counts_at_and_above_the_one_byte_escape(tmp_path: Path, skyband_min: int) -> None:
+    # counts are stored in one byte with 255 as an escape (docs/FORMAT.md §7.8): a pair seen
+    # exactly 255 times and pairs seen more must read back exactly on every ranking path
+    msgs = ["go b"] * 255 + ["go c"] * 300 + ["go d"] * 254 + ["go e"] * 256 + ["b go"] * 3
+    path = tmp_path / "m.nwm"
+    nextword.train_texts(msgs, path, min_count=1, skyband_min=skyband_min)
+    model, oracle = nextword.load(path, verify=True), DictBigram(msgs, min_count=1)
+    for w, c in (("b", 255), ("c", 300), ("d", 254), ("e", 256)):
+        assert model.bigram_count("go", w) == c
+    for k in (1, 3, 5):
+        for lam in (0.9, 0.5, 1.0):
+            want = oracle.rank("go", "", k, lam)
+            assert model.rank_ids("go", "", k, lam=lam) == want
+            with patch.object(nextword.model, "_SMALL", 0):
+                assert model.rank_ids("go", "", k, lam=lam) == want
