@@ -13,7 +13,6 @@ tests compare it with scoring every word.
 from __future__ import annotations
 
 import bisect
-import heapq
 import math
 import os
 import sys
@@ -174,7 +173,12 @@ class Model:
     # -- context manager ----------------------------------------------------------------
 
     def close(self) -> None:
-        """Release the mapping (when no query result still refers to it)."""
+        """Drop the reader's references to the mapped file; do not query the model afterwards.
+
+        The operating system unmaps the file once the last array view of it is gone
+        (when this model is garbage-collected). Replacing the file on disk with
+        ``os.replace`` is safe at any time: a mapped file keeps its old contents.
+        """
         self._src.close()
 
     def __enter__(self) -> Model:

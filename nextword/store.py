@@ -251,7 +251,7 @@ def build_sections(
     if n == 0:
         raise InvalidArgumentError("the vocabulary is empty: no word reached min_count")
     idt = _id_dtype(n)
-    eos, unk, bos = n, n + 1, n + 2
+    eos, unk = n, n + 1
     n_pos = n + 2
     n_hist = n + 3
 

@@ -8,7 +8,6 @@ plain-dict oracle that scores every word.
 
 from __future__ import annotations
 
-from pathlib import Path
 
 import numpy as np
 import pytest
