@@ -311,34 +311,39 @@ class Model:
         lam = self.lam if lam is None else _check_lam(lam)
         return self._prob_ids(self._history_id(previous_word), self._predicted_id(word), lam)
 
+    def log_likelihood(self, lines: Iterable[str], *, lam: float | None = None) -> tuple[float, int]:
+        """(Σ ln P, number of predicted tokens) over ``lines``, ``</s>`` and ``<unk>`` included.
+
+        The parts of :meth:`perplexity`, so that results over several texts can be pooled.
+        The sum is ``-inf`` if a token has probability 0 (possible only with λ = 1).
+        """
+        lam = self.lam if lam is None else _check_lam(lam)
+        if isinstance(lines, str):
+            raise InvalidArgumentError("expected an iterable of messages, not one string")
+        log_sum = 0.0
+        events = 0
+        for line in lines:
+            for sent in sentences(line):
+                v = self._bos
+                for tok in [*sent, EOS]:  # no word contains "<", so EOS marks the end
+                    if tok == EOS:
+                        w = self._eos
+                    else:
+                        wid = None if tok is None else self._word_id(fold(tok))
+                        w = self._unk if wid is None else wid
+                    p = self._prob_ids(v, w, lam)
+                    log_sum += math.log(p) if p > 0.0 else -math.inf
+                    events += 1
+                    v = w
+        return log_sum, events
+
     def perplexity(self, lines: Iterable[str], *, lam: float | None = None) -> float:
         """Per-token perplexity of ``lines`` (messages), counting ``</s>`` and ``<unk>`` tokens.
 
         Text is cut by the same rules as in training. Returns ``inf`` if a token has
         probability 0 (possible only with λ = 1).
         """
-        lam = self.lam if lam is None else _check_lam(lam)
-        if isinstance(lines, str):
-            raise InvalidArgumentError("perplexity() takes an iterable of messages, not one string")
-        log_sum = 0.0
-        events = 0
-        for line in lines:
-            for sent in sentences(line):
-                v = self._bos
-                for tok in sent:
-                    wid = None if tok is None else self._word_id(fold(tok))
-                    w = self._unk if wid is None else wid
-                    p = self._prob_ids(v, w, lam)
-                    if p <= 0.0:
-                        return math.inf
-                    log_sum += math.log(p)
-                    events += 1
-                    v = w
-                p = self._prob_ids(v, self._eos, lam)
-                if p <= 0.0:
-                    return math.inf
-                log_sum += math.log(p)
-                events += 1
+        log_sum, events = self.log_likelihood(lines, lam=lam)
         if events == 0:
             raise InvalidArgumentError("no words to score: the text is empty")
         return math.exp(-log_sum / events)

@@ -1,0 +1,289 @@
+"""Keystroke simulation: how many keystrokes a model saves on held-out typing logs.
+
+The rules (also in README, "Measuring a model"):
+
+* An ideal user types each message left to right; messages are independent.
+* Words are the text rules' words (``nextword.text``). Before each letter of a word,
+  including the first, the engine is asked ``suggest(text_before_cursor, k)``. If the
+  intended word, spelled exactly as in the message, is among the suggestions, one tap
+  accepts it, and a single space that follows the word in the message is then free.
+  Otherwise the user types the next character.
+* Every other character (spaces, punctuation, digits) costs one keystroke.
+* Keystroke savings KSR = 1 − keystrokes / characters (the measure framed by Trnka &
+  McCoy 2008, "Evaluating word prediction: framing keystroke savings").
+
+The *ceiling* is a perfect predictor under the same rules: one tap per word, and the
+space after it free. Because the text before the cursor never depends on k (accepting a
+word produces exactly the message's text), one query with the largest k answers every
+smaller k too (the ranking is a total order, so the top k is the first k of the top
+k_max), and each cursor position is asked about at most once.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import dataclass, field
+from typing import Any, Callable, Iterable, Sequence
+
+import numpy as np
+
+from .errors import InvalidArgumentError
+from .model import Model, Suggestion
+from .text import _HAS_LETTER, _TOKEN_RE, fold, normalize
+
+__all__ = ["KStats", "LogStats", "simulate_message", "evaluate", "word_spans", "ceiling_keystrokes"]
+
+
+def word_spans(message: str) -> list[tuple[int, int]]:
+    """(start, end) of every word of an NFC-normalised message, by the text rules."""
+    spans = []
+    for m in _TOKEN_RE.finditer(message):
+        if m.lastgroup == "word":
+            s = m.group()
+            if s.isalpha() or _HAS_LETTER.search(s):
+                spans.append((m.start(), m.end()))
+    return spans
+
+
+def ceiling_keystrokes(message: str) -> int:
+    """Keystrokes of a perfect predictor: one tap per word, a following single space free."""
+    message = normalize(message)
+    spans = word_spans(message)
+    letters = sum(e - s for s, e in spans)
+    free = sum(1 for _, e in spans if message[e : e + 1] == " ")
+    return len(message) - letters + len(spans) - free
+
+
+@dataclass
+class KStats:
+    """Totals for one k over a set of messages."""
+
+    k: int
+    keystrokes: int = 0
+    characters: int = 0
+    ceiling_keystrokes: int = 0
+    words: int = 0
+    accepted: int = 0
+    hits_before_typing: int = 0
+    letters_before_accept: int = 0
+
+    @property
+    def ksr(self) -> float:
+        return 1.0 - self.keystrokes / self.characters if self.characters else 0.0
+
+    @property
+    def ceiling_ksr(self) -> float:
+        return 1.0 - self.ceiling_keystrokes / self.characters if self.characters else 0.0
+
+    @property
+    def ksr_of_ceiling(self) -> float:
+        return self.ksr / self.ceiling_ksr if self.ceiling_ksr > 0 else 0.0
+
+    @property
+    def hit_rate(self) -> float:
+        """Share of words offered before any of their letters was typed (hit@k)."""
+        return self.hits_before_typing / self.words if self.words else 0.0
+
+    @property
+    def mean_letters_before_accept(self) -> float:
+        return self.letters_before_accept / self.accepted if self.accepted else 0.0
+
+    def add(self, other: KStats) -> None:
+        for name in ("keystrokes", "characters", "ceiling_keystrokes", "words", "accepted",
+                     "hits_before_typing", "letters_before_accept"):
+            setattr(self, name, getattr(self, name) + getattr(other, name))
+
+    def as_dict(self) -> dict[str, Any]:
+        return {
+            "k": self.k,
+            "ksr": self.ksr,
+            "ceiling_ksr": self.ceiling_ksr,
+            "ksr_of_ceiling": self.ksr_of_ceiling,
+            "hit_rate": self.hit_rate,
+            "mean_letters_before_accept": self.mean_letters_before_accept,
+            "keystrokes": self.keystrokes,
+            "characters": self.characters,
+            "ceiling_keystrokes": self.ceiling_keystrokes,
+            "words": self.words,
+            "accepted_words": self.accepted,
+        }
+
+
+@dataclass
+class LogStats:
+    """Everything measured on one log (or, merged, on all of them)."""
+
+    name: str
+    ks: tuple[int, ...]
+    per_k: dict[int, KStats] = field(default_factory=dict)
+    messages: int = 0
+    latencies: list[float] = field(default_factory=list)
+    seconds: float = 0.0
+    log_likelihood: float = 0.0
+    events: int = 0
+    word_tokens: int = 0
+    oov_tokens: int = 0
+
+    def __post_init__(self) -> None:
+        if not self.per_k:
+            self.per_k = {k: KStats(k) for k in self.ks}
+
+    @property
+    def perplexity(self) -> float:
+        """Per-token perplexity (``</s>`` and ``<unk>`` tokens included)."""
+        return math.exp(-self.log_likelihood / self.events) if self.events else math.nan
+
+    @property
+    def oov_rate(self) -> float:
+        return self.oov_tokens / self.word_tokens if self.word_tokens else 0.0
+
+    def latency_summary(self) -> dict[str, float]:
+        if not self.latencies:
+            return {"calls": 0}
+        a = np.asarray(self.latencies) * 1e6
+        return {
+            "calls": len(a),
+            "p50_us": float(np.percentile(a, 50)),
+            "p95_us": float(np.percentile(a, 95)),
+            "p99_us": float(np.percentile(a, 99)),
+            "max_us": float(a.max()),
+            "engine_calls_per_second": float(len(a) / (a.sum() / 1e6)) if a.sum() > 0 else 0.0,
+            "end_to_end_calls_per_second": len(a) / self.seconds if self.seconds > 0 else 0.0,
+        }
+
+    def as_dict(self) -> dict[str, Any]:
+        return {
+            "name": self.name,
+            "messages": self.messages,
+            "perplexity": self.perplexity,
+            "oov_rate": self.oov_rate,
+            "word_tokens": self.word_tokens,
+            "per_k": [self.per_k[k].as_dict() for k in self.ks],
+            "latency": self.latency_summary(),
+            "seconds": self.seconds,
+        }
+
+
+SuggestFn = Callable[[str, int], Sequence[Suggestion]]
+
+
+def simulate_message(
+    suggest: SuggestFn,
+    message: str,
+    ks: Sequence[int],
+    *,
+    latencies: list[float] | None = None,
+) -> dict[int, KStats]:
+    """Replay one message under the rules above; returns per-k totals.
+
+    ``suggest(text_before_cursor, k)`` is called with the largest k, at most once per
+    cursor position, until the word is accepted for the smallest k. ``latencies``, if
+    given, receives the duration of every call in seconds.
+    """
+    message = normalize(message)
+    kmax = max(ks)
+    spans = word_spans(message)
+    out = {k: KStats(k, characters=len(message), words=len(spans)) for k in ks}
+    ceiling = ceiling_keystrokes(message)
+    letters = 0
+    free_spaces = {k: 0 for k in ks}
+    taps = {k: 0 for k in ks}
+    typed_letters = {k: 0 for k in ks}
+    clock = time.perf_counter
+    for start, end in spans:
+        word = message[start:end]
+        letters += end - start
+        accepted_at: dict[int, int] = {}
+        for j in range(end - start):
+            t0 = clock()
+            sugg = suggest(message[: start + j], kmax)
+            if latencies is not None:
+                latencies.append(clock() - t0)
+            for rank, s in enumerate(sugg):
+                if s.word == word:
+                    for k in ks:
+                        if k > rank and k not in accepted_at:
+                            accepted_at[k] = j
+                    break
+            if len(accepted_at) == len(ks):
+                break
+        follows_space = message[end : end + 1] == " "
+        for k in ks:
+            st = out[k]
+            if k in accepted_at:
+                j = accepted_at[k]
+                taps[k] += 1
+                typed_letters[k] += j
+                st.accepted += 1
+                st.letters_before_accept += j
+                st.hits_before_typing += j == 0
+                free_spaces[k] += follows_space
+            else:
+                typed_letters[k] += end - start
+    for k in ks:
+        st = out[k]
+        st.keystrokes = len(message) - letters + typed_letters[k] + taps[k] - free_spaces[k]
+        st.ceiling_keystrokes = ceiling
+    return out
+
+
+def evaluate(
+    model: Model,
+    logs: Iterable[tuple[str, Iterable[str]]],
+    ks: Sequence[int] = (1, 3, 5),
+    *,
+    lam: float | None = None,
+    progress: Callable[[int], None] | None = None,
+) -> tuple[LogStats, list[LogStats]]:
+    """Simulate typing every message of every log; returns (overall, per log).
+
+    ``logs`` yields (name, messages) pairs; each message iterable is consumed once
+    (perplexity and the out-of-vocabulary rate are computed on the same pass).
+    """
+    ks = tuple(sorted(set(ks)))
+    if not ks or any(isinstance(k, bool) or not isinstance(k, int) or k < 1 for k in ks):
+        raise InvalidArgumentError(f"k values must be integers >= 1, got {list(ks)!r}")
+
+    def suggest(text: str, k: int) -> list[Suggestion]:
+        return model.suggest(text, k, lam=lam)
+
+    overall = LogStats("all", ks)
+    per_log: list[LogStats] = []
+    done = 0
+    for name, messages in logs:
+        st = LogStats(name, ks)
+        kept: list[str] = []
+        t0 = time.perf_counter()
+        for message in messages:
+            if not message.strip():
+                continue
+            kept.append(message)
+            for k, ks_stats in simulate_message(suggest, message, ks, latencies=st.latencies).items():
+                st.per_k[k].add(ks_stats)
+            st.messages += 1
+            done += 1
+            if progress is not None and done % 64 == 0:
+                progress(done)
+        st.seconds = time.perf_counter() - t0
+        if kept:
+            st.log_likelihood, st.events = model.log_likelihood(kept, lam=lam)
+            for message in kept:
+                for s, e in word_spans(normalize(message)):
+                    st.word_tokens += 1
+                    st.oov_tokens += fold(message[s:e]) not in model
+        _merge(overall, st)
+        per_log.append(st)
+    return overall, per_log
+
+
+def _merge(into: LogStats, st: LogStats) -> None:
+    for k in into.ks:
+        into.per_k[k].add(st.per_k[k])
+    into.messages += st.messages
+    into.latencies.extend(st.latencies)
+    into.seconds += st.seconds
+    into.word_tokens += st.word_tokens
+    into.oov_tokens += st.oov_tokens
+    into.log_likelihood += st.log_likelihood
+    into.events += st.events
