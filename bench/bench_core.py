@@ -2,7 +2,7 @@
 
 Runs on the corpus made by ``bench/prepare_corpus.py`` (real public text, ≥ 5 million
 words) and compares, in the same run and on the same queries, the engine with the
-plain-dict implementation of the same formula (``bench/dict_baseline.py``). Figures
+plain-dict implementation of the same formula (``nextword.baselines.DictBigram``). Figures
 are written to ``bench/out/core.json`` and into ``bench/RESULTS.md`` between the
 ``core`` markers. This is a benchmark, not a test: nothing here fails on a slow machine.
 
@@ -31,6 +31,7 @@ HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
 import nextword  # noqa: E402
+from nextword.baselines import DictBigram  # noqa: E402
 from nextword.text import _TOKEN_RE, normalize  # noqa: E402
 
 
@@ -193,7 +194,7 @@ def main(argv: list[str] | None = None) -> int:
     # 3. the plain-dict implementation of the same formula, same queries (a subset: it is slow)
     t0 = time.perf_counter()
     with open(train, encoding="utf-8") as f:
-        base = __import__("dict_baseline").DictBigram(f)
+        base = DictBigram(f)
     base_fit = time.perf_counter() - t0
     model = nextword.load(model_path)
     gc.collect()

@@ -16,10 +16,12 @@ import time
 from typing import Any, NoReturn, Sequence
 
 from . import __version__
-from .corpus import FORMATS
+from ._progress import Progress
+from .corpus import FORMATS, iter_messages, open_sources
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT
 from .errors import InvalidArgumentError, NextwordError
-from .model import DEFAULT_LAMBDA, Model, load, train
+from .model import DEFAULT_LAMBDA, Model, load, train, train_texts
+from .text import fold
 
 __all__ = ["main"]
 
@@ -53,6 +55,16 @@ def _positive(text: str) -> int:
     return value
 
 
+def _percent(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole percentage 1-99, got {text!r}") from None
+    if not 1 <= value <= 99:
+        raise argparse.ArgumentTypeError(f"expected a whole percentage 1-99, got {text}")
+    return value
+
+
 def _parser() -> _Parser:
     p = _Parser(prog="nextword", description="Train and query compact next-word suggestion models.")
     p.add_argument("--version", action="version", version=f"nextword {__version__}")
@@ -80,6 +92,28 @@ def _parser() -> _Parser:
     i.add_argument("model")
     i.add_argument("--verify", action="store_true", help="read and check the whole file")
     i.add_argument("--json", action="store_true", help="print JSON")
+
+    e = sub.add_parser("eval", help="measure keystroke savings, accuracy and latency on typing logs")
+    e.add_argument("model")
+    e.add_argument("logs", nargs="+", metavar="LOG", help="held-out typing logs: text or JSON Lines (.gz ok)")
+    e.add_argument("-k", type=_positive, nargs="+", default=[1, 3, 5], help="suggestion counts (default 1 3 5)")
+    e.add_argument("--lam", type=_lam, default=None, help="override the model's λ")
+    e.add_argument("--format", choices=FORMATS, default="auto", help="log format (default: by file name)")
+    e.add_argument("--field", default="text", help="JSON Lines field holding the message (default %(default)s)")
+    e.add_argument("--no-baselines", action="store_true", help="skip the λ = 0 and λ = 0.999 runs")
+    e.add_argument("--train-data", nargs="+", metavar="FILE", help="training text: also time the plain-dict and nltk baselines")
+    e.add_argument("--baseline-queries", type=_positive, default=200, help="queries timed per slow baseline (default %(default)s)")
+    e.add_argument("--report", metavar="DIR", help="write report.md and plots into DIR")
+    e.add_argument("--json", action="store_true", help="print JSON")
+
+    sp = sub.add_parser("split", help="split logs into train and held-out parts by a hash of each message")
+    sp.add_argument("logs", nargs="+", metavar="LOG")
+    sp.add_argument("--test-percent", type=_percent, default=10, help="share held out (default %(default)s)")
+    sp.add_argument("--train-out", required=True, metavar="FILE", help="where the training part goes")
+    sp.add_argument("--test-out", required=True, metavar="FILE", help="where the held-out part goes")
+    sp.add_argument("--format", choices=FORMATS, default="auto")
+    sp.add_argument("--field", default="text")
+    sp.add_argument("--json", action="store_true", help="print the counts as JSON")
 
     lv = sub.add_parser("live", help="type in the terminal and watch suggestions update on every key")
     lv.add_argument("model")
@@ -178,6 +212,84 @@ def _cmd_info(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_eval(args: argparse.Namespace) -> int:
+    from .baselines import DictBigram, nltk_baseline, sample_queries, time_queries
+    from .evaluate import evaluate
+    from .report import eval_data, text_report, write_report
+
+    model = load(args.model, lam=args.lam)
+    ks = sorted(set(args.k))
+    logs = [(s.name, list(iter_messages([s]))) for s in open_sources(args.logs, fmt=args.format, field=args.field)]
+    bar = Progress("evaluating")
+    overall, per_log = evaluate(model, logs, ks, progress=lambda n: bar.update(0, 0, f"{n:,} messages"))
+    bar.done()
+    baselines: dict[str, Any] = {}
+    if not args.no_baselines:
+        baselines["lambda"] = {}
+        for label, lam in (("unigram only (λ = 0)", 0.0), ("bigram only (λ = 0.999)", 0.999)):
+            o, _ = evaluate(model, logs, ks, lam=lam)
+            baselines["lambda"][label] = o.as_dict()
+    if args.train_data:
+        train_msgs = list(iter_messages(open_sources(args.train_data, fmt=args.format, field=args.field)))
+        queries = sample_queries((m for _, msgs in logs for m in msgs), args.baseline_queries)
+        k = max(ks)
+        t0 = time.perf_counter()
+        train_texts(train_msgs, _scratch(), min_count=model.stats.get("min_count", 2))
+        ours_fit = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        base = DictBigram(train_msgs, min_count=model.stats.get("min_count", 2), max_vocab=model.stats.get("max_vocab", 30000))
+        fit = time.perf_counter() - t0
+        eng = time_queries(lambda q: model.suggest(q, k), queries)
+        slow = time_queries(lambda q: base.suggest_keys(q, k, model.lam), queries)
+        same = sum(
+            [fold(s.word) for s in model.suggest(q, k)] == [w for w, _ in base.suggest_keys(q, k, model.lam)]
+            for q in queries
+        )
+        eng_p50 = statistics.median(eng) * 1e6
+        baselines["dict"] = {
+            "fit_seconds": fit, "queries": len(queries), "p50_us": statistics.median(slow) * 1e6,
+            "engine_p50_us": eng_p50, "ratio_p50": statistics.median(slow) * 1e6 / eng_p50, "identical": same,
+        }
+        nq = queries[: max(1, min(len(queries), 20))]
+        n = nltk_baseline(train_msgs, nq, k, model.lam, min_count=model.stats.get("min_count", 2))
+        n_p50 = statistics.median(n["query_seconds"]) * 1e6
+        baselines["nltk"] = {
+            "fit_seconds": n["fit_seconds"], "fit_ratio": n["fit_seconds"] / ours_fit, "queries": len(nq),
+            "p50_us": n_p50, "ratio_p50": n_p50 / eng_p50, "engine_fit_seconds": ours_fit,
+        }
+    data = eval_data(args.model, overall, per_log, baselines)
+    if args.report:
+        write_report(args.report, data, overall.latencies)
+    if args.json:
+        print(json.dumps(data, indent=2, ensure_ascii=False))
+    else:
+        print(text_report(data, overall, per_log))
+    return 0
+
+
+def _scratch() -> str:
+    """A temporary model path for timing our own training next to a baseline's fit."""
+    import tempfile
+
+    return os.path.join(tempfile.mkdtemp(prefix="nextword-eval-"), "timing.nwm")
+
+
+def _cmd_split(args: argparse.Namespace) -> int:
+    from .evaluate import split_messages
+
+    counts = split_messages(
+        open_sources(args.logs, fmt=args.format, field=args.field),
+        args.train_out,
+        args.test_out,
+        test_percent=args.test_percent,
+    )
+    if args.json:
+        print(json.dumps(counts))
+    else:
+        print(f"wrote {counts['train']:,} messages to {args.train_out} and {counts['test']:,} to {args.test_out}")
+    return 0
+
+
 def _cmd_live(args: argparse.Namespace) -> int:
     from ._live import run_live
 
@@ -190,7 +302,14 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``nextword`` console script; returns the exit status."""
     try:
         args = _parser().parse_args(argv)
-        handler = {"train": _cmd_train, "suggest": _cmd_suggest, "info": _cmd_info, "live": _cmd_live}[args.command]
+        handler = {
+            "train": _cmd_train,
+            "suggest": _cmd_suggest,
+            "info": _cmd_info,
+            "eval": _cmd_eval,
+            "split": _cmd_split,
+            "live": _cmd_live,
+        }[args.command]
         return handler(args)
     except UsageError as e:
         print(f"nextword: error: {e}", file=sys.stderr)

@@ -20,7 +20,7 @@ from typing import Any, BinaryIO, Callable, Iterable, Iterator, Literal
 
 from .errors import InputDataError, InvalidArgumentError
 
-__all__ = ["Source", "open_sources", "iter_messages", "FORMATS"]
+__all__ = ["Source", "open_sources", "iter_messages", "iter_records", "FORMATS"]
 
 FORMATS = ("auto", "text", "jsonl")
 Format = Literal["auto", "text", "jsonl"]
@@ -110,6 +110,16 @@ def iter_messages(
     ``progress(done_bytes, total_bytes)`` is called now and then with positions in the
     raw (possibly compressed) files, so a caller can show how far it has got.
     """
+    for text, _ in iter_records(sources, progress=progress):
+        yield text
+
+
+def iter_records(
+    sources: list[Source],
+    *,
+    progress: Callable[[int, int], None] | None = None,
+) -> Iterator[tuple[str, bytes]]:
+    """Like :func:`iter_messages`, with each message's original line (bytes, newline included)."""
     total = sum(os.path.getsize(s.name) for s in sources if s.name != "-")
     done_before = 0
     for src in sources:
@@ -133,7 +143,7 @@ def _iter_one(
     done_before: int,
     total: int,
     progress: Callable[[int, int], None] | None,
-) -> Iterator[str]:
+) -> Iterator[tuple[str, bytes]]:
     fmt: str | None = None
     for lineno, line in enumerate(stream, 1):
         if fmt is None:
@@ -145,7 +155,7 @@ def _iter_one(
         except UnicodeDecodeError as e:
             raise InputDataError(f"{src.name}:{lineno}: not UTF-8 ({e.reason} at byte {e.start})") from None
         if fmt == "text":
-            yield text.rstrip("\r\n")
+            yield text.rstrip("\r\n"), line
             continue
         if not text.strip():
             continue
@@ -159,6 +169,6 @@ def _iter_one(
         if not isinstance(value, str):
             what = "missing" if value is None else f"a {type(value).__name__}, not a string"
             raise InputDataError(f"{src.name}:{lineno}: field {src.field!r} is {what}")
-        yield value
+        yield value, line
     if progress is not None and raw is not sys.stdin.buffer:
         progress(done_before + raw.tell(), total)

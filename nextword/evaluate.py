@@ -21,18 +21,32 @@ k_max), and each cursor position is asked about at most once.
 
 from __future__ import annotations
 
+import gzip
+import hashlib
 import math
+import os
 import time
 from dataclasses import dataclass, field
 from typing import Any, Callable, Iterable, Sequence
 
 import numpy as np
 
+from .corpus import Source, iter_records
 from .errors import InvalidArgumentError
+from .store import atomic_write
 from .model import Model, Suggestion
 from .text import _HAS_LETTER, _TOKEN_RE, fold, normalize
 
-__all__ = ["KStats", "LogStats", "simulate_message", "evaluate", "word_spans", "ceiling_keystrokes"]
+__all__ = [
+    "KStats",
+    "LogStats",
+    "simulate_message",
+    "evaluate",
+    "word_spans",
+    "ceiling_keystrokes",
+    "is_held_out",
+    "split_messages",
+]
 
 
 def word_spans(message: str) -> list[tuple[int, int]]:
@@ -287,3 +301,39 @@ def _merge(into: LogStats, st: LogStats) -> None:
     into.oov_tokens += st.oov_tokens
     into.log_likelihood += st.log_likelihood
     into.events += st.events
+
+
+def is_held_out(message: str, test_percent: int) -> bool:
+    """Deterministic split by the message's own text (SHA-1 of its UTF-8), never by file order."""
+    digest = hashlib.sha1(message.encode("utf-8")).digest()
+    return int.from_bytes(digest[:8], "big") % 100 < test_percent
+
+
+def split_messages(
+    sources: list[Source],
+    train_out: str | os.PathLike[str],
+    test_out: str | os.PathLike[str],
+    *,
+    test_percent: int = 10,
+) -> dict[str, int]:
+    """Copy each input line to ``train_out`` or ``test_out`` by :func:`is_held_out`.
+
+    Lines keep their original bytes (JSON Lines keep their other fields); an output
+    whose name ends in ``.gz`` is gzip-compressed. Both files are written atomically.
+    Returns the number of messages in each part.
+    """
+    if isinstance(test_percent, bool) or not isinstance(test_percent, int) or not 1 <= test_percent <= 99:
+        raise InvalidArgumentError(f"test_percent must be an integer in [1, 99], got {test_percent!r}")
+    parts: dict[str, list[bytes]] = {"train": [], "test": []}
+    for text, line in iter_records(sources):
+        if not text.strip():
+            continue
+        if not line.endswith(b"\n"):
+            line += b"\n"
+        parts["test" if is_held_out(text, test_percent) else "train"].append(line)
+    for name, path in (("train", train_out), ("test", test_out)):
+        data = b"".join(parts[name])
+        if os.fspath(path).endswith(".gz"):
+            data = gzip.compress(data, mtime=0)
+        atomic_write(path, [data])
+    return {"train": len(parts["train"]), "test": len(parts["test"])}

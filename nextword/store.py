@@ -16,7 +16,7 @@ import tempfile
 import zlib
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Final, Sequence, cast
+from typing import Any, Final, Iterable, cast
 
 import marisa_trie
 import msgpack
@@ -121,8 +121,8 @@ def topk_levels(n_pos: int) -> list[int]:
 # ----------------------------------------------------------------------------- writing
 
 
-def atomic_write(path: str | os.PathLike[str], chunks: Sequence[bytes | memoryview]) -> None:
-    """Write ``chunks`` to ``path`` so that readers see the old file or the whole new one.
+def atomic_write(path: str | os.PathLike[str], chunks: Iterable[bytes | memoryview]) -> None:
+    """Write ``chunks`` (streamed, consumed once) to ``path``: readers see the old file or the whole new one.
 
     A temporary file in the same directory is written, fsync'd and renamed over the
     target; the directory is fsync'd too so the rename survives a power cut.

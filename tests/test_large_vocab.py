@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from dict_baseline import DictBigram
+from nextword.baselines import DictBigram
 from hypothesis import given, settings
 from hypothesis import strategies as st
 

@@ -1,6 +1,6 @@
 """Invariants checked on random corpora (hypothesis), against the plain-dict oracle.
 
-The oracle (bench/dict_baseline.py) scores every vocabulary word by the formula and
+The oracle (nextword/baselines.py, DictBigram) scores every vocabulary word by the formula and
 sorts; the engine must return exactly the same words, in the same order, with the same
 probabilities, whatever the corpus, λ, k, context or prefix, and whatever the build
 settings that switch its candidate search between strategies.
@@ -14,7 +14,7 @@ from unittest.mock import patch
 from pathlib import Path
 
 import pytest
-from dict_baseline import DictBigram
+from nextword.baselines import DictBigram
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 

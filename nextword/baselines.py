@@ -1,0 +1,142 @@
+"""Baselines to measure the engine against, side by side in one run.
+
+:class:`DictBigram` is the same interpolated bigram model written the obvious way,
+with plain Python dicts: the version anyone would write first. It is also the test
+suite's oracle: it scores *every* vocabulary word, so the engine's bounded candidate
+search must reproduce its ranking exactly. It shares only the text rules
+(``nextword.text``) with the engine. :func:`nltk_baseline` times the general-purpose
+library a Python user would pick (nltk.lm, an optional dependency).
+"""
+
+from __future__ import annotations
+
+import time
+from collections import Counter
+from typing import Any, Callable, Iterable
+
+from .errors import InvalidArgumentError
+from .text import BOS, EOS, UNK, fold, parse_before_cursor, sentences
+
+__all__ = ["DictBigram", "nltk_baseline", "sample_queries", "time_queries"]
+
+
+class DictBigram:
+    """Counts in dicts; ``rank`` scores all words, sorts, and takes the first k."""
+
+    def __init__(self, messages: Iterable[str], *, min_count: int = 2, max_vocab: int = 30_000) -> None:
+        streams: list[list[str]] = []
+        word_counts: Counter[str] = Counter()
+        for message in messages:
+            for sent in sentences(message):
+                toks = [UNK if t is None else fold(t) for t in sent]
+                streams.append(toks)
+                word_counts.update(t for t in toks if t != UNK)
+        ranked = sorted((w for w, c in word_counts.items() if c >= min_count), key=lambda w: (-word_counts[w], w))
+        self.vocab: list[str] = ranked[:max_vocab]
+        self.known = known = set(self.vocab)
+        self.unigram: Counter[str] = Counter()
+        self.bigram: dict[str, Counter[str]] = {}
+        for toks in streams:
+            prev = BOS
+            for t in [*(t if t in known else UNK for t in toks), EOS]:
+                self.unigram[t] += 1
+                self.bigram.setdefault(prev, Counter())[t] += 1
+                prev = t
+        self.total = sum(self.unigram.values())
+        self.history = {v: sum(row.values()) for v, row in self.bigram.items()}
+
+    def _hist(self, previous: str | None) -> str:
+        if previous is None or previous == BOS:
+            return BOS
+        if previous == UNK:
+            return UNK
+        key = fold(previous)
+        return key if key in self.known else UNK
+
+    def prob(self, word: str, previous: str | None, lam: float) -> float:
+        v = self._hist(previous)
+        if word in (EOS, UNK):
+            w = word
+        else:
+            w = fold(word)
+            w = w if w in self.known else UNK
+        u = self.unigram[w] / self.total
+        cv = self.history.get(v, 0)
+        if cv == 0:
+            return u
+        return lam * (self.bigram[v][w] / cv) + (1.0 - lam) * u
+
+    def rank(self, previous: str | None, prefix: str, k: int, lam: float) -> list[tuple[str, float]]:
+        """Top k (key, P) among vocabulary words starting with ``prefix``: score all, sort."""
+        p = fold(prefix)
+        scored = [(self.prob(w, previous, lam), w) for w in self.vocab if w.startswith(p)]
+        scored.sort(key=lambda t: (-t[0], t[1]))
+        return [(w, s) for s, w in scored[:k]]
+
+    def suggest_keys(self, text_before_cursor: str, k: int, lam: float) -> list[tuple[str, float]]:
+        """The ranking for a typed text (no display spelling, no capitalisation)."""
+        ctx = parse_before_cursor(text_before_cursor)
+        return self.rank(ctx.previous, ctx.prefix, k, lam)
+
+
+def sample_queries(messages: Iterable[str], n: int) -> list[str]:
+    """The first ``n`` texts-before-cursor the keystroke simulation would ask about."""
+    from .evaluate import word_spans
+    from .text import normalize
+
+    out: list[str] = []
+    for message in messages:
+        message = normalize(message)
+        for start, end in word_spans(message):
+            for j in range(end - start):
+                out.append(message[: start + j])
+                if len(out) >= n:
+                    return out
+    return out
+
+
+def time_queries(suggest: Callable[[str], object], queries: list[str]) -> list[float]:
+    """Seconds per call of ``suggest`` on each query."""
+    times = []
+    for q in queries:
+        t0 = time.perf_counter()
+        suggest(q)
+        times.append(time.perf_counter() - t0)
+    return times
+
+
+def nltk_baseline(
+    train_messages: list[str], queries: list[str], k: int, lam: float, *, min_count: int = 2
+) -> dict[str, Any]:
+    """Fit nltk.lm's bigram MLE on the same tokens and answer top-k queries by scoring the vocabulary.
+
+    The interpolated score is λ·MLE(w | v) + (1 − λ)·MLE(w), computed from nltk's own
+    counts; every vocabulary word matching the prefix is scored, as a user of a
+    general-purpose library would do. Needs nltk (the ``baselines`` extra).
+    """
+    try:
+        from nltk.lm import MLE
+        from nltk.lm.preprocessing import pad_both_ends
+        from nltk.util import ngrams
+    except ImportError:
+        raise InvalidArgumentError("the nltk baseline needs nltk: pip install 'nextword[baselines]'") from None
+    t0 = time.perf_counter()
+    sents = [[UNK if t is None else fold(t) for t in s] for m in train_messages for s in sentences(m)]
+    padded = [list(pad_both_ends(s, n=2)) for s in sents]
+    from nltk.lm import Vocabulary
+
+    lm = MLE(2, vocabulary=Vocabulary((w for s in padded for w in s), unk_cutoff=min_count))
+    lm.fit([list(ngrams(s, 1)) + list(ngrams(s, 2)) for s in padded])
+    fit_seconds = time.perf_counter() - t0
+    words = sorted(w for w in lm.vocab if w not in (BOS, EOS, UNK, "<UNK>"))
+
+    def suggest(text: str) -> list[tuple[str, float]]:
+        ctx = parse_before_cursor(text)
+        prev = ctx.previous if ctx.previous in (BOS, UNK) else fold(ctx.previous)
+        p = fold(ctx.prefix)
+        scored = [(lam * lm.score(w, [prev]) + (1 - lam) * lm.score(w), w) for w in words if w.startswith(p)]
+        scored.sort(key=lambda t: (-t[0], t[1]))
+        return [(w, s) for s, w in scored[:k]]
+
+    times = time_queries(suggest, queries)
+    return {"fit_seconds": fit_seconds, "query_seconds": times, "vocabulary": len(words)}
