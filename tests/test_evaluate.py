@@ -192,3 +192,42 @@ def test_split_keeps_json_lines_whole(tmp_path: Path) -> None:
     back = [json.loads(x) for x in gzip.decompress(tr.read_bytes()).decode().splitlines()]
     back += [json.loads(x) for x in te.read_text().splitlines()]
     assert sorted(back, key=lambda r: r["user"]) == rows
+
+
+def test_eval_with_baselines_and_report(tmp_path: Path) -> None:
+    from pydoc_data.topics import topics  # real English shipped with CPython
+
+    lines = [ln for k in sorted(topics)[:30] for ln in topics[k].splitlines() if ln.strip()]
+    corpus = tmp_path / "all.txt"
+    corpus.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+
+    def cli(*args: str) -> subprocess.CompletedProcess[str]:
+        return subprocess.run([sys.executable, "-m", "nextword", *args], capture_output=True, text=True, env=env)
+
+    train, test = tmp_path / "train.txt", tmp_path / "test.txt"
+    assert cli("split", str(corpus), "--train-out", str(train), "--test-out", str(test), "--test-percent", "10").returncode == 0
+    model = tmp_path / "m.nwm"
+    assert cli("train", str(train), "-o", str(model)).returncode == 0
+    r = cli("eval", str(model), str(test), "-k", "1", "3", "--train-data", str(train),
+            "--baseline-queries", "30", "--report", str(tmp_path / "rep"))
+    assert r.returncode == 0, r.stderr
+    out = r.stdout
+    for needle in ("KSR", "unigram only (λ = 0)", "bigram only (λ = 0.999)", "plain-dict implementation",
+                   "identical rankings 30 of 30", "nltk.lm MLE(2)", "calls/s end to end"):
+        assert needle in out, needle
+    md = (tmp_path / "rep" / "report.md").read_text()
+    assert "## Baselines, same logs, same run" in md and "| this model |" in md
+    try:
+        import matplotlib  # noqa: F401
+    except ImportError:
+        assert "Plots skipped" in md
+    else:
+        assert (tmp_path / "rep" / "ksr.png").stat().st_size > 1000
+
+
+def test_bad_k_for_eval_is_a_usage_error(tmp_path: Path) -> None:
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    r = subprocess.run([sys.executable, "-m", "nextword", "eval", "m.nwm", "x.txt", "-k", "0"],
+                       capture_output=True, text=True, env=env)
+    assert r.returncode == 2 and r.stderr.count("\n") == 1 and "-k" in r.stderr
