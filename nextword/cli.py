@@ -115,6 +115,21 @@ def _parser() -> _Parser:
     sp.add_argument("--field", default="text")
     sp.add_argument("--json", action="store_true", help="print the counts as JSON")
 
+    tu = sub.add_parser("tune", help="choose λ on held-out text (perplexity by EM, keystrokes by search, per history count)")
+    tu.add_argument("model")
+    tu.add_argument("heldout", nargs="+", metavar="HELDOUT", help="held-out text or JSON Lines (.gz ok), never the test text")
+    tu.add_argument("-k", type=_positive, default=3, help="suggestions for the keystroke objective (default %(default)s)")
+    tu.add_argument("--objective", choices=("perplexity", "keystrokes"), default="perplexity")
+    tu.add_argument("--buckets", action="store_true", help="fit λ per history-count bucket (perplexity objective)")
+    tu.add_argument("--min-bucket-events", type=_positive, default=500, help="held-out tokens per bucket (default %(default)s)")
+    tu.add_argument("--test-percent", type=int, default=0, metavar="P",
+                    help="hold P%% of HELDOUT out of tuning (by hash) and report before/after on it")
+    tu.add_argument("-o", "--output", metavar="NEW_MODEL", help="write the model with the chosen λ here (atomically)")
+    tu.add_argument("--format", choices=FORMATS, default="auto")
+    tu.add_argument("--field", default="text")
+    tu.add_argument("--report", metavar="DIR", help="write tune.md and curve plots into DIR")
+    tu.add_argument("--json", action="store_true", help="print JSON")
+
     lv = sub.add_parser("live", help="type in the terminal and watch suggestions update on every key")
     lv.add_argument("model")
     lv.add_argument("-k", type=_positive, default=5, help="suggestions shown (default %(default)s)")
@@ -290,6 +305,138 @@ def _cmd_split(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_tune(args: argparse.Namespace) -> int:
+    from .evaluate import evaluate, is_held_out
+    from .store import rewrite_model
+    from .tune import events_of, fit_buckets, keystroke_search, optimal_lambda, perplexity_at
+
+    if not 0 <= args.test_percent <= 90:
+        raise UsageError(f"argument --test-percent: expected 0-90, got {args.test_percent}")
+    if args.buckets and args.objective != "perplexity":
+        raise UsageError("--buckets fits λ per bucket by perplexity; use it with --objective perplexity")
+    model = load(args.model)
+    messages = [m for m in iter_messages(open_sources(args.heldout, fmt=args.format, field=args.field)) if m.strip()]
+    if args.test_percent:
+        tune_msgs = [m for m in messages if not is_held_out(m, args.test_percent, salt="tune:")]
+        test_msgs = [m for m in messages if is_held_out(m, args.test_percent, salt="tune:")]
+        used = f"tuned on {len(tune_msgs):,} messages; before/after on {len(test_msgs):,} others held out by hash ({args.test_percent}%)"
+    else:
+        tune_msgs, test_msgs = messages, messages
+        used = f"tuned and measured on the same {len(tune_msgs):,} messages (optimistic; use --test-percent)"
+    if not tune_msgs or not test_msgs:
+        raise InvalidArgumentError("not enough held-out messages to tune and measure")
+    bar = Progress("tuning")
+    bar.update(0, 0, "counting held-out events")
+    ev = events_of(model, tune_msgs)
+    b, u = ev.bu()
+    ppl_lam = optimal_lambda(b, u)
+    lams = [0.0, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 0.95, 0.99, round(ppl_lam, 4)]
+    ppl_curve = {lam: perplexity_at(ev, lam) for lam in sorted(set(lams))}
+    ksr_curve: dict[float, float] = {}
+    buckets = None
+    if args.objective == "keystrokes":
+        bar.update(0, 0, "searching λ for keystroke savings")
+        chosen, ksr_curve = keystroke_search(model, tune_msgs, k=args.k)
+    else:
+        chosen = ppl_lam
+        if args.buckets:
+            buckets = fit_buckets(ev, min_events=args.min_bucket_events)
+    bar.done()
+
+    def measure(m: Model) -> dict[str, float]:
+        overall, _ = evaluate(m, [("test", test_msgs)], (args.k,))
+        return {"perplexity": overall.perplexity, "ksr": overall.per_k[args.k].ksr}
+
+    before = measure(model)
+    result: dict[str, Any] = {
+        "model": args.model,
+        "objective": args.objective,
+        "held_out_use": used,
+        "stored_lambda": model.stored_lam,
+        "perplexity_optimal_lambda": ppl_lam,
+        "chosen_lambda": chosen,
+        "buckets": None if buckets is None else {**buckets.as_meta(), "events": buckets.events},
+        "perplexity_curve": [{"lambda": k, "perplexity": v} for k, v in ppl_curve.items()],
+        "ksr_curve": [{"lambda": k, "ksr": v} for k, v in ksr_curve.items()],
+        "k": args.k,
+        "before": before,
+    }
+    if args.output:
+        rewrite_model(args.model, args.output, lam=chosen, buckets=None if buckets is None else buckets.as_meta())
+        result["output"] = args.output
+        result["after"] = measure(load(args.output))
+    else:
+        tuned = load(args.model, lam=chosen)
+        result["after"] = measure(tuned) if buckets is None else None
+    if args.report:
+        _tune_report(args.report, result)
+    if args.json:
+        print(json.dumps(result, indent=2))
+        return 0
+    print(f"model: {args.model}; {used}")
+    print(f"{'λ':>8} {'perplexity':>11}" + (f" {'KSR@' + str(args.k):>8}" if ksr_curve else ""))
+    for lam in sorted(set(ppl_curve) | set(ksr_curve)):
+        ppl = f"{ppl_curve[lam]:11.2f}" if lam in ppl_curve else f"{perplexity_at(ev, lam):11.2f}"
+        ksr = f" {100 * ksr_curve[lam]:7.2f}%" if lam in ksr_curve else ""
+        print(f"{lam:8.4f} {ppl}{ksr}")
+    print(f"perplexity-optimal λ = {ppl_lam:.4f}; chosen λ = {chosen:.4f} ({args.objective})")
+    if buckets is not None:
+        spans = [f"c(v)<{buckets.bounds[0]}"] + [f"{a}≤c(v)<{b}" for a, b in zip(buckets.bounds, buckets.bounds[1:])]
+        spans.append(f"c(v)≥{buckets.bounds[-1]}" if buckets.bounds else "all")
+        for span, lam, n in zip(spans, buckets.lambdas, buckets.events):
+            print(f"  bucket {span:>22}: λ = {lam:.4f} ({n:,} held-out tokens)")
+    after = result.get("after")
+    line = f"before (λ = {model.stored_lam}): perplexity {before['perplexity']:.2f}, KSR@{args.k} {100 * before['ksr']:.2f}%"
+    if after:
+        line += f"; after: perplexity {after['perplexity']:.2f}, KSR@{args.k} {100 * after['ksr']:.2f}%"
+    print(line)
+    if args.output:
+        print(f"wrote {args.output}")
+    return 0
+
+
+def _tune_report(out_dir: str, result: dict[str, Any]) -> None:
+    from pathlib import Path
+
+    from .store import atomic_write
+
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    lines = [f"# λ tuning of `{result['model']}`", "", result["held_out_use"], "", "| λ | perplexity |", "|---|---|"]
+    lines += [f"| {r['lambda']:.4f} | {r['perplexity']:.2f} |" for r in result["perplexity_curve"]]
+    if result["ksr_curve"]:
+        lines += ["", f"| λ | KSR@{result['k']} |", "|---|---|"]
+        lines += [f"| {r['lambda']:.4f} | {100 * r['ksr']:.2f}% |" for r in result["ksr_curve"]]
+    try:
+        import matplotlib
+
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt
+    except ImportError:
+        lines += ["", "_Plots skipped: matplotlib is not installed (pip install 'nextword[plot]')._"]
+    else:
+        fig, ax = plt.subplots(figsize=(5, 3.5))
+        pc = result["perplexity_curve"]
+        ax.plot([r["lambda"] for r in pc], [r["perplexity"] for r in pc], "o-")
+        ax.set_xlabel("λ")
+        ax.set_ylabel("held-out perplexity")
+        fig.tight_layout()
+        fig.savefig(out / "perplexity.png", dpi=120)
+        plt.close(fig)
+        lines += ["", "![perplexity](perplexity.png)"]
+        if result["ksr_curve"]:
+            fig, ax = plt.subplots(figsize=(5, 3.5))
+            kc = result["ksr_curve"]
+            ax.plot([r["lambda"] for r in kc], [100 * r["ksr"] for r in kc], "o-")
+            ax.set_xlabel("λ")
+            ax.set_ylabel(f"KSR@{result['k']} (%)")
+            fig.tight_layout()
+            fig.savefig(out / "ksr.png", dpi=120)
+            plt.close(fig)
+            lines += ["", "![ksr](ksr.png)"]
+    atomic_write(out / "tune.md", [("\n".join(lines) + "\n").encode("utf-8")])
+
+
 def _cmd_live(args: argparse.Namespace) -> int:
     from ._live import run_live
 
@@ -308,6 +455,7 @@ def main(argv: Sequence[str] | None = None) -> int:
             "info": _cmd_info,
             "eval": _cmd_eval,
             "split": _cmd_split,
+            "tune": _cmd_tune,
             "live": _cmd_live,
         }[args.command]
         return handler(args)

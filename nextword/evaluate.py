@@ -303,9 +303,13 @@ def _merge(into: LogStats, st: LogStats) -> None:
     into.events += st.events
 
 
-def is_held_out(message: str, test_percent: int) -> bool:
-    """Deterministic split by the message's own text (SHA-1 of its UTF-8), never by file order."""
-    digest = hashlib.sha1(message.encode("utf-8")).digest()
+def is_held_out(message: str, test_percent: int, *, salt: str = "") -> bool:
+    """Deterministic split by the message's own text (SHA-1 of salt + UTF-8), never by file order.
+
+    Different salts give independent splits: ``nextword tune --test-percent`` uses its own
+    salt, so splitting an already held-out file again does not put everything on one side.
+    """
+    digest = hashlib.sha1((salt + message).encode("utf-8")).digest()
     return int.from_bytes(digest[:8], "big") % 100 < test_percent
 
 

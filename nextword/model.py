@@ -132,6 +132,11 @@ class Model:
         self.stats: dict[str, int] = dict(meta.get("stats", {}))
         self.stored_lam: float = meta["lambda"]
         self.lam: float = self.stored_lam if lam is None else _check_lam(lam)
+        # λ by history count (optional): bucket i holds histories with bounds[i-1] <= c(v) < bounds[i]
+        buckets = meta.get("lambda_buckets") or {}
+        self.lambda_bounds: list[int] = list(buckets.get("bounds", []))
+        self.lambda_values: list[float] = [float(x) for x in buckets.get("lambdas", [])]
+        self._override = lam is not None
         self.file_size = arrays.file_size
         self.format_version = arrays.version
         n = self.n_words
@@ -295,6 +300,19 @@ class Model:
 
     # -- probabilities ----------------------------------------------------------------------
 
+    def lam_for(self, cv: int) -> float:
+        """The λ used for a history seen ``cv`` times (the stored buckets, else the single λ)."""
+        if self._override or not self.lambda_values:
+            return self.lam
+        return self.lambda_values[bisect.bisect_right(self.lambda_bounds, cv)]
+
+    def _lam_of(self, v: int, lam: float | None) -> float:
+        if lam is not None:
+            return lam
+        if self._override or not self.lambda_values:
+            return self.lam
+        return self.lambda_values[bisect.bisect_right(self.lambda_bounds, self._hist(v))]
+
     def _prob_ids(self, v: int, w: int, lam: float) -> float:
         cv = self._hist(v)
         u = self._mv_unig[w] / self.total
@@ -308,8 +326,9 @@ class Model:
         Words are case-insensitive. ``'</s>'`` asks for the end of the sentence; a word
         outside the vocabulary gets the probability of ``<unk>``, as in perplexity.
         """
-        lam = self.lam if lam is None else _check_lam(lam)
-        return self._prob_ids(self._history_id(previous_word), self._predicted_id(word), lam)
+        lam = None if lam is None else _check_lam(lam)
+        v = self._history_id(previous_word)
+        return self._prob_ids(v, self._predicted_id(word), self._lam_of(v, lam))
 
     def log_likelihood(self, lines: Iterable[str], *, lam: float | None = None) -> tuple[float, int]:
         """(Σ ln P, number of predicted tokens) over ``lines``, ``</s>`` and ``<unk>`` included.
@@ -317,7 +336,7 @@ class Model:
         The parts of :meth:`perplexity`, so that results over several texts can be pooled.
         The sum is ``-inf`` if a token has probability 0 (possible only with λ = 1).
         """
-        lam = self.lam if lam is None else _check_lam(lam)
+        lam = None if lam is None else _check_lam(lam)
         if isinstance(lines, str):
             raise InvalidArgumentError("expected an iterable of messages, not one string")
         log_sum = 0.0
@@ -331,11 +350,35 @@ class Model:
                     else:
                         wid = None if tok is None else self._word_id(fold(tok))
                         w = self._unk if wid is None else wid
-                    p = self._prob_ids(v, w, lam)
+                    p = self._prob_ids(v, w, self._lam_of(v, lam))
                     log_sum += math.log(p) if p > 0.0 else -math.inf
                     events += 1
                     v = w
         return log_sum, events
+
+    def events(self, lines: Iterable[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(c(v), c(v, w), c(w)) for every predicted token of ``lines``, as int64 arrays.
+
+        Everything λ-tuning needs: P(w | v) = λ·c(v,w)/c(v) + (1−λ)·c(w)/N, or c(w)/N
+        when c(v) = 0. Tokens are cut exactly as in :meth:`log_likelihood`.
+        """
+        if isinstance(lines, str):
+            raise InvalidArgumentError("expected an iterable of messages, not one string")
+        cv, cvw, cw = [], [], []
+        for line in lines:
+            for sent in sentences(line):
+                v = self._bos
+                for tok in [*sent, EOS]:  # no word contains "<", so EOS marks the end
+                    if tok == EOS:
+                        w = self._eos
+                    else:
+                        wid = None if tok is None else self._word_id(fold(tok))
+                        w = self._unk if wid is None else wid
+                    cv.append(self._hist(v))
+                    cvw.append(self._pair_count(v, w))
+                    cw.append(self._mv_unig[w])
+                    v = w
+        return (np.asarray(cv, dtype=np.int64), np.asarray(cvw, dtype=np.int64), np.asarray(cw, dtype=np.int64))
 
     def perplexity(self, lines: Iterable[str], *, lam: float | None = None) -> float:
         """Per-token perplexity of ``lines`` (messages), counting ``</s>`` and ``<unk>`` tokens.
@@ -551,7 +594,7 @@ class Model:
         if not isinstance(text_before_cursor, str):
             raise InvalidArgumentError(f"text_before_cursor must be str, got {type(text_before_cursor).__name__}")
         k = _check_k(k)
-        lam = self.lam if lam is None else _check_lam(lam)
+        lam = None if lam is None else _check_lam(lam)
         ctx = parse_before_cursor(text_before_cursor)
         if ctx.previous == BOS:
             v = self._bos
@@ -564,7 +607,7 @@ class Model:
         if lo >= hi:
             return []
         try:
-            ranked = self._rank(v, lo, hi, k, lam)
+            ranked = self._rank(v, lo, hi, k, self._lam_of(v, lam))
             at_start = v == self._bos
             shown = self._display_cache
             return [
@@ -580,13 +623,13 @@ class Model:
         keys are the case-folded vocabulary keys.
         """
         k = _check_k(k)
-        lam = self.lam if lam is None else _check_lam(lam)
+        lam = None if lam is None else _check_lam(lam)
         v = self._history_id(previous_word)
         lo, hi = self._prefix_range(fold(prefix))
         if lo >= hi:
             return []
         try:
-            return [(self._key(i), p) for i, p in self._rank(v, lo, hi, k, lam)]
+            return [(self._key(i), p) for i, p in self._rank(v, lo, hi, k, self._lam_of(v, lam))]
         except (IndexError, ValueError) as e:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
 
@@ -605,6 +648,9 @@ class Model:
             "bytes_per_bigram": self.file_size / self.n_bigrams if self.n_bigrams else None,
             "bigram_section_bytes_per_bigram": bigram_bytes / self.n_bigrams if self.n_bigrams else None,
             "lambda": self.stored_lam,
+            "lambda_buckets": (
+                {"bounds": self.lambda_bounds, "lambdas": self.lambda_values} if self.lambda_values else None
+            ),
             "tokens": self.total,
             "corpus": self.stats,
         }

@@ -30,6 +30,7 @@ __all__ = [
     "FORMAT_VERSION",
     "write_model",
     "read_model",
+    "rewrite_model",
     "ModelArrays",
     "atomic_write",
     "DEFAULT_SKYBAND_K",
@@ -39,6 +40,8 @@ __all__ = [
 
 MAGIC: Final = b"\x89NWM\r\n\x1a\n"
 FORMAT_VERSION: Final = (1, 0)
+#: Minor version 1 adds λ by history count (META "lambda_buckets"); files without it stay 1.0.
+MAX_MINOR: Final = 1
 HEADER = struct.Struct("<8sHHIQII")  # magic, major, minor, sections, file size, table crc, header crc
 ENTRY = struct.Struct("<4sB3xQQI4x")  # tag, dtype code, offset, length, crc
 MAX_SECTIONS: Final = 64
@@ -360,7 +363,7 @@ def build_sections(
     ]
 
 
-def encode_sections(sections: list[tuple[bytes, np.dtype | None, bytes | np.ndarray]]) -> list[bytes]:
+def encode_sections(sections: list[tuple[bytes, np.dtype | None, bytes | np.ndarray]], *, minor: int = 0) -> list[bytes]:
     """Lay sections out after the header and table; returns the file as byte chunks."""
     table_end = HEADER.size + ENTRY.size * len(sections)
     offset = -(-table_end // ALIGN) * ALIGN
@@ -380,7 +383,7 @@ def encode_sections(sections: list[tuple[bytes, np.dtype | None, bytes | np.ndar
         payloads.append(raw + b"\0" * padding)
         offset += len(raw) + padding
     table = b"".join(entries)
-    head = HEADER.pack(MAGIC, FORMAT_VERSION[0], FORMAT_VERSION[1], len(sections), offset, zlib.crc32(table), 0)
+    head = HEADER.pack(MAGIC, FORMAT_VERSION[0], minor, len(sections), offset, zlib.crc32(table), 0)
     head = head[:-4] + struct.pack("<I", zlib.crc32(head[:-4]))
     gap = b"\0" * (-(-table_end // ALIGN) * ALIGN - table_end)
     return [head, table, gap, *payloads]
@@ -397,6 +400,41 @@ def write_model(
     """Build the model arrays from ``tables`` and write them atomically to ``path``."""
     sections = build_sections(tables, lam=lam, skyband_k=skyband_k, skyband_min=skyband_min)
     atomic_write(path, encode_sections(sections))
+
+
+def rewrite_model(
+    src: str | os.PathLike[str],
+    dst: str | os.PathLike[str],
+    *,
+    lam: float,
+    buckets: dict[str, list[Any]] | None = None,
+) -> None:
+    """Copy a model with a new stored λ (and optionally λ by history count), atomically.
+
+    The source is fully verified first and never modified; ``dst`` must be another file.
+    ``buckets`` is ``{"bounds": [c1 < c2 < ...], "lambdas": [λ0, λ1, ...]}`` (one more λ
+    than bounds); such files are written as format version 1.1.
+    """
+    if os.path.exists(dst) and os.path.samefile(src, dst):
+        raise InvalidArgumentError(f"{os.fspath(dst)}: the tuned model must go to a new file, not over its input")
+    arrays = read_model(src, verify=True)
+    meta = dict(arrays.meta)
+    meta["lambda"] = float(lam)
+    meta.pop("lambda_buckets", None)
+    if buckets is not None:
+        meta["lambda_buckets"] = {"bounds": [int(b) for b in buckets["bounds"]], "lambdas": [float(x) for x in buckets["lambdas"]]}
+    sections: list[tuple[bytes, np.dtype | None, bytes | np.ndarray]] = []
+    for tag, kind in _SECTIONS.items():
+        label = tag.decode()
+        if tag == b"META":
+            sections.append((tag, None, msgpack.packb(meta, use_bin_type=True)))
+        elif kind == "raw":
+            sections.append((tag, None, bytes(arrays.raw[label])))
+        else:
+            arr = arrays.arrays[label]
+            sections.append((tag, arr.dtype, np.array(arr)))
+    _check_meta(os.fspath(dst), msgpack.unpackb(sections[0][2], raw=False), 1 << 62)  # type: ignore[arg-type]
+    atomic_write(dst, encode_sections(sections, minor=1 if buckets is not None else 0))
 
 
 # ----------------------------------------------------------------------------- reading
@@ -461,8 +499,10 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
         raise _fail(name, "not a nextword model (bad magic bytes)")
     if zlib.crc32(buf[: HEADER.size - 4]) != head_crc:
         raise _fail(name, "header checksum mismatch (damaged file)")
-    if major != FORMAT_VERSION[0]:
-        raise _fail(name, f"unsupported format version {major}.{minor} (this library reads {FORMAT_VERSION[0]}.x)")
+    if major != FORMAT_VERSION[0] or minor > MAX_MINOR:
+        raise _fail(
+            name, f"unsupported format version {major}.{minor} (this library reads {FORMAT_VERSION[0]}.0 to {FORMAT_VERSION[0]}.{MAX_MINOR})"
+        )
     if file_size != size:
         raise _fail(name, f"file is {size} bytes but its header says {file_size} (truncated or appended)")
     if not 1 <= n_sec <= MAX_SECTIONS:
@@ -558,6 +598,21 @@ def _check_meta(name: str, meta: Any, size: int) -> dict[str, Any]:
         raise _fail(name, f"metadata field 'topk_fanout' is invalid: {meta.get('topk_fanout')!r}")
     if not isinstance(meta.get("stats", {}), dict):
         raise _fail(name, "metadata field 'stats' is invalid")
+    buckets = meta.get("lambda_buckets")
+    if buckets is not None:
+        bounds = buckets.get("bounds") if isinstance(buckets, dict) else None
+        lams = buckets.get("lambdas") if isinstance(buckets, dict) else None
+        ok = (
+            isinstance(bounds, list)
+            and isinstance(lams, list)
+            and len(lams) == len(bounds) + 1
+            and len(bounds) <= 64
+            and all(isinstance(b, int) and not isinstance(b, bool) and b >= 1 for b in bounds)
+            and all(a < b for a, b in zip(bounds, bounds[1:]))
+            and all(isinstance(x, (int, float)) and not isinstance(x, bool) and 0.0 <= x <= 1.0 for x in lams)
+        )
+        if not ok:
+            raise _fail(name, f"metadata field 'lambda_buckets' is invalid: {buckets!r}"[:300])
     return meta
 
 
