@@ -158,7 +158,7 @@ def fit_buckets(events: Events, *, min_events: int = 500, base: float = 2.0) -> 
     # counts per bin [edges[i], edges[i+1])
     per_bin = [int(np.count_nonzero((cv >= a) & (cv < b))) for a, b in zip(edges, edges[1:])]
     groups: list[list[int]] = []  # each a list of bin indices
-    for i, n in enumerate(per_bin):
+    for i in range(len(per_bin)):
         if groups and sum(per_bin[j] for j in groups[-1]) < min_events:
             groups[-1].append(i)
         else:
