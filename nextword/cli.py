@@ -121,6 +121,7 @@ def _parser() -> _Parser:
     tu.add_argument("-k", type=_positive, default=3, help="suggestions for the keystroke objective (default %(default)s)")
     tu.add_argument("--objective", choices=("perplexity", "keystrokes"), default="perplexity")
     tu.add_argument("--buckets", action="store_true", help="fit λ per history-count bucket (perplexity objective)")
+    tu.add_argument("--no-ksr-curve", action="store_true", help="skip the keystroke simulation curve (perplexity objective)")
     tu.add_argument("--min-bucket-events", type=_positive, default=500, help="held-out tokens per bucket (default %(default)s)")
     tu.add_argument("--test-percent", type=int, default=0, metavar="P",
                     help="hold P%% of HELDOUT out of tuning (by hash) and report before/after on it")
@@ -334,9 +335,12 @@ def _cmd_tune(args: argparse.Namespace) -> int:
     ppl_curve = {lam: perplexity_at(ev, lam) for lam in sorted(set(lams))}
     ksr_curve: dict[float, float] = {}
     buckets = None
-    if args.objective == "keystrokes":
+    ksr_lam = None
+    if args.objective == "keystrokes" or not args.no_ksr_curve:
         bar.update(0, 0, "searching λ for keystroke savings")
-        chosen, ksr_curve = keystroke_search(model, tune_msgs, k=args.k)
+        ksr_lam, ksr_curve = keystroke_search(model, tune_msgs, k=args.k)
+    if args.objective == "keystrokes":
+        chosen = ksr_lam
     else:
         chosen = ppl_lam
         if args.buckets:
@@ -354,6 +358,7 @@ def _cmd_tune(args: argparse.Namespace) -> int:
         "held_out_use": used,
         "stored_lambda": model.stored_lam,
         "perplexity_optimal_lambda": ppl_lam,
+        "keystroke_optimal_lambda": ksr_lam,
         "chosen_lambda": chosen,
         "buckets": None if buckets is None else {**buckets.as_meta(), "events": buckets.events},
         "perplexity_curve": [{"lambda": k, "perplexity": v} for k, v in ppl_curve.items()],
@@ -379,7 +384,8 @@ def _cmd_tune(args: argparse.Namespace) -> int:
         ppl = f"{ppl_curve[lam]:11.2f}" if lam in ppl_curve else f"{perplexity_at(ev, lam):11.2f}"
         ksr = f" {100 * ksr_curve[lam]:7.2f}%" if lam in ksr_curve else ""
         print(f"{lam:8.4f} {ppl}{ksr}")
-    print(f"perplexity-optimal λ = {ppl_lam:.4f}; chosen λ = {chosen:.4f} ({args.objective})")
+    ksr_note = f"; keystroke-optimal λ (k = {args.k}) = {ksr_lam:.4f}" if ksr_lam is not None else ""
+    print(f"perplexity-optimal λ = {ppl_lam:.4f}{ksr_note}; chosen λ = {chosen:.4f} ({args.objective})")
     if buckets is not None:
         spans = [f"c(v)<{buckets.bounds[0]}"] + [f"{a}≤c(v)<{b}" for a, b in zip(buckets.bounds, buckets.bounds[1:])]
         spans.append(f"c(v)≥{buckets.bounds[-1]}" if buckets.bounds else "all")
