@@ -337,10 +337,18 @@ class Model:
         The sum is ``-inf`` if a token has probability 0 (possible only with λ = 1).
         """
         lam = None if lam is None else _check_lam(lam)
-        if isinstance(lines, str):
-            raise InvalidArgumentError("expected an iterable of messages, not one string")
         log_sum = 0.0
         events = 0
+        for v, w in self._token_pairs(lines):
+            p = self._prob_ids(v, w, self._lam_of(v, lam))
+            log_sum += math.log(p) if p > 0.0 else -math.inf
+            events += 1
+        return log_sum, events
+
+    def _token_pairs(self, lines: Iterable[str]) -> Iterator[tuple[int, int]]:
+        """(history id, predicted id) for every predicted token, cut as in training."""
+        if isinstance(lines, str):
+            raise InvalidArgumentError("expected an iterable of messages, not one string")
         for line in lines:
             for sent in sentences(line):
                 v = self._bos
@@ -350,11 +358,8 @@ class Model:
                     else:
                         wid = None if tok is None else self._word_id(fold(tok))
                         w = self._unk if wid is None else wid
-                    p = self._prob_ids(v, w, self._lam_of(v, lam))
-                    log_sum += math.log(p) if p > 0.0 else -math.inf
-                    events += 1
+                    yield v, w
                     v = w
-        return log_sum, events
 
     def events(self, lines: Iterable[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(c(v), c(v, w), c(w)) for every predicted token of ``lines``, as int64 arrays.
@@ -362,22 +367,11 @@ class Model:
         Everything λ-tuning needs: P(w | v) = λ·c(v,w)/c(v) + (1−λ)·c(w)/N, or c(w)/N
         when c(v) = 0. Tokens are cut exactly as in :meth:`log_likelihood`.
         """
-        if isinstance(lines, str):
-            raise InvalidArgumentError("expected an iterable of messages, not one string")
         cv, cvw, cw = [], [], []
-        for line in lines:
-            for sent in sentences(line):
-                v = self._bos
-                for tok in [*sent, EOS]:  # no word contains "<", so EOS marks the end
-                    if tok == EOS:
-                        w = self._eos
-                    else:
-                        wid = None if tok is None else self._word_id(fold(tok))
-                        w = self._unk if wid is None else wid
-                    cv.append(self._hist(v))
-                    cvw.append(self._pair_count(v, w))
-                    cw.append(self._mv_unig[w])
-                    v = w
+        for v, w in self._token_pairs(lines):
+            cv.append(self._hist(v))
+            cvw.append(self._pair_count(v, w))
+            cw.append(self._mv_unig[w])
         return (np.asarray(cv, dtype=np.int64), np.asarray(cvw, dtype=np.int64), np.asarray(cw, dtype=np.int64))
 
     def perplexity(self, lines: Iterable[str], *, lam: float | None = None) -> float:
