@@ -339,7 +339,7 @@ def _cmd_tune(args: argparse.Namespace) -> int:
     if args.objective == "keystrokes" or not args.no_ksr_curve:
         bar.update(0, 0, "searching λ for keystroke savings")
         ksr_lam, ksr_curve = keystroke_search(model, tune_msgs, k=args.k)
-    if args.objective == "keystrokes":
+    if args.objective == "keystrokes" and ksr_lam is not None:
         chosen = ksr_lam
     else:
         chosen = ppl_lam
