@@ -1,0 +1,354 @@
+"""A personal layer over an immutable base model: learns a user's words and word pairs.
+
+The combined distribution after history v is a mixture
+
+    P(w | v) = (1 − μ) · P_base(w | v) + μ · P_user(w | v)
+
+where P_user is the same interpolated bigram estimate as the base model's, computed from
+the user's own (decayed) counts, and μ = max_weight · N_user / (N_user + strength) grows
+with the amount of personal data N_user (predicted tokens learned, after decay): 0 with
+no data, half of ``max_weight`` after ``strength`` tokens. Both parts are distributions
+over the same outcomes — the base vocabulary, the user's words, ``</s>`` and ``<unk>``
+(a user's word the base lacks gets 0 from the base part, whose ``<unk>`` mass stays on
+``<unk>``) — so the mixture sums to 1 after every history.
+
+A word the base model lacks becomes *suggestible* once the user has used it
+``min_uses`` times (it has probability before that, it is just not offered); blocked
+words are never offered. Only counts are kept — never message text or message order —
+and decay (a half-life in messages) makes old habits fade.
+
+Status: this module is the in-memory layer and its snapshot file; the journal, the
+memory cap with eviction, the CLI and the thread-stress tests are still to come.
+"""
+
+from __future__ import annotations
+
+import heapq
+import math
+import os
+import struct
+import zlib
+from collections.abc import Iterable
+from typing import Any
+
+import msgpack
+
+from .errors import InvalidArgumentError, ModelFormatError
+from .model import Model, Suggestion, _check_k, _recase
+from .store import atomic_write
+from .text import BOS, EOS, UNK, fold, parse_before_cursor, sentences
+
+__all__ = ["PersonalLayer", "PERSONAL_MAGIC"]
+
+PERSONAL_MAGIC = b"\x89NWP\r\n\x1a\n"
+_HEADER = struct.Struct("<8sHHQI")  # magic, major, minor, payload length, payload crc
+_MAX_PAYLOAD = 64 << 20
+
+
+class PersonalLayer:
+    """Personal counts mixed with a base :class:`~nextword.Model`. Not yet thread-safe for writers."""
+
+    def __init__(
+        self,
+        base: Model,
+        *,
+        min_uses: int = 2,
+        strength: float = 2000.0,
+        max_weight: float = 0.5,
+        lam: float = 0.9,
+        half_life_messages: float | None = None,
+        blocklist: Iterable[str] = (),
+    ) -> None:
+        if isinstance(min_uses, bool) or not isinstance(min_uses, int) or min_uses < 1:
+            raise InvalidArgumentError(f"min_uses must be an integer >= 1, got {min_uses!r}")
+        for name, value, lo, hi in (("strength", strength, 1e-9, math.inf), ("max_weight", max_weight, 0.0, 1.0), ("lam", lam, 0.0, 1.0)):
+            if isinstance(value, bool) or not isinstance(value, (int, float)) or not lo <= value <= hi:
+                raise InvalidArgumentError(f"{name} must be a number in [{lo}, {hi}], got {value!r}")
+        if half_life_messages is not None and not half_life_messages > 0:
+            raise InvalidArgumentError(f"half_life_messages must be > 0, got {half_life_messages!r}")
+        self.base = base
+        self.min_uses = min_uses
+        self.strength = float(strength)
+        self.max_weight = float(max_weight)
+        self.lam = float(lam)
+        self.half_life_messages = half_life_messages
+        self.blocklist: set[str] = {fold(w) for w in blocklist}
+        self.clear()
+
+    # -- state -------------------------------------------------------------------------------
+
+    def clear(self) -> None:
+        """Forget everything learned (the blocklist stays)."""
+        # counts are stored divided by the current decay factor: effective = stored * scale
+        self._uni: dict[str, float] = {}
+        self._big: dict[str, dict[str, float]] = {}
+        self._hist: dict[str, float] = {}
+        self._total = 0.0
+        self._scale = 1.0
+        self._spelling: dict[str, str] = {}
+        self.messages = 0
+
+    def _decay_step(self) -> None:
+        if self.half_life_messages is None:
+            return
+        self._scale *= 0.5 ** (1.0 / self.half_life_messages)
+        if self._scale < 1e-150:  # renormalise before the stored numbers overflow
+            s = self._scale
+            self._uni = {k: v * s for k, v in self._uni.items()}
+            self._big = {h: {k: v * s for k, v in row.items()} for h, row in self._big.items()}
+            self._hist = {k: v * s for k, v in self._hist.items()}
+            self._total *= s
+            self._scale = 1.0
+
+    def count(self, word: str) -> float:
+        """The user's (decayed) count of ``word`` as a predicted token."""
+        key = word if word in (EOS, UNK) else fold(word)
+        return self._uni.get(key, 0.0) * self._scale
+
+    def pair_count(self, previous_word: str | None, word: str) -> float:
+        v = self._hkey(previous_word)
+        w = word if word in (EOS, UNK) else fold(word)
+        return self._big.get(v, {}).get(w, 0.0) * self._scale
+
+    @property
+    def tokens(self) -> float:
+        """N_user: predicted tokens learned, after decay."""
+        return self._total * self._scale
+
+    @property
+    def weight(self) -> float:
+        """μ, the weight of the personal part: max_weight · N / (N + strength)."""
+        n = self.tokens
+        return self.max_weight * n / (n + self.strength) if n > 0 else 0.0
+
+    # -- learning ------------------------------------------------------------------------------
+
+    def learn(self, message: str) -> None:
+        """Count one committed message (O(words)); its text is not kept."""
+        if not isinstance(message, str):
+            raise InvalidArgumentError(f"message must be str, got {type(message).__name__}")
+        self._decay_step()
+        inc = 1.0 / self._scale
+        for sent in sentences(message):
+            prev = BOS
+            for i, tok in enumerate([*sent, EOS]):
+                if tok is None:
+                    key = UNK
+                elif tok == EOS:  # no word contains "<": this is the end marker
+                    key = EOS
+                else:
+                    key = fold(tok)
+                    if i > 0:
+                        self._spelling[key] = tok
+                    else:
+                        self._spelling.setdefault(key, tok)
+                self._uni[key] = self._uni.get(key, 0.0) + inc
+                row = self._big.setdefault(prev, {})
+                row[key] = row.get(key, 0.0) + inc
+                self._hist[prev] = self._hist.get(prev, 0.0) + inc
+                self._total += inc
+                prev = key
+        self.messages += 1
+
+    def forget(self, word: str) -> None:
+        """Remove ``word`` and every pair containing it, at once."""
+        key = fold(word)
+        removed = self._uni.pop(key, 0.0)
+        self._total -= removed
+        self._spelling.pop(key, None)
+        row = self._big.pop(key, None)
+        if row is not None:
+            self._hist.pop(key, None)
+        for h, r in list(self._big.items()):
+            c = r.pop(key, None)
+            if c is not None:
+                self._hist[h] -= c
+                if not r:
+                    del self._big[h]
+                    self._hist.pop(h, None)
+        # tokens that followed the forgotten word lose their history but stay counted
+        if not any(k not in (EOS, UNK) for k in self._uni):
+            self.clear()  # no words left: the layer must add nothing
+
+    def block(self, word: str) -> None:
+        self.blocklist.add(fold(word))
+
+    def unblock(self, word: str) -> None:
+        self.blocklist.discard(fold(word))
+
+    # -- probabilities ----------------------------------------------------------------------------
+
+    def _hkey(self, previous_word: str | None) -> str:
+        if previous_word is None or previous_word == BOS:
+            return BOS
+        if previous_word == UNK:
+            return UNK
+        return fold(previous_word)
+
+    def _p_user(self, v: str, w: str) -> float:
+        total = self._total
+        if total <= 0:
+            return 0.0
+        u = self._uni.get(w, 0.0) / total
+        cv = self._hist.get(v, 0.0)
+        if cv <= 0:
+            return u
+        return self.lam * (self._big[v].get(w, 0.0) / cv) + (1.0 - self.lam) * u
+
+    def _p_base(self, v: str, w: str) -> float:
+        base = self.base
+        prev = None if v == BOS else (v if v == UNK or v in base else UNK)
+        if w in (EOS, UNK):
+            return base.prob(w, prev)
+        if w not in base:
+            return 0.0
+        return base.prob(w, prev)
+
+    def prob(self, word: str, previous_word: str | None = None) -> float:
+        """P(word | previous_word) under the mixture (``None`` = sentence start)."""
+        v = self._hkey(previous_word)
+        w = word if word in (EOS, UNK) else fold(word)
+        if w not in (EOS, UNK) and w not in self.base and w not in self._uni:
+            w = UNK
+        mu = self.weight
+        return (1.0 - mu) * self._p_base(v, w) + mu * self._p_user(v, w)
+
+    def vocabulary(self) -> list[str]:
+        """Every outcome with its own probability: base words, the user's words, </s>, <unk>."""
+        words = {w for w, _ in self.base.words()}
+        keys = {fold(w) for w in words} | {k for k in self._uni if k not in (EOS, UNK)}
+        return sorted(keys) + [EOS, UNK]
+
+    def perplexity(self, lines: Iterable[str]) -> float:
+        log_sum, events = 0.0, 0
+        for line in lines:
+            for sent in sentences(line):
+                prev: str | None = None
+                for tok in [*sent, EOS]:
+                    w = UNK if tok is None else tok
+                    p = self.prob(w, prev)
+                    log_sum += math.log(p) if p > 0 else -math.inf
+                    events += 1
+                    prev = UNK if tok is None else tok
+        if events == 0:
+            raise InvalidArgumentError("no words to score: the text is empty")
+        return math.exp(-log_sum / events)
+
+    # -- suggestions -------------------------------------------------------------------------------
+
+    def _suggestible(self, key: str) -> bool:
+        if key in self.blocklist or key in (EOS, UNK, BOS):
+            return False
+        return key in self.base or self._uni.get(key, 0.0) * self._scale >= self.min_uses - 1e-9
+
+    def rank_keys(self, previous_word: str | None, prefix: str, k: int) -> list[tuple[str, float]]:
+        """Top k (key, P) under the mixture among suggestible words starting with ``prefix``.
+
+        Exact: a word the user never used scores (1 − μ)·P_base, so among those only the
+        first k of the base ranking (blocked ones skipped) can qualify; every user word
+        matching the prefix is scored in full.
+        """
+        k = _check_k(k)
+        v = self._hkey(previous_word)
+        p = fold(prefix)
+        mu = self.weight
+        user_words = [w for w in self._uni if w.startswith(p) and self._suggestible(w)] if mu > 0 else []
+        cands: dict[str, float] = {w: (1.0 - mu) * self._p_base(v, w) + mu * self._p_user(v, w) for w in user_words}
+        bprev = None if v == BOS else (v if v == UNK or v in self.base else UNK)
+        want = k
+        while True:
+            ranked = self.base.rank_ids(bprev, prefix, want)
+            outside = [(w, pb) for w, pb in ranked if w not in cands and w not in self.blocklist]
+            if len(outside) >= k or len(ranked) < want:
+                break
+            want *= 2
+        for w, _ in outside[:k]:
+            cands[w] = (1.0 - mu) * self._p_base(v, w) + mu * self._p_user(v, w)
+        best = heapq.nsmallest(k, ((-s, w) for w, s in cands.items()))
+        return [(w, -s) for s, w in best]
+
+    def suggest(self, text_before_cursor: str, k: int = 3) -> list[Suggestion]:
+        """Like :meth:`nextword.Model.suggest`, over the mixture of base and personal counts."""
+        ctx = parse_before_cursor(text_before_cursor)
+        prev = None if ctx.previous == BOS else ctx.previous
+        at_start = ctx.previous == BOS
+        out = []
+        for key, p in self.rank_keys(prev, ctx.prefix, k):
+            if key in self.base:
+                shown = self.base.display(self.base._word_id(key))  # type: ignore[arg-type]
+            else:
+                shown = self._spelling.get(key, key)
+            out.append(Suggestion(_recase(shown, ctx.prefix, at_start), p))
+        return out
+
+    # -- persistence -----------------------------------------------------------------------------
+
+    def _payload(self) -> dict[str, Any]:
+        s = self._scale
+        return {
+            "settings": {
+                "min_uses": self.min_uses,
+                "strength": self.strength,
+                "max_weight": self.max_weight,
+                "lam": self.lam,
+                "half_life_messages": self.half_life_messages,
+            },
+            "messages": self.messages,
+            "unigram": {k: v * s for k, v in self._uni.items()},
+            "bigram": {h: {k: v * s for k, v in row.items()} for h, row in self._big.items()},
+            "spelling": self._spelling,
+            "blocklist": sorted(self.blocklist),
+        }
+
+    def save(self, path: str | os.PathLike[str]) -> None:
+        """Write the counts (never text) to ``path`` atomically: temp file, fsync, rename."""
+        body = msgpack.packb(self._payload(), use_bin_type=True)
+        atomic_write(path, [_HEADER.pack(PERSONAL_MAGIC, 1, 0, len(body), zlib.crc32(body)), body])
+
+    @classmethod
+    def load(cls, base: Model, path: str | os.PathLike[str]) -> PersonalLayer:
+        """Read a layer saved by :meth:`save`; a damaged file raises, it is never replaced."""
+        name = os.fspath(path)
+        try:
+            with open(name, "rb") as f:
+                head = f.read(_HEADER.size)
+                if len(head) < _HEADER.size:
+                    raise ModelFormatError(f"{name}: not a personal layer file (only {len(head)} bytes)")
+                magic, major, minor, length, crc = _HEADER.unpack(head)
+                if magic != PERSONAL_MAGIC:
+                    raise ModelFormatError(f"{name}: not a personal layer file (bad magic bytes)")
+                if major != 1:
+                    raise ModelFormatError(f"{name}: unsupported personal layer version {major}.{minor}")
+                if length > _MAX_PAYLOAD:
+                    raise ModelFormatError(f"{name}: personal layer of {length} bytes is too large")
+                body = f.read(length + 1)
+        except OSError as e:
+            raise ModelFormatError(f"{name}: cannot open personal layer: {e.strerror}") from None
+        if len(body) != length:
+            raise ModelFormatError(f"{name}: personal layer is truncated or has trailing bytes")
+        if zlib.crc32(body) != crc:
+            raise ModelFormatError(f"{name}: personal layer checksum mismatch (damaged file)")
+        try:
+            data = msgpack.unpackb(body, raw=False, strict_map_key=True)
+            st = data["settings"]
+            layer = cls(
+                base,
+                min_uses=st["min_uses"],
+                strength=st["strength"],
+                max_weight=st["max_weight"],
+                lam=st["lam"],
+                half_life_messages=st["half_life_messages"],
+                blocklist=data["blocklist"],
+            )
+            layer.messages = int(data["messages"])
+            for key, value in data["unigram"].items():
+                layer._uni[str(key)] = float(value)
+            for h, row in data["bigram"].items():
+                r = {str(k): float(v) for k, v in row.items()}
+                layer._big[str(h)] = r
+                layer._hist[str(h)] = math.fsum(r.values())
+            layer._spelling = {str(k): str(v) for k, v in data["spelling"].items()}
+            layer._total = math.fsum(layer._uni.values())
+        except (KeyError, TypeError, ValueError, AttributeError, msgpack.UnpackException, InvalidArgumentError) as e:
+            raise ModelFormatError(f"{name}: damaged personal layer: {e}") from None
+        return layer
