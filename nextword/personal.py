@@ -17,8 +17,13 @@ A word the base model lacks becomes *suggestible* once the user has used it
 words are never offered. Only counts are kept — never message text or message order —
 and decay (a half-life in messages) makes old habits fade.
 
-Status: this module is the in-memory layer and its snapshot file; the journal, the
-memory cap with eviction, the CLI and the thread-stress tests are still to come.
+Memory is capped (``max_entries`` counts, about 64 bytes each in memory and far less on
+disk): past the cap the least useful entries — the pairs, then the words, with the
+smallest decayed counts — are evicted. With a ``path``, every change is saved at once
+(temporary file, fsync, rename), so a process killed at any instant loses at most the
+message being learned and the file always loads; no journal is needed, and the file
+never holds text or message order. One lock serialises writers and readers, so a thread
+asking for suggestions while another learns never sees a half-applied message.
 """
 
 from __future__ import annotations
@@ -27,6 +32,7 @@ import heapq
 import math
 import os
 import struct
+import threading
 import zlib
 from collections.abc import Iterable
 from typing import Any
@@ -58,6 +64,8 @@ class PersonalLayer:
         lam: float = 0.9,
         half_life_messages: float | None = None,
         blocklist: Iterable[str] = (),
+        max_entries: int = 65_536,
+        path: str | os.PathLike[str] | None = None,
     ) -> None:
         if isinstance(min_uses, bool) or not isinstance(min_uses, int) or min_uses < 1:
             raise InvalidArgumentError(f"min_uses must be an integer >= 1, got {min_uses!r}")
@@ -72,13 +80,47 @@ class PersonalLayer:
         self.max_weight = float(max_weight)
         self.lam = float(lam)
         self.half_life_messages = half_life_messages
+        if isinstance(max_entries, bool) or not isinstance(max_entries, int) or max_entries < 16:
+            raise InvalidArgumentError(f"max_entries must be an integer >= 16, got {max_entries!r}")
+        self.max_entries = max_entries
         self.blocklist: set[str] = {fold(w) for w in blocklist}
-        self.clear()
+        self.path = None if path is None else os.fspath(path)
+        self._lock = threading.RLock()
+        self._reset()
+
+    @classmethod
+    def open(cls, base: Model, path: str | os.PathLike[str], **settings: Any) -> PersonalLayer:
+        """The layer saved at ``path`` (created empty if the file does not exist), saving every change.
+
+        A file that exists but is damaged raises :class:`~nextword.ModelFormatError`; it is
+        never silently replaced by an empty layer.
+        """
+        if os.path.exists(path):
+            layer = cls.load(base, path)
+            layer.path = os.fspath(path)
+            return layer
+        layer = cls(base, path=path, **settings)
+        layer._changed()
+        return layer
+
+    def _changed(self) -> None:
+        if self.path is not None:
+            self.save(self.path)
+
+    @property
+    def entries(self) -> int:
+        """Stored counts: words plus pairs (the unit of ``max_entries``)."""
+        return len(self._uni) + sum(len(r) for r in self._big.values())
 
     # -- state -------------------------------------------------------------------------------
 
     def clear(self) -> None:
         """Forget everything learned (the blocklist stays)."""
+        with self._lock:
+            self._reset()
+            self._changed()
+
+    def _reset(self) -> None:
         # counts are stored divided by the current decay factor: effective = stored * scale
         self._uni: dict[str, float] = {}
         self._big: dict[str, dict[str, float]] = {}
@@ -127,6 +169,13 @@ class PersonalLayer:
         """Count one committed message (O(words)); its text is not kept."""
         if not isinstance(message, str):
             raise InvalidArgumentError(f"message must be str, got {type(message).__name__}")
+        with self._lock:
+            self._learn(message)
+            if self.entries > self.max_entries:
+                self._evict()
+            self._changed()
+
+    def _learn(self, message: str) -> None:
         self._decay_step()
         inc = 1.0 / self._scale
         for sent in sentences(message):
@@ -151,8 +200,12 @@ class PersonalLayer:
         self.messages += 1
 
     def forget(self, word: str) -> None:
-        """Remove ``word`` and every pair containing it, at once."""
-        key = fold(word)
+        """Remove ``word`` and every pair containing it, at once (and from the file)."""
+        with self._lock:
+            self._forget(fold(word))
+            self._changed()
+
+    def _forget(self, key: str) -> None:
         removed = self._uni.pop(key, 0.0)
         self._total -= removed
         self._spelling.pop(key, None)
@@ -168,13 +221,37 @@ class PersonalLayer:
                     self._hist.pop(h, None)
         # tokens that followed the forgotten word lose their history but stay counted
         if not any(k not in (EOS, UNK) for k in self._uni):
-            self.clear()  # no words left: the layer must add nothing
+            self._reset()  # no words left: the layer must add nothing
+
+    def _evict(self) -> None:
+        """Drop the least useful entries until 90% of the cap: smallest pairs, then smallest words."""
+        target = int(self.max_entries * 0.9)
+        pairs = sorted((c, h, w) for h, row in self._big.items() for w, c in row.items())
+        excess = self.entries - target
+        for c, h, w in pairs[: max(0, min(excess, len(pairs) // 2))]:
+            row = self._big[h]
+            del row[w]
+            self._hist[h] -= c
+            if not row:
+                del self._big[h]
+                del self._hist[h]
+        if self.entries > target:
+            words = sorted((c, k) for k, c in self._uni.items() if k not in (EOS, UNK))
+            for _, k in words:
+                if self.entries <= target:
+                    break
+                self._forget(k)
 
     def block(self, word: str) -> None:
-        self.blocklist.add(fold(word))
+        """Never suggest ``word`` (it keeps its probability)."""
+        with self._lock:
+            self.blocklist.add(fold(word))
+            self._changed()
 
     def unblock(self, word: str) -> None:
-        self.blocklist.discard(fold(word))
+        with self._lock:
+            self.blocklist.discard(fold(word))
+            self._changed()
 
     # -- probabilities ----------------------------------------------------------------------------
 
@@ -208,10 +285,11 @@ class PersonalLayer:
         """P(word | previous_word) under the mixture (``None`` = sentence start)."""
         v = self._hkey(previous_word)
         w = word if word in (EOS, UNK) else fold(word)
-        if w not in (EOS, UNK) and w not in self.base and w not in self._uni:
-            w = UNK
-        mu = self.weight
-        return (1.0 - mu) * self._p_base(v, w) + mu * self._p_user(v, w)
+        with self._lock:
+            if w not in (EOS, UNK) and w not in self.base and w not in self._uni:
+                w = UNK
+            mu = self.weight
+            return (1.0 - mu) * self._p_base(v, w) + mu * self._p_user(v, w)
 
     def vocabulary(self) -> list[str]:
         """Every outcome with its own probability: base words, the user's words, </s>, <unk>."""
@@ -220,6 +298,10 @@ class PersonalLayer:
         return sorted(keys) + [EOS, UNK]
 
     def perplexity(self, lines: Iterable[str]) -> float:
+        with self._lock:
+            return self._perplexity(lines)
+
+    def _perplexity(self, lines: Iterable[str]) -> float:
         log_sum, events = 0.0, 0
         for line in lines:
             for sent in sentences(line):
@@ -249,7 +331,10 @@ class PersonalLayer:
         matching the prefix is scored in full.
         """
         k = _check_k(k)
-        v = self._hkey(previous_word)
+        with self._lock:
+            return self._rank_keys(self._hkey(previous_word), prefix, k)
+
+    def _rank_keys(self, v: str, prefix: str, k: int) -> list[tuple[str, float]]:
         p = fold(prefix)
         mu = self.weight
         user_words = [w for w in self._uni if w.startswith(p) and self._suggestible(w)] if mu > 0 else []
@@ -273,12 +358,13 @@ class PersonalLayer:
         prev = None if ctx.previous == BOS else ctx.previous
         at_start = ctx.previous == BOS
         out = []
-        for key, p in self.rank_keys(prev, ctx.prefix, k):
-            if key in self.base:
-                shown = self.base.display(self.base._word_id(key))  # type: ignore[arg-type]
-            else:
-                shown = self._spelling.get(key, key)
-            out.append(Suggestion(_recase(shown, ctx.prefix, at_start), p))
+        with self._lock:
+            for key, p in self.rank_keys(prev, ctx.prefix, k):
+                if key in self.base:
+                    shown = self.base.display(self.base._word_id(key))  # type: ignore[arg-type]
+                else:
+                    shown = self._spelling.get(key, key)
+                out.append(Suggestion(_recase(shown, ctx.prefix, at_start), p))
         return out
 
     # -- persistence -----------------------------------------------------------------------------
@@ -292,6 +378,7 @@ class PersonalLayer:
                 "max_weight": self.max_weight,
                 "lam": self.lam,
                 "half_life_messages": self.half_life_messages,
+                "max_entries": self.max_entries,
             },
             "messages": self.messages,
             "unigram": {k: v * s for k, v in self._uni.items()},
@@ -302,7 +389,8 @@ class PersonalLayer:
 
     def save(self, path: str | os.PathLike[str]) -> None:
         """Write the counts (never text) to ``path`` atomically: temp file, fsync, rename."""
-        body = msgpack.packb(self._payload(), use_bin_type=True)
+        with self._lock:
+            body = msgpack.packb(self._payload(), use_bin_type=True)
         atomic_write(path, [_HEADER.pack(PERSONAL_MAGIC, 1, 0, len(body), zlib.crc32(body)), body])
 
     @classmethod
@@ -339,6 +427,7 @@ class PersonalLayer:
                 lam=st["lam"],
                 half_life_messages=st["half_life_messages"],
                 blocklist=data["blocklist"],
+                max_entries=st.get("max_entries", 65_536),
             )
             layer.messages = int(data["messages"])
             for key, value in data["unigram"].items():

@@ -160,3 +160,117 @@ def test_damaged_or_truncated_files_raise_and_are_kept(base: nextword.Model, tmp
         assert path.read_bytes() == bad  # never silently replaced
     with pytest.raises(ModelFormatError, match="cannot open"):
         PersonalLayer.load(base, tmp_path / "missing.nwp")
+
+
+def test_memory_cap_evicts_least_useful_entries(base: nextword.Model) -> None:
+    layer = PersonalLayer(base, max_entries=200, strength=5.0)
+    for i in range(120):
+        layer.learn(f"the zorbing trip number{i} with Zanele")
+    assert layer.entries <= 200
+    assert layer.count("zorbing") == 120  # frequent words and pairs survive eviction
+    assert layer.pair_count("the", "zorbing") == 120
+    outcomes = layer.vocabulary()
+    for prev in [None, "the", "zorbing"]:
+        assert math.fsum(layer.prob(w, prev) for w in outcomes) == pytest.approx(1.0, abs=1e-12)
+
+
+def test_open_creates_saves_every_change_and_never_replaces_damage(base: nextword.Model, tmp_path: Path) -> None:
+    path = tmp_path / "me.nwp"
+    layer = PersonalLayer.open(base, path, strength=5.0)
+    assert path.exists()
+    layer.learn("the zorbing trip")
+    layer.learn("zorbing again")
+    again = PersonalLayer.open(base, path)
+    assert again.count("zorbing") == 2 and again.messages == 2
+    again.forget("zorbing")
+    assert PersonalLayer.load(base, path).count("zorbing") == 0  # forgetting reaches the file at once
+    path.write_bytes(path.read_bytes()[:-1])
+    with pytest.raises(ModelFormatError):
+        PersonalLayer.open(base, path)
+    assert path.stat().st_size > 0
+
+
+def test_threads_learning_and_asking_never_see_a_torn_state(base: nextword.Model) -> None:
+    import threading
+    import time
+
+    layer = PersonalLayer(base, strength=5.0, max_entries=500)
+    outcomes_base = layer.vocabulary()
+    errors: list[BaseException] = []
+    stop = time.monotonic() + 3.0
+
+    def writer() -> None:
+        i = 0
+        try:
+            while time.monotonic() < stop:
+                layer.learn(f"the zorbing trip {i % 37} with Zanele")
+                if i % 25 == 0:
+                    layer.forget("zanele")
+                i += 1
+        except BaseException as e:  # noqa: BLE001 - any failure fails the test
+            errors.append(e)
+
+    def reader() -> None:
+        try:
+            while time.monotonic() < stop:
+                for text in ("", "the ", "the zo", "Za"):
+                    layer.suggest(text, 3)
+                with layer._lock:  # a consistent snapshot: the mixture sums to 1
+                    outcomes = sorted(set(outcomes_base) | set(layer.vocabulary()))
+                    total = math.fsum(layer.prob(w, "the") for w in outcomes)
+                assert abs(total - 1.0) < 1e-9, total
+        except BaseException as e:  # noqa: BLE001
+            errors.append(e)
+
+    threads = [threading.Thread(target=writer), threading.Thread(target=reader), threading.Thread(target=reader)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert not errors, errors[0]
+    assert layer.messages > 10
+
+
+KILL_CHILD = r"""
+import sys, nextword
+from nextword.personal import PersonalLayer
+base = nextword.load(sys.argv[1])
+layer = PersonalLayer.open(base, sys.argv[2], strength=5.0)
+i = layer.messages
+while True:
+    layer.learn(f"message number {i} about the zorbing trip")
+    i += 1
+    print(i, flush=True)
+"""
+
+
+def test_kill_minus_nine_loses_at_most_the_last_message(base: nextword.Model, tmp_path: Path) -> None:
+    import os
+    import random
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    root = Path(__file__).resolve().parent.parent
+    path = tmp_path / "me.nwp"
+    env = dict(os.environ, PYTHONPATH=str(root))
+    rng = random.Random(11)
+    for _ in range(8):
+        proc = subprocess.Popen(
+            [sys.executable, "-c", KILL_CHILD, base.path, str(path)], stdout=subprocess.PIPE, text=True, env=env
+        )
+        acknowledged = 0
+        deadline = time.monotonic() + rng.uniform(0.6, 1.5)
+        assert proc.stdout is not None
+        while time.monotonic() < deadline:
+            line = proc.stdout.readline()
+            if not line:
+                break
+            acknowledged = int(line)
+        os.kill(proc.pid, signal.SIGKILL)
+        proc.wait()
+        layer = PersonalLayer.load(base, path)  # always loads
+        # every acknowledged message was saved; at most the one in flight is lost or kept
+        assert acknowledged <= layer.messages <= acknowledged + 1 + sum(1 for _ in proc.stdout)
+    assert layer.messages > 0
