@@ -28,6 +28,7 @@ asking for suggestions while another learns never sees a half-applied message.
 
 from __future__ import annotations
 
+import bisect
 import heapq
 import math
 import os
@@ -129,6 +130,9 @@ class PersonalLayer:
         self._scale = 1.0
         self._spelling: dict[str, str] = {}
         self.messages = 0
+        self._dirty = True
+        self._sorted_keys: list[str] = []
+        self._by_count: list[str] = []
 
     def _decay_step(self) -> None:
         if self.half_life_messages is None:
@@ -176,6 +180,7 @@ class PersonalLayer:
             self._changed()
 
     def _learn(self, message: str) -> None:
+        self._dirty = True
         self._decay_step()
         inc = 1.0 / self._scale
         for sent in sentences(message):
@@ -206,6 +211,7 @@ class PersonalLayer:
             self._changed()
 
     def _forget(self, key: str) -> None:
+        self._dirty = True
         removed = self._uni.pop(key, 0.0)
         self._total -= removed
         self._spelling.pop(key, None)
@@ -246,11 +252,13 @@ class PersonalLayer:
         """Never suggest ``word`` (it keeps its probability)."""
         with self._lock:
             self.blocklist.add(fold(word))
+            self._dirty = True
             self._changed()
 
     def unblock(self, word: str) -> None:
         with self._lock:
             self.blocklist.discard(fold(word))
+            self._dirty = True
             self._changed()
 
     # -- probabilities ----------------------------------------------------------------------------
@@ -334,21 +342,69 @@ class PersonalLayer:
         with self._lock:
             return self._rank_keys(self._hkey(previous_word), prefix, k)
 
+    def _user_list(self, p: str) -> list[str]:
+        """Suggestible user words starting with ``p``, by (count descending, key)."""
+        if self._dirty:
+            words = [w for w in self._uni if w not in (EOS, UNK) and self._suggestible(w)]
+            self._sorted_keys = sorted(words)
+            self._by_count = sorted(words, key=lambda w: (-self._uni[w], w))
+            self._dirty = False
+        if not p:
+            return self._by_count
+        keys = self._sorted_keys
+        lo = bisect.bisect_left(keys, p)
+        hi = bisect.bisect_left(keys, p + "\U0010ffff", lo)
+        return sorted(keys[lo:hi], key=lambda w: (-self._uni[w], w))
+
     def _rank_keys(self, v: str, prefix: str, k: int) -> list[tuple[str, float]]:
+        """Threshold algorithm over two lists sorted by their part of the score.
+
+        Every score is (1 − μ)·P_base + μ·P_user. The user's successors of v are scored in
+        full first; any other word x has P_user ≤ (1 − λ_u)·c(x)/N_user (or c(x)/N_user
+        when v is new to the user), so walking the base ranking and the user's words by
+        count in parallel, no unseen word can beat the current k-th best once that
+        exceeds (1 − μ)·(next base probability) + μ·(bound from the next user count).
+        """
         p = fold(prefix)
         mu = self.weight
-        user_words = [w for w in self._uni if w.startswith(p) and self._suggestible(w)] if mu > 0 else []
-        cands: dict[str, float] = {w: (1.0 - mu) * self._p_base(v, w) + mu * self._p_user(v, w) for w in user_words}
         bprev = None if v == BOS else (v if v == UNK or v in self.base else UNK)
-        want = k
+        blocked = self.blocklist
+        cands: dict[str, float] = {}
+
+        def full(w: str) -> float:
+            return (1.0 - mu) * self._p_base(v, w) + mu * self._p_user(v, w)
+
+        if mu > 0:
+            for w in self._big.get(v, {}):
+                if w.startswith(p) and w not in (EOS, UNK) and self._suggestible(w):
+                    cands[w] = full(w)
+            ulist = self._user_list(p)
+            uscale = (1.0 - self.lam) if self._hist.get(v, 0.0) > 0 else 1.0
+        else:
+            ulist, uscale = [], 0.0
+        base_list: list[tuple[str, float]] = []
+        want, bi, ui, base_done = k, 0, 0, False
         while True:
-            ranked = self.base.rank_ids(bprev, prefix, want)
-            outside = [(w, pb) for w, pb in ranked if w not in cands and w not in self.blocklist]
-            if len(outside) >= k or len(ranked) < want:
+            if bi >= len(base_list) and not base_done:
+                base_list = self.base.rank_ids(bprev, prefix, want)
+                base_done = len(base_list) < want
+                want *= 2
+            nb = base_list[bi] if bi < len(base_list) else None
+            nu = ulist[ui] if ui < len(ulist) else None
+            if nb is None and nu is None:
                 break
-            want *= 2
-        for w, _ in outside[:k]:
-            cands[w] = (1.0 - mu) * self._p_base(v, w) + mu * self._p_user(v, w)
+            if len(cands) >= k:
+                bound = (1.0 - mu) * (nb[1] if nb else 0.0) + mu * (uscale * self._uni[nu] / self._total if nu else 0.0)
+                if heapq.nlargest(k, cands.values())[-1] > bound:
+                    break
+            if nb is not None:
+                if nb[0] not in cands and nb[0] not in blocked:
+                    cands[nb[0]] = full(nb[0])
+                bi += 1
+            if nu is not None:
+                if nu not in cands:
+                    cands[nu] = full(nu)
+                ui += 1
         best = heapq.nsmallest(k, ((-s, w) for w, s in cands.items()))
         return [(w, -s) for s, w in best]
 

@@ -114,7 +114,7 @@ def test_decay_halves_a_count_after_one_half_life(base: nextword.Model) -> None:
     assert layer.count("zorbing") == pytest.approx(c0 / 2, rel=1e-12)
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=150, deadline=None)
 @given(
     st.lists(st.sampled_from(USER + ["the object is a list", "zanele asks", "a zorbing object"]), max_size=12),
     st.sampled_from([None, "the", "zanele", "a", "is", "<unk>"]),
@@ -126,6 +126,9 @@ def test_ranking_equals_scoring_every_word(base: nextword.Model, msgs: list[str]
     layer = PersonalLayer(base, strength=strength, min_uses=2)
     for m in msgs:
         layer.learn(m)
+    assert layer.rank_keys(prev, prefix, k) == _brute(layer, prev, prefix, k)
+    layer.block("the")
+    layer.block("zorbing")
     assert layer.rank_keys(prev, prefix, k) == _brute(layer, prev, prefix, k)
 
 
