@@ -130,9 +130,11 @@ class PersonalLayer:
         self._scale = 1.0
         self._spelling: dict[str, str] = {}
         self.messages = 0
-        self._dirty = True
+        # indexes for ranking, kept in step with the counts: the user's words sorted by key
+        # and by (−stored count, key), and each history's successors by count (cached)
         self._sorted_keys: list[str] = []
-        self._by_count: list[str] = []
+        self._by_count: list[tuple[float, str]] = []
+        self._row_sorted: dict[str, list[tuple[float, str]]] = {}
 
     def _decay_step(self) -> None:
         if self.half_life_messages is None:
@@ -145,6 +147,26 @@ class PersonalLayer:
             self._hist = {k: v * s for k, v in self._hist.items()}
             self._total *= s
             self._scale = 1.0
+            self._reindex()
+
+    def _reindex(self) -> None:
+        words = [w for w in self._uni if w not in (EOS, UNK)]
+        self._sorted_keys = sorted(words)
+        self._by_count = sorted((-self._uni[w], w) for w in words)
+        self._row_sorted = {}
+
+    def _bump(self, key: str, inc: float) -> None:
+        old = self._uni.get(key)
+        new = (old or 0.0) + inc
+        self._uni[key] = new
+        if key in (EOS, UNK):
+            return
+        if old is None:
+            bisect.insort(self._sorted_keys, key)
+        else:
+            i = bisect.bisect_left(self._by_count, (-old, key))
+            del self._by_count[i]
+        bisect.insort(self._by_count, (-new, key))
 
     def count(self, word: str) -> float:
         """The user's (decayed) count of ``word`` as a predicted token."""
@@ -180,7 +202,6 @@ class PersonalLayer:
             self._changed()
 
     def _learn(self, message: str) -> None:
-        self._dirty = True
         self._decay_step()
         inc = 1.0 / self._scale
         for sent in sentences(message):
@@ -196,7 +217,8 @@ class PersonalLayer:
                         self._spelling[key] = tok
                     else:
                         self._spelling.setdefault(key, tok)
-                self._uni[key] = self._uni.get(key, 0.0) + inc
+                self._bump(key, inc)
+                self._row_sorted.pop(prev, None)
                 row = self._big.setdefault(prev, {})
                 row[key] = row.get(key, 0.0) + inc
                 self._hist[prev] = self._hist.get(prev, 0.0) + inc
@@ -211,7 +233,11 @@ class PersonalLayer:
             self._changed()
 
     def _forget(self, key: str) -> None:
-        self._dirty = True
+        old = self._uni.get(key)
+        if old is not None and key not in (EOS, UNK):
+            del self._by_count[bisect.bisect_left(self._by_count, (-old, key))]
+            del self._sorted_keys[bisect.bisect_left(self._sorted_keys, key)]
+        self._row_sorted = {}
         removed = self._uni.pop(key, 0.0)
         self._total -= removed
         self._spelling.pop(key, None)
@@ -235,6 +261,7 @@ class PersonalLayer:
         pairs = sorted((c, h, w) for h, row in self._big.items() for w, c in row.items())
         excess = self.entries - target
         for c, h, w in pairs[: max(0, min(excess, len(pairs) // 2))]:
+            self._row_sorted.pop(h, None)
             row = self._big[h]
             del row[w]
             self._hist[h] -= c
@@ -252,13 +279,11 @@ class PersonalLayer:
         """Never suggest ``word`` (it keeps its probability)."""
         with self._lock:
             self.blocklist.add(fold(word))
-            self._dirty = True
             self._changed()
 
     def unblock(self, word: str) -> None:
         with self._lock:
             self.blocklist.discard(fold(word))
-            self._dirty = True
             self._changed()
 
     # -- probabilities ----------------------------------------------------------------------------
@@ -342,68 +367,77 @@ class PersonalLayer:
         with self._lock:
             return self._rank_keys(self._hkey(previous_word), prefix, k)
 
-    def _user_list(self, p: str) -> list[str]:
-        """Suggestible user words starting with ``p``, by (count descending, key)."""
-        if self._dirty:
-            words = [w for w in self._uni if w not in (EOS, UNK) and self._suggestible(w)]
-            self._sorted_keys = sorted(words)
-            self._by_count = sorted(words, key=lambda w: (-self._uni[w], w))
-            self._dirty = False
-        if not p:
-            return self._by_count
-        keys = self._sorted_keys
-        lo = bisect.bisect_left(keys, p)
-        hi = bisect.bisect_left(keys, p + "\U0010ffff", lo)
-        return sorted(keys[lo:hi], key=lambda w: (-self._uni[w], w))
+    def _user_words_by_count(self, p: str) -> list[tuple[float, str]]:
+        """The user's words by (−stored count, key): those starting with ``p`` when few, else all."""
+        if p:
+            keys = self._sorted_keys
+            lo = bisect.bisect_left(keys, p)
+            hi = bisect.bisect_left(keys, p + "\U0010ffff", lo)
+            if hi - lo <= 64:
+                return sorted((-self._uni[w], w) for w in keys[lo:hi])
+        return self._by_count
+
+    def _successors_by_count(self, v: str) -> list[tuple[float, str]]:
+        cached = self._row_sorted.get(v)
+        if cached is None:
+            cached = sorted((-c, w) for w, c in self._big.get(v, {}).items() if w not in (EOS, UNK))
+            self._row_sorted[v] = cached
+        return cached
 
     def _rank_keys(self, v: str, prefix: str, k: int) -> list[tuple[str, float]]:
-        """Threshold algorithm over two lists sorted by their part of the score.
+        """Threshold algorithm over three lists, each sorted by one part of the score.
 
-        Every score is (1 − μ)·P_base + μ·P_user. The user's successors of v are scored in
-        full first; any other word x has P_user ≤ (1 − λ_u)·c(x)/N_user (or c(x)/N_user
-        when v is new to the user), so walking the base ranking and the user's words by
-        count in parallel, no unseen word can beat the current k-th best once that
-        exceeds (1 − μ)·(next base probability) + μ·(bound from the next user count).
+        score(w) = (1 − μ)·P_base(w | v) + μ·(λ_u·c(v,w)/c(v) + (1 − λ_u)·c(w)/N_user) (the user
+        part is c(w)/N_user when v is new to the user). The base ranking, the user's
+        successors of v by count and the user's words by count are walked in parallel;
+        a word not yet met in any list scores at most the same formula applied to the
+        next value of each list, so once the k-th best candidate beats that bound no
+        other word can enter the top k.
         """
         p = fold(prefix)
         mu = self.weight
         bprev = None if v == BOS else (v if v == UNK or v in self.base else UNK)
         blocked = self.blocklist
         cands: dict[str, float] = {}
+        seen: set[str] = set()
+        total = self._total
+        cv_user = self._hist.get(v, 0.0) if mu > 0 else 0.0
+        succ = self._successors_by_count(v) if cv_user > 0 else []
+        words = self._user_words_by_count(p) if mu > 0 else []
+        lam_u = self.lam if cv_user > 0 else 0.0
 
-        def full(w: str) -> float:
-            return (1.0 - mu) * self._p_base(v, w) + mu * self._p_user(v, w)
+        def consider(w: str) -> None:
+            if w in seen:
+                return
+            seen.add(w)
+            if w.startswith(p) and w not in blocked and self._suggestible(w):
+                cands[w] = (1.0 - mu) * self._p_base(v, w) + mu * self._p_user(v, w)
 
-        if mu > 0:
-            for w in self._big.get(v, {}):
-                if w.startswith(p) and w not in (EOS, UNK) and self._suggestible(w):
-                    cands[w] = full(w)
-            ulist = self._user_list(p)
-            uscale = (1.0 - self.lam) if self._hist.get(v, 0.0) > 0 else 1.0
-        else:
-            ulist, uscale = [], 0.0
         base_list: list[tuple[str, float]] = []
-        want, bi, ui, base_done = k, 0, 0, False
+        want, bi, si, ui, base_done = k, 0, 0, 0, False
         while True:
             if bi >= len(base_list) and not base_done:
                 base_list = self.base.rank_ids(bprev, prefix, want)
                 base_done = len(base_list) < want
                 want *= 2
             nb = base_list[bi] if bi < len(base_list) else None
-            nu = ulist[ui] if ui < len(ulist) else None
-            if nb is None and nu is None:
+            ns = succ[si] if si < len(succ) else None
+            nu = words[ui] if ui < len(words) else None
+            if nb is None and ns is None and nu is None:
                 break
             if len(cands) >= k:
-                bound = (1.0 - mu) * (nb[1] if nb else 0.0) + mu * (uscale * self._uni[nu] / self._total if nu else 0.0)
-                if heapq.nlargest(k, cands.values())[-1] > bound:
+                pb = nb[1] if nb else 0.0
+                pu = lam_u * (-ns[0] / cv_user if ns else 0.0) + (1.0 - lam_u) * (-nu[0] / total if nu else 0.0)
+                if heapq.nlargest(k, cands.values())[-1] > (1.0 - mu) * pb + mu * pu:
                     break
             if nb is not None:
-                if nb[0] not in cands and nb[0] not in blocked:
-                    cands[nb[0]] = full(nb[0])
+                consider(nb[0])
                 bi += 1
+            if ns is not None:
+                consider(ns[1])
+                si += 1
             if nu is not None:
-                if nu not in cands:
-                    cands[nu] = full(nu)
+                consider(nu[1])
                 ui += 1
         best = heapq.nsmallest(k, ((-s, w) for w, s in cands.items()))
         return [(w, -s) for s, w in best]
@@ -494,6 +528,7 @@ class PersonalLayer:
                 layer._hist[str(h)] = math.fsum(r.values())
             layer._spelling = {str(k): str(v) for k, v in data["spelling"].items()}
             layer._total = math.fsum(layer._uni.values())
+            layer._reindex()
         except (KeyError, TypeError, ValueError, AttributeError, msgpack.UnpackException, InvalidArgumentError) as e:
             raise ModelFormatError(f"{name}: damaged personal layer: {e}") from None
         return layer
