@@ -406,12 +406,13 @@ class PersonalLayer:
         words = self._user_words_by_count(p) if mu > 0 else []
         lam_u = self.lam if cv_user > 0 else 0.0
 
-        def consider(w: str) -> None:
+        def consider(w: str, pb: float | None = None) -> None:
             if w in seen:
                 return
             seen.add(w)
             if w.startswith(p) and w not in blocked and self._suggestible(w):
-                cands[w] = (1.0 - mu) * self._p_base(v, w) + mu * self._p_user(v, w)
+                base_p = self._p_base(v, w) if pb is None else pb
+                cands[w] = (1.0 - mu) * base_p + mu * self._p_user(v, w)
 
         base_list: list[tuple[str, float]] = []
         want, bi, si, ui, base_done = k, 0, 0, 0, False
@@ -425,20 +426,29 @@ class PersonalLayer:
             nu = words[ui] if ui < len(words) else None
             if nb is None and ns is None and nu is None:
                 break
-            if len(cands) >= k:
-                pb = nb[1] if nb else 0.0
-                pu = lam_u * (-ns[0] / cv_user if ns else 0.0) + (1.0 - lam_u) * (-nu[0] / total if nu else 0.0)
-                if heapq.nlargest(k, cands.values())[-1] > (1.0 - mu) * pb + mu * pu:
-                    break
-            if nb is not None:
-                consider(nb[0])
+            # each list's share of the bound on any word not met yet
+            cb = (1.0 - mu) * nb[1] if nb else -1.0
+            cs = mu * lam_u * (-ns[0] / cv_user) if ns else -1.0
+            cu = mu * (1.0 - lam_u) * (-nu[0] / total) if nu else -1.0
+            if len(cands) >= k and heapq.nlargest(k, cands.values())[-1] > max(cb, 0.0) + max(cs, 0.0) + max(cu, 0.0):
+                break
+            # advance the list that contributes most to the bound (adaptive sorted access)
+            if cb >= cs and cb >= cu and nb is not None:
+                consider(nb[0], nb[1])
                 bi += 1
-            if ns is not None:
+            elif cs >= cu and ns is not None:
                 consider(ns[1])
                 si += 1
-            if nu is not None:
+            elif nu is not None:
                 consider(nu[1])
                 ui += 1
+            else:  # only zero-share lists are left
+                if nb is not None:
+                    consider(nb[0], nb[1])
+                    bi += 1
+                if ns is not None:
+                    consider(ns[1])
+                    si += 1
         best = heapq.nsmallest(k, ((-s, w) for w, s in cands.items()))
         return [(w, -s) for s, w in best]
 
