@@ -87,6 +87,7 @@ class PersonalLayer:
         self.blocklist: set[str] = {fold(w) for w in blocklist}
         self.path = None if path is None else os.fspath(path)
         self._lock = threading.RLock()
+        self._base_cache: dict[tuple[str | None, str, int], list[tuple[str, float]]] = {}
         self._reset()
 
     @classmethod
@@ -134,7 +135,8 @@ class PersonalLayer:
         # and by (−stored count, key), and each history's successors by count (cached)
         self._sorted_keys: list[str] = []
         self._by_count: list[tuple[float, str]] = []
-        self._row_sorted: dict[str, list[tuple[float, str]]] = {}
+        self._by_initial: dict[str, list[tuple[float, str]]] = {}
+        self._row_sorted: dict[tuple[str, str], list[tuple[float, str]]] = {}
 
     def _decay_step(self) -> None:
         if self.half_life_messages is None:
@@ -153,6 +155,9 @@ class PersonalLayer:
         words = [w for w in self._uni if w not in (EOS, UNK)]
         self._sorted_keys = sorted(words)
         self._by_count = sorted((-self._uni[w], w) for w in words)
+        self._by_initial = {}
+        for c, w in self._by_count:
+            self._by_initial.setdefault(w[:1], []).append((c, w))
         self._row_sorted = {}
 
     def _bump(self, key: str, inc: float) -> None:
@@ -161,12 +166,14 @@ class PersonalLayer:
         self._uni[key] = new
         if key in (EOS, UNK):
             return
+        initial = self._by_initial.setdefault(key[:1], [])
         if old is None:
             bisect.insort(self._sorted_keys, key)
         else:
-            i = bisect.bisect_left(self._by_count, (-old, key))
-            del self._by_count[i]
+            del self._by_count[bisect.bisect_left(self._by_count, (-old, key))]
+            del initial[bisect.bisect_left(initial, (-old, key))]
         bisect.insort(self._by_count, (-new, key))
+        bisect.insort(initial, (-new, key))
 
     def count(self, word: str) -> float:
         """The user's (decayed) count of ``word`` as a predicted token."""
@@ -218,7 +225,8 @@ class PersonalLayer:
                     else:
                         self._spelling.setdefault(key, tok)
                 self._bump(key, inc)
-                self._row_sorted.pop(prev, None)
+                self._row_sorted.pop((prev, ""), None)
+                self._row_sorted.pop((prev, key[:1]), None)
                 row = self._big.setdefault(prev, {})
                 row[key] = row.get(key, 0.0) + inc
                 self._hist[prev] = self._hist.get(prev, 0.0) + inc
@@ -237,6 +245,8 @@ class PersonalLayer:
         if old is not None and key not in (EOS, UNK):
             del self._by_count[bisect.bisect_left(self._by_count, (-old, key))]
             del self._sorted_keys[bisect.bisect_left(self._sorted_keys, key)]
+            initial = self._by_initial[key[:1]]
+            del initial[bisect.bisect_left(initial, (-old, key))]
         self._row_sorted = {}
         removed = self._uni.pop(key, 0.0)
         self._total -= removed
@@ -261,7 +271,8 @@ class PersonalLayer:
         pairs = sorted((c, h, w) for h, row in self._big.items() for w, c in row.items())
         excess = self.entries - target
         for c, h, w in pairs[: max(0, min(excess, len(pairs) // 2))]:
-            self._row_sorted.pop(h, None)
+            self._row_sorted.pop((h, ""), None)
+            self._row_sorted.pop((h, w[:1]), None)
             row = self._big[h]
             del row[w]
             self._hist[h] -= c
@@ -375,13 +386,29 @@ class PersonalLayer:
             hi = bisect.bisect_left(keys, p + "\U0010ffff", lo)
             if hi - lo <= 64:
                 return sorted((-self._uni[w], w) for w in keys[lo:hi])
+            return self._by_initial.get(p[:1], [])
         return self._by_count
 
-    def _successors_by_count(self, v: str) -> list[tuple[float, str]]:
-        cached = self._row_sorted.get(v)
+    def _base_ranking(self, prev: str | None, p: str, want: int) -> list[tuple[str, float]]:
+        """The base model's top ``want`` (cached: the base never changes, its rankings repeat)."""
+        key = (prev, p, want)
+        hit = self._base_cache.get(key)
+        if hit is None:
+            hit = self.base.rank_ids(prev, p, want)
+            if len(self._base_cache) >= 20_000:
+                self._base_cache.clear()
+            self._base_cache[key] = hit
+        return hit
+
+    def _successors_by_count(self, v: str, p: str) -> list[tuple[float, str]]:
+        """v's successors by count: those with the prefix's first character, or all."""
+        key = (v, p[:1])
+        cached = self._row_sorted.get(key)
         if cached is None:
-            cached = sorted((-c, w) for w, c in self._big.get(v, {}).items() if w not in (EOS, UNK))
-            self._row_sorted[v] = cached
+            cached = sorted(
+                (-c, w) for w, c in self._big.get(v, {}).items() if w not in (EOS, UNK) and w.startswith(p[:1])
+            )
+            self._row_sorted[key] = cached
         return cached
 
     def _rank_keys(self, v: str, prefix: str, k: int) -> list[tuple[str, float]]:
@@ -402,9 +429,11 @@ class PersonalLayer:
         seen: set[str] = set()
         total = self._total
         cv_user = self._hist.get(v, 0.0) if mu > 0 else 0.0
-        succ = self._successors_by_count(v) if cv_user > 0 else []
+        succ = self._successors_by_count(v, p) if cv_user > 0 else []
         words = self._user_words_by_count(p) if mu > 0 else []
         lam_u = self.lam if cv_user > 0 else 0.0
+
+        kth = [-1.0]
 
         def consider(w: str, pb: float | None = None) -> None:
             if w in seen:
@@ -413,12 +442,14 @@ class PersonalLayer:
             if w.startswith(p) and w not in blocked and self._suggestible(w):
                 base_p = self._p_base(v, w) if pb is None else pb
                 cands[w] = (1.0 - mu) * base_p + mu * self._p_user(v, w)
+                if len(cands) >= k:
+                    kth[0] = heapq.nlargest(k, cands.values())[-1]
 
         base_list: list[tuple[str, float]] = []
         want, bi, si, ui, base_done = k, 0, 0, 0, False
         while True:
             if bi >= len(base_list) and not base_done:
-                base_list = self.base.rank_ids(bprev, prefix, want)
+                base_list = self._base_ranking(bprev, p, want)
                 base_done = len(base_list) < want
                 want *= 2
             nb = base_list[bi] if bi < len(base_list) else None
@@ -430,7 +461,7 @@ class PersonalLayer:
             cb = (1.0 - mu) * nb[1] if nb else -1.0
             cs = mu * lam_u * (-ns[0] / cv_user) if ns else -1.0
             cu = mu * (1.0 - lam_u) * (-nu[0] / total) if nu else -1.0
-            if len(cands) >= k and heapq.nlargest(k, cands.values())[-1] > max(cb, 0.0) + max(cs, 0.0) + max(cu, 0.0):
+            if kth[0] > max(cb, 0.0) + max(cs, 0.0) + max(cu, 0.0):
                 break
             # advance the list that contributes most to the bound (adaptive sorted access)
             if cb >= cs and cb >= cu and nb is not None:
