@@ -34,6 +34,7 @@ import math
 import os
 import struct
 import threading
+import time
 import zlib
 from collections.abc import Iterable
 from typing import Any
@@ -64,6 +65,7 @@ class PersonalLayer:
         max_weight: float = 0.5,
         lam: float = 0.9,
         half_life_messages: float | None = None,
+        half_life_days: float | None = None,
         blocklist: Iterable[str] = (),
         max_entries: int = 65_536,
         path: str | os.PathLike[str] | None = None,
@@ -75,6 +77,9 @@ class PersonalLayer:
                 raise InvalidArgumentError(f"{name} must be a number in [{lo}, {hi}], got {value!r}")
         if half_life_messages is not None and not half_life_messages > 0:
             raise InvalidArgumentError(f"half_life_messages must be > 0, got {half_life_messages!r}")
+        if half_life_days is not None and not half_life_days > 0:
+            raise InvalidArgumentError(f"half_life_days must be > 0, got {half_life_days!r}")
+        self.half_life_days = half_life_days
         self.base = base
         self.min_uses = min_uses
         self.strength = float(strength)
@@ -131,6 +136,7 @@ class PersonalLayer:
         self._scale = 1.0
         self._spelling: dict[str, str] = {}
         self.messages = 0
+        self._last_time: float | None = None
         # indexes for ranking, kept in step with the counts: the user's words sorted by key
         # and by (−stored count, key), and each history's successors by count (cached)
         self._sorted_keys: list[str] = []
@@ -138,10 +144,14 @@ class PersonalLayer:
         self._by_initial: dict[str, list[tuple[float, str]]] = {}
         self._row_sorted: dict[tuple[str, str], list[tuple[float, str]]] = {}
 
-    def _decay_step(self) -> None:
-        if self.half_life_messages is None:
-            return
-        self._scale *= 0.5 ** (1.0 / self.half_life_messages)
+    def _decay_step(self, when: float | None) -> None:
+        """Age every count: by one message, and by the days since the last message."""
+        if self.half_life_messages is not None:
+            self._scale *= 0.5 ** (1.0 / self.half_life_messages)
+        if self.half_life_days is not None and when is not None:
+            if self._last_time is not None and when > self._last_time:
+                self._scale *= 0.5 ** ((when - self._last_time) / 86400.0 / self.half_life_days)
+            self._last_time = when if self._last_time is None else max(when, self._last_time)
         if self._scale < 1e-150:  # renormalise before the stored numbers overflow
             s = self._scale
             self._uni = {k: v * s for k, v in self._uni.items()}
@@ -198,18 +208,24 @@ class PersonalLayer:
 
     # -- learning ------------------------------------------------------------------------------
 
-    def learn(self, message: str) -> None:
-        """Count one committed message (O(words)); its text is not kept."""
+    def learn(self, message: str, *, when: float | None = None) -> None:
+        """Count one committed message (O(words)); its text is not kept.
+
+        ``when`` (seconds since the epoch, default now) drives the decay in days; only the
+        time of the latest message is kept.
+        """
         if not isinstance(message, str):
             raise InvalidArgumentError(f"message must be str, got {type(message).__name__}")
+        if when is None and self.half_life_days is not None:
+            when = time.time()
         with self._lock:
-            self._learn(message)
+            self._learn(message, when)
             if self.entries > self.max_entries:
                 self._evict()
             self._changed()
 
-    def _learn(self, message: str) -> None:
-        self._decay_step()
+    def _learn(self, message: str, when: float | None) -> None:
+        self._decay_step(when)
         inc = 1.0 / self._scale
         for sent in sentences(message):
             prev = BOS
@@ -509,8 +525,10 @@ class PersonalLayer:
                 "max_weight": self.max_weight,
                 "lam": self.lam,
                 "half_life_messages": self.half_life_messages,
+                "half_life_days": self.half_life_days,
                 "max_entries": self.max_entries,
             },
+            "last_time": self._last_time,
             "messages": self.messages,
             "unigram": {k: v * s for k, v in self._uni.items()},
             "bigram": {h: {k: v * s for k, v in row.items()} for h, row in self._big.items()},
@@ -557,10 +575,13 @@ class PersonalLayer:
                 max_weight=st["max_weight"],
                 lam=st["lam"],
                 half_life_messages=st["half_life_messages"],
+                half_life_days=st.get("half_life_days"),
                 blocklist=data["blocklist"],
                 max_entries=st.get("max_entries", 65_536),
             )
             layer.messages = int(data["messages"])
+            last = data.get("last_time")
+            layer._last_time = None if last is None else float(last)
             for key, value in data["unigram"].items():
                 layer._uni[str(key)] = float(value)
             for h, row in data["bigram"].items():

@@ -114,6 +114,17 @@ def test_decay_halves_a_count_after_one_half_life(base: nextword.Model) -> None:
     assert layer.count("zorbing") == pytest.approx(c0 / 2, rel=1e-12)
 
 
+def test_decay_in_days_halves_after_one_half_life(base: nextword.Model) -> None:
+    layer = PersonalLayer(base, half_life_days=30)
+    day = 86400.0
+    layer.learn("zorbing", when=1_000_000.0)
+    c0 = layer.count("zorbing")
+    layer.learn("other words", when=1_000_000.0 + 30 * day)
+    assert layer.count("zorbing") == pytest.approx(c0 / 2, rel=1e-12)
+    layer.learn("late but earlier timestamp", when=1_000_000.0)  # clocks going back never add weight
+    assert layer.count("zorbing") == pytest.approx(c0 / 2, rel=1e-12)
+
+
 @settings(max_examples=150, deadline=None)
 @given(
     st.lists(st.sampled_from(USER + ["the object is a list", "zanele asks", "a zorbing object"]), max_size=12),
