@@ -131,6 +131,17 @@ def _parser() -> _Parser:
     tu.add_argument("--report", metavar="DIR", help="write tune.md and curve plots into DIR")
     tu.add_argument("--json", action="store_true", help="print JSON")
 
+    pe = sub.add_parser("personal", help="a user's personal layer: learn, forget, block, suggest, info")
+    pe.add_argument("layer", metavar="LAYER_FILE", help="the layer's file (created if missing; every change saved at once)")
+    pe.add_argument("--model", required=True, help="the base model")
+    pe.add_argument("action", choices=("learn", "forget", "clear", "block", "unblock", "suggest", "info"))
+    pe.add_argument("items", nargs="*", metavar="TEXT", help="messages to learn, words, or texts before the cursor")
+    pe.add_argument("-k", type=_positive, default=3, help="suggestions per text (default %(default)s)")
+    pe.add_argument("--min-uses", type=_positive, default=2, help="uses before a new word is offered (new layers)")
+    pe.add_argument("--half-life-messages", type=float, default=None, help="decay (new layers)")
+    pe.add_argument("--half-life-days", type=float, default=None, help="decay by time (new layers)")
+    pe.add_argument("--json", action="store_true", help="print JSON")
+
     lv = sub.add_parser("live", help="type in the terminal and watch suggestions update on every key")
     lv.add_argument("model")
     lv.add_argument("-k", type=_positive, default=5, help="suggestions shown (default %(default)s)")
@@ -443,6 +454,57 @@ def _tune_report(out_dir: str, result: dict[str, Any]) -> None:
     atomic_write(out / "tune.md", [("\n".join(lines) + "\n").encode("utf-8")])
 
 
+def _cmd_personal(args: argparse.Namespace) -> int:
+    from .personal import PersonalLayer
+
+    base = load(args.model)
+    layer = PersonalLayer.open(
+        base,
+        args.layer,
+        min_uses=args.min_uses,
+        half_life_messages=args.half_life_messages,
+        half_life_days=args.half_life_days,
+    )
+    items = args.items if args.items or args.action in ("clear", "info") else [line.rstrip("\n") for line in sys.stdin]
+    out: dict[str, Any] = {"layer": args.layer, "action": args.action}
+    if args.action == "learn":
+        for text in items:
+            layer.learn(text)
+        out["learned"] = len(items)
+    elif args.action in ("forget", "block", "unblock"):
+        for word in items:
+            getattr(layer, args.action)(word)
+        out["words"] = items
+    elif args.action == "clear":
+        layer.clear()
+    elif args.action == "suggest":
+        out["results"] = [
+            {"text": t, "suggestions": [{"word": s.word, "prob": s.prob} for s in layer.suggest(t, args.k)]} for t in items
+        ]
+    out.update(
+        {
+            "messages": layer.messages,
+            "entries": layer.entries,
+            "tokens": layer.tokens,
+            "weight": layer.weight,
+            "file_bytes": os.path.getsize(args.layer),
+            "blocklist": sorted(layer.blocklist),
+        }
+    )
+    if args.json:
+        print(json.dumps(out, ensure_ascii=False, indent=2))
+    elif args.action == "suggest":
+        for r in out["results"]:
+            words = "  ".join(f"{s['word']} ({s['prob']:.3f})" for s in r["suggestions"]) or "(no suggestion)"
+            print(f"{json.dumps(r['text'], ensure_ascii=False)} -> {words}")
+    else:
+        print(
+            f"{args.layer}: {layer.messages:,} messages learned, {layer.entries:,} entries, weight {layer.weight:.3f}, "
+            f"{out['file_bytes']:,} bytes; blocked: {', '.join(out['blocklist']) or 'none'}"
+        )
+    return 0
+
+
 def _cmd_live(args: argparse.Namespace) -> int:
     from ._live import run_live
 
@@ -462,6 +524,7 @@ def main(argv: Sequence[str] | None = None) -> int:
             "eval": _cmd_eval,
             "split": _cmd_split,
             "tune": _cmd_tune,
+            "personal": _cmd_personal,
             "live": _cmd_live,
         }[args.command]
         return handler(args)

@@ -288,3 +288,32 @@ def test_kill_minus_nine_loses_at_most_the_last_message(base: nextword.Model, tm
         # every acknowledged message was saved; at most the one in flight is lost or kept
         assert acknowledged <= layer.messages <= acknowledged + 1 + sum(1 for _ in proc.stdout)
     assert layer.messages > 0
+
+
+def test_personal_command_learns_forgets_and_survives(base: nextword.Model, tmp_path: Path) -> None:
+    import json
+    import os
+    import subprocess
+    import sys
+
+    root = Path(__file__).resolve().parent.parent
+    env = dict(os.environ, PYTHONPATH=str(root))
+    layer = tmp_path / "me.nwp"
+
+    def cli(*args: str) -> dict:
+        r = subprocess.run([sys.executable, "-m", "nextword", "personal", str(layer), "--model", base.path, *args, "--json"],
+                           capture_output=True, text=True, env=env)
+        assert r.returncode == 0, r.stderr
+        return json.loads(r.stdout)
+
+    assert cli("learn", "ask Zanele about zorbing", "zorbing with Zanele")["messages"] == 2
+    got = cli("suggest", "we went zo", "-k", "1")["results"][0]["suggestions"]
+    assert [s["word"] for s in got] == ["zorbing"]
+    cli("forget", "zorbing")
+    assert cli("suggest", "we went zo")["results"][0]["suggestions"] == []
+    assert cli("block", "zanele")["blocklist"] == ["zanele"]
+    assert cli("info")["messages"] == 2  # a fresh process reads everything back
+    layer.write_bytes(layer.read_bytes()[:-2])
+    r = subprocess.run([sys.executable, "-m", "nextword", "personal", str(layer), "--model", base.path, "info"],
+                       capture_output=True, text=True, env=env)
+    assert r.returncode == 1 and "personal layer" in r.stderr and r.stderr.count("\n") == 1
