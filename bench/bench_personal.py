@@ -1,13 +1,13 @@
 """Personal adaptation benchmark: prequential replay of a user's log over a base model.
 
-The base model is the 5-million-word dictionary model of ``bench_core.py``; the "user"
-is the held-out part of the fortunes split of ``bench_eval.py`` (quotations and jokes:
-another kind of text). Each message is first typed with the current layer (the keystroke
+The base model is the fortunes model of ``bench_eval.py`` (quotations and jokes); the
+"user" is the Jargon File from Debian's ``dict-jargon`` (one community's technical slang:
+another kind of text, with its own recurring names and phrases), in file order. Each message is first typed with the current layer (the keystroke
 simulation of ``nextword.evaluate``) and only then learned, so every figure is on text
 the layer had not seen. The base model alone types the same messages for comparison.
 Figures go into ``bench/RESULTS.md`` between the ``personal`` markers.
 
-    python bench/bench_core.py && python bench/bench_eval.py && python bench/bench_personal.py
+    python bench/bench_eval.py && python bench/bench_personal.py
 """
 
 from __future__ import annotations
@@ -27,20 +27,25 @@ import nextword  # noqa: E402
 from bench_core import machine, update_results  # noqa: E402
 from nextword.evaluate import simulate_message  # noqa: E402
 from nextword.personal import PersonalLayer  # noqa: E402
+from prepare_corpus import messages as public_messages  # noqa: E402
 
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description="prequential personal-adaptation benchmark")
     ap.add_argument("-k", type=int, default=3)
     ap.add_argument("--blocks", type=int, default=8, help="points on the learning curve")
+    ap.add_argument("--messages", type=int, default=1500, help="user messages replayed")
     ap.add_argument("--no-results", action="store_true")
     args = ap.parse_args(argv)
-    base_path, log = HERE / "out" / "core.nwm", HERE / "out" / "eval" / "test.txt"
-    if not base_path.exists() or not log.exists():
-        print("bench_personal: run bench/bench_core.py and bench/bench_eval.py first", file=sys.stderr)
+    base_path = HERE / "out" / "eval" / "fortunes.nwm"
+    if not base_path.exists():
+        print("bench_personal: run bench/bench_eval.py first", file=sys.stderr)
         return 2
     base = nextword.load(base_path)
-    msgs = [m for m in log.read_text(encoding="utf-8").splitlines() if m.strip()]
+    msgs = [m for src, m in public_messages() if src == "jargon"][: args.messages]
+    if not msgs:
+        print("bench_personal: the Jargon File is missing; run: apt-get install dict-jargon", file=sys.stderr)
+        return 2
     layer = PersonalLayer(base)
     k = args.k
     rows = []  # per message: (chars, keys_base, keys_layer)
@@ -72,11 +77,11 @@ def main(argv: list[str] | None = None) -> int:
     )
     md = f"""### Personal adaptation (`bench/bench_personal.py`)
 
-Command: `python bench/bench_core.py && python bench/bench_eval.py && python bench/bench_personal.py` — {time.strftime('%Y-%m-%d')}
+Command: `apt-get install fortunes dict-jargon && python bench/bench_eval.py && python bench/bench_personal.py` — {time.strftime('%Y-%m-%d')}
 Machine: {machine()}.
-Prequential replay: base model = the 5M-word dictionary model (bench_core); user log = the {len(msgs):,} held-out
-fortunes messages (another kind of text), each typed with the current layer, then learned. Layer defaults
-(min_uses 2, strength 2000, max_weight 0.5, λ 0.9, no decay). Total {wall:.1f} s.
+Prequential replay: base model = the fortunes model (bench_eval: quotations and jokes); user log = the first
+{len(msgs):,} entries of the Jargon File (another kind of text), each typed with the current layer, then learned.
+Layer defaults (min_uses 2, strength 2000, max_weight 0.5, λ 0.9, no decay). Total {wall:.1f} s.
 
 | | KSR@{k} |
 |---|---|
