@@ -142,6 +142,11 @@ def _parser() -> _Parser:
     pe.add_argument("--half-life-days", type=float, default=None, help="decay by time (new layers)")
     pe.add_argument("--json", action="store_true", help="print JSON")
 
+    ex = sub.add_parser("export", help="export a model to another format")
+    ex.add_argument("model")
+    ex.add_argument("--arpa", required=True, metavar="FILE", help="write the ARPA back-off text (.gz ok)")
+    ex.add_argument("--lam", type=_lam, default=None, help="override the model's λ")
+
     lv = sub.add_parser("live", help="type in the terminal and watch suggestions update on every key")
     lv.add_argument("model")
     lv.add_argument("-k", type=_positive, default=5, help="suggestions shown (default %(default)s)")
@@ -505,6 +510,15 @@ def _cmd_personal(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_export(args: argparse.Namespace) -> int:
+    from .export import write_arpa
+
+    model = load(args.model)
+    write_arpa(model, args.arpa, lam=args.lam)
+    print(f"wrote {args.arpa}: {model.n_words + 3:,} unigrams, {model.n_bigrams:,} bigrams")
+    return 0
+
+
 def _cmd_live(args: argparse.Namespace) -> int:
     from ._live import run_live
 
@@ -525,6 +539,7 @@ def main(argv: Sequence[str] | None = None) -> int:
             "split": _cmd_split,
             "tune": _cmd_tune,
             "personal": _cmd_personal,
+            "export": _cmd_export,
             "live": _cmd_live,
         }[args.command]
         return handler(args)
