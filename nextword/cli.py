@@ -142,6 +142,13 @@ def _parser() -> _Parser:
     pe.add_argument("--half-life-days", type=float, default=None, help="decay by time (new layers)")
     pe.add_argument("--json", action="store_true", help="print JSON")
 
+    pr = sub.add_parser("prune", help="drop the least valuable pairs until the model fits a size budget")
+    pr.add_argument("model")
+    pr.add_argument("-o", "--output", required=True, help="the pruned model (written atomically)")
+    pr.add_argument("--max-size", required=True, metavar="SIZE", help="budget, e.g. 4MB, 1.5MiB, 800000")
+    pr.add_argument("--rule", choices=("count", "entropy"), default="count", help="which pairs go first (default %(default)s)")
+    pr.add_argument("--json", action="store_true")
+
     ex = sub.add_parser("export", help="export a model to another format")
     ex.add_argument("model")
     ex.add_argument("--arpa", required=True, metavar="FILE", help="write the ARPA back-off text (.gz ok)")
@@ -510,6 +517,29 @@ def _cmd_personal(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_prune(args: argparse.Namespace) -> int:
+    from .prune import parse_size, prune_to_size, tables_from_model
+    from .store import atomic_write
+
+    model = load(args.model)
+    if os.path.exists(args.output) and os.path.samefile(args.model, args.output):
+        raise UsageError(f"{args.output}: the pruned model must go to a new file, not over its input")
+    _, chunks, info = prune_to_size(
+        tables_from_model(model), parse_size(args.max_size), rule=args.rule, lam=model.stored_lam,
+        skyband_k=model._sky_k, skyband_min=model._sky_min,
+    )
+    atomic_write(args.output, chunks)
+    out = {"input_bytes": model.file_size, "output": args.output, "rule": args.rule, **info}
+    if args.json:
+        print(json.dumps(out))
+    else:
+        print(
+            f"wrote {args.output}: {info['bytes']:,} bytes (was {model.file_size:,}); kept {info['kept']:,} pairs, "
+            f"removed {info['removed']:,} ({args.rule} rule)"
+        )
+    return 0
+
+
 def _cmd_export(args: argparse.Namespace) -> int:
     from .export import write_arpa
 
@@ -540,6 +570,7 @@ def main(argv: Sequence[str] | None = None) -> int:
             "tune": _cmd_tune,
             "personal": _cmd_personal,
             "export": _cmd_export,
+            "prune": _cmd_prune,
             "live": _cmd_live,
         }[args.command]
         return handler(args)

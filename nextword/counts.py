@@ -53,6 +53,8 @@ class CountTables:
     pair_right: np.ndarray
     pair_count: np.ndarray
     stats: dict[str, int] = field(default_factory=dict)
+    #: c(v) per history id when pairs were pruned (row sums); None = derived from unigrams
+    history: np.ndarray | None = None
 
     @property
     def n_words(self) -> int:

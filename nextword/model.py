@@ -157,6 +157,7 @@ class Model:
         self._mv_alph, self._mv_apos, self._mv_unig = mv["ALPH"], mv["APOS"], mv["UNIG"]
         self._mv_rows, self._mv_succ = mv["ROWS"], mv["SUCC"]
         self._mv_skyc = mv["SKYC"]
+        self._mv_hist = mv.get("HIST")
         self._mv_disi, self._mv_diso, self._mv_key4 = mv["DISI"], mv["DISO"], mv["KEY4"]
         self._mv_segs, self._mv_sege, self._mv_skyp = mv["SEGS"], mv["SEGE"], mv["SKYP"]
         self._mv_cnts = memoryview(np.ascontiguousarray(a["CNTS"])).cast("B")  # type: ignore[arg-type]
@@ -279,7 +280,9 @@ class Model:
         return self._hist(self._history_id(previous_word))
 
     def _hist(self, v: int) -> int:
-        """c(v) as a history, derived from the unigram counts (see store.history_counts)."""
+        """c(v) as a history: stored in pruned models, else derived from the unigram counts."""
+        if self._mv_hist is not None:
+            return self._mv_hist[v]  # type: ignore[no-any-return]
         if v == self._eos:
             return 0
         if v == self._bos:

@@ -40,8 +40,12 @@ __all__ = [
 
 MAGIC: Final = b"\x89NWM\r\n\x1a\n"
 FORMAT_VERSION: Final = (1, 0)
-#: Minor version 1 adds λ by history count (META "lambda_buckets"); files without it stay 1.0.
-MAX_MINOR: Final = 1
+#: Minor version 1 adds λ by history count (META "lambda_buckets"); minor version 2 adds
+#: pruned models (optional HIST section: c(v) as the sum of the kept pairs). Files that
+#: use neither stay 1.0.
+MAX_MINOR: Final = 2
+#: sections that only some files have: tag -> element type
+_OPTIONAL: Final = {b"HIST": "u4"}
 HEADER = struct.Struct("<8sHHIQII")  # magic, major, minor, sections, file size, table crc, header crc
 ENTRY = struct.Struct("<4sB3xQQI4x")  # tag, dtype code, offset, length, crc
 MAX_SECTIONS: Final = 64
@@ -319,6 +323,8 @@ def build_sections(
     skyc = np.concatenate([cum_parts[i] for i in order.tolist()]) if parts else np.zeros(0, np.int64)
     longest = int((seg_e_a - seg_s_a).max(initial=0))
     sky_dtype = np.dtype("<u2") if longest <= 0xFFFF else np.dtype("<u4")
+    if tables.history is not None and np.any(np.bincount(left, weights=counts, minlength=n_hist) != tables.history):
+        raise InvalidArgumentError("history counts disagree with the pairs")
 
     dis_ids = [i for i, (k, d) in enumerate(zip(tables.keys, tables.displays)) if k != d]
     dis_bytes = [tables.displays[i].encode("utf-8") for i in dis_ids]
@@ -360,7 +366,7 @@ def build_sections(
         (b"DISI", idt, np.asarray(dis_ids, dtype=np.int64)),
         (b"DISO", u4, diso),
         (b"DISB", None, b"".join(dis_bytes)),
-    ]
+    ] + ([(b"HIST", u4, tables.history)] if tables.history is not None else [])
 
 
 def encode_sections(sections: list[tuple[bytes, np.dtype | None, bytes | np.ndarray]], *, minor: int = 0) -> list[bytes]:
@@ -399,7 +405,7 @@ def write_model(
 ) -> None:
     """Build the model arrays from ``tables`` and write them atomically to ``path``."""
     sections = build_sections(tables, lam=lam, skyband_k=skyband_k, skyband_min=skyband_min)
-    atomic_write(path, encode_sections(sections))
+    atomic_write(path, encode_sections(sections, minor=2 if tables.history is not None else 0))
 
 
 def rewrite_model(
@@ -433,8 +439,13 @@ def rewrite_model(
         else:
             arr = arrays.arrays[label]
             sections.append((tag, arr.dtype, np.array(arr)))
+    for tag in _OPTIONAL:
+        if tag.decode() in arrays.arrays:
+            arr = arrays.arrays[tag.decode()]
+            sections.append((tag, arr.dtype, np.array(arr)))
     _check_meta(os.fspath(dst), msgpack.unpackb(sections[0][2], raw=False), 1 << 62)  # type: ignore[arg-type]
-    atomic_write(dst, encode_sections(sections, minor=1 if buckets is not None else 0))
+    minor = 2 if "HIST" in arrays.arrays else (1 if buckets is not None else 0)
+    atomic_write(dst, encode_sections(sections, minor=minor))
 
 
 # ----------------------------------------------------------------------------- reading
@@ -535,9 +546,12 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
     if -prev_end % ALIGN != size - prev_end or any(buf[prev_end:size]):
         raise _fail(name, "unexpected bytes after the last section")
     missing = [t.decode() for t in _SECTIONS if t not in sections]
+    if (b"HIST" in sections) != (minor >= 2):
+        raise _fail(name, "section HIST must be present exactly in format 1.2 (pruned) files")
     if missing:
         raise _fail(name, f"missing sections {', '.join(missing)}")
-    for tag in _SECTIONS if verify else _CHECKED_ON_LOAD:
+    optional = [t for t in _OPTIONAL if t in sections]
+    for tag in [*(_SECTIONS if verify else _CHECKED_ON_LOAD), *optional]:
         code, off, length, crc = sections[tag]
         if zlib.crc32(buf[off : off + length]) != crc:
             raise _fail(name, f"section {tag.decode()} checksum mismatch (damaged file)")
@@ -569,6 +583,12 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
             raise _fail(name, f"section {label} has element type {_DTYPES[code]}, expected {want}")
         arrays[label] = np.frombuffer(mm, dtype=want, count=length // want.itemsize, offset=off)
 
+    for tag in optional:
+        code, off, length, _ = sections[tag]
+        want = np.dtype("<" + _OPTIONAL[tag])
+        if _DTYPES[code] != want:
+            raise _fail(name, f"section {tag.decode()} has element type {_DTYPES[code]}, expected {want}")
+        arrays[tag.decode()] = np.frombuffer(mm, dtype=want, count=length // want.itemsize, offset=off)
     trie = marisa_trie.Trie()
     trie.map(raw["TRIE"])
     _check_arrays(name, meta, trie, arrays, raw, full=verify)
@@ -642,6 +662,7 @@ def _check_arrays(
         "SEGE": len(a["SEGS"]),
         "SKYP": len(a["SEGS"]) + 1,
         "SKYC": len(a["SEGS"]) * meta["skyband_k"],
+        **({"HIST": n_hist} if "HIST" in a else {}),
         "DISO": len(a["DISI"]) + 1,
     }
     for label, want in expected.items():
@@ -688,11 +709,14 @@ def _check_arrays(
         raise _fail(name, "sections CNTS and BIGI disagree")
     full_counts = cnts.astype(np.int64)
     full_counts[bigi] = bigc
-    if not np.array_equal(np.bincount(row_of, weights=full_counts, minlength=n_hist), history_counts(a["UNIG"], n)):
-        raise _fail(name, "row counts disagree with the history counts implied by UNIG")
+    hist = a["HIST"] if "HIST" in a else history_counts(a["UNIG"], n)
+    if not np.array_equal(np.bincount(row_of, weights=full_counts, minlength=n_hist), hist):
+        raise _fail(name, "row counts disagree with the history counts")
     col = np.bincount(a["ALPH"][succ], weights=full_counts, minlength=n_pos)
-    if not np.array_equal(col, a["UNIG"]):
+    if "HIST" not in a and not np.array_equal(col, a["UNIG"]):
         raise _fail(name, "section UNIG disagrees with the bigram counts")
+    if "HIST" in a and np.any(col > a["UNIG"]):
+        raise _fail(name, "a pruned model holds more pair counts than unigram counts")
     skyp = a["SKYP"].astype(np.int64)
     if skyp[0] != 0 or skyp[-1] != len(a["SKYI"]) or np.any(skyp[1:] < skyp[:-1]):
         raise _fail(name, "section SKYP offsets are not increasing from 0 to the end of SKYI")

@@ -1,0 +1,66 @@
+"""Pruning to a size budget: the budget holds, unigrams stay, the model stays a distribution."""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import nextword
+from nextword.counts import CountBuilder
+from nextword.prune import parse_size, prune_to_size, tables_from_model, vocabulary_bytes
+from nextword.store import atomic_write
+
+
+@pytest.fixture(scope="module")
+def lines() -> list[str]:
+    from pydoc_data.topics import topics  # real English shipped with CPython
+
+    return [ln for k in sorted(topics)[:40] for ln in topics[k].splitlines() if ln.strip()]
+
+
+def test_parse_size() -> None:
+    assert parse_size("4MB") == 4_000_000 and parse_size("1.5MiB") == 1_572_864 and parse_size("250000") == 250_000
+    with pytest.raises(nextword.InvalidArgumentError, match="cannot read a size"):
+        parse_size("four")
+
+
+@pytest.mark.parametrize("rule", ["entropy", "count"])
+def test_pruned_model_fits_keeps_unigrams_and_sums_to_one(lines: list[str], tmp_path: Path, rule: str) -> None:
+    b = CountBuilder()
+    b.add_texts(lines)
+    tables = b.tables(min_count=1)
+    full = tmp_path / "full.nwm"
+    nextword.store.write_model(tables, full, lam=0.9)
+    floor = vocabulary_bytes(tables)
+    budget = floor + (full.stat().st_size - floor) // 2  # half of the pairs' bytes
+    pruned_tables, chunks, info = prune_to_size(tables, budget, rule=rule, lam=0.9)  # type: ignore[arg-type]
+    out = tmp_path / "pruned.nwm"
+    atomic_write(out, chunks)
+    assert out.stat().st_size <= budget and info["removed"] > 0
+    m = nextword.load(out, verify=True)
+    assert m.format_version == (1, 2)
+    assert np.array_equal(np.asarray(m._unig), tables.unigram)  # no unigram is ever removed
+    vocab = [w for w, _ in m.words()] + ["</s>", "<unk>"]
+    for prev in [None, "the", "is", "a", "<unk>", "object"]:
+        assert math.fsum(m.prob(w, prev) for w in vocab) == pytest.approx(1.0, abs=1e-12)
+    # exact ranking still holds on pruned rows: compare with scoring every word by prob()
+    for prev in [None, "the", "a", "is"]:
+        for prefix in ["", "t", "ex"]:
+            want = sorted(
+                ((m.prob(w, prev), nextword.text.fold(w)) for w, _ in m.words() if nextword.text.fold(w).startswith(prefix)),
+                key=lambda t: (-t[0], t[1]),
+            )[:5]
+            assert [(k, p) for k, p in m.rank_ids(prev, prefix, 5)] == [(k, p) for p, k in want]
+    # an existing model prunes to the same result as its counts
+    again, _, _ = prune_to_size(tables_from_model(nextword.load(full)), budget, rule=rule, lam=0.9)  # type: ignore[arg-type]
+    assert np.array_equal(again.pair_count, pruned_tables.pair_count)
+
+
+def test_budget_below_the_vocabulary_is_a_clear_error(lines: list[str]) -> None:
+    b = CountBuilder()
+    b.add_texts(lines[:200])
+    with pytest.raises(nextword.InvalidArgumentError, match="below the vocabulary alone"):
+        prune_to_size(b.tables(min_count=1), 1000)
