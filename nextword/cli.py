@@ -78,6 +78,8 @@ def _parser() -> _Parser:
     t.add_argument("--max-vocab", type=_positive, default=DEFAULT_MAX_VOCAB, help="keep this many words (default %(default)s)")
     t.add_argument("--format", choices=FORMATS, default="auto", help="input format (default: by file name)")
     t.add_argument("--field", default="text", help="JSON Lines field holding the message (default %(default)s)")
+    t.add_argument("--max-size", metavar="SIZE", help="prune pairs until the file fits, e.g. 4MB")
+    t.add_argument("--rule", choices=("count", "entropy"), default="entropy", help="pruning rule with --max-size")
     t.add_argument("--json", action="store_true", help="print the training report as JSON")
 
     s = sub.add_parser("suggest", help="print suggestions for typed texts")
@@ -146,7 +148,7 @@ def _parser() -> _Parser:
     pr.add_argument("model")
     pr.add_argument("-o", "--output", required=True, help="the pruned model (written atomically)")
     pr.add_argument("--max-size", required=True, metavar="SIZE", help="budget, e.g. 4MB, 1.5MiB, 800000")
-    pr.add_argument("--rule", choices=("count", "entropy"), default="count", help="which pairs go first (default %(default)s)")
+    pr.add_argument("--rule", choices=("count", "entropy"), default="entropy", help="which pairs go first (default %(default)s)")
     pr.add_argument("--json", action="store_true")
 
     ex = sub.add_parser("export", help="export a model to another format")
@@ -170,6 +172,8 @@ def _cmd_train(args: argparse.Namespace) -> int:
         max_vocab=args.max_vocab,
         fmt=args.format,
         field=args.field,
+        max_bytes=None if args.max_size is None else _size_arg(args.max_size),
+        prune_rule=args.rule,
     )
     data = {
         "path": report.path,
@@ -193,6 +197,12 @@ def _cmd_train(args: argparse.Namespace) -> int:
             f"({report.words_per_second:,.0f} words/s)"
         )
     return 0
+
+
+def _size_arg(text: str) -> int:
+    from .prune import parse_size
+
+    return parse_size(text)
 
 
 def _time_query(model: Model, text: str, k: int, lam: float | None) -> float:

@@ -692,12 +692,23 @@ def _finish(
     skyband_k: int,
     skyband_min: int,
     t0: float,
+    max_bytes: int | None = None,
+    prune_rule: str = "entropy",
 ) -> TrainReport:
     t1 = time.perf_counter()
     tables: CountTables = builder.tables(min_count=min_count, max_vocab=max_vocab)
     if tables.stats["word_tokens"] == 0:
         raise InputDataError("the input holds no words")
-    write_model(tables, output_path, lam=lam, skyband_k=skyband_k, skyband_min=skyband_min)
+    if max_bytes is None:
+        write_model(tables, output_path, lam=lam, skyband_k=skyband_k, skyband_min=skyband_min)
+    else:
+        from .prune import prune_to_size
+        from .store import atomic_write
+
+        tables, chunks, _ = prune_to_size(
+            tables, max_bytes, rule=prune_rule, lam=lam, skyband_k=skyband_k, skyband_min=skyband_min  # type: ignore[arg-type]
+        )
+        atomic_write(output_path, chunks)
     t2 = time.perf_counter()
     return TrainReport(
         path=os.fspath(output_path),
@@ -732,12 +743,16 @@ def train(
     skyband_k: int = DEFAULT_SKYBAND_K,
     skyband_min: int = DEFAULT_SKYBAND_MIN,
     progress: bool | None = None,
+    max_bytes: int | None = None,
+    prune_rule: str = "entropy",
 ) -> TrainReport:
     """Count the messages in ``inputs`` and write a model file to ``output_path``.
 
     ``inputs`` is a path or a list of paths (``"-"`` = standard input): plain text with
     one message per line, or JSON Lines with a ``field`` holding the message, optionally
     gzip-compressed. Each input is read exactly once. The file is written atomically.
+    ``max_bytes`` prunes word pairs (``prune_rule`` "entropy" or "count") until the file
+    fits; unigrams are never removed (see :mod:`nextword.prune`).
     ``skyband_k`` and ``skyband_min`` trade file size for query speed (see
     docs/FORMAT.md); the defaults suit keyboards.
     """
@@ -750,7 +765,7 @@ def train(
     bar.done()
     return _finish(
         builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
-        skyband_k=skyband_k, skyband_min=skyband_min, t0=t0,
+        skyband_k=skyband_k, skyband_min=skyband_min, t0=t0, max_bytes=max_bytes, prune_rule=prune_rule,
     )
 
 

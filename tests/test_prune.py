@@ -64,3 +64,25 @@ def test_budget_below_the_vocabulary_is_a_clear_error(lines: list[str]) -> None:
     b.add_texts(lines[:200])
     with pytest.raises(nextword.InvalidArgumentError, match="below the vocabulary alone"):
         prune_to_size(b.tables(min_count=1), 1000)
+
+
+def test_train_with_max_size(lines: list[str], tmp_path: Path) -> None:
+    import os
+    import subprocess
+    import sys
+
+    corpus = tmp_path / "c.txt"
+    corpus.write_text("\n".join(lines) + "\n")
+    full = tmp_path / "full.nwm"
+    nextword.train(corpus, full, min_count=1)
+    b = CountBuilder()
+    b.add_texts(lines)
+    floor = vocabulary_bytes(b.tables(min_count=1))
+    budget = floor + (full.stat().st_size - floor) // 3
+    out = tmp_path / "small.nwm"
+    env = dict(os.environ, PYTHONPATH=str(Path(__file__).resolve().parent.parent))
+    r = subprocess.run([sys.executable, "-m", "nextword", "train", str(corpus), "-o", str(out), "--min-count", "1",
+                        "--max-size", str(budget)], capture_output=True, text=True, env=env)
+    assert r.returncode == 0, r.stderr
+    assert out.stat().st_size <= budget
+    assert nextword.load(out, verify=True).n_words == nextword.load(full).n_words
