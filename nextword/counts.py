@@ -150,7 +150,7 @@ class CountBuilder:
             self._initial_counts = np.concatenate(
                 [self._initial_counts, np.zeros(n_types - len(self._initial_counts), np.int64)]
             )
-        self._tok_counts += np.bincount(a, minlength=n_types)
+        self._tok_counts[:n_types] += np.bincount(a, minlength=n_types)
         left, right = a[:-1], a[1:]
         keep = left != _EOS_T  # (</s>, <s>) joins two sentences: not a pair
         left, right = left[keep], right[keep]
@@ -160,6 +160,45 @@ class CountBuilder:
         self._part_counts.append(counts.astype(np.int64))
         if len(self._part_keys) >= 8:
             self._merge_parts()
+
+    def merge(self, other: CountBuilder) -> None:
+        """Add another builder's counts (e.g. from another process or machine) to this one.
+
+        The result is exactly what counting both inputs in one builder gives: partial
+        counts are keyed by surface spelling, remapped to this builder's ids, and added.
+        ``other`` is left unchanged except that its pending work is flushed.
+        """
+        if not isinstance(other, CountBuilder):
+            raise InvalidArgumentError(f"can only merge a CountBuilder, got {type(other).__name__}")
+        self._flush()
+        other._flush()
+        ids = self._ids
+        surfaces = self._surfaces
+        remap = np.arange(len(other._surfaces), dtype=np.int64)
+        for tid in range(3, len(other._surfaces)):
+            s = other._surfaces[tid]
+            mine = ids.get(s)
+            if mine is None:
+                mine = len(surfaces)
+                ids[s] = mine
+                surfaces.append(s)
+            remap[tid] = mine
+        n_types = len(surfaces)
+        for name in ("_tok_counts", "_initial_counts"):
+            mine_arr = getattr(self, name)
+            grown = np.zeros(n_types, np.int64)
+            grown[: len(mine_arr)] = mine_arr
+            theirs = getattr(other, name)
+            np.add.at(grown, remap[: len(theirs)], theirs)
+            setattr(self, name, grown)
+        for keys, counts in zip(other._part_keys, other._part_counts):
+            left, right = remap[keys >> 32], remap[keys & 0xFFFFFFFF]
+            self._part_keys.append((left << 32) | right)
+            self._part_counts.append(counts.copy())
+        if len(self._part_keys) >= 8:
+            self._merge_parts()
+        self.messages += other.messages
+        self.sentences += other.sentences
 
     def _merge_parts(self) -> None:
         keys, counts = _sum_by_key(np.concatenate(self._part_keys), np.concatenate(self._part_counts))

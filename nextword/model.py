@@ -745,6 +745,7 @@ def train(
     progress: bool | None = None,
     max_bytes: int | None = None,
     prune_rule: str = "entropy",
+    workers: int = 1,
 ) -> TrainReport:
     """Count the messages in ``inputs`` and write a model file to ``output_path``.
 
@@ -752,21 +753,64 @@ def train(
     one message per line, or JSON Lines with a ``field`` holding the message, optionally
     gzip-compressed. Each input is read exactly once. The file is written atomically.
     ``max_bytes`` prunes word pairs (``prune_rule`` "entropy" or "count") until the file
-    fits; unigrams are never removed (see :mod:`nextword.prune`).
+    fits; unigrams are never removed (see :mod:`nextword.prune`). ``workers`` > 1 counts
+    chunks of messages in that many processes (0 = one per core) and merges the partial
+    counts; the file is byte for byte the one a single process writes.
     ``skyband_k`` and ``skyband_min`` trade file size for query speed (see
     docs/FORMAT.md); the defaults suit keyboards.
     """
     lam = _check_build_args(lam, skyband_k, skyband_min)
     sources = open_sources(inputs, fmt=fmt, field=field)
     t0 = time.perf_counter()
-    builder = CountBuilder()
+    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 0:
+        raise InvalidArgumentError(f"workers must be an integer >= 0, got {workers!r}")
+    workers = workers or (os.cpu_count() or 1)
     bar = Progress("counting", enabled=progress)
-    builder.add_texts(iter_messages(sources, progress=bar.update))
+    messages = iter_messages(sources, progress=bar.update)
+    if workers == 1:
+        builder = CountBuilder()
+        builder.add_texts(messages)
+    else:
+        builder = _count_in_processes(messages, workers)
     bar.done()
     return _finish(
         builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
         skyband_k=skyband_k, skyband_min=skyband_min, t0=t0, max_bytes=max_bytes, prune_rule=prune_rule,
     )
+
+
+_CHUNK_MESSAGES = 20_000
+
+
+def _count_chunk(messages: list[str]) -> CountBuilder:
+    part = CountBuilder()
+    part.add_texts(messages)
+    part._flush()
+    return part
+
+
+def _count_in_processes(messages: Iterator[str], workers: int) -> CountBuilder:
+    """Count chunks of messages in worker processes, merging partial counts in order.
+
+    At most ``2 × workers`` chunks are in flight, so memory does not grow with the input.
+    """
+    import multiprocessing as mp
+    from collections import deque
+    from itertools import islice
+
+    method = "fork" if "fork" in mp.get_all_start_methods() else "spawn"
+    builder = CountBuilder()
+    with mp.get_context(method).Pool(workers) as pool:
+        pending: deque[Any] = deque()
+        while True:
+            chunk = list(islice(messages, _CHUNK_MESSAGES))
+            if chunk:
+                pending.append(pool.apply_async(_count_chunk, (chunk,)))
+            while pending and (len(pending) >= 2 * workers or not chunk):
+                builder.merge(pending.popleft().get())
+            if not chunk:
+                break
+    return builder
 
 
 def train_texts(
