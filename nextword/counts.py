@@ -233,16 +233,28 @@ class CountBuilder:
         initial[: len(self._initial_counts)] = self._initial_counts
 
         # merge spellings case-insensitively
-        folded_of_tid: list[str] = [""] * n_types
-        by_key: dict[str, list[int]] = {}
+        key_index: dict[str, int] = {}
+        key_list: list[str] = []
+        tid_key = np.zeros(n_types, dtype=np.int64)
         for tid in range(3, n_types):
             k = fold(self._surfaces[tid])
-            folded_of_tid[tid] = k
-            by_key.setdefault(k, []).append(tid)
-        key_count = {k: int(tok[tids].sum()) for k, tids in by_key.items()}
-        eligible = [k for k, c in key_count.items() if c >= min_count]
-        eligible.sort(key=lambda k: (-key_count[k], k))
-        vocab = eligible[:max_vocab]
+            idx = key_index.get(k)
+            if idx is None:
+                idx = key_index[k] = len(key_list)
+                key_list.append(k)
+            tid_key[tid] = idx
+        key_counts = np.bincount(tid_key[3:], weights=tok[3:], minlength=len(key_list)).astype(np.int64)
+        eligible = np.flatnonzero(key_counts >= min_count).tolist()
+        eligible.sort(key=lambda i: (-int(key_counts[i]), key_list[i]))
+        chosen = eligible[:max_vocab]
+        vocab = [key_list[i] for i in chosen]
+        # the spellings (temporary ids) of each chosen key
+        order = np.argsort(tid_key[3:], kind="stable") + 3
+        sorted_keys = tid_key[order]
+        by_key = {}
+        for i in chosen:
+            lo, hi = np.searchsorted(sorted_keys, [i, i + 1])
+            by_key[key_list[i]] = order[lo:hi].tolist()
         n = len(vocab)
         eos, unk, bos = n, n + 1, n + 2
 
@@ -267,7 +279,7 @@ class CountBuilder:
             "nonword_tokens": int(tok[_UNK_T]),
             "oov_word_tokens": oov_words,
             "spellings": n_types - 3,
-            "word_types": len(by_key),
+            "word_types": len(key_list),
             "min_count": min_count,
             "max_vocab": max_vocab,
         }

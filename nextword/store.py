@@ -222,26 +222,27 @@ def _prefix_segments(keys: list[str], pos: np.ndarray, a: int, b: int, min_len: 
     prefixes do. The whole row (empty prefix) comes first.
     """
     out: list[tuple[int, int]] = []
-    stack = [(a, b, 0)]
+    base = a
+    ks = [keys[p] for p in pos[a:b].tolist()]  # the row's keys, once
+    stack = [(0, b - a, 0)]
     seen: set[tuple[int, int]] = set()
     while stack:
-        a, b, depth = stack.pop()
-        if b - a <= min_len:
+        lo, hi, depth = stack.pop()
+        if hi - lo <= min_len:
             continue
-        if (a, b) not in seen:
-            seen.add((a, b))
-            out.append((a, b))
-        ks = [keys[p] for p in pos[a:b].tolist()]
-        i = 0
-        while i < len(ks):
+        if (lo, hi) not in seen:
+            seen.add((lo, hi))
+            out.append((base + lo, base + hi))
+        i = lo
+        while i < hi:
             if len(ks[i]) <= depth:
                 i += 1
                 continue
             c = ks[i][depth]
             j = i + 1
-            while j < len(ks) and len(ks[j]) > depth and ks[j][depth] == c:
+            while j < hi and len(ks[j]) > depth and ks[j][depth] == c:
                 j += 1
-            stack.append((a + i, a + j, depth + 1))
+            stack.append((i, j, depth + 1))
             i = j
     return out
 
