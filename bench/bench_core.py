@@ -168,6 +168,16 @@ def main(argv: list[str] | None = None) -> int:
     train_wall = time.perf_counter() - t0
     train_rss = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
     report = json.loads(proc.stdout)
+    # the same with one counting process per core: must write the same bytes
+    par_path = out_dir / "core.workers.nwm"
+    t0 = time.perf_counter()
+    proc2 = subprocess.run(
+        [sys.executable, "-m", "nextword", "train", str(train), "-o", str(par_path), "--json", "--workers", "0"],
+        check=True, capture_output=True, text=True,
+    )
+    par_wall = time.perf_counter() - t0
+    par_report = json.loads(proc2.stdout)
+    par_same = par_path.read_bytes() == model_path.read_bytes()
     info = nextword.load(model_path).info()
 
     # 2. queries from held-out text, engine alone in a fresh process
@@ -252,6 +262,7 @@ Machine: {res['machine']} (shared, noisy; compare ratios within one run).
 | training corpus | {res['corpus_words']:,} words, {res['corpus_messages']:,} messages (GCIDE, FOLDOC, Jargon File, fortunes) | ≥ 5M words |
 | training time (whole CLI process) | {train_wall:.1f} s = {res['train_words_per_second']:,.0f} words/s | |
 | training peak RSS | {train_rss:,.0f} MB | |
+| training with `--workers 0` ({os.cpu_count()} processes) | {par_wall:.1f} s = {report['word_tokens'] / par_wall:,.0f} words/s end to end ({train_wall / par_wall:.2f}× one process); counting alone {par_report['count_seconds']:.1f} s = {report['word_tokens'] / par_report['count_seconds']:,.0f} words/s; same bytes: {par_same} | ≥ 1M words/s |
 | model | {res['vocabulary']:,} words, {res['bigrams']:,} bigrams, {res['file_bytes']:,} bytes | |
 | bytes per stored bigram (whole file / bigrams) | {res['bytes_per_bigram']:.2f} | ≤ 4 |
 | load time, median of 200 (max) | {engine['load_ms_median']:.3f} ms ({engine['load_ms_max']:.3f} ms) | ≤ 5 ms |
