@@ -79,6 +79,7 @@ def _parser() -> _Parser:
     t.add_argument("--format", choices=FORMATS, default="auto", help="input format (default: by file name)")
     t.add_argument("--field", default="text", help="JSON Lines field holding the message (default %(default)s)")
     t.add_argument("--workers", type=int, default=1, help="counting processes (0 = one per core; default 1)")
+    t.add_argument("--memory-cap", metavar="SIZE", help="bound the pair counts in memory, spilling to disk (e.g. 1GB)")
     t.add_argument("--max-size", metavar="SIZE", help="prune pairs until the file fits, e.g. 4MB")
     t.add_argument("--rule", choices=("count", "entropy"), default="entropy", help="pruning rule with --max-size")
     t.add_argument("--json", action="store_true", help="print the training report as JSON")
@@ -176,6 +177,7 @@ def _cmd_train(args: argparse.Namespace) -> int:
         max_bytes=None if args.max_size is None else _size_arg(args.max_size),
         prune_rule=args.rule,
         workers=args.workers,
+        memory_cap=None if args.memory_cap is None else _size_arg(args.memory_cap),
     )
     data = {
         "path": report.path,

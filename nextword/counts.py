@@ -17,9 +17,10 @@ Ids in the resulting :class:`CountTables` (and in model files):
 
 from __future__ import annotations
 
+import os
 import unicodedata
 from dataclasses import dataclass, field
-from typing import Iterable
+from typing import Any, Iterable, Iterator
 
 import numpy as np
 
@@ -70,7 +71,19 @@ class CountBuilder:
     ['at', 'see', 'the', 'workshop', 'you']
     """
 
-    def __init__(self) -> None:
+    def __init__(self, *, memory_cap: int | None = None) -> None:
+        """``memory_cap`` (bytes) bounds the pair counts held in memory: past half of it,
+        they are merged and spilled to sorted runs in a temporary directory, which the
+        final step reads one at a time. The table of distinct spellings stays in memory.
+        """
+        if memory_cap is not None and (isinstance(memory_cap, bool) or not isinstance(memory_cap, int) or memory_cap < 1 << 16):
+            raise InvalidArgumentError(f"memory_cap must be an integer >= 65536 bytes, got {memory_cap!r}")
+        self.memory_cap = memory_cap
+        # under a cap, flush the token buffer (Python ints, ~40 bytes each) well before it
+        # approaches the cap
+        self._flush_tokens = _FLUSH_TOKENS if memory_cap is None else max(1 << 14, min(_FLUSH_TOKENS, memory_cap // 256))
+        self._runs: list[str] = []
+        self._spill_dir: Any = None
         self._ids: dict[str, int] = {}
         self._surfaces: list[str] = ["", "", ""]
         self._buf: list[int] = []
@@ -134,7 +147,7 @@ class CountBuilder:
         if in_sentence:
             append(_EOS_T)
             self.sentences += 1
-        if len(buf) >= _FLUSH_TOKENS:
+        if len(buf) >= self._flush_tokens:
             self._flush()
 
     def _flush(self) -> None:
@@ -158,8 +171,14 @@ class CountBuilder:
         keys, counts = np.unique((left << 32) | right, return_counts=True)
         self._part_keys.append(keys)
         self._part_counts.append(counts.astype(np.int64))
-        if len(self._part_keys) >= 8:
+        if len(self._part_keys) >= 8 or self._over_cap():
             self._merge_parts()
+
+    def _over_cap(self) -> bool:
+        if self.memory_cap is None:
+            return False
+        held = sum(k.nbytes for k in self._part_keys) + sum(c.nbytes for c in self._part_counts)
+        return held > self.memory_cap // 4
 
     def merge(self, other: CountBuilder) -> None:
         """Add another builder's counts (e.g. from another process or machine) to this one.
@@ -191,11 +210,11 @@ class CountBuilder:
             theirs = getattr(other, name)
             np.add.at(grown, remap[: len(theirs)], theirs)
             setattr(self, name, grown)
-        for keys, counts in zip(other._part_keys, other._part_counts):
+        for keys, counts in other._pair_parts():
             left, right = remap[keys >> 32], remap[keys & 0xFFFFFFFF]
             self._part_keys.append((left << 32) | right)
-            self._part_counts.append(counts.copy())
-        if len(self._part_keys) >= 8:
+            self._part_counts.append(np.array(counts))
+        if len(self._part_keys) >= 8 or self._over_cap():
             self._merge_parts()
         self.messages += other.messages
         self.sentences += other.sentences
@@ -204,6 +223,31 @@ class CountBuilder:
         keys, counts = _sum_by_key(np.concatenate(self._part_keys), np.concatenate(self._part_counts))
         self._part_keys = [keys]
         self._part_counts = [counts]
+        if self.memory_cap is not None and keys.nbytes + counts.nbytes > self.memory_cap // 2:
+            self._spill()
+
+    def _spill(self) -> None:
+        """Write the merged in-memory pairs as one sorted run on disk and drop them."""
+        import tempfile
+
+        if self._spill_dir is None:
+            self._spill_dir = tempfile.TemporaryDirectory(prefix="nextword-counts-")
+        path = os.path.join(self._spill_dir.name, f"run{len(self._runs):05d}.npz")
+        np.savez(path, keys=self._part_keys[0], counts=self._part_counts[0])
+        self._runs.append(path)
+        self._part_keys, self._part_counts = [], []
+
+    @property
+    def spilled_runs(self) -> int:
+        """How many sorted runs of pair counts went to disk (0 without a memory cap)."""
+        return len(self._runs)
+
+    def _pair_parts(self) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+        """Every partial pair count, in memory and spilled, one part at a time."""
+        for path in self._runs:
+            with np.load(path) as run:
+                yield run["keys"], run["counts"]
+        yield from zip(self._part_keys, self._part_counts)
 
     # -- finishing -------------------------------------------------------------------
 
@@ -220,12 +264,8 @@ class CountBuilder:
         if isinstance(max_vocab, bool) or not isinstance(max_vocab, int) or max_vocab < 1:
             raise InvalidArgumentError(f"max_vocab must be an integer >= 1, got {max_vocab!r}")
         self._flush()
-        if self._part_keys:
+        if self._part_keys and not self._runs:
             self._merge_parts()
-            pair_keys, pair_counts = self._part_keys[0], self._part_counts[0]
-        else:
-            pair_keys = np.zeros(0, np.int64)
-            pair_counts = np.zeros(0, np.int64)
         n_types = len(self._surfaces)
         tok = np.zeros(n_types, np.int64)
         tok[: len(self._tok_counts)] = self._tok_counts
@@ -268,9 +308,23 @@ class CountBuilder:
 
         unigram = np.bincount(tid_map[1:], weights=tok[1:], minlength=n + 2).astype(np.int64)[: n + 2]
         width = n + 3
-        left = tid_map[pair_keys >> 32]
-        right = tid_map[pair_keys & 0xFFFFFFFF]
-        keys, counts = _sum_by_key(left * width + right, pair_counts)
+        # remap each part (in memory or spilled) to final ids and add them up; the final
+        # pairs are few (the vocabulary is capped), so only they are ever held together
+        acc_keys: list[np.ndarray] = []
+        acc_counts: list[np.ndarray] = []
+        for pair_keys, pair_counts in self._pair_parts():
+            left = tid_map[pair_keys >> 32]
+            right = tid_map[pair_keys & 0xFFFFFFFF]
+            part_k, part_c = _sum_by_key(left * width + right, pair_counts)
+            acc_keys.append(part_k)
+            acc_counts.append(part_c)
+            if len(acc_keys) >= 4:
+                part_k, part_c = _sum_by_key(np.concatenate(acc_keys), np.concatenate(acc_counts))
+                acc_keys, acc_counts = [part_k], [part_c]
+        if acc_keys:
+            keys, counts = _sum_by_key(np.concatenate(acc_keys), np.concatenate(acc_counts))
+        else:
+            keys, counts = np.zeros(0, np.int64), np.zeros(0, np.int64)
         oov_words = int(unigram[unk]) - int(tok[_UNK_T])
         stats = {
             "messages": self.messages,

@@ -746,6 +746,7 @@ def train(
     max_bytes: int | None = None,
     prune_rule: str = "entropy",
     workers: int = 1,
+    memory_cap: int | None = None,
 ) -> TrainReport:
     """Count the messages in ``inputs`` and write a model file to ``output_path``.
 
@@ -755,7 +756,9 @@ def train(
     ``max_bytes`` prunes word pairs (``prune_rule`` "entropy" or "count") until the file
     fits; unigrams are never removed (see :mod:`nextword.prune`). ``workers`` > 1 counts
     chunks of messages in that many processes (0 = one per core) and merges the partial
-    counts; the file is byte for byte the one a single process writes.
+    counts; the file is byte for byte the one a single process writes. ``memory_cap``
+    (bytes) bounds the pair counts held in memory by spilling sorted runs to a temporary
+    directory (see :class:`~nextword.counts.CountBuilder`).
     ``skyband_k`` and ``skyband_min`` trade file size for query speed (see
     docs/FORMAT.md); the defaults suit keyboards.
     """
@@ -768,10 +771,10 @@ def train(
     bar = Progress("counting", enabled=progress)
     messages = iter_messages(sources, progress=bar.update)
     if workers == 1:
-        builder = CountBuilder()
+        builder = CountBuilder(memory_cap=memory_cap)
         builder.add_texts(messages)
     else:
-        builder = _count_in_processes(messages, workers)
+        builder = _count_in_processes(messages, workers, memory_cap)
     bar.done()
     return _finish(
         builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
@@ -789,7 +792,7 @@ def _count_chunk(messages: list[str]) -> CountBuilder:
     return part
 
 
-def _count_in_processes(messages: Iterator[str], workers: int) -> CountBuilder:
+def _count_in_processes(messages: Iterator[str], workers: int, memory_cap: int | None = None) -> CountBuilder:
     """Count chunks of messages in worker processes, merging partial counts in order.
 
     At most ``2 × workers`` chunks are in flight, so memory does not grow with the input.
@@ -799,7 +802,7 @@ def _count_in_processes(messages: Iterator[str], workers: int) -> CountBuilder:
     from itertools import islice
 
     method = "fork" if "fork" in mp.get_all_start_methods() else "spawn"
-    builder = CountBuilder()
+    builder = CountBuilder(memory_cap=memory_cap)
     with mp.get_context(method).Pool(workers) as pool:
         pending: deque[Any] = deque()
         while True:

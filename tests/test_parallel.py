@@ -61,3 +61,53 @@ def test_workers_write_the_same_file_byte_for_byte(tmp_path: Path) -> None:
     finally:
         m._CHUNK_MESSAGES = old
     assert one.read_bytes() == two.read_bytes()
+
+
+def test_spilling_under_a_memory_cap_changes_nothing(tmp_path: Path) -> None:
+    from pydoc_data.topics import topics  # real English shipped with CPython
+
+    lines = [ln for k in sorted(topics) for ln in topics[k].splitlines()]
+    plain = CountBuilder()
+    plain.add_texts(lines)
+    capped = CountBuilder(memory_cap=1 << 16)
+    capped.add_texts(lines)
+    assert plain.spilled_runs == 0 and capped.spilled_runs > 3
+    for mc in (1, 2):
+        _same(capped.tables(min_count=mc), plain.tables(min_count=mc))
+    # and merging a builder that spilled
+    merged = CountBuilder()
+    merged.merge(capped)
+    _same(merged.tables(), plain.tables())
+
+
+def test_memory_cap_bounds_peak_memory(tmp_path: Path) -> None:
+    # measured in subprocesses: many distinct pairs (synthetic Zipf-like words, as the
+    # scale target allows), counted with and without a cap
+    import os
+    import subprocess
+    import sys
+
+    script = r"""
+import resource, sys, numpy as np
+from nextword.counts import CountBuilder
+rng = np.random.default_rng(1)
+cap = None if sys.argv[1] == "none" else int(sys.argv[1])
+b = CountBuilder(memory_cap=cap)
+vocab = [f"w{i}" for i in range(60000)]
+p = 1.0 / np.arange(1, 60001) ** 0.8
+p /= p.sum()
+for _ in range(30):
+    toks = rng.choice(60000, size=100_000, p=p)
+    b.add_texts(" ".join(vocab[t] for t in toks[i:i + 20]) for i in range(0, len(toks), 20))
+b._flush()
+print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss, b.spilled_runs)
+"""
+    env = dict(os.environ, PYTHONPATH=str(Path(__file__).resolve().parent.parent))
+    out = {}
+    for cap in ("none", str(8 << 20)):
+        r = subprocess.run([sys.executable, "-c", script, cap], capture_output=True, text=True, env=env)
+        assert r.returncode == 0, r.stderr
+        rss_kb, runs = map(int, r.stdout.split())
+        out[cap] = (rss_kb, runs)
+    assert out["none"][1] == 0 and out[str(8 << 20)][1] > 0
+    assert out[str(8 << 20)][0] < out["none"][0]  # the cap lowers the peak
