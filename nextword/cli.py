@@ -242,10 +242,15 @@ def _cmd_suggest(args: argparse.Namespace) -> int:
         print(f"loaded {args.model} in {load_s * 1e3:.2f} ms")
     width = min(max((len(r["text"]) for r in results), default=0) + 2, 40)
     for r in results:
-        words = "  ".join(f"{s['word']} ({s['prob']:.3f})" for s in r["suggestions"]) or "(no suggestion)"
+        words = _strip(r["suggestions"])
         timing = f"   [{r['microseconds']:.0f} µs]" if args.time else ""
         print(f"{json.dumps(r['text'], ensure_ascii=False):<{width}} -> {words}{timing}")
     return 0
+
+
+def _strip(suggestions: list[dict[str, Any]]) -> str:
+    """One line of suggestions with their probabilities, as the text commands print them."""
+    return "  ".join(f"{s['word']} ({s['prob']:.3f})" for s in suggestions) or "(no suggestion)"
 
 
 def _cmd_info(args: argparse.Namespace) -> int:
@@ -521,8 +526,7 @@ def _cmd_personal(args: argparse.Namespace) -> int:
         print(json.dumps(out, ensure_ascii=False, indent=2))
     elif args.action == "suggest":
         for r in out["results"]:
-            words = "  ".join(f"{s['word']} ({s['prob']:.3f})" for s in r["suggestions"]) or "(no suggestion)"
-            print(f"{json.dumps(r['text'], ensure_ascii=False)} -> {words}")
+            print(f"{json.dumps(r['text'], ensure_ascii=False)} -> {_strip(r['suggestions'])}")
     else:
         print(
             f"{args.layer}: {layer.messages:,} messages learned, {layer.entries:,} entries, weight {layer.weight:.3f}, "
