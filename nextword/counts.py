@@ -25,7 +25,7 @@ from typing import Any, Iterable, Iterator
 import numpy as np
 
 from .errors import InvalidArgumentError
-from .text import _HAS_LETTER, _TOKEN_RE, fold, normalize
+from .text import _HAS_LETTER, _TOKEN_RE, fold, fold_all, normalize
 
 __all__ = ["CountBuilder", "CountTables", "DEFAULT_MIN_COUNT", "DEFAULT_MAX_VOCAB"]
 
@@ -36,6 +36,11 @@ DEFAULT_MIN_COUNT = 2
 
 _BOS_T, _EOS_T, _UNK_T = 0, 1, 2  # temporary ids of the reserved symbols
 _FLUSH_TOKENS = 1 << 21
+_BATCH_CHARS = 1 << 20
+#: line-end characters (sentence ends that str.split would treat as plain spaces)
+_LINE_ENDS = "\n\r\u2028\u2029\x85\x0b\x0c"
+#: distinct space-free pieces remembered before the cache starts afresh
+_PIECE_CACHE_MAX = 1 << 21
 
 
 @dataclass
@@ -79,14 +84,18 @@ class CountBuilder:
         if memory_cap is not None and (isinstance(memory_cap, bool) or not isinstance(memory_cap, int) or memory_cap < 1 << 16):
             raise InvalidArgumentError(f"memory_cap must be an integer >= 65536 bytes, got {memory_cap!r}")
         self.memory_cap = memory_cap
-        # under a cap, flush the token buffer (Python ints, ~40 bytes each) well before it
-        # approaches the cap
-        self._flush_tokens = _FLUSH_TOKENS if memory_cap is None else max(1 << 14, min(_FLUSH_TOKENS, memory_cap // 256))
-        self._runs: list[str] = []
+        # under a cap, flush the token buffer and cut batches well before they approach it
+        self._flush_tokens = _FLUSH_TOKENS if memory_cap is None else max(1 << 14, min(_FLUSH_TOKENS, memory_cap // 128))
+        self._batch_chars = _BATCH_CHARS if memory_cap is None else max(1 << 12, min(_BATCH_CHARS, memory_cap // 128))
+        self._runs: list[tuple[str, int]] = []
         self._spill_dir: Any = None
+        #: a directory owned by someone else (e.g. the parent of worker processes) to spill into
+        self._spill_root: str | None = None
         self._ids: dict[str, int] = {}
         self._surfaces: list[str] = ["", "", ""]
-        self._buf: list[int] = []
+        self._buf: list[np.ndarray] = []
+        self._buf_len = 0
+        self._reset_pieces()
         self._tok_counts = np.zeros(0, dtype=np.int64)
         self._initial_counts = np.zeros(0, dtype=np.int64)
         self._part_keys: list[np.ndarray] = []
@@ -97,64 +106,148 @@ class CountBuilder:
     # -- feeding ---------------------------------------------------------------------
 
     def add_texts(self, texts: Iterable[str]) -> None:
-        """Count every message of ``texts`` (consumed once)."""
+        """Count every message of ``texts`` (consumed once).
+
+        Messages are counted in batches of about a million characters: each batch is
+        cut at spaces and every distinct space-free piece is tokenised once and
+        remembered, so the work per word is a dictionary lookup and a few numpy steps.
+        """
+        batch: list[str] = []
+        chars = 0
+        limit = self._batch_chars
         for t in texts:
-            self.add_text(t)
+            if not isinstance(t, str):
+                raise InvalidArgumentError(f"messages must be str, got {type(t).__name__}")
+            batch.append(t)
+            chars += len(t)
+            if chars >= limit:
+                self._add_joined("\n".join(batch), len(batch))
+                batch, chars = [], 0
+        if batch:
+            self._add_joined("\n".join(batch), len(batch))
 
     def add_text(self, text: str) -> None:
         """Count one message. Line breaks inside it end sentences, as everywhere."""
         if not isinstance(text, str):
             raise InvalidArgumentError(f"messages must be str, got {type(text).__name__}")
-        self.messages += 1
+        self._add_joined(text, 1)
+
+    def _add_joined(self, text: str, n_messages: int) -> None:
+        """Count ``n_messages`` messages joined by line breaks.
+
+        Joining is exact: a line break ends a sentence, and so does the end of a message,
+        and NFC never composes across a line break.
+        """
+        self.messages += n_messages
+        text = normalize(text)
+        for ch in _LINE_ENDS:  # every line end becomes its own space-separated piece
+            if ch in text:
+                text = text.replace(ch, " \n ")
+        pieces = text.split(" ")
+        pieces.append("\n")
+        cache = self._pieces
+        if len(cache) > _PIECE_CACHE_MAX:
+            self._reset_pieces()
+            cache = self._pieces
+        idx = np.fromiter(map(cache.__getitem__, pieces), dtype=np.int64, count=len(pieces))
+        starts, flat = self._piece_arrays()
+        lens = starts[1:][idx] - starts[:-1][idx]
+        total = int(lens.sum())
+        ends = np.cumsum(lens)
+        gather = np.arange(total, dtype=np.int64) + np.repeat(starts[:-1][idx] - (ends - lens), lens)
+        codes = flat[gather]
+        # a run of numbers and symbols is one unknown token
+        if len(codes) > 1:
+            codes = codes[np.concatenate(([True], (codes[1:] != _UNK_T) | (codes[:-1] != _UNK_T)))]
+        # a sentence end counts only after something (empty sentences are dropped)
+        prev_end = np.concatenate(([True], codes[:-1] == _EOS_T))
+        codes = codes[(codes != _EOS_T) | ~prev_end]
+        # every sentence opens with <s>
+        opens = np.flatnonzero(np.concatenate(([True], codes[:-1] == _EOS_T))[: len(codes)])
+        if len(codes):
+            codes = np.insert(codes, opens, _BOS_T)
+        self.sentences += int(np.count_nonzero(codes == _EOS_T))
+        self._buf.append(codes)
+        self._buf_len += len(codes)
+        if self._buf_len >= self._flush_tokens:
+            self._flush()
+
+    def _piece_codes(self, piece: str) -> list[int]:
+        """Token codes of one space-free piece of text (the text rules of :mod:`.text`)."""
         ids = self._ids
         surfaces = self._surfaces
-        buf = self._buf
-        append = buf.append
-        in_sentence = False
-        after_break = False
-        for m in _TOKEN_RE.finditer(normalize(text)):
+        if piece.isalpha():  # the common case: one plain word
+            tid = ids.get(piece)
+            if tid is None:
+                tid = ids[piece] = len(surfaces)
+                surfaces.append(piece)
+            return [tid]
+        out: list[int] = []
+        for m in _TOKEN_RE.finditer(piece):
             group = m.lastgroup
-            if group == "word":
-                s = m.group()
-                if s.isalpha() or _HAS_LETTER.search(s):
-                    if not in_sentence:
-                        append(_BOS_T)
-                        in_sentence = True
-                    tid = ids.get(s)
-                    if tid is None:
-                        tid = len(surfaces)
-                        ids[s] = tid
-                        surfaces.append(s)
-                    append(tid)
-                    after_break = False
-                    continue
+            s = m.group()
+            if group == "word" and (s.isalpha() or _HAS_LETTER.search(s)):
+                tid = ids.get(s)
+                if tid is None:
+                    tid = len(surfaces)
+                    ids[s] = tid
+                    surfaces.append(s)
+                out.append(tid)
             elif group == "end":
-                if in_sentence:
-                    append(_EOS_T)
-                    self.sentences += 1
-                    in_sentence = False
-                    after_break = False
+                out.append(_EOS_T)
+            elif group == "other" and unicodedata.category(s).startswith("P"):
                 continue
-            elif group == "other" and unicodedata.category(m.group()).startswith("P"):
-                continue
-            # a number or a symbol: one unknown token per run, breaking the context
-            if not in_sentence:
-                append(_BOS_T)
-                in_sentence = True
-            if not after_break:
-                append(_UNK_T)
-                after_break = True
-        if in_sentence:
-            append(_EOS_T)
-            self.sentences += 1
-        if len(buf) >= self._flush_tokens:
-            self._flush()
+            else:  # a number or a symbol
+                out.append(_UNK_T)
+        return out
+
+    def _reset_pieces(self) -> None:
+        builder = self
+
+        class _Pieces(dict):  # type: ignore[type-arg]
+            def __missing__(self, piece: str) -> int:
+                codes = builder._piece_codes(piece)
+                builder._new_flat.extend(codes)
+                builder._new_starts.append(builder._flat_len + len(builder._new_flat))
+                index = len(self)
+                self[piece] = index
+                return index
+
+        self._pieces: dict[str, int] = _Pieces()
+        self._starts = np.zeros(1, dtype=np.int64)
+        self._flat = np.zeros(0, dtype=np.int64)
+        self._flat_len = 0
+        self._new_flat: list[int] = []
+        self._new_starts: list[int] = []
+
+    def _piece_arrays(self) -> tuple[np.ndarray, np.ndarray]:
+        """The pieces' codes as CSR arrays, extended by the pieces met since last time."""
+        if self._new_starts:
+            self._starts = np.concatenate([self._starts, np.asarray(self._new_starts, dtype=np.int64)])
+            self._flat = np.concatenate([self._flat, np.asarray(self._new_flat, dtype=np.int64)])
+            self._flat_len = len(self._flat)
+            self._new_flat, self._new_starts = [], []
+        return self._starts, self._flat
+
+    def __getstate__(self) -> dict[str, Any]:
+        """Pickle without the piece cache (rebuilt on demand) or the temporary directory."""
+        self._flush()
+        state = self.__dict__.copy()
+        for name in ("_pieces", "_starts", "_flat", "_flat_len", "_new_flat", "_new_starts"):
+            state.pop(name, None)
+        state["_spill_dir"] = None
+        return state
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        self.__dict__.update(state)
+        self._reset_pieces()
 
     def _flush(self) -> None:
         if not self._buf:
             return
-        a = np.asarray(self._buf, dtype=np.int64)
-        self._buf.clear()
+        a = np.concatenate(self._buf) if len(self._buf) > 1 else self._buf[0]
+        self._buf = []
+        self._buf_len = 0
         n_types = len(self._surfaces)
         if len(self._tok_counts) < n_types:
             self._tok_counts = np.concatenate(
@@ -178,7 +271,7 @@ class CountBuilder:
         if self.memory_cap is None:
             return False
         held = sum(k.nbytes for k in self._part_keys) + sum(c.nbytes for c in self._part_counts)
-        return held > self.memory_cap // 4
+        return held > self.memory_cap // 16
 
     def merge(self, other: CountBuilder) -> None:
         """Add another builder's counts (e.g. from another process or machine) to this one.
@@ -223,18 +316,28 @@ class CountBuilder:
         keys, counts = _sum_by_key(np.concatenate(self._part_keys), np.concatenate(self._part_counts))
         self._part_keys = [keys]
         self._part_counts = [counts]
-        if self.memory_cap is not None and keys.nbytes + counts.nbytes > self.memory_cap // 2:
+        if self.memory_cap is not None and keys.nbytes + counts.nbytes > self.memory_cap // 16:
             self._spill()
 
     def _spill(self) -> None:
-        """Write the merged in-memory pairs as one sorted run on disk and drop them."""
+        """Write the merged in-memory pairs as one sorted run on disk and drop them.
+
+        A run is two raw little-endian int64 files (keys, counts), read back in slices
+        with plain reads, so a run never has to fit in memory at once.
+        """
         import tempfile
 
-        if self._spill_dir is None:
-            self._spill_dir = tempfile.TemporaryDirectory(prefix="nextword-counts-")
-        path = os.path.join(self._spill_dir.name, f"run{len(self._runs):05d}.npz")
-        np.savez(path, keys=self._part_keys[0], counts=self._part_counts[0])
-        self._runs.append(path)
+        if self._spill_root is not None:
+            root = self._spill_root
+        else:
+            if self._spill_dir is None:
+                self._spill_dir = tempfile.TemporaryDirectory(prefix="nextword-counts-")
+            root = self._spill_dir.name
+        stem = os.path.join(root, f"run{os.getpid()}-{id(self):x}-{len(self._runs):05d}")
+        keys, counts = self._part_keys[0], self._part_counts[0]
+        keys.astype("<i8", copy=False).tofile(stem + ".keys")
+        counts.astype("<i8", copy=False).tofile(stem + ".counts")
+        self._runs.append((stem, len(keys)))
         self._part_keys, self._part_counts = [], []
 
     @property
@@ -242,12 +345,24 @@ class CountBuilder:
         """How many sorted runs of pair counts went to disk (0 without a memory cap)."""
         return len(self._runs)
 
-    def _pair_parts(self) -> Iterator[tuple[np.ndarray, np.ndarray]]:
-        """Every partial pair count, in memory and spilled, one part at a time."""
-        for path in self._runs:
-            with np.load(path) as run:
-                yield run["keys"], run["counts"]
-        yield from zip(self._part_keys, self._part_counts)
+    def _pair_parts(self, slice_len: int | None = None) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+        """Every partial pair count, spilled and in memory, in slices of at most ``slice_len``."""
+        for stem, length in self._runs:
+            step = length if slice_len is None else slice_len
+            with open(stem + ".keys", "rb") as fk, open(stem + ".counts", "rb") as fc:
+                done = 0
+                while done < length:
+                    m = min(step, length - done)
+                    keys = np.fromfile(fk, dtype="<i8", count=m)
+                    counts = np.fromfile(fc, dtype="<i8", count=m)
+                    if len(keys) != m or len(counts) != m:
+                        raise OSError(f"spilled run {stem} is shorter than written")
+                    yield keys.astype(np.int64, copy=False), counts.astype(np.int64, copy=False)
+                    done += m
+        for keys, counts in zip(self._part_keys, self._part_counts):
+            step = max(len(keys), 1) if slice_len is None else slice_len
+            for i in range(0, len(keys), step):
+                yield keys[i : i + step], counts[i : i + step]
 
     # -- finishing -------------------------------------------------------------------
 
@@ -258,13 +373,19 @@ class CountBuilder:
         return int(self._tok_counts[3:].sum()) if len(self._tok_counts) > 3 else 0
 
     def tables(self, *, min_count: int = DEFAULT_MIN_COUNT, max_vocab: int = DEFAULT_MAX_VOCAB) -> CountTables:
-        """Fix the vocabulary and return final counts. The builder stays usable."""
+        """Fix the vocabulary and return final counts. The builder stays usable.
+
+        Under a memory cap the pair counts are reduced in bounded slices: a first pass
+        over the (spilled) pairs counts how many belong to each final history, the
+        histories are cut into buckets that fit the cap, each slice is remapped to final
+        ids and appended to its bucket's file, and each bucket is summed on its own.
+        """
         if isinstance(min_count, bool) or not isinstance(min_count, int) or min_count < 1:
             raise InvalidArgumentError(f"min_count must be an integer >= 1, got {min_count!r}")
         if isinstance(max_vocab, bool) or not isinstance(max_vocab, int) or max_vocab < 1:
             raise InvalidArgumentError(f"max_vocab must be an integer >= 1, got {max_vocab!r}")
         self._flush()
-        if self._part_keys and not self._runs:
+        if self._part_keys and not self._runs and self.memory_cap is None:
             self._merge_parts()
         n_types = len(self._surfaces)
         tok = np.zeros(n_types, np.int64)
@@ -274,57 +395,31 @@ class CountBuilder:
 
         # merge spellings case-insensitively
         key_index: dict[str, int] = {}
-        key_list: list[str] = []
+        setdefault = key_index.setdefault
         tid_key = np.zeros(n_types, dtype=np.int64)
-        for tid in range(3, n_types):
-            k = fold(self._surfaces[tid])
-            idx = key_index.get(k)
-            if idx is None:
-                idx = key_index[k] = len(key_list)
-                key_list.append(k)
-            tid_key[tid] = idx
+        tid_key[3:] = np.fromiter(
+            (setdefault(k, len(key_index)) for k in fold_all(self._surfaces[3:])), dtype=np.int64, count=n_types - 3
+        )
+        key_list = list(key_index)
         key_counts = np.bincount(tid_key[3:], weights=tok[3:], minlength=len(key_list)).astype(np.int64)
-        eligible = np.flatnonzero(key_counts >= min_count).tolist()
-        eligible.sort(key=lambda i: (-int(key_counts[i]), key_list[i]))
-        chosen = eligible[:max_vocab]
+        chosen = _choose(key_counts, key_list, min_count, max_vocab)
         vocab = [key_list[i] for i in chosen]
-        # the spellings (temporary ids) of each chosen key
-        order = np.argsort(tid_key[3:], kind="stable") + 3
-        sorted_keys = tid_key[order]
-        by_key = {}
-        for i in chosen:
-            lo, hi = np.searchsorted(sorted_keys, [i, i + 1])
-            by_key[key_list[i]] = order[lo:hi].tolist()
         n = len(vocab)
         eos, unk, bos = n, n + 1, n + 2
-
-        tid_map = np.full(n_types, unk, dtype=np.int64)
+        key_wid = np.full(max(len(key_list), 1), unk, dtype=np.int64)  # tid_key is 0 for the reserved ids
+        key_wid[np.asarray(chosen, dtype=np.int64)] = np.arange(n)
+        tid_map = key_wid[tid_key]
         tid_map[_BOS_T], tid_map[_EOS_T], tid_map[_UNK_T] = bos, eos, unk
-        displays: list[str] = []
-        for wid, k in enumerate(vocab):
-            tids = by_key[k]
-            tid_map[tids] = wid
-            displays.append(self._display(k, tids, tok, initial))
+
+        # each word's spellings (temporary ids), grouped by final id
+        in_vocab = np.flatnonzero(tid_map[3:] < n) + 3
+        spellings = in_vocab[np.argsort(tid_map[in_vocab], kind="stable")]
+        bounds = np.searchsorted(tid_map[spellings], np.arange(n + 1)).tolist()
+        spell_list = spellings.tolist()
+        displays = [self._display(vocab[w], spell_list[bounds[w] : bounds[w + 1]], tok, initial) for w in range(n)]
 
         unigram = np.bincount(tid_map[1:], weights=tok[1:], minlength=n + 2).astype(np.int64)[: n + 2]
-        width = n + 3
-        # remap each part (in memory or spilled) to final ids and add them up; the final
-        # pairs are few (the vocabulary is capped), so only they are ever held together
-        acc_keys: list[np.ndarray] = []
-        acc_counts: list[np.ndarray] = []
-        for pair_keys, pair_counts in self._pair_parts():
-            left = tid_map[pair_keys >> 32]
-            right = tid_map[pair_keys & 0xFFFFFFFF]
-            part_k, part_c = _sum_by_key(left * width + right, pair_counts)
-            acc_keys.append(part_k)
-            acc_counts.append(part_c)
-            if len(acc_keys) >= 4:
-                part_k, part_c = _sum_by_key(np.concatenate(acc_keys), np.concatenate(acc_counts))
-                acc_keys, acc_counts = [part_k], [part_c]
-        if acc_keys:
-            keys, counts = _sum_by_key(np.concatenate(acc_keys), np.concatenate(acc_counts))
-        else:
-            keys, counts = np.zeros(0, np.int64), np.zeros(0, np.int64)
+        left, right, counts = self._final_pairs(tid_map, n + 3)
         oov_words = int(unigram[unk]) - int(tok[_UNK_T])
         stats = {
             "messages": self.messages,
@@ -341,11 +436,75 @@ class CountBuilder:
             keys=vocab,
             displays=displays,
             unigram=unigram,
-            pair_left=keys // width,
-            pair_right=keys % width,
+            pair_left=left,
+            pair_right=right,
             pair_count=counts,
             stats=stats,
         )
+
+    def _final_pairs(self, tid_map: np.ndarray, width: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Pair counts over final ids, sorted by (history, next): uint32 ids, int64 counts."""
+        id_type = np.uint32 if width <= 1 << 32 else np.int64
+        if self.memory_cap is None:
+            parts = []
+            for keys, counts in self._pair_parts():
+                parts.append(_sum_by_key(tid_map[keys >> 32] * width + tid_map[keys & 0xFFFFFFFF], counts))
+            if not parts:
+                return np.zeros(0, id_type), np.zeros(0, id_type), np.zeros(0, np.int64)
+            keys, counts = _sum_by_key(np.concatenate([k for k, _ in parts]), np.concatenate([c for _, c in parts]))
+            del parts
+            return (keys // width).astype(id_type), (keys % width).astype(id_type), counts
+        import tempfile
+
+        slice_len = max(1 << 12, self.memory_cap // 256)
+        # pass 1: how many partial entries each final history has
+        per_history = np.zeros(width, dtype=np.int64)
+        for keys, _ in self._pair_parts(slice_len):
+            per_history += np.bincount(tid_map[keys >> 32], minlength=width)
+        # histories cut into buckets of at most slice_len entries (one history may exceed it)
+        cum = np.cumsum(per_history)
+        edges = [0]
+        while edges[-1] < width:
+            start = int(cum[edges[-1] - 1]) if edges[-1] else 0
+            nxt = int(np.searchsorted(cum, start + slice_len, side="right"))
+            edges.append(min(width, max(nxt, edges[-1] + 1)))
+        edge_keys = np.asarray(edges[1:-1], dtype=np.int64) * width
+        with tempfile.TemporaryDirectory(prefix="nextword-final-") as tmp:
+            names = [os.path.join(tmp, f"b{i:05d}") for i in range(len(edges) - 1)]
+            sizes = [0] * len(names)
+            # pass 2: remap each slice, sum it, append its pieces to the buckets' files
+            for keys, counts in self._pair_parts(slice_len):
+                fk, fc = _sum_by_key(tid_map[keys >> 32] * width + tid_map[keys & 0xFFFFFFFF], counts)
+                del keys, counts
+                cuts = [0, *np.searchsorted(fk, edge_keys).tolist(), len(fk)]
+                for b in range(len(names)):
+                    lo, hi = cuts[b], cuts[b + 1]
+                    if hi > lo:
+                        with open(names[b] + ".k", "ab") as f:
+                            fk[lo:hi].tofile(f)
+                        with open(names[b] + ".c", "ab") as f:
+                            fc[lo:hi].tofile(f)
+                        sizes[b] += hi - lo
+            # pass 3: sum each bucket; the buckets are in key order
+            out_l: list[np.ndarray] = []
+            out_r: list[np.ndarray] = []
+            out_c: list[np.ndarray] = []
+            for name, size in zip(names, sizes):
+                if not size:
+                    continue
+                k, c = _sum_by_key(np.fromfile(name + ".k", dtype=np.int64), np.fromfile(name + ".c", dtype=np.int64))
+                os.remove(name + ".k")
+                os.remove(name + ".c")
+                out_l.append((k // width).astype(id_type))
+                out_r.append((k % width).astype(id_type))
+                out_c.append(c)
+                del k, c
+        # concatenate one column at a time, dropping its parts, to keep the peak low
+        columns = []
+        for parts_ in (out_l, out_r, out_c):
+            columns.append(np.concatenate(parts_) if parts_ else np.zeros(0, id_type if parts_ is not out_c else np.int64))
+            parts_.clear()
+        return columns[0], columns[1], columns[2]
 
     def _display(self, key: str, tids: list[int], tok: np.ndarray, initial: np.ndarray) -> str:
         """Most frequent spelling away from sentence starts, where capitals are positional.
@@ -355,19 +514,45 @@ class CountBuilder:
         ("Thanks" -> "thanks") and its spelling otherwise ("NASA").
         """
         surfaces = self._surfaces
-        best = max(tids, key=lambda t: (int(tok[t] - initial[t]), surfaces[t] == key, _neg(surfaces[t])))
-        if tok[best] - initial[best] > 0:
-            return surfaces[best]
-        best = max(tids, key=lambda t: (int(initial[t]), surfaces[t] == key, _neg(surfaces[t])))
+        if len(tids) == 1:
+            best = tids[0]
+            if tok[best] - initial[best] > 0:
+                return surfaces[best]
+        else:
+            best = _most(tids, [int(tok[t] - initial[t]) for t in tids], surfaces, key)
+            if tok[best] - initial[best] > 0:
+                return surfaces[best]
+            best = _most(tids, [int(initial[t]) for t in tids], surfaces, key)
         s = surfaces[best]
         if s[:1].upper() + s[1:] == s and fold(s[:1]) + s[1:] == key:
             return key
         return s
 
 
-def _neg(s: str) -> tuple[int, ...]:
-    """Sort key that reverses code-point order inside max()."""
-    return tuple(-ord(c) for c in s)
+def _choose(counts: np.ndarray, keys: list[str], min_count: int, max_vocab: int) -> list[int]:
+    """Indices of the vocabulary: count >= min_count, the max_vocab most frequent,
+    ordered by (count descending, key in code-point order)."""
+    eligible = np.flatnonzero(counts >= min_count)
+    if len(eligible) > max_vocab:
+        c = counts[eligible]
+        cut = int(np.partition(c, len(c) - max_vocab)[len(c) - max_vocab])  # the max_vocab-th largest
+        above = eligible[c > cut]
+        tied = sorted(eligible[c == cut].tolist(), key=keys.__getitem__)
+        eligible = np.concatenate([above, np.asarray(tied[: max_vocab - len(above)], dtype=np.int64)])
+    cl = counts.tolist()
+    return sorted(eligible.tolist(), key=lambda i: (-cl[i], keys[i]))
+
+
+def _most(tids: list[int], values: list[int], surfaces: list[str], key: str) -> int:
+    """The spelling with the largest value; ties go to the key itself, then code-point order."""
+    top = max(values)
+    tied = [t for t, v in zip(tids, values) if v == top]
+    if len(tied) == 1:
+        return tied[0]
+    for t in tied:
+        if surfaces[t] == key:
+            return t
+    return min(tied, key=surfaces.__getitem__)
 
 
 def _sum_by_key(keys: np.ndarray, counts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

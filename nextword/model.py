@@ -782,37 +782,91 @@ def train(
     )
 
 
-_CHUNK_MESSAGES = 20_000
-
-
-def _count_chunk(messages: list[str]) -> CountBuilder:
-    part = CountBuilder()
-    part.add_texts(messages)
-    part._flush()
-    return part
+def _count_worker(inbox: Any, outbox: Any, memory_cap: int | None, spill_root: str) -> None:
+    """Worker process: count every batch it is sent into one builder, then send it back."""
+    builder = CountBuilder(memory_cap=memory_cap)
+    builder._spill_root = spill_root
+    while True:
+        item = inbox.get()
+        if item is None:
+            break
+        builder._add_joined(*item)
+    builder._flush()
+    outbox.put(builder)
 
 
 def _count_in_processes(messages: Iterator[str], workers: int, memory_cap: int | None = None) -> CountBuilder:
-    """Count chunks of messages in worker processes, merging partial counts in order.
+    """Count batches of messages in ``workers`` processes and merge their counts.
 
-    At most ``2 × workers`` chunks are in flight, so memory does not grow with the input.
+    This process only reads and joins messages into batches of about a million
+    characters; each worker keeps one builder for everything it is sent, so partial
+    counts are merged once per worker at the end, not once per batch. At most
+    ``2 × workers`` batches wait in the queue, so memory does not grow with the input.
+    Under ``memory_cap`` every worker gets an equal share of the cap (and this process
+    one more share while counting, the whole cap while merging); workers spill their
+    sorted runs into a directory this process owns and removes.
     """
     import multiprocessing as mp
-    from collections import deque
-    from itertools import islice
+    import queue as queue_mod
+    import tempfile
 
     method = "fork" if "fork" in mp.get_all_start_methods() else "spawn"
-    builder = CountBuilder(memory_cap=memory_cap)
-    with mp.get_context(method).Pool(workers) as pool:
-        pending: deque[Any] = deque()
-        while True:
-            chunk = list(islice(messages, _CHUNK_MESSAGES))
-            if chunk:
-                pending.append(pool.apply_async(_count_chunk, (chunk,)))
-            while pending and (len(pending) >= 2 * workers or not chunk):
-                builder.merge(pending.popleft().get())
-            if not chunk:
-                break
+    ctx: Any = mp.get_context(method)
+    share = None if memory_cap is None else max(1 << 16, memory_cap // (workers + 1))
+    limit = CountBuilder(memory_cap=share)._batch_chars
+    with tempfile.TemporaryDirectory(prefix="nextword-counts-") as spill_root:
+        inbox = ctx.Queue(maxsize=2 * workers)
+        outbox = ctx.Queue()
+        procs = [ctx.Process(target=_count_worker, args=(inbox, outbox, share, spill_root), daemon=True) for _ in range(workers)]
+        for proc in procs:
+            proc.start()
+
+        def check() -> None:
+            for proc in procs:
+                if proc.exitcode not in (None, 0):
+                    raise RuntimeError(f"a counting worker process died (exit code {proc.exitcode})")
+
+        def put(item: Any) -> None:
+            while True:
+                try:
+                    inbox.put(item, timeout=0.5)
+                    return
+                except queue_mod.Full:
+                    check()
+
+        try:
+            batch: list[str] = []
+            chars = 0
+            for text in messages:
+                if not isinstance(text, str):
+                    raise InvalidArgumentError(f"messages must be str, got {type(text).__name__}")
+                batch.append(text)
+                chars += len(text)
+                if chars >= limit:
+                    put(("\n".join(batch), len(batch)))
+                    batch, chars = [], 0
+            if batch:
+                put(("\n".join(batch), len(batch)))
+            for _ in procs:
+                put(None)
+            builder = CountBuilder(memory_cap=memory_cap)
+            for _ in procs:
+                while True:
+                    try:
+                        part = outbox.get(timeout=0.5)
+                        break
+                    except queue_mod.Empty:
+                        check()
+                builder.merge(part)  # re-spills the part's runs into the builder's own directory
+                del part
+            for proc in procs:
+                proc.join()
+        finally:
+            inbox.cancel_join_thread()  # never hang on batches no worker will read
+            for proc in procs:
+                if proc.is_alive():
+                    proc.terminate()
+                    proc.join()
     return builder
 
 

@@ -45,23 +45,59 @@ def test_merge_of_partial_counts_equals_counting_the_concatenation(msgs: list[st
     _same(merged.tables(min_count=min_count), want)
 
 
-def test_workers_write_the_same_file_byte_for_byte(tmp_path: Path) -> None:
+def test_workers_write_the_same_file_byte_for_byte(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     from pydoc_data.topics import topics  # real English shipped with CPython
+
+    import nextword.counts
 
     lines = [ln for k in sorted(topics) for ln in topics[k].splitlines()]
     corpus = tmp_path / "c.txt"
     corpus.write_text("\n".join(lines) + "\n", encoding="utf-8")
-    one, two = tmp_path / "one.nwm", tmp_path / "two.nwm"
+    one, two, three = tmp_path / "one.nwm", tmp_path / "two.nwm", tmp_path / "three.nwm"
     nextword.train(corpus, one, min_count=1)
-    import nextword.model as m
+    monkeypatch.setattr(nextword.counts, "_BATCH_CHARS", 5000)  # many batches per worker
+    nextword.train(corpus, two, min_count=1, workers=2)
+    # workers under a small cap spill into the parent's directory; still the same bytes
+    nextword.train(corpus, three, min_count=1, workers=2, memory_cap=1 << 18)
+    assert one.read_bytes() == two.read_bytes() == three.read_bytes()
 
-    old = m._CHUNK_MESSAGES
-    m._CHUNK_MESSAGES = 700  # many chunks, merged out of the workers in order
-    try:
-        nextword.train(corpus, two, min_count=1, workers=2)
-    finally:
-        m._CHUNK_MESSAGES = old
-    assert one.read_bytes() == two.read_bytes()
+
+# every kind of character the text rules treat specially: line ends of all kinds,
+# other white space, joiners, digits, number separators, symbols, soft punctuation,
+# sentence ends, combining marks, capitals
+_PIECES = ["a", "Ab", "b", "é", "e\u0301", "don't", "don’t", "x-ray", "7", "7:30", "3.5", "£", "+",
+           ",", ".", "!", "?", "…", "(", '"', "'", "-", "\n", "\r", "\r\n", "\u2028", "\x0b", "\t",
+           "\xa0", "\u3000", " ", "  ", "\x1c", "Σ", "ς", "_"]
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.lists(st.sampled_from(_PIECES), max_size=16).map("".join), max_size=12))
+def test_counting_cuts_text_exactly_as_the_query_parser_does(msgs: list[str]) -> None:
+    # Reference: nextword.text.sentences(), the parser the model uses at query time
+    # (one message at a time, token by token). Training must cut text the same way.
+    from collections import Counter
+
+    from nextword.text import BOS, EOS, UNK, fold, sentences
+
+    uni: Counter[str] = Counter()
+    pairs: Counter[tuple[str, str]] = Counter()
+    for m in msgs:
+        for sent in sentences(m):
+            toks = [BOS] + [UNK if w is None else fold(w) for w in sent] + [EOS]
+            uni.update(toks[1:])
+            pairs.update(zip(toks, toks[1:]))
+    b = CountBuilder()
+    b.add_texts(msgs)
+    if not any(k not in (BOS, EOS, UNK) for k in uni):
+        return
+    t = b.tables(min_count=1, max_vocab=10_000)
+    names = t.keys + [EOS, UNK, BOS]
+    got_uni = {names[i]: int(c) for i, c in enumerate(t.unigram) if c}
+    got_pairs = {(names[a], names[c]): int(n) for a, c, n in zip(t.pair_left, t.pair_right, t.pair_count)}
+    assert got_uni == dict(uni)
+    assert got_pairs == dict(pairs)
+    assert t.stats["messages"] == len(msgs)
+    assert t.stats["sentences"] == sum(len(sentences(m)) for m in msgs)
 
 
 def test_spilling_under_a_memory_cap_changes_nothing(tmp_path: Path) -> None:
