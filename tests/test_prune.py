@@ -7,6 +7,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 import nextword
 from nextword.counts import CountBuilder
@@ -86,3 +88,50 @@ def test_train_with_max_size(lines: list[str], tmp_path: Path) -> None:
     assert r.returncode == 0, r.stderr
     assert out.stat().st_size <= budget
     assert nextword.load(out, verify=True).n_words == nextword.load(full).n_words
+
+
+@settings(max_examples=25, deadline=None)
+@given(
+    st.lists(st.lists(st.sampled_from(["a", "b", "c", "d", "e", "f"]), min_size=1, max_size=8).map(" ".join),
+             min_size=1, max_size=10),
+    st.sampled_from([0.0, 0.5, 0.9, 0.99]),
+)
+def test_entropy_score_is_the_exact_relative_entropy_of_removing_the_pair(msgs: list[str], lam: float) -> None:
+    # Stolcke (1998), eq. for D(p || p'): the weighted relative entropy between the model
+    # with and without one pair. Brute force: write both models, ask each for P(w | v)
+    # over every outcome, sum P(v) · Σ_w P ln(P / P') with P(v) = c(v)/N.
+    import tempfile
+
+    from nextword.prune import pair_scores, prune_tables
+    from nextword.store import write_model
+
+    b = CountBuilder()
+    b.add_texts(msgs)
+    tables = b.tables(min_count=1)
+    scores = pair_scores(tables, "entropy", lam)
+    n = tables.n_words
+    names = tables.keys + ["</s>", "<unk>", "<s>"]
+    outcomes = tables.keys + ["</s>", "<unk>"]
+    total = float(tables.unigram.sum())
+    with tempfile.TemporaryDirectory() as tmp:
+        full_path = Path(tmp) / "full.nwm"
+        write_model(prune_tables(tables, np.ones(len(tables.pair_count), dtype=bool)), full_path, lam=lam)
+        full = nextword.load(full_path)
+        for j in range(len(tables.pair_count)):
+            keep = np.ones(len(tables.pair_count), dtype=bool)
+            keep[j] = False
+            path = Path(tmp) / f"p{j}.nwm"
+            write_model(prune_tables(tables, keep), path, lam=lam)
+            pruned = nextword.load(path)
+            v = int(tables.pair_left[j])
+            prev = None if v == n + 2 else names[v]
+            cv = float(tables.pair_count[tables.pair_left == v].sum())
+            d = 0.0
+            for w in outcomes:
+                p, q = full.prob(w, prev), pruned.prob(w, prev)
+                if p > 0:
+                    d += p * (math.log(p / q) if q > 0 else math.inf)
+            want = cv / total * d
+            assert scores[j] == pytest.approx(want, rel=1e-9, abs=1e-12), (j, names[v])
+            pruned.close()
+        full.close()
