@@ -340,6 +340,25 @@ class CountBuilder:
         self._runs.append((stem, len(keys)))
         self._part_keys, self._part_counts = [], []
 
+    def _adopt_runs(self, memory_cap: int | None) -> None:
+        """Take ownership of runs spilled into someone else's directory (a worker's
+        builder becoming the result): move them into a directory of our own, and take
+        the given memory cap for the work that follows."""
+        import shutil
+        import tempfile
+
+        self.memory_cap = memory_cap
+        self._spill_root = None
+        if self._runs:
+            self._spill_dir = tempfile.TemporaryDirectory(prefix="nextword-counts-")
+            moved = []
+            for stem, length in self._runs:
+                new = os.path.join(self._spill_dir.name, os.path.basename(stem))
+                for ext in (".keys", ".counts"):
+                    shutil.move(stem + ext, new + ext)
+                moved.append((new, length))
+            self._runs = moved
+
     @property
     def spilled_runs(self) -> int:
         """How many sorted runs of pair counts went to disk (0 without a memory cap)."""

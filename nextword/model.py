@@ -849,7 +849,7 @@ def _count_in_processes(messages: Iterator[str], workers: int, memory_cap: int |
                 put(("\n".join(batch), len(batch)))
             for _ in procs:
                 put(None)
-            builder = CountBuilder(memory_cap=memory_cap)
+            builder: CountBuilder | None = None
             for _ in procs:
                 while True:
                     try:
@@ -857,10 +857,15 @@ def _count_in_processes(messages: Iterator[str], workers: int, memory_cap: int |
                         break
                     except queue_mod.Empty:
                         check()
-                builder.merge(part)  # re-spills the part's runs into the builder's own directory
+                if builder is None:  # the first part becomes the result: no remapping
+                    builder = part
+                    builder._adopt_runs(memory_cap)
+                else:
+                    builder.merge(part)  # re-spills the part's runs into the builder's own directory
                 del part
             for proc in procs:
                 proc.join()
+            assert builder is not None
         finally:
             inbox.cancel_join_thread()  # never hang on batches no worker will read
             for proc in procs:
