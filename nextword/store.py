@@ -16,7 +16,7 @@ import tempfile
 import zlib
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Final, Iterable, cast
+from typing import Any, Final, Iterable, Sequence, cast
 
 import marisa_trie
 import msgpack
@@ -177,6 +177,22 @@ def history_counts(unigram: np.ndarray, n: int) -> np.ndarray:
     return hist
 
 
+def _rank_order(ids: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    """Offsets in (count descending, id ascending) order, ties kept in offset order.
+
+    Long segments sort one packed 64-bit key (faster than a two-key lexsort there, slower
+    on short arrays); short ones, and inputs the packing cannot hold, use the lexsort.
+    """
+    c = np.asarray(counts)
+    i = np.asarray(ids)
+    if len(c) >= 1024 and c.min() >= 0 and i.min() >= 0 and i.max() <= _U32_MAX and c.max() <= _U32_MAX:
+        key = (np.uint64(c.max()) - c.astype(np.uint64)) << np.uint64(32)
+        key |= i.astype(np.uint64)
+        return np.argsort(key, kind="stable")
+    # for unsigned counts, ~c is max - c: descending without a copy to a signed type
+    return np.lexsort((i, ~c if c.dtype.kind == "u" else -c.astype(np.int64)))
+
+
 def _skyband(ids: np.ndarray, counts: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
     """The k-skyband of a row segment, by number of dominators, and its size for each k.
 
@@ -187,64 +203,170 @@ def _skyband(ids: np.ndarray, counts: np.ndarray, k: int) -> tuple[np.ndarray, n
     earlier entries with smaller ids. Returns the offsets of the entries with fewer than
     k dominators, sorted by (dominators, offset), and for j = 1..k how many of them have
     fewer than j dominators (a query for the top j reads only that many).
+
+    The scan keeps the k smallest ids seen so far; only an id below the largest of them
+    (``bound``) can be in the band, and such ids get rarer as the scan goes on. The
+    first entries are compared in a plain loop; past them, numpy picks each chunk's ids
+    below the bound at the chunk's start (a superset, as the bound only falls), so only
+    those reach Python.
     """
-    order = np.lexsort((ids, -counts))
-    seq = ids[order]
-    found: list[tuple[int, int]] = []  # (dominators, position in seq)
+    order = _rank_order(ids, counts)
+    seq = np.asarray(ids)[order]
+    n = len(seq)
+    head = seq[: max(256, k)].tolist()  # at least the k entries that fill ``smallest``
     smallest: list[int] = []  # the k smallest ids seen so far, sorted
-    pos = 0
-    chunk = 4096
-    while pos < len(seq):
-        part = seq[pos : pos + chunk]
-        cand = np.arange(len(part)) if len(smallest) < k else np.flatnonzero(part < smallest[-1])
-        for i in cand.tolist():
-            x = int(part[i])
-            if len(smallest) == k and x >= smallest[-1]:
-                continue
-            dom = bisect.bisect_left(smallest, x)
-            found.append((dom, pos + i))
-            bisect.insort(smallest, x)
-            if len(smallest) > k:
+    found_dom: list[int] = []  # numbers of dominators of the band entries, in scan order
+    found_pos: list[int] = []  # and their positions in seq
+    for p, x in enumerate(head[:k]):  # fewer than k entries before these: all in the band
+        found_dom.append(bisect.bisect_left(smallest, x))
+        found_pos.append(p)
+        bisect.insort(smallest, x)
+    if n > k:
+        bound = smallest[-1]
+        for p, x in enumerate(head[k:], k):
+            if x < bound:
+                found_dom.append(bisect.bisect_left(smallest, x))
+                found_pos.append(p)
+                bisect.insort(smallest, x)
                 smallest.pop()
-        pos += chunk
-    offsets = order[np.asarray([p for _, p in found], dtype=np.int64)]
-    doms = np.asarray([d for d, _ in found], dtype=np.int64)
+                bound = smallest[-1]
+        pos, chunk = len(head), 1024
+        while pos < n:
+            part = seq[pos : pos + chunk]
+            cand = np.flatnonzero(part < bound)
+            for p, x in zip((cand + pos).tolist(), part[cand].tolist()):
+                if x < bound:
+                    found_dom.append(bisect.bisect_left(smallest, x))
+                    found_pos.append(p)
+                    bisect.insort(smallest, x)
+                    smallest.pop()
+                    bound = smallest[-1]
+            pos += chunk
+            chunk = min(chunk * 4, 1 << 16)
+    offsets = order[np.asarray(found_pos, dtype=np.int64)]
+    doms = np.asarray(found_dom, dtype=np.int64)
     by = np.lexsort((offsets, doms))
     cumulative = np.searchsorted(doms[by], np.arange(1, k + 1), side="left")
     return offsets[by], cumulative
 
 
-def _prefix_segments(keys: list[str], pos: np.ndarray, a: int, b: int, min_len: int) -> list[tuple[int, int]]:
-    """Row ranges [a, b) of successors sharing a prefix, for every prefix with > min_len of them.
+def _adjacent_lcp(keys: Sequence[str]) -> np.ndarray:
+    """Length of the common prefix (in characters) of each key and the next one.
 
-    ``pos`` holds alphabetical positions (sorted within the row), so the successors whose
-    keys start with any given string form one contiguous range; the ranges nest like the
-    prefixes do. The whole row (empty prefix) comes first.
+    Compared as fixed-width arrays of the first 16 code points, a block of keys at a time
+    (bounded memory); the few pairs that agree on all 16 are finished in Python.
     """
-    out: list[tuple[int, int]] = []
-    base = a
-    ks = [keys[p] for p in pos[a:b].tolist()]  # the row's keys, once
-    stack = [(0, b - a, 0)]
-    seen: set[tuple[int, int]] = set()
-    while stack:
-        lo, hi, depth = stack.pop()
-        if hi - lo <= min_len:
-            continue
-        if (lo, hi) not in seen:
-            seen.add((lo, hi))
-            out.append((base + lo, base + hi))
-        i = lo
-        while i < hi:
-            if len(ks[i]) <= depth:
-                i += 1
-                continue
-            c = ks[i][depth]
-            j = i + 1
-            while j < hi and len(ks[j]) > depth and ks[j][depth] == c:
-                j += 1
-            stack.append((i, j, depth + 1))
-            i = j
-    return out
+    n = len(keys)
+    width = 16
+    lengths = np.fromiter(map(len, keys), dtype=np.int64, count=n)
+    lcp = np.zeros(max(n - 1, 0), dtype=np.int64)
+    block = 1 << 15
+    for s in range(0, n - 1, block):
+        e = min(n, s + block + 1)
+        chars = np.array([k[:width] for k in keys[s:e]], dtype=f"<U{width}").view(np.uint32).reshape(e - s, width)
+        same = chars[:-1] == chars[1:]
+        lcp[s : e - 1] = np.where(same.all(axis=1), width, same.argmin(axis=1))
+        del chars, same
+    # a padding position compares equal to a real U+0000: never count past either key
+    np.minimum(lcp, lengths[:-1], out=lcp)
+    np.minimum(lcp, lengths[1:], out=lcp)
+    for i in np.flatnonzero(lcp >= width).tolist():
+        a, b = keys[i], keys[i + 1]
+        j = width
+        while j < len(a) and j < len(b) and a[j] == b[j]:
+            j += 1
+        lcp[i] = j
+    return lcp
+
+
+def _prefix_groups(keys: Sequence[str], min_len: int) -> list[np.ndarray]:
+    """Prefix groups of sorted ``keys``, one array per prefix length d + 1 = 1, 2, ...
+
+    Entry p of array d names the group of keys sharing key p's first d + 1 characters
+    (by the position of the group's first key), or is -1 when key p is shorter than
+    that. Sorted keys sharing a prefix are contiguous, so with these arrays a row's
+    prefix segments are runs of equal values. Arrays stop at the first length where no
+    group has more than ``min_len`` keys: a row holds at most a group's keys, and longer
+    prefixes only split groups further, so no segment lies beyond.
+    """
+    n = len(keys)
+    if n == 0:
+        return []
+    lcp = _adjacent_lcp(keys)
+    lengths = np.fromiter(map(len, keys), dtype=np.int64, count=n)
+    gdt = np.int32 if n < (1 << 31) else np.int64
+    positions = np.arange(n, dtype=gdt)
+    out: list[np.ndarray] = []
+    depth = 0
+    while True:
+        starts = np.ones(n, dtype=bool)
+        starts[1:] = lcp < depth + 1  # key p starts a group unless it shares d + 1 chars with p - 1
+        first = np.flatnonzero(starts)
+        sizes = np.diff(first, append=n)
+        long_enough = lengths[first] > depth
+        if not long_enough.any() or int(sizes[long_enough].max()) <= min_len:
+            return out
+        group = np.maximum.accumulate(np.where(starts, positions, 0))
+        group[lengths <= depth] = -1
+        out.append(group)
+        depth += 1
+
+
+def _prefix_segments(
+    groups: list[np.ndarray], pos: np.ndarray, starts: np.ndarray, ends: np.ndarray, min_len: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """Ranges [s, e) of successors sharing a prefix, for every prefix with > min_len of them.
+
+    ``pos`` holds alphabetical positions, sorted within each row; ``starts``/``ends``
+    bound the rows' word successors (disjoint ranges of ``pos``); ``groups`` comes from
+    :func:`_prefix_groups` over the alphabetical keys with the same ``min_len``. The
+    successors whose keys start with a given string form one contiguous range, and the
+    ranges nest like the prefixes do: each row (the empty prefix), then for each prefix
+    length the runs of equal group. Only entries inside a long enough run can be in a
+    longer prefix's run, so each length looks at fewer entries than the one before.
+    Returns the distinct ranges sorted by (start, end), as two int64 arrays.
+    """
+    starts = np.asarray(starts, dtype=np.int64)
+    ends = np.asarray(ends, dtype=np.int64)
+    keep = ends - starts > min_len
+    starts, ends = starts[keep], ends[keep]
+    seg_s = [starts]
+    seg_e = [ends]
+    lens = ends - starts
+    offsets = np.cumsum(lens) - lens
+    # the entries still in play (row offsets), and where each current run begins
+    idx = np.repeat(starts - offsets, lens)
+    idx += np.arange(len(idx), dtype=np.int64)
+    brk = np.zeros(len(idx), dtype=bool)
+    brk[offsets[lens > 0]] = True
+    for group in groups:
+        if len(idx) == 0:
+            break
+        g = group[pos[idx]]
+        brk[1:] |= g[1:] != g[:-1]
+        first = np.flatnonzero(brk)
+        size = np.diff(first, append=len(idx))
+        ok = (g[first] >= 0) & (size > min_len)
+        seg_s.append(idx[first[ok]])
+        seg_e.append(idx[first[ok] + size[ok] - 1] + 1)
+        inside = np.repeat(ok, size)
+        idx = idx[inside]
+        brk = brk[inside]
+    s = np.concatenate(seg_s)
+    e = np.concatenate(seg_e)
+    order = np.lexsort((e, s))
+    s, e = s[order], e[order]
+    new = np.ones(len(s), dtype=bool)
+    new[1:] = (s[1:] != s[:-1]) | (e[1:] != e[:-1])
+    return s[new], e[new]
+
+
+def _row_word_ends(rows: np.ndarray, succ: np.ndarray, row_ids: np.ndarray, n: int) -> np.ndarray:
+    """End of the word successors of each given row: </s> and <unk> (alphabetical
+    positions n and n + 1) sort last in a row and are no word's prefix."""
+    tail = np.flatnonzero(succ >= n)
+    n_tail = np.bincount(np.searchsorted(rows, tail, side="right") - 1, minlength=len(rows) - 1)
+    return rows[row_ids + 1] - n_tail[row_ids]
 
 
 def build_sections(
@@ -265,15 +387,16 @@ def build_sections(
 
     trie = marisa_trie.Trie(tables.keys)
     tkid = np.empty(n, dtype=np.int64)
-    for wid, key in enumerate(tables.keys):
-        tkid[trie.key_id(key)] = wid
+    tkid[np.fromiter(map(trie.key_id, tables.keys), dtype=np.int64, count=n)] = np.arange(n)
     idtk = np.empty(n, dtype=np.int64)
     idtk[tkid] = np.arange(n)
     alpha_words = np.array(sorted(range(n), key=tables.keys.__getitem__), dtype=np.int64)
     alph = np.concatenate([alpha_words, [eos, unk]])
     apos = np.empty(n_pos, dtype=np.int64)
     apos[alph] = np.arange(n_pos)
-    key4 = np.array([key_head(tables.keys[i]) for i in alpha_words.tolist()], dtype=np.int64)
+    alpha_keys = [tables.keys[i] for i in alpha_words.tolist()]
+    # key_head of every key at once: numpy cuts/pads the UTF-8 bytes to 4, read big-endian
+    key4 = np.array([k.encode("utf-8") for k in alpha_keys], dtype="S4").view(">u4").astype(np.uint32)
 
     # multi-level top lists over alphabetical positions of words (ids are ranks)
     pad = int(np.iinfo(idt).max)
@@ -304,26 +427,24 @@ def build_sections(
     bigi = np.flatnonzero(counts >= COUNT_ESCAPE)
     bigc = counts[bigi]
 
-    alpha_keys = [tables.keys[i] for i in alpha_words.tolist()]
-    seg_s, seg_e, sky_parts, cum_parts = [], [], [], []
-    for v in np.flatnonzero(row_len > skyband_min).tolist():
-        rs = int(rows[v])
-        words_end = rs + int(np.searchsorted(right_pos[rs : int(rows[v + 1])], n))
-        for a, b in _prefix_segments(alpha_keys, right_pos, rs, words_end, skyband_min):
-            band, cum = _skyband(alph[right_pos[a:b]], counts[a:b], skyband_k)
-            seg_s.append(a)
-            seg_e.append(b)
-            sky_parts.append(band)
-            cum_parts.append(cum)
-    order = np.lexsort((seg_e, seg_s)) if seg_s else np.zeros(0, np.int64)
-    seg_s_a = np.asarray(seg_s, dtype=np.int64)[order]
-    seg_e_a = np.asarray(seg_e, dtype=np.int64)[order]
-    parts = [sky_parts[i] for i in order.tolist()]
-    sky_ptr_a = np.concatenate([[0], np.cumsum([len(p) for p in parts], dtype=np.int64)])
-    skyi = np.concatenate(parts) if parts else np.zeros(0, np.int64)
-    skyc = np.concatenate([cum_parts[i] for i in order.tolist()]) if parts else np.zeros(0, np.int64)
+    long_rows = np.flatnonzero(row_len > skyband_min)
+    seg_s_a, seg_e_a = _prefix_segments(
+        _prefix_groups(alpha_keys, skyband_min),
+        right_pos,
+        rows[long_rows],
+        _row_word_ends(rows, right_pos, long_rows, n),
+        skyband_min,
+    )
     longest = int((seg_e_a - seg_s_a).max(initial=0))
     sky_dtype = np.dtype("<u2") if longest <= 0xFFFF else np.dtype("<u4")
+    sky_parts, cum_parts = [], []
+    for a, b in zip(seg_s_a.tolist(), seg_e_a.tolist()):
+        band, cum = _skyband(alph[right_pos[a:b]], counts[a:b], skyband_k)
+        sky_parts.append(band)
+        cum_parts.append(cum)
+    sky_ptr_a = np.concatenate([[0], np.cumsum([len(p) for p in sky_parts], dtype=np.int64)])
+    skyi = np.concatenate(sky_parts) if sky_parts else np.zeros(0, np.int64)
+    skyc = np.concatenate(cum_parts) if cum_parts else np.zeros(0, np.int64)
     if tables.history is not None and np.any(np.bincount(left, weights=counts, minlength=n_hist) != tables.history):
         raise InvalidArgumentError("history counts disagree with the pairs")
 
@@ -340,7 +461,7 @@ def build_sections(
         "skyband_k": int(skyband_k),
         "skyband_min": int(skyband_min),
         "topk_fanout": TOPK_FANOUT,
-        "max_key_chars": max(len(k) for k in tables.keys),
+        "max_key_chars": max(map(len, tables.keys)),
         "stats": {k: int(v) for k, v in tables.stats.items()},
     }
     u4, u1 = np.dtype("<u4"), np.dtype("<u1")
@@ -767,13 +888,16 @@ def _check_derived(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], ke
         raise _fail(name, "section TOPK disagrees with ALPH")
     rows = a["ROWS"].astype(np.int64)
     succ = a["SUCC"].astype(np.int64)
-    expected = []
-    for v in np.flatnonzero(np.diff(rows) > meta["skyband_min"]).tolist():
-        rs = int(rows[v])
-        words_end = rs + int(np.searchsorted(succ[rs : int(rows[v + 1])], n))
-        expected.extend(_prefix_segments(keys, succ, rs, words_end, meta["skyband_min"]))
+    long_rows = np.flatnonzero(np.diff(rows) > meta["skyband_min"])
+    exp_s, exp_e = _prefix_segments(
+        _prefix_groups(keys, meta["skyband_min"]),
+        succ,
+        rows[long_rows],
+        _row_word_ends(rows, succ, long_rows, n),
+        meta["skyband_min"],
+    )
     stored = list(zip(a["SEGS"].tolist(), a["SEGE"].tolist()))
-    if sorted(expected) != stored:
+    if list(zip(exp_s.tolist(), exp_e.tolist())) != stored:
         raise _fail(name, "sections SEGS/SEGE are not the prefix segments of the rows")
     skyp, skyi = a["SKYP"].astype(np.int64), a["SKYI"].astype(np.int64)
     alph = a["ALPH"].astype(np.int64)
