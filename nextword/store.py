@@ -312,6 +312,10 @@ def _prefix_groups(keys: Sequence[str], min_len: int) -> list[np.ndarray]:
         depth += 1
 
 
+#: Row entries looked at together when finding prefix segments (bounds the temporaries).
+_SEGMENT_BATCH: Final = 1 << 20
+
+
 def _prefix_segments(
     groups: list[np.ndarray], pos: np.ndarray, starts: np.ndarray, ends: np.ndarray, min_len: int
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -322,9 +326,9 @@ def _prefix_segments(
     :func:`_prefix_groups` over the alphabetical keys with the same ``min_len``. The
     successors whose keys start with a given string form one contiguous range, and the
     ranges nest like the prefixes do: each row (the empty prefix), then for each prefix
-    length the runs of equal group. Only entries inside a long enough run can be in a
-    longer prefix's run, so each length looks at fewer entries than the one before.
-    Returns the distinct ranges sorted by (start, end), as two int64 arrays.
+    length the runs of equal group. Rows are taken in batches of about
+    ``_SEGMENT_BATCH`` entries, so the index arrays stay small however many pairs there
+    are. Returns the distinct ranges sorted by (start, end), as two int64 arrays.
     """
     starts = np.asarray(starts, dtype=np.int64)
     ends = np.asarray(ends, dtype=np.int64)
@@ -332,6 +336,37 @@ def _prefix_segments(
     starts, ends = starts[keep], ends[keep]
     seg_s = [starts]
     seg_e = [ends]
+    cum = np.cumsum(ends - starts)
+    first = 0
+    while first < len(starts):
+        # rows first..last-1: at least one, about _SEGMENT_BATCH entries
+        done = int(cum[first - 1]) if first else 0
+        last = max(first + 1, int(np.searchsorted(cum, done + _SEGMENT_BATCH, side="right")))
+        _batch_segments(groups, pos, starts[first:last], ends[first:last], min_len, seg_s, seg_e)
+        first = last
+    s = np.concatenate(seg_s)
+    e = np.concatenate(seg_e)
+    order = np.lexsort((e, s))
+    s, e = s[order], e[order]
+    new = np.ones(len(s), dtype=bool)
+    new[1:] = (s[1:] != s[:-1]) | (e[1:] != e[:-1])
+    return s[new], e[new]
+
+
+def _batch_segments(
+    groups: list[np.ndarray],
+    pos: np.ndarray,
+    starts: np.ndarray,
+    ends: np.ndarray,
+    min_len: int,
+    seg_s: list[np.ndarray],
+    seg_e: list[np.ndarray],
+) -> None:
+    """Append the non-empty prefixes' ranges of some rows to ``seg_s``/``seg_e``.
+
+    Only entries inside a long enough run can be in a longer prefix's run, so each
+    prefix length looks at fewer entries than the one before.
+    """
     lens = ends - starts
     offsets = np.cumsum(lens) - lens
     # the entries still in play (row offsets), and where each current run begins
@@ -352,13 +387,66 @@ def _prefix_segments(
         inside = np.repeat(ok, size)
         idx = idx[inside]
         brk = brk[inside]
-    s = np.concatenate(seg_s)
-    e = np.concatenate(seg_e)
-    order = np.lexsort((e, s))
-    s, e = s[order], e[order]
-    new = np.ones(len(s), dtype=bool)
-    new[1:] = (s[1:] != s[:-1]) | (e[1:] != e[:-1])
-    return s[new], e[new]
+
+
+#: Pairs sorted per block when ordering rows alphabetically (bounds the temporaries).
+_SORT_BLOCK: Final = 1 << 20
+
+
+def _sorted_pairs(
+    tables: CountTables, apos: np.ndarray, idt: np.dtype, n_hist: int
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]:
+    """The pairs in (history, alphabetical position) order, in their file element types.
+
+    Returns the row offsets (int64), each pair's alphabetical position (``idt``), its
+    count (u4) and, for tables with stored history counts, each row's count sum. The
+    input is sorted by history (as :class:`CountTables` promises; otherwise it is sorted
+    here first), so only the inside of each row needs reordering: that is done a block
+    of rows at a time, which keeps the temporaries (a 64-bit sort key, its order) at the
+    block's size instead of several 8-byte copies of every pair.
+    """
+    left, right, count = tables.pair_left, tables.pair_right, tables.pair_count
+    n_pairs = len(left)
+    if n_pairs > 1 and bool(np.any(left[1:] < left[:-1])):
+        by_left = np.argsort(left, kind="stable")
+        left, right, count = left[by_left], right[by_left], count[by_left]
+        del by_left
+    if n_pairs and (int(count.min()) < 0 or int(count.max()) > _U32_MAX):
+        raise InvalidArgumentError("pair counts must lie in [0, 2**32)")
+    # probes in the ids' own type: mixed types would make numpy copy ``left`` to int64
+    probe_type = left.dtype if left.dtype.kind in "iu" and np.iinfo(left.dtype).max >= n_hist else np.dtype(np.int64)
+    rows = np.searchsorted(left, np.arange(n_hist + 1, dtype=probe_type), side="left").astype(np.int64)
+    if n_pairs and (int(left[0]) < 0 or int(left[-1]) >= n_hist):
+        raise InvalidArgumentError("pair history ids out of range")
+    n_pos = len(apos)
+    succ = np.empty(n_pairs, dtype=idt)
+    counts = np.empty(n_pairs, dtype=np.uint32)
+    row_sums = np.zeros(n_hist, dtype=np.int64) if tables.history is not None else None
+    r0 = 0
+    while r0 < n_hist:
+        s = int(rows[r0])
+        r1 = max(r0 + 1, int(np.searchsorted(rows, s + _SORT_BLOCK, side="right")) - 1)
+        r1 = min(r1, n_hist)
+        e = int(rows[r1])
+        if e > s:
+            lb = left[s:e]
+            new_row = np.ones(e - s, dtype=bool)
+            new_row[1:] = lb[1:] != lb[:-1]
+            rp = apos[right[s:e]]
+            key = np.cumsum(new_row, dtype=np.int64)
+            key *= n_pos
+            key += rp
+            o = np.argsort(key, kind="stable")  # stable: like a lexsort, should pairs repeat
+            del key
+            succ[s:e] = rp[o]
+            cb = count[s:e][o]
+            counts[s:e] = cb
+            if row_sums is not None:
+                heads = np.flatnonzero(new_row)
+                row_sums[lb[heads]] = np.add.reduceat(cb.astype(np.int64), heads)
+            del lb, new_row, rp, o, cb
+        r0 = r1
+    return rows, succ, counts, row_sums
 
 
 def _row_word_ends(rows: np.ndarray, succ: np.ndarray, row_ids: np.ndarray, n: int) -> np.ndarray:
@@ -376,7 +464,11 @@ def build_sections(
     skyband_k: int = DEFAULT_SKYBAND_K,
     skyband_min: int = DEFAULT_SKYBAND_MIN,
 ) -> list[tuple[bytes, np.dtype | None, bytes | np.ndarray]]:
-    """Turn counts into the arrays of a model file (the explicit build step)."""
+    """Turn counts into the arrays of a model file (the explicit build step).
+
+    The bigram-sized arrays are made directly in their file element types, so the step
+    needs about twice the file's size on top of its input (see :func:`_sorted_pairs`).
+    """
     n = tables.n_words
     if n == 0:
         raise InvalidArgumentError("the vocabulary is empty: no word reached min_count")
@@ -414,20 +506,15 @@ def build_sections(
     if unigram.max(initial=0) > _U32_MAX or unigram.sum() > (1 << 53):
         raise InvalidArgumentError("corpus too large for 32-bit counts")
 
-    left = tables.pair_left
-    right_pos = apos[tables.pair_right]
-    counts = tables.pair_count
-    order = np.lexsort((right_pos, left))
-    left, right_pos, counts = left[order], right_pos[order], counts[order]
-    row_len = np.bincount(left, minlength=n_hist)
-    rows = np.concatenate([[0], np.cumsum(row_len)])
+    rows, right_pos, counts, row_sums = _sorted_pairs(tables, apos.astype(idt), idt, n_hist)
     if rows[-1] > _U32_MAX:
         raise InvalidArgumentError("too many bigrams for 32-bit offsets")
-    cnts = np.minimum(counts, COUNT_ESCAPE)
-    bigi = np.flatnonzero(counts >= COUNT_ESCAPE)
+    cnts = np.empty(len(counts), dtype=np.uint8)
+    np.minimum(counts, COUNT_ESCAPE, out=cnts, casting="unsafe")
+    bigi = np.flatnonzero(cnts == COUNT_ESCAPE).astype(np.uint32)
     bigc = counts[bigi]
 
-    long_rows = np.flatnonzero(row_len > skyband_min)
+    long_rows = np.flatnonzero(np.diff(rows) > skyband_min)
     seg_s_a, seg_e_a = _prefix_segments(
         _prefix_groups(alpha_keys, skyband_min),
         right_pos,
@@ -440,12 +527,16 @@ def build_sections(
     sky_parts, cum_parts = [], []
     for a, b in zip(seg_s_a.tolist(), seg_e_a.tolist()):
         band, cum = _skyband(alph[right_pos[a:b]], counts[a:b], skyband_k)
-        sky_parts.append(band)
-        cum_parts.append(cum)
-    sky_ptr_a = np.concatenate([[0], np.cumsum([len(p) for p in sky_parts], dtype=np.int64)])
-    skyi = np.concatenate(sky_parts) if sky_parts else np.zeros(0, np.int64)
-    skyc = np.concatenate(cum_parts) if cum_parts else np.zeros(0, np.int64)
-    if tables.history is not None and np.any(np.bincount(left, weights=counts, minlength=n_hist) != tables.history):
+        sky_parts.append(band.astype(sky_dtype))
+        cum_parts.append(cum.astype(sky_dtype))
+    del counts
+    sky_ptr_a = np.zeros(len(sky_parts) + 1, dtype=np.int64)
+    sky_ptr_a[1:] = np.cumsum(np.fromiter(map(len, sky_parts), dtype=np.int64, count=len(sky_parts)))
+    skyi = np.concatenate(sky_parts) if sky_parts else np.zeros(0, sky_dtype)
+    del sky_parts
+    skyc = np.concatenate(cum_parts) if cum_parts else np.zeros(0, sky_dtype)
+    del cum_parts
+    if tables.history is not None and np.any(row_sums != tables.history):
         raise InvalidArgumentError("history counts disagree with the pairs")
 
     dis_ids = [i for i, (k, d) in enumerate(zip(tables.keys, tables.displays)) if k != d]
@@ -491,12 +582,22 @@ def build_sections(
     ] + ([(b"HIST", u4, tables.history)] if tables.history is not None else [])
 
 
-def encode_sections(sections: list[tuple[bytes, np.dtype | None, bytes | np.ndarray]], *, minor: int = 0) -> list[bytes]:
-    """Lay sections out after the header and table; returns the file as byte chunks."""
+def encode_sections(
+    sections: list[tuple[bytes, np.dtype | None, bytes | np.ndarray]], *, minor: int = 0
+) -> list[bytes | memoryview]:
+    """Lay sections out after the header and table; returns the file as byte chunks.
+
+    An array already in its file element type is not copied: its chunk is a byte view of
+    it (keeping it alive), and padding goes in a chunk of its own, so the chunks add
+    little to the memory the sections already hold. Every chunk's ``len`` is its size in
+    bytes.
+    """
     table_end = HEADER.size + ENTRY.size * len(sections)
     offset = -(-table_end // ALIGN) * ALIGN
-    entries, payloads = [], []
+    entries: list[bytes] = []
+    payloads: list[bytes | memoryview] = []
     for tag, dtype, data in sections:
+        raw: bytes | memoryview
         if dtype is None:
             raw = bytes(data)  # type: ignore[arg-type]
             code = 0
@@ -504,11 +605,13 @@ def encode_sections(sections: list[tuple[bytes, np.dtype | None, bytes | np.ndar
             arr = np.asarray(data)
             if arr.size and (arr.min() < 0 or arr.max() > np.iinfo(dtype).max):
                 raise InvalidArgumentError(f"section {tag.decode()} does not fit {dtype}")
-            raw = arr.astype(dtype).tobytes()
+            raw = np.ascontiguousarray(arr, dtype=dtype).reshape(-1).view(np.uint8).data
             code = _CODES[dtype]
         entries.append(ENTRY.pack(tag, code, offset, len(raw), zlib.crc32(raw)))
+        payloads.append(raw)
         padding = -len(raw) % ALIGN
-        payloads.append(raw + b"\0" * padding)
+        if padding:
+            payloads.append(b"\0" * padding)
         offset += len(raw) + padding
     table = b"".join(entries)
     head = HEADER.pack(MAGIC, FORMAT_VERSION[0], minor, len(sections), offset, zlib.crc32(table), 0)

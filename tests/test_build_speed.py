@@ -2,21 +2,28 @@
 
 The build step computes the prefix segments of every long row and each segment's
 skyband with vectorised code whose shortcuts (group ids per prefix length, a candidate
-filter on the scan) are easy to get subtly wrong. Here each piece is compared with a
-brute force written straight from the definitions in nextword/store.py and
-docs/FORMAT.md, on random inputs shaped to hit the shortcuts' edges: keys that are prefixes of other keys,
+filter on the scan, rows sorted a block at a time, sections handed to the writer as
+views) are easy to get subtly wrong. Here each piece is compared with a brute force
+written straight from the definitions in nextword/store.py and docs/FORMAT.md, on
+random inputs shaped to hit the shortcuts' edges: keys that are prefixes of other keys,
 long shared prefixes, U+0000 inside keys, segments longer than the scan's first chunk,
-k above and below the segment size.
+k above and below the segment size, blocks of rows smaller than a row.
 """
 
 from __future__ import annotations
+
+import random
+from pathlib import Path
+from unittest.mock import patch
 
 import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+import nextword
 from nextword import store
+from nextword.counts import CountBuilder, CountTables
 
 SETTINGS = settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 
@@ -68,6 +75,9 @@ def test_prefix_segments_are_every_prefix_range(keys: list[str], min_len: int, d
     s, e = store._prefix_segments(groups, np.asarray(pos, dtype=np.int64), np.asarray(starts), np.asarray(ends), min_len)
     got = list(zip(s.tolist(), e.tolist()))
     assert got == sorted(want)  # the same ranges, each once, in (start, end) order
+    with patch.object(store, "_SEGMENT_BATCH", data.draw(st.integers(1, 8))):  # rows in small batches
+        s2, e2 = store._prefix_segments(groups, np.asarray(pos, dtype=np.int64), np.asarray(starts), np.asarray(ends), min_len)
+    assert list(zip(s2.tolist(), e2.tolist())) == got
 
 
 @SETTINGS
@@ -131,3 +141,61 @@ def test_skyband_matches_the_definition(
 def test_skyband_edge_shapes(shape: str, dense: bool, k: int, size: int) -> None:
     """Every shape on segments past the plain loop, into the chunked scan."""
     _skyband_case(size + k, size, k, 10**6, np.uint32, shape, dense)
+
+
+def _tables(seed: int, dtype: type) -> CountTables:
+    rng = random.Random(seed)
+    words = ["a", "ab", "abc", "abd", "b", "ba", "bab", "c", "ca", "cab", "x" * 18 + "y", "x" * 18 + "z", "é", "éa"]
+    lines = [" ".join(rng.choice(words[: rng.randint(3, len(words))]) for _ in range(rng.randint(1, 12))) for _ in range(400)]
+    b = CountBuilder()
+    b.add_texts(lines)
+    t = b.tables(min_count=1)
+    return CountTables(
+        keys=t.keys,
+        displays=t.displays,
+        unigram=t.unigram,
+        pair_left=t.pair_left.astype(dtype),
+        pair_right=t.pair_right.astype(dtype),
+        pair_count=t.pair_count.astype(dtype),
+        stats=t.stats,
+        history=t.history,
+    )
+
+
+def _file(tables: CountTables, **build: int) -> bytes:
+    chunks = store.encode_sections(store.build_sections(tables, lam=0.9, **build))
+    return b"".join(chunks)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_build_ignores_input_types_pair_order_and_sort_blocks(seed: int, monkeypatch: pytest.MonkeyPatch) -> None:
+    base = _tables(seed, np.int64)
+    want = _file(base, skyband_min=2, skyband_k=3)
+    assert _file(_tables(seed, np.uint32), skyband_min=2, skyband_k=3) == want  # compact input
+    shuffled = np.random.default_rng(seed).permutation(len(base.pair_count))
+    mixed = CountTables(
+        keys=base.keys,
+        displays=base.displays,
+        unigram=base.unigram,
+        pair_left=base.pair_left[shuffled],
+        pair_right=base.pair_right[shuffled],
+        pair_count=base.pair_count[shuffled],
+        stats=base.stats,
+    )
+    assert _file(mixed, skyband_min=2, skyband_k=3) == want  # pairs not sorted by history
+    monkeypatch.setattr(store, "_SORT_BLOCK", 5)  # many blocks, rows longer than one block
+    monkeypatch.setattr(store, "_SEGMENT_BATCH", 4)
+    assert _file(base, skyband_min=2, skyband_k=3) == want
+
+
+def test_chunks_are_the_file(tmp_path: Path) -> None:
+    tables = _tables(9, np.uint32)
+    sections = store.build_sections(tables, lam=0.9, skyband_min=1, skyband_k=2)
+    chunks = store.encode_sections(sections)
+    path = tmp_path / "m.nwm"
+    store.write_model(tables, path, lam=0.9, skyband_min=1, skyband_k=2)
+    data = path.read_bytes()
+    assert sum(len(c) for c in chunks) == len(data)  # len is bytes, as the size budget relies on
+    assert b"".join(chunks) == data
+    model = nextword.load(path, verify=True)  # every checksum and derived structure rechecked
+    assert model.n_words == tables.n_words
