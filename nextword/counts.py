@@ -39,6 +39,11 @@ _FLUSH_TOKENS = 1 << 21
 _BATCH_CHARS = 1 << 20
 #: line-end characters (sentence ends that str.split would treat as plain spaces)
 _LINE_ENDS = "\n\r\u2028\u2029\x85\x0b\x0c"
+#: soft punctuation and sentence ends often glued to a word, with the codes they add
+#: (checked against the full rules by the hypothesis test against text.sentences)
+_TRAIL = {",": (), ";": (), ":": (), ")": (), '"': (), "'": (), "”": (), "’": (),
+          ".": (_EOS_T,), "!": (_EOS_T,), "?": (_EOS_T,)}
+_LEAD = {"(": (), '"': (), "'": (), "“": (), "‘": ()}
 #: distinct space-free pieces remembered before the cache starts afresh
 _PIECE_CACHE_MAX = 1 << 21
 
@@ -176,12 +181,20 @@ class CountBuilder:
         """Token codes of one space-free piece of text (the text rules of :mod:`.text`)."""
         ids = self._ids
         surfaces = self._surfaces
-        if piece.isalpha():  # the common case: one plain word
-            tid = ids.get(piece)
+        word = piece
+        tail: tuple[int, ...] = ()
+        if not piece.isalpha():  # a word between soft punctuation or before a sentence end?
+            if piece[-1:] in _TRAIL:
+                tail = _TRAIL[piece[-1]]
+                word = piece[:-1]
+            if word[:1] in _LEAD:
+                word = word[1:]
+        if word.isalpha():  # the common cases: one plain word, perhaps with "," "." "(" …
+            tid = ids.get(word)
             if tid is None:
-                tid = ids[piece] = len(surfaces)
-                surfaces.append(piece)
-            return [tid]
+                tid = ids[word] = len(surfaces)
+                surfaces.append(word)
+            return [tid, *tail]
         out: list[int] = []
         for m in _TOKEN_RE.finditer(piece):
             group = m.lastgroup
@@ -413,13 +426,12 @@ class CountBuilder:
         initial[: len(self._initial_counts)] = self._initial_counts
 
         # merge spellings case-insensitively
-        key_index: dict[str, int] = {}
-        setdefault = key_index.setdefault
+        folded = fold_all(self._surfaces[3:])
+        key_list = list(dict.fromkeys(folded))  # distinct keys in order of first spelling
+        key_index = {k: i for i, k in enumerate(key_list)}
         tid_key = np.zeros(n_types, dtype=np.int64)
-        tid_key[3:] = np.fromiter(
-            (setdefault(k, len(key_index)) for k in fold_all(self._surfaces[3:])), dtype=np.int64, count=n_types - 3
-        )
-        key_list = list(key_index)
+        tid_key[3:] = np.fromiter(map(key_index.__getitem__, folded), dtype=np.int64, count=n_types - 3)
+        del folded, key_index
         key_counts = np.bincount(tid_key[3:], weights=tok[3:], minlength=len(key_list)).astype(np.int64)
         chosen = _choose(key_counts, key_list, min_count, max_vocab)
         vocab = [key_list[i] for i in chosen]
@@ -470,7 +482,10 @@ class CountBuilder:
                 parts.append(_sum_by_key(tid_map[keys >> 32] * width + tid_map[keys & 0xFFFFFFFF], counts))
             if not parts:
                 return np.zeros(0, id_type), np.zeros(0, id_type), np.zeros(0, np.int64)
-            keys, counts = _sum_by_key(np.concatenate([k for k, _ in parts]), np.concatenate([c for _, c in parts]))
+            if len(parts) == 1:
+                keys, counts = parts[0]
+            else:
+                keys, counts = _sum_by_key(np.concatenate([k for k, _ in parts]), np.concatenate([c for _, c in parts]))
             del parts
             return (keys // width).astype(id_type), (keys % width).astype(id_type), counts
         import tempfile

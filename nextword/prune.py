@@ -168,7 +168,7 @@ def prune_tables(tables: CountTables, keep: np.ndarray) -> CountTables:
     )
 
 
-def _size(tables: CountTables, lam: float, **build: int) -> tuple[int, list[bytes]]:
+def _size(tables: CountTables, lam: float, **build: int) -> tuple[int, list[bytes | memoryview]]:
     chunks = encode_sections(build_sections(tables, lam=lam, **build), minor=2)
     return sum(len(c) for c in chunks), chunks
 
@@ -180,7 +180,7 @@ def vocabulary_bytes(tables: CountTables, *, lam: float = 0.9, **build: int) -> 
 
 def prune_to_size(
     tables: CountTables, max_bytes: int, *, rule: Rule = "entropy", lam: float = 0.9, **build: int
-) -> tuple[CountTables, list[bytes], dict[str, float]]:
+) -> tuple[CountTables, list[bytes | memoryview], dict[str, float]]:
     """Keep the most valuable pairs that fit ``max_bytes``; returns (tables, file chunks, info).
 
     The file size is measured, not estimated: candidate sizes come from a linear fit of
@@ -189,7 +189,7 @@ def prune_to_size(
     order = np.argsort(-pair_scores(tables, rule, lam), kind="stable")  # most valuable first
     total_pairs = len(order)
 
-    def build_with(k: int) -> tuple[CountTables, int, list[bytes]]:
+    def build_with(k: int) -> tuple[CountTables, int, list[bytes | memoryview]]:
         keep = np.zeros(total_pairs, dtype=bool)
         keep[order[:k]] = True
         pruned = prune_tables(tables, keep)

@@ -67,7 +67,7 @@ def test_workers_write_the_same_file_byte_for_byte(tmp_path: Path, monkeypatch: 
 # sentence ends, combining marks, capitals
 _PIECES = ["a", "Ab", "b", "é", "e\u0301", "don't", "don’t", "x-ray", "7", "7:30", "3.5", "£", "+",
            ",", ".", "!", "?", "…", "(", '"', "'", "-", "\n", "\r", "\r\n", "\u2028", "\x0b", "\t",
-           "\xa0", "\u3000", " ", "  ", "\x1c", "Σ", "ς", "_"]
+           "\xa0", "\u3000", " ", "  ", "\x1c", "Σ", "ς", "_", ";", ":", ")", "”", "’", "“", "‘", "’s"]
 
 
 @settings(max_examples=300, deadline=None)
