@@ -90,8 +90,8 @@ class CountBuilder:
             raise InvalidArgumentError(f"memory_cap must be an integer >= 65536 bytes, got {memory_cap!r}")
         self.memory_cap = memory_cap
         # under a cap, flush the token buffer and cut batches well before they approach it
-        self._flush_tokens = _FLUSH_TOKENS if memory_cap is None else max(1 << 14, min(_FLUSH_TOKENS, memory_cap // 128))
-        self._batch_chars = _BATCH_CHARS if memory_cap is None else max(1 << 12, min(_BATCH_CHARS, memory_cap // 128))
+        self._flush_tokens = _FLUSH_TOKENS if memory_cap is None else max(1 << 14, min(_FLUSH_TOKENS, memory_cap // 512))
+        self._batch_chars = _BATCH_CHARS if memory_cap is None else max(1 << 12, min(_BATCH_CHARS, memory_cap // 512))
         self._runs: list[tuple[str, int]] = []
         self._spill_dir: Any = None
         #: a directory owned by someone else (e.g. the parent of worker processes) to spill into
@@ -174,6 +174,7 @@ class CountBuilder:
         self.sentences += int(np.count_nonzero(codes == _EOS_T))
         self._buf.append(codes)
         self._buf_len += len(codes)
+        del text, pieces, idx, lens, ends, gather, codes, opens, prev_end  # before the flush's peak
         if self._buf_len >= self._flush_tokens:
             self._flush()
 
@@ -275,8 +276,10 @@ class CountBuilder:
         left, right = left[keep], right[keep]
         self._initial_counts += np.bincount(right[left == _BOS_T], minlength=n_types)
         keys, counts = np.unique((left << 32) | right, return_counts=True)
+        del a, left, right, keep
         self._part_keys.append(keys)
         self._part_counts.append(counts.astype(np.int64))
+        del keys, counts
         if len(self._part_keys) >= 8 or self._over_cap():
             self._merge_parts()
 
@@ -316,12 +319,14 @@ class CountBuilder:
             theirs = getattr(other, name)
             np.add.at(grown, remap[: len(theirs)], theirs)
             setattr(self, name, grown)
-        for keys, counts in other._pair_parts():
+        slice_len = None if self.memory_cap is None else max(1 << 12, self.memory_cap // 256)
+        for keys, counts in other._pair_parts(slice_len):
             left, right = remap[keys >> 32], remap[keys & 0xFFFFFFFF]
             self._part_keys.append((left << 32) | right)
             self._part_counts.append(np.array(counts))
-        if len(self._part_keys) >= 8 or self._over_cap():
-            self._merge_parts()
+            del left, right, keys, counts
+            if len(self._part_keys) >= 8 or self._over_cap():  # inside the loop: runs arrive one by one
+                self._merge_parts()
         self.messages += other.messages
         self.sentences += other.sentences
 
