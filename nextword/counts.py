@@ -117,19 +117,8 @@ class CountBuilder:
         cut at spaces and every distinct space-free piece is tokenised once and
         remembered, so the work per word is a dictionary lookup and a few numpy steps.
         """
-        batch: list[str] = []
-        chars = 0
-        limit = self._batch_chars
-        for t in texts:
-            if not isinstance(t, str):
-                raise InvalidArgumentError(f"messages must be str, got {type(t).__name__}")
-            batch.append(t)
-            chars += len(t)
-            if chars >= limit:
-                self._add_joined("\n".join(batch), len(batch))
-                batch, chars = [], 0
-        if batch:
-            self._add_joined("\n".join(batch), len(batch))
+        for joined, n in join_batches(texts, self._batch_chars):
+            self._add_joined(joined, n)
 
     def add_text(self, text: str) -> None:
         """Count one message. Line breaks inside it end sentences, as everywhere."""
@@ -566,6 +555,23 @@ class CountBuilder:
         if s[:1].upper() + s[1:] == s and fold(s[:1]) + s[1:] == key:
             return key
         return s
+
+
+def join_batches(texts: Iterable[str], limit: int) -> Iterator[tuple[str, int]]:
+    """Messages joined by line breaks into batches of about ``limit`` characters, with
+    how many messages each holds (what :meth:`CountBuilder._add_joined` takes)."""
+    batch: list[str] = []
+    chars = 0
+    for t in texts:
+        if not isinstance(t, str):
+            raise InvalidArgumentError(f"messages must be str, got {type(t).__name__}")
+        batch.append(t)
+        chars += len(t)
+        if chars >= limit:
+            yield "\n".join(batch), len(batch)
+            batch, chars = [], 0
+    if batch:
+        yield "\n".join(batch), len(batch)
 
 
 def _choose(counts: np.ndarray, keys: list[str], min_count: int, max_vocab: int) -> list[int]:

@@ -24,7 +24,7 @@ import numpy as np
 
 from ._progress import Progress
 from .corpus import Format, iter_messages, open_sources
-from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables
+from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables, join_batches
 from .errors import InputDataError, InvalidArgumentError, ModelFormatError
 from .store import (
     COUNT_ESCAPE,
@@ -835,18 +835,8 @@ def _count_in_processes(messages: Iterator[str], workers: int, memory_cap: int |
                     check()
 
         try:
-            batch: list[str] = []
-            chars = 0
-            for text in messages:
-                if not isinstance(text, str):
-                    raise InvalidArgumentError(f"messages must be str, got {type(text).__name__}")
-                batch.append(text)
-                chars += len(text)
-                if chars >= limit:
-                    put(("\n".join(batch), len(batch)))
-                    batch, chars = [], 0
-            if batch:
-                put(("\n".join(batch), len(batch)))
+            for item in join_batches(messages, limit):
+                put(item)
             for _ in procs:
                 put(None)
             builder: CountBuilder | None = None
