@@ -1,4 +1,4 @@
-"""The ``nextword`` command: train, suggest, info, and a live typing mode.
+"""The ``nextword`` command: train, suggest, info, a live typing mode and a local service.
 
 Errors are one line on stderr naming the bad value: exit status 2 for usage mistakes
 (unknown option, λ out of range), 1 for data problems (unreadable corpus, damaged model).
@@ -52,6 +52,16 @@ def _positive(text: str) -> int:
         raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}") from None
     if value < 1:
         raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text}")
+    return value
+
+
+def _seconds(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number of seconds, got {text!r}") from None
+    if not 0.0 <= value < 1e6:
+        raise argparse.ArgumentTypeError(f"expected a number of seconds from 0 to 1e6, got {text}")
     return value
 
 
@@ -157,6 +167,20 @@ def _parser() -> _Parser:
     ex.add_argument("model")
     ex.add_argument("--arpa", required=True, metavar="FILE", help="write the ARPA back-off text (.gz ok)")
     ex.add_argument("--lam", type=_lam, default=None, help="override the model's λ")
+
+    sv = sub.add_parser("serve", help="answer suggest/learn/forget requests over a local socket (JSON lines)")
+    sv.add_argument("model")
+    where = sv.add_mutually_exclusive_group()
+    where.add_argument("--socket", metavar="PATH", help="Unix socket to listen on (default $XDG_RUNTIME_DIR/nextword.sock, else ./nextword.sock)")
+    where.add_argument("--tcp", metavar="HOST:PORT", help="listen on TCP instead, loopback only (port 0 = any free port)")
+    sv.add_argument("--allow-non-loopback", action="store_true", help="let --tcp listen on a non-loopback address (no authentication!)")
+    sv.add_argument("--users", metavar="DIR", help="keep one personal layer file per user here (none: personal requests are refused)")
+    sv.add_argument("--max-line-bytes", type=_positive, default=64 * 1024, help="longest request line (default %(default)s)")
+    sv.add_argument("--request-timeout", type=_seconds, default=10.0, help="seconds to finish sending a request (default %(default)s)")
+    sv.add_argument("--idle-timeout", type=_seconds, default=0.0, help="close silent connections after this many seconds (default 0 = never)")
+    sv.add_argument("--max-clients", type=_positive, default=64, help="simultaneous connections (default %(default)s)")
+    sv.add_argument("--max-k", type=_positive, default=50, help="largest k a request may ask for (default %(default)s)")
+    sv.add_argument("--grace", type=_seconds, default=5.0, help="seconds a stop waits for requests in progress (default %(default)s)")
 
     lv = sub.add_parser("live", help="type in the terminal and watch suggestions update on every key")
     lv.add_argument("model")
@@ -567,6 +591,38 @@ def _cmd_export(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_serve(args: argparse.Namespace) -> int:
+    from .serve import ServeLimits, default_socket_path, listen_tcp, listen_unix, parse_host_port, run_server
+
+    limits = ServeLimits(
+        max_line_bytes=args.max_line_bytes,
+        request_timeout=args.request_timeout,
+        idle_timeout=args.idle_timeout,
+        max_clients=args.max_clients,
+        max_k=args.max_k,
+        grace=args.grace,
+    )
+    if args.allow_non_loopback and not args.tcp:
+        raise UsageError("--allow-non-loopback only applies to --tcp")
+    model = load(args.model)
+    if args.tcp:
+        host, port = parse_host_port(args.tcp)
+        listener = listen_tcp(host, port, allow_non_loopback=args.allow_non_loopback)
+    else:
+        listener = listen_unix(args.socket or default_socket_path())
+
+    def ready(address: dict[str, Any]) -> None:
+        # one JSON line, flushed: scripts and tests read the real address (e.g. for port 0) from it
+        print(json.dumps({"event": "ready", **address, "pid": os.getpid(), "model": args.model}), flush=True)
+
+    report = run_server(model, listener, users_dir=args.users, limits=limits, on_ready=ready)
+    try:
+        print(json.dumps({"event": "stopped", **report}), flush=True)
+    except OSError:
+        pass  # whoever started us stopped reading: the stop itself succeeded
+    return 0
+
+
 def _cmd_live(args: argparse.Namespace) -> int:
     from ._live import run_live
 
@@ -590,6 +646,7 @@ def main(argv: Sequence[str] | None = None) -> int:
             "export": _cmd_export,
             "prune": _cmd_prune,
             "live": _cmd_live,
+            "serve": _cmd_serve,
         }[args.command]
         return handler(args)
     except UsageError as e:

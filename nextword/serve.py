@@ -1,0 +1,713 @@
+"""A local suggestion service: one shared model, per-user personal layers, line-delimited JSON.
+
+Programs not written in Python (input-method engines in C or C++, desktop applications)
+reach a model through this small service instead of embedding the interpreter. It
+listens on a Unix socket (or on loopback TCP), reads one JSON object per line and
+answers each with one JSON object per line; the protocol is specified in
+``docs/PROTOCOL.md``.
+
+Design, and why:
+
+- **One model, loaded once.** A :class:`~nextword.Model` is read-only and memory-mapped,
+  so every connection thread shares it without locking.
+- **Personal layers per user,** one ``<user>.nwp`` file each under the users directory,
+  created on the user's first change (``learn``/``block``). A
+  :class:`~nextword.personal.PersonalLayer` saves itself atomically on every change and
+  has its own lock, so concurrent requests for one user are safe. User names are
+  checked strictly (never a path) before they reach the file system.
+- **A thread per connection.** Suggest calls take tens of microseconds, so the simple
+  model is enough; connections are capped (``max_clients``) so a flood cannot exhaust
+  threads.
+- **Nothing a client sends can stop the server or its own connection:** malformed JSON,
+  wrong types, oversized lines (the rest of the line is discarded, the connection goes
+  on), half-sent requests (a deadline closes them), abrupt disconnects — each is an
+  error object on the same connection or a closed connection, never a crash.
+- **Clean stop** on :meth:`Server.stop` (the CLI calls it on SIGTERM/SIGINT): stop
+  accepting, let requests already received finish within a grace period, save every
+  personal layer, remove the Unix socket file.
+"""
+
+from __future__ import annotations
+
+import errno
+import ipaddress
+import json
+import os
+import re
+import select
+import socket
+import stat
+import threading
+import time
+from dataclasses import asdict, dataclass
+from pathlib import Path
+from typing import Any, Callable
+
+from .errors import InvalidArgumentError, ModelFormatError
+from .model import Model
+from .personal import PersonalLayer
+
+__all__ = [
+    "PROTOCOL_VERSION",
+    "ERROR_CODES",
+    "OPS",
+    "ServeLimits",
+    "Server",
+    "default_socket_path",
+    "listen_tcp",
+    "listen_unix",
+    "parse_host_port",
+    "valid_user",
+]
+
+PROTOCOL_VERSION = 1
+
+#: Every error code a response can carry (documented in docs/PROTOCOL.md).
+ERROR_CODES = (
+    "bad_json",  # the line is not valid UTF-8 JSON
+    "not_object",  # valid JSON, but not an object
+    "unknown_op",  # "op" names no operation
+    "bad_field",  # a field is missing, unknown, of the wrong type or out of range ("field" names it)
+    "too_large",  # the line exceeded the server's max_line_bytes; the rest of it was discarded
+    "timeout",  # a request was started but not finished (no newline) within request_timeout
+    "users_disabled",  # a user was named but the server runs without a users directory
+    "user_layer",  # the user's layer file could not be read or written
+    "busy",  # too many connections: this one is closed after the error
+    "internal",  # a bug: the request failed unexpectedly (the connection stays usable)
+)
+
+OPS = ("suggest", "learn", "forget", "block", "unblock", "info")
+
+_USER_RE = re.compile(r"[a-z0-9_][a-z0-9_.-]{0,63}")
+_LAYER_SUFFIX = ".nwp"
+
+
+def valid_user(name: object) -> bool:
+    """Whether ``name`` is an acceptable user name: it becomes a file name, so it must never be a path.
+
+    1-64 characters from ``a-z 0-9 _ . -``, not starting with ``.`` or ``-`` (so never
+    ``..``, a hidden file or an option-like name). Lowercase only, so two names never
+    share one file on a case-insensitive file system.
+    """
+    return isinstance(name, str) and _USER_RE.fullmatch(name) is not None
+
+
+@dataclass(frozen=True)
+class ServeLimits:
+    """Limits that protect the server from clients; reported by the ``info`` operation.
+
+    ``max_line_bytes``: longest request line (without its newline). ``request_timeout``:
+    seconds a started request may take to arrive completely (also bounds writing an
+    answer to a client that does not read). ``idle_timeout``: seconds a connection may
+    stay silent between requests (0 = forever: an input method keeps one connection
+    open). ``max_clients``: simultaneous connections. ``max_k``: largest ``k``.
+    ``grace``: seconds a stop waits for requests already received.
+    """
+
+    max_line_bytes: int = 64 * 1024
+    request_timeout: float = 10.0
+    idle_timeout: float = 0.0
+    max_clients: int = 64
+    max_k: int = 50
+    grace: float = 5.0
+
+    def __post_init__(self) -> None:
+        for name in ("max_line_bytes", "max_clients", "max_k"):
+            value = getattr(self, name)
+            if isinstance(value, bool) or not isinstance(value, int) or value < 1:
+                raise InvalidArgumentError(f"{name} must be an integer >= 1, got {value!r}")
+        if self.max_line_bytes < 256:
+            raise InvalidArgumentError(f"max_line_bytes must be at least 256, got {self.max_line_bytes}")
+        for name in ("request_timeout", "grace"):
+            value = getattr(self, name)
+            if isinstance(value, bool) or not isinstance(value, (int, float)) or not 0 < value < 1e6:
+                raise InvalidArgumentError(f"{name} must be a number of seconds > 0, got {value!r}")
+        t = self.idle_timeout
+        if isinstance(t, bool) or not isinstance(t, (int, float)) or not 0 <= t < 1e9:
+            raise InvalidArgumentError(f"idle_timeout must be a number of seconds >= 0 (0 = none), got {t!r}")
+
+
+class RequestError(Exception):
+    """A request the server refuses; becomes ``{"ok": false, "error": {...}}`` on the wire."""
+
+    def __init__(self, code: str, message: str, field: str | None = None) -> None:
+        super().__init__(message)
+        assert code in ERROR_CODES
+        self.code = code
+        self.message = message
+        self.field = field
+
+    def as_dict(self) -> dict[str, Any]:
+        err: dict[str, Any] = {"code": self.code, "message": self.message}
+        if self.field is not None:
+            err["field"] = self.field
+        return err
+
+
+def _show(value: object, limit: int = 60) -> str:
+    """A bad value for an error message: JSON spelling, shortened so errors stay one line."""
+    try:
+        text = json.dumps(value, ensure_ascii=False)
+    except (TypeError, ValueError):
+        text = repr(value)
+    return text if len(text) <= limit else text[: limit - 1] + "…"
+
+
+def _no_constants(name: str) -> Any:
+    raise ValueError(f"{name} is not valid JSON")
+
+
+def error_response(rid: Any, err: RequestError) -> dict[str, Any]:
+    return {"id": rid, "ok": False, "error": err.as_dict()}
+
+
+def default_socket_path() -> str:
+    """``$XDG_RUNTIME_DIR/nextword.sock`` (a per-user private directory) if set, else ``./nextword.sock``."""
+    runtime = os.environ.get("XDG_RUNTIME_DIR")
+    if runtime and os.path.isdir(runtime):
+        return os.path.join(runtime, "nextword.sock")
+    return os.path.join(os.curdir, "nextword.sock")
+
+
+def listen_unix(path: str | os.PathLike[str]) -> socket.socket:
+    """A listening Unix socket at ``path``, readable and writable by the owner only.
+
+    A stale socket file (nobody accepts on it) is replaced; a live one (``OSError``
+    EADDRINUSE), or any other kind of file (``FileExistsError``), is left alone. A path
+    too long for a socket address raises :class:`~nextword.InvalidArgumentError`.
+    """
+    name = os.fspath(path)
+    if len(os.fsencode(name)) > 100:
+        raise InvalidArgumentError(f"socket path is too long for a Unix socket ({len(os.fsencode(name))} bytes, at most 100): {name}")
+    try:
+        st = os.lstat(name)
+    except FileNotFoundError:
+        pass
+    else:
+        if not stat.S_ISSOCK(st.st_mode):
+            raise FileExistsError(errno.EEXIST, "exists and is not a socket; refusing to replace it", name)
+        probe = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+        try:
+            probe.settimeout(1.0)
+            probe.connect(name)
+        except (ConnectionRefusedError, FileNotFoundError):
+            os.unlink(name)  # stale: left behind by a server that was killed
+        except OSError:
+            pass  # cannot tell; bind below reports the address in use
+        else:
+            raise OSError(errno.EADDRINUSE, "another server is already listening on this socket", name)
+        finally:
+            probe.close()
+    sock = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+    old = os.umask(0o177)  # the socket file is created 0600: personal data goes through it
+    try:
+        sock.bind(name)
+    except OSError:
+        sock.close()
+        raise
+    finally:
+        os.umask(old)
+    sock.listen(128)
+    return sock
+
+
+def parse_host_port(text: str) -> tuple[str, int]:
+    """``HOST:PORT`` or ``[IPv6]:PORT`` → (host, port); port 0 means any free port."""
+    m = re.fullmatch(r"\[([^\]]+)\]:(\d{1,5})|([^:\[\]]+):(\d{1,5})", text)
+    if not m:
+        raise InvalidArgumentError(f"expected HOST:PORT (e.g. 127.0.0.1:7070 or [::1]:0), got {text!r}")
+    host = m.group(1) or m.group(3)
+    port = int(m.group(2) or m.group(4))
+    if port > 65535:
+        raise InvalidArgumentError(f"port must be 0-65535, got {port}")
+    return host, port
+
+
+def listen_tcp(host: str, port: int, *, allow_non_loopback: bool = False) -> socket.socket:
+    """A listening TCP socket; refuses any address that is not loopback unless explicitly allowed.
+
+    The protocol has no authentication or encryption: on a non-loopback address anyone
+    who can reach the port can read suggestions and change a user's layer.
+    """
+    try:
+        infos = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM, flags=socket.AI_PASSIVE)
+    except socket.gaierror as e:
+        raise InvalidArgumentError(f"cannot resolve host {host!r}: {e.strerror}") from None
+    if not allow_non_loopback:
+        for info in infos:
+            addr = ipaddress.ip_address(str(info[4][0]).split("%", 1)[0])
+            if not addr.is_loopback:
+                raise InvalidArgumentError(
+                    f"host {host!r} is not a loopback address ({addr}); the protocol has no authentication, "
+                    "pass --allow-non-loopback to listen there anyway"
+                )
+    family, socktype, proto, _, sockaddr = infos[0]
+    sock = socket.socket(family, socktype, proto)
+    try:
+        sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+        sock.bind(sockaddr)
+        sock.listen(128)
+    except OSError as e:
+        sock.close()
+        raise OSError(e.errno, f"cannot listen on {host}:{port}: {e.strerror or e}") from None
+    return sock
+
+
+class Server:
+    """Serves one model (and the users' personal layers) on a listening socket.
+
+    ``serve_forever()`` blocks until :meth:`stop` is called (from any thread or a signal
+    handler), then finishes the requests already received (bounded by ``limits.grace``),
+    saves every open personal layer, closes the socket and removes a Unix socket's file.
+    """
+
+    def __init__(
+        self,
+        model: Model,
+        listener: socket.socket,
+        *,
+        users_dir: str | os.PathLike[str] | None = None,
+        limits: ServeLimits | None = None,
+    ) -> None:
+        self.model = model
+        self.limits = limits or ServeLimits()
+        self.users_dir = None if users_dir is None else Path(users_dir)
+        if self.users_dir is not None:
+            self.users_dir.mkdir(parents=True, exist_ok=True)
+            if not os.access(self.users_dir, os.W_OK | os.X_OK):
+                raise InvalidArgumentError(f"users directory {self.users_dir} is not writable")
+        self._listener = listener
+        self._unix_path: str | None = None
+        if listener.family == socket.AF_UNIX:
+            name = listener.getsockname()
+            self._unix_path = name if isinstance(name, str) and name else None
+        self._wake_r, self._wake_w = os.pipe()
+        os.set_blocking(self._wake_w, False)
+        self._stopping = threading.Event()
+        self._stopped = threading.Event()
+        self._layers: dict[str, PersonalLayer] = {}
+        self._layers_lock = threading.Lock()
+        self._conns: dict[threading.Thread, socket.socket] = {}
+        self._conns_lock = threading.Lock()
+        self.requests = 0  # answered requests, for the stop report (approximate under threads)
+        self.model_info = {k: v for k, v in model.info().items() if k != "corpus"}
+
+    # -- addresses ---------------------------------------------------------------------------
+
+    def address(self) -> dict[str, Any]:
+        """Where clients connect: ``{"socket": path}`` or ``{"tcp": "host:port", "host": ..., "port": ...}``."""
+        if self._listener.family == socket.AF_UNIX:
+            return {"socket": self._unix_path}
+        host, port = self._listener.getsockname()[:2]
+        shown = f"[{host}]:{port}" if ":" in host else f"{host}:{port}"
+        return {"tcp": shown, "host": host, "port": port}
+
+    # -- life cycle --------------------------------------------------------------------------
+
+    def stop(self) -> None:
+        """Ask the server to stop; safe from any thread and from a signal handler."""
+        self._stopping.set()
+        try:
+            os.write(self._wake_w, b"x")
+        except (BlockingIOError, OSError):
+            pass  # the pipe is already readable (or closed): everyone has been woken
+
+    def serve_forever(self, on_ready: Callable[[dict[str, Any]], None] | None = None) -> dict[str, Any]:
+        """Accept connections until :meth:`stop`; then shut down cleanly. Returns a small report."""
+        poller = select.poll()
+        poller.register(self._listener, select.POLLIN)
+        poller.register(self._wake_r, select.POLLIN)
+        if on_ready is not None:
+            on_ready(self.address())
+        try:
+            while not self._stopping.is_set():
+                events = poller.poll()
+                if self._stopping.is_set():
+                    break
+                if not any(fd == self._listener.fileno() for fd, _ in events):
+                    continue
+                try:
+                    conn, _ = self._listener.accept()
+                except OSError as e:
+                    if e.errno in (errno.EMFILE, errno.ENFILE, errno.ENOBUFS, errno.ENOMEM):
+                        time.sleep(0.05)  # out of descriptors: let connections finish
+                    continue
+                self._start_connection(conn)
+        finally:
+            report = self._shutdown()
+        return report
+
+    def _start_connection(self, conn: socket.socket) -> None:
+        with self._conns_lock:
+            busy = len(self._conns) >= self.limits.max_clients
+            if not busy:
+                t = threading.Thread(target=self._connection, args=(conn,), name="nextword-conn", daemon=True)
+                self._conns[t] = conn
+        if busy:
+            err = RequestError("busy", f"too many connections (max_clients = {self.limits.max_clients}); try again later")
+            try:
+                conn.settimeout(1.0)
+                conn.sendall(_encode(error_response(None, err)))
+            except OSError:
+                pass
+            conn.close()
+            return
+        t.start()
+
+    def _shutdown(self) -> dict[str, Any]:
+        self._stopping.set()
+        self.stop()
+        try:
+            self._listener.close()
+        finally:
+            if self._unix_path:
+                try:
+                    os.unlink(self._unix_path)
+                except FileNotFoundError:
+                    pass
+        deadline = time.monotonic() + self.limits.grace
+        with self._conns_lock:
+            threads = list(self._conns)
+        for t in threads:
+            t.join(max(0.0, deadline - time.monotonic()))
+        unfinished = sum(t.is_alive() for t in threads)
+        saved = self.flush()
+        if not unfinished:  # a thread still polling would see a closed (or reused) descriptor
+            os.close(self._wake_r)
+            os.close(self._wake_w)
+        self._stopped.set()
+        return {"requests": self.requests, "layers_saved": saved, "connections_cut": unfinished}
+
+    def flush(self) -> int:
+        """Save every open personal layer (under its own lock); returns how many were saved."""
+        with self._layers_lock:
+            layers = list(self._layers.values())
+        for layer in layers:
+            assert layer.path is not None
+            layer.save(layer.path)
+        return len(layers)
+
+    # -- one connection ------------------------------------------------------------------------
+
+    def _connection(self, conn: socket.socket) -> None:
+        lim = self.limits
+        try:
+            conn.settimeout(lim.request_timeout)  # bounds sendall to a client that does not read
+            poller = select.poll()
+            poller.register(conn, select.POLLIN)
+            poller.register(self._wake_r, select.POLLIN)
+            buf = bytearray()
+            discarding = False  # inside an oversized line: drop bytes up to the next newline
+            started: float | None = None  # when the current unfinished line began
+            last = time.monotonic()
+            while True:
+                out = bytearray()
+                while True:
+                    nl = buf.find(b"\n")
+                    if nl < 0:
+                        break
+                    line = bytes(buf[:nl])
+                    del buf[: nl + 1]
+                    if discarding:
+                        discarding = False
+                        continue
+                    if len(line) > lim.max_line_bytes:
+                        out += _encode(error_response(None, self._too_large()))
+                        continue
+                    answer = self.handle_line(line)
+                    if answer is not None:
+                        out += _encode(answer)
+                if len(buf) > lim.max_line_bytes:
+                    out += _encode(error_response(None, self._too_large()))
+                    buf.clear()
+                    discarding = True
+                if out:
+                    conn.sendall(out)
+                    last = time.monotonic()
+                partial = bool(buf) or discarding
+                if not partial:
+                    started = None
+                elif started is None:
+                    started = time.monotonic()
+                if self._stopping.is_set():
+                    return  # requests received so far are answered; a half-sent one is dropped
+                now = time.monotonic()
+                if partial:
+                    assert started is not None
+                    wait = started + lim.request_timeout - now
+                elif lim.idle_timeout > 0:
+                    wait = last + lim.idle_timeout - now
+                else:
+                    wait = None
+                if wait is not None and wait <= 0:
+                    if partial:
+                        err = RequestError(
+                            "timeout", f"request not completed within {lim.request_timeout:g} s (no newline); closing"
+                        )
+                        conn.sendall(_encode(error_response(None, err)))
+                    return
+                events = poller.poll(None if wait is None else max(1, int(wait * 1000) + 1))
+                if self._stopping.is_set():
+                    return
+                if not events:
+                    continue
+                data = conn.recv(65536)
+                if not data:
+                    return  # the client closed (possibly mid-request): nothing to answer
+                if discarding:
+                    nl = data.find(b"\n")
+                    if nl < 0:
+                        continue
+                    data = data[nl + 1 :]
+                    discarding = False
+                    started = None
+                if not buf:
+                    started = None
+                buf += data
+                last = time.monotonic()
+        except OSError:
+            pass  # reset, broken pipe or a client too slow to read its answers: drop the connection
+        finally:
+            conn.close()
+            with self._conns_lock:
+                self._conns.pop(threading.current_thread(), None)
+
+    def _too_large(self) -> RequestError:
+        return RequestError(
+            "too_large",
+            f"request line longer than {self.limits.max_line_bytes} bytes; the rest of the line is discarded",
+        )
+
+    # -- requests ------------------------------------------------------------------------------
+
+    def handle_line(self, line: bytes) -> dict[str, Any] | None:
+        """The answer to one request line (without its newline); ``None`` for a blank line."""
+        rid: Any = None
+        try:
+            try:
+                text = line.decode("utf-8")
+            except UnicodeDecodeError as e:
+                raise RequestError("bad_json", f"request is not valid UTF-8 (byte 0x{line[e.start]:02x} at offset {e.start})") from None
+            if not text.strip():
+                return None
+            try:
+                req = json.loads(text, parse_constant=_no_constants)
+            except json.JSONDecodeError as e:
+                raise RequestError("bad_json", f"malformed JSON at column {e.colno}: {e.msg}") from None
+            except (ValueError, RecursionError) as e:
+                msg = str(e) if isinstance(e, ValueError) else "nested too deeply"
+                raise RequestError("bad_json", f"malformed JSON: {msg}") from None
+            if not isinstance(req, dict):
+                raise RequestError("not_object", f"a request must be a JSON object, got {_json_type(req)}")
+            rid = req.get("id")
+            if not (rid is None or isinstance(rid, (str, int, float))):
+                bad = rid
+                rid = None
+                raise RequestError("bad_field", f"id must be a string, a number or null, got {_json_type(bad)}", "id")
+            op = req.get("op")
+            if op is None:
+                raise RequestError("bad_field", "missing field op (one of " + ", ".join(OPS) + ")", "op")
+            if not isinstance(op, str):
+                raise RequestError("bad_field", f"op must be a string, got {_show(op)}", "op")
+            handler = _HANDLERS.get(op)
+            if handler is None:
+                raise RequestError("unknown_op", f"unknown op {_show(op)}; known: {', '.join(OPS)}")
+            fields, fn = handler
+            for key in req:
+                if key not in fields and key not in ("id", "op"):
+                    raise RequestError("bad_field", f"unknown field {_show(key)} for op {op}", key)
+            result = fn(self, req)
+        except RequestError as e:
+            self.requests += 1
+            return error_response(rid, e)
+        except Exception as e:  # a bug must not take the connection down; report it instead
+            self.requests += 1
+            return error_response(rid, RequestError("internal", f"{type(e).__name__}: {e}"))
+        self.requests += 1
+        return {"id": rid, "ok": True, **result}
+
+    # field readers: each names the field and the bad value
+
+    def _user(self, req: dict[str, Any], *, required: bool) -> str | None:
+        if "user" not in req or req["user"] is None:
+            if required:
+                raise RequestError("bad_field", "missing field user", "user")
+            return None
+        name = req["user"]
+        if not valid_user(name):
+            raise RequestError(
+                "bad_field",
+                f"user must be 1-64 characters from a-z 0-9 _ . - (not starting with . or -), got {_show(name)}",
+                "user",
+            )
+        if self.users_dir is None:
+            raise RequestError("users_disabled", "this server keeps no personal layers (started without a users directory)", "user")
+        return name
+
+    def _layer(self, user: str, *, create: bool) -> PersonalLayer | None:
+        """The user's layer: cached, else loaded from its file, else (``create``) a new saved one."""
+        assert self.users_dir is not None
+        with self._layers_lock:
+            layer = self._layers.get(user)
+            if layer is not None:
+                return layer
+            path = self.users_dir / (user + _LAYER_SUFFIX)
+            try:
+                if path.exists():
+                    layer = PersonalLayer.load(self.model, path)
+                    layer.path = os.fspath(path)
+                elif create:
+                    layer = PersonalLayer.open(self.model, path)
+                else:
+                    return None
+            except ModelFormatError as e:
+                raise RequestError("user_layer", f"user {user}: {e}") from None
+            except OSError as e:
+                raise RequestError("user_layer", f"user {user}: cannot create the layer file: {e.strerror or e}") from None
+            self._layers[user] = layer
+            return layer
+
+
+def _json_type(value: object) -> str:
+    return {dict: "an object", list: "an array", str: "a string", bool: "a boolean", type(None): "null"}.get(
+        type(value), "a number"
+    )
+
+
+def _encode(obj: dict[str, Any]) -> bytes:
+    return (json.dumps(obj, ensure_ascii=False, separators=(",", ":"), allow_nan=False) + "\n").encode("utf-8")
+
+
+def _text(req: dict[str, Any], field: str) -> str:
+    if field not in req:
+        raise RequestError("bad_field", f"missing field {field}", field)
+    value = req[field]
+    if not isinstance(value, str):
+        raise RequestError("bad_field", f"{field} must be a string, got {_show(value)}", field)
+    return value
+
+
+def _word(req: dict[str, Any]) -> str:
+    word = _text(req, "word")
+    if not word.strip() or any(c.isspace() for c in word.strip()):
+        raise RequestError("bad_field", f"word must be one word (no spaces, not empty), got {_show(word)}", "word")
+    return word.strip()
+
+
+def _op_suggest(server: Server, req: dict[str, Any]) -> dict[str, Any]:
+    text = _text(req, "text")
+    k = req.get("k", 3)
+    if isinstance(k, bool) or not isinstance(k, int) or not 1 <= k <= server.limits.max_k:
+        raise RequestError("bad_field", f"k must be an integer from 1 to {server.limits.max_k}, got {_show(k)}", "k")
+    user = server._user(req, required=False)
+    layer = None if user is None else server._layer(user, create=False)
+    found = server.model.suggest(text, k) if layer is None else layer.suggest(text, k)
+    return {"suggestions": [{"word": s.word, "prob": s.prob} for s in found]}
+
+
+def _layer_state(user: str, layer: PersonalLayer | None) -> dict[str, Any]:
+    if layer is None:
+        return {"user": user, "messages": 0, "entries": 0, "weight": 0.0, "blocked": []}
+    return {
+        "user": user,
+        "messages": layer.messages,
+        "entries": layer.entries,
+        "weight": layer.weight,
+        "blocked": sorted(layer.blocklist),
+    }
+
+
+def _changing(server: Server, user: str, create: bool, change: Callable[[PersonalLayer], None]) -> dict[str, Any]:
+    layer = server._layer(user, create=create)
+    if layer is not None:
+        try:
+            change(layer)
+        except OSError as e:  # the change is applied in memory but could not be saved
+            raise RequestError("user_layer", f"user {user}: cannot save the layer file: {e.strerror or e}") from None
+    return _layer_state(user, layer)
+
+
+def _op_learn(server: Server, req: dict[str, Any]) -> dict[str, Any]:
+    text = _text(req, "text")
+    user = server._user(req, required=True)
+    assert user is not None
+    return _changing(server, user, True, lambda layer: layer.learn(text))
+
+
+def _op_forget(server: Server, req: dict[str, Any]) -> dict[str, Any]:
+    user = server._user(req, required=True)
+    assert user is not None
+    everything = req.get("all", False)
+    if not isinstance(everything, bool):
+        raise RequestError("bad_field", f"all must be true or false, got {_show(everything)}", "all")
+    if everything == ("word" in req):
+        raise RequestError("bad_field", "forget needs exactly one of word or all: true", "word")
+    if everything:
+        return _changing(server, user, False, lambda layer: layer.clear())
+    word = _word(req)
+    return _changing(server, user, False, lambda layer: layer.forget(word))
+
+
+def _op_block(server: Server, req: dict[str, Any]) -> dict[str, Any]:
+    word = _word(req)
+    user = server._user(req, required=True)
+    assert user is not None
+    return _changing(server, user, True, lambda layer: layer.block(word))
+
+
+def _op_unblock(server: Server, req: dict[str, Any]) -> dict[str, Any]:
+    word = _word(req)
+    user = server._user(req, required=True)
+    assert user is not None
+    return _changing(server, user, False, lambda layer: layer.unblock(word))
+
+
+def _op_info(server: Server, req: dict[str, Any]) -> dict[str, Any]:
+    from . import __version__
+
+    out: dict[str, Any] = {
+        "protocol": PROTOCOL_VERSION,
+        "version": __version__,
+        "model": server.model_info,
+        "limits": asdict(server.limits),
+        "users": server.users_dir is not None,
+    }
+    user = server._user(req, required=False)
+    if user is not None:
+        out["user"] = _layer_state(user, server._layer(user, create=False))
+    return out
+
+
+_HANDLERS: dict[str, tuple[frozenset[str], Callable[[Server, dict[str, Any]], dict[str, Any]]]] = {
+    "suggest": (frozenset({"text", "k", "user"}), _op_suggest),
+    "learn": (frozenset({"user", "text"}), _op_learn),
+    "forget": (frozenset({"user", "word", "all"}), _op_forget),
+    "block": (frozenset({"user", "word"}), _op_block),
+    "unblock": (frozenset({"user", "word"}), _op_unblock),
+    "info": (frozenset({"user"}), _op_info),
+}
+
+
+def run_server(
+    model: Model,
+    listener: socket.socket,
+    *,
+    users_dir: str | os.PathLike[str] | None,
+    limits: ServeLimits,
+    on_ready: Callable[[dict[str, Any]], None],
+) -> dict[str, Any]:
+    """Serve until SIGTERM or SIGINT (main thread only), then stop cleanly; returns the stop report."""
+    import signal
+
+    server = Server(model, listener, users_dir=users_dir, limits=limits)
+
+    def _on_signal(signum: int, frame: object) -> None:
+        server.stop()
+
+    old = {sig: signal.signal(sig, _on_signal) for sig in (signal.SIGTERM, signal.SIGINT)}
+    try:
+        return server.serve_forever(on_ready)
+    finally:
+        for sig, handler in old.items():
+            signal.signal(sig, handler)
+
