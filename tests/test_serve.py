@@ -1,0 +1,548 @@
+"""The local service: every operation answers what the in-process API answers, every bad request
+gets a documented error on a connection that keeps working, and a stop saves the users' layers.
+
+The oracle for each answer is the library itself (``Model.suggest`` and ``PersonalLayer``),
+called in this process on the same model file; the protocol is docs/PROTOCOL.md.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import random
+import shutil
+import signal
+import socket
+import subprocess
+import sys
+import tempfile
+import threading
+from collections.abc import Iterator
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Any
+
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+import nextword
+from nextword.personal import PersonalLayer
+from nextword.serve import ERROR_CODES, ServeLimits, Server, listen_tcp, listen_unix, valid_user
+
+ROOT = Path(__file__).resolve().parent.parent
+DEMO = ROOT / "examples" / "data" / "demo_messages.txt"
+WAIT = 60.0  # generous: the CI machine is shared and noisy; no test measures time
+
+
+@pytest.fixture(scope="module")
+def model_path(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    path = tmp_path_factory.mktemp("serve") / "demo.nwm"
+    nextword.train(DEMO, path)
+    return path
+
+
+@pytest.fixture(scope="module")
+def model(model_path: Path) -> nextword.Model:
+    return nextword.load(model_path)
+
+
+@pytest.fixture()
+def short_dir() -> Iterator[Path]:
+    """A short directory for socket files (a Unix socket path must stay under ~100 bytes)."""
+    d = Path(tempfile.mkdtemp(prefix="nws"))
+    yield d
+    shutil.rmtree(d, ignore_errors=True)
+
+
+def demo_queries(n: int, seed: int = 7) -> list[str]:
+    """Texts before a cursor: demo messages cut at random characters (next-word and completion queries)."""
+    lines = [ln for ln in DEMO.read_text(encoding="utf-8").splitlines() if ln.strip()]
+    rng = random.Random(seed)
+    out = []
+    for _ in range(n):
+        line = rng.choice(lines)
+        out.append(line[: rng.randint(0, len(line))])
+    return out
+
+
+class Client:
+    """A test client: one connection, one JSON line out, one JSON line in."""
+
+    def __init__(self, address: Path | tuple[str, int]) -> None:
+        if isinstance(address, Path):
+            self.sock = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+            self.sock.settimeout(WAIT)
+            self.sock.connect(str(address))
+        else:
+            self.sock = socket.create_connection(address, timeout=WAIT)
+        self.file = self.sock.makefile("rb")
+
+    def send_raw(self, data: bytes) -> None:
+        self.sock.sendall(data)
+
+    def read(self) -> dict[str, Any]:
+        line = self.file.readline()
+        assert line.endswith(b"\n"), f"connection closed, got {line!r}"
+        obj = json.loads(line)
+        assert isinstance(obj, dict)
+        return obj
+
+    def call(self, **req: Any) -> dict[str, Any]:
+        self.send_raw((json.dumps(req) + "\n").encode())
+        return self.read()
+
+    def close(self) -> None:
+        self.file.close()
+        self.sock.close()
+
+
+@contextmanager
+def running(model: nextword.Model, sock_dir: Path, users: Path | None, **limits: Any) -> Iterator[tuple[Server, Path]]:
+    path = sock_dir / "s.sock"
+    server = Server(model, listen_unix(path), users_dir=users, limits=ServeLimits(**limits))
+    report: dict[str, Any] = {}
+    t = threading.Thread(target=lambda: report.update(server.serve_forever()), daemon=True)
+    t.start()
+    try:
+        yield server, path
+    finally:
+        server.stop()
+        t.join(WAIT)
+    assert not t.is_alive(), "server did not stop"
+    assert not path.exists(), "socket file left behind"
+    assert report["connections_cut"] == 0
+
+
+def as_pairs(answer: dict[str, Any]) -> list[tuple[str, float]]:
+    assert answer["ok"] is True, answer
+    return [(s["word"], s["prob"]) for s in answer["suggestions"]]
+
+
+def expected(found: list[nextword.Suggestion]) -> list[tuple[str, float]]:
+    return [(s.word, s.prob) for s in found]
+
+
+# -- round trips -------------------------------------------------------------------------------
+
+
+def test_suggest_answers_equal_model_suggest(model: nextword.Model, short_dir: Path) -> None:
+    queries = demo_queries(300) + ["", "See you at the ", "Repair night on Th", "pri", "£5 for the tr", "ÉCOLE "]
+    with running(model, short_dir, None) as (_, path):
+        c = Client(path)
+        for i, q in enumerate(queries):
+            k = 1 + i % 6
+            answer = c.call(id=i, op="suggest", text=q, k=k)
+            assert answer["id"] == i
+            assert as_pairs(answer) == expected(model.suggest(q, k)), q  # exact floats: JSON keeps them
+        assert as_pairs(c.call(op="suggest", text="See you at the ")) == expected(model.suggest("See you at the ", 3))
+        c.close()
+
+
+def test_personal_ops_match_an_in_process_layer(model: nextword.Model, short_dir: Path, tmp_path: Path) -> None:
+    users = tmp_path / "users"
+    mine = PersonalLayer(model)  # fed the same operations in this process
+    msgs = ["Quarrington Lake ride on Sunday", "meet at Quarrington Lake", "Quarrington Lake again, bring the pump"]
+    texts = ["at Qu", "Quarrington ", "bring the p", "", "See you at the "]
+    with running(model, short_dir, users) as (_, path):
+        c = Client(path)
+        for n, m in enumerate(msgs, 1):
+            answer = c.call(id=f"l{n}", op="learn", user="ana", text=m)
+            mine.learn(m)
+            assert answer == {
+                "id": f"l{n}", "ok": True, "user": "ana", "messages": n, "entries": mine.entries,
+                "weight": mine.weight, "blocked": [],
+            }
+        assert (users / "ana.nwp").exists()
+        for q in texts:
+            assert as_pairs(c.call(op="suggest", user="ana", text=q, k=4)) == expected(mine.suggest(q, 4))
+        on_disk = PersonalLayer.load(model, users / "ana.nwp")  # every change is saved at once
+        assert [s.word for s in on_disk.suggest("at Qu", 4)] == [s.word for s in mine.suggest("at Qu", 4)]
+        assert any(s.word == "Quarrington" for s in mine.suggest("at Qu", 4))
+
+        answer = c.call(op="block", user="ana", word="Quarrington")
+        mine.block("Quarrington")
+        assert answer["blocked"] == ["quarrington"]
+        assert as_pairs(c.call(op="suggest", user="ana", text="at Qu", k=4)) == expected(mine.suggest("at Qu", 4))
+        c.call(op="unblock", user="ana", word="Quarrington")
+        mine.unblock("Quarrington")
+
+        answer = c.call(id=5, op="forget", user="ana", word="Lake")
+        mine.forget("Lake")
+        assert answer["ok"] and answer["entries"] == mine.entries
+        for q in texts:
+            assert as_pairs(c.call(op="suggest", user="ana", text=q, k=4)) == expected(mine.suggest(q, 4))
+
+        info = c.call(id="i", op="info", user="ana")
+        assert info["id"] == "i" and info["protocol"] == 1 and info["users"] is True
+        assert info["model"]["vocabulary"] == model.n_words and info["model"]["bigrams"] == model.n_bigrams
+        assert info["limits"]["max_line_bytes"] == 64 * 1024
+        assert info["user"]["messages"] == mine.messages == 3
+
+        answer = c.call(op="forget", user="ana", all=True)
+        mine.clear()
+        assert answer["entries"] == 0
+        assert as_pairs(c.call(op="suggest", user="ana", text="at Qu", k=4)) == expected(mine.suggest("at Qu", 4))
+        assert PersonalLayer.load(model, users / "ana.nwp").entries == 0
+        c.close()
+
+
+def test_unknown_user_gets_base_answers_and_no_file(model: nextword.Model, short_dir: Path, tmp_path: Path) -> None:
+    users = tmp_path / "users"
+    with running(model, short_dir, users) as (_, path):
+        c = Client(path)
+        for q in demo_queries(30, seed=3):
+            assert as_pairs(c.call(op="suggest", user="nobody", text=q)) == expected(model.suggest(q, 3))
+        assert c.call(op="forget", user="nobody", word="the")["entries"] == 0
+        assert c.call(op="info", user="nobody")["user"]["messages"] == 0
+        c.close()
+    assert list(users.iterdir()) == []  # only learn and block create a layer
+
+
+# -- bad requests ------------------------------------------------------------------------------
+
+BAD: list[tuple[bytes, str, str | None, Any]] = [
+    # (request line, error code, field named, id echoed)
+    (b"{bad", "bad_json", None, None),
+    (b'{"op": "suggest", "text": "a"', "bad_json", None, None),
+    (b'{"id": 1, "op": "suggest", "text": NaN}', "bad_json", None, None),
+    (b"\xff\xfe{}", "bad_json", None, None),
+    (b"[" * 5000 + b"]" * 5000, "bad_json", None, None),
+    (b"[1, 2]", "not_object", None, None),
+    (b'"suggest"', "not_object", None, None),
+    (b"42", "not_object", None, None),
+    (b'{"id": 3, "op": "sugest", "text": "a"}', "unknown_op", None, 3),
+    (b'{"id": 4, "text": "a"}', "bad_field", "op", 4),
+    (b'{"id": 5, "op": 7}', "bad_field", "op", 5),
+    (b'{"id": {"x": 1}, "op": "info"}', "bad_field", "id", None),
+    (b'{"id": 6, "op": "suggest"}', "bad_field", "text", 6),
+    (b'{"id": 7, "op": "suggest", "text": ["a"]}', "bad_field", "text", 7),
+    (b'{"id": 8, "op": "suggest", "text": "a", "k": 0}', "bad_field", "k", 8),
+    (b'{"id": 9, "op": "suggest", "text": "a", "k": true}', "bad_field", "k", 9),
+    (b'{"id": 10, "op": "suggest", "text": "a", "k": 2.5}', "bad_field", "k", 10),
+    (b'{"id": 11, "op": "suggest", "text": "a", "k": 51}', "bad_field", "k", 11),
+    (b'{"id": 12, "op": "suggest", "txt": "a"}', "bad_field", "txt", 12),
+    (b'{"id": 13, "op": "learn", "user": "../etc/passwd", "text": "a"}', "bad_field", "user", 13),
+    (b'{"id": 14, "op": "learn", "user": ".hidden", "text": "a"}', "bad_field", "user", 14),
+    (b'{"id": 15, "op": "learn", "user": "Ana", "text": "a"}', "bad_field", "user", 15),
+    (b'{"id": 16, "op": "learn", "user": "", "text": "a"}', "bad_field", "user", 16),
+    (b'{"id": 17, "op": "learn", "user": 5, "text": "a"}', "bad_field", "user", 17),
+    (b'{"id": 18, "op": "learn", "text": "a"}', "bad_field", "user", 18),
+    (b'{"id": 19, "op": "learn", "user": "ana"}', "bad_field", "text", 19),
+    (b'{"id": 20, "op": "forget", "user": "ana"}', "bad_field", "word", 20),
+    (b'{"id": 21, "op": "forget", "user": "ana", "word": "a", "all": true}', "bad_field", "word", 21),
+    (b'{"id": 22, "op": "forget", "user": "ana", "word": "two words"}', "bad_field", "word", 22),
+    (b'{"id": 23, "op": "forget", "user": "ana", "all": "yes"}', "bad_field", "all", 23),
+    (b'{"id": 24, "op": "block", "user": "ana", "word": ""}', "bad_field", "word", 24),
+    (b'{"id": "x' + b"y" * 100 + b'", "op": "suggest", "text": 3}', "bad_field", "text", "x" + "y" * 100),
+]
+
+
+def test_bad_requests_get_documented_errors_and_the_connection_survives(
+    model: nextword.Model, short_dir: Path, tmp_path: Path
+) -> None:
+    with running(model, short_dir, tmp_path / "users") as (_, path):
+        c = Client(path)
+        for line, code, field, rid in BAD:
+            c.send_raw(line + b"\n")
+            answer = c.read()
+            assert answer["ok"] is False and answer["id"] == rid, (line, answer)
+            err = answer["error"]
+            assert err["code"] == code and code in ERROR_CODES, (line, answer)
+            assert err.get("field") == field, (line, answer)
+            assert isinstance(err["message"], str) and "\n" not in err["message"]
+            assert as_pairs(c.call(op="suggest", text="See you at the ")) == expected(model.suggest("See you at the "))
+        # the bad value is named in the message
+        answer = c.call(op="suggest", text="a", k=-3)
+        assert "-3" in answer["error"]["message"]
+        assert "../x" in c.call(op="learn", user="../x", text="a")["error"]["message"]
+        c.send_raw(b"\n  \n")  # blank lines are ignored, not answered
+        assert c.call(id="after", op="info")["id"] == "after"
+        c.close()
+    assert not (tmp_path / "users" / "ana.nwp").exists()  # no bad request changed anything
+
+
+def test_personal_requests_without_a_users_directory(model: nextword.Model, short_dir: Path) -> None:
+    with running(model, short_dir, None) as (_, path):
+        c = Client(path)
+        for req in ({"op": "learn", "user": "ana", "text": "hi"}, {"op": "suggest", "user": "ana", "text": "a"}):
+            answer = c.call(id=1, **req)
+            assert answer["error"]["code"] == "users_disabled" and answer["error"]["field"] == "user"
+        assert c.call(op="info")["users"] is False
+        c.close()
+
+
+def test_damaged_user_layer_is_reported_and_kept(model: nextword.Model, short_dir: Path, tmp_path: Path) -> None:
+    users = tmp_path / "users"
+    users.mkdir()
+    damaged = b"\x89NWP\r\n\x1a\n" + b"\x00" * 5
+    (users / "bo.nwp").write_bytes(damaged)
+    with running(model, short_dir, users) as (_, path):
+        c = Client(path)
+        for req in ({"op": "learn", "user": "bo", "text": "hi"}, {"op": "suggest", "user": "bo", "text": "a"}):
+            answer = c.call(id="d", **req)
+            assert answer["error"]["code"] == "user_layer" and "bo" in answer["error"]["message"]
+        assert c.call(op="learn", user="cy", text="hello there")["messages"] == 1  # others unaffected
+        c.close()
+    assert (users / "bo.nwp").read_bytes() == damaged  # never replaced by an empty layer
+
+
+# -- framing: size limit, half-sent and abandoned requests ----------------------------------------
+
+
+def test_oversized_request_then_a_good_one_on_the_same_connection(model: nextword.Model, short_dir: Path) -> None:
+    with running(model, short_dir, None, max_line_bytes=256) as (_, path):
+        c = Client(path)
+        # a line of exactly the limit is accepted, one byte more is refused (the newline is not counted)
+        base = b'{"id": 1, "op": "suggest", "text": "'
+        fit = base + b"x" * (256 - len(base) - 2) + b'"}'
+        assert len(fit) == 256
+        c.send_raw(fit + b"\n")
+        assert c.read()["ok"] is True
+        over = base + b"x" * (257 - len(base) - 2) + b'"}'
+        c.send_raw(over + b"\n")
+        assert c.read()["error"]["code"] == "too_large"
+        # a huge line arriving in pieces, its newline much later; then a good request right behind it
+        c.send_raw(b'{"id": 2, "op": "suggest", "text": "' + b"y" * 100_000)
+        assert c.read()["error"]["code"] == "too_large"  # answered before the line ends
+        c.send_raw(b"z" * 50_000)
+        c.send_raw(b'"}\n{"id": 3, "op": "suggest", "text": "See you at the "}\n')
+        answer = c.read()
+        assert answer["id"] == 3 and as_pairs(answer) == expected(model.suggest("See you at the "))
+        c.close()
+
+
+def test_half_sent_and_abandoned_requests_do_not_disturb_others(model: nextword.Model, short_dir: Path) -> None:
+    with running(model, short_dir, None, request_timeout=0.5) as (_, path):
+        steady = Client(path)
+        assert steady.call(id=0, op="info")["ok"]
+        # half a request, then the client disconnects
+        a = Client(path)
+        a.send_raw(b'{"id": 1, "op": "sugg')
+        a.close()
+        # a full request, disconnecting before reading the answer
+        b = Client(path)
+        b.send_raw(b'{"id": 2, "op": "suggest", "text": "the "}\n' * 200)
+        b.sock.shutdown(socket.SHUT_RDWR)
+        b.close()
+        # half a request, then silence: the server answers "timeout" and closes this connection
+        slow = Client(path)
+        slow.send_raw(b'{"id": 3, "op": "suggest", "te')
+        answer = slow.read()
+        assert answer["error"]["code"] == "timeout" and answer["id"] is None
+        assert slow.file.readline() == b""  # closed by the server
+        slow.close()
+        for q in demo_queries(20, seed=11):
+            assert as_pairs(steady.call(op="suggest", text=q)) == expected(model.suggest(q, 3))
+        fresh = Client(path)
+        assert fresh.call(id=9, op="info")["id"] == 9
+        fresh.close()
+        steady.close()
+
+
+def test_pipelined_requests_are_answered_in_order(model: nextword.Model, short_dir: Path) -> None:
+    queries = demo_queries(100, seed=5)
+    with running(model, short_dir, None) as (_, path):
+        c = Client(path)
+        c.send_raw(b"".join((json.dumps({"id": i, "op": "suggest", "text": q}) + "\n").encode() for i, q in enumerate(queries)))
+        for i, q in enumerate(queries):
+            answer = c.read()
+            assert answer["id"] == i and as_pairs(answer) == expected(model.suggest(q, 3))
+        c.close()
+
+
+# -- concurrency -------------------------------------------------------------------------------
+
+
+def test_concurrent_clients_all_get_correct_answers(model: nextword.Model, short_dir: Path, tmp_path: Path) -> None:
+    wrong: list[str] = []
+    learned: list[int] = []
+
+    def work(n: int) -> None:
+        c = Client(path)
+        try:
+            for i, q in enumerate(demo_queries(150, seed=100 + n)):
+                answer = c.call(id=f"{n}:{i}", op="suggest", text=q, k=1 + i % 4)
+                if answer["id"] != f"{n}:{i}" or as_pairs(answer) != expected(model.suggest(q, 1 + i % 4)):
+                    wrong.append(q)
+            for i in range(5):  # every thread also learns for one shared user
+                learned.append(c.call(op="learn", user="shared", text=f"thread {n} message {i} about the tyre levers")["messages"])
+        finally:
+            c.close()
+
+    with running(model, short_dir, tmp_path / "users") as (_, path):
+        threads = [threading.Thread(target=work, args=(n,)) for n in range(8)]
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join(WAIT)
+        assert not any(t.is_alive() for t in threads)
+        assert wrong == []
+        assert sorted(learned) == list(range(1, 41))  # each learn saw a distinct message count: none lost
+    assert PersonalLayer.load(model, tmp_path / "users" / "shared.nwp").messages == 40
+
+
+def test_connections_beyond_the_cap_get_busy(model: nextword.Model, short_dir: Path) -> None:
+    with running(model, short_dir, None, max_clients=2) as (_, path):
+        a, b = Client(path), Client(path)
+        assert a.call(op="info")["ok"] and b.call(op="info")["ok"]  # both are being served
+        c = Client(path)
+        assert c.read()["error"]["code"] == "busy"
+        assert c.file.readline() == b""
+        c.close()
+        a.close()
+        assert b.call(id=1, op="suggest", text="the ")["ok"]
+        b.close()
+
+
+# -- names and addresses -------------------------------------------------------------------------
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.text(min_size=0, max_size=70))
+def test_accepted_user_names_stay_inside_the_users_directory(name: str) -> None:
+    if valid_user(name):
+        users = Path("/srv/users")
+        target = (users / (name + ".nwp")).resolve()
+        assert target.parent == users.resolve() and "/" not in name and name not in (".", "..")
+        assert name == name.lower() and 1 <= len(name) <= 64
+
+
+def test_user_name_rule_examples() -> None:
+    assert all(valid_user(n) for n in ("ana", "user_7", "a.b-c", "0", "x" * 64))
+    assert not any(valid_user(n) for n in ("", "..", ".", "-rf", "a/b", "Ana", "x" * 65, "a b", "é", None, 3))
+
+
+def test_tcp_refuses_non_loopback_hosts() -> None:
+    with pytest.raises(nextword.InvalidArgumentError, match="0.0.0.0"):
+        listen_tcp("0.0.0.0", 0)
+
+
+def test_unix_socket_path_that_is_a_file_is_left_alone(short_dir: Path) -> None:
+    f = short_dir / "s.sock"
+    f.write_text("not a socket")
+    with pytest.raises(FileExistsError):
+        listen_unix(f)
+    assert f.read_text() == "not a socket"
+
+
+def test_stale_socket_file_is_replaced(model: nextword.Model, short_dir: Path) -> None:
+    path = short_dir / "s.sock"
+    old = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+    old.bind(str(path))  # bound, never listening: what a killed server leaves behind
+    old.close()
+    assert path.exists()
+    with running(model, short_dir, None) as (_, p):
+        c = Client(p)
+        assert c.call(op="info")["ok"]
+        c.close()
+
+
+# -- the command: subprocess, signals, restart, TCP ---------------------------------------------------
+
+
+def start(*args: str) -> tuple[subprocess.Popen[str], dict[str, Any]]:
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "nextword", "serve", *args],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env,
+    )
+    assert proc.stdout is not None
+    line = proc.stdout.readline()  # blocks until the server is ready (or has failed)
+    if not line:
+        proc.wait(WAIT)
+        raise AssertionError(f"server did not start: {proc.stderr.read() if proc.stderr else ''}")
+    ready = json.loads(line)
+    assert ready["event"] == "ready" and ready["pid"] == proc.pid
+    return proc, ready
+
+
+def stop(proc: subprocess.Popen[str], sig: int) -> dict[str, Any]:
+    proc.send_signal(sig)
+    out, err = proc.communicate(timeout=WAIT)
+    assert proc.returncode == 0, err
+    assert err == ""
+    return json.loads(out.splitlines()[-1])
+
+
+def test_sigterm_saves_layers_removes_socket_and_restart_keeps_them(
+    model_path: Path, model: nextword.Model, short_dir: Path, tmp_path: Path
+) -> None:
+    sock, users = short_dir / "s.sock", tmp_path / "users"
+    proc, ready = start(str(model_path), "--socket", str(sock), "--users", str(users))
+    try:
+        assert ready["socket"] == str(sock)
+        assert sock.exists() and (sock.stat().st_mode & 0o777) == 0o600  # personal data: owner only
+        c = Client(sock)
+        for m in ["Zorbington Lane ride", "the Zorbington Lane shop", "Zorbington Lane at noon"]:
+            assert c.call(op="learn", user="ana", text=m)["ok"]
+        before = as_pairs(c.call(op="suggest", user="ana", text="at Zo"))
+        c.close()
+    finally:
+        report = stop(proc, signal.SIGTERM)
+    assert report == {"event": "stopped", "requests": 4, "layers_saved": 1, "connections_cut": 0}
+    assert not sock.exists()
+    assert before and before[0][0] == "Zorbington"  # a word the base model has never seen
+    assert model.suggest("at Zo") == [] or model.suggest("at Zo")[0].word != "Zorbington"
+
+    proc, _ = start(str(model_path), "--socket", str(sock), "--users", str(users))
+    try:
+        c = Client(sock)
+        after = as_pairs(c.call(op="suggest", user="ana", text="at Zo"))
+        assert c.call(op="info", user="ana")["user"]["messages"] == 3
+        c.close()
+    finally:
+        stop(proc, signal.SIGINT)
+    assert after == before == expected(PersonalLayer.load(model, users / "ana.nwp").suggest("at Zo"))
+
+
+def test_tcp_on_loopback_port_zero(model_path: Path, model: nextword.Model) -> None:
+    proc, ready = start(str(model_path), "--tcp", "127.0.0.1:0")
+    try:
+        assert ready["host"] == "127.0.0.1" and ready["port"] > 0 and ready["tcp"] == f"127.0.0.1:{ready['port']}"
+        c = Client(("127.0.0.1", ready["port"]))
+        for q in demo_queries(20, seed=9):
+            assert as_pairs(c.call(op="suggest", text=q, k=5)) == expected(model.suggest(q, 5))
+        c.close()
+    finally:
+        report = stop(proc, signal.SIGTERM)
+    assert report["requests"] == 20
+
+
+def run_cli(*args: str) -> subprocess.CompletedProcess[str]:
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    return subprocess.run([sys.executable, "-m", "nextword", "serve", *args], capture_output=True, text=True, env=env, timeout=WAIT)
+
+
+def test_command_errors_are_one_line_with_exit_codes(model_path: Path, short_dir: Path) -> None:
+    cases = [
+        ((str(model_path), "--tcp", "0.0.0.0:0"), 2, "0.0.0.0"),
+        ((str(model_path), "--tcp", "localhost"), 2, "'localhost'"),
+        ((str(model_path), "--tcp", "127.0.0.1:0", "--socket", str(short_dir / "a")), 2, "--socket"),
+        ((str(model_path), "--socket", str(short_dir / "a"), "--allow-non-loopback"), 2, "--allow-non-loopback"),
+        ((str(model_path), "--max-line-bytes", "0"), 2, "0"),
+        ((str(model_path), "--request-timeout", "soon"), 2, "soon"),
+        ((str(model_path), "--socket", str(short_dir / ("d" * 120))), 2, "too long"),
+        ((str(short_dir / "missing.nwm"), "--socket", str(short_dir / "a")), 1, "missing.nwm"),
+    ]
+    (short_dir / "file").write_text("keep")
+    cases.append(((str(model_path), "--socket", str(short_dir / "file")), 1, "not a socket"))
+    for args, code, needle in cases:
+        r = run_cli(*args)
+        assert r.returncode == code, (args, r.stderr)
+        assert r.stdout == "" and len(r.stderr.splitlines()) == 1 and r.stderr.startswith("nextword: error:"), r.stderr
+        assert needle in r.stderr, (needle, r.stderr)
+    assert (short_dir / "file").read_text() == "keep"
+
+
+def test_a_second_server_on_a_live_socket_is_refused(model_path: Path, short_dir: Path) -> None:
+    sock = short_dir / "s.sock"
+    proc, _ = start(str(model_path), "--socket", str(sock))
+    try:
+        r = run_cli(str(model_path), "--socket", str(sock))
+        assert r.returncode == 1 and "already listening" in r.stderr
+        c = Client(sock)  # the first server still works
+        assert c.call(op="info")["ok"]
+        c.close()
+    finally:
+        stop(proc, signal.SIGTERM)
