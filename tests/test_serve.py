@@ -37,7 +37,7 @@ WAIT = 60.0  # generous: the CI machine is shared and noisy; no test measures ti
 
 @pytest.fixture(scope="module")
 def model_path(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    path = tmp_path_factory.mktemp("serve") / "demo.nwm"
+    path = tmp_path_factory.mktemp("serve") / "demo.nwm"  # the name docs/PROTOCOL.md shows
     nextword.train(DEMO, path)
     return path
 
@@ -546,3 +546,33 @@ def test_a_second_server_on_a_live_socket_is_refused(model_path: Path, short_dir
         c.close()
     finally:
         stop(proc, signal.SIGTERM)
+
+
+# -- the protocol document stays true -----------------------------------------------------------------
+
+PROTOCOL = (ROOT / "docs" / "PROTOCOL.md").read_text(encoding="utf-8")
+
+
+def test_protocol_doc_names_every_op_and_error_code() -> None:
+    from nextword.serve import OPS
+
+    headings = [ln for ln in PROTOCOL.splitlines() if ln.startswith("### ")]
+    for op in OPS:
+        assert any(f"`{op}`" in h for h in headings), op
+    for code in ERROR_CODES:
+        assert f"| `{code}` |" in PROTOCOL, code
+
+
+def test_protocol_doc_session_is_what_the_server_answers(model: nextword.Model, short_dir: Path, tmp_path: Path) -> None:
+    block = PROTOCOL.split("<!-- session:begin -->", 1)[1].split("<!-- session:end -->", 1)[0]
+    lines = [ln for ln in block.splitlines() if ln.startswith(("> ", "< "))]
+    assert len(lines) >= 30 and [ln[0] for ln in lines] == [">", "<"] * (len(lines) // 2)
+    with running(model, short_dir, tmp_path / "users") as (_, path):
+        c = Client(path)
+        for sent, shown in zip(lines[::2], lines[1::2]):
+            c.send_raw(sent[2:].encode() + b"\n")
+            got, want = c.read(), json.loads(shown[2:])
+            if "model" in got:  # the one field that depends on where the model file is
+                assert Path(got["model"].pop("path")).name == want["model"].pop("path")
+            assert got == want, sent
+        c.close()
