@@ -576,3 +576,52 @@ def test_protocol_doc_session_is_what_the_server_answers(model: nextword.Model, 
                 assert Path(got["model"].pop("path")).name == want["model"].pop("path")
             assert got == want, sent
         c.close()
+
+
+# -- the C client ------------------------------------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def c_client(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    cc = shutil.which(os.environ.get("CC", "cc")) or shutil.which("gcc") or shutil.which("clang")
+    if cc is None:
+        pytest.skip("no C compiler (cc, gcc or clang) on PATH: examples/client.c is not built or run")
+    exe = tmp_path_factory.mktemp("cclient") / "nextword-client"
+    r = subprocess.run(
+        [cc, "-std=c99", "-Wall", "-Wextra", "-Werror", "-O2", "-o", str(exe), str(ROOT / "examples" / "client.c")],
+        capture_output=True, text=True, timeout=WAIT,
+    )
+    assert r.returncode == 0, r.stderr
+    return exe
+
+
+def test_c_client_prints_what_model_suggest_returns(
+    c_client: Path, model: nextword.Model, short_dir: Path, tmp_path: Path
+) -> None:
+    texts = ["See you at the ", "Repair night on Th", 'He said "bring the tr', "a\\b\tthanks for ", "Café at the ", "pri", ""]
+    texts += demo_queries(10, seed=21)
+    with running(model, short_dir, tmp_path / "users") as (_, path):
+        for i, text in enumerate(texts):
+            k = 1 + i % 5
+            r = subprocess.run([str(c_client), "-s", str(path), "-k", str(k), text], capture_output=True, timeout=WAIT)
+            assert r.returncode == 0, r.stderr
+            lines = r.stdout.decode("utf-8").splitlines()
+            assert len(lines) == 1
+            answer = json.loads(lines[0])
+            assert answer["id"] == 1 and as_pairs(answer) == expected(model.suggest(text, k)), text
+        # with a user, the answer is that user's layer's
+        c = Client(path)
+        for _ in range(2):
+            c.call(op="learn", user="ana", text="the Zorbington Lane ride")
+        c.close()
+        r = subprocess.run([str(c_client), "-s", str(path), "-u", "ana", "at Zo"], capture_output=True, timeout=WAIT)
+        layer = PersonalLayer.load(model, tmp_path / "users" / "ana.nwp")
+        assert as_pairs(json.loads(r.stdout)) == expected(layer.suggest("at Zo", 3)) and b"Zorbington" in r.stdout
+        # an error answer: printed, exit status 1
+        r = subprocess.run([str(c_client), "-s", str(path), "-u", "../ana", "x"], capture_output=True, timeout=WAIT)
+        assert r.returncode == 1 and json.loads(r.stdout)["error"]["code"] == "bad_field"
+    # no server: one line on stderr, exit status 1; usage mistakes: exit status 2
+    r = subprocess.run([str(c_client), "-s", str(path), "the "], capture_output=True, text=True, timeout=WAIT)
+    assert r.returncode == 1 and r.stdout == "" and str(path) in r.stderr
+    r = subprocess.run([str(c_client), "-k", "zero", "the "], capture_output=True, text=True, timeout=WAIT)
+    assert r.returncode == 2 and "zero" in r.stderr
