@@ -26,7 +26,6 @@ import os
 import shutil
 import signal
 import socket
-import statistics
 import subprocess
 import sys
 import tempfile
@@ -48,7 +47,7 @@ def model_and_heldout(out_dir: Path) -> tuple[Path, list[str], str]:
     core, test = out_dir / "core.nwm", HERE / "data" / "test.txt"
     if core.exists() and test.exists():
         lines = [ln for ln in test.read_text(encoding="utf-8").splitlines() if ln.strip()]
-        return core, lines, f"`bench/out/core.nwm` (the core benchmark's model), queries from `bench/data/test.txt`"
+        return core, lines, "`bench/out/core.nwm` (the core benchmark's model), queries from `bench/data/test.txt`"
     demo = ROOT / "examples" / "data" / "demo_messages.txt"
     lines = [ln for ln in demo.read_text(encoding="utf-8").splitlines() if ln.strip()]
     train, held = [ln for i, ln in enumerate(lines) if i % 10], [ln for i, ln in enumerate(lines) if not i % 10]

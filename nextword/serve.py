@@ -39,18 +39,19 @@ import socket
 import stat
 import threading
 import time
+from collections.abc import Callable
 from dataclasses import asdict, dataclass
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 from .errors import InvalidArgumentError, ModelFormatError
 from .model import Model
 from .personal import PersonalLayer
 
 __all__ = [
-    "PROTOCOL_VERSION",
     "ERROR_CODES",
     "OPS",
+    "PROTOCOL_VERSION",
     "ServeLimits",
     "Server",
     "default_socket_path",
