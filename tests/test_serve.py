@@ -340,6 +340,17 @@ def test_half_sent_and_abandoned_requests_do_not_disturb_others(model: nextword.
         steady.close()
 
 
+def test_idle_timeout_closes_silent_connections_only(model: nextword.Model, short_dir: Path) -> None:
+    with running(model, short_dir, None, idle_timeout=0.3) as (_, path):
+        idle = Client(path)
+        assert idle.call(id=1, op="info")["ok"]
+        assert idle.file.readline() == b""  # closed quietly after its silence: no request was pending
+        idle.close()
+        fresh = Client(path)  # the server itself goes on
+        assert as_pairs(fresh.call(op="suggest", text="thanks for ")) == expected(model.suggest("thanks for "))
+        fresh.close()
+
+
 def test_pipelined_requests_are_answered_in_order(model: nextword.Model, short_dir: Path) -> None:
     queries = demo_queries(100, seed=5)
     with running(model, short_dir, None) as (_, path):
