@@ -131,7 +131,7 @@ def run_level(sock_path: str, queries: list[str], n_clients: int, n_requests: in
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description="load test of nextword serve")
-    ap.add_argument("--clients", type=int, nargs="+", default=[1, 4, 16])
+    ap.add_argument("--clients", type=int, nargs="+", default=[1, 4, 16, 64])
     ap.add_argument("--requests", type=int, default=8000, help="requests per level (split among its clients)")
     ap.add_argument("--seconds", type=float, default=20.0, help="time cap per level")
     ap.add_argument("--queries", type=int, default=4000, help="distinct held-out queries")
