@@ -561,11 +561,10 @@ def _cmd_personal(args: argparse.Namespace) -> int:
 
 def _cmd_prune(args: argparse.Namespace) -> int:
     from .prune import parse_size, prune_to_size, tables_from_model
-    from .store import atomic_write
+    from .store import atomic_write, check_new_output
 
     model = load(args.model)
-    if os.path.exists(args.output) and os.path.samefile(args.model, args.output):
-        raise UsageError(f"{args.output}: the pruned model must go to a new file, not over its input")
+    check_new_output(args.model, args.output, "pruned model")
     _, chunks, info = prune_to_size(
         tables_from_model(model), parse_size(args.max_size), rule=args.rule, lam=model.stored_lam,
         skyband_k=model._sky_k, skyband_min=model._sky_min,

@@ -89,9 +89,6 @@ class CountBuilder:
         if memory_cap is not None and (isinstance(memory_cap, bool) or not isinstance(memory_cap, int) or memory_cap < 1 << 16):
             raise InvalidArgumentError(f"memory_cap must be an integer >= 65536 bytes, got {memory_cap!r}")
         self.memory_cap = memory_cap
-        # under a cap, flush the token buffer and cut batches well before they approach it
-        self._flush_tokens = _FLUSH_TOKENS if memory_cap is None else max(1 << 14, min(_FLUSH_TOKENS, memory_cap // 512))
-        self._batch_chars = _BATCH_CHARS if memory_cap is None else max(1 << 12, min(_BATCH_CHARS, memory_cap // 512))
         self._runs: list[tuple[str, int]] = []
         self._spill_dir: Any = None
         #: a directory owned by someone else (e.g. the parent of worker processes) to spill into
@@ -107,6 +104,23 @@ class CountBuilder:
         self._part_counts: list[np.ndarray] = []
         self.messages = 0
         self.sentences = 0
+
+    # sizes of the units of work, derived from the cap (which a merge may change): under a
+    # cap, the token buffer is flushed and batches are cut well before they approach it,
+    # and spilled counts are read back in slices of a known length
+
+    @property
+    def _flush_tokens(self) -> int:
+        cap = self.memory_cap
+        return _FLUSH_TOKENS if cap is None else max(1 << 14, min(_FLUSH_TOKENS, cap // 512))
+
+    @property
+    def _batch_chars(self) -> int:
+        return batch_chars(self.memory_cap)
+
+    @property
+    def _slice_len(self) -> int | None:
+        return None if self.memory_cap is None else max(1 << 12, self.memory_cap // 256)
 
     # -- feeding ---------------------------------------------------------------------
 
@@ -308,8 +322,7 @@ class CountBuilder:
             theirs = getattr(other, name)
             np.add.at(grown, remap[: len(theirs)], theirs)
             setattr(self, name, grown)
-        slice_len = None if self.memory_cap is None else max(1 << 12, self.memory_cap // 256)
-        for keys, counts in other._pair_parts(slice_len):
+        for keys, counts in other._pair_parts(self._slice_len):
             left, right = remap[keys >> 32], remap[keys & 0xFFFFFFFF]
             self._part_keys.append((left << 32) | right)
             self._part_counts.append(np.array(counts))
@@ -484,7 +497,8 @@ class CountBuilder:
             return (keys // width).astype(id_type), (keys % width).astype(id_type), counts
         import tempfile
 
-        slice_len = max(1 << 12, self.memory_cap // 256)
+        slice_len = self._slice_len
+        assert slice_len is not None
         # pass 1: how many partial entries each final history has
         per_history = np.zeros(width, dtype=np.int64)
         for keys, _ in self._pair_parts(slice_len):
@@ -527,10 +541,12 @@ class CountBuilder:
                 out_r.append((k % width).astype(id_type))
                 out_c.append(c)
                 del k, c
+        if not out_c:
+            return np.zeros(0, id_type), np.zeros(0, id_type), np.zeros(0, np.int64)
         # concatenate one column at a time, dropping its parts, to keep the peak low
         columns = []
         for parts_ in (out_l, out_r, out_c):
-            columns.append(np.concatenate(parts_) if parts_ else np.zeros(0, id_type if parts_ is not out_c else np.int64))
+            columns.append(np.concatenate(parts_))
             parts_.clear()
         return columns[0], columns[1], columns[2]
 
@@ -555,6 +571,11 @@ class CountBuilder:
         if s[:1].upper() + s[1:] == s and fold(s[:1]) + s[1:] == key:
             return key
         return s
+
+
+def batch_chars(memory_cap: int | None) -> int:
+    """Characters per batch of joined messages: about a million, less under a small cap."""
+    return _BATCH_CHARS if memory_cap is None else max(1 << 12, min(_BATCH_CHARS, memory_cap // 512))
 
 
 def join_batches(texts: Iterable[str], limit: int) -> Iterator[tuple[str, int]]:

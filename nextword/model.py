@@ -24,7 +24,7 @@ import numpy as np
 
 from ._progress import Progress
 from .corpus import Format, iter_messages, open_sources
-from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables, join_batches
+from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables, batch_chars, join_batches
 from .errors import InputDataError, InvalidArgumentError, ModelFormatError
 from .store import (
     COUNT_ESCAPE,
@@ -813,7 +813,7 @@ def _count_in_processes(messages: Iterator[str], workers: int, memory_cap: int |
     method = "fork" if "fork" in mp.get_all_start_methods() else "spawn"
     ctx: Any = mp.get_context(method)
     share = None if memory_cap is None else max(1 << 16, memory_cap // (workers + 1))
-    limit = CountBuilder(memory_cap=share)._batch_chars
+    limit = batch_chars(share)
     with tempfile.TemporaryDirectory(prefix="nextword-counts-") as spill_root:
         inbox = ctx.Queue(maxsize=2 * workers)
         outbox = ctx.Queue()

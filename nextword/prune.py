@@ -113,10 +113,10 @@ def _entropy_scores(tables: CountTables, lam: float) -> np.ndarray:
     rows = np.concatenate([[0], np.cumsum(np.bincount(left, minlength=n_hist))])
 
     # one combination per (row, distinct count); pairs are sorted by row
-    combo_key = left * (int(c.max()) + 1) + c.astype(np.int64)
-    combos, pair_combo = np.unique(combo_key, return_inverse=True)
-    combo_row = combos // (int(c.max()) + 1)
-    combo_c = (combos % (int(c.max()) + 1)).astype(np.float64)
+    radix = int(c.max()) + 1
+    combos, pair_combo = np.unique(left * radix + c.astype(np.int64), return_inverse=True)
+    combo_row = combos // radix
+    combo_c = (combos % radix).astype(np.float64)
     combo_cv = row_sum[combo_row]
     rest = combo_cv - combo_c
     with np.errstate(divide="ignore", invalid="ignore"):

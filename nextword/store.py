@@ -633,6 +633,13 @@ def write_model(
     atomic_write(path, encode_sections(sections, minor=2 if tables.history is not None else 0))
 
 
+def check_new_output(src: str | os.PathLike[str], dst: str | os.PathLike[str], what: str) -> None:
+    """Refuse to write a model derived from ``src`` over ``src`` itself: the source is
+    read through a memory map while the new file is built, and must survive a failure."""
+    if os.path.exists(dst) and os.path.samefile(src, dst):
+        raise InvalidArgumentError(f"{os.fspath(dst)}: the {what} must go to a new file, not over its input")
+
+
 def rewrite_model(
     src: str | os.PathLike[str],
     dst: str | os.PathLike[str],
@@ -646,8 +653,7 @@ def rewrite_model(
     ``buckets`` is ``{"bounds": [c1 < c2 < ...], "lambdas": [λ0, λ1, ...]}`` (one more λ
     than bounds); such files are written as format version 1.1.
     """
-    if os.path.exists(dst) and os.path.samefile(src, dst):
-        raise InvalidArgumentError(f"{os.fspath(dst)}: the tuned model must go to a new file, not over its input")
+    check_new_output(src, dst, "tuned model")
     arrays = read_model(src, verify=True)
     meta = dict(arrays.meta)
     meta["lambda"] = float(lam)
