@@ -137,6 +137,13 @@ def update_results(md: str, marker: str) -> None:
     os.replace(tmp, path)
 
 
+def publish(md: str, marker: str, *, write: bool) -> None:
+    """Print a benchmark's Markdown section and, unless told not to, put it in RESULTS.md."""
+    print(md)
+    if write:
+        update_results(md, marker)
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description="core engine benchmark")
     ap.add_argument("--data", type=Path, default=HERE / "data")
@@ -282,9 +289,7 @@ Latency by query kind (µs):
 |---|---|---|---|
 {by_kind}
 """
-    print(md)
-    if not args.no_results:
-        update_results(md, "core")
+    publish(md, "core", write=not args.no_results)
     return 0
 
 

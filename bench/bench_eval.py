@@ -22,7 +22,7 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
-from bench_core import machine, update_results  # noqa: E402
+from bench_core import machine, publish  # noqa: E402
 from prepare_corpus import FORTUNES, messages  # noqa: E402
 
 
@@ -111,9 +111,7 @@ p99 {lat['p99_us']:.1f} µs, max {lat['max_us']:.0f} µs; {lat['end_to_end_calls
 (target ≥ 2,000), {lat['engine_calls_per_second']:,.0f} calls/s inside the engine.
 Plots: `bench/out/eval/report/ksr.png`, `latency.png` (not committed; made by the command).
 """
-    print(md)
-    if not args.no_results:
-        update_results(md, "eval")
+    publish(md, "eval", write=not args.no_results)
     return 0
 
 

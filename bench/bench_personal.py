@@ -24,7 +24,7 @@ HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
 import nextword  # noqa: E402
-from bench_core import machine, update_results  # noqa: E402
+from bench_core import machine, publish  # noqa: E402
 from nextword.evaluate import simulate_message  # noqa: E402
 from nextword.personal import PersonalLayer  # noqa: E402
 from prepare_corpus import messages as public_messages  # noqa: E402
@@ -103,9 +103,7 @@ with the layer p50 {np.percentile(ll, 50):.1f} µs / p99 {np.percentile(ll, 99):
     plot = _plot(curve, HERE / "out" / "personal" / "learning_curve.png", k)
     if plot:
         md += f"Plot: `{plot.relative_to(HERE.parent)}` (made by the command, not committed).\n"
-    print(md)
-    if not args.no_results:
-        update_results(md, "personal")
+    publish(md, "personal", write=not args.no_results)
     return 0
 
 

@@ -19,7 +19,7 @@ HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
 import nextword  # noqa: E402
-from bench_core import machine, update_results  # noqa: E402
+from bench_core import machine, publish  # noqa: E402
 from nextword.evaluate import evaluate  # noqa: E402
 from nextword.prune import prune_to_size, tables_from_model, vocabulary_bytes  # noqa: E402
 from nextword.store import atomic_write  # noqa: E402
@@ -95,9 +95,7 @@ alone needs {floor:,} bytes); perplexity on all {len(held):,} held-out messages,
         fig.savefig(out / "size_curve.png", dpi=120)
         plt.close(fig)
         md += "\nPlot: `bench/out/prune/size_curve.png` (made by the command, not committed).\n"
-    print(md)
-    if not args.no_results:
-        update_results(md, "prune")
+    publish(md, "prune", write=not args.no_results)
     return 0
 
 

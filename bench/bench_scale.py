@@ -23,7 +23,7 @@ import numpy as np
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
-from bench_core import machine, update_results  # noqa: E402
+from bench_core import machine, publish  # noqa: E402
 
 
 def make_corpus(path: Path, words: int, vocab: int, seed: int = 7) -> None:
@@ -123,9 +123,7 @@ sampled every 50 ms from /proc.
 
 Same model bytes from both: {same}.
 """
-    print(md)
-    if not args.no_results:
-        update_results(md, "scale")
+    publish(md, "scale", write=not args.no_results)
     return 0
 
 

@@ -39,7 +39,7 @@ sys.path.insert(0, str(HERE))
 sys.path.insert(0, str(ROOT))
 
 import nextword  # noqa: E402
-from bench_core import machine, make_queries, percentiles, update_results  # noqa: E402
+from bench_core import machine, make_queries, percentiles, publish  # noqa: E402
 
 
 def model_and_heldout(out_dir: Path) -> tuple[Path, list[str], str]:
@@ -221,9 +221,7 @@ def main(argv: list[str] | None = None) -> int:
         f" {stopped['connections_cut']} connections cut.",
         "",
     ])
-    print(md)
-    if not args.no_results:
-        update_results(md, "serve")
+    publish(md, "serve", write=not args.no_results)
     return 0 if all(lv["lost"] == 0 and lv["wrong"] == 0 for lv in levels) and server.returncode == 0 else 1
 
 

@@ -19,7 +19,7 @@ HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
 import nextword  # noqa: E402
-from bench_core import machine, update_results  # noqa: E402
+from bench_core import machine, publish  # noqa: E402
 from nextword.evaluate import evaluate, is_held_out  # noqa: E402
 from nextword.store import rewrite_model  # noqa: E402
 from nextword.tune import events_of, fit_buckets, keystroke_search, optimal_lambda, perplexity_at  # noqa: E402
@@ -104,9 +104,7 @@ perplexity and keystrokes do not reward the same thing, which is why `nextword t
 |---|---|
 {ksr_rows}
 """
-    print(md)
-    if not args.no_results:
-        update_results(md, "tune")
+    publish(md, "tune", write=not args.no_results)
     return 0
 
 
