@@ -109,7 +109,7 @@ static int read_line(int fd, struct buf *b) {
 }
 
 static void usage(void) {
-    fprintf(stderr, "usage: nextword-client [-s SOCKET] [-k K] [-u USER] TEXT_BEFORE_CURSOR\n");
+    fprintf(stderr, "usage: nextword-client [-s SOCKET] [-k K] [-u USER] TYPED_TEXT\n");
 }
 
 int main(int argc, char **argv) {

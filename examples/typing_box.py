@@ -1,4 +1,4 @@
-"""A desktop typing box: a message box with a strip of suggestion buttons that follows every key.
+"""A desktop typing box: a message box with a choice row of suggestion buttons that follows every key.
 
 Run it from a checkout of the repository (only the standard library's Tk and nextword):
 
@@ -40,7 +40,7 @@ import nextword
 from nextword.errors import InvalidArgumentError, NextwordError
 from nextword.model import Model, Suggestion
 from nextword.personal import PersonalLayer
-from nextword.text import parse_before_cursor
+from nextword.text import parse_typed
 
 __all__ = ["TypingBox", "main", "prepare_model", "default_cache_dir", "accepted_text", "format_latency", "use_plain_theme"]
 
@@ -87,14 +87,14 @@ def prepare_model(cache_dir: Path, corpus: Path = DEMO_CORPUS) -> tuple[Path, bo
     return path, True
 
 
-def accepted_text(before_cursor: str, word: str) -> tuple[int, str]:
-    """How accepting ``word`` edits the text before the cursor: (characters to delete, text to insert).
+def accepted_text(typed: str, word: str) -> tuple[int, str]:
+    """How accepting ``word`` edits the typed text: (characters to delete, text to insert).
 
     The partial word the engine completed (the same prefix it parsed) is replaced and a
     space added, so the user can type the next word at once.
     """
-    prefix = parse_before_cursor(before_cursor).prefix
-    delete = len(prefix) if prefix and before_cursor.endswith(prefix) else 0
+    prefix = parse_typed(typed).prefix
+    delete = len(prefix) if prefix and typed.endswith(prefix) else 0
     return delete, word + " "
 
 
@@ -118,7 +118,7 @@ def use_plain_theme(root: tk.Tk) -> None:
 
 
 class TypingBox:
-    """The typing box inside any Tk container: strip of suggestions, message box, history.
+    """The typing box inside any Tk container: choice row of suggestions, message box, history.
 
     It takes an existing root (or frame) and an open model so that tests and host
     applications can create it without the command line, and it never calls mainloop.
@@ -147,14 +147,14 @@ class TypingBox:
         self.frame.pack(fill="both", expand=True)
         self.frame.columnconfigure(0, weight=1)
 
-        strip = ttk.Frame(self.frame)
-        strip.grid(row=0, column=0, columnspan=2, sticky="ew", pady=(0, 6))
+        row = ttk.Frame(self.frame)
+        row.grid(row=0, column=0, columnspan=2, sticky="ew", pady=(0, 6))
         self.buttons: list[ttk.Button] = []
         for i in range(k):
-            b = ttk.Button(strip, style="Suggestion.TButton", command=functools.partial(self.accept, i), takefocus=False)
+            b = ttk.Button(row, style="Suggestion.TButton", command=functools.partial(self.accept, i), takefocus=False)
             b.pack(side="left", padx=(0, 6))
             self.buttons.append(b)
-        self.latency_label = ttk.Label(strip, style="Latency.TLabel", width=9, anchor="e")
+        self.latency_label = ttk.Label(row, style="Latency.TLabel", width=9, anchor="e")
         self.latency_label.pack(side="right")
 
         # the interface font, a little larger: a message box, not a code editor
@@ -192,7 +192,7 @@ class TypingBox:
 
     # -- queries --------------------------------------------------------------------------------
 
-    def before_cursor(self) -> str:
+    def typed_text(self) -> str:
         """The text the engine sees: everything before the insertion cursor."""
         return self.text.get("1.0", "insert")
 
@@ -209,9 +209,9 @@ class TypingBox:
             self.text.after_idle(self.refresh)
 
     def refresh(self) -> None:
-        """Ask the engine for the text before the cursor and redraw the strip with the latency."""
+        """Ask the engine for the typed text and redraw the choice row with the latency."""
         self._pending = False
-        text = self.before_cursor()
+        text = self.typed_text()
         t0 = time.perf_counter()
         self.suggestions = self.suggest(text)
         self.last_latency = time.perf_counter() - t0
@@ -223,7 +223,7 @@ class TypingBox:
                 b.configure(text="", state="disabled")
         self.latency_label.configure(text=format_latency(self.last_latency))
 
-    def strip_words(self) -> list[str]:
+    def choice_words(self) -> list[str]:
         """The words on the enabled buttons, in order (what the user sees)."""
         return [str(b.cget("text")).rsplit("   ", 1)[0] for b in self.buttons if str(b.cget("state")) != "disabled"]
 
@@ -233,7 +233,7 @@ class TypingBox:
         """Put the i-th suggestion in place of the partial word before the cursor, then a space."""
         if not 0 <= i < len(self.suggestions):
             return
-        delete, insert = accepted_text(self.before_cursor(), self.suggestions[i].word)
+        delete, insert = accepted_text(self.typed_text(), self.suggestions[i].word)
         t = self.text
         t.edit_separator()
         if delete:
@@ -306,7 +306,7 @@ def _k(text: str) -> int:
 
 
 def _parser() -> argparse.ArgumentParser:
-    p = _Parser(prog="typing_box.py", description="A desktop typing box whose suggestion strip follows every key.")
+    p = _Parser(prog="typing_box.py", description="A desktop typing box whose choice row follows every key.")
     p.add_argument("model", nargs="?", help="a .nwm model (default: the demo corpus, trained once into the cache directory)")
     p.add_argument("--user-layer", metavar="PATH", help=f"personal layer file (default: {LAYER_NAME} in the cache directory)")
     p.add_argument("-k", type=_k, default=3, help=f"number of suggestion buttons, 1-{MAX_K} (default 3)")

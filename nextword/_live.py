@@ -1,4 +1,4 @@
-"""``nextword live``: type in a terminal and watch the suggestion strip follow every key.
+"""``nextword live``: type in a terminal and watch the choice row follow every key.
 
 Keys: letters and punctuation type; Backspace deletes; Tab accepts the first suggestion,
 Alt+1 … Alt+9 (Esc then a digit) accept the n-th; Enter starts a new message;
@@ -15,7 +15,7 @@ import time
 import tty
 
 from .model import Model, Suggestion
-from .text import parse_before_cursor
+from .text import parse_typed
 
 __all__ = ["run_live", "accept"]
 
@@ -24,14 +24,14 @@ _CLEAR = "\x1b[2K\r"
 
 def accept(text: str, word: str) -> str:
     """Text after accepting ``word``: the partial word at the end is replaced, a space added."""
-    prefix = parse_before_cursor(text).prefix
+    prefix = parse_typed(text).prefix
     base = text[: len(text) - len(prefix)] if prefix and text.endswith(prefix) else text
     return base + word + " "
 
 
 def _render(out: int, text: str, sugg: list[Suggestion], micros: float) -> None:
-    strip = "  ".join(f"[{i}] {s.word}" for i, s in enumerate(sugg, 1)) or "(no suggestion)"
-    frame = f"{_CLEAR}\x1b[1A{_CLEAR}{strip}   ({micros:.0f} µs)\n{_CLEAR}> {text}"
+    choices = "  ".join(f"[{i}] {s.word}" for i, s in enumerate(sugg, 1)) or "(no suggestion)"
+    frame = f"{_CLEAR}\x1b[1A{_CLEAR}{choices}   ({micros:.0f} µs)\n{_CLEAR}> {text}"
     os.write(out, frame.encode("utf-8"))
 
 

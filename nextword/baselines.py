@@ -15,7 +15,7 @@ from collections import Counter
 from typing import Any, Callable, Iterable
 
 from .errors import InvalidArgumentError
-from .text import BOS, EOS, UNK, fold, parse_before_cursor, sentences
+from .text import BOS, EOS, UNK, fold, parse_typed, sentences
 
 __all__ = ["DictBigram", "nltk_baseline", "sample_queries", "time_queries"]
 
@@ -73,14 +73,14 @@ class DictBigram:
         scored.sort(key=lambda t: (-t[0], t[1]))
         return [(w, s) for s, w in scored[:k]]
 
-    def suggest_keys(self, text_before_cursor: str, k: int, lam: float) -> list[tuple[str, float]]:
+    def suggest_keys(self, typed: str, k: int, lam: float) -> list[tuple[str, float]]:
         """The ranking for a typed text (no display spelling, no capitalisation)."""
-        ctx = parse_before_cursor(text_before_cursor)
+        ctx = parse_typed(typed)
         return self.rank(ctx.previous, ctx.prefix, k, lam)
 
 
 def sample_queries(messages: Iterable[str], n: int) -> list[str]:
-    """The first ``n`` texts-before-cursor the keystroke simulation would ask about."""
+    """The first ``n`` typed texts the keystroke simulation would ask about."""
     from .evaluate import word_spans
     from .text import normalize
 
@@ -131,7 +131,7 @@ def nltk_baseline(
     words = sorted(w for w in lm.vocab if w not in (BOS, EOS, UNK, "<UNK>"))
 
     def suggest(text: str) -> list[tuple[str, float]]:
-        ctx = parse_before_cursor(text)
+        ctx = parse_typed(text)
         prev = ctx.previous if ctx.previous in (BOS, UNK) else fold(ctx.previous)
         p = fold(ctx.prefix)
         scored = [(lam * lm.score(w, [prev]) + (1 - lam) * lm.score(w), w) for w in words if w.startswith(p)]

@@ -96,7 +96,7 @@ def _parser() -> _Parser:
 
     s = sub.add_parser("suggest", help="print suggestions for typed texts")
     s.add_argument("model")
-    s.add_argument("texts", nargs="*", metavar="TEXT", help="text before the cursor; none = one per line on stdin")
+    s.add_argument("texts", nargs="*", metavar="TEXT", help="typed text; none = one per line on stdin")
     s.add_argument("-k", type=_positive, default=3, help="suggestions per text (default %(default)s)")
     s.add_argument("--lam", type=_lam, default=None, help="override the model's λ")
     s.add_argument("--time", action="store_true", help="time each query (median of repeated calls)")
@@ -149,7 +149,7 @@ def _parser() -> _Parser:
     pe.add_argument("layer", metavar="LAYER_FILE", help="the layer's file (created if missing; every change saved at once)")
     pe.add_argument("--model", required=True, help="the base model")
     pe.add_argument("action", choices=("learn", "forget", "clear", "block", "unblock", "suggest", "info"))
-    pe.add_argument("items", nargs="*", metavar="TEXT", help="messages to learn, words, or texts before the cursor")
+    pe.add_argument("items", nargs="*", metavar="TEXT", help="messages to learn, words, or typed texts")
     pe.add_argument("-k", type=_positive, default=3, help="suggestions per text (default %(default)s)")
     pe.add_argument("--min-uses", type=_positive, default=2, help="uses before a new word is offered (new layers)")
     pe.add_argument("--half-life-messages", type=float, default=None, help="decay (new layers)")

@@ -4,7 +4,7 @@ The rules (also in README, "Measuring a model"):
 
 * An ideal user types each message left to right; messages are independent.
 * Words are the text rules' words (``nextword.text``). Before each letter of a word,
-  including the first, the engine is asked ``suggest(text_before_cursor, k)``. If the
+  including the first, the engine is asked ``suggest(typed, k)``. If the
   intended word, spelled exactly as in the message, is among the suggestions, one tap
   accepts it, and a single space that follows the word in the message is then free.
   Otherwise the user types the next character.
@@ -13,7 +13,7 @@ The rules (also in README, "Measuring a model"):
   McCoy 2008, "Evaluating word prediction: framing keystroke savings").
 
 The *ceiling* is a perfect predictor under the same rules: one tap per word, and the
-space after it free. Because the text before the cursor never depends on k (accepting a
+space after it free. Because the typed text never depends on k (accepting a
 word produces exactly the message's text), one query with the largest k answers every
 smaller k too (the ranking is a total order, so the top k is the first k of the top
 k_max), and each cursor position is asked about at most once.
@@ -191,7 +191,7 @@ def simulate_message(
 ) -> dict[int, KStats]:
     """Replay one message under the rules above; returns per-k totals.
 
-    ``suggest(text_before_cursor, k)`` is called with the largest k, at most once per
+    ``suggest(typed, k)`` is called with the largest k, at most once per
     cursor position, until the word is accepted for the smallest k. ``latencies``, if
     given, receives the duration of every call in seconds.
     """

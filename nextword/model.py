@@ -37,7 +37,7 @@ from .store import (
     topk_levels,
     write_model,
 )
-from .text import BOS, EOS, UNK, fold, parse_before_cursor, sentences
+from .text import BOS, EOS, UNK, fold, parse_typed, sentences
 
 __all__ = ["Model", "Suggestion", "TrainReport", "train", "train_texts", "load", "DEFAULT_LAMBDA"]
 
@@ -579,20 +579,20 @@ class Model:
                 p += 1
         return ranked
 
-    def suggest(self, text_before_cursor: str, k: int = 3, *, lam: float | None = None) -> list[Suggestion]:
+    def suggest(self, typed: str, k: int = 3, *, lam: float | None = None) -> list[Suggestion]:
         """The k words the user most likely wants at the cursor, best first.
 
-        If ``text_before_cursor`` ends inside a word, that partial word is completed
+        If ``typed`` ends inside a word, that partial word is completed
         (case-insensitively); otherwise the next word is predicted. The context is the
         last complete word of the same sentence (the sentence start if none, the unknown
         symbol right after a number or symbol). Suggestions are capitalised at a sentence
         start and after a capitalised prefix; an explicitly lowercase prefix stays lowercase.
         """
-        if not isinstance(text_before_cursor, str):
-            raise InvalidArgumentError(f"text_before_cursor must be str, got {type(text_before_cursor).__name__}")
+        if not isinstance(typed, str):
+            raise InvalidArgumentError(f"typed must be str, got {type(typed).__name__}")
         k = _check_k(k)
         lam = None if lam is None else _check_lam(lam)
-        ctx = parse_before_cursor(text_before_cursor)
+        ctx = parse_typed(typed)
         if ctx.previous == BOS:
             v = self._bos
         elif ctx.previous == UNK:

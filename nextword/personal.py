@@ -44,7 +44,7 @@ import msgpack
 from .errors import InvalidArgumentError, ModelFormatError
 from .model import Model, Suggestion, _check_k, _recase
 from .store import atomic_write
-from .text import BOS, EOS, UNK, fold, parse_before_cursor, sentences
+from .text import BOS, EOS, UNK, fold, parse_typed, sentences
 
 __all__ = ["PersonalLayer", "PERSONAL_MAGIC"]
 
@@ -499,9 +499,9 @@ class PersonalLayer:
         best = heapq.nsmallest(k, ((-s, w) for w, s in cands.items()))
         return [(w, -s) for s, w in best]
 
-    def suggest(self, text_before_cursor: str, k: int = 3) -> list[Suggestion]:
+    def suggest(self, typed: str, k: int = 3) -> list[Suggestion]:
         """Like :meth:`nextword.Model.suggest`, over the mixture of base and personal counts."""
-        ctx = parse_before_cursor(text_before_cursor)
+        ctx = parse_typed(typed)
         prev = None if ctx.previous == BOS else ctx.previous
         at_start = ctx.previous == BOS
         out = []

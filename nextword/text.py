@@ -40,7 +40,7 @@ __all__ = [
     "normalize",
     "tokens",
     "sentences",
-    "parse_before_cursor",
+    "parse_typed",
     "MAX_CONTEXT_CHARS",
 ]
 
@@ -150,7 +150,7 @@ def sentences(text: str) -> list[list[str | None]]:
 
 @dataclass(frozen=True, slots=True)
 class Context:
-    """What :func:`parse_before_cursor` found at the end of the typed text.
+    """What :func:`parse_typed` found at the end of the typed text.
 
     ``previous`` is the surface of the last complete word in the same sentence, or
     :data:`BOS` at a sentence start, or :data:`UNK` right after a number or symbol.
@@ -162,7 +162,7 @@ class Context:
     prefix: str
 
 
-def parse_before_cursor(text: str) -> Context:
+def parse_typed(text: str) -> Context:
     """Find the context word and the partial word at the end of ``text``.
 
     Only the last :data:`MAX_CONTEXT_CHARS` characters are examined (the last 40 first,

@@ -1,8 +1,8 @@
 """The desktop typing box (examples/typing_box.py) driven by synthetic keys under a virtual display.
 
 A real X server (Xvfb) runs for the module; Tk connects to it in-process, the test types
-with ``event_generate`` key events, and checks what a user would see: the strip shows the
-engine's words for the text before the cursor, Tab / Alt+N / a click put the word in place
+with ``event_generate`` key events, and checks what a user would see: the choice row shows the
+engine's words for the typed text, Tab / Alt+N / a click put the word in place
 of the partial word plus a space, Enter teaches the personal layer (on disk) and changes the
 next ranking. A screenshot of the window is taken with Pillow; set
 ``NEXTWORD_SCREENSHOT=docs/typing_box.png`` to keep it (that is how the README's picture is made).
@@ -160,9 +160,9 @@ def test_typing_accepting_sending_and_screenshot(root: Any, xdisplay: str, model
     root.update()
 
     # empty box: sentence-start suggestions, exactly the engine's
-    assert app.strip_words() == _words(model.suggest("", 3))
+    assert app.choice_words() == _words(model.suggest("", 3))
 
-    # every key re-ranks: after each typed prefix the strip is the engine's answer for it
+    # every key re-ranks: after each typed prefix the choice row is the engine's answer for it
     typed = ""
     for chunk in ["Can", " someone", " bring", " the", " tr"]:
         _type(app, chunk)
@@ -170,7 +170,7 @@ def test_typing_accepting_sending_and_screenshot(root: Any, xdisplay: str, model
         assert _box(app) == typed
         want = _words(model.suggest(typed, 3))
         assert want, typed
-        assert app.strip_words() == want, typed
+        assert app.choice_words() == want, typed
         assert re.fullmatch(r"\d+ µs|\d+\.\d ms", str(app.latency_label.cget("text")))
     # the shortcut is shown on each button
     labels = [str(b.cget("text")) for b in app.buttons]
@@ -180,7 +180,7 @@ def test_typing_accepting_sending_and_screenshot(root: Any, xdisplay: str, model
     first = model.suggest(typed, 3)[0].word
     _press(app, "<Tab>")
     assert _box(app) == "Can someone bring the " + first + " "
-    assert app.strip_words() == _words(model.suggest(_box(app), 3))
+    assert app.choice_words() == _words(model.suggest(_box(app), 3))
     assert str(app.history.get(0, "end")) == "()"
 
     # Enter sends: box cleared, history shows the message, the layer learned it on disk
@@ -196,7 +196,7 @@ def test_typing_accepting_sending_and_screenshot(root: Any, xdisplay: str, model
     context = "See you at the "
     _type(app, context)
     base = _words(model.suggest(context, 3))
-    assert app.strip_words() == _words(layer.suggest(context, 3))
+    assert app.choice_words() == _words(layer.suggest(context, 3))
     third = app.suggestions[2].word
     _press(app, "<Alt-Key-3>")
     assert _box(app) == context + third + " "
@@ -206,14 +206,14 @@ def test_typing_accepting_sending_and_screenshot(root: Any, xdisplay: str, model
 
     # the next suggestion reflects what was sent: the word this user picked now ranks first
     _type(app, context)
-    now = app.strip_words()
+    now = app.choice_words()
     assert now == _words(layer.suggest(context, 3))
     assert third != base[0] and now[0] == third
 
     # a click on a button (press and release over it) accepts that suggestion
     app.text.delete("1.0", "end")
     _type(app, "Repair night on Th")
-    assert app.strip_words() == _words(layer.suggest("Repair night on Th", 3))
+    assert app.choice_words() == _words(layer.suggest("Repair night on Th", 3))
     second = app.suggestions[1].word
     button = app.buttons[1]
     x, y = button.winfo_width() // 2, button.winfo_height() // 2
@@ -253,7 +253,7 @@ def test_without_a_layer_suggestions_come_from_the_model(root: Any, model_path: 
     app = typing_box.TypingBox(root, model, k=2)
     root.update()
     _type(app, "thanks for ")
-    assert app.strip_words() == _words(model.suggest("thanks for ", 2))
+    assert app.choice_words() == _words(model.suggest("thanks for ", 2))
     assert len(app.buttons) == 2
     # a click through the button's command, then Enter: history grows, nothing is learned anywhere
     app.buttons[1].invoke()
@@ -271,7 +271,7 @@ def test_fewer_suggestions_than_buttons_disable_the_rest(root: Any, model_path: 
     _type(app, prefix)
     want = _words(model.suggest(prefix, 5))
     assert 0 < len(want) < 5
-    assert app.strip_words() == want
+    assert app.choice_words() == want
     assert [str(b.cget("state")) for b in app.buttons[len(want):]] == ["disabled"] * (5 - len(want))
     # a shortcut for an empty slot changes nothing
     _press(app, "<Alt-Key-5>")

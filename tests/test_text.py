@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pytest
 
-from nextword.text import BOS, UNK, Context, fold, parse_before_cursor, sentences
+from nextword.text import BOS, UNK, Context, fold, parse_typed, sentences
 
 
 def test_words_keep_internal_apostrophes_and_hyphens() -> None:
@@ -61,20 +61,20 @@ def test_fold_unifies_case_apostrophes_and_hyphens() -> None:
         ("at 7", Context("at", "7")),
     ],
 )
-def test_parse_before_cursor(text: str, expected: Context) -> None:
-    assert parse_before_cursor(text) == expected
+def test_parse_typed(text: str, expected: Context) -> None:
+    assert parse_typed(text) == expected
 
 
 def test_parse_looks_only_at_the_tail() -> None:
     long_text = "word " * 10_000 + "the tr"
-    assert parse_before_cursor(long_text) == Context("the", "tr")
+    assert parse_typed(long_text) == Context("the", "tr")
     # the cut lands inside a word: that fragment is not taken as context
-    assert parse_before_cursor("x" * 300 + " ") == Context(BOS, "")
-    assert parse_before_cursor("see " + "," * 100 + "yo") == Context("see", "yo")
-    assert parse_before_cursor("see " + " " * 300 + "yo") == Context(BOS, "yo")
+    assert parse_typed("x" * 300 + " ") == Context(BOS, "")
+    assert parse_typed("see " + "," * 100 + "yo") == Context("see", "yo")
+    assert parse_typed("see " + " " * 300 + "yo") == Context(BOS, "yo")
     # a partial word longer than the window stays a (hopeless) prefix, not a next-word query
-    assert parse_before_cursor("a " + "x" * 100).prefix == "x" * 100
-    assert len(parse_before_cursor("x" * 400).prefix) < 400
+    assert parse_typed("a " + "x" * 100).prefix == "x" * 100
+    assert len(parse_typed("x" * 400).prefix) < 400
 
 
 @pytest.mark.parametrize("n", [0, 1, 30, 63, 64, 65, 100, 255, 256, 257, 400])
@@ -82,4 +82,4 @@ def test_windowed_parse_equals_parsing_the_whole_tail(n: int) -> None:
     # filler of length n before "the wor": the result must not depend on the window
     for filler in ("a" * n, "word " * (n // 5), "." * n, " " * n):
         text = filler + " the wor"
-        assert parse_before_cursor(text) == Context("the", "wor")
+        assert parse_typed(text) == Context("the", "wor")
