@@ -70,6 +70,8 @@ def check_writable(path: PathArg, what: str, *, directory: bool = False) -> None
     by the temporary file the atomic writer would have created.
     """
     name = os.fspath(path)
+    if not name:
+        raise InvalidArgumentError(f"the {what} needs a file name, got an empty one")
     if directory:
         if os.path.exists(name) and not os.path.isdir(name):
             raise InvalidArgumentError(f"{name}: cannot write the {what} there: it exists and is not a directory")

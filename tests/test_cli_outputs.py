@@ -103,6 +103,7 @@ def test_an_output_may_share_a_name_pattern_but_not_the_file(work: Path, monkeyp
         (["train", "msgs.txt", "-o", "nodir/x.nwm"], "nodir/x.nwm: cannot write the model: directory nodir does not exist"),
         (["train", "msgs.txt", "-o", "msgs.txt/x.nwm"], "msgs.txt/x.nwm: cannot write the model: directory msgs.txt is not a directory"),
         (["export", "m.nwm", "--arpa", "rep"], "rep: cannot write the ARPA file there: it is a directory"),
+        (["export", "m.nwm", "--arpa", ""], "the ARPA file needs a file name, got an empty one"),
         (["split", "msgs.txt", "--train-out", "a.txt", "--test-out", "no/b.txt"], "no/b.txt: cannot write the test part"),
         (["eval", "m.nwm", "held.txt", "--report", "msgs.txt", "--no-baselines"], "msgs.txt: cannot write the report directory there"),
         (["tune", "m.nwm", "held.txt", "--report", "msgs.txt/r", "--no-ksr-curve"], "msgs.txt/r: cannot create the report directory"),
