@@ -185,7 +185,7 @@ def _parser() -> _Parser:
     lv = sub.add_parser("live", help="type in the terminal and watch suggestions update on every key")
     lv.add_argument("model")
     lv.add_argument("-k", type=_positive, default=5, help="suggestions shown (default %(default)s)")
-    lv.add_argument("--lam", type=_lam, default=None, help="override the model's λ")
+    lv.add_argument("--lam", type=_lam, default=None, help="override the model's λ (default: the model's own)")
     return p
 
 
@@ -623,7 +623,7 @@ def _cmd_serve(args: argparse.Namespace) -> int:
 
 
 def _cmd_live(args: argparse.Namespace) -> int:
-    from ._live import run_live
+    from .live import run_live
 
     if not (sys.stdin.isatty() and sys.stdout.isatty()):
         raise UsageError("live needs a terminal (stdin and stdout must be a TTY)")
