@@ -13,7 +13,8 @@ Keys (in the message box):
     Enter         send the message: the personal layer learns it, the box is cleared
     Shift+Enter   a new line inside the message
 Accepting replaces the partial word before the cursor and adds a space. Clicking a
-suggestion button does the same.
+suggestion button does the same. The choice row shows one button per suggestion the
+engine has (at most k) and "(no suggestion)" when the partial word matches nothing.
 
 Without MODEL, the first run trains the bundled demo corpus (examples/data/demo_messages.txt)
 into ``demo.nwm`` in the cache directory and later runs reuse it (retrained only when the
@@ -147,15 +148,23 @@ class TypingBox:
         self.frame.pack(fill="both", expand=True)
         self.frame.columnconfigure(0, weight=1)
 
+        # the choice row: one button per suggestion the engine has, in fixed grid columns so a
+        # hidden button (grid_remove) comes back in its place; empty slots are not shown at all
         row = ttk.Frame(self.frame)
         row.grid(row=0, column=0, columnspan=2, sticky="ew", pady=(0, 6))
         self.buttons: list[ttk.Button] = []
         for i in range(k):
             b = ttk.Button(row, style="Suggestion.TButton", command=functools.partial(self.accept, i), takefocus=False)
-            b.pack(side="left", padx=(0, 6))
+            b.grid(row=0, column=i, padx=(0, 6), sticky="w")
             self.buttons.append(b)
+        self.no_suggestion = ttk.Label(row, text="(no suggestion)", style="Status.TLabel")
+        self.no_suggestion.grid(row=0, column=k, sticky="w")
+        row.columnconfigure(k, weight=1)
         self.latency_label = ttk.Label(row, style="Latency.TLabel", width=9, anchor="e")
-        self.latency_label.pack(side="right")
+        self.latency_label.grid(row=0, column=k + 1, sticky="e")
+        # the row keeps a button's height when no button is shown: the message box never jumps
+        row.update_idletasks()
+        row.rowconfigure(0, minsize=self.buttons[0].winfo_reqheight())
 
         # the interface font, a little larger: a message box, not a code editor
         font = tkfont.nametofont("TkDefaultFont").copy()
@@ -218,14 +227,19 @@ class TypingBox:
         for i, b in enumerate(self.buttons):
             if i < len(self.suggestions):
                 key = "Tab" if i == 0 else f"Alt+{i + 1}"
-                b.configure(text=f"{self.suggestions[i].word}   {key}", state="normal")
+                b.configure(text=f"{self.suggestions[i].word}   {key}")
+                b.grid()
             else:
-                b.configure(text="", state="disabled")
+                b.grid_remove()  # fewer suggestions than buttons: the rest are not shown, not left empty
+        if self.suggestions:
+            self.no_suggestion.grid_remove()
+        else:
+            self.no_suggestion.grid()
         self.latency_label.configure(text=format_latency(self.last_latency))
 
     def choice_words(self) -> list[str]:
-        """The words on the enabled buttons, in order (what the user sees)."""
-        return [str(b.cget("text")).rsplit("   ", 1)[0] for b in self.buttons if str(b.cget("state")) != "disabled"]
+        """The words on the shown buttons, in order (what the user sees)."""
+        return [str(b.cget("text")).rsplit("   ", 1)[0] for b in self.buttons if b.winfo_manager()]
 
     # -- actions ----------------------------------------------------------------------------------
 
