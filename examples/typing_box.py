@@ -205,11 +205,11 @@ class TypingBox:
         """The text the engine sees: everything before the insertion cursor."""
         return self.text.get("1.0", "insert")
 
-    def suggest(self, text: str) -> list[Suggestion]:
+    def suggest(self, typed: str) -> list[Suggestion]:
         """One query, to the layer when there is one (it mixes in the user's counts)."""
         if self.layer is not None:
-            return self.layer.suggest(text, self.k)
-        return self.model.suggest(text, self.k)
+            return self.layer.suggest(typed, self.k)
+        return self.model.suggest(typed, self.k)
 
     def schedule_refresh(self) -> None:
         """Re-rank once the current burst of events is handled (a paste is one query, not many)."""
@@ -220,9 +220,9 @@ class TypingBox:
     def refresh(self) -> None:
         """Ask the engine for the typed text and redraw the choice row with the latency."""
         self._pending = False
-        text = self.typed_text()
+        typed = self.typed_text()
         t0 = time.perf_counter()
-        self.suggestions = self.suggest(text)
+        self.suggestions = self.suggest(typed)
         self.last_latency = time.perf_counter() - t0
         for i, b in enumerate(self.buttons):
             if i < len(self.suggestions):

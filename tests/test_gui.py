@@ -324,6 +324,14 @@ def test_bad_k_is_refused(root: Any, model_path: Path) -> None:
 # -- no display needed ------------------------------------------------------------------------
 
 
+def test_the_query_parameter_is_named_typed() -> None:
+    # our own name for the text the engine is asked about (see tests/test_naming.py)
+    import inspect
+
+    for fn in (typing_box.TypingBox.suggest, typing_box.accepted_text):
+        assert "typed" in inspect.signature(fn).parameters, fn
+
+
 def test_accepted_text_replaces_the_partial_word() -> None:
     assert typing_box.accepted_text("bring the tr", "truing") == (2, "truing ")
     assert typing_box.accepted_text("bring the ", "truing") == (0, "truing ")
