@@ -38,10 +38,11 @@ from typing import Any, NamedTuple, Sequence
 from .model import Model, Suggestion
 from .text import parse_typed
 
-__all__ = ["Key", "KeyDecoder", "LineEditor", "Frame", "layout", "paint", "display_width", "run_live"]
+__all__ = ["HELP", "SHORT_HELP", "Key", "KeyDecoder", "LineEditor", "Frame", "layout", "paint", "display_width", "run_live"]
 
 #: what the top row says; cut to the terminal width like every other row
 HELP = "Tab or Alt+N accepts · Enter sends · Ctrl-D quits"
+SHORT_HELP = "Tab/Alt+N accept · ^D quits"
 #: the choice row when the engine has nothing for the typed text
 NO_SUGGESTION = "(no suggestion)"
 #: the size assumed when the terminal reports none (0×0 on some pseudo-terminals)
@@ -302,6 +303,11 @@ def _cut(s: str, columns: int) -> str:
     return "".join(out) + _MORE if columns >= 1 else ""
 
 
+def _help(columns: int) -> str:
+    """The help row's words: the long form if it fits, else the short one, cut if even that is too long."""
+    return HELP if len(HELP) <= columns else _cut(SHORT_HELP, columns)
+
+
 def _wrap_text(text: str, cursor: int, columns: int) -> tuple[list[str], tuple[int, int]]:
     """Break ``text`` into rows of at most ``columns`` display columns; where the cursor lands."""
     rows: list[str] = []
@@ -372,12 +378,12 @@ def layout(
     room = max(height, 1)
     help_lines: list[str] = []
     if len(choice_lines) + len(text_lines) < room:
-        if status and sum(map(display_width, status)) + 2 + _HELP_MIN <= columns:
-            left = _cut(HELP, columns - len(status) - 2)
-            pad = columns - sum(map(display_width, left)) - len(status)
-            help_lines = [left + " " * pad + status]
-        else:
-            help_lines = [_cut(HELP, columns)]
+        status_width = sum(map(display_width, status))
+        keep = columns - status_width - 2 if status and status_width + 2 + _HELP_MIN <= columns else columns
+        left = _help(keep)
+        if keep < columns:
+            left += " " * (columns - sum(map(display_width, left)) - status_width) + status
+        help_lines = [left]
     choice_lines = choice_lines[: max(room - 1, 0)]
     shown = max(room - len(help_lines) - len(choice_lines), 1)
     first = min(max(crow - shown + 1, 0), max(len(text_lines) - shown, 0))
