@@ -807,7 +807,7 @@ def _cmd_serve(args: argparse.Namespace) -> int:
 
 
 def _cmd_live(args: argparse.Namespace) -> int:
-    from ._live import run_live
+    from .live import run_live
 
     if not (sys.stdin.isatty() and sys.stdout.isatty()):
         raise UsageError("live needs a terminal (stdin and stdout must be a TTY)")
