@@ -768,18 +768,21 @@ def train(
     if isinstance(workers, bool) or not isinstance(workers, int) or workers < 0:
         raise InvalidArgumentError(f"workers must be an integer >= 0, got {workers!r}")
     workers = workers or (os.cpu_count() or 1)
-    bar = Progress("counting", enabled=progress)
+    bar = Progress("train", stages=2, enabled=progress)
+    bar.stage("counting", unit="B")  # total: the input files' sizes (compressed bytes for gzip)
     messages = iter_messages(sources, progress=bar.update)
     if workers == 1:
         builder = CountBuilder(memory_cap=memory_cap)
         builder.add_texts(messages)
     else:
         builder = _count_in_processes(messages, workers, memory_cap)
-    bar.done()
-    return _finish(
+    bar.stage("building the model file" if max_bytes is None else f"building and pruning to {max_bytes:,} bytes")
+    report = _finish(
         builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
         skyband_k=skyband_k, skyband_min=skyband_min, t0=t0, max_bytes=max_bytes, prune_rule=prune_rule,
     )
+    bar.done()
+    return report
 
 
 def _count_worker(inbox: Any, outbox: Any, memory_cap: int | None, spill_root: str) -> None:
