@@ -187,3 +187,90 @@ def test_eval_writes_no_progress_into_a_pipe(tmp_path: Path) -> None:
     r = subprocess.run([sys.executable, "-m", "nextword", "eval", str(tmp_path / "m.nwm"), str(tmp_path / "t.txt")],
                        capture_output=True, text=True, env=env)
     assert r.returncode == 0 and r.stderr == ""
+
+
+# ------------------------------------------------------------ the commands' stages, in process
+
+@pytest.fixture(scope="module")
+def topic_lines() -> list[str]:
+    from pydoc_data.topics import topics  # real English shipped with CPython
+
+    return [ln for k in sorted(topics)[:25] for ln in topics[k].splitlines() if ln.strip()]
+
+
+def _stderr_as_terminal(monkeypatch: pytest.MonkeyPatch) -> Tty:
+    err = Tty()
+    monkeypatch.setattr(sys, "stderr", err)
+    return err
+
+
+def test_train_shows_counting_in_bytes_then_building(
+    tmp_path: Path, topic_lines: list[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    import nextword
+
+    corpus = tmp_path / "c.txt"
+    corpus.write_text("\n".join(topic_lines) + "\n", encoding="utf-8")
+    err = _stderr_as_terminal(monkeypatch)
+    nextword.train(corpus, tmp_path / "m.nwm")
+    text = err.getvalue()
+    size = corpus.stat().st_size
+    assert "train [1/2] counting" in text and f"/{format_amount(size, 'B')}" in text  # total = the file's size
+    assert "train [2/2] building the model file" in text
+    assert text.endswith("\r")  # cleared at the end
+
+
+def test_tune_shows_each_stage(tmp_path: Path, topic_lines: list[str], monkeypatch: pytest.MonkeyPatch) -> None:
+    import nextword
+    from nextword.cli import main
+
+    nextword.train_texts(topic_lines[::2], tmp_path / "m.nwm", min_count=1)
+    held = tmp_path / "held.txt"
+    held.write_text("\n".join(topic_lines[1::2][:60]) + "\n", encoding="utf-8")
+    err = _stderr_as_terminal(monkeypatch)
+    code = main(["tune", str(tmp_path / "m.nwm"), str(held), "--test-percent", "30", "-o", str(tmp_path / "t.nwm"), "--json"])
+    assert code == 0
+    text = err.getvalue()
+    # search on, -o given: events, search, before, writing, after = 5 stages
+    for label in ("tune [1/5] held-out events", "tune [2/5] searching λ for KSR@3", "tune [3/5] measuring before",
+                  "tune [4/5] writing", "tune [5/5] measuring after"):
+        assert label in text, text
+    assert re.search(r"searching λ for KSR@3: [\d,]+/[\d,]+ messages", text)
+
+
+def test_prune_shows_scoring_and_trial_builds(tmp_path: Path, topic_lines: list[str], monkeypatch: pytest.MonkeyPatch) -> None:
+    import nextword
+    from nextword.cli import main
+
+    nextword.train_texts(topic_lines, tmp_path / "m.nwm", min_count=1)
+    budget = (tmp_path / "m.nwm").stat().st_size * 3 // 4
+    err = _stderr_as_terminal(monkeypatch)
+    assert main(["prune", str(tmp_path / "m.nwm"), "-o", str(tmp_path / "p.nwm"), "--max-size", str(budget), "--json"]) == 0
+    text = err.getvalue()
+    for label in ("prune reading the counts", "prune scoring", "pairs (entropy rule)", "prune building a file with",
+                  "prune writing"):
+        assert label in text, text
+
+
+def test_keystroke_search_reports_messages_over_all_lambda_runs(tmp_path: Path, topic_lines: list[str]) -> None:
+    import nextword
+    from nextword.tune import keystroke_search
+
+    nextword.train_texts(topic_lines[::2], tmp_path / "m.nwm", min_count=1)
+    model = nextword.load(tmp_path / "m.nwm")
+    held = topic_lines[1::2][:15]
+    seen: list[tuple[int, int]] = []
+    _, curve = keystroke_search(model, held, progress=lambda d, t: seen.append((d, t)))
+    done = [d for d, _ in seen]
+    assert done == sorted(done) and seen[-1] == (15 * len(curve), 15 * len(curve))  # every run, every message
+    # totals only shrink: an upper bound first (12 coarse λ + at most 10 new ones), then exact
+    totals = [t for _, t in seen]
+    assert totals == sorted(totals, reverse=True) and totals[0] <= 15 * 22
+
+
+def test_time_queries_reports_each_query() -> None:
+    from nextword.baselines import time_queries
+
+    seen: list[int] = []
+    times = time_queries(len, ["a", "bb", "ccc"], progress=seen.append)
+    assert seen == [1, 2, 3] and len(times) == 3
