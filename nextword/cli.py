@@ -301,10 +301,20 @@ def _cmd_eval(args: argparse.Namespace) -> int:
 
     model = load(args.model, lam=args.lam)
     ks = sorted(set(args.k))
-    logs = [(s.name, list(iter_messages([s]))) for s in open_sources(args.logs, fmt=args.format, field=args.field)]
-    # stages: the model, two λ baselines, then (with --train-data) 5 timing stages
+    # stages: reading, the model, two λ baselines, then (with --train-data) 6 timing stages
+    bar = Progress("eval", stages=2 + 2 * (not args.no_baselines) + 6 * bool(args.train_data))
+    sources = open_sources(args.logs, fmt=args.format, field=args.field)
+    sizes = [0 if s.name == "-" else os.path.getsize(s.name) for s in sources]
+    bar.stage("reading the logs", total=sum(sizes), unit="B")
+    logs: list[tuple[str, list[str]]] = []
+    for i, s in enumerate(sources):
+        before = sum(sizes[:i])
+
+        def read(done: int, _total: int, before: int = before) -> None:
+            bar.update(before + done)
+
+        logs.append((s.name, list(iter_messages([s], progress=read))))
     n_msgs = sum(1 for _, msgs in logs for m in msgs if m.strip())  # what evaluate() simulates
-    bar = Progress("eval", stages=1 + 2 * (not args.no_baselines) + 5 * bool(args.train_data))
     bar.stage("simulating typing", total=n_msgs, unit="messages")
     overall, per_log = evaluate(model, logs, ks, progress=bar.update)
     baselines: dict[str, Any] = {}
@@ -327,11 +337,10 @@ def _cmd_eval(args: argparse.Namespace) -> int:
         t0 = time.perf_counter()
         base = DictBigram(train_msgs, min_count=model.stats.get("min_count", 2), max_vocab=model.stats.get("max_vocab", 30000))
         fit = time.perf_counter() - t0
-        bar.stage("timing queries, engine then plain dicts", total=2 * len(queries), unit="queries")
+        bar.stage("timing the engine's queries", total=len(queries), unit="queries")
         eng = time_queries(lambda q: model.suggest(q, k), queries, progress=bar.update)
-        slow = time_queries(
-            lambda q: base.suggest_keys(q, k, model.lam), queries, progress=lambda n: bar.update(len(queries) + n)
-        )
+        bar.stage("timing the plain-dict baseline's queries", total=len(queries), unit="queries")
+        slow = time_queries(lambda q: base.suggest_keys(q, k, model.lam), queries, progress=bar.update)
         same = sum(
             [fold(s.word) for s in model.suggest(q, k)] == [w for w, _ in base.suggest_keys(q, k, model.lam)]
             for q in queries

@@ -171,7 +171,8 @@ def test_eval_shows_its_stages_on_a_terminal_stderr(tmp_path: Path) -> None:
     out = proc.stdout.read().decode() if proc.stdout else ""
     assert proc.returncode == 0, err
     assert "KSR" in out and "\r" not in out  # results on stdout, untouched by the progress line
-    for label in ("eval [1/3] simulating typing", "eval [2/3] baseline unigram only", "eval [3/3] baseline bigram only"):
+    for label in ("eval [1/4] reading the logs", "eval [2/4] simulating typing", "eval [3/4] baseline unigram only",
+                  "eval [4/4] baseline bigram only"):
         assert label in err, err
     assert re.search(r"\d+/300 messages", err), err  # 300 test messages, none blank
     assert "300/300 messages" in err  # each stage's last message is always drawn
