@@ -7,8 +7,12 @@ update costs one clock read. The line reads
     eval [2/4] baseline λ = 0: 1,234/5,000 messages  24.7%  512 messages/s  ETA 0:07
 
 (stage index, label, done/total, share, rate, estimated time left). A stage whose total
-is unknown shows the count, the rate and the elapsed time instead. Nothing at all is
-written when the stream is not a terminal, so pipes, logs and ``--json`` output stay clean.
+is unknown shows the count, the rate and the elapsed time instead. A line that has not
+been redrawn for a second (a step with no progress calls of its own, such as a library's
+fit) is redrawn by a small daemon thread, so its elapsed time keeps moving and the
+command never looks stuck; :meth:`Progress.done` stops it (call it in a ``finally``, so
+an error message starts on a clean line). Nothing at all is written, and no thread is
+started, when the stream is not a terminal, so pipes, logs and ``--json`` output stay clean.
 
 Why not tqdm or rich: one line with a stage label, a count and an ETA is ~100 lines,
 the runtime dependencies stay numpy, marisa-trie and msgpack, and this class takes a
@@ -19,12 +23,14 @@ from __future__ import annotations
 
 import shutil
 import sys
+import threading
 import time
 from typing import Callable, TextIO
 
-__all__ = ["Progress", "format_duration", "format_amount"]
+__all__ = ["Progress", "format_duration", "format_amount", "DEFAULT_INTERVAL", "DEFAULT_TICK"]
 
 DEFAULT_INTERVAL = 0.1  # seconds between redraws: at most 10 a second
+DEFAULT_TICK = 1.0  # a line not redrawn for this long is redrawn by the ticker thread
 
 
 def format_duration(seconds: float) -> str:
@@ -64,6 +70,7 @@ class Progress:
         enabled: bool | None = None,
         stream: TextIO | None = None,
         interval: float = DEFAULT_INTERVAL,
+        tick: float | None = DEFAULT_TICK,
         clock: Callable[[], float] = time.monotonic,
     ) -> None:
         self.stream = stream if stream is not None else sys.stderr
@@ -86,6 +93,10 @@ class Progress:
         self._last = -float("inf")
         self._done = 0
         self._width = 0  # length of the line on screen, to blank it out when it shrinks
+        self.tick = tick  # None: no ticker thread (e.g. while worker processes are forked)
+        self._lock = threading.Lock()  # one writer at a time: the caller or the ticker
+        self._stop = threading.Event()
+        self._ticker: threading.Thread | None = None
 
     def stage(self, label: str, *, total: int = 0, unit: str = "") -> None:
         """Start the next stage: new label, counter reset, shown at once (even if it never updates)."""
@@ -96,7 +107,24 @@ class Progress:
         self._done = 0
         self.start = self._clock()
         if self.enabled:
-            self._draw(self.start)
+            with self._lock:
+                self._draw(self.start)
+            if self.tick is not None and self._ticker is None and not self._stop.is_set():
+                self._ticker = threading.Thread(target=self._tick, name="nextword-progress", daemon=True)
+                self._ticker.start()
+
+    @property
+    def ticking(self) -> bool:
+        """True while the ticker thread is running."""
+        return self._ticker is not None and self._ticker.is_alive()
+
+    def _tick(self) -> None:
+        assert self.tick is not None
+        while not self._stop.wait(min(self.interval, self.tick)):
+            with self._lock:
+                now = self._clock()
+                if not self._stop.is_set() and now - self._last >= self.tick:
+                    self._draw(now)
 
     def update(self, done: int, total: int | None = None, extra: str = "") -> None:
         """Report ``done`` units of the current stage (``total`` replaces the stage's total)."""
@@ -108,7 +136,8 @@ class Progress:
         now = self._clock()
         if now - self._last < self.interval and not (self.total and done >= self.total):
             return
-        self._draw(now, extra)
+        with self._lock:
+            self._draw(now, extra)
 
     def advance(self, n: int = 1) -> None:
         """Add ``n`` units to the current stage."""
@@ -152,9 +181,15 @@ class Progress:
         self._width = len(text)
 
     def done(self, message: str = "") -> None:
-        """Finish: clear the status line, or replace it with ``message`` (when enabled)."""
+        """Finish: stop the ticker, clear the status line or replace it with ``message`` (when enabled).
+
+        Safe to call more than once (the second call has nothing left to clear).
+        """
         if not self.enabled:
             return
+        self._stop.set()
+        if self._ticker is not None and self._ticker is not threading.current_thread():
+            self._ticker.join(timeout=5)
         if message:
             self.stream.write("\r" + message + " " * max(self._width - len(message), 0) + "\n")
         elif self._width:

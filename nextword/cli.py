@@ -295,14 +295,21 @@ def _cmd_info(args: argparse.Namespace) -> int:
 
 
 def _cmd_eval(args: argparse.Namespace) -> int:
+    # stages: reading, the model, two λ baselines, then (with --train-data) 6 timing stages
+    bar = Progress("eval", stages=2 + 2 * (not args.no_baselines) + 6 * bool(args.train_data))
+    try:
+        return _run_eval(args, bar)
+    finally:
+        bar.done()  # also on errors: the error message then starts on a clean line
+
+
+def _run_eval(args: argparse.Namespace, bar: Progress) -> int:
     from .baselines import DictBigram, nltk_baseline, sample_queries, time_queries
     from .evaluate import evaluate
     from .report import eval_data, text_report, write_report
 
     model = load(args.model, lam=args.lam)
     ks = sorted(set(args.k))
-    # stages: reading, the model, two λ baselines, then (with --train-data) 6 timing stages
-    bar = Progress("eval", stages=2 + 2 * (not args.no_baselines) + 6 * bool(args.train_data))
     sources = open_sources(args.logs, fmt=args.format, field=args.field)
     sizes = [0 if s.name == "-" else os.path.getsize(s.name) for s in sources]
     bar.stage("reading the logs", total=sum(sizes), unit="B")
@@ -393,6 +400,17 @@ def _cmd_split(args: argparse.Namespace) -> int:
 
 
 def _cmd_tune(args: argparse.Namespace) -> int:
+    # stages: held-out events, the keystroke search (unless off), before, writing (-o), after
+    search = args.objective == "keystrokes" or not args.no_ksr_curve
+    measured_after = bool(args.output) or not args.buckets
+    bar = Progress("tune", stages=2 + search + bool(args.output) + measured_after)
+    try:
+        return _run_tune(args, bar, search)
+    finally:
+        bar.done()  # also on errors: the error message then starts on a clean line
+
+
+def _run_tune(args: argparse.Namespace, bar: Progress, search: bool) -> int:
     from .evaluate import evaluate, is_held_out
     from .store import rewrite_model
     from .tune import events_of, fit_buckets, keystroke_search, optimal_lambda, perplexity_at
@@ -412,9 +430,6 @@ def _cmd_tune(args: argparse.Namespace) -> int:
         used = f"tuned and measured on the same {len(tune_msgs):,} messages (optimistic; use --test-percent)"
     if not tune_msgs or not test_msgs:
         raise InvalidArgumentError("not enough held-out messages to tune and measure")
-    search = args.objective == "keystrokes" or not args.no_ksr_curve
-    measured_after = bool(args.output) or not args.buckets
-    bar = Progress("tune", stages=2 + search + bool(args.output) + measured_after)
     bar.stage(f"held-out events of {len(tune_msgs):,} messages, perplexity curve")
     ev = events_of(model, tune_msgs)
     b, u = ev.bu()
@@ -572,14 +587,16 @@ def _cmd_prune(args: argparse.Namespace) -> int:
     model = load(args.model)
     check_new_output(args.model, args.output, "pruned model")
     bar = Progress("prune")
-    bar.stage(f"reading the counts of {args.model}")
-    _, chunks, info = prune_to_size(
-        tables_from_model(model), parse_size(args.max_size), rule=args.rule, lam=model.stored_lam,
-        skyband_k=model._sky_k, skyband_min=model._sky_min, progress=lambda label: bar.stage(label),
-    )
-    bar.stage(f"writing {args.output}")
-    atomic_write(args.output, chunks)
-    bar.done()
+    try:
+        bar.stage(f"reading the counts of {args.model}")
+        _, chunks, info = prune_to_size(
+            tables_from_model(model), parse_size(args.max_size), rule=args.rule, lam=model.stored_lam,
+            skyband_k=model._sky_k, skyband_min=model._sky_min, progress=lambda label: bar.stage(label),
+        )
+        bar.stage(f"writing {args.output}")
+        atomic_write(args.output, chunks)
+    finally:
+        bar.done()
     out = {"input_bytes": model.file_size, "output": args.output, "rule": args.rule, **info}
     if args.json:
         print(json.dumps(out))

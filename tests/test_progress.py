@@ -275,3 +275,43 @@ def test_time_queries_reports_each_query() -> None:
     seen: list[int] = []
     times = time_queries(len, ["a", "bb", "ccc"], progress=seen.append)
     assert seen == [1, 2, 3] and len(times) == 3
+
+
+def test_a_quiet_stage_is_redrawn_by_the_ticker_until_done() -> None:
+    import time
+
+    clock, out = Clock(), Tty()
+    bar = Progress("eval", stages=2, stream=out, clock=clock, tick=1.0)
+    bar.stage("nltk.lm fit")  # a step that makes no progress calls of its own
+    assert bar.ticking
+    clock.now += 5.0  # 5 s pass without an update: the ticker redraws the elapsed time
+    deadline = time.monotonic() + 10  # a wait for the thread, not a timing assertion
+    while "0:05 elapsed" not in out.getvalue() and time.monotonic() < deadline:
+        time.sleep(0.02)
+    assert "eval [1/2] nltk.lm fit: 0:05 elapsed" in out.getvalue()
+    bar.done()
+    assert not bar.ticking and out.getvalue().endswith("\r")
+
+
+def test_no_ticker_thread_without_a_terminal_or_when_turned_off() -> None:
+    quiet = Progress("x", stream=io.StringIO())
+    quiet.stage("a")
+    off = Progress("x", stream=Tty(), tick=None)
+    off.stage("a")
+    assert not quiet.ticking and not off.ticking
+
+
+def test_an_error_message_starts_on_a_clean_line(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    import nextword
+    from nextword.cli import main
+
+    (tmp_path / "t.txt").write_text("see you at the workshop\nthanks for fixing the brakes\n" * 5, encoding="utf-8")
+    nextword.train(tmp_path / "t.txt", tmp_path / "m.nwm", min_count=1, progress=False)
+    err = _stderr_as_terminal(monkeypatch)
+    missing = tmp_path / "no-such-training-file.txt"
+    code = main(["eval", str(tmp_path / "m.nwm"), str(tmp_path / "t.txt"), "--train-data", str(missing)])
+    assert code == 1
+    text = err.getvalue()
+    assert "eval [5/10] reading training data" in text  # the stage that failed was shown...
+    last = text.split("\r")[-1]
+    assert last.startswith("nextword: error: ") and str(missing) in last  # ...and cleared before the error
