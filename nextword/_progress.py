@@ -14,7 +14,7 @@ command never looks stuck; :meth:`Progress.done` stops it (call it in a ``finall
 an error message starts on a clean line). Nothing at all is written, and no thread is
 started, when the stream is not a terminal, so pipes, logs and ``--json`` output stay clean.
 
-Why not tqdm or rich: one line with a stage label, a count and an ETA is ~100 lines,
+Why not tqdm or rich: one line with a stage label, a count and an ETA is this one module,
 the runtime dependencies stay numpy, marisa-trie and msgpack, and this class takes a
 clock and a stream, so tests drive it without sleeping.
 """
