@@ -95,24 +95,35 @@ def sample_queries(messages: Iterable[str], n: int) -> list[str]:
     return out
 
 
-def time_queries(suggest: Callable[[str], object], queries: list[str]) -> list[float]:
-    """Seconds per call of ``suggest`` on each query."""
+def time_queries(
+    suggest: Callable[[str], object], queries: list[str], *, progress: Callable[[int], None] | None = None
+) -> list[float]:
+    """Seconds per call of ``suggest`` on each query; ``progress(n)`` after each (outside the timing)."""
     times = []
     for q in queries:
         t0 = time.perf_counter()
         suggest(q)
         times.append(time.perf_counter() - t0)
+        if progress is not None:
+            progress(len(times))
     return times
 
 
 def nltk_baseline(
-    train_messages: list[str], queries: list[str], k: int, lam: float, *, min_count: int = 2
+    train_messages: list[str],
+    queries: list[str],
+    k: int,
+    lam: float,
+    *,
+    min_count: int = 2,
+    progress: Callable[[int], None] | None = None,
 ) -> dict[str, Any]:
     """Fit nltk.lm's bigram MLE on the same tokens and answer top-k queries by scoring the vocabulary.
 
     The interpolated score is λ·MLE(w | v) + (1 − λ)·MLE(w), computed from nltk's own
     counts; every vocabulary word matching the prefix is scored, as a user of a
     general-purpose library would do. Needs nltk (the ``baselines`` extra).
+    ``progress(n)`` is called after each timed query (the fit comes first).
     """
     try:
         from nltk.lm import MLE
@@ -138,5 +149,5 @@ def nltk_baseline(
         scored.sort(key=lambda t: (-t[0], t[1]))
         return [(w, s) for s, w in scored[:k]]
 
-    times = time_queries(suggest, queries)
+    times = time_queries(suggest, queries, progress=progress)
     return {"fit_seconds": fit_seconds, "query_seconds": times, "vocabulary": len(words)}

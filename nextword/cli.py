@@ -430,37 +430,62 @@ def _cmd_info(args: argparse.Namespace) -> int:
 
 
 def _cmd_eval(args: argparse.Namespace) -> int:
+    # stages: reading, the model, two λ baselines, then (with --train-data) 6 timing stages
+    bar = Progress("eval", stages=2 + 2 * (not args.no_baselines) + 6 * bool(args.train_data))
+    try:
+        return _run_eval(args, bar)
+    finally:
+        bar.done()  # also on errors: the error message then starts on a clean line
+
+
+def _run_eval(args: argparse.Namespace, bar: Progress) -> int:
     from .baselines import DictBigram, nltk_baseline, sample_queries, time_queries
     from .evaluate import evaluate
     from .report import eval_data, text_report, write_report
 
     model = load(args.model, lam=args.lam)
     ks = sorted(set(args.k))
-    logs = [(s.name, list(iter_messages([s]))) for s in open_sources(args.logs, fmt=args.format, field=args.field)]
+    sources = open_sources(args.logs, fmt=args.format, field=args.field)
+    sizes = [0 if s.name == "-" else os.path.getsize(s.name) for s in sources]
+    bar.stage("reading the logs", total=sum(sizes), unit="B")
+    logs: list[tuple[str, list[str]]] = []
+    for i, s in enumerate(sources):
+        before = sum(sizes[:i])
+
+        def read(done: int, _total: int, before: int = before) -> None:
+            bar.update(before + done)
+
+        logs.append((s.name, list(iter_messages([s], progress=read))))
     for name, msgs in logs:
         if not any(m.strip() for m in msgs):
             raise InputDataError(f"{name}: no messages to evaluate (the log is empty or blank)")
-    bar = Progress("evaluating")
-    overall, per_log = evaluate(model, logs, ks, progress=lambda n: bar.update(0, 0, f"{n:,} messages"))
-    bar.done()
+    n_msgs = sum(1 for _, msgs in logs for m in msgs if m.strip())  # what evaluate() simulates
+    bar.stage("simulating typing", total=n_msgs, unit="messages")
+    overall, per_log = evaluate(model, logs, ks, progress=bar.update)
     baselines: dict[str, Any] = {}
     if not args.no_baselines:
         baselines["lambda"] = {}
         for label, lam in (("unigram only (λ = 0)", 0.0), ("bigram only (λ = 0.999)", 0.999)):
-            o, _ = evaluate(model, logs, ks, lam=lam)
+            bar.stage(f"baseline {label.split(' (')[0]}", total=n_msgs, unit="messages")
+            o, _ = evaluate(model, logs, ks, lam=lam, progress=bar.update)
             baselines["lambda"][label] = o.as_dict()
     if args.train_data:
+        bar.stage("reading training data")
         train_msgs = list(iter_messages(open_sources(args.train_data, fmt=args.format, field=args.field)))
         queries = sample_queries((m for _, msgs in logs for m in msgs), args.baseline_queries)
         k = max(ks)
+        bar.stage(f"timing our training on {len(train_msgs):,} messages")
         t0 = time.perf_counter()
         train_texts(train_msgs, _scratch(), min_count=model.stats.get("min_count", 2))
         ours_fit = time.perf_counter() - t0
+        bar.stage("fitting the plain-dict baseline")
         t0 = time.perf_counter()
         base = DictBigram(train_msgs, min_count=model.stats.get("min_count", 2), max_vocab=model.stats.get("max_vocab", 30000))
         fit = time.perf_counter() - t0
-        eng = time_queries(lambda q: model.suggest(q, k), queries)
-        slow = time_queries(lambda q: base.suggest_keys(q, k, model.lam), queries)
+        bar.stage("timing the engine's queries", total=len(queries), unit="queries")
+        eng = time_queries(lambda q: model.suggest(q, k), queries, progress=bar.update)
+        bar.stage("timing the plain-dict baseline's queries", total=len(queries), unit="queries")
+        slow = time_queries(lambda q: base.suggest_keys(q, k, model.lam), queries, progress=bar.update)
         same = sum(
             [fold(s.word) for s in model.suggest(q, k)] == [w for w, _ in base.suggest_keys(q, k, model.lam)]
             for q in queries
@@ -471,12 +496,14 @@ def _cmd_eval(args: argparse.Namespace) -> int:
             "engine_p50_us": eng_p50, "ratio_p50": statistics.median(slow) * 1e6 / eng_p50, "identical": same,
         }
         nq = queries[: max(1, min(len(queries), 20))]
-        n = nltk_baseline(train_msgs, nq, k, model.lam, min_count=model.stats.get("min_count", 2))
+        bar.stage("nltk.lm baseline: fit, then queries", total=len(nq), unit="queries")
+        n = nltk_baseline(train_msgs, nq, k, model.lam, min_count=model.stats.get("min_count", 2), progress=bar.update)
         n_p50 = statistics.median(n["query_seconds"]) * 1e6
         baselines["nltk"] = {
             "fit_seconds": n["fit_seconds"], "fit_ratio": n["fit_seconds"] / ours_fit, "queries": len(nq),
             "p50_us": n_p50, "ratio_p50": n_p50 / eng_p50, "engine_fit_seconds": ours_fit,
         }
+    bar.done()
     data = eval_data(args.model, overall, per_log, baselines)
     if args.report:
         write_report(args.report, data, overall.latencies)
@@ -542,6 +569,17 @@ def _cmd_split(args: argparse.Namespace) -> int:
 
 
 def _cmd_tune(args: argparse.Namespace) -> int:
+    # stages: held-out events, the keystroke search (unless off), before, writing (-o), after
+    search = args.objective == "keystrokes" or not args.no_ksr_curve
+    measured_after = bool(args.output) or not args.buckets
+    bar = Progress("tune", stages=2 + search + bool(args.output) + measured_after)
+    try:
+        return _run_tune(args, bar, search)
+    finally:
+        bar.done()  # also on errors: the error message then starts on a clean line
+
+
+def _run_tune(args: argparse.Namespace, bar: Progress, search: bool) -> int:
     from .evaluate import evaluate, is_held_out
     from .store import rewrite_model
     from .tune import events_of, fit_buckets, keystroke_search, optimal_lambda, perplexity_at
@@ -561,8 +599,7 @@ def _cmd_tune(args: argparse.Namespace) -> int:
         used = f"tuned and measured on the same {len(tune_msgs):,} messages (optimistic; use --test-percent)"
     if not tune_msgs or not test_msgs:
         raise InvalidArgumentError("not enough held-out messages to tune and measure")
-    bar = Progress("tuning")
-    bar.update(0, 0, "counting held-out events")
+    bar.stage(f"held-out events of {len(tune_msgs):,} messages, perplexity curve")
     ev = events_of(model, tune_msgs)
     b, u = ev.bu()
     ppl_lam = optimal_lambda(b, u)
@@ -571,22 +608,23 @@ def _cmd_tune(args: argparse.Namespace) -> int:
     ksr_curve: dict[float, float] = {}
     buckets = None
     ksr_lam = None
-    if args.objective == "keystrokes" or not args.no_ksr_curve:
-        bar.update(0, 0, "searching λ for keystroke savings")
-        ksr_lam, ksr_curve = keystroke_search(model, tune_msgs, k=args.k)
+    if search:
+        bar.stage(f"searching λ for KSR@{args.k}", unit="messages")
+        ksr_lam, ksr_curve = keystroke_search(model, tune_msgs, k=args.k, progress=bar.update)
     if args.objective == "keystrokes" and ksr_lam is not None:
         chosen = ksr_lam
     else:
         chosen = ppl_lam
         if args.buckets:
             buckets = fit_buckets(ev, min_events=args.min_bucket_events)
-    bar.done()
+    n_test = sum(1 for m in test_msgs if m.strip())
 
-    def measure(m: Model) -> dict[str, float]:
-        overall, _ = evaluate(m, [("test", test_msgs)], (args.k,))
+    def measure(m: Model, when: str) -> dict[str, float]:
+        bar.stage(f"measuring {when} on {n_test:,} messages", total=n_test, unit="messages")
+        overall, _ = evaluate(m, [("test", test_msgs)], (args.k,), progress=bar.update)
         return {"perplexity": overall.perplexity, "ksr": overall.per_k[args.k].ksr}
 
-    before = measure(model)
+    before = measure(model, "before")
     result: dict[str, Any] = {
         "model": args.model,
         "objective": args.objective,
@@ -602,12 +640,14 @@ def _cmd_tune(args: argparse.Namespace) -> int:
         "before": before,
     }
     if args.output:
+        bar.stage(f"writing {args.output}")
         rewrite_model(args.model, args.output, lam=chosen, buckets=None if buckets is None else buckets.as_meta())
         result["output"] = args.output
-        result["after"] = measure(load(args.output))
+        result["after"] = measure(load(args.output), "after")
     else:
         tuned = load(args.model, lam=chosen)
-        result["after"] = measure(tuned) if buckets is None else None
+        result["after"] = measure(tuned, "after") if buckets is None else None
+    bar.done()
     if args.report:
         _tune_report(args.report, result)
     if args.json:
@@ -639,54 +679,24 @@ def _cmd_tune(args: argparse.Namespace) -> int:
 def _tune_report(out_dir: str, result: dict[str, Any]) -> None:
     from pathlib import Path
 
+    from .report import PLOTS_SKIPPED, plots_available, save_figure, tune_figures
     from .store import atomic_write
 
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    lines = [f"# λ tuning of `{result['model']}`", "", result["held_out_use"], "", "| λ | perplexity |", "|---|---|"]
+    lines = [f"# λ tuning of `{result['model']}`", "", result["held_out_use"], "",
+             f"Chosen λ = {result['chosen_lambda']:.4f} ({result['objective']}).", "", "| λ | perplexity |", "|---|---|"]
     lines += [f"| {r['lambda']:.4f} | {r['perplexity']:.2f} |" for r in result["perplexity_curve"]]
     if result["ksr_curve"]:
         lines += ["", f"| λ | KSR@{result['k']} |", "|---|---|"]
         lines += [f"| {r['lambda']:.4f} | {100 * r['ksr']:.2f}% |" for r in result["ksr_curve"]]
-    try:
-        import matplotlib
-
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
-    except ImportError:
-        lines += ["", "_Plots skipped: matplotlib is not installed (pip install 'nextword[plot]')._"]
+    if not plots_available():
+        lines += ["", PLOTS_SKIPPED]
     else:
-        fig, ax = plt.subplots(figsize=(5, 3.5))
-        pc = result["perplexity_curve"]
-        ax.plot([r["lambda"] for r in pc], [r["perplexity"] for r in pc], "o-")
-        ax.set_xlabel("λ")
-        ax.set_ylabel("held-out perplexity")
-        fig.tight_layout()
-        _save_png(fig, out / "perplexity.png")
-        plt.close(fig)
-        lines += ["", "![perplexity](perplexity.png)"]
-        if result["ksr_curve"]:
-            fig, ax = plt.subplots(figsize=(5, 3.5))
-            kc = result["ksr_curve"]
-            ax.plot([r["lambda"] for r in kc], [100 * r["ksr"] for r in kc], "o-")
-            ax.set_xlabel("λ")
-            ax.set_ylabel(f"KSR@{result['k']} (%)")
-            fig.tight_layout()
-            _save_png(fig, out / "ksr.png")
-            plt.close(fig)
-            lines += ["", "![ksr](ksr.png)"]
+        for name, fig in tune_figures(result).items():
+            save_figure(fig, out / name)
+            lines += ["", f"![{Path(name).stem}]({name})"]
     atomic_write(out / "tune.md", [("\n".join(lines) + "\n").encode("utf-8")])
-
-
-def _save_png(fig: Any, path: Any) -> None:
-    """Write a matplotlib figure atomically, like every other output."""
-    import io
-
-    from .store import atomic_write
-
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=120)
-    atomic_write(path, [buf.getvalue()])
 
 
 def _cmd_personal(args: argparse.Namespace) -> int:
@@ -745,11 +755,17 @@ def _cmd_prune(args: argparse.Namespace) -> int:
 
     model = load(args.model)
     check_new_output(args.model, args.output, "pruned model")
-    _, chunks, info = prune_to_size(
-        tables_from_model(model), parse_size(args.max_size), rule=args.rule, lam=model.stored_lam,
-        skyband_k=model._sky_k, skyband_min=model._sky_min,
-    )
-    atomic_write(args.output, chunks)
+    bar = Progress("prune")
+    try:
+        bar.stage(f"reading the counts of {args.model}")
+        _, chunks, info = prune_to_size(
+            tables_from_model(model), parse_size(args.max_size), rule=args.rule, lam=model.stored_lam,
+            skyband_k=model._sky_k, skyband_min=model._sky_min, progress=lambda label: bar.stage(label),
+        )
+        bar.stage(f"writing {args.output}")
+        atomic_write(args.output, chunks)
+    finally:
+        bar.done()
     out = {"input_bytes": model.file_size, "output": args.output, "rule": args.rule, **info}
     if args.json:
         print(json.dumps(out))

@@ -254,6 +254,8 @@ def evaluate(
 
     ``logs`` yields (name, messages) pairs; each message iterable is consumed once
     (perplexity and the out-of-vocabulary rate are computed on the same pass).
+    ``progress(n)`` is called after each simulated (non-blank) message with the number
+    done so far, over all logs.
     """
     ks = tuple(sorted(set(ks)))
     if not ks or any(isinstance(k, bool) or not isinstance(k, int) or k < 1 for k in ks):
@@ -277,7 +279,7 @@ def evaluate(
                 st.per_k[k].add(ks_stats)
             st.messages += 1
             done += 1
-            if progress is not None and done % 64 == 0:
+            if progress is not None:  # every message: the progress line throttles its own redraws
                 progress(done)
         st.seconds = time.perf_counter() - t0
         if kept:

@@ -22,7 +22,7 @@ from typing import Any, Iterable, Iterator, NamedTuple, Sequence
 
 import numpy as np
 
-from ._progress import Progress
+from ._progress import DEFAULT_TICK, Progress
 from .corpus import Format, iter_messages, open_sources
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables, batch_chars, join_batches
 from .errors import InputDataError, InvalidArgumentError, ModelFormatError
@@ -768,18 +768,23 @@ def train(
     if isinstance(workers, bool) or not isinstance(workers, int) or workers < 0:
         raise InvalidArgumentError(f"workers must be an integer >= 0, got {workers!r}")
     workers = workers or (os.cpu_count() or 1)
-    bar = Progress("counting", enabled=progress)
-    messages = iter_messages(sources, progress=bar.update)
-    if workers == 1:
-        builder = CountBuilder(memory_cap=memory_cap)
-        builder.add_texts(messages)
-    else:
-        builder = _count_in_processes(messages, workers, memory_cap)
-    bar.done()
-    return _finish(
-        builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
-        skyband_k=skyband_k, skyband_min=skyband_min, t0=t0, max_bytes=max_bytes, prune_rule=prune_rule,
-    )
+    # no ticker thread when worker processes are forked (a thread at fork time risks a deadlock)
+    bar = Progress("train", stages=2, enabled=progress, tick=None if workers > 1 else DEFAULT_TICK)
+    try:
+        bar.stage("counting", unit="B")  # total: the input files' sizes (compressed bytes for gzip)
+        messages = iter_messages(sources, progress=bar.update)
+        if workers == 1:
+            builder = CountBuilder(memory_cap=memory_cap)
+            builder.add_texts(messages)
+        else:
+            builder = _count_in_processes(messages, workers, memory_cap)
+        bar.stage("building the model file" if max_bytes is None else f"building and pruning to {max_bytes:,} bytes")
+        return _finish(
+            builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
+            skyband_k=skyband_k, skyband_min=skyband_min, t0=t0, max_bytes=max_bytes, prune_rule=prune_rule,
+        )
+    finally:
+        bar.done()  # also on errors: the error message then starts on a clean line
 
 
 def _count_worker(inbox: Any, outbox: Any, memory_cap: int | None, spill_root: str) -> None:

@@ -21,7 +21,7 @@ Measured figures: bench/RESULTS.md, "Size budget".
 from __future__ import annotations
 
 import re
-from typing import Literal
+from typing import Callable, Literal
 
 import numpy as np
 
@@ -179,17 +179,28 @@ def vocabulary_bytes(tables: CountTables, *, lam: float = 0.9, **build: int) -> 
 
 
 def prune_to_size(
-    tables: CountTables, max_bytes: int, *, rule: Rule = "entropy", lam: float = 0.9, **build: int
+    tables: CountTables,
+    max_bytes: int,
+    *,
+    rule: Rule = "entropy",
+    lam: float = 0.9,
+    progress: Callable[[str], None] | None = None,
+    **build: int,
 ) -> tuple[CountTables, list[bytes | memoryview], dict[str, float]]:
     """Keep the most valuable pairs that fit ``max_bytes``; returns (tables, file chunks, info).
 
     The file size is measured, not estimated: candidate sizes come from a linear fit of
     bytes against kept pairs, then the count is lowered until the encoded file fits.
+    ``progress(label)`` is called before each expensive step (scoring, each trial build).
     """
+    if progress is not None:
+        progress(f"scoring {len(tables.pair_count):,} pairs ({rule} rule)")
     order = np.argsort(-pair_scores(tables, rule, lam), kind="stable")  # most valuable first
     total_pairs = len(order)
 
     def build_with(k: int) -> tuple[CountTables, int, list[bytes | memoryview]]:
+        if progress is not None:
+            progress(f"building a file with {k:,} of {total_pairs:,} pairs")
         keep = np.zeros(total_pairs, dtype=bool)
         keep[order[:k]] = True
         pruned = prune_tables(tables, keep)

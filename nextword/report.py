@@ -9,12 +9,26 @@ from __future__ import annotations
 import math
 import os
 from pathlib import Path
-from typing import Any
+from typing import Any, Sequence
 
+from .errors import InvalidArgumentError
 from .evaluate import LogStats
 from .store import atomic_write
 
-__all__ = ["eval_data", "text_report", "markdown_report", "write_report"]
+__all__ = [
+    "eval_data",
+    "text_report",
+    "markdown_report",
+    "write_report",
+    "plots_available",
+    "save_figure",
+    "identical_to",
+    "ksr_figure",
+    "latency_figure",
+    "tune_figures",
+    "size_tradeoff_figure",
+    "plot_size_tradeoff",
+]
 
 
 def eval_data(model_path: str, overall: LogStats, per_log: list[LogStats], baselines: dict[str, Any]) -> dict[str, Any]:
@@ -147,37 +161,235 @@ def write_report(out_dir: str | os.PathLike[str], data: dict[str, Any], latencie
     out.mkdir(parents=True, exist_ok=True)
     images: list[str] = []
     note = ""
-    try:
-        import matplotlib
-
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
-    except ImportError:
-        note = "_Plots skipped: matplotlib is not installed (pip install 'nextword[plot]')._"
+    if not plots_available():
+        note = PLOTS_SKIPPED
     else:
-        o = data["overall"]
-        ks = [r["k"] for r in o["per_k"]]
-        fig, ax = plt.subplots(figsize=(5, 3.5))
-        ax.plot(ks, [100 * r["ksr"] for r in o["per_k"]], "o-", label="this model")
-        for name, item in (data.get("baselines") or {}).get("lambda", {}).items():
-            ax.plot(ks, [100 * r["ksr"] for r in item["per_k"]], "o--", label=name)
-        ax.plot(ks, [100 * r["ceiling_ksr"] for r in o["per_k"]], ":", color="grey", label="ceiling")
-        ax.set_xlabel("k (suggestions shown)")
-        ax.set_ylabel("keystroke savings (%)")
-        ax.set_xticks(ks)
-        ax.legend(fontsize=8)
-        fig.tight_layout()
-        fig.savefig(out / "ksr.png", dpi=120)
-        plt.close(fig)
-        fig, ax = plt.subplots(figsize=(5, 3.5))
-        us = [t * 1e6 for t in latencies]
-        ax.hist(us, bins=100, range=(0, max(1.0, sorted(us)[int(0.999 * (len(us) - 1))])) if us else (0, 1))
-        ax.set_xlabel("suggest latency (µs)")
-        ax.set_ylabel("calls")
-        fig.tight_layout()
-        fig.savefig(out / "latency.png", dpi=120)
-        plt.close(fig)
+        save_figure(ksr_figure(data), out / "ksr.png")
+        save_figure(latency_figure(latencies), out / "latency.png")
         images = ["ksr.png", "latency.png"]
     md = markdown_report(data, images, note)
     atomic_write(out / "report.md", [md.encode("utf-8")])
     return [out / "report.md", *(out / i for i in images)]
+
+
+# ---------------------------------------------------------------- plots
+#
+# Every plot is built on a bare matplotlib ``Figure`` (no pyplot: no global state, no GUI
+# backend, safe in threads and tests) by a ``*_figure`` function that returns it, so tests
+# inspect lines, markers and legend texts instead of pixels; ``save_figure`` writes the PNG
+# atomically.
+
+PLOTS_SKIPPED = "_Plots skipped: matplotlib is not installed (pip install 'nextword[plot]')._"
+#: share of the latency distribution the histogram shows; the rest is stated on the plot
+LATENCY_CLIP_QUANTILE = 0.999
+#: markers and line styles given to series in turn, so equal series stay distinguishable
+_MARKERS = ("o", "s", "^", "D", "v", "P", "X", "*")
+_STYLES = ("-", "--", "-.", ":")
+_DPI = 120
+
+
+def plots_available() -> bool:
+    """True when matplotlib (the ``plot`` extra) can be imported."""
+    try:
+        import matplotlib  # noqa: F401
+    except ImportError:
+        return False
+    return True
+
+
+def _figure(width: float = 5.5, height: float = 3.8) -> tuple[Any, Any]:
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(width, height))
+    return fig, fig.subplots()
+
+
+def save_figure(fig: Any, path: str | os.PathLike[str]) -> Path:
+    """Write ``fig`` as a PNG, atomically (temp file + rename, like every file we write)."""
+    import io
+
+    buf = io.BytesIO()
+    fig.tight_layout()
+    fig.savefig(buf, format="png", dpi=_DPI)
+    atomic_write(path, [buf.getvalue()])
+    return Path(path)
+
+
+def identical_to(series: Sequence[tuple[str, Sequence[float]]]) -> dict[str, str]:
+    """For each series equal to an earlier one (same values, exactly), the earlier one's label.
+
+    Exact equality is the right test here: KSR values are ratios of keystroke counts, so
+    two models that save the same keystrokes produce the same floats.
+    """
+    out: dict[str, str] = {}
+    for j, (label, values) in enumerate(series):
+        for first, earlier in series[:j]:
+            if first not in out and list(earlier) == list(values):
+                out[label] = first
+                break
+    return out
+
+
+def _dodge(i: int, n: int, width: float) -> float:
+    """Horizontal offset of series ``i`` of ``n``, centred on 0 (so equal points sit side by side)."""
+    return (i - (n - 1) / 2) * width
+
+
+def ksr_figure(data: dict[str, Any]) -> Any:
+    """KSR against k for the model, its λ baselines and the ceiling.
+
+    Each series has its own marker and line style, and is shifted a little along k, so a
+    series hidden under another is still seen; a series equal to an earlier one says
+    "identical to ..." in the legend.
+    """
+    o = data["overall"]
+    ks = [r["k"] for r in o["per_k"]]
+    series: list[tuple[str, list[float]]] = [("this model", [100 * r["ksr"] for r in o["per_k"]])]
+    for name, item in (data.get("baselines") or {}).get("lambda", {}).items():
+        series.append((name, [100 * r["ksr"] for r in item["per_k"]]))
+    same = identical_to(series)
+    fig, ax = _figure()
+    step = min((b - a for a, b in zip(ks, ks[1:])), default=1)
+    for i, (label, ys) in enumerate(series):
+        xs = [k + _dodge(i, len(series), 0.08 * step) for k in ks]
+        shown = f"{label} (identical to {same[label]})" if label in same else label
+        ax.plot(xs, ys, marker=_MARKERS[i % len(_MARKERS)], linestyle=_STYLES[i % len(_STYLES)],
+                markerfacecolor="none" if i else None, markersize=7 - i, label=shown)
+    ax.plot(ks, [100 * r["ceiling_ksr"] for r in o["per_k"]], linestyle=":", marker="_", color="grey",
+            label="ceiling (perfect predictor)")
+    ax.set_xlabel("k (suggestions shown)")
+    ax.set_ylabel("keystroke savings (%)")
+    ax.set_xticks(ks)
+    ax.legend(fontsize=8)
+    return fig
+
+
+def latency_figure(latencies: Sequence[float], *, clip_quantile: float = LATENCY_CLIP_QUANTILE) -> Any:
+    """Histogram of suggest latencies (seconds in, µs shown), cut at ``clip_quantile``.
+
+    The cut is stated on the plot with the number of calls beyond it and the maximum, so
+    a long tail is never silently hidden.
+    """
+    import numpy as np
+
+    fig, ax = _figure()
+    us = np.asarray(latencies, dtype=np.float64) * 1e6
+    if len(us) == 0:
+        ax.text(0.5, 0.5, "no suggest calls", ha="center", va="center", transform=ax.transAxes)
+    else:
+        cut = max(float(np.quantile(us, clip_quantile)), 1.0)
+        beyond = int(np.count_nonzero(us > cut))
+        heights, _, _ = ax.hist(us[us <= cut], bins=100, range=(0.0, cut))
+        ax.set_ylim(0, max(float(np.max(heights)), 1.0) * 1.35)  # room for the note above the bars
+        p50 = float(np.median(us))
+        ax.axvline(p50, color="black", linestyle="--", linewidth=1)
+        note = (
+            f"median {p50:,.1f} µs (dashed line)\n"
+            f"axis cut at the {100 * clip_quantile:g}th percentile ({cut:,.1f} µs):\n"
+            f"{beyond:,} of {len(us):,} calls beyond it, max {float(us.max()):,.0f} µs"
+        )
+        ax.text(0.98, 0.97, note, ha="right", va="top", fontsize=7, transform=ax.transAxes,
+                bbox={"facecolor": "white", "edgecolor": "grey", "alpha": 0.9})
+    ax.set_xlabel("suggest latency (µs)")
+    ax.set_ylabel("calls")
+    return fig
+
+
+def _mark_lambda(ax: Any, xs: list[float], ys: list[float], chosen: float, why: str) -> None:
+    """A vertical line at the chosen λ and a star on the curve there (interpolated if off the grid)."""
+    import numpy as np
+
+    ax.axvline(chosen, color="tab:red", linestyle="--", linewidth=1, label=f"chosen λ = {chosen:.4f} ({why})")
+    order = np.argsort(xs)
+    y = float(np.interp(chosen, np.asarray(xs)[order], np.asarray(ys)[order]))
+    ax.plot([chosen], [y], marker="*", markersize=12, color="tab:red", linestyle="none")
+
+
+def _mark_other(ax: Any, lam: float | None, chosen: float, xs: list[float], ys: list[float], name: str) -> None:
+    """A hollow triangle at the curve's own optimum when the chosen λ is a different one."""
+    if lam is None or round(float(lam), 4) == round(chosen, 4):
+        return
+    import numpy as np
+
+    order = np.argsort(xs)
+    y = float(np.interp(float(lam), np.asarray(xs)[order], np.asarray(ys)[order]))
+    ax.plot([lam], [y], marker="^", markersize=10, markerfacecolor="none", markeredgecolor="black",
+            linestyle="none", label=f"{name} λ = {float(lam):.4f}")
+
+
+def tune_figures(result: dict[str, Any]) -> dict[str, Any]:
+    """The figures of ``nextword tune --report``: {file name: Figure}, the chosen λ marked on each."""
+    chosen = float(result["chosen_lambda"])
+    why = str(result.get("objective", ""))
+    figs: dict[str, Any] = {}
+    fig, ax = _figure()
+    pc = result["perplexity_curve"]
+    xs, ys = [r["lambda"] for r in pc], [r["perplexity"] for r in pc]
+    ax.plot(xs, ys, "o-", label="held-out perplexity")
+    _mark_lambda(ax, xs, ys, chosen, why)
+    _mark_other(ax, result.get("perplexity_optimal_lambda"), chosen, xs, ys, "perplexity-optimal")
+    ax.set_xlabel("λ")
+    ax.set_ylabel("held-out perplexity")
+    ax.legend(fontsize=8)
+    figs["perplexity.png"] = fig
+    if result["ksr_curve"]:
+        fig, ax = _figure()
+        kc = result["ksr_curve"]
+        xs, ys = [r["lambda"] for r in kc], [100 * r["ksr"] for r in kc]
+        ax.plot(xs, ys, "o-", markersize=4, label=f"KSR@{result['k']}")
+        _mark_lambda(ax, xs, ys, chosen, why)
+        _mark_other(ax, result.get("keystroke_optimal_lambda"), chosen, xs, ys, "keystroke-optimal")
+        ax.set_xlabel("λ")
+        ax.set_ylabel(f"KSR@{result['k']} (%)")
+        ax.legend(fontsize=8)
+        figs["ksr.png"] = fig
+    return figs
+
+
+def size_tradeoff_figure(points: Sequence[tuple[int, float, str]], *, k: int = 3) -> Any:
+    """File size against KSR@k; see :func:`plot_size_tradeoff`."""
+    import numpy as np
+
+    if not points:
+        raise InvalidArgumentError("no points to plot: expected (bytes, ksr, label) tuples")
+    by_label: dict[str, list[tuple[int, float]]] = {}
+    for item in points:
+        try:
+            size, ksr, label = item
+        except (TypeError, ValueError):
+            raise InvalidArgumentError(f"expected a (bytes, ksr, label) tuple, got {item!r}") from None
+        if isinstance(size, bool) or not isinstance(size, (int, np.integer)) or size <= 0:
+            raise InvalidArgumentError(f"file size must be a whole number of bytes > 0, got {size!r}")
+        if not isinstance(ksr, (int, float, np.floating)) or not 0.0 <= float(ksr) <= 1.0:
+            raise InvalidArgumentError(f"KSR must be a fraction in [0, 1], got {ksr!r}")
+        by_label.setdefault(str(label), []).append((int(size), float(ksr)))
+    series = [(label, sorted(pts)) for label, pts in by_label.items()]
+    same = identical_to([(label, [v for pt in pts for v in pt]) for label, pts in series])
+    fig, ax = _figure(6.0, 4.0)
+    for i, (label, pts) in enumerate(series):
+        shown = f"{label} (identical to {same[label]})" if label in same else label
+        ax.plot([b / 1e6 for b, _ in pts], [100 * v for _, v in pts], marker=_MARKERS[i % len(_MARKERS)],
+                linestyle=_STYLES[i % len(_STYLES)] if len(pts) > 1 else "none",
+                markerfacecolor="none" if i else None, markersize=8 - min(i, 4), label=shown)
+    sizes = [b for _, pts in series for b, _ in pts]
+    if max(sizes) > 10 * min(sizes):
+        ax.set_xscale("log")
+    ax.set_xlabel("model file size (MB)")
+    ax.set_ylabel(f"KSR@{k} (%)")
+    ax.legend(fontsize=8)
+    return fig
+
+
+def plot_size_tradeoff(
+    points: Sequence[tuple[int, float, str]], path: str | os.PathLike[str], *, k: int = 3
+) -> Path:
+    """Write a PNG of model file size against keystroke savings; returns ``path``.
+
+    ``points`` are ``(file_bytes, ksr, label)``: ``ksr`` a fraction in [0, 1] (as
+    ``KStats.ksr`` gives it, plotted in %), ``label`` the series (e.g. the pruning rule).
+    Points sharing a label are joined in order of size; a label with one point (e.g.
+    "unpruned") is a lone marker. The size axis turns logarithmic when sizes span more
+    than 10×. Needs matplotlib (the ``plot`` extra); bad points raise InvalidArgumentError.
+    """
+    fig = size_tradeoff_figure(points, k=k)
+    return save_figure(fig, path)

@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Any, Sequence
+from typing import Any, Callable, Sequence
 
 import numpy as np
 
@@ -185,19 +185,34 @@ def keystroke_search(
     k: int = 3,
     coarse: Sequence[float] = (0.0, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 0.95, 0.99),
     refine_step: float = 0.01,
+    progress: Callable[[int, int], None] | None = None,
 ) -> tuple[float, dict[float, float]]:
     """λ maximising KSR@k: a coarse grid, then steps of ``refine_step`` around the best.
 
     Every run reuses the model's caches of prefix ranges, top lists and spellings, so
     later λ values cost only the ranking itself. Returns (best λ, {λ: KSR}); ties go to
     the smallest λ among the best.
+
+    ``progress(done, total)`` counts simulated messages over all λ runs; until the
+    refinement grid is known, ``total`` assumes the largest one any coarse best could
+    need (an upper bound), then it is exact.
     """
     curve: dict[float, float] = {}
+    n = sum(1 for m in lines if m.strip())  # the messages evaluate() simulates per λ
+    grid = {round(min(max(lam, 0.0), 1.0), 6) for lam in coarse}
+
+    def new_refine(best: float) -> int:  # λ values the refinement around ``best`` adds to the grid
+        lo, hi = max(0.0, best - 5 * refine_step), min(1.0, best + 5 * refine_step)
+        return len({round(min(lo + i * refine_step, 1.0), 6) for i in range(int(round((hi - lo) / refine_step)) + 1)} - grid)
+
+    runs = len(grid) + max(new_refine(b) for b in grid)
 
     def ksr(lam: float) -> float:
         lam = round(min(max(lam, 0.0), 1.0), 6)
         if lam not in curve:
-            overall, _ = evaluate(model, [("tune", lines)], (k,), lam=lam)
+            base = len(curve) * n
+            report = None if progress is None else (lambda d: progress(base + d, runs * n))
+            overall, _ = evaluate(model, [("tune", lines)], (k,), lam=lam, progress=report)
             curve[lam] = overall.per_k[k].ksr
         return curve[lam]
 
@@ -206,6 +221,7 @@ def keystroke_search(
     best = max(sorted(curve), key=lambda x: curve[x])
     lo, hi = max(0.0, best - 5 * refine_step), min(1.0, best + 5 * refine_step)
     steps = int(round((hi - lo) / refine_step))
+    runs = len(curve) + new_refine(best)
     for i in range(steps + 1):
         ksr(lo + i * refine_step)
     best = max(sorted(curve), key=lambda x: curve[x])
