@@ -531,15 +531,21 @@ def _cmd_split(args: argparse.Namespace) -> int:
         raise UsageError(
             f"--test-percent {args.test_percent} and --tune-percent {tune_percent} leave no training part (at most 99 together)"
         )
-    counts = split_messages(
-        open_sources(args.logs, fmt=args.format, field=args.field),
-        args.train_out,
-        args.test_out,
-        test_percent=args.test_percent,
-        salt=args.salt,
-        tune_out=args.tune_out,
-        tune_percent=tune_percent,
-    )
+    bar = Progress("split")
+    bar.stage("reading the inputs", unit="B")
+    try:
+        counts = split_messages(
+            open_sources(args.logs, fmt=args.format, field=args.field),
+            args.train_out,
+            args.test_out,
+            test_percent=args.test_percent,
+            salt=args.salt,
+            tune_out=args.tune_out,
+            tune_percent=tune_percent,
+            progress=bar.update,
+        )
+    finally:
+        bar.done()
     total = sum(counts.values())
     parts = [("train", args.train_out), ("test", args.test_out)] + ([("tune", args.tune_out)] if args.tune_out else [])
     for part, path in parts:

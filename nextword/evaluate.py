@@ -332,6 +332,7 @@ def split_messages(
     salt: str = "",
     tune_out: str | os.PathLike[str] | None = None,
     tune_percent: int = 0,
+    progress: Callable[[int, int], None] | None = None,
 ) -> dict[str, int]:
     """Copy each input line to ``train_out``, ``test_out`` or ``tune_out`` by a hash of its message.
 
@@ -348,7 +349,8 @@ def split_messages(
     independent split. Blank messages are dropped; lines keep their original bytes
     (JSON Lines keep their other fields); an output whose name ends in ``.gz`` is
     gzip-compressed. Outputs must differ from each other and from the inputs, and
-    are written atomically. Returns the number of messages in each part
+    are written atomically. ``progress(bytes_read, total_bytes)`` is called as the
+    inputs are read. Returns the number of messages in each part
     (``{"train": ..., "tune": ..., "test": ...}``; ``tune`` is 0 without ``tune_out``).
     """
     from .paths import check_outputs
@@ -374,7 +376,7 @@ def split_messages(
     rest = 100 - test_percent
     tune_salt = TUNE_SALT + salt
     parts: dict[str, list[bytes]] = {"train": [], "tune": [], "test": []}
-    for text, line in iter_records(sources):
+    for text, line in iter_records(sources, progress=progress):
         if not text.strip():
             continue
         if not line.endswith(b"\n"):

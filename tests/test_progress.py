@@ -253,6 +253,18 @@ def test_prune_shows_scoring_and_trial_builds(tmp_path: Path, topic_lines: list[
         assert label in text, text
 
 
+def test_split_shows_the_bytes_read(tmp_path: Path, topic_lines: list[str], monkeypatch: pytest.MonkeyPatch) -> None:
+    from nextword.cli import main
+
+    corpus = tmp_path / "c.txt"
+    corpus.write_text("\n".join(topic_lines) + "\n", encoding="utf-8")
+    err = _stderr_as_terminal(monkeypatch)
+    assert main(["split", str(corpus), "--train-out", str(tmp_path / "a"), "--test-out", str(tmp_path / "b")]) == 0
+    text = err.getvalue()
+    assert "split reading the inputs" in text and f"/{format_amount(corpus.stat().st_size, 'B')}" in text, text
+    assert text.endswith("\r")
+
+
 def test_keystroke_search_reports_messages_over_all_lambda_runs(tmp_path: Path, topic_lines: list[str]) -> None:
     import nextword
     from nextword.tune import keystroke_search
