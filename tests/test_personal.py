@@ -172,7 +172,7 @@ def test_damaged_or_truncated_files_raise_and_are_kept(base: nextword.Model, tmp
         with pytest.raises(ModelFormatError):
             PersonalLayer.load(base, path)
         assert path.read_bytes() == bad  # never silently replaced
-    with pytest.raises(ModelFormatError, match="cannot open"):
+    with pytest.raises(nextword.LayerNotFoundError, match="missing.nwp"):  # a missing file is not a damaged one
         PersonalLayer.load(base, tmp_path / "missing.nwp")
 
 
