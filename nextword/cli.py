@@ -511,43 +511,53 @@ def _tune_report(out_dir: str, result: dict[str, Any]) -> None:
 
 
 def _cmd_personal(args: argparse.Namespace) -> int:
-    from .personal import PersonalLayer
+    from .personal import JOURNAL_SUFFIX, PersonalLayer
 
     base = load(args.model)
-    layer = PersonalLayer.open(
-        base,
-        args.layer,
-        create=args.action in ("learn", "block") or args.create,
-        min_uses=args.min_uses,
-        half_life_messages=args.half_life_messages,
-        half_life_days=args.half_life_days,
-    )
+    if args.action in ("suggest", "info") and not args.create:
+        layer = PersonalLayer.load(base, args.layer)  # read only: a missing file is an error, never created
+    else:
+        layer = PersonalLayer.open(
+            base,
+            args.layer,
+            create=args.action in ("learn", "block") or args.create,
+            min_uses=args.min_uses,
+            half_life_messages=args.half_life_messages,
+            half_life_days=args.half_life_days,
+        )
     items = args.items if args.items or args.action in ("clear", "info") else [line.rstrip("\n") for line in sys.stdin]
     out: dict[str, Any] = {"layer": args.layer, "action": args.action}
     if args.action == "learn":
         for text in items:
             layer.learn(text)
         out["learned"] = len(items)
-    elif args.action in ("forget", "block", "unblock"):
+    elif args.action in ("forget", "block"):
         for word in items:
             getattr(layer, args.action)(word)
         out["words"] = items
+    elif args.action == "unblock":
+        out["words"] = items
+        out["not_blocked"] = [word for word in items if not layer.unblock(word)]
+        for word in out["not_blocked"]:
+            print(f"nextword: note: {word!r} was not blocked (nothing to unblock)", file=sys.stderr)
     elif args.action == "clear":
         layer.clear()
     elif args.action == "suggest":
         out["results"] = [
             {"text": t, "suggestions": [{"word": s.word, "prob": s.prob} for s in layer.suggest(t, args.k)]} for t in items
         ]
+    journal = args.layer + JOURNAL_SUFFIX
     out.update(
         {
             "messages": layer.messages,
             "entries": layer.entries,
             "tokens": layer.tokens,
             "weight": layer.weight,
-            "file_bytes": os.path.getsize(args.layer),
+            "file_bytes": os.path.getsize(args.layer) + (os.path.getsize(journal) if os.path.exists(journal) else 0),
             "blocklist": sorted(layer.blocklist),
         }
     )
+    layer.close()
     if args.json:
         print(json.dumps(out, ensure_ascii=False, indent=2))
     elif args.action == "suggest":

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import subprocess
 from pathlib import Path
 
 import pytest
@@ -58,3 +59,82 @@ def test_context_manager_closes_even_on_error(base: nextword.Model, tmp_path: Pa
             raise RuntimeError("boom")
     assert layer.closed
     assert PersonalLayer.load(base, path).messages == 1
+
+
+def test_public_readers_never_see_a_dict_change_size_while_another_thread_learns(base: nextword.Model) -> None:
+    import threading
+    import time
+
+    layer = PersonalLayer(base, strength=5.0, max_entries=400)
+    errors: list[BaseException] = []
+    calls = [0]
+    stop = time.monotonic() + 1.5
+
+    def writer() -> None:
+        i = 0
+        while time.monotonic() < stop:
+            layer.learn(f"the zorbing trip {i} with Zanele number{i}")  # new words every time: dicts grow
+            if i % 30 == 0:
+                layer.forget("zanele")
+            i += 1
+
+    def reader() -> None:
+        while time.monotonic() < stop:
+            try:
+                assert layer.entries >= 0
+                assert "</s>" in layer.vocabulary()
+                assert layer.tokens >= 0 and layer.count("zorbing") >= 0 and layer.pair_count("the", "zorbing") >= 0
+                calls[0] += 1
+            except BaseException as e:  # noqa: BLE001 - RuntimeError: dictionary changed size during iteration
+                errors.append(e)
+                return
+
+    threads = [threading.Thread(target=writer), threading.Thread(target=reader), threading.Thread(target=reader)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert not errors, errors[0]
+    assert calls[0] > 10
+
+
+def _cli(base: nextword.Model, layer: Path, *args: str) -> "subprocess.CompletedProcess[str]":
+    import os
+    import subprocess
+    import sys
+
+    root = Path(__file__).resolve().parent.parent
+    return subprocess.run(
+        [sys.executable, "-m", "nextword", "personal", str(layer), "--model", base.path, *args],
+        capture_output=True, text=True, env=dict(os.environ, PYTHONPATH=str(root)),
+    )
+
+
+def test_cli_reading_a_missing_layer_fails_in_one_line_and_creates_nothing(base: nextword.Model, tmp_path: Path) -> None:
+    layer = tmp_path / "typo.nwp"
+    for action in (["info"], ["suggest", "the zo"], ["forget", "zorbing"], ["unblock", "x"], ["clear"]):
+        r = _cli(base, layer, *action)
+        assert r.returncode == 1, (action, r.stderr)
+        assert r.stderr.startswith("nextword: error: ") and "typo.nwp" in r.stderr and r.stderr.count("\n") == 1
+        assert list(tmp_path.iterdir()) == []  # no layer, journal or lock file appeared
+    assert _cli(base, layer, "info", "--create", "--json").returncode == 0  # creating is explicit
+    assert layer.exists()
+    other = tmp_path / "new.nwp"
+    assert _cli(base, other, "learn", "the zorbing trip").returncode == 0  # learning creates
+    assert other.exists()
+
+
+def test_unblock_of_a_word_that_is_not_blocked_says_so(base: nextword.Model, tmp_path: Path) -> None:
+    import json
+
+    layer = tmp_path / "me.nwp"
+    assert _cli(base, layer, "block", "zanele").returncode == 0
+    r = _cli(base, layer, "unblock", "zanele", "zorbing", "--json")
+    assert r.returncode == 0, r.stderr
+    out = json.loads(r.stdout)
+    assert out["not_blocked"] == ["zorbing"] and out["blocklist"] == []
+    assert "'zorbing' was not blocked" in r.stderr and r.stderr.count("\n") == 1
+    with PersonalLayer.open(base, layer) as lib:  # the library answers with one bool
+        assert lib.unblock("zorbing") is False
+        lib.block("zorbing")
+        assert lib.unblock("zorbing") is True
