@@ -101,6 +101,7 @@ __all__ = [
     "LOCK_SUFFIX",
     "MAX_ENTRIES_LIMIT",
     "MAX_BLOCKED",
+    "MAX_WORD_CHARS",
 ]
 
 PERSONAL_MAGIC = b"\x89NWP\r\n\x1a\n"
@@ -109,15 +110,19 @@ JOURNAL_MAGIC = b"\x89NWJ\r\n\x1a\n"
 JOURNAL_SUFFIX = ".journal"
 LOCK_SUFFIX = ".lock"
 #: The largest ``max_entries`` a layer accepts (a full layer stays well inside ``_MAX_PAYLOAD``).
-MAX_ENTRIES_LIMIT = 1 << 19
+MAX_ENTRIES_LIMIT = 1 << 18
 #: The most words a blocklist holds.
 MAX_BLOCKED = 65_536
+#: Longer words (or spellings) are counted as unknown: nobody needs them offered, and
+#: the bound keeps every string a file may hold small.
+MAX_WORD_CHARS = 256
 
 _HEADER = struct.Struct("<8sHHQI")  # magic, major, minor, payload length, payload crc
 _JHEADER = struct.Struct("<8sHHQI")  # magic, major, minor, snapshot id, crc of the first 20 bytes
 _RECORD = struct.Struct("<II")  # payload length, payload crc
 _SNAPSHOT_MINOR = 1  # 1.1 adds snapshot_id (1.0 files read as id 0)
-_MAX_PAYLOAD = 32 << 20
+_MAX_PAYLOAD = 16 << 20
+_MAX_STR_BYTES = 4 * MAX_WORD_CHARS
 _MAX_RECORD = 1 << 20
 _MAX_JOURNAL = 16 << 20
 _COMPACT_MIN = 256 << 10
@@ -149,8 +154,10 @@ def _word_key(word: object, what: str = "word") -> str:
     """The counting key of one word given to forget/block/unblock, checked at the boundary."""
     w = _valid_text(word, what)
     key = fold(w)
-    if not key or _SPACE.search(key) or "<" in key or ">" in key:
-        raise InvalidArgumentError(f"{what} must be one word (no spaces, no '<' or '>'), got {ascii(word)}")
+    if not key or _SPACE.search(key) or "<" in key or ">" in key or len(key) > MAX_WORD_CHARS:
+        raise InvalidArgumentError(
+            f"{what} must be one word (no spaces, no '<' or '>', at most {MAX_WORD_CHARS} characters), got {ascii(word)}"
+        )
     return key
 
 
@@ -158,7 +165,7 @@ def _is_word_key(key: object) -> bool:
     """A well-formed stored word key: a non-empty folded str without spaces or angle brackets."""
     return (
         isinstance(key, str)
-        and key != ""
+        and 0 < len(key) <= MAX_WORD_CHARS
         and "<" not in key
         and ">" not in key
         and _SPACE.search(key) is None
@@ -337,7 +344,7 @@ class PersonalLayer:
             return self._entries()
 
     def _entries(self) -> int:
-        return len(self._uni) + sum(len(r) for r in self._big.values())
+        return len(self._uni) + self._npairs
 
     # -- state -------------------------------------------------------------------------------
 
@@ -349,6 +356,7 @@ class PersonalLayer:
         # counts are stored divided by the current decay factor: effective = stored * scale
         self._uni: dict[str, float] = {}
         self._big: dict[str, dict[str, float]] = {}
+        self._npairs = 0  # sum of len(row) over self._big, kept in step
         self._hist: dict[str, float] = {}
         self._total = 0.0
         self._scale = 1.0
@@ -509,7 +517,12 @@ class PersonalLayer:
             self._row_sorted.pop((h, ""), None)
             self._row_sorted.pop((h, w[:1]), None)
             row = self._big.setdefault(h, {})
-            row[w] = row.get(w, 0.0) + add
+            old = row.get(w)
+            if old is None:
+                self._npairs += 1
+                row[w] = add
+            else:
+                row[w] = old + add
             self._hist[h] = self._hist.get(h, 0.0) + add
             self._total += add
         for key, tok in rec["set"].items():
@@ -535,6 +548,7 @@ class PersonalLayer:
         row = self._big.pop(key, None)
         if row is not None:
             removed_entries += len(row)
+            self._npairs -= len(row)
             self._hist.pop(key, None)
         histories = list(self._big) if preds is None else preds.get(key, ())
         for h in histories:
@@ -544,6 +558,7 @@ class PersonalLayer:
             c = r.pop(key, None)
             if c is not None:
                 removed_entries += 1
+                self._npairs -= 1
                 self._hist[h] -= c
                 if not r:
                     del self._big[h]
@@ -567,6 +582,7 @@ class PersonalLayer:
             self._row_sorted.pop((h, w[:1]), None)
             row = self._big[h]
             del row[w]
+            self._npairs -= 1
             self._hist[h] -= c
             if not row:
                 del self._big[h]
@@ -941,7 +957,7 @@ class PersonalLayer:
         body = _packed_snapshot(payload)
         atomic_write(self._path, [_HEADER.pack(PERSONAL_MAGIC, 1, _SNAPSHOT_MINOR, len(body), zlib.crc32(body)), body], mode=_FILE_MODE)
         # the same state every other process will read from the file
-        self._install(msgpack.unpackb(body, raw=False, strict_map_key=True), self._path)
+        self._install(_decode_snapshot(body, self._path), self._path)
         if self._snap_fd is not None:
             os.close(self._snap_fd)
         self._snap_fd = os.open(self._path, os.O_RDONLY | os.O_CLOEXEC)
@@ -1034,6 +1050,7 @@ class PersonalLayer:
         self._last_time = snap["last_time"]
         self._uni = snap["unigram"]
         self._big = snap["bigram"]
+        self._npairs = sum(len(r) for r in self._big.values())
         self._hist = {h: math.fsum(r.values()) for h, r in self._big.items()}
         self._spelling = snap["spelling"]
         self._total = math.fsum(self._uni.values())
@@ -1093,7 +1110,7 @@ def _learn_record(message: str, when: float | None) -> Record:
                 key = EOS
             else:
                 key = fold(tok)
-                if not _is_word_key(key):  # a word whose folded form is not stable: never stored
+                if len(tok) > MAX_WORD_CHARS or not _is_word_key(key):  # too long, or its folded form is unstable
                     key = UNK
                 elif i > 0:
                     set_spelling[key] = tok  # the last mid-sentence spelling wins
@@ -1158,7 +1175,7 @@ def _parse_records(data: bytes, name: str, offset: int) -> tuple[list[Record], i
 
 def _check_record(body: bytes, where: str) -> Record:
     try:
-        rec = msgpack.unpackb(body, raw=False, strict_map_key=True, use_list=True)
+        rec = msgpack.unpackb(body, raw=False, strict_map_key=True, use_list=True, **_UNPACK_LIMITS)
     except (ValueError, TypeError, msgpack.UnpackException) as e:
         raise ModelFormatError(f"{where}: damaged journal record: {e}") from None
 
@@ -1199,7 +1216,7 @@ def _check_record(body: bytes, where: str) -> Record:
         if not isinstance(sp, dict):
             raise bad(f"{field} is not a map")
         for key, tok in sp.items():
-            if key not in words or not isinstance(tok, str) or fold(tok) != key or key in (EOS, UNK):
+            if key not in words or key in (EOS, UNK) or not isinstance(tok, str) or len(tok) > MAX_WORD_CHARS or fold(tok) != key:
                 raise bad(f"bad spelling {key!r} -> {tok!r}")
     return rec
 
@@ -1231,10 +1248,7 @@ def _read_snapshot(name: str) -> tuple[int, Any, int]:
             raise ModelFormatError(f"{name}: personal layer is truncated or has trailing bytes")
         if zlib.crc32(body) != crc:
             raise ModelFormatError(f"{name}: personal layer checksum mismatch (damaged file)")
-        try:
-            payload = msgpack.unpackb(body, raw=False, strict_map_key=True)
-        except (ValueError, TypeError, msgpack.UnpackException) as e:
-            raise ModelFormatError(f"{name}: damaged personal layer: {e}") from None
+        payload = _decode_snapshot(body, name)
     except OSError as e:
         os.close(fd)
         raise ModelFormatError(f"{name}: cannot read personal layer: {e.strerror}") from None
@@ -1242,6 +1256,92 @@ def _read_snapshot(name: str) -> tuple[int, Any, int]:
         os.close(fd)
         raise
     return fd, payload, size
+
+
+_UNPACK_LIMITS: dict[str, int] = {
+    "max_str_len": _MAX_STR_BYTES,
+    "max_bin_len": _MAX_STR_BYTES,
+    "max_array_len": MAX_BLOCKED,
+    "max_map_len": MAX_ENTRIES_LIMIT,
+    "max_ext_len": 0,
+}
+_CONTAINER_BYTES = frozenset([*range(0x80, 0xA0), 0xDC, 0xDD, 0xDE, 0xDF])  # msgpack fixmap, fixarray, array16/32, map16/32
+_SNAPSHOT_FIELDS = frozenset(("settings", "snapshot_id", "last_time", "messages", "unigram", "bigram", "spelling", "blocklist"))
+
+
+def _decode_snapshot(body: bytes, name: str) -> dict[str, Any]:
+    """Decode a snapshot payload, counting entries as their map headers arrive.
+
+    The work stays bounded by the entry cap: a map announcing more entries than the
+    layer's ``max_entries`` (or :data:`MAX_ENTRIES_LIMIT` before the settings are read)
+    is refused before any of its entries is decoded.
+    """
+
+    def bad(what: str) -> ModelFormatError:
+        return ModelFormatError(f"{name}: damaged personal layer: {what}")
+
+    u = msgpack.Unpacker(raw=False, strict_map_key=True, max_buffer_size=max(len(body), 1), **_UNPACK_LIMITS)
+    u.feed(body)
+    out: dict[str, Any] = {}
+    limit, used = MAX_ENTRIES_LIMIT, 0
+
+    def entries(m: int) -> None:
+        nonlocal used
+        used += m
+        if used > limit:
+            raise bad(f"more than {limit} entries (its max_entries)")
+
+    def scalar() -> Any:
+        """The next object, refused unread if it is an array or a map (no nesting where none belongs)."""
+        at = u.tell()
+        if at < len(body) and body[at] in _CONTAINER_BYTES:
+            raise bad(f"a list or map at byte {at} where a number or string belongs")
+        return u.unpack()
+
+    def flat_map(m: int) -> dict[Any, Any]:
+        return {scalar(): scalar() for _ in range(m)}
+
+    try:
+        for _ in range(u.read_map_header()):
+            key = scalar()
+            if key not in _SNAPSHOT_FIELDS or key in out:
+                raise bad(f"unexpected or repeated field {key!r}")
+            if key in ("unigram", "spelling"):
+                m = u.read_map_header()
+                if key == "unigram":
+                    entries(m)
+                elif m > limit:
+                    raise bad(f"{m} spellings, more than {limit}")
+                out[key] = flat_map(m)
+            elif key == "bigram":
+                rows: dict[Any, Any] = {}
+                for _ in range(u.read_map_header()):
+                    h = scalar()
+                    r = u.read_map_header()
+                    entries(r)
+                    rows[h] = flat_map(r)
+                out[key] = rows
+            elif key == "settings":
+                m = u.read_map_header()
+                if m > len(_SETTINGS_KEYS):
+                    raise bad(f"{m} settings, expected at most {len(_SETTINGS_KEYS)}")
+                value = flat_map(m)
+                out[key] = value
+                cap = value.get("max_entries")
+                if isinstance(cap, int) and not isinstance(cap, bool) and 16 <= cap < limit:
+                    limit = cap
+                    entries(0)
+            elif key == "blocklist":
+                out[key] = [scalar() for _ in range(u.read_array_header())]
+            else:
+                out[key] = scalar()
+        if u.tell() != len(body):
+            raise bad("trailing bytes after the payload")
+    except ModelFormatError:
+        raise
+    except (ValueError, TypeError, msgpack.UnpackException) as e:
+        raise bad(f"{type(e).__name__}: {e}") from None
+    return out
 
 
 def _check_snapshot(data: Any, name: str) -> dict[str, Any]:
@@ -1305,7 +1405,7 @@ def _check_snapshot(data: Any, name: str) -> dict[str, Any]:
         big[h] = r
     spelling: dict[str, str] = {}
     for key, tok in sp_in.items():
-        if key not in uni or key in (EOS, UNK) or not isinstance(tok, str) or fold(tok) != key:
+        if key not in uni or key in (EOS, UNK) or not isinstance(tok, str) or len(tok) > MAX_WORD_CHARS or fold(tok) != key:
             raise bad(f"bad spelling {key!r} -> {tok!r}")
         spelling[key] = tok
     blocked: list[str] = []

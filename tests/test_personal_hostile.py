@@ -256,6 +256,8 @@ BAD_RECORDS = [
     {"op": "learn", "when": None, "pairs": [["<s>", "zorbing", 1]], "set": {"zorbing": "Trip"}, "default": {}},
     {"op": "learn", "when": None, "pairs": [["<s>", "zorbing", 1]], "set": {}, "default": {"other": "Other"}},
     {"op": "learn", "when": None, "pairs": "zorbing", "set": {}, "default": {}},
+    {"op": "learn", "when": None, "pairs": [["<s>", "</s>", 1]], "set": {}, "default": {"</s>": "</s>"}},
+    {"op": "learn", "when": None, "pairs": [["<s>", "z" * 300, 1]], "set": {}, "default": {}},
     ["op", "learn"],
 ]
 

@@ -6,6 +6,8 @@ import subprocess
 from pathlib import Path
 
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
 import nextword
 from nextword import InputDataError, InvalidArgumentError, LayerNotFoundError
@@ -138,3 +140,45 @@ def test_unblock_of_a_word_that_is_not_blocked_says_so(base: nextword.Model, tmp
         assert lib.unblock("zorbing") is False
         lib.block("zorbing")
         assert lib.unblock("zorbing") is True
+
+
+OPS = st.one_of(
+    st.tuples(st.just("learn"), st.sampled_from([
+        "Ask Zanele about the zorbing trip", "the zorbing trip is on Friday", "Zanele booked it. 7 bikes!",
+        "Straße und STRASSE", "don’t forget the trip", "", "a", "x" * 300 + " long word",
+    ])),
+    st.tuples(st.sampled_from(["forget", "block", "unblock"]), st.sampled_from(["zanele", "Zorbing", "trip", "the", "bikes"])),
+    st.tuples(st.just("clear"), st.just("")),
+)
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(st.lists(OPS, max_size=14), st.sampled_from([None, 3.0]), st.sampled_from([16, 40, 65_536]))
+def test_file_and_memory_agree_after_any_changes(
+    base: nextword.Model, tmp_path_factory: pytest.TempPathFactory, ops: list[tuple[str, str]], half_life: float | None, cap: int
+) -> None:
+    import msgpack
+
+    path = tmp_path_factory.mktemp("rt") / "me.nwp"
+    memory = PersonalLayer(base, strength=3.0, half_life_messages=half_life, max_entries=cap)
+    filed = PersonalLayer.open(base, path, create=True, strength=3.0, half_life_messages=half_life, max_entries=cap)
+    for op, arg in ops:
+        for layer in (memory, filed):
+            if op == "learn":
+                layer.learn(arg)
+            elif op == "clear":
+                layer.clear()
+            else:
+                getattr(layer, op)(arg)
+    back = PersonalLayer.load(base, path)  # snapshot + journal replay
+    filed.save(path)  # compaction
+    compacted = PersonalLayer.load(base, path)
+    raw = msgpack.unpackb(path.read_bytes()[24:], raw=False)  # the payload, as docs/FORMAT.md lays it out
+    assert compacted.entries == len(raw["unigram"]) + sum(len(r) for r in raw["bigram"].values()) <= cap
+    for other in (filed, back, compacted):
+        assert other.messages == memory.messages and other.entries == memory.entries
+        assert other.blocklist == memory.blocklist
+        for w in ("zanele", "zorbing", "trip", "the", "strasse", "don't", "</s>", "<unk>"):
+            assert other.count(w) == pytest.approx(memory.count(w), rel=1e-12, abs=1e-300)
+        assert [w for w, _ in other.rank_keys("the", "", 5)] == [w for w, _ in memory.rank_keys("the", "", 5)]
+    filed.close()
