@@ -409,3 +409,24 @@ def test_cli_refuses_undecodable_bytes_in_one_line(base: nextword.Model, tmp_pat
     r = subprocess.run([sys.executable, "-m", "nextword", "personal", str(layer), "--model", base.path, "block", "ok"],
                        capture_output=True, text=True, env=ENV)
     assert r.returncode == 0, r.stderr  # the layer still saves
+
+
+def test_format_md_journal_example_matches_the_writer() -> None:
+    """docs/FORMAT.md §12.2 quotes a journal header and record byte by byte: the writer must agree."""
+    import re
+
+    from nextword.personal import _journal_header, _learn_record  # the writer's own encoders
+
+    doc = (ROOT / "docs" / "FORMAT.md").read_text(encoding="utf-8")
+    quoted = dict(re.findall(r"^(journal-header|learn-record):\n([0-9a-f ]+)$", doc, flags=re.M))
+    assert bytes.fromhex(quoted["journal-header"]) == _journal_header(0x0123456789ABCDEF)
+    body = msgpack.packb(_learn_record("Hi Ana", None), use_bin_type=True)
+    assert bytes.fromhex(quoted["learn-record"]) == struct.pack("<II", len(body), zlib.crc32(body)) + body
+    # and an independent decode of the quoted bytes (struct + zlib + msgpack, per the tables)
+    head = bytes.fromhex(quoted["journal-header"])
+    magic, major, minor, sid, crc = struct.unpack("<8sHHQI", head)
+    assert (magic, major, minor, sid, crc) == (JOURNAL_MAGIC, 1, 0, 0x0123456789ABCDEF, zlib.crc32(head[:20]))
+    rec = bytes.fromhex(quoted["learn-record"])
+    n, c = struct.unpack_from("<II", rec)
+    assert n == len(rec) - 8 and c == zlib.crc32(rec[8:])
+    assert msgpack.unpackb(rec[8:], raw=False)["pairs"] == [["<s>", "hi", 1], ["ana", "</s>", 1], ["hi", "ana", 1]]
