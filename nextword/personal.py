@@ -213,7 +213,13 @@ def _check_settings(
 
 
 class PersonalLayer:
-    """Personal counts mixed with a base :class:`~nextword.Model`; safe across threads and processes."""
+    """Personal counts mixed with a base :class:`~nextword.Model`; safe across threads and processes.
+
+    ``PersonalLayer(base, ...)`` lives in memory; :meth:`open` ties one to a file (shared
+    safely with other processes), :meth:`load` reads a detached copy. The constructor's
+    ``path`` creates a new layer file from the given settings and refuses an existing one
+    (use :meth:`open` for that: it never overwrites a user's counts).
+    """
 
     def __init__(
         self,
@@ -987,7 +993,10 @@ class PersonalLayer:
         """
         name = os.fspath(path)
         with self._lock:
-            if self._path is not None and not self._closed and os.path.abspath(name) == os.path.abspath(self._path):
+            own = self._path is not None and os.path.abspath(name) == os.path.abspath(self._path)
+            if own and self._closed:  # a copy over the shared file would drop other processes' changes
+                raise InvalidArgumentError(f"personal layer {name} is closed: open it again to save over it")
+            if own:
                 with self._flock():
                     self._sync_locked()
                     self._compact_locked()

@@ -51,6 +51,10 @@ def test_close_is_idempotent_keeps_the_changes_and_refuses_more(base: nextword.M
         with pytest.raises(InvalidArgumentError, match="closed"):
             change()
     assert PersonalLayer.load(base, path).messages == 1
+    with pytest.raises(InvalidArgumentError, match="closed"):
+        layer.save(path)  # over the shared file, without the lock, it would drop others' changes
+    layer.save(tmp_path / "copy.nwp")  # a copy elsewhere is fine
+    assert PersonalLayer.load(base, tmp_path / "copy.nwp").messages == 1
 
 
 def test_context_manager_closes_even_on_error(base: nextword.Model, tmp_path: Path) -> None:
