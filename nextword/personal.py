@@ -135,6 +135,7 @@ _SETTINGS_KEYS = ("min_uses", "strength", "max_weight", "lam", "half_life_messag
 _OPS = ("learn", "forget", "block", "unblock", "clear")
 
 Record = dict[str, Any]
+_datasync = getattr(os, "fdatasync", os.fsync)  # data + size reach the disk; macOS has only fsync
 
 
 def _valid_text(value: object, what: str) -> str:
@@ -326,7 +327,10 @@ class PersonalLayer:
                     pass
 
     def __del__(self) -> None:  # file handles only: every change is on disk already
-        self._release_files()
+        try:
+            self._release_files()
+        except Exception:  # noqa: BLE001 - interpreter shutdown may have torn down os
+            pass
 
     @property
     def closed(self) -> bool:
@@ -946,7 +950,7 @@ class PersonalLayer:
             written = os.pwrite(fd, blob, at)
             if written != len(blob):
                 raise OSError(28, "short write (disk full?)")
-            os.fdatasync(fd)
+            _datasync(fd)
         except OSError as e:
             try:
                 os.ftruncate(fd, at)
