@@ -430,3 +430,18 @@ def test_format_md_journal_example_matches_the_writer() -> None:
     n, c = struct.unpack_from("<II", rec)
     assert n == len(rec) - 8 and c == zlib.crc32(rec[8:])
     assert msgpack.unpackb(rec[8:], raw=False)["pairs"] == [["<s>", "hi", 1], ["ana", "</s>", 1], ["hi", "ana", 1]]
+
+
+def test_a_version_1_0_file_still_opens_and_learns(base: nextword.Model, good_payload: dict[str, Any], tmp_path: Path) -> None:
+    """Files written before the journal (minor version 0, no snapshot_id) keep working."""
+    p = _copy(good_payload)
+    del p["snapshot_id"]
+    body = msgpack.packb(p, use_bin_type=True)
+    path = tmp_path / "old.nwp"
+    path.write_bytes(struct.pack("<8sHHQI", PERSONAL_MAGIC, 1, 0, len(body), zlib.crc32(body)) + body)
+    before = PersonalLayer.load(base, path)
+    assert before.messages == 3 and before.blocklist == {"secret"}
+    with PersonalLayer.open(base, path) as layer:
+        layer.learn("the zorbing trip")
+    after = PersonalLayer.load(base, path)
+    assert after.messages == 4 and after.count("zorbing") == pytest.approx(before.count("zorbing") * 2 ** (-1 / 50) + 1)
