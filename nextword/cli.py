@@ -269,12 +269,13 @@ def _parser() -> _Parser:
     tu.add_argument("--json", action="store_true", help="print JSON")
 
     pe = sub.add_parser("personal", help="a user's personal layer: learn, forget, block, suggest, info")
-    pe.add_argument("layer", metavar="LAYER_FILE", help="the layer's file (created if missing; every change saved at once)")
+    pe.add_argument("layer", metavar="LAYER_FILE", help="the layer's file (learn and block create it if missing, other actions need it unless --create; every change saved at once)")
     pe.add_argument("--model", required=True, help="the base model (never written)")
     pe.add_argument("action", choices=("learn", "forget", "clear", "block", "unblock", "suggest", "info"),
                     help="what to do with the layer")
     pe.add_argument("items", nargs="*", metavar="TEXT", help="messages to learn, words, or typed texts")
     pe.add_argument("-k", type=_positive, default=3, help="suggestions per text (default %(default)s)")
+    pe.add_argument("--create", action="store_true", help="create LAYER_FILE if missing for any action (default: only learn and block create)")
     pe.add_argument("--min-uses", type=_positive, default=2, help="uses before a new word is offered (new layers)")
     pe.add_argument("--half-life-messages", type=float, default=None, help="decay: a message's weight halves after this many newer ones (new layers; default: no decay)")
     pe.add_argument("--half-life-days", type=float, default=None, help="decay: a message's weight halves after this many days (new layers; default: no decay)")
@@ -706,42 +707,53 @@ def _tune_report(out_dir: str, result: dict[str, Any]) -> None:
 
 
 def _cmd_personal(args: argparse.Namespace) -> int:
-    from .personal import PersonalLayer
+    from .personal import JOURNAL_SUFFIX, PersonalLayer
 
     base = load(args.model)
-    layer = PersonalLayer.open(
-        base,
-        args.layer,
-        min_uses=args.min_uses,
-        half_life_messages=args.half_life_messages,
-        half_life_days=args.half_life_days,
-    )
+    if args.action in ("suggest", "info") and not args.create:
+        layer = PersonalLayer.load(base, args.layer)  # read only: a missing file is an error, never created
+    else:
+        layer = PersonalLayer.open(
+            base,
+            args.layer,
+            create=args.action in ("learn", "block") or args.create,
+            min_uses=args.min_uses,
+            half_life_messages=args.half_life_messages,
+            half_life_days=args.half_life_days,
+        )
     items = args.items if args.items or args.action in ("clear", "info") else [line.rstrip("\n") for line in sys.stdin]
     out: dict[str, Any] = {"layer": args.layer, "action": args.action}
     if args.action == "learn":
         for text in items:
             layer.learn(text)
         out["learned"] = len(items)
-    elif args.action in ("forget", "block", "unblock"):
+    elif args.action in ("forget", "block"):
         for word in items:
             getattr(layer, args.action)(word)
         out["words"] = items
+    elif args.action == "unblock":
+        out["words"] = items
+        out["not_blocked"] = [word for word in items if not layer.unblock(word)]
+        for word in out["not_blocked"]:
+            print(f"nextword: note: {word!r} was not blocked (nothing to unblock)", file=sys.stderr)
     elif args.action == "clear":
         layer.clear()
     elif args.action == "suggest":
         out["results"] = [
             {"text": t, "suggestions": [{"word": s.word, "prob": s.prob} for s in layer.suggest(t, args.k)]} for t in items
         ]
+    journal = args.layer + JOURNAL_SUFFIX
     out.update(
         {
             "messages": layer.messages,
             "entries": layer.entries,
             "tokens": layer.tokens,
             "weight": layer.weight,
-            "file_bytes": os.path.getsize(args.layer),
+            "file_bytes": os.path.getsize(args.layer) + (os.path.getsize(journal) if os.path.exists(journal) else 0),
             "blocklist": sorted(layer.blocklist),
         }
     )
+    layer.close()
     if args.json:
         print(json.dumps(out, ensure_ascii=False, indent=2))
     elif args.action == "suggest":
@@ -886,17 +898,6 @@ def _check_io(args: argparse.Namespace) -> list[Labelled]:
 _FULL = {errno.ENOSPC, errno.EDQUOT, errno.EFBIG, errno.EROFS}
 
 
-def _user_path(filename: str, outputs: list[Labelled]) -> str:
-    """The output the user named, for an OS error on the atomic writer's temporary file
-    (``DIR/.NAME.xxxx.tmp``), else ``filename`` itself."""
-    folder, base = os.path.split(filename)
-    for _, out in outputs:
-        out_folder, out_base = os.path.split(os.fspath(out))
-        if base.startswith(f".{out_base}.") and base.endswith(".tmp") and os.path.abspath(folder or ".") == os.path.abspath(out_folder or "."):
-            return os.fspath(out)
-    return filename
-
-
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``nextword`` console script; returns the exit status."""
     outputs: list[Labelled] = []
@@ -931,7 +932,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 1
     except OSError as e:
         if e.filename:
-            where = f"{_user_path(str(e.filename), outputs)}: "
+            where = f"{e.filename}: "  # the atomic writer names the output, never its temporary file
         elif e.errno in _FULL and outputs:  # e.g. a write() on a full disk carries no file name
             where = f"cannot write {' or '.join(os.fspath(p) for _, p in outputs)}: "
         else:

@@ -555,10 +555,9 @@ class Server:
             path = self.users_dir / (user + _LAYER_SUFFIX)
             try:
                 if path.exists():
-                    layer = PersonalLayer.load(self.model, path)
-                    layer.path = os.fspath(path)
-                elif create:
                     layer = PersonalLayer.open(self.model, path)
+                elif create:
+                    layer = PersonalLayer.open(self.model, path, create=True)
                 else:
                     return None
             except ModelFormatError as e:
@@ -618,7 +617,7 @@ def _layer_state(user: str, layer: PersonalLayer | None) -> dict[str, Any]:
     }
 
 
-def _changing(server: Server, user: str, create: bool, change: Callable[[PersonalLayer], None]) -> dict[str, Any]:
+def _changing(server: Server, user: str, create: bool, change: Callable[[PersonalLayer], object]) -> dict[str, Any]:
     layer = server._layer(user, create=create)
     if layer is not None:
         try:

@@ -129,28 +129,36 @@ def topk_levels(n_pos: int) -> list[int]:
 # ----------------------------------------------------------------------------- writing
 
 
-def atomic_write(path: str | os.PathLike[str], chunks: Iterable[bytes | memoryview]) -> None:
+def atomic_write(path: str | os.PathLike[str], chunks: Iterable[bytes | memoryview], *, mode: int = 0o644) -> None:
     """Write ``chunks`` (streamed, consumed once) to ``path``: readers see the old file or the whole new one.
 
     A temporary file in the same directory is written, fsync'd and renamed over the
-    target; the directory is fsync'd too so the rename survives a power cut.
+    target; the directory is fsync'd too so the rename survives a power cut. ``mode``
+    is the new file's permission bits (model files are 0644; a personal layer, which
+    describes one person, is 0600). An OSError names ``path``, never the temporary
+    file (the caller knows only ``path``).
     """
     target = Path(path)
     directory = target.parent if str(target.parent) else Path(".")
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=directory)
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=directory)
+    except OSError as e:
+        raise _named(e, target) from None
     try:
         with os.fdopen(fd, "wb") as f:
             for c in chunks:
                 f.write(c)
             f.flush()
             os.fsync(f.fileno())
-        os.chmod(tmp, 0o644)
+        os.chmod(tmp, mode)
         os.replace(tmp, target)
-    except BaseException:
+    except BaseException as e:
         try:
             os.unlink(tmp)
         except OSError:
             pass
+        if isinstance(e, OSError):
+            raise _named(e, target) from None
         raise
     try:
         dfd = os.open(directory, os.O_RDONLY)
@@ -162,6 +170,11 @@ def atomic_write(path: str | os.PathLike[str], chunks: Iterable[bytes | memoryvi
         pass
     finally:
         os.close(dfd)
+
+
+def _named(e: OSError, target: Path) -> OSError:
+    """The same kind of OSError, naming the file the caller asked for."""
+    return type(e)(e.errno, e.strerror or str(e), os.fspath(target))
 
 
 def history_counts(unigram: np.ndarray, n: int) -> np.ndarray:

@@ -151,7 +151,7 @@ def test_a_full_disk_names_the_output(work: Path, capsys: pytest.CaptureFixture[
     monkeypatch.setattr(os, "fsync", full)
     code = main(["export", "m.nwm", "--arpa", "m.arpa"])
     err = capsys.readouterr().err
-    assert code == 1 and err == "nextword: error: cannot write m.arpa: No space left on device\n", err
+    assert code == 1 and err == "nextword: error: m.arpa: No space left on device\n", err
     assert snapshot(work) == before
 
 
