@@ -32,6 +32,7 @@ from __future__ import annotations
 import errno
 import ipaddress
 import json
+import math
 import os
 import re
 import select
@@ -55,6 +56,7 @@ __all__ = [
     "ServeLimits",
     "Server",
     "default_socket_path",
+    "encode_answer",
     "listen_tcp",
     "listen_unix",
     "parse_host_port",
@@ -151,7 +153,30 @@ def _show(value: object, limit: int = 60) -> str:
         text = json.dumps(value, ensure_ascii=False)
     except (TypeError, ValueError):
         text = repr(value)
+    text = _printable(text)
     return text if len(text) <= limit else text[: limit - 1] + "…"
+
+
+def _printable(text: str) -> str:
+    """``text`` with every lone surrogate spelled as ``\\udXXX``, so it can always be sent as UTF-8."""
+    return text.encode("utf-8", "backslashreplace").decode("utf-8")
+
+
+def _surrogate_at(text: str) -> int | None:
+    """Index of the first lone surrogate in ``text`` (JSON escapes such as ``"\\ud800"`` make them), else None."""
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError as e:
+        return e.start
+    return None
+
+
+def _not_unicode(field: str, text: str, at: int) -> RequestError:
+    return RequestError(
+        "bad_field",
+        f"{_printable(field)} is not valid Unicode: lone surrogate \\u{ord(text[at]):04x} at character {at}",
+        _printable(field),
+    )
 
 
 def _no_constants(name: str) -> Any:
@@ -417,7 +442,7 @@ class Server:
                         continue
                     answer = self.handle_line(line)
                     if answer is not None:
-                        out += _encode(answer)
+                        out += encode_answer(answer)
                 if len(buf) > lim.max_line_bytes:
                     out += _encode(error_response(None, self._too_large()))
                     buf.clear()
@@ -505,25 +530,35 @@ class Server:
                 bad = rid
                 rid = None
                 raise RequestError("bad_field", f"id must be a string, a number or null, got {_json_type(bad)}", "id")
+            if isinstance(rid, float) and not math.isfinite(rid):  # e.g. 1e999: an answer cannot echo it
+                bad, rid = rid, None
+                raise RequestError("bad_field", f"id must be a finite number, got {bad!r} (a number too large for a double)", "id")
+            if isinstance(rid, str) and (at := _surrogate_at(rid)) is not None:
+                bad, rid = rid, None
+                raise _not_unicode("id", bad, at)
             op = req.get("op")
             if op is None:
                 raise RequestError("bad_field", "missing field op (one of " + ", ".join(OPS) + ")", "op")
             if not isinstance(op, str):
                 raise RequestError("bad_field", f"op must be a string, got {_show(op)}", "op")
+            if (at := _surrogate_at(op)) is not None:
+                raise _not_unicode("op", op, at)
             handler = _HANDLERS.get(op)
             if handler is None:
                 raise RequestError("unknown_op", f"unknown op {_show(op)}; known: {', '.join(OPS)}")
             fields, fn = handler
-            for key in req:
+            for key, value in req.items():
                 if key not in fields and key not in ("id", "op"):
-                    raise RequestError("bad_field", f"unknown field {_show(key)} for op {op}", key)
+                    raise RequestError("bad_field", f"unknown field {_show(key)} for op {op}", _printable(key))
+                if isinstance(value, str) and (at := _surrogate_at(value)) is not None:
+                    raise _not_unicode(key, value, at)  # it could be neither learned, saved nor answered
             result = fn(self, req)
         except RequestError as e:
             self.requests += 1
             return error_response(rid, e)
         except Exception as e:  # a bug must not take the connection down; report it instead
             self.requests += 1
-            return error_response(rid, RequestError("internal", f"{type(e).__name__}: {e}"))
+            return error_response(rid, RequestError("internal", _printable(f"{type(e).__name__}: {e}")))
         self.requests += 1
         return {"id": rid, "ok": True, **result}
 
@@ -579,6 +614,24 @@ def _encode(obj: dict[str, Any]) -> bytes:
     return (json.dumps(obj, ensure_ascii=False, separators=(",", ":"), allow_nan=False) + "\n").encode("utf-8")
 
 
+def encode_answer(answer: dict[str, Any]) -> bytes:
+    """One answer line, always valid JSON: an answer that cannot be encoded becomes an ``internal`` error.
+
+    Every request line must get exactly one answer; an exception here would instead end
+    the connection and lose the answers pipelined behind it.
+    """
+    try:
+        return _encode(answer)
+    except (ValueError, TypeError) as e:  # a non-finite number, a lone surrogate (UnicodeEncodeError)
+        rid = answer.get("id")
+        try:
+            _encode({"id": rid})
+        except (ValueError, TypeError):
+            rid = None
+        err = RequestError("internal", _printable(f"the answer could not be encoded as JSON: {type(e).__name__}: {e}"))
+        return _encode(error_response(rid, err))
+
+
 def _text(req: dict[str, Any], field: str) -> str:
     if field not in req:
         raise RequestError("bad_field", f"missing field {field}", field)
@@ -603,12 +656,16 @@ def _op_suggest(server: Server, req: dict[str, Any]) -> dict[str, Any]:
     user = server._user(req, required=False)
     layer = None if user is None else server._layer(user, create=False)
     found = server.model.suggest(text, k) if layer is None else layer.suggest(text, k)
+    if layer is not None and not all(math.isfinite(s.prob) for s in found):
+        raise RequestError("user_layer", f"user {user}: the layer's counts give no finite probability (damaged layer file?)")
     return {"suggestions": [{"word": s.word, "prob": s.prob} for s in found]}
 
 
 def _layer_state(user: str, layer: PersonalLayer | None) -> dict[str, Any]:
     if layer is None:
         return {"user": user, "messages": 0, "entries": 0, "weight": 0.0, "blocked": []}
+    if not math.isfinite(layer.weight):
+        raise RequestError("user_layer", f"user {user}: the layer's counts are not finite (damaged layer file?)")
     return {
         "user": user,
         "messages": layer.messages,

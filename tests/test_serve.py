@@ -262,6 +262,96 @@ def test_bad_requests_get_documented_errors_and_the_connection_survives(
     assert not (tmp_path / "users" / "ana.nwp").exists()  # no bad request changed anything
 
 
+def strict_json(line: bytes) -> dict[str, Any]:
+    """One answer line parsed the strict way: UTF-8 without surrogates (RFC 8259 §8.1), no NaN/Infinity (§6)."""
+    def refuse(name: str) -> Any:
+        raise AssertionError(f"{name} is not JSON")
+
+    assert line.endswith(b"\n"), f"connection closed, got {line!r}"
+    obj = json.loads(line.decode("utf-8", "strict"), parse_constant=refuse)
+    assert isinstance(obj, dict)
+    return obj
+
+
+def write_layer_with_counts(path: Path, model: nextword.Model, value: float) -> None:
+    """A layer file whose checksum is right but whose every count is ``value`` (e.g. inf).
+
+    Built from a real saved layer: header ``<8sHHQI`` (magic, version 1.0, payload length,
+    CRC-32 of the payload), payload msgpack — the PersonalLayer file layout.
+    """
+    import math as _math
+    import struct
+    import zlib
+
+    import msgpack
+
+    layer = PersonalLayer(model)
+    layer.learn("the Zorbington Lane ride")
+    layer.learn("the Zorbington Lane shop")
+    layer.save(path)
+    raw = path.read_bytes()
+    head = struct.Struct("<8sHHQI")
+    data = msgpack.unpackb(raw[head.size:], raw=False)
+    data["unigram"] = {key: value for key in data["unigram"]}
+    data["bigram"] = {h: {w: value for w in row} for h, row in data["bigram"].items()}
+    body = msgpack.packb(data, use_bin_type=True)
+    path.write_bytes(head.pack(nextword.personal.PERSONAL_MAGIC, 1, 0, len(body), zlib.crc32(body)) + body)
+    assert not _math.isfinite(value)
+
+
+def test_every_pipelined_line_gets_one_valid_answer_in_order(model: nextword.Model, short_dir: Path, tmp_path: Path) -> None:
+    users = tmp_path / "users"
+    users.mkdir()
+    write_layer_with_counts(users / "inf.nwp", model, float("inf"))
+    # (request line, error code or None for ok, field named, id echoed); "\ud800" etc. are JSON
+    # escapes of lone surrogates, which json.loads accepts but UTF-8 cannot carry
+    lines: list[tuple[bytes, str | None, str | None, Any]] = [
+        (b'{"id": 1, "op": "info"}', None, None, 1),
+        (b'{"id": 1e999, "op": "info"}', "bad_field", "id", None),
+        (b'{"id": -1e999, "op": "suggest", "text": "a"}', "bad_field", "id", None),
+        (b'{"id": "\\ud800", "op": "info"}', "bad_field", "id", None),
+        (b'{"id": 2, "op": "\\udc00"}', "bad_field", "op", 2),
+        (b'{"id": 3, "op": "sugg\\ud800est", "text": "a"}', "bad_field", "op", 3),
+        (b'{"id": 4, "op": "suggest", "text": "a", "\\ud800x": 1}', "bad_field", "\\ud800x", 4),
+        (b'{"id": 5, "op": "learn", "user": "\\ud800", "text": "hi"}', "bad_field", "user", 5),
+        (b'{"id": 6, "op": "suggest", "text": "See you at the \\ud800"}', "bad_field", "text", 6),
+        (b'{"id": 7, "op": "learn", "user": "ana", "text": "bad \\udfff message"}', "bad_field", "text", 7),
+        (b'{"id": 8, "op": "block", "user": "ana", "word": "\\ud83d"}', "bad_field", "word", 8),
+        (b'{"id": 9, "op": "suggest", "text": ["\\ud800"]}', "bad_field", "text", 9),
+        (b'{"id": 10, "op": "suggest", "text": "a", "k": 1e999}', "bad_field", "k", 10),
+        (b'{"id": 11, "op": "suggest", "user": "inf", "text": "the "}', "user_layer", None, 11),
+        (b'{"id": 12, "op": "suggest", "user": "inf", "text": "the Zo"}', None, None, 12),  # no word matches: nothing to score
+        (b'{"id": 13, "op": "info", "user": "inf"}', "user_layer", None, 13),
+        (b'{"id": 14, "op": "learn", "user": "inf", "text": "more"}', "user_layer", None, 14),
+        (b'{"id": "\\u00e9t\\u00e9", "op": "suggest", "text": "See you at the "}', None, None, "été"),  # a valid escape is fine
+    ]
+    with running(model, short_dir, users) as (_, path):
+        c = Client(path)
+        c.send_raw(b"".join(line + b"\n" for line, *_ in lines))  # all at once: one bad line must not cost the others
+        for line, code, field, rid in lines:
+            answer = strict_json(c.file.readline())
+            assert answer["id"] == rid, (line, answer)
+            if code is None:
+                assert answer["ok"] is True, (line, answer)
+            else:
+                assert answer["ok"] is False and answer["error"]["code"] == code, (line, answer)
+                assert answer["error"].get("field") == field, (line, answer)
+                assert code in ERROR_CODES
+        assert as_pairs(c.call(op="suggest", text="See you at the ")) == expected(model.suggest("See you at the "))
+        c.close()
+    assert not (users / "ana.nwp").exists()  # nothing with a surrogate was learned or blocked
+
+
+def test_an_answer_that_cannot_be_encoded_is_an_internal_error(model: nextword.Model, short_dir: Path) -> None:
+    """The last line of defence: whatever a handler returns, the line is answered with valid JSON."""
+    from nextword.serve import encode_answer
+
+    answer = strict_json(encode_answer({"id": 3, "ok": True, "suggestions": [{"word": "a", "prob": float("nan")}]}))
+    assert answer["id"] == 3 and answer["ok"] is False and answer["error"]["code"] == "internal"
+    answer = strict_json(encode_answer({"id": "\ud800", "ok": True, "word": "\udfff"}))
+    assert answer["id"] is None and answer["error"]["code"] == "internal"
+
+
 def test_personal_requests_without_a_users_directory(model: nextword.Model, short_dir: Path) -> None:
     with running(model, short_dir, None) as (_, path):
         c = Client(path)
