@@ -327,7 +327,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         model = nextword.load(model_path)
         layer_path = Path(args.user_layer) if args.user_layer else cache / LAYER_NAME
         layer_path.parent.mkdir(parents=True, exist_ok=True)
-        layer = PersonalLayer.open(model, layer_path)
+        layer = PersonalLayer.open(model, layer_path, create=True)
         try:
             root = tk.Tk(className="NextwordTypingBox")
         except tk.TclError as e:

@@ -5,7 +5,7 @@ for the k words the user most likely wants next or is in the middle of typing.
 """
 
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables
-from .errors import InputDataError, InvalidArgumentError, ModelFormatError, NextwordError
+from .errors import InputDataError, InvalidArgumentError, LayerNotFoundError, ModelFormatError, NextwordError
 from .model import DEFAULT_LAMBDA, Model, Suggestion, TrainReport, load, train, train_texts
 
 __version__ = "0.1.0"
@@ -18,6 +18,7 @@ __all__ = [
     "DEFAULT_MIN_COUNT",
     "InputDataError",
     "InvalidArgumentError",
+    "LayerNotFoundError",
     "Model",
     "ModelFormatError",
     "NextwordError",

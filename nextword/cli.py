@@ -146,11 +146,12 @@ def _parser() -> _Parser:
     tu.add_argument("--json", action="store_true", help="print JSON")
 
     pe = sub.add_parser("personal", help="a user's personal layer: learn, forget, block, suggest, info")
-    pe.add_argument("layer", metavar="LAYER_FILE", help="the layer's file (created if missing; every change saved at once)")
+    pe.add_argument("layer", metavar="LAYER_FILE", help="the layer's file (learn and block create it if missing, other actions need it unless --create; every change saved at once)")
     pe.add_argument("--model", required=True, help="the base model")
     pe.add_argument("action", choices=("learn", "forget", "clear", "block", "unblock", "suggest", "info"))
     pe.add_argument("items", nargs="*", metavar="TEXT", help="messages to learn, words, or typed texts")
     pe.add_argument("-k", type=_positive, default=3, help="suggestions per text (default %(default)s)")
+    pe.add_argument("--create", action="store_true", help="create LAYER_FILE if missing for any action (default: only learn and block create)")
     pe.add_argument("--min-uses", type=_positive, default=2, help="uses before a new word is offered (new layers)")
     pe.add_argument("--half-life-messages", type=float, default=None, help="decay (new layers)")
     pe.add_argument("--half-life-days", type=float, default=None, help="decay by time (new layers)")
@@ -516,6 +517,7 @@ def _cmd_personal(args: argparse.Namespace) -> int:
     layer = PersonalLayer.open(
         base,
         args.layer,
+        create=args.action in ("learn", "block") or args.create,
         min_uses=args.min_uses,
         half_life_messages=args.half_life_messages,
         half_life_days=args.half_life_days,

@@ -8,7 +8,7 @@ Every exception the library raises on purpose derives from :class:`NextwordError
 
 from __future__ import annotations
 
-__all__ = ["NextwordError", "ModelFormatError", "InputDataError", "InvalidArgumentError"]
+__all__ = ["NextwordError", "ModelFormatError", "InputDataError", "InvalidArgumentError", "LayerNotFoundError"]
 
 
 class NextwordError(Exception):
@@ -25,6 +25,15 @@ class ModelFormatError(NextwordError):
 
 class InputDataError(NextwordError):
     """A training or evaluation input cannot be read (missing file, bad JSON, bad encoding)."""
+
+
+class LayerNotFoundError(InputDataError):
+    """A personal layer file that should exist does not (a wrong or relative path).
+
+    Opening a layer never creates one by accident: creating is asked for explicitly
+    (``PersonalLayer.open(..., create=True)``), so a typo cannot silently start an
+    empty layer beside the real one.
+    """
 
 
 class InvalidArgumentError(NextwordError, ValueError):

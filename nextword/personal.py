@@ -41,7 +41,7 @@ from typing import Any
 
 import msgpack
 
-from .errors import InvalidArgumentError, ModelFormatError
+from .errors import InvalidArgumentError, LayerNotFoundError, ModelFormatError
 from .model import Model, Suggestion, _check_k, _recase
 from .store import atomic_write
 from .text import BOS, EOS, UNK, fold, parse_typed, sentences
@@ -92,23 +92,57 @@ class PersonalLayer:
         self.blocklist: set[str] = {fold(w) for w in blocklist}
         self.path = None if path is None else os.fspath(path)
         self._lock = threading.RLock()
+        self._closed = False
         self._base_cache: dict[tuple[str | None, str, int], list[tuple[str, float]]] = {}
         self._reset()
 
     @classmethod
-    def open(cls, base: Model, path: str | os.PathLike[str], **settings: Any) -> PersonalLayer:
-        """The layer saved at ``path`` (created empty if the file does not exist), saving every change.
+    def open(
+        cls, base: Model, path: str | os.PathLike[str], *, create: bool = False, **settings: Any
+    ) -> PersonalLayer:
+        """The layer saved at ``path``, saving every change there until :meth:`close`.
 
-        A file that exists but is damaged raises :class:`~nextword.ModelFormatError`; it is
-        never silently replaced by an empty layer.
+        A missing file raises :class:`~nextword.LayerNotFoundError` unless ``create`` is
+        true (then a new empty layer with ``settings`` is written): a wrong path never
+        silently starts an empty layer. A file that exists but is damaged raises
+        :class:`~nextword.ModelFormatError`; it is never replaced by an empty layer.
+        ``settings`` apply to a new layer only; an existing file keeps its own.
         """
-        if os.path.exists(path):
-            layer = cls.load(base, path)
-            layer.path = os.fspath(path)
+        name = os.fspath(path)
+        if os.path.exists(name):
+            layer = cls.load(base, name)
+            layer.path = name
             return layer
-        layer = cls(base, path=path, **settings)
+        if not create:
+            raise LayerNotFoundError(f"{name}: no personal layer file there (create it explicitly)")
+        layer = cls(base, path=name, **settings)
         layer._changed()
         return layer
+
+    def close(self) -> None:
+        """Persist anything pending and detach from the file; later changes raise.
+
+        Idempotent. Reading (suggest, prob, counts) still works on the in-memory state.
+        """
+        with self._lock:
+            if self._closed:
+                return
+            self._closed = True
+
+    @property
+    def closed(self) -> bool:
+        """True after :meth:`close`: changes are refused."""
+        return self._closed
+
+    def __enter__(self) -> PersonalLayer:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def _check_open(self) -> None:
+        if self._closed:
+            raise InvalidArgumentError(f"personal layer {self.path or '(in memory)'} is closed: it cannot change any more")
 
     def _changed(self) -> None:
         if self.path is not None:
@@ -124,6 +158,7 @@ class PersonalLayer:
     def clear(self) -> None:
         """Forget everything learned (the blocklist stays)."""
         with self._lock:
+            self._check_open()
             self._reset()
             self._changed()
 
@@ -219,6 +254,7 @@ class PersonalLayer:
         if when is None and self.half_life_days is not None:
             when = time.time()
         with self._lock:
+            self._check_open()
             self._learn(message, when)
             if self.entries > self.max_entries:
                 self._evict()
@@ -253,6 +289,7 @@ class PersonalLayer:
     def forget(self, word: str) -> None:
         """Remove ``word`` and every pair containing it, at once (and from the file)."""
         with self._lock:
+            self._check_open()
             self._forget(fold(word))
             self._changed()
 
@@ -305,11 +342,13 @@ class PersonalLayer:
     def block(self, word: str) -> None:
         """Never suggest ``word`` (it keeps its probability)."""
         with self._lock:
+            self._check_open()
             self.blocklist.add(fold(word))
             self._changed()
 
     def unblock(self, word: str) -> None:
         with self._lock:
+            self._check_open()
             self.blocklist.discard(fold(word))
             self._changed()
 

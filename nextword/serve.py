@@ -593,7 +593,7 @@ class Server:
                     layer = PersonalLayer.load(self.model, path)
                     layer.path = os.fspath(path)
                 elif create:
-                    layer = PersonalLayer.open(self.model, path)
+                    layer = PersonalLayer.open(self.model, path, create=True)
                 else:
                     return None
             except ModelFormatError as e:

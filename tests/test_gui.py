@@ -155,7 +155,7 @@ def test_typing_accepting_sending_and_screenshot(root: Any, xdisplay: str, model
     model = nextword.load(model_path)
     layer_file = tmp_path / "me.nwp"
     # strength=1: the user's counts weigh in after one message, so the test can see learning
-    layer = PersonalLayer.open(model, layer_file, strength=1.0)
+    layer = PersonalLayer.open(model, layer_file, create=True, strength=1.0)
     app = typing_box.TypingBox(root, model, layer=layer, k=3)
     root.update()
 

@@ -190,7 +190,7 @@ def test_memory_cap_evicts_least_useful_entries(base: nextword.Model) -> None:
 
 def test_open_creates_saves_every_change_and_never_replaces_damage(base: nextword.Model, tmp_path: Path) -> None:
     path = tmp_path / "me.nwp"
-    layer = PersonalLayer.open(base, path, strength=5.0)
+    layer = PersonalLayer.open(base, path, create=True, strength=5.0)
     assert path.exists()
     layer.learn("the zorbing trip")
     layer.learn("zorbing again")
@@ -249,7 +249,7 @@ KILL_CHILD = r"""
 import sys, nextword
 from nextword.personal import PersonalLayer
 base = nextword.load(sys.argv[1])
-layer = PersonalLayer.open(base, sys.argv[2], strength=5.0)
+layer = PersonalLayer.open(base, sys.argv[2], create=True, strength=5.0)
 i = layer.messages
 while True:
     layer.learn(f"message number {i} about the zorbing trip")
