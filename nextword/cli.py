@@ -21,6 +21,7 @@ from .corpus import FORMATS, iter_messages, open_sources
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT
 from .errors import InvalidArgumentError, NextwordError
 from .model import DEFAULT_LAMBDA, Model, load, train, train_texts
+from .serve import DEFAULT_MAX_OPEN_USERS
 from .text import fold
 
 __all__ = ["main"]
@@ -182,6 +183,7 @@ def _parser() -> _Parser:
     sv.add_argument("--max-clients", type=_positive, default=64, help="simultaneous connections (default %(default)s)")
     sv.add_argument("--max-k", type=_positive, default=50, help="largest k a request may ask for (default %(default)s)")
     sv.add_argument("--grace", type=_seconds, default=5.0, help="seconds a stop waits for requests in progress (default %(default)s)")
+    sv.add_argument("--max-open-users", type=_positive, default=DEFAULT_MAX_OPEN_USERS, help="personal layers kept open at once; the least recently used is closed (default %(default)s)")
 
     lv = sub.add_parser("live", help="type in the terminal and watch suggestions update on every key")
     lv.add_argument("model")
@@ -616,7 +618,9 @@ def _cmd_serve(args: argparse.Namespace) -> int:
         # one JSON line, flushed: scripts and tests read the real address (e.g. for port 0) from it
         print(json.dumps({"event": "ready", **address, "pid": os.getpid(), "model": args.model}), flush=True)
 
-    report = run_server(model, listener, users_dir=args.users, limits=limits, on_ready=ready)
+    report = run_server(
+        model, listener, users_dir=args.users, limits=limits, on_ready=ready, max_open_users=args.max_open_users
+    )
     try:
         print(json.dumps({"event": "stopped", **report}), flush=True)
     except OSError:

@@ -15,6 +15,13 @@ Design, and why:
   :class:`~nextword.personal.PersonalLayer` saves itself atomically on every change and
   has its own lock, so concurrent requests for one user are safe. User names are
   checked strictly (never a path) before they reach the file system.
+- **A bounded set of open layers** (``max_open_users``, least recently used closed
+  first): a server meeting many users over its life would otherwise keep every layer in
+  memory. A request holds its user's layer (a count of requests using it) until it has
+  answered, and only a layer nobody holds is closed; a user is never opened twice at
+  once, and a closing layer is finished before the same user is opened again, so no
+  change is lost across an eviction. Since every change is already saved, closing costs
+  no write.
 - **A thread per connection.** Suggest calls take tens of microseconds, so the simple
   model is enough; connections are capped (``max_clients``) so a flood cannot exhaust
   threads.
@@ -40,16 +47,19 @@ import socket
 import stat
 import threading
 import time
-from collections.abc import Callable
+from collections import OrderedDict
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
 
-from .errors import InvalidArgumentError, ModelFormatError
+from .errors import InvalidArgumentError, LayerNotFoundError, NextwordError
 from .model import Model
 from .personal import PersonalLayer
 
 __all__ = [
+    "DEFAULT_MAX_OPEN_USERS",
     "ERROR_CODES",
     "OPS",
     "PROTOCOL_VERSION",
@@ -80,6 +90,10 @@ ERROR_CODES = (
 )
 
 OPS = ("suggest", "learn", "forget", "block", "unblock", "info")
+
+#: Personal layers kept open at once (a full layer is a few MiB in memory); the least
+#: recently used one is closed (it is already saved) when one more is needed.
+DEFAULT_MAX_OPEN_USERS = 256
 
 _USER_RE = re.compile(r"[a-z0-9_][a-z0-9_.-]{0,63}")
 _LAYER_SUFFIX = ".nwp"
@@ -294,7 +308,11 @@ class Server:
         *,
         users_dir: str | os.PathLike[str] | None = None,
         limits: ServeLimits | None = None,
+        max_open_users: int = DEFAULT_MAX_OPEN_USERS,
     ) -> None:
+        if isinstance(max_open_users, bool) or not isinstance(max_open_users, int) or max_open_users < 1:
+            raise InvalidArgumentError(f"max_open_users must be an integer >= 1, got {max_open_users!r}")
+        self.max_open_users = max_open_users
         self.model = model
         self.limits = limits or ServeLimits()
         self.users_dir = None if users_dir is None else Path(users_dir)
@@ -311,8 +329,11 @@ class Server:
         os.set_blocking(self._wake_w, False)
         self._stopping = threading.Event()
         self._stopped = threading.Event()
-        self._layers: dict[str, PersonalLayer] = {}
-        self._layers_lock = threading.Lock()
+        # open layers, least recently used first; users being opened or closed right now
+        self._layers: OrderedDict[str, _OpenLayer] = OrderedDict()
+        self._pending: set[str] = set()
+        self._layers_cond = threading.Condition(threading.Lock())
+        self.layers_closed = 0  # layers closed to stay within max_open_users
         self._conns: dict[threading.Thread, socket.socket] = {}
         self._conns_lock = threading.Lock()
         self.requests = 0  # answered requests, for the stop report (approximate under threads)
@@ -398,6 +419,7 @@ class Server:
             t.join(max(0.0, deadline - time.monotonic()))
         unfinished = sum(t.is_alive() for t in threads)
         saved = self.flush()
+        self._close_layers()
         if not unfinished:  # a thread still polling would see a closed (or reused) descriptor
             os.close(self._wake_r)
             os.close(self._wake_w)
@@ -406,12 +428,24 @@ class Server:
 
     def flush(self) -> int:
         """Save every open personal layer (under its own lock); returns how many were saved."""
-        with self._layers_lock:
-            layers = list(self._layers.values())
+        with self._layers_cond:
+            layers = [entry.layer for entry in self._layers.values()]
         for layer in layers:
             assert layer.path is not None
             layer.save(layer.path)
         return len(layers)
+
+    def open_users(self) -> list[str]:
+        """Users whose layers are open now, least recently used first."""
+        with self._layers_cond:
+            return list(self._layers)
+
+    def _close_layers(self) -> None:
+        with self._layers_cond:
+            entries = list(self._layers.values())
+            self._layers.clear()
+        for entry in entries:
+            entry.layer.close()
 
     # -- one connection ------------------------------------------------------------------------
 
@@ -580,28 +614,97 @@ class Server:
             raise RequestError("users_disabled", "this server keeps no personal layers (started without a users directory)", "user")
         return name
 
-    def _layer(self, user: str, *, create: bool) -> PersonalLayer | None:
-        """The user's layer: cached, else loaded from its file, else (``create``) a new saved one."""
-        assert self.users_dir is not None
-        with self._layers_lock:
-            layer = self._layers.get(user)
+    @contextmanager
+    def _using(self, user: str, *, create: bool) -> Iterator[PersonalLayer | None]:
+        """The user's layer, held open for the ``with`` block (``None``: no layer and not ``create``)."""
+        layer = self._acquire(user, create=create)
+        try:
+            yield layer
+        finally:
             if layer is not None:
-                return layer
-            path = self.users_dir / (user + _LAYER_SUFFIX)
+                self._release(user)
+
+    def _acquire(self, user: str, *, create: bool) -> PersonalLayer | None:
+        assert self.users_dir is not None
+        cond = self._layers_cond
+        with cond:
+            while True:
+                entry = self._layers.get(user)
+                if entry is not None:
+                    entry.holders += 1
+                    self._layers.move_to_end(user)
+                    return entry.layer
+                if user not in self._pending:
+                    break
+                cond.wait()  # another request is opening this user's layer, or closing it
+            self._pending.add(user)
+        try:  # outside the lock: reading one user's file holds up nobody else
+            layer = self._open_layer(user, create=create)
+        except BaseException:
+            with cond:
+                self._pending.discard(user)
+                cond.notify_all()
+            raise
+        with cond:
+            self._pending.discard(user)
+            if layer is not None:
+                self._layers[user] = _OpenLayer(layer, holders=1)
+            victims = self._evictable()
+            cond.notify_all()
+        self._close(victims)
+        return layer
+
+    def _release(self, user: str) -> None:
+        with self._layers_cond:
+            entry = self._layers.get(user)
+            if entry is not None:
+                entry.holders -= 1
+            victims = self._evictable()
+        self._close(victims)
+
+    def _evictable(self) -> list[tuple[str, PersonalLayer]]:
+        """Take the least recently used unheld layers out while over the cap (caller holds the lock)."""
+        victims = []
+        if len(self._layers) > self.max_open_users:
+            for user, entry in list(self._layers.items()):
+                if len(self._layers) <= self.max_open_users:
+                    break
+                if entry.holders == 0:
+                    del self._layers[user]
+                    self._pending.add(user)  # reopened only once this close is finished
+                    victims.append((user, entry.layer))
+        return victims
+
+    def _close(self, victims: list[tuple[str, PersonalLayer]]) -> None:
+        for user, layer in victims:
             try:
-                if path.exists():
-                    layer = PersonalLayer.load(self.model, path)
-                    layer.path = os.fspath(path)
-                elif create:
-                    layer = PersonalLayer.open(self.model, path, create=True)
-                else:
-                    return None
-            except ModelFormatError as e:
-                raise RequestError("user_layer", f"user {user}: {e}") from None
-            except OSError as e:
-                raise RequestError("user_layer", f"user {user}: cannot create the layer file: {e.strerror or e}") from None
-            self._layers[user] = layer
-            return layer
+                layer.close()  # every change was saved when it was made; this detaches from the file
+            except Exception:
+                pass  # a failed save was answered with user_layer when it happened; the file keeps the last good state
+            finally:
+                with self._layers_cond:
+                    self._pending.discard(user)
+                    self.layers_closed += 1
+                    self._layers_cond.notify_all()
+
+    def _open_layer(self, user: str, *, create: bool) -> PersonalLayer | None:
+        """The user's layer read from its file, else (``create``) a new saved one, else ``None``."""
+        assert self.users_dir is not None
+        path = self.users_dir / (user + _LAYER_SUFFIX)
+        try:
+            return PersonalLayer.open(self.model, path, create=create)
+        except LayerNotFoundError:
+            return None
+        except NextwordError as e:  # damaged, foreign or unreadable
+            raise RequestError("user_layer", f"user {user}: {e}") from None
+        except OSError as e:
+            raise RequestError("user_layer", f"user {user}: cannot create the layer file: {e.strerror or e}") from None
+
+
+@dataclass
+class _OpenLayer:
+    layer: PersonalLayer
+    holders: int  # requests using the layer now: it is never closed under them
 
 
 def _json_type(value: object) -> str:
@@ -654,10 +757,13 @@ def _op_suggest(server: Server, req: dict[str, Any]) -> dict[str, Any]:
     if isinstance(k, bool) or not isinstance(k, int) or not 1 <= k <= server.limits.max_k:
         raise RequestError("bad_field", f"k must be an integer from 1 to {server.limits.max_k}, got {_show(k)}", "k")
     user = server._user(req, required=False)
-    layer = None if user is None else server._layer(user, create=False)
-    found = server.model.suggest(text, k) if layer is None else layer.suggest(text, k)
-    if layer is not None and not all(math.isfinite(s.prob) for s in found):
-        raise RequestError("user_layer", f"user {user}: the layer's counts give no finite probability (damaged layer file?)")
+    if user is None:
+        found = server.model.suggest(text, k)
+    else:
+        with server._using(user, create=False) as layer:
+            found = server.model.suggest(text, k) if layer is None else layer.suggest(text, k)
+        if not all(math.isfinite(s.prob) for s in found):
+            raise RequestError("user_layer", f"user {user}: the layer's counts give no finite probability (damaged layer file?)")
     return {"suggestions": [{"word": s.word, "prob": s.prob} for s in found]}
 
 
@@ -676,13 +782,13 @@ def _layer_state(user: str, layer: PersonalLayer | None) -> dict[str, Any]:
 
 
 def _changing(server: Server, user: str, create: bool, change: Callable[[PersonalLayer], None]) -> dict[str, Any]:
-    layer = server._layer(user, create=create)
-    if layer is not None:
-        try:
-            change(layer)
-        except OSError as e:  # the change is applied in memory but could not be saved
-            raise RequestError("user_layer", f"user {user}: cannot save the layer file: {e.strerror or e}") from None
-    return _layer_state(user, layer)
+    with server._using(user, create=create) as layer:
+        if layer is not None:
+            try:
+                change(layer)
+            except OSError as e:  # the change is applied in memory but could not be saved
+                raise RequestError("user_layer", f"user {user}: cannot save the layer file: {e.strerror or e}") from None
+        return _layer_state(user, layer)
 
 
 def _op_learn(server: Server, req: dict[str, Any]) -> dict[str, Any]:
@@ -732,7 +838,8 @@ def _op_info(server: Server, req: dict[str, Any]) -> dict[str, Any]:
     }
     user = server._user(req, required=False)
     if user is not None:
-        out["user"] = _layer_state(user, server._layer(user, create=False))
+        with server._using(user, create=False) as layer:
+            out["user"] = _layer_state(user, layer)
     return out
 
 
@@ -753,11 +860,12 @@ def run_server(
     users_dir: str | os.PathLike[str] | None,
     limits: ServeLimits,
     on_ready: Callable[[dict[str, Any]], None],
+    max_open_users: int = DEFAULT_MAX_OPEN_USERS,
 ) -> dict[str, Any]:
     """Serve until SIGTERM or SIGINT (main thread only), then stop cleanly; returns the stop report."""
     import signal
 
-    server = Server(model, listener, users_dir=users_dir, limits=limits)
+    server = Server(model, listener, users_dir=users_dir, limits=limits, max_open_users=max_open_users)
 
     def _on_signal(signum: int, frame: object) -> None:
         server.stop()

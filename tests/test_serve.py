@@ -98,9 +98,11 @@ class Client:
 
 
 @contextmanager
-def running(model: nextword.Model, sock_dir: Path, users: Path | None, **limits: Any) -> Iterator[tuple[Server, Path]]:
+def running(
+    model: nextword.Model, sock_dir: Path, users: Path | None, *, max_open_users: int = 256, **limits: Any
+) -> Iterator[tuple[Server, Path]]:
     path = sock_dir / "s.sock"
-    server = Server(model, listen_unix(path), users_dir=users, limits=ServeLimits(**limits))
+    server = Server(model, listen_unix(path), users_dir=users, limits=ServeLimits(**limits), max_open_users=max_open_users)
     report: dict[str, Any] = {}
     t = threading.Thread(target=lambda: report.update(server.serve_forever()), daemon=True)
     t.start()
@@ -481,6 +483,81 @@ def test_concurrent_clients_all_get_correct_answers(model: nextword.Model, short
         assert wrong == []
         assert sorted(learned) == list(range(1, 41))  # each learn saw a distinct message count: none lost
     assert PersonalLayer.load(model, tmp_path / "users" / "shared.nwp").messages == 40
+
+
+def test_layers_beyond_max_open_users_are_closed_and_reopen_with_everything(
+    model: nextword.Model, short_dir: Path, tmp_path: Path
+) -> None:
+    users = tmp_path / "users"
+    names = [f"rider{i}" for i in range(5)]
+    mine = {u: PersonalLayer(model) for u in names}  # the oracle: the same operations in this process
+    with running(model, short_dir, users, max_open_users=2) as (server, path):
+        c = Client(path)
+        for round_ in range(4):
+            for n, u in enumerate(names):  # users in turn: every request after the second reopens a closed layer
+                text = f"Quarr{u[-1]}ton Lane ride {round_} with the {('pump', 'levers', 'wrench')[n % 3]}"
+                mine[u].learn(text)
+                answer = c.call(op="learn", user=u, text=text)
+                assert answer["messages"] == round_ + 1 and answer["entries"] == mine[u].entries, answer
+                assert len(server.open_users()) <= 2, server.open_users()
+            assert c.call(op="block", user=names[round_], word="ride")["ok"]
+            mine[names[round_]].block("ride")
+        assert server.layers_closed >= 4 * 5 - 2
+        for u in names:
+            for q in ["Quarr", "Lane ", "the ", "ride ", ""]:
+                assert as_pairs(c.call(op="suggest", user=u, text=q, k=4)) == expected(mine[u].suggest(q, 4)), (u, q)
+            assert c.call(op="info", user=u)["user"]["blocked"] == sorted(mine[u].blocklist)
+            assert server.open_users()[-1] == u and len(server.open_users()) <= 2  # most recent last
+        c.close()
+    for u in names:  # and on disk, after the stop
+        assert PersonalLayer.load(model, users / f"{u}.nwp").messages == 4
+
+
+def test_concurrent_clients_across_evictions_lose_nothing(model: nextword.Model, short_dir: Path, tmp_path: Path) -> None:
+    users = tmp_path / "users"
+    names = [f"u{i}" for i in range(5)]
+    seen: dict[str, list[int]] = {u: [] for u in names}
+    errors: list[Any] = []
+    lock = threading.Lock()
+
+    def work(n: int) -> None:
+        c = Client(path)
+        try:
+            for i in range(12):
+                u = names[(n + i) % len(names)]  # every thread visits every user, so users are shared and evicted
+                answer = c.call(op="learn", user=u, text=f"thread {n} message {i} about the truing stand")
+                s = c.call(op="suggest", user=u, text="the tru")
+                with lock:
+                    if not answer.get("ok") or not s.get("ok"):
+                        errors.append((answer, s))
+                    else:
+                        seen[u].append(answer["messages"])
+        finally:
+            c.close()
+
+    with running(model, short_dir, users, max_open_users=2) as (server, path):
+        threads = [threading.Thread(target=work, args=(n,)) for n in range(6)]
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join(WAIT)
+        assert not any(t.is_alive() for t in threads)
+        assert errors == []
+        assert server.layers_closed > 0
+        total = 6 * 12 // len(names)
+        for u in names:
+            # one learn per answer, each seeing a distinct count: no change lost, no layer opened twice
+            assert sorted(seen[u]) == list(range(1, len(seen[u]) + 1)), (u, seen[u])
+        assert sum(len(v) for v in seen.values()) == 6 * 12
+    for u in names:
+        assert PersonalLayer.load(model, users / f"{u}.nwp").messages == len(seen[u]) >= total
+
+
+def test_max_open_users_must_be_positive(model: nextword.Model, short_dir: Path) -> None:
+    for bad in (0, -1, 2.5, True):
+        with socket.socket(socket.AF_UNIX, socket.SOCK_STREAM) as sock:
+            with pytest.raises(nextword.InvalidArgumentError, match="max_open_users"):
+                Server(model, sock, max_open_users=bad)  # type: ignore[arg-type]
 
 
 def test_connections_beyond_the_cap_get_busy(model: nextword.Model, short_dir: Path) -> None:
