@@ -595,7 +595,7 @@ def _cmd_export(args: argparse.Namespace) -> int:
 
 
 def _cmd_serve(args: argparse.Namespace) -> int:
-    from .serve import ServeLimits, default_socket_path, listen_tcp, listen_unix, parse_host_port, run_server
+    from .serve import ServeLimits, default_socket_path, listen_tcp, listen_unix, parse_host_port, prepare_users_dir, run_server
 
     limits = ServeLimits(
         max_line_bytes=args.max_line_bytes,
@@ -608,6 +608,7 @@ def _cmd_serve(args: argparse.Namespace) -> int:
     if args.allow_non_loopback and not args.tcp:
         raise UsageError("--allow-non-loopback only applies to --tcp")
     model = load(args.model)
+    users = None if args.users is None else prepare_users_dir(args.users)  # before listening: no socket left on error
     if args.tcp:
         host, port = parse_host_port(args.tcp)
         listener = listen_tcp(host, port, allow_non_loopback=args.allow_non_loopback)
@@ -619,7 +620,7 @@ def _cmd_serve(args: argparse.Namespace) -> int:
         print(json.dumps({"event": "ready", **address, "pid": os.getpid(), "model": args.model}), flush=True)
 
     report = run_server(
-        model, listener, users_dir=args.users, limits=limits, on_ready=ready, max_open_users=args.max_open_users
+        model, listener, users_dir=users, limits=limits, on_ready=ready, max_open_users=args.max_open_users
     )
     try:
         print(json.dumps({"event": "stopped", **report}), flush=True)

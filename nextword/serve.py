@@ -70,6 +70,7 @@ __all__ = [
     "listen_tcp",
     "listen_unix",
     "parse_host_port",
+    "prepare_users_dir",
     "valid_user",
 ]
 
@@ -293,6 +294,41 @@ def listen_tcp(host: str, port: int, *, allow_non_loopback: bool = False) -> soc
     return sock
 
 
+def prepare_users_dir(path: str | os.PathLike[str]) -> Path:
+    """The users directory, ready for layer files: created if missing, owner-only (0700).
+
+    It holds everyone's personal data, so every directory created here (missing parents
+    too) gets mode 0700 exactly, whatever the umask; an existing directory is left as it
+    is. A path that exists and is not a directory raises ``NotADirectoryError``, one that
+    cannot be created or written ``OSError``, both naming the path.
+    """
+    d = Path(path)
+    name = os.fspath(d)
+    if d.exists() and not d.is_dir():
+        raise NotADirectoryError(
+            errno.ENOTDIR, "the users directory exists and is not a directory (--users needs a directory)", name
+        )
+    missing = []
+    p = d.absolute()
+    while not p.exists() and p != p.parent:
+        missing.append(p)
+        p = p.parent
+    for m in reversed(missing):
+        try:
+            m.mkdir(mode=0o700)
+        except FileExistsError:
+            pass  # created meanwhile by someone else: leave its mode alone
+        except OSError as e:
+            raise OSError(e.errno, f"cannot create the users directory: {e.strerror or e}", name) from None
+        else:
+            os.chmod(m, 0o700)  # mkdir's mode is masked by the umask
+    if not d.is_dir():
+        raise NotADirectoryError(errno.ENOTDIR, "the users directory is not a directory", name)
+    if not os.access(d, os.W_OK | os.X_OK):
+        raise PermissionError(errno.EACCES, "the users directory is not writable", name)
+    return d
+
+
 class Server:
     """Serves one model (and the users' personal layers) on a listening socket.
 
@@ -315,11 +351,7 @@ class Server:
         self.max_open_users = max_open_users
         self.model = model
         self.limits = limits or ServeLimits()
-        self.users_dir = None if users_dir is None else Path(users_dir)
-        if self.users_dir is not None:
-            self.users_dir.mkdir(parents=True, exist_ok=True)
-            if not os.access(self.users_dir, os.W_OK | os.X_OK):
-                raise InvalidArgumentError(f"users directory {self.users_dir} is not writable")
+        self.users_dir = None if users_dir is None else prepare_users_dir(users_dir)
         self._listener = listener
         self._unix_path: str | None = None
         if listener.family == socket.AF_UNIX:

@@ -713,6 +713,34 @@ def test_command_errors_are_one_line_with_exit_codes(model_path: Path, short_dir
     assert (short_dir / "file").read_text() == "keep"
 
 
+def test_users_directory_is_created_owner_only(model: nextword.Model, short_dir: Path, tmp_path: Path) -> None:
+    users = tmp_path / "data" / "nextword" / "users"  # two missing parents
+    old = os.umask(0o002)  # a permissive umask must not widen a directory of personal data
+    try:
+        with running(model, short_dir, users) as (_, path):
+            c = Client(path)
+            assert c.call(op="learn", user="ana", text="Harbor Lane at noon")["ok"]
+            c.close()
+    finally:
+        os.umask(old)
+    for d in (users, users.parent, users.parent.parent):
+        assert d.is_dir() and (d.stat().st_mode & 0o777) == 0o700, (d, oct(d.stat().st_mode))
+    assert (users / "ana.nwp").exists()
+
+
+def test_users_path_that_is_a_file_is_a_one_line_error(model_path: Path, short_dir: Path) -> None:
+    f = short_dir / "users.txt"
+    f.write_text("keep")
+    sock = short_dir / "s.sock"
+    for users in (f, f / "sub"):
+        r = run_cli(str(model_path), "--socket", str(sock), "--users", str(users))
+        assert r.returncode == 1 and r.stdout == "", r.stderr
+        assert len(r.stderr.splitlines()) == 1 and r.stderr.startswith("nextword: error: "), r.stderr
+        assert str(users) in r.stderr and "not a directory" in r.stderr.lower(), r.stderr
+        assert not sock.exists()  # checked before listening: no socket file left behind
+    assert f.read_text() == "keep"
+
+
 def test_a_second_server_on_a_live_socket_is_refused(model_path: Path, short_dir: Path) -> None:
     sock = short_dir / "s.sock"
     proc, _ = start(str(model_path), "--socket", str(sock))
