@@ -98,22 +98,30 @@ class Client:
 
 
 @contextmanager
-def running(
-    model: nextword.Model, sock_dir: Path, users: Path | None, *, max_open_users: int = 256, **limits: Any
-) -> Iterator[tuple[Server, Path]]:
-    path = sock_dir / "s.sock"
-    server = Server(model, listen_unix(path), users_dir=users, limits=ServeLimits(**limits), max_open_users=max_open_users)
+def serving(
+    model: nextword.Model, listener: socket.socket, users: Path | None, *, max_open_users: int = 256, **limits: Any
+) -> Iterator[Server]:
+    server = Server(model, listener, users_dir=users, limits=ServeLimits(**limits), max_open_users=max_open_users)
     report: dict[str, Any] = {}
     t = threading.Thread(target=lambda: report.update(server.serve_forever()), daemon=True)
     t.start()
     try:
-        yield server, path
+        yield server
     finally:
         server.stop()
         t.join(WAIT)
     assert not t.is_alive(), "server did not stop"
-    assert not path.exists(), "socket file left behind"
     assert report["connections_cut"] == 0
+
+
+@contextmanager
+def running(
+    model: nextword.Model, sock_dir: Path, users: Path | None, *, max_open_users: int = 256, **limits: Any
+) -> Iterator[tuple[Server, Path]]:
+    path = sock_dir / "s.sock"
+    with serving(model, listen_unix(path), users, max_open_users=max_open_users, **limits) as server:
+        yield server, path
+    assert not path.exists(), "socket file left behind"
 
 
 def as_pairs(answer: dict[str, Any]) -> list[tuple[str, float]]:
@@ -801,33 +809,88 @@ def c_client(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return exe
 
 
+def loopback_v6() -> bool:
+    try:
+        with socket.socket(socket.AF_INET6, socket.SOCK_STREAM) as probe:
+            probe.bind(("::1", 0))
+        return True
+    except OSError:
+        return False
+
+
+@contextmanager
+def c_client_server(
+    transport: str, model: nextword.Model, sock_dir: Path, users: Path | None
+) -> Iterator[tuple[list[str], str]]:
+    """A server on ``transport`` and the C client's option naming it (and how its errors name it)."""
+    if transport == "unix":
+        with running(model, sock_dir, users) as (_, path):
+            yield ["-s", str(path)], str(path)
+        return
+    if transport == "tcp6" and not loopback_v6():
+        pytest.skip("no IPv6 loopback (::1) on this machine")
+    host = "127.0.0.1" if transport == "tcp" else "::1"
+    with serving(model, listen_tcp(host, 0), users) as server:
+        port = server.address()["port"]
+        where = f"{host}:{port}" if transport == "tcp" else f"[{host}]:{port}"
+        yield ["-t", where], where
+
+
+@pytest.mark.parametrize("transport", ["unix", "tcp", "tcp6"])
 def test_c_client_prints_what_model_suggest_returns(
-    c_client: Path, model: nextword.Model, short_dir: Path, tmp_path: Path
+    transport: str, c_client: Path, model: nextword.Model, short_dir: Path, tmp_path: Path
 ) -> None:
     texts = ["See you at the ", "Repair night on Th", 'He said "bring the tr', "a\\b\tthanks for ", "Café at the ", "pri", ""]
     texts += demo_queries(10, seed=21)
-    with running(model, short_dir, tmp_path / "users") as (_, path):
+    users = tmp_path / "users"
+    with c_client_server(transport, model, short_dir, users) as (where, shown):
         for i, text in enumerate(texts):
             k = 1 + i % 5
-            r = subprocess.run([str(c_client), "-s", str(path), "-k", str(k), text], capture_output=True, timeout=WAIT)
+            r = subprocess.run([str(c_client), *where, "-k", str(k), text], capture_output=True, timeout=WAIT)
             assert r.returncode == 0, r.stderr
             lines = r.stdout.decode("utf-8").splitlines()
             assert len(lines) == 1
             answer = json.loads(lines[0])
             assert answer["id"] == 1 and as_pairs(answer) == expected(model.suggest(text, k)), text
         # with a user, the answer is that user's layer's
-        c = Client(path)
+        layer = PersonalLayer(model)  # the oracle, fed the same messages
         for _ in range(2):
-            c.call(op="learn", user="ana", text="the Zorbington Lane ride")
-        c.close()
-        r = subprocess.run([str(c_client), "-s", str(path), "-u", "ana", "at Zo"], capture_output=True, timeout=WAIT)
-        layer = PersonalLayer.load(model, tmp_path / "users" / "ana.nwp")
+            r = subprocess.run([str(c_client), *where, "-u", "ana", "x"], capture_output=True, timeout=WAIT)
+            assert r.returncode == 0, r.stderr  # a user without a layer: the base answers
+            layer.learn("the Zorbington Lane ride")
+            assert learn_via_socket(where, "ana", "the Zorbington Lane ride")["ok"]
+        r = subprocess.run([str(c_client), *where, "-u", "ana", "at Zo"], capture_output=True, timeout=WAIT)
         assert as_pairs(json.loads(r.stdout)) == expected(layer.suggest("at Zo", 3)) and b"Zorbington" in r.stdout
         # an error answer: printed, exit status 1
-        r = subprocess.run([str(c_client), "-s", str(path), "-u", "../ana", "x"], capture_output=True, timeout=WAIT)
+        r = subprocess.run([str(c_client), *where, "-u", "../ana", "x"], capture_output=True, timeout=WAIT)
         assert r.returncode == 1 and json.loads(r.stdout)["error"]["code"] == "bad_field"
-    # no server: one line on stderr, exit status 1; usage mistakes: exit status 2
-    r = subprocess.run([str(c_client), "-s", str(path), "the "], capture_output=True, text=True, timeout=WAIT)
-    assert r.returncode == 1 and r.stdout == "" and str(path) in r.stderr
-    r = subprocess.run([str(c_client), "-k", "zero", "the "], capture_output=True, text=True, timeout=WAIT)
-    assert r.returncode == 2 and "zero" in r.stderr
+    # no server: one line on stderr naming where, exit status 1
+    r = subprocess.run([str(c_client), *where, "the "], capture_output=True, text=True, timeout=WAIT)
+    assert r.returncode == 1 and r.stdout == "" and shown in r.stderr and len(r.stderr.splitlines()) == 1, r.stderr
+
+
+def learn_via_socket(where: list[str], user: str, text: str) -> dict[str, Any]:
+    if where[0] == "-s":
+        c = Client(Path(where[1]))
+    else:
+        host, port = where[1].rsplit(":", 1)
+        c = Client((host.strip("[]"), int(port)))
+    try:
+        return c.call(op="learn", user=user, text=text)
+    finally:
+        c.close()
+
+
+def test_c_client_usage_mistakes_exit_2(c_client: Path) -> None:
+    cases = [
+        (["-k", "zero", "the "], "zero"),
+        (["-t", "127.0.0.1", "the "], "'127.0.0.1'"),  # no port
+        (["-t", "127.0.0.1:70000", "the "], "70000"),
+        (["-t", "::1:7070", "the "], "::1:7070"),  # IPv6 needs brackets
+        (["-t", "192.0.2.1:7070", "the "], "not a loopback address"),  # TEST-NET-1 (RFC 5737): never loopback
+        (["-s", "a.sock", "-t", "127.0.0.1:7070", "the "], "usage"),
+        (["the ", "extra"], "usage"),
+    ]
+    for args, needle in cases:
+        r = subprocess.run([str(c_client), *args], capture_output=True, text=True, timeout=WAIT)
+        assert r.returncode == 2 and r.stdout == "" and needle in r.stderr, (args, r.stderr)
