@@ -652,9 +652,25 @@ class Server:
         layer = self._acquire(user, create=create)
         try:
             yield layer
+        except RequestError:
+            raise
+        except Exception as e:
+            # the layer itself failed (its counts may be half-changed): this user gets a clear
+            # error now, and the next request reads the file again instead of failing forever
+            self._set_broken(user)
+            raise RequestError(
+                "user_layer",
+                _printable(f"user {user}: the personal layer failed ({type(e).__name__}: {e}); it is read again from its file next time"),
+            ) from None
         finally:
             if layer is not None:
                 self._release(user)
+
+    def _set_broken(self, user: str) -> None:
+        with self._layers_cond:
+            entry = self._layers.get(user)
+            if entry is not None:
+                entry.broken = True
 
     def _acquire(self, user: str, *, create: bool) -> PersonalLayer | None:
         assert self.users_dir is not None
@@ -697,14 +713,13 @@ class Server:
     def _evictable(self) -> list[tuple[str, PersonalLayer]]:
         """Take the least recently used unheld layers out while over the cap (caller holds the lock)."""
         victims = []
-        if len(self._layers) > self.max_open_users:
-            for user, entry in list(self._layers.items()):
-                if len(self._layers) <= self.max_open_users:
-                    break
-                if entry.holders == 0:
-                    del self._layers[user]
-                    self._pending.add(user)  # reopened only once this close is finished
-                    victims.append((user, entry.layer))
+        over = len(self._layers) - self.max_open_users
+        for user, entry in list(self._layers.items()):
+            if entry.holders == 0 and (over > 0 or entry.broken):
+                del self._layers[user]
+                over -= 1
+                self._pending.add(user)  # reopened only once this close is finished
+                victims.append((user, entry.layer))
         return victims
 
     def _close(self, victims: list[tuple[str, PersonalLayer]]) -> None:
@@ -724,19 +739,31 @@ class Server:
         assert self.users_dir is not None
         path = self.users_dir / (user + _LAYER_SUFFIX)
         try:
+            st = os.stat(path)
+        except FileNotFoundError:
+            pass
+        except OSError as e:
+            raise RequestError("user_layer", f"user {user}: cannot read the layer file: {e.strerror or e}") from None
+        else:
+            if not stat.S_ISREG(st.st_mode):  # e.g. a FIFO, whose open would wait forever
+                raise RequestError("user_layer", f"user {user}: {path} is not a regular file; it is left alone")
+        try:
             return PersonalLayer.open(self.model, path, create=create)
         except LayerNotFoundError:
             return None
         except NextwordError as e:  # damaged, foreign or unreadable
-            raise RequestError("user_layer", f"user {user}: {e}") from None
+            raise RequestError("user_layer", _printable(f"user {user}: {e}")) from None
         except OSError as e:
             raise RequestError("user_layer", f"user {user}: cannot create the layer file: {e.strerror or e}") from None
+        except Exception as e:  # e.g. the file is busy (locked by another process): this user only, not a server bug
+            raise RequestError("user_layer", _printable(f"user {user}: cannot open the layer ({type(e).__name__}: {e})")) from None
 
 
 @dataclass
 class _OpenLayer:
     layer: PersonalLayer
     holders: int  # requests using the layer now: it is never closed under them
+    broken: bool = False  # an operation failed: closed as soon as nobody holds it, then read again
 
 
 def _json_type(value: object) -> str:

@@ -13,6 +13,7 @@ import random
 import shutil
 import signal
 import socket
+import stat
 import subprocess
 import sys
 import tempfile
@@ -385,6 +386,101 @@ def test_damaged_user_layer_is_reported_and_kept(model: nextword.Model, short_di
         assert c.call(op="learn", user="cy", text="hello there")["messages"] == 1  # others unaffected
         c.close()
     assert (users / "bo.nwp").read_bytes() == damaged  # never replaced by an empty layer
+
+
+def test_layer_paths_that_are_not_regular_files_are_refused_at_once(
+    model: nextword.Model, short_dir: Path, tmp_path: Path
+) -> None:
+    users = tmp_path / "users"
+    users.mkdir()
+    os.mkfifo(users / "fi.nwp")  # opening a FIFO for reading would wait for a writer forever
+    (users / "dd.nwp").mkdir()
+    with running(model, short_dir, users) as (_, path):
+        c = Client(path)
+        for user in ("fi", "dd"):
+            for req in ({"op": "suggest", "text": "the "}, {"op": "learn", "text": "hi"}, {"op": "info"}):
+                answer = c.call(id=user, user=user, **req)
+                assert answer["ok"] is False and answer["error"]["code"] == "user_layer", answer
+                assert user in answer["error"]["message"]
+        assert c.call(op="learn", user="cy", text="hello there")["messages"] == 1  # others unaffected
+        c.close()
+    assert stat.S_ISFIFO(os.lstat(users / "fi.nwp").st_mode) and (users / "dd.nwp").is_dir()  # left alone
+
+
+def test_a_failing_layer_answers_user_layer_and_is_read_again(
+    model: nextword.Model, short_dir: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Fault injection: the layer's own code raises for one user (as a layer with inconsistent counts might)."""
+    users = tmp_path / "users"
+    real_suggest = PersonalLayer.suggest
+    faulty = {"bo"}
+
+    def suggest(self: PersonalLayer, typed: str, k: int = 3) -> list[nextword.Suggestion]:
+        if self.path is not None and Path(self.path).stem in faulty:
+            raise ZeroDivisionError("float division by zero")
+        return real_suggest(self, typed, k)
+
+    monkeypatch.setattr(PersonalLayer, "suggest", suggest)
+    with running(model, short_dir, users) as (server, path):
+        c = Client(path)
+        for _ in range(2):
+            assert c.call(op="learn", user="bo", text="the Zorbington Lane ride")["ok"]
+        for _ in range(3):  # every request for bo: a clear code naming the user, never "internal"
+            answer = c.call(id="s", op="suggest", user="bo", text="at Zo")
+            assert answer["error"]["code"] == "user_layer" and "bo" in answer["error"]["message"], answer
+            assert "bo" not in server.open_users()  # dropped: the next request reads the file again
+        assert as_pairs(c.call(op="suggest", user="cy", text="at Zo")) == expected(model.suggest("at Zo"))
+        # the file is replaced (e.g. restored from a backup) and the fault is gone: bo is served from the new file
+        restored = PersonalLayer(model)
+        restored.learn("the Zorbington Lane shop")
+        restored.learn("the Zorbington Lane stand")
+        restored.save(users / "bo.nwp")
+        faulty.clear()
+        assert as_pairs(c.call(op="suggest", user="bo", text="Zorbington Lane ")) == expected(
+            restored.suggest("Zorbington Lane ")
+        )
+        c.close()
+
+
+@pytest.mark.parametrize(
+    "busy",
+    [
+        BlockingIOError(11, "Resource temporarily unavailable (the layer file is locked)"),
+        RuntimeError("the layer file is locked by another process"),  # whatever a lock may raise: never "internal"
+    ],
+    ids=["oserror", "other"],
+)
+def test_a_busy_layer_file_holds_up_only_its_user(
+    busy: Exception, model: nextword.Model, short_dir: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Fault injection: opening one user's layer waits (a lock held elsewhere), then fails as busy."""
+    users = tmp_path / "users"
+    real_open = PersonalLayer.open.__func__  # type: ignore[attr-defined]
+    entered, release = threading.Event(), threading.Event()
+
+    def open_(cls: type[PersonalLayer], base: nextword.Model, path: Any, **kw: Any) -> PersonalLayer:
+        if Path(path).stem == "slow":
+            entered.set()
+            assert release.wait(WAIT)
+            raise busy
+        return real_open(cls, base, path, **kw)
+
+    monkeypatch.setattr(PersonalLayer, "open", classmethod(open_))
+    with running(model, short_dir, users, max_open_users=1) as (_, path):
+        a, b = Client(path), Client(path)
+        a.send_raw(b'{"id": "busy", "op": "learn", "user": "slow", "text": "hi"}\n')
+        assert entered.wait(WAIT)
+        for n in range(3):  # meanwhile other users are opened, served and closed (cap 1)
+            for u in ("ana", "cy"):
+                assert b.call(op="learn", user=u, text=f"message {n}")["messages"] == n + 1
+        release.set()
+        answer = a.read()
+        assert answer["id"] == "busy" and answer["error"]["code"] == "user_layer", answer
+        assert "slow" in answer["error"]["message"] and "locked" in answer["error"]["message"]
+        monkeypatch.setattr(PersonalLayer, "open", classmethod(real_open))  # the lock is free again
+        assert a.call(op="learn", user="slow", text="hi")["messages"] == 1
+        a.close()
+        b.close()
 
 
 # -- framing: size limit, half-sent and abandoned requests ----------------------------------------
