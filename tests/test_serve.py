@@ -29,7 +29,7 @@ from hypothesis import strategies as st
 
 import nextword
 from nextword.personal import PersonalLayer
-from nextword.serve import ERROR_CODES, ServeLimits, Server, listen_tcp, listen_unix, valid_user
+from nextword.serve import ERROR_CODES, OPS, ServeLimits, Server, encode_answer, listen_tcp, listen_unix, valid_user
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO = ROOT / "examples" / "data" / "demo_messages.txt"
@@ -355,12 +355,51 @@ def test_every_pipelined_line_gets_one_valid_answer_in_order(model: nextword.Mod
 
 def test_an_answer_that_cannot_be_encoded_is_an_internal_error(model: nextword.Model, short_dir: Path) -> None:
     """The last line of defence: whatever a handler returns, the line is answered with valid JSON."""
-    from nextword.serve import encode_answer
-
     answer = strict_json(encode_answer({"id": 3, "ok": True, "suggestions": [{"word": "a", "prob": float("nan")}]}))
     assert answer["id"] == 3 and answer["ok"] is False and answer["error"]["code"] == "internal"
     answer = strict_json(encode_answer({"id": "\ud800", "ok": True, "word": "\udfff"}))
     assert answer["id"] is None and answer["error"]["code"] == "internal"
+
+
+# strings as a client may send them: letters, spaces, digits, and lone surrogates (JSON "\udXXX" escapes)
+_WILD_TEXT = st.text(st.characters(categories=["Ll", "Lu", "Nd", "Zs", "Cs", "Po"]), max_size=12)
+_WILD_VALUE = st.recursive(
+    st.none() | st.booleans() | st.integers(-(2**70), 2**70) | st.floats() | _WILD_TEXT,
+    lambda inner: st.lists(inner, max_size=3) | st.dictionaries(_WILD_TEXT, inner, max_size=3),
+    max_leaves=6,
+)
+_WILD_KEY = st.sampled_from(["id", "op", "text", "k", "user", "word", "all"]) | _WILD_TEXT
+_WILD_REQUEST = st.fixed_dictionaries(
+    {"op": st.sampled_from([*OPS, "nope"]) | _WILD_TEXT},
+    optional={"id": _WILD_VALUE, "text": _WILD_VALUE, "k": _WILD_VALUE, "user": st.sampled_from(["ana", "bo"]) | _WILD_VALUE},
+) | st.dictionaries(_WILD_KEY, _WILD_VALUE, max_size=5)
+
+
+@pytest.fixture(scope="module")
+def idle_server(model: nextword.Model, tmp_path_factory: pytest.TempPathFactory) -> Iterator[Server]:
+    """A server that is never started: handle_line is called directly, as a connection thread would."""
+    d = Path(tempfile.mkdtemp(prefix="nwh"))
+    listener = listen_unix(d / "s.sock")
+    yield Server(model, listener, users_dir=tmp_path_factory.mktemp("hyp_users"))
+    listener.close()
+    shutil.rmtree(d, ignore_errors=True)
+
+
+@settings(max_examples=300, deadline=None)
+@given(_WILD_REQUEST)
+def test_any_request_gets_exactly_one_valid_json_answer(idle_server: Server, req: dict[str, Any]) -> None:
+    """Invariant (RFC 8259 §6, §8.1: no NaN/Infinity, UTF-8 without lone surrogates): one strict JSON answer per line."""
+    line = json.dumps(req).encode("ascii")  # ensure_ascii: surrogates become \udXXX escapes, floats may be NaN/Infinity
+    answer_bytes = encode_answer(idle_server.handle_line(line) or {})
+    assert answer_bytes.count(b"\n") == 1
+    answer = strict_json(answer_bytes)
+    assert isinstance(answer["ok"], bool) and "id" in answer
+    if answer["ok"] is False:
+        assert answer["error"]["code"] in ERROR_CODES and answer["error"]["code"] != "internal", answer
+    rid = req.get("id")
+    if isinstance(rid, (str, int)) and not isinstance(rid, bool) and "NaN" not in line.decode() and "Infinity" not in line.decode():
+        if not (isinstance(rid, str) and any(0xD800 <= ord(ch) <= 0xDFFF for ch in rid)):
+            assert answer["id"] == rid  # echoed unchanged whenever it can be
 
 
 def test_personal_requests_without_a_users_directory(model: nextword.Model, short_dir: Path) -> None:
@@ -864,8 +903,6 @@ PROTOCOL = (ROOT / "docs" / "PROTOCOL.md").read_text(encoding="utf-8")
 
 
 def test_protocol_doc_names_every_op_and_error_code() -> None:
-    from nextword.serve import OPS
-
     headings = [ln for ln in PROTOCOL.splitlines() if ln.startswith("### ")]
     for op in OPS:
         assert any(f"`{op}`" in h for h in headings), op
