@@ -21,7 +21,8 @@ Design, and why:
   answered, and only a layer nobody holds is closed; a user is never opened twice at
   once, and a closing layer is finished before the same user is opened again, so no
   change is lost across an eviction. Since every change is already saved, closing costs
-  no write.
+  no write. Changes for one user go one at a time through a per-user lock, so the layer
+  state in each answer is the one that change made.
 - **A thread per connection.** Suggest calls take tens of microseconds, so the simple
   model is enough; connections are capped (``max_clients``) so a flood cannot exhaust
   threads.
@@ -49,8 +50,9 @@ import threading
 import time
 from collections import OrderedDict
 from collections.abc import Callable, Iterator
-from contextlib import contextmanager
+from contextlib import contextmanager, nullcontext
 from dataclasses import asdict, dataclass
+from dataclasses import field as dataclass_field
 from pathlib import Path
 from typing import Any
 
@@ -647,11 +649,17 @@ class Server:
         return name
 
     @contextmanager
-    def _using(self, user: str, *, create: bool) -> Iterator[PersonalLayer | None]:
-        """The user's layer, held open for the ``with`` block (``None``: no layer and not ``create``)."""
-        layer = self._acquire(user, create=create)
+    def _using(self, user: str, *, create: bool, changing: bool = False) -> Iterator[PersonalLayer | None]:
+        """The user's layer, held open for the ``with`` block (``None``: no layer and not ``create``).
+
+        ``changing``: also hold the user's change lock, so a change and the layer state
+        answered for it are one step (another request's change cannot come between them).
+        """
+        entry = self._acquire(user, create=create)
+        layer = None if entry is None else entry.layer
         try:
-            yield layer
+            with entry.change_lock if entry is not None and changing else nullcontext():
+                yield layer
         except RequestError:
             raise
         except Exception as e:
@@ -672,7 +680,7 @@ class Server:
             if entry is not None:
                 entry.broken = True
 
-    def _acquire(self, user: str, *, create: bool) -> PersonalLayer | None:
+    def _acquire(self, user: str, *, create: bool) -> _OpenLayer | None:
         assert self.users_dir is not None
         cond = self._layers_cond
         with cond:
@@ -681,7 +689,7 @@ class Server:
                 if entry is not None:
                     entry.holders += 1
                     self._layers.move_to_end(user)
-                    return entry.layer
+                    return entry
                 if user not in self._pending:
                     break
                 cond.wait()  # another request is opening this user's layer, or closing it
@@ -695,12 +703,13 @@ class Server:
             raise
         with cond:
             self._pending.discard(user)
-            if layer is not None:
-                self._layers[user] = _OpenLayer(layer, holders=1)
+            entry = None if layer is None else _OpenLayer(layer, holders=1)
+            if entry is not None:
+                self._layers[user] = entry
             victims = self._evictable()
             cond.notify_all()
         self._close(victims)
-        return layer
+        return entry
 
     def _release(self, user: str) -> None:
         with self._layers_cond:
@@ -764,6 +773,7 @@ class _OpenLayer:
     layer: PersonalLayer
     holders: int  # requests using the layer now: it is never closed under them
     broken: bool = False  # an operation failed: closed as soon as nobody holds it, then read again
+    change_lock: threading.Lock = dataclass_field(default_factory=threading.Lock)  # one change (and its answer) at a time
 
 
 def _json_type(value: object) -> str:
@@ -840,8 +850,8 @@ def _layer_state(user: str, layer: PersonalLayer | None) -> dict[str, Any]:
     }
 
 
-def _changing(server: Server, user: str, create: bool, change: Callable[[PersonalLayer], None]) -> dict[str, Any]:
-    with server._using(user, create=create) as layer:
+def _changing(server: Server, user: str, create: bool, change: Callable[[PersonalLayer], object]) -> dict[str, Any]:
+    with server._using(user, create=create, changing=True) as layer:
         if layer is not None:
             try:
                 change(layer)
