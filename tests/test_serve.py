@@ -853,6 +853,21 @@ def test_sigterm_saves_layers_removes_socket_and_restart_keeps_them(
     assert after == before == expected(PersonalLayer.load(model, users / "ana.nwp").suggest("at Zo"))
 
 
+def test_command_max_open_users_is_applied(model_path: Path, model: nextword.Model, short_dir: Path, tmp_path: Path) -> None:
+    sock, users = short_dir / "s.sock", tmp_path / "users"
+    proc, _ = start(str(model_path), "--socket", str(sock), "--users", str(users), "--max-open-users", "1")
+    try:
+        c = Client(sock)
+        for n in range(3):
+            for u in ("ana", "bo", "cy"):
+                assert c.call(op="learn", user=u, text=f"Harbor Lane note {n}")["messages"] == n + 1
+        c.close()
+    finally:
+        report = stop(proc, signal.SIGTERM)
+    assert report["layers_saved"] == 1  # only the last user's layer was still open
+    assert [PersonalLayer.load(model, users / f"{u}.nwp").messages for u in ("ana", "bo", "cy")] == [3, 3, 3]
+
+
 def test_tcp_on_loopback_port_zero(model_path: Path, model: nextword.Model) -> None:
     proc, ready = start(str(model_path), "--tcp", "127.0.0.1:0")
     try:
@@ -878,6 +893,7 @@ def test_command_errors_are_one_line_with_exit_codes(model_path: Path, short_dir
         ((str(model_path), "--tcp", "127.0.0.1:0", "--socket", str(short_dir / "a")), 2, "--socket"),
         ((str(model_path), "--socket", str(short_dir / "a"), "--allow-non-loopback"), 2, "--allow-non-loopback"),
         ((str(model_path), "--max-line-bytes", "0"), 2, "0"),
+        ((str(model_path), "--max-open-users", "0"), 2, "--max-open-users"),
         ((str(model_path), "--request-timeout", "soon"), 2, "soon"),
         ((str(model_path), "--socket", str(short_dir / ("d" * 120))), 2, "too long"),
         ((str(short_dir / "missing.nwm"), "--socket", str(short_dir / "a")), 1, "missing.nwm"),
