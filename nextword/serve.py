@@ -366,6 +366,7 @@ class Server:
         # open layers, least recently used first; users being opened or closed right now
         self._layers: OrderedDict[str, _OpenLayer] = OrderedDict()
         self._pending: set[str] = set()
+        self._broken: set[str] = set()  # open layers whose last operation failed
         self._layers_cond = threading.Condition(threading.Lock())
         self.layers_closed = 0  # layers closed to stay within max_open_users
         self._conns: dict[threading.Thread, socket.socket] = {}
@@ -663,6 +664,8 @@ class Server:
         except RequestError:
             raise
         except Exception as e:
+            if layer is None:
+                raise  # not the layer's failure: reported as internal
             # the layer itself failed (its counts may be half-changed): this user gets a clear
             # error now, and the next request reads the file again instead of failing forever
             self._set_broken(user)
@@ -679,6 +682,7 @@ class Server:
             entry = self._layers.get(user)
             if entry is not None:
                 entry.broken = True
+                self._broken.add(user)
 
     def _acquire(self, user: str, *, create: bool) -> _OpenLayer | None:
         assert self.users_dir is not None
@@ -721,11 +725,16 @@ class Server:
 
     def _evictable(self) -> list[tuple[str, PersonalLayer]]:
         """Take the least recently used unheld layers out while over the cap (caller holds the lock)."""
-        victims = []
+        victims: list[tuple[str, PersonalLayer]] = []
         over = len(self._layers) - self.max_open_users
+        if over <= 0 and not self._broken:
+            return victims  # the common case: nothing to scan
         for user, entry in list(self._layers.items()):
+            if over <= 0 and not self._broken:
+                break
             if entry.holders == 0 and (over > 0 or entry.broken):
                 del self._layers[user]
+                self._broken.discard(user)
                 over -= 1
                 self._pending.add(user)  # reopened only once this close is finished
                 victims.append((user, entry.layer))
