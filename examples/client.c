@@ -3,11 +3,13 @@
  * libc only, so it shows everything an input-method engine needs to talk to the service.
  *
  *   cc -std=c99 -O2 -o nextword-client examples/client.c
- *   ./nextword-client [-s SOCKET] [-k K] [-u USER] 'See you at the '
+ *   ./nextword-client [-s SOCKET | -t HOST:PORT] [-k K] [-u USER] 'See you at the '
  *
  * It connects to the Unix socket (default: $XDG_RUNTIME_DIR/nextword.sock, else
- * ./nextword.sock, as the server), sends one suggest request for the text before the
- * cursor, and prints the answer line as received, e.g.
+ * ./nextword.sock, as the server) or, with -t, to a server started with
+ * `nextword serve --tcp HOST:PORT` (IPv6 as [::1]:PORT; loopback addresses only, since the
+ * protocol has neither authentication nor encryption), sends one suggest request for the
+ * typed text, and prints the answer line as received, e.g.
  *
  *   {"id":1,"ok":true,"suggestions":[{"word":"workshop","prob":0.2407723843316642},...]}
  *
@@ -19,6 +21,8 @@
 #define _POSIX_C_SOURCE 200809L
 
 #include <errno.h>
+#include <netdb.h>
+#include <netinet/in.h>
 #include <signal.h>
 #include <stdio.h>
 #include <stdlib.h>
@@ -109,17 +113,114 @@ static int read_line(int fd, struct buf *b) {
 }
 
 static void usage(void) {
-    fprintf(stderr, "usage: nextword-client [-s SOCKET] [-k K] [-u USER] TYPED_TEXT\n");
+    fprintf(stderr, "usage: nextword-client [-s SOCKET | -t HOST:PORT] [-k K] [-u USER] TYPED_TEXT\n");
+}
+
+/* Split "HOST:PORT" or "[IPv6]:PORT" into host and port (in place, in a copy the caller
+ * owns); 0 on success, -1 if the text is not of that shape or the port is not 1-65535. */
+static int split_host_port(char *text, char **host, char **port) {
+    char *colon;
+    if (text[0] == '[') {
+        char *close = strchr(text, ']');
+        if (!close || close[1] != ':') return -1;
+        *close = '\0';
+        *host = text + 1;
+        colon = close + 1;
+    } else {
+        colon = strrchr(text, ':');
+        if (!colon || strchr(text, ':') != colon) return -1; /* an IPv6 address needs [brackets] */
+        *colon = '\0';
+        *host = text;
+    }
+    *port = colon + 1;
+    if (!**host || !**port || strlen(*port) > 5) return -1;
+    long n = 0;
+    for (const char *p = *port; *p; p++) {
+        if (*p < '0' || *p > '9') return -1;
+        n = n * 10 + (*p - '0');
+    }
+    return n >= 1 && n <= 65535 ? 0 : -1;
+}
+
+/* Whether a resolved address is a loopback one: 127.0.0.0/8, ::1 or ::ffff:127.x.y.z. */
+static int is_loopback(const struct sockaddr *sa) {
+    if (sa->sa_family == AF_INET) {
+        const unsigned char *b = (const unsigned char *)&((const struct sockaddr_in *)sa)->sin_addr;
+        return b[0] == 127;
+    }
+    if (sa->sa_family == AF_INET6) {
+        const unsigned char *b = ((const struct sockaddr_in6 *)sa)->sin6_addr.s6_addr;
+        static const unsigned char one[16] = {0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 1};
+        static const unsigned char mapped[12] = {0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0xff, 0xff};
+        return memcmp(b, one, 16) == 0 || (memcmp(b, mapped, 12) == 0 && b[12] == 127);
+    }
+    return 0;
+}
+
+/* Connect over TCP to host:port (every loopback address it resolves to, in order).
+ * Returns the socket, or -1 with a message printed (*status: 2 usage, 1 connection). */
+static int connect_tcp(const char *where, int *status) {
+    char *copy = strdup(where), *host, *port;
+    if (!copy) {
+        fprintf(stderr, "nextword-client: error: out of memory\n");
+        *status = 1;
+        return -1;
+    }
+    if (split_host_port(copy, &host, &port) < 0) {
+        fprintf(stderr, "nextword-client: error: -t needs HOST:PORT (e.g. 127.0.0.1:7070 or [::1]:7070), got '%s'\n", where);
+        free(copy);
+        *status = 2;
+        return -1;
+    }
+    struct addrinfo hints, *found = NULL;
+    memset(&hints, 0, sizeof hints);
+    hints.ai_family = AF_UNSPEC;
+    hints.ai_socktype = SOCK_STREAM;
+    int rc = getaddrinfo(host, port, &hints, &found);
+    if (rc != 0) {
+        fprintf(stderr, "nextword-client: error: %s: %s\n", where, gai_strerror(rc));
+        free(copy);
+        *status = 1;
+        return -1;
+    }
+    int fd = -1, err = ECONNREFUSED, loopback = 0;
+    for (struct addrinfo *ai = found; ai && fd < 0; ai = ai->ai_next) {
+        if (!is_loopback(ai->ai_addr)) continue;
+        loopback = 1;
+        fd = socket(ai->ai_family, ai->ai_socktype, ai->ai_protocol);
+        if (fd < 0) {
+            err = errno;
+            continue;
+        }
+        if (connect(fd, ai->ai_addr, ai->ai_addrlen) < 0) {
+            err = errno;
+            close(fd);
+            fd = -1;
+        }
+    }
+    freeaddrinfo(found);
+    free(copy);
+    if (!loopback) {
+        fprintf(stderr, "nextword-client: error: %s is not a loopback address; the protocol has no encryption\n", where);
+        *status = 2;
+        return -1;
+    }
+    if (fd < 0) {
+        fprintf(stderr, "nextword-client: error: %s: %s\n", where, strerror(err));
+        *status = 1;
+    }
+    return fd;
 }
 
 int main(int argc, char **argv) {
-    const char *sock_path = NULL, *user = NULL;
+    const char *sock_path = NULL, *tcp = NULL, *user = NULL;
     long k = 3;
     int opt;
-    while ((opt = getopt(argc, argv, "s:k:u:")) != -1) {
+    while ((opt = getopt(argc, argv, "s:t:k:u:")) != -1) {
         char *end;
         switch (opt) {
         case 's': sock_path = optarg; break;
+        case 't': tcp = optarg; break;
         case 'u': user = optarg; break;
         case 'k':
             errno = 0;
@@ -132,35 +233,42 @@ int main(int argc, char **argv) {
         default: usage(); return 2;
         }
     }
-    if (optind != argc - 1) {
+    if (optind != argc - 1 || (sock_path && tcp)) {
         usage();
         return 2;
     }
     const char *text = argv[optind];
 
-    char default_path[sizeof(((struct sockaddr_un *)0)->sun_path)];
-    if (!sock_path) {
-        const char *runtime = getenv("XDG_RUNTIME_DIR");
-        if (runtime && *runtime && access(runtime, X_OK) == 0)
-            snprintf(default_path, sizeof default_path, "%s/nextword.sock", runtime);
-        else
-            snprintf(default_path, sizeof default_path, "./nextword.sock");
-        sock_path = default_path;
-    }
-    struct sockaddr_un addr;
-    memset(&addr, 0, sizeof addr);
-    addr.sun_family = AF_UNIX;
-    if (strlen(sock_path) >= sizeof addr.sun_path) {
-        fprintf(stderr, "nextword-client: error: socket path too long: %s\n", sock_path);
-        return 2;
-    }
-    strcpy(addr.sun_path, sock_path);
-
     signal(SIGPIPE, SIG_IGN); /* a server that goes away becomes an error, not a crash */
-    int fd = socket(AF_UNIX, SOCK_STREAM, 0);
-    if (fd < 0 || connect(fd, (struct sockaddr *)&addr, sizeof addr) < 0) {
-        fprintf(stderr, "nextword-client: error: %s: %s\n", sock_path, strerror(errno));
-        return 1;
+    char default_path[sizeof(((struct sockaddr_un *)0)->sun_path)];
+    int fd;
+    if (tcp) {
+        int status = 1;
+        fd = connect_tcp(tcp, &status);
+        if (fd < 0) return status;
+        sock_path = tcp; /* named in later error messages */
+    } else {
+        if (!sock_path) {
+            const char *runtime = getenv("XDG_RUNTIME_DIR");
+            if (runtime && *runtime && access(runtime, X_OK) == 0)
+                snprintf(default_path, sizeof default_path, "%s/nextword.sock", runtime);
+            else
+                snprintf(default_path, sizeof default_path, "./nextword.sock");
+            sock_path = default_path;
+        }
+        struct sockaddr_un addr;
+        memset(&addr, 0, sizeof addr);
+        addr.sun_family = AF_UNIX;
+        if (strlen(sock_path) >= sizeof addr.sun_path) {
+            fprintf(stderr, "nextword-client: error: socket path too long: %s\n", sock_path);
+            return 2;
+        }
+        strcpy(addr.sun_path, sock_path);
+        fd = socket(AF_UNIX, SOCK_STREAM, 0);
+        if (fd < 0 || connect(fd, (struct sockaddr *)&addr, sizeof addr) < 0) {
+            fprintf(stderr, "nextword-client: error: %s: %s\n", sock_path, strerror(errno));
+            return 1;
+        }
     }
 
     struct buf req = {0}, answer = {0};

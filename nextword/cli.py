@@ -23,6 +23,7 @@ from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT
 from .errors import InputDataError, InvalidArgumentError, NextwordError
 from .model import DEFAULT_LAMBDA, Model, load, train, train_texts
 from .paths import Labelled, check_outputs, check_writable
+from .serve import DEFAULT_MAX_OPEN_USERS
 from .text import fold
 
 __all__ = ["main", "build_parser"]
@@ -307,6 +308,7 @@ def _parser() -> _Parser:
     sv.add_argument("--max-clients", type=_positive, default=64, help="simultaneous connections (default %(default)s)")
     sv.add_argument("--max-k", type=_positive, default=50, help="largest k a request may ask for (default %(default)s)")
     sv.add_argument("--grace", type=_seconds, default=5.0, help="seconds a stop waits for requests in progress (default %(default)s)")
+    sv.add_argument("--max-open-users", type=_positive, default=DEFAULT_MAX_OPEN_USERS, help="personal layers kept open at once; the least recently used is closed (default %(default)s)")
 
     lv = sub.add_parser("live", help="type in the terminal and watch suggestions update on every key")
     lv.add_argument("model", help=_MODEL_HELP)
@@ -809,7 +811,7 @@ def _cmd_export(args: argparse.Namespace) -> int:
 
 
 def _cmd_serve(args: argparse.Namespace) -> int:
-    from .serve import ServeLimits, default_socket_path, listen_tcp, listen_unix, parse_host_port, run_server
+    from .serve import ServeLimits, default_socket_path, listen_tcp, listen_unix, parse_host_port, prepare_users_dir, run_server
 
     limits = ServeLimits(
         max_line_bytes=args.max_line_bytes,
@@ -822,6 +824,7 @@ def _cmd_serve(args: argparse.Namespace) -> int:
     if args.allow_non_loopback and not args.tcp:
         raise UsageError("--allow-non-loopback only applies to --tcp")
     model = load(args.model)
+    users = None if args.users is None else prepare_users_dir(args.users)  # before listening: no socket left on error
     if args.tcp:
         host, port = parse_host_port(args.tcp)
         listener = listen_tcp(host, port, allow_non_loopback=args.allow_non_loopback)
@@ -832,7 +835,9 @@ def _cmd_serve(args: argparse.Namespace) -> int:
         # one JSON line, flushed: scripts and tests read the real address (e.g. for port 0) from it
         print(json.dumps({"event": "ready", **address, "pid": os.getpid(), "model": args.model}), flush=True)
 
-    report = run_server(model, listener, users_dir=args.users, limits=limits, on_ready=ready)
+    report = run_server(
+        model, listener, users_dir=users, limits=limits, on_ready=ready, max_open_users=args.max_open_users
+    )
     try:
         print(json.dumps({"event": "stopped", **report}), flush=True)
     except OSError:

@@ -15,6 +15,14 @@ Design, and why:
   :class:`~nextword.personal.PersonalLayer` saves itself atomically on every change and
   has its own lock, so concurrent requests for one user are safe. User names are
   checked strictly (never a path) before they reach the file system.
+- **A bounded set of open layers** (``max_open_users``, least recently used closed
+  first): a server meeting many users over its life would otherwise keep every layer in
+  memory. A request holds its user's layer (a count of requests using it) until it has
+  answered, and only a layer nobody holds is closed; a user is never opened twice at
+  once, and a closing layer is finished before the same user is opened again, so no
+  change is lost across an eviction. Since every change is already saved, closing costs
+  no write. Changes for one user go one at a time through a per-user lock, so the layer
+  state in each answer is the one that change made.
 - **A thread per connection.** Suggest calls take tens of microseconds, so the simple
   model is enough; connections are capped (``max_clients``) so a flood cannot exhaust
   threads.
@@ -32,6 +40,7 @@ from __future__ import annotations
 import errno
 import ipaddress
 import json
+import math
 import os
 import re
 import select
@@ -39,25 +48,31 @@ import socket
 import stat
 import threading
 import time
-from collections.abc import Callable
+from collections import OrderedDict
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager, nullcontext
 from dataclasses import asdict, dataclass
+from dataclasses import field as dataclass_field
 from pathlib import Path
 from typing import Any
 
-from .errors import InvalidArgumentError, ModelFormatError
+from .errors import InvalidArgumentError, LayerNotFoundError, NextwordError
 from .model import Model
 from .personal import PersonalLayer
 
 __all__ = [
+    "DEFAULT_MAX_OPEN_USERS",
     "ERROR_CODES",
     "OPS",
     "PROTOCOL_VERSION",
     "ServeLimits",
     "Server",
     "default_socket_path",
+    "encode_answer",
     "listen_tcp",
     "listen_unix",
     "parse_host_port",
+    "prepare_users_dir",
     "valid_user",
 ]
 
@@ -78,6 +93,10 @@ ERROR_CODES = (
 )
 
 OPS = ("suggest", "learn", "forget", "block", "unblock", "info")
+
+#: Personal layers kept open at once (a full layer is a few MiB in memory); the least
+#: recently used one is closed (it is already saved) when one more is needed.
+DEFAULT_MAX_OPEN_USERS = 256
 
 _USER_RE = re.compile(r"[a-z0-9_][a-z0-9_.-]{0,63}")
 _LAYER_SUFFIX = ".nwp"
@@ -151,7 +170,30 @@ def _show(value: object, limit: int = 60) -> str:
         text = json.dumps(value, ensure_ascii=False)
     except (TypeError, ValueError):
         text = repr(value)
+    text = _printable(text)
     return text if len(text) <= limit else text[: limit - 1] + "…"
+
+
+def _printable(text: str) -> str:
+    """``text`` with every lone surrogate spelled as ``\\udXXX``, so it can always be sent as UTF-8."""
+    return text.encode("utf-8", "backslashreplace").decode("utf-8")
+
+
+def _surrogate_at(text: str) -> int | None:
+    """Index of the first lone surrogate in ``text`` (JSON escapes such as ``"\\ud800"`` make them), else None."""
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError as e:
+        return e.start
+    return None
+
+
+def _not_unicode(field: str, text: str, at: int) -> RequestError:
+    return RequestError(
+        "bad_field",
+        f"{_printable(field)} is not valid Unicode: lone surrogate \\u{ord(text[at]):04x} at character {at}",
+        _printable(field),
+    )
 
 
 def _no_constants(name: str) -> Any:
@@ -254,6 +296,41 @@ def listen_tcp(host: str, port: int, *, allow_non_loopback: bool = False) -> soc
     return sock
 
 
+def prepare_users_dir(path: str | os.PathLike[str]) -> Path:
+    """The users directory, ready for layer files: created if missing, owner-only (0700).
+
+    It holds everyone's personal data, so every directory created here (missing parents
+    too) gets mode 0700 exactly, whatever the umask; an existing directory is left as it
+    is. A path that exists and is not a directory raises ``NotADirectoryError``, one that
+    cannot be created or written ``OSError``, both naming the path.
+    """
+    d = Path(path)
+    name = os.fspath(d)
+    if d.exists() and not d.is_dir():
+        raise NotADirectoryError(
+            errno.ENOTDIR, "the users directory exists and is not a directory (--users needs a directory)", name
+        )
+    missing = []
+    p = d.absolute()
+    while not p.exists() and p != p.parent:
+        missing.append(p)
+        p = p.parent
+    for m in reversed(missing):
+        try:
+            m.mkdir(mode=0o700)
+        except FileExistsError:
+            pass  # created meanwhile by someone else: leave its mode alone
+        except OSError as e:
+            raise OSError(e.errno, f"cannot create the users directory: {e.strerror or e}", name) from None
+        else:
+            os.chmod(m, 0o700)  # mkdir's mode is masked by the umask
+    if not d.is_dir():
+        raise NotADirectoryError(errno.ENOTDIR, "the users directory is not a directory", name)
+    if not os.access(d, os.W_OK | os.X_OK):
+        raise PermissionError(errno.EACCES, "the users directory is not writable", name)
+    return d
+
+
 class Server:
     """Serves one model (and the users' personal layers) on a listening socket.
 
@@ -269,14 +346,14 @@ class Server:
         *,
         users_dir: str | os.PathLike[str] | None = None,
         limits: ServeLimits | None = None,
+        max_open_users: int = DEFAULT_MAX_OPEN_USERS,
     ) -> None:
+        if isinstance(max_open_users, bool) or not isinstance(max_open_users, int) or max_open_users < 1:
+            raise InvalidArgumentError(f"max_open_users must be an integer >= 1, got {max_open_users!r}")
+        self.max_open_users = max_open_users
         self.model = model
         self.limits = limits or ServeLimits()
-        self.users_dir = None if users_dir is None else Path(users_dir)
-        if self.users_dir is not None:
-            self.users_dir.mkdir(parents=True, exist_ok=True)
-            if not os.access(self.users_dir, os.W_OK | os.X_OK):
-                raise InvalidArgumentError(f"users directory {self.users_dir} is not writable")
+        self.users_dir = None if users_dir is None else prepare_users_dir(users_dir)
         self._listener = listener
         self._unix_path: str | None = None
         if listener.family == socket.AF_UNIX:
@@ -286,8 +363,12 @@ class Server:
         os.set_blocking(self._wake_w, False)
         self._stopping = threading.Event()
         self._stopped = threading.Event()
-        self._layers: dict[str, PersonalLayer] = {}
-        self._layers_lock = threading.Lock()
+        # open layers, least recently used first; users being opened or closed right now
+        self._layers: OrderedDict[str, _OpenLayer] = OrderedDict()
+        self._pending: set[str] = set()
+        self._broken: set[str] = set()  # open layers whose last operation failed
+        self._layers_cond = threading.Condition(threading.Lock())
+        self.layers_closed = 0  # layers closed to stay within max_open_users
         self._conns: dict[threading.Thread, socket.socket] = {}
         self._conns_lock = threading.Lock()
         self.requests = 0  # answered requests, for the stop report (approximate under threads)
@@ -373,6 +454,7 @@ class Server:
             t.join(max(0.0, deadline - time.monotonic()))
         unfinished = sum(t.is_alive() for t in threads)
         saved = self.flush()
+        self._close_layers()
         if not unfinished:  # a thread still polling would see a closed (or reused) descriptor
             os.close(self._wake_r)
             os.close(self._wake_w)
@@ -381,12 +463,24 @@ class Server:
 
     def flush(self) -> int:
         """Save every open personal layer (under its own lock); returns how many were saved."""
-        with self._layers_lock:
-            layers = list(self._layers.values())
+        with self._layers_cond:
+            layers = [entry.layer for entry in self._layers.values()]
         for layer in layers:
             assert layer.path is not None
             layer.save(layer.path)
         return len(layers)
+
+    def open_users(self) -> list[str]:
+        """Users whose layers are open now, least recently used first."""
+        with self._layers_cond:
+            return list(self._layers)
+
+    def _close_layers(self) -> None:
+        with self._layers_cond:
+            entries = list(self._layers.values())
+            self._layers.clear()
+        for entry in entries:
+            entry.layer.close()
 
     # -- one connection ------------------------------------------------------------------------
 
@@ -417,7 +511,7 @@ class Server:
                         continue
                     answer = self.handle_line(line)
                     if answer is not None:
-                        out += _encode(answer)
+                        out += encode_answer(answer)
                 if len(buf) > lim.max_line_bytes:
                     out += _encode(error_response(None, self._too_large()))
                     buf.clear()
@@ -505,25 +599,35 @@ class Server:
                 bad = rid
                 rid = None
                 raise RequestError("bad_field", f"id must be a string, a number or null, got {_json_type(bad)}", "id")
+            if isinstance(rid, float) and not math.isfinite(rid):  # e.g. 1e999: an answer cannot echo it
+                bad, rid = rid, None
+                raise RequestError("bad_field", f"id must be a finite number, got {bad!r} (a number too large for a double)", "id")
+            if isinstance(rid, str) and (at := _surrogate_at(rid)) is not None:
+                bad, rid = rid, None
+                raise _not_unicode("id", bad, at)
             op = req.get("op")
             if op is None:
                 raise RequestError("bad_field", "missing field op (one of " + ", ".join(OPS) + ")", "op")
             if not isinstance(op, str):
                 raise RequestError("bad_field", f"op must be a string, got {_show(op)}", "op")
+            if (at := _surrogate_at(op)) is not None:
+                raise _not_unicode("op", op, at)
             handler = _HANDLERS.get(op)
             if handler is None:
                 raise RequestError("unknown_op", f"unknown op {_show(op)}; known: {', '.join(OPS)}")
             fields, fn = handler
-            for key in req:
+            for key, value in req.items():
                 if key not in fields and key not in ("id", "op"):
-                    raise RequestError("bad_field", f"unknown field {_show(key)} for op {op}", key)
+                    raise RequestError("bad_field", f"unknown field {_show(key)} for op {op}", _printable(key))
+                if isinstance(value, str) and (at := _surrogate_at(value)) is not None:
+                    raise _not_unicode(key, value, at)  # it could be neither learned, saved nor answered
             result = fn(self, req)
         except RequestError as e:
             self.requests += 1
             return error_response(rid, e)
         except Exception as e:  # a bug must not take the connection down; report it instead
             self.requests += 1
-            return error_response(rid, RequestError("internal", f"{type(e).__name__}: {e}"))
+            return error_response(rid, RequestError("internal", _printable(f"{type(e).__name__}: {e}")))
         self.requests += 1
         return {"id": rid, "ok": True, **result}
 
@@ -545,27 +649,140 @@ class Server:
             raise RequestError("users_disabled", "this server keeps no personal layers (started without a users directory)", "user")
         return name
 
-    def _layer(self, user: str, *, create: bool) -> PersonalLayer | None:
-        """The user's layer: cached, else loaded from its file, else (``create``) a new saved one."""
-        assert self.users_dir is not None
-        with self._layers_lock:
-            layer = self._layers.get(user)
+    @contextmanager
+    def _using(self, user: str, *, create: bool, changing: bool = False) -> Iterator[PersonalLayer | None]:
+        """The user's layer, held open for the ``with`` block (``None``: no layer and not ``create``).
+
+        ``changing``: also hold the user's change lock, so a change and the layer state
+        answered for it are one step (another request's change cannot come between them).
+        """
+        entry = self._acquire(user, create=create)
+        layer = None if entry is None else entry.layer
+        try:
+            with entry.change_lock if entry is not None and changing else nullcontext():
+                yield layer
+        except RequestError:
+            raise
+        except Exception as e:
+            if layer is None:
+                raise  # not the layer's failure: reported as internal
+            # the layer itself failed (its counts may be half-changed): this user gets a clear
+            # error now, and the next request reads the file again instead of failing forever
+            self._set_broken(user)
+            raise RequestError(
+                "user_layer",
+                _printable(f"user {user}: the personal layer failed ({type(e).__name__}: {e}); it is read again from its file next time"),
+            ) from None
+        finally:
             if layer is not None:
-                return layer
-            path = self.users_dir / (user + _LAYER_SUFFIX)
+                self._release(user)
+
+    def _set_broken(self, user: str) -> None:
+        with self._layers_cond:
+            entry = self._layers.get(user)
+            if entry is not None:
+                entry.broken = True
+                self._broken.add(user)
+
+    def _acquire(self, user: str, *, create: bool) -> _OpenLayer | None:
+        assert self.users_dir is not None
+        cond = self._layers_cond
+        with cond:
+            while True:
+                entry = self._layers.get(user)
+                if entry is not None:
+                    entry.holders += 1
+                    self._layers.move_to_end(user)
+                    return entry
+                if user not in self._pending:
+                    break
+                cond.wait()  # another request is opening this user's layer, or closing it
+            self._pending.add(user)
+        try:  # outside the lock: reading one user's file holds up nobody else
+            layer = self._open_layer(user, create=create)
+        except BaseException:
+            with cond:
+                self._pending.discard(user)
+                cond.notify_all()
+            raise
+        with cond:
+            self._pending.discard(user)
+            entry = None if layer is None else _OpenLayer(layer, holders=1)
+            if entry is not None:
+                self._layers[user] = entry
+            victims = self._evictable()
+            cond.notify_all()
+        self._close(victims)
+        return entry
+
+    def _release(self, user: str) -> None:
+        with self._layers_cond:
+            entry = self._layers.get(user)
+            if entry is not None:
+                entry.holders -= 1
+            victims = self._evictable()
+        self._close(victims)
+
+    def _evictable(self) -> list[tuple[str, PersonalLayer]]:
+        """Take the least recently used unheld layers out while over the cap (caller holds the lock)."""
+        victims: list[tuple[str, PersonalLayer]] = []
+        over = len(self._layers) - self.max_open_users
+        if over <= 0 and not self._broken:
+            return victims  # the common case: nothing to scan
+        for user, entry in list(self._layers.items()):
+            if over <= 0 and not self._broken:
+                break
+            if entry.holders == 0 and (over > 0 or entry.broken):
+                del self._layers[user]
+                self._broken.discard(user)
+                over -= 1
+                self._pending.add(user)  # reopened only once this close is finished
+                victims.append((user, entry.layer))
+        return victims
+
+    def _close(self, victims: list[tuple[str, PersonalLayer]]) -> None:
+        for user, layer in victims:
             try:
-                if path.exists():
-                    layer = PersonalLayer.open(self.model, path)
-                elif create:
-                    layer = PersonalLayer.open(self.model, path, create=True)
-                else:
-                    return None
-            except ModelFormatError as e:
-                raise RequestError("user_layer", f"user {user}: {e}") from None
-            except OSError as e:
-                raise RequestError("user_layer", f"user {user}: cannot create the layer file: {e.strerror or e}") from None
-            self._layers[user] = layer
-            return layer
+                layer.close()  # every change was saved when it was made; this detaches from the file
+            except Exception:
+                pass  # a failed save was answered with user_layer when it happened; the file keeps the last good state
+            finally:
+                with self._layers_cond:
+                    self._pending.discard(user)
+                    self.layers_closed += 1
+                    self._layers_cond.notify_all()
+
+    def _open_layer(self, user: str, *, create: bool) -> PersonalLayer | None:
+        """The user's layer read from its file, else (``create``) a new saved one, else ``None``."""
+        assert self.users_dir is not None
+        path = self.users_dir / (user + _LAYER_SUFFIX)
+        try:
+            st = os.stat(path)
+        except FileNotFoundError:
+            pass
+        except OSError as e:
+            raise RequestError("user_layer", f"user {user}: cannot read the layer file: {e.strerror or e}") from None
+        else:
+            if not stat.S_ISREG(st.st_mode):  # e.g. a FIFO, whose open would wait forever
+                raise RequestError("user_layer", f"user {user}: {path} is not a regular file; it is left alone")
+        try:
+            return PersonalLayer.open(self.model, path, create=create)
+        except LayerNotFoundError:
+            return None
+        except NextwordError as e:  # damaged, foreign or unreadable
+            raise RequestError("user_layer", _printable(f"user {user}: {e}")) from None
+        except OSError as e:
+            raise RequestError("user_layer", f"user {user}: cannot create the layer file: {e.strerror or e}") from None
+        except Exception as e:  # e.g. the file is busy (locked by another process): this user only, not a server bug
+            raise RequestError("user_layer", _printable(f"user {user}: cannot open the layer ({type(e).__name__}: {e})")) from None
+
+
+@dataclass
+class _OpenLayer:
+    layer: PersonalLayer
+    holders: int  # requests using the layer now: it is never closed under them
+    broken: bool = False  # an operation failed: closed as soon as nobody holds it, then read again
+    change_lock: threading.Lock = dataclass_field(default_factory=threading.Lock)  # one change (and its answer) at a time
 
 
 def _json_type(value: object) -> str:
@@ -576,6 +793,24 @@ def _json_type(value: object) -> str:
 
 def _encode(obj: dict[str, Any]) -> bytes:
     return (json.dumps(obj, ensure_ascii=False, separators=(",", ":"), allow_nan=False) + "\n").encode("utf-8")
+
+
+def encode_answer(answer: dict[str, Any]) -> bytes:
+    """One answer line, always valid JSON: an answer that cannot be encoded becomes an ``internal`` error.
+
+    Every request line must get exactly one answer; an exception here would instead end
+    the connection and lose the answers pipelined behind it.
+    """
+    try:
+        return _encode(answer)
+    except (ValueError, TypeError) as e:  # a non-finite number, a lone surrogate (UnicodeEncodeError)
+        rid = answer.get("id")
+        try:
+            _encode({"id": rid})
+        except (ValueError, TypeError):
+            rid = None
+        err = RequestError("internal", _printable(f"the answer could not be encoded as JSON: {type(e).__name__}: {e}"))
+        return _encode(error_response(rid, err))
 
 
 def _text(req: dict[str, Any], field: str) -> str:
@@ -600,14 +835,21 @@ def _op_suggest(server: Server, req: dict[str, Any]) -> dict[str, Any]:
     if isinstance(k, bool) or not isinstance(k, int) or not 1 <= k <= server.limits.max_k:
         raise RequestError("bad_field", f"k must be an integer from 1 to {server.limits.max_k}, got {_show(k)}", "k")
     user = server._user(req, required=False)
-    layer = None if user is None else server._layer(user, create=False)
-    found = server.model.suggest(text, k) if layer is None else layer.suggest(text, k)
+    if user is None:
+        found = server.model.suggest(text, k)
+    else:
+        with server._using(user, create=False) as layer:
+            found = server.model.suggest(text, k) if layer is None else layer.suggest(text, k)
+        if not all(math.isfinite(s.prob) for s in found):
+            raise RequestError("user_layer", f"user {user}: the layer's counts give no finite probability (damaged layer file?)")
     return {"suggestions": [{"word": s.word, "prob": s.prob} for s in found]}
 
 
 def _layer_state(user: str, layer: PersonalLayer | None) -> dict[str, Any]:
     if layer is None:
         return {"user": user, "messages": 0, "entries": 0, "weight": 0.0, "blocked": []}
+    if not math.isfinite(layer.weight):
+        raise RequestError("user_layer", f"user {user}: the layer's counts are not finite (damaged layer file?)")
     return {
         "user": user,
         "messages": layer.messages,
@@ -618,13 +860,13 @@ def _layer_state(user: str, layer: PersonalLayer | None) -> dict[str, Any]:
 
 
 def _changing(server: Server, user: str, create: bool, change: Callable[[PersonalLayer], object]) -> dict[str, Any]:
-    layer = server._layer(user, create=create)
-    if layer is not None:
-        try:
-            change(layer)
-        except OSError as e:  # the change is applied in memory but could not be saved
-            raise RequestError("user_layer", f"user {user}: cannot save the layer file: {e.strerror or e}") from None
-    return _layer_state(user, layer)
+    with server._using(user, create=create, changing=True) as layer:
+        if layer is not None:
+            try:
+                change(layer)
+            except OSError as e:  # the change is applied in memory but could not be saved
+                raise RequestError("user_layer", f"user {user}: cannot save the layer file: {e.strerror or e}") from None
+        return _layer_state(user, layer)
 
 
 def _op_learn(server: Server, req: dict[str, Any]) -> dict[str, Any]:
@@ -674,7 +916,8 @@ def _op_info(server: Server, req: dict[str, Any]) -> dict[str, Any]:
     }
     user = server._user(req, required=False)
     if user is not None:
-        out["user"] = _layer_state(user, server._layer(user, create=False))
+        with server._using(user, create=False) as layer:
+            out["user"] = _layer_state(user, layer)
     return out
 
 
@@ -695,11 +938,12 @@ def run_server(
     users_dir: str | os.PathLike[str] | None,
     limits: ServeLimits,
     on_ready: Callable[[dict[str, Any]], None],
+    max_open_users: int = DEFAULT_MAX_OPEN_USERS,
 ) -> dict[str, Any]:
     """Serve until SIGTERM or SIGINT (main thread only), then stop cleanly; returns the stop report."""
     import signal
 
-    server = Server(model, listener, users_dir=users_dir, limits=limits)
+    server = Server(model, listener, users_dir=users_dir, limits=limits, max_open_users=max_open_users)
 
     def _on_signal(signum: int, frame: object) -> None:
         server.stop()

@@ -13,6 +13,7 @@ import random
 import shutil
 import signal
 import socket
+import stat
 import subprocess
 import sys
 import tempfile
@@ -28,7 +29,7 @@ from hypothesis import strategies as st
 
 import nextword
 from nextword.personal import PersonalLayer
-from nextword.serve import ERROR_CODES, ServeLimits, Server, listen_tcp, listen_unix, valid_user
+from nextword.serve import ERROR_CODES, OPS, ServeLimits, Server, encode_answer, listen_tcp, listen_unix, valid_user
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO = ROOT / "examples" / "data" / "demo_messages.txt"
@@ -98,20 +99,30 @@ class Client:
 
 
 @contextmanager
-def running(model: nextword.Model, sock_dir: Path, users: Path | None, **limits: Any) -> Iterator[tuple[Server, Path]]:
-    path = sock_dir / "s.sock"
-    server = Server(model, listen_unix(path), users_dir=users, limits=ServeLimits(**limits))
+def serving(
+    model: nextword.Model, listener: socket.socket, users: Path | None, *, max_open_users: int = 256, **limits: Any
+) -> Iterator[Server]:
+    server = Server(model, listener, users_dir=users, limits=ServeLimits(**limits), max_open_users=max_open_users)
     report: dict[str, Any] = {}
     t = threading.Thread(target=lambda: report.update(server.serve_forever()), daemon=True)
     t.start()
     try:
-        yield server, path
+        yield server
     finally:
         server.stop()
         t.join(WAIT)
     assert not t.is_alive(), "server did not stop"
-    assert not path.exists(), "socket file left behind"
     assert report["connections_cut"] == 0
+
+
+@contextmanager
+def running(
+    model: nextword.Model, sock_dir: Path, users: Path | None, *, max_open_users: int = 256, **limits: Any
+) -> Iterator[tuple[Server, Path]]:
+    path = sock_dir / "s.sock"
+    with serving(model, listen_unix(path), users, max_open_users=max_open_users, **limits) as server:
+        yield server, path
+    assert not path.exists(), "socket file left behind"
 
 
 def as_pairs(answer: dict[str, Any]) -> list[tuple[str, float]]:
@@ -262,6 +273,134 @@ def test_bad_requests_get_documented_errors_and_the_connection_survives(
     assert not (tmp_path / "users" / "ana.nwp").exists()  # no bad request changed anything
 
 
+def strict_json(line: bytes) -> dict[str, Any]:
+    """One answer line parsed the strict way: UTF-8 without surrogates (RFC 8259 §8.1), no NaN/Infinity (§6)."""
+    def refuse(name: str) -> Any:
+        raise AssertionError(f"{name} is not JSON")
+
+    assert line.endswith(b"\n"), f"connection closed, got {line!r}"
+    obj = json.loads(line.decode("utf-8", "strict"), parse_constant=refuse)
+    assert isinstance(obj, dict)
+    return obj
+
+
+def write_layer_with_counts(path: Path, model: nextword.Model, value: float) -> None:
+    """A layer file whose checksum is right but whose every count is ``value`` (e.g. inf).
+
+    Built from a real saved layer: header ``<8sHHQI`` (magic, version 1.0, payload length,
+    CRC-32 of the payload), payload msgpack — the PersonalLayer file layout.
+    """
+    import math as _math
+    import struct
+    import zlib
+
+    import msgpack
+
+    layer = PersonalLayer(model)
+    layer.learn("the Zorbington Lane ride")
+    layer.learn("the Zorbington Lane shop")
+    layer.save(path)
+    raw = path.read_bytes()
+    head = struct.Struct("<8sHHQI")
+    data = msgpack.unpackb(raw[head.size:], raw=False)
+    data["unigram"] = {key: value for key in data["unigram"]}
+    data["bigram"] = {h: {w: value for w in row} for h, row in data["bigram"].items()}
+    body = msgpack.packb(data, use_bin_type=True)
+    path.write_bytes(head.pack(nextword.personal.PERSONAL_MAGIC, 1, 0, len(body), zlib.crc32(body)) + body)
+    assert not _math.isfinite(value)
+
+
+def test_every_pipelined_line_gets_one_valid_answer_in_order(model: nextword.Model, short_dir: Path, tmp_path: Path) -> None:
+    users = tmp_path / "users"
+    users.mkdir()
+    write_layer_with_counts(users / "inf.nwp", model, float("inf"))
+    # (request line, error code or None for ok, field named, id echoed); "\ud800" etc. are JSON
+    # escapes of lone surrogates, which json.loads accepts but UTF-8 cannot carry
+    lines: list[tuple[bytes, str | None, str | None, Any]] = [
+        (b'{"id": 1, "op": "info"}', None, None, 1),
+        (b'{"id": 1e999, "op": "info"}', "bad_field", "id", None),
+        (b'{"id": -1e999, "op": "suggest", "text": "a"}', "bad_field", "id", None),
+        (b'{"id": "\\ud800", "op": "info"}', "bad_field", "id", None),
+        (b'{"id": 2, "op": "\\udc00"}', "bad_field", "op", 2),
+        (b'{"id": 3, "op": "sugg\\ud800est", "text": "a"}', "bad_field", "op", 3),
+        (b'{"id": 4, "op": "suggest", "text": "a", "\\ud800x": 1}', "bad_field", "\\ud800x", 4),
+        (b'{"id": 5, "op": "learn", "user": "\\ud800", "text": "hi"}', "bad_field", "user", 5),
+        (b'{"id": 6, "op": "suggest", "text": "See you at the \\ud800"}', "bad_field", "text", 6),
+        (b'{"id": 7, "op": "learn", "user": "ana", "text": "bad \\udfff message"}', "bad_field", "text", 7),
+        (b'{"id": 8, "op": "block", "user": "ana", "word": "\\ud83d"}', "bad_field", "word", 8),
+        (b'{"id": 9, "op": "suggest", "text": ["\\ud800"]}', "bad_field", "text", 9),
+        (b'{"id": 10, "op": "suggest", "text": "a", "k": 1e999}', "bad_field", "k", 10),
+        (b'{"id": 11, "op": "suggest", "user": "inf", "text": "the "}', "user_layer", None, 11),
+        (b'{"id": 13, "op": "info", "user": "inf"}', "user_layer", None, 13),
+        (b'{"id": 14, "op": "learn", "user": "inf", "text": "more"}', "user_layer", None, 14),
+        (b'{"id": "\\u00e9t\\u00e9", "op": "suggest", "text": "See you at the "}', None, None, "été"),  # a valid escape is fine
+    ]
+    with running(model, short_dir, users) as (_, path):
+        c = Client(path)
+        c.send_raw(b"".join(line + b"\n" for line, *_ in lines))  # all at once: one bad line must not cost the others
+        for line, code, field, rid in lines:
+            answer = strict_json(c.file.readline())
+            assert answer["id"] == rid, (line, answer)
+            if code is None:
+                assert answer["ok"] is True, (line, answer)
+            else:
+                assert answer["ok"] is False and answer["error"]["code"] == code, (line, answer)
+                assert answer["error"].get("field") == field, (line, answer)
+                assert code in ERROR_CODES
+        assert as_pairs(c.call(op="suggest", text="See you at the ")) == expected(model.suggest("See you at the "))
+        c.close()
+    assert not (users / "ana.nwp").exists()  # nothing with a surrogate was learned or blocked
+
+
+def test_an_answer_that_cannot_be_encoded_is_an_internal_error(model: nextword.Model, short_dir: Path) -> None:
+    """The last line of defence: whatever a handler returns, the line is answered with valid JSON."""
+    answer = strict_json(encode_answer({"id": 3, "ok": True, "suggestions": [{"word": "a", "prob": float("nan")}]}))
+    assert answer["id"] == 3 and answer["ok"] is False and answer["error"]["code"] == "internal"
+    answer = strict_json(encode_answer({"id": "\ud800", "ok": True, "word": "\udfff"}))
+    assert answer["id"] is None and answer["error"]["code"] == "internal"
+
+
+# strings as a client may send them: letters, spaces, digits, and lone surrogates (JSON "\udXXX" escapes)
+_WILD_TEXT = st.text(st.characters(categories=["Ll", "Lu", "Nd", "Zs", "Cs", "Po"]), max_size=12)
+_WILD_VALUE = st.recursive(
+    st.none() | st.booleans() | st.integers(-(2**70), 2**70) | st.floats() | _WILD_TEXT,
+    lambda inner: st.lists(inner, max_size=3) | st.dictionaries(_WILD_TEXT, inner, max_size=3),
+    max_leaves=6,
+)
+_WILD_KEY = st.sampled_from(["id", "op", "text", "k", "user", "word", "all"]) | _WILD_TEXT
+_WILD_REQUEST = st.fixed_dictionaries(
+    {"op": st.sampled_from([*OPS, "nope"]) | _WILD_TEXT},
+    optional={"id": _WILD_VALUE, "text": _WILD_VALUE, "k": _WILD_VALUE, "user": st.sampled_from(["ana", "bo"]) | _WILD_VALUE},
+) | st.dictionaries(_WILD_KEY, _WILD_VALUE, max_size=5)
+
+
+@pytest.fixture(scope="module")
+def idle_server(model: nextword.Model, tmp_path_factory: pytest.TempPathFactory) -> Iterator[Server]:
+    """A server that is never started: handle_line is called directly, as a connection thread would."""
+    d = Path(tempfile.mkdtemp(prefix="nwh"))
+    listener = listen_unix(d / "s.sock")
+    yield Server(model, listener, users_dir=tmp_path_factory.mktemp("hyp_users"))
+    listener.close()
+    shutil.rmtree(d, ignore_errors=True)
+
+
+@settings(max_examples=300, deadline=None)
+@given(_WILD_REQUEST)
+def test_any_request_gets_exactly_one_valid_json_answer(idle_server: Server, req: dict[str, Any]) -> None:
+    """Invariant (RFC 8259 §6, §8.1: no NaN/Infinity, UTF-8 without lone surrogates): one strict JSON answer per line."""
+    line = json.dumps(req).encode("ascii")  # ensure_ascii: surrogates become \udXXX escapes, floats may be NaN/Infinity
+    answer_bytes = encode_answer(idle_server.handle_line(line) or {})
+    assert answer_bytes.count(b"\n") == 1
+    answer = strict_json(answer_bytes)
+    assert isinstance(answer["ok"], bool) and "id" in answer
+    if answer["ok"] is False:
+        assert answer["error"]["code"] in ERROR_CODES and answer["error"]["code"] != "internal", answer
+    rid = req.get("id")
+    if isinstance(rid, (str, int)) and not isinstance(rid, bool) and "NaN" not in line.decode() and "Infinity" not in line.decode():
+        if not (isinstance(rid, str) and any(0xD800 <= ord(ch) <= 0xDFFF for ch in rid)):
+            assert answer["id"] == rid  # echoed unchanged whenever it can be
+
+
 def test_personal_requests_without_a_users_directory(model: nextword.Model, short_dir: Path) -> None:
     with running(model, short_dir, None) as (_, path):
         c = Client(path)
@@ -285,6 +424,101 @@ def test_damaged_user_layer_is_reported_and_kept(model: nextword.Model, short_di
         assert c.call(op="learn", user="cy", text="hello there")["messages"] == 1  # others unaffected
         c.close()
     assert (users / "bo.nwp").read_bytes() == damaged  # never replaced by an empty layer
+
+
+def test_layer_paths_that_are_not_regular_files_are_refused_at_once(
+    model: nextword.Model, short_dir: Path, tmp_path: Path
+) -> None:
+    users = tmp_path / "users"
+    users.mkdir()
+    os.mkfifo(users / "fi.nwp")  # opening a FIFO for reading would wait for a writer forever
+    (users / "dd.nwp").mkdir()
+    with running(model, short_dir, users) as (_, path):
+        c = Client(path)
+        for user in ("fi", "dd"):
+            for req in ({"op": "suggest", "text": "the "}, {"op": "learn", "text": "hi"}, {"op": "info"}):
+                answer = c.call(id=user, user=user, **req)
+                assert answer["ok"] is False and answer["error"]["code"] == "user_layer", answer
+                assert user in answer["error"]["message"]
+        assert c.call(op="learn", user="cy", text="hello there")["messages"] == 1  # others unaffected
+        c.close()
+    assert stat.S_ISFIFO(os.lstat(users / "fi.nwp").st_mode) and (users / "dd.nwp").is_dir()  # left alone
+
+
+def test_a_failing_layer_answers_user_layer_and_is_read_again(
+    model: nextword.Model, short_dir: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Fault injection: the layer's own code raises for one user (as a layer with inconsistent counts might)."""
+    users = tmp_path / "users"
+    real_suggest = PersonalLayer.suggest
+    faulty = {"bo"}
+
+    def suggest(self: PersonalLayer, typed: str, k: int = 3) -> list[nextword.Suggestion]:
+        if self.path is not None and Path(self.path).stem in faulty:
+            raise ZeroDivisionError("float division by zero")
+        return real_suggest(self, typed, k)
+
+    monkeypatch.setattr(PersonalLayer, "suggest", suggest)
+    with running(model, short_dir, users) as (server, path):
+        c = Client(path)
+        for _ in range(2):
+            assert c.call(op="learn", user="bo", text="the Zorbington Lane ride")["ok"]
+        for _ in range(3):  # every request for bo: a clear code naming the user, never "internal"
+            answer = c.call(id="s", op="suggest", user="bo", text="at Zo")
+            assert answer["error"]["code"] == "user_layer" and "bo" in answer["error"]["message"], answer
+            assert "bo" not in server.open_users()  # dropped: the next request reads the file again
+        assert as_pairs(c.call(op="suggest", user="cy", text="at Zo")) == expected(model.suggest("at Zo"))
+        # the file is replaced (e.g. restored from a backup) and the fault is gone: bo is served from the new file
+        restored = PersonalLayer(model)
+        restored.learn("the Zorbington Lane shop")
+        restored.learn("the Zorbington Lane stand")
+        restored.save(users / "bo.nwp")
+        faulty.clear()
+        assert as_pairs(c.call(op="suggest", user="bo", text="Zorbington Lane ")) == expected(
+            restored.suggest("Zorbington Lane ")
+        )
+        c.close()
+
+
+@pytest.mark.parametrize(
+    "busy",
+    [
+        BlockingIOError(11, "Resource temporarily unavailable (the layer file is locked)"),
+        RuntimeError("the layer file is locked by another process"),  # whatever a lock may raise: never "internal"
+    ],
+    ids=["oserror", "other"],
+)
+def test_a_busy_layer_file_holds_up_only_its_user(
+    busy: Exception, model: nextword.Model, short_dir: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Fault injection: opening one user's layer waits (a lock held elsewhere), then fails as busy."""
+    users = tmp_path / "users"
+    real_open = PersonalLayer.open.__func__  # type: ignore[attr-defined]
+    entered, release = threading.Event(), threading.Event()
+
+    def open_(cls: type[PersonalLayer], base: nextword.Model, path: Any, **kw: Any) -> PersonalLayer:
+        if Path(path).stem == "slow":
+            entered.set()
+            assert release.wait(WAIT)
+            raise busy
+        return real_open(cls, base, path, **kw)
+
+    monkeypatch.setattr(PersonalLayer, "open", classmethod(open_))
+    with running(model, short_dir, users, max_open_users=1) as (_, path):
+        a, b = Client(path), Client(path)
+        a.send_raw(b'{"id": "busy", "op": "learn", "user": "slow", "text": "hi"}\n')
+        assert entered.wait(WAIT)
+        for n in range(3):  # meanwhile other users are opened, served and closed (cap 1)
+            for u in ("ana", "cy"):
+                assert b.call(op="learn", user=u, text=f"message {n}")["messages"] == n + 1
+        release.set()
+        answer = a.read()
+        assert answer["id"] == "busy" and answer["error"]["code"] == "user_layer", answer
+        assert "slow" in answer["error"]["message"] and "locked" in answer["error"]["message"]
+        monkeypatch.setattr(PersonalLayer, "open", classmethod(real_open))  # the lock is free again
+        assert a.call(op="learn", user="slow", text="hi")["messages"] == 1
+        a.close()
+        b.close()
 
 
 # -- framing: size limit, half-sent and abandoned requests ----------------------------------------
@@ -391,6 +625,118 @@ def test_concurrent_clients_all_get_correct_answers(model: nextword.Model, short
         assert wrong == []
         assert sorted(learned) == list(range(1, 41))  # each learn saw a distinct message count: none lost
     assert PersonalLayer.load(model, tmp_path / "users" / "shared.nwp").messages == 40
+
+
+def test_layers_beyond_max_open_users_are_closed_and_reopen_with_everything(
+    model: nextword.Model, short_dir: Path, tmp_path: Path
+) -> None:
+    users = tmp_path / "users"
+    names = [f"rider{i}" for i in range(5)]
+    mine = {u: PersonalLayer(model) for u in names}  # the oracle: the same operations in this process
+    with running(model, short_dir, users, max_open_users=2) as (server, path):
+        c = Client(path)
+        for round_ in range(4):
+            for n, u in enumerate(names):  # users in turn: every request after the second reopens a closed layer
+                text = f"Quarr{u[-1]}ton Lane ride {round_} with the {('pump', 'levers', 'wrench')[n % 3]}"
+                mine[u].learn(text)
+                answer = c.call(op="learn", user=u, text=text)
+                assert answer["messages"] == round_ + 1 and answer["entries"] == mine[u].entries, answer
+                assert len(server.open_users()) <= 2, server.open_users()
+            assert c.call(op="block", user=names[round_], word="ride")["ok"]
+            mine[names[round_]].block("ride")
+        assert server.layers_closed >= 4 * 5 - 2
+        for u in names:
+            for q in ["Quarr", "Lane ", "the ", "ride ", ""]:
+                assert as_pairs(c.call(op="suggest", user=u, text=q, k=4)) == expected(mine[u].suggest(q, 4)), (u, q)
+            assert c.call(op="info", user=u)["user"]["blocked"] == sorted(mine[u].blocklist)
+            assert server.open_users()[-1] == u and len(server.open_users()) <= 2  # most recent last
+        c.close()
+    for u in names:  # and on disk, after the stop
+        assert PersonalLayer.load(model, users / f"{u}.nwp").messages == 4
+
+
+def test_concurrent_clients_across_evictions_lose_nothing(model: nextword.Model, short_dir: Path, tmp_path: Path) -> None:
+    users = tmp_path / "users"
+    names = [f"u{i}" for i in range(5)]
+    seen: dict[str, list[int]] = {u: [] for u in names}
+    errors: list[Any] = []
+    lock = threading.Lock()
+
+    def work(n: int) -> None:
+        c = Client(path)
+        try:
+            for i in range(12):
+                u = names[(n + i) % len(names)]  # every thread visits every user, so users are shared and evicted
+                answer = c.call(op="learn", user=u, text=f"thread {n} message {i} about the truing stand")
+                s = c.call(op="suggest", user=u, text="the tru")
+                with lock:
+                    if not answer.get("ok") or not s.get("ok"):
+                        errors.append((answer, s))
+                    else:
+                        seen[u].append(answer["messages"])
+        finally:
+            c.close()
+
+    with running(model, short_dir, users, max_open_users=2) as (server, path):
+        threads = [threading.Thread(target=work, args=(n,)) for n in range(6)]
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join(WAIT)
+        assert not any(t.is_alive() for t in threads)
+        assert errors == []
+        assert server.layers_closed > 0
+        total = 6 * 12 // len(names)
+        for u in names:
+            # one learn per answer, each seeing a distinct count: no change lost, no layer opened twice
+            assert sorted(seen[u]) == list(range(1, len(seen[u]) + 1)), (u, seen[u])
+        assert sum(len(v) for v in seen.values()) == 6 * 12
+    for u in names:
+        assert PersonalLayer.load(model, users / f"{u}.nwp").messages == len(seen[u]) >= total
+
+
+def test_each_change_answers_the_state_it_made(
+    model: nextword.Model, short_dir: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Concurrent learns for one user: each answer's message count is its own, not a later request's.
+
+    The window between a change and reading the state for its answer is widened on purpose
+    (a layer whose save takes a while, as with a journal under a file lock).
+    """
+    import time as _time
+
+    real_learn = PersonalLayer.learn
+
+    def slow_learn(self: PersonalLayer, message: str, **kw: Any) -> Any:
+        result = real_learn(self, message, **kw)
+        _time.sleep(0.005)
+        return result
+
+    monkeypatch.setattr(PersonalLayer, "learn", slow_learn)
+    counts: list[int] = []
+
+    def work(n: int) -> None:
+        c = Client(path)
+        try:
+            for i in range(6):
+                counts.append(c.call(op="learn", user="shared", text=f"client {n} note {i}")["messages"])
+        finally:
+            c.close()
+
+    with running(model, short_dir, tmp_path / "users") as (_, path):
+        threads = [threading.Thread(target=work, args=(n,)) for n in range(4)]
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join(WAIT)
+    assert sorted(counts) == list(range(1, 25))
+
+
+def test_max_open_users_must_be_positive(model: nextword.Model, short_dir: Path) -> None:
+    for bad in (0, -1, 2.5, True):
+        with socket.socket(socket.AF_UNIX, socket.SOCK_STREAM) as sock:
+            with pytest.raises(nextword.InvalidArgumentError, match="max_open_users"):
+                Server(model, sock, max_open_users=bad)  # type: ignore[arg-type]
 
 
 def test_connections_beyond_the_cap_get_busy(model: nextword.Model, short_dir: Path) -> None:
@@ -507,6 +853,21 @@ def test_sigterm_saves_layers_removes_socket_and_restart_keeps_them(
     assert after == before == expected(PersonalLayer.load(model, users / "ana.nwp").suggest("at Zo"))
 
 
+def test_command_max_open_users_is_applied(model_path: Path, model: nextword.Model, short_dir: Path, tmp_path: Path) -> None:
+    sock, users = short_dir / "s.sock", tmp_path / "users"
+    proc, _ = start(str(model_path), "--socket", str(sock), "--users", str(users), "--max-open-users", "1")
+    try:
+        c = Client(sock)
+        for n in range(3):
+            for u in ("ana", "bo", "cy"):
+                assert c.call(op="learn", user=u, text=f"Harbor Lane note {n}")["messages"] == n + 1
+        c.close()
+    finally:
+        report = stop(proc, signal.SIGTERM)
+    assert report["layers_saved"] == 1  # only the last user's layer was still open
+    assert [PersonalLayer.load(model, users / f"{u}.nwp").messages for u in ("ana", "bo", "cy")] == [3, 3, 3]
+
+
 def test_tcp_on_loopback_port_zero(model_path: Path, model: nextword.Model) -> None:
     proc, ready = start(str(model_path), "--tcp", "127.0.0.1:0")
     try:
@@ -532,6 +893,7 @@ def test_command_errors_are_one_line_with_exit_codes(model_path: Path, short_dir
         ((str(model_path), "--tcp", "127.0.0.1:0", "--socket", str(short_dir / "a")), 2, "--socket"),
         ((str(model_path), "--socket", str(short_dir / "a"), "--allow-non-loopback"), 2, "--allow-non-loopback"),
         ((str(model_path), "--max-line-bytes", "0"), 2, "0"),
+        ((str(model_path), "--max-open-users", "0"), 2, "--max-open-users"),
         ((str(model_path), "--request-timeout", "soon"), 2, "soon"),
         ((str(model_path), "--socket", str(short_dir / ("d" * 120))), 2, "too long"),
         ((str(short_dir / "missing.nwm"), "--socket", str(short_dir / "a")), 1, "missing.nwm"),
@@ -544,6 +906,34 @@ def test_command_errors_are_one_line_with_exit_codes(model_path: Path, short_dir
         assert r.stdout == "" and len(r.stderr.splitlines()) == 1 and r.stderr.startswith("nextword: error:"), r.stderr
         assert needle in r.stderr, (needle, r.stderr)
     assert (short_dir / "file").read_text() == "keep"
+
+
+def test_users_directory_is_created_owner_only(model: nextword.Model, short_dir: Path, tmp_path: Path) -> None:
+    users = tmp_path / "data" / "nextword" / "users"  # two missing parents
+    old = os.umask(0o002)  # a permissive umask must not widen a directory of personal data
+    try:
+        with running(model, short_dir, users) as (_, path):
+            c = Client(path)
+            assert c.call(op="learn", user="ana", text="Harbor Lane at noon")["ok"]
+            c.close()
+    finally:
+        os.umask(old)
+    for d in (users, users.parent, users.parent.parent):
+        assert d.is_dir() and (d.stat().st_mode & 0o777) == 0o700, (d, oct(d.stat().st_mode))
+    assert (users / "ana.nwp").exists()
+
+
+def test_users_path_that_is_a_file_is_a_one_line_error(model_path: Path, short_dir: Path) -> None:
+    f = short_dir / "users.txt"
+    f.write_text("keep")
+    sock = short_dir / "s.sock"
+    for users in (f, f / "sub"):
+        r = run_cli(str(model_path), "--socket", str(sock), "--users", str(users))
+        assert r.returncode == 1 and r.stdout == "", r.stderr
+        assert len(r.stderr.splitlines()) == 1 and r.stderr.startswith("nextword: error: "), r.stderr
+        assert str(users) in r.stderr and "not a directory" in r.stderr.lower(), r.stderr
+        assert not sock.exists()  # checked before listening: no socket file left behind
+    assert f.read_text() == "keep"
 
 
 def test_a_second_server_on_a_live_socket_is_refused(model_path: Path, short_dir: Path) -> None:
@@ -565,8 +955,6 @@ PROTOCOL = (ROOT / "docs" / "PROTOCOL.md").read_text(encoding="utf-8")
 
 
 def test_protocol_doc_names_every_op_and_error_code() -> None:
-    from nextword.serve import OPS
-
     headings = [ln for ln in PROTOCOL.splitlines() if ln.startswith("### ")]
     for op in OPS:
         assert any(f"`{op}`" in h for h in headings), op
@@ -606,33 +994,88 @@ def c_client(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return exe
 
 
+def loopback_v6() -> bool:
+    try:
+        with socket.socket(socket.AF_INET6, socket.SOCK_STREAM) as probe:
+            probe.bind(("::1", 0))
+        return True
+    except OSError:
+        return False
+
+
+@contextmanager
+def c_client_server(
+    transport: str, model: nextword.Model, sock_dir: Path, users: Path | None
+) -> Iterator[tuple[list[str], str]]:
+    """A server on ``transport`` and the C client's option naming it (and how its errors name it)."""
+    if transport == "unix":
+        with running(model, sock_dir, users) as (_, path):
+            yield ["-s", str(path)], str(path)
+        return
+    if transport == "tcp6" and not loopback_v6():
+        pytest.skip("no IPv6 loopback (::1) on this machine")
+    host = "127.0.0.1" if transport == "tcp" else "::1"
+    with serving(model, listen_tcp(host, 0), users) as server:
+        port = server.address()["port"]
+        where = f"{host}:{port}" if transport == "tcp" else f"[{host}]:{port}"
+        yield ["-t", where], where
+
+
+@pytest.mark.parametrize("transport", ["unix", "tcp", "tcp6"])
 def test_c_client_prints_what_model_suggest_returns(
-    c_client: Path, model: nextword.Model, short_dir: Path, tmp_path: Path
+    transport: str, c_client: Path, model: nextword.Model, short_dir: Path, tmp_path: Path
 ) -> None:
     texts = ["See you at the ", "Repair night on Th", 'He said "bring the tr', "a\\b\tthanks for ", "Café at the ", "pri", ""]
     texts += demo_queries(10, seed=21)
-    with running(model, short_dir, tmp_path / "users") as (_, path):
+    users = tmp_path / "users"
+    with c_client_server(transport, model, short_dir, users) as (where, shown):
         for i, text in enumerate(texts):
             k = 1 + i % 5
-            r = subprocess.run([str(c_client), "-s", str(path), "-k", str(k), text], capture_output=True, timeout=WAIT)
+            r = subprocess.run([str(c_client), *where, "-k", str(k), text], capture_output=True, timeout=WAIT)
             assert r.returncode == 0, r.stderr
             lines = r.stdout.decode("utf-8").splitlines()
             assert len(lines) == 1
             answer = json.loads(lines[0])
             assert answer["id"] == 1 and as_pairs(answer) == expected(model.suggest(text, k)), text
         # with a user, the answer is that user's layer's
-        c = Client(path)
+        layer = PersonalLayer(model)  # the oracle, fed the same messages
         for _ in range(2):
-            c.call(op="learn", user="ana", text="the Zorbington Lane ride")
-        c.close()
-        r = subprocess.run([str(c_client), "-s", str(path), "-u", "ana", "at Zo"], capture_output=True, timeout=WAIT)
-        layer = PersonalLayer.load(model, tmp_path / "users" / "ana.nwp")
+            r = subprocess.run([str(c_client), *where, "-u", "ana", "x"], capture_output=True, timeout=WAIT)
+            assert r.returncode == 0, r.stderr  # a user without a layer: the base answers
+            layer.learn("the Zorbington Lane ride")
+            assert learn_via_socket(where, "ana", "the Zorbington Lane ride")["ok"]
+        r = subprocess.run([str(c_client), *where, "-u", "ana", "at Zo"], capture_output=True, timeout=WAIT)
         assert as_pairs(json.loads(r.stdout)) == expected(layer.suggest("at Zo", 3)) and b"Zorbington" in r.stdout
         # an error answer: printed, exit status 1
-        r = subprocess.run([str(c_client), "-s", str(path), "-u", "../ana", "x"], capture_output=True, timeout=WAIT)
+        r = subprocess.run([str(c_client), *where, "-u", "../ana", "x"], capture_output=True, timeout=WAIT)
         assert r.returncode == 1 and json.loads(r.stdout)["error"]["code"] == "bad_field"
-    # no server: one line on stderr, exit status 1; usage mistakes: exit status 2
-    r = subprocess.run([str(c_client), "-s", str(path), "the "], capture_output=True, text=True, timeout=WAIT)
-    assert r.returncode == 1 and r.stdout == "" and str(path) in r.stderr
-    r = subprocess.run([str(c_client), "-k", "zero", "the "], capture_output=True, text=True, timeout=WAIT)
-    assert r.returncode == 2 and "zero" in r.stderr
+    # no server: one line on stderr naming where, exit status 1
+    r = subprocess.run([str(c_client), *where, "the "], capture_output=True, text=True, timeout=WAIT)
+    assert r.returncode == 1 and r.stdout == "" and shown in r.stderr and len(r.stderr.splitlines()) == 1, r.stderr
+
+
+def learn_via_socket(where: list[str], user: str, text: str) -> dict[str, Any]:
+    if where[0] == "-s":
+        c = Client(Path(where[1]))
+    else:
+        host, port = where[1].rsplit(":", 1)
+        c = Client((host.strip("[]"), int(port)))
+    try:
+        return c.call(op="learn", user=user, text=text)
+    finally:
+        c.close()
+
+
+def test_c_client_usage_mistakes_exit_2(c_client: Path) -> None:
+    cases = [
+        (["-k", "zero", "the "], "zero"),
+        (["-t", "127.0.0.1", "the "], "'127.0.0.1'"),  # no port
+        (["-t", "127.0.0.1:70000", "the "], "70000"),
+        (["-t", "::1:7070", "the "], "::1:7070"),  # IPv6 needs brackets
+        (["-t", "192.0.2.1:7070", "the "], "not a loopback address"),  # TEST-NET-1 (RFC 5737): never loopback
+        (["-s", "a.sock", "-t", "127.0.0.1:7070", "the "], "usage"),
+        (["the ", "extra"], "usage"),
+    ]
+    for args, needle in cases:
+        r = subprocess.run([str(c_client), *args], capture_output=True, text=True, timeout=WAIT)
+        assert r.returncode == 2 and r.stdout == "" and needle in r.stderr, (args, r.stderr)
