@@ -30,6 +30,7 @@ from .store import (
     COUNT_ESCAPE,
     DEFAULT_SKYBAND_K,
     DEFAULT_SKYBAND_MIN,
+    MAX_LAMBDA,
     TOPK_FANOUT,
     ModelArrays,
     read_model,
@@ -130,12 +131,17 @@ class Model:
         self.n_bigrams: int = meta["bigrams"]
         self.total: int = meta["total"]
         self.stats: dict[str, int] = dict(meta.get("stats", {}))
-        self.stored_lam: float = meta["lambda"]
-        self.lam: float = self.stored_lam if lam is None else _check_lam(lam)
+        # stored λ above MAX_LAMBDA (files written before the cap) are clamped, not refused:
+        # λ = 1 would give every unseen pair probability 0; ``lambda_clamped`` says it happened
+        stored = [float(meta["lambda"])]
         # λ by history count (optional): bucket i holds histories with bounds[i-1] <= c(v) < bounds[i]
         buckets = meta.get("lambda_buckets") or {}
+        stored += [float(x) for x in buckets.get("lambdas", [])]
+        self.lambda_clamped: bool = max(stored) > MAX_LAMBDA
+        self.stored_lam: float = min(stored[0], MAX_LAMBDA)
+        self.lam: float = self.stored_lam if lam is None else _check_lam(lam)
         self.lambda_bounds: list[int] = list(buckets.get("bounds", []))
-        self.lambda_values: list[float] = [float(x) for x in buckets.get("lambdas", [])]
+        self.lambda_values: list[float] = [min(x, MAX_LAMBDA) for x in stored[1:]]
         self._override = lam is not None
         self.file_size = arrays.file_size
         self.format_version = arrays.version
@@ -645,6 +651,7 @@ class Model:
             "bytes_per_bigram": self.file_size / self.n_bigrams if self.n_bigrams else None,
             "bigram_section_bytes_per_bigram": bigram_bytes / self.n_bigrams if self.n_bigrams else None,
             "lambda": self.stored_lam,
+            "lambda_clamped": self.lambda_clamped,
             "lambda_buckets": (
                 {"bounds": self.lambda_bounds, "lambdas": self.lambda_values} if self.lambda_values else None
             ),
@@ -724,6 +731,11 @@ def _finish(
 
 def _check_build_args(lam: float, skyband_k: int, skyband_min: int) -> float:
     lam = _check_lam(lam)
+    if lam > MAX_LAMBDA:
+        raise InvalidArgumentError(
+            f"a stored λ must be at most {MAX_LAMBDA} (λ = 1 gives every unseen pair probability 0), got {lam!r}; "
+            "queries may still pass lam=1.0"
+        )
     if isinstance(skyband_k, bool) or not isinstance(skyband_k, int) or not 1 <= skyband_k <= 4096:
         raise InvalidArgumentError(f"skyband_k must be an integer in [1, 4096], got {skyband_k!r}")
     if isinstance(skyband_min, bool) or not isinstance(skyband_min, int) or skyband_min < 0:

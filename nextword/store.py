@@ -36,6 +36,7 @@ __all__ = [
     "DEFAULT_SKYBAND_K",
     "DEFAULT_SKYBAND_MIN",
     "TOPK_FANOUT",
+    "MAX_LAMBDA",
 ]
 
 MAGIC: Final = b"\x89NWM\r\n\x1a\n"
@@ -60,6 +61,13 @@ DEFAULT_SKYBAND_K: Final = 8
 #: Branching of the multi-level top lists used for prefix queries (see docs/FORMAT.md).
 TOPK_FANOUT: Final = 64
 COUNT_ESCAPE: Final = 255
+#: Largest λ a model file stores (and tuning chooses). At λ = 1 every pair not seen in
+#: training gets probability 0, so one unseen held-out pair makes perplexity infinite;
+#: at λ ≤ 0.999 every word keeps at least 0.001·c(w)/N. The cap costs little: for any λ
+#: in (0.999, 1], λ·b + (1−λ)·u ≥ 0.999·(λ·b + (1−λ)·u), so no held-out token loses more
+#: than ln(1/0.999) ≈ 0.001 nats, i.e. perplexity rises by at most 0.1 %. Queries may
+#: still pass λ = 1 explicitly (the pure bigram estimate); only stored λ are capped.
+MAX_LAMBDA: Final = 0.999
 
 _DTYPES: Final = {0: None, 1: np.dtype("<u1"), 2: np.dtype("<u2"), 3: np.dtype("<u4"), 4: np.dtype("<u8")}
 _CODES: Final = {np.dtype("<u1"): 1, np.dtype("<u2"): 2, np.dtype("<u4"): 3, np.dtype("<u8"): 4}
@@ -654,6 +662,9 @@ def rewrite_model(
     than bounds); such files are written as format version 1.1.
     """
     check_new_output(src, dst, "tuned model")
+    for x in [lam, *([] if buckets is None else buckets["lambdas"])]:
+        if not 0.0 <= float(x) <= MAX_LAMBDA:
+            raise InvalidArgumentError(f"a stored λ must lie in [0, {MAX_LAMBDA}] (λ = 1 makes unseen pairs impossible), got {x!r}")
     arrays = read_model(src, verify=True)
     meta = dict(arrays.meta)
     meta["lambda"] = float(lam)
