@@ -322,12 +322,24 @@ class Model:
             return self.lam
         return self.lambda_values[bisect.bisect_right(self.lambda_bounds, self._hist(v))]
 
+    def _over(self, c: int, cv: int) -> ModelFormatError:
+        """The error for a pair count above its history count (damaged bigram data).
+
+        Valid files have c(v,w) ≤ c(v) (a row's counts sum to c(v)); the bigram-sized
+        sections are not checksummed on a plain load, so every query that divides a pair
+        count by c(v) checks it instead: a probability is never above 1.
+        """
+        return ModelFormatError(f"{self.path}: damaged model data: pair count {c} above its history count {cv}")
+
     def _prob_ids(self, v: int, w: int, lam: float) -> float:
         cv = self._hist(v)
         u = self._mv_unig[w] / self.total
         if cv == 0:
             return u  # type: ignore[no-any-return]
-        return lam * (self._pair_count(v, w) / cv) + (1.0 - lam) * u  # type: ignore[no-any-return]
+        c = self._pair_count(v, w)
+        if c > cv:
+            raise self._over(c, cv)
+        return lam * (c / cv) + (1.0 - lam) * u  # type: ignore[no-any-return]
 
     def prob(self, word: str, previous_word: str | None = None, *, lam: float | None = None) -> float:
         """P(word | previous_word). ``None`` or ``'<s>'`` means the sentence start.
@@ -380,6 +392,8 @@ class Model:
         for v, w in self._token_pairs(lines):
             cv.append(self._hist(v))
             cvw.append(self._pair_count(v, w))
+            if cvw[-1] > cv[-1]:
+                raise self._over(cvw[-1], cv[-1])
             cw.append(self._mv_unig[w])
         return (np.asarray(cv, dtype=np.int64), np.asarray(cvw, dtype=np.int64), np.asarray(cw, dtype=np.int64))
 
@@ -514,6 +528,8 @@ class Model:
                     j = cs.index(COUNT_ESCAPE, j + 1)
                 except ValueError:
                     break
+        if cs and max(cs) > cv:
+            raise self._over(max(cs), cv)
         # same float operations, in the same order, as the brute-force formula
         cands = [(-(lam * (c / cv) + oml * (unig[alph[p]] / total)), p) for p, c in zip(ps, cs)]
         seen = set(ps)
@@ -550,7 +566,10 @@ class Model:
             pos = self._succ[idx].astype(np.int64)
         ids = self._alph[pos].astype(np.int64)
         total = self.total
-        score = lam * (self._counts(idx) / cv) + (1.0 - lam) * (self._unig[ids] / total)
+        counts = self._counts(idx)
+        if len(counts) and int(counts.max()) > cv:
+            raise self._over(int(counts.max()), cv)
+        score = lam * (counts / cv) + (1.0 - lam) * (self._unig[ids] / total)
         top_a = np.asarray(top, dtype=np.int64)
         top_pos = self._apos[top_a].astype(np.int64)
         at = np.minimum(np.searchsorted(pos, top_pos), len(pos) - 1)
@@ -575,7 +594,10 @@ class Model:
         s = bisect.bisect_left(self._mv_succ, lo, rs, re_)
         e = bisect.bisect_left(self._mv_succ, hi, s, re_)
         pos = self._succ[s:e].astype(np.int64)
-        ranked = self._select(self._alph[pos].astype(np.int64), pos, self._counts(np.arange(s, e)) / cv, k)
+        counts = self._counts(np.arange(s, e))
+        if len(counts) and int(counts.max()) > cv:
+            raise self._over(int(counts.max()), cv)
+        ranked = self._select(self._alph[pos].astype(np.int64), pos, counts / cv, k)
         if len(ranked) < k:
             taken = set(pos.tolist())
             p = lo

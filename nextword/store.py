@@ -932,6 +932,7 @@ def _check_arrays(
     disi = a["DISI"]
     if len(disi) and (disi[-1] >= n or np.any(disi[1:] <= disi[:-1])):
         raise _fail(name, "section DISI is not an increasing list of word ids")
+    _check_escaped_counts(name, a, n, b)
     if not full:
         return
 
@@ -985,6 +986,27 @@ def _check_arrays(
     except UnicodeDecodeError:
         raise _fail(name, "section DISB is not UTF-8") from None
     _check_derived(name, meta, a, keys, full_counts)
+
+
+def _check_escaped_counts(name: str, a: dict[str, np.ndarray], n: int, b: int) -> None:
+    """Every escaped pair count (>= 255) is at most its row's history count c(v).
+
+    A valid file has c(v,w) <= c(v) (a row's counts sum to c(v)); a larger count would
+    give P(w | v) above 1. Escaped counts are the only ones that can be far above any
+    history count, and they are few (one per pair seen 255 times or more), so this costs
+    O(escapes · log rows), not O(pairs), and runs on every load. One-byte counts
+    (1 … 254) are bounded where a query reads them (``Model._over``), so that no
+    probability is ever above 1 without reading every pair on load.
+    """
+    bigi = a["BIGI"]
+    if not len(bigi):
+        return
+    if int(bigi.max()) >= b:
+        raise _fail(name, "section BIGI points past the last pair")
+    hist = a["HIST"] if "HIST" in a else history_counts(a["UNIG"], n)
+    row_of_escape = np.searchsorted(a["ROWS"], bigi, side="right") - 1
+    if np.any(a["BIGC"] > hist[row_of_escape]):
+        raise _fail(name, "section BIGC holds a pair count above its history count")
 
 
 def _check_derived(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], keys: list[str], counts: np.ndarray) -> None:
