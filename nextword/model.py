@@ -26,6 +26,7 @@ from ._progress import Progress
 from .corpus import Format, iter_messages, open_sources
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables, batch_chars, join_batches
 from .errors import InputDataError, InvalidArgumentError, ModelFormatError
+from .prune import DEFAULT_RULE
 from .store import (
     COUNT_ESCAPE,
     DEFAULT_SKYBAND_K,
@@ -44,6 +45,9 @@ __all__ = ["Model", "Suggestion", "TrainReport", "train", "train_texts", "load",
 
 #: Weight of the bigram estimate; a value near 0.9 is the usual starting point (common practice).
 DEFAULT_LAMBDA = 0.9
+#: sections whose size grows with the number of stored pairs, and with the vocabulary (for ``info``)
+_PAIR_SECTIONS = ("SUCC", "CNTS", "BIGI", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC")
+_VOCAB_SECTIONS = ("TKID", "IDTK", "ALPH", "APOS", "KEY4", "TOPK", "UNIG", "ROWS", "HIST", "DISI", "DISO")
 # below this many successor candidates, plain Python beats numpy's per-call overhead
 _SMALL = 80
 
@@ -664,14 +668,26 @@ class Model:
         bigram_bytes = sum(
             a[s].nbytes for s in ("SUCC", "CNTS", "BIGI", "BIGC", "ROWS", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC")
         )
+        # the file split into what grows with the pairs and what grows with the vocabulary
+        # (trie, permutations, key heads, top lists, unigram/history counts, row offsets,
+        # spellings); the rest is header, section table, metadata and padding
+        pair_bytes = sum(a[s].nbytes for s in _PAIR_SECTIONS)
+        vocab_bytes = sum(a[s].nbytes for s in _VOCAB_SECTIONS if s in a) + len(self._src.raw["TRIE"]) + len(self._disb)
+        pairs = self.n_bigrams
         return {
             "path": self.path,
             "format_version": "%d.%d" % self.format_version,
             "file_bytes": self.file_size,
             "vocabulary": self.n_words,
             "bigrams": self.n_bigrams,
-            "bytes_per_bigram": self.file_size / self.n_bigrams if self.n_bigrams else None,
-            "bigram_section_bytes_per_bigram": bigram_bytes / self.n_bigrams if self.n_bigrams else None,
+            "vocabulary_bytes": vocab_bytes,
+            "pair_bytes": pair_bytes,
+            "other_bytes": self.file_size - vocab_bytes - pair_bytes,
+            "vocabulary_share": vocab_bytes / self.file_size,
+            "pair_bytes_per_pair": pair_bytes / pairs if pairs else None,
+            "file_bytes_per_pair": self.file_size / pairs if pairs else None,
+            "bytes_per_bigram": self.file_size / pairs if pairs else None,
+            "bigram_section_bytes_per_bigram": bigram_bytes / pairs if pairs else None,
             "lambda": self.stored_lam,
             "lambda_clamped": self.lambda_clamped,
             "lambda_buckets": (
@@ -722,7 +738,7 @@ def _finish(
     skyband_min: int,
     t0: float,
     max_bytes: int | None = None,
-    prune_rule: str = "entropy",
+    prune_rule: str = DEFAULT_RULE,
 ) -> TrainReport:
     t1 = time.perf_counter()
     tables: CountTables = builder.tables(min_count=min_count, max_vocab=max_vocab)
@@ -778,7 +794,7 @@ def train(
     skyband_min: int = DEFAULT_SKYBAND_MIN,
     progress: bool | None = None,
     max_bytes: int | None = None,
-    prune_rule: str = "entropy",
+    prune_rule: str = DEFAULT_RULE,
     workers: int = 1,
     memory_cap: int | None = None,
 ) -> TrainReport:
