@@ -285,7 +285,7 @@ def choose_vocabulary(
     one = np.zeros(n, dtype=bool)
     one[int(np.argmax(wv))] = True
     fixed = _size(prune_tables(drop_words(tables, one), np.zeros(0, dtype=bool)), lam, **build)[0]
-    full = _size(tables, lam, **build)[0]
+    full = _size(prune_tables(tables, ~no_pairs), lam, **build)[0]
     per_word = max((vocab_only - fixed) / max(n - 1, 1), 1e-9)
     per_pair = max((full - vocab_only) / max(len(pv), 1), 1e-9)
     value = np.concatenate([wv / per_word, np.where(np.isfinite(pv), pv, np.finfo(np.float64).max) / per_pair])
@@ -327,7 +327,8 @@ def prune_to_size(
     kept pairs, then the count is lowered until the encoded file fits.
     """
     words_before = tables.n_words
-    if vocabulary and _size(tables, lam, **build)[0] > max_bytes:
+    all_pairs = np.ones(len(tables.pair_count), dtype=bool)
+    if vocabulary and _size(prune_tables(tables, all_pairs), lam, **build)[0] > max_bytes:
         keep = choose_vocabulary(tables, max_bytes, rule=rule, lam=lam, **build)
         wv = word_values(tables, rule, lam)
         while True:
