@@ -1,6 +1,7 @@
-"""Fitting a size budget by dropping the least valuable word pairs.
+"""Fitting a size budget by dropping the least valuable word pairs, and words.
 
-Unigrams are never removed, only pairs. After pruning, a history's count c(v) becomes the
+No count is ever lost: a dropped pair's mass stays with its history, a dropped word's
+with ``<unk>`` (see below). After pruning, a history's count c(v) becomes the
 sum of its kept pairs (stored in the optional HIST section, format 1.2), so
 P(w | v) = λ·c(v,w)/c(v) + (1−λ)·c(w)/N still sums to 1 over the vocabulary: the mass of
 the dropped pairs flows back to the kept ones and to the unigram part.

@@ -278,3 +278,36 @@ def test_prune_curve_command_prints_size_against_ksr_and_perplexity(lines: list[
     assert text.returncode == 0 and "KSR@3" in text.stdout and len(text.stdout.strip().splitlines()) == 2 + 4
     bad = subprocess.run([sys.executable, "-m", "nextword", "prune", str(model)], capture_output=True, text=True, env=env)
     assert bad.returncode == 2 and bad.stderr.startswith("nextword: error: prune needs -o/--output and --max-size")
+
+
+@settings(max_examples=30, deadline=None)
+@given(
+    st.lists(st.lists(st.sampled_from(RARE + ["the", "a", "at"]), min_size=1, max_size=9).map(" ".join), min_size=1, max_size=15),
+    st.floats(0.3, 1.0),
+    st.sampled_from(["entropy", "count"]),
+)
+def test_any_budget_gives_a_valid_distribution(msgs: list[str], frac: float, rule: str) -> None:
+    # invariant (common practice for interpolated models): after any pruning, every history's
+    # probabilities over all words, </s> and <unk> sum to 1, and the file passes verify=True
+    import tempfile
+
+    b = CountBuilder()
+    b.add_texts(msgs)
+    tables = b.tables(min_count=1)
+    with tempfile.TemporaryDirectory() as tmp:
+        full = Path(tmp) / "full.nwm"
+        nextword.store.write_model(tables, full, lam=0.9)
+        budget = int(full.stat().st_size * frac)
+        try:
+            _, chunks, info = prune_to_size(tables, budget, rule=rule, lam=0.9)  # type: ignore[arg-type]
+        except nextword.InvalidArgumentError as e:
+            assert "below the vocabulary alone" in str(e)  # not even one word fits
+            return
+        out = Path(tmp) / "p.nwm"
+        atomic_write(out, chunks)
+        assert out.stat().st_size <= budget
+        m = nextword.load(out, verify=True)
+        outcomes = [w for w, _ in m.words()] + ["</s>", "<unk>"]
+        for prev in [None, "<unk>", *RARE[:3], "the"]:
+            assert math.fsum(m.prob(w, prev) for w in outcomes) == pytest.approx(1.0, abs=1e-12)
+        m.close()
