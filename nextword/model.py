@@ -804,7 +804,8 @@ def train(
     one message per line, or JSON Lines with a ``field`` holding the message, optionally
     gzip-compressed. Each input is read exactly once. The file is written atomically.
     ``max_bytes`` prunes word pairs (``prune_rule`` "entropy" or "count") until the file
-    fits; unigrams are never removed (see :mod:`nextword.prune`). ``workers`` > 1 counts
+    fits, and whole words where they are worth less per byte (a dropped word becomes
+    ``<unk>``; no count is lost, see :mod:`nextword.prune`). ``workers`` > 1 counts
     chunks of messages in that many processes (0 = one per core) and merges the partial
     counts; the file is byte for byte the one a single process writes. ``memory_cap``
     (bytes) bounds the pair counts held in memory by spilling sorted runs to a temporary
