@@ -1,8 +1,8 @@
 """Size budget: file size against held-out KSR@3 and perplexity, per pruning rule, on two corpora.
 
 Corpora (Debian text packages, prepared at run time by ``bench/prepare_corpus.py``'s
-readers, nothing committed): the dictionaries (GCIDE, FOLDOC, Jargon File; about 5M words)
-and the ``fortunes`` quotations. Each is split with the benchmarks' one rule,
+readers, nothing committed): the dictionaries (GCIDE, FOLDOC, Jargon File; about 5M words),
+the ``fortunes`` quotations, and FOLDOC + Jargon File alone. Each is split with the benchmarks' one rule,
 ``nextword.evaluate.is_held_out`` (10 % held out), trained with the defaults, then pruned
 to fractions of its full size by ``nextword.prune.prune_to_size`` (the file size is
 measured) with each rule — letting the vocabulary shrink (the default) and, for comparison,
@@ -34,15 +34,19 @@ FRACTIONS = (1.0, 0.6, 0.4, 0.25, 0.15, 0.1)
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description="pruning curves")
-    ap.add_argument("--messages", type=int, default=400, help="held-out messages simulated for KSR")
+    ap.add_argument("--messages", type=int, default=1000, help="held-out messages simulated for KSR (default 1000)")
     ap.add_argument("--test-percent", type=int, default=10)
     ap.add_argument("--no-results", action="store_true")
     args = ap.parse_args(argv)
     out = HERE / "out" / "prune"
     out.mkdir(parents=True, exist_ok=True)
-    corpora: dict[str, list[str]] = {"dictionaries": [], "fortunes": []}
+    # the 5M-word dictionary corpus of bench_core, the fortunes quotations, and the two
+    # computing dictionaries alone (a third genre: technical definitions and hacker slang)
+    corpora: dict[str, list[str]] = {"dictionaries": [], "fortunes": [], "computing (FOLDOC + Jargon File)": []}
     for source, msg in messages():
         corpora["fortunes" if source == "fortunes" else "dictionaries"].append(msg)
+        if source in ("foldoc", "jargon"):
+            corpora["computing (FOLDOC + Jargon File)"].append(msg)
     if not corpora["dictionaries"] or not corpora["fortunes"]:
         print("bench_prune: apt-get install dict-gcide dict-foldoc dict-jargon fortunes", file=sys.stderr)
         return 2
@@ -53,7 +57,7 @@ def main(argv: list[str] | None = None) -> int:
         train = [m for m in msgs if not is_held_out(m, args.test_percent)]
         held = [m for m in msgs if is_held_out(m, args.test_percent)]
         ksr_msgs = held[: args.messages]
-        full = out / f"{name}.nwm"
+        full = out / f"{name.split()[0]}.nwm"
         nextword.train_texts(train, full)
         model = nextword.load(full)
         tables = tables_from_model(model)
@@ -68,7 +72,7 @@ def main(argv: list[str] | None = None) -> int:
                         _, chunks, _ = prune_to_size(tables, budget, rule=rule, lam=model.stored_lam, vocabulary=vocab)  # type: ignore[arg-type]
                     except nextword.InvalidArgumentError:
                         continue  # below the vocabulary alone, and the vocabulary is kept
-                    path = out / f"{name}-{rule}-{int(vocab)}-{budget}.nwm"
+                    path = out / f"{name.split()[0]}-{rule}-{int(vocab)}-{budget}.nwm"
                     atomic_write(path, chunks)
                 m = nextword.load(path)
                 overall, _ = evaluate(m, [("held", ksr_msgs)], (3,))
