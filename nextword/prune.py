@@ -340,6 +340,26 @@ def prune_to_size(
             kept = np.flatnonzero(keep)
             keep[kept[np.argsort(wv[kept], kind="stable")[: max(1, len(kept) // 10)]]] = False
         pruned, chunks, info = prune_to_size(smaller, max_bytes, rule=rule, lam=lam, vocabulary=False, **build)
+        if info["removed"] == 0 and not keep.all():
+            # every pair of the smaller vocabulary fits: the estimate dropped more words than
+            # needed, so take back the most valuable dropped words while the whole file fits
+            # (the size grows with every word taken back, so bisection finds the most)
+            back = np.flatnonzero(~keep)
+            back = back[np.argsort(-wv[back], kind="stable")]
+            lo, hi = 0, len(back)
+            while lo < hi:
+                mid = (lo + hi + 1) // 2
+                trial = keep.copy()
+                trial[back[:mid]] = True
+                t = drop_words(tables, trial) if not trial.all() else tables
+                if _size(prune_tables(t, np.ones(len(t.pair_count), dtype=bool)), lam, **build)[0] <= max_bytes:
+                    lo = mid
+                else:
+                    hi = mid - 1
+            if lo:
+                keep[back[:lo]] = True
+                smaller = drop_words(tables, keep) if not keep.all() else tables
+                pruned, chunks, info = prune_to_size(smaller, max_bytes, rule=rule, lam=lam, vocabulary=False, **build)
         info["words_removed"] = words_before - smaller.n_words
         info["words_kept"] = smaller.n_words
         return pruned, chunks, info

@@ -54,6 +54,17 @@ def test_pruned_model_fits_keeps_unigrams_and_sums_to_one(lines: list[str], tmp_
         kept = [tables.keys.index(nextword.text.fold(w)) for w, _ in m.words()]
         assert np.array_equal(unig[:n], tables.unigram[kept])
         assert unig[n] == tables.unigram[-2] and unig.sum() == tables.unigram.sum()
+        if info["removed"] == 0 and info["words_removed"] > 0:  # no budget left unused: one more word overflows
+            from nextword.prune import drop_words, prune_tables, word_values
+
+            wv = word_values(tables, rule, 0.9)  # type: ignore[arg-type]
+            mask = np.isin(np.asarray(tables.keys), [nextword.text.fold(w) for w, _ in m.words()])
+            best_dropped = np.flatnonzero(~mask)[np.argmax(wv[~mask])]
+            mask[best_dropped] = True
+            bigger = drop_words(tables, mask)
+            size = sum(len(c) for c in nextword.store.encode_sections(
+                nextword.store.build_sections(prune_tables(bigger, np.ones(len(bigger.pair_count), dtype=bool)), lam=0.9), minor=2))
+            assert size > budget
     vocab = [w for w, _ in m.words()] + ["</s>", "<unk>"]
     for prev in [None, "the", "is", "a", "<unk>", "object"]:
         assert math.fsum(m.prob(w, prev) for w in vocab) == pytest.approx(1.0, abs=1e-12)
