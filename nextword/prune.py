@@ -289,7 +289,7 @@ def choose_vocabulary(
     full = _size(prune_tables(tables, ~no_pairs), lam, **build)[0]
     per_word = max((vocab_only - fixed) / max(n - 1, 1), 1e-9)
     per_pair = max((full - vocab_only) / max(len(pv), 1), 1e-9)
-    value = np.concatenate([wv / per_word, np.where(np.isfinite(pv), pv, np.finfo(np.float64).max) / per_pair])
+    value = np.concatenate([wv / per_word, np.where(np.isfinite(pv), pv / per_pair, np.inf)])
     cost = np.concatenate([np.full(n, per_word), np.full(len(pv), per_pair)])
     order = np.argsort(-value, kind="stable")
     fits = fixed + np.cumsum(cost[order]) - per_word <= max_bytes  # the first word is in ``fixed``
@@ -334,8 +334,13 @@ def prune_to_size(
         wv = word_values(tables, rule, lam)
         while True:
             smaller = drop_words(tables, keep) if not keep.all() else tables
-            if vocabulary_bytes(smaller, lam=lam, **build) <= max_bytes or keep.sum() == 1:
+            floor = vocabulary_bytes(smaller, lam=lam, **build)
+            if floor <= max_bytes:
                 break
+            if keep.sum() == 1:
+                raise InvalidArgumentError(
+                    f"a budget of {max_bytes:,} bytes is below the smallest possible model ({floor:,} bytes: one word, no pairs)"
+                )
             # the estimate was optimistic: drop the least valuable tenth of the kept words too
             kept = np.flatnonzero(keep)
             keep[kept[np.argsort(wv[kept], kind="stable")[: max(1, len(kept) // 10)]]] = False
@@ -377,7 +382,7 @@ def prune_to_size(
     if base_size > max_bytes:
         raise InvalidArgumentError(
             f"a budget of {max_bytes:,} bytes is below the vocabulary alone ({base_size:,} bytes); "
-            "let the vocabulary shrink too (vocabulary=True) or lower max_vocab"
+            "let the vocabulary shrink too (the default; not with --keep-vocabulary / vocabulary=False) or lower max_vocab"
         )
     full, full_size, chunks = build_with(total_pairs)
     if full_size <= max_bytes:
