@@ -150,3 +150,21 @@ def test_a_count_raised_above_its_history_is_caught(pruned: bool, tag: bytes) ->
     assert raised > 0
     with pytest.raises(ModelFormatError, match="above its history count"):
         m.suggest("Bo and ", 3)
+
+
+@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(st.data())
+def test_any_changed_bytes_that_load_give_probabilities_in_0_1(data: st.DataObject) -> None:
+    # anywhere in the file: most changes are caught by the checksums on load, the rest must
+    # still answer within [0, 1] (or raise ModelFormatError at the query)
+    pruned = data.draw(st.booleans())
+    buf = bytearray(MODELS[pruned])
+    for i, b in data.draw(st.lists(st.tuples(st.integers(0, len(buf) - 1), st.integers(0, 255)), min_size=1, max_size=4)):
+        buf[i] = b
+    path = Path(tempfile.mkdtemp()) / "bad.nwm"
+    path.write_bytes(bytes(buf))
+    try:
+        m = nextword.load(path)
+    except ModelFormatError:
+        return
+    _check_every_answer(m)
