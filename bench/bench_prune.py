@@ -1,11 +1,15 @@
-"""Size budget: file size against held-out perplexity and KSR@3, for both pruning rules.
+"""Size budget: file size against held-out KSR@3 and perplexity, per pruning rule, on two corpora.
 
-Starts from the 5-million-word model of ``bench_core.py`` and its held-out text; each
-budget is met by ``nextword.prune.prune_to_size`` (the file size is measured), then the
-pruned model is evaluated on the same held-out messages. Figures go into
-``bench/RESULTS.md`` between the ``prune`` markers; a plot into ``bench/out/prune/``.
+Corpora (Debian text packages, prepared at run time by ``bench/prepare_corpus.py``'s
+readers, nothing committed): the dictionaries (GCIDE, FOLDOC, Jargon File; about 5M words),
+the ``fortunes`` quotations, and FOLDOC + Jargon File alone. Each is split with the benchmarks' one rule,
+``nextword.evaluate.is_held_out`` (10 % held out), trained with the defaults, then pruned
+to fractions of its full size by ``nextword.prune.prune_to_size`` (the file size is
+measured) with each rule — letting the vocabulary shrink (the default) and, for comparison,
+keeping it — and evaluated on the held-out messages. Figures go into ``bench/RESULTS.md``
+between the ``prune`` markers.
 
-    python bench/prepare_corpus.py && python bench/bench_core.py && python bench/bench_prune.py
+    python bench/bench_prune.py
 """
 
 from __future__ import annotations
@@ -20,81 +24,86 @@ sys.path.insert(0, str(HERE))
 
 import nextword  # noqa: E402
 from bench_core import machine, publish  # noqa: E402
-from nextword.evaluate import evaluate  # noqa: E402
-from nextword.prune import prune_to_size, tables_from_model, vocabulary_bytes  # noqa: E402
+from prepare_corpus import messages  # noqa: E402
+from nextword.evaluate import evaluate, is_held_out  # noqa: E402
+from nextword.prune import RULES, prune_to_size, tables_from_model  # noqa: E402
 from nextword.store import atomic_write  # noqa: E402
+
+FRACTIONS = (1.0, 0.6, 0.4, 0.25, 0.15, 0.1)
 
 
 def main(argv: list[str] | None = None) -> int:
-    ap = argparse.ArgumentParser(description="pruning curve")
-    ap.add_argument("--messages", type=int, default=400, help="held-out messages for KSR")
+    ap = argparse.ArgumentParser(description="pruning curves")
+    ap.add_argument("--messages", type=int, default=1000, help="held-out messages simulated for KSR (default 1000)")
+    ap.add_argument("--test-percent", type=int, default=10)
     ap.add_argument("--no-results", action="store_true")
     args = ap.parse_args(argv)
-    core, test = HERE / "out" / "core.nwm", HERE / "data" / "test.txt"
-    if not core.exists() or not test.exists():
-        print("bench_prune: run bench/prepare_corpus.py and bench/bench_core.py first", file=sys.stderr)
-        return 2
     out = HERE / "out" / "prune"
     out.mkdir(parents=True, exist_ok=True)
-    model = nextword.load(core)
-    held = [m for m in test.read_text(encoding="utf-8").splitlines() if m.strip()]
-    ksr_msgs = held[: args.messages]
-    tables = tables_from_model(model)
-    floor = vocabulary_bytes(tables, lam=model.stored_lam)
-    budgets = [model.file_size] + [int(x * 1e6) for x in (4.0, 3.0, 2.5, 2.0, 1.5, 1.2)]
-    rows = []
+    # the 5M-word dictionary corpus of bench_core, the fortunes quotations, and the two
+    # computing dictionaries alone (a third genre: technical definitions and hacker slang)
+    corpora: dict[str, list[str]] = {"dictionaries": [], "fortunes": [], "computing (FOLDOC + Jargon File)": []}
+    for source, msg in messages():
+        corpora["fortunes" if source == "fortunes" else "dictionaries"].append(msg)
+        if source in ("foldoc", "jargon"):
+            corpora["computing (FOLDOC + Jargon File)"].append(msg)
+    if not corpora["dictionaries"] or not corpora["fortunes"]:
+        print("bench_prune: apt-get install dict-gcide dict-foldoc dict-jargon fortunes", file=sys.stderr)
+        return 2
     t0 = time.perf_counter()
-    for rule in ("count", "entropy"):
-        for budget in budgets:
-            if budget < floor:
-                continue
-            if budget == model.file_size:
-                path = core
-            else:
-                _, chunks, _ = prune_to_size(tables, budget, rule=rule, lam=model.stored_lam)  # type: ignore[arg-type]
-                path = out / f"{rule}-{budget}.nwm"
-                atomic_write(path, chunks)
-            m = nextword.load(path)
-            overall, _ = evaluate(m, [("held", ksr_msgs)], (3,))
-            rows.append((rule, m.file_size, m.n_bigrams, m.perplexity(held), overall.per_k[3].ksr))
+    sections = []
+    curves: dict[str, list[tuple[str, int, int, int, float, float]]] = {}
+    for name, msgs in corpora.items():
+        train = [m for m in msgs if not is_held_out(m, args.test_percent)]
+        held = [m for m in msgs if is_held_out(m, args.test_percent)]
+        ksr_msgs = held[: args.messages]
+        full = out / f"{name.split()[0]}.nwm"
+        nextword.train_texts(train, full)
+        model = nextword.load(full)
+        tables = tables_from_model(model)
+        rows = []
+        for rule, vocab in [(r, True) for r in RULES] + [("entropy", False), ("count", False)]:
+            label = rule if vocab else f"{rule}, vocabulary kept"
+            for frac in FRACTIONS:
+                budget = int(model.file_size * frac)
+                path = full
+                if frac < 1.0:
+                    try:
+                        _, chunks, _ = prune_to_size(tables, budget, rule=rule, lam=model.stored_lam, vocabulary=vocab)  # type: ignore[arg-type]
+                    except nextword.InvalidArgumentError:
+                        continue  # below the vocabulary alone, and the vocabulary is kept
+                    path = out / f"{name.split()[0]}-{rule}-{int(vocab)}-{budget}.nwm"
+                    atomic_write(path, chunks)
+                m = nextword.load(path)
+                overall, _ = evaluate(m, [("held", ksr_msgs)], (3,))
+                rows.append((label, m.file_size, m.n_words, m.n_bigrams, m.perplexity(held), overall.per_k[3].ksr))
+                m.close()
+        curves[name] = rows
+        table = "\n".join(
+            f"| {label} | {size:,} | {words:,} | {pairs:,} | {ppl:.1f} | {100 * ksr:.2f}% |"
+            for label, size, words, pairs, ppl, ksr in rows
+        )
+        info = model.info()
+        sections.append(f"""#### {name}: {len(train):,} training / {len(held):,} held-out messages
+
+Full model {model.file_size:,} bytes: {model.n_words:,} words, {model.n_bigrams:,} pairs; the vocabulary is
+{info['vocabulary_bytes']:,} bytes ({100 * info['vocabulary_share']:.0f}% of the file). Budgets: {', '.join(f'{int(100 * f)}%' for f in FRACTIONS)} of it.
+
+| rule | file bytes | words | pairs | perplexity | KSR@3 |
+|---|---|---|---|---|---|
+{table}
+""")
     took = time.perf_counter() - t0
-    table = "\n".join(
-        f"| {rule} | {size:,} | {pairs:,} | {ppl:.1f} | {100 * ksr:.2f}% |" for rule, size, pairs, ppl, ksr in rows
-    )
     md = f"""### Size budget (`bench/bench_prune.py`)
 
-Command: `python bench/prepare_corpus.py && python bench/bench_core.py && python bench/bench_prune.py` — {time.strftime('%Y-%m-%d')}
+Command: `python bench/bench_prune.py` — {time.strftime('%Y-%m-%d')}
 Machine: {machine()}.
-The 5M-word model ({model.file_size:,} bytes, {model.n_bigrams:,} pairs) pruned to each budget (the vocabulary
-alone needs {floor:,} bytes); perplexity on all {len(held):,} held-out messages, KSR@3 on the first {len(ksr_msgs):,}.
-{took:.0f} s in all.
+Each corpus split by `nextword.evaluate.is_held_out` ({args.test_percent}% held out), trained with the defaults,
+pruned to each budget; perplexity on all held-out messages, KSR@3 on the first {args.messages}. Perplexity is
+comparable only between rows with the same number of words (a dropped word becomes `<unk>`, which makes its
+tokens easier to predict); KSR@3 is comparable across all rows. {took:.0f} s in all.
 
-| rule | file bytes | pairs kept | perplexity | KSR@3 |
-|---|---|---|---|---|
-{table}
-"""
-    try:
-        import matplotlib
-
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
-    except ImportError:
-        pass
-    else:
-        fig, axes = plt.subplots(1, 2, figsize=(9, 3.5))
-        for rule in ("count", "entropy"):
-            pts = sorted((s, p, k) for r, s, _, p, k in rows if r == rule)
-            axes[0].plot([s / 1e6 for s, _, _ in pts], [p for _, p, _ in pts], "o-", label=rule)
-            axes[1].plot([s / 1e6 for s, _, _ in pts], [100 * k for _, _, k in pts], "o-", label=rule)
-        axes[0].set_xlabel("file size (MB)")
-        axes[0].set_ylabel("held-out perplexity")
-        axes[1].set_xlabel("file size (MB)")
-        axes[1].set_ylabel("KSR@3 (%)")
-        axes[0].legend()
-        fig.tight_layout()
-        fig.savefig(out / "size_curve.png", dpi=120)
-        plt.close(fig)
-        md += "\nPlot: `bench/out/prune/size_curve.png` (made by the command, not committed).\n"
+""" + "\n".join(sections)
     publish(md, "prune", write=not args.no_results)
     return 0
 

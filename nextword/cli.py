@@ -24,6 +24,7 @@ from .errors import InputDataError, InvalidArgumentError, NextwordError
 from .model import DEFAULT_LAMBDA, Model, load, train, train_texts
 from .paths import Labelled, check_outputs, check_writable
 from .serve import DEFAULT_MAX_OPEN_USERS
+from .prune import DEFAULT_RULE
 from .text import fold
 
 __all__ = ["main", "build_parser"]
@@ -205,7 +206,7 @@ def _parser() -> _Parser:
     t.add_argument("--workers", type=int, default=1, help="counting processes (0 = one per core; default 1)")
     t.add_argument("--memory-cap", metavar="SIZE", type=_size, help="bound the pair counts in memory, spilling to disk, e.g. 1GB (default: no bound)")
     t.add_argument("--max-size", metavar="SIZE", type=_size, help="prune pairs until the file fits, e.g. 4MB (default: no budget)")
-    t.add_argument("--rule", choices=("count", "entropy"), default="entropy", help="which pairs go first with --max-size")
+    t.add_argument("--rule", choices=("count", "entropy"), default=DEFAULT_RULE, help="pruning rule with --max-size (default %(default)s)")
     t.add_argument("--json", action="store_true", help="print the training report as JSON")
 
     s = sub.add_parser("suggest", help="print suggestions for typed texts")
@@ -282,11 +283,19 @@ def _parser() -> _Parser:
     pe.add_argument("--half-life-days", type=float, default=None, help="decay: a message's weight halves after this many days (new layers; default: no decay)")
     pe.add_argument("--json", action="store_true", help="print JSON")
 
-    pr = sub.add_parser("prune", help="drop the least valuable pairs until the model fits a size budget")
+    pr = sub.add_parser("prune", help="drop the least valuable pairs (and words) until the model fits a size budget")
     pr.add_argument("model", help=_MODEL_HELP)
-    pr.add_argument("-o", "--output", required=True, help="the pruned model (written atomically, never over its input)")
-    pr.add_argument("--max-size", required=True, metavar="SIZE", type=_size, help="budget, e.g. 4MB, 1.5MiB, 800000")
-    pr.add_argument("--rule", choices=("count", "entropy"), default="entropy", help="which pairs go first (default %(default)s)")
+    pr.add_argument("-o", "--output", help="the pruned model (written atomically, never over its input); required unless --curve (default: none)")
+    pr.add_argument("--max-size", metavar="SIZE", type=_size, help="budget, e.g. 4MB, 1.5MiB, 800000; required unless --curve (default: none)")
+    pr.add_argument("--rule", choices=("count", "entropy"), default=DEFAULT_RULE, help="which pairs and words go first (default %(default)s)")
+    pr.add_argument("--keep-vocabulary", action="store_true",
+                    help="remove pairs only, never words (default: words go too when they are worth less per byte)")
+    pr.add_argument("--curve", nargs="+", metavar="HELDOUT",
+                    help="write nothing; print file size against KSR@k and perplexity on these held-out logs, both rules, for each of --sizes (default: no curve)")
+    pr.add_argument("--sizes", nargs="+", metavar="SIZE", type=_size,
+                    help="budgets for --curve (default: 100%%, 75%%, 50%%, 35%%, 25%% of the model's size)")
+    pr.add_argument("-k", type=_positive, default=3, help="suggestions for KSR in --curve (default %(default)s)")
+    pr.add_argument("--messages", type=_positive, default=400, help="held-out messages simulated for KSR in --curve (default %(default)s; perplexity uses all)")
     pr.add_argument("--json", action="store_true", help="print the result as JSON")
 
     ex = sub.add_parser("export", help="export a model to another format")
@@ -423,12 +432,24 @@ def _cmd_info(args: argparse.Namespace) -> int:
         print(json.dumps(data, indent=2, ensure_ascii=False))
         return 0
     corpus = data.pop("corpus")
+    labels = {
+        "vocabulary_bytes": "vocabulary bytes (trie, ids, counts, rows)",
+        "pair_bytes": "pair bytes (successors, counts, skybands)",
+        "other_bytes": "other bytes (header, table, metadata, padding)",
+        "vocabulary_share": "vocabulary share of the file",
+        "pair_bytes_per_pair": "pair bytes per pair (vocabulary excluded)",
+        "file_bytes_per_pair": "whole file / pairs (vocabulary included)",
+    }
     for key, value in data.items():
-        if isinstance(value, float):
+        if key == "bytes_per_bigram":
+            continue  # the same figure as file_bytes_per_pair, labelled there
+        if key == "vocabulary_share":
+            value = f"{100 * value:.1f}%"
+        elif isinstance(value, float):
             value = f"{value:.3f}"
-        print(f"{key:32} {value}")
+        print(f"{labels.get(key, key):48} {value}")
     for key, value in corpus.items():
-        print(f"{'corpus.' + key:32} {value}")
+        print(f"{'corpus.' + key:48} {value}")
     return 0
 
 
@@ -774,13 +795,17 @@ def _cmd_prune(args: argparse.Namespace) -> int:
     from .store import atomic_write, check_new_output
 
     model = load(args.model)
+    if args.curve:
+        return _prune_curve(args, model)
+    if not args.output or not args.max_size:
+        raise UsageError("prune needs -o/--output and --max-size (or --curve HELDOUT to measure sizes)")
     check_new_output(args.model, args.output, "pruned model")
     bar = Progress("prune")
     try:
         bar.stage(f"reading the counts of {args.model}")
         _, chunks, info = prune_to_size(
             tables_from_model(model), parse_size(args.max_size), rule=args.rule, lam=model.stored_lam,
-            skyband_k=model._sky_k, skyband_min=model._sky_min, progress=lambda label: bar.stage(label),
+            vocabulary=not args.keep_vocabulary, skyband_k=model._sky_k, skyband_min=model._sky_min, progress=lambda label: bar.stage(label),
         )
         bar.stage(f"writing {args.output}")
         atomic_write(args.output, chunks)
@@ -792,8 +817,57 @@ def _cmd_prune(args: argparse.Namespace) -> int:
     else:
         print(
             f"wrote {args.output}: {info['bytes']:,} bytes (was {model.file_size:,}); kept {info['kept']:,} pairs, "
-            f"removed {info['removed']:,} ({args.rule} rule)"
+            f"removed {info['removed']:,}; kept {info['words_kept']:,} words, removed {info['words_removed']:,} ({args.rule} rule)"
         )
+    return 0
+
+
+def _prune_curve(args: argparse.Namespace, model: Model) -> int:
+    """Size against held-out KSR@k and perplexity for each budget and both rules (nothing written)."""
+    import tempfile
+
+    from .evaluate import evaluate
+    from .prune import RULES, parse_size, prune_to_size, tables_from_model
+    from .store import atomic_write
+
+    held = [m for m in iter_messages(open_sources(args.curve)) if m.strip()]
+    if not held:
+        raise InvalidArgumentError("no held-out messages in " + ", ".join(args.curve))
+    ksr_msgs = held[: args.messages]
+    sizes = [parse_size(x) for x in args.sizes] if args.sizes else [int(model.file_size * f) for f in (1.0, 0.75, 0.5, 0.35, 0.25)]
+    tables = tables_from_model(model)
+    rows: list[dict[str, Any]] = []
+    bar = Progress("pruning curve")
+    with tempfile.TemporaryDirectory(prefix="nextword-curve-") as tmp:
+        for rule in RULES:
+            for budget in sizes:
+                bar.update(len(rows), len(RULES) * len(sizes), f"{rule} {budget:,} bytes")
+                path = args.model
+                if budget < model.file_size:
+                    _, chunks, _ = prune_to_size(
+                        tables, budget, rule=rule, lam=model.stored_lam,  # type: ignore[arg-type]
+                        vocabulary=not args.keep_vocabulary, skyband_k=model._sky_k, skyband_min=model._sky_min,
+                    )
+                    path = os.path.join(tmp, f"{rule}-{budget}.nwm")
+                    atomic_write(path, chunks)
+                m = load(path)
+                overall, _ = evaluate(m, [("held", ksr_msgs)], (args.k,))
+                rows.append({
+                    "rule": rule, "budget": budget, "file_bytes": m.file_size, "words": m.n_words, "pairs": m.n_bigrams,
+                    "perplexity": m.perplexity(held), "ksr": overall.per_k[args.k].ksr,
+                })
+                m.close()
+    bar.done()
+    out = {"model": args.model, "held_out": args.curve, "messages": len(held), "ksr_messages": len(ksr_msgs),
+           "k": args.k, "vocabulary": not args.keep_vocabulary, "rows": rows}
+    if args.json:
+        print(json.dumps(out, indent=2))
+        return 0
+    print(f"model: {args.model}; perplexity on {len(held):,} held-out messages, KSR@{args.k} on {len(ksr_msgs):,}")
+    print(f"{'rule':8} {'budget':>12} {'file bytes':>12} {'words':>8} {'pairs':>10} {'perplexity':>11} {'KSR@' + str(args.k):>8}")
+    for r in rows:
+        print(f"{r['rule']:8} {r['budget']:>12,} {r['file_bytes']:>12,} {r['words']:>8,} {r['pairs']:>10,} "
+              f"{r['perplexity']:>11.2f} {100 * r['ksr']:>7.2f}%")
     return 0
 
 
@@ -874,7 +948,8 @@ def _io_paths(args: argparse.Namespace) -> tuple[list[Labelled], list[Labelled],
         ins = [("model", args.model)] + [("held-out text", x) for x in args.heldout]
         outs = [("tuned model", args.output)] if args.output else []
     elif cmd == "prune":
-        ins, outs = [("model", args.model)], [("pruned model", args.output)]
+        ins = [("model", args.model)] + [("held-out text", x) for x in args.curve or []]
+        outs = [("pruned model", args.output)] if args.output else []
     elif cmd == "export":
         ins, outs = [("model", args.model)], [("ARPA file", args.arpa)]
     elif cmd == "eval":

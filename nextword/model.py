@@ -26,10 +26,12 @@ from ._progress import DEFAULT_TICK, Progress
 from .corpus import Format, iter_messages, open_sources
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables, batch_chars, join_batches
 from .errors import InputDataError, InvalidArgumentError, ModelFormatError
+from .prune import DEFAULT_RULE
 from .store import (
     COUNT_ESCAPE,
     DEFAULT_SKYBAND_K,
     DEFAULT_SKYBAND_MIN,
+    MAX_LAMBDA,
     TOPK_FANOUT,
     ModelArrays,
     read_model,
@@ -43,6 +45,9 @@ __all__ = ["Model", "Suggestion", "TrainReport", "train", "train_texts", "load",
 
 #: Weight of the bigram estimate; a value near 0.9 is the usual starting point (common practice).
 DEFAULT_LAMBDA = 0.9
+#: sections whose size grows with the number of stored pairs, and with the vocabulary (for ``info``)
+_PAIR_SECTIONS = ("SUCC", "CNTS", "BIGI", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC")
+_VOCAB_SECTIONS = ("TKID", "IDTK", "ALPH", "APOS", "KEY4", "TOPK", "UNIG", "ROWS", "HIST", "DISI", "DISO")
 # below this many successor candidates, plain Python beats numpy's per-call overhead
 _SMALL = 80
 
@@ -130,12 +135,17 @@ class Model:
         self.n_bigrams: int = meta["bigrams"]
         self.total: int = meta["total"]
         self.stats: dict[str, int] = dict(meta.get("stats", {}))
-        self.stored_lam: float = meta["lambda"]
-        self.lam: float = self.stored_lam if lam is None else _check_lam(lam)
+        # stored λ above MAX_LAMBDA (files written before the cap) are clamped, not refused:
+        # λ = 1 would give every unseen pair probability 0; ``lambda_clamped`` says it happened
+        stored = [float(meta["lambda"])]
         # λ by history count (optional): bucket i holds histories with bounds[i-1] <= c(v) < bounds[i]
         buckets = meta.get("lambda_buckets") or {}
+        stored += [float(x) for x in buckets.get("lambdas", [])]
+        self.lambda_clamped: bool = max(stored) > MAX_LAMBDA
+        self.stored_lam: float = min(stored[0], MAX_LAMBDA)
+        self.lam: float = self.stored_lam if lam is None else _check_lam(lam)
         self.lambda_bounds: list[int] = list(buckets.get("bounds", []))
-        self.lambda_values: list[float] = [float(x) for x in buckets.get("lambdas", [])]
+        self.lambda_values: list[float] = [min(x, MAX_LAMBDA) for x in stored[1:]]
         self._override = lam is not None
         self.file_size = arrays.file_size
         self.format_version = arrays.version
@@ -316,12 +326,24 @@ class Model:
             return self.lam
         return self.lambda_values[bisect.bisect_right(self.lambda_bounds, self._hist(v))]
 
+    def _over(self, c: int, cv: int) -> ModelFormatError:
+        """The error for a pair count above its history count (damaged bigram data).
+
+        Valid files have c(v,w) ≤ c(v) (a row's counts sum to c(v)); the bigram-sized
+        sections are not checksummed on a plain load, so every query that divides a pair
+        count by c(v) checks it instead: a probability is never above 1.
+        """
+        return ModelFormatError(f"{self.path}: damaged model data: pair count {c} above its history count {cv}")
+
     def _prob_ids(self, v: int, w: int, lam: float) -> float:
         cv = self._hist(v)
         u = self._mv_unig[w] / self.total
         if cv == 0:
             return u  # type: ignore[no-any-return]
-        return lam * (self._pair_count(v, w) / cv) + (1.0 - lam) * u  # type: ignore[no-any-return]
+        c = self._pair_count(v, w)
+        if c > cv:
+            raise self._over(c, cv)
+        return lam * (c / cv) + (1.0 - lam) * u  # type: ignore[no-any-return]
 
     def prob(self, word: str, previous_word: str | None = None, *, lam: float | None = None) -> float:
         """P(word | previous_word). ``None`` or ``'<s>'`` means the sentence start.
@@ -374,6 +396,8 @@ class Model:
         for v, w in self._token_pairs(lines):
             cv.append(self._hist(v))
             cvw.append(self._pair_count(v, w))
+            if cvw[-1] > cv[-1]:
+                raise self._over(cvw[-1], cv[-1])
             cw.append(self._mv_unig[w])
         return (np.asarray(cv, dtype=np.int64), np.asarray(cvw, dtype=np.int64), np.asarray(cw, dtype=np.int64))
 
@@ -508,6 +532,8 @@ class Model:
                     j = cs.index(COUNT_ESCAPE, j + 1)
                 except ValueError:
                     break
+        if cs and max(cs) > cv:
+            raise self._over(max(cs), cv)
         # same float operations, in the same order, as the brute-force formula
         cands = [(-(lam * (c / cv) + oml * (unig[alph[p]] / total)), p) for p, c in zip(ps, cs)]
         seen = set(ps)
@@ -544,7 +570,10 @@ class Model:
             pos = self._succ[idx].astype(np.int64)
         ids = self._alph[pos].astype(np.int64)
         total = self.total
-        score = lam * (self._counts(idx) / cv) + (1.0 - lam) * (self._unig[ids] / total)
+        counts = self._counts(idx)
+        if len(counts) and int(counts.max()) > cv:
+            raise self._over(int(counts.max()), cv)
+        score = lam * (counts / cv) + (1.0 - lam) * (self._unig[ids] / total)
         top_a = np.asarray(top, dtype=np.int64)
         top_pos = self._apos[top_a].astype(np.int64)
         at = np.minimum(np.searchsorted(pos, top_pos), len(pos) - 1)
@@ -569,7 +598,10 @@ class Model:
         s = bisect.bisect_left(self._mv_succ, lo, rs, re_)
         e = bisect.bisect_left(self._mv_succ, hi, s, re_)
         pos = self._succ[s:e].astype(np.int64)
-        ranked = self._select(self._alph[pos].astype(np.int64), pos, self._counts(np.arange(s, e)) / cv, k)
+        counts = self._counts(np.arange(s, e))
+        if len(counts) and int(counts.max()) > cv:
+            raise self._over(int(counts.max()), cv)
+        ranked = self._select(self._alph[pos].astype(np.int64), pos, counts / cv, k)
         if len(ranked) < k:
             taken = set(pos.tolist())
             p = lo
@@ -636,15 +668,28 @@ class Model:
         bigram_bytes = sum(
             a[s].nbytes for s in ("SUCC", "CNTS", "BIGI", "BIGC", "ROWS", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC")
         )
+        # the file split into what grows with the pairs and what grows with the vocabulary
+        # (trie, permutations, key heads, top lists, unigram/history counts, row offsets,
+        # spellings); the rest is header, section table, metadata and padding
+        pair_bytes = sum(a[s].nbytes for s in _PAIR_SECTIONS)
+        vocab_bytes = sum(a[s].nbytes for s in _VOCAB_SECTIONS if s in a) + len(self._src.raw["TRIE"]) + len(self._disb)
+        pairs = self.n_bigrams
         return {
             "path": self.path,
             "format_version": "%d.%d" % self.format_version,
             "file_bytes": self.file_size,
             "vocabulary": self.n_words,
             "bigrams": self.n_bigrams,
-            "bytes_per_bigram": self.file_size / self.n_bigrams if self.n_bigrams else None,
-            "bigram_section_bytes_per_bigram": bigram_bytes / self.n_bigrams if self.n_bigrams else None,
+            "vocabulary_bytes": vocab_bytes,
+            "pair_bytes": pair_bytes,
+            "other_bytes": self.file_size - vocab_bytes - pair_bytes,
+            "vocabulary_share": vocab_bytes / self.file_size,
+            "pair_bytes_per_pair": pair_bytes / pairs if pairs else None,
+            "file_bytes_per_pair": self.file_size / pairs if pairs else None,
+            "bytes_per_bigram": self.file_size / pairs if pairs else None,
+            "bigram_section_bytes_per_bigram": bigram_bytes / pairs if pairs else None,
             "lambda": self.stored_lam,
+            "lambda_clamped": self.lambda_clamped,
             "lambda_buckets": (
                 {"bounds": self.lambda_bounds, "lambdas": self.lambda_values} if self.lambda_values else None
             ),
@@ -693,7 +738,7 @@ def _finish(
     skyband_min: int,
     t0: float,
     max_bytes: int | None = None,
-    prune_rule: str = "entropy",
+    prune_rule: str = DEFAULT_RULE,
 ) -> TrainReport:
     t1 = time.perf_counter()
     tables: CountTables = builder.tables(min_count=min_count, max_vocab=max_vocab)
@@ -724,6 +769,11 @@ def _finish(
 
 def _check_build_args(lam: float, skyband_k: int, skyband_min: int) -> float:
     lam = _check_lam(lam)
+    if lam > MAX_LAMBDA:
+        raise InvalidArgumentError(
+            f"a stored λ must be at most {MAX_LAMBDA} (λ = 1 gives every unseen pair probability 0), got {lam!r}; "
+            "queries may still pass lam=1.0"
+        )
     if isinstance(skyband_k, bool) or not isinstance(skyband_k, int) or not 1 <= skyband_k <= 4096:
         raise InvalidArgumentError(f"skyband_k must be an integer in [1, 4096], got {skyband_k!r}")
     if isinstance(skyband_min, bool) or not isinstance(skyband_min, int) or skyband_min < 0:
@@ -744,7 +794,7 @@ def train(
     skyband_min: int = DEFAULT_SKYBAND_MIN,
     progress: bool | None = None,
     max_bytes: int | None = None,
-    prune_rule: str = "entropy",
+    prune_rule: str = DEFAULT_RULE,
     workers: int = 1,
     memory_cap: int | None = None,
 ) -> TrainReport:
@@ -754,7 +804,8 @@ def train(
     one message per line, or JSON Lines with a ``field`` holding the message, optionally
     gzip-compressed. Each input is read exactly once. The file is written atomically.
     ``max_bytes`` prunes word pairs (``prune_rule`` "entropy" or "count") until the file
-    fits; unigrams are never removed (see :mod:`nextword.prune`). ``workers`` > 1 counts
+    fits, and whole words where they are worth less per byte (a dropped word becomes
+    ``<unk>``; no count is lost, see :mod:`nextword.prune`). ``workers`` > 1 counts
     chunks of messages in that many processes (0 = one per core) and merges the partial
     counts; the file is byte for byte the one a single process writes. ``memory_cap``
     (bytes) bounds the pair counts held in memory by spilling sorted runs to a temporary

@@ -1,6 +1,7 @@
-"""Fitting a size budget by dropping the least valuable word pairs.
+"""Fitting a size budget by dropping the least valuable word pairs, and words.
 
-Unigrams are never removed, only pairs. After pruning, a history's count c(v) becomes the
+No count is ever lost: a dropped pair's mass stays with its history, a dropped word's
+with ``<unk>`` (see below). After pruning, a history's count c(v) becomes the
 sum of its kept pairs (stored in the optional HIST section, format 1.2), so
 P(w | v) = λ·c(v,w)/c(v) + (1−λ)·c(w)/N still sums to 1 over the vocabulary: the mass of
 the dropped pairs flows back to the kept ones and to the unigram part.
@@ -15,25 +16,55 @@ Two rules decide which pairs go first:
   pairs over the smaller c(v) (see :func:`_entropy_scores`). As in the paper, each pair
   is scored alone and the lowest scores are removed together.
 
+When the vocabulary itself is a large share of the budget, words go too
+(:func:`drop_words`): a dropped word becomes ``<unk>`` everywhere — its unigram count is
+added to ``<unk>``'s, its pairs merge into the matching ``<unk>`` pairs, its history count
+into ``<unk>``'s — so every history still sums to 1 and the model is exactly the one whose
+training text had the dropped words replaced by an unknown word. The vocabulary/pair
+split is chosen by **value per byte** (:func:`choose_vocabulary`): a word's value is the
+rule's value of its unigram (``count``: c(x); ``entropy``: its term c(x)/N·ln(N/c(x)) of
+the unigram entropy) plus the values of all its pairs (as history and as successor),
+divided by the measured bytes one word costs in the file; a pair's value is its score
+divided by the measured bytes per pair. Words and pairs are taken best first until the
+estimated size reaches the budget; the words taken are kept, then the pairs are pruned
+again on the smaller vocabulary until the measured file fits.
+
 Measured figures: bench/RESULTS.md, "Size budget".
 """
 
 from __future__ import annotations
 
 import re
-from typing import Callable, Literal
+from typing import TYPE_CHECKING, Callable, Final, Literal
 
 import numpy as np
 
 from .counts import CountTables
 from .errors import InvalidArgumentError
-from .model import Model
 from .store import build_sections, encode_sections, history_counts
 
-__all__ = ["RULES", "parse_size", "tables_from_model", "prune_tables", "pair_scores", "prune_to_size", "vocabulary_bytes"]
+if TYPE_CHECKING:  # prune is imported by model (the train default), not the other way round
+    from .model import Model
+
+__all__ = [
+    "RULES",
+    "DEFAULT_RULE",
+    "parse_size",
+    "tables_from_model",
+    "prune_tables",
+    "pair_scores",
+    "word_values",
+    "drop_words",
+    "choose_vocabulary",
+    "prune_to_size",
+    "vocabulary_bytes",
+]
 
 RULES = ("entropy", "count")
 Rule = Literal["entropy", "count"]
+#: The rule `train --max-size` and `prune` use unless told otherwise; chosen by the
+#: held-out size/KSR@3 curves of bench/RESULTS.md ("Size budget"), see README.
+DEFAULT_RULE: Final[Rule] = "entropy"
 _UNITS = {"": 1, "b": 1, "kb": 1000, "k": 1000, "mb": 10**6, "m": 10**6, "gb": 10**9, "g": 10**9,
           "kib": 1024, "mib": 1024**2, "gib": 1024**3}
 
@@ -168,6 +199,107 @@ def prune_tables(tables: CountTables, keep: np.ndarray) -> CountTables:
     )
 
 
+def word_values(tables: CountTables, rule: Rule, lam: float, pair_values: np.ndarray | None = None) -> np.ndarray:
+    """Value of every vocabulary word (ids 0 … n−1); the smallest go first.
+
+    The rule's value of the word's unigram (``count``: c(x); ``entropy``: c(x)/N·ln(N/c(x)),
+    its term of the unigram entropy) plus the values of every pair it is part of, as
+    history or as successor: dropping the word loses all of them.
+    """
+    n = tables.n_words
+    if pair_values is None:
+        pair_values = pair_scores(tables, rule, lam)
+    c = tables.unigram[:n].astype(np.float64)
+    if rule == "count":
+        own = c
+    else:
+        total = float(tables.unigram.sum())
+        with np.errstate(divide="ignore", invalid="ignore"):
+            own = np.where(c > 0, c / total * np.log(total / np.where(c > 0, c, 1.0)), 0.0)
+    left = np.asarray(tables.pair_left, dtype=np.int64)
+    right = np.asarray(tables.pair_right, dtype=np.int64)
+    pv = np.where(np.isfinite(pair_values), pair_values, 0.0)
+    as_history = np.bincount(left[left < n], weights=pv[left < n], minlength=n)[:n]
+    as_next = np.bincount(right[right < n], weights=pv[right < n], minlength=n)[:n]
+    return own + as_history + as_next
+
+
+def drop_words(tables: CountTables, keep: np.ndarray) -> CountTables:
+    """The same counts with only the words where ``keep`` (length n) is true; the rest become ``<unk>``.
+
+    Kept words keep their order (their counts do not change, so ids stay in count
+    order); a dropped word's unigram count goes to ``<unk>``, its pairs merge into the
+    pairs of ``<unk>`` (as history and as successor), its history count into ``<unk>``'s.
+    Every history therefore still sums to 1.
+    """
+    n = tables.n_words
+    keep = np.asarray(keep, dtype=bool)
+    if keep.shape != (n,):
+        raise InvalidArgumentError(f"keep must have one entry per word ({n}), got shape {keep.shape}")
+    m = int(keep.sum())
+    if m == 0:
+        raise InvalidArgumentError("cannot drop every word of the vocabulary")
+    remap = np.empty(n + 3, dtype=np.int64)
+    remap[:n] = np.where(keep, np.cumsum(keep) - 1, m + 1)
+    remap[n:] = [m, m + 1, m + 2]
+    unigram = np.zeros(m + 2, dtype=np.int64)
+    np.add.at(unigram, remap[: n + 2], np.asarray(tables.unigram, dtype=np.int64))
+    left = remap[np.asarray(tables.pair_left, dtype=np.int64)]
+    right = remap[np.asarray(tables.pair_right, dtype=np.int64)]
+    key = left * (m + 3) + right
+    uniq, inverse = np.unique(key, return_inverse=True)
+    counts = np.bincount(inverse, weights=np.asarray(tables.pair_count, dtype=np.float64), minlength=len(uniq))
+    history = None
+    if tables.history is not None:
+        history = np.zeros(m + 3, dtype=np.int64)
+        np.add.at(history, remap, np.asarray(tables.history, dtype=np.int64))
+    ids = np.flatnonzero(keep).tolist()
+    stats = dict(tables.stats)
+    stats["pruned_words"] = int(stats.get("pruned_words", 0)) + n - m
+    return CountTables(
+        keys=[tables.keys[i] for i in ids],
+        displays=[tables.displays[i] for i in ids],
+        unigram=unigram,
+        pair_left=uniq // (m + 3),
+        pair_right=uniq % (m + 3),
+        pair_count=np.rint(counts).astype(np.int64),
+        stats=stats,
+        history=history,
+    )
+
+
+def choose_vocabulary(
+    tables: CountTables, max_bytes: int, *, rule: Rule = DEFAULT_RULE, lam: float = 0.9, **build: int
+) -> np.ndarray:
+    """Which words to keep under ``max_bytes``, by value per byte (the module docstring's rule).
+
+    Bytes per word and per pair are measured from three small builds (all words without
+    pairs, one word without pairs, all pairs); words and pairs are then taken by value per
+    byte, best first, until the estimated size reaches the budget. Returns a boolean
+    mask over the word ids (at least the most valuable word).
+    """
+    n = tables.n_words
+    pv = pair_scores(tables, rule, lam)
+    wv = word_values(tables, rule, lam, pv)
+    no_pairs = np.zeros(len(tables.pair_count), dtype=bool)
+    vocab_only = _size(prune_tables(tables, no_pairs), lam, **build)[0]
+    one = np.zeros(n, dtype=bool)
+    one[int(np.argmax(wv))] = True
+    fixed = _size(prune_tables(drop_words(tables, one), np.zeros(0, dtype=bool)), lam, **build)[0]
+    full = _size(prune_tables(tables, ~no_pairs), lam, **build)[0]
+    per_word = max((vocab_only - fixed) / max(n - 1, 1), 1e-9)
+    per_pair = max((full - vocab_only) / max(len(pv), 1), 1e-9)
+    value = np.concatenate([wv / per_word, np.where(np.isfinite(pv), pv / per_pair, np.inf)])
+    cost = np.concatenate([np.full(n, per_word), np.full(len(pv), per_pair)])
+    order = np.argsort(-value, kind="stable")
+    fits = fixed + np.cumsum(cost[order]) - per_word <= max_bytes  # the first word is in ``fixed``
+    taken = order[fits] if fits.all() else order[: int(np.argmin(fits))]
+    keep = np.zeros(n, dtype=bool)
+    keep[taken[taken < n]] = True
+    keep[int(np.argmax(wv))] = True
+    return keep
+
+
 def _size(tables: CountTables, lam: float, **build: int) -> tuple[int, list[bytes | memoryview]]:
     chunks = encode_sections(build_sections(tables, lam=lam, **build), minor=2)
     return sum(len(c) for c in chunks), chunks
@@ -182,17 +314,62 @@ def prune_to_size(
     tables: CountTables,
     max_bytes: int,
     *,
-    rule: Rule = "entropy",
+    rule: Rule = DEFAULT_RULE,
     lam: float = 0.9,
+    vocabulary: bool = True,
     progress: Callable[[str], None] | None = None,
     **build: int,
 ) -> tuple[CountTables, list[bytes | memoryview], dict[str, float]]:
-    """Keep the most valuable pairs that fit ``max_bytes``; returns (tables, file chunks, info).
+    """Keep the most valuable words and pairs that fit ``max_bytes``; returns (tables, file chunks, info).
 
-    The file size is measured, not estimated: candidate sizes come from a linear fit of
-    bytes against kept pairs, then the count is lowered until the encoded file fits.
+    With ``vocabulary`` (the default) the vocabulary/pair split is chosen by value per
+    byte (:func:`choose_vocabulary`) and dropped words become ``<unk>``; without it only
+    pairs are removed, and a budget below the vocabulary alone is an error. The file size
+    is measured, not estimated: candidate sizes come from a linear fit of bytes against
+    kept pairs, then the count is lowered until the encoded file fits.
     ``progress(label)`` is called before each expensive step (scoring, each trial build).
     """
+    words_before = tables.n_words
+    all_pairs = np.ones(len(tables.pair_count), dtype=bool)
+    if vocabulary and _size(prune_tables(tables, all_pairs), lam, **build)[0] > max_bytes:
+        keep = choose_vocabulary(tables, max_bytes, rule=rule, lam=lam, **build)
+        wv = word_values(tables, rule, lam)
+        while True:
+            smaller = drop_words(tables, keep) if not keep.all() else tables
+            floor = vocabulary_bytes(smaller, lam=lam, **build)
+            if floor <= max_bytes:
+                break
+            if keep.sum() == 1:
+                raise InvalidArgumentError(
+                    f"a budget of {max_bytes:,} bytes is below the smallest possible model ({floor:,} bytes: one word, no pairs)"
+                )
+            # the estimate was optimistic: drop the least valuable tenth of the kept words too
+            kept = np.flatnonzero(keep)
+            keep[kept[np.argsort(wv[kept], kind="stable")[: max(1, len(kept) // 10)]]] = False
+        pruned, chunks, info = prune_to_size(smaller, max_bytes, rule=rule, lam=lam, vocabulary=False, progress=progress, **build)
+        if info["removed"] == 0 and not keep.all():
+            # every pair of the smaller vocabulary fits: the estimate dropped more words than
+            # needed, so take back the most valuable dropped words while the whole file fits
+            # (the size grows with every word taken back, so bisection finds the most)
+            back = np.flatnonzero(~keep)
+            back = back[np.argsort(-wv[back], kind="stable")]
+            lo, hi = 0, len(back)
+            while lo < hi:
+                mid = (lo + hi + 1) // 2
+                trial = keep.copy()
+                trial[back[:mid]] = True
+                t = drop_words(tables, trial) if not trial.all() else tables
+                if _size(prune_tables(t, np.ones(len(t.pair_count), dtype=bool)), lam, **build)[0] <= max_bytes:
+                    lo = mid
+                else:
+                    hi = mid - 1
+            if lo:
+                keep[back[:lo]] = True
+                smaller = drop_words(tables, keep) if not keep.all() else tables
+                pruned, chunks, info = prune_to_size(smaller, max_bytes, rule=rule, lam=lam, vocabulary=False, progress=progress, **build)
+        info["words_removed"] = words_before - smaller.n_words
+        info["words_kept"] = smaller.n_words
+        return pruned, chunks, info
     if progress is not None:
         progress(f"scoring {len(tables.pair_count):,} pairs ({rule} rule)")
     order = np.argsort(-pair_scores(tables, rule, lam), kind="stable")  # most valuable first
@@ -210,16 +387,17 @@ def prune_to_size(
     empty, base_size, _ = build_with(0)
     if base_size > max_bytes:
         raise InvalidArgumentError(
-            f"a budget of {max_bytes:,} bytes is below the vocabulary alone ({base_size:,} bytes); lower max_vocab"
+            f"a budget of {max_bytes:,} bytes is below the vocabulary alone ({base_size:,} bytes); "
+            "let the vocabulary shrink too (the default; not with --keep-vocabulary / vocabulary=False) or lower max_vocab"
         )
     full, full_size, chunks = build_with(total_pairs)
     if full_size <= max_bytes:
-        return full, chunks, {"kept": total_pairs, "removed": 0, "bytes": full_size}
+        return full, chunks, {"kept": total_pairs, "removed": 0, "bytes": full_size, "words_kept": words_before, "words_removed": 0}
     per_pair = (full_size - base_size) / max(total_pairs, 1)
     k = int((max_bytes - base_size) / per_pair)
     for _ in range(60):
         pruned, size, chunks = build_with(k)
         if size <= max_bytes:
-            return pruned, chunks, {"kept": k, "removed": total_pairs - k, "bytes": size}
+            return pruned, chunks, {"kept": k, "removed": total_pairs - k, "bytes": size, "words_kept": words_before, "words_removed": 0}
         k = max(0, min(k - 1, int(k - (size - max_bytes) / per_pair * 1.02) - 1))
     raise InvalidArgumentError(f"could not fit {max_bytes:,} bytes")  # pragma: no cover - k reaches 0 first

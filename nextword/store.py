@@ -37,6 +37,7 @@ __all__ = [
     "DEFAULT_SKYBAND_K",
     "DEFAULT_SKYBAND_MIN",
     "TOPK_FANOUT",
+    "MAX_LAMBDA",
 ]
 
 MAGIC: Final = b"\x89NWM\r\n\x1a\n"
@@ -61,6 +62,13 @@ DEFAULT_SKYBAND_K: Final = 8
 #: Branching of the multi-level top lists used for prefix queries (see docs/FORMAT.md).
 TOPK_FANOUT: Final = 64
 COUNT_ESCAPE: Final = 255
+#: Largest λ a model file stores (and tuning chooses). At λ = 1 every pair not seen in
+#: training gets probability 0, so one unseen held-out pair makes perplexity infinite;
+#: at λ ≤ 0.999 every word keeps at least 0.001·c(w)/N. The cap costs little: for any λ
+#: in (0.999, 1], λ·b + (1−λ)·u ≥ 0.999·(λ·b + (1−λ)·u), so no held-out token loses more
+#: than ln(1/0.999) ≈ 0.001 nats, i.e. perplexity rises by at most 0.1 %. Queries may
+#: still pass λ = 1 explicitly (the pure bigram estimate); only stored λ are capped.
+MAX_LAMBDA: Final = 0.999
 
 _DTYPES: Final = {0: None, 1: np.dtype("<u1"), 2: np.dtype("<u2"), 3: np.dtype("<u4"), 4: np.dtype("<u8")}
 _CODES: Final = {np.dtype("<u1"): 1, np.dtype("<u2"): 2, np.dtype("<u4"): 3, np.dtype("<u8"): 4}
@@ -661,6 +669,9 @@ def rewrite_model(
     than bounds); such files are written as format version 1.1.
     """
     check_new_output(src, dst, "tuned model")
+    for x in [lam, *([] if buckets is None else buckets["lambdas"])]:
+        if not 0.0 <= float(x) <= MAX_LAMBDA:
+            raise InvalidArgumentError(f"a stored λ must lie in [0, {MAX_LAMBDA}] (λ = 1 makes unseen pairs impossible), got {x!r}")
     arrays = read_model(src, verify=True)
     meta = dict(arrays.meta)
     meta["lambda"] = float(lam)
@@ -928,6 +939,7 @@ def _check_arrays(
     disi = a["DISI"]
     if len(disi) and (disi[-1] >= n or np.any(disi[1:] <= disi[:-1])):
         raise _fail(name, "section DISI is not an increasing list of word ids")
+    _check_escaped_counts(name, a, n, b)
     if not full:
         return
 
@@ -981,6 +993,27 @@ def _check_arrays(
     except UnicodeDecodeError:
         raise _fail(name, "section DISB is not UTF-8") from None
     _check_derived(name, meta, a, keys, full_counts)
+
+
+def _check_escaped_counts(name: str, a: dict[str, np.ndarray], n: int, b: int) -> None:
+    """Every escaped pair count (>= 255) is at most its row's history count c(v).
+
+    A valid file has c(v,w) <= c(v) (a row's counts sum to c(v)); a larger count would
+    give P(w | v) above 1. Escaped counts are the only ones that can be far above any
+    history count, and they are few (one per pair seen 255 times or more), so this costs
+    O(escapes · log rows), not O(pairs), and runs on every load. One-byte counts
+    (1 … 254) are bounded where a query reads them (``Model._over``), so that no
+    probability is ever above 1 without reading every pair on load.
+    """
+    bigi = a["BIGI"]
+    if not len(bigi):
+        return
+    if int(bigi.max()) >= b:
+        raise _fail(name, "section BIGI points past the last pair")
+    hist = a["HIST"] if "HIST" in a else history_counts(a["UNIG"], n)
+    row_of_escape = np.searchsorted(a["ROWS"], bigi, side="right") - 1
+    if np.any(a["BIGC"] > hist[row_of_escape]):
+        raise _fail(name, "section BIGC holds a pair count above its history count")
 
 
 def _check_derived(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], keys: list[str], counts: np.ndarray) -> None:

@@ -9,6 +9,12 @@ two-part mixture updates λ ← mean_i(λ·b_i / (λ·b_i + (1−λ)·u_i)) and 
 then pinned down by bisection on L'(λ) = Σ (b_i − u_i)/(λ·b_i + (1−λ)·u_i), which is
 decreasing. Tokens after an unseen history do not depend on λ and are left out.
 
+Every λ chosen here lies in [0, MAX_LAMBDA] (``nextword.store.MAX_LAMBDA`` = 0.999): on
+held-out text whose pairs were all seen in training the likelihood keeps rising up to
+λ = 1, where every unseen pair would get probability 0 (see the constant for why 0.999
+costs at most 0.1 % perplexity). EM iterates, the bisection bracket, the keystroke
+search grid and every bucket are all capped by it.
+
 λ by history count follows the observation that one λ for every history is worse than
 letting it depend on how often the history was seen (Chen & Goodman, "An empirical study
 of smoothing techniques for language modeling", 1998): histories are grouped into
@@ -28,6 +34,7 @@ import numpy as np
 from .errors import InvalidArgumentError
 from .evaluate import evaluate
 from .model import Model
+from .store import MAX_LAMBDA
 
 __all__ = [
     "Events",
@@ -38,6 +45,7 @@ __all__ = [
     "perplexity_at",
     "keystroke_search",
     "LambdaBuckets",
+    "MAX_LAMBDA",
 ]
 
 
@@ -72,12 +80,17 @@ def _loglik(lam: float, b: np.ndarray, u: np.ndarray) -> float:
 
 
 def em_lambda(b: np.ndarray, u: np.ndarray, *, start: float = 0.5, iterations: int = 200) -> tuple[float, list[float]]:
-    """Run EM from ``start``; returns the last λ and the log-likelihood after each step."""
-    lam = start
+    """Run EM from ``start``; returns the last λ and the log-likelihood after each step.
+
+    Iterates are capped at MAX_LAMBDA. The likelihood is concave, so when an EM step would
+    pass the cap, the cap lies between the old and the new λ and its likelihood is at
+    least the old one: the capped iteration still never decreases L.
+    """
+    lam = min(start, MAX_LAMBDA)
     trace = [_loglik(lam, b, u)]
     for _ in range(iterations):
         p = lam * b + (1.0 - lam) * u
-        new = float(np.mean(np.divide(lam * b, p, out=np.zeros_like(p), where=p > 0)))
+        new = min(float(np.mean(np.divide(lam * b, p, out=np.zeros_like(p), where=p > 0))), MAX_LAMBDA)
         trace.append(_loglik(new, b, u))
         if abs(new - lam) < 1e-12:
             lam = new
@@ -87,26 +100,26 @@ def em_lambda(b: np.ndarray, u: np.ndarray, *, start: float = 0.5, iterations: i
 
 
 def optimal_lambda(b: np.ndarray, u: np.ndarray, *, tol: float = 1e-9) -> float:
-    """The maximiser of L(λ) on [0, 1]: EM to get close, then bisection on L'(λ)."""
+    """The maximiser of L(λ) on [0, MAX_LAMBDA]: EM to get close, then bisection on L'(λ)."""
     if len(b) == 0:
         raise InvalidArgumentError("no held-out tokens with a seen history: cannot fit λ")
 
     def slope(lam: float) -> float:
         p = lam * b + (1.0 - lam) * u
-        with np.errstate(divide="ignore", invalid="ignore"):
-            return float(np.sum((b - u) / p))
+        # a token with p = 0 at every λ (b = u = 0) does not depend on λ: leave it out
+        return float(np.sum(np.divide(b - u, p, out=np.zeros_like(p), where=p > 0)))
 
     if slope(0.0) <= 0.0:
         return 0.0
-    if not math.isinf(slope(1.0)) and slope(1.0) >= 0.0:
-        return 1.0
-    lo, hi = 0.0, 1.0
+    if slope(MAX_LAMBDA) >= 0.0:  # L still rising at the cap (e.g. every held-out pair seen)
+        return MAX_LAMBDA
+    lo, hi = 0.0, MAX_LAMBDA
     guess, _ = em_lambda(b, u, iterations=50)
     # bracket around the EM estimate when it is informative
-    for a, c in ((max(0.0, guess - 0.01), min(1.0, guess + 0.01)),):
+    for a, c in ((max(0.0, guess - 0.01), min(MAX_LAMBDA, guess + 0.01)),):
         if a > 0.0 and slope(a) > 0.0:
             lo = a
-        if c < 1.0 and slope(c) < 0.0:
+        if c < MAX_LAMBDA and slope(c) < 0.0:
             hi = c
     while hi - lo > tol:
         mid = 0.5 * (lo + hi)
@@ -187,7 +200,7 @@ def keystroke_search(
     refine_step: float = 0.01,
     progress: Callable[[int, int], None] | None = None,
 ) -> tuple[float, dict[float, float]]:
-    """λ maximising KSR@k: a coarse grid, then steps of ``refine_step`` around the best.
+    """λ maximising KSR@k in [0, MAX_LAMBDA]: a coarse grid, then steps of ``refine_step`` around the best.
 
     Every run reuses the model's caches of prefix ranges, top lists and spellings, so
     later λ values cost only the ranking itself. Returns (best λ, {λ: KSR}); ties go to
@@ -208,7 +221,7 @@ def keystroke_search(
     runs = len(grid) + max(new_refine(b) for b in grid)
 
     def ksr(lam: float) -> float:
-        lam = round(min(max(lam, 0.0), 1.0), 6)
+        lam = round(min(max(lam, 0.0), MAX_LAMBDA), 6)
         if lam not in curve:
             base = len(curve) * n
             report = None if progress is None else (lambda d: progress(base + d, runs * n))
@@ -219,7 +232,7 @@ def keystroke_search(
     for lam in coarse:
         ksr(lam)
     best = max(sorted(curve), key=lambda x: curve[x])
-    lo, hi = max(0.0, best - 5 * refine_step), min(1.0, best + 5 * refine_step)
+    lo, hi = max(0.0, best - 5 * refine_step), min(MAX_LAMBDA, best + 5 * refine_step)
     steps = int(round((hi - lo) / refine_step))
     runs = len(curve) + new_refine(best)
     for i in range(steps + 1):

@@ -169,3 +169,99 @@ def test_keystroke_objective_reports_a_curve(tmp_path: Path) -> None:
     curve = {row["lambda"]: row["ksr"] for row in res["ksr_curve"]}
     assert len(curve) >= 12 and res["chosen_lambda"] in curve
     assert curve[res["chosen_lambda"]] == max(curve.values())
+
+
+# -- the cap on tuned λ (MAX_LAMBDA) ------------------------------------------------------------
+
+from nextword.store import MAX_LAMBDA  # noqa: E402
+from nextword.tune import keystroke_search  # noqa: E402
+
+
+def test_optimum_beyond_the_cap_is_the_cap() -> None:
+    # every held-out pair seen with b > u: L'(λ) = Σ (b−u)/(λb + (1−λ)u) > 0 on all of [0, 1],
+    # so the unconstrained maximiser is λ = 1 (by hand); tuning must stop at the cap
+    b = np.array([0.5, 0.9, 0.3])
+    u = np.array([0.01, 0.02, 0.05])
+    assert optimal_lambda(b, u) == MAX_LAMBDA
+    lam, trace = em_lambda(b, u, iterations=5000)
+    assert lam <= MAX_LAMBDA
+    assert all(y >= x - 1e-12 for x, y in zip(trace, trace[1:]))  # capped EM still never decreases L
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    st.lists(st.lists(st.sampled_from(["see", "you", "at", "the", "shop", "ride", "tubes", "thanks"]), min_size=1,
+                      max_size=7).map(" ".join), min_size=2, max_size=12),
+    st.integers(0, 3),
+)
+def test_a_tuned_model_never_gives_an_in_vocabulary_word_probability_zero(msgs: list[str], held_from: int) -> None:
+    # held-out text taken from the training text makes every held-out pair seen, which pushed the
+    # likelihood optimum to λ = 1 (and P = 0 for every unseen pair) before the cap
+    import tempfile
+
+    held = msgs[held_from % len(msgs):] or msgs
+    with tempfile.TemporaryDirectory() as tmp:
+        base = Path(tmp) / "base.nwm"
+        nextword.train_texts(msgs, base, min_count=1)
+        model = nextword.load(base)
+        ev = events_of(model, held)
+        b, u = ev.bu()
+        if len(b) == 0:
+            return
+        buckets = fit_buckets(ev, min_events=1)
+        single = optimal_lambda(b, u)
+        best_k, curve = keystroke_search(model, held, k=1, coarse=(0.5, 0.99), refine_step=0.01)
+        assert all(0.0 <= x <= MAX_LAMBDA for x in [single, best_k, *curve, *buckets.lambdas])
+        out = Path(tmp) / "tuned.nwm"
+        rewrite_model(base, out, lam=single, buckets=buckets.as_meta())
+        tuned = nextword.load(out, verify=True)
+        words = [w for w, _ in tuned.words()]
+        for prev in [None, "<unk>", *words]:
+            assert all(tuned.prob(w, prev) > 0.0 for w in words), prev
+        assert math.isfinite(tuned.perplexity(held))
+        tuned.close()
+        model.close()
+
+
+def test_demo_split_tuned_with_buckets_has_finite_perplexity(tmp_path: Path) -> None:
+    # the reproduction: split the demo corpus 80/20, train, tune --buckets with --test-percent 30;
+    # before the cap, buckets of frequent histories got λ = 1.0000 and "after" perplexity was inf
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    run = lambda *a: subprocess.run([sys.executable, "-m", "nextword", *a], capture_output=True, text=True, env=env)  # noqa: E731
+    tr, te, m, out = (str(tmp_path / x) for x in ("tr.txt", "te.txt", "m.nwm", "b.nwm"))
+    assert run("split", str(ROOT / "examples/data/demo_messages.txt"), "--test-percent", "20",
+               "--train-out", tr, "--test-out", te).returncode == 0
+    assert run("train", tr, "-o", m).returncode == 0
+    r = run("tune", m, te, "--buckets", "--test-percent", "30", "--no-ksr-curve", "-o", out, "--json")
+    assert r.returncode == 0, r.stderr
+    res = json.loads(r.stdout)
+    assert max(res["buckets"]["lambdas"]) <= MAX_LAMBDA
+    assert math.isfinite(res["after"]["perplexity"])
+    assert res["after"]["perplexity"] <= res["before"]["perplexity"] * 1.01
+
+
+def test_stored_lambda_of_one_is_clamped_on_load_and_refused_on_write(tmp_path: Path) -> None:
+    # a file written before the cap (λ = 1 stored) still loads, with λ clamped and flagged
+    import msgpack
+
+    from nextword.counts import CountBuilder
+    from nextword.store import atomic_write, build_sections, encode_sections
+
+    b = CountBuilder()
+    b.add_texts(["see you at the shop", "see you at the ride"])
+    sections = build_sections(b.tables(min_count=1), lam=0.9)
+    meta = msgpack.unpackb(sections[0][2], raw=False)
+    meta["lambda"] = 1.0
+    meta["lambda_buckets"] = {"bounds": [2], "lambdas": [0.5, 1.0]}
+    sections[0] = (b"META", None, msgpack.packb(meta, use_bin_type=True))
+    old = tmp_path / "old.nwm"
+    atomic_write(old, encode_sections(sections, minor=1))
+    m = nextword.load(old, verify=True)
+    assert m.lambda_clamped and m.stored_lam == MAX_LAMBDA and m.lambda_values == [0.5, MAX_LAMBDA]
+    assert m.info()["lambda_clamped"] is True
+    assert m.prob("ride", "shop") > 0.0  # never seen after "shop": (1 − 0.999)·c(ride)/N
+    assert m.prob("ride", "shop", lam=1.0) == 0.0  # an explicit query λ is not capped
+    with pytest.raises(nextword.InvalidArgumentError, match="at most 0.999"):
+        nextword.train_texts(["see you"], tmp_path / "x.nwm", lam=1.0, min_count=1)
+    with pytest.raises(nextword.InvalidArgumentError, match="stored λ must lie in"):
+        rewrite_model(old, tmp_path / "y.nwm", lam=0.9, buckets={"bounds": [2], "lambdas": [0.5, 1.0]})
