@@ -144,6 +144,12 @@ def publish(md: str, marker: str, *, write: bool) -> None:
         update_results(md, marker)
 
 
+def figure_files(data: Path = HERE / "data") -> dict[str, tuple[list[Path], list[Path]]]:
+    """The figures this script publishes: the model's training files, and the held-out
+    file its queries come from (``bench/prepare_corpus.py`` splits them)."""
+    return {"core: 5M-word model, queries from held-out text": ([data / "train.txt"], [data / "test.txt"])}
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description="core engine benchmark")
     ap.add_argument("--data", type=Path, default=HERE / "data")
