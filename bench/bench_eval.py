@@ -26,7 +26,9 @@ HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
 from bench_core import machine, publish  # noqa: E402
-from prepare_corpus import FORTUNES, TEST_PERCENT, messages  # noqa: E402
+from prepare_corpus import FORTUNES, TEST_PERCENT, messages, split_of  # noqa: E402
+
+from nextword import load as load_model  # noqa: E402
 
 OUT = HERE / "out" / "eval"
 
@@ -46,6 +48,19 @@ def split_fortunes(out: Path = OUT, *, test_percent: int = TEST_PERCENT, fortune
             f.write(msg + "\n")
     return json.loads(nextword("split", str(corpus), "--train-out", str(out / "train.txt"), "--test-out",
                                str(out / "test.txt"), "--test-percent", str(test_percent), "--json"))
+
+
+def core_matches_split(core_model: Path, data: Path, test_percent: int) -> bool:
+    """Whether the 5M-word model was trained on ``data/train.txt`` as split at this share:
+    only then are this script's held-out fortunes outside its training text."""
+    split = split_of(data)
+    if split is None or split["test_percent"] != test_percent:
+        print(f"bench_eval: {data} was not split at {test_percent}%; leaving out the 5M-word row", file=sys.stderr)
+        return False
+    if load_model(core_model).info()["corpus"]["messages"] != split["train_messages"]:
+        print(f"bench_eval: {core_model} was not trained on {data / 'train.txt'}; leaving out its row", file=sys.stderr)
+        return False
+    return True
 
 
 def figure_files(data: Path = HERE / "data", out: Path = OUT) -> dict[str, tuple[list[Path], list[Path]]]:
@@ -80,7 +95,7 @@ def main(argv: list[str] | None = None) -> int:
     # the 5-million-word dictionary model of bench_core.py on the same held-out text, if built
     cross = None
     core_model = HERE / "out" / "core.nwm"
-    if core_model.exists() and args.test_percent == TEST_PERCENT:
+    if core_model.exists() and core_matches_split(core_model, HERE / "data", args.test_percent):
         cross = json.loads(nextword("eval", str(core_model), str(test), "-k", "1", "3", "5", "--no-baselines", "--json"))
 
     o = data["overall"]

@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import argparse
 import gzip
+import json
 import os
 import re
 import sys
@@ -101,6 +102,7 @@ def prepare(
     out.mkdir(parents=True, exist_ok=True)
     counts: dict[str, int] = {}
     words = {"train": 0, "test": 0}
+    lines = {"train": 0, "test": 0}
     tmp = {part: out / f".{part}.txt.tmp" for part in words}
     files = {part: open(tmp[part], "w", encoding="utf-8") for part in words}
     seen: set[str] = set()
@@ -112,6 +114,7 @@ def prepare(
             part = part_of(msg, test_percent)
             files[part].write(msg + "\n")
             words[part] += len(msg.split())
+            lines[part] += 1
             counts[source] = counts.get(source, 0) + 1
     finally:
         for f in files.values():
@@ -120,7 +123,17 @@ def prepare(
             f.close()
     for part in words:
         os.replace(tmp[part], out / f"{part}.txt")
+    # how the split was made, so later scripts can refuse to mix splits
+    (out / "split.json").write_text(json.dumps({"test_percent": test_percent, "train_messages": lines["train"]}))
     return {"messages": counts, "words": words}
+
+
+def split_of(data: Path) -> dict[str, int] | None:
+    """How ``data`` was split (``test_percent``, ``train_messages``), or None if unknown."""
+    try:
+        return json.loads((data / "split.json").read_text())
+    except (OSError, ValueError):
+        return None
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -126,3 +126,19 @@ def test_prepare_corpus_splits_exactly_like_nextword_split(
         cli = (tmp_path / f"{part}.txt").read_text(encoding="utf-8").splitlines()
         assert ours == cli, part
     assert 0 < len(ours) < len(every)
+
+
+def test_the_5m_word_row_is_left_out_for_a_model_of_another_split(prepared: tuple[Path, Path], tmp_path: Path) -> None:
+    import nextword
+
+    data, out = prepared
+    split = prepare_corpus.split_of(data)
+    assert split == {"test_percent": prepare_corpus.TEST_PERCENT,
+                     "train_messages": len((data / "train.txt").read_text(encoding="utf-8").splitlines())}
+    core = tmp_path / "core.nwm"
+    nextword.train(data / "train.txt", core, min_count=1)
+    assert bench_eval.core_matches_split(core, data, prepare_corpus.TEST_PERCENT)
+    assert not bench_eval.core_matches_split(core, data, 10)  # the fortunes split at another share
+    other = tmp_path / "other.nwm"
+    nextword.train(out / "train.txt", other, min_count=1)  # not the prepared training text
+    assert not bench_eval.core_matches_split(other, data, prepare_corpus.TEST_PERCENT)
