@@ -32,6 +32,7 @@ sys.path.insert(0, str(HERE))
 
 import nextword  # noqa: E402
 from nextword.baselines import DictBigram  # noqa: E402
+from nextword.counts import PARALLEL_MIN_BYTES  # noqa: E402
 from nextword.text import _TOKEN_RE, normalize  # noqa: E402
 
 
@@ -144,6 +145,126 @@ def publish(md: str, marker: str, *, write: bool) -> None:
         update_results(md, marker)
 
 
+#: the training settings timed side by side: (label, extra CLI arguments)
+TRAIN_SETTINGS = (
+    ("default", ()),
+    ("--workers 1", ("--workers", "1")),
+    ("--workers 0", ("--workers", "0")),
+    ("default --max-size 4MB", ("--max-size", "4MB")),
+    ("--workers 1 --max-size 4MB", ("--workers", "1", "--max-size", "4MB")),
+)
+
+
+def _train_once(train: Path, out: Path, extra: tuple[str, ...]) -> tuple[float, float, float, dict[str, Any]]:
+    """One whole ``nextword train`` process: wall seconds, CPU seconds of it and its
+    workers, the largest process's peak RSS so far (MB, from wait4), its JSON report."""
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
+    t0 = time.perf_counter()
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "nextword", "train", str(train), "-o", str(out), "--json", *extra],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+    )
+    stdout, stderr = proc.communicate()
+    wall = time.perf_counter() - t0
+    if proc.returncode:
+        raise SystemExit(f"bench_core: training failed: {stderr}")
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    cpu = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
+    return wall, cpu, after.ru_maxrss / 1024, json.loads(stdout)
+
+
+def training_runs(train: Path, out_dir: Path, rounds: int) -> dict[str, dict[str, Any]]:
+    """Every setting of TRAIN_SETTINGS ``rounds`` times, interleaved (round 1 of each, then
+    round 2 …) so the shared machine's load falls on all of them alike."""
+    runs: dict[str, dict[str, Any]] = {}
+    for r in range(rounds):
+        for i, (label, extra) in enumerate(TRAIN_SETTINGS):
+            path = out_dir / f"train-{i}.nwm"
+            wall, cpu, rss, report = _train_once(train, path, extra)
+            item = runs.setdefault(label, {"walls": [], "cpus": [], "path": path, "report": report, "peak_rss_mb": 0.0})
+            item["walls"].append(wall)
+            item["cpus"].append(cpu)
+            if r == 0:
+                item["peak_rss_mb"] = rss  # first round: the running maximum is this setting's own or an earlier one's
+            item["bytes"] = path.read_bytes()
+    return runs
+
+
+#: input sizes (MB, a prefix of the training text) at which one process and one per core are compared
+SWEEP_MB = (1, 2, 4, 8, 16)
+
+
+def threshold_sweep(train: Path, out_dir: Path, rounds: int) -> list[tuple[int, int, list[float], list[float]]]:
+    """For each size of SWEEP_MB: (bytes, words, walls with --workers 1, walls with --workers 0),
+    the measurement behind ``PARALLEL_MIN_BYTES``."""
+    data = train.read_bytes()
+    rows = []
+    for mb in SWEEP_MB:
+        cut = data.rfind(b"\n", 0, mb << 20) + 1
+        part = out_dir / f"sweep-{mb}mb.txt"
+        part.write_bytes(data[:cut])
+        walls: dict[str, list[float]] = {"1": [], "0": []}
+        words = 0
+        for _ in range(rounds):
+            for w in walls:
+                wall, _, _, report = _train_once(part, out_dir / "sweep.nwm", ("--workers", w))
+                walls[w].append(wall)
+                words = report["word_tokens"]
+        rows.append((cut, words, walls["1"], walls["0"]))
+        part.unlink()
+    return rows
+
+
+def sweep_markdown(rows: list[tuple[int, int, list[float], list[float]]]) -> str:
+    lines = "\n".join(
+        f"| {size / 2**20:.1f} MB | {words:,} | {statistics.median(one):.2f} s ({min(one):.2f}–{max(one):.2f}) | "
+        f"{statistics.median(par):.2f} s ({min(par):.2f}–{max(par):.2f}) | {statistics.median(one) / statistics.median(par):.2f}× |"
+        for size, words, one, par in rows
+    )
+    return f"""
+Where one process per core starts to pay (prefixes of the same text, whole CLI processes,
+`--workers 1` and `--workers 0` interleaved; median (min–max)):
+
+| input | words | `--workers 1` | `--workers 0` | speed-up |
+|---|---|---|---|---|
+{lines}
+"""
+
+
+def training_markdown(runs: dict[str, dict[str, Any]], rounds: int, train: Path) -> str:
+    words = runs["default"]["report"]["word_tokens"]
+    oracle = {False: runs["--workers 1"]["bytes"], True: runs["--workers 1 --max-size 4MB"]["bytes"]}
+    rows = []
+    for label, item in runs.items():
+        w = sorted(item["walls"])
+        med = statistics.median(w)
+        same = item["bytes"] == oracle["--max-size" in label]
+        rows.append(
+            f"| `{label}` | {w[0]:.2f} / {med:.2f} / {w[-1]:.2f} s | {words / med:,.0f} | {words / w[0]:,.0f} | "
+            f"{statistics.median(item['cpus']):.2f} s | {len(item['bytes']):,} | {same} |"
+        )
+    return f"""### Training speed (`bench/bench_core.py`)
+
+Command: `python bench/prepare_corpus.py && python bench/bench_core.py` (`--train-only` for this table alone) — {time.strftime('%Y-%m-%d')}
+Machine: {machine()} (shared with other jobs: the spread between rounds is their load).
+Each row is the whole `nextword train bench/data/train.txt -o OUT --json [setting]` process
+({words:,} words, {runs['default']['report']['messages']:,} messages, {train.stat().st_size / 1e6:.1f} MB), run {rounds} times,
+interleaved with the other settings round by round; "same bytes" compares with `--workers 1` (with the
+same `--max-size`). Default `workers`: one per core for inputs of at least {PARALLEL_MIN_BYTES >> 20} MB, else one
+(`nextword.counts.auto_workers`). Target: ≥ 1M words/s end to end on 2 cores.
+
+| setting | wall min / median / max | words/s (median) | words/s (best) | CPU, all processes (median) | file bytes | same bytes |
+|---|---|---|---|---|---|---|
+{chr(10).join(rows)}
+"""
+
+
+def figure_files(data: Path = HERE / "data") -> dict[str, tuple[list[Path], list[Path]]]:
+    """The figures this script publishes: the model's training files, and the held-out
+    file its queries come from (``bench/prepare_corpus.py`` splits them)."""
+    return {"core: 5M-word model, queries from held-out text": ([data / "train.txt"], [data / "test.txt"])}
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description="core engine benchmark")
     ap.add_argument("--data", type=Path, default=HERE / "data")
@@ -152,6 +273,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("-k", type=int, default=3)
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--rounds", type=int, default=5, help="fresh query processes; the median one is reported")
+    ap.add_argument("--train-rounds", type=int, default=5, help="runs of each training setting (default 5)")
+    ap.add_argument("--train-only", action="store_true", help="only the training table")
     ap.add_argument("--no-results", action="store_true", help="do not edit bench/RESULTS.md")
     ap.add_argument("--child", nargs=2, metavar=("MODEL", "QUERIES"), help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
@@ -166,25 +289,17 @@ def main(argv: list[str] | None = None) -> int:
     out_dir.mkdir(exist_ok=True)
     model_path = out_dir / "core.nwm"
 
-    # 1. training, in its own process so its peak RSS is its own
-    t0 = time.perf_counter()
-    proc = subprocess.run(
-        [sys.executable, "-m", "nextword", "train", str(train), "-o", str(model_path), "--json"],
-        check=True, capture_output=True, text=True,
-    )
-    train_wall = time.perf_counter() - t0
-    train_rss = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
-    report = json.loads(proc.stdout)
-    # the same with one counting process per core: must write the same bytes
-    par_path = out_dir / "core.workers.nwm"
-    t0 = time.perf_counter()
-    proc2 = subprocess.run(
-        [sys.executable, "-m", "nextword", "train", str(train), "-o", str(par_path), "--json", "--workers", "0"],
-        check=True, capture_output=True, text=True,
-    )
-    par_wall = time.perf_counter() - t0
-    par_report = json.loads(proc2.stdout)
-    par_same = par_path.read_bytes() == model_path.read_bytes()
+    # 1. training: every setting as a whole CLI process, interleaved over rounds
+    runs = training_runs(train, out_dir, args.train_rounds)
+    sweep = threshold_sweep(train, out_dir, args.train_rounds)
+    publish(training_markdown(runs, args.train_rounds, train) + sweep_markdown(sweep), "train", write=not args.no_results)
+    if args.train_only:
+        return 0
+    default = runs["default"]
+    train_wall = statistics.median(default["walls"])
+    train_rss = default["peak_rss_mb"]
+    report = default["report"]
+    os.replace(default["path"], model_path)
     info = nextword.load(model_path).info()
 
     # 2. queries from held-out text, engine alone in a fresh process
@@ -267,9 +382,8 @@ Machine: {res['machine']} (shared, noisy; compare ratios within one run).
 | figure | value | target |
 |---|---|---|
 | training corpus | {res['corpus_words']:,} words, {res['corpus_messages']:,} messages (GCIDE, FOLDOC, Jargon File, fortunes) | ≥ 5M words |
-| training time (whole CLI process) | {train_wall:.1f} s = {res['train_words_per_second']:,.0f} words/s | |
-| training peak RSS | {train_rss:,.0f} MB | |
-| training with `--workers 0` ({os.cpu_count()} processes) | {par_wall:.1f} s = {report['word_tokens'] / par_wall:,.0f} words/s end to end ({train_wall / par_wall:.2f}× one process); counting alone {par_report['count_seconds']:.1f} s = {report['word_tokens'] / par_report['count_seconds']:,.0f} words/s; same bytes: {par_same} | ≥ 1M words/s |
+| training time (whole CLI process, default settings, median of {args.train_rounds}) | {train_wall:.1f} s = {res['train_words_per_second']:,.0f} words/s (every setting: "Training speed" below) | ≥ 1M words/s |
+| training peak RSS (largest process) | {train_rss:,.0f} MB | |
 | model | {res['vocabulary']:,} words, {res['bigrams']:,} bigrams, {res['file_bytes']:,} bytes | |
 | bytes per stored bigram (whole file / bigrams) | {res['bytes_per_bigram']:.2f} | ≤ 4 |
 | load time, median of 200 (max) | {engine['load_ms_median']:.3f} ms ({engine['load_ms_max']:.3f} ms) | ≤ 5 ms |

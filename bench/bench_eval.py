@@ -1,7 +1,10 @@
 """Held-out keystroke-savings benchmark on real public text, baselines side by side.
 
 Prepares Debian's ``fortunes`` quotations and jokes at run time (nothing is committed),
-splits them by a hash of each message (``nextword split``), trains on one part,
+splits them by a hash of each message (``nextword split`` at ``prepare_corpus.TEST_PERCENT``:
+the rule and share of ``bench/prepare_corpus.py``, so this held-out part is exactly the
+fortunes in ``bench/data/test.txt`` and none of it is in the 5M-word model's training
+text either), trains on one part,
 and runs ``nextword eval`` on the other with every baseline: λ = 0 and λ = 0.999 on the
 same model, the plain-dict implementation and nltk.lm (fit and top-k query times).
 Figures go to ``bench/out/eval/`` (report with plots) and into ``bench/RESULTS.md``
@@ -23,7 +26,11 @@ HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
 from bench_core import machine, publish  # noqa: E402
-from prepare_corpus import FORTUNES, messages  # noqa: E402
+from prepare_corpus import FORTUNES, TEST_PERCENT, messages, split_of  # noqa: E402
+
+from nextword import load as load_model  # noqa: E402
+
+OUT = HERE / "out" / "eval"
 
 
 def nextword(*args: str) -> str:
@@ -31,24 +38,52 @@ def nextword(*args: str) -> str:
     return proc.stdout
 
 
+def split_fortunes(out: Path = OUT, *, test_percent: int = TEST_PERCENT, fortunes: Path = FORTUNES) -> dict[str, int]:
+    """Write ``out/fortunes.txt`` and split it with ``nextword split`` into ``out/train.txt``
+    and ``out/test.txt``; returns the number of messages in each part."""
+    out.mkdir(parents=True, exist_ok=True)
+    corpus = out / "fortunes.txt"
+    with open(corpus, "w", encoding="utf-8") as f:
+        for _, msg in messages(dicts={}, fortunes=fortunes):
+            f.write(msg + "\n")
+    return json.loads(nextword("split", str(corpus), "--train-out", str(out / "train.txt"), "--test-out",
+                               str(out / "test.txt"), "--test-percent", str(test_percent), "--json"))
+
+
+def core_matches_split(core_model: Path, data: Path, test_percent: int) -> bool:
+    """Whether the 5M-word model was trained on ``data/train.txt`` as split at this share:
+    only then are this script's held-out fortunes outside its training text."""
+    split = split_of(data)
+    if split is None or split["test_percent"] != test_percent:
+        print(f"bench_eval: {data} was not split at {test_percent}%; leaving out the 5M-word row", file=sys.stderr)
+        return False
+    if load_model(core_model).info()["corpus"]["messages"] != split["train_messages"]:
+        print(f"bench_eval: {core_model} was not trained on {data / 'train.txt'}; leaving out its row", file=sys.stderr)
+        return False
+    return True
+
+
+def figure_files(data: Path = HERE / "data", out: Path = OUT) -> dict[str, tuple[list[Path], list[Path]]]:
+    """Each figure this script publishes: (its model's training files, its held-out files)."""
+    return {
+        "eval: fortunes model and its λ baselines": ([out / "train.txt"], [out / "test.txt"]),
+        "eval: 5M-word model (bench_core) on the fortunes held-out part": ([data / "train.txt"], [out / "test.txt"]),
+    }
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description="held-out keystroke savings benchmark")
-    ap.add_argument("--test-percent", type=int, default=10)
+    ap.add_argument("--test-percent", type=int, default=TEST_PERCENT,
+                    help=f"share held out (default {TEST_PERCENT}, prepare_corpus's; another share makes the "
+                         "5M-word row meaningless, so that row is then left out)")
     ap.add_argument("--no-results", action="store_true", help="do not edit bench/RESULTS.md")
     args = ap.parse_args(argv)
     if not FORTUNES.is_dir():
         print("bench_eval: the fortunes package is missing; run: apt-get install fortunes", file=sys.stderr)
         return 2
-    out = HERE / "out" / "eval"
-    out.mkdir(parents=True, exist_ok=True)
-    corpus = out / "fortunes.txt"
-    with open(corpus, "w", encoding="utf-8") as f:
-        for source, msg in messages():
-            if source == "fortunes":
-                f.write(msg + "\n")
+    out = OUT
+    split = split_fortunes(out, test_percent=args.test_percent)
     train, test = out / "train.txt", out / "test.txt"
-    split = json.loads(nextword("split", str(corpus), "--train-out", str(train), "--test-out", str(test),
-                                "--test-percent", str(args.test_percent), "--json"))
     model = out / "fortunes.nwm"
     t0 = time.perf_counter()
     trained = json.loads(nextword("train", str(train), "-o", str(model), "--json"))
@@ -60,7 +95,7 @@ def main(argv: list[str] | None = None) -> int:
     # the 5-million-word dictionary model of bench_core.py on the same held-out text, if built
     cross = None
     core_model = HERE / "out" / "core.nwm"
-    if core_model.exists():
+    if core_model.exists() and core_matches_split(core_model, HERE / "data", args.test_percent):
         cross = json.loads(nextword("eval", str(core_model), str(test), "-k", "1", "3", "5", "--no-baselines", "--json"))
 
     o = data["overall"]
@@ -74,7 +109,7 @@ def main(argv: list[str] | None = None) -> int:
     rows = [ksr_row("this model (λ = 0.9)", o)]
     rows += [ksr_row(name, item) for name, item in b["lambda"].items()]
     if cross:
-        rows.append(ksr_row("5M-word dictionary model (bench_core), other domain", cross["overall"]))
+        rows.append(ksr_row("5M-word model (bench_core: dictionaries + the same fortunes training part)", cross["overall"]))
     d, n = b["dict"], b["nltk"]
     per_k = "\n".join(
         f"| {r['k']} | {100 * r['ksr']:.1f}% | {100 * r['ceiling_ksr']:.1f}% | {100 * r['ksr_of_ceiling']:.1f}% | "
@@ -86,7 +121,8 @@ def main(argv: list[str] | None = None) -> int:
 Command: `apt-get install fortunes && python bench/bench_eval.py` — {time.strftime('%Y-%m-%d')}
 Machine: {machine()}.
 Data: Debian `fortunes` (quotations and jokes), {split['train'] + split['test']:,} messages, split by a hash of
-each message: {split['train']:,} to train ({trained['word_tokens']:,} words, vocabulary {trained['vocabulary']:,}),
+each message (`nextword split --test-percent {args.test_percent}`: the rule and share of `prepare_corpus.py`, so
+none of the held-out messages is in either model's training text): {split['train']:,} to train ({trained['word_tokens']:,} words, vocabulary {trained['vocabulary']:,}),
 {split['test']:,} held out ({o['word_tokens']:,} words). Training took {train_s:.1f} s; the whole evaluation with
 every baseline {eval_s:.1f} s. Out-of-vocabulary words in the held-out text: {100 * o['oov_rate']:.1f}%.
 

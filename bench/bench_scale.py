@@ -102,7 +102,7 @@ def main(argv: list[str] | None = None) -> int:
     out = HERE / "out" / "scale"
     out.mkdir(parents=True, exist_ok=True)
     par = train(corpus, out / "workers.nwm", "--workers", "0", "--memory-cap", args.cap)
-    one = train(corpus, out / "one.nwm", "--memory-cap", args.cap)
+    one = train(corpus, out / "one.nwm", "--workers", "1", "--memory-cap", args.cap)
     same = (out / "workers.nwm").read_bytes() == (out / "one.nwm").read_bytes()
     words = par[3]["word_tokens"]
     md = f"""### Scale (`bench/bench_scale.py`)

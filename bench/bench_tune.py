@@ -25,21 +25,34 @@ from nextword.store import rewrite_model  # noqa: E402
 from nextword.tune import events_of, fit_buckets, keystroke_search, optimal_lambda, perplexity_at  # noqa: E402
 
 
+OUT = HERE / "out" / "eval"
+
+
+def halves(msgs: list[str]) -> tuple[list[str], list[str]]:
+    """(tuning half, final-test half) of bench_eval's held-out messages, by a salted hash."""
+    return [m for m in msgs if not is_held_out(m, 50, salt="tune:")], [m for m in msgs if is_held_out(m, 50, salt="tune:")]
+
+
+def figure_files(out: Path = OUT) -> dict[str, tuple[list[Path], list[Path]]]:
+    """The figures this script publishes: the fortunes model's training files, and the
+    held-out file whose two halves (:func:`halves`) choose λ and measure it."""
+    return {"tune: λ chosen on one held-out half, measured on the other": ([out / "train.txt"], [out / "test.txt"])}
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description="λ tuning benchmark")
     ap.add_argument("--k", type=int, default=3, help="k for the keystroke objective")
     ap.add_argument("--min-bucket-events", type=int, default=500)
     ap.add_argument("--no-results", action="store_true")
     args = ap.parse_args(argv)
-    out = HERE / "out" / "eval"
+    out = OUT
     model_path, test = out / "fortunes.nwm", out / "test.txt"
     if not model_path.exists():
         print("bench_tune: run bench/bench_eval.py first", file=sys.stderr)
         return 2
     model = nextword.load(model_path)
     msgs = [m for m in test.read_text(encoding="utf-8").splitlines() if m.strip()]
-    tune = [m for m in msgs if not is_held_out(m, 50, salt="tune:")]
-    final = [m for m in msgs if is_held_out(m, 50, salt="tune:")]
+    tune, final = halves(msgs)
 
     t0 = time.perf_counter()
     ev = events_of(model, tune)

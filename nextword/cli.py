@@ -19,7 +19,7 @@ from typing import Any, NoReturn, Sequence
 from . import __version__
 from ._progress import Progress
 from .corpus import FORMATS, iter_messages, open_sources
-from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT
+from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, PARALLEL_MIN_BYTES
 from .errors import InputDataError, InvalidArgumentError, NextwordError
 from .model import DEFAULT_LAMBDA, Model, load, train, train_texts
 from .paths import Labelled, check_outputs, check_writable
@@ -203,7 +203,7 @@ def _parser() -> _Parser:
     t.add_argument("--max-vocab", type=_positive, default=DEFAULT_MAX_VOCAB, help="keep this many words (default %(default)s)")
     t.add_argument("--format", choices=FORMATS, default="auto", help=_FORMAT_HELP)
     t.add_argument("--field", default="text", help="JSON Lines field holding the message (default %(default)s)")
-    t.add_argument("--workers", type=int, default=1, help="counting processes (0 = one per core; default 1)")
+    t.add_argument("--workers", type=int, default=None, help=f"counting processes (0 = one per core; default: one per core for inputs of {PARALLEL_MIN_BYTES >> 20} MB or more, else 1; same file either way)")
     t.add_argument("--memory-cap", metavar="SIZE", type=_size, help="bound the pair counts in memory, spilling to disk, e.g. 1GB (default: no bound)")
     t.add_argument("--max-size", metavar="SIZE", type=_size, help="prune pairs until the file fits, e.g. 4MB (default: no budget)")
     t.add_argument("--rule", choices=("count", "entropy"), default=DEFAULT_RULE, help="pruning rule with --max-size (default %(default)s)")

@@ -27,7 +27,7 @@ import numpy as np
 from .errors import InvalidArgumentError
 from .text import _HAS_LETTER, _TOKEN_RE, fold, fold_all, normalize
 
-__all__ = ["CountBuilder", "CountTables", "DEFAULT_MIN_COUNT", "DEFAULT_MAX_VOCAB"]
+__all__ = ["CountBuilder", "CountTables", "DEFAULT_MIN_COUNT", "DEFAULT_MAX_VOCAB", "PARALLEL_MIN_BYTES", "auto_workers"]
 
 #: Defaults sized for a phone keyboard: ~30,000 words covers everyday text (common practice).
 DEFAULT_MAX_VOCAB = 30_000
@@ -46,6 +46,10 @@ _TRAIL = {",": (), ";": (), ":": (), ")": (), '"': (), "'": (), "”": (), "’"
 _LEAD = {"(": (), '"': (), "'": (), "“": (), "‘": ()}
 #: distinct space-free pieces remembered before the cache starts afresh
 _PIECE_CACHE_MAX = 1 << 21
+#: below this much input (bytes on disk, all files together) ``workers=None`` counts in one
+#: process: starting workers, shipping their counts back and merging them costs more than
+#: splitting a few batches saves (measured in bench/RESULTS.md, "Training")
+PARALLEL_MIN_BYTES = 8 << 20
 
 
 @dataclass
@@ -571,6 +575,23 @@ class CountBuilder:
         if s[:1].upper() + s[1:] == s and fold(s[:1]) + s[1:] == key:
             return key
         return s
+
+
+def auto_workers(paths: Iterable[str]) -> int:
+    """Counting processes when none are asked for: one per core for inputs of at least
+    :data:`PARALLEL_MIN_BYTES` on disk (or of unknown size: standard input), else one.
+
+    Every setting writes the same model file, so this only picks the fastest.
+    """
+    total = 0
+    for name in paths:
+        if name == "-":
+            return os.cpu_count() or 1
+        try:
+            total += os.path.getsize(name)
+        except OSError:
+            continue  # reported by whoever opens it
+    return (os.cpu_count() or 1) if total >= PARALLEL_MIN_BYTES else 1
 
 
 def batch_chars(memory_cap: int | None) -> int:

@@ -24,7 +24,7 @@ import numpy as np
 
 from ._progress import DEFAULT_TICK, Progress
 from .corpus import Format, iter_messages, open_sources
-from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables, batch_chars, join_batches
+from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables, auto_workers, batch_chars, join_batches
 from .errors import InputDataError, InvalidArgumentError, ModelFormatError
 from .prune import DEFAULT_RULE
 from .store import (
@@ -795,7 +795,7 @@ def train(
     progress: bool | None = None,
     max_bytes: int | None = None,
     prune_rule: str = DEFAULT_RULE,
-    workers: int = 1,
+    workers: int | None = None,
     memory_cap: int | None = None,
 ) -> TrainReport:
     """Count the messages in ``inputs`` and write a model file to ``output_path``.
@@ -807,7 +807,9 @@ def train(
     fits, and whole words where they are worth less per byte (a dropped word becomes
     ``<unk>``; no count is lost, see :mod:`nextword.prune`). ``workers`` > 1 counts
     chunks of messages in that many processes (0 = one per core) and merges the partial
-    counts; the file is byte for byte the one a single process writes. ``memory_cap``
+    counts; the file is byte for byte the one a single process writes. The default
+    (``None``) picks the fastest: one per core for inputs of at least
+    :data:`~nextword.counts.PARALLEL_MIN_BYTES`, else one (:func:`~nextword.counts.auto_workers`). ``memory_cap``
     (bytes) bounds the pair counts held in memory by spilling sorted runs to a temporary
     directory (see :class:`~nextword.counts.CountBuilder`).
     ``skyband_k`` and ``skyband_min`` trade file size for query speed (see
@@ -816,6 +818,8 @@ def train(
     lam = _check_build_args(lam, skyband_k, skyband_min)
     sources = open_sources(inputs, fmt=fmt, field=field)
     t0 = time.perf_counter()
+    if workers is None:
+        workers = auto_workers(s.name for s in sources)
     if isinstance(workers, bool) or not isinstance(workers, int) or workers < 0:
         raise InvalidArgumentError(f"workers must be an integer >= 0, got {workers!r}")
     workers = workers or (os.cpu_count() or 1)

@@ -154,13 +154,11 @@ def _entropy_scores(tables: CountTables, lam: float) -> np.ndarray:
         combo_t = np.where(rest > 0, lam * combo_c / (combo_cv * np.where(rest > 0, rest, 1.0)), 0.0)
     row_len = (rows[1:] - rows[:-1])[combo_row]
     combo_f = np.zeros(len(combos))
+    reach = np.concatenate([[0], np.cumsum(row_len)])  # expansion before each combination
     start = 0
     while start < len(combos):  # F(t) = Σ_i p_i·ln(1 + c_i·t/p_i) over the whole row, in bounded chunks
-        stop = start + 1
-        acc = int(row_len[start])
-        while stop < len(combos) and acc + int(row_len[stop]) <= _EXPANSION:
-            acc += int(row_len[stop])
-            stop += 1
+        # the most combinations from start whose rows expand to at most _EXPANSION (at least one)
+        stop = max(start + 1, int(np.searchsorted(reach, reach[start] + _EXPANSION, side="right")) - 1)
         lens = row_len[start:stop]
         ends = np.cumsum(lens)
         idx = np.arange(int(ends[-1])) + np.repeat(rows[combo_row[start:stop]] - (ends - lens), lens)
