@@ -13,7 +13,8 @@ Keys (in the message box):
     Enter         send the message: the personal layer learns it, the box is cleared
     Shift+Enter   a new line inside the message
 Accepting replaces the partial word before the cursor and adds a space. Clicking a
-suggestion button does the same.
+suggestion button does the same. The choice row shows one button per suggestion the
+engine has (at most k) and "(no suggestion)" when the partial word matches nothing.
 
 Without MODEL, the first run trains the bundled demo corpus (examples/data/demo_messages.txt)
 into ``demo.nwm`` in the cache directory and later runs reuse it (retrained only when the
@@ -147,15 +148,23 @@ class TypingBox:
         self.frame.pack(fill="both", expand=True)
         self.frame.columnconfigure(0, weight=1)
 
+        # the choice row: one button per suggestion the engine has, in fixed grid columns so a
+        # hidden button (grid_remove) comes back in its place; empty slots are not shown at all
         row = ttk.Frame(self.frame)
         row.grid(row=0, column=0, columnspan=2, sticky="ew", pady=(0, 6))
         self.buttons: list[ttk.Button] = []
         for i in range(k):
             b = ttk.Button(row, style="Suggestion.TButton", command=functools.partial(self.accept, i), takefocus=False)
-            b.pack(side="left", padx=(0, 6))
+            b.grid(row=0, column=i, padx=(0, 6), sticky="w")
             self.buttons.append(b)
+        self.no_suggestion = ttk.Label(row, text="(no suggestion)", style="Status.TLabel")
+        self.no_suggestion.grid(row=0, column=k, sticky="w")
+        row.columnconfigure(k, weight=1)
         self.latency_label = ttk.Label(row, style="Latency.TLabel", width=9, anchor="e")
-        self.latency_label.pack(side="right")
+        self.latency_label.grid(row=0, column=k + 1, sticky="e")
+        # the row keeps a button's height when no button is shown: the message box never jumps
+        row.update_idletasks()
+        row.rowconfigure(0, minsize=self.buttons[0].winfo_reqheight())
 
         # the interface font, a little larger: a message box, not a code editor
         font = tkfont.nametofont("TkDefaultFont").copy()
@@ -196,11 +205,11 @@ class TypingBox:
         """The text the engine sees: everything before the insertion cursor."""
         return self.text.get("1.0", "insert")
 
-    def suggest(self, text: str) -> list[Suggestion]:
+    def suggest(self, typed: str) -> list[Suggestion]:
         """One query, to the layer when there is one (it mixes in the user's counts)."""
         if self.layer is not None:
-            return self.layer.suggest(text, self.k)
-        return self.model.suggest(text, self.k)
+            return self.layer.suggest(typed, self.k)
+        return self.model.suggest(typed, self.k)
 
     def schedule_refresh(self) -> None:
         """Re-rank once the current burst of events is handled (a paste is one query, not many)."""
@@ -211,21 +220,26 @@ class TypingBox:
     def refresh(self) -> None:
         """Ask the engine for the typed text and redraw the choice row with the latency."""
         self._pending = False
-        text = self.typed_text()
+        typed = self.typed_text()
         t0 = time.perf_counter()
-        self.suggestions = self.suggest(text)
+        self.suggestions = self.suggest(typed)
         self.last_latency = time.perf_counter() - t0
         for i, b in enumerate(self.buttons):
             if i < len(self.suggestions):
                 key = "Tab" if i == 0 else f"Alt+{i + 1}"
-                b.configure(text=f"{self.suggestions[i].word}   {key}", state="normal")
+                b.configure(text=f"{self.suggestions[i].word}   {key}")
+                b.grid()
             else:
-                b.configure(text="", state="disabled")
+                b.grid_remove()  # fewer suggestions than buttons: the rest are not shown, not left empty
+        if self.suggestions:
+            self.no_suggestion.grid_remove()
+        else:
+            self.no_suggestion.grid()
         self.latency_label.configure(text=format_latency(self.last_latency))
 
     def choice_words(self) -> list[str]:
-        """The words on the enabled buttons, in order (what the user sees)."""
-        return [str(b.cget("text")).rsplit("   ", 1)[0] for b in self.buttons if str(b.cget("state")) != "disabled"]
+        """The words on the shown buttons, in order (what the user sees)."""
+        return [str(b.cget("text")).rsplit("   ", 1)[0] for b in self.buttons if b.winfo_manager()]
 
     # -- actions ----------------------------------------------------------------------------------
 

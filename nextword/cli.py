@@ -8,6 +8,7 @@ Every command that prints results can print JSON instead (``--json``).
 from __future__ import annotations
 
 import argparse
+import errno
 import json
 import os
 import statistics
@@ -19,20 +20,55 @@ from . import __version__
 from ._progress import Progress
 from .corpus import FORMATS, iter_messages, open_sources
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT
-from .errors import InvalidArgumentError, NextwordError
+from .errors import InputDataError, InvalidArgumentError, NextwordError
 from .model import DEFAULT_LAMBDA, Model, load, train, train_texts
+from .paths import Labelled, check_outputs, check_writable
 from .text import fold
 
-__all__ = ["main"]
+__all__ = ["main", "build_parser"]
 
 
 class UsageError(Exception):
     """A command-line mistake: reported in one line, exit status 2."""
 
 
+class _HelpFormatter(argparse.RawDescriptionHelpFormatter):
+    """Keeps the epilog's example lines as written and adds "(default: X)" to every
+    option help that does not state its default already."""
+
+    def _get_help_string(self, action: argparse.Action) -> str:
+        text = action.help or ""
+        if "default" in text.lower() or action.default in (None, False, argparse.SUPPRESS):
+            return text
+        if not action.option_strings and action.nargs not in ("?", "*"):
+            return text  # a required positional has no default
+        return f"{text} (default: %(default)s)"
+
+
 class _Parser(argparse.ArgumentParser):
+    """Usage errors raise :class:`UsageError`; with ``intermixed`` set (every subcommand),
+    options may come anywhere among the positionals (``suggest MODEL -k 5 "the "``)."""
+
+    intermixed = False
+    _mixing = False
+
+    def __init__(self, *args: Any, **kwargs: Any) -> None:
+        kwargs.setdefault("formatter_class", _HelpFormatter)
+        super().__init__(*args, **kwargs)
+
     def error(self, message: str) -> NoReturn:
         raise UsageError(message)
+
+    def parse_known_args(  # type: ignore[override]
+        self, args: Sequence[str] | None = None, namespace: argparse.Namespace | None = None
+    ) -> tuple[argparse.Namespace, list[str]]:
+        if not self.intermixed or self._mixing:
+            return super().parse_known_args(args, namespace)
+        self._mixing = True  # parse_known_intermixed_args calls back into this method
+        try:
+            return self.parse_known_intermixed_args(args, namespace)
+        finally:
+            self._mixing = False
 
 
 def _lam(text: str) -> float:
@@ -75,106 +111,195 @@ def _percent(text: str) -> int:
     return value
 
 
+MAX_SIZE_BYTES = 1 << 50
+"""Largest size accepted for ``--max-size`` / ``--memory-cap`` (1 PiB): anything above is a typo."""
+
+
+def _size(text: str) -> str:
+    """Check a size such as ``4MB``, ``1.5MiB`` or ``800000`` (1 byte to 1 PiB); returns the text.
+
+    The text (not the number) is kept so commands parse it where they use it; a value
+    that overflows (hundreds of digits) or rounds to 0 bytes is refused here, in one line.
+    """
+    from .prune import parse_size
+
+    shown = text if len(text) <= 40 else text[:37] + "..."
+    try:
+        value = parse_size(text)
+    except InvalidArgumentError as e:
+        raise argparse.ArgumentTypeError(str(e).replace(repr(text), repr(shown))) from None
+    except (OverflowError, ValueError):
+        raise argparse.ArgumentTypeError(f"size {shown!r} is too large (at most {MAX_SIZE_BYTES:,} bytes, 1 PiB)") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"size {shown!r} is less than one byte")
+    if value > MAX_SIZE_BYTES:
+        raise argparse.ArgumentTypeError(f"size {shown!r} is too large (at most {MAX_SIZE_BYTES:,} bytes, 1 PiB)")
+    return text
+
+
+DEFAULT_TUNE_PERCENT = 10
+"""Share of the tune part when ``nextword split --tune-out`` is given without ``--tune-percent``."""
+
+_MODEL_HELP = "model file (.nwm) written by nextword train"
+_LAM_HELP = "override the model's λ, in [0, 1] (default: the λ stored in the model)"
+_FORMAT_HELP = "text (one message per line) or jsonl; auto = jsonl for .jsonl/.ndjson/.json names (default: %(default)s)"
+
+_EXAMPLES: dict[str, list[str]] = {
+    "train": [
+        "nextword train examples/data/demo_messages.txt -o demo.nwm",
+        "nextword train logs.jsonl.gz --field body --min-count 3 -o shop.nwm --json",
+        "nextword train big.txt -o small.nwm --max-size 4MB --rule count",
+    ],
+    "suggest": [
+        'nextword suggest demo.nwm "See you at the " "Can someone bring the tr"',
+        'nextword suggest demo.nwm -k 5 "thanks for " --json',
+    ],
+    "info": ["nextword info demo.nwm", "nextword info demo.nwm --verify --json"],
+    "eval": [
+        "nextword eval demo.nwm held.txt -k 1 3 5",
+        "nextword eval demo.nwm held.jsonl --train-data train.jsonl --report report/ --json",
+    ],
+    "split": [
+        "nextword split logs.txt --train-out train.txt --test-out test.txt",
+        "nextword split logs.jsonl --format jsonl --field body --test-percent 10 --tune-out tune.jsonl "
+        "--tune-percent 10 --train-out train.jsonl --test-out test.jsonl --json",
+        "nextword split test.txt --salt again --test-percent 50 --train-out a.txt --test-out b.txt",
+    ],
+    "tune": [
+        "nextword tune demo.nwm tune.txt --test-percent 30 -o tuned.nwm",
+        "nextword tune demo.nwm tune.txt --objective keystrokes -k 3 -o tuned.nwm --json",
+    ],
+    "personal": [
+        'nextword personal me.nwp --model demo.nwm learn "Meet me at Quarrington Lake"',
+        'nextword personal me.nwp --model demo.nwm suggest "see you at Qu" --json',
+    ],
+    "prune": [
+        "nextword prune demo.nwm -o small.nwm --max-size 2MB",
+        "nextword prune demo.nwm -o small.nwm --max-size 1.5MiB --rule count --json",
+    ],
+    "export": ["nextword export demo.nwm --arpa demo.arpa.gz", "nextword export demo.nwm --arpa demo.arpa --lam 0.7"],
+    "serve": ["nextword serve demo.nwm --users users/", "nextword serve demo.nwm --tcp 127.0.0.1:0"],
+    "live": ["nextword live demo.nwm", "nextword live demo.nwm -k 3 --lam 0.8"],
+}
+"""Example lines shown under each command's --help (tests parse every one)."""
+
+
 def _parser() -> _Parser:
-    p = _Parser(prog="nextword", description="Train and query compact next-word suggestion models.")
+    p = _Parser(
+        prog="nextword",
+        description="Train and query compact next-word suggestion models.",
+        epilog="Options may come before, between or after the positionals; `nextword COMMAND --help` describes each command.",
+    )
     p.add_argument("--version", action="version", version=f"nextword {__version__}")
     sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
 
     t = sub.add_parser("train", help="count a corpus and write a model file")
     t.add_argument("inputs", nargs="+", metavar="INPUT", help="text or JSON Lines files (.gz ok); - for stdin")
-    t.add_argument("-o", "--output", required=True, help="model file to write (atomically)")
+    t.add_argument("-o", "--output", required=True, help="model file to write (atomically; never over an input)")
     t.add_argument("--lam", type=_lam, default=DEFAULT_LAMBDA, help=f"bigram weight λ (default {DEFAULT_LAMBDA})")
     t.add_argument("--min-count", type=_positive, default=DEFAULT_MIN_COUNT, help="drop rarer words (default %(default)s)")
     t.add_argument("--max-vocab", type=_positive, default=DEFAULT_MAX_VOCAB, help="keep this many words (default %(default)s)")
-    t.add_argument("--format", choices=FORMATS, default="auto", help="input format (default: by file name)")
+    t.add_argument("--format", choices=FORMATS, default="auto", help=_FORMAT_HELP)
     t.add_argument("--field", default="text", help="JSON Lines field holding the message (default %(default)s)")
     t.add_argument("--workers", type=int, default=1, help="counting processes (0 = one per core; default 1)")
-    t.add_argument("--memory-cap", metavar="SIZE", help="bound the pair counts in memory, spilling to disk (e.g. 1GB)")
-    t.add_argument("--max-size", metavar="SIZE", help="prune pairs until the file fits, e.g. 4MB")
-    t.add_argument("--rule", choices=("count", "entropy"), default="entropy", help="pruning rule with --max-size")
+    t.add_argument("--memory-cap", metavar="SIZE", type=_size, help="bound the pair counts in memory, spilling to disk, e.g. 1GB (default: no bound)")
+    t.add_argument("--max-size", metavar="SIZE", type=_size, help="prune pairs until the file fits, e.g. 4MB (default: no budget)")
+    t.add_argument("--rule", choices=("count", "entropy"), default="entropy", help="which pairs go first with --max-size")
     t.add_argument("--json", action="store_true", help="print the training report as JSON")
 
     s = sub.add_parser("suggest", help="print suggestions for typed texts")
-    s.add_argument("model")
+    s.add_argument("model", help=_MODEL_HELP)
     s.add_argument("texts", nargs="*", metavar="TEXT", help="typed text; none = one per line on stdin")
     s.add_argument("-k", type=_positive, default=3, help="suggestions per text (default %(default)s)")
-    s.add_argument("--lam", type=_lam, default=None, help="override the model's λ")
+    s.add_argument("--lam", type=_lam, default=None, help=_LAM_HELP)
     s.add_argument("--time", action="store_true", help="time each query (median of repeated calls)")
     s.add_argument("--json", action="store_true", help="print JSON")
 
     i = sub.add_parser("info", help="describe a model file")
-    i.add_argument("model")
-    i.add_argument("--verify", action="store_true", help="read and check the whole file")
+    i.add_argument("model", help=_MODEL_HELP)
+    i.add_argument("--verify", action="store_true", help="read and check every section of the file, not only what opening it needs")
     i.add_argument("--json", action="store_true", help="print JSON")
 
     e = sub.add_parser("eval", help="measure keystroke savings, accuracy and latency on typing logs")
-    e.add_argument("model")
+    e.add_argument("model", help=_MODEL_HELP)
     e.add_argument("logs", nargs="+", metavar="LOG", help="held-out typing logs: text or JSON Lines (.gz ok)")
     e.add_argument("-k", type=_positive, nargs="+", default=[1, 3, 5], help="suggestion counts (default 1 3 5)")
-    e.add_argument("--lam", type=_lam, default=None, help="override the model's λ")
-    e.add_argument("--format", choices=FORMATS, default="auto", help="log format (default: by file name)")
+    e.add_argument("--lam", type=_lam, default=None, help=_LAM_HELP)
+    e.add_argument("--format", choices=FORMATS, default="auto", help=_FORMAT_HELP)
     e.add_argument("--field", default="text", help="JSON Lines field holding the message (default %(default)s)")
     e.add_argument("--no-baselines", action="store_true", help="skip the λ = 0 and λ = 0.999 runs")
-    e.add_argument("--train-data", nargs="+", metavar="FILE", help="training text: also time the plain-dict and nltk baselines")
+    e.add_argument("--train-data", nargs="+", metavar="FILE", help="training text: also time the plain-dict and nltk baselines (default: none, no timing baselines)")
     e.add_argument("--baseline-queries", type=_positive, default=200, help="queries timed per slow baseline (default %(default)s)")
-    e.add_argument("--report", metavar="DIR", help="write report.md and plots into DIR")
+    e.add_argument("--report", metavar="DIR", help="write report.md and plots into DIR, created if missing (default: none)")
     e.add_argument("--json", action="store_true", help="print JSON")
 
-    sp = sub.add_parser("split", help="split logs into train and held-out parts by a hash of each message")
-    sp.add_argument("logs", nargs="+", metavar="LOG")
-    sp.add_argument("--test-percent", type=_percent, default=10, help="share held out (default %(default)s)")
-    sp.add_argument("--train-out", required=True, metavar="FILE", help="where the training part goes")
-    sp.add_argument("--test-out", required=True, metavar="FILE", help="where the held-out part goes")
-    sp.add_argument("--format", choices=FORMATS, default="auto")
-    sp.add_argument("--field", default="text")
+    sp = sub.add_parser("split", help="split logs into train, tune and test parts by a hash of each message")
+    sp.add_argument("logs", nargs="+", metavar="LOG", help="text or JSON Lines files (.gz ok); - for stdin")
+    sp.add_argument("--test-percent", type=_percent, default=10,
+                    help="share of messages in the test part, by the hash rule every benchmark uses (default %(default)s)")
+    sp.add_argument("--train-out", required=True, metavar="FILE", help="where the training part goes (.gz = compressed)")
+    sp.add_argument("--test-out", required=True, metavar="FILE", help="where the test (held-out) part goes (.gz = compressed)")
+    sp.add_argument("--tune-out", metavar="FILE",
+                    help="also write a tune part for nextword tune, carved from the non-test messages (default: none)")
+    sp.add_argument("--tune-percent", type=_percent, default=None, metavar="P",
+                    help=f"share of all messages in the tune part (default {DEFAULT_TUNE_PERCENT} with --tune-out)")
+    sp.add_argument("--salt", default="", metavar="TEXT",
+                    help="text hashed with every message: another salt gives an independent split, e.g. to re-split "
+                    "a file that was itself held out (default: empty, the benchmarks' rule)")
+    sp.add_argument("--format", choices=FORMATS, default="auto", help=_FORMAT_HELP)
+    sp.add_argument("--field", default="text", help="JSON Lines field holding the message (default %(default)s)")
     sp.add_argument("--json", action="store_true", help="print the counts as JSON")
 
     tu = sub.add_parser("tune", help="choose λ on held-out text (perplexity by EM, keystrokes by search, per history count)")
-    tu.add_argument("model")
+    tu.add_argument("model", help=_MODEL_HELP)
     tu.add_argument("heldout", nargs="+", metavar="HELDOUT", help="held-out text or JSON Lines (.gz ok), never the test text")
     tu.add_argument("-k", type=_positive, default=3, help="suggestions for the keystroke objective (default %(default)s)")
-    tu.add_argument("--objective", choices=("perplexity", "keystrokes"), default="perplexity")
+    tu.add_argument("--objective", choices=("perplexity", "keystrokes"), default="perplexity",
+                    help="what the chosen λ optimises: held-out perplexity (EM) or keystroke savings at -k (search)")
     tu.add_argument("--buckets", action="store_true", help="fit λ per history-count bucket (perplexity objective)")
     tu.add_argument("--no-ksr-curve", action="store_true", help="skip the keystroke simulation curve (perplexity objective)")
     tu.add_argument("--min-bucket-events", type=_positive, default=500, help="held-out tokens per bucket (default %(default)s)")
     tu.add_argument("--test-percent", type=int, default=0, metavar="P",
-                    help="hold P%% of HELDOUT out of tuning (by hash) and report before/after on it")
-    tu.add_argument("-o", "--output", metavar="NEW_MODEL", help="write the model with the chosen λ here (atomically)")
-    tu.add_argument("--format", choices=FORMATS, default="auto")
-    tu.add_argument("--field", default="text")
-    tu.add_argument("--report", metavar="DIR", help="write tune.md and curve plots into DIR")
+                    help="hold P%% of HELDOUT out of tuning (by hash) and report before/after on it "
+                    "(default 0: tune and measure on the same text)")
+    tu.add_argument("-o", "--output", metavar="NEW_MODEL", help="write the model with the chosen λ here, atomically, never over its input (default: only report)")
+    tu.add_argument("--format", choices=FORMATS, default="auto", help=_FORMAT_HELP)
+    tu.add_argument("--field", default="text", help="JSON Lines field holding the message (default %(default)s)")
+    tu.add_argument("--report", metavar="DIR", help="write tune.md and curve plots into DIR, created if missing (default: none)")
     tu.add_argument("--json", action="store_true", help="print JSON")
 
     pe = sub.add_parser("personal", help="a user's personal layer: learn, forget, block, suggest, info")
     pe.add_argument("layer", metavar="LAYER_FILE", help="the layer's file (created if missing; every change saved at once)")
-    pe.add_argument("--model", required=True, help="the base model")
-    pe.add_argument("action", choices=("learn", "forget", "clear", "block", "unblock", "suggest", "info"))
+    pe.add_argument("--model", required=True, help="the base model (never written)")
+    pe.add_argument("action", choices=("learn", "forget", "clear", "block", "unblock", "suggest", "info"),
+                    help="what to do with the layer")
     pe.add_argument("items", nargs="*", metavar="TEXT", help="messages to learn, words, or typed texts")
     pe.add_argument("-k", type=_positive, default=3, help="suggestions per text (default %(default)s)")
     pe.add_argument("--min-uses", type=_positive, default=2, help="uses before a new word is offered (new layers)")
-    pe.add_argument("--half-life-messages", type=float, default=None, help="decay (new layers)")
-    pe.add_argument("--half-life-days", type=float, default=None, help="decay by time (new layers)")
+    pe.add_argument("--half-life-messages", type=float, default=None, help="decay: a message's weight halves after this many newer ones (new layers; default: no decay)")
+    pe.add_argument("--half-life-days", type=float, default=None, help="decay: a message's weight halves after this many days (new layers; default: no decay)")
     pe.add_argument("--json", action="store_true", help="print JSON")
 
     pr = sub.add_parser("prune", help="drop the least valuable pairs until the model fits a size budget")
-    pr.add_argument("model")
-    pr.add_argument("-o", "--output", required=True, help="the pruned model (written atomically)")
-    pr.add_argument("--max-size", required=True, metavar="SIZE", help="budget, e.g. 4MB, 1.5MiB, 800000")
+    pr.add_argument("model", help=_MODEL_HELP)
+    pr.add_argument("-o", "--output", required=True, help="the pruned model (written atomically, never over its input)")
+    pr.add_argument("--max-size", required=True, metavar="SIZE", type=_size, help="budget, e.g. 4MB, 1.5MiB, 800000")
     pr.add_argument("--rule", choices=("count", "entropy"), default="entropy", help="which pairs go first (default %(default)s)")
-    pr.add_argument("--json", action="store_true")
+    pr.add_argument("--json", action="store_true", help="print the result as JSON")
 
     ex = sub.add_parser("export", help="export a model to another format")
-    ex.add_argument("model")
-    ex.add_argument("--arpa", required=True, metavar="FILE", help="write the ARPA back-off text (.gz ok)")
-    ex.add_argument("--lam", type=_lam, default=None, help="override the model's λ")
+    ex.add_argument("model", help=_MODEL_HELP)
+    ex.add_argument("--arpa", required=True, metavar="FILE", help="write the ARPA back-off text here (.gz = compressed; never over the model)")
+    ex.add_argument("--lam", type=_lam, default=None, help=_LAM_HELP)
+    ex.add_argument("--json", action="store_true", help="print the result as JSON")
 
     sv = sub.add_parser("serve", help="answer suggest/learn/forget requests over a local socket (JSON lines)")
-    sv.add_argument("model")
+    sv.add_argument("model", help=_MODEL_HELP)
     where = sv.add_mutually_exclusive_group()
     where.add_argument("--socket", metavar="PATH", help="Unix socket to listen on (default $XDG_RUNTIME_DIR/nextword.sock, else ./nextword.sock)")
-    where.add_argument("--tcp", metavar="HOST:PORT", help="listen on TCP instead, loopback only (port 0 = any free port)")
+    where.add_argument("--tcp", metavar="HOST:PORT", help="listen on TCP instead, loopback only (port 0 = any free port; default: the Unix socket)")
     sv.add_argument("--allow-non-loopback", action="store_true", help="let --tcp listen on a non-loopback address (no authentication!)")
-    sv.add_argument("--users", metavar="DIR", help="keep one personal layer file per user here (none: personal requests are refused)")
+    sv.add_argument("--users", metavar="DIR", help="keep one personal layer file per user here (default: none, personal requests are refused)")
     sv.add_argument("--max-line-bytes", type=_positive, default=64 * 1024, help="longest request line (default %(default)s)")
     sv.add_argument("--request-timeout", type=_seconds, default=10.0, help="seconds to finish sending a request (default %(default)s)")
     sv.add_argument("--idle-timeout", type=_seconds, default=0.0, help="close silent connections after this many seconds (default 0 = never)")
@@ -183,10 +308,20 @@ def _parser() -> _Parser:
     sv.add_argument("--grace", type=_seconds, default=5.0, help="seconds a stop waits for requests in progress (default %(default)s)")
 
     lv = sub.add_parser("live", help="type in the terminal and watch suggestions update on every key")
-    lv.add_argument("model")
+    lv.add_argument("model", help=_MODEL_HELP)
     lv.add_argument("-k", type=_positive, default=5, help="suggestions shown (default %(default)s)")
-    lv.add_argument("--lam", type=_lam, default=None, help="override the model's λ")
+    lv.add_argument("--lam", type=_lam, default=None, help=_LAM_HELP)
+
+    for name, command in sub.choices.items():
+        command.intermixed = True
+        if name in _EXAMPLES:
+            command.epilog = "examples:\n" + "\n".join(f"  {line}" for line in _EXAMPLES[name])
     return p
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The ``nextword`` argument parser (for documentation tools and tests; :func:`main` runs it)."""
+    return _parser()
 
 
 def _cmd_train(args: argparse.Namespace) -> int:
@@ -302,6 +437,9 @@ def _cmd_eval(args: argparse.Namespace) -> int:
     model = load(args.model, lam=args.lam)
     ks = sorted(set(args.k))
     logs = [(s.name, list(iter_messages([s]))) for s in open_sources(args.logs, fmt=args.format, field=args.field)]
+    for name, msgs in logs:
+        if not any(m.strip() for m in msgs):
+            raise InputDataError(f"{name}: no messages to evaluate (the log is empty or blank)")
     bar = Progress("evaluating")
     overall, per_log = evaluate(model, logs, ks, progress=lambda n: bar.update(0, 0, f"{n:,} messages"))
     bar.done()
@@ -359,16 +497,47 @@ def _scratch() -> str:
 def _cmd_split(args: argparse.Namespace) -> int:
     from .evaluate import split_messages
 
+    if args.tune_percent is not None and not args.tune_out:
+        raise UsageError("--tune-percent sets the tune part's share; give --tune-out FILE too")
+    tune_percent = (DEFAULT_TUNE_PERCENT if args.tune_percent is None else args.tune_percent) if args.tune_out else 0
+    if args.test_percent + tune_percent > 99:
+        raise UsageError(
+            f"--test-percent {args.test_percent} and --tune-percent {tune_percent} leave no training part (at most 99 together)"
+        )
     counts = split_messages(
         open_sources(args.logs, fmt=args.format, field=args.field),
         args.train_out,
         args.test_out,
         test_percent=args.test_percent,
+        salt=args.salt,
+        tune_out=args.tune_out,
+        tune_percent=tune_percent,
     )
+    total = sum(counts.values())
+    parts = [("train", args.train_out), ("test", args.test_out)] + ([("tune", args.tune_out)] if args.tune_out else [])
+    for part, path in parts:
+        if counts[part] == 0:
+            why = (
+                "; every message hashed to one side: were these messages split by the same rule before? "
+                "--salt TEXT gives an independent split"
+                if total
+                else ""
+            )
+            label = "training" if part == "train" else part
+            print(f"nextword: warning: the {label} part ({path}) is empty: 0 of {total:,} messages{why}", file=sys.stderr)
     if args.json:
-        print(json.dumps(counts))
+        out: dict[str, Any] = {
+            "inputs": args.logs,
+            "messages": total,
+            "salt": args.salt,
+            "test_percent": args.test_percent,
+            "tune_percent": tune_percent,
+            **{part: {"path": path, "messages": counts[part]} for part, path in parts},
+        }
+        print(json.dumps(out, ensure_ascii=False))
     else:
-        print(f"wrote {counts['train']:,} messages to {args.train_out} and {counts['test']:,} to {args.test_out}")
+        tune = f", {counts['tune']:,} to {args.tune_out}" if args.tune_out else ""
+        print(f"wrote {counts['train']:,} messages to {args.train_out}{tune} and {counts['test']:,} to {args.test_out}")
     return 0
 
 
@@ -493,7 +662,7 @@ def _tune_report(out_dir: str, result: dict[str, Any]) -> None:
         ax.set_xlabel("λ")
         ax.set_ylabel("held-out perplexity")
         fig.tight_layout()
-        fig.savefig(out / "perplexity.png", dpi=120)
+        _save_png(fig, out / "perplexity.png")
         plt.close(fig)
         lines += ["", "![perplexity](perplexity.png)"]
         if result["ksr_curve"]:
@@ -503,10 +672,21 @@ def _tune_report(out_dir: str, result: dict[str, Any]) -> None:
             ax.set_xlabel("λ")
             ax.set_ylabel(f"KSR@{result['k']} (%)")
             fig.tight_layout()
-            fig.savefig(out / "ksr.png", dpi=120)
+            _save_png(fig, out / "ksr.png")
             plt.close(fig)
             lines += ["", "![ksr](ksr.png)"]
     atomic_write(out / "tune.md", [("\n".join(lines) + "\n").encode("utf-8")])
+
+
+def _save_png(fig: Any, path: Any) -> None:
+    """Write a matplotlib figure atomically, like every other output."""
+    import io
+
+    from .store import atomic_write
+
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=120)
+    atomic_write(path, [buf.getvalue()])
 
 
 def _cmd_personal(args: argparse.Namespace) -> int:
@@ -586,7 +766,11 @@ def _cmd_export(args: argparse.Namespace) -> int:
 
     model = load(args.model)
     write_arpa(model, args.arpa, lam=args.lam)
-    print(f"wrote {args.arpa}: {model.n_words + 3:,} unigrams, {model.n_bigrams:,} bigrams")
+    out = {"model": args.model, "output": args.arpa, "unigrams": model.n_words + 3, "bigrams": model.n_bigrams}
+    if args.json:
+        print(json.dumps(out))
+    else:
+        print(f"wrote {args.arpa}: {out['unigrams']:,} unigrams, {out['bigrams']:,} bigrams")
     return 0
 
 
@@ -623,17 +807,80 @@ def _cmd_serve(args: argparse.Namespace) -> int:
 
 
 def _cmd_live(args: argparse.Namespace) -> int:
-    from ._live import run_live
+    from .live import run_live
 
     if not (sys.stdin.isatty() and sys.stdout.isatty()):
         raise UsageError("live needs a terminal (stdin and stdout must be a TTY)")
     return run_live(load(args.model), k=args.k, lam=args.lam)
 
 
+_REPORT_FILES = {"eval": ("report.md", "ksr.png", "latency.png"), "tune": ("tune.md", "perplexity.png", "ksr.png")}
+
+
+def _io_paths(args: argparse.Namespace) -> tuple[list[Labelled], list[Labelled], list[Labelled]]:
+    """(inputs, output files, output directories) of a command, for the one rule on outputs:
+    an output is never an input nor another output (``nextword.paths``)."""
+    cmd = args.command
+    ins: list[Labelled] = []
+    outs: list[Labelled] = []
+    dirs: list[Labelled] = []
+    if cmd == "train":
+        ins = [("corpus", x) for x in args.inputs]
+        outs = [("model", args.output)]
+    elif cmd == "split":
+        ins = [("log", x) for x in args.logs]
+        outs = [("training part", args.train_out), ("test part", args.test_out)]
+        outs += [("tune part", args.tune_out)] if args.tune_out else []
+    elif cmd == "tune":
+        ins = [("model", args.model)] + [("held-out text", x) for x in args.heldout]
+        outs = [("tuned model", args.output)] if args.output else []
+    elif cmd == "prune":
+        ins, outs = [("model", args.model)], [("pruned model", args.output)]
+    elif cmd == "export":
+        ins, outs = [("model", args.model)], [("ARPA file", args.arpa)]
+    elif cmd == "eval":
+        ins = [("model", args.model)] + [("log", x) for x in args.logs] + [("training text", x) for x in args.train_data or []]
+    elif cmd == "personal":
+        ins, outs = [("base model", args.model)], [("personal layer", args.layer)]
+    if cmd in _REPORT_FILES and args.report:
+        dirs = [("report directory", args.report)]
+    return ins, outs, dirs
+
+
+def _check_io(args: argparse.Namespace) -> list[Labelled]:
+    """Refuse, before any work, outputs that would destroy an input or another output, or
+    that cannot be written; returns every output file (for naming write errors)."""
+    ins, outs, dirs = _io_paths(args)
+    report: list[Labelled] = [(f"report file {name}", os.path.join(d, name)) for _, d in dirs for name in _REPORT_FILES[args.command]]
+    check_outputs(ins, outs + report)
+    for what, path in outs:
+        if args.command != "personal" or not os.path.exists(path):  # an existing layer may be only read
+            check_writable(path, what)
+    for what, path in dirs:
+        check_writable(path, what, directory=True)
+    return outs + report
+
+
+_FULL = {errno.ENOSPC, errno.EDQUOT, errno.EFBIG, errno.EROFS}
+
+
+def _user_path(filename: str, outputs: list[Labelled]) -> str:
+    """The output the user named, for an OS error on the atomic writer's temporary file
+    (``DIR/.NAME.xxxx.tmp``), else ``filename`` itself."""
+    folder, base = os.path.split(filename)
+    for _, out in outputs:
+        out_folder, out_base = os.path.split(os.fspath(out))
+        if base.startswith(f".{out_base}.") and base.endswith(".tmp") and os.path.abspath(folder or ".") == os.path.abspath(out_folder or "."):
+            return os.fspath(out)
+    return filename
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``nextword`` console script; returns the exit status."""
+    outputs: list[Labelled] = []
     try:
         args = _parser().parse_args(argv)
+        outputs = _check_io(args)
         handler = {
             "train": _cmd_train,
             "suggest": _cmd_suggest,
@@ -661,7 +908,12 @@ def main(argv: Sequence[str] | None = None) -> int:
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 1
     except OSError as e:
-        where = f"{e.filename}: " if e.filename else ""
+        if e.filename:
+            where = f"{_user_path(str(e.filename), outputs)}: "
+        elif e.errno in _FULL and outputs:  # e.g. a write() on a full disk carries no file name
+            where = f"cannot write {' or '.join(os.fspath(p) for _, p in outputs)}: "
+        else:
+            where = ""
         print(f"nextword: error: {where}{e.strerror or e}", file=sys.stderr)
         return 1
     except KeyboardInterrupt:

@@ -313,31 +313,84 @@ def is_held_out(message: str, test_percent: int, *, salt: str = "") -> bool:
     return int.from_bytes(digest[:8], "big") % 100 < test_percent
 
 
+TUNE_SALT = "split-tune:"
+"""Prefix of the salt that carves the tune part out of what the test part leaves (see :func:`split_messages`)."""
+
+
+def _hash64(message: str, salt: str) -> int:
+    return int.from_bytes(hashlib.sha1((salt + message).encode("utf-8")).digest()[:8], "big")
+
+
 def split_messages(
     sources: list[Source],
     train_out: str | os.PathLike[str],
     test_out: str | os.PathLike[str],
     *,
     test_percent: int = 10,
+    salt: str = "",
+    tune_out: str | os.PathLike[str] | None = None,
+    tune_percent: int = 0,
 ) -> dict[str, int]:
-    """Copy each input line to ``train_out`` or ``test_out`` by :func:`is_held_out`.
+    """Copy each input line to ``train_out``, ``test_out`` or ``tune_out`` by a hash of its message.
 
-    Lines keep their original bytes (JSON Lines keep their other fields); an output
-    whose name ends in ``.gz`` is gzip-compressed. Both files are written atomically.
-    Returns the number of messages in each part.
+    The test part is exactly the messages ``is_held_out(message, test_percent, salt=salt)``
+    selects — with the default empty salt, the same rule every benchmark uses, so a
+    held-out file made here agrees with theirs. The tune part (only with ``tune_out``)
+    is carved from the rest by an independent hash (salt ``TUNE_SALT + salt``): a
+    message not held out goes to tune when that hash modulo ``100 - test_percent`` is
+    below ``tune_percent``, i.e. with probability ``tune_percent / (100 - test_percent)``,
+    so the tune part is ``tune_percent`` % of the whole. Everything else is training.
+
+    Splitting a file that was itself held out by the same rule puts every message on
+    one side (they all hash below the first cut); a different ``salt`` gives an
+    independent split. Blank messages are dropped; lines keep their original bytes
+    (JSON Lines keep their other fields); an output whose name ends in ``.gz`` is
+    gzip-compressed. Outputs must differ from each other and from the inputs, and
+    are written atomically. Returns the number of messages in each part
+    (``{"train": ..., "tune": ..., "test": ...}``; ``tune`` is 0 without ``tune_out``).
     """
+    from .paths import check_outputs
+
     if isinstance(test_percent, bool) or not isinstance(test_percent, int) or not 1 <= test_percent <= 99:
         raise InvalidArgumentError(f"test_percent must be an integer in [1, 99], got {test_percent!r}")
-    parts: dict[str, list[bytes]] = {"train": [], "test": []}
+    if isinstance(tune_percent, bool) or not isinstance(tune_percent, int) or not 0 <= tune_percent <= 98:
+        raise InvalidArgumentError(f"tune_percent must be an integer in [0, 98], got {tune_percent!r}")
+    if not isinstance(salt, str):
+        raise InvalidArgumentError(f"salt must be text, got {salt!r}")
+    if tune_out is None and tune_percent:
+        raise InvalidArgumentError(f"tune_percent={tune_percent} needs tune_out (where the tune part goes)")
+    if tune_out is not None and not tune_percent:
+        raise InvalidArgumentError("tune_out needs tune_percent >= 1 (the tune part's share)")
+    if test_percent + tune_percent > 99:
+        raise InvalidArgumentError(
+            f"test_percent + tune_percent must leave some training text, got {test_percent} + {tune_percent}"
+        )
+    outputs: list[tuple[str, str | os.PathLike[str]]] = [("training part", train_out), ("test part", test_out)]
+    if tune_out is not None:
+        outputs.append(("tune part", tune_out))
+    check_outputs([("input", s.name) for s in sources], outputs)
+    rest = 100 - test_percent
+    tune_salt = TUNE_SALT + salt
+    parts: dict[str, list[bytes]] = {"train": [], "tune": [], "test": []}
     for text, line in iter_records(sources):
         if not text.strip():
             continue
         if not line.endswith(b"\n"):
             line += b"\n"
-        parts["test" if is_held_out(text, test_percent) else "train"].append(line)
-    for name, path in (("train", train_out), ("test", test_out)):
+        if is_held_out(text, test_percent, salt=salt):
+            part = "test"
+        elif tune_percent and _hash64(text, tune_salt) % rest < tune_percent:
+            part = "tune"
+        else:
+            part = "train"
+        parts[part].append(line)
+    named = {"train": train_out, "test": test_out, "tune": tune_out}
+    for name in ("train", "tune", "test"):
+        path = named[name]
+        if path is None:
+            continue
         data = b"".join(parts[name])
         if os.fspath(path).endswith(".gz"):
             data = gzip.compress(data, mtime=0)
         atomic_write(path, [data])
-    return {"train": len(parts["train"]), "test": len(parts["test"])}
+    return {"train": len(parts["train"]), "tune": len(parts["tune"]), "test": len(parts["test"])}

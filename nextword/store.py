@@ -24,6 +24,7 @@ import numpy as np
 
 from .counts import CountTables
 from .errors import InvalidArgumentError, ModelFormatError
+from .paths import check_new_output as check_new_output  # re-exported: callers of the store use it
 
 __all__ = [
     "MAGIC",
@@ -631,13 +632,6 @@ def write_model(
     """Build the model arrays from ``tables`` and write them atomically to ``path``."""
     sections = build_sections(tables, lam=lam, skyband_k=skyband_k, skyband_min=skyband_min)
     atomic_write(path, encode_sections(sections, minor=2 if tables.history is not None else 0))
-
-
-def check_new_output(src: str | os.PathLike[str], dst: str | os.PathLike[str], what: str) -> None:
-    """Refuse to write a model derived from ``src`` over ``src`` itself: the source is
-    read through a memory map while the new file is built, and must survive a failure."""
-    if os.path.exists(dst) and os.path.samefile(src, dst):
-        raise InvalidArgumentError(f"{os.fspath(dst)}: the {what} must go to a new file, not over its input")
 
 
 def rewrite_model(

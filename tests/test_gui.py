@@ -220,6 +220,7 @@ def test_typing_accepting_sending_and_screenshot(root: Any, xdisplay: str, model
     button.event_generate("<Enter>", x=x, y=y)
     button.event_generate("<ButtonPress-1>", x=x, y=y)
     button.event_generate("<ButtonRelease-1>", x=x, y=y)
+    button.event_generate("<Leave>")  # the pointer moves on: no hover highlight left behind
     root.update()
     assert _box(app) == "Repair night on " + second + " "
 
@@ -263,19 +264,55 @@ def test_without_a_layer_suggestions_come_from_the_model(root: Any, model_path: 
     assert _box(app) == "" and app.history.size() == 1
 
 
-def test_fewer_suggestions_than_buttons_disable_the_rest(root: Any, model_path: Path) -> None:
+def _shown(app: Any) -> list[bool]:
+    """Which choice-row buttons are on the screen (mapped and viewable), as Tk reports it."""
+    return [bool(b.winfo_ismapped()) and bool(b.winfo_viewable()) for b in app.buttons]
+
+
+def test_fewer_suggestions_than_buttons_show_only_that_many(root: Any, model_path: Path) -> None:
     model = nextword.load(model_path)
     app = typing_box.TypingBox(root, model, k=5)
     root.update()
+    assert _shown(app) == [True] * 5
+    box_top = app.text.winfo_y()
     prefix = "pri"  # a prefix matching fewer than 5 vocabulary words in the demo model
     _type(app, prefix)
     want = _words(model.suggest(prefix, 5))
-    assert 0 < len(want) < 5
+    n = len(want)
+    assert 0 < n < 5
+    root.update()
+    # only n buttons on the screen, no empty ones; they carry the engine's words in order
+    assert _shown(app) == [True] * n + [False] * (5 - n)
     assert app.choice_words() == want
-    assert [str(b.cget("state")) for b in app.buttons[len(want):]] == ["disabled"] * (5 - len(want))
-    # a shortcut for an empty slot changes nothing
+    assert [str(b.cget("text")).split("   ")[0] for b in app.buttons[:n]] == want
+    assert not app.no_suggestion.winfo_ismapped()
+    # a shortcut for a slot that is not shown changes nothing
     _press(app, "<Alt-Key-5>")
     assert _box(app) == prefix
+    # a click on the last shown button accepts its word
+    button = app.buttons[n - 1]
+    x, y = button.winfo_width() // 2, button.winfo_height() // 2
+    button.event_generate("<Enter>", x=x, y=y)
+    button.event_generate("<ButtonPress-1>", x=x, y=y)
+    button.event_generate("<ButtonRelease-1>", x=x, y=y)
+    button.event_generate("<Leave>")  # the pointer moves on: no hover highlight left behind
+    root.update()
+    assert _box(app) == want[n - 1] + " "
+    # after a completed word all five are back, left to right in their own places
+    after = _words(model.suggest(_box(app), 5))
+    assert len(after) == 5 and app.choice_words() == after
+    assert _shown(app) == [True] * 5
+    xs = [b.winfo_x() for b in app.buttons]
+    assert xs == sorted(xs) and len(set(xs)) == 5
+    # a prefix nothing matches: no buttons, a plain "(no suggestion)", the message box stays put
+    _type(app, "zqxj")
+    root.update()
+    assert model.suggest(_box(app), 5) == [] and app.choice_words() == []
+    assert _shown(app) == [False] * 5
+    assert app.no_suggestion.winfo_ismapped() and str(app.no_suggestion.cget("text")) == "(no suggestion)"
+    assert app.text.winfo_y() == box_top
+    _press(app, "<Tab>")
+    assert _box(app) == want[n - 1] + " zqxj"
 
 
 def test_bad_k_is_refused(root: Any, model_path: Path) -> None:
@@ -285,6 +322,14 @@ def test_bad_k_is_refused(root: Any, model_path: Path) -> None:
 
 
 # -- no display needed ------------------------------------------------------------------------
+
+
+def test_the_query_parameter_is_named_typed() -> None:
+    # our own name for the text the engine is asked about (see tests/test_naming.py)
+    import inspect
+
+    for fn in (typing_box.TypingBox.suggest, typing_box.accepted_text):
+        assert "typed" in inspect.signature(fn).parameters, fn
 
 
 def test_accepted_text_replaces_the_partial_word() -> None:
