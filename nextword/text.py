@@ -155,11 +155,22 @@ class Context:
     ``previous`` is the surface of the last complete word in the same sentence, or
     :data:`BOS` at a sentence start, or :data:`UNK` right after a number or symbol.
     ``prefix`` is the partial word being typed (empty when the cursor follows a
-    separator), as typed, NFC-normalised.
+    separator), as typed, NFC-normalised. ``before`` is the token before ``previous``
+    in the same sentence, read by the same rules (a surface, :data:`UNK`, or :data:`BOS`
+    when ``previous`` opens the sentence), and None when ``previous`` is :data:`BOS`:
+    the two-word context of an order-3 model is ``(before, previous)``.
     """
 
     previous: str
     prefix: str
+    before: str | None = None
+
+    @property
+    def history(self) -> tuple[str, ...]:
+        """The context tokens, oldest first: ``(BOS,)``, or ``(before, previous)``."""
+        if self.before is None:
+            return (self.previous,)
+        return (self.before, self.previous)
 
 
 def parse_typed(text: str) -> Context:
@@ -206,15 +217,26 @@ def _parse_tail(text: str, window: int, *, final: bool) -> Context | None:
             toks.pop()
     if cut and toks:
         toks = toks[1:]
+    # the context tokens, most recent first, as counting sees them: words, BOS at a
+    # boundary, and one UNK for a run of numbers and symbols (soft punctuation is skipped)
+    found: list[str] = []
     for m in reversed(toks):
         group = m.lastgroup
         s = m.group()
-        if group == "word":
-            return Context(s if _is_word(s) else UNK, prefix)
-        if group == "end":
-            return Context(BOS, prefix)
-        if group == "num" or not unicodedata.category(s).startswith("P"):
-            return Context(UNK, prefix)
-    if truncated and not final:
-        return None
-    return Context(BOS, prefix)
+        if group == "word" and _is_word(s):
+            found.append(s)
+        elif group == "end":
+            found.append(BOS)
+        elif group in ("num", "word") or not unicodedata.category(s).startswith("P"):
+            if not found or found[-1] != UNK:
+                found.append(UNK)
+        if found and (found[-1] == BOS or len(found) == 2):
+            break
+    else:
+        # the text ran out: its start is a sentence start, unless the window cut it
+        if truncated and not final:
+            return None
+        found.append(BOS)
+    if found[0] == BOS:
+        return Context(BOS, prefix)
+    return Context(found[0], prefix, found[1])

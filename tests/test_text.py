@@ -4,6 +4,9 @@ from __future__ import annotations
 
 import pytest
 
+from hypothesis import assume, given, settings
+from hypothesis import strategies as st
+
 from nextword.text import BOS, UNK, Context, fold, parse_typed, sentences
 
 
@@ -62,15 +65,58 @@ def test_fold_unifies_case_apostrophes_and_hyphens() -> None:
     ],
 )
 def test_parse_typed(text: str, expected: Context) -> None:
-    assert parse_typed(text) == expected
+    got = parse_typed(text)
+    assert (got.previous, got.prefix) == (expected.previous, expected.prefix)
+
+
+@pytest.mark.parametrize(
+    ("text", "history"),
+    [
+        ("", (BOS,)),
+        ("Thanks. ", (BOS,)),
+        ("the tr", (BOS, "the")),
+        ("see you at the ", ("at", "the")),
+        ("Hi. see ", (BOS, "see")),
+        ("meet at 7:30 ", ("at", UNK)),
+        ("costs £5 + £6 to", ("costs", UNK)),
+        ("at 7, 8 then ", (UNK, "then")),
+        ("we, (then) ", ("we", "then")),
+        ("x" * 300 + " the ", (BOS, "the")),  # the window cut a word: the sentence starts there
+    ],
+)
+def test_parse_typed_two_word_history(text: str, history: tuple[str, ...]) -> None:
+    # hand-checked against the text rules above: breaks collapse to one <unk>, soft
+    # punctuation is skipped, a boundary or the start of the text is <s>
+    assert parse_typed(text).history == history
+
+
+_PIECES = ["we", "fix", "Bikes", "don't", "7:30", "£", ",", ".", "!", " ", "  ", "(", "well-known", "5pm", "\n"]
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.sampled_from(_PIECES), max_size=30))
+def test_history_is_what_counting_sees(parts: list[str]) -> None:
+    # The context of a query must be the context counting gave the next word: the last
+    # two tokens of the last sentence of ``sentences`` (None = <unk>), or <s> after a boundary.
+    text = " ".join(parts).replace("\\n", "\n") + " "
+    assume(len(text) < 200)
+    sents = sentences(text)
+    ends_sentence = not sents or parse_typed(text).previous == BOS
+    got = parse_typed(text).history
+    if ends_sentence:
+        assert got == (BOS,)
+    else:
+        toks = [UNK if t is None else t for t in sents[-1]]
+        want = tuple(([BOS] + toks)[-2:])
+        assert got == want
 
 
 def test_parse_looks_only_at_the_tail() -> None:
     long_text = "word " * 10_000 + "the tr"
-    assert parse_typed(long_text) == Context("the", "tr")
+    assert parse_typed(long_text) == Context("the", "tr", "word")
     # the cut lands inside a word: that fragment is not taken as context
     assert parse_typed("x" * 300 + " ") == Context(BOS, "")
-    assert parse_typed("see " + "," * 100 + "yo") == Context("see", "yo")
+    assert parse_typed("see " + "," * 100 + "yo") == Context("see", "yo", BOS)
     assert parse_typed("see " + " " * 300 + "yo") == Context(BOS, "yo")
     # a partial word longer than the window stays a (hopeless) prefix, not a next-word query
     assert parse_typed("a " + "x" * 100).prefix == "x" * 100
@@ -82,4 +128,7 @@ def test_windowed_parse_equals_parsing_the_whole_tail(n: int) -> None:
     # filler of length n before "the wor": the result must not depend on the window
     for filler in ("a" * n, "word " * (n // 5), "." * n, " " * n):
         text = filler + " the wor"
-        assert parse_typed(text) == Context("the", "wor")
+        got = parse_typed(text)
+        assert (got.previous, got.prefix) == ("the", "wor")
+        # before "the": the filler's last word, or <s> (a sentence end, nothing, or a cut word)
+        assert got.before in (BOS, "word", "a" * n)

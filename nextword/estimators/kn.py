@@ -1,0 +1,122 @@
+"""Interpolated modified Kneser-Ney (Chen & Goodman 1998), orders 1..3, from count arrays.
+
+The same definition as the plain-dict oracle :mod:`nextword.reference_kn` (which is
+checked against nltk and by hand); this one works on arrays so it can fit millions of
+n-grams and produce what a model file stores. Stored values are the *adjusted* counts:
+raw counts at the highest order and for n-grams that start with ``<s>``, continuation
+counts (distinct left extensions) below. Three discounts per order come from that
+order's count-of-counts, with the oracle's stated fallbacks.
+"""
+
+from __future__ import annotations
+
+from collections import Counter
+from typing import Any, ClassVar
+
+import numpy as np
+
+from ..errors import InvalidArgumentError
+from ..ngrams import NgramCounts
+from ..reference_kn import Discounts, fit_discounts
+from .base import Estimator, Fitted, Level
+
+__all__ = ["KneserNey", "FittedKneserNey"]
+
+
+def adjusted_values(counts: NgramCounts) -> list[np.ndarray]:
+    """Adjusted count of every stored n-gram, per order (see the module docstring)."""
+    out: list[np.ndarray] = []
+    order = counts.order
+    for m in range(1, order + 1):
+        grams, raw = counts.grams[m - 1], counts.counts[m - 1]
+        if m == order:
+            out.append(raw.copy())
+            continue
+        upper = counts.grams[m]
+        suffix = upper[:, 1:]
+        uniq, cont = np.unique(suffix, axis=0, return_counts=True) if len(suffix) else (suffix, np.zeros(0, np.int64))
+        value = np.zeros(len(grams), np.int64)
+        if len(uniq):
+            # both sorted lexicographically: locate each suffix among this order's grams
+            idx = _rows_index(grams, uniq, counts.bos + 1)
+            value[idx] = cont
+        starts_bos = grams[:, 0] == counts.bos
+        value[starts_bos] = raw[starts_bos]
+        if int((value < 1).sum()):
+            raise InvalidArgumentError(f"order {m}: an n-gram has no left extension; counts are inconsistent")
+        out.append(value)
+    return out
+
+
+def _rows_index(table: np.ndarray, rows: np.ndarray, base: int) -> np.ndarray:
+    """Positions of ``rows`` (each present) in the sorted ``table``, by packed integer keys."""
+    def pack(a: np.ndarray) -> np.ndarray:
+        key = np.zeros(len(a), np.int64)
+        for c in range(a.shape[1]):
+            key = key * base + a[:, c]
+        return key
+
+    tk, rk = pack(table), pack(rows)
+    pos = np.searchsorted(tk, rk)
+    if len(rk) and (int(pos.max()) >= len(tk) or not bool((tk[pos] == rk).all())):
+        raise InvalidArgumentError("a suffix n-gram is missing from the lower order; counts are inconsistent")
+    return pos
+
+
+class FittedKneserNey(Fitted):
+    name: ClassVar[str] = "kn"
+
+    def __init__(self, counts: NgramCounts, levels: list[Level], discounts: list[Discounts], fallbacks: dict[int, str]) -> None:
+        super().__init__(counts, levels)
+        self.discounts = discounts  # discounts[m-1] for order m
+        self.fallbacks = fallbacks
+        self._d = [np.asarray([0.0, d.d1, d.d2, d.d3]) for d in discounts]
+
+    def alpha(self, m: int, j: int, i: int) -> float:
+        lev = self.levels[m - 1]
+        a = int(lev.value[i])
+        return max(a - self.discounts[m - 1].of(a), 0.0) / int(lev.ctx_total[j])
+
+    def gamma(self, m: int, j: int) -> float:
+        lev = self.levels[m - 1]
+        d = self.discounts[m - 1]
+        n1, n2, n3 = (int(x) for x in lev.ctx_n123[j])
+        return (d.d1 * n1 + d.d2 * n2 + d.d3 * n3) / int(lev.ctx_total[j])
+
+    def base(self) -> float:
+        return 1.0 / self.n_outcomes
+
+    def params(self) -> dict[str, Any]:
+        return {"discounts": [[d.d1, d.d2, d.d3] for d in self.discounts], "fallbacks": dict(self.fallbacks)}
+
+
+class KneserNey(Estimator):
+    """Interpolated modified Kneser-Ney; ``discounts`` fixes one discount per order instead."""
+
+    name: ClassVar[str] = "kn"
+
+    def __init__(self, *, discounts: list[float] | None = None) -> None:
+        if discounts is not None and not all(
+            isinstance(d, (int, float)) and not isinstance(d, bool) and 0 < d < 1 for d in discounts
+        ):
+            raise InvalidArgumentError(f"discounts must be numbers in (0, 1), got {discounts!r}")
+        self.fixed = discounts
+
+    def fit(self, counts: NgramCounts) -> FittedKneserNey:
+        if self.fixed is not None and len(self.fixed) != counts.order:
+            raise InvalidArgumentError(f"{len(self.fixed)} discounts given for order {counts.order}")
+        values = adjusted_values(counts)
+        levels = [Level.of(counts.grams[m], values[m]) for m in range(counts.order)]
+        discounts: list[Discounts] = []
+        fallbacks: dict[int, str] = {}
+        for m, v in enumerate(values, 1):
+            if self.fixed is not None:
+                d = float(self.fixed[m - 1])
+                discounts.append(Discounts(d, d, d))
+                continue
+            coc = Counter({int(k): int(c) for k, c in zip(*np.unique(v[v <= 4], return_counts=True))})
+            fitted, why = fit_discounts(coc)
+            discounts.append(fitted)
+            if why is not None:
+                fallbacks[m] = why
+        return FittedKneserNey(counts, levels, discounts, fallbacks)
