@@ -14,13 +14,10 @@ from typing import Any, ClassVar, Sequence
 
 from ..errors import InvalidArgumentError
 from ..ngrams import NgramCounts
+from ..store import MAX_LAMBDA  # one source: why the cap is 0.999 is documented there
 from .base import Estimator, Fitted, Level
 
 __all__ = ["JelinekMercer", "FittedJelinekMercer", "MAX_LAMBDA"]
-
-#: λ below 1 keeps every in-vocabulary word possible after every context (the lower
-#: order always keeps at least 1 − MAX_LAMBDA of the mass).
-MAX_LAMBDA = 0.999
 
 
 class FittedJelinekMercer(Fitted):
