@@ -178,6 +178,7 @@ _EXAMPLES: dict[str, list[str]] = {
     "prune": [
         "nextword prune demo.nwm -o small.nwm --max-size 2MB",
         "nextword prune demo.nwm -o small.nwm --max-size 1.5MiB --rule count --json",
+        "nextword prune demo.nwm --curve tune.txt --sizes 16KB 12KB 8KB --plot sizes.png",
     ],
     "export": ["nextword export demo.nwm --arpa demo.arpa.gz", "nextword export demo.nwm --arpa demo.arpa --lam 0.7"],
     "serve": ["nextword serve demo.nwm --users users/", "nextword serve demo.nwm --tcp 127.0.0.1:0"],
@@ -296,6 +297,7 @@ def _parser() -> _Parser:
                     help="budgets for --curve (default: 100%%, 75%%, 50%%, 35%%, 25%% of the model's size)")
     pr.add_argument("-k", type=_positive, default=3, help="suggestions for KSR in --curve (default %(default)s)")
     pr.add_argument("--messages", type=_positive, default=400, help="held-out messages simulated for KSR in --curve (default %(default)s; perplexity uses all)")
+    pr.add_argument("--plot", metavar="PNG", help="with --curve: also draw file size against KSR@k, one line per rule (needs matplotlib; default: no plot)")
     pr.add_argument("--json", action="store_true", help="print the result as JSON")
 
     ex = sub.add_parser("export", help="export a model to another format")
@@ -837,6 +839,7 @@ def _prune_curve(args: argparse.Namespace, model: Model) -> int:
     sizes = [parse_size(x) for x in args.sizes] if args.sizes else [int(model.file_size * f) for f in (1.0, 0.75, 0.5, 0.35, 0.25)]
     tables = tables_from_model(model)
     rows: list[dict[str, Any]] = []
+    skipped: list[dict[str, Any]] = []
     bar = Progress("pruning curve")
     with tempfile.TemporaryDirectory(prefix="nextword-curve-") as tmp:
         for rule in RULES:
@@ -844,10 +847,14 @@ def _prune_curve(args: argparse.Namespace, model: Model) -> int:
                 bar.update(len(rows), len(RULES) * len(sizes), f"{rule} {budget:,} bytes")
                 path = args.model
                 if budget < model.file_size:
-                    _, chunks, _ = prune_to_size(
-                        tables, budget, rule=rule, lam=model.stored_lam,  # type: ignore[arg-type]
-                        vocabulary=not args.keep_vocabulary, skyband_k=model._sky_k, skyband_min=model._sky_min,
-                    )
+                    try:
+                        _, chunks, _ = prune_to_size(
+                            tables, budget, rule=rule, lam=model.stored_lam,  # type: ignore[arg-type]
+                            vocabulary=not args.keep_vocabulary, skyband_k=model._sky_k, skyband_min=model._sky_min,
+                        )
+                    except InvalidArgumentError as e:  # below the smallest model of this vocabulary rule
+                        skipped.append({"rule": rule, "budget": budget, "reason": str(e)})
+                        continue
                     path = os.path.join(tmp, f"{rule}-{budget}.nwm")
                     atomic_write(path, chunks)
                 m = load(path)
@@ -859,7 +866,13 @@ def _prune_curve(args: argparse.Namespace, model: Model) -> int:
                 m.close()
     bar.done()
     out = {"model": args.model, "held_out": args.curve, "messages": len(held), "ksr_messages": len(ksr_msgs),
-           "k": args.k, "vocabulary": not args.keep_vocabulary, "rows": rows}
+           "k": args.k, "vocabulary": not args.keep_vocabulary, "rows": rows, "skipped": skipped}
+    if args.plot:
+        from .report import plot_size_tradeoff
+
+        points = [(r["file_bytes"], r["ksr"], "unpruned" if r["budget"] >= model.file_size else f"{r['rule']} rule")
+                  for r in rows]
+        out["plot"] = os.fspath(plot_size_tradeoff(points, args.plot, k=args.k))
     if args.json:
         print(json.dumps(out, indent=2))
         return 0
@@ -868,6 +881,10 @@ def _prune_curve(args: argparse.Namespace, model: Model) -> int:
     for r in rows:
         print(f"{r['rule']:8} {r['budget']:>12,} {r['file_bytes']:>12,} {r['words']:>8,} {r['pairs']:>10,} "
               f"{r['perplexity']:>11.2f} {100 * r['ksr']:>7.2f}%")
+    for r in skipped:
+        print(f"{r['rule']:8} {r['budget']:>12,}  skipped: {r['reason']}")
+    if args.plot:
+        print(f"wrote {out['plot']}")
     return 0
 
 
@@ -950,6 +967,7 @@ def _io_paths(args: argparse.Namespace) -> tuple[list[Labelled], list[Labelled],
     elif cmd == "prune":
         ins = [("model", args.model)] + [("held-out text", x) for x in args.curve or []]
         outs = [("pruned model", args.output)] if args.output else []
+        outs += [("size plot", args.plot)] if args.plot else []
     elif cmd == "export":
         ins, outs = [("model", args.model)], [("ARPA file", args.arpa)]
     elif cmd == "eval":

@@ -322,3 +322,32 @@ def test_any_budget_gives_a_valid_distribution(msgs: list[str], frac: float, rul
         for prev in [None, "<unk>", *RARE[:3], "the"]:
             assert math.fsum(m.prob(w, prev) for w in outcomes) == pytest.approx(1.0, abs=1e-12)
         m.close()
+
+
+def test_prune_curve_skips_budgets_below_the_smallest_model_and_draws_the_tradeoff(lines: list[str], tmp_path: Path) -> None:
+    import json
+
+    from nextword.cli import main
+    from nextword.evaluate import is_held_out
+
+    pytest.importorskip("matplotlib")
+    model = tmp_path / "m.nwm"
+    nextword.train_texts([m for m in lines if not is_held_out(m, 20)], model, min_count=1)
+    log = tmp_path / "held.txt"
+    log.write_text("\n".join(m for m in lines if is_held_out(m, 20)) + "\n")
+    size = model.stat().st_size
+    png = tmp_path / "sizes.png"
+    import contextlib
+    import io
+
+    buf = io.StringIO()
+    with contextlib.redirect_stdout(buf):
+        code = main(["prune", str(model), "--curve", str(log), "--sizes", str(size * 6 // 10), "100",
+                     "--messages", "20", "--plot", str(png), "--json"])
+    assert code == 0
+    res = json.loads(buf.getvalue())
+    # 100 bytes is below any model: reported per rule, the other budget still measured
+    assert [(s["rule"], s["budget"]) for s in res["skipped"]] == [("entropy", 100), ("count", 100)]
+    assert "smallest possible model" in res["skipped"][0]["reason"]
+    assert [(r["rule"], r["budget"]) for r in res["rows"]] == [("entropy", size * 6 // 10), ("count", size * 6 // 10)]
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and res["plot"] == str(png)
