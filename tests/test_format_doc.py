@@ -990,3 +990,12 @@ def test_worked_example_with_segments_is_current(tmp_path: Path, K: int, label: 
     assert model.rank_ids(None, "", 1) == [(word, p)]
     assert r.top_k(bos, 0, r.n, K, 0.9) == r.brute_top_k(bos, 0, r.n, K, 0.9)
     assert [w for w, _ in r.top_k(bos, 0, r.n, K, 0.9)] == [w for w, _ in model.rank_ids(None, "", K)]
+
+
+def test_the_title_names_every_version_the_readers_accept() -> None:
+    # the model reader accepts 1.0 .. MAX_MINOR; the title must name each of them
+    from nextword.store import FORMAT_VERSION, MAX_MINOR
+
+    title = (Path(__file__).resolve().parent.parent / "docs" / "FORMAT.md").read_text(encoding="utf-8").splitlines()[0]
+    for minor in range(MAX_MINOR + 1):
+        assert f"{FORMAT_VERSION[0]}.{minor}" in title, title

@@ -61,3 +61,16 @@ def test_demo_command_prints_what_the_readme_shows(in_tmp_with_examples: Path) -
     got = [strip_timing(line) for line in outputs[-1].splitlines() if line.startswith('"')]
     assert [re.sub(r"\s+->", " ->", g) for g in got] == [re.sub(r"\s+->", " ->", w) for w in want]
     assert shown.splitlines()[0].split(";")[0] == outputs[0].splitlines()[0].split(";")[0]
+
+
+def test_walkthrough_runs_end_to_end(in_tmp_with_examples: Path) -> None:
+    # the "From corpus to shipped file" block, step by step, on the demo corpus
+    block = next(b for b in _blocks("sh") if "nextword split" in b and "--tune-out" in b)
+    steps = [shlex.split(line) for line in block.strip().splitlines()]
+    assert [s[1] for s in steps] == ["split", "train", "eval", "tune", "prune", "prune", "eval", "info"]
+    for args in steps:
+        proc = _cli(args[1:], in_tmp_with_examples)
+        assert proc.returncode == 0, (args, proc.stderr)
+    for made in ("train.txt", "tune.txt", "test.txt", "demo.nwm", "tuned.nwm", "ship.nwm", "report/report.md", "tune-report/tune.md"):
+        assert (in_tmp_with_examples / made).exists(), made
+    assert (in_tmp_with_examples / "ship.nwm").stat().st_size <= 16_000
