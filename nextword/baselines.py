@@ -17,22 +17,32 @@ from typing import Any, Callable, Iterable
 from .errors import InvalidArgumentError
 from .text import BOS, EOS, UNK, fold, parse_typed, sentences
 
-__all__ = ["DictBigram", "nltk_baseline", "sample_queries", "time_queries"]
+__all__ = ["DictBigram", "key_sentences", "nltk_baseline", "sample_queries", "time_queries"]
+
+
+def key_sentences(messages: Iterable[str], *, min_count: int, max_vocab: int) -> tuple[list[list[str]], list[str]]:
+    """Every sentence as folded keys (``<unk>`` for breaks) and the vocabulary rule's words.
+
+    The vocabulary: words seen at least ``min_count`` times, most frequent first, ties by
+    key, at most ``max_vocab`` — the engine's rule, written out plainly for the oracles.
+    Sentences keep out-of-vocabulary keys; callers map them to ``<unk>``.
+    """
+    streams: list[list[str]] = []
+    word_counts: Counter[str] = Counter()
+    for message in messages:
+        for sent in sentences(message):
+            toks = [UNK if t is None else fold(t) for t in sent]
+            streams.append(toks)
+            word_counts.update(t for t in toks if t != UNK)
+    ranked = sorted((w for w, c in word_counts.items() if c >= min_count), key=lambda w: (-word_counts[w], w))
+    return streams, ranked[:max_vocab]
 
 
 class DictBigram:
     """Counts in dicts; ``rank`` scores all words, sorts, and takes the first k."""
 
     def __init__(self, messages: Iterable[str], *, min_count: int = 2, max_vocab: int = 30_000) -> None:
-        streams: list[list[str]] = []
-        word_counts: Counter[str] = Counter()
-        for message in messages:
-            for sent in sentences(message):
-                toks = [UNK if t is None else fold(t) for t in sent]
-                streams.append(toks)
-                word_counts.update(t for t in toks if t != UNK)
-        ranked = sorted((w for w, c in word_counts.items() if c >= min_count), key=lambda w: (-word_counts[w], w))
-        self.vocab: list[str] = ranked[:max_vocab]
+        streams, self.vocab = key_sentences(messages, min_count=min_count, max_vocab=max_vocab)
         self.known = known = set(self.vocab)
         self.unigram: Counter[str] = Counter()
         self.bigram: dict[str, Counter[str]] = {}

@@ -41,7 +41,7 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 
 from .errors import InvalidArgumentError
-from .text import BOS, EOS, UNK, fold, parse_typed, sentences
+from .text import BOS, EOS, UNK, fold, parse_typed
 
 __all__ = ["Discounts", "DictKneserNey", "fit_discounts", "ngrams_of_sentence"]
 
@@ -115,15 +115,9 @@ class DictKneserNey:
         max_vocab: int = 30_000,
         discounts: Sequence[float] | None = None,
     ) -> None:
-        streams: list[list[str]] = []
-        word_counts: Counter[str] = Counter()
-        for message in messages:
-            for sent in sentences(message):
-                toks = [UNK if t is None else fold(t) for t in sent]
-                streams.append(toks)
-                word_counts.update(t for t in toks if t != UNK)
-        ranked = sorted((w for w, c in word_counts.items() if c >= min_count), key=lambda w: (-word_counts[w], w))
-        vocab = ranked[:max_vocab]
+        from .baselines import key_sentences
+
+        streams, vocab = key_sentences(messages, min_count=min_count, max_vocab=max_vocab)
         known = set(vocab)
         grams: Counter[Gram] = Counter()
         for toks in streams:
