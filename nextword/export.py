@@ -42,9 +42,9 @@ digits would not do: −12.34567890 keeps only 8 decimals, 1e-8 relative).
 
 from __future__ import annotations
 
-import gzip
 import math
 import os
+import zlib
 from typing import Iterable, Iterator, Sequence, Union
 
 import numpy as np
@@ -78,12 +78,38 @@ def _document(counts: Sequence[int], sections: Iterable[Iterable[str]]) -> Itera
     yield "\\end\\"
 
 
+#: Text is encoded (and compressed) in pieces of about this many characters, so a large
+#: model's file is streamed to disk rather than built in memory.
+CHUNK_CHARS = 1 << 20
+
+
+def _chunks(lines: Iterable[str]) -> Iterator[bytes]:
+    batch: list[str] = []
+    size = 0
+    for line in lines:
+        batch.append(line)
+        size += len(line) + 1
+        if size >= CHUNK_CHARS:
+            yield ("\n".join(batch) + "\n").encode("utf-8")
+            batch, size = [], 0
+    if batch:
+        yield ("\n".join(batch) + "\n").encode("utf-8")
+
+
+def _gzipped(chunks: Iterable[bytes]) -> Iterator[bytes]:
+    """One gzip member, level 9, modification time 0 (the same bytes for the same text)."""
+    z = zlib.compressobj(9, zlib.DEFLATED, 31)
+    for chunk in chunks:
+        out = z.compress(chunk)
+        if out:
+            yield out
+    yield z.flush()
+
+
 def _write(lines: Iterable[str], path: PathArg) -> None:
-    """Write the lines atomically; a name ending in ``.gz`` is gzip-compressed (no timestamp)."""
-    data = ("\n".join(lines) + "\n").encode("utf-8")
-    if os.fspath(path).endswith(".gz"):
-        data = gzip.compress(data, mtime=0)
-    atomic_write(path, [data])
+    """Write the lines atomically, streamed; a name ending in ``.gz`` is gzip-compressed."""
+    chunks = _chunks(lines)
+    atomic_write(path, _gzipped(chunks) if os.fspath(path).endswith(".gz") else chunks)
 
 
 # -- the bigram Model ----------------------------------------------------------------------

@@ -266,3 +266,18 @@ def test_model_writer_refuses_the_model_file(tmp_path: Path) -> None:
     with pytest.raises(InvalidArgumentError, match="m.nwm"):
         write_arpa(model, tmp_path / "m.nwm")
     assert (tmp_path / "m.nwm").read_bytes() == before
+
+
+def test_gzip_output_is_streamed_in_pieces(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # many small pieces through one compressor: still one valid gzip member of the same text
+    import nextword.export as export
+
+    fitted = JelinekMercer([0.7, 0.5]).fit(NgramCounts.from_sentences([[0, 1, 2, 3], [2, 1, 0], [4, 4, 1]], 5, 3))
+    write_arpa_fitted(fitted, KEYS[:5], tmp_path / "whole.arpa")
+    monkeypatch.setattr(export, "CHUNK_CHARS", 16)
+    write_arpa_fitted(fitted, KEYS[:5], tmp_path / "a.arpa.gz")
+    write_arpa_fitted(fitted, KEYS[:5], tmp_path / "b.arpa.gz")
+    data = (tmp_path / "a.arpa.gz").read_bytes()
+    assert data == (tmp_path / "b.arpa.gz").read_bytes()  # no timestamp in the header
+    assert gzip.decompress(data) == (tmp_path / "whole.arpa").read_bytes()
+    Arpa(gzip.decompress(data).decode("utf-8"))
