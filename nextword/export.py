@@ -1,65 +1,151 @@
 """Export to the ARPA back-off format, the n-gram trade's standard text format.
 
-An interpolated bigram model is exactly a back-off model with these entries:
+The layout (from memory of the format's description): a ``\\data\\`` header with one
+``ngram N=count`` line per order, then one ``\\N-grams:`` section per order whose lines
+are ``log10prob<TAB>w1 .. wN[<TAB>log10backoff]``, then ``\\end\\``. A reader computes
+
+    P(w | h) = 10^prob(h w)                    if h w is listed,
+             = 10^backoff(h) · P(w | h′)       otherwise (backoff(h) = 0 when h is unlisted),
+
+h′ being h without its first word. ``<s>`` is never predicted: probability −99 (the
+format's convention for log 0).
+
+**Every interpolated model is exactly such a back-off model.** An interpolated model
+(:mod:`nextword.estimators`) scores P_m(w | h) = α_m(h w) + γ_m(h)·P_{m−1}(w | h′) with
+α = 0 when h w was not stored, so for every w not stored after h, P(w | h) = γ(h)·P(w | h′)
+— the back-off reading with back-off weight γ(h). :func:`write_arpa_fitted` therefore
+lists every stored n-gram with the *full* interpolated log10 P(w | h) and every context
+with log10 γ(h); the file read back by the rule above gives the model's probability for
+every (h, w), not only for the listed ones.
+
+The format also needs the context h of a listed n-gram to be listed itself (it carries
+the back-off weight). With the counting scheme of :mod:`nextword.ngrams` every prefix of
+a counted n-gram is counted (it is the window one token shorter at the same position;
+the one exception, ``<s>`` alone, is the unigram listed by convention), but a pruned or
+hand-made table need not be: a missing context is then added with its implied
+probability (P(v | u) computed by the model, which is what the reader would have
+computed without it), so the reading is unchanged.
+
+:func:`write_arpa` is the same export for the bigram :class:`~nextword.model.Model`:
 
 * every seen pair (v, w): log10 P(w | v) = log10(λ·c(v,w)/c(v) + (1−λ)·c(w)/N);
 * every unigram w (words, ``</s>``, ``<unk>``): log10 c(w)/N, with back-off weight
   log10(1 − λ) when w is a history, so that an unseen pair gets (1 − λ)·P(w);
-* ``<s>`` is never predicted: probability −99 (the format's convention for log 0),
-  back-off weight log10(1 − λ).
+* ``<s>``: probability −99, back-off weight log10(1 − λ).
 
 With λ by history count, each history's back-off weight uses its own λ. Words are
-written as their case-folded keys (unique, never containing spaces). Probabilities are
-written with 10 decimals, so they read back within about 1e-10 relative.
+written as their case-folded keys (unique, never containing spaces). Log values are
+written with 10 decimals (an absolute error ≤ 5e-11 in log10, so a probability — even a
+product of three back-off terms — reads back within about 4e-10 relative; 10 significant
+digits would not do: −12.34567890 keeps only 8 decimals, 1e-8 relative).
 """
 
 from __future__ import annotations
 
-import gzip
 import math
 import os
-from typing import Iterator
+import zlib
+from typing import Iterable, Iterator, Sequence, Union
 
 import numpy as np
 
+from .errors import InvalidArgumentError
+from .estimators import Fitted
 from .model import Model
+from .paths import check_outputs
 from .store import atomic_write
 from .text import BOS, EOS, UNK
 
-__all__ = ["write_arpa", "arpa_lines"]
+__all__ = ["write_arpa", "arpa_lines", "write_arpa_fitted", "arpa_lines_fitted"]
+
+PathArg = Union[str, "os.PathLike[str]"]
 
 
 def _log10(p: float) -> str:
     return f"{math.log10(p):.10f}" if p > 0 else "-99"
 
 
+def _document(counts: Sequence[int], sections: Iterable[Iterable[str]]) -> Iterator[str]:
+    """The ARPA frame around the entry lines of each order (``sections[m-1]`` for order m)."""
+    yield "\\data\\"
+    for m, k in enumerate(counts, 1):
+        yield f"ngram {m}={k}"
+    for m, lines in enumerate(sections, 1):
+        yield ""
+        yield f"\\{m}-grams:"
+        yield from lines
+    yield ""
+    yield "\\end\\"
+
+
+#: Text is encoded (and compressed) in pieces of about this many characters, so a large
+#: model's file is streamed to disk rather than built in memory.
+CHUNK_CHARS = 1 << 20
+
+
+def _chunks(lines: Iterable[str]) -> Iterator[bytes]:
+    batch: list[str] = []
+    size = 0
+    for line in lines:
+        batch.append(line)
+        size += len(line) + 1
+        if size >= CHUNK_CHARS:
+            yield ("\n".join(batch) + "\n").encode("utf-8")
+            batch, size = [], 0
+    if batch:
+        yield ("\n".join(batch) + "\n").encode("utf-8")
+
+
+def _gzipped(chunks: Iterable[bytes]) -> Iterator[bytes]:
+    """One gzip member, level 9, modification time 0 (the same bytes for the same text)."""
+    z = zlib.compressobj(9, zlib.DEFLATED, 31)
+    for chunk in chunks:
+        out = z.compress(chunk)
+        if out:
+            yield out
+    yield z.flush()
+
+
+def _write(lines: Iterable[str], path: PathArg) -> None:
+    """Write the lines atomically, streamed; a name ending in ``.gz`` is gzip-compressed."""
+    chunks = _chunks(lines)
+    atomic_write(path, _gzipped(chunks) if os.fspath(path).endswith(".gz") else chunks)
+
+
+# -- the bigram Model ----------------------------------------------------------------------
+
+
 def arpa_lines(model: Model, *, lam: float | None = None) -> Iterator[str]:
     """The ARPA text of ``model``, line by line (``lam`` overrides the stored λ)."""
     n = model.n_words
-    total = model.total
-    keys = [model._key(i) for i in range(n)] + [EOS, UNK, BOS]
     rows = np.asarray(model._src.arrays["ROWS"], dtype=np.int64)
+    counts = [n + 3, int(rows[-1])]
+    return _document(counts, [_model_unigrams(model, lam), _model_bigrams(model, lam, rows)])
+
+
+def _model_keys(model: Model) -> list[str]:
+    return [model._key(i) for i in range(model.n_words)] + [EOS, UNK, BOS]
+
+
+def _model_unigrams(model: Model, lam: float | None) -> Iterator[str]:
+    n = model.n_words
+    keys = _model_keys(model)
     unig = np.asarray(model._unig, dtype=np.int64)
-    n_bigrams = int(rows[-1])
-    yield "\\data\\"
-    yield f"ngram 1={n + 3}"
-    yield f"ngram 2={n_bigrams}"
-    yield ""
-    yield "\\1-grams:"
     for i in range(n + 3):
-        if i == n + 2:
-            prob = "-99"
-        else:
-            prob = _log10(unig[i] / total)
-        cv = model._hist(i)
+        prob = "-99" if i == n + 2 else _log10(unig[i] / model.total)
         if i == n:  # </s> is never a history
             yield f"{prob}\t{keys[i]}"
             continue
-        lam_v = model._lam_of(i, lam)
-        bow = _log10(1.0 - lam_v) if cv > 0 else "0"
+        cv = model._hist(i)
+        bow = _log10(1.0 - model._lam_of(i, lam)) if cv > 0 else "0"
         yield f"{prob}\t{keys[i]}\t{bow}"
-    yield ""
-    yield "\\2-grams:"
+
+
+def _model_bigrams(model: Model, lam: float | None, rows: np.ndarray) -> Iterator[str]:
+    n = model.n_words
+    keys = _model_keys(model)
+    unig = np.asarray(model._unig, dtype=np.int64)
+    total = model.total
     for v in range(n + 3):
         s, e = int(rows[v]), int(rows[v + 1])
         if s == e:
@@ -67,18 +153,166 @@ def arpa_lines(model: Model, *, lam: float | None = None) -> Iterator[str]:
         cv = model._hist(v)
         lam_v = model._lam_of(v, lam)
         ids = np.asarray(model._alph, dtype=np.int64)[np.asarray(model._succ[s:e], dtype=np.int64)]
-        counts = model._counts(np.arange(s, e))
-        probs = lam_v * (counts / cv) + (1.0 - lam_v) * (unig[ids] / total)
+        c = model._counts(np.arange(s, e))
+        probs = lam_v * (c / cv) + (1.0 - lam_v) * (unig[ids] / total)
         hv = keys[v]
         for w, p in zip(ids.tolist(), probs.tolist()):
             yield f"{_log10(p)}\t{hv} {keys[w]}"
-    yield ""
-    yield "\\end\\"
 
 
-def write_arpa(model: Model, path: str | os.PathLike[str], *, lam: float | None = None) -> None:
-    """Write the ARPA file atomically; a name ending in ``.gz`` is gzip-compressed."""
-    data = ("\n".join(arpa_lines(model, lam=lam)) + "\n").encode("utf-8")
-    if os.fspath(path).endswith(".gz"):
-        data = gzip.compress(data, mtime=0)
-    atomic_write(path, [data])
+def write_arpa(model: Model, path: PathArg, *, lam: float | None = None) -> None:
+    """Write the ARPA file atomically; a name ending in ``.gz`` is gzip-compressed.
+
+    Raises :class:`~nextword.errors.InvalidArgumentError` if ``path`` is the model file.
+    """
+    check_outputs([("model", model.path)], [("ARPA file", path)])
+    _write(arpa_lines(model, lam=lam), path)
+
+
+# -- any fitted estimator, order 1..3 ------------------------------------------------------
+
+
+def _pack(rows: np.ndarray, base: int) -> np.ndarray:
+    """One int64 per id row (rows of at most two ids here), ordered like the rows."""
+    if base ** max(rows.shape[1], 1) >= 2**63:
+        raise InvalidArgumentError(f"{base} ids do not fit a packed key of {rows.shape[1]} ids")
+    key = np.zeros(len(rows), np.int64)
+    for c in range(rows.shape[1]):
+        key = key * base + rows[:, c]
+    return key
+
+
+def _lookup(table: np.ndarray, rows: np.ndarray, base: int) -> np.ndarray:
+    """Index of each row in the sorted distinct ``table`` rows, or −1."""
+    if len(table) == 0 or len(rows) == 0:
+        return np.full(len(rows), -1, np.int64)
+    tk, rk = _pack(table, base), _pack(rows, base)
+    pos = np.minimum(np.searchsorted(tk, rk), len(tk) - 1)
+    return np.where(tk[pos] == rk, pos, -1).astype(np.int64)
+
+
+class _Tables:
+    """Per order: the listed n-grams (stored + added contexts), P of each, γ of each context.
+
+    P is evaluated bottom-up with the estimator's own α and γ in the operation order of
+    :meth:`Fitted.prob` (``α + γ·lower``), so it equals the model's probability exactly.
+    """
+
+    def __init__(self, fitted: Fitted) -> None:
+        self.fitted = fitted
+        self.base = fitted.bos + 1
+        order = fitted.order
+        # P_1 of every outcome, plus <s> (never predicted) at the end
+        self.p1 = np.concatenate([fitted.floor(), [0.0]])
+        self.gammas: list[np.ndarray] = []  # gammas[m-1][j]: γ_m of context j of order m
+        self.stored_p: list[np.ndarray] = []  # P_m of each stored n-gram of order m
+        for m in range(1, order + 1):
+            lev = fitted.levels[m - 1]
+            g = np.asarray([fitted.gamma(m, j) for j in range(len(lev.ctx))], dtype=np.float64)
+            self.gammas.append(g)
+            if m == 1:
+                self.stored_p.append(self.p1[lev.grams[:, 0]] if len(lev.grams) else np.zeros(0))
+                continue
+            owner = np.repeat(np.arange(len(lev.ctx)), np.diff(lev.ctx_start))
+            alpha = np.asarray([fitted.alpha(m, int(j), i) for i, j in enumerate(owner)], dtype=np.float64)
+            lower = self.prob_rows(m - 1, lev.grams[:, 1:])
+            self.stored_p.append(alpha + g[owner] * lower)
+        # listed n-grams per order m >= 2: stored ones plus contexts of order m+1 that are missing
+        self.listed: list[np.ndarray] = []
+        self.listed_p: list[np.ndarray] = []
+        for m in range(1, order + 1):
+            grams, p = fitted.levels[m - 1].grams, self.stored_p[m - 1]
+            if 2 <= m < order:
+                ctx = fitted.levels[m].ctx
+                missing = ctx[_lookup(grams, ctx, self.base) < 0]
+                if len(missing):
+                    grams = np.concatenate([grams, missing])
+                    p = np.concatenate([p, self.prob_rows(m, missing)])
+                    sort = np.lexsort(grams.T[::-1])
+                    grams, p = grams[sort], p[sort]
+            self.listed.append(grams)
+            self.listed_p.append(p)
+
+    def prob_rows(self, m: int, rows: np.ndarray) -> np.ndarray:
+        """P_m(w | h) for each row (h w) of m ids, stored or not (what :meth:`Fitted.prob` does)."""
+        if m == 1:
+            return self.p1[rows[:, 0]]
+        lev = self.fitted.levels[m - 1]
+        lower = self.prob_rows(m - 1, rows[:, 1:])
+        i = _lookup(lev.grams, rows, self.base)
+        j = _lookup(lev.ctx, rows[:, :-1], self.base)
+        g = self.gammas[m - 1]
+        unstored = np.where(j >= 0, g[np.maximum(j, 0)] * lower if len(g) else lower, lower)
+        return np.where(i >= 0, self.stored_p[m - 1][np.maximum(i, 0)] if len(lev.grams) else 0.0, unstored)
+
+    def backoffs(self, m: int) -> list[str | None]:
+        """log10 γ_{m+1} of each listed n-gram of order m that is a context of order m+1, else None."""
+        rows = self.listed[m - 1]
+        if m >= self.fitted.order:
+            return [None] * len(rows)
+        j = _lookup(self.fitted.levels[m].ctx, rows, self.base)
+        g = self.gammas[m]
+        return [None if k < 0 else _log10(float(g[k])) for k in j.tolist()]
+
+
+def _check_keys(fitted: Fitted, keys: Sequence[str]) -> list[str]:
+    if isinstance(keys, str) or len(keys) != fitted.n_words:
+        raise InvalidArgumentError(f"need one key per word id (0..{fitted.n_words - 1}), got {len(keys)} keys")
+    seen: set[str] = set()
+    for i, k in enumerate(keys):
+        if not isinstance(k, str) or not k or any(ch.isspace() for ch in k):
+            raise InvalidArgumentError(f"word key {k!r} (id {i}) must be a non-empty string without white space")
+        if k in (BOS, EOS, UNK) or k in seen:
+            raise InvalidArgumentError(f"word key {k!r} (id {i}) is a special token or repeats an earlier key")
+        seen.add(k)
+    return [*keys, EOS, UNK, BOS]
+
+
+def arpa_lines_fitted(fitted: Fitted, keys: Sequence[str]) -> Iterator[str]:
+    """The ARPA text of a fitted interpolated model of order 1..3, line by line.
+
+    ``keys[i]`` is the written form of word id i (unique, no white space); ``</s>``,
+    ``<unk>`` and ``<s>`` name ids n, n+1, n+2. Unigrams: every outcome plus ``<s>``.
+    """
+    return _fitted_document(fitted, keys)[1]
+
+
+def _fitted_document(fitted: Fitted, keys: Sequence[str]) -> tuple[list[int], Iterator[str]]:
+    names = _check_keys(fitted, keys)
+    t = _Tables(fitted)
+    n_out = fitted.n_outcomes
+    counts = [n_out + 1] + [len(g) for g in t.listed[1:]]
+
+    def unigrams() -> Iterator[str]:
+        ctx1 = np.full(n_out + 1, -1, np.int64)
+        if fitted.order > 1:
+            lev2 = fitted.levels[1]
+            ctx1[lev2.ctx[:, 0]] = np.arange(len(lev2.ctx))
+        for w in range(n_out + 1):
+            prob = "-99" if w == n_out else _log10(float(t.p1[w]))
+            j = int(ctx1[w])
+            yield f"{prob}\t{names[w]}" if j < 0 else f"{prob}\t{names[w]}\t{_log10(float(t.gammas[1][j]))}"
+
+    def section(m: int) -> Iterator[str]:
+        bows = t.backoffs(m)
+        for row, p, bow in zip(t.listed[m - 1].tolist(), t.listed_p[m - 1].tolist(), bows):
+            words = " ".join(names[i] for i in row)
+            yield f"{_log10(p)}\t{words}" if bow is None else f"{_log10(p)}\t{words}\t{bow}"
+
+    return counts, _document(counts, [unigrams(), *(section(m) for m in range(2, fitted.order + 1))])
+
+
+def write_arpa_fitted(
+    fitted: Fitted, keys: Sequence[str], path: PathArg, *, inputs: Sequence[PathArg] = ()
+) -> list[int]:
+    """Write ``fitted`` (order 1..3, any interpolated estimator) as an ARPA back-off file.
+
+    Atomic; a name ending in ``.gz`` is gzip-compressed. ``inputs`` are the files the
+    model came from (model file, corpora): the ARPA file must not be one of them
+    (:class:`~nextword.errors.InvalidArgumentError`, checked before any work). Returns
+    the number of entries written per order (unigrams include ``<s>``).
+    """
+    check_outputs([("input", p) for p in inputs], [("ARPA file", path)])
+    counts, lines = _fitted_document(fitted, keys)
+    _write(lines, path)
+    return counts
