@@ -24,6 +24,7 @@ sys.path.insert(0, str(ROOT / "bench"))
 
 import bench_core  # noqa: E402
 import bench_eval  # noqa: E402
+import bench_models  # noqa: E402
 import bench_tune  # noqa: E402
 import prepare_corpus  # noqa: E402
 
@@ -80,8 +81,9 @@ def test_synthetic_input_is_read_from_every_source(sources: tuple[dict[str, Path
 
 def test_no_held_out_message_of_any_figure_is_training_text(prepared: tuple[Path, Path]) -> None:
     data, out = prepared
-    figures = {**bench_core.figure_files(data), **bench_eval.figure_files(data, out), **bench_tune.figure_files(out)}
-    assert len(figures) == 4
+    figures = {**bench_core.figure_files(data), **bench_eval.figure_files(data, out), **bench_tune.figure_files(out),
+               **bench_models.figure_files(data, out)}
+    assert len(figures) == 6
     for name, (train, held_out) in figures.items():
         train_msgs, held = _lines(train), _lines(held_out)
         assert train_msgs and held, name
