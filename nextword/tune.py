@@ -27,13 +27,15 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Any, Callable, Sequence
+from typing import Any, Callable, Iterable, Sequence
 
 import numpy as np
 
 from .errors import InvalidArgumentError
+from .estimators.base import Level
 from .evaluate import evaluate
 from .model import Model
+from .ngrams import NgramCounts
 from .store import MAX_LAMBDA
 
 __all__ = [
@@ -46,6 +48,13 @@ __all__ = [
     "keystroke_search",
     "LambdaBuckets",
     "MAX_LAMBDA",
+    "OrderEvents",
+    "order_events",
+    "order_probs",
+    "order_perplexity",
+    "order_loglik",
+    "em_order_lambdas",
+    "optimal_order_lambdas",
 ]
 
 
@@ -239,3 +248,286 @@ def keystroke_search(
         ksr(lo + i * refine_step)
     best = max(sorted(curve), key=lambda x: curve[x])
     return best, dict(sorted(curve.items()))
+
+
+# -- λ per order: an interpolated Jelinek-Mercer model of order n (n ≤ 3) ----------------------
+
+
+@dataclass(frozen=True)
+class OrderEvents:
+    """Held-out tokens of an order-n model as per-order counts (one row per token).
+
+    Column m−1 is order m: ``count[:, m−1]`` = c(h w) and ``total[:, m−1]`` = c(h •) for
+    the token's context h of m−1 tokens (the last m−1 tokens before w in its sentence,
+    ``<s>`` included, exactly what :meth:`nextword.estimators.Fitted.context_of` keeps);
+    ``total`` is 0 when h was never seen as a context (or the sentence has fewer than m−1
+    tokens before w, e.g. order 3 for a sentence's first token). Column 0 is c(w) and N.
+    Counts are kept (not ratios) so the probabilities below repeat the estimator's own
+    float operations and equal :meth:`Fitted.prob` exactly.
+    """
+
+    count: np.ndarray  # (T, n) int64
+    total: np.ndarray  # (T, n) int64
+
+    @property
+    def order(self) -> int:
+        return int(self.count.shape[1])
+
+    def __len__(self) -> int:
+        return int(self.count.shape[0])
+
+    def seen(self, m: int) -> np.ndarray:
+        """Tokens whose order-m context was seen (every token for m = 1 when N > 0)."""
+        return self.total[:, m - 1] > 0
+
+    def freqs(self) -> np.ndarray:
+        """(T, n) float64 relative frequencies c(h w)/c(h •), NaN where the context is unseen."""
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return np.where(self.total > 0, self.count / np.maximum(self.total, 1), np.nan)
+
+
+def order_events(counts: NgramCounts, sentences: Iterable[Sequence[int]]) -> OrderEvents:
+    """Per-order counts of every held-out token of id ``sentences`` under ``counts``.
+
+    Sentences hold word ids and ``<unk>`` (as :meth:`NgramCounts.from_sentences` takes
+    them); each predicts its tokens and a final ``</s>``. Lookups are vectorised: n-grams
+    are packed into sorted int64 keys (an order-3 key is its context's index times the
+    id base plus w, so no key overflows) and found with ``searchsorted``.
+    """
+    n = counts.order
+    bos, eos, base = counts.bos, counts.eos, counts.bos + 1
+    flat_parts: list[np.ndarray] = []
+    for s in sentences:
+        a = np.asarray(s, dtype=np.int64).reshape(-1)
+        if len(a) and (int(a.min()) < 0 or int(a.max()) > counts.unk or bool((a == eos).any())):
+            bad = int(a[(a < 0) | (a > counts.unk) | (a == eos)][0])
+            raise InvalidArgumentError(f"sentence id {bad} is not a word or <unk> id (0..{counts.unk}, not {eos})")
+        flat_parts.append(np.concatenate(([bos], a, [eos])))
+    flat = np.concatenate(flat_parts) if flat_parts else np.zeros(0, np.int64)
+    pos = np.flatnonzero(flat != bos)
+    w = flat[pos]
+    p1 = flat[pos - 1] if len(pos) else np.zeros(0, np.int64)
+    p2 = np.full(len(pos), -1, np.int64)
+    has2 = p1 != bos
+    p2[has2] = flat[pos[has2] - 2]
+    T = len(w)
+    count = np.zeros((T, n), np.int64)
+    total = np.zeros((T, n), np.int64)
+    levels = [Level.of(counts.grams[m], counts.counts[m]) for m in range(n)]
+    # order 1: c(w) and N
+    lev = levels[0]
+    if len(lev.grams):
+        count[:, 0] = _lookup(lev.grams[:, 0], lev.value, w)
+        total[:, 0] = int(lev.ctx_total[0])
+    for m in range(2, n + 1):
+        lev = levels[m - 1]
+        if len(lev.grams) == 0:
+            continue
+        if m == 2:
+            ckey, tkey, ok = lev.ctx[:, 0], p1, np.ones(T, bool)
+        else:
+            ckey, tkey, ok = lev.ctx[:, 0] * base + lev.ctx[:, 1], p2 * base + p1, has2
+        j = _index(ckey, tkey)
+        j[~ok] = -1
+        found = j >= 0
+        total[found, m - 1] = lev.ctx_total[j[found]]
+        owner = np.repeat(np.arange(len(lev.ctx), dtype=np.int64), np.diff(lev.ctx_start))
+        gkey = owner * base + lev.grams[:, -1]
+        count[found, m - 1] = _lookup(gkey, lev.value, j[found] * base + w[found])
+    return OrderEvents(count, total)
+
+
+def _index(keys: np.ndarray, query: np.ndarray) -> np.ndarray:
+    """Position of each query in the sorted distinct ``keys``, −1 when absent."""
+    if len(keys) == 0:
+        return np.full(len(query), -1, np.int64)
+    i = np.searchsorted(keys, query)
+    i_c = np.minimum(i, len(keys) - 1)
+    return np.where(keys[i_c] == query, i_c, -1).astype(np.int64)
+
+
+def _lookup(keys: np.ndarray, values: np.ndarray, query: np.ndarray) -> np.ndarray:
+    i = _index(keys, query)
+    return np.where(i >= 0, values[np.maximum(i, 0)], 0).astype(np.int64)
+
+
+def _check_lams(events: OrderEvents, lams: Sequence[float]) -> list[float]:
+    if len(lams) != events.order - 1:
+        raise InvalidArgumentError(f"{len(lams)} λ values given for order {events.order} (need {events.order - 1})")
+    for lam in lams:
+        if isinstance(lam, bool) or not isinstance(lam, (int, float)) or not 0.0 <= float(lam) <= MAX_LAMBDA:
+            raise InvalidArgumentError(f"λ must be a number in [0, {MAX_LAMBDA}], got {lam!r}")
+    return [float(x) for x in lams]
+
+
+def _levels(events: OrderEvents, lams: Sequence[float]) -> list[np.ndarray]:
+    """P_m of every token for m = 1..n, in the operations of ``FittedJelinekMercer``."""
+    c, t = events.count, events.total
+    seen = t > 0
+    p = np.where(seen[:, 0], 1.0 * (c[:, 0] / np.maximum(t[:, 0], 1)) + 0.0 * 0.0, 0.0)
+    out = [p]
+    for m in range(2, events.order + 1):
+        lam = float(lams[m - 2])
+        a = lam * (c[:, m - 1] / np.maximum(t[:, m - 1], 1))
+        p = np.where(seen[:, m - 1], a + (1.0 - lam) * p, p)
+        out.append(p)
+    return out
+
+
+def order_probs(events: OrderEvents, lams: Sequence[float]) -> np.ndarray:
+    """P(w | context) of every held-out token under ``JelinekMercer(lams)`` (λ2, λ3, ...)."""
+    return _levels(events, _check_lams(events, lams))[-1]
+
+
+def order_perplexity(events: OrderEvents, lams: Sequence[float]) -> float:
+    """Held-out perplexity of ``JelinekMercer(lams)`` over every token (``inf`` if one has P = 0)."""
+    if len(events) == 0:
+        raise InvalidArgumentError("no held-out tokens: the text is empty")
+    p = order_probs(events, lams)
+    with np.errstate(divide="ignore"):
+        return float(np.exp(-np.log(p).mean()))
+
+
+def _scored(events: OrderEvents) -> OrderEvents:
+    """The tokens λ can act on: c(w) > 0 (a word never seen has P = 0 for every λ)."""
+    keep = events.count[:, 0] > 0
+    return OrderEvents(events.count[keep], events.total[keep])
+
+
+def order_loglik(events: OrderEvents, lams: Sequence[float]) -> float:
+    """Σ ln P over the held-out tokens with c(w) > 0 (the others are 0 for every λ)."""
+    p = order_probs(_scored(events), lams)
+    return float(np.log(p).sum())
+
+
+def _em_step(events: OrderEvents, lams: list[float]) -> list[float]:
+    """One EM update of every λ (``events`` already restricted to tokens with c(w) > 0).
+
+    A token's probability is a mixture over the orders whose context was seen: order m
+    takes A_m = λ_m b_m Π_{k>m, seen}(1−λ_k), the unigram A_1 = u Π_{k≥2, seen}(1−λ_k),
+    and P = Σ A_m (an unseen context passes its whole mass down). E-step: the posterior
+    shares r_m = A_m / P. The complete-data log-likelihood separates into one binomial
+    per order (at order m, "stop here" against "go lower", for tokens that reached m), so
+    the M-step is λ_m = Σ r_m / Σ_{k≤m} r_k over tokens with a seen order-m context.
+    Capping at MAX_LAMBDA is the constrained M-step (each term is concave in its λ), so
+    this generalised EM still never decreases the likelihood.
+    """
+    levels = _levels(events, lams)
+    c, t = events.count, events.total
+    P = levels[-1]
+    n = events.order
+    # A_m = λ_m b_m × (product of (1 − λ_k) over the seen orders above m)
+    above = np.ones(len(P))
+    shares: dict[int, np.ndarray] = {}
+    for m in range(n, 1, -1):
+        seen = t[:, m - 1] > 0
+        lam = lams[m - 2]
+        b = c[:, m - 1] / np.maximum(t[:, m - 1], 1)
+        shares[m] = np.where(seen, above * lam * b, 0.0) / P
+        above = np.where(seen, above * (1.0 - lam), above)
+    new = list(lams)
+    cum_above = np.zeros(len(P))  # Σ_{k>m} r_k
+    for m in range(n, 1, -1):
+        seen = t[:, m - 1] > 0
+        reach = 1.0 - cum_above  # Σ_{k≤m} r_k
+        den = float(reach[seen].sum())
+        if den > 0.0:
+            new[m - 2] = min(max(float(shares[m][seen].sum()) / den, 0.0), MAX_LAMBDA)
+        cum_above = cum_above + shares[m]
+    return new
+
+
+def em_order_lambdas(
+    events: OrderEvents, *, start: Sequence[float] | None = None, iterations: int = 200
+) -> tuple[list[float], list[float]]:
+    """EM for [λ2, ..., λn] from ``start`` (0.5 each); returns the last λ and the log-likelihood after each step.
+
+    Every iterate lies in [0, MAX_LAMBDA]; the trace never decreases (Dempster, Laird &
+    Rubin 1977; see :func:`_em_step` for the capped M-step). A λ whose order has no
+    held-out token with a seen context does not change the likelihood and keeps its start.
+    """
+    ev = _scored(events)
+    lams = _check_lams(ev, [0.5] * (ev.order - 1) if start is None else list(start))
+    trace = [order_loglik(ev, lams)]
+    for _ in range(iterations):
+        new = _em_step(ev, lams)
+        trace.append(order_loglik(ev, new))
+        done = max((abs(a - b) for a, b in zip(new, lams)), default=0.0) < 1e-13
+        lams = new
+        if done:
+            break
+    return lams, trace
+
+
+def _line_max(alpha: np.ndarray, beta: np.ndarray) -> float:
+    """argmax over x in [0, MAX_LAMBDA] of Σ ln(α + β x), a concave function (α + βx > 0 on the interval)."""
+    def slope(x: float) -> float:
+        return float(np.sum(beta / (alpha + beta * x)))
+
+    if len(alpha) == 0 or slope(0.0) <= 0.0:
+        return 0.0
+    if slope(MAX_LAMBDA) >= 0.0:
+        return MAX_LAMBDA
+    lo, hi = 0.0, MAX_LAMBDA
+    x = 0.5 * (lo + hi)
+    for _ in range(200):  # safeguarded Newton: the bracket always holds the root of the slope
+        p = alpha + beta * x
+        g = float(np.sum(beta / p))
+        if g > 0.0:
+            lo = x
+        else:
+            hi = x
+        h = -float(np.sum((beta / p) ** 2))
+        nx = x - g / h if h < 0.0 else 0.5 * (lo + hi)
+        if not lo < nx < hi:
+            nx = 0.5 * (lo + hi)
+        if abs(nx - x) <= 1e-15 or hi - lo <= 1e-15:
+            return nx
+        x = nx
+    return x
+
+
+def _coordinate_step(events: OrderEvents, lams: list[float], m: int) -> list[float]:
+    """Maximise the likelihood exactly in λ_m with the other λ fixed (it is concave in each one).
+
+    For a token with a seen order-m context, P = hi + coef·(λ_m b_m + (1 − λ_m) P_{m−1}),
+    where hi is the mass of the orders above and coef the product of their (1 − λ); so P
+    is affine in λ_m: α + β λ_m with α = hi + coef·P_{m−1}, β = coef·(b_m − P_{m−1}).
+    """
+    levels = _levels(events, lams)
+    c, t = events.count, events.total
+    P = levels[-1]
+    seen = t[:, m - 1] > 0
+    coef = np.ones(len(P))
+    for k in range(events.order, m, -1):
+        coef = np.where(t[:, k - 1] > 0, coef * (1.0 - lams[k - 2]), coef)
+    lower = levels[m - 2]
+    b = c[:, m - 1] / np.maximum(t[:, m - 1], 1)
+    lam = lams[m - 2]
+    hi = P - coef * (lam * b + (1.0 - lam) * lower)
+    alpha = (hi + coef * lower)[seen]
+    beta = (coef * (b - lower))[seen]
+    new = list(lams)
+    new[m - 2] = _line_max(alpha, beta)
+    return new
+
+
+def optimal_order_lambdas(events: OrderEvents, *, iterations: int = 200, cycles: int = 500) -> list[float]:
+    """[λ2, ..., λn] maximising the held-out log-likelihood on [0, MAX_LAMBDA]^(n−1).
+
+    EM gets close (``iterations`` steps) but slows down near the optimum; exact
+    one-λ-at-a-time maximisation then finishes (the likelihood is concave in each λ
+    alone, since P is affine in it), up to ``cycles`` rounds over the orders until no λ
+    moves by more than 1e-12. Every step of both never lowers the likelihood.
+    """
+    ev = _scored(events)
+    if len(ev) == 0:
+        raise InvalidArgumentError("no held-out tokens with a seen word: cannot fit λ")
+    lams, _ = em_order_lambdas(ev, iterations=iterations)
+    for _ in range(cycles):
+        old = list(lams)
+        for m in range(2, ev.order + 1):
+            lams = _coordinate_step(ev, lams, m)
+        if max((abs(a - b) for a, b in zip(old, lams)), default=0.0) <= 1e-12:
+            break
+    return lams
