@@ -74,6 +74,8 @@ __all__ = [
     "order_loglik",
     "em_order_lambdas",
     "optimal_order_lambdas",
+    "OrderBuckets",
+    "fit_order_buckets",
 ]
 
 
@@ -184,14 +186,8 @@ class LambdaBuckets:
         return {"bounds": self.bounds, "lambdas": self.lambdas}
 
 
-def fit_buckets(events: Events, *, min_events: int = 500, base: float = 2.0) -> LambdaBuckets:
-    """Logarithmic count bins merged until each has ``min_events`` held-out tokens; λ per bucket."""
-    if min_events < 1:
-        raise InvalidArgumentError(f"min_events must be >= 1, got {min_events}")
-    seen = events.seen
-    cv = events.cv[seen]
-    if len(cv) == 0:
-        raise InvalidArgumentError("no held-out tokens with a seen history: cannot fit λ buckets")
+def _bucket_bounds(cv: np.ndarray, *, min_events: int, base: float) -> list[int]:
+    """Edges of logarithmic count bins of the (seen, ≥ 1) context counts ``cv``, merged until each has ``min_events``."""
     top = int(cv.max())
     edges = [1]
     while edges[-1] <= top:
@@ -207,11 +203,22 @@ def fit_buckets(events: Events, *, min_events: int = 500, base: float = 2.0) -> 
     while len(groups) > 1 and sum(per_bin[j] for j in groups[-1]) < min_events:
         last = groups.pop()
         groups[-1].extend(last)
-    bounds = [edges[g[0]] for g in groups[1:]]
+    return [edges[g[0]] for g in groups[1:]]
+
+
+def fit_buckets(events: Events, *, min_events: int = 500, base: float = 2.0) -> LambdaBuckets:
+    """Logarithmic count bins merged until each has ``min_events`` held-out tokens; λ per bucket."""
+    if min_events < 1:
+        raise InvalidArgumentError(f"min_events must be >= 1, got {min_events}")
+    seen = events.seen
+    cv = events.cv[seen]
+    if len(cv) == 0:
+        raise InvalidArgumentError("no held-out tokens with a seen history: cannot fit λ buckets")
+    bounds = _bucket_bounds(cv, min_events=min_events, base=base)
     lambdas, counts = [], []
-    for gi, g in enumerate(groups):
-        lo = edges[g[0]] if gi else 0
-        hi = edges[g[-1] + 1] if gi < len(groups) - 1 else math.inf
+    for gi in range(len(bounds) + 1):
+        lo = bounds[gi - 1] if gi else 0
+        hi = bounds[gi] if gi < len(bounds) else math.inf
         mask = (events.cv >= lo) & (events.cv < hi)
         b, u = events.bu(mask)
         counts.append(len(b))
@@ -370,36 +377,94 @@ def _lookup(keys: np.ndarray, values: np.ndarray, query: np.ndarray) -> np.ndarr
     return np.where(i >= 0, values[np.maximum(i, 0)], 0).astype(np.int64)
 
 
-def _check_lams(events: OrderEvents, lams: Sequence[float]) -> list[float]:
-    if len(lams) != events.order - 1:
-        raise InvalidArgumentError(f"{len(lams)} λ values given for order {events.order} (need {events.order - 1})")
-    for lam in lams:
-        if isinstance(lam, bool) or not isinstance(lam, (int, float)) or not 0.0 <= float(lam) <= MAX_LAMBDA:
-            raise InvalidArgumentError(f"λ must be a number in [0, {MAX_LAMBDA}], got {lam!r}")
-    return [float(x) for x in lams]
+@dataclass
+class OrderBuckets:
+    """λ per order and per bucket of context count.
+
+    For order m (list index m−2), bucket i holds the contexts h with
+    ``bounds[m−2][i−1] ≤ c(h •) < bounds[m−2][i]``; ``lambdas[m−2][i]`` is its λ and
+    ``events[m−2][i]`` the number of held-out tokens it was fitted on.
+    """
+
+    bounds: list[list[int]]
+    lambdas: list[list[float]]
+    events: list[list[int]] = field(default_factory=list)
+
+    def lam_for(self, m: int, context_count: int) -> float:
+        """λ of order m for a context seen ``context_count`` times."""
+        i = int(np.searchsorted(np.asarray(self.bounds[m - 2], np.int64), context_count, side="right"))
+        return self.lambdas[m - 2][i]
+
+    def as_meta(self) -> dict[str, list[Any]]:
+        return {"bounds": self.bounds, "lambdas": self.lambdas}
 
 
-def _levels(events: OrderEvents, lams: Sequence[float]) -> list[np.ndarray]:
-    """P_m of every token for m = 1..n, in the operations of ``FittedJelinekMercer``."""
+Lambdas = Sequence[float] | OrderBuckets
+
+
+def _groups(events: OrderEvents, bounds: Sequence[Sequence[int]]) -> list[np.ndarray]:
+    """Bucket of every token at each order m ≥ 2 (by its context count c(h •))."""
+    return [
+        np.searchsorted(np.asarray(b, np.int64), events.total[:, m - 1], side="right").astype(np.int64)
+        for m, b in enumerate(bounds, 2)
+    ]
+
+
+def _single(events: OrderEvents) -> list[np.ndarray]:
+    return [np.zeros(len(events), np.int64) for _ in range(events.order - 1)]
+
+
+def _check_lams(events: OrderEvents, lams: Lambdas) -> tuple[list[np.ndarray], list[np.ndarray]]:
+    """(λ per bucket, bucket of each token) per order m ≥ 2, validated."""
+    n = events.order
+    if isinstance(lams, OrderBuckets):
+        if len(lams.bounds) != n - 1 or len(lams.lambdas) != n - 1:
+            raise InvalidArgumentError(f"{len(lams.lambdas)} orders of λ buckets given for order {n} (need {n - 1})")
+        for b, v in zip(lams.bounds, lams.lambdas):
+            if len(v) != len(b) + 1 or any(x >= y for x, y in zip(b, b[1:])):
+                raise InvalidArgumentError(f"λ buckets need increasing bounds and one λ more than bounds, got {b!r} and {v!r}")
+        values, groups = list(lams.lambdas), _groups(events, lams.bounds)
+    else:
+        if len(lams) != n - 1:
+            raise InvalidArgumentError(f"{len(lams)} λ values given for order {n} (need {n - 1})")
+        values, groups = [[x] for x in lams], _single(events)
+    for v in values:
+        for lam in v:
+            if isinstance(lam, bool) or not isinstance(lam, (int, float)) or not 0.0 <= float(lam) <= MAX_LAMBDA:
+                raise InvalidArgumentError(f"λ must be a number in [0, {MAX_LAMBDA}], got {lam!r}")
+    return [np.asarray(v, np.float64) for v in values], groups
+
+
+def _levels(events: OrderEvents, lam_tok: Sequence[float | np.ndarray]) -> list[np.ndarray]:
+    """P_m of every token for m = 1..n, in the operations of ``FittedJelinekMercer``.
+
+    ``lam_tok[m−2]`` is λ_m, one number or one per token (elementwise, the same IEEE
+    operations, so the result equals the estimator's ``prob`` exactly).
+    """
     c, t = events.count, events.total
     seen = t > 0
     p = np.where(seen[:, 0], 1.0 * (c[:, 0] / np.maximum(t[:, 0], 1)) + 0.0 * 0.0, 0.0)
     out = [p]
     for m in range(2, events.order + 1):
-        lam = float(lams[m - 2])
+        lam = lam_tok[m - 2]
         a = lam * (c[:, m - 1] / np.maximum(t[:, m - 1], 1))
         p = np.where(seen[:, m - 1], a + (1.0 - lam) * p, p)
         out.append(p)
     return out
 
 
-def order_probs(events: OrderEvents, lams: Sequence[float]) -> np.ndarray:
-    """P(w | context) of every held-out token under ``JelinekMercer(lams)`` (λ2, λ3, ...)."""
-    return _levels(events, _check_lams(events, lams))[-1]
+def _per_token(values: list[np.ndarray], groups: list[np.ndarray]) -> list[np.ndarray]:
+    return [v[g] for v, g in zip(values, groups)]
 
 
-def order_perplexity(events: OrderEvents, lams: Sequence[float]) -> float:
-    """Held-out perplexity of ``JelinekMercer(lams)`` over every token (``inf`` if one has P = 0)."""
+def order_probs(events: OrderEvents, lams: Lambdas) -> np.ndarray:
+    """P(w | context) of every held-out token under ``JelinekMercer(lams)`` ([λ2, λ3, ...] or buckets)."""
+    values, groups = _check_lams(events, lams)
+    return _levels(events, _per_token(values, groups))[-1]
+
+
+def order_perplexity(events: OrderEvents, lams: Lambdas) -> float:
+    """Held-out perplexity over every token (``inf`` if one has P = 0, e.g. a word never seen)."""
     if len(events) == 0:
         raise InvalidArgumentError("no held-out tokens: the text is empty")
     p = order_probs(events, lams)
@@ -413,69 +478,51 @@ def _scored(events: OrderEvents) -> OrderEvents:
     return OrderEvents(events.count[keep], events.total[keep])
 
 
-def order_loglik(events: OrderEvents, lams: Sequence[float]) -> float:
+def order_loglik(events: OrderEvents, lams: Lambdas) -> float:
     """Σ ln P over the held-out tokens with c(w) > 0 (the others are 0 for every λ)."""
     p = order_probs(_scored(events), lams)
     return float(np.log(p).sum())
 
 
-def _em_step(events: OrderEvents, lams: list[float]) -> list[float]:
+def _loglik_of(events: OrderEvents, values: list[np.ndarray], groups: list[np.ndarray]) -> float:
+    return float(np.log(_levels(events, _per_token(values, groups))[-1]).sum())
+
+
+def _em_step(events: OrderEvents, values: list[np.ndarray], groups: list[np.ndarray]) -> list[np.ndarray]:
     """One EM update of every λ (``events`` already restricted to tokens with c(w) > 0).
 
     A token's probability is a mixture over the orders whose context was seen: order m
     takes A_m = λ_m b_m Π_{k>m, seen}(1−λ_k), the unigram A_1 = u Π_{k≥2, seen}(1−λ_k),
     and P = Σ A_m (an unseen context passes its whole mass down). E-step: the posterior
     shares r_m = A_m / P. The complete-data log-likelihood separates into one binomial
-    per order (at order m, "stop here" against "go lower", for tokens that reached m), so
-    the M-step is λ_m = Σ r_m / Σ_{k≤m} r_k over tokens with a seen order-m context.
-    Capping at MAX_LAMBDA is the constrained M-step (each term is concave in its λ), so
-    this generalised EM still never decreases the likelihood.
+    per order and bucket (at order m, "stop here" against "go lower", for the tokens
+    that reached m), so the M-step is λ_m = Σ r_m / Σ_{k≤m} r_k over the bucket's tokens
+    with a seen order-m context. Capping at MAX_LAMBDA is the constrained M-step (each
+    term is concave in its λ), so this generalised EM never decreases the likelihood.
     """
-    levels = _levels(events, lams)
+    lam_tok = _per_token(values, groups)
     c, t = events.count, events.total
-    P = levels[-1]
+    P = _levels(events, lam_tok)[-1]
     n = events.order
-    # A_m = λ_m b_m × (product of (1 − λ_k) over the seen orders above m)
-    above = np.ones(len(P))
+    above = np.ones(len(P))  # product of (1 − λ_k) over the seen orders above m
     shares: dict[int, np.ndarray] = {}
     for m in range(n, 1, -1):
         seen = t[:, m - 1] > 0
-        lam = lams[m - 2]
+        lam = lam_tok[m - 2]
         b = c[:, m - 1] / np.maximum(t[:, m - 1], 1)
         shares[m] = np.where(seen, above * lam * b, 0.0) / P
         above = np.where(seen, above * (1.0 - lam), above)
-    new = list(lams)
+    new = [v.copy() for v in values]
     cum_above = np.zeros(len(P))  # Σ_{k>m} r_k
     for m in range(n, 1, -1):
         seen = t[:, m - 1] > 0
-        reach = 1.0 - cum_above  # Σ_{k≤m} r_k
-        den = float(reach[seen].sum())
-        if den > 0.0:
-            new[m - 2] = min(max(float(shares[m][seen].sum()) / den, 0.0), MAX_LAMBDA)
+        g, k = groups[m - 2][seen], len(values[m - 2])
+        num = np.bincount(g, shares[m][seen], minlength=k)
+        den = np.bincount(g, (1.0 - cum_above)[seen], minlength=k)  # Σ_{k≤m} r_k
+        upd = den > 0.0
+        new[m - 2][upd] = np.clip(num[upd] / den[upd], 0.0, MAX_LAMBDA)
         cum_above = cum_above + shares[m]
     return new
-
-
-def em_order_lambdas(
-    events: OrderEvents, *, start: Sequence[float] | None = None, iterations: int = 200
-) -> tuple[list[float], list[float]]:
-    """EM for [λ2, ..., λn] from ``start`` (0.5 each); returns the last λ and the log-likelihood after each step.
-
-    Every iterate lies in [0, MAX_LAMBDA]; the trace never decreases (Dempster, Laird &
-    Rubin 1977; see :func:`_em_step` for the capped M-step). A λ whose order has no
-    held-out token with a seen context does not change the likelihood and keeps its start.
-    """
-    ev = _scored(events)
-    lams = _check_lams(ev, [0.5] * (ev.order - 1) if start is None else list(start))
-    trace = [order_loglik(ev, lams)]
-    for _ in range(iterations):
-        new = _em_step(ev, lams)
-        trace.append(order_loglik(ev, new))
-        done = max((abs(a - b) for a, b in zip(new, lams)), default=0.0) < 1e-13
-        lams = new
-        if done:
-            break
-    return lams, trace
 
 
 def _line_max(alpha: np.ndarray, beta: np.ndarray) -> float:
@@ -490,13 +537,13 @@ def _line_max(alpha: np.ndarray, beta: np.ndarray) -> float:
     lo, hi = 0.0, MAX_LAMBDA
     x = 0.5 * (lo + hi)
     for _ in range(200):  # safeguarded Newton: the bracket always holds the root of the slope
-        p = alpha + beta * x
-        g = float(np.sum(beta / p))
+        q = beta / (alpha + beta * x)
+        g = float(np.sum(q))
         if g > 0.0:
             lo = x
         else:
             hi = x
-        h = -float(np.sum((beta / p) ** 2))
+        h = -float(np.sum(q * q))
         nx = x - g / h if h < 0.0 else 0.5 * (lo + hi)
         if not lo < nx < hi:
             nx = 0.5 * (lo + hi)
@@ -506,29 +553,73 @@ def _line_max(alpha: np.ndarray, beta: np.ndarray) -> float:
     return x
 
 
-def _coordinate_step(events: OrderEvents, lams: list[float], m: int) -> list[float]:
-    """Maximise the likelihood exactly in λ_m with the other λ fixed (it is concave in each one).
+def _coordinate_step(events: OrderEvents, values: list[np.ndarray], groups: list[np.ndarray], m: int) -> list[np.ndarray]:
+    """Maximise the likelihood exactly in each λ of order m, the other orders fixed.
 
-    For a token with a seen order-m context, P = hi + coef·(λ_m b_m + (1 − λ_m) P_{m−1}),
+    For a token with a seen order-m context, P = hi + coef·(λ b_m + (1 − λ) P_{m−1}),
     where hi is the mass of the orders above and coef the product of their (1 − λ); so P
-    is affine in λ_m: α + β λ_m with α = hi + coef·P_{m−1}, β = coef·(b_m − P_{m−1}).
+    is affine in λ (α + β λ with α = hi + coef·P_{m−1}, β = coef·(b_m − P_{m−1})) and the
+    likelihood is concave in it. Each bucket's λ touches only its own tokens, so the
+    buckets of one order are solved independently.
     """
-    levels = _levels(events, lams)
+    lam_tok = _per_token(values, groups)
+    levels = _levels(events, lam_tok)
     c, t = events.count, events.total
     P = levels[-1]
     seen = t[:, m - 1] > 0
     coef = np.ones(len(P))
     for k in range(events.order, m, -1):
-        coef = np.where(t[:, k - 1] > 0, coef * (1.0 - lams[k - 2]), coef)
+        coef = np.where(t[:, k - 1] > 0, coef * (1.0 - lam_tok[k - 2]), coef)
     lower = levels[m - 2]
     b = c[:, m - 1] / np.maximum(t[:, m - 1], 1)
-    lam = lams[m - 2]
+    lam = lam_tok[m - 2]
     hi = P - coef * (lam * b + (1.0 - lam) * lower)
-    alpha = (hi + coef * lower)[seen]
-    beta = (coef * (b - lower))[seen]
-    new = list(lams)
-    new[m - 2] = _line_max(alpha, beta)
+    alpha = hi + coef * lower
+    beta = coef * (b - lower)
+    new = [v.copy() for v in values]
+    for gi in range(len(values[m - 2])):
+        sel = seen & (groups[m - 2] == gi)
+        if bool(sel.any()):
+            new[m - 2][gi] = _line_max(alpha[sel], beta[sel])
     return new
+
+
+def _em(events: OrderEvents, values: list[np.ndarray], groups: list[np.ndarray], iterations: int) -> tuple[list[np.ndarray], list[float]]:
+    trace = [_loglik_of(events, values, groups)]
+    for _ in range(iterations):
+        new = _em_step(events, values, groups)
+        trace.append(_loglik_of(events, new, groups))
+        done = max((float(np.abs(a - b).max()) for a, b in zip(new, values)), default=0.0) < 1e-13
+        values = new
+        if done:
+            break
+    return values, trace
+
+
+def _optimise(events: OrderEvents, values: list[np.ndarray], groups: list[np.ndarray], iterations: int, cycles: int) -> list[np.ndarray]:
+    values, _ = _em(events, values, groups, iterations)
+    for _ in range(cycles):
+        old = values
+        for m in range(2, events.order + 1):
+            values = _coordinate_step(events, values, groups, m)
+        if max((float(np.abs(a - b).max()) for a, b in zip(old, values)), default=0.0) <= 1e-12:
+            break
+    return values
+
+
+def em_order_lambdas(
+    events: OrderEvents, *, start: Sequence[float] | None = None, iterations: int = 200
+) -> tuple[list[float], list[float]]:
+    """EM for [λ2, ..., λn] from ``start`` (0.5 each); returns the last λ and the log-likelihood after each step.
+
+    Every iterate lies in [0, MAX_LAMBDA]; the trace never decreases (Dempster, Laird &
+    Rubin 1977; see :func:`_em_step` for the capped M-step). A λ whose order has no
+    held-out token with a seen context does not change the likelihood and keeps its start.
+    """
+    ev = _scored(events)
+    values, groups = _check_lams(ev, [0.5] * (ev.order - 1) if start is None else list(start))
+    values, trace = _em(ev, values, groups, iterations)
+    return [float(v[0]) for v in values], trace
 
 
 def optimal_order_lambdas(events: OrderEvents, *, iterations: int = 200, cycles: int = 500) -> list[float]:
@@ -542,11 +633,32 @@ def optimal_order_lambdas(events: OrderEvents, *, iterations: int = 200, cycles:
     ev = _scored(events)
     if len(ev) == 0:
         raise InvalidArgumentError("no held-out tokens with a seen word: cannot fit λ")
-    lams, _ = em_order_lambdas(ev, iterations=iterations)
-    for _ in range(cycles):
-        old = list(lams)
-        for m in range(2, ev.order + 1):
-            lams = _coordinate_step(ev, lams, m)
-        if max((abs(a - b) for a, b in zip(old, lams)), default=0.0) <= 1e-12:
-            break
-    return lams
+    values, groups = _check_lams(ev, [0.5] * (ev.order - 1))
+    return [float(v[0]) for v in _optimise(ev, values, groups, iterations, cycles)]
+
+
+def fit_order_buckets(
+    events: OrderEvents, *, min_events: int = 500, base: float = 2.0, iterations: int = 200, cycles: int = 500
+) -> OrderBuckets:
+    """λ per order and per bucket of context count c(h •), bucketed as :func:`fit_buckets` does.
+
+    Each order's seen contexts are put in logarithmic count bins merged until each holds
+    ``min_events`` held-out tokens. The fit starts from the single optimal λ per order
+    (every bucket equal to it) and only climbs from there (EM, then exact per-bucket
+    maximisation), so its held-out likelihood is never below the single λ's.
+    """
+    if isinstance(min_events, bool) or not isinstance(min_events, int) or min_events < 1:
+        raise InvalidArgumentError(f"min_events must be an integer >= 1, got {min_events!r}")
+    ev = _scored(events)
+    single = optimal_order_lambdas(ev, iterations=iterations, cycles=cycles)
+    bounds: list[list[int]] = []
+    for m in range(2, ev.order + 1):
+        cv = ev.total[ev.seen(m), m - 1]
+        bounds.append(_bucket_bounds(cv, min_events=min_events, base=base) if len(cv) else [])
+    groups = _groups(ev, bounds)
+    start = [np.full(len(b) + 1, lam) for b, lam in zip(bounds, single)]
+    values = _optimise(ev, start, groups, iterations, cycles)
+    counts = [
+        np.bincount(g[ev.seen(m)], minlength=len(b) + 1).tolist() for m, (g, b) in enumerate(zip(groups, bounds), 2)
+    ]
+    return OrderBuckets(bounds, [[float(x) for x in v] for v in values], counts)

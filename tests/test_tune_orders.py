@@ -23,7 +23,9 @@ from nextword.ngrams import NgramCounts
 from nextword.store import MAX_LAMBDA
 from nextword.text import UNK, fold, sentences
 from nextword.tune import (
+    OrderBuckets,
     em_order_lambdas,
+    fit_order_buckets,
     optimal_order_lambdas,
     order_events,
     order_loglik,
@@ -188,6 +190,62 @@ def test_tuning_lowers_held_out_perplexity_on_real_text() -> None:
     assert after <= order_perplexity(ev2, optimal_order_lambdas(ev2))
 
 
+@settings(max_examples=40, deadline=None)
+@given(corpus, corpus, st.integers(1, 6))
+def test_buckets_probabilities_and_per_bucket_optimum(train: list[list[int]], held: list[list[int]], min_events: int) -> None:
+    counts = NgramCounts.from_sentences(train, V, 3)
+    ev = order_events(counts, held)
+    if int((ev.count[:, 0] > 0).sum()) == 0:
+        return
+    bk = fit_order_buckets(ev, min_events=min_events, base=2.0)
+    single = optimal_order_lambdas(ev)
+    # starts from the single optimum and only climbs: never worse than one λ per order
+    assert order_loglik(ev, bk) >= order_loglik(ev, single) - 1e-9
+    # every bucket's λ beats a grid for that bucket with the others held (grid search, common practice)
+    grid = np.linspace(0.0, MAX_LAMBDA, 21)
+    best = order_loglik(ev, bk)
+    for o in range(2):
+        for i in range(len(bk.lambdas[o])):
+            for g in grid:
+                lam = [list(v) for v in bk.lambdas]
+                lam[o][i] = float(g)
+                assert best >= order_loglik(ev, OrderBuckets(bk.bounds, lam)) - 1e-9
+    # per token, the estimator with that token's λ (by the bucket of each context count)
+    fits: dict[tuple[float, float], object] = {}
+    p = order_probs(ev, bk)
+    row = 0
+    for s in held:
+        for hist, w in _history_tokens(s, counts.bos, counts.eos):
+            key = (bk.lam_for(2, int(ev.total[row, 1])), bk.lam_for(3, int(ev.total[row, 2])))
+            fitted = fits.setdefault(key, JelinekMercer(list(key)).fit(counts))
+            assert p[row] == fitted.prob(w, hist)  # type: ignore[attr-defined]
+            row += 1
+
+
+def test_one_bucket_per_order_is_the_single_optimum_and_buckets_help_on_real_text() -> None:
+    from pydoc_data.topics import topics
+
+    lines = [ln for k in sorted(topics)[:60] for ln in topics[k].splitlines() if ln.strip()]
+    train = [ln for ln in lines if not is_held_out(ln, 30)]
+    held = [ln for ln in lines if is_held_out(ln, 30)]
+    words = Counter(fold(t) for m in train for s in sentences(m) for t in s if t is not None)
+    vocab = sorted((w for w, c in words.items() if c >= 2), key=lambda w: (-words[w], w))
+    index = {w: i for i, w in enumerate(vocab)}
+    n = len(vocab)
+    counts = NgramCounts.from_sentences(_ids(train, index, n + 1), n, 3)
+    ev = order_events(counts, _ids(held, index, n + 1))
+    single = optimal_order_lambdas(ev)
+    one = fit_order_buckets(ev, min_events=10**9)
+    assert one.bounds == [[], []]
+    assert [v[0] for v in one.lambdas] == pytest.approx(single, abs=1e-9)
+    many = fit_order_buckets(ev, min_events=200)
+    assert all(len(v) > 2 for v in many.lambdas)
+    assert all(x >= 200 for v in many.events for x in v)
+    assert all(0.0 <= x <= MAX_LAMBDA for v in many.lambdas for x in v)
+    assert order_perplexity(ev, many) < order_perplexity(ev, single)
+    assert many.as_meta() == {"bounds": many.bounds, "lambdas": many.lambdas}
+
+
 def test_arguments_are_checked() -> None:
     counts = NgramCounts.from_sentences([[0, 1]], 2, 3)
     ev = order_events(counts, [[0]])
@@ -199,5 +257,11 @@ def test_arguments_are_checked() -> None:
         order_events(counts, [[0, 2]])  # 2 is </s>: not allowed inside a sentence
     with pytest.raises(InvalidArgumentError, match="sentence id 4"):
         order_events(counts, [[4]])  # <s>
+    with pytest.raises(InvalidArgumentError, match="buckets"):
+        order_probs(ev, OrderBuckets([[3]], [[0.5, 0.5]]))  # one order of buckets for order 3
+    with pytest.raises(InvalidArgumentError, match=r"\[3, 2\]"):
+        order_probs(ev, OrderBuckets([[3, 2], []], [[0.5, 0.5, 0.5], [0.5]]))
+    with pytest.raises(InvalidArgumentError, match="min_events"):
+        fit_order_buckets(ev, min_events=0)
     with pytest.raises(InvalidArgumentError, match="empty"):
         order_perplexity(order_events(counts, []), [0.5, 0.5])
