@@ -29,6 +29,8 @@ c(vw), c(v•); c(w), N) with the contexts the estimator itself uses, and
 longer affine in the λ jointly (it is a product (1−λ3)·λ2 ...), but it is a mixture of the
 seen orders, so EM applies unchanged (:func:`em_order_lambdas`, monotone), and it is
 affine in each λ alone, so exact one-λ-at-a-time maximisation finishes where EM slows.
+:func:`fit_order_buckets` does the same with λ per order and per bucket of context
+count (the bins of :func:`fit_buckets`, per order).
 
 Kneser-Ney discounts stay fixed at Chen & Goodman's count-of-counts estimate
 (D_j = j − (j+1)·Y·n_{j+1}/n_j, Y = n_1/(n_1 + 2n_2), per order; ``reference_kn.fit_discounts``)
