@@ -67,6 +67,24 @@ def test_hand_example_events_em_steps_and_optimum() -> None:
     assert order_loglik(ev, [0.25, 0.0]) == pytest.approx(math.log(1.5 / 3) + math.log(0.75 / 3), abs=1e-12)
 
 
+def test_hand_example_em_step_with_a_seen_trigram() -> None:
+    # Same training "y x"; held out "y x": token y after <s>: b2 = 1, u = 1/3 (no two-token context);
+    # x after (<s>, y) and </s> after (y, x): b3 = 1/1, b2 = 1/1, u = 1/3.
+    counts = NgramCounts.from_sentences([[1, 0]], 2, 3)
+    ev = order_events(counts, [[1, 0]])
+    assert ev.count.tolist() == [[1, 1, 0], [1, 1, 1], [1, 1, 1]]
+    assert ev.total.tolist() == [[3, 1, 0], [3, 1, 1], [3, 1, 1]]
+    # EM from (1/2, 1/2), by hand. Token 1: P = 2/3, order-2 share 3/4 (reaches order 2 with weight 1).
+    # Tokens 2, 3: P2 = 1/2 + 1/6 = 2/3, P = 1/2 + (1/2)(2/3) = 5/6; shares r3 = (1/2)/(5/6) = 3/5,
+    # r2 = (1/4)/(5/6) = 3/10, r1 = (1/12)/(5/6) = 1/10; each reaches order 2 with r2 + r1 = 2/5.
+    # λ3 <- (3/5 + 3/5)/2 = 3/5;  λ2 <- (3/4 + 3/10 + 3/10)/(1 + 2/5 + 2/5) = (27/20)/(9/5) = 3/4.
+    one, trace = em_order_lambdas(ev, start=[0.5, 0.5], iterations=1)
+    assert one == pytest.approx([3 / 4, 3 / 5], abs=1e-15)
+    assert trace[0] == pytest.approx(math.log(2 / 3) + 2 * math.log(5 / 6), abs=1e-12)
+    # every b exceeds its lower order here, so L rises in both λ up to the cap
+    assert optimal_order_lambdas(ev) == [MAX_LAMBDA, MAX_LAMBDA]
+
+
 @settings(max_examples=80, deadline=None)
 @given(corpus, corpus, st.floats(0.0, MAX_LAMBDA), st.floats(0.0, MAX_LAMBDA))
 def test_events_give_the_estimators_probability_and_brute_force_counts(
