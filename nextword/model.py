@@ -789,6 +789,8 @@ class Model:
         # spellings); the rest is header, section table, metadata and padding
         pair_bytes = sum(a[s].nbytes for s in _PAIR_SECTIONS)
         vocab_bytes = sum(a[s].nbytes for s in _VOCAB_SECTIONS if s in a) + len(self._src.raw["TRIE"]) + len(self._disb)
+        # Kneser-Ney context counts and the trigram sections (format 1.3)
+        ngram_bytes = sum(a[s].nbytes for s in ("HN13", "TROW", "TCTU", "TCTS", "TSUC", "TVAL", "TTOT", "TN13") if s in a)
         pairs = self.n_bigrams
         return {
             "path": self.path,
@@ -798,13 +800,14 @@ class Model:
             "bigrams": self.n_bigrams,
             "vocabulary_bytes": vocab_bytes,
             "pair_bytes": pair_bytes,
-            "other_bytes": self.file_size - vocab_bytes - pair_bytes,
+            "other_bytes": self.file_size - vocab_bytes - pair_bytes - ngram_bytes,
+            **({"trigram_and_context_bytes": ngram_bytes} if ngram_bytes else {}),
             "vocabulary_share": vocab_bytes / self.file_size,
             "pair_bytes_per_pair": pair_bytes / pairs if pairs else None,
             "file_bytes_per_pair": self.file_size / pairs if pairs else None,
             "bytes_per_bigram": self.file_size / pairs if pairs else None,
             "bigram_section_bytes_per_bigram": bigram_bytes / pairs if pairs else None,
-            "lambda": self.stored_lam,
+            "lambda": None if self.estimator == "kn" else self.stored_lam,
             "lambda_clamped": self.lambda_clamped,
             "lambda_buckets": (
                 {"bounds": self.lambda_bounds, "lambdas": self.lambda_values} if self.lambda_values else None

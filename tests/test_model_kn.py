@@ -225,3 +225,43 @@ def test_a_discount_order_that_breaks_the_skyband_argument_is_replaced() -> None
     # the unigram level may break it (ids rank by its floor value itself): left as fitted
     fixed, notes = _discount_checks([[0.2, 1.7, 2.5], [0.5, 1.0, 1.5]], 2)
     assert fixed == [[0.2, 1.7, 2.5], [0.5, 1.0, 1.5]] and notes == {}
+
+
+def _cli(*args: str) -> "subprocess.CompletedProcess[str]":
+    import subprocess
+    import sys
+
+    return subprocess.run([sys.executable, "-m", "nextword", *args], capture_output=True, text=True, timeout=120)
+
+
+def test_cli_train_and_info_for_the_new_models(tmp_path: Path) -> None:
+    corpus = tmp_path / "c.txt"
+    corpus.write_text("fix the bike\nfix the bell\nthe bike is fixed\nthe bell rings\n" * 5, encoding="utf-8")
+    out = tmp_path / "k.nwm"
+    r = _cli("train", str(corpus), "-o", str(out), "--order", "3", "--smoothing", "kn", "--min-count", "1")
+    assert r.returncode == 0, r.stderr
+    info = _cli("info", str(out), "--json", "--verify")
+    import json
+
+    data = json.loads(info.stdout)
+    assert (data["estimator"], data["order"], data["format_version"]) == ("kn", 3, "1.3")
+    assert len(data["discounts"]) == 3 and "too few counts" in data["discount_notes"]["3"]
+    text = _cli("info", str(out)).stdout
+    assert "estimator" in text and "discount_notes" in text
+    assert _cli("suggest", str(out), "fix the b").stdout.count("bike") == 1
+    for args, needle in [
+        (["--order", "4"], "invalid choice: 4"),
+        (["--smoothing", "wb"], "invalid choice: 'wb'"),
+        (["--smoothing", "kn", "--lam", "0.5"], "lam=0.5 given with Kneser-Ney"),
+        (["--smoothing", "kn", "--max-size", "1MB"], "size budget"),
+        (["--order", "3", "--max-size", "1MB"], "size budget"),
+        (["--lam3", "0.5"], "--lam3 0.5 needs --order 3 --smoothing jm"),
+    ]:
+        r = _cli("train", str(corpus), "-o", str(tmp_path / "x.nwm"), *args)
+        lines = r.stderr.strip().splitlines()
+        assert r.returncode == 2 and len(lines) == 1 and lines[0].startswith("nextword: error:") and needle in lines[0], r.stderr
+    r = _cli("suggest", str(out), "--lam", "0.3", "fix ")
+    assert r.returncode == 2 and "Kneser-Ney model" in r.stderr
+    jm3 = tmp_path / "j.nwm"
+    assert _cli("train", str(corpus), "-o", str(jm3), "--order", "3", "--lam3", "0.7", "--min-count", "1").returncode == 0
+    assert nextword.load(jm3).stored_lam3 == 0.7

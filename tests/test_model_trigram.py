@@ -14,13 +14,14 @@ vocabulary rule (through DictKneserNey's constructor); nothing else is shared.
 from __future__ import annotations
 
 import math
+import os
 import random
 from collections import Counter
 from collections.abc import Sequence
 from pathlib import Path
 
 import pytest
-from hypothesis import given
+from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import nextword
@@ -183,3 +184,94 @@ def test_sentence_start_context_is_the_sentence_start_only(tmp_path: Path) -> No
     assert model.prob_after("the", ["bell", BOS, "fix"]) == model.prob_after("the", [BOS, "fix"])
     oracle = oracle_like(model, msgs, min_count=1)
     check_suggest(model, oracle, ["Bell. ", "Bell. Fix ", "bell. fix the b"], 3)
+
+
+# -- hostile files: a Kneser-Ney trigram file with bytes changed and every checksum fixed --
+
+from nextword.errors import ModelFormatError  # noqa: E402
+from nextword.store import ENTRY, HEADER  # noqa: E402
+
+HOSTILE_MSGS = ["the cat sat on the mat"] * 40 + ["the dog sat. a cat ran", "Bo and Abe sat on a mat", "the mat is red"] * 4
+
+
+@pytest.fixture(scope="module")
+def kn3_bytes(tmp_path_factory: pytest.TempPathFactory) -> bytes:
+    path = tmp_path_factory.mktemp("hostile") / "kn3.nwm"
+    nextword.train_texts(HOSTILE_MSGS, path, smoothing="kn", order=3, min_count=1, skyband_min=1, skyband_k=2)
+    return path.read_bytes()
+
+
+def _recrc(buf: bytearray) -> None:
+    """Recompute every section CRC, the table CRC and the header CRC (a crafted file)."""
+    import struct
+    import zlib
+
+    n_sec = HEADER.unpack_from(buf, 0)[3]
+    for i in range(n_sec):
+        at = HEADER.size + i * ENTRY.size
+        tag, code, off, length, _ = ENTRY.unpack_from(buf, at)
+        ENTRY.pack_into(buf, at, tag, code, off, length, zlib.crc32(bytes(buf[off : off + length])))
+    table = bytes(buf[HEADER.size : HEADER.size + n_sec * ENTRY.size])
+    struct.pack_into("<I", buf, 24, zlib.crc32(table))
+    struct.pack_into("<I", buf, 28, zlib.crc32(bytes(buf[:28])))
+
+
+def _ask_everything(m: nextword.Model) -> None:
+    for hist in (["<s>"], ["the"], ["the", "cat"], ["<s>", "the"], ["zz", "on"], ["on", "the"]):
+        for w in ("the", "cat", "mat", "</s>", "<unk>", "red"):
+            try:
+                p = m.prob_after(w, hist)
+            except ModelFormatError:
+                continue
+            assert 0.0 <= p <= 1.0 + 1e-9, (w, hist, p)
+        for prefix in ("", "c", "m", "th"):
+            for k in (1, 3, 10):
+                try:
+                    got = m.rank_after(hist, prefix, k)
+                except ModelFormatError:
+                    continue
+                assert all(0.0 <= p <= 1.0 + 1e-9 for _, p in got)
+    for typed in ("", "the ", "the c", "Bo a", "on the m"):
+        try:
+            m.suggest(typed, 3)
+        except ModelFormatError:
+            pass
+    try:
+        m.perplexity(HOSTILE_MSGS[-3:])
+    except ModelFormatError:
+        pass
+
+
+def test_the_undamaged_kn_trigram_file_answers_everything(kn3_bytes: bytes, tmp_path: Path) -> None:
+    (tmp_path / "m.nwm").write_bytes(kn3_bytes)
+    m = nextword.load(tmp_path / "m.nwm", verify=True)
+    assert m.rank_after(["on", "the"], "", 1)[0][0] == "mat"
+    _ask_everything(m)
+
+
+@settings(max_examples=int(os.environ.get("NW_HOSTILE_EXAMPLES", "60")), deadline=None,
+          suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
+@given(data=st.data())
+def test_crafted_kn_trigram_files_raise_only_model_format_errors(kn3_bytes: bytes, tmp_path_factory: pytest.TempPathFactory,
+                                                                 data: st.DataObject) -> None:
+    # only ModelFormatError may come out of load or any query: no IndexError, no crash, no P > 1
+    buf = bytearray(kn3_bytes)
+    n_sec = HEADER.unpack_from(buf, 0)[3]
+    spans = {}
+    for i in range(n_sec):
+        tag, _, off, length, _ = ENTRY.unpack_from(buf, HEADER.size + i * ENTRY.size)
+        if tag != b"TRIE" and length:  # the trie is parsed by libmarisa, trusted after its CRC (FORMAT.md §8)
+            spans[tag] = (off, length)
+    tag = data.draw(st.sampled_from(sorted(spans)))
+    off, length = spans[tag]
+    for i, b in data.draw(st.lists(st.tuples(st.integers(0, length - 1), st.integers(0, 255)), min_size=1, max_size=4)):
+        buf[off + i] = b
+    _recrc(buf)
+    path = tmp_path_factory.mktemp("bad") / "bad.nwm"
+    path.write_bytes(bytes(buf))
+    for verify in (False, True):
+        try:
+            m = nextword.load(path, verify=verify)
+        except ModelFormatError:
+            continue
+        _ask_everything(m)
