@@ -813,8 +813,8 @@ class Model:
                 {"bounds": self.lambda_bounds, "lambdas": self.lambda_values} if self.lambda_values else None
             ),
             "tokens": self.total,
-            "estimator": self.estimator,
-            "order": self.order,
+            # a Jelinek-Mercer bigram's answer is unchanged (the service's protocol quotes it)
+            **({"estimator": self.estimator, "order": self.order} if self._general else {}),
             **({"discounts": self.discounts, "discount_notes": self.discount_notes} if self.estimator == "kn" else {}),
             **({"lambda3": self.stored_lam3} if self.stored_lam3 is not None else {}),
             **({"trigrams": self._src.meta["trigrams"]} if self.order == 3 else {}),
