@@ -220,6 +220,8 @@ class Model:
         self.close()
 
     def __repr__(self) -> str:
+        if self.estimator == "kn":
+            return f"<nextword.Model {self.path!r}: {self.n_words} words, {self.n_bigrams} bigrams, Kneser-Ney order {self.order}>"
         return f"<nextword.Model {self.path!r}: {self.n_words} words, {self.n_bigrams} bigrams, λ={self.lam}>"
 
     # -- vocabulary -----------------------------------------------------------------------
@@ -248,7 +250,11 @@ class Model:
         return shown
 
     def words(self) -> Iterator[tuple[str, int]]:
-        """Yield (display spelling, count) for every vocabulary word, most frequent first."""
+        """Yield (display spelling, count) for every vocabulary word, most frequent first.
+
+        The count is the stored unigram value: c(w) for Jelinek-Mercer; for Kneser-Ney the
+        continuation count (distinct words seen before w), and words come by their floor.
+        """
         for wid in range(self.n_words):
             yield self.display(wid), self._mv_unig[wid]
 
@@ -298,7 +304,10 @@ class Model:
         return c
 
     def bigram_count(self, previous_word: str | None, word: str) -> int:
-        """c(previous_word, word) as counted in training (after case folding and OOV mapping)."""
+        """c(previous_word, word) as counted in training (after case folding and OOV mapping).
+
+        The stored bigram value: a continuation count in a Kneser-Ney order-3 model (§7.12 of docs/FORMAT.md).
+        """
         return self._pair_count(self._history_id(previous_word), self._predicted_id(word))
 
     def history_count(self, previous_word: str | None) -> int:
@@ -316,7 +325,7 @@ class Model:
         return self._mv_unig[v]  # type: ignore[no-any-return]
 
     def unigram_count(self, word: str) -> int:
-        """c(w): how often ``word`` was predicted in training."""
+        """c(w): how often ``word`` was predicted in training (Kneser-Ney: its continuation count)."""
         return self._mv_unig[self._predicted_id(word)]  # type: ignore[no-any-return]
 
     def _pair_count(self, v: int, w: int) -> int:

@@ -265,3 +265,14 @@ def test_cli_train_and_info_for_the_new_models(tmp_path: Path) -> None:
     jm3 = tmp_path / "j.nwm"
     assert _cli("train", str(corpus), "-o", str(jm3), "--order", "3", "--lam3", "0.7", "--min-count", "1").returncode == 0
     assert nextword.load(jm3).stored_lam3 == 0.7
+
+
+def test_worker_processes_write_the_same_kn_file(tmp_path: Path, pydoc_lines: list[str]) -> None:
+    # the messages are kept by the reading process, so counting in workers changes nothing
+    corpus = tmp_path / "c.txt"
+    corpus.write_text("\n".join(pydoc_lines[:800]) + "\n", encoding="utf-8")
+    one, two = tmp_path / "one.nwm", tmp_path / "two.nwm"
+    nextword.train(corpus, one, smoothing="kn", order=3, workers=1)
+    nextword.train(corpus, two, smoothing="kn", order=3, workers=2)
+    assert one.read_bytes() == two.read_bytes()
+    assert nextword.load(one, verify=True).order == 3
