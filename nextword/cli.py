@@ -21,7 +21,7 @@ from ._progress import Progress
 from .corpus import FORMATS, iter_messages, open_sources
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, PARALLEL_MIN_BYTES
 from .errors import InputDataError, InvalidArgumentError, NextwordError
-from .model import DEFAULT_LAMBDA, Model, load, train, train_texts
+from .model import DEFAULT_LAMBDA, SMOOTHINGS, TRAIN_ORDERS, Model, load, train, train_texts
 from .paths import Labelled, check_outputs, check_writable
 from .serve import DEFAULT_MAX_OPEN_USERS
 from .prune import DEFAULT_RULE
@@ -199,7 +199,10 @@ def _parser() -> _Parser:
     t = sub.add_parser("train", help="count a corpus and write a model file")
     t.add_argument("inputs", nargs="+", metavar="INPUT", help="text or JSON Lines files (.gz ok); - for stdin")
     t.add_argument("-o", "--output", required=True, help="model file to write (atomically; never over an input)")
-    t.add_argument("--lam", type=_lam, default=DEFAULT_LAMBDA, help=f"bigram weight λ (default {DEFAULT_LAMBDA})")
+    t.add_argument("--lam", type=_lam, default=None, help=f"bigram weight λ (default {DEFAULT_LAMBDA}; Jelinek-Mercer only, refused with --smoothing kn)")
+    t.add_argument("--order", type=int, choices=TRAIN_ORDERS, default=2, help="n-gram order: 2 = the last word as context, 3 = the last two (default %(default)s)")
+    t.add_argument("--smoothing", choices=SMOOTHINGS, default="jm", help="jm = Jelinek-Mercer interpolation with λ, kn = interpolated modified Kneser-Ney with fitted discounts (default %(default)s)")
+    t.add_argument("--lam3", type=_lam, default=None, help=f"trigram weight λ3 with --order 3 --smoothing jm (default {DEFAULT_LAMBDA})")
     t.add_argument("--min-count", type=_positive, default=DEFAULT_MIN_COUNT, help="drop rarer words (default %(default)s)")
     t.add_argument("--max-vocab", type=_positive, default=DEFAULT_MAX_VOCAB, help="keep this many words (default %(default)s)")
     t.add_argument("--format", choices=FORMATS, default="auto", help=_FORMAT_HELP)
@@ -339,10 +342,15 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _cmd_train(args: argparse.Namespace) -> int:
+    if args.lam3 is not None and (args.order != 3 or args.smoothing != "jm"):
+        raise InvalidArgumentError(f"--lam3 {args.lam3} needs --order 3 --smoothing jm (got --order {args.order} --smoothing {args.smoothing})")
     report = train(
         args.inputs,
         args.output,
         lam=args.lam,
+        order=args.order,
+        smoothing=args.smoothing,
+        lam3=DEFAULT_LAMBDA if args.lam3 is None else args.lam3,
         min_count=args.min_count,
         max_vocab=args.max_vocab,
         fmt=args.format,

@@ -25,6 +25,7 @@ import numpy as np
 from ._progress import DEFAULT_TICK, Progress
 from .corpus import Format, iter_messages, open_sources
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables, auto_workers, batch_chars, join_batches
+from .estimators import unigram_floor
 from .errors import InputDataError, InvalidArgumentError, ModelFormatError
 from .prune import DEFAULT_RULE
 from .store import (
@@ -41,7 +42,7 @@ from .store import (
 )
 from .text import BOS, EOS, UNK, fold, parse_typed, sentences
 
-__all__ = ["Model", "Suggestion", "TrainReport", "train", "train_texts", "load", "DEFAULT_LAMBDA"]
+__all__ = ["Model", "Suggestion", "TrainReport", "train", "train_texts", "load", "DEFAULT_LAMBDA", "SMOOTHINGS", "TRAIN_ORDERS"]
 
 #: Weight of the bigram estimate; a value near 0.9 is the usual starting point (common practice).
 DEFAULT_LAMBDA = 0.9
@@ -185,6 +186,21 @@ class Model:
         self._top_cache: dict[tuple[int, int, int], list[int]] = {}
         self._display_cache: dict[int, str] = {}
         self._big: dict[int, int] | None = None
+        #: the smoothing method ("jm" or "kn") and n-gram order (2 or 3) the file stores
+        self.estimator: str = meta["estimator"]
+        self.order: int = meta["order"]
+        #: Kneser-Ney discounts per order ([D1, D2, D3+] for orders 1..n), else empty
+        self.discounts: list[list[float]] = [list(d) for d in meta.get("discounts", [])]
+        #: why an order's discounts are not Chen & Goodman's estimate (order -> reason)
+        self.discount_notes: dict[str, str] = dict(meta.get("discount_notes", {}))
+        #: λ of the trigram level (Jelinek-Mercer order 3), else None
+        self.stored_lam3: float | None = min(meta["lambda3"], MAX_LAMBDA) if "lambda3" in meta else None
+        # everything but the Jelinek-Mercer bigram goes through the general scorer (_NgramScorer)
+        self._general = self.estimator != "jm" or self.order != 2
+        if self._general:
+            if self.estimator == "kn" and lam is not None:
+                raise InvalidArgumentError(f"lam={lam!r} given for a Kneser-Ney model, which has no λ")
+            self._ng = _NgramScorer(self, a)
 
     # -- context manager ----------------------------------------------------------------
 
@@ -204,6 +220,8 @@ class Model:
         self.close()
 
     def __repr__(self) -> str:
+        if self.estimator == "kn":
+            return f"<nextword.Model {self.path!r}: {self.n_words} words, {self.n_bigrams} bigrams, Kneser-Ney order {self.order}>"
         return f"<nextword.Model {self.path!r}: {self.n_words} words, {self.n_bigrams} bigrams, λ={self.lam}>"
 
     # -- vocabulary -----------------------------------------------------------------------
@@ -232,7 +250,11 @@ class Model:
         return shown
 
     def words(self) -> Iterator[tuple[str, int]]:
-        """Yield (display spelling, count) for every vocabulary word, most frequent first."""
+        """Yield (display spelling, count) for every vocabulary word, most frequent first.
+
+        The count is the stored unigram value: c(w) for Jelinek-Mercer; for Kneser-Ney the
+        continuation count (distinct words seen before w), and words come by their floor.
+        """
         for wid in range(self.n_words):
             yield self.display(wid), self._mv_unig[wid]
 
@@ -282,7 +304,10 @@ class Model:
         return c
 
     def bigram_count(self, previous_word: str | None, word: str) -> int:
-        """c(previous_word, word) as counted in training (after case folding and OOV mapping)."""
+        """c(previous_word, word) as counted in training (after case folding and OOV mapping).
+
+        The stored bigram value: a continuation count in a Kneser-Ney order-3 model (§7.12 of docs/FORMAT.md).
+        """
         return self._pair_count(self._history_id(previous_word), self._predicted_id(word))
 
     def history_count(self, previous_word: str | None) -> int:
@@ -300,7 +325,7 @@ class Model:
         return self._mv_unig[v]  # type: ignore[no-any-return]
 
     def unigram_count(self, word: str) -> int:
-        """c(w): how often ``word`` was predicted in training."""
+        """c(w): how often ``word`` was predicted in training (Kneser-Ney: its continuation count)."""
         return self._mv_unig[self._predicted_id(word)]  # type: ignore[no-any-return]
 
     def _pair_count(self, v: int, w: int) -> int:
@@ -353,7 +378,43 @@ class Model:
         """
         lam = None if lam is None else _check_lam(lam)
         v = self._history_id(previous_word)
+        if self._general:
+            return self._ng.prob(self._predicted_id(word), (v,), self._ng_lams(lam))
         return self._prob_ids(v, self._predicted_id(word), self._lam_of(v, lam))
+
+    def prob_after(self, word: str, history: Sequence[str | None], *, lam: float | None = None) -> float:
+        """P(word | history), ``history`` the context tokens oldest first (as ``Context.history``).
+
+        ``None`` or ``'<s>'`` marks a sentence start (nothing before it counts); an order-2
+        model reads only the last token, an order-3 model the last two. For a
+        Jelinek-Mercer bigram this is :meth:`prob` with ``history[-1]``.
+        """
+        lam = None if lam is None else _check_lam(lam)
+        ctx = self._context_ids(history)
+        if self._general:
+            return self._ng.prob(self._predicted_id(word), ctx, self._ng_lams(lam))
+        return self._prob_ids(ctx[-1], self._predicted_id(word), self._lam_of(ctx[-1], lam))
+
+    def _context_ids(self, history: Sequence[str | None]) -> tuple[int, ...]:
+        """Context ids of the last order−1 tokens, never reaching back across a sentence start."""
+        if isinstance(history, str) or not isinstance(history, Sequence):
+            raise InvalidArgumentError(f"history must be a sequence of tokens, got {type(history).__name__}")
+        ids = [self._history_id(t) for t in history] or [self._bos]
+        if self._bos in ids:
+            ids = ids[len(ids) - 1 - ids[::-1].index(self._bos):]
+        return tuple(ids[-(self.order - 1):])
+
+    def _ng_lams(self, lam: float | None) -> tuple[float, float]:
+        """(λ2, λ3) for the general scorer: a query-time ``lam`` replaces both (Jelinek-Mercer)."""
+        if self.estimator == "kn":
+            if lam is not None:
+                raise InvalidArgumentError(f"lam={lam!r} given for a Kneser-Ney model, which has no λ")
+            return 0.0, 0.0
+        if lam is not None:
+            return lam, lam
+        if self._override:
+            return self.lam, self.lam
+        return self.stored_lam, (self.stored_lam3 if self.stored_lam3 is not None else self.stored_lam)
 
     def log_likelihood(self, lines: Iterable[str], *, lam: float | None = None) -> tuple[float, int]:
         """(Σ ln P, number of predicted tokens) over ``lines``, ``</s>`` and ``<unk>`` included.
@@ -364,6 +425,13 @@ class Model:
         lam = None if lam is None else _check_lam(lam)
         log_sum = 0.0
         events = 0
+        if self._general:
+            lams = self._ng_lams(lam)
+            for ctx, w in self._token_contexts(lines):
+                p = self._ng.prob(w, ctx, lams)
+                log_sum += math.log(p) if p > 0.0 else -math.inf
+                events += 1
+            return log_sum, events
         for v, w in self._token_pairs(lines):
             p = self._prob_ids(v, w, self._lam_of(v, lam))
             log_sum += math.log(p) if p > 0.0 else -math.inf
@@ -386,12 +454,31 @@ class Model:
                     yield v, w
                     v = w
 
+    def _token_contexts(self, lines: Iterable[str]) -> Iterator[tuple[tuple[int, ...], int]]:
+        """(context ids, predicted id) for every predicted token: the last order−1 tokens of its sentence."""
+        m = self.order - 1
+        if isinstance(lines, str):
+            raise InvalidArgumentError("expected an iterable of messages, not one string")
+        for line in lines:
+            for sent in sentences(line):
+                ctx: list[int] = [self._bos]
+                for tok in [*sent, EOS]:
+                    if tok == EOS:
+                        w = self._eos
+                    else:
+                        wid = None if tok is None else self._word_id(fold(tok))
+                        w = self._unk if wid is None else wid
+                    yield tuple(ctx[-m:]), w
+                    ctx.append(w)
+
     def events(self, lines: Iterable[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(c(v), c(v, w), c(w)) for every predicted token of ``lines``, as int64 arrays.
 
         Everything λ-tuning needs: P(w | v) = λ·c(v,w)/c(v) + (1−λ)·c(w)/N, or c(w)/N
         when c(v) = 0. Tokens are cut exactly as in :meth:`log_likelihood`.
         """
+        if self._general:
+            raise InvalidArgumentError(f"λ events need a Jelinek-Mercer bigram model; {self.path} is {self.estimator} order {self.order}")
         cv, cvw, cw = [], [], []
         for v, w in self._token_pairs(lines):
             cv.append(self._hist(v))
@@ -625,6 +712,18 @@ class Model:
         k = _check_k(k)
         lam = None if lam is None else _check_lam(lam)
         ctx = parse_typed(typed)
+        if self._general:
+            lams = self._ng_lams(lam)
+            lo, hi = self._prefix_range(fold(ctx.prefix))
+            if lo >= hi:
+                return []
+            ids = self._context_ids(ctx.history)
+            try:
+                ranked = self._ng.rank(ids, lo, hi, k, lams)
+                at_start = ids[-1] == self._bos
+                return [Suggestion(_recase(self.display(i), ctx.prefix, at_start), p) for i, p in ranked]
+            except (IndexError, ValueError, UnicodeDecodeError) as e:
+                raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
         if ctx.previous == BOS:
             v = self._bos
         elif ctx.previous == UNK:
@@ -653,6 +752,8 @@ class Model:
         """
         k = _check_k(k)
         lam = None if lam is None else _check_lam(lam)
+        if self._general:
+            return self.rank_after((previous_word,), prefix, k, lam=lam)
         v = self._history_id(previous_word)
         lo, hi = self._prefix_range(fold(prefix))
         if lo >= hi:
@@ -661,6 +762,30 @@ class Model:
             return [(self._key(i), p) for i, p in self._rank(v, lo, hi, k, self._lam_of(v, lam))]
         except (IndexError, ValueError) as e:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
+
+    def rank_after(
+        self, history: Sequence[str | None], prefix: str = "", k: int = 3, *, lam: float | None = None
+    ) -> list[tuple[str, float]]:
+        """Like :meth:`rank_ids` with a context of tokens oldest first (see :meth:`prob_after`)."""
+        k = _check_k(k)
+        lam = None if lam is None else _check_lam(lam)
+        ctx = self._context_ids(history)
+        lo, hi = self._prefix_range(fold(prefix))
+        if lo >= hi:
+            return []
+        try:
+            if self._general:
+                return [(self._key(i), p) for i, p in self._ng.rank(ctx, lo, hi, k, self._ng_lams(lam))]
+            v = ctx[-1]
+            return [(self._key(i), p) for i, p in self._rank(v, lo, hi, k, self._lam_of(v, lam))]
+        except (IndexError, ValueError) as e:
+            raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
+
+    def header(self) -> dict[str, Any]:
+        """The file's metadata as plain data (a copy): estimator, order, λ or discounts, sizes."""
+        import copy
+
+        return copy.deepcopy(self._src.meta)
 
     def info(self) -> dict[str, Any]:
         """Sizes, settings and corpus statistics, as plain data (for ``nextword info``)."""
@@ -673,6 +798,8 @@ class Model:
         # spellings); the rest is header, section table, metadata and padding
         pair_bytes = sum(a[s].nbytes for s in _PAIR_SECTIONS)
         vocab_bytes = sum(a[s].nbytes for s in _VOCAB_SECTIONS if s in a) + len(self._src.raw["TRIE"]) + len(self._disb)
+        # Kneser-Ney context counts and the trigram sections (format 1.3)
+        ngram_bytes = sum(a[s].nbytes for s in ("HN13", "TROW", "TCTU", "TCTS", "TSUC", "TVAL", "TTOT", "TN13") if s in a)
         pairs = self.n_bigrams
         return {
             "path": self.path,
@@ -682,18 +809,24 @@ class Model:
             "bigrams": self.n_bigrams,
             "vocabulary_bytes": vocab_bytes,
             "pair_bytes": pair_bytes,
-            "other_bytes": self.file_size - vocab_bytes - pair_bytes,
+            "other_bytes": self.file_size - vocab_bytes - pair_bytes - ngram_bytes,
+            **({"trigram_and_context_bytes": ngram_bytes} if ngram_bytes else {}),
             "vocabulary_share": vocab_bytes / self.file_size,
             "pair_bytes_per_pair": pair_bytes / pairs if pairs else None,
             "file_bytes_per_pair": self.file_size / pairs if pairs else None,
             "bytes_per_bigram": self.file_size / pairs if pairs else None,
             "bigram_section_bytes_per_bigram": bigram_bytes / pairs if pairs else None,
-            "lambda": self.stored_lam,
+            "lambda": None if self.estimator == "kn" else self.stored_lam,
             "lambda_clamped": self.lambda_clamped,
             "lambda_buckets": (
                 {"bounds": self.lambda_bounds, "lambdas": self.lambda_values} if self.lambda_values else None
             ),
             "tokens": self.total,
+            # a Jelinek-Mercer bigram's answer is unchanged (the service's protocol quotes it)
+            **({"estimator": self.estimator, "order": self.order} if self._general else {}),
+            **({"discounts": self.discounts, "discount_notes": self.discount_notes} if self.estimator == "kn" else {}),
+            **({"lambda3": self.stored_lam3} if self.stored_lam3 is not None else {}),
+            **({"trigrams": self._src.meta["trigrams"]} if self.order == 3 else {}),
             "corpus": self.stats,
         }
 
@@ -727,6 +860,35 @@ def load(path: str | os.PathLike[str], *, lam: float | None = None, verify: bool
     return Model(read_model(path, verify=verify), lam=lam)
 
 
+#: smoothing methods ``train`` offers: Jelinek-Mercer interpolation, interpolated modified Kneser-Ney
+SMOOTHINGS = ("jm", "kn")
+#: n-gram orders ``train`` offers (2 = one-word context, 3 = two-word context)
+TRAIN_ORDERS = (2, 3)
+
+
+def _check_kind(order: int, smoothing: str, lam: float | None, max_bytes: int | None) -> None:
+    if isinstance(order, bool) or order not in TRAIN_ORDERS:
+        raise InvalidArgumentError(f"order must be one of {', '.join(map(str, TRAIN_ORDERS))}, got {order!r}")
+    if smoothing not in SMOOTHINGS:
+        raise InvalidArgumentError(f"smoothing must be one of {', '.join(SMOOTHINGS)}, got {smoothing!r}")
+    if smoothing == "kn" and lam is not None:
+        raise InvalidArgumentError(f"lam={lam!r} given with Kneser-Ney smoothing, which has no λ (its discounts are fitted)")
+    if max_bytes is not None and (order != 2 or smoothing != "jm"):
+        raise InvalidArgumentError(
+            f"a size budget (max_bytes={max_bytes!r}) works only for Jelinek-Mercer bigram models for now "
+            f"(got smoothing {smoothing!r}, order {order})"
+        )
+
+
+def _id_sentences(messages: Iterable[str], tables: CountTables) -> Iterator[list[int]]:
+    """Every sentence of ``messages`` as ids of ``tables`` (out-of-vocabulary and breaks = <unk>)."""
+    ids = {k: i for i, k in enumerate(tables.keys)}
+    unk = tables.n_words + 1
+    for message in messages:
+        for sent in sentences(message):
+            yield [unk if t is None else ids.get(fold(t), unk) for t in sent]
+
+
 def _finish(
     builder: CountBuilder,
     output_path: str | os.PathLike[str],
@@ -739,12 +901,26 @@ def _finish(
     t0: float,
     max_bytes: int | None = None,
     prune_rule: str = DEFAULT_RULE,
+    order: int = 2,
+    smoothing: str = "jm",
+    lam3: float = DEFAULT_LAMBDA,
+    kept: list[str] | None = None,
 ) -> TrainReport:
     t1 = time.perf_counter()
     tables: CountTables = builder.tables(min_count=min_count, max_vocab=max_vocab)
     if tables.stats["word_tokens"] == 0:
         raise InputDataError("the input holds no words")
-    if max_bytes is None:
+    if order != 2 or smoothing != "jm":
+        from .estimators import JelinekMercer, KneserNey
+        from .ngrams import NgramCounts
+        from .store import build
+
+        assert kept is not None
+        # the reference counter over the kept messages (the streaming order-n counter replaces it)
+        counts = NgramCounts.from_sentences(_id_sentences(kept, tables), tables.n_words, order)
+        estimator = KneserNey() if smoothing == "kn" else JelinekMercer((lam, lam3))
+        build(counts, tables, estimator, output_path, skyband_k=skyband_k, skyband_min=skyband_min)
+    elif max_bytes is None:
         write_model(tables, output_path, lam=lam, skyband_k=skyband_k, skyband_min=skyband_min)
     else:
         from .prune import prune_to_size
@@ -785,7 +961,7 @@ def train(
     inputs: str | os.PathLike[str] | Iterable[str | os.PathLike[str]],
     output_path: str | os.PathLike[str],
     *,
-    lam: float = DEFAULT_LAMBDA,
+    lam: float | None = None,
     min_count: int = DEFAULT_MIN_COUNT,
     max_vocab: int = DEFAULT_MAX_VOCAB,
     fmt: Format = "auto",
@@ -797,6 +973,9 @@ def train(
     prune_rule: str = DEFAULT_RULE,
     workers: int | None = None,
     memory_cap: int | None = None,
+    order: int = 2,
+    smoothing: str = "jm",
+    lam3: float = DEFAULT_LAMBDA,
 ) -> TrainReport:
     """Count the messages in ``inputs`` and write a model file to ``output_path``.
 
@@ -814,8 +993,14 @@ def train(
     directory (see :class:`~nextword.counts.CountBuilder`).
     ``skyband_k`` and ``skyband_min`` trade file size for query speed (see
     docs/FORMAT.md); the defaults suit keyboards.
+    ``order`` 3 conditions on the last two words of the sentence; ``smoothing`` "kn"
+    (interpolated modified Kneser-Ney, discounts fitted, no λ) replaces Jelinek-Mercer
+    ("jm", λ = ``lam`` for the bigram level, default 0.9, and ``lam3`` for the trigram
+    level). Either keeps the messages in memory for a second counting pass for now.
     """
-    lam = _check_build_args(lam, skyband_k, skyband_min)
+    _check_kind(order, smoothing, lam, max_bytes)
+    lam = _check_build_args(DEFAULT_LAMBDA if lam is None else lam, skyband_k, skyband_min)
+    lam3 = _check_build_args(lam3, skyband_k, skyband_min)
     sources = open_sources(inputs, fmt=fmt, field=field)
     t0 = time.perf_counter()
     if workers is None:
@@ -828,6 +1013,10 @@ def train(
     try:
         bar.stage("counting", unit="B")  # total: the input files' sizes (compressed bytes for gzip)
         messages = iter_messages(sources, progress=bar.update)
+        kept: list[str] | None = None
+        if order != 2 or smoothing != "jm":
+            kept = []
+            messages = _keeping(messages, kept)
         if workers == 1:
             builder = CountBuilder(memory_cap=memory_cap)
             builder.add_texts(messages)
@@ -837,9 +1026,17 @@ def train(
         return _finish(
             builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
             skyband_k=skyband_k, skyband_min=skyband_min, t0=t0, max_bytes=max_bytes, prune_rule=prune_rule,
+            order=order, smoothing=smoothing, lam3=lam3, kept=kept,
         )
     finally:
         bar.done()  # also on errors: the error message then starts on a clean line
+
+
+def _keeping(messages: Iterator[str], kept: list[str]) -> Iterator[str]:
+    """Pass ``messages`` on, keeping each in ``kept`` (inputs are read once)."""
+    for message in messages:
+        kept.append(message)
+        yield message
 
 
 def _count_worker(inbox: Any, outbox: Any, memory_cap: int | None, spill_root: str) -> None:
@@ -929,20 +1126,214 @@ def train_texts(
     texts: Iterable[str],
     output_path: str | os.PathLike[str],
     *,
-    lam: float = DEFAULT_LAMBDA,
+    lam: float | None = None,
     min_count: int = DEFAULT_MIN_COUNT,
     max_vocab: int = DEFAULT_MAX_VOCAB,
     skyband_k: int = DEFAULT_SKYBAND_K,
     skyband_min: int = DEFAULT_SKYBAND_MIN,
+    order: int = 2,
+    smoothing: str = "jm",
+    lam3: float = DEFAULT_LAMBDA,
 ) -> TrainReport:
     """Like :func:`train`, but from messages already in memory (consumed once)."""
-    lam = _check_build_args(lam, skyband_k, skyband_min)
+    _check_kind(order, smoothing, lam, None)
+    lam = _check_build_args(DEFAULT_LAMBDA if lam is None else lam, skyband_k, skyband_min)
+    lam3 = _check_build_args(lam3, skyband_k, skyband_min)
     if isinstance(texts, str):
         raise InvalidArgumentError("train_texts() takes an iterable of messages, not one string")
     t0 = time.perf_counter()
     builder = CountBuilder()
+    kept: list[str] | None = None
+    if order != 2 or smoothing != "jm":
+        kept = []
+        texts = _keeping(iter(texts), kept)
     builder.add_texts(texts)
     return _finish(
         builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
         skyband_k=skyband_k, skyband_min=skyband_min, t0=t0,
+        order=order, smoothing=smoothing, lam3=lam3, kept=kept,
     )
+
+
+def _discount(c: np.ndarray, d: Sequence[float]) -> np.ndarray:
+    """D(c) per value: D1 for 1, D2 for 2, D3+ for 3 or more, 0 for 0 (as ``Discounts.of``)."""
+    return np.where(c >= 3, d[2], np.where(c >= 2, d[1], np.where(c >= 1, d[0], 0.0)))
+
+
+def _discount1(c: int, d: Sequence[float]) -> float:
+    return 0.0 if c <= 0 else d[0] if c < 2 else d[1] if c < 3 else d[2]
+
+
+class _NgramScorer:
+    """Probabilities and exact top-k for Kneser-Ney (order 2, 3) and Jelinek-Mercer order 3.
+
+    Every word's score has the interpolated shape
+
+        P(w | u v) = α₃(u v w) + γ₃(u v) · [α₂(v w) + γ₂(v) · P₁(w)]
+
+    (Kneser-Ney: α = max(a − D(a), 0)/total, γ = (D₁n₁ + D₂n₂ + D₃n₃)/total; JM: α = λ·c/total,
+    γ = 1 − λ; an unseen context has α = 0, γ = 1). Ids rank by the floor P₁ (the file's
+    unigram values, ties by key), so for a prefix range the exact top k lies among the k
+    smallest ids of the range, the bigram successors of v in the range (the stored
+    skyband when the segment is long) and every trigram successor of (u, v) in the range
+    (docs/SEAMS.md). Each candidate is scored with the full formula, in the operation
+    order of the oracles (``reference_kn.DictKneserNey.prob_key``), so results agree with
+    them to the last bit.
+    """
+
+    def __init__(self, m: Model, a: dict[str, np.ndarray]) -> None:
+        self.m = m
+        self.kn = m.estimator == "kn"
+        self.order = m.order
+        unig = a["UNIG"].astype(np.int64)
+        if self.kn:
+            self.floor = unigram_floor(unig, m.discounts[0], m.total)
+            self.d2, self.d3 = m.discounts[1], (m.discounts[2] if self.order == 3 else m.discounts[1])
+            self._mv_hn13 = _native_view(a["HN13"])
+        else:
+            self.floor = unig / m.total
+        if not bool(np.all((self.floor >= 0.0) & (self.floor <= 1.0 + 1e-9))):
+            raise ModelFormatError(f"{m.path}: damaged model data: a unigram probability outside [0, 1]")
+        self._floor_list: list[float] = self.floor.tolist()
+        if self.order == 3:
+            self._trow = _native_view(a["TROW"])
+            self._tctu = _native_view(a["TCTU"])
+            self._tcts = _native_view(a["TCTS"])
+            self._tsuc_mv = _native_view(a["TSUC"])
+            self._tval_mv = _native_view(a["TVAL"])
+            self._ttot = _native_view(a["TTOT"])
+            self._tsuc = a["TSUC"]
+            self._tval = a["TVAL"]
+            self._mv_tn13 = _native_view(a["TN13"]) if self.kn else None
+
+    # -- per-context weights -------------------------------------------------------------
+
+    def _gamma2(self, v: int, tot: int) -> float:
+        h = self._mv_hn13
+        d = self.d2
+        return (d[0] * h[3 * v] + d[1] * h[3 * v + 1] + d[2] * h[3 * v + 2]) / tot  # type: ignore[no-any-return]
+
+    def _gamma3(self, j: int, tot: int) -> float:
+        h = self._mv_tn13
+        assert h is not None
+        d = self.d3
+        return (d[0] * h[3 * j] + d[1] * h[3 * j + 1] + d[2] * h[3 * j + 2]) / tot  # type: ignore[no-any-return]
+
+    def _context3(self, ctx: tuple[int, ...]) -> int:
+        """Index of trigram context (u, v) in TCTU, or −1 (not stored, or a one-token context)."""
+        if self.order != 3 or len(ctx) != 2:
+            return -1
+        u, v = ctx
+        s, e = self._trow[v], self._trow[v + 1]
+        i = bisect.bisect_left(self._tctu, u, s, e)
+        return i if i < e and self._tctu[i] == u else -1
+
+    def _damaged(self, what: str) -> ModelFormatError:
+        return ModelFormatError(f"{self.m.path}: damaged model data: {what}")
+
+    # -- one probability -------------------------------------------------------------------
+
+    def prob(self, w: int, ctx: tuple[int, ...], lams: tuple[float, float]) -> float:
+        m = self.m
+        p = self._floor_list[w]
+        v = ctx[-1]
+        tot = m._hist(v)
+        if tot > 0:
+            c = m._pair_count(v, w)
+            if c > tot:
+                raise m._over(c, tot)
+            if self.kn:
+                p = max(c - _discount1(c, self.d2), 0.0) / tot + self._gamma2(v, tot) * p
+            else:
+                p = lams[0] * (c / tot) + (1.0 - lams[0]) * p
+        j = self._context3(ctx)
+        if j >= 0:
+            tot3 = self._ttot[j]
+            s, e = self._tcts[j], self._tcts[j + 1]
+            pos = m._mv_apos[w]
+            i = bisect.bisect_left(self._tsuc_mv, pos, s, e)
+            c3 = self._tval_mv[i] if i < e and self._tsuc_mv[i] == pos else 0
+            if c3 > tot3 or tot3 == 0:
+                raise self._damaged(f"trigram value {c3} above its context total {tot3}")
+            if self.kn:
+                p = max(c3 - _discount1(c3, self.d3), 0.0) / tot3 + self._gamma3(j, tot3) * p
+            else:
+                p = lams[1] * (c3 / tot3) + (1.0 - lams[1]) * p
+        if not 0.0 <= p <= 1.0 + 1e-9:
+            raise self._damaged(f"a probability of {p!r}")
+        return p  # type: ignore[no-any-return]
+
+    # -- many probabilities ----------------------------------------------------------------
+
+    def scores(self, ids: np.ndarray, ctx: tuple[int, ...], lams: tuple[float, float]) -> np.ndarray:
+        """P(w | ctx) for every id in ``ids`` (same operations as :meth:`prob`)."""
+        m = self.m
+        p = self.floor[ids]
+        pos = m._apos[ids].astype(np.int64)
+        v = ctx[-1]
+        tot = m._hist(v)
+        if tot > 0:
+            rs, re_ = m._mv_rows[v], m._mv_rows[v + 1]
+            row = m._succ[rs:re_]
+            at = np.searchsorted(row, pos)
+            hit = at < len(row)
+            hit[hit] = row[at[hit]] == pos[hit]
+            c = np.zeros(len(ids), dtype=np.int64)
+            if hit.any():
+                c[hit] = m._counts(rs + at[hit])
+                if int(c.max()) > tot:
+                    raise m._over(int(c.max()), tot)
+            if self.kn:
+                p = np.maximum(c - _discount(c, self.d2), 0.0) / tot + self._gamma2(v, tot) * p
+            else:
+                p = lams[0] * (c / tot) + (1.0 - lams[0]) * p
+        j = self._context3(ctx)
+        if j >= 0:
+            tot3 = self._ttot[j]
+            s, e = self._tcts[j], self._tcts[j + 1]
+            row = self._tsuc[s:e]
+            at = np.searchsorted(row, pos)
+            hit = at < len(row)
+            hit[hit] = row[at[hit]] == pos[hit]
+            c = np.zeros(len(ids), dtype=np.int64)
+            c[hit] = self._tval[s + at[hit]]
+            if tot3 == 0 or (len(c) and int(c.max()) > tot3):
+                raise self._damaged(f"a trigram value above its context total {tot3}")
+            if self.kn:
+                p = np.maximum(c - _discount(c, self.d3), 0.0) / tot3 + self._gamma3(j, tot3) * p
+            else:
+                p = lams[1] * (c / tot3) + (1.0 - lams[1]) * p
+        if len(p) and not bool(np.all((p >= 0.0) & (p <= 1.0 + 1e-9))):
+            raise self._damaged("a probability outside [0, 1]")
+        return np.asarray(p, dtype=np.float64)
+
+    def rank(self, ctx: tuple[int, ...], lo: int, hi: int, k: int, lams: tuple[float, float]) -> list[tuple[int, float]]:
+        """Top-k (word id, probability) among alphabetical positions [lo, hi), ties by key."""
+        m = self.m
+        if not self.kn and (lams[0] == 1.0 or (self.order == 3 and lams[1] == 1.0)):
+            # a zero floor: unseen words tie at 0 and rank by key, so score the whole range
+            ids = m._alph[lo:hi].astype(np.int64)
+        else:
+            parts = [np.asarray(m._range_top_ids(lo, hi, k), dtype=np.int64)]
+            v = ctx[-1]
+            if m._hist(v) > 0:
+                rs, re_ = m._mv_rows[v], m._mv_rows[v + 1]
+                s = bisect.bisect_left(m._mv_succ, lo, rs, re_)
+                e = bisect.bisect_left(m._mv_succ, hi, s, re_)
+                if e > s:
+                    band = m._segment_band(s, e, k) if e - s > m._sky_min and k <= m._sky_k else None
+                    entries = np.asarray(band, dtype=np.int64) if band else np.arange(s, e)
+                    parts.append(m._alph[m._succ[entries].astype(np.int64)].astype(np.int64))
+            j = self._context3(ctx)
+            if j >= 0:
+                s3, e3 = self._tcts[j], self._tcts[j + 1]
+                a3 = bisect.bisect_left(self._tsuc_mv, lo, s3, e3)
+                b3 = bisect.bisect_left(self._tsuc_mv, hi, a3, e3)
+                if b3 > a3:
+                    parts.append(m._alph[self._tsuc[a3:b3].astype(np.int64)].astype(np.int64))
+            ids = np.unique(np.concatenate(parts))
+        ids = ids[ids < m.n_words]
+        if len(ids) == 0:
+            return []
+        score = self.scores(ids, ctx, lams)
+        return Model._select(ids, m._apos[ids].astype(np.int64), score, k)

@@ -236,6 +236,10 @@ class PersonalLayer:
         max_entries: int = 65_536,
         path: str | os.PathLike[str] | None = None,
     ) -> None:
+        # the mixing and the exact ranking below read a one-word context and the base's
+        # bigram scores; a Kneser-Ney or two-word-context base would be ranked wrongly
+        if (getattr(base, "estimator", "jm"), getattr(base, "order", 2)) != ("jm", 2):
+            raise InvalidArgumentError("personal layers need a Jelinek-Mercer bigram base for now")
         self._apply_settings(
             _check_settings(
                 min_uses=min_uses,

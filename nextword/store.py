@@ -38,16 +38,35 @@ __all__ = [
     "DEFAULT_SKYBAND_MIN",
     "TOPK_FANOUT",
     "MAX_LAMBDA",
+    "build",
+    "build_ngram_sections",
+    "ESTIMATORS",
+    "ORDERS",
 ]
 
 MAGIC: Final = b"\x89NWM\r\n\x1a\n"
 FORMAT_VERSION: Final = (1, 0)
 #: Minor version 1 adds λ by history count (META "lambda_buckets"); minor version 2 adds
-#: pruned models (optional HIST section: c(v) as the sum of the kept pairs). Files that
-#: use neither stay 1.0.
-MAX_MINOR: Final = 2
-#: sections that only some files have: tag -> element type
-_OPTIONAL: Final = {b"HIST": "u4"}
+#: pruned models (optional HIST section: c(v) as the sum of the kept pairs); minor version
+#: 3 adds the estimator and order fields of META, Kneser-Ney (HN13) and the trigram
+#: sections (TROW ... TN13). Files that use none of these stay 1.0.
+MAX_MINOR: Final = 3
+#: sections that only some files have: tag -> element type ("id" = the file's id type)
+_OPTIONAL: Final = {
+    b"HIST": "u4",
+    b"HN13": "u4",
+    b"TROW": "u4",
+    b"TCTU": "id",
+    b"TCTS": "u4",
+    b"TSUC": "id",
+    b"TVAL": "u4",
+    b"TTOT": "u4",
+    b"TN13": "u4",
+}
+#: smoothing methods and n-gram orders a model file can record (META "estimator", "order")
+ESTIMATORS: Final = ("jm", "kn")
+ORDERS: Final = (2, 3)
+_TRIGRAM: Final = (b"TROW", b"TCTU", b"TCTS", b"TSUC", b"TVAL", b"TTOT")
 HEADER = struct.Struct("<8sHHIQII")  # magic, major, minor, sections, file size, table crc, header crc
 ENTRY = struct.Struct("<4sB3xQQI4x")  # tag, dtype code, offset, length, crc
 MAX_SECTIONS: Final = 64
@@ -655,6 +674,168 @@ def write_model(
     atomic_write(path, encode_sections(sections, minor=2 if tables.history is not None else 0))
 
 
+def _discount_checks(discounts: list[list[float]], order: int) -> tuple[list[list[float]], dict[str, str]]:
+    """Discounts the exact ranking can use, and a note per order that had to change.
+
+    The stored skybands dominate on the bigram level's stored value, so they assume that
+    its first term max(a − D(a), 0) grows strictly with a, i.e. 1 − D₁ < 2 − D₂ < 3 − D₃.
+    Chen & Goodman's estimates usually satisfy it at that level; when they do not, the
+    level takes one discount D₁ for every count (strictly increasing a − D₁), and the
+    note says why. The unigram level needs nothing: ids rank by its floor value itself,
+    and the trigram level's candidates are all scored.
+    """
+    out = [list(d) for d in discounts]
+    notes: dict[str, str] = {}
+    for m in range(2, 3):
+        d1, d2, d3 = out[m - 1]
+        if not (1 - d1 < 2 - d2 < 3 - d3):
+            notes[str(m)] = (
+                f"discounts ({d1:.6g}, {d2:.6g}, {d3:.6g}) do not keep 1-D1 < 2-D2 < 3-D3, which the exact "
+                f"ranking needs; one discount D1 = {d1:.6g} for every count"
+            )
+            out[m - 1] = [d1, d1, d1]
+    return out, notes
+
+
+def _n123(owner: np.ndarray, value: np.ndarray, n_owner: int) -> np.ndarray:
+    """(n_owner, 3): how many of each owner's values are 1, 2 and >= 3."""
+    out = np.zeros((n_owner, 3), dtype=np.int64)
+    for j, mask in enumerate((value == 1, value == 2, value >= 3)):
+        out[:, j] = np.bincount(owner[mask], minlength=n_owner)
+    return out
+
+
+def build_ngram_sections(
+    counts: Any,
+    tables: CountTables,
+    estimator: Any,
+    *,
+    skyband_k: int = DEFAULT_SKYBAND_K,
+    skyband_min: int = DEFAULT_SKYBAND_MIN,
+) -> tuple[list[tuple[bytes, np.dtype | None, bytes | np.ndarray]], int]:
+    """The sections of a model file for any estimator and order 2 or 3, and its minor version.
+
+    ``counts`` (:class:`~nextword.ngrams.NgramCounts`) holds the n-grams in the ids of
+    ``tables`` (which gives the keys, spellings and corpus statistics); ``estimator``
+    (:class:`~nextword.estimators.Estimator`) fits the values to store. A
+    Jelinek-Mercer bigram gives exactly the file :func:`build_sections` gives (format
+    1.0). Otherwise ids are re-ranked by the estimator's unigram level (Kneser-Ney: the
+    continuation counts, ties by key), the bigram rows hold the bigram level's values,
+    HIST their totals (Kneser-Ney), HN13 the bigram contexts' n₁/n₂/n₃₊, and order 3
+    adds the trigram sections; see docs/FORMAT.md §7.13–7.15.
+    """
+    from .estimators import FittedJelinekMercer, FittedKneserNey, unigram_floor  # they import this module
+
+    n = tables.n_words
+    if counts.n_words != n:
+        raise InvalidArgumentError(f"counts are over {counts.n_words} words, the tables over {n}")
+    order = counts.order
+    if order not in ORDERS:
+        raise InvalidArgumentError(f"order must be one of {', '.join(map(str, ORDERS))}, got {order!r}")
+    if tables.history is not None:
+        raise InvalidArgumentError("pruned counts can only be stored as a Jelinek-Mercer bigram model for now")
+    fitted = estimator.fit(counts)
+    kn = isinstance(fitted, FittedKneserNey)
+    if not kn and not isinstance(fitted, FittedJelinekMercer):
+        raise InvalidArgumentError(f"no model file layout for estimator {getattr(fitted, 'name', fitted)!r}")
+    lev1, lev2 = fitted.levels[0], fitted.levels[1]
+    uni = np.zeros(n + 2, dtype=np.int64)
+    uni[lev1.grams[:, 0]] = lev1.value
+    if not kn:
+        lam2 = float(fitted.lams[1])
+        if order == 2:
+            return build_sections(tables, lam=lam2, skyband_k=skyband_k, skyband_min=skyband_min), 0
+        if not np.array_equal(uni, np.asarray(tables.unigram, dtype=np.int64)):
+            raise InvalidArgumentError("the n-gram counts disagree with the tables' unigram counts")
+    # new ids: words by the floor descending, ties by key (JM: c(w)/N, the ids unchanged)
+    if kn:
+        stored, notes = _discount_checks([[d.d1, d.d2, d.d3] for d in fitted.discounts], order)
+        floor = unigram_floor(uni, stored[0], int(uni.sum()))
+    else:
+        floor = uni / int(uni.sum())
+    alpha_rank = np.empty(n, dtype=np.int64)
+    alpha_rank[np.array(sorted(range(n), key=tables.keys.__getitem__), dtype=np.int64)] = np.arange(n)
+    old_of_new = np.lexsort((alpha_rank, -floor[:n]))
+    remap = np.arange(n + 3, dtype=np.int64)
+    remap[old_of_new] = np.arange(n)
+    keys = [tables.keys[i] for i in old_of_new.tolist()]
+    displays = [tables.displays[i] for i in old_of_new.tolist()]
+    unigram = np.zeros(n + 2, dtype=np.int64)
+    unigram[remap[: n + 2]] = uni
+    g2 = remap[lev2.grams]
+    o2 = np.lexsort((g2[:, 1], g2[:, 0]))
+    left, right, value2 = g2[o2, 0], g2[o2, 1], lev2.value[o2]
+    n_hist = n + 3
+    history = np.bincount(left, weights=value2, minlength=n_hist).astype(np.int64) if kn else None
+    new_tables = CountTables(keys, displays, unigram, left, right, value2, dict(tables.stats), history)
+    sections = build_sections(new_tables, lam=0.0 if kn else lam2, skyband_k=skyband_k, skyband_min=skyband_min)
+    meta = msgpack.unpackb(sections[0][2], raw=False)
+    meta["estimator"] = "kn" if kn else "jm"
+    meta["order"] = order
+    if kn:
+        meta["discounts"] = stored
+        why = {str(m): r for m, r in fitted.fallbacks.items()}
+        for m, r in notes.items():
+            why[m] = f"{why[m]}; {r}" if m in why else r
+        meta["discount_notes"] = why
+        sections.append((b"HN13", np.dtype("<u4"), _n123(left, value2, n_hist).reshape(-1)))
+    else:
+        meta["lambda3"] = float(fitted.lams[2])
+    if order == 3:
+        idt = _id_dtype(n)
+        alph = np.asarray(sections[4][2], dtype=np.int64)  # ALPH, as build_sections made it
+        apos = np.empty(n + 2, dtype=np.int64)
+        apos[alph] = np.arange(n + 2)
+        lev3 = fitted.levels[2]
+        g3 = remap[lev3.grams]
+        pos = apos[g3[:, 2]]
+        o3 = np.lexsort((pos, g3[:, 0], g3[:, 1]))  # grouped by v, then u, successors alphabetical
+        u, v, pos, value3 = g3[o3, 0], g3[o3, 1], pos[o3], lev3.value[o3]
+        new_ctx = np.ones(len(u), dtype=bool)
+        new_ctx[1:] = (u[1:] != u[:-1]) | (v[1:] != v[:-1])
+        first = np.flatnonzero(new_ctx)
+        ctx_u, ctx_v = u[first], v[first]
+        owner = np.cumsum(new_ctx) - 1
+        trow = np.searchsorted(ctx_v, np.arange(n_hist + 1), side="left")
+        tcts = np.concatenate([first, [len(u)]])
+        ttot = np.bincount(owner, weights=value3, minlength=len(first)).astype(np.int64)
+        if len(value3) and (int(value3.max()) > _U32_MAX or int(ttot.max()) > _U32_MAX or len(value3) > _U32_MAX):
+            raise InvalidArgumentError("too many trigrams (or counts too large) for 32-bit fields")
+        u4 = np.dtype("<u4")
+        sections += [
+            (b"TROW", u4, trow),
+            (b"TCTU", idt, ctx_u),
+            (b"TCTS", u4, tcts),
+            (b"TSUC", idt, pos),
+            (b"TVAL", u4, value3),
+            (b"TTOT", u4, ttot),
+        ]
+        if kn:
+            sections.append((b"TN13", u4, _n123(owner, value3, len(first)).reshape(-1)))
+        meta["trigrams"] = int(len(u))
+        meta["trigram_contexts"] = int(len(first))
+    sections[0] = (b"META", None, msgpack.packb(meta, use_bin_type=True))
+    return sections, 3
+
+
+def build(
+    counts: Any,
+    tables: CountTables,
+    estimator: Any,
+    path: str | os.PathLike[str],
+    *,
+    skyband_k: int = DEFAULT_SKYBAND_K,
+    skyband_min: int = DEFAULT_SKYBAND_MIN,
+) -> None:
+    """Fit ``estimator`` to ``counts`` and write the model file atomically to ``path``.
+
+    The one entry point from n-gram counts (of any order the format stores) to a file;
+    see :func:`build_ngram_sections`.
+    """
+    sections, minor = build_ngram_sections(counts, tables, estimator, skyband_k=skyband_k, skyband_min=skyband_min)
+    atomic_write(path, encode_sections(sections, minor=minor))
+
+
 def rewrite_model(
     src: str | os.PathLike[str],
     dst: str | os.PathLike[str],
@@ -669,11 +850,18 @@ def rewrite_model(
     than bounds); such files are written as format version 1.1.
     """
     check_new_output(src, dst, "tuned model")
+    src_meta = read_model(src).meta
+    if src_meta["estimator"] != "jm" or src_meta["order"] != 2:
+        raise InvalidArgumentError(
+            f"a new λ can only be stored in a Jelinek-Mercer bigram model; {os.fspath(src)} is {src_meta['estimator']} order {src_meta['order']}"
+        )
     for x in [lam, *([] if buckets is None else buckets["lambdas"])]:
         if not 0.0 <= float(x) <= MAX_LAMBDA:
             raise InvalidArgumentError(f"a stored λ must lie in [0, {MAX_LAMBDA}] (λ = 1 makes unseen pairs impossible), got {x!r}")
     arrays = read_model(src, verify=True)
     meta = dict(arrays.meta)
+    meta.pop("estimator", None)  # implied by format 1.0-1.2 (filled in by the reader)
+    meta.pop("order", None)
     meta["lambda"] = float(lam)
     meta.pop("lambda_buckets", None)
     if buckets is not None:
@@ -795,8 +983,10 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
     if -prev_end % ALIGN != size - prev_end or any(buf[prev_end:size]):
         raise _fail(name, "unexpected bytes after the last section")
     missing = [t.decode() for t in _SECTIONS if t not in sections]
-    if (b"HIST" in sections) != (minor >= 2):
+    if minor < 3 and (b"HIST" in sections) != (minor == 2):
         raise _fail(name, "section HIST must be present exactly in format 1.2 (pruned) files")
+    if minor < 3 and any(t in sections for t in _OPTIONAL if t != b"HIST"):
+        raise _fail(name, f"format {major}.{minor} files have no Kneser-Ney or trigram sections")
     if missing:
         raise _fail(name, f"missing sections {', '.join(missing)}")
     optional = [t for t in _OPTIONAL if t in sections]
@@ -812,6 +1002,7 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
     meta = _check_meta(name, meta, size)
     n = meta["n_words"]
     idt = _id_dtype(n)
+    _check_model_kind(name, meta, minor, set(sections))
 
     arrays: dict[str, np.ndarray] = {}
     raw: dict[str, memoryview] = {}
@@ -834,7 +1025,7 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
 
     for tag in optional:
         code, off, length, _ = sections[tag]
-        want = np.dtype("<" + _OPTIONAL[tag])
+        want = idt if _OPTIONAL[tag] == "id" else np.dtype("<" + _OPTIONAL[tag])
         if _DTYPES[code] != want:
             raise _fail(name, f"section {tag.decode()} has element type {_DTYPES[code]}, expected {want}")
         arrays[tag.decode()] = np.frombuffer(mm, dtype=want, count=length // want.itemsize, offset=off)
@@ -883,6 +1074,106 @@ def _check_meta(name: str, meta: Any, size: int) -> dict[str, Any]:
         if not ok:
             raise _fail(name, f"metadata field 'lambda_buckets' is invalid: {buckets!r}"[:300])
     return meta
+
+
+def _check_model_kind(name: str, meta: dict[str, Any], minor: int, tags: set[bytes]) -> None:
+    """META's estimator fields (format 1.3) and the optional sections they call for."""
+    if minor < 3:
+        if meta.get("estimator", "jm") != "jm" or meta.get("order", 2) != 2 or "discounts" in meta or "lambda3" in meta:
+            raise _fail(name, f"format 1.{minor} files hold Jelinek-Mercer bigram models only")
+        meta["estimator"], meta["order"] = "jm", 2
+        return
+    est, order = meta.get("estimator"), meta.get("order")
+    if est not in ESTIMATORS:
+        raise _fail(name, f"metadata field 'estimator' is invalid: {est!r}"[:200])
+    if isinstance(order, bool) or order not in ORDERS:
+        raise _fail(name, f"metadata field 'order' is invalid: {order!r}"[:200])
+    if est == "jm" and order == 2:
+        raise _fail(name, "a Jelinek-Mercer bigram model is a format 1.0-1.2 file, not 1.3")
+    if est == "kn":
+        ds = meta.get("discounts")
+        ok = isinstance(ds, list) and len(ds) == order and all(
+            isinstance(d, list) and len(d) == 3
+            and all(isinstance(x, float) and 0.0 < x <= j for j, x in enumerate(d, 1)) for d in ds
+        )
+        if not ok:
+            raise _fail(name, f"metadata field 'discounts' is invalid: {ds!r}"[:300])
+        d1, d2, d3 = cast(list, ds)[1]  # the bigram level's, which the skybands need (§7.13)
+        if not (1 - d1 < 2 - d2 < 3 - d3):
+            raise _fail(name, "discounts of order 2 do not keep 1-D1 < 2-D2 < 3-D3")
+        notes = meta.get("discount_notes", {})
+        if not isinstance(notes, dict) or not all(isinstance(k, str) and isinstance(v, str) for k, v in notes.items()):
+            raise _fail(name, "metadata field 'discount_notes' is invalid")
+    else:
+        lam3 = meta.get("lambda3")
+        if isinstance(lam3, bool) or not isinstance(lam3, (int, float)) or not 0.0 <= float(lam3) <= 1.0:
+            raise _fail(name, f"metadata field 'lambda3' is invalid: {lam3!r}"[:200])
+        meta["lambda3"] = float(lam3)
+    want = ({b"HIST", b"HN13"} if est == "kn" else set()) | (set(_TRIGRAM) | ({b"TN13"} if est == "kn" else set()) if order == 3 else set())
+    have = tags & set(_OPTIONAL)
+    if have != want:
+        extra = sorted(t.decode() for t in have - want)
+        lost = sorted(t.decode() for t in want - have)
+        raise _fail(name, f"a {est} order-{order} file: missing sections {lost}, unexpected sections {extra}")
+    if order == 3:
+        for key in ("trigrams", "trigram_contexts"):
+            v = meta.get(key)
+            if isinstance(v, bool) or not isinstance(v, int) or not 0 <= v <= _U32_MAX:
+                raise _fail(name, f"metadata field {key!r} is invalid: {v!r}"[:200])
+
+
+def _check_ngram_arrays(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], *, full: bool) -> None:
+    """Lengths, offsets and ids of the Kneser-Ney and trigram sections (format 1.3).
+
+    Always: every length against META, the offset arrays increasing from 0 to their
+    end, every trigram context id in range. With ``full``: the orderings, the totals
+    and the n₁/n₂/n₃₊ counts recomputed from the stored values.
+    """
+    n = meta["n_words"]
+    n_pos, n_hist = n + 2, n + 3
+    kn = meta["estimator"] == "kn"
+    if kn and len(a["HN13"]) != 3 * n_hist:
+        raise _fail(name, f"section HN13 holds {len(a['HN13'])} entries, expected {3 * n_hist}")
+    if meta["order"] == 3:
+        t, j = meta["trigrams"], meta["trigram_contexts"]
+        expected = {"TROW": n_hist + 1, "TCTU": j, "TCTS": j + 1, "TSUC": t, "TVAL": t, "TTOT": j, **({"TN13": 3 * j} if kn else {})}
+        for label, want in expected.items():
+            if len(a[label]) != want:
+                raise _fail(name, f"section {label} holds {len(a[label])} entries, expected {want}")
+        for label, end in (("TROW", j), ("TCTS", t)):
+            arr = a[label]
+            if arr[0] != 0 or arr[-1] != end or np.any(arr[1:] < arr[:-1]):
+                raise _fail(name, f"section {label} offsets are not increasing from 0 to {end}")
+        if j and int(a["TCTU"].max()) >= n_hist:
+            raise _fail(name, "section TCTU holds an id out of range")
+        if t and (int(a["TSUC"].max()) >= n_pos or int(a["TVAL"].min()) == 0):
+            raise _fail(name, "section TSUC holds a position out of range, or TVAL a zero value")
+        if j and np.any(a["TCTS"][1:] == a["TCTS"][:-1]):
+            raise _fail(name, "section TCTS has a trigram context without successors")
+    if not full:
+        return
+    rows = a["ROWS"].astype(np.int64)
+    row_of = np.repeat(np.arange(n_hist), np.diff(rows))
+    if kn:
+        cnts = a["CNTS"].astype(np.int64)
+        cnts[a["BIGI"].astype(np.int64)] = a["BIGC"]
+        if not np.array_equal(_n123(row_of, cnts, n_hist).reshape(-1), a["HN13"]):
+            raise _fail(name, "section HN13 disagrees with the bigram values")
+    if meta["order"] == 3:
+        trow, tctu, tcts = a["TROW"].astype(np.int64), a["TCTU"].astype(np.int64), a["TCTS"].astype(np.int64)
+        ctx_v = np.repeat(np.arange(n_hist), np.diff(trow))
+        ckey = ctx_v * n_hist + tctu
+        if len(ckey) > 1 and np.any(ckey[1:] <= ckey[:-1]):
+            raise _fail(name, "section TCTU is not strictly increasing within each context word")
+        owner = np.repeat(np.arange(len(tctu)), np.diff(tcts))
+        skey = owner * n_pos + a["TSUC"].astype(np.int64)
+        if len(skey) > 1 and np.any(skey[1:] <= skey[:-1]):
+            raise _fail(name, "section TSUC is not strictly increasing within each context")
+        val = a["TVAL"].astype(np.int64)
+        if not np.array_equal(np.bincount(owner, weights=val, minlength=len(tctu)).astype(np.int64), a["TTOT"]):
+            raise _fail(name, "section TTOT disagrees with TVAL")
+        if kn and not np.array_equal(_n123(owner, val, len(tctu)).reshape(-1), a["TN13"]):
+            raise _fail(name, "section TN13 disagrees with TVAL")
 
 
 def _check_arrays(
@@ -940,6 +1231,8 @@ def _check_arrays(
     if len(disi) and (disi[-1] >= n or np.any(disi[1:] <= disi[:-1])):
         raise _fail(name, "section DISI is not an increasing list of word ids")
     _check_escaped_counts(name, a, n, b)
+    if meta["estimator"] != "jm" or meta["order"] != 2:
+        _check_ngram_arrays(name, meta, a, full=full)
     if not full:
         return
 
@@ -963,9 +1256,13 @@ def _check_arrays(
     if not np.array_equal(np.bincount(row_of, weights=full_counts, minlength=n_hist), hist):
         raise _fail(name, "row counts disagree with the history counts")
     col = np.bincount(a["ALPH"][succ], weights=full_counts, minlength=n_pos)
-    if "HIST" not in a and not np.array_equal(col, a["UNIG"]):
+    if meta["estimator"] == "kn":
+        # Kneser-Ney: a word's unigram value is its number of distinct predecessors (§7.13)
+        if not np.array_equal(np.bincount(a["ALPH"][succ], minlength=n_pos), a["UNIG"]):
+            raise _fail(name, "section UNIG disagrees with the bigram rows (continuation counts)")
+    elif "HIST" not in a and not np.array_equal(col, a["UNIG"]):
         raise _fail(name, "section UNIG disagrees with the bigram counts")
-    if "HIST" in a and np.any(col > a["UNIG"]):
+    elif "HIST" in a and np.any(col > a["UNIG"]):
         raise _fail(name, "a pruned model holds more pair counts than unigram counts")
     skyp = a["SKYP"].astype(np.int64)
     if skyp[0] != 0 or skyp[-1] != len(a["SKYI"]) or np.any(skyp[1:] < skyp[:-1]):
@@ -1023,7 +1320,14 @@ def _check_derived(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], ke
     key_of_id = [""] * n
     for pos, wid in enumerate(a["ALPH"][:n].tolist()):
         key_of_id[wid] = keys[pos]
-    if any((unig[i], key_of_id[i + 1]) <= (unig[i + 1], key_of_id[i]) for i in range(n - 1)):
+    if meta["estimator"] == "kn":
+        from .estimators import unigram_floor
+
+        # Kneser-Ney: ids rank by the floor P1 itself (§7.13), compared as the stored float64 values
+        fl = unigram_floor(a["UNIG"], meta["discounts"][0], meta["total"])[:n].tolist()
+        if any((fl[i], key_of_id[i + 1]) <= (fl[i + 1], key_of_id[i]) for i in range(n - 1)):
+            raise _fail(name, "word ids are not in (floor descending, key ascending) order")
+    elif any((unig[i], key_of_id[i + 1]) <= (unig[i + 1], key_of_id[i]) for i in range(n - 1)):
         raise _fail(name, "word ids are not in (count descending, key ascending) order")
     alpha_words = a["ALPH"][:n].astype(np.int64)
     pad = int(np.iinfo(a["TOPK"].dtype).max)

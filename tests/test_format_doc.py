@@ -22,6 +22,7 @@ from __future__ import annotations
 import bisect
 import itertools
 import os
+import random
 import re
 import struct
 import zlib
@@ -999,3 +1000,171 @@ def test_the_title_names_every_version_the_readers_accept() -> None:
     title = (Path(__file__).resolve().parent.parent / "docs" / "FORMAT.md").read_text(encoding="utf-8").splitlines()[0]
     for minor in range(MAX_MINOR + 1):
         assert f"{FORMAT_VERSION[0]}.{minor}" in title, title
+
+
+# ---------------------------------------------------------------------------------------
+# Format 1.3 (§7.11–7.14, §9.7): Kneser-Ney and the two-word context, read from the
+# document alone (the reader above does §§3–8 of the common sections).
+
+OPTIONAL_13 = {"HIST": "u32", "HN13": "u32", "TROW": "u32", "TCTU": "id", "TCTS": "u32", "TSUC": "id",
+               "TVAL": "u32", "TTOT": "u32", "TN13": "u32"}  # fmt: skip
+KIND_SECTIONS = {  # §7.11
+    ("kn", 2): {"HIST", "HN13"},
+    ("kn", 3): {"HIST", "HN13", "TROW", "TCTU", "TCTS", "TSUC", "TVAL", "TTOT", "TN13"},
+    ("jm", 3): {"TROW", "TCTU", "TCTS", "TSUC", "TVAL", "TTOT"},
+}
+
+
+class NgramReader(NwmReader):
+    """§7.11–7.14: the 1.3 sections; §9.7: probabilities and brute-force rankings."""
+
+    def __init__(self, path: str | Path) -> None:
+        super().__init__(path)
+        if self.version != (1, 3):
+            raise FormatError("not a 1.3 file")
+        m = self.meta
+        self.kind = (m["estimator"], m["order"])
+        if set(self.sections) - set(LAYOUT) != KIND_SECTIONS[self.kind]:
+            raise FormatError("optional sections do not fit the kind")
+        n = self.n
+        for tag in KIND_SECTIONS[self.kind]:
+            e = self.sections[tag]
+            want = self.id_type if OPTIONAL_13[tag] == "id" else OPTIONAL_13[tag]
+            if e.code != CODE_OF[want]:
+                raise FormatError(f"{tag}: element code {e.code}")
+            dt = ELEMENTS[e.code]
+            self.a[tag] = np.frombuffer(self.data, dtype=dt, count=e.length // dt.itemsize, offset=e.offset)
+        a = self.a
+        rows = a["ROWS"].astype(np.int64)
+        counts = self.full_counts()
+        row_of = np.repeat(np.arange(n + 3), np.diff(rows))
+        if self.kind[0] == "kn":
+            # §7.12: UNIG[w] = rows holding w; §7.13: HIST = row sums, HN13 = N1, N2, N3+ per row
+            if not np.array_equal(np.bincount(a["ALPH"][a["SUCC"]], minlength=n + 2), a["UNIG"]):
+                raise FormatError("UNIG is not the continuation counts")
+            if not np.array_equal(np.bincount(row_of, weights=counts, minlength=n + 3), a["HIST"]):
+                raise FormatError("HIST")
+            h = a["HN13"].reshape(n + 3, 3)
+            for j, mask in enumerate((counts == 1, counts == 2, counts >= 3)):
+                if not np.array_equal(np.bincount(row_of[mask], minlength=n + 3), h[:, j]):
+                    raise FormatError("HN13")
+            self.d = [list(x) for x in m["discounts"]]
+        if self.kind[1] == 3:
+            c, t = m["trigram_contexts"], m["trigrams"]
+            trow, tcts = a["TROW"].astype(np.int64), a["TCTS"].astype(np.int64)
+            if len(trow) != n + 4 or len(a["TCTU"]) != c or len(tcts) != c + 1 or len(a["TSUC"]) != t or len(a["TVAL"]) != t:
+                raise FormatError("trigram section lengths")
+            if trow[0] != 0 or trow[-1] != c or tcts[0] != 0 or tcts[-1] != t or np.any(np.diff(tcts) <= 0):
+                raise FormatError("TROW/TCTS offsets")
+            owner = np.repeat(np.arange(c), np.diff(tcts))
+            if not np.array_equal(np.bincount(owner, weights=a["TVAL"], minlength=c), a["TTOT"]):
+                raise FormatError("TTOT")
+
+    def floor(self, w: int) -> float:  # §9.7 P1
+        u = self.a["UNIG"]
+        if self.kind[0] == "jm":
+            return int(u[w]) / self.total
+        d = self.d[0]
+        n1, n2, n3 = int((u == 1).sum()), int((u == 2).sum()), int((u >= 3).sum())
+        g0 = (d[0] * n1 + d[1] * n2 + d[2] * n3) / self.total
+        a = int(u[w])
+        return max(a - self._disc(a, d), 0.0) / self.total + g0 * (1.0 / (self.n + 2))
+
+    @staticmethod
+    def _disc(a: int, d: list[float]) -> float:
+        return 0.0 if a == 0 else d[0] if a == 1 else d[1] if a == 2 else d[2]
+
+    def _mix(self, a: int, total: int, n123: tuple[int, int, int], order: int, lower: float) -> float:
+        if self.kind[0] == "kn":
+            d = self.d[order - 1]
+            gamma = (d[0] * n123[0] + d[1] * n123[1] + d[2] * n123[2]) / total
+            return max(a - self._disc(a, d), 0.0) / total + gamma * lower
+        lam = self.meta["lambda"] if order == 2 else self.meta["lambda3"]
+        return lam * (a / total) + (1.0 - lam) * lower
+
+    def prob3(self, ctx: tuple[int, ...], w: int) -> float:
+        """§9.7 for a context of ids (u, v) or (v,)."""
+        a = self.a
+        p = self.floor(w)
+        v = ctx[-1]
+        total = int(a["HIST"][v]) if self.kind[0] == "kn" else self.history_count(v)
+        if total:
+            n123 = tuple(int(x) for x in a["HN13"][3 * v : 3 * v + 3]) if self.kind[0] == "kn" else (0, 0, 0)
+            p = self._mix(self.pair_count(v, w), total, n123, 2, p)  # type: ignore[arg-type]
+        if self.kind[1] == 3 and len(ctx) == 2:
+            u = ctx[0]
+            lo, hi = int(a["TROW"][v]), int(a["TROW"][v + 1])
+            us = a["TCTU"][lo:hi].tolist()
+            if u in us:
+                j = lo + us.index(u)
+                s, e = int(a["TCTS"][j]), int(a["TCTS"][j + 1])
+                succ = a["TSUC"][s:e].tolist()
+                pos = int(a["APOS"][w])
+                c3 = int(a["TVAL"][s + succ.index(pos)]) if pos in succ else 0
+                n123 = tuple(int(x) for x in a["TN13"][3 * j : 3 * j + 3]) if self.kind[0] == "kn" else (0, 0, 0)
+                p = self._mix(c3, int(a["TTOT"][j]), n123, 3, p)  # type: ignore[arg-type]
+        return p
+
+    def brute_rank(self, ctx: tuple[int, ...], prefix: str, k: int) -> list[tuple[str, float]]:
+        scored = [(self.prob3(ctx, w), self.keys[w]) for w in range(self.n) if self.keys[w].startswith(prefix)]
+        scored.sort(key=lambda t: (-t[0], t[1]))
+        return [(key, p) for p, key in scored[:k]]
+
+
+def _ctx_ids(r: NgramReader, history: list[str]) -> tuple[int, ...]:
+    ids = [r.n + 2 if t == "<s>" else r.history_id(t) for t in history]
+    if r.n + 2 in ids:
+        ids = ids[len(ids) - 1 - ids[::-1].index(r.n + 2):]
+    return tuple(ids[-(r.kind[1] - 1):])
+
+
+@pytest.mark.parametrize("smoothing,order", [("kn", 2), ("kn", 3), ("jm", 3)])
+def test_ngram_files_follow_sections_7_11_to_7_14_and_9_7(tmp_path: Path, smoothing: str, order: int) -> None:
+    path = tmp_path / "m.nwm"
+    nextword.train_texts(REAL, path, smoothing=smoothing, order=order, min_count=1, skyband_min=4)
+    r = NgramReader(path)
+    model = nextword.load(path)
+    assert r.kind == (smoothing, order) == (model.estimator, model.order)
+    rng = random.Random(5)
+    words = [r.keys[i] for i in range(min(r.n, 60))]
+    ctxs = [["<s>"], ["<s>", "i"], ["i", "am"], ["the", "zzz"], ["<unk>", "<unk>"]]
+    ctxs += [[rng.choice(words), rng.choice(words)] for _ in range(8)]
+    for hist in ctxs:
+        ids = _ctx_ids(r, hist)
+        total = 0.0
+        for w in range(r.n + 2):
+            key = "</s>" if w == r.n else "<unk>" if w == r.n + 1 else r.keys[w]
+            p = r.prob3(ids, w)
+            assert model.prob_after(key, hist) == pytest.approx(p, rel=1e-12, abs=0), (hist, key)
+            total += p
+        assert total == pytest.approx(1.0, rel=1e-9)
+        for prefix in ["", "s", "t", "a", "re"]:
+            got = model.rank_after(hist, prefix, 5)
+            want = r.brute_rank(ids, prefix, 5)
+            assert [k for k, _ in got] == [k for k, _ in want], (hist, prefix)
+
+
+def test_worked_kn_trigram_example() -> None:
+    # §10.7: retrain the example, compare the quoted arrays and the hand computation
+    import re
+    import tempfile
+
+    text = DOC.read_text(encoding="utf-8")
+    part = text[text.index("### 10.7") : text.index("## 11.")]
+    quoted = {m.group(1): [int(x) for x in m.group(2).split(",")] for m in re.finditer(r"^([A-Z0-9]{4}) = \[([^\]]*)\]$", part, re.M)}
+    assert set(quoted) == {"UNIG", "HIST", "HN13", "TROW", "TCTU", "TCTS", "TSUC", "TVAL", "TTOT", "TN13"}
+    with tempfile.TemporaryDirectory() as d:
+        path = Path(d) / "ex.nwm"
+        nextword.train_texts(["I am Sam.", "Sam I am.", "I do not like green eggs and ham."], path,
+                             smoothing="kn", order=3, min_count=1)
+        r = NgramReader(path)
+        for tag, values in quoted.items():
+            assert r.a[tag].tolist() == values, tag
+        assert r.keys[:10] == ["i", "sam", "am", "and", "do", "eggs", "green", "ham", "like", "not"]
+        assert r.d == [[2 / 3] * 3, [13 / 17] * 3, [0.5] * 3]
+        # P(sam | i am) = 1/4 + (1/2)(2/17 + (13/17)(7/54)) = 329/918
+        assert r.prob3((0, 2), 1) == pytest.approx(329 / 918, rel=1e-12)
+        model = nextword.load(path)
+        top = model.suggest("I am ", 3)
+        assert [s.word for s in top] == ["Sam", "I", "am"]  # display spellings (§7.10)
+        assert [round(s.prob, 6) for s in top] == [0.358388, 0.049564, 0.024074]

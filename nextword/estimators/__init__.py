@@ -2,9 +2,9 @@
 
 from .base import Estimator, Fitted, Level
 from .jm import MAX_LAMBDA, FittedJelinekMercer, JelinekMercer
-from .kn import FittedKneserNey, KneserNey
+from .kn import FittedKneserNey, KneserNey, unigram_floor
 
 __all__ = [
     "Estimator", "Fitted", "Level", "JelinekMercer", "FittedJelinekMercer", "MAX_LAMBDA",
-    "KneserNey", "FittedKneserNey",
+    "KneserNey", "FittedKneserNey", "unigram_floor",
 ]

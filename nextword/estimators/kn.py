@@ -11,7 +11,7 @@ order's count-of-counts, with the oracle's stated fallbacks.
 from __future__ import annotations
 
 from collections import Counter
-from typing import Any, ClassVar
+from typing import Any, ClassVar, Sequence
 
 import numpy as np
 
@@ -20,7 +20,7 @@ from ..ngrams import NgramCounts
 from ..reference_kn import Discounts, fit_discounts
 from .base import Estimator, Fitted, Level
 
-__all__ = ["KneserNey", "FittedKneserNey"]
+__all__ = ["KneserNey", "FittedKneserNey", "unigram_floor"]
 
 
 def adjusted_values(counts: NgramCounts) -> list[np.ndarray]:
@@ -120,3 +120,18 @@ class KneserNey(Estimator):
             if why is not None:
                 fallbacks[m] = why
         return FittedKneserNey(counts, levels, discounts, fallbacks)
+
+
+def unigram_floor(values: np.ndarray, d: Sequence[float], total: int) -> np.ndarray:
+    """P₁ of every outcome from the unigram level's adjusted counts (length n_words + 2).
+
+    P₁(w) = max(a − D(a), 0)/A + γ₀ · 1/(n+2), γ₀ = (D₁n₁ + D₂n₂ + D₃n₃)/A, evaluated in the
+    operation order of :meth:`nextword.reference_kn.DictKneserNey.prob_key`, so the model
+    file's id order (by this floor, ties by key) and the queries use the same numbers.
+    """
+    a = np.asarray(values, dtype=np.int64)
+    disc = np.where(a >= 3, d[2], np.where(a >= 2, d[1], np.where(a >= 1, d[0], 0.0)))
+    alpha1 = np.maximum(a - disc, 0.0) / total
+    n1, n2, n3 = int((a == 1).sum()), int((a == 2).sum()), int((a >= 3).sum())
+    g0 = (d[0] * n1 + d[1] * n2 + d[2] * n3) / total
+    return np.asarray(alpha1 + g0 * (1.0 / len(a)), dtype=np.float64)
