@@ -331,12 +331,14 @@ class _Trials:
     — and for the pair scores both to split the budget between words and pairs and to
     fit the pairs; each build costs about as much as writing the model, and the entropy
     scores several builds. So each is computed at most once, and only when asked for:
-    a file that fits whole is never scored.
+    a file that fits whole is never scored. Of a file over ``max_bytes`` only the size
+    is kept (it is never the answer), so the cache holds no more than one answer.
     """
 
     def __init__(self, tables: CountTables, rule: Rule, lam: float, build: dict[str, int],
-                 progress: Callable[[str], None] | None) -> None:
+                 progress: Callable[[str], None] | None, max_bytes: int) -> None:
         self.tables = tables
+        self.max_bytes = max_bytes
         self.rule = rule
         self.lam = lam
         self.build = build
@@ -344,6 +346,7 @@ class _Trials:
         self.n_pairs = len(tables.pair_count)
         self._scores: np.ndarray | None = None
         self._files: dict[int, tuple[CountTables, int, Chunks]] = {}
+        self._sizes: dict[int, int] = {}
 
     def scores(self) -> np.ndarray:
         if self._scores is None:
@@ -352,29 +355,38 @@ class _Trials:
             self._scores = pair_scores(self.tables, self.rule, self.lam)
         return self._scores
 
+    def size(self, k: int) -> int:
+        """Bytes of the file keeping the ``k`` most valuable pairs."""
+        k = min(k, self.n_pairs)
+        return self._sizes[k] if k in self._sizes else self.file(k)[1]
+
     def file(self, k: int) -> tuple[CountTables, int, Chunks]:
         """(counts, file size, file chunks) keeping the ``k`` most valuable pairs."""
+        k = min(k, self.n_pairs)
         hit = self._files.get(k)
         if hit is not None:
             return hit
         if self.progress is not None:
             self.progress(f"building a file with {k:,} of {self.n_pairs:,} pairs")
-        keep = np.ones(self.n_pairs, dtype=bool) if k >= self.n_pairs else top_k(self.scores(), k)
+        keep = np.ones(self.n_pairs, dtype=bool) if k == self.n_pairs else top_k(self.scores(), k)
         pruned = prune_tables(self.tables, keep)
         size, chunks = _size(pruned, self.lam, **self.build)
         hit = (pruned, size, chunks)
-        if k == 0 or k >= self.n_pairs:  # the two files asked for more than once
-            self._files[k] = hit
+        if k == 0 or k == self.n_pairs:  # the two files asked for more than once
+            self._sizes[k] = size
+            if size <= self.max_bytes:
+                self._files[k] = hit
         return hit
 
     def fit_pairs(self, max_bytes: int) -> tuple[CountTables, Chunks, dict[str, float]]:
         """The most valuable pairs of this vocabulary that fit ``max_bytes`` (see :func:`prune_to_size`)."""
         total_pairs = self.n_pairs
         words = self.tables.n_words
-        full, full_size, chunks = self.file(total_pairs)
+        full_size = self.size(total_pairs)
         if full_size <= max_bytes:
+            full, _, chunks = self.file(total_pairs)
             return full, chunks, {"kept": total_pairs, "removed": 0, "bytes": full_size, "words_kept": words, "words_removed": 0}
-        _, base_size, _ = self.file(0)  # at most full_size: fewer pairs never make a larger file
+        base_size = self.size(0)  # at most full_size: fewer pairs never make a larger file
         if base_size > max_bytes:
             raise InvalidArgumentError(
                 f"a budget of {max_bytes:,} bytes is below the vocabulary alone ({base_size:,} bytes); "
@@ -400,7 +412,7 @@ def choose_vocabulary(
     byte, best first, until the estimated size reaches the budget. Returns a boolean
     mask over the word ids (at least the most valuable word).
     """
-    return _choose(_Trials(tables, rule, lam, build, None), max_bytes)[0]
+    return _choose(_Trials(tables, rule, lam, build, None, max_bytes), max_bytes)[0]
 
 
 def _choose(trials: _Trials, max_bytes: int) -> tuple[np.ndarray, np.ndarray]:
@@ -409,13 +421,13 @@ def _choose(trials: _Trials, max_bytes: int) -> tuple[np.ndarray, np.ndarray]:
     n = tables.n_words
     pv = trials.scores()
     wv = word_values(tables, trials.rule, trials.lam, pv)
-    vocab_only = trials.file(0)[1]
+    vocab_only = trials.size(0)
     one = np.zeros(n, dtype=bool)
     one[int(np.argmax(wv))] = True
     # one word, no pairs: the pairs go before the words are merged (the same counts, no pair merge to pay for)
     no_pairs = prune_tables(tables, np.zeros(trials.n_pairs, dtype=bool))
     fixed = _size(drop_words(no_pairs, one), trials.lam, **trials.build)[0]
-    full = trials.file(trials.n_pairs)[1]
+    full = trials.size(trials.n_pairs)
     per_word = max((vocab_only - fixed) / max(n - 1, 1), 1e-9)
     per_pair = max((full - vocab_only) / max(len(pv), 1), 1e-9)
     # Words and pairs best first by value per byte (ties: words first, then by index, as a
@@ -487,13 +499,13 @@ def prune_to_size(
     with all of them does not fit (see :class:`_Trials`).
     """
     words_before = tables.n_words
-    trials = _Trials(tables, rule, lam, build, progress)
-    if not vocabulary or trials.file(trials.n_pairs)[1] <= max_bytes:
+    trials = _Trials(tables, rule, lam, build, progress, max_bytes)
+    if not vocabulary or trials.size(trials.n_pairs) <= max_bytes:
         return trials.fit_pairs(max_bytes)
     keep, wv = _choose(trials, max_bytes)
     while True:
-        smaller = trials if keep.all() else _Trials(drop_words(tables, keep), rule, lam, build, progress)
-        floor = smaller.file(0)[1]
+        smaller = trials if keep.all() else _Trials(drop_words(tables, keep), rule, lam, build, progress, max_bytes)
+        floor = smaller.size(0)
         if floor <= max_bytes:
             break
         if keep.sum() == 1:
@@ -516,8 +528,8 @@ def prune_to_size(
             mid = (lo + hi + 1) // 2
             trial = keep.copy()
             trial[back[:mid]] = True
-            candidate = trials if trial.all() else _Trials(drop_words(tables, trial), rule, lam, build, progress)
-            if candidate.file(candidate.n_pairs)[1] <= max_bytes:
+            candidate = trials if trial.all() else _Trials(drop_words(tables, trial), rule, lam, build, progress, max_bytes)
+            if candidate.size(candidate.n_pairs) <= max_bytes:
                 lo, best = mid, candidate
             else:
                 hi = mid - 1
