@@ -58,6 +58,7 @@ __all__ = [
     "choose_vocabulary",
     "prune_to_size",
     "vocabulary_bytes",
+    "top_k",
 ]
 
 RULES = ("entropy", "count")
@@ -113,8 +114,12 @@ def pair_scores(tables: CountTables, rule: Rule, lam: float) -> np.ndarray:
     return _entropy_scores(tables, float(lam))
 
 
-#: bound on the (pair × distinct count) expansion held at once by the entropy scores
-_EXPANSION = 1 << 22
+#: elements of the (pair × distinct count) expansion evaluated at once by the entropy
+#: scores: small enough that the temporaries stay in the processor's cache
+_BLOCK = 1 << 16
+#: rows at least this long are expanded against their distinct counts by broadcasting
+#: (no index arrays); shorter rows are gathered together, a block at a time
+_LONG_ROW = 256
 
 
 def _entropy_scores(tables: CountTables, lam: float) -> np.ndarray:
@@ -129,7 +134,9 @@ def _entropy_scores(tables: CountTables, lam: float) -> np.ndarray:
 
     and the sum depends on j only through t, i.e. through c_j: it is computed once per
     distinct count of each row (rows hold few distinct counts), which makes the exact
-    relative entropy of Stolcke's criterion affordable without approximation.
+    relative entropy of Stolcke's criterion affordable without approximation. The sums
+    F(t) = Σ_i p_i·ln(1 + c_i·t/p_i) over whole rows are evaluated in cache-sized blocks
+    (:func:`_row_sums`), every term by the same operations in the same order.
     """
     n_hist = tables.n_words + 3
     left = np.asarray(tables.pair_left, dtype=np.int64)
@@ -152,20 +159,7 @@ def _entropy_scores(tables: CountTables, lam: float) -> np.ndarray:
     rest = combo_cv - combo_c
     with np.errstate(divide="ignore", invalid="ignore"):
         combo_t = np.where(rest > 0, lam * combo_c / (combo_cv * np.where(rest > 0, rest, 1.0)), 0.0)
-    row_len = (rows[1:] - rows[:-1])[combo_row]
-    combo_f = np.zeros(len(combos))
-    reach = np.concatenate([[0], np.cumsum(row_len)])  # expansion before each combination
-    start = 0
-    while start < len(combos):  # F(t) = Σ_i p_i·ln(1 + c_i·t/p_i) over the whole row, in bounded chunks
-        # the most combinations from start whose rows expand to at most _EXPANSION (at least one)
-        stop = max(start + 1, int(np.searchsorted(reach, reach[start] + _EXPANSION, side="right")) - 1)
-        lens = row_len[start:stop]
-        ends = np.cumsum(lens)
-        idx = np.arange(int(ends[-1])) + np.repeat(rows[combo_row[start:stop]] - (ends - lens), lens)
-        t = np.repeat(combo_t[start:stop], lens)
-        vals = p[idx] * np.log1p(c[idx] * t / p[idx])
-        combo_f[start:stop] = np.add.reduceat(vals, np.concatenate([[0], ends[:-1]]))
-        start = stop
+    combo_f = _row_sums(p, c, rows, combo_row, combo_t)
 
     t = combo_t[pair_combo]
     emptied = (cv - c) <= 0
@@ -178,6 +172,66 @@ def _entropy_scores(tables: CountTables, lam: float) -> np.ndarray:
         kl = own + others + np.where(emptied, unseen, 0.0)
     kl = np.where(np.isnan(kl), np.inf, kl)
     return (cv / total) * np.maximum(kl, 0.0)
+
+
+def _row_sums(p: np.ndarray, c: np.ndarray, rows: np.ndarray, combo_row: np.ndarray, combo_t: np.ndarray) -> np.ndarray:
+    """F(t) = Σ_i p_i·ln(1 + c_i·t/p_i) over the whole row of each combination.
+
+    Combinations are sorted by row, so each row's combinations are consecutive and its
+    terms form a (distinct counts × row length) matrix. Long rows broadcast their t
+    against the row's p and c (views, nothing gathered); the short rows are gathered
+    into one expansion, a block at a time. Every term is (c·t)/p, log1p, times p, and
+    each combination's terms are added by one ``np.add.reduceat`` segment in row order,
+    whichever path computes it.
+    """
+    n = len(combo_t)
+    out = np.zeros(n)
+    if n == 0:
+        return out
+    row_len = rows[1:] - rows[:-1]
+    combo_len = row_len[combo_row]
+    # the long rows, one at a time, a block of their combinations at a time (at least one
+    # combination: a row longer than the block gets a buffer of its length)
+    first = np.flatnonzero(np.concatenate([[True], combo_row[1:] != combo_row[:-1]]))
+    last = np.append(first[1:], n)
+    long_rows = combo_len[first] >= _LONG_ROW
+    buf = np.empty(max(_BLOCK, int(combo_len.max())))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for a, b in zip(first[long_rows].tolist(), last[long_rows].tolist()):
+            r = int(combo_row[a])
+            s, e = int(rows[r]), int(rows[r + 1])
+            pr, cr = p[s:e], c[s:e]
+            length = e - s
+            step = max(1, _BLOCK // length)
+            for j in range(a, b, step):
+                k = min(b, j + step)
+                m = buf[: (k - j) * length].reshape(k - j, length)
+                np.multiply(cr, combo_t[j:k, None], out=m)
+                np.divide(m, pr, out=m)
+                np.log1p(m, out=m)
+                np.multiply(pr, m, out=m)
+                out[j:k] = np.add.reduceat(m.reshape(-1), np.arange(0, (k - j) * length, length))
+        # the short rows' combinations, gathered in blocks of about _BLOCK terms
+        short = np.flatnonzero(np.repeat(~long_rows, last - first))
+        if len(short):
+            lens = combo_len[short]
+            reach = np.concatenate([[0], np.cumsum(lens)])
+            start = 0
+            while start < len(short):
+                stop = max(start + 1, int(np.searchsorted(reach, reach[start] + _BLOCK, side="right")) - 1)
+                sel = short[start:stop]
+                ln = lens[start:stop]
+                ends = np.cumsum(ln)
+                idx = np.arange(int(ends[-1])) + np.repeat(rows[combo_row[sel]] - (ends - ln), ln)
+                pi = p[idx]
+                v = c[idx]
+                v *= np.repeat(combo_t[sel], ln)
+                v /= pi
+                np.log1p(v, out=v)
+                np.multiply(pi, v, out=v)
+                out[sel] = np.add.reduceat(v, np.concatenate([[0], ends[:-1]]))
+                start = stop
+    return out
 
 
 def prune_tables(tables: CountTables, keep: np.ndarray) -> CountTables:
@@ -266,6 +320,88 @@ def drop_words(tables: CountTables, keep: np.ndarray) -> CountTables:
     )
 
 
+Chunks = list[bytes | memoryview]
+
+
+class _Trials:
+    """One vocabulary's counts and the files the size search builds from them.
+
+    The search asks for the same files several times — the file with every pair (does
+    pruning start at all? bytes per pair), the one with none (the floor; bytes per word)
+    — and for the pair scores both to split the budget between words and pairs and to
+    fit the pairs; each build costs about as much as writing the model, and the entropy
+    scores several builds. So each is computed at most once, and only when asked for:
+    a file that fits whole is never scored. Of a file over ``max_bytes`` only the size
+    is kept (it is never the answer), so the cache holds no more than one answer.
+    """
+
+    def __init__(self, tables: CountTables, rule: Rule, lam: float, build: dict[str, int],
+                 progress: Callable[[str], None] | None, max_bytes: int) -> None:
+        self.tables = tables
+        self.max_bytes = max_bytes
+        self.rule = rule
+        self.lam = lam
+        self.build = build
+        self.progress = progress
+        self.n_pairs = len(tables.pair_count)
+        self._scores: np.ndarray | None = None
+        self._files: dict[int, tuple[CountTables, int, Chunks]] = {}
+        self._sizes: dict[int, int] = {}
+
+    def scores(self) -> np.ndarray:
+        if self._scores is None:
+            if self.progress is not None:
+                self.progress(f"scoring {self.n_pairs:,} pairs ({self.rule} rule)")
+            self._scores = pair_scores(self.tables, self.rule, self.lam)
+        return self._scores
+
+    def size(self, k: int) -> int:
+        """Bytes of the file keeping the ``k`` most valuable pairs."""
+        k = min(k, self.n_pairs)
+        return self._sizes[k] if k in self._sizes else self.file(k)[1]
+
+    def file(self, k: int) -> tuple[CountTables, int, Chunks]:
+        """(counts, file size, file chunks) keeping the ``k`` most valuable pairs."""
+        k = min(k, self.n_pairs)
+        hit = self._files.get(k)
+        if hit is not None:
+            return hit
+        if self.progress is not None:
+            self.progress(f"building a file with {k:,} of {self.n_pairs:,} pairs")
+        keep = np.ones(self.n_pairs, dtype=bool) if k == self.n_pairs else top_k(self.scores(), k)
+        pruned = prune_tables(self.tables, keep)
+        size, chunks = _size(pruned, self.lam, **self.build)
+        hit = (pruned, size, chunks)
+        if k == 0 or k == self.n_pairs:  # the two files asked for more than once
+            self._sizes[k] = size
+            if size <= self.max_bytes:
+                self._files[k] = hit
+        return hit
+
+    def fit_pairs(self, max_bytes: int) -> tuple[CountTables, Chunks, dict[str, float]]:
+        """The most valuable pairs of this vocabulary that fit ``max_bytes`` (see :func:`prune_to_size`)."""
+        total_pairs = self.n_pairs
+        words = self.tables.n_words
+        full_size = self.size(total_pairs)
+        if full_size <= max_bytes:
+            full, _, chunks = self.file(total_pairs)
+            return full, chunks, {"kept": total_pairs, "removed": 0, "bytes": full_size, "words_kept": words, "words_removed": 0}
+        base_size = self.size(0)  # at most full_size: fewer pairs never make a larger file
+        if base_size > max_bytes:
+            raise InvalidArgumentError(
+                f"a budget of {max_bytes:,} bytes is below the vocabulary alone ({base_size:,} bytes); "
+                "let the vocabulary shrink too (the default; not with --keep-vocabulary / vocabulary=False) or lower max_vocab"
+            )
+        per_pair = (full_size - base_size) / max(total_pairs, 1)
+        k = int((max_bytes - base_size) / per_pair)
+        for _ in range(60):
+            pruned, size, chunks = self.file(k)
+            if size <= max_bytes:
+                return pruned, chunks, {"kept": k, "removed": total_pairs - k, "bytes": size, "words_kept": words, "words_removed": 0}
+            k = max(0, min(k - 1, int(k - (size - max_bytes) / per_pair * 1.02) - 1))
+        raise InvalidArgumentError(f"could not fit {max_bytes:,} bytes")  # pragma: no cover - k reaches 0 first
+
+
 def choose_vocabulary(
     tables: CountTables, max_bytes: int, *, rule: Rule = DEFAULT_RULE, lam: float = 0.9, **build: int
 ) -> np.ndarray:
@@ -276,29 +412,62 @@ def choose_vocabulary(
     byte, best first, until the estimated size reaches the budget. Returns a boolean
     mask over the word ids (at least the most valuable word).
     """
+    return _choose(_Trials(tables, rule, lam, build, None, max_bytes), max_bytes)[0]
+
+
+def _choose(trials: _Trials, max_bytes: int) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`choose_vocabulary` on the builds and scores ``trials`` holds; returns (mask, word values)."""
+    tables = trials.tables
     n = tables.n_words
-    pv = pair_scores(tables, rule, lam)
-    wv = word_values(tables, rule, lam, pv)
-    no_pairs = np.zeros(len(tables.pair_count), dtype=bool)
-    vocab_only = _size(prune_tables(tables, no_pairs), lam, **build)[0]
+    pv = trials.scores()
+    wv = word_values(tables, trials.rule, trials.lam, pv)
+    vocab_only = trials.size(0)
     one = np.zeros(n, dtype=bool)
     one[int(np.argmax(wv))] = True
-    fixed = _size(prune_tables(drop_words(tables, one), np.zeros(0, dtype=bool)), lam, **build)[0]
-    full = _size(prune_tables(tables, ~no_pairs), lam, **build)[0]
+    # one word, no pairs: the pairs go before the words are merged (the same counts, no pair merge to pay for)
+    no_pairs = prune_tables(tables, np.zeros(trials.n_pairs, dtype=bool))
+    fixed = _size(drop_words(no_pairs, one), trials.lam, **trials.build)[0]
+    full = trials.size(trials.n_pairs)
     per_word = max((vocab_only - fixed) / max(n - 1, 1), 1e-9)
     per_pair = max((full - vocab_only) / max(len(pv), 1), 1e-9)
-    value = np.concatenate([wv / per_word, np.where(np.isfinite(pv), pv / per_pair, np.inf)])
-    cost = np.concatenate([np.full(n, per_word), np.full(len(pv), per_pair)])
-    order = np.argsort(-value, kind="stable")
-    fits = fixed + np.cumsum(cost[order]) - per_word <= max_bytes  # the first word is in ``fixed``
-    taken = order[fits] if fits.all() else order[: int(np.argmin(fits))]
+    # Words and pairs best first by value per byte (ties: words first, then by index, as a
+    # stable sort of the words' values followed by the pairs' would give), adding up costs
+    # until the budget is reached. Only the words' places in that order matter — every
+    # pair costs the same — so the pairs' values are sorted, not argsorted: a word's place
+    # is its rank among the words plus the number of pairs worth strictly more.
+    word_value = wv / per_word
+    pair_value = np.sort(np.where(np.isfinite(pv), pv / per_pair, np.inf))
+    by_value = np.argsort(-word_value, kind="stable")
+    place = np.arange(n) + (len(pv) - np.searchsorted(pair_value, word_value[by_value], side="right"))
+    cost = np.full(n + len(pv), per_pair)
+    cost[place] = per_word
+    fits = fixed + np.cumsum(cost) - per_word <= max_bytes  # the first word is in ``fixed``
+    cut = len(fits) if fits.all() else int(np.argmin(fits))
     keep = np.zeros(n, dtype=bool)
-    keep[taken[taken < n]] = True
+    keep[by_value[place < cut]] = True
     keep[int(np.argmax(wv))] = True
+    return keep, wv
+
+
+def top_k(values: np.ndarray, k: int) -> np.ndarray:
+    """Mask of the ``k`` largest of ``values`` (no NaN), ties to the smaller index.
+
+    The same set as the first ``k`` of ``np.argsort(-values, kind="stable")`` (the order
+    pruning removes pairs in), found by one partition instead of a sort: everything above
+    the k-th largest value, then the first of the values equal to it.
+    """
+    n = len(values)
+    if k <= 0:
+        return np.zeros(n, dtype=bool)
+    if k >= n:
+        return np.ones(n, dtype=bool)
+    kth = np.partition(values, n - k)[n - k]
+    keep = values > kth
+    keep[np.flatnonzero(values == kth)[: k - int(np.count_nonzero(keep))]] = True
     return keep
 
 
-def _size(tables: CountTables, lam: float, **build: int) -> tuple[int, list[bytes | memoryview]]:
+def _size(tables: CountTables, lam: float, **build: int) -> tuple[int, Chunks]:
     chunks = encode_sections(build_sections(tables, lam=lam, **build), minor=2)
     return sum(len(c) for c in chunks), chunks
 
@@ -317,7 +486,7 @@ def prune_to_size(
     vocabulary: bool = True,
     progress: Callable[[str], None] | None = None,
     **build: int,
-) -> tuple[CountTables, list[bytes | memoryview], dict[str, float]]:
+) -> tuple[CountTables, Chunks, dict[str, float]]:
     """Keep the most valuable words and pairs that fit ``max_bytes``; returns (tables, file chunks, info).
 
     With ``vocabulary`` (the default) the vocabulary/pair split is chosen by value per
@@ -326,76 +495,48 @@ def prune_to_size(
     is measured, not estimated: candidate sizes come from a linear fit of bytes against
     kept pairs, then the count is lowered until the encoded file fits.
     ``progress(label)`` is called before each expensive step (scoring, each trial build).
+    Each file the search needs is built once, and pairs are scored only when a file
+    with all of them does not fit (see :class:`_Trials`).
     """
     words_before = tables.n_words
-    all_pairs = np.ones(len(tables.pair_count), dtype=bool)
-    if vocabulary and _size(prune_tables(tables, all_pairs), lam, **build)[0] > max_bytes:
-        keep = choose_vocabulary(tables, max_bytes, rule=rule, lam=lam, **build)
-        wv = word_values(tables, rule, lam)
-        while True:
-            smaller = drop_words(tables, keep) if not keep.all() else tables
-            floor = vocabulary_bytes(smaller, lam=lam, **build)
-            if floor <= max_bytes:
-                break
-            if keep.sum() == 1:
-                raise InvalidArgumentError(
-                    f"a budget of {max_bytes:,} bytes is below the smallest possible model ({floor:,} bytes: one word, no pairs)"
-                )
-            # the estimate was optimistic: drop the least valuable tenth of the kept words too
-            kept = np.flatnonzero(keep)
-            keep[kept[np.argsort(wv[kept], kind="stable")[: max(1, len(kept) // 10)]]] = False
-        pruned, chunks, info = prune_to_size(smaller, max_bytes, rule=rule, lam=lam, vocabulary=False, progress=progress, **build)
-        if info["removed"] == 0 and not keep.all():
-            # every pair of the smaller vocabulary fits: the estimate dropped more words than
-            # needed, so take back the most valuable dropped words while the whole file fits
-            # (the size grows with every word taken back, so bisection finds the most)
-            back = np.flatnonzero(~keep)
-            back = back[np.argsort(-wv[back], kind="stable")]
-            lo, hi = 0, len(back)
-            while lo < hi:
-                mid = (lo + hi + 1) // 2
-                trial = keep.copy()
-                trial[back[:mid]] = True
-                t = drop_words(tables, trial) if not trial.all() else tables
-                if _size(prune_tables(t, np.ones(len(t.pair_count), dtype=bool)), lam, **build)[0] <= max_bytes:
-                    lo = mid
-                else:
-                    hi = mid - 1
-            if lo:
-                keep[back[:lo]] = True
-                smaller = drop_words(tables, keep) if not keep.all() else tables
-                pruned, chunks, info = prune_to_size(smaller, max_bytes, rule=rule, lam=lam, vocabulary=False, progress=progress, **build)
-        info["words_removed"] = words_before - smaller.n_words
-        info["words_kept"] = smaller.n_words
-        return pruned, chunks, info
-    if progress is not None:
-        progress(f"scoring {len(tables.pair_count):,} pairs ({rule} rule)")
-    order = np.argsort(-pair_scores(tables, rule, lam), kind="stable")  # most valuable first
-    total_pairs = len(order)
-
-    def build_with(k: int) -> tuple[CountTables, int, list[bytes | memoryview]]:
-        if progress is not None:
-            progress(f"building a file with {k:,} of {total_pairs:,} pairs")
-        keep = np.zeros(total_pairs, dtype=bool)
-        keep[order[:k]] = True
-        pruned = prune_tables(tables, keep)
-        size, chunks = _size(pruned, lam, **build)
-        return pruned, size, chunks
-
-    empty, base_size, _ = build_with(0)
-    if base_size > max_bytes:
-        raise InvalidArgumentError(
-            f"a budget of {max_bytes:,} bytes is below the vocabulary alone ({base_size:,} bytes); "
-            "let the vocabulary shrink too (the default; not with --keep-vocabulary / vocabulary=False) or lower max_vocab"
-        )
-    full, full_size, chunks = build_with(total_pairs)
-    if full_size <= max_bytes:
-        return full, chunks, {"kept": total_pairs, "removed": 0, "bytes": full_size, "words_kept": words_before, "words_removed": 0}
-    per_pair = (full_size - base_size) / max(total_pairs, 1)
-    k = int((max_bytes - base_size) / per_pair)
-    for _ in range(60):
-        pruned, size, chunks = build_with(k)
-        if size <= max_bytes:
-            return pruned, chunks, {"kept": k, "removed": total_pairs - k, "bytes": size, "words_kept": words_before, "words_removed": 0}
-        k = max(0, min(k - 1, int(k - (size - max_bytes) / per_pair * 1.02) - 1))
-    raise InvalidArgumentError(f"could not fit {max_bytes:,} bytes")  # pragma: no cover - k reaches 0 first
+    trials = _Trials(tables, rule, lam, build, progress, max_bytes)
+    if not vocabulary or trials.size(trials.n_pairs) <= max_bytes:
+        return trials.fit_pairs(max_bytes)
+    keep, wv = _choose(trials, max_bytes)
+    while True:
+        smaller = trials if keep.all() else _Trials(drop_words(tables, keep), rule, lam, build, progress, max_bytes)
+        floor = smaller.size(0)
+        if floor <= max_bytes:
+            break
+        if keep.sum() == 1:
+            raise InvalidArgumentError(
+                f"a budget of {max_bytes:,} bytes is below the smallest possible model ({floor:,} bytes: one word, no pairs)"
+            )
+        # the estimate was optimistic: drop the least valuable tenth of the kept words too
+        kept = np.flatnonzero(keep)
+        keep[kept[np.argsort(wv[kept], kind="stable")[: max(1, len(kept) // 10)]]] = False
+    pruned, chunks, info = smaller.fit_pairs(max_bytes)
+    if info["removed"] == 0 and not keep.all():
+        # every pair of the smaller vocabulary fits: the estimate dropped more words than
+        # needed, so take back the most valuable dropped words while the whole file fits
+        # (the size grows with every word taken back, so bisection finds the most)
+        back = np.flatnonzero(~keep)
+        back = back[np.argsort(-wv[back], kind="stable")]
+        lo, hi = 0, len(back)
+        best = smaller
+        while lo < hi:
+            mid = (lo + hi + 1) // 2
+            trial = keep.copy()
+            trial[back[:mid]] = True
+            candidate = trials if trial.all() else _Trials(drop_words(tables, trial), rule, lam, build, progress, max_bytes)
+            if candidate.size(candidate.n_pairs) <= max_bytes:
+                lo, best = mid, candidate
+            else:
+                hi = mid - 1
+        if lo:
+            keep[back[:lo]] = True
+            smaller = best  # its whole file fits, and is already built
+            pruned, chunks, info = smaller.fit_pairs(max_bytes)
+    info["words_removed"] = words_before - smaller.tables.n_words
+    info["words_kept"] = smaller.tables.n_words
+    return pruned, chunks, info

@@ -11,9 +11,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import nextword
-from nextword.counts import CountBuilder
-from nextword.prune import parse_size, prune_to_size, tables_from_model, vocabulary_bytes
-from nextword.store import atomic_write
+from nextword.counts import CountBuilder, CountTables
+from nextword.prune import drop_words, parse_size, prune_tables, prune_to_size, tables_from_model, vocabulary_bytes, word_values
+from nextword.store import atomic_write, build_sections, encode_sections
 
 
 @pytest.fixture(scope="module")
@@ -108,6 +108,277 @@ def test_train_with_max_size(lines: list[str], tmp_path: Path) -> None:
     assert r.returncode == 0, r.stderr
     assert out.stat().st_size <= budget
     assert nextword.load(out, verify=True).n_words <= nextword.load(full).n_words
+
+
+# -- the fast size search against the plain one -----------------------------------------------------
+#
+# The reference below is the search as first written (the code before the size search kept
+# its builds and scores): every score from one flat expansion of the (pair × distinct count)
+# terms, orders from stable argsorts, and a fresh build for every size it needs. The fast
+# search must choose the same words and pairs and write the same bytes (common practice for
+# an optimisation: the straightforward version is the oracle).
+
+
+def _plain_entropy_scores(tables: CountTables, lam: float) -> np.ndarray:
+    n_hist = tables.n_words + 3
+    left = np.asarray(tables.pair_left, dtype=np.int64)
+    c = np.asarray(tables.pair_count, dtype=np.float64)
+    if len(c) == 0:
+        return np.zeros(0)
+    total = float(tables.unigram.sum())
+    row_sum = np.bincount(left, weights=c, minlength=n_hist)
+    cv = row_sum[left]
+    u = tables.unigram[np.asarray(tables.pair_right, dtype=np.int64)] / total
+    p = lam * c / cv + (1.0 - lam) * u
+    rows = np.concatenate([[0], np.cumsum(np.bincount(left, minlength=n_hist))])
+    radix = int(c.max()) + 1
+    combos, pair_combo = np.unique(left * radix + c.astype(np.int64), return_inverse=True)
+    combo_row = combos // radix
+    combo_c = (combos % radix).astype(np.float64)
+    combo_cv = row_sum[combo_row]
+    rest = combo_cv - combo_c
+    with np.errstate(divide="ignore", invalid="ignore"):
+        combo_t = np.where(rest > 0, lam * combo_c / (combo_cv * np.where(rest > 0, rest, 1.0)), 0.0)
+    lens = (rows[1:] - rows[:-1])[combo_row]
+    ends = np.cumsum(lens)
+    idx = np.arange(int(ends[-1])) + np.repeat(rows[combo_row] - (ends - lens), lens)
+    vals = p[idx] * np.log1p(c[idx] * np.repeat(combo_t, lens) / p[idx])
+    combo_f = np.add.reduceat(vals, np.concatenate([[0], ends[:-1]]))
+    t = combo_t[pair_combo]
+    emptied = (cv - c) <= 0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        fallback = np.where(emptied, u, (1.0 - lam) * u)
+        own = p * np.log(p / fallback)
+        others = np.where(emptied, 0.0, -(combo_f[pair_combo] - p * np.log1p(c * t / p)))
+        unseen = (1.0 - lam) * np.log(1.0 - lam) * (1.0 - u) if lam < 1.0 else np.zeros_like(u)
+        kl = own + others + np.where(emptied, unseen, 0.0)
+    kl = np.where(np.isnan(kl), np.inf, kl)
+    return (cv / total) * np.maximum(kl, 0.0)
+
+
+def _plain_scores(tables: CountTables, rule: str, lam: float) -> np.ndarray:
+    return tables.pair_count.astype(np.float64) if rule == "count" else _plain_entropy_scores(tables, lam)
+
+
+def _plain_size(tables: CountTables, lam: float, **build: int) -> tuple[int, list]:
+    chunks = encode_sections(build_sections(tables, lam=lam, **build), minor=2)
+    return sum(len(c) for c in chunks), chunks
+
+
+def _plain_choose(tables: CountTables, max_bytes: int, rule: str, lam: float, **build: int) -> np.ndarray:
+    n = tables.n_words
+    pv = _plain_scores(tables, rule, lam)
+    wv = word_values(tables, rule, lam, pv)  # type: ignore[arg-type]
+    no_pairs = np.zeros(len(tables.pair_count), dtype=bool)
+    vocab_only = _plain_size(prune_tables(tables, no_pairs), lam, **build)[0]
+    one = np.zeros(n, dtype=bool)
+    one[int(np.argmax(wv))] = True
+    fixed = _plain_size(prune_tables(drop_words(tables, one), np.zeros(0, dtype=bool)), lam, **build)[0]
+    full = _plain_size(prune_tables(tables, ~no_pairs), lam, **build)[0]
+    per_word = max((vocab_only - fixed) / max(n - 1, 1), 1e-9)
+    per_pair = max((full - vocab_only) / max(len(pv), 1), 1e-9)
+    value = np.concatenate([wv / per_word, np.where(np.isfinite(pv), pv / per_pair, np.inf)])
+    cost = np.concatenate([np.full(n, per_word), np.full(len(pv), per_pair)])
+    order = np.argsort(-value, kind="stable")
+    fits = fixed + np.cumsum(cost[order]) - per_word <= max_bytes
+    taken = order[fits] if fits.all() else order[: int(np.argmin(fits))]
+    keep = np.zeros(n, dtype=bool)
+    keep[taken[taken < n]] = True
+    keep[int(np.argmax(wv))] = True
+    return keep
+
+
+def _plain_prune(tables: CountTables, max_bytes: int, rule: str, lam: float, vocabulary: bool = True, **build: int):  # type: ignore[no-untyped-def]
+    words_before = tables.n_words
+    all_pairs = np.ones(len(tables.pair_count), dtype=bool)
+    if vocabulary and _plain_size(prune_tables(tables, all_pairs), lam, **build)[0] > max_bytes:
+        keep = _plain_choose(tables, max_bytes, rule, lam, **build)
+        wv = word_values(tables, rule, lam, _plain_scores(tables, rule, lam))  # type: ignore[arg-type]
+        while True:
+            smaller = drop_words(tables, keep) if not keep.all() else tables
+            floor = _plain_size(prune_tables(smaller, np.zeros(len(smaller.pair_count), dtype=bool)), lam, **build)[0]
+            if floor <= max_bytes:
+                break
+            if keep.sum() == 1:
+                raise nextword.InvalidArgumentError("below the smallest possible model")
+            kept = np.flatnonzero(keep)
+            keep[kept[np.argsort(wv[kept], kind="stable")[: max(1, len(kept) // 10)]]] = False
+        pruned, chunks, info = _plain_prune(smaller, max_bytes, rule, lam, False, **build)
+        if info["removed"] == 0 and not keep.all():
+            back = np.flatnonzero(~keep)
+            back = back[np.argsort(-wv[back], kind="stable")]
+            lo, hi = 0, len(back)
+            while lo < hi:
+                mid = (lo + hi + 1) // 2
+                trial = keep.copy()
+                trial[back[:mid]] = True
+                t = drop_words(tables, trial) if not trial.all() else tables
+                if _plain_size(prune_tables(t, np.ones(len(t.pair_count), dtype=bool)), lam, **build)[0] <= max_bytes:
+                    lo = mid
+                else:
+                    hi = mid - 1
+            if lo:
+                keep[back[:lo]] = True
+                smaller = drop_words(tables, keep) if not keep.all() else tables
+                pruned, chunks, info = _plain_prune(smaller, max_bytes, rule, lam, False, **build)
+            info["took_back"] = lo
+        info["words_removed"] = words_before - smaller.n_words
+        info["words_kept"] = smaller.n_words
+        return pruned, chunks, info
+    order = np.argsort(-_plain_scores(tables, rule, lam), kind="stable")
+    total_pairs = len(order)
+
+    def build_with(k: int):  # type: ignore[no-untyped-def]
+        keep = np.zeros(total_pairs, dtype=bool)
+        keep[order[:k]] = True
+        pruned = prune_tables(tables, keep)
+        size, chunks = _plain_size(pruned, lam, **build)
+        return pruned, size, chunks
+
+    _, base_size, _ = build_with(0)
+    if base_size > max_bytes:
+        raise nextword.InvalidArgumentError("below the vocabulary alone")
+    full, full_size, chunks = build_with(total_pairs)
+    if full_size <= max_bytes:
+        return full, chunks, {"kept": total_pairs, "removed": 0, "bytes": full_size, "words_kept": words_before, "words_removed": 0}
+    per_pair = (full_size - base_size) / max(total_pairs, 1)
+    k = int((max_bytes - base_size) / per_pair)
+    while True:
+        pruned, size, chunks = build_with(k)
+        if size <= max_bytes:
+            return pruned, chunks, {"kept": k, "removed": total_pairs - k, "bytes": size, "words_kept": words_before, "words_removed": 0}
+        k = max(0, min(k - 1, int(k - (size - max_bytes) / per_pair * 1.02) - 1))
+
+
+#: a few frequent words and many rare ones, so rows hold several distinct counts
+RARE_AND_COMMON = ["the", "the", "the", "a", "a", "at", "bell", "brake", "chain", "crank", "fork", "gear", "hub", "pedal", "rim"]
+
+
+def _topic_lines(first: int, last: int) -> list[str]:
+    from pydoc_data.topics import topics  # real English shipped with CPython
+
+    return [ln for k in sorted(topics)[first:last] for ln in topics[k].splitlines() if ln.strip()]
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    st.lists(st.lists(st.sampled_from(RARE_AND_COMMON), min_size=1, max_size=10).map(" ".join), min_size=1, max_size=30),
+    st.sampled_from([0.0, 0.5, 0.9, 0.999]),
+    st.sampled_from([(1 << 16, 256), (8, 3), (5, 1), (64, 2)]),
+)
+def test_entropy_scores_equal_the_plain_expansion_bit_for_bit(msgs: list[str], lam: float, blocking: tuple[int, int]) -> None:
+    # the blocked evaluation (long rows broadcast, short rows gathered, any block size) adds
+    # the same terms in the same order as one flat expansion: equal floats, not just close
+    from nextword import prune
+
+    b = CountBuilder()
+    b.add_texts(msgs)
+    tables = b.tables(min_count=1)
+    saved = prune._BLOCK, prune._LONG_ROW
+    prune._BLOCK, prune._LONG_ROW = blocking
+    try:
+        got = prune.pair_scores(tables, "entropy", lam)
+    finally:
+        prune._BLOCK, prune._LONG_ROW = saved
+    want = _plain_entropy_scores(tables, lam)
+    assert got.tobytes() == want.tobytes()
+
+
+def test_entropy_scores_equal_the_plain_expansion_on_real_text() -> None:
+    from nextword.prune import pair_scores
+
+    b = CountBuilder()
+    b.add_texts(_topic_lines(0, 79))  # rows of "the", "a", "of" … hold hundreds of successors: the broadcast path
+    tables = b.tables(min_count=1)
+    assert np.bincount(tables.pair_left).max() >= 512
+    for lam in (0.3, 0.9):
+        assert pair_scores(tables, "entropy", lam).tobytes() == _plain_entropy_scores(tables, lam).tobytes()
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.sampled_from([0.0, -0.0, 1.0, 2.5, 2.5, 7.0, np.inf, 1e-300]), max_size=40), st.integers(-1, 42))
+def test_top_k_is_the_head_of_a_stable_sort(values: list[float], k: int) -> None:
+    from nextword.prune import top_k
+
+    v = np.asarray(values, dtype=np.float64)
+    want = np.zeros(len(v), dtype=bool)
+    want[np.argsort(-v, kind="stable")[: max(k, 0)]] = True
+    assert np.array_equal(top_k(v, k), want)
+
+
+BUDGETS = (1.0, 0.95, 0.8, 0.6, 0.4, 0.25, 0.15, 0.08, 0.03)
+
+
+@pytest.mark.parametrize("corpus", [(0, 40), (40, 60), (60, 79)])
+@pytest.mark.parametrize("rule", ["entropy", "count"])
+def test_the_search_writes_the_bytes_of_the_plain_search(corpus: tuple[int, int], rule: str) -> None:
+    from nextword.prune import prune_to_size
+
+    b = CountBuilder()
+    b.add_texts(_topic_lines(*corpus))
+    tables = b.tables(min_count=1)
+    full = _plain_size(prune_tables(tables, np.ones(len(tables.pair_count), dtype=bool)), 0.9)[0]
+    paths = set()
+    for frac in BUDGETS:
+        for vocabulary in (True, False):
+            for build in ({}, {"skyband_min": 2, "skyband_k": 3}):
+                budget = int(full * frac)
+                try:
+                    want_t, want_c, want_i = _plain_prune(tables, budget, rule, 0.9, vocabulary, **build)
+                except nextword.InvalidArgumentError as e:
+                    with pytest.raises(nextword.InvalidArgumentError, match=str(e)):
+                        prune_to_size(tables, budget, rule=rule, lam=0.9, vocabulary=vocabulary, **build)  # type: ignore[arg-type]
+                    paths.add("error")
+                    continue
+                got_t, got_c, got_i = prune_to_size(tables, budget, rule=rule, lam=0.9, vocabulary=vocabulary, **build)  # type: ignore[arg-type]
+                assert b"".join(map(bytes, got_c)) == b"".join(map(bytes, want_c)), (frac, vocabulary, build)
+                paths.add("took back" if want_i.pop("took_back", 0) else "words" if want_i["words_removed"] else
+                          "pairs" if want_i["removed"] else "whole")
+                assert got_i == want_i
+                assert got_t.keys == want_t.keys and np.array_equal(got_t.pair_count, want_t.pair_count)
+                assert np.array_equal(got_t.history, want_t.history)
+    assert {"whole", "pairs", "words", "error"} <= paths, paths  # every branch of the search was compared
+
+
+def test_the_search_writes_the_bytes_of_the_plain_search_when_it_takes_words_back() -> None:
+    # the branch where the value-per-byte estimate dropped more words than needed; found by
+    # scanning budgets of the plain search on this corpus
+    from nextword.prune import prune_to_size
+
+    b = CountBuilder()
+    b.add_texts(_topic_lines(0, 40))
+    tables = b.tables(min_count=1)
+    full = _plain_size(prune_tables(tables, np.ones(len(tables.pair_count), dtype=bool)), 0.9)[0]
+    seen = 0
+    for frac in np.linspace(0.02, 0.6, 59):
+        budget = int(full * frac)
+        try:
+            _, want_c, want_i = _plain_prune(tables, budget, "count", 0.9)
+        except nextword.InvalidArgumentError:
+            continue
+        _, got_c, got_i = prune_to_size(tables, budget, rule="count", lam=0.9)
+        seen += bool(want_i.pop("took_back", 0))
+        assert b"".join(map(bytes, got_c)) == b"".join(map(bytes, want_c)) and got_i == want_i, frac
+    assert seen, "no budget took words back: pick another corpus"
+
+
+def test_each_file_is_built_once_and_pairs_are_scored_only_when_needed(lines: list[str]) -> None:
+    # before: the scores were computed up to three times per vocabulary and the whole file,
+    # the empty file and the vocabulary floor were rebuilt; a budget the whole file meets was scored too
+    from nextword.prune import prune_to_size
+
+    b = CountBuilder()
+    b.add_texts(lines)
+    tables = b.tables(min_count=1)
+    full = _plain_size(prune_tables(tables, np.ones(len(tables.pair_count), dtype=bool)), 0.9)[0]
+    labels: list[str] = []
+    prune_to_size(tables, full, rule="entropy", lam=0.9, progress=labels.append)
+    assert labels == [f"building a file with {len(tables.pair_count):,} of {len(tables.pair_count):,} pairs"]
+    for budget, vocabulary in ((full * 3 // 4, False), (full * 3 // 4, True), (full // 4, True)):
+        labels = []
+        prune_to_size(tables, budget, rule="entropy", lam=0.9, vocabulary=vocabulary, progress=labels.append)
+        scored = [x for x in labels if x.startswith("scoring")]
+        assert len(scored) == len(set(scored)) >= 1 and len(labels) == len(set(labels)), labels
 
 
 @settings(max_examples=25, deadline=None)
