@@ -99,8 +99,8 @@ class _Partial:
     """Partial counts of one n-gram order over temporary ids, in memory and spilled.
 
     A part in memory is a tuple of int64 columns, the key columns then the counts, sorted
-    by key (a part remapped by :meth:`CountBuilder.merge` is summed, and so sorted, before
-    it is used). A run on disk holds the same columns as one raw little-endian int64 file
+    by key (except a part remapped by :meth:`CountBuilder.merge` until the next summing;
+    nothing relies on the order of a part). A run on disk holds the same columns as one raw little-endian int64 file
     each, read back in slices, so a run never has to fit in memory at once. Pairs have
     one key column, ``(left << 32) | right``; triples two, ``(u << 32) | v`` and ``w``.
     """
@@ -620,6 +620,10 @@ class CountBuilder:
         def first_bin(ctx: np.ndarray, w: np.ndarray) -> np.ndarray:
             return (tid_map[ctx >> 32] * width + tid_map[ctx & _LOW32]) >> shift  # type: ignore[no-any-return]
 
+        if self.memory_cap is None and width <= _PACK3_LIMIT:
+            fast = self._final_triples_packed(tid_map, width)
+            if fast is not None:
+                return fast
         n_bins = ((width * width - 1) >> shift) + 1
         ctx, w, counts = self._final_columns(self._triples, to_final, reduce, first_bin, n_bins, 1 << shift)
         grams = np.empty((len(counts), 3), dtype=np.int64)
@@ -627,6 +631,47 @@ class CountBuilder:
         grams[:, 1] = ctx % width
         grams[:, 2] = w
         return grams, counts
+
+    def _final_triples_packed(self, tid_map: np.ndarray, width: int) -> tuple[np.ndarray, np.ndarray] | None:
+        """:meth:`_final_triples` without a cap when a final triple key and a partial count
+        fit side by side in one int64 (else None): the key ``(u * width + v) * width + w``
+        and the count are written into one array, part by part, sorted in place and summed,
+        so the largest step of order 3 makes few temporary arrays."""
+        assert self._triples is not None
+        parts = self._triples.parts
+        total = sum(len(p[0]) for p in parts)
+        if total == 0:
+            return np.zeros((0, 3), np.int64), np.zeros(0, np.int64)
+        count_bits = max(int(p[2].max()) for p in parts if len(p[0])).bit_length()
+        if (width**3 - 1).bit_length() + count_bits > 63:
+            return None
+        both = np.empty(total, dtype=np.int64)
+        lo = 0
+        for ctx, w, counts in parts:
+            seg = both[lo : lo + len(ctx)]
+            np.take(tid_map, ctx >> 32, out=seg)
+            seg *= width
+            seg += tid_map[ctx & _LOW32]
+            seg *= width
+            seg += tid_map[w]
+            seg <<= count_bits
+            seg |= counts
+            lo += len(ctx)
+        both.sort()
+        keys = both >> count_bits
+        both &= (1 << count_bits) - 1
+        starts = np.flatnonzero(np.concatenate(([True], keys[1:] != keys[:-1])))
+        sums = np.add.reduceat(both, starts)
+        del both
+        keys = keys[starts]
+        del starts
+        grams = np.empty((len(keys), 3), dtype=np.int64)
+        np.remainder(keys, width, out=grams[:, 2])
+        keys //= width
+        np.remainder(keys, width, out=grams[:, 1])
+        keys //= width
+        grams[:, 0] = keys
+        return grams, sums.astype(np.int64, copy=False)
 
     def _final_columns(
         self,
@@ -829,10 +874,22 @@ def _count_triples(a: np.ndarray, n_types: int) -> tuple[np.ndarray, np.ndarray,
         return empty, empty.copy(), empty.copy()
     u, v, w = a[:-2], a[1:-1], a[2:]
     keep = (u != _EOS_T) & (v != _EOS_T)
-    if n_types <= _PACK3_LIMIT:
-        keys, counts = np.unique(((u << 42) | (v << 21) | w)[keep], return_counts=True)
+    if n_types <= _PACK3_LIMIT:  # one key per triple, built and sorted with few temporary arrays
+        packed = u << 42
+        packed |= v << 21
+        packed |= w
+        packed = packed[keep]
         del keep
-        return ((keys >> 42) << 32) | ((keys >> 21) & _LOW21), keys & _LOW21, counts.astype(np.int64)
+        packed.sort()
+        starts = np.flatnonzero(np.concatenate(([True], packed[1:] != packed[:-1])))
+        counts = np.diff(np.append(starts, len(packed)))
+        keys = packed[starts]
+        del packed, starts
+        ctx = keys >> 42
+        ctx <<= 32
+        ctx |= (keys >> 21) & _LOW21
+        keys &= _LOW21
+        return ctx, keys, counts.astype(np.int64, copy=False)
     ctx, last = ((u << 32) | v)[keep], w[keep]
     del keep
     return _sum_by_keys(ctx, last, np.ones(len(ctx), np.int64))

@@ -239,3 +239,22 @@ def test_merging_different_orders_is_refused() -> None:
 def test_bad_worker_count_is_refused(workers: object) -> None:
     with pytest.raises(InvalidArgumentError, match="workers"):
         count_in_processes(iter(["a b"]), workers)  # type: ignore[arg-type]
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, 6), st.integers(0, 6), st.integers(0, 6)), max_size=8), st.booleans())
+def test_ngram_tables_accept_exactly_the_strictly_sorted_rows(rows: list[tuple[int, int, int]], huge: bool) -> None:
+    # Reference: Python's own tuple order (lexicographic); the check packs rows into one
+    # key when the ids allow and compares differences otherwise (huge vocabulary).
+    n_words = (1 << 21) if huge else 5
+    grams = np.asarray(rows, dtype=np.int64).reshape(-1, 3)
+    ok = all(a < b for a, b in zip(rows, rows[1:]))
+    make = lambda: NgramCounts(  # noqa: E731
+        n_words, (np.zeros((0, 1), np.int64), np.zeros((0, 2), np.int64), grams),
+        (np.zeros(0, np.int64), np.zeros(0, np.int64), np.ones(len(rows), np.int64)),
+    )
+    if ok:
+        assert make().order == 3
+    else:
+        with pytest.raises(InvalidArgumentError, match="not sorted and distinct"):
+            make()
