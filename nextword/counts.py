@@ -627,9 +627,11 @@ class CountBuilder:
         n_bins = ((width * width - 1) >> shift) + 1
         ctx, w, counts = self._final_columns(self._triples, to_final, reduce, first_bin, n_bins, 1 << shift)
         grams = np.empty((len(counts), 3), dtype=np.int64)
-        grams[:, 0] = ctx // width
-        grams[:, 1] = ctx % width
         grams[:, 2] = w
+        del w
+        np.remainder(ctx, width, out=grams[:, 1])
+        ctx //= width
+        grams[:, 0] = ctx
         return grams, counts
 
     def _final_triples_packed(self, tid_map: np.ndarray, width: int) -> tuple[np.ndarray, np.ndarray] | None:
@@ -880,6 +882,8 @@ def _count_triples(a: np.ndarray, n_types: int) -> tuple[np.ndarray, np.ndarray,
         packed |= w
         packed = packed[keep]
         del keep
+        if len(packed) == 0:
+            return packed, packed.copy(), packed.copy()
         packed.sort()
         starts = np.flatnonzero(np.concatenate(([True], packed[1:] != packed[:-1])))
         counts = np.diff(np.append(starts, len(packed)))
