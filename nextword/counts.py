@@ -1,10 +1,11 @@
-"""Counting words and word pairs in one streaming pass, then fixing the vocabulary.
+"""Counting words, word pairs and (``order=3``) word triples in one streaming pass, then fixing the vocabulary.
 
 A corpus is read once (inputs may be pipes or one-shot iterators): each distinct
-*surface spelling* gets a temporary id, messages become id streams, and pair counts are
-accumulated in numpy in large chunks, so the Python work per word is one dict lookup.
-Only after the pass is the vocabulary chosen (minimum count, maximum size), spellings
-merged case-insensitively, and out-of-vocabulary words mapped to the unknown symbol.
+*surface spelling* gets a temporary id, messages become id streams, and pair (and
+triple) counts are accumulated in numpy in large chunks, so the Python work per word is
+one dict lookup. Only after the pass is the vocabulary chosen (minimum count, maximum
+size), spellings merged case-insensitively, and out-of-vocabulary words mapped to the
+unknown symbol; n-grams that become equal by that mapping are summed.
 
 Ids in the resulting :class:`CountTables` (and in model files):
 
@@ -25,16 +26,34 @@ from typing import Any, Iterable, Iterator
 import numpy as np
 
 from .errors import InvalidArgumentError
+from .ngrams import MAX_ORDER, NgramCounts
 from .text import _HAS_LETTER, _TOKEN_RE, fold, fold_all, normalize
 
-__all__ = ["CountBuilder", "CountTables", "DEFAULT_MIN_COUNT", "DEFAULT_MAX_VOCAB", "PARALLEL_MIN_BYTES", "auto_workers"]
+__all__ = [
+    "CountBuilder",
+    "CountTables",
+    "DEFAULT_MIN_COUNT",
+    "DEFAULT_MAX_VOCAB",
+    "DEFAULT_ORDER",
+    "PARALLEL_MIN_BYTES",
+    "auto_workers",
+    "count_in_processes",
+]
 
 #: Defaults sized for a phone keyboard: ~30,000 words covers everyday text (common practice).
 DEFAULT_MAX_VOCAB = 30_000
 #: Words seen once are mostly typos and rare names; dropping them shrinks models (common practice).
 DEFAULT_MIN_COUNT = 2
 
+#: The n-gram order counted when none is asked for: words and word pairs.
+DEFAULT_ORDER = 2
+
 _BOS_T, _EOS_T, _UNK_T = 0, 1, 2  # temporary ids of the reserved symbols
+_LOW32 = 0xFFFFFFFF
+#: three ids below this pack into one int64 sort key (21 bits each); with more ids, triples
+#: are sorted as two int64 columns by ``np.lexsort`` (slower, same result)
+_PACK3_LIMIT = 1 << 21
+_LOW21 = (1 << 21) - 1
 _FLUSH_TOKENS = 1 << 21
 _BATCH_CHARS = 1 << 20
 #: line-end characters (sentence ends that str.split would treat as plain spaces)
@@ -76,8 +95,75 @@ class CountTables:
         return len(self.keys)
 
 
+class _Partial:
+    """Partial counts of one n-gram order over temporary ids, in memory and spilled.
+
+    A part in memory is a tuple of int64 columns, the key columns then the counts, sorted
+    by key (except a part remapped by :meth:`CountBuilder.merge` until the next summing;
+    nothing relies on the order of a part). A run on disk holds the same columns as one raw little-endian int64 file
+    each, read back in slices, so a run never has to fit in memory at once. Pairs have
+    one key column, ``(left << 32) | right``; triples two, ``(u << 32) | v`` and ``w``.
+    """
+
+    def __init__(self, kind: str, n_keys: int) -> None:
+        self.kind = kind
+        self.n_keys = n_keys
+        self.parts: list[tuple[np.ndarray, ...]] = []
+        self.runs: list[tuple[str, int]] = []
+
+    @property
+    def nbytes(self) -> int:
+        return sum(a.nbytes for part in self.parts for a in part)
+
+    def exts(self) -> list[str]:
+        """File name endings of a run's columns."""
+        return [f".k{i}" for i in range(self.n_keys)] + [".c"]
+
+    def spill(self, stem: str) -> None:
+        """Write the one (summed) part as a run at ``stem`` and drop it from memory."""
+        (part,) = self.parts
+        for column, ext in zip(part, self.exts()):
+            column.astype("<i8", copy=False).tofile(stem + ext)
+        self.runs.append((stem, len(part[0])))
+        self.parts = []
+
+    def move_runs(self, directory: str) -> None:
+        import shutil
+
+        moved = []
+        for stem, length in self.runs:
+            new = os.path.join(directory, os.path.basename(stem))
+            for ext in self.exts():
+                shutil.move(stem + ext, new + ext)
+            moved.append((new, length))
+        self.runs = moved
+
+    def slices(self, slice_len: int | None = None) -> Iterator[tuple[np.ndarray, ...]]:
+        """Every partial count, spilled and in memory, in slices of at most ``slice_len``."""
+        from contextlib import ExitStack
+
+        for stem, length in self.runs:
+            step = length if slice_len is None else slice_len
+            with ExitStack() as stack:
+                files = [stack.enter_context(open(stem + ext, "rb")) for ext in self.exts()]
+                done = 0
+                while done < length:
+                    m = min(step, length - done)
+                    columns = tuple(np.fromfile(f, dtype="<i8", count=m) for f in files)
+                    if any(len(c) != m for c in columns):
+                        raise OSError(f"spilled run {stem} is shorter than written")
+                    yield tuple(c.astype(np.int64, copy=False) for c in columns)
+                    done += m
+        for part in self.parts:
+            n = len(part[0])
+            step = max(n, 1) if slice_len is None else slice_len
+            for i in range(0, n, step):
+                yield tuple(column[i : i + step] for column in part)
+
+
 class CountBuilder:
-    """Mutable accumulator of counts. Feed messages, then call :meth:`tables`.
+    """Mutable accumulator of counts. Feed messages, then call :meth:`tables` (or
+    :meth:`ngram_counts`, for the counts of every order).
 
     >>> b = CountBuilder()
     >>> b.add_text("See you at the workshop.")
@@ -85,15 +171,21 @@ class CountBuilder:
     ['at', 'see', 'the', 'workshop', 'you']
     """
 
-    def __init__(self, *, memory_cap: int | None = None) -> None:
-        """``memory_cap`` (bytes) bounds the pair counts held in memory: past half of it,
+    def __init__(self, *, memory_cap: int | None = None, order: int = DEFAULT_ORDER) -> None:
+        """``memory_cap`` (bytes) bounds the n-gram counts held in memory: past half of it,
         they are merged and spilled to sorted runs in a temporary directory, which the
         final step reads one at a time. The table of distinct spellings stays in memory.
+        ``order`` 3 also counts every word triple within a sentence (:meth:`ngram_counts`);
+        order 2 (the default) counts words and pairs only.
         """
         if memory_cap is not None and (isinstance(memory_cap, bool) or not isinstance(memory_cap, int) or memory_cap < 1 << 16):
             raise InvalidArgumentError(f"memory_cap must be an integer >= 65536 bytes, got {memory_cap!r}")
+        if isinstance(order, bool) or not isinstance(order, int) or not 2 <= order <= MAX_ORDER:
+            raise InvalidArgumentError(f"order must be an integer in 2..{MAX_ORDER}, got {order!r}")
         self.memory_cap = memory_cap
-        self._runs: list[tuple[str, int]] = []
+        self.order = order
+        self._pairs = _Partial("p", 1)
+        self._triples = _Partial("t", 2) if order >= 3 else None
         self._spill_dir: Any = None
         #: a directory owned by someone else (e.g. the parent of worker processes) to spill into
         self._spill_root: str | None = None
@@ -104,10 +196,11 @@ class CountBuilder:
         self._reset_pieces()
         self._tok_counts = np.zeros(0, dtype=np.int64)
         self._initial_counts = np.zeros(0, dtype=np.int64)
-        self._part_keys: list[np.ndarray] = []
-        self._part_counts: list[np.ndarray] = []
         self.messages = 0
         self.sentences = 0
+
+    def _partials(self) -> list[_Partial]:
+        return [self._pairs] if self._triples is None else [self._pairs, self._triples]
 
     # sizes of the units of work, derived from the cap (which a merge may change): under a
     # cap, the token buffer is flushed and batches are cut well before they approach it,
@@ -283,28 +376,32 @@ class CountBuilder:
         left, right = left[keep], right[keep]
         self._initial_counts += np.bincount(right[left == _BOS_T], minlength=n_types)
         keys, counts = np.unique((left << 32) | right, return_counts=True)
-        del a, left, right, keep
-        self._part_keys.append(keys)
-        self._part_counts.append(counts.astype(np.int64))
+        del left, right, keep
+        self._pairs.parts.append((keys, counts.astype(np.int64)))
         del keys, counts
-        if len(self._part_keys) >= 8 or self._over_cap():
+        if self._triples is not None:
+            self._triples.parts.append(_count_triples(a, n_types))
+        del a
+        if max(len(p.parts) for p in self._partials()) >= 8 or self._over_cap():
             self._merge_parts()
 
     def _over_cap(self) -> bool:
         if self.memory_cap is None:
             return False
-        held = sum(k.nbytes for k in self._part_keys) + sum(c.nbytes for c in self._part_counts)
-        return held > self.memory_cap // 16
+        return sum(p.nbytes for p in self._partials()) > self.memory_cap // 16
 
     def merge(self, other: CountBuilder) -> None:
         """Add another builder's counts (e.g. from another process or machine) to this one.
 
         The result is exactly what counting both inputs in one builder gives: partial
         counts are keyed by surface spelling, remapped to this builder's ids, and added.
-        ``other`` is left unchanged except that its pending work is flushed.
+        ``other`` is left unchanged except that its pending work is flushed. Both must
+        count the same order.
         """
         if not isinstance(other, CountBuilder):
             raise InvalidArgumentError(f"can only merge a CountBuilder, got {type(other).__name__}")
+        if other.order != self.order:
+            raise InvalidArgumentError(f"cannot merge counts of order {other.order} into a builder of order {self.order}")
         self._flush()
         other._flush()
         ids = self._ids
@@ -326,29 +423,37 @@ class CountBuilder:
             theirs = getattr(other, name)
             np.add.at(grown, remap[: len(theirs)], theirs)
             setattr(self, name, grown)
-        for keys, counts in other._pair_parts(self._slice_len):
-            left, right = remap[keys >> 32], remap[keys & 0xFFFFFFFF]
-            self._part_keys.append((left << 32) | right)
-            self._part_counts.append(np.array(counts))
-            del left, right, keys, counts
-            if len(self._part_keys) >= 8 or self._over_cap():  # inside the loop: runs arrive one by one
-                self._merge_parts()
+        for mine_p, theirs_p in zip(self._partials(), other._partials()):
+            for columns in theirs_p.slices(self._slice_len):
+                *key_cols, counts = columns
+                remapped = [(remap[key_cols[0] >> 32] << 32) | remap[key_cols[0] & _LOW32]]
+                remapped += [remap[k] for k in key_cols[1:]]
+                mine_p.parts.append((*remapped, np.array(counts)))
+                del remapped, key_cols, counts, columns
+                if len(mine_p.parts) >= 8 or self._over_cap():  # inside the loop: runs arrive one by one
+                    self._merge_parts()
         self.messages += other.messages
         self.sentences += other.sentences
 
     def _merge_parts(self) -> None:
-        keys, counts = _sum_by_key(np.concatenate(self._part_keys), np.concatenate(self._part_counts))
-        self._part_keys = [keys]
-        self._part_counts = [counts]
-        if self.memory_cap is not None and keys.nbytes + counts.nbytes > self.memory_cap // 16:
-            self._spill()
+        n_types = len(self._surfaces)
+        for partial in self._partials():
+            if not partial.parts:
+                continue
+            columns = [np.concatenate(c) for c in zip(*partial.parts)] if len(partial.parts) > 1 else list(partial.parts[0])
+            partial.parts = []
+            if partial.n_keys == 1:
+                partial.parts = [_sum_by_key(columns[0], columns[1])]
+            else:
+                partial.parts = [_sum_triples_tmp(columns[0], columns[1], columns[2], n_types)]
+            del columns
+        if self.memory_cap is not None and sum(p.nbytes for p in self._partials()) > self.memory_cap // 16:
+            for partial in self._partials():
+                if partial.parts:
+                    self._spill(partial)
 
-    def _spill(self) -> None:
-        """Write the merged in-memory pairs as one sorted run on disk and drop them.
-
-        A run is two raw little-endian int64 files (keys, counts), read back in slices
-        with plain reads, so a run never has to fit in memory at once.
-        """
+    def _spill(self, partial: _Partial) -> None:
+        """Write one order's merged in-memory counts as one sorted run on disk and drop them."""
         import tempfile
 
         if self._spill_root is not None:
@@ -357,55 +462,25 @@ class CountBuilder:
             if self._spill_dir is None:
                 self._spill_dir = tempfile.TemporaryDirectory(prefix="nextword-counts-")
             root = self._spill_dir.name
-        stem = os.path.join(root, f"run{os.getpid()}-{id(self):x}-{len(self._runs):05d}")
-        keys, counts = self._part_keys[0], self._part_counts[0]
-        keys.astype("<i8", copy=False).tofile(stem + ".keys")
-        counts.astype("<i8", copy=False).tofile(stem + ".counts")
-        self._runs.append((stem, len(keys)))
-        self._part_keys, self._part_counts = [], []
+        partial.spill(os.path.join(root, f"run{os.getpid()}-{id(self):x}-{partial.kind}{len(partial.runs):05d}"))
 
     def _adopt_runs(self, memory_cap: int | None) -> None:
         """Take ownership of runs spilled into someone else's directory (a worker's
         builder becoming the result): move them into a directory of our own, and take
         the given memory cap for the work that follows."""
-        import shutil
         import tempfile
 
         self.memory_cap = memory_cap
         self._spill_root = None
-        if self._runs:
+        if any(p.runs for p in self._partials()):
             self._spill_dir = tempfile.TemporaryDirectory(prefix="nextword-counts-")
-            moved = []
-            for stem, length in self._runs:
-                new = os.path.join(self._spill_dir.name, os.path.basename(stem))
-                for ext in (".keys", ".counts"):
-                    shutil.move(stem + ext, new + ext)
-                moved.append((new, length))
-            self._runs = moved
+            for partial in self._partials():
+                partial.move_runs(self._spill_dir.name)
 
     @property
     def spilled_runs(self) -> int:
-        """How many sorted runs of pair counts went to disk (0 without a memory cap)."""
-        return len(self._runs)
-
-    def _pair_parts(self, slice_len: int | None = None) -> Iterator[tuple[np.ndarray, np.ndarray]]:
-        """Every partial pair count, spilled and in memory, in slices of at most ``slice_len``."""
-        for stem, length in self._runs:
-            step = length if slice_len is None else slice_len
-            with open(stem + ".keys", "rb") as fk, open(stem + ".counts", "rb") as fc:
-                done = 0
-                while done < length:
-                    m = min(step, length - done)
-                    keys = np.fromfile(fk, dtype="<i8", count=m)
-                    counts = np.fromfile(fc, dtype="<i8", count=m)
-                    if len(keys) != m or len(counts) != m:
-                        raise OSError(f"spilled run {stem} is shorter than written")
-                    yield keys.astype(np.int64, copy=False), counts.astype(np.int64, copy=False)
-                    done += m
-        for keys, counts in zip(self._part_keys, self._part_counts):
-            step = max(len(keys), 1) if slice_len is None else slice_len
-            for i in range(0, len(keys), step):
-                yield keys[i : i + step], counts[i : i + step]
+        """How many sorted runs of n-gram counts went to disk (0 without a memory cap)."""
+        return sum(len(p.runs) for p in self._partials())
 
     # -- finishing -------------------------------------------------------------------
 
@@ -423,13 +498,39 @@ class CountBuilder:
         histories are cut into buckets that fit the cap, each slice is remapped to final
         ids and appended to its bucket's file, and each bucket is summed on its own.
         """
+        return self._tables(min_count, max_vocab)[0]
+
+    def ngram_counts(
+        self, *, min_count: int = DEFAULT_MIN_COUNT, max_vocab: int = DEFAULT_MAX_VOCAB
+    ) -> tuple[CountTables, NgramCounts]:
+        """Fix the vocabulary as :meth:`tables` does and return its tables together with
+        the counts of every order ``1..order`` over the same ids.
+
+        Level 1 is the predicted tokens (the non-zero entries of ``CountTables.unigram``),
+        level 2 the pairs (its ``pair_count`` array is the tables' own), level 3 (order 3)
+        every triple within a sentence — ``(<s>, w1, w2)`` at the second word, never
+        across a sentence start — after case folding and mapping out-of-vocabulary
+        words to ``<unk>``, triples made equal by that mapping summed. The triples are
+        reduced like the pairs, in bounded slices under a memory cap. The builder stays usable.
+        """
+        tables, tid_map = self._tables(min_count, max_vocab)
+        n = tables.n_words
+        seen = np.flatnonzero(tables.unigram)
+        grams = [seen.astype(np.int64)[:, None], np.column_stack((tables.pair_left, tables.pair_right)).astype(np.int64)]
+        counts = [tables.unigram[seen].astype(np.int64), tables.pair_count]
+        if self._triples is not None:
+            g3, c3 = self._final_triples(tid_map, n + 3)
+            grams.append(g3)
+            counts.append(c3)
+        return tables, NgramCounts(n, tuple(grams), tuple(counts))
+
+    def _tables(self, min_count: int, max_vocab: int) -> tuple[CountTables, np.ndarray]:
+        """The final tables and the map from temporary to final ids."""
         if isinstance(min_count, bool) or not isinstance(min_count, int) or min_count < 1:
             raise InvalidArgumentError(f"min_count must be an integer >= 1, got {min_count!r}")
         if isinstance(max_vocab, bool) or not isinstance(max_vocab, int) or max_vocab < 1:
             raise InvalidArgumentError(f"max_vocab must be an integer >= 1, got {max_vocab!r}")
         self._flush()
-        if self._part_keys and not self._runs and self.memory_cap is None:
-            self._merge_parts()
         n_types = len(self._surfaces)
         tok = np.zeros(n_types, np.int64)
         tok[: len(self._tok_counts)] = self._tok_counts
@@ -474,7 +575,7 @@ class CountBuilder:
             "min_count": min_count,
             "max_vocab": max_vocab,
         }
-        return CountTables(
+        tables = CountTables(
             keys=vocab,
             displays=displays,
             unigram=unigram,
@@ -483,76 +584,175 @@ class CountBuilder:
             pair_count=counts,
             stats=stats,
         )
+        return tables, tid_map
 
     def _final_pairs(self, tid_map: np.ndarray, width: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Pair counts over final ids, sorted by (history, next): uint32 ids, int64 counts."""
         id_type = np.uint32 if width <= 1 << 32 else np.int64
-        if self.memory_cap is None:
-            parts = []
-            for keys, counts in self._pair_parts():
-                parts.append(_sum_by_key(tid_map[keys >> 32] * width + tid_map[keys & 0xFFFFFFFF], counts))
+
+        def to_final(keys: np.ndarray) -> tuple[np.ndarray, ...]:
+            return (tid_map[keys >> 32] * width + tid_map[keys & _LOW32],)
+
+        def first_bin(keys: np.ndarray) -> np.ndarray:  # buckets by final history
+            return tid_map[keys >> 32]  # type: ignore[no-any-return]
+
+        keys, counts = self._final_columns(self._pairs, to_final, _sum_by_key, first_bin, width, width)
+        return (keys // width).astype(id_type), (keys % width).astype(id_type), counts
+
+    def _final_triples(self, tid_map: np.ndarray, width: int) -> tuple[np.ndarray, np.ndarray]:
+        """Triple counts over final ids: a sorted ``(k, 3)`` int64 array and int64 counts."""
+        assert self._triples is not None
+        # the context (u, v) as one key u * width + v (< width², well inside int64), w beside it;
+        # buckets by the context's top bits, so no context (e.g. one starting with <s>) is
+        # tied to the size of all the triples sharing its first word
+        n_bins = min(1 << 20, max(1 << 10, (self.memory_cap or 0) // 64))
+        shift = max(0, (width * width - 1).bit_length() - (n_bins - 1).bit_length())
+
+        def to_final(ctx: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, ...]:
+            return tid_map[ctx >> 32] * width + tid_map[ctx & _LOW32], tid_map[w]
+
+        def reduce(ctx: np.ndarray, w: np.ndarray, counts: np.ndarray) -> tuple[np.ndarray, ...]:
+            if width > _PACK3_LIMIT:
+                return _sum_by_keys(ctx, w, counts)
+            keys, sums = _sum_by_key(ctx * width + w, counts)
+            return keys // width, keys % width, sums
+
+        def first_bin(ctx: np.ndarray, w: np.ndarray) -> np.ndarray:
+            return (tid_map[ctx >> 32] * width + tid_map[ctx & _LOW32]) >> shift  # type: ignore[no-any-return]
+
+        if self.memory_cap is None and width <= _PACK3_LIMIT:
+            fast = self._final_triples_packed(tid_map, width)
+            if fast is not None:
+                return fast
+        n_bins = ((width * width - 1) >> shift) + 1
+        ctx, w, counts = self._final_columns(self._triples, to_final, reduce, first_bin, n_bins, 1 << shift)
+        grams = np.empty((len(counts), 3), dtype=np.int64)
+        grams[:, 2] = w
+        del w
+        np.remainder(ctx, width, out=grams[:, 1])
+        ctx //= width
+        grams[:, 0] = ctx
+        return grams, counts
+
+    def _final_triples_packed(self, tid_map: np.ndarray, width: int) -> tuple[np.ndarray, np.ndarray] | None:
+        """:meth:`_final_triples` without a cap when a final triple key and a partial count
+        fit side by side in one int64 (else None): the key ``(u * width + v) * width + w``
+        and the count are written into one array, part by part, sorted in place and summed,
+        so the largest step of order 3 makes few temporary arrays."""
+        assert self._triples is not None
+        parts = self._triples.parts
+        total = sum(len(p[0]) for p in parts)
+        if total == 0:
+            return np.zeros((0, 3), np.int64), np.zeros(0, np.int64)
+        count_bits = max(int(p[2].max()) for p in parts if len(p[0])).bit_length()
+        if (width**3 - 1).bit_length() + count_bits > 63:
+            return None
+        both = np.empty(total, dtype=np.int64)
+        lo = 0
+        for ctx, w, counts in parts:
+            seg = both[lo : lo + len(ctx)]
+            np.take(tid_map, ctx >> 32, out=seg)
+            seg *= width
+            seg += tid_map[ctx & _LOW32]
+            seg *= width
+            seg += tid_map[w]
+            seg <<= count_bits
+            seg |= counts
+            lo += len(ctx)
+        both.sort()
+        keys = both >> count_bits
+        both &= (1 << count_bits) - 1
+        starts = np.flatnonzero(np.concatenate(([True], keys[1:] != keys[:-1])))
+        sums = np.add.reduceat(both, starts)
+        del both
+        keys = keys[starts]
+        del starts
+        grams = np.empty((len(keys), 3), dtype=np.int64)
+        np.remainder(keys, width, out=grams[:, 2])
+        keys //= width
+        np.remainder(keys, width, out=grams[:, 1])
+        keys //= width
+        grams[:, 0] = keys
+        return grams, sums.astype(np.int64, copy=False)
+
+    def _final_columns(
+        self,
+        partial: _Partial,
+        to_final: Any,
+        reduce: Any,
+        first_bin: Any,
+        n_bins: int,
+        bin_width: int,
+    ) -> list[np.ndarray]:
+        """One order's counts over final ids as sorted columns (keys..., counts).
+
+        ``to_final`` maps temporary key columns to final ones (the first column's order is
+        the bucket order), ``reduce`` sums equal keys and sorts, ``first_bin`` gives a
+        temporary key's bucket bin, ``n_bins`` of them, bin ``i`` starting at first-column
+        key ``i * bin_width``. Without a cap every part is summed in memory; under a cap,
+        a first pass counts the partial entries of each bin, the bins are cut into
+        buckets of at most a slice each (one bin may exceed it), each slice is remapped,
+        summed and appended to its buckets' files, and each bucket is summed on its own.
+        """
+        n_cols = partial.n_keys + 1
+        if self.memory_cap is None:  # everything mapped to final ids, then summed in one sort
+            parts = [(*to_final(*columns[:-1]), columns[-1]) for columns in partial.slices()]
             if not parts:
-                return np.zeros(0, id_type), np.zeros(0, id_type), np.zeros(0, np.int64)
-            if len(parts) == 1:
-                keys, counts = parts[0]
-            else:
-                keys, counts = _sum_by_key(np.concatenate([k for k, _ in parts]), np.concatenate([c for _, c in parts]))
+                return [np.zeros(0, np.int64) for _ in range(n_cols)]
+            joined = [np.concatenate([p[i] for p in parts]) if len(parts) > 1 else parts[0][i] for i in range(n_cols)]
             del parts
-            return (keys // width).astype(id_type), (keys % width).astype(id_type), counts
+            return list(reduce(*joined))
         import tempfile
 
         slice_len = self._slice_len
         assert slice_len is not None
-        # pass 1: how many partial entries each final history has
-        per_history = np.zeros(width, dtype=np.int64)
-        for keys, _ in self._pair_parts(slice_len):
-            per_history += np.bincount(tid_map[keys >> 32], minlength=width)
-        # histories cut into buckets of at most slice_len entries (one history may exceed it)
-        cum = np.cumsum(per_history)
+        # pass 1: how many partial entries each bin has
+        per_bin = np.zeros(n_bins, dtype=np.int64)
+        for columns in partial.slices(slice_len):
+            per_bin += np.bincount(first_bin(*columns[:-1]), minlength=n_bins)
+        # bins cut into buckets of at most slice_len entries (one bin may exceed it)
+        cum = np.cumsum(per_bin)
+        del per_bin
         edges = [0]
-        while edges[-1] < width:
+        while edges[-1] < n_bins:
             start = int(cum[edges[-1] - 1]) if edges[-1] else 0
             nxt = int(np.searchsorted(cum, start + slice_len, side="right"))
-            edges.append(min(width, max(nxt, edges[-1] + 1)))
-        edge_keys = np.asarray(edges[1:-1], dtype=np.int64) * width
+            edges.append(min(n_bins, max(nxt, edges[-1] + 1)))
+        del cum
+        edge_keys = np.asarray(edges[1:-1], dtype=np.int64) * bin_width
         with tempfile.TemporaryDirectory(prefix="nextword-final-") as tmp:
             names = [os.path.join(tmp, f"b{i:05d}") for i in range(len(edges) - 1)]
             sizes = [0] * len(names)
             # pass 2: remap each slice, sum it, append its pieces to the buckets' files
-            for keys, counts in self._pair_parts(slice_len):
-                fk, fc = _sum_by_key(tid_map[keys >> 32] * width + tid_map[keys & 0xFFFFFFFF], counts)
-                del keys, counts
-                cuts = [0, *np.searchsorted(fk, edge_keys).tolist(), len(fk)]
+            for columns in partial.slices(slice_len):
+                summed = reduce(*to_final(*columns[:-1]), columns[-1])
+                del columns
+                cuts = [0, *np.searchsorted(summed[0], edge_keys).tolist(), len(summed[0])]
                 for b in range(len(names)):
                     lo, hi = cuts[b], cuts[b + 1]
                     if hi > lo:
-                        with open(names[b] + ".k", "ab") as f:
-                            fk[lo:hi].tofile(f)
-                        with open(names[b] + ".c", "ab") as f:
-                            fc[lo:hi].tofile(f)
+                        for i, column in enumerate(summed):
+                            with open(f"{names[b]}.{i}", "ab") as f:
+                                column[lo:hi].tofile(f)
                         sizes[b] += hi - lo
+                del summed
             # pass 3: sum each bucket; the buckets are in key order
-            out_l: list[np.ndarray] = []
-            out_r: list[np.ndarray] = []
-            out_c: list[np.ndarray] = []
+            outs: list[list[np.ndarray]] = [[] for _ in range(n_cols)]
             for name, size in zip(names, sizes):
                 if not size:
                     continue
-                k, c = _sum_by_key(np.fromfile(name + ".k", dtype=np.int64), np.fromfile(name + ".c", dtype=np.int64))
-                os.remove(name + ".k")
-                os.remove(name + ".c")
-                out_l.append((k // width).astype(id_type))
-                out_r.append((k % width).astype(id_type))
-                out_c.append(c)
-                del k, c
-        if not out_c:
-            return np.zeros(0, id_type), np.zeros(0, id_type), np.zeros(0, np.int64)
+                loaded = [np.fromfile(f"{name}.{i}", dtype=np.int64) for i in range(n_cols)]
+                for i in range(n_cols):
+                    os.remove(f"{name}.{i}")
+                for out, column in zip(outs, reduce(*loaded)):
+                    out.append(column)
+                del loaded
         # concatenate one column at a time, dropping its parts, to keep the peak low
-        columns = []
-        for parts_ in (out_l, out_r, out_c):
-            columns.append(np.concatenate(parts_))
-            parts_.clear()
-        return columns[0], columns[1], columns[2]
+        result = []
+        for out in outs:
+            result.append(np.concatenate(out) if out else np.zeros(0, np.int64))
+            out.clear()
+        return result
 
     def _display(self, key: str, tids: list[int], tok: np.ndarray, initial: np.ndarray) -> str:
         """Most frequent spelling away from sentence starts, where capitals are positional.
@@ -646,8 +846,169 @@ def _sum_by_key(keys: np.ndarray, counts: np.ndarray) -> tuple[np.ndarray, np.nd
     """Sum ``counts`` of equal ``keys``; returns sorted unique keys and their totals."""
     if len(keys) == 0:
         return keys.astype(np.int64), counts.astype(np.int64)
-    order = np.argsort(keys, kind="stable")
-    k = keys[order]
-    c = counts[order]
+    key_bits = int(keys.max()).bit_length()
+    count_bits = int(counts.max()).bit_length()
+    if key_bits + count_bits <= 63 and int(keys.min()) >= 0 and int(counts.min()) >= 0:
+        # key and count side by side in one int64: a plain sort (much faster than
+        # argsort and two gathers), equal keys adjacent whatever their counts
+        both = np.sort((keys << count_bits) | counts)
+        k = both >> count_bits
+        c = both & ((1 << count_bits) - 1)
+        del both
+    else:
+        order = np.argsort(keys)  # keys end up distinct and integer sums are exact: any sort will do
+        k = keys[order]
+        c = counts[order]
+        del order
     starts = np.flatnonzero(np.concatenate(([True], k[1:] != k[:-1])))
     return k[starts], np.add.reduceat(c, starts).astype(np.int64)
+
+
+def _count_triples(a: np.ndarray, n_types: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Distinct triples of a token stream (temporary ids below ``n_types``) with their
+    counts, as sorted columns ``(u << 32) | v``, ``w``, count.
+
+    A triple neither starts at ``</s>`` nor holds it in the middle: (</s>, <s>, w) and
+    (x, </s>, <s>) join two sentences; so (<s>, w1, w2) is the first of a sentence.
+    """
+    if len(a) < 3:
+        empty = np.zeros(0, np.int64)
+        return empty, empty.copy(), empty.copy()
+    u, v, w = a[:-2], a[1:-1], a[2:]
+    keep = (u != _EOS_T) & (v != _EOS_T)
+    if n_types <= _PACK3_LIMIT:  # one key per triple, built and sorted with few temporary arrays
+        packed = u << 42
+        packed |= v << 21
+        packed |= w
+        packed = packed[keep]
+        del keep
+        if len(packed) == 0:
+            return packed, packed.copy(), packed.copy()
+        packed.sort()
+        starts = np.flatnonzero(np.concatenate(([True], packed[1:] != packed[:-1])))
+        counts = np.diff(np.append(starts, len(packed)))
+        keys = packed[starts]
+        del packed, starts
+        ctx = keys >> 42
+        ctx <<= 32
+        ctx |= (keys >> 21) & _LOW21
+        keys &= _LOW21
+        return ctx, keys, counts.astype(np.int64, copy=False)
+    ctx, last = ((u << 32) | v)[keep], w[keep]
+    del keep
+    return _sum_by_keys(ctx, last, np.ones(len(ctx), np.int64))
+
+
+def _sum_triples_tmp(ctx: np.ndarray, w: np.ndarray, counts: np.ndarray, n_types: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`_sum_by_keys` for triples over temporary ids below ``n_types``: one packed
+    int64 key per triple when the ids fit in 21 bits each."""
+    if n_types > _PACK3_LIMIT:
+        return _sum_by_keys(ctx, w, counts)
+    keys, sums = _sum_by_key(((ctx >> 32) << 42) | ((ctx & _LOW32) << 21) | w, counts)
+    return ((keys >> 42) << 32) | ((keys >> 21) & _LOW21), keys & _LOW21, sums
+
+
+def _sum_by_keys(hi: np.ndarray, lo: np.ndarray, counts: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Sum ``counts`` of equal (hi, lo) rows; returns the distinct rows sorted by (hi, lo)
+    and their totals (two sort keys: for ids too many to pack into one int64)."""
+    if len(hi) == 0:
+        return hi.astype(np.int64), lo.astype(np.int64), counts.astype(np.int64)
+    order = np.lexsort((lo, hi))
+    h = hi[order]
+    low = lo[order]
+    c = counts[order]
+    del order
+    starts = np.flatnonzero(np.concatenate(([True], (h[1:] != h[:-1]) | (low[1:] != low[:-1]))))
+    return h[starts], low[starts], np.add.reduceat(c, starts).astype(np.int64)
+
+
+def _count_worker(inbox: Any, outbox: Any, memory_cap: int | None, spill_root: str, order: int) -> None:
+    """Worker process: count every batch it is sent into one builder, then send it back."""
+    builder = CountBuilder(memory_cap=memory_cap, order=order)
+    builder._spill_root = spill_root
+    while True:
+        item = inbox.get()
+        if item is None:
+            break
+        builder._add_joined(*item)
+    builder._flush()
+    outbox.put(builder)
+
+
+def count_in_processes(
+    messages: Iterable[str], workers: int, *, memory_cap: int | None = None, order: int = DEFAULT_ORDER
+) -> CountBuilder:
+    """Count batches of messages in ``workers`` processes and merge their counts.
+
+    The result equals one builder counting every message (``CountBuilder(memory_cap=...,
+    order=...)``; merging is exact). This process only reads and joins messages into
+    batches of about a million characters; each worker keeps one builder for everything
+    it is sent, so partial counts are merged once per worker at the end, not once per
+    batch. At most ``2 × workers`` batches wait in the queue, so memory does not grow
+    with the input. Under ``memory_cap`` every worker gets an equal share of the cap
+    (and this process one more share while counting, the whole cap while merging);
+    workers spill their sorted runs into a directory this process owns and removes.
+    """
+    import multiprocessing as mp
+    import queue as queue_mod
+    import tempfile
+
+    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
+        raise InvalidArgumentError(f"workers must be an integer >= 1, got {workers!r}")
+    CountBuilder(memory_cap=memory_cap, order=order)  # check the settings before starting processes
+    method = "fork" if "fork" in mp.get_all_start_methods() else "spawn"
+    ctx: Any = mp.get_context(method)
+    share = None if memory_cap is None else max(1 << 16, memory_cap // (workers + 1))
+    limit = batch_chars(share)
+    with tempfile.TemporaryDirectory(prefix="nextword-counts-") as spill_root:
+        inbox = ctx.Queue(maxsize=2 * workers)
+        outbox = ctx.Queue()
+        procs = [
+            ctx.Process(target=_count_worker, args=(inbox, outbox, share, spill_root, order), daemon=True)
+            for _ in range(workers)
+        ]
+        for proc in procs:
+            proc.start()
+
+        def check() -> None:
+            for proc in procs:
+                if proc.exitcode not in (None, 0):
+                    raise RuntimeError(f"a counting worker process died (exit code {proc.exitcode})")
+
+        def put(item: Any) -> None:
+            while True:
+                try:
+                    inbox.put(item, timeout=0.5)
+                    return
+                except queue_mod.Full:
+                    check()
+
+        try:
+            for item in join_batches(messages, limit):
+                put(item)
+            for _ in procs:
+                put(None)
+            builder: CountBuilder | None = None
+            for _ in procs:
+                while True:
+                    try:
+                        part = outbox.get(timeout=0.5)
+                        break
+                    except queue_mod.Empty:
+                        check()
+                if builder is None:  # the first part becomes the result: no remapping
+                    builder = part
+                    builder._adopt_runs(memory_cap)
+                else:
+                    builder.merge(part)  # re-spills the part's runs into the builder's own directory
+                del part
+            for proc in procs:
+                proc.join()
+            assert builder is not None
+        finally:
+            inbox.cancel_join_thread()  # never hang on batches no worker will read
+            for proc in procs:
+                if proc.is_alive():
+                    proc.terminate()
+                    proc.join()
+    return builder

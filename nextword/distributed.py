@@ -14,15 +14,15 @@ import os
 from typing import Any, Sequence
 
 from .corpus import Format, iter_messages, open_sources
-from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder
+from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, DEFAULT_ORDER, CountBuilder
 from .errors import InvalidArgumentError
 from .store import DEFAULT_SKYBAND_K, DEFAULT_SKYBAND_MIN, write_model
 
 __all__ = ["count_on_dask", "train_on_dask"]
 
 
-def _count_file(path: str, fmt: str, field: str) -> CountBuilder:
-    builder = CountBuilder()
+def _count_file(path: str, fmt: str, field: str, order: int = DEFAULT_ORDER) -> CountBuilder:
+    builder = CountBuilder(order=order)
     builder.add_texts(iter_messages(open_sources(path, fmt=fmt, field=field)))  # type: ignore[arg-type]
     builder._flush()
     return builder
@@ -33,8 +33,19 @@ def _merge(a: CountBuilder, b: CountBuilder) -> CountBuilder:
     return a
 
 
-def count_on_dask(paths: Sequence[str | os.PathLike[str]], *, client: Any = None, fmt: Format = "auto", field: str = "text") -> CountBuilder:
-    """Count every file as its own Dask task and merge the partial counts in file order."""
+def count_on_dask(
+    paths: Sequence[str | os.PathLike[str]],
+    *,
+    client: Any = None,
+    fmt: Format = "auto",
+    field: str = "text",
+    order: int = DEFAULT_ORDER,
+) -> CountBuilder:
+    """Count every file as its own Dask task and merge the partial counts in file order.
+
+    ``order`` as in :class:`~nextword.counts.CountBuilder` (3: word triples too, see
+    :meth:`~nextword.counts.CountBuilder.ngram_counts`).
+    """
     try:
         import dask
     except ImportError:
@@ -42,8 +53,9 @@ def count_on_dask(paths: Sequence[str | os.PathLike[str]], *, client: Any = None
     names = [os.fspath(p) for p in paths]
     if not names:
         raise InvalidArgumentError("no inputs given")
+    CountBuilder(order=order)  # check the order before any work starts
     open_sources(names, fmt=fmt, field=field)  # report missing files before any work starts
-    parts = [dask.delayed(_count_file)(name, fmt, field) for name in names]
+    parts = [dask.delayed(_count_file)(name, fmt, field, order) for name in names]
     while len(parts) > 1:  # pairwise, keeping file order so the result is deterministic
         parts = [dask.delayed(_merge)(parts[i], parts[i + 1]) if i + 1 < len(parts) else parts[i]
                  for i in range(0, len(parts), 2)]

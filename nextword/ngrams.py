@@ -62,11 +62,8 @@ class NgramCounts:
                 raise InvalidArgumentError(f"level {m}: counts must be >= 1")
             if len(g) and (int(g.min()) < 0 or int(g.max()) > self.bos):
                 raise InvalidArgumentError(f"level {m}: ids outside 0..{self.bos}")
-            if len(g) > 1:
-                d = np.diff(g, axis=0)
-                first = d[np.arange(len(d)), np.argmax(d != 0, axis=1)]
-                if not bool((first > 0).all()):
-                    raise InvalidArgumentError(f"level {m}: n-grams are not sorted and distinct")
+            if len(g) > 1 and not _strictly_sorted(g, self.bos + 1):
+                raise InvalidArgumentError(f"level {m}: n-grams are not sorted and distinct")
 
     @classmethod
     def from_sentences(cls, sentences: Iterable[Sequence[int]], n_words: int, order: int) -> NgramCounts:
@@ -96,6 +93,22 @@ class NgramCounts:
             grams.append(uniq.astype(np.int64))
             counts.append(cnt.astype(np.int64))
         return cls(n_words, tuple(grams), tuple(counts))
+
+
+def _strictly_sorted(g: np.ndarray, base: int) -> bool:
+    """Whether the rows of ``g`` (ids in ``0..base-1``) increase strictly in lexicographic order.
+
+    Rows become one int64 key each (base-``base`` digits) when they fit, a single
+    comparison of neighbours; otherwise the first non-zero difference of each neighbour pair decides.
+    """
+    if base ** g.shape[1] <= 1 << 63:
+        key = g[:, 0].astype(np.int64)
+        for j in range(1, g.shape[1]):
+            key = key * base + g[:, j]
+        return bool((key[1:] > key[:-1]).all())
+    d = np.diff(g, axis=0)
+    first = d[np.arange(len(d)), np.argmax(d != 0, axis=1)]
+    return bool((first > 0).all())
 
 
 def group_starts(keys: np.ndarray) -> np.ndarray:
