@@ -24,7 +24,7 @@ import numpy as np
 
 from ._progress import DEFAULT_TICK, Progress
 from .corpus import Format, iter_messages, open_sources
-from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables, auto_workers, batch_chars, join_batches
+from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables, auto_workers, count_in_processes
 from .estimators import unigram_floor
 from .errors import InputDataError, InvalidArgumentError, ModelFormatError
 from .prune import DEFAULT_RULE
@@ -880,15 +880,6 @@ def _check_kind(order: int, smoothing: str, lam: float | None, max_bytes: int | 
         )
 
 
-def _id_sentences(messages: Iterable[str], tables: CountTables) -> Iterator[list[int]]:
-    """Every sentence of ``messages`` as ids of ``tables`` (out-of-vocabulary and breaks = <unk>)."""
-    ids = {k: i for i, k in enumerate(tables.keys)}
-    unk = tables.n_words + 1
-    for message in messages:
-        for sent in sentences(message):
-            yield [unk if t is None else ids.get(fold(t), unk) for t in sent]
-
-
 def _finish(
     builder: CountBuilder,
     output_path: str | os.PathLike[str],
@@ -904,20 +895,19 @@ def _finish(
     order: int = 2,
     smoothing: str = "jm",
     lam3: float = DEFAULT_LAMBDA,
-    kept: list[str] | None = None,
 ) -> TrainReport:
     t1 = time.perf_counter()
-    tables: CountTables = builder.tables(min_count=min_count, max_vocab=max_vocab)
+    general = order != 2 or smoothing != "jm"
+    if general:
+        tables, counts = builder.ngram_counts(min_count=min_count, max_vocab=max_vocab)
+    else:
+        tables = builder.tables(min_count=min_count, max_vocab=max_vocab)
     if tables.stats["word_tokens"] == 0:
         raise InputDataError("the input holds no words")
-    if order != 2 or smoothing != "jm":
+    if general:
         from .estimators import JelinekMercer, KneserNey
-        from .ngrams import NgramCounts
         from .store import build
 
-        assert kept is not None
-        # the reference counter over the kept messages (the streaming order-n counter replaces it)
-        counts = NgramCounts.from_sentences(_id_sentences(kept, tables), tables.n_words, order)
         estimator = KneserNey() if smoothing == "kn" else JelinekMercer((lam, lam3))
         build(counts, tables, estimator, output_path, skyband_k=skyband_k, skyband_min=skyband_min)
     elif max_bytes is None:
@@ -996,7 +986,7 @@ def train(
     ``order`` 3 conditions on the last two words of the sentence; ``smoothing`` "kn"
     (interpolated modified Kneser-Ney, discounts fitted, no λ) replaces Jelinek-Mercer
     ("jm", λ = ``lam`` for the bigram level, default 0.9, and ``lam3`` for the trigram
-    level). Either keeps the messages in memory for a second counting pass for now.
+    level). Both are counted in the same streaming pass (:class:`~nextword.counts.CountBuilder` of that order).
     """
     _check_kind(order, smoothing, lam, max_bytes)
     lam = _check_build_args(DEFAULT_LAMBDA if lam is None else lam, skyband_k, skyband_min)
@@ -1013,113 +1003,19 @@ def train(
     try:
         bar.stage("counting", unit="B")  # total: the input files' sizes (compressed bytes for gzip)
         messages = iter_messages(sources, progress=bar.update)
-        kept: list[str] | None = None
-        if order != 2 or smoothing != "jm":
-            kept = []
-            messages = _keeping(messages, kept)
         if workers == 1:
-            builder = CountBuilder(memory_cap=memory_cap)
+            builder = CountBuilder(memory_cap=memory_cap, order=order)
             builder.add_texts(messages)
         else:
-            builder = _count_in_processes(messages, workers, memory_cap)
+            builder = count_in_processes(messages, workers, memory_cap=memory_cap, order=order)
         bar.stage("building the model file" if max_bytes is None else f"building and pruning to {max_bytes:,} bytes")
         return _finish(
             builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
             skyband_k=skyband_k, skyband_min=skyband_min, t0=t0, max_bytes=max_bytes, prune_rule=prune_rule,
-            order=order, smoothing=smoothing, lam3=lam3, kept=kept,
+            order=order, smoothing=smoothing, lam3=lam3,
         )
     finally:
         bar.done()  # also on errors: the error message then starts on a clean line
-
-
-def _keeping(messages: Iterator[str], kept: list[str]) -> Iterator[str]:
-    """Pass ``messages`` on, keeping each in ``kept`` (inputs are read once)."""
-    for message in messages:
-        kept.append(message)
-        yield message
-
-
-def _count_worker(inbox: Any, outbox: Any, memory_cap: int | None, spill_root: str) -> None:
-    """Worker process: count every batch it is sent into one builder, then send it back."""
-    builder = CountBuilder(memory_cap=memory_cap)
-    builder._spill_root = spill_root
-    while True:
-        item = inbox.get()
-        if item is None:
-            break
-        builder._add_joined(*item)
-    builder._flush()
-    outbox.put(builder)
-
-
-def _count_in_processes(messages: Iterator[str], workers: int, memory_cap: int | None = None) -> CountBuilder:
-    """Count batches of messages in ``workers`` processes and merge their counts.
-
-    This process only reads and joins messages into batches of about a million
-    characters; each worker keeps one builder for everything it is sent, so partial
-    counts are merged once per worker at the end, not once per batch. At most
-    ``2 × workers`` batches wait in the queue, so memory does not grow with the input.
-    Under ``memory_cap`` every worker gets an equal share of the cap (and this process
-    one more share while counting, the whole cap while merging); workers spill their
-    sorted runs into a directory this process owns and removes.
-    """
-    import multiprocessing as mp
-    import queue as queue_mod
-    import tempfile
-
-    method = "fork" if "fork" in mp.get_all_start_methods() else "spawn"
-    ctx: Any = mp.get_context(method)
-    share = None if memory_cap is None else max(1 << 16, memory_cap // (workers + 1))
-    limit = batch_chars(share)
-    with tempfile.TemporaryDirectory(prefix="nextword-counts-") as spill_root:
-        inbox = ctx.Queue(maxsize=2 * workers)
-        outbox = ctx.Queue()
-        procs = [ctx.Process(target=_count_worker, args=(inbox, outbox, share, spill_root), daemon=True) for _ in range(workers)]
-        for proc in procs:
-            proc.start()
-
-        def check() -> None:
-            for proc in procs:
-                if proc.exitcode not in (None, 0):
-                    raise RuntimeError(f"a counting worker process died (exit code {proc.exitcode})")
-
-        def put(item: Any) -> None:
-            while True:
-                try:
-                    inbox.put(item, timeout=0.5)
-                    return
-                except queue_mod.Full:
-                    check()
-
-        try:
-            for item in join_batches(messages, limit):
-                put(item)
-            for _ in procs:
-                put(None)
-            builder: CountBuilder | None = None
-            for _ in procs:
-                while True:
-                    try:
-                        part = outbox.get(timeout=0.5)
-                        break
-                    except queue_mod.Empty:
-                        check()
-                if builder is None:  # the first part becomes the result: no remapping
-                    builder = part
-                    builder._adopt_runs(memory_cap)
-                else:
-                    builder.merge(part)  # re-spills the part's runs into the builder's own directory
-                del part
-            for proc in procs:
-                proc.join()
-            assert builder is not None
-        finally:
-            inbox.cancel_join_thread()  # never hang on batches no worker will read
-            for proc in procs:
-                if proc.is_alive():
-                    proc.terminate()
-                    proc.join()
-    return builder
 
 
 def train_texts(
@@ -1142,16 +1038,12 @@ def train_texts(
     if isinstance(texts, str):
         raise InvalidArgumentError("train_texts() takes an iterable of messages, not one string")
     t0 = time.perf_counter()
-    builder = CountBuilder()
-    kept: list[str] | None = None
-    if order != 2 or smoothing != "jm":
-        kept = []
-        texts = _keeping(iter(texts), kept)
+    builder = CountBuilder(order=order)
     builder.add_texts(texts)
     return _finish(
         builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
         skyband_k=skyband_k, skyband_min=skyband_min, t0=t0,
-        order=order, smoothing=smoothing, lam3=lam3, kept=kept,
+        order=order, smoothing=smoothing, lam3=lam3,
     )
 
 

@@ -35,13 +35,13 @@ def corpus(tmp_path: Path) -> Path:
 def spy(monkeypatch: pytest.MonkeyPatch) -> list[int]:
     """Records the worker count of every multi-process count."""
     calls: list[int] = []
-    real = nextword.model._count_in_processes
+    real = nextword.model.count_in_processes
 
-    def wrapped(messages: Any, workers: int, memory_cap: int | None = None) -> Any:
+    def wrapped(messages: Any, workers: int, **kwargs: Any) -> Any:
         calls.append(workers)
-        return real(messages, workers, memory_cap)
+        return real(messages, workers, **kwargs)
 
-    monkeypatch.setattr(nextword.model, "_count_in_processes", wrapped)
+    monkeypatch.setattr(nextword.model, "count_in_processes", wrapped)
     return calls
 
 
