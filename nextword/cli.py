@@ -497,7 +497,7 @@ def _run_eval(args: argparse.Namespace, bar: Progress) -> int:
     bar.stage("simulating typing", total=n_msgs, unit="messages")
     overall, per_log = evaluate(model, logs, ks, progress=bar.update)
     baselines: dict[str, Any] = {}
-    if not args.no_baselines:
+    if not args.no_baselines and model.estimator == "jm":  # λ has no meaning for Kneser-Ney
         baselines["lambda"] = {}
         for label, lam in (("unigram only (λ = 0)", 0.0), ("bigram only (λ = 0.999)", 0.999)):
             bar.stage(f"baseline {label.split(' (')[0]}", total=n_msgs, unit="messages")

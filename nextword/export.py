@@ -165,6 +165,11 @@ def write_arpa(model: Model, path: PathArg, *, lam: float | None = None) -> None
 
     Raises :class:`~nextword.errors.InvalidArgumentError` if ``path`` is the model file.
     """
+    if model.estimator != "jm" or model.order != 2:
+        raise InvalidArgumentError(
+            f"{model.path}: ARPA export reads Jelinek-Mercer bigram files; this one is {model.estimator} order "
+            f"{model.order} (write_arpa_fitted exports any fitted estimator of order 1..3)"
+        )
     check_outputs([("model", model.path)], [("ARPA file", path)])
     _write(arpa_lines(model, lam=lam), path)
 

@@ -80,6 +80,11 @@ def parse_size(text: str) -> int:
 
 def tables_from_model(model: Model) -> CountTables:
     """The counts a model file holds, as :class:`CountTables` (to prune an existing model)."""
+    if model.estimator != "jm" or model.order != 2:
+        raise InvalidArgumentError(
+            f"{model.path}: pruning reads Jelinek-Mercer bigram files; this one is {model.estimator} order {model.order} "
+            "(its stored values are not plain pair counts)"
+        )
     a = model._src.arrays
     n = model.n_words
     rows = np.asarray(a["ROWS"], dtype=np.int64)

@@ -1,0 +1,60 @@
+"""Commands over Kneser-Ney and order-3 model files: each works, or refuses in one line.
+
+Tools that read a model's stored values as plain pair counts (ARPA export of a model
+file, pruning) must not silently mis-read a Kneser-Ney or trigram file (its stored
+values are continuation counts and trigram rows); eval must run on every kind. Corpus:
+CPython's ``pydoc_data.topics`` (real English shipped with Python).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+import nextword
+
+ROOT = Path(__file__).resolve().parent.parent
+ENV = dict(os.environ, PYTHONPATH=str(ROOT))
+
+
+def _cli(*args: str) -> subprocess.CompletedProcess[str]:
+    return subprocess.run([sys.executable, "-m", "nextword", *args], capture_output=True, text=True, env=ENV)
+
+
+@pytest.fixture(scope="module")
+def files(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path]:
+    from pydoc_data.topics import topics
+
+    lines = [ln for k in sorted(topics)[:30] for ln in topics[k].splitlines() if ln.strip()]
+    tmp = tmp_path_factory.mktemp("kinds")
+    (tmp / "held.txt").write_text("\n".join(lines[::10]) + "\n", encoding="utf-8")
+    nextword.train_texts([ln for i, ln in enumerate(lines) if i % 10], tmp / "kn3.nwm", order=3, smoothing="kn", min_count=1)
+    return tmp / "kn3.nwm", tmp / "held.txt"
+
+
+def test_export_and_prune_refuse_a_kneser_ney_trigram_file(files: tuple[Path, Path], tmp_path: Path) -> None:
+    model, _ = files
+    for args, word in ((["export", str(model), "--arpa", str(tmp_path / "x.arpa")], "ARPA export"),
+                       (["prune", str(model), "-o", str(tmp_path / "p.nwm"), "--max-size", "10KB"], "pruning")):
+        r = _cli(*args)
+        assert r.returncode == 2 and r.stderr.count("\n") == 1 and word in r.stderr and "kn order 3" in r.stderr, r.stderr
+    assert not list(tmp_path.iterdir())  # nothing written
+
+
+def test_eval_runs_on_a_kneser_ney_trigram_with_baselines(files: tuple[Path, Path]) -> None:
+    model, held = files
+    r = _cli("eval", str(model), str(held), "-k", "3", "--json")
+    assert r.returncode == 0, r.stderr
+    data = json.loads(r.stdout)
+    # the same keystroke savings as the library's simulation of the same log
+    from nextword.evaluate import evaluate
+
+    msgs = [m for m in held.read_text(encoding="utf-8").splitlines() if m.strip()]
+    overall, _ = evaluate(nextword.load(model), [("held", msgs)], (3,))
+    assert data["overall"]["per_k"][0]["ksr"] == overall.per_k[3].ksr
+    assert "lambda" not in data["baselines"]  # λ baselines exist only for Jelinek-Mercer
