@@ -992,6 +992,9 @@ def train(
     lam = _check_build_args(DEFAULT_LAMBDA if lam is None else lam, skyband_k, skyband_min)
     lam3 = _check_build_args(lam3, skyband_k, skyband_min)
     sources = open_sources(inputs, fmt=fmt, field=field)
+    from .paths import check_outputs
+
+    check_outputs([("corpus", s.name) for s in sources if s.name != "-"], [("model", output_path)])
     t0 = time.perf_counter()
     if workers is None:
         workers = auto_workers(s.name for s in sources)

@@ -170,3 +170,14 @@ def test_same_file_rule(tmp_path: Path) -> None:
     check_outputs([("input", "-")], [("model", "-x")])  # standard input is no file on disk
     with pytest.raises(nextword.InvalidArgumentError, match="h.txt: the model must go to a new file.*a.txt"):
         check_outputs([("corpus", a)], [("model", tmp_path / "h.txt")])
+
+
+def test_library_train_refuses_to_write_over_its_corpus(tmp_path: Path) -> None:
+    import nextword
+
+    corpus = tmp_path / "small.txt"
+    corpus.write_text("we fix bikes\nwe fix wheels\n", encoding="utf-8")
+    before = corpus.read_bytes()
+    with pytest.raises(nextword.InvalidArgumentError, match="small.txt"):
+        nextword.train(corpus, corpus)
+    assert corpus.read_bytes() == before
