@@ -1170,7 +1170,7 @@ class _NgramScorer:
         if tot > 0:
             rs, re_ = m._mv_rows[v], m._mv_rows[v + 1]
             row = m._succ[rs:re_]
-            at = np.searchsorted(row, pos)
+            at = np.searchsorted(row, pos.astype(row.dtype))  # same dtype: the row is not converted
             hit = at < len(row)
             hit[hit] = row[at[hit]] == pos[hit]
             c = np.zeros(len(ids), dtype=np.int64)
@@ -1187,7 +1187,7 @@ class _NgramScorer:
             tot3 = self._ttot[j]
             s, e = self._tcts[j], self._tcts[j + 1]
             row = self._tsuc[s:e]
-            at = np.searchsorted(row, pos)
+            at = np.searchsorted(row, pos.astype(row.dtype))
             hit = at < len(row)
             hit[hit] = row[at[hit]] == pos[hit]
             c = np.zeros(len(ids), dtype=np.int64)
@@ -1226,7 +1226,10 @@ class _NgramScorer:
                 b3 = bisect.bisect_left(self._tsuc_mv, hi, a3, e3)
                 if b3 > a3:
                     parts.append(m._alph[self._tsuc[a3:b3].astype(np.int64)].astype(np.int64))
-            ids = np.unique(np.concatenate(parts))
+            seen = np.zeros(m.n_words + 3, dtype=bool)  # a set over the id space: sorted, no hashing
+            for part in parts:
+                seen[part] = True
+            ids = np.flatnonzero(seen[: m.n_words])
         ids = ids[ids < m.n_words]
         if len(ids) == 0:
             return []
