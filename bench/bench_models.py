@@ -96,10 +96,10 @@ def table(rows: list[dict[str, Any]]) -> str:
            "|---|---|---|---|---|---|---|---|---|---|---|---|"]
     for r in rows:
         d3 = 100 * (r["ksr"][3] - base["ksr"][3])
-        dp = 100 * (1 - r["perplexity"] / base["perplexity"])
+        dp = 100 * (r["perplexity"] / base["perplexity"] - 1)
         out.append(
             f"| {r['label']} | {100 * r['ksr'][1]:.2f}% | {100 * r['ksr'][3]:.2f}% ({d3:+.2f}) | {100 * r['ksr'][5]:.2f}% | "
-            f"{100 * r['hit3']:.2f}% | {r['perplexity']:.1f} ({dp:+.1f}% lower) | {r['file_bytes'] / 1e6:.2f} MB | "
+            f"{100 * r['hit3']:.2f}% | {r['perplexity']:.1f} ({dp:+.1f}%) | {r['file_bytes'] / 1e6:.2f} MB | "
             f"{r['ngrams']:,} | {r['bytes_per_ngram']:.2f} | {r['load_ms']:.2f} ms | "
             f"{r['p50_us']:.0f} / {r['p99_us']:.0f} µs | {r['words_per_s'] / 1e6:.2f} M words/s |"
         )
