@@ -836,6 +836,11 @@ def _prune_curve(args: argparse.Namespace, model: Model) -> int:
     """Size against held-out KSR@k and perplexity for each budget and both rules (nothing written)."""
     import tempfile
 
+    from . import report
+
+    if args.plot and not report.plots_available():  # before the work, not after it
+        raise UsageError(f"--plot {args.plot} needs matplotlib: pip install 'nextword[plot]'")
+
     from .evaluate import evaluate
     from .prune import RULES, parse_size, prune_to_size, tables_from_model
     from .store import atomic_write

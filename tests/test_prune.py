@@ -622,3 +622,17 @@ def test_prune_curve_skips_budgets_below_the_smallest_model_and_draws_the_tradeo
     assert "smallest possible model" in res["skipped"][0]["reason"]
     assert [(r["rule"], r["budget"]) for r in res["rows"]] == [("entropy", size * 6 // 10), ("count", size * 6 // 10)]
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and res["plot"] == str(png)
+
+
+def test_prune_curve_plot_without_matplotlib_is_one_line_before_any_work(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+                                                                        capsys: pytest.CaptureFixture[str]) -> None:
+    import nextword.report
+    from nextword.cli import main
+
+    nextword.train_texts(["we fix bikes on thursday", "we fix wheels on friday"], tmp_path / "m.nwm", min_count=1)
+    (tmp_path / "held.txt").write_text("we fix bikes\n")
+    monkeypatch.setattr(nextword.report, "plots_available", lambda: False)
+    code = main(["prune", str(tmp_path / "m.nwm"), "--curve", str(tmp_path / "held.txt"), "--plot", str(tmp_path / "s.png")])
+    err = capsys.readouterr().err
+    assert code == 2 and err.count("\n") == 1 and "needs matplotlib" in err and "s.png" in err
+    assert not (tmp_path / "s.png").exists()
