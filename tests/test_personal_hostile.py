@@ -36,16 +36,6 @@ ENV = dict(os.environ, PYTHONPATH=str(ROOT))
 
 
 @pytest.fixture(scope="module")
-def base(tmp_path_factory: pytest.TempPathFactory) -> nextword.Model:
-    from pydoc_data.topics import topics  # real English shipped with CPython
-
-    lines = [ln for k in sorted(topics)[:10] for ln in topics[k].splitlines() if ln.strip()]
-    path = tmp_path_factory.mktemp("p") / "base.nwm"
-    nextword.train_texts(lines, path, min_count=2)
-    return nextword.load(path)
-
-
-@pytest.fixture(scope="module")
 def good_payload(base: nextword.Model, tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
     layer = PersonalLayer(base, half_life_messages=50, blocklist=["secret"])
     for m in ("Ask Zanele about the zorbing trip", "the zorbing trip is on Friday", "Zanele booked it. 7 bikes"):

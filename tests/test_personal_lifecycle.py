@@ -14,16 +14,6 @@ from nextword import InputDataError, InvalidArgumentError, LayerNotFoundError
 from nextword.personal import PersonalLayer
 
 
-@pytest.fixture(scope="module")
-def base(tmp_path_factory: pytest.TempPathFactory) -> nextword.Model:
-    from pydoc_data.topics import topics  # real English shipped with CPython
-
-    lines = [ln for k in sorted(topics)[:10] for ln in topics[k].splitlines() if ln.strip()]
-    path = tmp_path_factory.mktemp("p") / "base.nwm"
-    nextword.train_texts(lines, path, min_count=2)
-    return nextword.load(path)
-
-
 def test_open_without_create_refuses_a_missing_file_and_names_it(base: nextword.Model, tmp_path: Path) -> None:
     path = tmp_path / "typo.nwp"
     with pytest.raises(LayerNotFoundError, match="typo.nwp"):

@@ -26,16 +26,6 @@ ROOT = Path(__file__).resolve().parent.parent
 ENV = dict(os.environ, PYTHONPATH=str(ROOT))
 
 
-@pytest.fixture(scope="module")
-def base(tmp_path_factory: pytest.TempPathFactory) -> nextword.Model:
-    from pydoc_data.topics import topics  # real English shipped with CPython
-
-    lines = [ln for k in sorted(topics)[:10] for ln in topics[k].splitlines() if ln.strip()]
-    path = tmp_path_factory.mktemp("p") / "base.nwm"
-    nextword.train_texts(lines, path, min_count=2)
-    return nextword.load(path)
-
-
 # A child learns N messages naming its own tag, then (optionally) waits until it sees the
 # other child's messages too and prints its whole state: every process must converge.
 LEARNER = r"""
