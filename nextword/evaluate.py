@@ -35,7 +35,7 @@ from .corpus import Source, iter_records
 from .errors import InvalidArgumentError
 from .store import atomic_write
 from .model import Model, Suggestion
-from .text import _HAS_LETTER, _TOKEN_RE, fold, normalize
+from .text import HAS_LETTER as _HAS_LETTER, TOKEN_RE as _TOKEN_RE, fold, normalize
 
 __all__ = [
     "KStats",

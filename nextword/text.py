@@ -39,6 +39,9 @@ __all__ = [
     "fold_all",
     "normalize",
     "tokens",
+    "is_word",
+    "TOKEN_RE",
+    "HAS_LETTER",
     "sentences",
     "parse_typed",
     "recase",
@@ -57,13 +60,21 @@ END: Final = 2
 
 _SENTENCE_END_CHARS = ".!?…‼‽⁇⁈⁉。！？｡\n\r\u2028\u2029\u0085\x0b\x0c"
 _JOINERS = "'’\\-‐‑"
-_TOKEN_RE = re.compile(
+#: The one token pattern of the text rules. Its named groups: ``num`` (digits with internal
+#: ``. , :``), ``word`` (letters/digits joined by apostrophes or hyphens; a word only if
+#: :func:`is_word`, else a number), ``end`` (a run of sentence-end characters) and
+#: ``other`` (one punctuation or symbol character: symbols break the context, punctuation
+#: is skipped). :func:`tokens` is the reference reading; the counting fast path
+#: (:mod:`nextword.counts`) and the keystroke simulation (:mod:`nextword.evaluate`) read
+#: the same matches, so every module cuts text alike.
+TOKEN_RE: Final = re.compile(
     r"(?P<num>\d+(?:[.,:]\d+)+)"
     rf"|(?P<word>[^\W_]+(?:[{_JOINERS}][^\W_]+)*)"
     rf"|(?P<end>[{re.escape(_SENTENCE_END_CHARS)}]+)"
     r"|(?P<other>[^\w\s])"
 )
-_HAS_LETTER = re.compile(r"[^\W\d_]")
+#: a letter (a ``word`` match is a word only if it holds one, see :func:`is_word`)
+HAS_LETTER: Final = re.compile(r"[^\W\d_]")
 _FOLD_PAIRS = (("’", "'"), ("‐", "-"), ("‑", "-"))
 _FOLD_TABLE = str.maketrans(dict(_FOLD_PAIRS))
 
@@ -102,8 +113,9 @@ def fold_all(words: list[str]) -> list[str]:
     return text.split("\n")
 
 
-def _is_word(token: str) -> bool:
-    return token.isalpha() or _HAS_LETTER.search(token) is not None
+def is_word(token: str) -> bool:
+    """Whether a ``word`` match of :data:`TOKEN_RE` is a word: it holds at least one letter (``5pm`` yes, ``42`` no)."""
+    return token.isalpha() or HAS_LETTER.search(token) is not None
 
 
 def tokens(text: str) -> Iterator[tuple[int, str]]:
@@ -112,11 +124,11 @@ def tokens(text: str) -> Iterator[tuple[int, str]]:
     Kinds are :data:`WORD`, :data:`BREAK` (a number or symbol) and :data:`END` (a
     sentence boundary). Soft punctuation yields nothing.
     """
-    for m in _TOKEN_RE.finditer(text):
+    for m in TOKEN_RE.finditer(text):
         group = m.lastgroup
         s = m.group()
         if group == "word":
-            yield (WORD if _is_word(s) else BREAK), s
+            yield (WORD if is_word(s) else BREAK), s
         elif group == "end":
             yield END, s
         elif group == "num":
@@ -216,7 +228,7 @@ _FIRST_WINDOW = 40
 def _parse_tail(text: str, window: int, *, final: bool) -> Context | None:
     truncated = len(text) > window
     tail = normalize(text[-window:] if truncated else text)
-    toks = list(_TOKEN_RE.finditer(tail))
+    toks = list(TOKEN_RE.finditer(tail))
     cut = truncated and bool(toks) and toks[0].start() == 0 and toks[0].lastgroup in ("word", "num")
     prefix = ""
     if toks:
@@ -245,7 +257,7 @@ def _parse_tail(text: str, window: int, *, final: bool) -> Context | None:
     for m in reversed(toks):
         group = m.lastgroup
         s = m.group()
-        if group == "word" and _is_word(s):
+        if group == "word" and is_word(s):
             found.append(s)
         elif group == "end":
             found.append(BOS)
