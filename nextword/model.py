@@ -16,21 +16,14 @@ import bisect
 import math
 import os
 import sys
-from typing import Any, Iterable, Iterator, NamedTuple, Sequence
+from typing import Any, Callable, Iterable, Iterator, NamedTuple, Sequence
 
 import numpy as np
 
 from .estimators import unigram_floor
 from .errors import InvalidArgumentError, ModelFormatError
-from .store import (
-    COUNT_ESCAPE,
-    MAX_LAMBDA,
-    TOPK_FANOUT,
-    ModelArrays,
-    read_model,
-    key_head,
-    topk_levels,
-)
+from .candidates import CandidateRange, PrefixRange, merge_ranked
+from .store import COUNT_ESCAPE, MAX_LAMBDA, ModelArrays, read_model
 from .text import BOS, EOS, UNK, fold, parse_typed, recase, sentences
 
 __all__ = ["Model", "Suggestion", "load", "check_k", "check_lam"]
@@ -73,24 +66,6 @@ def _native_view(arr: np.ndarray) -> memoryview:
         arr = arr.astype(arr.dtype.newbyteorder("="))
     fmt = {1: "B", 2: "H", 4: "I", 8: "Q"}[arr.dtype.itemsize]
     return memoryview(np.ascontiguousarray(arr)).cast("B").cast(fmt)  # type: ignore[arg-type,call-overload]
-
-
-class _AlphaKeys:
-    """Sequence view of the vocabulary keys in alphabetical order, truncated to a length."""
-
-    __slots__ = ("restore", "idtk", "alph", "length")
-
-    def __init__(self, restore: Any, idtk: memoryview, alph: memoryview, length: int) -> None:
-        self.restore = restore
-        self.idtk = idtk
-        self.alph = alph
-        self.length = length
-
-    def __len__(self) -> int:
-        return len(self.alph) - 2
-
-    def __getitem__(self, i: int) -> str:
-        return self.restore(self.idtk[self.alph[i]])[: self.length]  # type: ignore[no-any-return]
 
 
 class Model:
@@ -145,17 +120,18 @@ class Model:
         self._mv_segs, self._mv_sege, self._mv_skyp = mv["SEGS"], mv["SEGE"], mv["SKYP"]
         self._mv_cnts = memoryview(np.ascontiguousarray(a["CNTS"])).cast("B")  # type: ignore[arg-type]
         self._mv_bigi, self._mv_bigc, self._mv_skyi = mv["BIGI"], mv["BIGC"], mv["SKYI"]
-        # multi-level prefix top lists as 2-D views (blocks x FANOUT)
-        self._levels: list[np.ndarray] = []
-        start = 0
-        for nb in topk_levels(n):
-            self._levels.append(a["TOPK"][start : start + nb * TOPK_FANOUT].reshape(nb, TOPK_FANOUT))
-            start += nb * TOPK_FANOUT
         self._apos = a["APOS"]
-        # small caches of pure functions of the file (keyboards repeat prefixes constantly);
-        # dict reads and writes are atomic, so sharing a Model between threads stays safe
-        self._range_cache: dict[str, tuple[int, int]] = {}
-        self._top_cache: dict[tuple[int, int, int], list[int]] = {}
+        # which words a query considers (docs/SEAMS.md, the candidate seam): exact prefixes today
+        self._candidates = PrefixRange(
+            trie=self._trie, idtk=self._mv_idtk, alph_view=self._mv_alph, key4=self._mv_key4,
+            alph=self._alph, topk=a["TOPK"], n_words=n, max_key_chars=self._max_key,
+        )
+        #: alphabetical positions [lo, hi) of the words starting with a folded prefix
+        self._prefix_range: Callable[[str], tuple[int, int]] = self._candidates.span
+        #: the k most frequent word ids of an alphabetical range (the ranking's lower bound)
+        self._range_top_ids: Callable[[int, int, int], list[int]] = self._candidates.top_ids
+        # a small cache of a pure function of the file; dict reads and writes are atomic,
+        # so sharing a Model between threads stays safe
         self._display_cache: dict[int, str] = {}
         self._big: dict[int, int] | None = None
         #: the smoothing method ("jm" or "kn") and n-gram order (2 or 3) the file stores
@@ -473,79 +449,6 @@ class Model:
 
     # -- ranking ------------------------------------------------------------------------------
 
-    def _prefix_range(self, key: str) -> tuple[int, int]:
-        """Alphabetical positions [lo, hi) of the words whose key starts with ``key``.
-
-        The 4-byte key heads (KEY4) give the range of prefixes up to 4 UTF-8 bytes with
-        two binary searches over integers; longer prefixes refine it over the keys.
-        """
-        n = self.n_words
-        if not key:
-            return 0, n
-        hit = self._range_cache.get(key)
-        if hit is not None:
-            return hit
-        if len(key) > self._max_key:
-            result = (0, 0)
-        else:
-            head = self._mv_key4
-            lo = bisect.bisect_left(head, key_head(key, 0x00), 0, n)
-            hi = bisect.bisect_right(head, key_head(key, 0xFF), lo, n)
-            if len(key.encode("utf-8")) > 4 and lo < hi:
-                seq = _AlphaKeys(self._trie.restore_key, self._mv_idtk, self._mv_alph, len(key))
-                lo = bisect.bisect_left(seq, key, lo, hi)
-                hi = bisect.bisect_right(seq, key, lo, hi)
-            result = (lo, hi)
-        if len(self._range_cache) > 65536:
-            self._range_cache.clear()
-        self._range_cache[key] = result
-        return result
-
-    def _range_top_ids(self, lo: int, hi: int, k: int) -> list[int]:
-        """The k smallest word ids (= most frequent) among alphabetical positions [lo, hi).
-
-        Uses the stored top lists: the range splits into at most 2·(FANOUT−1) pieces per
-        level plus at most FANOUT top-level blocks, each contributing ≤ k ids, so the work
-        is bounded whatever the number of matching words (for k ≤ FANOUT).
-        """
-        F = TOPK_FANOUT
-        if lo == 0 and hi == self.n_words:
-            return list(range(min(k, hi)))
-        if hi - lo <= 2 * F:
-            return sorted(self._mv_alph[lo:hi].tolist())[:k]
-        hit = self._top_cache.get((lo, hi, k))
-        if hit is not None:
-            return hit
-        if k > F:
-            vals = self._alph[lo:hi]
-        else:
-            pieces = []
-            unit, level, a, b = 1, 0, lo, hi
-            while True:
-                nxt = unit * F
-                A = -(-a // nxt) * nxt
-                B = (b // nxt) * nxt
-                if level == len(self._levels) or A >= B:
-                    pieces.append(self._units(level, a // unit, b // unit, k))
-                    break
-                pieces.append(self._units(level, a // unit, A // unit, k))
-                pieces.append(self._units(level, B // unit, b // unit, k))
-                a, b, unit, level = A, B, nxt, level + 1
-            vals = np.concatenate(pieces)
-        if len(vals) > k:
-            vals = np.partition(vals, k - 1)[:k]
-        vals = np.sort(vals)
-        top: list[int] = vals[vals < self.n_words].tolist()
-        if len(self._top_cache) > 16384:
-            self._top_cache.clear()
-        self._top_cache[lo, hi, k] = top
-        return top
-
-    def _units(self, level: int, i: int, j: int, k: int) -> np.ndarray:
-        if level == 0:
-            return self._alph[i:j]
-        return self._levels[level - 1][i:j, :k].ravel()
-
     def _rank(self, v: int, lo: int, hi: int, k: int, lam: float) -> list[tuple[int, float]]:
         """Top-k (word id, probability) in alphabetical positions [lo, hi) after history v.
 
@@ -686,12 +589,12 @@ class Model:
         ctx = parse_typed(typed)
         if self._general:
             lams = self._ng_lams(lam)
-            lo, hi = self._prefix_range(fold(ctx.prefix))
-            if lo >= hi:
+            rs = self._candidates.ranges(fold(ctx.prefix))
+            if not rs:
                 return []
             ids = self._context_ids(ctx.history)
             try:
-                ranked = self._ng.rank(ids, lo, hi, k, lams)
+                ranked = self._rank_ranges(self._ng.rank, ids, rs, k, lams)
                 at_start = ids[-1] == self._bos
                 return [Suggestion(recase(self.display(i), ctx.prefix, at_start), p) for i, p in ranked]
             except (IndexError, ValueError, UnicodeDecodeError) as e:
@@ -703,11 +606,11 @@ class Model:
         else:
             wid = self._word_id(fold(ctx.previous))
             v = self._unk if wid is None else wid
-        lo, hi = self._prefix_range(fold(ctx.prefix))
-        if lo >= hi:
+        rs = self._candidates.ranges(fold(ctx.prefix))
+        if not rs:
             return []
         try:
-            ranked = self._rank(v, lo, hi, k, self._lam_of(v, lam))
+            ranked = self._rank_ranges(self._rank, v, rs, k, self._lam_of(v, lam))
             at_start = v == self._bos
             shown = self._display_cache
             return [
@@ -727,11 +630,11 @@ class Model:
         if self._general:
             return self.rank_after((previous_word,), prefix, k, lam=lam)
         v = self._history_id(previous_word)
-        lo, hi = self._prefix_range(fold(prefix))
-        if lo >= hi:
+        rs = self._candidates.ranges(fold(prefix))
+        if not rs:
             return []
         try:
-            return [(self._key(i), p) for i, p in self._rank(v, lo, hi, k, self._lam_of(v, lam))]
+            return [(self._key(i), p) for i, p in self._rank_ranges(self._rank, v, rs, k, self._lam_of(v, lam))]
         except (IndexError, ValueError) as e:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
 
@@ -742,16 +645,31 @@ class Model:
         k = check_k(k)
         lam = None if lam is None else check_lam(lam)
         ctx = self._context_ids(history)
-        lo, hi = self._prefix_range(fold(prefix))
-        if lo >= hi:
+        rs = self._candidates.ranges(fold(prefix))
+        if not rs:
             return []
         try:
             if self._general:
-                return [(self._key(i), p) for i, p in self._ng.rank(ctx, lo, hi, k, self._ng_lams(lam))]
+                return [(self._key(i), p) for i, p in self._rank_ranges(self._ng.rank, ctx, rs, k, self._ng_lams(lam))]
             v = ctx[-1]
-            return [(self._key(i), p) for i, p in self._rank(v, lo, hi, k, self._lam_of(v, lam))]
+            return [(self._key(i), p) for i, p in self._rank_ranges(self._rank, v, rs, k, self._lam_of(v, lam))]
         except (IndexError, ValueError) as e:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
+
+    def _rank_ranges(
+        self, rank: Callable[[Any, int, int, int, Any], list[tuple[int, float]]], context: Any,
+        ranges: Sequence[CandidateRange], k: int, weights: Any,
+    ) -> list[tuple[int, float]]:
+        """Top-k (word id, score) over the candidate ranges: ``rank`` (exact within one range) per
+        range, merged by channel weight × probability (:func:`~nextword.candidates.merge_ranked`).
+
+        The exact prefix is one range of weight 1.0, ranked directly: scores stay probabilities.
+        """
+        if len(ranges) == 1 and ranges[0].weight == 1.0:
+            lo, hi, _ = ranges[0]
+            return rank(context, lo, hi, k, weights)
+        per = [(w, rank(context, lo, hi, k, weights)) for lo, hi, w in ranges]
+        return merge_ranked(per, self._mv_apos.__getitem__, k)
 
     def header(self) -> dict[str, Any]:
         """The file's metadata as plain data (a copy): estimator, order, λ or discounts, sizes."""
