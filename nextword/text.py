@@ -39,6 +39,7 @@ __all__ = [
     "fold_all",
     "normalize",
     "tokens",
+    "word_spans",
     "is_word",
     "TOKEN_RE",
     "HAS_LETTER",
@@ -135,6 +136,15 @@ def tokens(text: str) -> Iterator[tuple[int, str]]:
             yield BREAK, s
         elif not unicodedata.category(s).startswith("P"):
             yield BREAK, s
+
+
+def word_spans(text: str) -> list[tuple[int, int]]:
+    """(start, end) of every word of already-normalised ``text``, by the rules of :func:`tokens`.
+
+    The keystroke simulation types these spans letter by letter; they are the words
+    :func:`sentences` returns, with their places in the text.
+    """
+    return [m.span() for m in TOKEN_RE.finditer(text) if m.lastgroup == "word" and is_word(m.group())]
 
 
 def sentences(text: str) -> list[list[str | None]]:

@@ -132,6 +132,16 @@ def test_module_level_imports_have_no_cycle() -> None:
     assert _cycle(_graph(lazy=False)) is None
 
 
+def test_imports_inside_functions_close_no_cycle_but_the_known_one() -> None:
+    # A function's import runs late, but a cycle through it is still two layers that need
+    # each other. The one left: store.build (the build half of store.py) imports the
+    # estimators, whose jm.py takes MAX_LAMBDA from store; the store split removes it
+    # (docs/SEAMS.md). Any other cycle fails here.
+    graph = _graph(lazy=True)
+    graph["nextword.store"] = {t for t in graph["nextword.store"] if not t.startswith("nextword.estimators")}
+    assert _cycle(graph) is None
+
+
 def test_the_cycle_finder_finds_a_cycle() -> None:
     assert _cycle({"a": {"b"}, "b": {"c"}, "c": {"a"}, "d": set()}) == ["a", "b", "c", "a"]
     assert _cycle({"a": {"b"}, "b": set()}) is None
