@@ -102,12 +102,20 @@ class PrefixRange:
             self._levels.append(topk[start : start + nb * TOPK_FANOUT].reshape(nb, TOPK_FANOUT))
             start += nb * TOPK_FANOUT
         self._range_cache: dict[str, tuple[int, int]] = {}
+        self._ranges_cache: dict[str, tuple[CandidateRange, ...]] = {}
         self._top_cache: dict[tuple[int, int, int], list[int]] = {}
 
     def ranges(self, key: str) -> tuple[CandidateRange, ...]:
         """The one range of words starting with ``key``, weight 1.0; none if no word does."""
+        hit = self._ranges_cache.get(key)
+        if hit is not None:  # cached: building the named tuple costs more than the search
+            return hit
         lo, hi = self.span(key)
-        return (CandidateRange(lo, hi, 1.0),) if lo < hi else ()
+        result = (CandidateRange(lo, hi, 1.0),) if lo < hi else ()
+        if len(self._ranges_cache) > 65536:
+            self._ranges_cache.clear()
+        self._ranges_cache[key] = result
+        return result
 
     def span(self, key: str) -> tuple[int, int]:
         """Alphabetical positions [lo, hi) of the words whose key starts with ``key``.

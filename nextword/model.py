@@ -610,7 +610,10 @@ class Model:
         if not rs:
             return []
         try:
-            ranked = self._rank_ranges(self._rank, v, rs, k, self._lam_of(v, lam))
+            if len(rs) == 1 and rs[0][2] == 1.0:  # the exact prefix: one range, ranked directly
+                ranked = self._rank(v, rs[0][0], rs[0][1], k, self._lam_of(v, lam))
+            else:
+                ranked = self._rank_ranges(self._rank, v, rs, k, self._lam_of(v, lam))
             at_start = v == self._bos
             shown = self._display_cache
             return [
@@ -665,9 +668,10 @@ class Model:
 
         The exact prefix is one range of weight 1.0, ranked directly: scores stay probabilities.
         """
-        if len(ranges) == 1 and ranges[0].weight == 1.0:
-            lo, hi, _ = ranges[0]
-            return rank(context, lo, hi, k, weights)
+        if len(ranges) == 1:
+            lo, hi, w = ranges[0]
+            if w == 1.0:
+                return rank(context, lo, hi, k, weights)
         per = [(w, rank(context, lo, hi, k, weights)) for lo, hi, w in ranges]
         return merge_ranked(per, self._mv_apos.__getitem__, k)
 
