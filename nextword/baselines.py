@@ -16,7 +16,7 @@ from typing import Any, Callable, Iterable
 
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT
 from .errors import InvalidArgumentError
-from .text import BOS, EOS, UNK, fold, parse_typed, sentences
+from .text import BOS, EOS, UNK, fold, normalize, parse_typed, sentences, word_spans
 
 __all__ = ["DictBigram", "key_sentences", "nltk_baseline", "sample_queries", "time_queries"]
 
@@ -92,9 +92,6 @@ class DictBigram:
 
 def sample_queries(messages: Iterable[str], n: int) -> list[str]:
     """The first ``n`` typed texts the keystroke simulation would ask about."""
-    from .evaluate import word_spans
-    from .text import normalize
-
     out: list[str] = []
     for message in messages:
         message = normalize(message)

@@ -27,7 +27,7 @@ import numpy as np
 
 from .errors import InvalidArgumentError
 from .ngrams import MAX_ORDER, NgramCounts
-from .text import _HAS_LETTER, _TOKEN_RE, fold, fold_all, normalize
+from .text import HAS_LETTER as _HAS_LETTER, TOKEN_RE as _TOKEN_RE, fold, fold_all, normalize
 
 __all__ = [
     "CountBuilder",
