@@ -40,9 +40,9 @@ from .store import (
     topk_levels,
     write_model,
 )
-from .text import BOS, EOS, UNK, fold, parse_typed, sentences
+from .text import BOS, EOS, UNK, fold, parse_typed, recase, sentences
 
-__all__ = ["Model", "Suggestion", "TrainReport", "train", "train_texts", "load", "DEFAULT_LAMBDA", "SMOOTHINGS", "TRAIN_ORDERS"]
+__all__ = ["Model", "Suggestion", "TrainReport", "train", "train_texts", "load", "DEFAULT_LAMBDA", "SMOOTHINGS", "TRAIN_ORDERS", "check_k", "check_lam"]
 
 #: Weight of the bigram estimate; a value near 0.9 is the usual starting point (common practice).
 DEFAULT_LAMBDA = 0.9
@@ -83,13 +83,15 @@ class TrainReport:
         return self.word_tokens / total if total > 0 else 0.0
 
 
-def _check_lam(lam: float) -> float:
+def check_lam(lam: float) -> float:
+    """``lam`` as a float if it is a number in [0, 1], else :class:`InvalidArgumentError` (a query's λ override)."""
     if isinstance(lam, bool) or not isinstance(lam, (int, float)) or not 0.0 <= lam <= 1.0:
         raise InvalidArgumentError(f"lam must be a number in [0, 1], got {lam!r}")
     return float(lam)
 
 
-def _check_k(k: int) -> int:
+def check_k(k: int) -> int:
+    """``k`` if it is an integer >= 1, else :class:`InvalidArgumentError` (how many suggestions a query returns)."""
     if isinstance(k, bool) or not isinstance(k, int) or k < 1:
         raise InvalidArgumentError(f"k must be an integer >= 1, got {k!r}")
     return k
@@ -144,7 +146,7 @@ class Model:
         stored += [float(x) for x in buckets.get("lambdas", [])]
         self.lambda_clamped: bool = max(stored) > MAX_LAMBDA
         self.stored_lam: float = min(stored[0], MAX_LAMBDA)
-        self.lam: float = self.stored_lam if lam is None else _check_lam(lam)
+        self.lam: float = self.stored_lam if lam is None else check_lam(lam)
         self.lambda_bounds: list[int] = list(buckets.get("bounds", []))
         self.lambda_values: list[float] = [min(x, MAX_LAMBDA) for x in stored[1:]]
         self._override = lam is not None
@@ -376,7 +378,7 @@ class Model:
         Words are case-insensitive. ``'</s>'`` asks for the end of the sentence; a word
         outside the vocabulary gets the probability of ``<unk>``, as in perplexity.
         """
-        lam = None if lam is None else _check_lam(lam)
+        lam = None if lam is None else check_lam(lam)
         v = self._history_id(previous_word)
         if self._general:
             return self._ng.prob(self._predicted_id(word), (v,), self._ng_lams(lam))
@@ -389,7 +391,7 @@ class Model:
         model reads only the last token, an order-3 model the last two. For a
         Jelinek-Mercer bigram this is :meth:`prob` with ``history[-1]``.
         """
-        lam = None if lam is None else _check_lam(lam)
+        lam = None if lam is None else check_lam(lam)
         ctx = self._context_ids(history)
         if self._general:
             return self._ng.prob(self._predicted_id(word), ctx, self._ng_lams(lam))
@@ -422,7 +424,7 @@ class Model:
         The parts of :meth:`perplexity`, so that results over several texts can be pooled.
         The sum is ``-inf`` if a token has probability 0 (possible only with λ = 1).
         """
-        lam = None if lam is None else _check_lam(lam)
+        lam = None if lam is None else check_lam(lam)
         log_sum = 0.0
         events = 0
         if self._general:
@@ -709,8 +711,8 @@ class Model:
         """
         if not isinstance(typed, str):
             raise InvalidArgumentError(f"typed must be str, got {type(typed).__name__}")
-        k = _check_k(k)
-        lam = None if lam is None else _check_lam(lam)
+        k = check_k(k)
+        lam = None if lam is None else check_lam(lam)
         ctx = parse_typed(typed)
         if self._general:
             lams = self._ng_lams(lam)
@@ -721,7 +723,7 @@ class Model:
             try:
                 ranked = self._ng.rank(ids, lo, hi, k, lams)
                 at_start = ids[-1] == self._bos
-                return [Suggestion(_recase(self.display(i), ctx.prefix, at_start), p) for i, p in ranked]
+                return [Suggestion(recase(self.display(i), ctx.prefix, at_start), p) for i, p in ranked]
             except (IndexError, ValueError, UnicodeDecodeError) as e:
                 raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
         if ctx.previous == BOS:
@@ -739,7 +741,7 @@ class Model:
             at_start = v == self._bos
             shown = self._display_cache
             return [
-                Suggestion(_recase(shown.get(i) or self.display(i), ctx.prefix, at_start), p) for i, p in ranked
+                Suggestion(recase(shown.get(i) or self.display(i), ctx.prefix, at_start), p) for i, p in ranked
             ]
         except (IndexError, ValueError, UnicodeDecodeError) as e:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
@@ -750,8 +752,8 @@ class Model:
         The raw ranking behind :meth:`suggest`, without text parsing or capitalisation;
         keys are the case-folded vocabulary keys.
         """
-        k = _check_k(k)
-        lam = None if lam is None else _check_lam(lam)
+        k = check_k(k)
+        lam = None if lam is None else check_lam(lam)
         if self._general:
             return self.rank_after((previous_word,), prefix, k, lam=lam)
         v = self._history_id(previous_word)
@@ -767,8 +769,8 @@ class Model:
         self, history: Sequence[str | None], prefix: str = "", k: int = 3, *, lam: float | None = None
     ) -> list[tuple[str, float]]:
         """Like :meth:`rank_ids` with a context of tokens oldest first (see :meth:`prob_after`)."""
-        k = _check_k(k)
-        lam = None if lam is None else _check_lam(lam)
+        k = check_k(k)
+        lam = None if lam is None else check_lam(lam)
         ctx = self._context_ids(history)
         lo, hi = self._prefix_range(fold(prefix))
         if lo >= hi:
@@ -831,20 +833,6 @@ class Model:
         }
 
 
-def _recase(word: str, prefix: str, at_start: bool) -> str:
-    if prefix:
-        first = prefix[0]
-        if first.islower():  # the common case: an explicitly lowercase prefix wins
-            return word
-        if prefix.isupper() and sum(c.isupper() for c in prefix) >= 2:
-            return word.upper()
-        if first.isupper():
-            return word[:1].upper() + word[1:]
-    if at_start:
-        return word[:1].upper() + word[1:]
-    return word
-
-
 # -- building and loading ---------------------------------------------------------------------
 
 
@@ -856,7 +844,7 @@ def load(path: str | os.PathLike[str], *, lam: float | None = None, verify: bool
     checked, which keeps opening fast whatever the model size.
     """
     if lam is not None:
-        _check_lam(lam)
+        check_lam(lam)
     return Model(read_model(path, verify=verify), lam=lam)
 
 
@@ -934,7 +922,7 @@ def _finish(
 
 
 def _check_build_args(lam: float, skyband_k: int, skyband_min: int) -> float:
-    lam = _check_lam(lam)
+    lam = check_lam(lam)
     if lam > MAX_LAMBDA:
         raise InvalidArgumentError(
             f"a stored λ must be at most {MAX_LAMBDA} (λ = 1 gives every unseen pair probability 0), got {lam!r}; "

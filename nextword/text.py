@@ -41,6 +41,7 @@ __all__ = [
     "tokens",
     "sentences",
     "parse_typed",
+    "recase",
     "MAX_CONTEXT_CHARS",
 ]
 
@@ -146,6 +147,27 @@ def sentences(text: str) -> list[list[str | None]]:
     if cur:
         out.append(cur)
     return out
+
+
+def recase(word: str, prefix: str, at_start: bool) -> str:
+    """Show a vocabulary word with the casing the user asked for by typing ``prefix``.
+
+    Keys are case-folded (:func:`fold`), so the casing of a suggestion is a text rule of
+    its own: an explicitly lowercase prefix stays lowercase; two or more capitals typed
+    (``"NE"``) ask for the whole word in capitals; a capital first letter, or a sentence
+    start (``at_start``) with nothing typed, capitalises the first letter.
+    """
+    if prefix:
+        first = prefix[0]
+        if first.islower():  # the common case: an explicitly lowercase prefix wins
+            return word
+        if prefix.isupper() and sum(c.isupper() for c in prefix) >= 2:
+            return word.upper()
+        if first.isupper():
+            return word[:1].upper() + word[1:]
+    if at_start:
+        return word[:1].upper() + word[1:]
+    return word
 
 
 @dataclass(frozen=True, slots=True)
