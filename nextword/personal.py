@@ -83,15 +83,15 @@ import struct
 import threading
 import time
 import zlib
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from typing import Any
 
 import msgpack
 
 from .errors import InvalidArgumentError, LayerNotFoundError, ModelFormatError
-from .model import Model, Suggestion, check_k as _check_k
+from .model import Model, Suggestion, check_k
 from .store import atomic_write
-from .text import BOS, EOS, UNK, fold, parse_typed, sentences, recase as _recase
+from .text import BOS, EOS, UNK, fold, parse_typed, recase, sentences
 
 __all__ = [
     "PersonalLayer",
@@ -149,6 +149,16 @@ def _valid_text(value: object, what: str) -> str:
             f"{what} {ascii(value)} is not valid Unicode text (it contains a lone surrogate, e.g. undecodable bytes)"
         ) from None
     return value
+
+
+def _history(history: object) -> tuple[str | None, ...]:
+    """Context tokens (oldest first; None or '<s>' = sentence start) checked at the boundary; empty = sentence start."""
+    if isinstance(history, str) or not isinstance(history, Sequence):
+        raise InvalidArgumentError(f"history must be a sequence of tokens, got {type(history).__name__}")
+    for t in history:
+        if t is not None:
+            _valid_text(t, "history token")
+    return tuple(history) if history else (BOS,)
 
 
 def _word_key(word: object, what: str = "word") -> str:
@@ -236,10 +246,8 @@ class PersonalLayer:
         max_entries: int = 65_536,
         path: str | os.PathLike[str] | None = None,
     ) -> None:
-        # the mixing and the exact ranking below read a one-word context and the base's
-        # bigram scores; a Kneser-Ney or two-word-context base would be ranked wrongly
-        if (getattr(base, "estimator", "jm"), getattr(base, "order", 2)) != ("jm", 2):
-            raise InvalidArgumentError("personal layers need a Jelinek-Mercer bigram base for now")
+        if not isinstance(base, Model):
+            raise InvalidArgumentError(f"base must be a nextword.Model, got {type(base).__name__}")
         self._apply_settings(
             _check_settings(
                 min_uses=min_uses,
@@ -257,7 +265,10 @@ class PersonalLayer:
             raise InvalidArgumentError(f"a blocklist holds at most {MAX_BLOCKED} words, got {len(self.blocklist)}")
         self._lock = threading.RLock()
         self._closed = False
-        self._base_cache: dict[tuple[str | None, str, int], list[tuple[str, float]]] = {}
+        self._blocked_sorted: list[str] | None = None  # the blocklist sorted, for prefix counts (None: stale)
+        # pure functions of the immutable base, cached: its top lists and its word set
+        self._base_cache: dict[tuple[tuple[str | None, ...], str, int], list[tuple[str, float]]] = {}
+        self._base_words: dict[str, bool] = {}
         self._path: str | None = None
         self._lock_fd: int | None = None
         self._snap_fd: int | None = None  # held so the snapshot's inode stays unique while we use it
@@ -517,8 +528,10 @@ class PersonalLayer:
             self._forget(rec["key"])
         elif op == "block":
             self.blocklist.add(rec["key"])
+            self._blocked_sorted = None
         elif op == "unblock":
             self.blocklist.discard(rec["key"])
+            self._blocked_sorted = None
         else:
             self._reset()
 
@@ -617,11 +630,15 @@ class PersonalLayer:
     # -- probabilities ----------------------------------------------------------------------------
 
     def _hkey(self, previous_word: str | None) -> str:
+        """The user's history key of a context token, mapped exactly as :func:`_learn_record` counts it."""
         if previous_word is None or previous_word == BOS:
             return BOS
         if previous_word == UNK:
             return UNK
-        return fold(previous_word)
+        key = fold(previous_word)
+        if len(previous_word) > MAX_WORD_CHARS or not _is_word_key(key):
+            return UNK
+        return key
 
     def _p_user(self, v: str, w: str) -> float:
         total = self._total
@@ -633,24 +650,40 @@ class PersonalLayer:
             return u
         return self.lam * (self._big[v].get(w, 0.0) / cv) + (1.0 - self.lam) * u
 
-    def _p_base(self, v: str, w: str) -> float:
-        base = self.base
-        prev = None if v == BOS else (v if v == UNK or v in base else UNK)
-        if w in (EOS, UNK):
-            return base.prob(w, prev)
-        if w not in base:
-            return 0.0
-        return base.prob(w, prev)
+    def _in_base(self, key: str) -> bool:
+        """Whether the base model has the word ``key`` (cached: the base never changes)."""
+        hit = self._base_words.get(key)
+        if hit is None:
+            hit = key in self.base
+            if len(self._base_words) >= 200_000:
+                self._base_words.clear()
+            self._base_words[key] = hit
+        return hit
 
-    def prob(self, word: str, previous_word: str | None = None) -> float:
-        """P(word | previous_word) under the mixture (``None`` = sentence start)."""
-        v = self._hkey(previous_word)
+    def _p_base(self, history: tuple[str | None, ...], w: str) -> float:
+        if w not in (EOS, UNK) and not self._in_base(w):
+            return 0.0  # the base gives this word's mass to <unk>
+        return self.base.prob_after(w, history)
+
+    def prob_after(self, word: str, history: Sequence[str | None]) -> float:
+        """P(word | history) under the mixture; ``history`` the context tokens oldest first.
+
+        ``None`` or ``'<s>'`` marks a sentence start. The base part reads as many of the
+        last tokens as its order uses (two for a trigram base), the personal part the last one.
+        """
+        hist = _history(history)
+        v = self._hkey(hist[-1])
+        _valid_text(word, "word")
         w = word if word in (EOS, UNK) else fold(word)
         with self._lock:
-            if w not in (EOS, UNK) and w not in self.base and w not in self._uni:
+            if w not in (EOS, UNK) and w not in self._uni and not self._in_base(w):
                 w = UNK
             mu = self.weight
-            return (1.0 - mu) * self._p_base(v, w) + mu * self._p_user(v, w)
+            return (1.0 - mu) * self._p_base(hist, w) + mu * self._p_user(v, w)
+
+    def prob(self, word: str, previous_word: str | None = None) -> float:
+        """P(word | previous_word) under the mixture (``None`` = sentence start): :meth:`prob_after` of one token."""
+        return self.prob_after(word, (previous_word,))
 
     def vocabulary(self) -> list[str]:
         """Every outcome with its own probability: base words, the user's words, </s>, <unk>."""
@@ -668,13 +701,13 @@ class PersonalLayer:
         log_sum, events = 0.0, 0
         for line in lines:
             for sent in sentences(line):
-                prev: str | None = None
+                hist: list[str | None] = [BOS]
                 for tok in [*sent, EOS]:
                     w = UNK if tok is None else tok
-                    p = self.prob(w, prev)
+                    p = self.prob_after(w, hist[-2:])
                     log_sum += math.log(p) if p > 0 else -math.inf
                     events += 1
-                    prev = UNK if tok is None else tok
+                    hist.append(w)
         if events == 0:
             raise InvalidArgumentError("no words to score: the text is empty")
         return math.exp(-log_sum / events)
@@ -684,19 +717,194 @@ class PersonalLayer:
     def _suggestible(self, key: str) -> bool:
         if key in self.blocklist or key in (EOS, UNK, BOS):
             return False
-        return key in self.base or self._uni.get(key, 0.0) * self._scale >= self.min_uses - 1e-9
+        return self._uni.get(key, 0.0) * self._scale >= self.min_uses - 1e-9 or self._in_base(key)
 
     def rank_keys(self, previous_word: str | None, prefix: str, k: int) -> list[tuple[str, float]]:
         """Top k (key, P) under the mixture among suggestible words starting with ``prefix``.
 
-        Exact: a word the user never used scores (1 − μ)·P_base, so among those only the
-        first k of the base ranking (blocked ones skipped) can qualify; every user word
-        matching the prefix is scored in full.
+        :meth:`rank_after` with the one-token context ``(previous_word,)``.
         """
-        k = _check_k(k)
+        return self.rank_after((previous_word,), prefix, k)
+
+    def rank_after(self, history: Sequence[str | None], prefix: str, k: int) -> list[tuple[str, float]]:
+        """Top k (key, P) under the mixture after ``history`` among suggestible words starting with ``prefix``.
+
+        Exact: equal to scoring every suggestible word that starts with ``prefix`` with
+        :meth:`prob_after` and sorting by (probability descending, the base model's
+        probability descending, key) — see :meth:`_rank` for why it need not.
+        """
+        k = check_k(k)
+        hist = _history(history)
+        _valid_text(prefix, "prefix")
         with self._lock:
             self.refresh()
-            return self._rank_keys(self._hkey(previous_word), prefix, k)
+            return self._rank(hist, fold(prefix), k)
+
+    def _blocked_with_prefix(self, p: str) -> int:
+        """How many blocked words start with ``p`` (an estimate is enough: it sizes a request)."""
+        if not self.blocklist:
+            return 0
+        keys = self._blocked_sorted
+        if keys is None:
+            keys = self._blocked_sorted = sorted(self.blocklist)
+        if not p:
+            return len(keys)
+        lo = bisect.bisect_left(keys, p)
+        return bisect.bisect_left(keys, p + "\U0010ffff", lo) - lo
+
+    def _base_top(self, hist: tuple[str | None, ...], p: str, k: int) -> tuple[list[tuple[str, float]], bool]:
+        """The base model's exact top list holding k words not blocked, and whether it is the whole range.
+
+        Cached: the base never changes, and keyboards repeat contexts and prefixes.
+        """
+        blocked = self.blocklist
+        nb = self._blocked_with_prefix(p)
+        want = k + min(nb, 64)
+        ctx = hist[-(self.base.order - 1):]
+        while True:
+            key = (ctx, p, want)
+            top = self._base_cache.get(key)
+            if top is None:
+                top = self.base.rank_after(ctx, p, want)
+                if len(self._base_cache) >= 20_000:
+                    self._base_cache.clear()
+                self._base_cache[key] = top
+            if len(top) < want:
+                return top, True  # every word of the prefix range is in it
+            if nb == 0 or sum(1 for w, _ in top if w not in blocked) >= k:
+                return top, False
+            want *= 2
+
+    def _rank(self, hist: tuple[str | None, ...], p: str, k: int) -> list[tuple[str, float]]:
+        """The mixture's exact top k from two candidate sources, without scoring every word.
+
+        score(w) = (1 − μ)·B(w) + μ·U(w), B the base's P(w | its context), U the user's
+        P(w | v) (v the last token); ties go to the larger B, then the smaller key.
+
+        1. *The base's own exact top list* T: its top k (plus the blocked words of the
+           prefix) with B. Every word of T is scored in full. A word x outside T that the
+           user never used has U(x) = 0 and comes after the last of T in the base's order
+           (B smaller, or B equal and key larger); then every word y of T beats it in the
+           mixture's order: (1 − μ)·B(y) + μ·U(y) ≥ (1 − μ)·B(x) (floating-point addition
+           and multiplication by a constant ≥ 0 are monotone), and on equality B(y) ≥ B(x),
+           and on equality again key(y) < key(x). T holds k words that are not blocked (or
+           the whole prefix range), so no such x can enter the top k.
+        2. *The user's words* outside T: B(w) ≤ B_T, the last probability of T (0 when T is
+           the whole range), so score(w) ≤ (1 − μ)·B_T + μ·U(w). The user's successors of v
+           (by pair count) and the user's words (by count) are walked together, threshold
+           style: a word met in neither list has U at most the formula applied to both
+           lists' next counts, so once the k-th best lower bound (exact scores of T, μ·U(w)
+           of met words) beats that, no unmet word can enter. Met words are then given
+           their exact B (one batched base lookup) in order of their upper bound, until
+           the k-th exact score beats the next upper bound.
+        All comparisons are strict on the same floating-point expressions the scores use,
+        so the result equals scoring every word (tests/test_personal_models.py).
+        """
+        mu = self.weight
+        oml = 1.0 - mu
+        v = self._hkey(hist[-1])
+        blocked = self.blocklist
+        top, complete = self._base_top(hist, p, k)
+        bt = 0.0 if complete or not top else top[-1][1]
+        scored: dict[str, tuple[float, float]] = {}  # key -> (mixture, base) for exactly scored words
+        for w, b in top:
+            if w not in blocked:
+                scored[w] = (oml * b + mu * self._p_user(v, w), b)
+        total = self._total
+        if mu > 0.0 and total > 0.0:
+            pending = self._user_candidates(v, p, k, bt, mu, scored)
+            if pending:
+                self._resolve(pending, hist, k, mu, scored)
+        best = heapq.nsmallest(k, ((-s, -b, w) for w, (s, b) in scored.items()))
+        return [(w, -s) for s, _, w in best]
+
+    def _user_candidates(
+        self, v: str, p: str, k: int, bt: float, mu: float, scored: dict[str, tuple[float, float]]
+    ) -> list[tuple[float, str, float]]:
+        """The user's words that may beat the k-th best: (upper bound, key, U), by the threshold walk."""
+        total = self._total
+        cv = self._hist.get(v, 0.0)
+        lam = self.lam
+        succ = self._successors_by_count(v, p) if cv > 0 else []
+        words = self._user_words_by_count(p)
+        cb = (1.0 - mu) * bt
+        blocked = self.blocklist
+        # the k best lower bounds so far (a min-heap): exact scores, and μ·U of met words
+        lows = heapq.nlargest(k, (s for s, _ in scored.values()))
+        lows.reverse()
+        heapq.heapify(lows)
+        kth = lows[0] if len(lows) >= k else -1.0
+        met: set[str] = set()
+        pending: list[tuple[float, str, float]] = []
+        si = ui = 0
+        min_stored = (self.min_uses - 1e-9) / self._scale
+        while ui < len(words):  # the word list holds every user word with the prefix
+            ns = succ[si] if si < len(succ) else None
+            nu = words[ui]
+            s_next = -ns[0] if ns is not None else 0.0
+            u_next = -nu[0]
+            if cv > 0:
+                share_s = lam * (s_next / cv)
+                share_u = (1.0 - lam) * (u_next / total)
+                bound = cb + mu * (lam * (s_next / cv) + (1.0 - lam) * (u_next / total))
+            else:
+                share_s, share_u = -1.0, 0.0
+                bound = cb + mu * (u_next / total)
+            if kth > bound:
+                break
+            if ns is not None and share_s >= share_u:
+                w = ns[1]
+                si += 1
+            else:
+                w = nu[1]
+                ui += 1
+            if w in met:
+                continue
+            met.add(w)
+            if w in scored or w in blocked or not w.startswith(p):
+                continue
+            if self._uni.get(w, 0.0) < min_stored and not self._in_base(w):
+                continue  # a new word not used min_uses times yet: not offered
+            u = self._p_user(v, w)
+            pending.append((cb + mu * u, w, u))
+            low = mu * u
+            if len(lows) < k:
+                heapq.heappush(lows, low)
+            elif low > lows[0]:
+                heapq.heapreplace(lows, low)
+            if len(lows) >= k:
+                kth = lows[0]
+        return pending
+
+    def _resolve(
+        self,
+        pending: list[tuple[float, str, float]],
+        hist: tuple[str | None, ...],
+        k: int,
+        mu: float,
+        scored: dict[str, tuple[float, float]],
+    ) -> None:
+        """Give pending user words their exact score, best upper bound first, while one may still enter."""
+        pending.sort(key=lambda t: (-t[0], t[1]))
+        exact = heapq.nlargest(k, (s for s, _ in scored.values()))
+        exact.reverse()
+        heapq.heapify(exact)
+        i = 0
+        while i < len(pending):
+            if len(exact) >= k and pending[i][0] < exact[0]:
+                break  # every later word scores at most its bound, below the k-th exact score
+            chunk = pending[i : i + 8]
+            i += len(chunk)
+            known = [w for _, w, _ in chunk if self._in_base(w)]
+            probs = dict(zip(known, self.base.probs_after(known, hist))) if known else {}
+            for _, w, u in chunk:
+                b = probs.get(w, 0.0)
+                s = (1.0 - mu) * b + mu * u
+                scored[w] = (s, b)
+                if len(exact) < k:
+                    heapq.heappush(exact, s)
+                elif s > exact[0]:
+                    heapq.heapreplace(exact, s)
 
     def _user_words_by_count(self, p: str) -> list[tuple[float, str]]:
         """The user's words by (−stored count, key): those starting with ``p`` when few, else all."""
@@ -709,17 +917,6 @@ class PersonalLayer:
             return self._by_initial.get(p[:1], [])
         return self._by_count
 
-    def _base_ranking(self, prev: str | None, p: str, want: int) -> list[tuple[str, float]]:
-        """The base model's top ``want`` (cached: the base never changes, its rankings repeat)."""
-        key = (prev, p, want)
-        hit = self._base_cache.get(key)
-        if hit is None:
-            hit = self.base.rank_ids(prev, p, want)
-            if len(self._base_cache) >= 20_000:
-                self._base_cache.clear()
-            self._base_cache[key] = hit
-        return hit
-
     def _successors_by_count(self, v: str, p: str) -> list[tuple[float, str]]:
         """v's successors by count: those with the prefix's first character, or all."""
         key = (v, p[:1])
@@ -731,91 +928,21 @@ class PersonalLayer:
             self._row_sorted[key] = cached
         return cached
 
-    def _rank_keys(self, v: str, prefix: str, k: int) -> list[tuple[str, float]]:
-        """Threshold algorithm over three lists, each sorted by one part of the score.
-
-        score(w) = (1 − μ)·P_base(w | v) + μ·(λ_u·c(v,w)/c(v) + (1 − λ_u)·c(w)/N_user) (the user
-        part is c(w)/N_user when v is new to the user). The base ranking, the user's
-        successors of v by count and the user's words by count are walked in parallel;
-        a word not yet met in any list scores at most the same formula applied to the
-        next value of each list, so once the k-th best candidate beats that bound no
-        other word can enter the top k.
-        """
-        p = fold(prefix)
-        mu = self.weight
-        bprev = None if v == BOS else (v if v == UNK or v in self.base else UNK)
-        blocked = self.blocklist
-        cands: dict[str, float] = {}
-        seen: set[str] = set()
-        total = self._total
-        cv_user = self._hist.get(v, 0.0) if mu > 0 else 0.0
-        succ = self._successors_by_count(v, p) if cv_user > 0 else []
-        words = self._user_words_by_count(p) if mu > 0 else []
-        lam_u = self.lam if cv_user > 0 else 0.0
-
-        kth = [-1.0]
-
-        def consider(w: str, pb: float | None = None) -> None:
-            if w in seen:
-                return
-            seen.add(w)
-            if w.startswith(p) and w not in blocked and self._suggestible(w):
-                base_p = self._p_base(v, w) if pb is None else pb
-                cands[w] = (1.0 - mu) * base_p + mu * self._p_user(v, w)
-                if len(cands) >= k:
-                    kth[0] = heapq.nlargest(k, cands.values())[-1]
-
-        base_list: list[tuple[str, float]] = []
-        want, bi, si, ui, base_done = k, 0, 0, 0, False
-        while True:
-            if bi >= len(base_list) and not base_done:
-                base_list = self._base_ranking(bprev, p, want)
-                base_done = len(base_list) < want
-                want *= 2
-            nb = base_list[bi] if bi < len(base_list) else None
-            ns = succ[si] if si < len(succ) else None
-            nu = words[ui] if ui < len(words) else None
-            if nb is None and ns is None and nu is None:
-                break
-            # each list's share of the bound on any word not met yet
-            cb = (1.0 - mu) * nb[1] if nb else -1.0
-            cs = mu * lam_u * (-ns[0] / cv_user) if ns else -1.0
-            cu = mu * (1.0 - lam_u) * (-nu[0] / total) if nu else -1.0
-            if kth[0] > max(cb, 0.0) + max(cs, 0.0) + max(cu, 0.0):
-                break
-            # advance the list that contributes most to the bound (adaptive sorted access)
-            if cb >= cs and cb >= cu and nb is not None:
-                consider(nb[0], nb[1])
-                bi += 1
-            elif cs >= cu and ns is not None:
-                consider(ns[1])
-                si += 1
-            elif nu is not None:
-                consider(nu[1])
-                ui += 1
-            else:  # only zero-share lists are left
-                if nb is not None:
-                    consider(nb[0], nb[1])
-                    bi += 1
-                if ns is not None:
-                    consider(ns[1])
-                    si += 1
-        best = heapq.nsmallest(k, ((-s, w) for w, s in cands.items()))
-        return [(w, -s) for s, w in best]
-
     def suggest(self, typed: str, k: int = 3) -> list[Suggestion]:
-        """Like :meth:`nextword.Model.suggest`, over the mixture of base and personal counts."""
+        """Like :meth:`nextword.Model.suggest`, over the mixture of base and personal counts.
+
+        The context is the one the base model reads (the last two words of the sentence
+        for a trigram base); the personal counts use its last word.
+        """
+        if not isinstance(typed, str):
+            raise InvalidArgumentError(f"typed must be str, got {type(typed).__name__}")
         ctx = parse_typed(typed)
-        prev = None if ctx.previous == BOS else ctx.previous
         at_start = ctx.previous == BOS
         out = []
         with self._lock:
-            for key, p in self.rank_keys(prev, ctx.prefix, k):
-                if key in self.base:
-                    shown = self.base.display(self.base._word_id(key))  # type: ignore[arg-type]
-                else:
-                    shown = self._spelling.get(key, key)
-                out.append(Suggestion(_recase(shown, ctx.prefix, at_start), p))
+            for key, p in self.rank_after(ctx.history, ctx.prefix, k):
+                shown = self.base.spelling(key) or self._spelling.get(key, key)
+                out.append(Suggestion(recase(shown, ctx.prefix, at_start), p))
         return out
 
     # -- files ------------------------------------------------------------------------------------
@@ -1063,6 +1190,7 @@ class PersonalLayer:
         self._reset()
         self._snapshot_id = snap["snapshot_id"]
         self.blocklist = set(snap["blocklist"])
+        self._blocked_sorted = None
         self.messages = snap["messages"]
         self._last_time = snap["last_time"]
         self._uni = snap["unigram"]
