@@ -820,6 +820,8 @@ class Model:
             ids.append(self._predicted_id(w))
         if self._general:
             lams = self._ng_lams(lam)
+            if len(ids) >= 8 and max(ids) < self.n_words:  # the scorer's vector path: the same operations
+                return self._ng.scores(np.asarray(ids, dtype=np.int64), ctx, lams).tolist()  # type: ignore[no-any-return]
             return [self._ng.prob(w, ctx, lams) for w in ids]
         v = ctx[-1]
         lam_v = self._lam_of(v, lam)

@@ -268,7 +268,9 @@ class PersonalLayer:
         self._blocked_sorted: list[str] | None = None  # the blocklist sorted, for prefix counts (None: stale)
         # pure functions of the immutable base, cached: its top lists and its word set
         self._base_cache: dict[tuple[tuple[str | None, ...], str, int], list[tuple[str, float]]] = {}
-        self._base_words: dict[str, bool] = {}
+        self._base_words: dict[str, str | None] = {}
+        depth = base.header().get("skyband_k", 8)
+        self._cheap_depth: int = depth if isinstance(depth, int) and 1 <= depth <= 64 else 8
         self._path: str | None = None
         self._lock_fd: int | None = None
         self._snap_fd: int | None = None  # held so the snapshot's inode stays unique while we use it
@@ -393,6 +395,7 @@ class PersonalLayer:
         self._sorted_keys: list[str] = []
         self._by_count: list[tuple[float, str]] = []
         self._by_initial: dict[str, list[tuple[float, str]]] = {}
+        self._prefix_words: dict[str, list[tuple[float, str]]] = {}  # cached by prefix until a count changes
         self._row_sorted: dict[tuple[str, str], list[tuple[float, str]]] = {}
 
     def _decay_step(self, when: float | None) -> None:
@@ -417,6 +420,7 @@ class PersonalLayer:
         self._sorted_keys = sorted(words)
         self._by_count = sorted((-self._uni[w], w) for w in words)
         self._by_initial = {}
+        self._prefix_words = {}
         for c, w in self._by_count:
             self._by_initial.setdefault(w[:1], []).append((c, w))
         self._row_sorted = {}
@@ -425,6 +429,8 @@ class PersonalLayer:
         old = self._uni.get(key)
         new = (old or 0.0) + inc
         self._uni[key] = new
+        if self._prefix_words:
+            self._prefix_words = {}
         if key in (EOS, UNK):
             return
         initial = self._by_initial.setdefault(key[:1], [])
@@ -568,6 +574,7 @@ class PersonalLayer:
             del self._sorted_keys[bisect.bisect_left(self._sorted_keys, key)]
             initial = self._by_initial[key[:1]]
             del initial[bisect.bisect_left(initial, (-old, key))]
+        self._prefix_words = {}
         self._row_sorted = {}
         removed_entries = 0 if old is None else 1
         self._total -= self._uni.pop(key, 0.0)
@@ -650,15 +657,20 @@ class PersonalLayer:
             return u
         return self.lam * (self._big[v].get(w, 0.0) / cv) + (1.0 - self.lam) * u
 
+    def _base_spelling(self, key: str) -> str | None:
+        """The base's display spelling of word ``key``, None if it lacks the word (cached: the base never changes)."""
+        try:
+            return self._base_words[key]
+        except KeyError:
+            pass
+        shown = self.base.spelling(key)
+        if len(self._base_words) >= 200_000:
+            self._base_words.clear()
+        self._base_words[key] = shown
+        return shown
+
     def _in_base(self, key: str) -> bool:
-        """Whether the base model has the word ``key`` (cached: the base never changes)."""
-        hit = self._base_words.get(key)
-        if hit is None:
-            hit = key in self.base
-            if len(self._base_words) >= 200_000:
-                self._base_words.clear()
-            self._base_words[key] = hit
-        return hit
+        return self._base_spelling(key) is not None
 
     def _p_base(self, history: tuple[str | None, ...], w: str) -> float:
         if w not in (EOS, UNK) and not self._in_base(w):
@@ -752,14 +764,13 @@ class PersonalLayer:
         lo = bisect.bisect_left(keys, p)
         return bisect.bisect_left(keys, p + "\U0010ffff", lo) - lo
 
-    def _base_top(self, hist: tuple[str | None, ...], p: str, k: int) -> tuple[list[tuple[str, float]], bool]:
-        """The base model's exact top list holding k words not blocked, and whether it is the whole range.
+    def _base_top(self, hist: tuple[str | None, ...], p: str, want: int, k: int) -> tuple[list[tuple[str, float]], bool]:
+        """The base model's exact top ``want`` (or deeper, until it holds k words not blocked) and whether it is the whole range.
 
         Cached: the base never changes, and keyboards repeat contexts and prefixes.
         """
         blocked = self.blocklist
-        nb = self._blocked_with_prefix(p)
-        want = k + min(nb, 64)
+        nb = self._blocked_with_prefix(p) if blocked else 0
         ctx = hist[-(self.base.order - 1):]
         while True:
             key = (ctx, p, want)
@@ -804,18 +815,23 @@ class PersonalLayer:
         oml = 1.0 - mu
         v = self._hkey(hist[-1])
         blocked = self.blocklist
-        top, complete = self._base_top(hist, p, k)
+        # as deep as the base's stored skybands reach (as cheap as its top k, and never less
+        # than k plus the blocked words of the prefix): the lower the last probability of
+        # the list, the fewer of the user's words need scoring
+        want = max(k + min(self._blocked_with_prefix(p), 64) if blocked else k, self._cheap_depth)
+        top, complete = self._base_top(hist, p, want, k)
         bt = 0.0 if complete or not top else top[-1][1]
         scored: dict[str, tuple[float, float]] = {}  # key -> (mixture, base) for exactly scored words
+        uni = self._uni
         for w, b in top:
             if w not in blocked:
-                scored[w] = (oml * b + mu * self._p_user(v, w), b)
-        total = self._total
-        if mu > 0.0 and total > 0.0:
+                # a word the user never used has U = 0.0 exactly (what _p_user returns for it)
+                scored[w] = (oml * b + mu * (self._p_user(v, w) if w in uni else 0.0), b)
+        if mu > 0.0 and self._total > 0.0:
             pending = self._user_candidates(v, p, k, bt, mu, scored)
             if pending:
                 self._resolve(pending, hist, k, mu, scored)
-        best = heapq.nsmallest(k, ((-s, -b, w) for w, (s, b) in scored.items()))
+        best = sorted((-s, -b, w) for w, (s, b) in scored.items())[:k]
         return [(w, -s) for s, _, w in best]
 
     def _user_candidates(
@@ -830,9 +846,7 @@ class PersonalLayer:
         cb = (1.0 - mu) * bt
         blocked = self.blocklist
         # the k best lower bounds so far (a min-heap): exact scores, and μ·U of met words
-        lows = heapq.nlargest(k, (s for s, _ in scored.values()))
-        lows.reverse()
-        heapq.heapify(lows)
+        lows = sorted(s for s, _ in scored.values())[-k:]  # ascending: a min-heap
         kth = lows[0] if len(lows) >= k else -1.0
         met: set[str] = set()
         pending: list[tuple[float, str, float]] = []
@@ -886,14 +900,12 @@ class PersonalLayer:
     ) -> None:
         """Give pending user words their exact score, best upper bound first, while one may still enter."""
         pending.sort(key=lambda t: (-t[0], t[1]))
-        exact = heapq.nlargest(k, (s for s, _ in scored.values()))
-        exact.reverse()
-        heapq.heapify(exact)
+        exact = sorted(s for s, _ in scored.values())[-k:]  # ascending: a min-heap
         i = 0
         while i < len(pending):
             if len(exact) >= k and pending[i][0] < exact[0]:
                 break  # every later word scores at most its bound, below the k-th exact score
-            chunk = pending[i : i + 8]
+            chunk = pending[i : i + 4]
             i += len(chunk)
             known = [w for _, w, _ in chunk if self._in_base(w)]
             probs = dict(zip(known, self.base.probs_after(known, hist))) if known else {}
@@ -908,14 +920,20 @@ class PersonalLayer:
 
     def _user_words_by_count(self, p: str) -> list[tuple[float, str]]:
         """The user's words by (−stored count, key): those starting with ``p`` when few, else all."""
-        if p:
+        if not p:
+            return self._by_count
+        if len(p) == 1:
+            return self._by_initial.get(p, [])
+        hit = self._prefix_words.get(p)
+        if hit is None:
             keys = self._sorted_keys
             lo = bisect.bisect_left(keys, p)
             hi = bisect.bisect_left(keys, p + "\U0010ffff", lo)
-            if hi - lo <= 64:
-                return sorted((-self._uni[w], w) for w in keys[lo:hi])
-            return self._by_initial.get(p[:1], [])
-        return self._by_count
+            hit = sorted((-self._uni[w], w) for w in keys[lo:hi]) if hi - lo <= 256 else self._by_initial.get(p[:1], [])
+            if len(self._prefix_words) >= 4096:
+                self._prefix_words.clear()
+            self._prefix_words[p] = hit
+        return hit
 
     def _successors_by_count(self, v: str, p: str) -> list[tuple[float, str]]:
         """v's successors by count: those with the prefix's first character, or all."""
@@ -936,12 +954,14 @@ class PersonalLayer:
         """
         if not isinstance(typed, str):
             raise InvalidArgumentError(f"typed must be str, got {type(typed).__name__}")
-        ctx = parse_typed(typed)
+        k = check_k(k)
+        ctx = parse_typed(typed)  # its tokens are valid text already
         at_start = ctx.previous == BOS
         out = []
         with self._lock:
-            for key, p in self.rank_after(ctx.history, ctx.prefix, k):
-                shown = self.base.spelling(key) or self._spelling.get(key, key)
+            self.refresh()
+            for key, p in self._rank(ctx.history, fold(ctx.prefix), k):
+                shown = self._base_spelling(key) or self._spelling.get(key, key)
                 out.append(Suggestion(recase(shown, ctx.prefix, at_start), p))
         return out
 
