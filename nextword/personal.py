@@ -269,6 +269,7 @@ class PersonalLayer:
         # pure functions of the immutable base, cached: its top lists and its word set
         self._base_cache: dict[tuple[tuple[str | None, ...], str, int], list[tuple[str, float]]] = {}
         self._base_words: dict[str, str | None] = {}
+        self._base_probs: dict[tuple[tuple[str | None, ...], str], float] = {}  # the base's P(w | context)
         depth = base.header().get("skyband_k", 8)
         self._cheap_depth: int = depth if isinstance(depth, int) and 1 <= depth <= 64 else 8
         self._path: str | None = None
@@ -907,10 +908,16 @@ class PersonalLayer:
                 break  # every later word scores at most its bound, below the k-th exact score
             chunk = pending[i : i + 4]
             i += len(chunk)
-            known = [w for _, w, _ in chunk if self._in_base(w)]
-            probs = dict(zip(known, self.base.probs_after(known, hist))) if known else {}
+            ctx = hist[-(self.base.order - 1):]
+            cache = self._base_probs
+            missing = [w for _, w, _ in chunk if (ctx, w) not in cache and self._in_base(w)]
+            if missing:
+                if len(cache) >= 100_000:
+                    cache.clear()
+                for w, b in zip(missing, self.base.probs_after(missing, ctx)):
+                    cache[ctx, w] = b
             for _, w, u in chunk:
-                b = probs.get(w, 0.0)
+                b = cache.get((ctx, w), 0.0)  # 0.0: a word the base lacks
                 s = (1.0 - mu) * b + mu * u
                 scored[w] = (s, b)
                 if len(exact) < k:
