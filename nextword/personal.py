@@ -1,16 +1,33 @@
 """A personal layer over an immutable base model: learns a user's words and word pairs.
 
-The combined distribution after history v is a mixture
+The combined distribution after a context (…, u, v) — u, v the last two tokens of the
+sentence so far — is a mixture
 
-    P(w | v) = (1 − μ) · P_base(w | v) + μ · P_user(w | v)
+    P(w | u v) = (1 − μ) · P_base(w | context) + μ · P_user(w | v)
 
-where P_user is the same interpolated bigram estimate as the base model's, computed from
-the user's own (decayed) counts, and μ = max_weight · N_user / (N_user + strength) grows
-with the amount of personal data N_user (predicted tokens learned, after decay): 0 with
-no data, half of ``max_weight`` after ``strength`` tokens. Both parts are distributions
-over the same outcomes — the base vocabulary, the user's words, ``</s>`` and ``<unk>``
-(a user's word the base lacks gets 0 from the base part, whose ``<unk>`` mass stays on
-``<unk>``) — so the mixture sums to 1 after every history.
+    P_user(w | v) = λ · c(v, w) / c(v) + (1 − λ) · c(w) / N_user     (c(v) > 0)
+    P_user(w | v) = c(w) / N_user                                     (v new to the user)
+
+P_base is the base model's own probability with the context *it* reads: the last word
+for a bigram base, the last two words for a trigram base (Jelinek-Mercer or Kneser-Ney
+alike; :meth:`nextword.Model.prob_after`). P_user is a Jelinek-Mercer bigram of the
+user's own (decayed) counts, λ = ``lam``. The personal counts keep the one-word context
+on purpose: a user's log is thousands of words, not millions, so word *triples* would
+almost all be seen once and add little over the pairs (the base already brings the
+two-word context); and storing triples would keep much more of each message's word order
+in the layer file, which by design holds only counts of pairs. μ = max_weight · N_user /
+(N_user + strength) grows with the amount of personal data N_user (predicted tokens
+learned, after decay): 0 with no data, half of ``max_weight`` after ``strength`` tokens.
+Both parts are distributions over the same outcomes — the base vocabulary, the user's
+words, ``</s>`` and ``<unk>`` (a user's word the base lacks gets 0 from the base part,
+whose ``<unk>`` mass stays on ``<unk>``) — so the mixture sums to 1 after every context.
+
+Ranking is exact: :meth:`PersonalLayer.suggest` returns the first k of every suggestible
+word matching the typed prefix ordered by (mixture probability descending, base
+probability descending, key) — equal mixture floats go to the word the base prefers, so
+with no personal data the layer returns the base's own ranking. It never scores every
+word: the candidates are the base's own exact top list and the user's words, and a bound
+rules out the rest (:meth:`PersonalLayer._rank`).
 
 A word the base model lacks becomes *suggestible* once the user has used it
 ``min_uses`` times (it has probability before that, it is just not offered); blocked
@@ -903,10 +920,19 @@ class PersonalLayer:
         pending.sort(key=lambda t: (-t[0], t[1]))
         exact = sorted(s for s, _ in scored.values())[-k:]  # ascending: a min-heap
         i = 0
+        step = 4  # a few first, one by one; then every word still above the k-th score at once (the base's vector path)
         while i < len(pending):
             if len(exact) >= k and pending[i][0] < exact[0]:
                 break  # every later word scores at most its bound, below the k-th exact score
-            chunk = pending[i : i + 4]
+            if step:
+                chunk = pending[i : i + step]
+                step = 0
+            else:
+                floor = exact[0] if len(exact) >= k else -1.0
+                j = i
+                while j < len(pending) and pending[j][0] >= floor:
+                    j += 1
+                chunk = pending[i:j]
             i += len(chunk)
             ctx = hist[-(self.base.order - 1):]
             cache = self._base_probs

@@ -250,3 +250,100 @@ def test_personal_command_over_a_kneser_ney_trigram_base(bases: dict[tuple[str, 
     layer = PersonalLayer.load(base, tmp_path / "me.nwp")
     assert [(s["word"], s["prob"]) for s in got] == [(s.word, s.prob) for s in layer.suggest("Zanele booked the zo", 2)]
     assert got[0]["word"] == "zorbing"
+
+
+def test_live_mode_over_a_kneser_ney_trigram_base(bases: dict[tuple[str, int], nextword.Model]) -> None:
+    """``nextword live`` on a pseudo-terminal over a KN trigram file: the screen check of test_live
+    (choice row = ``Model.suggest`` of the text left of the cursor, message, cursor, nothing else)."""
+    import sys
+
+    if not sys.platform.startswith("linux"):
+        pytest.skip("pseudo-terminal session: Linux only here")
+    pytest.importorskip("pyte")
+    from test_live import LiveSession, screen_check
+
+    base = bases["kn", 3]
+    live = LiveSession(Path(base.path), 80, 24, k=5)
+    try:
+        live.wait_for(screen_check(live, base, "", 0))
+        text = ""
+        for chunk in ["The object", " is a l", "ist of "]:
+            live.send(chunk.encode())
+            text += chunk
+            live.wait_for(screen_check(live, base, text, len(text)))
+        assert [s.word for s in base.suggest(text, 5)]  # the check compared real suggestions
+        live.send(b"\x04")
+        assert live.proc.wait(timeout=20) == 0
+    finally:
+        if live.proc.poll() is None:
+            live.proc.kill()
+        live.close()
+
+
+def test_typing_box_over_a_kneser_ney_trigram_base(bases: dict[tuple[str, int], nextword.Model], tmp_path: Path) -> None:
+    """The desktop example with a layer over a KN trigram base: the choice row is the layer's answer,
+    Enter teaches the layer on disk (Xvfb, as test_gui)."""
+    import shutil
+    import subprocess
+    import textwrap
+
+    if shutil.which("Xvfb") is None:
+        pytest.skip("Xvfb is not installed (Debian package xvfb)")
+    pytest.importorskip("tkinter")
+    base = bases["kn", 3]
+    script = textwrap.dedent(
+        """
+        import json, sys, tkinter as tk
+        sys.path.insert(0, sys.argv[1])
+        import importlib.util
+        spec = importlib.util.spec_from_file_location("typing_box", sys.argv[1] + "/typing_box.py")
+        tb = importlib.util.module_from_spec(spec); spec.loader.exec_module(tb)
+        import nextword
+        from nextword.personal import PersonalLayer
+        model = nextword.load(sys.argv[2])
+        layer = PersonalLayer.open(model, sys.argv[3], create=True, strength=1.0)
+        root = tk.Tk()
+        app = tb.TypingBox(root, model, layer=layer, k=3)
+        out = {}
+        def typed(text):
+            app.text.focus_force()
+            app.text.insert("end", text)
+            app.text.event_generate("<KeyRelease>", keysym="a")
+            root.update()
+        root.update()
+        out["start"] = [app.choice_words(), [s.word for s in layer.suggest("", 3)]]
+        typed("Zanele booked the zorbing trip")
+        app.text.event_generate("<Return>"); root.update()
+        typed("Zanele booked the zo")
+        out["after"] = [app.choice_words(), [s.word for s in layer.suggest("Zanele booked the zo", 3)]]
+        out["messages"] = PersonalLayer.load(model, sys.argv[3]).messages
+        print(json.dumps(out))
+        root.destroy()
+        """
+    )
+    root = Path(__file__).resolve().parent.parent
+    r = subprocess.run(
+        ["xvfb-run", "-a", sys_executable(), "-c", script, str(root / "examples"), base.path, str(tmp_path / "me.nwp")],
+        capture_output=True, text=True, timeout=120, env=_env(root),
+    )
+    if r.returncode != 0 and "couldn't connect to display" in r.stderr:
+        pytest.skip(f"no virtual display: {r.stderr.strip()[-200:]}")
+    assert r.returncode == 0, r.stderr
+    import json
+
+    out = json.loads(r.stdout.strip().splitlines()[-1])
+    assert out["start"][0] == out["start"][1] and out["start"][0]
+    assert out["after"][0] == out["after"][1]
+    assert out["messages"] == 1
+
+
+def sys_executable() -> str:
+    import sys
+
+    return sys.executable
+
+
+def _env(root: Path) -> dict[str, str]:
+    import os
+
+    return dict(os.environ, PYTHONPATH=str(root))
