@@ -768,7 +768,7 @@ class PersonalLayer:
         _valid_text(prefix, "prefix")
         with self._lock:
             self.refresh()
-            return self._rank(hist, fold(prefix), k)
+            return self._rank(hist, prefix, k)
 
     def _blocked_with_prefix(self, p: str) -> int:
         """How many blocked words start with ``p`` (an estimate is enough: it sizes a request)."""
@@ -782,8 +782,13 @@ class PersonalLayer:
         lo = bisect.bisect_left(keys, p)
         return bisect.bisect_left(keys, p + "\U0010ffff", lo) - lo
 
-    def _base_top(self, hist: tuple[str | None, ...], p: str, want: int, k: int) -> tuple[list[tuple[str, float]], bool]:
+    def _base_top(
+        self, hist: tuple[str | None, ...], prefix: str, p: str, want: int, k: int
+    ) -> tuple[list[tuple[str, float]], bool]:
         """The base model's exact top ``want`` (or deeper, until it holds k words not blocked) and whether it is the whole range.
+
+        ``prefix`` as typed goes to the base (which folds it as its own ``suggest`` does);
+        ``p`` is its folded form.
 
         Cached: the base never changes, and keyboards repeat contexts and prefixes.
         """
@@ -794,7 +799,7 @@ class PersonalLayer:
             key = (ctx, p, want)
             top = self._base_cache.get(key)
             if top is None:
-                top = self.base.rank_after(ctx, p, want)
+                top = self.base.rank_after(ctx, prefix, want)
                 if len(self._base_cache) >= 20_000:
                     self._base_cache.clear()
                 self._base_cache[key] = top
@@ -804,7 +809,7 @@ class PersonalLayer:
                 return top, False
             want *= 2
 
-    def _rank(self, hist: tuple[str | None, ...], p: str, k: int) -> list[tuple[str, float]]:
+    def _rank(self, hist: tuple[str | None, ...], prefix: str, k: int) -> list[tuple[str, float]]:
         """The mixture's exact top k from two candidate sources, without scoring every word.
 
         score(w) = (1 − μ)·B(w) + μ·U(w), B the base's P(w | its context), U the user's
@@ -829,6 +834,7 @@ class PersonalLayer:
         All comparisons are strict on the same floating-point expressions the scores use,
         so the result equals scoring every word (tests/test_personal_models.py).
         """
+        p = fold(prefix)
         mu = self.weight
         oml = 1.0 - mu
         v = self._hkey(hist[-1])
@@ -837,7 +843,7 @@ class PersonalLayer:
         # than k plus the blocked words of the prefix): the lower the last probability of
         # the list, the fewer of the user's words need scoring
         want = max(k + min(self._blocked_with_prefix(p), 64) if blocked else k, self._cheap_depth)
-        top, complete = self._base_top(hist, p, want, k)
+        top, complete = self._base_top(hist, prefix, p, want, k)
         bt = 0.0 if complete or not top else top[-1][1]
         scored: dict[str, tuple[float, float]] = {}  # key -> (mixture, base) for exactly scored words
         uni = self._uni
@@ -869,7 +875,7 @@ class PersonalLayer:
         met: set[str] = set()
         pending: list[tuple[float, str, float]] = []
         si = ui = 0
-        min_stored = (self.min_uses - 1e-9) / self._scale
+        scale, min_uses = self._scale, self.min_uses - 1e-9  # the rule of _suggestible, same expression
         while ui < len(words):  # the word list holds every user word with the prefix
             ns = succ[si] if si < len(succ) else None
             nu = words[ui]
@@ -895,7 +901,7 @@ class PersonalLayer:
             met.add(w)
             if w in scored or w in blocked or not w.startswith(p):
                 continue
-            if self._uni.get(w, 0.0) < min_stored and not self._in_base(w):
+            if self._uni.get(w, 0.0) * scale < min_uses and not self._in_base(w):
                 continue  # a new word not used min_uses times yet: not offered
             u = self._p_user(v, w)
             pending.append((cb + mu * u, w, u))
@@ -993,7 +999,7 @@ class PersonalLayer:
         out = []
         with self._lock:
             self.refresh()
-            for key, p in self._rank(ctx.history, fold(ctx.prefix), k):
+            for key, p in self._rank(ctx.history, ctx.prefix, k):
                 shown = self._base_spelling(key) or self._spelling.get(key, key)
                 out.append(Suggestion(recase(shown, ctx.prefix, at_start), p))
         return out

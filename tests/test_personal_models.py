@@ -347,3 +347,24 @@ def _env(root: Path) -> dict[str, str]:
     import os
 
     return dict(os.environ, PYTHONPATH=str(root))
+
+
+@pytest.mark.parametrize("kind", KINDS, ids=[f"{s}{o}" for s, o in KINDS])
+def test_model_accessors_the_layer_uses(bases: dict[tuple[str, int], nextword.Model], kind: tuple[str, int]) -> None:
+    from nextword.errors import InvalidArgumentError
+
+    base = bases[kind]
+    words = [w for w, _ in base.words()][:40] + ["</s>", "<unk>", "qqqx", "The"]
+    for history in [(None,), ("the",), ("of", "the"), ("qqqx", "is"), (UNK,), ()]:
+        # one context read, many words: prob_after of each, to the last bit (also past the 8-word vector threshold)
+        assert base.probs_after(words, history) == [base.prob_after(w, history) for w in words]
+        assert base.probs_after(words[:3], history) == [base.prob_after(w, history) for w in words[:3]]
+    assert base.spelling("THE") == base.spelling("the") is not None and fold(base.spelling("the") or "") == "the"
+    assert base.spelling("qqqx") is None
+    for bad in (lambda: base.probs_after("the", ("a",)), lambda: base.probs_after([3], ("a",)), lambda: base.spelling(3)):  # type: ignore[arg-type]
+        with pytest.raises(InvalidArgumentError):
+            bad()
+    layer = PersonalLayer(base)
+    for bad in (lambda: layer.prob_after("the", "a"), lambda: layer.rank_after(("a",), 3, 3), lambda: layer.suggest(3), lambda: layer.suggest("a", 0)):  # type: ignore[arg-type]
+        with pytest.raises(InvalidArgumentError):
+            bad()
