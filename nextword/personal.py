@@ -148,6 +148,10 @@ _FILE_MODE = 0o600
 _MAX_COUNT = 1e300  # stored counts are renormalised long before this
 _MAX_TIMES = 1 << 31  # one record's repeat count of one pair
 _SPACE = re.compile(r"\s")
+# the ranking's walk over the user's words: steps allowed against the base's first list and
+# its deeper lists (the last list has no limit), and how deep those lists go
+_WALK_BUDGETS = (24, 96)
+_DEEPER = (64, 512)
 _SETTINGS_KEYS = ("min_uses", "strength", "max_weight", "lam", "half_life_messages", "half_life_days", "max_entries")
 _OPS = ("learn", "forget", "block", "unblock", "clear")
 
@@ -562,11 +566,10 @@ class PersonalLayer:
     def _apply_learn(self, rec: Record) -> None:
         self._decay_step(rec["when"])
         inc = 1.0 / self._scale
+        sorted_rows = self._row_sorted
         for h, w, n in rec["pairs"]:
             add = inc * n
             self._bump(w, add)
-            self._row_sorted.pop((h, ""), None)
-            self._row_sorted.pop((h, w[:1]), None)
             row = self._big.setdefault(h, {})
             old = row.get(w)
             if old is None:
@@ -574,6 +577,13 @@ class PersonalLayer:
                 row[w] = add
             else:
                 row[w] = old + add
+            if w not in (EOS, UNK):  # keep the cached sorted successor lists in step (no rebuild per message)
+                for key in ((h, ""), (h, w[:1])):
+                    lst = sorted_rows.get(key)
+                    if lst is not None:
+                        if old is not None:
+                            del lst[bisect.bisect_left(lst, (-old, w))]
+                        bisect.insort(lst, (-row[w], w))
             self._hist[h] = self._hist.get(h, 0.0) + add
             self._total += add
         for key, tok in rec["set"].items():
@@ -839,29 +849,39 @@ class PersonalLayer:
         oml = 1.0 - mu
         v = self._hkey(hist[-1])
         blocked = self.blocklist
-        # as deep as the base's stored skybands reach (as cheap as its top k, and never less
-        # than k plus the blocked words of the prefix): the lower the last probability of
-        # the list, the fewer of the user's words need scoring
-        want = max(k + min(self._blocked_with_prefix(p), 64) if blocked else k, self._cheap_depth)
-        top, complete = self._base_top(hist, prefix, p, want, k)
-        bt = 0.0 if complete or not top else top[-1][1]
-        scored: dict[str, tuple[float, float]] = {}  # key -> (mixture, base) for exactly scored words
+        # the base's list as deep as its stored skybands reach (as cheap as its top k, and
+        # never less than k plus the blocked words of the prefix); when the user's words are
+        # too many to rule out against its last probability (a context whose successors
+        # nearly tie, e.g. a rare word seen before a dozen words once each), a deeper list,
+        # whose last probability is much lower (a rare context has few successors: cheap)
+        first = max(k + min(self._blocked_with_prefix(p), 64) if blocked else k, self._cheap_depth)
         uni = self._uni
-        for w, b in top:
-            if w not in blocked:
-                # a word the user never used has U = 0.0 exactly (what _p_user returns for it)
-                scored[w] = (oml * b + mu * (self._p_user(v, w) if w in uni else 0.0), b)
-        if mu > 0.0 and self._total > 0.0:
-            pending = self._user_candidates(v, p, k, bt, mu, scored)
+        for want, budget in ((first, _WALK_BUDGETS[0]), (max(first, _DEEPER[0]), _WALK_BUDGETS[1]), (max(first, _DEEPER[1]), None)):
+            top, complete = self._base_top(hist, prefix, p, want, k)
+            bt = 0.0 if complete or not top else top[-1][1]
+            scored: dict[str, tuple[float, float]] = {}  # key -> (mixture, base) for exactly scored words
+            for w, b in top:
+                if w not in blocked:
+                    # a word the user never used has U = 0.0 exactly (what _p_user returns for it)
+                    scored[w] = (oml * b + mu * (self._p_user(v, w) if w in uni else 0.0), b)
+            if mu <= 0.0 or self._total <= 0.0:
+                break
+            pending = self._user_candidates(v, p, k, bt, mu, scored, budget=None if complete else budget)
+            if pending is None:
+                continue  # over budget: a deeper list
             if pending:
                 self._resolve(pending, hist, k, mu, scored)
+            break
         best = sorted((-s, -b, w) for w, (s, b) in scored.items())[:k]
         return [(w, -s) for s, _, w in best]
 
     def _user_candidates(
-        self, v: str, p: str, k: int, bt: float, mu: float, scored: dict[str, tuple[float, float]]
-    ) -> list[tuple[float, str, float]]:
-        """The user's words that may beat the k-th best: (upper bound, key, U), by the threshold walk."""
+        self, v: str, p: str, k: int, bt: float, mu: float, scored: dict[str, tuple[float, float]], *, budget: int | None
+    ) -> list[tuple[float, str, float]] | None:
+        """The user's words that may beat the k-th best: (upper bound, key, U), by the threshold walk.
+
+        None when the walk would take more than ``budget`` steps (the caller asks the base for a deeper list).
+        """
         total = self._total
         cv = self._hist.get(v, 0.0)
         lam = self.lam
@@ -890,6 +910,10 @@ class PersonalLayer:
                 bound = cb + mu * (u_next / total)
             if kth > bound:
                 break
+            if budget is not None:
+                budget -= 1
+                if budget < 0:
+                    return None
             if ns is not None and share_s >= share_u:
                 w = ns[1]
                 si += 1
