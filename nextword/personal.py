@@ -288,7 +288,7 @@ class PersonalLayer:
         self._closed = False
         self._blocked_sorted: list[str] | None = None  # the blocklist sorted, for prefix counts (None: stale)
         # pure functions of the immutable base, cached: its top lists and its word set
-        self._base_cache: dict[tuple[tuple[str | None, ...], str, int], list[tuple[str, float]]] = {}
+        self._base_cache: dict[tuple[tuple[str | None, ...], str, int], tuple[tuple[str, float], ...]] = {}
         self._base_words: dict[str, str | None] = {}
         self._base_probs: dict[tuple[tuple[str | None, ...], str], float] = {}  # the base's P(w | context)
         depth = base.header().get("skyband_k", 8)
@@ -794,7 +794,7 @@ class PersonalLayer:
 
     def _base_top(
         self, hist: tuple[str | None, ...], prefix: str, p: str, want: int, k: int
-    ) -> tuple[list[tuple[str, float]], bool]:
+    ) -> tuple[tuple[tuple[str, float], ...], bool]:
         """The base model's exact top ``want`` (or deeper, until it holds k words not blocked) and whether it is the whole range.
 
         ``prefix`` as typed goes to the base (which folds it as its own ``suggest`` does);
@@ -809,7 +809,9 @@ class PersonalLayer:
             key = (ctx, p, want)
             top = self._base_cache.get(key)
             if top is None:
-                top = self.base.rank_after(ctx, prefix, want)
+                # a tuple of (str, float) tuples: the garbage collector stops tracking it, so a
+                # full cache adds nothing to its pauses
+                top = tuple(self.base.rank_after(ctx, prefix, want))
                 if len(self._base_cache) >= 20_000:
                     self._base_cache.clear()
                 self._base_cache[key] = top
