@@ -152,6 +152,7 @@ _SPACE = re.compile(r"\s")
 # its deeper lists (the last list has no limit), and how deep those lists go
 _WALK_BUDGETS = (24, 96)
 _DEEPER = (64, 512)
+_DEEPER_MAX_HISTORY = 4096  # c(v) of the base's last context word up to which deeper lists are asked for
 _SETTINGS_KEYS = ("min_uses", "strength", "max_weight", "lam", "half_life_messages", "half_life_days", "max_entries")
 _OPS = ("learn", "forget", "block", "unblock", "clear")
 
@@ -858,7 +859,12 @@ class PersonalLayer:
         # whose last probability is much lower (a rare context has few successors: cheap)
         first = max(k + min(self._blocked_with_prefix(p), 64) if blocked else k, self._cheap_depth)
         uni = self._uni
-        for want, budget in ((first, _WALK_BUDGETS[0]), (max(first, _DEEPER[0]), _WALK_BUDGETS[1]), (max(first, _DEEPER[1]), None)):
+        plan: tuple[tuple[int, int | None], ...] = ((first, None),)
+        if mu > 0.0 and self.base.history_count(hist[-1]) <= _DEEPER_MAX_HISTORY:
+            # deeper lists only after a context with few successors (cheap to rank deeper);
+            # after a common word the walk simply goes on against the first list
+            plan = ((first, _WALK_BUDGETS[0]), (max(first, _DEEPER[0]), _WALK_BUDGETS[1]), (max(first, _DEEPER[1]), None))
+        for want, budget in plan:
             top, complete = self._base_top(hist, prefix, p, want, k)
             bt = 0.0 if complete or not top else top[-1][1]
             scored: dict[str, tuple[float, float]] = {}  # key -> (mixture, base) for exactly scored words
