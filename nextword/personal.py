@@ -829,7 +829,8 @@ class PersonalLayer:
         P(w | v) (v the last token); ties go to the larger B, then the smaller key.
 
         1. *The base's own exact top list* T: its top k (plus the blocked words of the
-           prefix) with B. Every word of T is scored in full. A word x outside T that the
+           prefix; in fact as deep as its skybands reach, and deeper when step 2 walks
+           long after a context with few successors) with B. Every word of T is scored in full. A word x outside T that the
            user never used has U(x) = 0 and comes after the last of T in the base's order
            (B smaller, or B equal and key larger); then every word y of T beats it in the
            mixture's order: (1 − μ)·B(y) + μ·U(y) ≥ (1 − μ)·B(x) (floating-point addition
