@@ -17,8 +17,13 @@ Kneser-Ney trigram base, and ``nextword personal`` works over one.
 
 from __future__ import annotations
 
+import json
 import math
+import os
+import subprocess
+import sys
 from pathlib import Path
+from typing import Callable
 
 import pytest
 from hypothesis import HealthCheck, given, settings
@@ -185,7 +190,6 @@ def test_with_no_personal_data_the_layer_is_the_base(bases: dict[tuple[str, int]
 
 
 def test_service_answers_with_the_layer_over_a_kneser_ney_trigram_base(bases: dict[tuple[str, int], nextword.Model], tmp_path: Path) -> None:
-    import json
     import shutil
     import socket
     import tempfile
@@ -230,11 +234,6 @@ def test_service_answers_with_the_layer_over_a_kneser_ney_trigram_base(bases: di
 
 
 def test_personal_command_over_a_kneser_ney_trigram_base(bases: dict[tuple[str, int], nextword.Model], tmp_path: Path) -> None:
-    import json
-    import os
-    import subprocess
-    import sys
-
     root = Path(__file__).resolve().parent.parent
     env = dict(os.environ, PYTHONPATH=str(root))
     base = bases["kn", 3]
@@ -255,8 +254,6 @@ def test_personal_command_over_a_kneser_ney_trigram_base(bases: dict[tuple[str, 
 def test_live_mode_over_a_kneser_ney_trigram_base(bases: dict[tuple[str, int], nextword.Model]) -> None:
     """``nextword live`` on a pseudo-terminal over a KN trigram file: the screen check of test_live
     (choice row = ``Model.suggest`` of the text left of the cursor, message, cursor, nothing else)."""
-    import sys
-
     if not sys.platform.startswith("linux"):
         pytest.skip("pseudo-terminal session: Linux only here")
     pytest.importorskip("pyte")
@@ -284,7 +281,6 @@ def test_typing_box_over_a_kneser_ney_trigram_base(bases: dict[tuple[str, int], 
     """The desktop example with a layer over a KN trigram base: the choice row is the layer's answer,
     Enter teaches the layer on disk (Xvfb, as test_gui)."""
     import shutil
-    import subprocess
     import textwrap
 
     if shutil.which("Xvfb") is None:
@@ -323,30 +319,16 @@ def test_typing_box_over_a_kneser_ney_trigram_base(bases: dict[tuple[str, int], 
     )
     root = Path(__file__).resolve().parent.parent
     r = subprocess.run(
-        ["xvfb-run", "-a", sys_executable(), "-c", script, str(root / "examples"), base.path, str(tmp_path / "me.nwp")],
-        capture_output=True, text=True, timeout=120, env=_env(root),
+        ["xvfb-run", "-a", sys.executable, "-c", script, str(root / "examples"), base.path, str(tmp_path / "me.nwp")],
+        capture_output=True, text=True, timeout=120, env=dict(os.environ, PYTHONPATH=str(root)),
     )
     if r.returncode != 0 and "couldn't connect to display" in r.stderr:
         pytest.skip(f"no virtual display: {r.stderr.strip()[-200:]}")
     assert r.returncode == 0, r.stderr
-    import json
-
     out = json.loads(r.stdout.strip().splitlines()[-1])
     assert out["start"][0] == out["start"][1] and out["start"][0]
     assert out["after"][0] == out["after"][1]
     assert out["messages"] == 1
-
-
-def sys_executable() -> str:
-    import sys
-
-    return sys.executable
-
-
-def _env(root: Path) -> dict[str, str]:
-    import os
-
-    return dict(os.environ, PYTHONPATH=str(root))
 
 
 @pytest.mark.parametrize("kind", KINDS, ids=[f"{s}{o}" for s, o in KINDS])
@@ -361,10 +343,16 @@ def test_model_accessors_the_layer_uses(bases: dict[tuple[str, int], nextword.Mo
         assert base.probs_after(words[:3], history) == [base.prob_after(w, history) for w in words[:3]]
     assert base.spelling("THE") == base.spelling("the") is not None and fold(base.spelling("the") or "") == "the"
     assert base.spelling("qqqx") is None
-    for bad in (lambda: base.probs_after("the", ("a",)), lambda: base.probs_after([3], ("a",)), lambda: base.spelling(3)):  # type: ignore[arg-type]
-        with pytest.raises(InvalidArgumentError):
-            bad()
     layer = PersonalLayer(base)
-    for bad in (lambda: layer.prob_after("the", "a"), lambda: layer.rank_after(("a",), 3, 3), lambda: layer.suggest(3), lambda: layer.suggest("a", 0)):  # type: ignore[arg-type]
+    bad_calls: list[Callable[[], object]] = [
+        lambda: base.probs_after("the", ("a",)),
+        lambda: base.probs_after([3], ("a",)),  # type: ignore[list-item]
+        lambda: base.spelling(3),  # type: ignore[arg-type]
+        lambda: layer.prob_after("the", "a"),
+        lambda: layer.rank_after(("a",), 3, 3),  # type: ignore[arg-type]
+        lambda: layer.suggest(3),  # type: ignore[arg-type]
+        lambda: layer.suggest("a", 0),
+    ]
+    for bad in bad_calls:
         with pytest.raises(InvalidArgumentError):
             bad()
