@@ -110,13 +110,14 @@ def _check_suggest(layer: PersonalLayer, base: nextword.Model, typed: str, k: in
         max_size=4,
     ),
     ops=st.lists(st.sampled_from(["forget zorbing", "forget the", "block the", "block zanele", "block object", "unblock the"]), max_size=3),
+    half_life=st.sampled_from([None, 2.0, 5.0]),
 )
 def test_suggest_equals_scoring_every_word(
     bases: dict[tuple[str, int], nextword.Model], kind: tuple[str, int], msgs: list[str], strength: float,
-    queries: list[tuple[list[str], str, str, int]], ops: list[str],
+    queries: list[tuple[list[str], str, str, int]], ops: list[str], half_life: float | None,
 ) -> None:
     base = bases[kind]
-    layer = PersonalLayer(base, strength=strength, min_uses=2)
+    layer = PersonalLayer(base, strength=strength, min_uses=2, half_life_messages=half_life)
     for m in msgs:
         layer.learn(m)
     for words, sep, prefix, k in queries:
