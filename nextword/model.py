@@ -681,6 +681,46 @@ class Model:
 
         return copy.deepcopy(self._src.meta)
 
+    # -- public accessors for the personal layer (nextword.personal) -------------------------
+    # One block, so accessors other modules need can be merged beside it. The layer mixes
+    # its own counts with this model's P(w | context) and ranks exactly with the model's
+    # own exact top k (rank_after) as one candidate source; these give it the rest.
+
+    def spelling(self, word: str) -> str | None:
+        """The display spelling of vocabulary word ``word`` (any casing), or None if the model lacks it."""
+        if not isinstance(word, str):
+            raise InvalidArgumentError(f"word must be str, got {type(word).__name__}")
+        wid = self._word_id(fold(word))
+        return None if wid is None else self.display(wid)
+
+    def probs_after(
+        self, words: Sequence[str], history: Sequence[str | None], *, lam: float | None = None
+    ) -> list[float]:
+        """P(w | history) for each of ``words``: :meth:`prob_after` of each, bit for bit.
+
+        The context is read once, so scoring a handful of candidates after one context
+        (what the personal layer does per keystroke) costs one lookup per word.
+        """
+        if isinstance(words, str) or not isinstance(words, Sequence):
+            raise InvalidArgumentError(f"words must be a sequence of words, got {type(words).__name__}")
+        lam = None if lam is None else check_lam(lam)
+        ctx = self._context_ids(history)
+        ids = []
+        for w in words:
+            if not isinstance(w, str):
+                raise InvalidArgumentError(f"words must be str, got {type(w).__name__}")
+            ids.append(self._predicted_id(w))
+        if self._general:
+            lams = self._ng_lams(lam)
+            if len(ids) >= 8 and max(ids) < self.n_words:  # the scorer's vector path: the same operations
+                return self._ng.scores(np.asarray(ids, dtype=np.int64), ctx, lams).tolist()  # type: ignore[no-any-return]
+            return [self._ng.prob(w, ctx, lams) for w in ids]
+        v = ctx[-1]
+        lam_v = self._lam_of(v, lam)
+        return [self._prob_ids(v, w, lam_v) for w in ids]
+
+    # -- end of the public accessors for the personal layer ------------------------------------
+
     def info(self) -> dict[str, Any]:
         """Sizes, settings and corpus statistics, as plain data (for ``nextword info``)."""
         a = self._src.arrays

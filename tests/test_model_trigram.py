@@ -276,18 +276,3 @@ def test_crafted_kn_trigram_files_raise_only_model_format_errors(kn3_bytes: byte
         except ModelFormatError:
             continue
         _ask_everything(m)
-
-
-@pytest.mark.parametrize("smoothing,order", [("kn", 2), ("kn", 3), ("jm", 3)])
-def test_personal_layers_refuse_other_bases(tmp_path: Path, smoothing: str, order: int) -> None:
-    # the layer mixes one-word-context bigram scores; over these bases it would rank wrongly
-    from nextword.personal import PersonalLayer
-
-    path = tmp_path / "m.nwm"
-    nextword.train_texts(["fix the bike", "fix the bell"] * 3, path, smoothing=smoothing, order=order, min_count=1)
-    base = nextword.load(path)
-    with pytest.raises(InvalidArgumentError, match="personal layers need a Jelinek-Mercer bigram base for now"):
-        PersonalLayer(base)
-    with pytest.raises(InvalidArgumentError, match="Jelinek-Mercer bigram base"):
-        PersonalLayer.open(base, tmp_path / "me.nwp", create=True)
-    assert not (tmp_path / "me.nwp").exists()
