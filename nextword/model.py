@@ -25,6 +25,7 @@ import numpy as np
 from ._progress import DEFAULT_TICK, Progress
 from .corpus import Format, iter_messages, open_sources
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables, auto_workers, count_in_processes
+from .codecs import codec_named
 from .estimators import unigram_floor
 from .errors import InputDataError, InvalidArgumentError, ModelFormatError
 from .prune import DEFAULT_RULE
@@ -33,7 +34,9 @@ from .store import (
     DEFAULT_SKYBAND_K,
     DEFAULT_SKYBAND_MIN,
     MAX_LAMBDA,
+    SUMMARY_MIN,
     TOPK_FANOUT,
+    TRIGRAM_TAGS,
     ModelArrays,
     read_model,
     key_head,
@@ -798,8 +801,8 @@ class Model:
         # spellings); the rest is header, section table, metadata and padding
         pair_bytes = sum(a[s].nbytes for s in _PAIR_SECTIONS)
         vocab_bytes = sum(a[s].nbytes for s in _VOCAB_SECTIONS if s in a) + len(self._src.raw["TRIE"]) + len(self._disb)
-        # Kneser-Ney context counts and the trigram sections (format 1.3)
-        ngram_bytes = sum(a[s].nbytes for s in ("HN13", "TROW", "TCTU", "TCTS", "TSUC", "TVAL", "TTOT", "TN13") if s in a)
+        # Kneser-Ney context counts, context totals and the trigram sections (format 1.4)
+        ngram_bytes = sum(a[s].nbytes for s in a if s not in _PAIR_SECTIONS and s not in _VOCAB_SECTIONS)
         pairs = self.n_bigrams
         return {
             "path": self.path,
@@ -1064,22 +1067,25 @@ class _NgramScorer:
 
     Every word's score has the interpolated shape
 
-        P(w | u v) = α₃(u v w) + γ₃(u v) · [α₂(v w) + γ₂(v) · P₁(w)]
+        P(w | u v) = α₃(u v w) + γ₃(u v) · B(v, w),   B(v, w) = α₂(v w) + γ₂(v) · P₁(w)
 
-    (Kneser-Ney: α = max(a − D(a), 0)/total, γ = (D₁n₁ + D₂n₂ + D₃n₃)/total; JM: α = λ·c/total,
-    γ = 1 − λ; an unseen context has α = 0, γ = 1). Ids rank by the floor P₁ (the file's
-    unigram values, ties by key), so for a prefix range the exact top k lies among the k
-    smallest ids of the range, the bigram successors of v in the range (the stored
-    skyband when the segment is long) and every trigram successor of (u, v) in the range
-    (docs/SEAMS.md). Each candidate is scored with the full formula, in the operation
-    order of the oracles (``reference_kn.DictKneserNey.prob_key``), so results agree with
-    them to the last bit.
+    (:func:`nextword.store.level_mix`; an unseen context has α = 0, γ = 1). Ids rank by
+    the floor P₁, so for a prefix range the exact top k lies among the k smallest ids of
+    the range, the bigram successors of v in the range (their stored skyband when the
+    segment is long) and the trigram successors of (u, v) in the range (their stored
+    skyband under dominance on (trigram value, B) when the segment is long); see
+    docs/SEAMS.md. A query scores those few candidates with Python floats (memoryviews
+    and bisect), or with numpy when there are many, in the operation order of the
+    oracles (``reference_kn.DictKneserNey.prob_key``), so results agree with them to the
+    last bit. Stored values come through the file's codec (:mod:`nextword.codecs`).
     """
 
     def __init__(self, m: Model, a: dict[str, np.ndarray]) -> None:
         self.m = m
         self.kn = m.estimator == "kn"
         self.order = m.order
+        meta = m._src.meta
+        self.codec = codec_named(m.path, meta.get("codec"))
         unig = a["UNIG"].astype(np.int64)
         if self.kn:
             self.floor = unigram_floor(unig, m.discounts[0], m.total)
@@ -1090,29 +1096,46 @@ class _NgramScorer:
         if not bool(np.all((self.floor >= 0.0) & (self.floor <= 1.0 + 1e-9))):
             raise ModelFormatError(f"{m.path}: damaged model data: a unigram probability outside [0, 1]")
         self._floor_list: list[float] = self.floor.tolist()
+        self._hdri, self._hdrv = _native_view(a["HDRI"]), _native_view(a["HDRV"])
+        # the trigram skybands hold for the stored parameters (KN: always; JM: stored λs, λ₃ > 0)
+        self._band_lams = (m.stored_lam, m.stored_lam3) if not self.kn else None
         if self.order == 3:
+            self._t = int(meta["trigrams"])
             self._trow = _native_view(a["TROW"])
             self._tctu = _native_view(a["TCTU"])
-            self._tcts = _native_view(a["TCTS"])
+            self._tctb = _native_view(a["TCTB"])
+            self._tcto = _native_view(a["TCTO"])
             self._tsuc_mv = _native_view(a["TSUC"])
-            self._tval_mv = _native_view(a["TVAL"])
-            self._ttot = _native_view(a["TTOT"])
             self._tsuc = a["TSUC"]
-            self._tval = a["TVAL"]
-            self._mv_tn13 = _native_view(a["TN13"]) if self.kn else None
+            self._tval = self.codec.decode(m.path, a, TRIGRAM_TAGS)
+            self._tlni, self._tlnv = _native_view(a["TLNI"]), _native_view(a["TLNV"])
+            self._tdri, self._tdrv = _native_view(a["TDRI"]), _native_view(a["TDRV"])
+            self._tsgs, self._tsge = _native_view(a["TSGS"]), _native_view(a["TSGE"])
+            self._tskp, self._tski, self._tskc = _native_view(a["TSKP"]), _native_view(a["TSKI"]), _native_view(a["TSKC"])
+
+    def _damaged(self, what: str) -> ModelFormatError:
+        return ModelFormatError(f"{self.m.path}: damaged model data: {what}")
+
+    @staticmethod
+    def _sparse(idx: memoryview, val: memoryview, i: int) -> int:
+        """val at index i of a sorted sparse table, else 0."""
+        j = bisect.bisect_left(idx, i)
+        return val[j] if j < len(idx) and idx[j] == i else 0  # type: ignore[no-any-return]
 
     # -- per-context weights -------------------------------------------------------------
 
-    def _gamma2(self, v: int, tot: int) -> float:
-        h = self._mv_hn13
-        d = self.d2
-        return (d[0] * h[3 * v] + d[1] * h[3 * v + 1] + d[2] * h[3 * v + 2]) / tot  # type: ignore[no-any-return]
-
-    def _gamma3(self, j: int, tot: int) -> float:
-        h = self._mv_tn13
-        assert h is not None
-        d = self.d3
-        return (d[0] * h[3 * j] + d[1] * h[3 * j + 1] + d[2] * h[3 * j + 2]) / tot  # type: ignore[no-any-return]
+    def _level2(self, v: int, lam2: float) -> tuple[int, float]:
+        """(T, γ₂) of bigram context v (T = 0: never a context, γ₂ = 1)."""
+        tot = self.m._hist(v)
+        if tot <= 0:
+            return 0, 1.0
+        dropped = self._sparse(self._hdri, self._hdrv, v)
+        if dropped > tot:
+            raise self._damaged(f"dropped mass {dropped} above its context total {tot}")
+        if self.kn:
+            h, d = self._mv_hn13, self.d2
+            return tot, (dropped + d[0] * h[3 * v] + d[1] * h[3 * v + 1] + d[2] * h[3 * v + 2]) / tot
+        return tot, (1.0 - lam2) + lam2 * (dropped / tot)
 
     def _context3(self, ctx: tuple[int, ...]) -> int:
         """Index of trigram context (u, v) in TCTU, or −1 (not stored, or a one-token context)."""
@@ -1123,8 +1146,32 @@ class _NgramScorer:
         i = bisect.bisect_left(self._tctu, u, s, e)
         return i if i < e and self._tctu[i] == u else -1
 
-    def _damaged(self, what: str) -> ModelFormatError:
-        return ModelFormatError(f"{self.m.path}: damaged model data: {what}")
+    def _rows3(self, j: int) -> tuple[int, int]:
+        """Row entries [s, e) of trigram context j (checked: a damaged offset never escapes)."""
+        s = self._tctb[j >> 4] + self._tcto[j]
+        e = self._tctb[(j + 1) >> 4] + self._tcto[j + 1]
+        if not 0 <= s < e <= self._t:
+            raise self._damaged(f"trigram context {j} has entries [{s}, {e})")
+        return s, e
+
+    def _level3(self, j: int, s: int, e: int, lam3: float) -> tuple[int, float]:
+        """(T, γ₃) of trigram context j with entries [s, e): its sums read from the row or TLNV."""
+        if e - s > SUMMARY_MIN:
+            i = bisect.bisect_left(self._tlni, j)
+            if i >= len(self._tlni) or self._tlni[i] != j:
+                raise self._damaged(f"trigram context {j} has no stored summary")
+            sm, n1, n2, n3 = (self._tlnv[4 * i + x] for x in range(4))
+            if n1 + n2 + n3 != e - s or sm < e - s:
+                raise self._damaged(f"trigram context {j} has a summary that does not fit its row")
+        else:
+            vals = self._tval.slice(s, e)
+            sm, n1, n2 = sum(vals), vals.count(1), vals.count(2)
+            n3 = len(vals) - n1 - n2
+        tot = sm + self._sparse(self._tdri, self._tdrv, j)
+        if self.kn:
+            d = self.d3
+            return tot, (tot - sm + d[0] * n1 + d[1] * n2 + d[2] * n3) / tot
+        return tot, (1.0 - lam3) + lam3 * ((tot - sm) / tot)
 
     # -- one probability -------------------------------------------------------------------
 
@@ -1132,31 +1179,30 @@ class _NgramScorer:
         m = self.m
         p = self._floor_list[w]
         v = ctx[-1]
-        tot = m._hist(v)
+        tot, g = self._level2(v, lams[0])
         if tot > 0:
             c = m._pair_count(v, w)
             if c > tot:
                 raise m._over(c, tot)
-            if self.kn:
-                p = max(c - _discount1(c, self.d2), 0.0) / tot + self._gamma2(v, tot) * p
-            else:
-                p = lams[0] * (c / tot) + (1.0 - lams[0]) * p
+            p = self._alpha(c, tot, self.d2 if self.kn else lams[0]) + g * p
         j = self._context3(ctx)
         if j >= 0:
-            tot3 = self._ttot[j]
-            s, e = self._tcts[j], self._tcts[j + 1]
+            s, e = self._rows3(j)
+            tot3, g3 = self._level3(j, s, e, lams[1])
             pos = m._mv_apos[w]
             i = bisect.bisect_left(self._tsuc_mv, pos, s, e)
-            c3 = self._tval_mv[i] if i < e and self._tsuc_mv[i] == pos else 0
-            if c3 > tot3 or tot3 == 0:
+            c3 = self._tval.at(i) if i < e and self._tsuc_mv[i] == pos else 0
+            if c3 > tot3:
                 raise self._damaged(f"trigram value {c3} above its context total {tot3}")
-            if self.kn:
-                p = max(c3 - _discount1(c3, self.d3), 0.0) / tot3 + self._gamma3(j, tot3) * p
-            else:
-                p = lams[1] * (c3 / tot3) + (1.0 - lams[1]) * p
+            p = self._alpha(c3, tot3, self.d3 if self.kn else lams[1]) + g3 * p
         if not 0.0 <= p <= 1.0 + 1e-9:
             raise self._damaged(f"a probability of {p!r}")
         return p  # type: ignore[no-any-return]
+
+    def _alpha(self, c: int, tot: int, param: Any) -> float:
+        if self.kn:
+            return max(c - _discount1(c, param), 0.0) / tot
+        return param * (c / tot)  # type: ignore[no-any-return]
 
     # -- many probabilities ----------------------------------------------------------------
 
@@ -1166,7 +1212,7 @@ class _NgramScorer:
         p = self.floor[ids]
         pos = m._apos[ids].astype(np.int64)
         v = ctx[-1]
-        tot = m._hist(v)
+        tot, g = self._level2(v, lams[0])
         if tot > 0:
             rs, re_ = m._mv_rows[v], m._mv_rows[v + 1]
             row = m._succ[rs:re_]
@@ -1179,57 +1225,148 @@ class _NgramScorer:
                 if int(c.max()) > tot:
                     raise m._over(int(c.max()), tot)
             if self.kn:
-                p = np.maximum(c - _discount(c, self.d2), 0.0) / tot + self._gamma2(v, tot) * p
+                p = np.maximum(c - _discount(c, self.d2), 0.0) / tot + g * p
             else:
-                p = lams[0] * (c / tot) + (1.0 - lams[0]) * p
+                p = lams[0] * (c / tot) + g * p
         j = self._context3(ctx)
         if j >= 0:
-            tot3 = self._ttot[j]
-            s, e = self._tcts[j], self._tcts[j + 1]
+            s, e = self._rows3(j)
+            tot3, g3 = self._level3(j, s, e, lams[1])
             row = self._tsuc[s:e]
             at = np.searchsorted(row, pos.astype(row.dtype))
             hit = at < len(row)
             hit[hit] = row[at[hit]] == pos[hit]
             c = np.zeros(len(ids), dtype=np.int64)
-            c[hit] = self._tval[s + at[hit]]
-            if tot3 == 0 or (len(c) and int(c.max()) > tot3):
+            c[hit] = self._tval.take(s + at[hit])
+            if len(c) and int(c.max()) > tot3:
                 raise self._damaged(f"a trigram value above its context total {tot3}")
             if self.kn:
-                p = np.maximum(c - _discount(c, self.d3), 0.0) / tot3 + self._gamma3(j, tot3) * p
+                p = np.maximum(c - _discount(c, self.d3), 0.0) / tot3 + g3 * p
             else:
-                p = lams[1] * (c / tot3) + (1.0 - lams[1]) * p
+                p = lams[1] * (c / tot3) + g3 * p
         if len(p) and not bool(np.all((p >= 0.0) & (p <= 1.0 + 1e-9))):
             raise self._damaged("a probability outside [0, 1]")
         return np.asarray(p, dtype=np.float64)
+
+    # -- ranking ---------------------------------------------------------------------------
+
+    def _band3(self, s: int, e: int, k: int) -> list[int] | None:
+        """Entries of trigram segment [s, e) with fewer than k dominators, if its skyband is stored."""
+        segs, sege = self._tsgs, self._tsge
+        i = bisect.bisect_left(segs, s)
+        while i < len(segs) and segs[i] == s:
+            if sege[i] == e:
+                start, stop = self._tskp[i], self._tskp[i + 1]
+                stop = min(start + self._tskc[i * self.m._sky_k + k - 1], stop)
+                offs = self._tski[start:stop].tolist()
+                if offs and max(offs) >= e - s:
+                    raise self._damaged(f"trigram skyband {i} points outside its segment")
+                return [s + o for o in offs]
+            i += 1
+        return None
 
     def rank(self, ctx: tuple[int, ...], lo: int, hi: int, k: int, lams: tuple[float, float]) -> list[tuple[int, float]]:
         """Top-k (word id, probability) among alphabetical positions [lo, hi), ties by key."""
         m = self.m
         if not self.kn and (lams[0] == 1.0 or (self.order == 3 and lams[1] == 1.0)):
             # a zero floor: unseen words tie at 0 and rank by key, so score the whole range
-            ids = m._alph[lo:hi].astype(np.int64)
-        else:
-            parts = [np.asarray(m._range_top_ids(lo, hi, k), dtype=np.int64)]
-            v = ctx[-1]
-            if m._hist(v) > 0:
-                rs, re_ = m._mv_rows[v], m._mv_rows[v + 1]
-                s = bisect.bisect_left(m._mv_succ, lo, rs, re_)
-                e = bisect.bisect_left(m._mv_succ, hi, s, re_)
-                if e > s:
-                    band = m._segment_band(s, e, k) if e - s > m._sky_min and k <= m._sky_k else None
-                    entries = np.asarray(band, dtype=np.int64) if band else np.arange(s, e)
-                    parts.append(m._alph[m._succ[entries].astype(np.int64)].astype(np.int64))
-            j = self._context3(ctx)
+            return self._rank_numpy(m._alph[lo:hi].astype(np.int64), ctx, k, lams)
+        top = m._range_top_ids(lo, hi, k)
+        v = ctx[-1]
+        tot, g = self._level2(v, lams[0])
+        b_idx: Sequence[int] = ()
+        b_full = True  # b_idx holds every bigram successor in the range
+        if tot > 0:
+            rs, re_ = m._mv_rows[v], m._mv_rows[v + 1]
+            s = bisect.bisect_left(m._mv_succ, lo, rs, re_)
+            e = bisect.bisect_left(m._mv_succ, hi, s, re_)
+            b_idx = range(s, e)
+            if e - s > m._sky_min and k <= m._sky_k:
+                band = m._segment_band(s, e, k)
+                if band is not None:
+                    b_idx, b_full = band, False
+        j = self._context3(ctx)
+        t_idx: Sequence[int] = ()
+        t_full = True
+        s3 = e3 = tot3 = 0
+        g3 = 1.0
+        if j >= 0:
+            s3, e3 = self._rows3(j)
+            tot3, g3 = self._level3(j, s3, e3, lams[1])
+            a3 = bisect.bisect_left(self._tsuc_mv, lo, s3, e3)
+            b3 = bisect.bisect_left(self._tsuc_mv, hi, a3, e3)
+            t_idx = range(a3, b3)
+            if b3 - a3 > m._sky_min and k <= m._sky_k and (self.kn or (lams == self._band_lams and lams[1] > 0.0)):
+                band3 = self._band3(a3, b3, k)
+                if band3 is not None:
+                    t_idx, t_full = band3, False
+        if len(b_idx) + len(t_idx) > _SMALL:
+            parts = [np.asarray(top, dtype=np.int64)]
+            for idx, arr in ((b_idx, m._succ), (t_idx, self._tsuc if j >= 0 else None)):
+                if len(idx) and arr is not None:
+                    sel = np.arange(idx.start, idx.stop) if isinstance(idx, range) else np.asarray(idx, dtype=np.int64)
+                    parts.append(m._alph[arr[sel].astype(np.int64)].astype(np.int64))
+            return self._rank_numpy(np.unique(np.concatenate(parts)), ctx, k, lams)
+        # few candidates: score them with Python floats
+        succ, apos, alph, fl = m._mv_succ, m._mv_apos, m._mv_alph, self._floor_list
+        c2: dict[int, int] = {}
+        if len(b_idx):
+            if isinstance(b_idx, range):
+                ps = succ[b_idx.start : b_idx.stop].tolist()
+                cs = [m._count_at(b_idx.start + x) if c == COUNT_ESCAPE else c for x, c in enumerate(m._mv_cnts[b_idx.start : b_idx.stop].tolist())]
+            else:
+                ps = [succ[i] for i in b_idx]
+                cs = [m._count_at(i) for i in b_idx]
+            c2 = dict(zip(ps, cs))
+            if max(cs) > tot:
+                raise m._over(max(cs), tot)
+        c3: dict[int, int] = {}
+        if len(t_idx):
+            if isinstance(t_idx, range):
+                c3 = dict(zip(self._tsuc_mv[t_idx.start : t_idx.stop].tolist(), self._tval.slice(t_idx.start, t_idx.stop)))
+            else:
+                c3 = {self._tsuc_mv[i]: self._tval.at(i) for i in t_idx}
+            if max(c3.values()) > tot3:
+                raise self._damaged(f"a trigram value above its context total {tot3}")
+        cands = set(c2) | set(c3)
+        cands.update(apos[w] for w in top)
+        kn = self.kn
+        dk2: Sequence[float] = self.d2 if kn else ()
+        dk3: Sequence[float] = self.d3 if kn else ()
+        l2, l3 = lams
+        scored: list[tuple[float, int, int]] = []
+        for p in cands:
+            w = alph[p]
+            score: float = fl[w]
+            if tot > 0:
+                c = c2.get(p)
+                if c is None:
+                    c = 0 if b_full else m._pair_count(v, w)
+                    if c > tot:
+                        raise m._over(c, tot)
+                score = (max(c - _discount1(c, dk2), 0.0) / tot if kn else l2 * (c / tot)) + g * score
             if j >= 0:
-                s3, e3 = self._tcts[j], self._tcts[j + 1]
-                a3 = bisect.bisect_left(self._tsuc_mv, lo, s3, e3)
-                b3 = bisect.bisect_left(self._tsuc_mv, hi, a3, e3)
-                if b3 > a3:
-                    parts.append(m._alph[self._tsuc[a3:b3].astype(np.int64)].astype(np.int64))
-            seen = np.zeros(m.n_words + 3, dtype=bool)  # a set over the id space: sorted, no hashing
-            for part in parts:
-                seen[part] = True
-            ids = np.flatnonzero(seen[: m.n_words])
+                c = c3.get(p)
+                if c is None:
+                    c = 0 if t_full else self._trigram_value(s3, e3, p, tot3)
+                score = (max(c - _discount1(c, dk3), 0.0) / tot3 if kn else l3 * (c / tot3)) + g3 * score
+            scored.append((-score, p, w))
+        scored.sort()
+        out = [(w, -neg) for neg, _, w in scored[:k]]
+        for _, q in out:
+            if not 0.0 <= q <= 1.0 + 1e-9:
+                raise self._damaged(f"a probability of {q!r}")
+        return out
+
+    def _trigram_value(self, s: int, e: int, pos: int, tot3: int) -> int:
+        i = bisect.bisect_left(self._tsuc_mv, pos, s, e)
+        c = self._tval.at(i) if i < e and self._tsuc_mv[i] == pos else 0
+        if c > tot3:
+            raise self._damaged(f"trigram value {c} above its context total {tot3}")
+        return c
+
+    def _rank_numpy(self, ids: np.ndarray, ctx: tuple[int, ...], k: int, lams: tuple[float, float]) -> list[tuple[int, float]]:
+        m = self.m
         ids = ids[ids < m.n_words]
         if len(ids) == 0:
             return []
