@@ -90,11 +90,11 @@ class _ExactView(ValueView):
     def __init__(self, where: str, small: np.ndarray, esc_i: np.ndarray, esc_v: np.ndarray) -> None:
         self._where = where
         self._small = small
-        self._mv = memoryview(np.ascontiguousarray(small)).cast("B")
+        self._mv = memoryview(np.ascontiguousarray(small)).cast("B")  # type: ignore[arg-type]
         self._esc_i = esc_i
         self._esc_v = esc_v
-        self._mv_i = memoryview(np.ascontiguousarray(esc_i, dtype=np.uint32)).cast("B").cast("I")
-        self._mv_v = memoryview(np.ascontiguousarray(esc_v, dtype=np.uint32)).cast("B").cast("I")
+        self._mv_i = memoryview(np.ascontiguousarray(esc_i, dtype=np.uint32)).cast("B").cast("I")  # type: ignore[arg-type]
+        self._mv_v = memoryview(np.ascontiguousarray(esc_v, dtype=np.uint32)).cast("B").cast("I")  # type: ignore[arg-type]
 
     def _escaped(self, i: int) -> int:
         j = bisect.bisect_left(self._mv_i, i)

@@ -54,6 +54,8 @@ _PAIR_SECTIONS = ("SUCC", "CNTS", "BIGI", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI"
 _VOCAB_SECTIONS = ("TKID", "IDTK", "ALPH", "APOS", "KEY4", "TOPK", "UNIG", "ROWS", "HIST", "DISI", "DISO")
 # below this many successor candidates, plain Python beats numpy's per-call overhead
 _SMALL = 80
+#: a plain row range longer than this is cut with numpy before the Python scoring (_NgramScorer)
+_TRIM = 24
 
 
 class Suggestion(NamedTuple):
@@ -400,7 +402,7 @@ class Model:
 
     def _context_ids(self, history: Sequence[str | None]) -> tuple[int, ...]:
         """Context ids of the last order−1 tokens, never reaching back across a sentence start."""
-        if isinstance(history, str) or not isinstance(history, Sequence):
+        if type(history) is not tuple and (isinstance(history, str) or not isinstance(history, Sequence)):
             raise InvalidArgumentError(f"history must be a sequence of tokens, got {type(history).__name__}")
         ids = [self._history_id(t) for t in history] or [self._bos]
         if self._bos in ids:
@@ -1055,7 +1057,7 @@ def train_texts(
 
 def _discount(c: np.ndarray, d: Sequence[float]) -> np.ndarray:
     """D(c) per value: D1 for 1, D2 for 2, D3+ for 3 or more, 0 for 0 (as ``Discounts.of``)."""
-    return np.where(c >= 3, d[2], np.where(c >= 2, d[1], np.where(c >= 1, d[0], 0.0)))
+    return np.asarray([0.0, d[0], d[1], d[2]])[np.minimum(c, 3)]  # type: ignore[no-any-return]
 
 
 def _discount1(c: int, d: Sequence[float]) -> float:
@@ -1300,39 +1302,38 @@ class _NgramScorer:
                 band3 = self._band3(a3, b3, k)
                 if band3 is not None:
                     t_idx, t_full = band3, False
-        if len(b_idx) + len(t_idx) > _SMALL:
-            parts = [np.asarray(top, dtype=np.int64)]
-            for idx, arr in ((b_idx, m._succ), (t_idx, self._tsuc if j >= 0 else None)):
-                if len(idx) and arr is not None:
-                    sel = np.arange(idx.start, idx.stop) if isinstance(idx, range) else np.asarray(idx, dtype=np.int64)
-                    parts.append(m._alph[arr[sel].astype(np.int64)].astype(np.int64))
-            return self._rank_numpy(np.unique(np.concatenate(parts)), ctx, k, lams)
-        # few candidates: score them with Python floats
+        # score the candidates with Python floats. A long plain range is first cut
+        # with numpy to the entries that can still reach the top k (see _trim_trigrams
+        # and _trim_bigrams); every other candidate then looks its values up by bisect.
         succ, apos, alph, fl = m._mv_succ, m._mv_apos, m._mv_alph, self._floor_list
-        c2: dict[int, int] = {}
-        if len(b_idx):
-            if isinstance(b_idx, range):
-                ps = succ[b_idx.start : b_idx.stop].tolist()
-                cs = [m._count_at(b_idx.start + x) if c == COUNT_ESCAPE else c for x, c in enumerate(m._mv_cnts[b_idx.start : b_idx.stop].tolist())]
-            else:
-                ps = [succ[i] for i in b_idx]
-                cs = [m._count_at(i) for i in b_idx]
-            c2 = dict(zip(ps, cs))
-            if max(cs) > tot:
-                raise m._over(max(cs), tot)
         c3: dict[int, int] = {}
         if len(t_idx):
-            if isinstance(t_idx, range):
+            if isinstance(t_idx, range) and len(t_idx) > _TRIM:
+                c3, t_full = self._trim_trigrams(t_idx, v, tot, g, tot3, g3, k, lams), False
+            elif isinstance(t_idx, range):
                 c3 = dict(zip(self._tsuc_mv[t_idx.start : t_idx.stop].tolist(), self._tval.slice(t_idx.start, t_idx.stop)))
             else:
                 c3 = {self._tsuc_mv[i]: self._tval.at(i) for i in t_idx}
             if max(c3.values()) > tot3:
                 raise self._damaged(f"a trigram value above its context total {tot3}")
+        c2: dict[int, int] = {}
+        if len(b_idx):
+            if isinstance(b_idx, range) and len(b_idx) > _TRIM:
+                c2, b_full = self._trim_bigrams(b_idx, tot, g, k + len(c3), lams[0]), False
+            elif isinstance(b_idx, range):
+                ps = succ[b_idx.start : b_idx.stop].tolist()
+                cs = [m._count_at(b_idx.start + x) if c == COUNT_ESCAPE else c for x, c in enumerate(m._mv_cnts[b_idx.start : b_idx.stop].tolist())]
+                c2 = dict(zip(ps, cs))
+            else:
+                c2 = {succ[i]: m._count_at(i) for i in b_idx}
+            if max(c2.values()) > tot:
+                raise m._over(max(c2.values()), tot)
         cands = set(c2) | set(c3)
         cands.update(apos[w] for w in top)
         kn = self.kn
-        dk2: Sequence[float] = self.d2 if kn else ()
-        dk3: Sequence[float] = self.d3 if kn else ()
+        # D(c) by min(c, 3): the same floats as _discount1, without a call per candidate
+        dk2: Sequence[float] = (0.0, *self.d2) if kn else ()
+        dk3: Sequence[float] = (0.0, *self.d3) if kn else ()
         l2, l3 = lams
         scored: list[tuple[float, int, int]] = []
         for p in cands:
@@ -1344,12 +1345,12 @@ class _NgramScorer:
                     c = 0 if b_full else m._pair_count(v, w)
                     if c > tot:
                         raise m._over(c, tot)
-                score = (max(c - _discount1(c, dk2), 0.0) / tot if kn else l2 * (c / tot)) + g * score
+                score = (max(c - dk2[c if c < 3 else 3], 0.0) / tot if kn else l2 * (c / tot)) + g * score
             if j >= 0:
                 c = c3.get(p)
                 if c is None:
                     c = 0 if t_full else self._trigram_value(s3, e3, p, tot3)
-                score = (max(c - _discount1(c, dk3), 0.0) / tot3 if kn else l3 * (c / tot3)) + g3 * score
+                score = (max(c - dk3[c if c < 3 else 3], 0.0) / tot3 if kn else l3 * (c / tot3)) + g3 * score
             scored.append((-score, p, w))
         scored.sort()
         out = [(w, -neg) for neg, _, w in scored[:k]]
@@ -1357,6 +1358,63 @@ class _NgramScorer:
             if not 0.0 <= q <= 1.0 + 1e-9:
                 raise self._damaged(f"a probability of {q!r}")
         return out
+
+    def _trim_trigrams(
+        self, t_idx: range, v: int, tot: int, g: float, tot3: int, g3: float, k: int, lams: tuple[float, float]
+    ) -> dict[int, int]:
+        """Position → value of the k best trigram successors in ``t_idx`` by their full score.
+
+        A trigram successor outside them has k successors of the same context ranking
+        before it (score descending, position ascending), so it is not in the top k. The
+        scores are those of :meth:`scores`, computed with numpy for the whole range.
+        """
+        m = self.m
+        s, e = t_idx.start, t_idx.stop
+        traw = self._tsuc[s:e]
+        tpos = traw.astype(np.int64)
+        c3 = self._tval.take(np.arange(s, e))
+        if int(c3.max()) > tot3:
+            raise self._damaged(f"a trigram value above its context total {tot3}")
+        b = self.floor[m._alph[tpos].astype(np.int64)]
+        if tot > 0:
+            rs, re_ = m._mv_rows[v], m._mv_rows[v + 1]
+            row = m._succ[rs:re_]
+            at = np.minimum(row.searchsorted(traw), max(len(row) - 1, 0))
+            hit = np.flatnonzero(row[at] == traw) if len(row) else np.zeros(0, dtype=np.int64)
+            c2 = np.zeros(len(tpos), dtype=np.int64)
+            if len(hit):
+                c2[hit] = m._counts(rs + at[hit])
+                if int(c2.max()) > tot:
+                    raise m._over(int(c2.max()), tot)
+            if self.kn:
+                b = np.maximum(c2 - _discount(c2, self.d2), 0.0) / tot + g * b
+            else:
+                b = lams[0] * (c2 / tot) + g * b
+        if self.kn:
+            score = np.maximum(c3 - _discount(c3, self.d3), 0.0) / tot3 + g3 * b
+        else:
+            score = lams[1] * (c3 / tot3) + g3 * b
+        sel = np.lexsort((tpos, -score))[:k]
+        return dict(zip(tpos[sel].tolist(), c3[sel].tolist()))
+
+    def _trim_bigrams(self, b_idx: range, tot: int, g: float, keep: int, lam2: float) -> dict[int, int]:
+        """Position → value of the ``keep`` best bigram successors in ``b_idx`` by B (§9.7).
+
+        A word that follows v but not (u, v) scores γ₃·B, so among those only the k best
+        by (B descending, position ascending) can reach the top k; keeping k plus the
+        number of trigram candidates keeps at least k such words.
+        """
+        m = self.m
+        s, e = b_idx.start, b_idx.stop
+        pos = m._succ[s:e].astype(np.int64)
+        c = m._counts(np.arange(s, e))
+        if self.kn:
+            alpha = np.maximum(c - _discount(c, self.d2), 0.0) / tot
+        else:
+            alpha = lam2 * (c / tot)
+        b = alpha + g * self.floor[m._alph[pos].astype(np.int64)]
+        sel = np.argsort(-b, kind="stable")[:keep]  # stable: positions ascending among ties
+        return dict(zip(pos[sel].tolist(), c[sel].tolist()))
 
     def _trigram_value(self, s: int, e: int, pos: int, tot3: int) -> int:
         i = bisect.bisect_left(self._tsuc_mv, pos, s, e)
