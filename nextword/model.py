@@ -37,6 +37,8 @@ from .store import (
     SUMMARY_MIN,
     TOPK_FANOUT,
     TRIGRAM_TAGS,
+    CONTEXT_TAGS,
+    CTX_BLOCK,
     ModelArrays,
     read_model,
     key_head,
@@ -1103,10 +1105,8 @@ class _NgramScorer:
         self._band_lams = (m.stored_lam, m.stored_lam3) if not self.kn else None
         if self.order == 3:
             self._t = int(meta["trigrams"])
-            self._trow = _native_view(a["TROW"])
-            self._tctu = _native_view(a["TCTU"])
             self._tctb = _native_view(a["TCTB"])
-            self._tcto = _native_view(a["TCTO"])
+            self._tlen = self.codec.decode(m.path, a, CONTEXT_TAGS)
             self._tsuc_mv = _native_view(a["TSUC"])
             self._tsuc = a["TSUC"]
             self._tval = self.codec.decode(m.path, a, TRIGRAM_TAGS)
@@ -1140,20 +1140,25 @@ class _NgramScorer:
         return tot, (1.0 - lam2) + lam2 * (dropped / tot)
 
     def _context3(self, ctx: tuple[int, ...]) -> int:
-        """Index of trigram context (u, v) in TCTU, or −1 (not stored, or a one-token context)."""
+        """The bigram entry (u, v) of trigram context (u, v), or −1 (not a context, or a one-token context)."""
         if self.order != 3 or len(ctx) != 2:
             return -1
+        m = self.m
         u, v = ctx
-        s, e = self._trow[v], self._trow[v + 1]
-        i = bisect.bisect_left(self._tctu, u, s, e)
-        return i if i < e and self._tctu[i] == u else -1
+        rs, re_ = m._mv_rows[u], m._mv_rows[u + 1]
+        pos = m._mv_apos[v]
+        i = bisect.bisect_left(m._mv_succ, pos, rs, re_)
+        if i >= re_ or m._mv_succ[i] != pos or self._tlen.at(i) == 0:
+            return -1
+        return i
 
-    def _rows3(self, j: int) -> tuple[int, int]:
-        """Row entries [s, e) of trigram context j (checked: a damaged offset never escapes)."""
-        s = self._tctb[j >> 4] + self._tcto[j]
-        e = self._tctb[(j + 1) >> 4] + self._tcto[j + 1]
+    def _rows3(self, i: int) -> tuple[int, int]:
+        """Row entries [s, e) of the trigram context at bigram entry i (checked: a damaged length never escapes)."""
+        b0 = i - (i % CTX_BLOCK)
+        s = self._tctb[i // CTX_BLOCK] + (sum(self._tlen.slice(b0, i)) if i > b0 else 0)
+        e = s + self._tlen.at(i)
         if not 0 <= s < e <= self._t:
-            raise self._damaged(f"trigram context {j} has entries [{s}, {e})")
+            raise self._damaged(f"trigram context {i} has entries [{s}, {e})")
         return s, e
 
     def _level3(self, j: int, s: int, e: int, lam3: float) -> tuple[int, float]:

@@ -58,7 +58,8 @@ FORMAT_VERSION: Final = (1, 0)
 MAX_MINOR: Final = 4
 #: the layout of Kneser-Ney and trigram files
 NGRAM_MINOR: Final = 4
-#: trigram contexts per block of TCTB (a context's start = its block's base + TCTO)
+#: bigram entries per block of TCTB (an entry's trigram start = its block's base + the
+#: lengths of the entries before it in the block)
 CTX_BLOCK: Final = 16
 #: a trigram context with more successors than this has (Σ values, n₁, n₂, n₃₊) stored in
 #: TLNI/TLNV; shorter ones are summed from their row at query time
@@ -66,6 +67,8 @@ SUMMARY_MIN: Final = 32
 #: the value tags of each level (the codec's sections)
 BIGRAM_TAGS: Final = (b"CNTS", b"BIGI", b"BIGC")
 TRIGRAM_TAGS: Final = (b"TVAL", b"TBGI", b"TBGC")
+#: each bigram entry's number of trigram successors (0: not a trigram context), same escapes
+CONTEXT_TAGS: Final = (b"TLEN", b"TLEI", b"TLEV")
 #: sections that only some files have: tag -> element type ("id" = the file's id type,
 #: "u2|u4" = either, declared in the section table)
 _OPTIONAL: Final = {
@@ -73,10 +76,10 @@ _OPTIONAL: Final = {
     b"HN13": "u4",
     b"HDRI": "id",
     b"HDRV": "u4",
-    b"TROW": "u4",
-    b"TCTU": "id",
     b"TCTB": "u4",
-    b"TCTO": "u2|u4",
+    b"TLEN": "u1",
+    b"TLEI": "u4",
+    b"TLEV": "u4",
     b"TSUC": "id",
     b"TVAL": "u1",
     b"TBGI": "u4",
@@ -95,7 +98,7 @@ _OPTIONAL: Final = {
 ESTIMATORS: Final = ("jm", "kn")
 ORDERS: Final = (2, 3)
 _TRIGRAM: Final = (
-    b"TROW", b"TCTU", b"TCTB", b"TCTO", b"TSUC", b"TVAL", b"TBGI", b"TBGC",
+    b"TCTB", b"TLEN", b"TLEI", b"TLEV", b"TSUC", b"TVAL", b"TBGI", b"TBGC",
     b"TLNI", b"TLNV", b"TDRI", b"TDRV", b"TSGS", b"TSGE", b"TSKP", b"TSKI", b"TSKC",
 )  # fmt: skip
 #: in every 1.4 n-gram file: per-history totals (with dropped mass) and the dropped part
@@ -157,7 +160,7 @@ _CHECKED_ON_LOAD: Final = tuple(t for t in _SECTIONS if t not in _BIGRAM_SIZED)
 _U32_MAX: Final = 0xFFFFFFFF
 # optional sections checksummed on every load: vocabulary-sized and sparse ones (the
 # trigram-sized ones only with verify=True; queries check what they read from them)
-_OPTIONAL_CHECKED_ON_LOAD: Final = (b"HIST", b"HN13", b"HDRI", b"HDRV", b"TROW", b"TBGI", b"TBGC", b"TLNI", b"TDRI", b"TDRV")
+_OPTIONAL_CHECKED_ON_LOAD: Final = (b"HIST", b"HN13", b"HDRI", b"HDRV", b"TLEI", b"TLEV", b"TBGI", b"TBGC", b"TLNI", b"TLNV", b"TDRI", b"TDRV")
 
 
 def _id_dtype(n_words: int) -> np.dtype:
@@ -849,12 +852,6 @@ def trigram_bands(
     return seg_s, seg_e, skyp, skyi.astype(sky_dtype), skyc.astype(sky_dtype)
 
 
-def context_starts(tctb: np.ndarray, tcto: np.ndarray) -> np.ndarray:
-    """Every trigram context's first row entry (and the end), from TCTB and TCTO (int64)."""
-    j1 = len(tcto)
-    return tctb.astype(np.int64)[np.arange(j1, dtype=np.int64) // CTX_BLOCK] + tcto.astype(np.int64)
-
-
 def build_ngram_sections(
     counts: Any,
     tables: CountTables,
@@ -966,52 +963,58 @@ def build_ngram_sections(
         alph = np.asarray(sections[4][2], dtype=np.int64)  # ALPH, as build_sections made it
         apos = np.empty(n + 2, dtype=np.int64)
         apos[alph] = np.arange(n + 2)
+        rows = np.asarray(sections[9][2], dtype=np.int64)  # ROWS, SUCC: the bigram entries
+        succ2 = np.asarray(sections[10][2], dtype=np.int64)
+        b = len(succ2)
+        n_pos = n + 2
+        key2 = np.repeat(np.arange(n_hist, dtype=np.int64), np.diff(rows)) * n_pos + succ2  # sorted
         lev3 = fitted.levels[2]
         g3 = remap[lev3.grams]
         pos = apos[g3[:, 2]]
         tot_of_gram = np.repeat(lev3.ctx_total, np.diff(lev3.ctx_start))
-        o3 = np.lexsort((pos, g3[:, 0], g3[:, 1]))  # grouped by v, then u, successors alphabetical
+        o3 = np.lexsort((pos, apos[g3[:, 1]], g3[:, 0]))  # in bigram entry order (u, then v's position)
         u, v, pos, value3, tot_of_gram = g3[o3, 0], g3[o3, 1], pos[o3], lev3.value[o3], tot_of_gram[o3]
         t = len(u)
         new_ctx = np.ones(t, dtype=bool)
         new_ctx[1:] = (u[1:] != u[:-1]) | (v[1:] != v[:-1])
         first = np.flatnonzero(new_ctx)
         j = len(first)
-        ctx_u, ctx_v = u[first], v[first]
+        ckey = u[first] * n_pos + apos[v[first]]
+        big = np.searchsorted(key2, ckey)  # each context's bigram entry (u, v)
+        if j and (int(big.max()) >= b or not bool(np.all(key2[np.minimum(big, b - 1)] == ckey))):
+            raise InvalidArgumentError("a trigram context (u, v) is not a stored bigram; a pruned bigram level must keep it")
         owner = np.cumsum(new_ctx) - 1
-        trow = np.searchsorted(ctx_v, np.arange(n_hist + 1), side="left")
-        starts = np.concatenate([first, [t]]).astype(np.int64)
+        ctx_starts = np.concatenate([first, [t]]).astype(np.int64)
+        lengths = np.zeros(b, dtype=np.int64)
+        lengths[big] = np.diff(ctx_starts)
+        starts = np.zeros(b + 1, dtype=np.int64)
+        np.cumsum(lengths, out=starts[1:])
         sums = np.bincount(owner, weights=value3, minlength=j).astype(np.int64)
         dropped3 = tot_of_gram[first].astype(np.int64) - sums
         if bool(np.any(dropped3 < 0)):
             raise InvalidArgumentError("a trigram context total is below the sum of its stored values")
         if t and (int(value3.max()) > _U32_MAX or int((sums + dropped3).max()) > _U32_MAX or t > _U32_MAX):
             raise InvalidArgumentError("too many trigrams (or counts too large) for 32-bit fields")
-        tctb = starts[::CTX_BLOCK]
-        tcto = starts - tctb[np.arange(j + 1) // CTX_BLOCK]
-        tcto_dtype = np.dtype("<u2") if int(tcto.max(initial=0)) <= 0xFFFF else u4
+        tctb = starts[: b + 1 : CTX_BLOCK]
         n123_3 = _n123(owner, value3, j)
-        long_ctx = np.flatnonzero(np.diff(starts) > SUMMARY_MIN)
+        long_ctx = np.flatnonzero(np.diff(ctx_starts) > SUMMARY_MIN)
         tlnv = np.column_stack([sums[long_ctx], n123_3[long_ctx]]).reshape(-1)
         tdri = np.flatnonzero(dropped3 > 0)
         file_values2 = np.asarray(sections[11][2], dtype=np.int64)  # CNTS, BIGI, BIGC: the rows' order
         file_values2[np.asarray(sections[12][2], dtype=np.int64)] = np.asarray(sections[13][2], dtype=np.int64)
         lower = trigram_lower_scores(
-            kn, stored[1] if kn else lam2, floor_new, np.asarray(sections[9][2], dtype=np.int64),
-            np.asarray(sections[10][2]), file_values2, history, dropped2, n123_2, v, pos, alph,
+            kn, stored[1] if kn else lam2, floor_new, rows, succ2, file_values2, history, dropped2, n123_2, v, pos, alph,
         )  # fmt: skip
         alpha_keys = [keys[i] for i in alph[:n].tolist()]
-        tsgs, tsge, tskp, tski, tskc = trigram_bands(starts, pos, value3, lower, alpha_keys, n, skyband_k, skyband_min)
+        tsgs, tsge, tskp, tski, tskc = trigram_bands(ctx_starts, pos, value3, lower, alpha_keys, n, skyband_k, skyband_min)
         sections += [
-            (b"TROW", u4, trow),
-            (b"TCTU", idt, ctx_u),
             (b"TCTB", u4, tctb),
-            (b"TCTO", tcto_dtype, tcto),
+            *EXACT.encode(CONTEXT_TAGS, lengths),
             (b"TSUC", idt, pos),
             *EXACT.encode(TRIGRAM_TAGS, value3),
-            (b"TLNI", u4, long_ctx),
+            (b"TLNI", u4, big[long_ctx]),
             (b"TLNV", u4, tlnv),
-            (b"TDRI", u4, tdri),
+            (b"TDRI", u4, big[tdri]),
             (b"TDRV", u4, dropped3[tdri]),
             (b"TSGS", u4, tsgs),
             (b"TSGE", u4, tsge),
@@ -1363,8 +1366,8 @@ def _check_ngram_arrays(name: str, meta: dict[str, Any], a: dict[str, np.ndarray
     """Lengths, offsets and ids of the Kneser-Ney and trigram sections (format 1.4).
 
     Always (cost of the vocabulary, the sparse tables and the first/last entries, so that
-    opening stays fast): every length against META, TROW and TCTB increasing from 0, the
-    last context ending at the last trigram, the sparse tables sorted and in range.
+    opening stays fast): every length against META, TCTB increasing from 0, the last
+    bigram entry's trigrams ending at the last trigram, the sparse tables sorted and in range.
     Queries check every other value where they read it. With ``full``: the orderings,
     totals, n₁/n₂/n₃₊, summaries and skybands recomputed from the stored values (``keys``:
     the vocabulary in alphabetical order, given only for that).
@@ -1380,26 +1383,24 @@ def _check_ngram_arrays(name: str, meta: dict[str, Any], a: dict[str, np.ndarray
     if len(a["HDRI"]) and bool(np.any(a["HDRV"] > a["HIST"][a["HDRI"]])):
         raise _fail(name, "section HDRV holds dropped mass above its context total")
     if meta["order"] == 3:
-        t, j = meta["trigrams"], meta["trigram_contexts"]
+        t, j, b = meta["trigrams"], meta["trigram_contexts"], meta["bigrams"]
         EXACT.check(name, a, TRIGRAM_TAGS, t)
+        EXACT.check(name, a, CONTEXT_TAGS, b)
         nseg, K = len(a["TSGS"]), meta["skyband_k"]
         expected = {
-            "TROW": n_hist + 1, "TCTU": j, "TCTB": j // CTX_BLOCK + 1, "TCTO": j + 1, "TSUC": t,
+            "TCTB": b // CTX_BLOCK + 1, "TSUC": t,
             "TLNV": 4 * len(a["TLNI"]), "TDRV": len(a["TDRI"]), "TSGE": nseg, "TSKP": nseg + 1, "TSKC": nseg * K,
         }  # fmt: skip
         for label, want in expected.items():
             if len(a[label]) != want:
                 raise _fail(name, f"section {label} holds {len(a[label])} entries, expected {want}")
-        trow = a["TROW"]
-        if trow[0] != 0 or trow[-1] != j or np.any(trow[1:] < trow[:-1]):
-            raise _fail(name, f"section TROW offsets are not increasing from 0 to {j}")
         tctb = a["TCTB"]
-        if tctb[0] != 0 or a["TCTO"][0] != 0 or np.any(tctb[1:] < tctb[:-1]) or int(tctb[-1]) + int(a["TCTO"][j]) != t:
-            raise _fail(name, f"sections TCTB/TCTO do not run from 0 to {t}")
-        if int(trow[n + 1]) != int(trow[n]):
-            raise _fail(name, "section TROW gives </s> trigram contexts")
-        _sorted_sparse(name, "TLNI/TLNV", a["TLNI"], np.ones(len(a["TLNI"]), np.int64), j)
-        _sorted_sparse(name, "TDRI/TDRV", a["TDRI"], a["TDRV"], j)
+        last = (b // CTX_BLOCK) * CTX_BLOCK  # the end: the last block's base + its lengths (at most 15 reads)
+        tail = EXACT.decode(name, a, CONTEXT_TAGS).slice(last, b)
+        if tctb[0] != 0 or np.any(tctb[1:] < tctb[:-1]) or int(tctb[-1]) + sum(tail) != t:
+            raise _fail(name, f"sections TCTB/TLEN do not run from 0 to {t}")
+        _sorted_sparse(name, "TLNI/TLNV", a["TLNI"], np.ones(len(a["TLNI"]), np.int64), b)
+        _sorted_sparse(name, "TDRI/TDRV", a["TDRI"], a["TDRV"], b)
         if a["TSKP"][0] != 0 or int(a["TSKP"][-1]) != len(a["TSKI"]):
             raise _fail(name, "section TSKP does not run from 0 to the end of TSKI")
     if keys is None:
@@ -1416,21 +1417,26 @@ def _check_ngram_arrays(name: str, meta: dict[str, Any], a: dict[str, np.ndarray
     if kn and not np.array_equal(n123_2.reshape(-1), a["HN13"]):
         raise _fail(name, "section HN13 disagrees with the bigram values")
     if meta["order"] == 3:
-        t, j = meta["trigrams"], meta["trigram_contexts"]
+        t, j, b = meta["trigrams"], meta["trigram_contexts"], meta["bigrams"]
         EXACT.check_full(name, a, TRIGRAM_TAGS)
-        trow, tctu = a["TROW"].astype(np.int64), a["TCTU"].astype(np.int64)
-        starts = context_starts(a["TCTB"], a["TCTO"])
-        if np.any(starts[1:] <= starts[:-1]) or np.any(a["TCTB"].astype(np.int64) != starts[::CTX_BLOCK]):
-            raise _fail(name, "sections TCTB/TCTO: a context without successors, or a block base that is not its first start")
-        if j and int(tctu.max()) >= n_hist:
-            raise _fail(name, "section TCTU holds an id out of range")
+        small, esc = a["TLEN"], a["TLEI"]
+        if len(esc) > 1 and bool(np.any(esc[1:] <= esc[:-1])) or not np.array_equal(np.flatnonzero(small == COUNT_ESCAPE), esc):
+            raise _fail(name, "sections TLEN and TLEI disagree")
+        lengths = EXACT.decode(name, a, CONTEXT_TAGS).all()
+        all_starts = np.zeros(b + 1, dtype=np.int64)
+        np.cumsum(lengths, out=all_starts[1:])
+        if all_starts[-1] != t or not np.array_equal(a["TCTB"].astype(np.int64), all_starts[: b + 1 : CTX_BLOCK]):
+            raise _fail(name, "section TCTB does not hold the block bases of TLEN")
+        big = np.flatnonzero(lengths)
+        if len(big) != j:
+            raise _fail(name, f"section TLEN has {len(big)} trigram contexts, metadata says {j}")
+        starts = np.concatenate([all_starts[big], [t]])
+        ctx_v = a["ALPH"].astype(np.int64)[a["SUCC"].astype(np.int64)[big]]
+        if j and (int(ctx_v.max()) >= n_pos or bool(np.any(ctx_v == n))):
+            raise _fail(name, "section TLEN gives a trigram context ending in </s>")
         tsuc = a["TSUC"].astype(np.int64)
         if t and int(tsuc.max()) >= n_pos:
             raise _fail(name, "section TSUC holds a position out of range")
-        ctx_v = np.repeat(np.arange(n_hist), np.diff(trow))
-        ckey = ctx_v * n_hist + tctu
-        if len(ckey) > 1 and np.any(ckey[1:] <= ckey[:-1]):
-            raise _fail(name, "section TCTU is not strictly increasing within each context word")
         owner = np.repeat(np.arange(j), np.diff(starts))
         skey = owner * n_pos + tsuc
         if len(skey) > 1 and np.any(skey[1:] <= skey[:-1]):
@@ -1441,11 +1447,17 @@ def _check_ngram_arrays(name: str, meta: dict[str, Any], a: dict[str, np.ndarray
         sums = np.bincount(owner, weights=val, minlength=j).astype(np.int64)
         n123_3 = _n123(owner, val, j)
         long_ctx = np.flatnonzero(np.diff(starts) > SUMMARY_MIN)
-        if not np.array_equal(a["TLNI"], long_ctx) or not np.array_equal(
+        if not np.array_equal(a["TLNI"], big[long_ctx]) or not np.array_equal(
             np.column_stack([sums[long_ctx], n123_3[long_ctx]]).reshape(-1), a["TLNV"]
         ):
             raise _fail(name, "sections TLNI/TLNV are not the summaries of the long trigram contexts")
-        if int((sums + 0).max(initial=0)) > _U32_MAX:
+        dropped3 = np.zeros(b, dtype=np.int64)
+        dropped3[a["TDRI"].astype(np.int64)] = a["TDRV"]
+        not_ctx = np.ones(b, dtype=bool)
+        not_ctx[big] = False
+        if bool(np.any(dropped3[not_ctx])):
+            raise _fail(name, "section TDRI names a bigram entry that is no trigram context")
+        if int((sums + dropped3[big]).max(initial=0)) > _U32_MAX:
             raise _fail(name, "a trigram context total above 32 bits")
         from .estimators import unigram_floor
 

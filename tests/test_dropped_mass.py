@@ -37,9 +37,9 @@ from test_model_kn import WORDS, random_messages
 SETTINGS = settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
 
 
-def _prune(level: Level, rng: random.Random, frac: float) -> Level:
-    """The level without a random ``frac`` of its n-grams; contexts and totals kept."""
-    keep = np.array([rng.random() >= frac for _ in range(len(level.value))], dtype=bool)
+def _prune(level: Level, rng: random.Random, frac: float, protect: set[tuple[int, ...]] = frozenset()) -> Level:  # type: ignore[assignment]
+    """The level without a random ``frac`` of its n-grams (never one in ``protect``); contexts and totals kept."""
+    keep = np.array([rng.random() >= frac or tuple(g) in protect for g in level.grams.tolist()], dtype=bool)
     owner = np.repeat(np.arange(len(level.ctx)), np.diff(level.ctx_start))
     starts = np.zeros(len(level.ctx) + 1, dtype=np.int64)
     starts[1:] = np.cumsum(np.bincount(owner[keep], minlength=len(level.ctx)))
@@ -107,7 +107,10 @@ def test_pruned_levels_sum_to_one_and_rank_exactly(tmp_path_factory: pytest.Temp
     kn = smoothing == "kn"
     est = KneserNey() if kn else JelinekMercer((0.8, 0.6))
     fitted = est.fit(counts)
-    fitted.levels = [fitted.levels[0], _prune(fitted.levels[1], rng, frac / 2), _prune(fitted.levels[2], rng, frac)]
+    lev3 = _prune(fitted.levels[2], rng, frac)
+    # a trigram context (u, v) must stay a stored bigram (docs/FORMAT.md §7.14)
+    contexts = {tuple(g[:2]) for g in lev3.grams.tolist()}
+    fitted.levels = [fitted.levels[0], _prune(fitted.levels[1], rng, frac / 2, contexts), lev3]
     path = tmp_path_factory.mktemp("drop") / "m.nwm"
     extra = {"skyband_min": 1, "skyband_k": 3} if small_bands else {}
     build(counts, tables, est, path, fitted=fitted, **extra)  # type: ignore[arg-type]

@@ -1006,7 +1006,7 @@ def test_the_title_names_every_version_the_readers_accept() -> None:
 # Format 1.4 (§7.11–7.16, §9.7): Kneser-Ney and the two-word context, read from the
 # document alone (the reader above does §§3–8 of the common sections).
 
-TRIGRAM_14 = {"TROW": "u32", "TCTU": "id", "TCTB": "u32", "TCTO": "u16|u32", "TSUC": "id", "TVAL": "u8",
+TRIGRAM_14 = {"TCTB": "u32", "TLEN": "u8", "TLEI": "u32", "TLEV": "u32", "TSUC": "id", "TVAL": "u8",
               "TBGI": "u32", "TBGC": "u32", "TLNI": "u32", "TLNV": "u32", "TDRI": "u32", "TDRV": "u32",
               "TSGS": "u32", "TSGE": "u32", "TSKP": "u32", "TSKI": "u16|u32", "TSKC": "u16|u32"}  # fmt: skip
 BASE_14 = {"HIST": "u32", "HDRI": "id", "HDRV": "u32"}
@@ -1069,15 +1069,24 @@ class NgramReader(NwmReader):
         c, t = m["trigram_contexts"], m["trigrams"]
         if m["trigram_summary_min"] != SUMMARY_MIN:
             raise FormatError("trigram_summary_min")
-        trow = a["TROW"].astype(np.int64)
-        if len(trow) != n + 4 or trow[0] != 0 or trow[-1] != c or np.any(np.diff(trow) < 0) or trow[n] != trow[n + 1]:
-            raise FormatError("TROW")
-        if len(a["TCTU"]) != c or len(a["TCTB"]) != c // 16 + 1 or len(a["TCTO"]) != c + 1:
-            raise FormatError("TCTU/TCTB/TCTO lengths")
-        # §7.14: start(j) = TCTB[j // 16] + TCTO[j]
-        self.starts = a["TCTB"].astype(np.int64)[np.arange(c + 1) // 16] + a["TCTO"].astype(np.int64)
-        if self.starts[0] != 0 or self.starts[-1] != t or np.any(np.diff(self.starts) <= 0):
-            raise FormatError("TCTB/TCTO starts")
+        b = m["bigrams"]
+        # §7.14: a context is a bigram entry; TLEN (escapes as §7.12) gives its number of trigrams
+        lens = a["TLEN"].astype(np.int64)
+        tlei = a["TLEI"].astype(np.int64)
+        if len(lens) != b or not np.array_equal(np.flatnonzero(lens == ESCAPE), tlei) or len(a["TLEV"]) != len(tlei):
+            raise FormatError("TLEN/TLEI/TLEV")
+        if np.any(a["TLEV"] < ESCAPE):
+            raise FormatError("TLEV")
+        lens[tlei] = a["TLEV"]
+        self.lengths = lens
+        all_starts = np.concatenate([[0], np.cumsum(lens)])
+        if len(a["TCTB"]) != b // 16 + 1 or not np.array_equal(a["TCTB"], all_starts[: b + 1 : 16]) or all_starts[-1] != t:
+            raise FormatError("TCTB")
+        self.all_starts = all_starts
+        self.ctx_entry = np.flatnonzero(lens)  # the bigram entry of each context, in order
+        if len(self.ctx_entry) != c:
+            raise FormatError("trigram_contexts")
+        self.starts = np.concatenate([all_starts[self.ctx_entry], [t]])
         # §7.12: the exact codec
         val = a["TVAL"].astype(np.int64)
         tbgi = a["TBGI"].astype(np.int64)
@@ -1093,7 +1102,7 @@ class NgramReader(NwmReader):
         # §7.15: summaries of the long contexts, dropped mass
         sums = np.bincount(owner, weights=val, minlength=c).astype(np.int64)
         long_ctx = np.flatnonzero(np.diff(self.starts) > SUMMARY_MIN)
-        if not np.array_equal(a["TLNI"], long_ctx):
+        if not np.array_equal(a["TLNI"], self.ctx_entry[long_ctx]):  # §7.15: by bigram entry index
             raise FormatError("TLNI")
         tlnv = a["TLNV"].reshape(-1, 4)
         for i, j in enumerate(long_ctx.tolist()):
@@ -1102,9 +1111,9 @@ class NgramReader(NwmReader):
             if tlnv[i].tolist() != want:
                 raise FormatError("TLNV")
         tdri = a["TDRI"].astype(np.int64)
-        if len(tdri) != len(a["TDRV"]) or np.any(np.diff(tdri) <= 0) or np.any(tdri >= c) or np.any(a["TDRV"] < 1):
+        if len(tdri) != len(a["TDRV"]) or np.any(np.diff(tdri) <= 0) or np.any(lens[tdri] == 0) or np.any(a["TDRV"] < 1):
             raise FormatError("TDRI/TDRV")
-        self.dropped3 = np.zeros(c, dtype=np.int64)
+        self.dropped3 = np.zeros(b, dtype=np.int64)  # by bigram entry
         self.dropped3[tdri] = a["TDRV"]
 
     def floor(self, w: int) -> float:  # §9.7 P1
@@ -1140,9 +1149,14 @@ class NgramReader(NwmReader):
         return p
 
     def context(self, u: int, v: int) -> int:
-        lo, hi = int(self.a["TROW"][v]), int(self.a["TROW"][v + 1])
-        us = self.a["TCTU"][lo:hi].tolist()
-        return lo + us.index(u) if u in us else -1
+        """§7.14: the bigram entry of (u, v) if it is a trigram context, else −1."""
+        s, e = int(self.a["ROWS"][u]), int(self.a["ROWS"][u + 1])
+        succ = self.a["SUCC"][s:e].tolist()
+        p = int(self.a["APOS"][v])
+        if p not in succ:
+            return -1
+        i = s + succ.index(p)
+        return i if self.lengths[i] else -1
 
     def prob3(self, ctx: tuple[int, ...], w: int) -> float:
         """§9.7 for a context of ids (u, v) or (v,)."""
@@ -1151,7 +1165,7 @@ class NgramReader(NwmReader):
         if self.kind[1] == 3 and len(ctx) == 2:
             j = self.context(ctx[0], ctx[1])
             if j >= 0:
-                s, e = int(self.starts[j]), int(self.starts[j + 1])
+                s, e = int(self.all_starts[j]), int(self.all_starts[j]) + int(self.lengths[j])
                 succ = a["TSUC"][s:e].tolist()
                 vals = self.tval[s:e]
                 pos = int(a["APOS"][w])
@@ -1166,7 +1180,7 @@ class NgramReader(NwmReader):
         a, K = self.a, self.meta["skyband_k"]
         segs, sege = a["TSGS"].astype(np.int64), a["TSGE"].astype(np.int64)
         skyp, skyi, skyc = a["TSKP"].astype(np.int64), a["TSKI"].astype(np.int64), a["TSKC"].astype(np.int64)
-        ctx_v = np.repeat(np.arange(self.n + 3), np.diff(a["TROW"].astype(np.int64)))
+        ctx_v = a["ALPH"][a["SUCC"][self.ctx_entry].astype(np.int64)].astype(np.int64)  # each context's v
         for i, (s, e) in enumerate(zip(segs.tolist(), sege.tolist())):
             j = int(np.searchsorted(self.starts, s, side="right") - 1)
             assert self.starts[j] <= s < e <= self.starts[j + 1]
@@ -1239,7 +1253,7 @@ def test_worked_kn_trigram_example() -> None:
                 for m in re.finditer(r"^([A-Z0-9]{4}) = \[([^\]]*)\]$", chunk, re.M)}  # fmt: skip
 
     q1, q2 = quoted(first), quoted(second)
-    assert set(q1) == {"UNIG", "HIST", "HN13", "TROW", "TCTU", "TCTB", "TCTO", "TSUC", "TVAL", "TSKP"}
+    assert set(q1) == {"UNIG", "HIST", "HN13", "TCTB", "TLEN", "TSUC", "TVAL", "TSKP"}
     assert set(q2) == {"TSGS", "TSGE", "TSKP", "TSKI", "TSKC"}
     msgs = ["I am Sam.", "Sam I am.", "I do not like green eggs and ham."]
     with tempfile.TemporaryDirectory() as d:
@@ -1248,9 +1262,11 @@ def test_worked_kn_trigram_example() -> None:
         r = NgramReader(path)
         for tag, values in q1.items():
             assert r.a[tag].tolist() == values, tag
-        for tag in ("HDRI", "HDRV", "TDRI", "TDRV", "TBGI", "TBGC", "TLNI", "TLNV", "TSGS", "TSGE", "TSKI", "TSKC"):
+        for tag in ("HDRI", "HDRV", "TDRI", "TDRV", "TBGI", "TBGC", "TLEI", "TLEV", "TLNI", "TLNV", "TSGS", "TSGE", "TSKI", "TSKC"):
             assert len(r.a[tag]) == 0, tag  # the text says these are empty
-        assert r.a["TCTO"].dtype == np.dtype("<u2") and r.id_type == "u16"
+        assert r.id_type == "u16"
+        assert r.a["ROWS"].tolist() == [0, 2, 4, 6, 7, 8, 9, 10, 11, 12, 13, 13, 13, 15]  # quoted in the text
+        assert r.a["SUCC"].tolist() == [0, 2, 6, 10, 9, 10, 5, 8, 1, 3, 10, 4, 7, 6, 9]
         assert r.keys[:10] == ["i", "sam", "am", "and", "do", "eggs", "green", "ham", "like", "not"]
         assert r.d == [[2 / 3] * 3, [13 / 17] * 3, [0.5] * 3]
         # P(sam | i am) = 1/4 + (1/2)(2/17 + (13/17)(7/54)) = 329/918
