@@ -1175,6 +1175,8 @@ class _NgramScorer:
             sm, n1, n2 = sum(vals), vals.count(1), vals.count(2)
             n3 = len(vals) - n1 - n2
         tot = sm + self._sparse(self._tdri, self._tdrv, j)
+        if tot <= 0:
+            raise self._damaged(f"trigram context {j} has a total of {tot}")
         if self.kn:
             d = self.d3
             return tot, (tot - sm + d[0] * n1 + d[1] * n2 + d[2] * n3) / tot

@@ -217,3 +217,101 @@ def test_the_exact_codec_round_trips_values_with_escapes() -> None:
     assert view.slice(2, 7) == values[2:7].tolist()
     assert view.take(np.array([7, 0, 4])).tolist() == [2**32 - 1, 1, 256]
     assert view.all().tolist() == values.tolist()
+
+
+# -- hostile 1.4 files: every new section's length, offsets and values, CRCs fixed ----------
+
+NEW_SECTIONS = [b"HIST", b"HN13", b"HDRI", b"HDRV", b"TCTB", b"TLEN", b"TLEI", b"TLEV", b"TSUC", b"TVAL", b"TBGI",
+                b"TBGC", b"TLNI", b"TLNV", b"TDRI", b"TDRV", b"TSGS", b"TSGE", b"TSKP", b"TSKI", b"TSKC"]  # fmt: skip
+
+
+def _syllables(count: int) -> list[str]:
+    return [a + b for a in ("ba", "de", "ki", "lo", "mu", "ra", "so", "tu") for b in ("n", "m", "x", "z", "p", "t", "k", "l")][:count]
+
+
+@pytest.fixture(scope="module")
+def rich_kn3(tmp_path_factory: pytest.TempPathFactory) -> bytes:
+    """A KN trigram file with escaped values (a trigram seen 300 times), an escaped length (a
+    context with 300 successors), stored summaries, bands (skyband_min 4) and dropped mass."""
+    words = [w + v for w in _syllables(64) for v in ("a", "e", "o", "i", "u", "y")]  # 384: over 255 after pruning
+    msgs = ["the cat sat on the mat"] * 300 + [f"of the {w}" for w in words]
+    b = CountBuilder(order=3)
+    b.add_texts(msgs)
+    tables, counts = b.ngram_counts(min_count=1)
+    est = KneserNey()
+    fitted = est.fit(counts)
+    rng = random.Random(1)
+    lev3 = _prune(fitted.levels[2], rng, 0.2)
+    fitted.levels = [fitted.levels[0], _prune(fitted.levels[1], rng, 0.1, {tuple(g[:2]) for g in lev3.grams.tolist()}), lev3]
+    path = tmp_path_factory.mktemp("rich") / "m.nwm"
+    build(counts, tables, est, path, fitted=fitted, skyband_min=4, skyband_k=3)
+    a = nextword.store.read_model(path, verify=True).arrays
+    for tag in ("TBGI", "TLEI", "TLNI", "TDRI", "HDRI", "TSGS"):
+        assert len(a[tag]), tag  # the fixture exercises every sparse table
+    return path.read_bytes()
+
+
+def _ask(m: nextword.Model) -> None:
+    for hist in (["of", "the"], ["the", "cat"], ["<s>", "the"], ["on", "the"], ["the"], ["<s>"]):
+        for prefix in ("", "b", "t", "ma", "de"):
+            for k in (1, 3, 12):
+                try:
+                    got = m.rank_after(hist, prefix, k)
+                except ModelFormatError:
+                    continue
+                assert all(0.0 <= p <= 1.0 + 1e-9 for _, p in got)
+        for w in ("the", "mat", "bana", "</s>", "<unk>"):
+            try:
+                p = m.prob_after(w, hist)
+            except ModelFormatError:
+                continue
+            assert 0.0 <= p <= 1.0 + 1e-9
+    for typed in ("of the ", "of the b", "The cat ", "on the m"):
+        try:
+            m.suggest(typed, 3)
+        except ModelFormatError:
+            pass
+
+
+def _mutations(buf: bytes, tag: bytes) -> list[bytes]:
+    """Changed copies: first/last/middle element set to 0, to the maximum, +1; one element shorter."""
+    out = []
+    n_sec = HEADER.unpack_from(buf, 0)[3]
+    for i in range(n_sec):
+        at = HEADER.size + i * ENTRY.size
+        t, code, off, length, crc = ENTRY.unpack_from(buf, at)
+        if t != tag:
+            continue
+        item = {1: 1, 2: 2, 3: 4, 4: 8}[code]
+        fmt = {1: "<B", 2: "<H", 3: "<I", 4: "<Q"}[code]
+        count = length // item
+        for idx in sorted({0, count // 2, count - 1}) if count else []:
+            old = struct.unpack_from(fmt, buf, off + idx * item)[0]
+            for new in (0, (1 << (8 * item)) - 1, (old + 1) % (1 << (8 * item))):
+                b = bytearray(buf)
+                struct.pack_into(fmt, b, off + idx * item, new)
+                _recrc(b)
+                out.append(bytes(b))
+        if count:
+            b = bytearray(buf)
+            ENTRY.pack_into(b, at, t, code, off, length - item, crc)
+            b[off + length - item : off + length] = bytes(item)  # now padding: zeros
+            _recrc(b)
+            out.append(bytes(b))
+    return out
+
+
+@pytest.mark.parametrize("tag", NEW_SECTIONS, ids=[t.decode() for t in NEW_SECTIONS])
+def test_crafted_changes_to_each_1_4_section_raise_or_answer_in_range(rich_kn3: bytes, tmp_path: Path, tag: bytes) -> None:
+    # only ModelFormatError may come out of load or any query: no IndexError, no crash, no P > 1
+    m0 = None
+    for j, data in enumerate(_mutations(rich_kn3, tag)):
+        path = tmp_path / f"bad{j}.nwm"
+        path.write_bytes(data)
+        for verify in (False, True):
+            try:
+                m0 = nextword.load(path, verify=verify)
+            except ModelFormatError:
+                continue
+            _ask(m0)
+    assert _mutations(rich_kn3, tag)  # every new section is present and was changed
