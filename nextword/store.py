@@ -1165,7 +1165,9 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
         raise _fail(name, "header checksum mismatch (damaged file)")
     if major != FORMAT_VERSION[0] or minor > MAX_MINOR:
         raise _fail(
-            name, f"unsupported format version {major}.{minor} (this library reads {FORMAT_VERSION[0]}.0 to {FORMAT_VERSION[0]}.{MAX_MINOR})"
+            name,
+            f"unsupported format version {major}.{minor} (this library reads {FORMAT_VERSION[0]}.0 to "
+            f"{FORMAT_VERSION[0]}.2 and {FORMAT_VERSION[0]}.{MAX_MINOR})",
         )
     if minor == 3:
         raise _fail(
