@@ -14,8 +14,9 @@ import time
 from collections import Counter
 from typing import Any, Callable, Iterable
 
+from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT
 from .errors import InvalidArgumentError
-from .text import BOS, EOS, UNK, fold, parse_typed, sentences
+from .text import BOS, EOS, UNK, fold, normalize, parse_typed, sentences, word_spans
 
 __all__ = ["DictBigram", "key_sentences", "nltk_baseline", "sample_queries", "time_queries"]
 
@@ -41,7 +42,7 @@ def key_sentences(messages: Iterable[str], *, min_count: int, max_vocab: int) ->
 class DictBigram:
     """Counts in dicts; ``rank`` scores all words, sorts, and takes the first k."""
 
-    def __init__(self, messages: Iterable[str], *, min_count: int = 2, max_vocab: int = 30_000) -> None:
+    def __init__(self, messages: Iterable[str], *, min_count: int = DEFAULT_MIN_COUNT, max_vocab: int = DEFAULT_MAX_VOCAB) -> None:
         streams, self.vocab = key_sentences(messages, min_count=min_count, max_vocab=max_vocab)
         self.known = known = set(self.vocab)
         self.unigram: Counter[str] = Counter()
@@ -91,9 +92,6 @@ class DictBigram:
 
 def sample_queries(messages: Iterable[str], n: int) -> list[str]:
     """The first ``n`` typed texts the keystroke simulation would ask about."""
-    from .evaluate import word_spans
-    from .text import normalize
-
     out: list[str] = []
     for message in messages:
         message = normalize(message)
@@ -125,7 +123,7 @@ def nltk_baseline(
     k: int,
     lam: float,
     *,
-    min_count: int = 2,
+    min_count: int = DEFAULT_MIN_COUNT,
     progress: Callable[[int], None] | None = None,
 ) -> dict[str, Any]:
     """Fit nltk.lm's bigram MLE on the same tokens and answer top-k queries by scoring the vocabulary.

@@ -18,10 +18,11 @@ from typing import Any, NoReturn, Sequence
 
 from . import __version__
 from ._progress import Progress
+from .build import DEFAULT_LAMBDA, SMOOTHINGS, TRAIN_ORDERS, train, train_texts
 from .corpus import FORMATS, iter_messages, open_sources
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, PARALLEL_MIN_BYTES
 from .errors import InputDataError, InvalidArgumentError, NextwordError
-from .model import DEFAULT_LAMBDA, SMOOTHINGS, TRAIN_ORDERS, Model, load, train, train_texts
+from .model import Model, load
 from .paths import Labelled, check_outputs, check_writable
 from .serve import DEFAULT_MAX_OPEN_USERS
 from .prune import DEFAULT_RULE

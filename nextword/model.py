@@ -16,41 +16,28 @@ import bisect
 import math
 import os
 import sys
-import time
-from dataclasses import dataclass
-from typing import Any, Iterable, Iterator, NamedTuple, Sequence
+from typing import Any, Callable, Iterable, Iterator, NamedTuple, Sequence
 
 import numpy as np
 
-from ._progress import DEFAULT_TICK, Progress
-from .corpus import Format, iter_messages, open_sources
-from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables, auto_workers, count_in_processes
 from .codecs import codec_named
 from .estimators import unigram_floor
-from .errors import InputDataError, InvalidArgumentError, ModelFormatError
-from .prune import DEFAULT_RULE
+from .errors import InvalidArgumentError, ModelFormatError
+from .candidates import CandidateRange, PrefixRange, merge_ranked
 from .store import (
     COUNT_ESCAPE,
-    DEFAULT_SKYBAND_K,
-    DEFAULT_SKYBAND_MIN,
-    MAX_LAMBDA,
-    SUMMARY_MIN,
-    TOPK_FANOUT,
-    TRIGRAM_TAGS,
     CONTEXT_TAGS,
     CTX_BLOCK,
+    MAX_LAMBDA,
+    SUMMARY_MIN,
+    TRIGRAM_TAGS,
     ModelArrays,
     read_model,
-    key_head,
-    topk_levels,
-    write_model,
 )
-from .text import BOS, EOS, UNK, fold, parse_typed, sentences
+from .text import BOS, EOS, UNK, fold, parse_typed, recase, sentences
 
-__all__ = ["Model", "Suggestion", "TrainReport", "train", "train_texts", "load", "DEFAULT_LAMBDA", "SMOOTHINGS", "TRAIN_ORDERS"]
+__all__ = ["Model", "Suggestion", "load", "check_k", "check_lam"]
 
-#: Weight of the bigram estimate; a value near 0.9 is the usual starting point (common practice).
-DEFAULT_LAMBDA = 0.9
 #: sections whose size grows with the number of stored pairs, and with the vocabulary (for ``info``)
 _PAIR_SECTIONS = ("SUCC", "CNTS", "BIGI", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC")
 _VOCAB_SECTIONS = ("TKID", "IDTK", "ALPH", "APOS", "KEY4", "TOPK", "UNIG", "ROWS", "HIST", "DISI", "DISO")
@@ -71,32 +58,15 @@ class Suggestion(NamedTuple):
     prob: float
 
 
-@dataclass(frozen=True, slots=True)
-class TrainReport:
-    """What :func:`train` did: sizes, corpus statistics and timings."""
-
-    path: str
-    n_words: int
-    n_bigrams: int
-    word_tokens: int
-    messages: int
-    file_bytes: int
-    count_seconds: float
-    build_seconds: float
-
-    @property
-    def words_per_second(self) -> float:
-        total = self.count_seconds + self.build_seconds
-        return self.word_tokens / total if total > 0 else 0.0
-
-
-def _check_lam(lam: float) -> float:
+def check_lam(lam: float) -> float:
+    """``lam`` as a float if it is a number in [0, 1], else :class:`InvalidArgumentError` (a query's λ override)."""
     if isinstance(lam, bool) or not isinstance(lam, (int, float)) or not 0.0 <= lam <= 1.0:
         raise InvalidArgumentError(f"lam must be a number in [0, 1], got {lam!r}")
     return float(lam)
 
 
-def _check_k(k: int) -> int:
+def check_k(k: int) -> int:
+    """``k`` if it is an integer >= 1, else :class:`InvalidArgumentError` (how many suggestions a query returns)."""
     if isinstance(k, bool) or not isinstance(k, int) or k < 1:
         raise InvalidArgumentError(f"k must be an integer >= 1, got {k!r}")
     return k
@@ -108,24 +78,6 @@ def _native_view(arr: np.ndarray) -> memoryview:
         arr = arr.astype(arr.dtype.newbyteorder("="))
     fmt = {1: "B", 2: "H", 4: "I", 8: "Q"}[arr.dtype.itemsize]
     return memoryview(np.ascontiguousarray(arr)).cast("B").cast(fmt)  # type: ignore[arg-type,call-overload]
-
-
-class _AlphaKeys:
-    """Sequence view of the vocabulary keys in alphabetical order, truncated to a length."""
-
-    __slots__ = ("restore", "idtk", "alph", "length")
-
-    def __init__(self, restore: Any, idtk: memoryview, alph: memoryview, length: int) -> None:
-        self.restore = restore
-        self.idtk = idtk
-        self.alph = alph
-        self.length = length
-
-    def __len__(self) -> int:
-        return len(self.alph) - 2
-
-    def __getitem__(self, i: int) -> str:
-        return self.restore(self.idtk[self.alph[i]])[: self.length]  # type: ignore[no-any-return]
 
 
 class Model:
@@ -151,7 +103,7 @@ class Model:
         stored += [float(x) for x in buckets.get("lambdas", [])]
         self.lambda_clamped: bool = max(stored) > MAX_LAMBDA
         self.stored_lam: float = min(stored[0], MAX_LAMBDA)
-        self.lam: float = self.stored_lam if lam is None else _check_lam(lam)
+        self.lam: float = self.stored_lam if lam is None else check_lam(lam)
         self.lambda_bounds: list[int] = list(buckets.get("bounds", []))
         self.lambda_values: list[float] = [min(x, MAX_LAMBDA) for x in stored[1:]]
         self._override = lam is not None
@@ -180,17 +132,18 @@ class Model:
         self._mv_segs, self._mv_sege, self._mv_skyp = mv["SEGS"], mv["SEGE"], mv["SKYP"]
         self._mv_cnts = memoryview(np.ascontiguousarray(a["CNTS"])).cast("B")  # type: ignore[arg-type]
         self._mv_bigi, self._mv_bigc, self._mv_skyi = mv["BIGI"], mv["BIGC"], mv["SKYI"]
-        # multi-level prefix top lists as 2-D views (blocks x FANOUT)
-        self._levels: list[np.ndarray] = []
-        start = 0
-        for nb in topk_levels(n):
-            self._levels.append(a["TOPK"][start : start + nb * TOPK_FANOUT].reshape(nb, TOPK_FANOUT))
-            start += nb * TOPK_FANOUT
         self._apos = a["APOS"]
-        # small caches of pure functions of the file (keyboards repeat prefixes constantly);
-        # dict reads and writes are atomic, so sharing a Model between threads stays safe
-        self._range_cache: dict[str, tuple[int, int]] = {}
-        self._top_cache: dict[tuple[int, int, int], list[int]] = {}
+        # which words a query considers (docs/SEAMS.md, the candidate seam): exact prefixes today
+        self._candidates = PrefixRange(
+            trie=self._trie, idtk=self._mv_idtk, alph_view=self._mv_alph, key4=self._mv_key4,
+            alph=self._alph, topk=a["TOPK"], n_words=n, max_key_chars=self._max_key,
+        )
+        #: alphabetical positions [lo, hi) of the words starting with a folded prefix
+        self._prefix_range: Callable[[str], tuple[int, int]] = self._candidates.span
+        #: the k most frequent word ids of an alphabetical range (the ranking's lower bound)
+        self._range_top_ids: Callable[[int, int, int], list[int]] = self._candidates.top_ids
+        # a small cache of a pure function of the file; dict reads and writes are atomic,
+        # so sharing a Model between threads stays safe
         self._display_cache: dict[int, str] = {}
         self._big: dict[int, int] | None = None
         #: the smoothing method ("jm" or "kn") and n-gram order (2 or 3) the file stores
@@ -383,7 +336,7 @@ class Model:
         Words are case-insensitive. ``'</s>'`` asks for the end of the sentence; a word
         outside the vocabulary gets the probability of ``<unk>``, as in perplexity.
         """
-        lam = None if lam is None else _check_lam(lam)
+        lam = None if lam is None else check_lam(lam)
         v = self._history_id(previous_word)
         if self._general:
             return self._ng.prob(self._predicted_id(word), (v,), self._ng_lams(lam))
@@ -396,7 +349,7 @@ class Model:
         model reads only the last token, an order-3 model the last two. For a
         Jelinek-Mercer bigram this is :meth:`prob` with ``history[-1]``.
         """
-        lam = None if lam is None else _check_lam(lam)
+        lam = None if lam is None else check_lam(lam)
         ctx = self._context_ids(history)
         if self._general:
             return self._ng.prob(self._predicted_id(word), ctx, self._ng_lams(lam))
@@ -429,7 +382,7 @@ class Model:
         The parts of :meth:`perplexity`, so that results over several texts can be pooled.
         The sum is ``-inf`` if a token has probability 0 (possible only with λ = 1).
         """
-        lam = None if lam is None else _check_lam(lam)
+        lam = None if lam is None else check_lam(lam)
         log_sum = 0.0
         events = 0
         if self._general:
@@ -507,79 +460,6 @@ class Model:
         return math.exp(-log_sum / events)
 
     # -- ranking ------------------------------------------------------------------------------
-
-    def _prefix_range(self, key: str) -> tuple[int, int]:
-        """Alphabetical positions [lo, hi) of the words whose key starts with ``key``.
-
-        The 4-byte key heads (KEY4) give the range of prefixes up to 4 UTF-8 bytes with
-        two binary searches over integers; longer prefixes refine it over the keys.
-        """
-        n = self.n_words
-        if not key:
-            return 0, n
-        hit = self._range_cache.get(key)
-        if hit is not None:
-            return hit
-        if len(key) > self._max_key:
-            result = (0, 0)
-        else:
-            head = self._mv_key4
-            lo = bisect.bisect_left(head, key_head(key, 0x00), 0, n)
-            hi = bisect.bisect_right(head, key_head(key, 0xFF), lo, n)
-            if len(key.encode("utf-8")) > 4 and lo < hi:
-                seq = _AlphaKeys(self._trie.restore_key, self._mv_idtk, self._mv_alph, len(key))
-                lo = bisect.bisect_left(seq, key, lo, hi)
-                hi = bisect.bisect_right(seq, key, lo, hi)
-            result = (lo, hi)
-        if len(self._range_cache) > 65536:
-            self._range_cache.clear()
-        self._range_cache[key] = result
-        return result
-
-    def _range_top_ids(self, lo: int, hi: int, k: int) -> list[int]:
-        """The k smallest word ids (= most frequent) among alphabetical positions [lo, hi).
-
-        Uses the stored top lists: the range splits into at most 2·(FANOUT−1) pieces per
-        level plus at most FANOUT top-level blocks, each contributing ≤ k ids, so the work
-        is bounded whatever the number of matching words (for k ≤ FANOUT).
-        """
-        F = TOPK_FANOUT
-        if lo == 0 and hi == self.n_words:
-            return list(range(min(k, hi)))
-        if hi - lo <= 2 * F:
-            return sorted(self._mv_alph[lo:hi].tolist())[:k]
-        hit = self._top_cache.get((lo, hi, k))
-        if hit is not None:
-            return hit
-        if k > F:
-            vals = self._alph[lo:hi]
-        else:
-            pieces = []
-            unit, level, a, b = 1, 0, lo, hi
-            while True:
-                nxt = unit * F
-                A = -(-a // nxt) * nxt
-                B = (b // nxt) * nxt
-                if level == len(self._levels) or A >= B:
-                    pieces.append(self._units(level, a // unit, b // unit, k))
-                    break
-                pieces.append(self._units(level, a // unit, A // unit, k))
-                pieces.append(self._units(level, B // unit, b // unit, k))
-                a, b, unit, level = A, B, nxt, level + 1
-            vals = np.concatenate(pieces)
-        if len(vals) > k:
-            vals = np.partition(vals, k - 1)[:k]
-        vals = np.sort(vals)
-        top: list[int] = vals[vals < self.n_words].tolist()
-        if len(self._top_cache) > 16384:
-            self._top_cache.clear()
-        self._top_cache[lo, hi, k] = top
-        return top
-
-    def _units(self, level: int, i: int, j: int, k: int) -> np.ndarray:
-        if level == 0:
-            return self._alph[i:j]
-        return self._levels[level - 1][i:j, :k].ravel()
 
     def _rank(self, v: int, lo: int, hi: int, k: int, lam: float) -> list[tuple[int, float]]:
         """Top-k (word id, probability) in alphabetical positions [lo, hi) after history v.
@@ -716,19 +596,19 @@ class Model:
         """
         if not isinstance(typed, str):
             raise InvalidArgumentError(f"typed must be str, got {type(typed).__name__}")
-        k = _check_k(k)
-        lam = None if lam is None else _check_lam(lam)
+        k = check_k(k)
+        lam = None if lam is None else check_lam(lam)
         ctx = parse_typed(typed)
         if self._general:
             lams = self._ng_lams(lam)
-            lo, hi = self._prefix_range(fold(ctx.prefix))
-            if lo >= hi:
+            rs = self._candidates.ranges(fold(ctx.prefix))
+            if not rs:
                 return []
             ids = self._context_ids(ctx.history)
             try:
-                ranked = self._ng.rank(ids, lo, hi, k, lams)
+                ranked = self._rank_ranges(self._ng.rank, ids, rs, k, lams)
                 at_start = ids[-1] == self._bos
-                return [Suggestion(_recase(self.display(i), ctx.prefix, at_start), p) for i, p in ranked]
+                return [Suggestion(recase(self.display(i), ctx.prefix, at_start), p) for i, p in ranked]
             except (IndexError, ValueError, UnicodeDecodeError) as e:
                 raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
         if ctx.previous == BOS:
@@ -738,15 +618,18 @@ class Model:
         else:
             wid = self._word_id(fold(ctx.previous))
             v = self._unk if wid is None else wid
-        lo, hi = self._prefix_range(fold(ctx.prefix))
-        if lo >= hi:
+        rs = self._candidates.ranges(fold(ctx.prefix))
+        if not rs:
             return []
         try:
-            ranked = self._rank(v, lo, hi, k, self._lam_of(v, lam))
+            if len(rs) == 1 and rs[0][2] == 1.0:  # the exact prefix: one range, ranked directly
+                ranked = self._rank(v, rs[0][0], rs[0][1], k, self._lam_of(v, lam))
+            else:
+                ranked = self._rank_ranges(self._rank, v, rs, k, self._lam_of(v, lam))
             at_start = v == self._bos
             shown = self._display_cache
             return [
-                Suggestion(_recase(shown.get(i) or self.display(i), ctx.prefix, at_start), p) for i, p in ranked
+                Suggestion(recase(shown.get(i) or self.display(i), ctx.prefix, at_start), p) for i, p in ranked
             ]
         except (IndexError, ValueError, UnicodeDecodeError) as e:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
@@ -757,16 +640,16 @@ class Model:
         The raw ranking behind :meth:`suggest`, without text parsing or capitalisation;
         keys are the case-folded vocabulary keys.
         """
-        k = _check_k(k)
-        lam = None if lam is None else _check_lam(lam)
+        k = check_k(k)
+        lam = None if lam is None else check_lam(lam)
         if self._general:
             return self.rank_after((previous_word,), prefix, k, lam=lam)
         v = self._history_id(previous_word)
-        lo, hi = self._prefix_range(fold(prefix))
-        if lo >= hi:
+        rs = self._candidates.ranges(fold(prefix))
+        if not rs:
             return []
         try:
-            return [(self._key(i), p) for i, p in self._rank(v, lo, hi, k, self._lam_of(v, lam))]
+            return [(self._key(i), p) for i, p in self._rank_ranges(self._rank, v, rs, k, self._lam_of(v, lam))]
         except (IndexError, ValueError) as e:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
 
@@ -774,19 +657,35 @@ class Model:
         self, history: Sequence[str | None], prefix: str = "", k: int = 3, *, lam: float | None = None
     ) -> list[tuple[str, float]]:
         """Like :meth:`rank_ids` with a context of tokens oldest first (see :meth:`prob_after`)."""
-        k = _check_k(k)
-        lam = None if lam is None else _check_lam(lam)
+        k = check_k(k)
+        lam = None if lam is None else check_lam(lam)
         ctx = self._context_ids(history)
-        lo, hi = self._prefix_range(fold(prefix))
-        if lo >= hi:
+        rs = self._candidates.ranges(fold(prefix))
+        if not rs:
             return []
         try:
             if self._general:
-                return [(self._key(i), p) for i, p in self._ng.rank(ctx, lo, hi, k, self._ng_lams(lam))]
+                return [(self._key(i), p) for i, p in self._rank_ranges(self._ng.rank, ctx, rs, k, self._ng_lams(lam))]
             v = ctx[-1]
-            return [(self._key(i), p) for i, p in self._rank(v, lo, hi, k, self._lam_of(v, lam))]
+            return [(self._key(i), p) for i, p in self._rank_ranges(self._rank, v, rs, k, self._lam_of(v, lam))]
         except (IndexError, ValueError) as e:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
+
+    def _rank_ranges(
+        self, rank: Callable[[Any, int, int, int, Any], list[tuple[int, float]]], context: Any,
+        ranges: Sequence[CandidateRange], k: int, weights: Any,
+    ) -> list[tuple[int, float]]:
+        """Top-k (word id, score) over the candidate ranges: ``rank`` (exact within one range) per
+        range, merged by channel weight × probability (:func:`~nextword.candidates.merge_ranked`).
+
+        The exact prefix is one range of weight 1.0, ranked directly: scores stay probabilities.
+        """
+        if len(ranges) == 1:
+            lo, hi, w = ranges[0]
+            if w == 1.0:
+                return rank(context, lo, hi, k, weights)
+        per = [(w, rank(context, lo, hi, k, weights)) for lo, hi, w in ranges]
+        return merge_ranked(per, self._mv_apos.__getitem__, k)
 
     def header(self) -> dict[str, Any]:
         """The file's metadata as plain data (a copy): estimator, order, λ or discounts, sizes."""
@@ -838,21 +737,7 @@ class Model:
         }
 
 
-def _recase(word: str, prefix: str, at_start: bool) -> str:
-    if prefix:
-        first = prefix[0]
-        if first.islower():  # the common case: an explicitly lowercase prefix wins
-            return word
-        if prefix.isupper() and sum(c.isupper() for c in prefix) >= 2:
-            return word.upper()
-        if first.isupper():
-            return word[:1].upper() + word[1:]
-    if at_start:
-        return word[:1].upper() + word[1:]
-    return word
-
-
-# -- building and loading ---------------------------------------------------------------------
+# -- loading ---------------------------------------------------------------------
 
 
 def load(path: str | os.PathLike[str], *, lam: float | None = None, verify: bool = False) -> Model:
@@ -863,198 +748,8 @@ def load(path: str | os.PathLike[str], *, lam: float | None = None, verify: bool
     checked, which keeps opening fast whatever the model size.
     """
     if lam is not None:
-        _check_lam(lam)
+        check_lam(lam)
     return Model(read_model(path, verify=verify), lam=lam)
-
-
-#: smoothing methods ``train`` offers: Jelinek-Mercer interpolation, interpolated modified Kneser-Ney
-SMOOTHINGS = ("jm", "kn")
-#: n-gram orders ``train`` offers (2 = one-word context, 3 = two-word context)
-TRAIN_ORDERS = (2, 3)
-
-
-def _check_kind(order: int, smoothing: str, lam: float | None, max_bytes: int | None) -> None:
-    if isinstance(order, bool) or order not in TRAIN_ORDERS:
-        raise InvalidArgumentError(f"order must be one of {', '.join(map(str, TRAIN_ORDERS))}, got {order!r}")
-    if smoothing not in SMOOTHINGS:
-        raise InvalidArgumentError(f"smoothing must be one of {', '.join(SMOOTHINGS)}, got {smoothing!r}")
-    if smoothing == "kn" and lam is not None:
-        raise InvalidArgumentError(f"lam={lam!r} given with Kneser-Ney smoothing, which has no λ (its discounts are fitted)")
-    if max_bytes is not None and (order != 2 or smoothing != "jm"):
-        raise InvalidArgumentError(
-            f"a size budget (max_bytes={max_bytes!r}) works only for Jelinek-Mercer bigram models for now "
-            f"(got smoothing {smoothing!r}, order {order})"
-        )
-
-
-def _finish(
-    builder: CountBuilder,
-    output_path: str | os.PathLike[str],
-    *,
-    lam: float,
-    min_count: int,
-    max_vocab: int,
-    skyband_k: int,
-    skyband_min: int,
-    t0: float,
-    max_bytes: int | None = None,
-    prune_rule: str = DEFAULT_RULE,
-    order: int = 2,
-    smoothing: str = "jm",
-    lam3: float = DEFAULT_LAMBDA,
-) -> TrainReport:
-    t1 = time.perf_counter()
-    general = order != 2 or smoothing != "jm"
-    if general:
-        tables, counts = builder.ngram_counts(min_count=min_count, max_vocab=max_vocab)
-    else:
-        tables = builder.tables(min_count=min_count, max_vocab=max_vocab)
-    if tables.stats["word_tokens"] == 0:
-        raise InputDataError("the input holds no words")
-    if general:
-        from .estimators import JelinekMercer, KneserNey
-        from .store import build
-
-        estimator = KneserNey() if smoothing == "kn" else JelinekMercer((lam, lam3))
-        build(counts, tables, estimator, output_path, skyband_k=skyband_k, skyband_min=skyband_min)
-    elif max_bytes is None:
-        write_model(tables, output_path, lam=lam, skyband_k=skyband_k, skyband_min=skyband_min)
-    else:
-        from .prune import prune_to_size
-        from .store import atomic_write
-
-        tables, chunks, _ = prune_to_size(
-            tables, max_bytes, rule=prune_rule, lam=lam, skyband_k=skyband_k, skyband_min=skyband_min  # type: ignore[arg-type]
-        )
-        atomic_write(output_path, chunks)
-    t2 = time.perf_counter()
-    return TrainReport(
-        path=os.fspath(output_path),
-        n_words=tables.n_words,
-        n_bigrams=len(tables.pair_count),
-        word_tokens=tables.stats["word_tokens"],
-        messages=tables.stats["messages"],
-        file_bytes=os.path.getsize(output_path),
-        count_seconds=t1 - t0,
-        build_seconds=t2 - t1,
-    )
-
-
-def _check_build_args(lam: float, skyband_k: int, skyband_min: int) -> float:
-    lam = _check_lam(lam)
-    if lam > MAX_LAMBDA:
-        raise InvalidArgumentError(
-            f"a stored λ must be at most {MAX_LAMBDA} (λ = 1 gives every unseen pair probability 0), got {lam!r}; "
-            "queries may still pass lam=1.0"
-        )
-    if isinstance(skyband_k, bool) or not isinstance(skyband_k, int) or not 1 <= skyband_k <= 4096:
-        raise InvalidArgumentError(f"skyband_k must be an integer in [1, 4096], got {skyband_k!r}")
-    if isinstance(skyband_min, bool) or not isinstance(skyband_min, int) or skyband_min < 0:
-        raise InvalidArgumentError(f"skyband_min must be an integer >= 0, got {skyband_min!r}")
-    return lam
-
-
-def train(
-    inputs: str | os.PathLike[str] | Iterable[str | os.PathLike[str]],
-    output_path: str | os.PathLike[str],
-    *,
-    lam: float | None = None,
-    min_count: int = DEFAULT_MIN_COUNT,
-    max_vocab: int = DEFAULT_MAX_VOCAB,
-    fmt: Format = "auto",
-    field: str = "text",
-    skyband_k: int = DEFAULT_SKYBAND_K,
-    skyband_min: int = DEFAULT_SKYBAND_MIN,
-    progress: bool | None = None,
-    max_bytes: int | None = None,
-    prune_rule: str = DEFAULT_RULE,
-    workers: int | None = None,
-    memory_cap: int | None = None,
-    order: int = 2,
-    smoothing: str = "jm",
-    lam3: float = DEFAULT_LAMBDA,
-) -> TrainReport:
-    """Count the messages in ``inputs`` and write a model file to ``output_path``.
-
-    ``inputs`` is a path or a list of paths (``"-"`` = standard input): plain text with
-    one message per line, or JSON Lines with a ``field`` holding the message, optionally
-    gzip-compressed. Each input is read exactly once. The file is written atomically.
-    ``max_bytes`` prunes word pairs (``prune_rule`` "entropy" or "count") until the file
-    fits, and whole words where they are worth less per byte (a dropped word becomes
-    ``<unk>``; no count is lost, see :mod:`nextword.prune`). ``workers`` > 1 counts
-    chunks of messages in that many processes (0 = one per core) and merges the partial
-    counts; the file is byte for byte the one a single process writes. The default
-    (``None``) picks the fastest: one per core for inputs of at least
-    :data:`~nextword.counts.PARALLEL_MIN_BYTES`, else one (:func:`~nextword.counts.auto_workers`). ``memory_cap``
-    (bytes) bounds the pair counts held in memory by spilling sorted runs to a temporary
-    directory (see :class:`~nextword.counts.CountBuilder`).
-    ``skyband_k`` and ``skyband_min`` trade file size for query speed (see
-    docs/FORMAT.md); the defaults suit keyboards.
-    ``order`` 3 conditions on the last two words of the sentence; ``smoothing`` "kn"
-    (interpolated modified Kneser-Ney, discounts fitted, no λ) replaces Jelinek-Mercer
-    ("jm", λ = ``lam`` for the bigram level, default 0.9, and ``lam3`` for the trigram
-    level). Both are counted in the same streaming pass (:class:`~nextword.counts.CountBuilder` of that order).
-    """
-    _check_kind(order, smoothing, lam, max_bytes)
-    lam = _check_build_args(DEFAULT_LAMBDA if lam is None else lam, skyband_k, skyband_min)
-    lam3 = _check_build_args(lam3, skyband_k, skyband_min)
-    sources = open_sources(inputs, fmt=fmt, field=field)
-    from .paths import check_outputs
-
-    check_outputs([("corpus", s.name) for s in sources if s.name != "-"], [("model", output_path)])
-    t0 = time.perf_counter()
-    if workers is None:
-        workers = auto_workers(s.name for s in sources)
-    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 0:
-        raise InvalidArgumentError(f"workers must be an integer >= 0, got {workers!r}")
-    workers = workers or (os.cpu_count() or 1)
-    # no ticker thread when worker processes are forked (a thread at fork time risks a deadlock)
-    bar = Progress("train", stages=2, enabled=progress, tick=None if workers > 1 else DEFAULT_TICK)
-    try:
-        bar.stage("counting", unit="B")  # total: the input files' sizes (compressed bytes for gzip)
-        messages = iter_messages(sources, progress=bar.update)
-        if workers == 1:
-            builder = CountBuilder(memory_cap=memory_cap, order=order)
-            builder.add_texts(messages)
-        else:
-            builder = count_in_processes(messages, workers, memory_cap=memory_cap, order=order)
-        bar.stage("building the model file" if max_bytes is None else f"building and pruning to {max_bytes:,} bytes")
-        return _finish(
-            builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
-            skyband_k=skyband_k, skyband_min=skyband_min, t0=t0, max_bytes=max_bytes, prune_rule=prune_rule,
-            order=order, smoothing=smoothing, lam3=lam3,
-        )
-    finally:
-        bar.done()  # also on errors: the error message then starts on a clean line
-
-
-def train_texts(
-    texts: Iterable[str],
-    output_path: str | os.PathLike[str],
-    *,
-    lam: float | None = None,
-    min_count: int = DEFAULT_MIN_COUNT,
-    max_vocab: int = DEFAULT_MAX_VOCAB,
-    skyband_k: int = DEFAULT_SKYBAND_K,
-    skyband_min: int = DEFAULT_SKYBAND_MIN,
-    order: int = 2,
-    smoothing: str = "jm",
-    lam3: float = DEFAULT_LAMBDA,
-) -> TrainReport:
-    """Like :func:`train`, but from messages already in memory (consumed once)."""
-    _check_kind(order, smoothing, lam, None)
-    lam = _check_build_args(DEFAULT_LAMBDA if lam is None else lam, skyband_k, skyband_min)
-    lam3 = _check_build_args(lam3, skyband_k, skyband_min)
-    if isinstance(texts, str):
-        raise InvalidArgumentError("train_texts() takes an iterable of messages, not one string")
-    t0 = time.perf_counter()
-    builder = CountBuilder(order=order)
-    builder.add_texts(texts)
-    return _finish(
-        builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
-        skyband_k=skyband_k, skyband_min=skyband_min, t0=t0,
-        order=order, smoothing=smoothing, lam3=lam3,
-    )
 
 
 def _discount(c: np.ndarray, d: Sequence[float]) -> np.ndarray:

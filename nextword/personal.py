@@ -89,9 +89,9 @@ from typing import Any
 import msgpack
 
 from .errors import InvalidArgumentError, LayerNotFoundError, ModelFormatError
-from .model import Model, Suggestion, _check_k, _recase
+from .model import Model, Suggestion, check_k as _check_k
 from .store import atomic_write
-from .text import BOS, EOS, UNK, fold, parse_typed, sentences
+from .text import BOS, EOS, UNK, fold, parse_typed, sentences, recase as _recase
 
 __all__ = [
     "PersonalLayer",

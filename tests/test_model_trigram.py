@@ -25,6 +25,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import nextword
+from nextword.counts import DEFAULT_MIN_COUNT
 from nextword.errors import InvalidArgumentError
 from nextword.reference_kn import DictKneserNey, ngrams_of_sentence
 from nextword.text import BOS, UNK, fold, parse_typed, sentences
@@ -43,7 +44,7 @@ from test_model_kn import (
 class DictJMTrigram:
     """Jelinek-Mercer order 3 from dict counts; the same public surface the checks use."""
 
-    def __init__(self, messages: Sequence[str], *, lam2: float, lam3: float, min_count: int = 2) -> None:
+    def __init__(self, messages: Sequence[str], *, lam2: float, lam3: float, min_count: int = DEFAULT_MIN_COUNT) -> None:
         vocab_from = DictKneserNey(messages, order=3, min_count=min_count)  # the vocabulary rule only
         self.vocab = vocab_from.vocab
         self.outcomes = vocab_from.outcomes
