@@ -20,10 +20,20 @@ from typing import Any, Callable, Iterable, Iterator, NamedTuple, Sequence
 
 import numpy as np
 
+from .codecs import codec_named
 from .estimators import unigram_floor
 from .errors import InvalidArgumentError, ModelFormatError
 from .candidates import CandidateRange, PrefixRange, merge_ranked
-from .store import COUNT_ESCAPE, MAX_LAMBDA, ModelArrays, read_model
+from .store import (
+    COUNT_ESCAPE,
+    CONTEXT_TAGS,
+    CTX_BLOCK,
+    MAX_LAMBDA,
+    SUMMARY_MIN,
+    TRIGRAM_TAGS,
+    ModelArrays,
+    read_model,
+)
 from .text import BOS, EOS, UNK, fold, parse_typed, recase, sentences
 
 __all__ = ["Model", "Suggestion", "load", "check_k", "check_lam"]
@@ -33,6 +43,8 @@ _PAIR_SECTIONS = ("SUCC", "CNTS", "BIGI", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI"
 _VOCAB_SECTIONS = ("TKID", "IDTK", "ALPH", "APOS", "KEY4", "TOPK", "UNIG", "ROWS", "HIST", "DISI", "DISO")
 # below this many successor candidates, plain Python beats numpy's per-call overhead
 _SMALL = 80
+#: a plain row range longer than this is cut with numpy before the Python scoring (_NgramScorer)
+_TRIM = 24
 
 
 class Suggestion(NamedTuple):
@@ -345,7 +357,7 @@ class Model:
 
     def _context_ids(self, history: Sequence[str | None]) -> tuple[int, ...]:
         """Context ids of the last order−1 tokens, never reaching back across a sentence start."""
-        if isinstance(history, str) or not isinstance(history, Sequence):
+        if type(history) is not tuple and (isinstance(history, str) or not isinstance(history, Sequence)):
             raise InvalidArgumentError(f"history must be a sequence of tokens, got {type(history).__name__}")
         ids = [self._history_id(t) for t in history] or [self._bos]
         if self._bos in ids:
@@ -732,8 +744,8 @@ class Model:
         # spellings); the rest is header, section table, metadata and padding
         pair_bytes = sum(a[s].nbytes for s in _PAIR_SECTIONS)
         vocab_bytes = sum(a[s].nbytes for s in _VOCAB_SECTIONS if s in a) + len(self._src.raw["TRIE"]) + len(self._disb)
-        # Kneser-Ney context counts and the trigram sections (format 1.3)
-        ngram_bytes = sum(a[s].nbytes for s in ("HN13", "TROW", "TCTU", "TCTS", "TSUC", "TVAL", "TTOT", "TN13") if s in a)
+        # Kneser-Ney context counts, context totals and the trigram sections (format 1.4)
+        ngram_bytes = sum(a[s].nbytes for s in a if s not in _PAIR_SECTIONS and s not in _VOCAB_SECTIONS)
         pairs = self.n_bigrams
         return {
             "path": self.path,
@@ -782,7 +794,7 @@ def load(path: str | os.PathLike[str], *, lam: float | None = None, verify: bool
 
 def _discount(c: np.ndarray, d: Sequence[float]) -> np.ndarray:
     """D(c) per value: D1 for 1, D2 for 2, D3+ for 3 or more, 0 for 0 (as ``Discounts.of``)."""
-    return np.where(c >= 3, d[2], np.where(c >= 2, d[1], np.where(c >= 1, d[0], 0.0)))
+    return np.asarray([0.0, d[0], d[1], d[2]])[np.minimum(c, 3)]  # type: ignore[no-any-return]
 
 
 def _discount1(c: int, d: Sequence[float]) -> float:
@@ -794,22 +806,25 @@ class _NgramScorer:
 
     Every word's score has the interpolated shape
 
-        P(w | u v) = α₃(u v w) + γ₃(u v) · [α₂(v w) + γ₂(v) · P₁(w)]
+        P(w | u v) = α₃(u v w) + γ₃(u v) · B(v, w),   B(v, w) = α₂(v w) + γ₂(v) · P₁(w)
 
-    (Kneser-Ney: α = max(a − D(a), 0)/total, γ = (D₁n₁ + D₂n₂ + D₃n₃)/total; JM: α = λ·c/total,
-    γ = 1 − λ; an unseen context has α = 0, γ = 1). Ids rank by the floor P₁ (the file's
-    unigram values, ties by key), so for a prefix range the exact top k lies among the k
-    smallest ids of the range, the bigram successors of v in the range (the stored
-    skyband when the segment is long) and every trigram successor of (u, v) in the range
-    (docs/SEAMS.md). Each candidate is scored with the full formula, in the operation
-    order of the oracles (``reference_kn.DictKneserNey.prob_key``), so results agree with
-    them to the last bit.
+    (:func:`nextword.store.level_mix`; an unseen context has α = 0, γ = 1). Ids rank by
+    the floor P₁, so for a prefix range the exact top k lies among the k smallest ids of
+    the range, the bigram successors of v in the range (their stored skyband when the
+    segment is long) and the trigram successors of (u, v) in the range (their stored
+    skyband under dominance on (trigram value, B) when the segment is long); see
+    docs/SEAMS.md. A query scores those few candidates with Python floats (memoryviews
+    and bisect), or with numpy when there are many, in the operation order of the
+    oracles (``reference_kn.DictKneserNey.prob_key``), so results agree with them to the
+    last bit. Stored values come through the file's codec (:mod:`nextword.codecs`).
     """
 
     def __init__(self, m: Model, a: dict[str, np.ndarray]) -> None:
         self.m = m
         self.kn = m.estimator == "kn"
         self.order = m.order
+        meta = m._src.meta
+        self.codec = codec_named(m.path, meta.get("codec"))
         unig = a["UNIG"].astype(np.int64)
         if self.kn:
             self.floor = unigram_floor(unig, m.discounts[0], m.total)
@@ -820,41 +835,87 @@ class _NgramScorer:
         if not bool(np.all((self.floor >= 0.0) & (self.floor <= 1.0 + 1e-9))):
             raise ModelFormatError(f"{m.path}: damaged model data: a unigram probability outside [0, 1]")
         self._floor_list: list[float] = self.floor.tolist()
+        self._hdri, self._hdrv = _native_view(a["HDRI"]), _native_view(a["HDRV"])
+        # the trigram skybands hold for the stored parameters (KN: always; JM: stored λs, λ₃ > 0)
+        self._band_lams = (m.stored_lam, m.stored_lam3) if not self.kn else None
         if self.order == 3:
-            self._trow = _native_view(a["TROW"])
-            self._tctu = _native_view(a["TCTU"])
-            self._tcts = _native_view(a["TCTS"])
+            self._t = int(meta["trigrams"])
+            self._tctb = _native_view(a["TCTB"])
+            self._tlen = self.codec.decode(m.path, a, CONTEXT_TAGS)
             self._tsuc_mv = _native_view(a["TSUC"])
-            self._tval_mv = _native_view(a["TVAL"])
-            self._ttot = _native_view(a["TTOT"])
             self._tsuc = a["TSUC"]
-            self._tval = a["TVAL"]
-            self._mv_tn13 = _native_view(a["TN13"]) if self.kn else None
-
-    # -- per-context weights -------------------------------------------------------------
-
-    def _gamma2(self, v: int, tot: int) -> float:
-        h = self._mv_hn13
-        d = self.d2
-        return (d[0] * h[3 * v] + d[1] * h[3 * v + 1] + d[2] * h[3 * v + 2]) / tot  # type: ignore[no-any-return]
-
-    def _gamma3(self, j: int, tot: int) -> float:
-        h = self._mv_tn13
-        assert h is not None
-        d = self.d3
-        return (d[0] * h[3 * j] + d[1] * h[3 * j + 1] + d[2] * h[3 * j + 2]) / tot  # type: ignore[no-any-return]
-
-    def _context3(self, ctx: tuple[int, ...]) -> int:
-        """Index of trigram context (u, v) in TCTU, or −1 (not stored, or a one-token context)."""
-        if self.order != 3 or len(ctx) != 2:
-            return -1
-        u, v = ctx
-        s, e = self._trow[v], self._trow[v + 1]
-        i = bisect.bisect_left(self._tctu, u, s, e)
-        return i if i < e and self._tctu[i] == u else -1
+            self._tval = self.codec.decode(m.path, a, TRIGRAM_TAGS)
+            self._tlni, self._tlnv = _native_view(a["TLNI"]), _native_view(a["TLNV"])
+            self._tdri, self._tdrv = _native_view(a["TDRI"]), _native_view(a["TDRV"])
+            self._tsgs, self._tsge = _native_view(a["TSGS"]), _native_view(a["TSGE"])
+            self._tskp, self._tski, self._tskc = _native_view(a["TSKP"]), _native_view(a["TSKI"]), _native_view(a["TSKC"])
 
     def _damaged(self, what: str) -> ModelFormatError:
         return ModelFormatError(f"{self.m.path}: damaged model data: {what}")
+
+    @staticmethod
+    def _sparse(idx: memoryview, val: memoryview, i: int) -> int:
+        """val at index i of a sorted sparse table, else 0."""
+        j = bisect.bisect_left(idx, i)
+        return val[j] if j < len(idx) and idx[j] == i else 0  # type: ignore[no-any-return]
+
+    # -- per-context weights -------------------------------------------------------------
+
+    def _level2(self, v: int, lam2: float) -> tuple[int, float]:
+        """(T, γ₂) of bigram context v (T = 0: never a context, γ₂ = 1)."""
+        tot = self.m._hist(v)
+        if tot <= 0:
+            return 0, 1.0
+        dropped = self._sparse(self._hdri, self._hdrv, v)
+        if dropped > tot:
+            raise self._damaged(f"dropped mass {dropped} above its context total {tot}")
+        if self.kn:
+            h, d = self._mv_hn13, self.d2
+            return tot, (dropped + d[0] * h[3 * v] + d[1] * h[3 * v + 1] + d[2] * h[3 * v + 2]) / tot
+        return tot, (1.0 - lam2) + lam2 * (dropped / tot)
+
+    def _context3(self, ctx: tuple[int, ...]) -> int:
+        """The bigram entry (u, v) of trigram context (u, v), or −1 (not a context, or a one-token context)."""
+        if self.order != 3 or len(ctx) != 2:
+            return -1
+        m = self.m
+        u, v = ctx
+        rs, re_ = m._mv_rows[u], m._mv_rows[u + 1]
+        pos = m._mv_apos[v]
+        i = bisect.bisect_left(m._mv_succ, pos, rs, re_)
+        if i >= re_ or m._mv_succ[i] != pos or self._tlen.at(i) == 0:
+            return -1
+        return i
+
+    def _rows3(self, i: int) -> tuple[int, int]:
+        """Row entries [s, e) of the trigram context at bigram entry i (checked: a damaged length never escapes)."""
+        b0 = i - (i % CTX_BLOCK)
+        s = self._tctb[i // CTX_BLOCK] + (sum(self._tlen.slice(b0, i)) if i > b0 else 0)
+        e = s + self._tlen.at(i)
+        if not 0 <= s < e <= self._t:
+            raise self._damaged(f"trigram context {i} has entries [{s}, {e})")
+        return s, e
+
+    def _level3(self, j: int, s: int, e: int, lam3: float) -> tuple[int, float]:
+        """(T, γ₃) of trigram context j with entries [s, e): its sums read from the row or TLNV."""
+        if e - s > SUMMARY_MIN:
+            i = bisect.bisect_left(self._tlni, j)
+            if i >= len(self._tlni) or self._tlni[i] != j:
+                raise self._damaged(f"trigram context {j} has no stored summary")
+            sm, n1, n2, n3 = (self._tlnv[4 * i + x] for x in range(4))
+            if n1 + n2 + n3 != e - s or sm < e - s:
+                raise self._damaged(f"trigram context {j} has a summary that does not fit its row")
+        else:
+            vals = self._tval.slice(s, e)
+            sm, n1, n2 = sum(vals), vals.count(1), vals.count(2)
+            n3 = len(vals) - n1 - n2
+        tot = sm + self._sparse(self._tdri, self._tdrv, j)
+        if tot <= 0:
+            raise self._damaged(f"trigram context {j} has a total of {tot}")
+        if self.kn:
+            d = self.d3
+            return tot, (tot - sm + d[0] * n1 + d[1] * n2 + d[2] * n3) / tot
+        return tot, (1.0 - lam3) + lam3 * ((tot - sm) / tot)
 
     # -- one probability -------------------------------------------------------------------
 
@@ -862,31 +923,30 @@ class _NgramScorer:
         m = self.m
         p = self._floor_list[w]
         v = ctx[-1]
-        tot = m._hist(v)
+        tot, g = self._level2(v, lams[0])
         if tot > 0:
             c = m._pair_count(v, w)
             if c > tot:
                 raise m._over(c, tot)
-            if self.kn:
-                p = max(c - _discount1(c, self.d2), 0.0) / tot + self._gamma2(v, tot) * p
-            else:
-                p = lams[0] * (c / tot) + (1.0 - lams[0]) * p
+            p = self._alpha(c, tot, self.d2 if self.kn else lams[0]) + g * p
         j = self._context3(ctx)
         if j >= 0:
-            tot3 = self._ttot[j]
-            s, e = self._tcts[j], self._tcts[j + 1]
+            s, e = self._rows3(j)
+            tot3, g3 = self._level3(j, s, e, lams[1])
             pos = m._mv_apos[w]
             i = bisect.bisect_left(self._tsuc_mv, pos, s, e)
-            c3 = self._tval_mv[i] if i < e and self._tsuc_mv[i] == pos else 0
-            if c3 > tot3 or tot3 == 0:
+            c3 = self._tval.at(i) if i < e and self._tsuc_mv[i] == pos else 0
+            if c3 > tot3:
                 raise self._damaged(f"trigram value {c3} above its context total {tot3}")
-            if self.kn:
-                p = max(c3 - _discount1(c3, self.d3), 0.0) / tot3 + self._gamma3(j, tot3) * p
-            else:
-                p = lams[1] * (c3 / tot3) + (1.0 - lams[1]) * p
+            p = self._alpha(c3, tot3, self.d3 if self.kn else lams[1]) + g3 * p
         if not 0.0 <= p <= 1.0 + 1e-9:
             raise self._damaged(f"a probability of {p!r}")
         return p  # type: ignore[no-any-return]
+
+    def _alpha(self, c: int, tot: int, param: Any) -> float:
+        if self.kn:
+            return max(c - _discount1(c, param), 0.0) / tot
+        return param * (c / tot)  # type: ignore[no-any-return]
 
     # -- many probabilities ----------------------------------------------------------------
 
@@ -896,7 +956,7 @@ class _NgramScorer:
         p = self.floor[ids]
         pos = m._apos[ids].astype(np.int64)
         v = ctx[-1]
-        tot = m._hist(v)
+        tot, g = self._level2(v, lams[0])
         if tot > 0:
             rs, re_ = m._mv_rows[v], m._mv_rows[v + 1]
             row = m._succ[rs:re_]
@@ -909,57 +969,204 @@ class _NgramScorer:
                 if int(c.max()) > tot:
                     raise m._over(int(c.max()), tot)
             if self.kn:
-                p = np.maximum(c - _discount(c, self.d2), 0.0) / tot + self._gamma2(v, tot) * p
+                p = np.maximum(c - _discount(c, self.d2), 0.0) / tot + g * p
             else:
-                p = lams[0] * (c / tot) + (1.0 - lams[0]) * p
+                p = lams[0] * (c / tot) + g * p
         j = self._context3(ctx)
         if j >= 0:
-            tot3 = self._ttot[j]
-            s, e = self._tcts[j], self._tcts[j + 1]
+            s, e = self._rows3(j)
+            tot3, g3 = self._level3(j, s, e, lams[1])
             row = self._tsuc[s:e]
             at = np.searchsorted(row, pos.astype(row.dtype))
             hit = at < len(row)
             hit[hit] = row[at[hit]] == pos[hit]
             c = np.zeros(len(ids), dtype=np.int64)
-            c[hit] = self._tval[s + at[hit]]
-            if tot3 == 0 or (len(c) and int(c.max()) > tot3):
+            c[hit] = self._tval.take(s + at[hit])
+            if len(c) and int(c.max()) > tot3:
                 raise self._damaged(f"a trigram value above its context total {tot3}")
             if self.kn:
-                p = np.maximum(c - _discount(c, self.d3), 0.0) / tot3 + self._gamma3(j, tot3) * p
+                p = np.maximum(c - _discount(c, self.d3), 0.0) / tot3 + g3 * p
             else:
-                p = lams[1] * (c / tot3) + (1.0 - lams[1]) * p
+                p = lams[1] * (c / tot3) + g3 * p
         if len(p) and not bool(np.all((p >= 0.0) & (p <= 1.0 + 1e-9))):
             raise self._damaged("a probability outside [0, 1]")
         return np.asarray(p, dtype=np.float64)
+
+    # -- ranking ---------------------------------------------------------------------------
+
+    def _band3(self, s: int, e: int, k: int) -> list[int] | None:
+        """Entries of trigram segment [s, e) with fewer than k dominators, if its skyband is stored."""
+        segs, sege = self._tsgs, self._tsge
+        i = bisect.bisect_left(segs, s)
+        while i < len(segs) and segs[i] == s:
+            if sege[i] == e:
+                start, stop = self._tskp[i], self._tskp[i + 1]
+                stop = min(start + self._tskc[i * self.m._sky_k + k - 1], stop)
+                offs = self._tski[start:stop].tolist()
+                if offs and max(offs) >= e - s:
+                    raise self._damaged(f"trigram skyband {i} points outside its segment")
+                return [s + o for o in offs]
+            i += 1
+        return None
 
     def rank(self, ctx: tuple[int, ...], lo: int, hi: int, k: int, lams: tuple[float, float]) -> list[tuple[int, float]]:
         """Top-k (word id, probability) among alphabetical positions [lo, hi), ties by key."""
         m = self.m
         if not self.kn and (lams[0] == 1.0 or (self.order == 3 and lams[1] == 1.0)):
             # a zero floor: unseen words tie at 0 and rank by key, so score the whole range
-            ids = m._alph[lo:hi].astype(np.int64)
-        else:
-            parts = [np.asarray(m._range_top_ids(lo, hi, k), dtype=np.int64)]
-            v = ctx[-1]
-            if m._hist(v) > 0:
-                rs, re_ = m._mv_rows[v], m._mv_rows[v + 1]
-                s = bisect.bisect_left(m._mv_succ, lo, rs, re_)
-                e = bisect.bisect_left(m._mv_succ, hi, s, re_)
-                if e > s:
-                    band = m._segment_band(s, e, k) if e - s > m._sky_min and k <= m._sky_k else None
-                    entries = np.asarray(band, dtype=np.int64) if band else np.arange(s, e)
-                    parts.append(m._alph[m._succ[entries].astype(np.int64)].astype(np.int64))
-            j = self._context3(ctx)
+            return self._rank_numpy(m._alph[lo:hi].astype(np.int64), ctx, k, lams)
+        top = m._range_top_ids(lo, hi, k)
+        v = ctx[-1]
+        tot, g = self._level2(v, lams[0])
+        b_idx: Sequence[int] = ()
+        b_full = True  # b_idx holds every bigram successor in the range
+        if tot > 0:
+            rs, re_ = m._mv_rows[v], m._mv_rows[v + 1]
+            s = bisect.bisect_left(m._mv_succ, lo, rs, re_)
+            e = bisect.bisect_left(m._mv_succ, hi, s, re_)
+            b_idx = range(s, e)
+            if e - s > m._sky_min and k <= m._sky_k:
+                band = m._segment_band(s, e, k)
+                if band is not None:
+                    b_idx, b_full = band, False
+        j = self._context3(ctx)
+        t_idx: Sequence[int] = ()
+        t_full = True
+        s3 = e3 = tot3 = 0
+        g3 = 1.0
+        if j >= 0:
+            s3, e3 = self._rows3(j)
+            tot3, g3 = self._level3(j, s3, e3, lams[1])
+            a3 = bisect.bisect_left(self._tsuc_mv, lo, s3, e3)
+            b3 = bisect.bisect_left(self._tsuc_mv, hi, a3, e3)
+            t_idx = range(a3, b3)
+            if b3 - a3 > m._sky_min and k <= m._sky_k and (self.kn or (lams == self._band_lams and lams[1] > 0.0)):
+                band3 = self._band3(a3, b3, k)
+                if band3 is not None:
+                    t_idx, t_full = band3, False
+        # score the candidates with Python floats. A long plain range is first cut
+        # with numpy to the entries that can still reach the top k (see _trim_trigrams
+        # and _trim_bigrams); every other candidate then looks its values up by bisect.
+        succ, apos, alph, fl = m._mv_succ, m._mv_apos, m._mv_alph, self._floor_list
+        c3: dict[int, int] = {}
+        if len(t_idx):
+            if isinstance(t_idx, range) and len(t_idx) > _TRIM:
+                c3, t_full = self._trim_trigrams(t_idx, v, tot, g, tot3, g3, k, lams), False
+            elif isinstance(t_idx, range):
+                c3 = dict(zip(self._tsuc_mv[t_idx.start : t_idx.stop].tolist(), self._tval.slice(t_idx.start, t_idx.stop)))
+            else:
+                c3 = {self._tsuc_mv[i]: self._tval.at(i) for i in t_idx}
+            if max(c3.values()) > tot3:
+                raise self._damaged(f"a trigram value above its context total {tot3}")
+        c2: dict[int, int] = {}
+        if len(b_idx):
+            if isinstance(b_idx, range) and len(b_idx) > _TRIM:
+                c2, b_full = self._trim_bigrams(b_idx, tot, g, k + len(c3), lams[0]), False
+            elif isinstance(b_idx, range):
+                ps = succ[b_idx.start : b_idx.stop].tolist()
+                cs = [m._count_at(b_idx.start + x) if c == COUNT_ESCAPE else c for x, c in enumerate(m._mv_cnts[b_idx.start : b_idx.stop].tolist())]
+                c2 = dict(zip(ps, cs))
+            else:
+                c2 = {succ[i]: m._count_at(i) for i in b_idx}
+            if max(c2.values()) > tot:
+                raise m._over(max(c2.values()), tot)
+        cands = set(c2) | set(c3)
+        cands.update(apos[w] for w in top)
+        kn = self.kn
+        # D(c) by min(c, 3): the same floats as _discount1, without a call per candidate
+        dk2: Sequence[float] = (0.0, *self.d2) if kn else ()
+        dk3: Sequence[float] = (0.0, *self.d3) if kn else ()
+        l2, l3 = lams
+        scored: list[tuple[float, int, int]] = []
+        for p in cands:
+            w = alph[p]
+            score: float = fl[w]
+            if tot > 0:
+                c = c2.get(p)
+                if c is None:
+                    c = 0 if b_full else m._pair_count(v, w)
+                    if c > tot:
+                        raise m._over(c, tot)
+                score = (max(c - dk2[c if c < 3 else 3], 0.0) / tot if kn else l2 * (c / tot)) + g * score
             if j >= 0:
-                s3, e3 = self._tcts[j], self._tcts[j + 1]
-                a3 = bisect.bisect_left(self._tsuc_mv, lo, s3, e3)
-                b3 = bisect.bisect_left(self._tsuc_mv, hi, a3, e3)
-                if b3 > a3:
-                    parts.append(m._alph[self._tsuc[a3:b3].astype(np.int64)].astype(np.int64))
-            seen = np.zeros(m.n_words + 3, dtype=bool)  # a set over the id space: sorted, no hashing
-            for part in parts:
-                seen[part] = True
-            ids = np.flatnonzero(seen[: m.n_words])
+                c = c3.get(p)
+                if c is None:
+                    c = 0 if t_full else self._trigram_value(s3, e3, p, tot3)
+                score = (max(c - dk3[c if c < 3 else 3], 0.0) / tot3 if kn else l3 * (c / tot3)) + g3 * score
+            scored.append((-score, p, w))
+        scored.sort()
+        out = [(w, -neg) for neg, _, w in scored[:k]]
+        for _, q in out:
+            if not 0.0 <= q <= 1.0 + 1e-9:
+                raise self._damaged(f"a probability of {q!r}")
+        return out
+
+    def _trim_trigrams(
+        self, t_idx: range, v: int, tot: int, g: float, tot3: int, g3: float, k: int, lams: tuple[float, float]
+    ) -> dict[int, int]:
+        """Position → value of the k best trigram successors in ``t_idx`` by their full score.
+
+        A trigram successor outside them has k successors of the same context ranking
+        before it (score descending, position ascending), so it is not in the top k. The
+        scores are those of :meth:`scores`, computed with numpy for the whole range.
+        """
+        m = self.m
+        s, e = t_idx.start, t_idx.stop
+        traw = self._tsuc[s:e]
+        tpos = traw.astype(np.int64)
+        c3 = self._tval.take(np.arange(s, e))
+        if int(c3.max()) > tot3:
+            raise self._damaged(f"a trigram value above its context total {tot3}")
+        b = self.floor[m._alph[tpos].astype(np.int64)]
+        if tot > 0:
+            rs, re_ = m._mv_rows[v], m._mv_rows[v + 1]
+            row = m._succ[rs:re_]
+            at = np.minimum(row.searchsorted(traw), max(len(row) - 1, 0))
+            hit = np.flatnonzero(row[at] == traw) if len(row) else np.zeros(0, dtype=np.int64)
+            c2 = np.zeros(len(tpos), dtype=np.int64)
+            if len(hit):
+                c2[hit] = m._counts(rs + at[hit])
+                if int(c2.max()) > tot:
+                    raise m._over(int(c2.max()), tot)
+            if self.kn:
+                b = np.maximum(c2 - _discount(c2, self.d2), 0.0) / tot + g * b
+            else:
+                b = lams[0] * (c2 / tot) + g * b
+        if self.kn:
+            score = np.maximum(c3 - _discount(c3, self.d3), 0.0) / tot3 + g3 * b
+        else:
+            score = lams[1] * (c3 / tot3) + g3 * b
+        sel = np.lexsort((tpos, -score))[:k]
+        return dict(zip(tpos[sel].tolist(), c3[sel].tolist()))
+
+    def _trim_bigrams(self, b_idx: range, tot: int, g: float, keep: int, lam2: float) -> dict[int, int]:
+        """Position → value of the ``keep`` best bigram successors in ``b_idx`` by B (§9.7).
+
+        A word that follows v but not (u, v) scores γ₃·B, so among those only the k best
+        by (B descending, position ascending) can reach the top k; keeping k plus the
+        number of trigram candidates keeps at least k such words.
+        """
+        m = self.m
+        s, e = b_idx.start, b_idx.stop
+        pos = m._succ[s:e].astype(np.int64)
+        c = m._counts(np.arange(s, e))
+        if self.kn:
+            alpha = np.maximum(c - _discount(c, self.d2), 0.0) / tot
+        else:
+            alpha = lam2 * (c / tot)
+        b = alpha + g * self.floor[m._alph[pos].astype(np.int64)]
+        sel = np.argsort(-b, kind="stable")[:keep]  # stable: positions ascending among ties
+        return dict(zip(pos[sel].tolist(), c[sel].tolist()))
+
+    def _trigram_value(self, s: int, e: int, pos: int, tot3: int) -> int:
+        i = bisect.bisect_left(self._tsuc_mv, pos, s, e)
+        c = self._tval.at(i) if i < e and self._tsuc_mv[i] == pos else 0
+        if c > tot3:
+            raise self._damaged(f"trigram value {c} above its context total {tot3}")
+        return c
+
+    def _rank_numpy(self, ids: np.ndarray, ctx: tuple[int, ...], k: int, lams: tuple[float, float]) -> list[tuple[int, float]]:
+        m = self.m
         ids = ids[ids < m.n_words]
         if len(ids) == 0:
             return []

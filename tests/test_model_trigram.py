@@ -112,7 +112,7 @@ def test_random_corpora_equal_the_oracles(tmp_path_factory: pytest.TempPathFacto
     model = _train(messages, tmp_path_factory.mktemp("tri") / "m.nwm", smoothing, min_count=min_count, **extra)
     if model is None:
         return
-    assert (model.estimator, model.order, model.format_version) == (smoothing, 3, (1, 3))
+    assert (model.estimator, model.order, model.format_version) == (smoothing, 3, (1, 4))
     oracle: DictKneserNey | DictJMTrigram
     if smoothing == "kn":
         oracle = oracle_like(model, messages, min_count=min_count)
