@@ -180,7 +180,11 @@ _EXAMPLES: dict[str, list[str]] = {
         "nextword prune demo.nwm -o small.nwm --max-size 1.5MiB --rule count --json",
         "nextword prune demo.nwm --curve tune.txt --sizes 16KB 12KB 8KB --plot sizes.png",
     ],
-    "export": ["nextword export demo.nwm --arpa demo.arpa.gz", "nextword export demo.nwm --arpa demo.arpa --lam 0.7"],
+    "export": [
+        "nextword export demo.nwm -o demo.arpa.gz",
+        "nextword export demo.nwm -o demo.arpa --lam 0.7 --json",
+        "nextword export trigram-kn.nwm -o trigram-kn.arpa",
+    ],
     "serve": ["nextword serve demo.nwm --users users/", "nextword serve demo.nwm --tcp 127.0.0.1:0"],
     "live": ["nextword live demo.nwm", "nextword live demo.nwm -k 3 --lam 0.8"],
 }
@@ -303,10 +307,12 @@ def _parser() -> _Parser:
     pr.add_argument("--plot", metavar="PNG", help="with --curve: also draw file size against KSR@k, one line per rule (needs matplotlib; default: no plot)")
     pr.add_argument("--json", action="store_true", help="print the result as JSON")
 
-    ex = sub.add_parser("export", help="export a model to another format")
+    ex = sub.add_parser("export", help="export a model (any estimator and order) as an ARPA back-off file")
     ex.add_argument("model", help=_MODEL_HELP)
-    ex.add_argument("--arpa", required=True, metavar="FILE", help="write the ARPA back-off text here (.gz = compressed; never over the model)")
-    ex.add_argument("--lam", type=_lam, default=None, help=_LAM_HELP)
+    ex.add_argument("-o", "--output", "--arpa", dest="output", required=True, metavar="FILE",
+                    help="write the ARPA back-off text here: every stored n-gram with its interpolated log10 probability, "
+                    "every context with its back-off weight (.gz = compressed; atomically, never over the model)")
+    ex.add_argument("--lam", type=_lam, default=None, help="override every order's λ, as at query time (Jelinek-Mercer only; default: the λ stored in the model)")
     ex.add_argument("--json", action="store_true", help="print the result as JSON")
 
     sv = sub.add_parser("serve", help="answer suggest/learn/forget requests over a local socket (JSON lines)")
@@ -905,12 +911,15 @@ def _cmd_export(args: argparse.Namespace) -> int:
     from .export import write_arpa
 
     model = load(args.model)
-    write_arpa(model, args.arpa, lam=args.lam)
-    out = {"model": args.model, "output": args.arpa, "unigrams": model.n_words + 3, "bigrams": model.n_bigrams}
+    written = write_arpa(model, args.output, lam=args.lam)
+    names = ("unigrams", "bigrams", "trigrams")
+    out: dict[str, Any] = {"model": args.model, "output": args.output, "estimator": model.estimator, "order": model.order,
+                           **{names[m]: k for m, k in enumerate(written)}}
     if args.json:
         print(json.dumps(out))
     else:
-        print(f"wrote {args.arpa}: {out['unigrams']:,} unigrams, {out['bigrams']:,} bigrams")
+        counts = ", ".join(f"{k:,} {names[m]}" for m, k in enumerate(written))
+        print(f"wrote {args.output}: {counts} ({'Kneser-Ney' if model.estimator == 'kn' else 'Jelinek-Mercer'} order {model.order})")
     return 0
 
 
@@ -982,7 +991,7 @@ def _io_paths(args: argparse.Namespace) -> tuple[list[Labelled], list[Labelled],
         outs = [("pruned model", args.output)] if args.output else []
         outs += [("size plot", args.plot)] if args.plot else []
     elif cmd == "export":
-        ins, outs = [("model", args.model)], [("ARPA file", args.arpa)]
+        ins, outs = [("model", args.model)], [("ARPA file", args.output)]
     elif cmd == "eval":
         ins = [("model", args.model)] + [("log", x) for x in args.logs] + [("training text", x) for x in args.train_data or []]
     elif cmd == "personal":

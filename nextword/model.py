@@ -26,6 +26,7 @@ from ._progress import DEFAULT_TICK, Progress
 from .corpus import Format, iter_messages, open_sources
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables, auto_workers, count_in_processes
 from .estimators import unigram_floor
+from .ngrams import NgramCounts
 from .errors import InputDataError, InvalidArgumentError, ModelFormatError
 from .prune import DEFAULT_RULE
 from .store import (
@@ -786,6 +787,80 @@ class Model:
         import copy
 
         return copy.deepcopy(self._src.meta)
+
+    # -- public accessors for export, tune and evaluation (h-wiring) ------------------------
+    # What the commands outside the query layer need of a loaded file, so that no module
+    # reads Model privates: the word keys, the stored n-gram values, the held-out text in
+    # this file's ids, and the λ values a query uses.
+
+    def word_keys(self) -> list[str]:
+        """The case-folded key of every word id 0..n_words−1 (unique, never white space)."""
+        return [self._key(i) for i in range(self.n_words)]
+
+    def stored_ngrams(self) -> NgramCounts:
+        """Every stored n-gram of every order 1..order with its stored value, in this file's ids.
+
+        Jelinek-Mercer: raw counts (a pruned file: the kept pairs, whose sums are the
+        stored history counts); Kneser-Ney: the adjusted counts the file stores (raw at the
+        highest order and after ``<s>``, continuation counts below). Fitting the file's
+        estimator on these values (``Level.of``) gives back the model's probabilities.
+        """
+        a = self._src.arrays
+        n = self.n_words
+        unig = np.asarray(a["UNIG"], dtype=np.int64)
+        w1 = np.flatnonzero(unig > 0)
+        rows = np.asarray(a["ROWS"], dtype=np.int64)
+        alph = np.asarray(a["ALPH"], dtype=np.int64)
+        left = np.repeat(np.arange(n + 3, dtype=np.int64), np.diff(rows))
+        right = alph[np.asarray(a["SUCC"], dtype=np.int64)]
+        value2 = self._counts(np.arange(int(rows[-1])))
+        o2 = np.lexsort((right, left))
+        grams = [w1.reshape(-1, 1), np.stack([left[o2], right[o2]], axis=1)]
+        values = [unig[w1], value2[o2]]
+        if self.order == 3:
+            trow = np.asarray(a["TROW"], dtype=np.int64)
+            tcts = np.asarray(a["TCTS"], dtype=np.int64)
+            v = np.repeat(np.arange(len(trow) - 1, dtype=np.int64), np.diff(trow))
+            u = np.asarray(a["TCTU"], dtype=np.int64)
+            per = np.diff(tcts)
+            g3 = np.stack([np.repeat(u, per), np.repeat(v, per), alph[np.asarray(a["TSUC"], dtype=np.int64)]], axis=1)
+            o3 = np.lexsort((g3[:, 2], g3[:, 1], g3[:, 0]))
+            grams.append(g3[o3])
+            values.append(np.asarray(a["TVAL"], dtype=np.int64)[o3])
+        return NgramCounts(n, tuple(grams), tuple(values))
+
+    def sentence_ids(self, lines: Iterable[str]) -> list[list[int]]:
+        """Every sentence of ``lines`` as ids (words; ``<unk>`` for unknown words and breaks), cut as in training.
+
+        The input :func:`nextword.tune.order_events` takes; ``<s>`` and ``</s>`` are not included.
+        """
+        if isinstance(lines, str):
+            raise InvalidArgumentError("expected an iterable of messages, not one string")
+        out: list[list[int]] = []
+        for line in lines:
+            for sent in sentences(line):
+                ids = []
+                for tok in sent:
+                    wid = None if tok is None else self._word_id(fold(tok))
+                    ids.append(self._unk if wid is None else wid)
+                out.append(ids)
+        return out
+
+    def query_lambdas(self, lam: float | None = None) -> list[float]:
+        """[λ2] or [λ2, λ3] as a query uses them (a load-time or ``lam`` override replaces every
+        order's); empty for Kneser-Ney. λ by history count, if stored, is :meth:`lam_for`."""
+        if self.estimator == "kn":
+            if lam is not None:
+                raise InvalidArgumentError(f"lam={lam!r} given for a Kneser-Ney model, which has no λ")
+            return []
+        lam = None if lam is None else _check_lam(lam)
+        if self.order == 2:
+            return [self.lam if lam is None else lam]
+        return list(self._ng_lams(lam))
+
+    def uses_lambda_buckets(self) -> bool:
+        """Whether queries take λ from the stored buckets by history count (not overridden)."""
+        return bool(self.lambda_values) and not self._override
 
     def info(self) -> dict[str, Any]:
         """Sizes, settings and corpus statistics, as plain data (for ``nextword info``)."""
