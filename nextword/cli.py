@@ -615,26 +615,30 @@ def _cmd_split(args: argparse.Namespace) -> int:
 
 
 def _cmd_tune(args: argparse.Namespace) -> int:
-    # stages: held-out events, the keystroke search (unless off), before, writing (-o), after
-    search = args.objective == "keystrokes" or not args.no_ksr_curve
-    measured_after = bool(args.output) or not args.buckets
-    bar = Progress("tune", stages=2 + search + bool(args.output) + measured_after)
-    try:
-        return _run_tune(args, bar, search)
-    finally:
-        bar.done()  # also on errors: the error message then starts on a clean line
-
-
-def _run_tune(args: argparse.Namespace, bar: Progress, search: bool) -> int:
-    from .evaluate import evaluate, is_held_out
-    from .store import rewrite_model
-    from .tune import events_of, fit_buckets, keystroke_search, optimal_lambda, perplexity_at
+    from .tune import check_tunable
 
     if not 0 <= args.test_percent <= 90:
         raise UsageError(f"argument --test-percent: expected 0-90, got {args.test_percent}")
     if args.buckets and args.objective != "perplexity":
         raise UsageError("--buckets fits λ per bucket by perplexity; use it with --objective perplexity")
     model = load(args.model)
+    check_tunable(model)  # Kneser-Ney: one line, exit 2 (its discounts stay fixed)
+    # stages: held-out events, the keystroke search (unless off), before, writing (-o), after
+    search = args.objective == "keystrokes" or not args.no_ksr_curve
+    trigram = model.order == 3  # λ per order: "after" is always measured, from a written file
+    measured_after = trigram or bool(args.output) or not args.buckets
+    bar = Progress("tune", stages=2 + search + (trigram or bool(args.output)) + measured_after)
+    try:
+        return _run_tune(args, bar, search, model)
+    finally:
+        bar.done()  # also on errors: the error message then starts on a clean line
+
+
+def _run_tune(args: argparse.Namespace, bar: Progress, search: bool, model: Model) -> int:
+    from .evaluate import evaluate, is_held_out
+    from .store import rewrite_model
+    from .tune import events_of, fit_buckets, keystroke_search, optimal_lambda, perplexity_at
+
     messages = [m for m in iter_messages(open_sources(args.heldout, fmt=args.format, field=args.field)) if m.strip()]
     if args.test_percent:
         tune_msgs = [m for m in messages if not is_held_out(m, args.test_percent, salt="tune:")]
@@ -645,6 +649,15 @@ def _run_tune(args: argparse.Namespace, bar: Progress, search: bool) -> int:
         used = f"tuned and measured on the same {len(tune_msgs):,} messages (optimistic; use --test-percent)"
     if not tune_msgs or not test_msgs:
         raise InvalidArgumentError("not enough held-out messages to tune and measure")
+    n_test = sum(1 for m in test_msgs if m.strip())
+
+    def measure(m: Model, when: str) -> dict[str, float]:
+        bar.stage(f"measuring {when} on {n_test:,} messages", total=n_test, unit="messages")
+        overall, _ = evaluate(m, [("test", test_msgs)], (args.k,), progress=bar.update)
+        return {"perplexity": overall.perplexity, "ksr": overall.per_k[args.k].ksr}
+
+    if model.order == 3:
+        return _tune_orders(args, bar, search, model, tune_msgs, used, measure)
     bar.stage(f"held-out events of {len(tune_msgs):,} messages, perplexity curve")
     ev = events_of(model, tune_msgs)
     b, u = ev.bu()
@@ -663,13 +676,6 @@ def _run_tune(args: argparse.Namespace, bar: Progress, search: bool) -> int:
         chosen = ppl_lam
         if args.buckets:
             buckets = fit_buckets(ev, min_events=args.min_bucket_events)
-    n_test = sum(1 for m in test_msgs if m.strip())
-
-    def measure(m: Model, when: str) -> dict[str, float]:
-        bar.stage(f"measuring {when} on {n_test:,} messages", total=n_test, unit="messages")
-        overall, _ = evaluate(m, [("test", test_msgs)], (args.k,), progress=bar.update)
-        return {"perplexity": overall.perplexity, "ksr": overall.per_k[args.k].ksr}
-
     before = measure(model, "before")
     result: dict[str, Any] = {
         "model": args.model,
@@ -722,6 +728,92 @@ def _run_tune(args: argparse.Namespace, bar: Progress, search: bool) -> int:
     return 0
 
 
+def _tune_orders(
+    args: argparse.Namespace, bar: Progress, search: bool, model: Model, tune_msgs: list[str], used: str, measure: Any
+) -> int:
+    """``tune`` of a Jelinek-Mercer trigram file: λ per order by perplexity (EM), or one λ for
+    both orders by keystrokes; per-order buckets are fitted and reported but a format 1.3
+    file stores one λ per order, so the file gets the single λ per order."""
+    import tempfile
+
+    from .tune import keystroke_search, tune_orders, write_lambdas
+
+    bar.stage(f"held-out events of {len(tune_msgs):,} messages, λ per order, perplexity curves")
+    t = tune_orders(model, tune_msgs, buckets=args.buckets, min_events=args.min_bucket_events)
+    ksr_lam: float | None = None
+    ksr_curve: dict[float, float] = {}
+    if search:
+        bar.stage(f"searching one λ for both orders for KSR@{args.k}", unit="messages")
+        ksr_lam, ksr_curve = keystroke_search(model, tune_msgs, k=args.k, progress=bar.update)
+    chosen = [ksr_lam] * 2 if args.objective == "keystrokes" and ksr_lam is not None else list(t.lambdas)
+    before = measure(model, "before")
+    notes = []
+    if t.buckets is not None:
+        notes.append("λ buckets per order are reported, not stored: a trigram file (format 1.3) records one λ per order, "
+                     "so the file gets the single per-order optimum")
+    if args.objective == "keystrokes":
+        notes.append("the keystroke objective searches one λ shared by both orders (what --lam does at query time)")
+    result: dict[str, Any] = {
+        "model": args.model,
+        "estimator": model.estimator,
+        "order": model.order,
+        "objective": args.objective,
+        "held_out_use": used,
+        "stored_lambdas": t.stored,
+        "perplexity_optimal_lambdas": t.lambdas,
+        "keystroke_optimal_lambda": ksr_lam,
+        "chosen_lambdas": chosen,
+        "tune_perplexity": {"stored": t.stored_perplexity, "optimal": t.perplexity},
+        "buckets": None if t.buckets is None else {
+            **t.buckets.as_meta(), "events": t.buckets.events, "tune_perplexity": t.bucket_perplexity, "stored": False},
+        "perplexity_curves": {str(m): [{"lambda": k, "perplexity": v} for k, v in c.items()] for m, c in t.curves.items()},
+        "ksr_curve": [{"lambda": k, "ksr": v} for k, v in ksr_curve.items()],
+        "k": args.k,
+        "before": before,
+        "notes": notes,
+    }
+    with tempfile.TemporaryDirectory(prefix="nextword-tune-") as tmp:
+        target = args.output or os.path.join(tmp, "tuned.nwm")
+        bar.stage(f"writing {args.output or 'the tuned model (temporary)'}")
+        write_lambdas(model, target, chosen)
+        if args.output:
+            result["output"] = args.output
+        tuned = load(target)
+        result["after"] = measure(tuned, "after")
+        tuned.close()
+    bar.done()
+    if args.report:
+        _tune_report(args.report, result)
+    if args.json:
+        print(json.dumps(result, indent=2))
+        return 0
+    print(f"model: {args.model} (Jelinek-Mercer order 3); {used}")
+    for m, curve in t.curves.items():
+        others = ", ".join(f"λ{j} = {t.lambdas[j - 2]:.4f}" for j in t.curves if j != m)
+        print(f"λ{m} ({others}): " + "  ".join(f"{lam:.4g}: {ppl:.2f}" for lam, ppl in curve.items()))
+    if ksr_curve:
+        print(f"one λ for both orders, KSR@{args.k}: " + "  ".join(f"{lam:.4g}: {100 * v:.2f}%" for lam, v in ksr_curve.items()))
+    lams = lambda v: ", ".join(f"λ{m} = {x:.4f}" for m, x in enumerate(v, 2))  # noqa: E731
+    ksr_note = f"; keystroke-optimal shared λ (k = {args.k}) = {ksr_lam:.4f}" if ksr_lam is not None else ""
+    print(f"perplexity-optimal {lams(t.lambdas)} (tune perplexity {t.perplexity:.2f}, stored λ {t.stored_perplexity:.2f})"
+          f"{ksr_note}; chosen {lams(chosen)} ({args.objective})")
+    if t.buckets is not None:
+        for m, (bounds, values, events) in enumerate(zip(t.buckets.bounds, t.buckets.lambdas, t.buckets.events), 2):
+            spans = [f"c<{bounds[0]}"] + [f"{a}≤c<{b}" for a, b in zip(bounds, bounds[1:])] + ([f"c≥{bounds[-1]}"] if bounds else [])
+            if not bounds:
+                spans = ["all"]
+            print(f"  λ{m} by context count: " + "; ".join(f"{sp}: {v:.4f} ({n:,})" for sp, v, n in zip(spans, values, events)))
+        print(f"  tune perplexity with the buckets {t.bucket_perplexity:.2f}")
+    for note in notes:
+        print(f"note: {note}")
+    after = result["after"]
+    print(f"before ({lams(t.stored)}): perplexity {before['perplexity']:.2f}, KSR@{args.k} {100 * before['ksr']:.2f}%; "
+          f"after: perplexity {after['perplexity']:.2f}, KSR@{args.k} {100 * after['ksr']:.2f}%")
+    if args.output:
+        print(f"wrote {args.output}")
+    return 0
+
+
 def _tune_report(out_dir: str, result: dict[str, Any]) -> None:
     from pathlib import Path
 
@@ -730,11 +822,20 @@ def _tune_report(out_dir: str, result: dict[str, Any]) -> None:
 
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    lines = [f"# λ tuning of `{result['model']}`", "", result["held_out_use"], "",
-             f"Chosen λ = {result['chosen_lambda']:.4f} ({result['objective']}).", "", "| λ | perplexity |", "|---|---|"]
-    lines += [f"| {r['lambda']:.4f} | {r['perplexity']:.2f} |" for r in result["perplexity_curve"]]
+    lines = [f"# λ tuning of `{result['model']}`", "", result["held_out_use"], ""]
+    if "chosen_lambdas" in result:  # λ per order (Jelinek-Mercer trigram)
+        chosen = ", ".join(f"λ{m} = {x:.4f}" for m, x in enumerate(result["chosen_lambdas"], 2))
+        lines += [f"Chosen {chosen} ({result['objective']}).", ""]
+        for m, rows in result["perplexity_curves"].items():
+            lines += ["", f"| λ{m} (other orders at their optimum) | perplexity |", "|---|---|"]
+            lines += [f"| {r['lambda']:.4f} | {r['perplexity']:.2f} |" for r in rows]
+        lines += [*(f"\nNote: {n}." for n in result["notes"])]
+    else:
+        lines += [f"Chosen λ = {result['chosen_lambda']:.4f} ({result['objective']}).", "", "| λ | perplexity |", "|---|---|"]
+        lines += [f"| {r['lambda']:.4f} | {r['perplexity']:.2f} |" for r in result["perplexity_curve"]]
     if result["ksr_curve"]:
-        lines += ["", f"| λ | KSR@{result['k']} |", "|---|---|"]
+        shared = " (one λ for both orders)" if "chosen_lambdas" in result else ""
+        lines += ["", f"| λ{shared} | KSR@{result['k']} |", "|---|---|"]
         lines += [f"| {r['lambda']:.4f} | {100 * r['ksr']:.2f}% |" for r in result["ksr_curve"]]
     if not plots_available():
         lines += ["", PLOTS_SKIPPED]
@@ -821,7 +922,7 @@ def _cmd_prune(args: argparse.Namespace) -> int:
         bar.stage(f"reading the counts of {args.model}")
         _, chunks, info = prune_to_size(
             tables_from_model(model), parse_size(args.max_size), rule=args.rule, lam=model.stored_lam,
-            vocabulary=not args.keep_vocabulary, skyband_k=model._sky_k, skyband_min=model._sky_min, progress=lambda label: bar.stage(label),
+            vocabulary=not args.keep_vocabulary, skyband_k=model.header()["skyband_k"], skyband_min=model.header()["skyband_min"], progress=lambda label: bar.stage(label),
         )
         bar.stage(f"writing {args.output}")
         atomic_write(args.output, chunks)
@@ -869,7 +970,7 @@ def _prune_curve(args: argparse.Namespace, model: Model) -> int:
                     try:
                         _, chunks, _ = prune_to_size(
                             tables, budget, rule=rule, lam=model.stored_lam,  # type: ignore[arg-type]
-                            vocabulary=not args.keep_vocabulary, skyband_k=model._sky_k, skyband_min=model._sky_min,
+                            vocabulary=not args.keep_vocabulary, skyband_k=model.header()["skyband_k"], skyband_min=model.header()["skyband_min"],
                         )
                     except InvalidArgumentError as e:  # below the smallest model of this vocabulary rule
                         skipped.append({"rule": rule, "budget": budget, "reason": str(e)})

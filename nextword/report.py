@@ -317,8 +317,46 @@ def _mark_other(ax: Any, lam: float | None, chosen: float, xs: list[float], ys: 
             linestyle="none", label=f"{name} λ = {float(lam):.4f}")
 
 
+def _order_tune_figures(result: dict[str, Any]) -> dict[str, Any]:
+    """:func:`tune_figures` for λ per order: one perplexity curve per order (the other
+    orders at their optimum), each order's chosen λ marked; the shared-λ KSR curve."""
+    chosen = [float(x) for x in result["chosen_lambdas"]]
+    figs: dict[str, Any] = {}
+    fig, ax = _figure()
+    for i, (m, rows) in enumerate(result["perplexity_curves"].items()):
+        xs, ys = [r["lambda"] for r in rows], [r["perplexity"] for r in rows]
+        line, = ax.plot(xs, ys, marker=_MARKERS[i % len(_MARKERS)], linestyle=_STYLES[i % len(_STYLES)],
+                        label=f"λ{m} varied, other orders at their optimum")
+        lam = chosen[int(m) - 2]
+        import numpy as np
+
+        order = np.argsort(xs)
+        y = float(np.interp(lam, np.asarray(xs)[order], np.asarray(ys)[order]))
+        ax.plot([lam], [y], marker="*", markersize=12, color=line.get_color(), linestyle="none",
+                label=f"chosen λ{m} = {lam:.4f} ({result.get('objective', '')})")
+    ax.set_xlabel("λ of one order")
+    ax.set_ylabel("held-out perplexity")
+    ax.legend(fontsize=8)
+    figs["perplexity.png"] = fig
+    if result["ksr_curve"]:
+        fig, ax = _figure()
+        kc = result["ksr_curve"]
+        xs, ys = [r["lambda"] for r in kc], [100 * r["ksr"] for r in kc]
+        ax.plot(xs, ys, "o-", markersize=4, label=f"KSR@{result['k']}, one λ for both orders")
+        best = result.get("keystroke_optimal_lambda")
+        if best is not None:
+            _mark_lambda(ax, xs, ys, float(best), "keystroke-optimal")
+        ax.set_xlabel("λ (both orders)")
+        ax.set_ylabel(f"KSR@{result['k']} (%)")
+        ax.legend(fontsize=8)
+        figs["ksr.png"] = fig
+    return figs
+
+
 def tune_figures(result: dict[str, Any]) -> dict[str, Any]:
     """The figures of ``nextword tune --report``: {file name: Figure}, the chosen λ marked on each."""
+    if "chosen_lambdas" in result:
+        return _order_tune_figures(result)
     chosen = float(result["chosen_lambda"])
     why = str(result.get("objective", ""))
     figs: dict[str, Any] = {}
