@@ -237,7 +237,9 @@ def _parser() -> _Parser:
     e.add_argument("--lam", type=_lam, default=None, help=_LAM_HELP)
     e.add_argument("--format", choices=FORMATS, default="auto", help=_FORMAT_HELP)
     e.add_argument("--field", default="text", help="JSON Lines field holding the message (default %(default)s)")
-    e.add_argument("--no-baselines", action="store_true", help="skip the λ = 0 and λ = 0.999 runs")
+    e.add_argument("--no-baselines", action="store_true",
+                   help="skip the baseline runs: λ = 0 and λ = 0.999 (Jelinek-Mercer) and, for an order-3 model, the bigram "
+                   "of the same smoothing on the same counts")
     e.add_argument("--train-data", nargs="+", metavar="FILE", help="training text: also time the plain-dict and nltk baselines (default: none, no timing baselines)")
     e.add_argument("--baseline-queries", type=_positive, default=200, help="queries timed per slow baseline (default %(default)s)")
     e.add_argument("--report", metavar="DIR", help="write report.md and plots into DIR, created if missing (default: none)")
@@ -470,20 +472,22 @@ def _cmd_info(args: argparse.Namespace) -> int:
 
 
 def _cmd_eval(args: argparse.Namespace) -> int:
-    # stages: reading, the model, two λ baselines, then (with --train-data) 6 timing stages
-    bar = Progress("eval", stages=2 + 2 * (not args.no_baselines) + 6 * bool(args.train_data))
+    model = load(args.model, lam=args.lam)
+    # stages: reading, the model, the λ baselines (Jelinek-Mercer) and the bigram of the same
+    # smoothing (order 3), then (with --train-data) 6 timing stages
+    baselines = 0 if args.no_baselines else 2 * (model.estimator == "jm") + (model.order == 3)
+    bar = Progress("eval", stages=2 + baselines + 6 * bool(args.train_data))
     try:
-        return _run_eval(args, bar)
+        return _run_eval(args, bar, model)
     finally:
         bar.done()  # also on errors: the error message then starts on a clean line
 
 
-def _run_eval(args: argparse.Namespace, bar: Progress) -> int:
+def _run_eval(args: argparse.Namespace, bar: Progress, model: Model) -> int:
     from .baselines import DictBigram, nltk_baseline, sample_queries, time_queries
     from .evaluate import evaluate
     from .report import eval_data, text_report, write_report
 
-    model = load(args.model, lam=args.lam)
     ks = sorted(set(args.k))
     sources = open_sources(args.logs, fmt=args.format, field=args.field)
     sizes = [0 if s.name == "-" else os.path.getsize(s.name) for s in sources]
@@ -505,10 +509,24 @@ def _run_eval(args: argparse.Namespace, bar: Progress) -> int:
     baselines: dict[str, Any] = {}
     if not args.no_baselines and model.estimator == "jm":  # λ has no meaning for Kneser-Ney
         baselines["lambda"] = {}
-        for label, lam in (("unigram only (λ = 0)", 0.0), ("bigram only (λ = 0.999)", 0.999)):
+        top = "bigram only" if model.order == 2 else "highest order only"
+        for label, lam in (("unigram only (λ = 0)", 0.0), (f"{top} (λ = 0.999)", 0.999)):
             bar.stage(f"baseline {label.split(' (')[0]}", total=n_msgs, unit="messages")
             o, _ = evaluate(model, logs, ks, lam=lam, progress=bar.update)
             baselines["lambda"][label] = o.as_dict()
+    if not args.no_baselines and model.order == 3:  # what the two-word context buys
+        import tempfile
+
+        from .baselines import write_same_smoothing_bigram
+
+        bar.stage("baseline: the bigram of the same smoothing", total=n_msgs, unit="messages")
+        with tempfile.TemporaryDirectory(prefix="nextword-eval-") as tmp:
+            how = write_same_smoothing_bigram(model, os.path.join(tmp, "bigram.nwm"))
+            bigram = load(os.path.join(tmp, "bigram.nwm"))
+            o, _ = evaluate(bigram, logs, ks, progress=bar.update)
+            bigram.close()
+        name = f"{'Kneser-Ney' if model.estimator == 'kn' else 'Jelinek-Mercer'} bigram, same counts"
+        baselines["bigram"] = {**o.as_dict(), "name": name, "how": how}
     if args.train_data:
         bar.stage("reading training data")
         train_msgs = list(iter_messages(open_sources(args.train_data, fmt=args.format, field=args.field)))

@@ -41,6 +41,16 @@ def eval_data(model_path: str, overall: LogStats, per_log: list[LogStats], basel
     }
 
 
+def _model_baselines(baselines: dict[str, Any]) -> dict[str, Any]:
+    """The baseline models measured on the same logs, by name: the bigram of the same
+    smoothing (order-3 models), then the λ runs (Jelinek-Mercer)."""
+    out: dict[str, Any] = {}
+    if baselines.get("bigram"):
+        out[baselines["bigram"]["name"]] = baselines["bigram"]
+    out.update(baselines.get("lambda", {}))
+    return out
+
+
 def _pct(x: float) -> str:
     return f"{100 * x:5.1f}%" if math.isfinite(x) else "   n/a"
 
@@ -82,9 +92,11 @@ def text_report(data: dict[str, Any], overall: LogStats, per_log: list[LogStats]
     if b:
         out.append("")
         out.append("baselines on the same logs:")
-        for name, item in b.get("lambda", {}).items():
+        for name, item in _model_baselines(b).items():
             ksr = ", ".join(f"KSR@{row['k']} {_pct(row['ksr']).strip()}" for row in item["per_k"])
             out.append(f"  {name}: {ksr}; perplexity {item['perplexity']:.2f}")
+        if b.get("bigram"):
+            out.append(f"  bigram baseline: {b['bigram']['how']}")
         d = b.get("dict")
         if d:
             out.append(
@@ -130,10 +142,12 @@ def markdown_report(data: dict[str, Any], images: list[str], note: str = "") -> 
         lines.append("| model | " + " | ".join(f"KSR@{r['k']}" for r in o["per_k"]) + " | perplexity |")
         lines.append("|---|" + "---|" * (len(o["per_k"]) + 1))
         lines.append("| this model | " + " | ".join(_pct(r["ksr"]).strip() for r in o["per_k"]) + f" | {o['perplexity']:.2f} |")
-        for name, item in b.get("lambda", {}).items():
+        for name, item in _model_baselines(b).items():
             lines.append(
                 f"| {name} | " + " | ".join(_pct(r["ksr"]).strip() for r in item["per_k"]) + f" | {item['perplexity']:.2f} |"
             )
+        if b.get("bigram"):
+            lines += ["", f"The bigram baseline: {b['bigram']['how']}; it shows what the two-word context buys."]
         d, n = b.get("dict"), b.get("nltk")
         if d or n:
             lines += ["", "| implementation | fit | suggest p50 | ratio to the engine |", "|---|---|---|---|"]
@@ -245,7 +259,7 @@ def ksr_figure(data: dict[str, Any]) -> Any:
     o = data["overall"]
     ks = [r["k"] for r in o["per_k"]]
     series: list[tuple[str, list[float]]] = [("this model", [100 * r["ksr"] for r in o["per_k"]])]
-    for name, item in (data.get("baselines") or {}).get("lambda", {}).items():
+    for name, item in _model_baselines(data.get("baselines") or {}).items():
         series.append((name, [100 * r["ksr"] for r in item["per_k"]]))
     same = identical_to(series)
     fig, ax = _figure()
