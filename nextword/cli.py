@@ -13,6 +13,7 @@ import json
 import os
 import statistics
 import sys
+import textwrap
 import time
 from typing import Any, NoReturn, Sequence
 
@@ -159,6 +160,7 @@ _EXAMPLES: dict[str, list[str]] = {
     "info": ["nextword info demo.nwm", "nextword info demo.nwm --verify --json"],
     "eval": [
         "nextword eval demo.nwm held.txt -k 1 3 5",
+        "nextword eval trigram-kn.nwm held.txt -k 3 --report report/",
         "nextword eval demo.nwm held.jsonl --train-data train.jsonl --report report/ --json",
     ],
     "split": [
@@ -170,6 +172,7 @@ _EXAMPLES: dict[str, list[str]] = {
     "tune": [
         "nextword tune demo.nwm tune.txt --test-percent 30 -o tuned.nwm",
         "nextword tune demo.nwm tune.txt --objective keystrokes -k 3 -o tuned.nwm --json",
+        "nextword tune trigram.nwm tune.txt -o trigram-tuned.nwm --report tune-report/",
     ],
     "personal": [
         'nextword personal me.nwp --model demo.nwm learn "Meet me at Quarrington Lake"',
@@ -230,7 +233,8 @@ def _parser() -> _Parser:
     i.add_argument("--verify", action="store_true", help="read and check every section of the file, not only what opening it needs")
     i.add_argument("--json", action="store_true", help="print JSON")
 
-    e = sub.add_parser("eval", help="measure keystroke savings, accuracy and latency on typing logs")
+    e = sub.add_parser("eval", help="measure keystroke savings, accuracy and latency on typing logs, beside baselines "
+                       "(λ = 0 and 0.999; for an order-3 model the bigram of the same smoothing)")
     e.add_argument("model", help=_MODEL_HELP)
     e.add_argument("logs", nargs="+", metavar="LOG", help="held-out typing logs: text or JSON Lines (.gz ok)")
     e.add_argument("-k", type=_positive, nargs="+", default=[1, 3, 5], help="suggestion counts (default 1 3 5)")
@@ -262,13 +266,20 @@ def _parser() -> _Parser:
     sp.add_argument("--field", default="text", help="JSON Lines field holding the message (default %(default)s)")
     sp.add_argument("--json", action="store_true", help="print the counts as JSON")
 
-    tu = sub.add_parser("tune", help="choose λ on held-out text (perplexity by EM, keystrokes by search, per history count)")
+    tu = sub.add_parser(
+        "tune",
+        help="choose λ on held-out text (perplexity by EM, keystrokes by search, per history count); "
+        "λ per order for a Jelinek-Mercer trigram; Kneser-Ney files are refused (their discounts stay fixed)",
+    )
     tu.add_argument("model", help=_MODEL_HELP)
     tu.add_argument("heldout", nargs="+", metavar="HELDOUT", help="held-out text or JSON Lines (.gz ok), never the test text")
     tu.add_argument("-k", type=_positive, default=3, help="suggestions for the keystroke objective (default %(default)s)")
     tu.add_argument("--objective", choices=("perplexity", "keystrokes"), default="perplexity",
-                    help="what the chosen λ optimises: held-out perplexity (EM) or keystroke savings at -k (search)")
-    tu.add_argument("--buckets", action="store_true", help="fit λ per history-count bucket (perplexity objective)")
+                    help="what the chosen λ optimises: held-out perplexity (EM; a trigram gets λ per order) or keystroke "
+                    "savings at -k (search; a trigram gets one λ for both orders)")
+    tu.add_argument("--buckets", action="store_true",
+                    help="fit λ per history-count bucket (perplexity objective); for a trigram per order and bucket, "
+                    "reported but not stored (its file keeps one λ per order)")
     tu.add_argument("--no-ksr-curve", action="store_true", help="skip the keystroke simulation curve (perplexity objective)")
     tu.add_argument("--min-bucket-events", type=_positive, default=500, help="held-out tokens per bucket (default %(default)s)")
     tu.add_argument("--test-percent", type=int, default=0, metavar="P",
@@ -337,6 +348,23 @@ def _parser() -> _Parser:
     lv.add_argument("-k", type=_positive, default=5, help="suggestions shown (default %(default)s)")
     lv.add_argument("--lam", type=_lam, default=None, help=_LAM_HELP)
 
+    tu.description = (
+        "Choose λ on held-out text. A Jelinek-Mercer bigram gets one λ (or λ per history-count bucket with --buckets); "
+        "a Jelinek-Mercer trigram gets λ per order (perplexity) or one λ for both orders (keystrokes). "
+        "Kneser-Ney files are refused in one line (exit 2): their discounts stay at the count-of-counts estimate."
+    )
+    e.description = (
+        "Simulate typing held-out logs: keystroke savings, hit@k, perplexity, latency. Baselines on the same logs: "
+        "the model at λ = 0 and λ = 0.999 (Jelinek-Mercer) and, for an order-3 model, the bigram of the same "
+        "smoothing on the same counts (what the two-word context buys)."
+    )
+    ex.description = (
+        "Write any model (Jelinek-Mercer or Kneser-Ney, order 2 or 3) as an ARPA back-off file: every stored n-gram "
+        "with its interpolated log10 probability, every context with its back-off weight log10 γ, so the ordinary "
+        "back-off reading reproduces the model for every context and word."
+    )
+    for command in (tu, e, ex):  # the raw formatter keeps text as written: wrap it here
+        command.description = textwrap.fill(command.description or "", width=88)
     for name, command in sub.choices.items():
         command.intermixed = True
         if name in _EXAMPLES:
