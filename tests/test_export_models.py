@@ -178,3 +178,16 @@ def test_random_corpora_every_context_sums_to_one(tmp_path_factory: pytest.TempP
     ctxs = {tuple(rng.choice(names) for _ in range(order - 1)) for _ in range(8)} | set(_contexts(model, rng, 30))
     ctxs = {tuple(UNK if t == "zebra" else t for t in c) for c in ctxs}
     _check_file(model, arpa, sorted(ctxs))
+
+
+def test_pruned_bigram_file(models: dict[tuple[str, int], Path], tmp_path: Path) -> None:
+    # a pruned file stores c(v) as the sum of its kept pairs (format 1.2): the export's contexts use them
+    full = nextword.load(models["jm", 2])
+    r = subprocess.run([sys.executable, "-m", "nextword", "prune", str(models["jm", 2]), "-o", str(tmp_path / "p.nwm"),
+                        "--max-size", str(int(full.file_size * 0.6))], capture_output=True, text=True,
+                       env=dict(os.environ, PYTHONPATH=str(ROOT)))
+    assert r.returncode == 0, r.stderr
+    pruned = nextword.load(tmp_path / "p.nwm")
+    assert pruned.n_bigrams < full.n_bigrams and pruned.format_version == (1, 2)
+    write_arpa(pruned, tmp_path / "p.arpa")
+    _check_file(pruned, _read(tmp_path / "p.arpa"), _contexts(pruned, random.Random(4), 30))
