@@ -51,8 +51,9 @@ from typing import Iterable, Iterator, Sequence, Union
 import numpy as np
 
 from .errors import InvalidArgumentError
-from .estimators import Fitted, FittedKneserNey, JelinekMercer, Level
+from .estimators import Fitted, FittedJelinekMercer, FittedKneserNey
 from .model import Model
+from .ngrams import NgramCounts
 from .paths import check_outputs
 from .reference_kn import Discounts
 from .store import atomic_write
@@ -120,23 +121,23 @@ def _write(lines: Iterable[str], path: PathArg) -> None:
 def fitted_from_model(model: Model, *, lam: float | None = None) -> Fitted:
     """The fitted estimator a model file stores, scoring exactly as the model does.
 
-    Built from the stored values (:meth:`Model.stored_ngrams`): Jelinek-Mercer with the λ
+    Built from the stored levels (:meth:`Model.stored_levels`: values and context totals as
+    queries read them): Jelinek-Mercer with the λ
     per order a query uses (``lam`` replaces every order's, as at query time; else a bigram
     file's λ buckets by history count apply), Kneser-Ney with the file's discounts (``lam``
     is refused: it has no λ).
     """
-    counts = model.stored_ngrams()
+    levels = model.stored_levels()
+    counts = NgramCounts(model.n_words, tuple(lev.grams for lev in levels), tuple(lev.value for lev in levels))
     if model.estimator == "kn":
         if lam is not None:
             raise InvalidArgumentError(f"lam={lam!r} given for a Kneser-Ney model, which has no λ")
-        levels = [Level.of(counts.grams[m], counts.counts[m]) for m in range(counts.order)]
-        discounts = [Discounts(*d) for d in model.discounts]
-        return FittedKneserNey(counts, levels, discounts, {})
+        return FittedKneserNey(counts, levels, [Discounts(*d) for d in model.discounts], {})
     lams = model.query_lambdas(lam)
-    buckets: list[tuple[list[int], list[float]] | None] = []
+    buckets: list[tuple[list[int], list[float]] | None] = [None] * (model.order - 1)
     if lam is None and model.order == 2 and model.uses_lambda_buckets():
         buckets = [(list(model.lambda_bounds), list(model.lambda_values))]
-    return JelinekMercer(lams, buckets=buckets).fit(counts)
+    return FittedJelinekMercer(counts, levels, [1.0, *lams], [None, *buckets])
 
 
 def arpa_lines(model: Model, *, lam: float | None = None) -> Iterator[str]:

@@ -25,7 +25,7 @@ import numpy as np
 from ._progress import DEFAULT_TICK, Progress
 from .corpus import Format, iter_messages, open_sources
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables, auto_workers, count_in_processes
-from .estimators import unigram_floor
+from .estimators import Level, unigram_floor
 from .ngrams import NgramCounts
 from .errors import InputDataError, InvalidArgumentError, ModelFormatError
 from .prune import DEFAULT_RULE
@@ -829,6 +829,43 @@ class Model:
             values.append(np.asarray(a["TVAL"], dtype=np.int64)[o3])
         return NgramCounts(n, tuple(grams), tuple(values))
 
+    def stored_levels(self) -> list[Level]:
+        """What the file stores per order, in the estimator-neutral form (``estimators.Level``).
+
+        The n-grams and values of :meth:`stored_ngrams`, and per context the *total* and the
+        counts of values 1, 2, ≥ 3 exactly as queries read them (history counts — stored, or
+        derived from the unigram counts —, the Kneser-Ney n₁/n₂/n₃₊ sections, the trigram
+        totals), so a fitted estimator built on these levels scores as the model does even
+        where a file's totals are not the sums of its stored values. A context with a total
+        but no stored n-gram is kept, with an empty block.
+        """
+        a = self._src.arrays
+        n = self.n_words
+        counts = self.stored_ngrams()
+        levels = [Level.of(counts.grams[0], counts.counts[0])]
+        hist = np.asarray([self._hist(v) for v in range(n + 3)], dtype=np.int64)
+        g2, v2 = counts.grams[1], counts.counts[1]
+        ctx2 = np.flatnonzero(hist > 0)
+        start2 = np.searchsorted(g2[:, 0], np.append(ctx2, n + 3), side="left").astype(np.int64)
+        n123 = (np.asarray(a["HN13"], dtype=np.int64).reshape(-1, 3)[ctx2] if self.estimator == "kn"
+                else _n123_of(v2, start2))
+        levels.append(Level(g2, v2, ctx2.reshape(-1, 1), start2, hist[ctx2], n123))
+        if self.order == 3:
+            g3, v3 = counts.grams[2], counts.counts[2]
+            trow = np.asarray(a["TROW"], dtype=np.int64)
+            ctx_v = np.repeat(np.arange(len(trow) - 1, dtype=np.int64), np.diff(trow))
+            ctx_u = np.asarray(a["TCTU"], dtype=np.int64)
+            ttot = np.asarray(a["TTOT"], dtype=np.int64)
+            o = np.lexsort((ctx_v, ctx_u))  # file contexts are grouped by v; levels sort by (u, v)
+            ctx3 = np.stack([ctx_u[o], ctx_v[o]], axis=1)
+            base = n + 3
+            keys = g3[:, 0] * base + g3[:, 1]
+            start3 = np.searchsorted(keys, np.append(ctx3[:, 0] * base + ctx3[:, 1], base * base), side="left").astype(np.int64)
+            n123 = (np.asarray(a["TN13"], dtype=np.int64).reshape(-1, 3)[o] if self.estimator == "kn"
+                    else _n123_of(v3, start3))
+            levels.append(Level(g3, v3, ctx3, start3, ttot[o], n123))
+        return levels
+
     def sentence_ids(self, lines: Iterable[str]) -> list[list[int]]:
         """Every sentence of ``lines`` as ids (words; ``<unk>`` for unknown words and breaks), cut as in training.
 
@@ -904,6 +941,15 @@ class Model:
             **({"trigrams": self._src.meta["trigrams"]} if self.order == 3 else {}),
             "corpus": self.stats,
         }
+
+
+def _n123_of(value: np.ndarray, start: np.ndarray) -> np.ndarray:
+    """(contexts, 3): how many of each context's values (blocks ``start[j]:start[j+1]``) are 1, 2 and ≥ 3."""
+    owner = np.repeat(np.arange(len(start) - 1), np.diff(start))
+    out = np.zeros((len(start) - 1, 3), dtype=np.int64)
+    for j, mask in enumerate((value == 1, value == 2, value >= 3)):
+        out[:, j] = np.bincount(owner[mask], minlength=len(start) - 1)
+    return out
 
 
 def _recase(word: str, prefix: str, at_start: bool) -> str:

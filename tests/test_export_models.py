@@ -191,3 +191,19 @@ def test_pruned_bigram_file(models: dict[tuple[str, int], Path], tmp_path: Path)
     assert pruned.n_bigrams < full.n_bigrams and pruned.format_version == (1, 2)
     write_arpa(pruned, tmp_path / "p.arpa")
     _check_file(pruned, _read(tmp_path / "p.arpa"), _contexts(pruned, random.Random(4), 30))
+
+
+@pytest.mark.parametrize("kind", KINDS, ids=[f"{s}{o}" for s, o in KINDS])
+def test_fitted_from_model_scores_exactly_as_the_model(models: dict[tuple[str, int], Path], kind: tuple[str, int]) -> None:
+    # the same operations in the same order (estimators' α + γ·lower; the model's scorer): equal to the last bit
+    model = nextword.load(models[kind])
+    fitted = fitted_from_model(model)
+    names = [*model.word_keys(), EOS, UNK, BOS]
+    index = {k: i for i, k in enumerate(names)}
+    for h in _contexts(model, random.Random(9), 15):
+        ids = tuple(index[t] for t in h)
+        hist = [None if t == BOS else t for t in h]
+        for w in range(model.n_words + 2):
+            assert fitted.prob(w, ids) == model.prob_after(names[w], hist), (h, names[w])
+    levels = model.stored_levels()
+    assert [len(lev.grams) for lev in levels] == [len(g) for g in model.stored_ngrams().grams]
