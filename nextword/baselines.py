@@ -189,12 +189,22 @@ def raw_bigram_counts(model: Model) -> NgramCounts:
     (u, v, w) in the same sentence (u = ``<s>`` for a sentence's second token), so
     c(v, w) = Σ_u c(u, v, w); c(<s>, w) is stored; and every predicted token has exactly one
     predecessor, so c(w) = Σ_v c(v, w). These are the counts counting the same corpus
-    with the same vocabulary gives (a test compares the files byte for byte).
+    with the same vocabulary gives (a test compares the files byte for byte). A file whose
+    context totals are not the sums of its stored n-grams (pruned) is refused
+    (:class:`~nextword.errors.InvalidArgumentError`): its raw counts are lost.
     """
     from .ngrams import NgramCounts
 
     if model.order != 3:
         raise InvalidArgumentError(f"{model.path}: raw bigram counts are derived from order-3 files; this one is order {model.order}")
+    for m, lev in enumerate(model.stored_levels()[1:], 2):
+        sums = np.add.reduceat(lev.value, lev.ctx_start[:-1]) if len(lev.value) else np.zeros(0, np.int64)
+        empty = lev.ctx_start[1:] == lev.ctx_start[:-1]
+        if bool(empty.any()) or not np.array_equal(np.where(empty, 0, sums), lev.ctx_total):
+            raise InvalidArgumentError(
+                f"{model.path}: its order-{m} context totals are not the sums of its stored n-grams (a pruned file), "
+                "so its raw bigram counts cannot be recovered"
+            )
     stored = model.stored_ngrams()
     n, bos = model.n_words, model.n_words + 2
     if model.estimator == "jm":

@@ -140,3 +140,17 @@ def test_ksr_figure_shows_the_bigram_series() -> None:
     ax = ksr_figure(data).axes[0]
     lines = {ln.get_label(): ln for ln in ax.get_lines()}
     assert list(lines["Kneser-Ney bigram, same counts"].get_ydata()) == [35.0]
+
+
+def test_a_file_whose_totals_are_not_sums_is_refused(corpus: dict[str, object], monkeypatch: pytest.MonkeyPatch) -> None:
+    # a pruned file keeps context totals above the sums of its kept n-grams (dropped mass): the raw
+    # counts cannot be recovered from it, so no baseline is made (eval notes it and goes on)
+    import dataclasses
+
+    model = nextword.load(Path(str(corpus["tmp"])) / "kn3.nwm")
+    levels = model.stored_levels()
+    bumped = levels[2].ctx_total.copy()
+    bumped[0] += 1
+    monkeypatch.setattr(model, "stored_levels", lambda: [*levels[:2], dataclasses.replace(levels[2], ctx_total=bumped)])
+    with pytest.raises(InvalidArgumentError, match="pruned"):
+        raw_bigram_counts(model)
