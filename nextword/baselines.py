@@ -197,14 +197,11 @@ def raw_bigram_counts(model: Model) -> NgramCounts:
 
     if model.order != 3:
         raise InvalidArgumentError(f"{model.path}: raw bigram counts are derived from order-3 files; this one is order {model.order}")
-    for m, lev in enumerate(model.stored_levels()[1:], 2):
-        sums = np.add.reduceat(lev.value, lev.ctx_start[:-1]) if len(lev.value) else np.zeros(0, np.int64)
-        empty = lev.ctx_start[1:] == lev.ctx_start[:-1]
-        if bool(empty.any()) or not np.array_equal(np.where(empty, 0, sums), lev.ctx_total):
-            raise InvalidArgumentError(
-                f"{model.path}: its order-{m} context totals are not the sums of its stored n-grams (a pruned file), "
-                "so its raw bigram counts cannot be recovered"
-            )
+    if not model.totals_are_sums():
+        raise InvalidArgumentError(
+            f"{model.path}: its context totals are not the sums of its stored n-grams (a pruned file), "
+            "so its raw bigram counts cannot be recovered"
+        )
     stored = model.stored_ngrams()
     n, bos = model.n_words, model.n_words + 2
     if model.estimator == "jm":

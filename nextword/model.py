@@ -866,6 +866,20 @@ class Model:
             levels.append(Level(g3, v3, ctx3, start3, ttot[o], n123))
         return levels
 
+    def totals_are_sums(self) -> bool:
+        """Whether every context's total is the sum of its stored n-grams' values.
+
+        True for every file ``train`` writes; false where a pruned file keeps the mass of
+        dropped n-grams in its totals — then the raw counts cannot be rebuilt from it.
+        """
+        for lev in self.stored_levels()[1:]:
+            if bool((lev.ctx_start[1:] == lev.ctx_start[:-1]).any()):
+                return False
+            sums = np.add.reduceat(lev.value, lev.ctx_start[:-1]) if len(lev.value) else np.zeros(0, np.int64)
+            if not np.array_equal(sums, lev.ctx_total):
+                return False
+        return True
+
     def sentence_ids(self, lines: Iterable[str]) -> list[list[int]]:
         """Every sentence of ``lines`` as ids (words; ``<unk>`` for unknown words and breaks), cut as in training.
 

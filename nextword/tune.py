@@ -689,8 +689,14 @@ def check_tunable(model: Model) -> None:
 
 
 def model_order_events(model: Model, lines: Iterable[str]) -> OrderEvents:
-    """:func:`order_events` of held-out messages under a Jelinek-Mercer model file's stored counts."""
+    """:func:`order_events` of held-out messages under a Jelinek-Mercer model file's stored counts.
+
+    Refuses a file whose context totals are not the sums of its stored counts (pruned with
+    the dropped mass kept): the events would not be the file's own probabilities.
+    """
     check_tunable(model)
+    if model.order == 3 and not model.totals_are_sums():
+        raise InvalidArgumentError(f"{model.path}: a pruned trigram file keeps dropped mass in its totals; tune λ before pruning")
     return order_events(model.stored_ngrams(), model.sentence_ids(lines))
 
 
@@ -760,6 +766,8 @@ def write_lambdas(model: Model, path: str | os.PathLike[str], lams: Sequence[flo
     if model.order != 3:
         raise InvalidArgumentError(f"{model.path}: write_lambdas rebuilds order-3 files; a bigram file is rewritten by store.rewrite_model")
     check_new_output(model.path, path, "tuned model")
+    if not model.totals_are_sums():
+        raise InvalidArgumentError(f"{model.path}: a pruned trigram file keeps dropped mass in its totals; tune λ before pruning")
     counts = model.stored_ngrams()
     n = model.n_words
     uni = np.zeros(n + 2, dtype=np.int64)

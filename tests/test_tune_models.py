@@ -181,3 +181,21 @@ def test_write_lambdas_refuses_its_model_and_bigram_files(data: dict[str, object
     nextword.train_texts(list(data["held"]), tmp_path / "b.nwm")  # type: ignore[call-overload]
     with pytest.raises(InvalidArgumentError, match="rewrite_model"):
         write_lambdas(nextword.load(tmp_path / "b.nwm"), tmp_path / "x.nwm", [0.5])
+
+
+def test_pruned_trigram_totals_are_refused(data: dict[str, object], tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # totals above the sums of the stored counts (dropped mass of a pruned file): held-out events over the
+    # stored counts would not be the file's probabilities, and a rebuild would lose the mass
+    import dataclasses
+
+    model = nextword.load(Path(str(data["tmp"])) / "jm3.nwm")
+    assert model.totals_are_sums()
+    levels = model.stored_levels()
+    bumped = levels[1].ctx_total.copy()
+    bumped[-1] += 3
+    monkeypatch.setattr(model, "stored_levels", lambda: [levels[0], dataclasses.replace(levels[1], ctx_total=bumped), levels[2]])
+    assert not model.totals_are_sums()
+    for call in (lambda: tune_orders(model, list(data["held"])), lambda: write_lambdas(model, tmp_path / "t.nwm", [0.5, 0.5])):  # type: ignore[call-overload]
+        with pytest.raises(InvalidArgumentError, match="before pruning"):
+            call()
+    assert not (tmp_path / "t.nwm").exists()
