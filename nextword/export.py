@@ -282,8 +282,8 @@ def _fitted_document(fitted: Fitted, keys: Sequence[str]) -> tuple[list[int], It
 
     def section(m: int) -> Iterator[str]:
         bows = t.backoffs(m)
-        for row, p, bow in zip(t.listed[m - 1].tolist(), t.listed_p[m - 1].tolist(), bows):
-            words = " ".join(names[i] for i in row)
+        columns = [[names[i] for i in col] for col in t.listed[m - 1].T.tolist()]  # one list lookup per id
+        for words, p, bow in zip(map(" ".join, zip(*columns)), t.listed_p[m - 1].tolist(), bows):
             yield f"{_log10(p)}\t{words}" if bow is None else f"{_log10(p)}\t{words}\t{bow}"
 
     return counts, _document(counts, [unigrams(), *(section(m) for m in range(2, fitted.order + 1))])
