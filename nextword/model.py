@@ -21,7 +21,8 @@ from typing import Any, Callable, Iterable, Iterator, NamedTuple, Sequence
 import numpy as np
 
 from .codecs import codec_named
-from .estimators import unigram_floor
+from .estimators import Level, unigram_floor
+from .ngrams import NgramCounts
 from .errors import InvalidArgumentError, ModelFormatError
 from .candidates import CandidateRange, PrefixRange, merge_ranked
 from .store import (
@@ -732,6 +733,141 @@ class Model:
         return [self._prob_ids(v, w, lam_v) for w in ids]
 
     # -- end of the public accessors for the personal layer ------------------------------------
+    # -- public accessors for export, tune and evaluation (h-wiring) ------------------------
+    # What the commands outside the query layer need of a loaded file, so that no module
+    # reads Model privates: the word keys, the stored n-gram values, the held-out text in
+    # this file's ids, and the λ values a query uses.
+
+    def word_keys(self) -> list[str]:
+        """The case-folded key of every word id 0..n_words−1 (unique, never white space)."""
+        return [self._key(i) for i in range(self.n_words)]
+
+    def stored_ngrams(self) -> NgramCounts:
+        """Every stored n-gram of every order 1..order with its stored value, in this file's ids.
+
+        Jelinek-Mercer: raw counts (a pruned file: the kept pairs, whose sums are the
+        stored history counts); Kneser-Ney: the adjusted counts the file stores (raw at the
+        highest order and after ``<s>``, continuation counts below). Fitting the file's
+        estimator on these values (``Level.of``) gives back the model's probabilities.
+        """
+        a = self._src.arrays
+        n = self.n_words
+        unig = np.asarray(a["UNIG"], dtype=np.int64)
+        w1 = np.flatnonzero(unig > 0)
+        rows = np.asarray(a["ROWS"], dtype=np.int64)
+        alph = np.asarray(a["ALPH"], dtype=np.int64)
+        left = np.repeat(np.arange(n + 3, dtype=np.int64), np.diff(rows))
+        right = alph[np.asarray(a["SUCC"], dtype=np.int64)]
+        value2 = self._counts(np.arange(int(rows[-1])))
+        o2 = np.lexsort((right, left))
+        grams = [w1.reshape(-1, 1), np.stack([left[o2], right[o2]], axis=1)]
+        values = [unig[w1], value2[o2]]
+        if self.order == 3:
+            u3, v3, w3, val3 = self._stored_trigrams(left, right)
+            o3 = np.lexsort((w3, v3, u3))
+            grams.append(np.stack([u3[o3], v3[o3], w3[o3]], axis=1))
+            values.append(val3[o3])
+        return NgramCounts(n, tuple(grams), tuple(values))
+
+    def stored_levels(self) -> list[Level]:
+        """What the file stores per order, in the estimator-neutral form (``estimators.Level``).
+
+        The n-grams and values of :meth:`stored_ngrams`, and per context the *total* and the
+        counts of values 1, 2, ≥ 3 exactly as queries read them (history counts — stored, or
+        derived from the unigram counts —, the Kneser-Ney n₁/n₂/n₃₊ sections, the trigram
+        totals), so a fitted estimator built on these levels scores as the model does even
+        where a file's totals are not the sums of its stored values. A context with a total
+        but no stored n-gram is kept, with an empty block.
+        """
+        a = self._src.arrays
+        n = self.n_words
+        counts = self.stored_ngrams()
+        levels = [Level.of(counts.grams[0], counts.counts[0])]
+        hist = np.asarray([self._hist(v) for v in range(n + 3)], dtype=np.int64)
+        g2, v2 = counts.grams[1], counts.counts[1]
+        ctx2 = np.flatnonzero(hist > 0)
+        start2 = np.searchsorted(g2[:, 0], np.append(ctx2, n + 3), side="left").astype(np.int64)
+        n123 = (np.asarray(a["HN13"], dtype=np.int64).reshape(-1, 3)[ctx2] if self.estimator == "kn"
+                else _n123_of(v2, start2))
+        levels.append(Level(g2, v2, ctx2.reshape(-1, 1), start2, hist[ctx2], n123))
+        if self.order == 3:
+            g3, v3 = counts.grams[2], counts.counts[2]
+            base = n + 3
+            keys = g3[:, 0] * base + g3[:, 1]
+            starts = np.flatnonzero(np.r_[True, keys[1:] != keys[:-1]]) if len(keys) else np.zeros(0, np.int64)
+            ctx3 = g3[starts, :2] if len(keys) else np.zeros((0, 2), np.int64)
+            start3 = np.append(starts, len(keys)).astype(np.int64)
+            sums = np.add.reduceat(v3, starts) if len(keys) else np.zeros(0, np.int64)
+            # dropped mass per context (TDRI/TDRV, keyed by the context's bigram entry)
+            ent = self._bigram_entries(ctx3[:, 0], ctx3[:, 1])
+            dropped = np.asarray([self._ng._sparse(self._ng._tdri, self._ng._tdrv, int(i)) for i in ent], dtype=np.int64)
+            levels.append(Level(g3, v3, ctx3, start3, (sums + dropped).astype(np.int64), _n123_of(v3, start3)))
+        return levels
+
+    def _bigram_entries(self, u: np.ndarray, v: np.ndarray) -> np.ndarray:
+        """Index of bigram entry (u, v) in the rows for each pair (every pair stored)."""
+        rows = np.asarray(self._src.arrays["ROWS"], dtype=np.int64)
+        npos = self.n_words + 3
+        left = np.repeat(np.arange(npos, dtype=np.int64), np.diff(rows))
+        keys = left * npos + np.asarray(self._succ, dtype=np.int64)  # increasing: rows by u, then position
+        out = np.searchsorted(keys, np.asarray(u, dtype=np.int64) * npos + self._apos[v].astype(np.int64))
+        return np.asarray(out, dtype=np.int64)
+
+    def _stored_trigrams(self, left: np.ndarray, right: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """(u, v, w, value) of every stored trigram; ``left``/``right`` are the bigram entries' ids in file order."""
+        ng = self._ng
+        lens = np.asarray(ng._tlen.all(), dtype=np.int64)
+        owner = np.repeat(np.arange(len(lens), dtype=np.int64), lens)
+        alph = np.asarray(self._src.arrays["ALPH"], dtype=np.int64)
+        w = alph[np.asarray(ng._tsuc, dtype=np.int64)]
+        return left[owner], right[owner], w, np.asarray(ng._tval.all(), dtype=np.int64)
+
+    def totals_are_sums(self) -> bool:
+        """Whether every context's total is the sum of its stored n-grams' values.
+
+        True for every file ``train`` writes; false where a pruned file keeps the mass of
+        dropped n-grams in its totals — then the raw counts cannot be rebuilt from it.
+        """
+        for lev in self.stored_levels()[1:]:
+            if bool((lev.ctx_start[1:] == lev.ctx_start[:-1]).any()):
+                return False
+            sums = np.add.reduceat(lev.value, lev.ctx_start[:-1]) if len(lev.value) else np.zeros(0, np.int64)
+            if not np.array_equal(sums, lev.ctx_total):
+                return False
+        return True
+
+    def sentence_ids(self, lines: Iterable[str]) -> list[list[int]]:
+        """Every sentence of ``lines`` as ids (words; ``<unk>`` for unknown words and breaks), cut as in training.
+
+        The input :func:`nextword.tune.order_events` takes; ``<s>`` and ``</s>`` are not included.
+        """
+        if isinstance(lines, str):
+            raise InvalidArgumentError("expected an iterable of messages, not one string")
+        out: list[list[int]] = []
+        for line in lines:
+            for sent in sentences(line):
+                ids = []
+                for tok in sent:
+                    wid = None if tok is None else self._word_id(fold(tok))
+                    ids.append(self._unk if wid is None else wid)
+                out.append(ids)
+        return out
+
+    def query_lambdas(self, lam: float | None = None) -> list[float]:
+        """[λ2] or [λ2, λ3] as a query uses them (a load-time or ``lam`` override replaces every
+        order's); empty for Kneser-Ney. λ by history count, if stored, is :meth:`lam_for`."""
+        if self.estimator == "kn":
+            if lam is not None:
+                raise InvalidArgumentError(f"lam={lam!r} given for a Kneser-Ney model, which has no λ")
+            return []
+        lam = None if lam is None else check_lam(lam)
+        if self.order == 2:
+            return [self.lam if lam is None else lam]
+        return list(self._ng_lams(lam))
+
+    def uses_lambda_buckets(self) -> bool:
+        """Whether queries take λ from the stored buckets by history count (not overridden)."""
+        return bool(self.lambda_values) and not self._override
 
     def info(self) -> dict[str, Any]:
         """Sizes, settings and corpus statistics, as plain data (for ``nextword info``)."""
@@ -775,6 +911,15 @@ class Model:
             **({"trigrams": self._src.meta["trigrams"]} if self.order == 3 else {}),
             "corpus": self.stats,
         }
+
+
+def _n123_of(value: np.ndarray, start: np.ndarray) -> np.ndarray:
+    """(contexts, 3): how many of each context's values (blocks ``start[j]:start[j+1]``) are 1, 2 and ≥ 3."""
+    owner = np.repeat(np.arange(len(start) - 1), np.diff(start))
+    out = np.zeros((len(start) - 1, 3), dtype=np.int64)
+    for j, mask in enumerate((value == 1, value == 2, value >= 3)):
+        out[:, j] = np.bincount(owner[mask], minlength=len(start) - 1)
+    return out
 
 
 # -- loading ---------------------------------------------------------------------
