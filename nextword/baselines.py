@@ -91,10 +91,14 @@ class DictBigram:
         return lam * (self.bigram[v][w] / cv) + (1.0 - lam) * u
 
     def rank(self, previous: str | None, prefix: str, k: int, lam: float) -> list[tuple[str, float]]:
-        """Top k (key, P) among vocabulary words starting with ``prefix``: score all, sort."""
+        """Top k (key, P) among vocabulary words starting with ``prefix``: score all, sort.
+
+        Order: probability descending, then the floor c(w)/N descending, then the key.
+        """
         p = fold(prefix)
         scored = [(self.prob(w, previous, lam), w) for w in self.vocab if w.startswith(p)]
-        scored.sort(key=lambda t: (-t[0], t[1]))
+        # ties: the larger floor c(w)/N, then the key (the engine's smaller id; docs/SEAMS.md "Ties")
+        scored.sort(key=lambda t: (-t[0], -self.unigram[t[1]], t[1]))
         return [(w, s) for s, w in scored[:k]]
 
     def suggest_keys(self, typed: str, k: int, lam: float) -> list[tuple[str, float]]:

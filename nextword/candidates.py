@@ -12,7 +12,8 @@ weight — how likely the user typed what they typed if they meant a word of tha
 * a near-miss source (issue 17) returns several ranges — the exact prefix and the
   prefixes one likely slip away on the keyboard — each weighted by P(typed | prefix).
 
-The model ranks each range exactly (top k by P(word | context), ties by position) and
+The model ranks each range exactly (top k by P(word | context), ties by the smaller id: floor
+descending, then key; docs/SEAMS.md "Ties") and
 :func:`merge_ranked` combines them by weight × probability. A word reached through several
 ranges keeps its best weighted score (the single most likely intended prefix), which keeps
 the merge exact: every word of the overall top k is in the top k of the range that gives
@@ -24,7 +25,7 @@ from __future__ import annotations
 
 import bisect
 import heapq
-from typing import Any, Callable, NamedTuple, Protocol, Sequence
+from typing import Any, NamedTuple, Protocol, Sequence
 
 import numpy as np
 
@@ -191,15 +192,13 @@ class PrefixRange:
         return self._levels[level - 1][i:j, :k].ravel()
 
 
-def merge_ranked(
-    ranked: Sequence[tuple[float, Sequence[tuple[int, float]]]], position: Callable[[int], int], k: int
-) -> list[tuple[int, float]]:
+def merge_ranked(ranked: Sequence[tuple[float, Sequence[tuple[int, float]]]], k: int) -> list[tuple[int, float]]:
     """Top k of several ranges' rankings by channel weight × probability.
 
     ``ranked`` holds (weight, [(word id, probability), ...]) per range, each list the exact
     top k of its range. A word in several lists keeps its best weighted score. Ties go to
-    the alphabetically first word (``position`` maps a word id to its alphabetical
-    position), as within one range.
+    the smaller id (floor descending, then key), as within one range; fl(weight·p) is
+    monotone in p, so a range's own order is kept.
     """
     best: dict[int, float] = {}
     for weight, pairs in ranked:
@@ -207,5 +206,5 @@ def merge_ranked(
             s = weight * p
             if s > best.get(wid, -1.0):
                 best[wid] = s
-    top = heapq.nsmallest(k, ((-s, position(w), w) for w, s in best.items()))
-    return [(w, -neg) for neg, _, w in top]
+    top = heapq.nsmallest(k, ((-s, w) for w, s in best.items()))
+    return [(w, -neg) for neg, w in top]

@@ -5,7 +5,8 @@ probabilities of all words, ``</s>`` and ``<unk>`` after any history sum to 1. A
 never seen (c(v) = 0) falls back to the unigram c(w)/N.
 
 Ranking is exact: the k words a call returns are the first k of *all* matching vocabulary
-words ordered by (probability descending, key ascending in code-point order). The
+words ordered by (probability descending, then the smaller word id — the larger floor
+c(w)/N or continuation unigram, then the key in code-point order; docs/SEAMS.md "Ties"). The
 implementation only ever looks at a bounded candidate set (see :meth:`Model._rank`);
 tests compare it with scoring every word.
 """
@@ -471,7 +472,7 @@ class Model:
         search (rows are sorted by alphabetical position) or, when the segment has more
         than ``skyband_min`` entries, its stored k-skyband, which holds every successor
         that can reach the top k for any λ < 1 (see store._skyband). Ties go to the
-        alphabetically first key.
+        smaller id (higher floor, then key).
         """
         cv = self._hist(v)
         if cv == 0:
@@ -510,14 +511,14 @@ class Model:
         if cs and max(cs) > cv:
             raise self._over(max(cs), cv)
         # same float operations, in the same order, as the brute-force formula
-        cands = [(-(lam * (c / cv) + oml * (unig[alph[p]] / total)), p) for p, c in zip(ps, cs)]
+        # ties by id (floor descending, then key): see docs/SEAMS.md "Ties"
+        cands = [(-(lam * (c / cv) + oml * (unig[w] / total)), w) for w, c in zip([alph[p] for p in ps], cs)]
         seen = set(ps)
         for wid in top:
-            p = apos[wid]
-            if p not in seen:
-                cands.append((-(oml * (unig[wid] / total)), p))
+            if apos[wid] not in seen:
+                cands.append((-(oml * (unig[wid] / total)), wid))
         cands.sort()
-        return [(alph[p], -neg) for neg, p in cands[:k]]
+        return [(w, -neg) for neg, w in cands[:k]]
 
     def _segment_band(self, s: int, e: int, k: int) -> list[int] | None:
         """Row entries of segment [s, e) with fewer than k dominators, if its skyband is stored.
@@ -564,11 +565,11 @@ class Model:
             thr = np.partition(score, len(score) - k)[len(score) - k]
             keep = np.flatnonzero(score >= thr)
             ids, pos, score = ids[keep], pos[keep], score[keep]
-        order = np.lexsort((pos, -score))[:k]
+        order = np.lexsort((ids, -score))[:k]  # ties by id: floor descending, then key
         return list(zip(ids[order].tolist(), score[order].tolist()))
 
     def _rank_bigram_only(self, v: int, lo: int, hi: int, k: int, cv: int) -> list[tuple[int, float]]:
-        """λ = 1: successors by count, then zero-probability words alphabetically."""
+        """λ = 1: successors by count, then zero-probability words by id (floor descending, then key)."""
         rs, re_ = self._mv_rows[v], self._mv_rows[v + 1]
         s = bisect.bisect_left(self._mv_succ, lo, rs, re_)
         e = bisect.bisect_left(self._mv_succ, hi, s, re_)
@@ -579,11 +580,11 @@ class Model:
         ranked = self._select(self._alph[pos].astype(np.int64), pos, counts / cv, k)
         if len(ranked) < k:
             taken = set(pos.tolist())
-            p = lo
-            while p < hi and len(ranked) < k:
-                if p not in taken:
-                    ranked.append((self._mv_alph[p], 0.0))
-                p += 1
+            for wid in self._range_top_ids(lo, hi, k + len(taken)):
+                if len(ranked) == k:
+                    break
+                if self._mv_apos[wid] not in taken:
+                    ranked.append((wid, 0.0))
         return ranked
 
     def suggest(self, typed: str, k: int = 3, *, lam: float | None = None) -> list[Suggestion]:
@@ -686,7 +687,7 @@ class Model:
             if w == 1.0:
                 return rank(context, lo, hi, k, weights)
         per = [(w, rank(context, lo, hi, k, weights)) for lo, hi, w in ranges]
-        return merge_ranked(per, self._mv_apos.__getitem__, k)
+        return merge_ranked(per, k)
 
     def header(self) -> dict[str, Any]:
         """The file's metadata as plain data (a copy): estimator, order, λ or discounts, sizes."""
@@ -698,6 +699,18 @@ class Model:
     # One block, so accessors other modules need can be merged beside it. The layer mixes
     # its own counts with this model's P(w | context) and ranks exactly with the model's
     # own exact top k (rank_after) as one candidate source; these give it the rest.
+
+    def tie_rank(self, word: str) -> int:
+        """Where ``word`` goes among words of equal probability: its id (floor descending, then key).
+
+        ``n_words`` for a word the model lacks (after every vocabulary word). The ranking
+        breaks ties by this number (docs/SEAMS.md "Ties"), so a layer that ranks on top of
+        :meth:`rank_after` and must agree with it breaks its own ties the same way.
+        """
+        if not isinstance(word, str):
+            raise InvalidArgumentError(f"word must be str, got {type(word).__name__}")
+        wid = self._word_id(fold(word))
+        return self.n_words if wid is None or wid >= self.n_words else wid
 
     def spelling(self, word: str) -> str | None:
         """The display spelling of vocabulary word ``word`` (any casing), or None if the model lacks it."""
@@ -1155,7 +1168,7 @@ class _NgramScorer:
         return None
 
     def rank(self, ctx: tuple[int, ...], lo: int, hi: int, k: int, lams: tuple[float, float]) -> list[tuple[int, float]]:
-        """Top-k (word id, probability) among alphabetical positions [lo, hi), ties by key."""
+        """Top-k (word id, probability) among alphabetical positions [lo, hi), ties by the smaller id."""
         m = self.m
         if not self.kn and (lams[0] == 1.0 or (self.order == 3 and lams[1] == 1.0)):
             # a zero floor: unseen words tie at 0 and rank by key, so score the whole range
@@ -1238,9 +1251,9 @@ class _NgramScorer:
                 if c is None:
                     c = 0 if t_full else self._trigram_value(s3, e3, p, tot3)
                 score = (max(c - dk3[c if c < 3 else 3], 0.0) / tot3 if kn else l3 * (c / tot3)) + g3 * score
-            scored.append((-score, p, w))
-        scored.sort()
-        out = [(w, -neg) for neg, _, w in scored[:k]]
+            scored.append((-score, w))
+        scored.sort()  # ties by id (floor descending, then key): docs/SEAMS.md "Ties"
+        out = [(w, -neg) for neg, w in scored[:k]]
         for _, q in out:
             if not 0.0 <= q <= 1.0 + 1e-9:
                 raise self._damaged(f"a probability of {q!r}")
@@ -1252,7 +1265,7 @@ class _NgramScorer:
         """Position → value of the k best trigram successors in ``t_idx`` by their full score.
 
         A trigram successor outside them has k successors of the same context ranking
-        before it (score descending, position ascending), so it is not in the top k. The
+        before it (score descending, id ascending), so it is not in the top k. The
         scores are those of :meth:`scores`, computed with numpy for the whole range.
         """
         m = self.m
@@ -1262,7 +1275,8 @@ class _NgramScorer:
         c3 = self._tval.take(np.arange(s, e))
         if int(c3.max()) > tot3:
             raise self._damaged(f"a trigram value above its context total {tot3}")
-        b = self.floor[m._alph[tpos].astype(np.int64)]
+        tids = m._alph[tpos].astype(np.int64)
+        b = self.floor[tids]
         if tot > 0:
             rs, re_ = m._mv_rows[v], m._mv_rows[v + 1]
             row = m._succ[rs:re_]
@@ -1281,14 +1295,14 @@ class _NgramScorer:
             score = np.maximum(c3 - _discount(c3, self.d3), 0.0) / tot3 + g3 * b
         else:
             score = lams[1] * (c3 / tot3) + g3 * b
-        sel = np.lexsort((tpos, -score))[:k]
+        sel = np.lexsort((tids, -score))[:k]
         return dict(zip(tpos[sel].tolist(), c3[sel].tolist()))
 
     def _trim_bigrams(self, b_idx: range, tot: int, g: float, keep: int, lam2: float) -> dict[int, int]:
         """Position → value of the ``keep`` best bigram successors in ``b_idx`` by B (§9.7).
 
         A word that follows v but not (u, v) scores γ₃·B, so among those only the k best
-        by (B descending, position ascending) can reach the top k; keeping k plus the
+        by (B descending, id ascending) can reach the top k; keeping k plus the
         number of trigram candidates keeps at least k such words.
         """
         m = self.m
@@ -1299,8 +1313,9 @@ class _NgramScorer:
             alpha = np.maximum(c - _discount(c, self.d2), 0.0) / tot
         else:
             alpha = lam2 * (c / tot)
-        b = alpha + g * self.floor[m._alph[pos].astype(np.int64)]
-        sel = np.argsort(-b, kind="stable")[:keep]  # stable: positions ascending among ties
+        ids = m._alph[pos].astype(np.int64)
+        b = alpha + g * self.floor[ids]
+        sel = np.lexsort((ids, -b))[:keep]  # ties by id, as the ranking
         return dict(zip(pos[sel].tolist(), c[sel].tolist()))
 
     def _trigram_value(self, s: int, e: int, pos: int, tot3: int) -> int:

@@ -772,7 +772,7 @@ class PersonalLayer:
 
         Exact: equal to scoring every suggestible word that starts with ``prefix`` with
         :meth:`prob_after` and sorting by (probability descending, the base model's
-        probability descending, key) — see :meth:`_rank` for why it need not.
+        probability descending, the base's tie order :meth:`Model.tie_rank`, key) — see :meth:`_rank` for why it need not.
         """
         k = check_k(k)
         hist = _history(history)
@@ -826,16 +826,18 @@ class PersonalLayer:
         """The mixture's exact top k from two candidate sources, without scoring every word.
 
         score(w) = (1 − μ)·B(w) + μ·U(w), B the base's P(w | its context), U the user's
-        P(w | v) (v the last token); ties go to the larger B, then the smaller key.
+        P(w | v) (v the last token); ties go to the larger B, then the base's tie order
+        (:meth:`Model.tie_rank`: its ids, floor descending then key; words the base lacks
+        last), then the key.
 
         1. *The base's own exact top list* T: its top k (plus the blocked words of the
            prefix; in fact as deep as its skybands reach, and deeper when step 2 walks
            long after a context with few successors) with B. Every word of T is scored in full. A word x outside T that the
            user never used has U(x) = 0 and comes after the last of T in the base's order
-           (B smaller, or B equal and key larger); then every word y of T beats it in the
-           mixture's order: (1 − μ)·B(y) + μ·U(y) ≥ (1 − μ)·B(x) (floating-point addition
-           and multiplication by a constant ≥ 0 are monotone), and on equality B(y) ≥ B(x),
-           and on equality again key(y) < key(x). T holds k words that are not blocked (or
+           (B smaller, or B equal and a larger base id); then every word y of T beats it in
+           the mixture's order: (1 − μ)·B(y) + μ·U(y) ≥ (1 − μ)·B(x) (floating-point
+           addition and multiplication by a constant ≥ 0 are monotone), and on equality
+           B(y) ≥ B(x), and on equality again id(y) < id(x). T holds k words that are not blocked (or
            the whole prefix range), so no such x can enter the top k.
         2. *The user's words* outside T: B(w) ≤ B_T, the last probability of T (0 when T is
            the whole range), so score(w) ≤ (1 − μ)·B_T + μ·U(w). The user's successors of v
@@ -881,8 +883,12 @@ class PersonalLayer:
             if pending:
                 self._resolve(pending, hist, k, mu, scored)
             break
-        best = sorted((-s, -b, w) for w, (s, b) in scored.items())[:k]
-        return [(w, -s) for s, _, w in best]
+        best = sorted((-s, -b, w) for w, (s, b) in scored.items())
+        if any(best[i][:2] == best[i + 1][:2] for i in range(min(k, len(best) - 1))):
+            # equal mixture and base probability: the base's own tie order (its ids), then the key
+            order = self.base.tie_rank
+            best.sort(key=lambda t: (t[0], t[1], order(t[2]), t[2]))
+        return [(w, -s) for s, _, w in best[:k]]
 
     def _user_candidates(
         self, v: str, p: str, k: int, bt: float, mu: float, scored: dict[str, tuple[float, float]], *, budget: int | None

@@ -234,12 +234,17 @@ class DictKneserNey:
         return self.prob_key(self._key(word), self._context(context))
 
     def rank(self, context: Sequence[str], prefix: str, k: int) -> list[tuple[str, float]]:
-        """Top k (key, P) among vocabulary words starting with ``prefix``: score all, sort."""
+        """Top k (key, P) among vocabulary words starting with ``prefix``: score all, sort.
+
+        Order: probability descending, then the floor (the unigram level P(w), the
+        distribution the engine's ids follow) descending, then the key — the engine's
+        (probability, smaller id) without knowing its ids (docs/SEAMS.md "Ties").
+        """
         h = self._context(context)
         p = fold(prefix)
-        scored = [(self.prob_key(w, h), w) for w in self.vocab if w.startswith(p)]
-        scored.sort(key=lambda t: (-t[0], t[1]))
-        return [(w, s) for s, w in scored[:k]]
+        scored = [(self.prob_key(w, h), self.prob_key(w, ()), w) for w in self.vocab if w.startswith(p)]
+        scored.sort(key=lambda t: (-t[0], -t[1], t[2]))
+        return [(w, s) for s, _, w in scored[:k]]
 
     def suggest_keys(self, typed: str, k: int) -> list[tuple[str, float]]:
         """The ranking for a typed text, with the one-word context the text rules give today."""

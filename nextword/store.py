@@ -812,6 +812,7 @@ def trigram_lower_scores(
 def trigram_bands(
     starts: np.ndarray,
     tpos: np.ndarray,
+    tids: np.ndarray,
     values3: np.ndarray,
     lower: np.ndarray,
     alpha_keys: Sequence[str],
@@ -823,7 +824,8 @@ def trigram_bands(
 
     Segments are the prefix segments of the trigram rows (as for the bigram rows, §7.9).
     Entry x dominates w when x's trigram value is ≥ w's and x comes first in (B desc,
-    alphabetical position asc), B = :func:`trigram_lower_scores`; see docs/SEAMS.md.
+    word id asc), B = :func:`trigram_lower_scores`, ``tids`` the successors' word ids (the
+    ranking's tie rule: equal scores go to the smaller id); see docs/SEAMS.md.
     """
     t = len(tpos)
     owner = np.repeat(np.arange(len(starts) - 1, dtype=np.int64), np.diff(starts))
@@ -837,7 +839,7 @@ def trigram_bands(
     )
     rank = np.empty(t, dtype=np.int64)
     if len(seg_s):
-        rank[np.lexsort((tpos, -lower, owner))] = np.arange(t)
+        rank[np.lexsort((np.asarray(tids, dtype=np.int64), -lower, owner))] = np.arange(t)
     longest = int((seg_e - seg_s).max(initial=0))
     sky_dtype = np.dtype("<u2") if longest <= 0xFFFF else np.dtype("<u4")
     bands, cums = [], []
@@ -1006,7 +1008,7 @@ def build_ngram_sections(
             kn, stored[1] if kn else lam2, floor_new, rows, succ2, file_values2, history, dropped2, n123_2, v, pos, alph,
         )  # fmt: skip
         alpha_keys = [keys[i] for i in alph[:n].tolist()]
-        tsgs, tsge, tskp, tski, tskc = trigram_bands(ctx_starts, pos, value3, lower, alpha_keys, n, skyband_k, skyband_min)
+        tsgs, tsge, tskp, tski, tskc = trigram_bands(ctx_starts, pos, alph[pos.astype(np.int64)], value3, lower, alpha_keys, n, skyband_k, skyband_min)
         sections += [
             (b"TCTB", u4, tctb),
             *EXACT.encode(CONTEXT_TAGS, lengths),
@@ -1471,7 +1473,7 @@ def _check_ngram_arrays(name: str, meta: dict[str, Any], a: dict[str, np.ndarray
             kn, meta["discounts"][1] if kn else meta["lambda"], floor, rows, a["SUCC"], cnts,
             a["HIST"].astype(np.int64), dropped2, n123_2, np.repeat(ctx_v, np.diff(starts)), tsuc, a["ALPH"].astype(np.int64),
         )  # fmt: skip
-        got = trigram_bands(starts, tsuc, val, lower, keys, n, meta["skyband_k"], meta["skyband_min"])
+        got = trigram_bands(starts, tsuc, a["ALPH"].astype(np.int64)[tsuc.astype(np.int64)], val, lower, keys, n, meta["skyband_k"], meta["skyband_min"])
         for label, arr in zip(("TSGS", "TSGE", "TSKP", "TSKI", "TSKC"), got):
             if not np.array_equal(arr, a[label]):
                 raise _fail(name, f"section {label} is not the skyband data of the trigram rows")

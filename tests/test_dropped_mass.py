@@ -136,7 +136,7 @@ def test_pruned_levels_sum_to_one_and_rank_exactly(tmp_path_factory: pytest.Temp
             for k in (1, 3, 5):
                 got = model.rank_after(list(hist), prefix, k)
                 brute = sorted(((model.prob_after(key, list(hist)), key) for key in keys if key.startswith(prefix)),
-                               key=lambda t: (-t[0], t[1]))[:k]  # fmt: skip
+                               key=lambda t: (-t[0], -floor[tok[t[1]]], t[1]))[:k]  # ties: larger floor, then key  # fmt: skip
                 assert [key for key, _ in got] == [key for _, key in brute], (hist, prefix, k)
     if frac > 0:
         dropped = len(model._src.arrays["TDRI"]) + len(model._src.arrays["HDRI"])  # noqa: SLF001

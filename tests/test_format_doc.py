@@ -399,8 +399,8 @@ class NwmReader:
         if lam == 1.0:
             pos, score = self._score(v, np.arange(s, e), lam, cv)
             cand = {int(p): float(x) for p, x in zip(pos, score)}
-            best = sorted(cand, key=lambda p: (-cand[p], p))[:k]
-            rest = [p for p in range(lo, hi) if p not in cand][: k - len(best)]
+            best = sorted(cand, key=lambda p: (-cand[p], int(a["ALPH"][p])))[:k]  # §9.6: ties by id
+            rest = sorted((p for p in range(lo, hi) if p not in cand), key=lambda p: int(a["ALPH"][p]))[: k - len(best)]
             return [(self.alpha_keys[p], cand.get(p, 0.0)) for p in best + rest]
         cand = {}
         for wid in self.range_top_ids(lo, hi, k):  # (a)
@@ -413,7 +413,7 @@ class NwmReader:
                     entries = self.band_entries(i, k)
             pos, score = self._score(v, entries, lam, cv)
             cand.update({int(p): float(x) for p, x in zip(pos, score)})
-        best = sorted(cand, key=lambda p: (-cand[p], p))[:k]
+        best = sorted(cand, key=lambda p: (-cand[p], int(a["ALPH"][p])))[:k]  # §9.6: ties by id
         return [(self.alpha_keys[p], cand[p]) for p in best]
 
     def segment(self, s: int, e: int) -> int | None:
@@ -436,7 +436,7 @@ class NwmReader:
         return int(a["SEGS"][i]) + a["SKYI"][start:stop].astype(np.int64)
 
     def brute_top_k(self, v: int, lo: int, hi: int, k: int, lam: float) -> list[tuple[str, float]]:
-        """Score every word of the range with §9.3 and sort by (probability desc, key asc)."""
+        """Score every word of the range with §9.3 and sort by (probability desc, id asc) (§9.6)."""
         a = self.a
         cv = self.history_count(v)
         pos = np.arange(lo, hi)
@@ -451,7 +451,7 @@ class NwmReader:
             inside = (rpos >= lo) & (rpos < hi)
             c[rpos[inside] - lo] = self.full_counts()[rs:re_][inside]
             p = lam * (c / cv) + (1.0 - lam) * u
-        order = np.lexsort((pos, -p))[:k]
+        order = np.lexsort((ids, -p))[:k]
         return [(self.alpha_keys[int(pos[i])], float(p[i])) for i in order]
 
 
@@ -1186,9 +1186,10 @@ class NgramReader(NwmReader):
             assert self.starts[j] <= s < e <= self.starts[j + 1]
             v = int(ctx_v[j])
             pos = a["TSUC"][s:e].tolist()
-            b = [self.lower(v, int(a["ALPH"][p])) for p in pos]
+            ids = [int(a["ALPH"][p]) for p in pos]
+            b = [self.lower(v, i) for i in ids]
             c3 = self.tval[s:e].tolist()
-            ahead = lambda x, w: (-b[x], pos[x]) < (-b[w], pos[w])  # noqa: E731
+            ahead = lambda x, w: (-b[x], ids[x]) < (-b[w], ids[w])  # noqa: E731
             doms = [sum(1 for x in range(e - s) if x != w and c3[x] >= c3[w] and ahead(x, w)) for w in range(e - s)]
             want = sorted((d, o) for o, d in enumerate(doms) if d < K)
             assert skyi[skyp[i] : skyp[i + 1]].tolist() == [o for _, o in want], i
@@ -1196,9 +1197,9 @@ class NgramReader(NwmReader):
         return len(segs)
 
     def brute_rank(self, ctx: tuple[int, ...], prefix: str, k: int) -> list[tuple[str, float]]:
-        scored = [(self.prob3(ctx, w), self.keys[w]) for w in range(self.n) if self.keys[w].startswith(prefix)]
-        scored.sort(key=lambda t: (-t[0], t[1]))
-        return [(key, p) for p, key in scored[:k]]
+        scored = [(self.prob3(ctx, w), w) for w in range(self.n) if self.keys[w].startswith(prefix)]
+        scored.sort(key=lambda t: (-t[0], t[1]))  # §9.6: ties by the smaller id
+        return [(self.keys[w], p) for p, w in scored[:k]]
 
 
 def _ctx_ids(r: NgramReader, history: list[str]) -> tuple[int, ...]:

@@ -133,6 +133,42 @@ def test_random_corpora_equal_the_oracle(tmp_path_factory: pytest.TempPathFactor
     check_suggest(model, oracle, typed, 3)
 
 
+# A corpus whose continuation counts make two floors equal in real numbers but one last-bit
+# step apart in floats: "tube" has continuation count 1, "tire" 3, and Chen & Goodman's
+# estimate gives 1 − D₁ = 3 − D₃ = 2/3 here (D₁ = 1/3, D₃ = 7/3), computed as
+# 0.6666666666666663 and 0.6666666666666665. After <unk> both score γ·floor, which rounds
+# to one float. First found by test_random_corpora_equal_the_oracle (seed 884).
+NEAR_TIE = [
+    "fix! lane", "fix 42 bike. a crank bike", "chain harbor lane bike! tire bell tire chain", "The a",
+    "harbor a lane 42", "bike fix tire lane! bell fix brake tube brake", "! is", "lane. chain brake",
+]
+
+
+@pytest.mark.parametrize("order", [2, 3])
+def test_floors_one_bit_apart_tie_to_the_larger_floor(tmp_path: Path, order: int) -> None:
+    path = tmp_path / "m.nwm"
+    nextword.train_texts(NEAR_TIE, path, smoothing="kn", order=order, min_count=1)
+    model = nextword.load(path, verify=True)
+    oracle = oracle_like(model, NEAR_TIE, min_count=1)
+    ctxs = [[BOS], ["<unk>"], ["fix"], ["bike"], ["lane"], ["tire"], ["a", "lane"], ["bike", "fix"]]
+    if order == 3:  # the trigram model's floors differ otherwise; its rankings still equal the oracle's
+        check_rankings(model, oracle, ctxs, ["", "t", "b", "ti", "tu"], [1, 2, 3, 5, 20])
+        return
+    # the case itself (from the oracle, not the engine): different floors, one score
+    f_tube, f_tire = oracle.prob_key("tube", ()), oracle.prob_key("tire", ())
+    assert f_tube > f_tire and math.nextafter(f_tire, 1.0) == f_tube
+    h = oracle._context(["<unk>"])
+    assert oracle.prob_key("tube", h) == oracle.prob_key("tire", h)
+    # the tie goes to the larger floor ("tube", the smaller id), though "tire" has the smaller key
+    assert model.tie_rank("tube") < model.tie_rank("tire")
+    want = oracle.rank(["<unk>"], "t", 2)
+    assert [w for w, _ in want] == ["the", "tube"]
+    assert [w for w, _ in model.rank_after(["<unk>"], "t", 2)] == ["the", "tube"]
+    assert [fold(s.word) for s in model.suggest("42 t", 2)] == ["the", "tube"]
+    # and every other query on this corpus agrees with the oracle
+    check_rankings(model, oracle, ctxs, ["", "t", "b", "ti", "tu"], [1, 2, 3, 5, 20])
+
+
 @pytest.fixture(scope="module")
 def pydoc_lines() -> list[str]:
     from pydoc_data.topics import topics  # real English shipped with CPython (as tests/test_reference.py)

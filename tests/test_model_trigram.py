@@ -81,9 +81,9 @@ class DictJMTrigram:
 
     def rank(self, context: list[str], prefix: str, k: int) -> list[tuple[str, float]]:
         h = self._context(context)
-        scored = [(self.prob_key(w, h), w) for w in self.vocab if w.startswith(fold(prefix))]
-        scored.sort(key=lambda t: (-t[0], t[1]))
-        return [(w, s) for s, w in scored[:k]]
+        scored = [(self.prob_key(w, h), self.rows[()].get(w, 0), w) for w in self.vocab if w.startswith(fold(prefix))]
+        scored.sort(key=lambda t: (-t[0], -t[1], t[2]))  # ties: the larger floor c(w)/N, then the key
+        return [(w, s) for s, _, w in scored[:k]]
 
 
 def _train(messages: list[str], path: Path, smoothing: str, **kw: object) -> nextword.Model | None:

@@ -38,13 +38,13 @@ def _brute(layer: PersonalLayer, prev: str | None, prefix: str, k: int) -> list[
     p = fold(prefix)
     base = layer.base
     scored = [
-        (-layer.prob(w, prev), -(base.prob(w, prev) if w in base else 0.0), w)
+        (-layer.prob(w, prev), -(base.prob(w, prev) if w in base else 0.0), base.tie_rank(w), w)
         for w in layer.vocabulary()
         if w.startswith(p) and w not in layer.blocklist and w not in ("</s>", "<unk>")
         and (w in base or layer.count(w) >= layer.min_uses - 1e-9)
     ]
-    scored.sort()  # mixture descending, then the base's probability descending, then key
-    return [(w, -s) for s, _, w in scored[:k]]
+    scored.sort()  # mixture descending, the base's probability descending, the base's id (floor desc, key), key
+    return [(w, -s) for s, _, _, w in scored[:k]]
 
 
 def test_mixture_sums_to_one_and_weight_rule(base: nextword.Model) -> None:

@@ -81,9 +81,9 @@ def _brute(layer: PersonalLayer, base: nextword.Model, typed: str, k: int) -> li
             continue
         s = layer.prob_after(w, ctx.history)
         b = base.prob_after(w, ctx.history) if in_base else 0.0
-        rows.append((-s, -b, w))
+        rows.append((-s, -b, base.tie_rank(w), w))  # ties: base probability, the base's id, key
     rows.sort()
-    return [(w, -s) for s, _, w in rows[:k]]
+    return [(w, -s) for s, _, _, w in rows[:k]]
 
 
 def _check_suggest(layer: PersonalLayer, base: nextword.Model, typed: str, k: int) -> None:
