@@ -6,7 +6,7 @@ suite's oracle: it scores *every* vocabulary word, so the engine's bounded candi
 search must reproduce its ranking exactly. It shares only the text rules
 (``nextword.text``) with the engine. :func:`nltk_baseline` times the general-purpose
 library a Python user would pick (nltk.lm, an optional dependency).
-:func:`write_same_smoothing_bigram` writes, for an order-3 model file, the bigram model of
+:func:`nextword.build.write_same_smoothing_bigram` writes, for an order-3 model file, the bigram model of
 the same smoothing on the same counts, so ``nextword eval`` shows what the two-word
 context buys.
 """
@@ -30,7 +30,7 @@ if TYPE_CHECKING:
 
 __all__ = [
     "DictBigram", "key_sentences", "nltk_baseline", "sample_queries", "time_queries",
-    "raw_bigram_counts", "write_same_smoothing_bigram",
+    "raw_bigram_counts",
 ]
 
 
@@ -220,40 +220,3 @@ def raw_bigram_counts(model: Model) -> NgramCounts:
     uni = np.bincount(bigrams[:, 1], weights=big, minlength=n + 2).astype(np.int64)
     words = np.flatnonzero(uni > 0)
     return NgramCounts(n, (words.reshape(-1, 1), bigrams), (uni[words], big))
-
-
-def write_same_smoothing_bigram(model: Model, path: str | os.PathLike[str]) -> str:
-    """Write the bigram model of ``model``'s smoothing on the same counts; returns how it was made.
-
-    For a Jelinek-Mercer trigram: the Jelinek-Mercer bigram with the λ the trigram's queries
-    use for the bigram level (λ2, or a load-time override). For a Kneser-Ney trigram: the
-    Kneser-Ney bigram of the raw counts (:func:`raw_bigram_counts`), its discounts fitted
-    from their count-of-counts as ``train --order 2 --smoothing kn`` does. Same words, same
-    ids' keys and spellings, same skyband settings. Refuses a bigram file (it is its own
-    bigram) and its own path.
-    """
-    from .counts import CountTables
-    from .estimators import JelinekMercer, KneserNey
-    from .paths import check_new_output
-    from .store import build
-
-    check_new_output(model.path, path, "bigram baseline model")
-    counts = raw_bigram_counts(model)
-    n = model.n_words
-    uni = np.zeros(n + 2, dtype=np.int64)
-    uni[counts.grams[0][:, 0]] = counts.counts[0]
-    g2 = counts.grams[1]
-    tables = CountTables(
-        keys=model.word_keys(), displays=[model.display(i) for i in range(n)], unigram=uni,
-        pair_left=g2[:, 0].copy(), pair_right=g2[:, 1].copy(), pair_count=counts.counts[1].copy(), stats=dict(model.stats),
-    )
-    head = model.header()
-    if model.estimator == "kn":
-        estimator: JelinekMercer | KneserNey = KneserNey()
-        how = "Kneser-Ney bigram of the same counts (raw bigram counts summed from the trigrams; discounts fitted)"
-    else:
-        lam2 = model.query_lambdas()[0]
-        estimator = JelinekMercer([lam2])
-        how = f"Jelinek-Mercer bigram of the same counts with the model's λ2 = {lam2:g}"
-    build(counts, tables, estimator, path, skyband_k=head["skyband_k"], skyband_min=head["skyband_min"])
-    return how

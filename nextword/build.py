@@ -15,15 +15,17 @@ import time
 from dataclasses import dataclass
 from typing import Iterable
 
+import numpy as np
+
 from ._progress import DEFAULT_TICK, Progress
 from .corpus import Format, iter_messages, open_sources
-from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, auto_workers, count_in_processes
+from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables, auto_workers, count_in_processes
 from .errors import InputDataError, InvalidArgumentError
-from .model import check_lam
+from .model import Model, check_lam
 from .prune import DEFAULT_RULE
 from .store import DEFAULT_SKYBAND_K, DEFAULT_SKYBAND_MIN, MAX_LAMBDA, write_model
 
-__all__ = ["TrainReport", "train", "train_texts", "DEFAULT_LAMBDA", "SMOOTHINGS", "TRAIN_ORDERS"]
+__all__ = ["TrainReport", "train", "train_texts", "write_same_smoothing_bigram", "DEFAULT_LAMBDA", "SMOOTHINGS", "TRAIN_ORDERS"]
 
 #: Weight of the bigram estimate; a value near 0.9 is the usual starting point (common practice).
 DEFAULT_LAMBDA = 0.9
@@ -236,3 +238,40 @@ def train_texts(
         skyband_k=skyband_k, skyband_min=skyband_min, t0=t0,
         order=order, smoothing=smoothing, lam3=lam3,
     )
+
+
+def write_same_smoothing_bigram(model: Model, path: str | os.PathLike[str]) -> str:
+    """Write the bigram model of ``model``'s smoothing on the same counts; returns how it was made.
+
+    For a Jelinek-Mercer trigram: the Jelinek-Mercer bigram with the λ the trigram's queries
+    use for the bigram level (λ2, or a load-time override). For a Kneser-Ney trigram: the
+    Kneser-Ney bigram of the raw counts (:func:`raw_bigram_counts`), its discounts fitted
+    from their count-of-counts as ``train --order 2 --smoothing kn`` does. Same words, same
+    ids' keys and spellings, same skyband settings. Refuses a bigram file (it is its own
+    bigram) and its own path.
+    """
+    from .baselines import raw_bigram_counts
+    from .estimators import JelinekMercer, KneserNey
+    from .paths import check_new_output
+    from .store import build
+
+    check_new_output(model.path, path, "bigram baseline model")
+    counts = raw_bigram_counts(model)
+    n = model.n_words
+    uni = np.zeros(n + 2, dtype=np.int64)
+    uni[counts.grams[0][:, 0]] = counts.counts[0]
+    g2 = counts.grams[1]
+    tables = CountTables(
+        keys=model.word_keys(), displays=[model.display(i) for i in range(n)], unigram=uni,
+        pair_left=g2[:, 0].copy(), pair_right=g2[:, 1].copy(), pair_count=counts.counts[1].copy(), stats=dict(model.stats),
+    )
+    head = model.header()
+    if model.estimator == "kn":
+        estimator: JelinekMercer | KneserNey = KneserNey()
+        how = "Kneser-Ney bigram of the same counts (raw bigram counts summed from the trigrams; discounts fitted)"
+    else:
+        lam2 = model.query_lambdas()[0]
+        estimator = JelinekMercer([lam2])
+        how = f"Jelinek-Mercer bigram of the same counts with the model's λ2 = {lam2:g}"
+    build(counts, tables, estimator, path, skyband_k=head["skyband_k"], skyband_min=head["skyband_min"])
+    return how

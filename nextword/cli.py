@@ -546,7 +546,7 @@ def _run_eval(args: argparse.Namespace, bar: Progress, model: Model) -> int:
     if not args.no_baselines and model.order == 3:  # what the two-word context buys
         import tempfile
 
-        from .baselines import write_same_smoothing_bigram
+        from .build import write_same_smoothing_bigram
 
         bar.stage("baseline: the bigram of the same smoothing", total=n_msgs, unit="messages")
         with tempfile.TemporaryDirectory(prefix="nextword-eval-") as tmp:

@@ -22,7 +22,8 @@ from pathlib import Path
 import pytest
 
 import nextword
-from nextword.baselines import key_sentences, raw_bigram_counts, write_same_smoothing_bigram
+from nextword.baselines import key_sentences, raw_bigram_counts
+from nextword.build import write_same_smoothing_bigram
 from nextword.errors import InvalidArgumentError
 from nextword.evaluate import evaluate, is_held_out
 from nextword.reference_kn import DictKneserNey
