@@ -45,8 +45,11 @@ _PAIR_SECTIONS = ("SUCC", "CNTS", "BIGI", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI"
 _VOCAB_SECTIONS = ("TKID", "IDTK", "ALPH", "APOS", "KEY4", "TOPK", "UNIG", "ROWS", "HIST", "DISI", "DISO")
 # below this many successor candidates, plain Python beats numpy's per-call overhead
 _SMALL = 80
-#: a plain row range longer than this is cut with numpy before the Python scoring (_NgramScorer)
+#: a plain trigram row range longer than this is cut with numpy before the Python scoring (_NgramScorer;
+#: a bigram range, longer than _SMALL)
 _TRIM = 24
+#: Contexts whose per-context sums _NgramScorer keeps (cleared when full).
+_CTX_CACHE = 4096
 
 
 class Suggestion(NamedTuple):
@@ -994,10 +997,12 @@ class _NgramScorer:
             raise ModelFormatError(f"{m.path}: damaged model data: a unigram probability outside [0, 1]")
         self._floor_list: list[float] = self.floor.tolist()
         self._hdri, self._hdrv = _native_view(a["HDRI"]), _native_view(a["HDRV"])
+        self._ctx_cache: dict[tuple[tuple[int, ...], tuple[float, float]], tuple[int, float, int, int, int, int, float]] = {}
         # the trigram skybands hold for the stored parameters (KN: always; JM: stored λs, λ₃ > 0)
         self._band_lams = (m.stored_lam, m.stored_lam3) if not self.kn else None
         if self.order == 3:
             self._t = int(meta["trigrams"])
+            self._tsky_min: int = meta["trigram_skyband_min"]
             self._tctb = _native_view(a["TCTB"])
             self._tlen = self.codec.decode(m.path, a, CONTEXT_TAGS)
             self._tsuc_mv = _native_view(a["TSUC"])
@@ -1167,15 +1172,38 @@ class _NgramScorer:
             i += 1
         return None
 
+    def _context_state(self, ctx: tuple[int, ...], lams: tuple[float, float]) -> tuple[int, float, int, int, int, int, float]:
+        """(T, γ₂, trigram context j or −1, its entries [s, e), T₃, γ₃) of a context, checked, and cached.
+
+        A keyboard asks about one context again and again while a word is typed (each
+        letter is a new prefix), so these per-context sums are kept (a bounded dict; the
+        file is read-only, so an entry never goes stale).
+        """
+        tot, g = self._level2(ctx[-1], lams[0])
+        j = self._context3(ctx)
+        s3 = e3 = tot3 = 0
+        g3 = 1.0
+        if j >= 0:
+            s3, e3 = self._rows3(j)
+            tot3, g3 = self._level3(j, s3, e3, lams[1])
+        state = (tot, g, j, s3, e3, tot3, g3)
+        if len(self._ctx_cache) >= _CTX_CACHE:
+            self._ctx_cache.clear()
+        self._ctx_cache[ctx, lams] = state
+        return state
+
     def rank(self, ctx: tuple[int, ...], lo: int, hi: int, k: int, lams: tuple[float, float]) -> list[tuple[int, float]]:
         """Top-k (word id, probability) among alphabetical positions [lo, hi), ties by the smaller id."""
         m = self.m
         if not self.kn and (lams[0] == 1.0 or (self.order == 3 and lams[1] == 1.0)):
-            # a zero floor: unseen words tie at 0 and rank by key, so score the whole range
+            # a zero floor: unseen words tie at 0 and rank by id, so score the whole range
             return self._rank_numpy(m._alph[lo:hi].astype(np.int64), ctx, k, lams)
         top = m._range_top_ids(lo, hi, k)
         v = ctx[-1]
-        tot, g = self._level2(v, lams[0])
+        state = self._ctx_cache.get((ctx, lams))
+        if state is None:
+            state = self._context_state(ctx, lams)
+        tot, g, j, s3, e3, tot3, g3 = state
         b_idx: Sequence[int] = ()
         b_full = True  # b_idx holds every bigram successor in the range
         if tot > 0:
@@ -1187,71 +1215,91 @@ class _NgramScorer:
                 band = m._segment_band(s, e, k)
                 if band is not None:
                     b_idx, b_full = band, False
-        j = self._context3(ctx)
         t_idx: Sequence[int] = ()
-        t_full = True
-        s3 = e3 = tot3 = 0
-        g3 = 1.0
         if j >= 0:
-            s3, e3 = self._rows3(j)
-            tot3, g3 = self._level3(j, s3, e3, lams[1])
             a3 = bisect.bisect_left(self._tsuc_mv, lo, s3, e3)
             b3 = bisect.bisect_left(self._tsuc_mv, hi, a3, e3)
             t_idx = range(a3, b3)
-            if b3 - a3 > m._sky_min and k <= m._sky_k and (self.kn or (lams == self._band_lams and lams[1] > 0.0)):
+            if b3 - a3 > self._tsky_min and k <= m._sky_k and (self.kn or (lams == self._band_lams and lams[1] > 0.0)):
                 band3 = self._band3(a3, b3, k)
                 if band3 is not None:
-                    t_idx, t_full = band3, False
-        # score the candidates with Python floats. A long plain range is first cut
-        # with numpy to the entries that can still reach the top k (see _trim_trigrams
-        # and _trim_bigrams); every other candidate then looks its values up by bisect.
+                    t_idx = band3
+        # Score the candidates with Python floats. Only the words that can be in the top k
+        # need their exact score: a trigram candidate (in c3) gets its exact B (its bigram
+        # value looked up if the bigram side was cut); every other candidate is scored from
+        # the values at hand, α₃ = 0 unless in c3, α₂ = 0 unless its B was computed. A word
+        # scored too low that way is a successor left out of a band or a cut, so k exactly
+        # scored candidates rank before it anyway (docs/SEAMS.md), and the top k is exact.
+        # A word outside c3 scores γ₃·B, so of those only the k best by (B, id) are kept.
         succ, apos, alph, fl = m._mv_succ, m._mv_apos, m._mv_alph, self._floor_list
+        kn = self.kn
+        # D(c) by min(c, 3): the same floats as _discount1, without a call per candidate
+        dk2: Sequence[float] = (0.0, *self.d2) if kn else ()
+        dk3: Sequence[float] = (0.0, *self.d3) if kn else ()
+        l2, l3 = lams
         c3: dict[int, int] = {}
         if len(t_idx):
             if isinstance(t_idx, range) and len(t_idx) > _TRIM:
-                c3, t_full = self._trim_trigrams(t_idx, v, tot, g, tot3, g3, k, lams), False
+                c3 = self._trim_trigrams(t_idx, v, tot, g, tot3, g3, k, lams)
             elif isinstance(t_idx, range):
                 c3 = dict(zip(self._tsuc_mv[t_idx.start : t_idx.stop].tolist(), self._tval.slice(t_idx.start, t_idx.stop)))
             else:
                 c3 = {self._tsuc_mv[i]: self._tval.at(i) for i in t_idx}
             if max(c3.values()) > tot3:
                 raise self._damaged(f"a trigram value above its context total {tot3}")
-        c2: dict[int, int] = {}
+        # B(v, x) of the bigram candidates, by position
+        bs: dict[int, float] = {}
         if len(b_idx):
-            if isinstance(b_idx, range) and len(b_idx) > _TRIM:
+            if isinstance(b_idx, range) and len(b_idx) > _SMALL:
                 c2, b_full = self._trim_bigrams(b_idx, tot, g, k + len(c3), lams[0]), False
+                ps, cs = list(c2), list(c2.values())
             elif isinstance(b_idx, range):
                 ps = succ[b_idx.start : b_idx.stop].tolist()
-                cs = [m._count_at(b_idx.start + x) if c == COUNT_ESCAPE else c for x, c in enumerate(m._mv_cnts[b_idx.start : b_idx.stop].tolist())]
-                c2 = dict(zip(ps, cs))
+                cs = m._mv_cnts[b_idx.start : b_idx.stop].tolist()
+                if COUNT_ESCAPE in cs:
+                    cs = [m._count_at(b_idx.start + x) if c == COUNT_ESCAPE else c for x, c in enumerate(cs)]
             else:
-                c2 = {succ[i]: m._count_at(i) for i in b_idx}
-            if max(c2.values()) > tot:
-                raise m._over(max(c2.values()), tot)
-        cands = set(c2) | set(c3)
-        cands.update(apos[w] for w in top)
-        kn = self.kn
-        # D(c) by min(c, 3): the same floats as _discount1, without a call per candidate
-        dk2: Sequence[float] = (0.0, *self.d2) if kn else ()
-        dk3: Sequence[float] = (0.0, *self.d3) if kn else ()
-        l2, l3 = lams
-        scored: list[tuple[float, int, int]] = []
-        for p in cands:
-            w = alph[p]
-            score: float = fl[w]
-            if tot > 0:
-                c = c2.get(p)
-                if c is None:
-                    c = 0 if b_full else m._pair_count(v, w)
-                    if c > tot:
-                        raise m._over(c, tot)
-                score = (max(c - dk2[c if c < 3 else 3], 0.0) / tot if kn else l2 * (c / tot)) + g * score
-            if j >= 0:
-                c = c3.get(p)
-                if c is None:
-                    c = 0 if t_full else self._trigram_value(s3, e3, p, tot3)
-                score = (max(c - dk3[c if c < 3 else 3], 0.0) / tot3 if kn else l3 * (c / tot3)) + g3 * score
-            scored.append((-score, w))
+                cn = m._mv_cnts
+                ps = [succ[i] for i in b_idx]
+                cs = [cn[i] for i in b_idx]
+                if COUNT_ESCAPE in cs:
+                    cs = [m._count_at(i) if c == COUNT_ESCAPE else c for i, c in zip(b_idx, cs)]
+            if max(cs) > tot:
+                raise m._over(max(cs), tot)
+            if kn:
+                # α₂ = max(c − D(c), 0)/T: a table for c < 3; c − D₃₊ ≥ 0 for c ≥ 3 (D₃₊ ≤ 3, checked on
+                # load), so max() is the identity there: the same floats as scores() and the oracle
+                d3 = dk2[3]
+                a2 = [max(c - dk2[c], 0.0) / tot for c in range(3)]
+                bs = {p: ((c - d3) / tot if c >= 3 else a2[c]) + g * fl[alph[p]] for p, c in zip(ps, cs)}
+            else:
+                bs = {p: l2 * (c / tot) + g * fl[alph[p]] for p, c in zip(ps, cs)}
+        rest = [(-b, alph[p]) for p, b in bs.items() if p not in c3]
+        for w in top:
+            p = apos[w]
+            if p not in bs and p not in c3:
+                rest.append((-(g * fl[w]) if tot > 0 else -fl[w], w))
+        if j < 0:
+            scored = rest
+        else:
+            rest.sort()
+            scored = [(-(g3 * -nb), w) for nb, w in rest[:k]]
+            for p, c in c3.items():
+                w = alph[p]
+                b = bs.get(p)
+                if b is None:
+                    if tot > 0:
+                        c2v = 0
+                        if not b_full:
+                            i = bisect.bisect_left(succ, p, rs, re_)
+                            if i < re_ and succ[i] == p:
+                                c2v = m._count_at(i)
+                        if c2v > tot:
+                            raise m._over(c2v, tot)
+                        b = (max(c2v - dk2[c2v if c2v < 3 else 3], 0.0) / tot if kn else l2 * (c2v / tot)) + g * fl[w]
+                    else:
+                        b = fl[w]
+                scored.append((-((max(c - dk3[c if c < 3 else 3], 0.0) / tot3 if kn else l3 * (c / tot3)) + g3 * b), w))
         scored.sort()  # ties by id (floor descending, then key): docs/SEAMS.md "Ties"
         out = [(w, -neg) for neg, w in scored[:k]]
         for _, q in out:
@@ -1317,13 +1365,6 @@ class _NgramScorer:
         b = alpha + g * self.floor[ids]
         sel = np.lexsort((ids, -b))[:keep]  # ties by id, as the ranking
         return dict(zip(pos[sel].tolist(), c[sel].tolist()))
-
-    def _trigram_value(self, s: int, e: int, pos: int, tot3: int) -> int:
-        i = bisect.bisect_left(self._tsuc_mv, pos, s, e)
-        c = self._tval.at(i) if i < e and self._tsuc_mv[i] == pos else 0
-        if c > tot3:
-            raise self._damaged(f"trigram value {c} above its context total {tot3}")
-        return c
 
     def _rank_numpy(self, ids: np.ndarray, ctx: tuple[int, ...], k: int, lams: tuple[float, float]) -> list[tuple[int, float]]:
         m = self.m

@@ -38,6 +38,7 @@ __all__ = [
     "atomic_write",
     "DEFAULT_SKYBAND_K",
     "DEFAULT_SKYBAND_MIN",
+    "DEFAULT_TRIGRAM_SKYBAND_MIN",
     "TOPK_FANOUT",
     "MAX_LAMBDA",
     "build",
@@ -112,6 +113,11 @@ ALIGN: Final = 8
 #: A row segment (the successors sharing a prefix) with more entries than this gets a
 #: stored skyband, so a query never scores more candidates than about this many.
 DEFAULT_SKYBAND_MIN: Final = 64
+#: The same threshold for the trigram rows' segments (§7.16), lower: a trigram segment
+#: of a few dozen entries would otherwise be cut with numpy on every query that meets it,
+#: while its band costs about 30 bytes. A file records the value it used
+#: (META ``trigram_skyband_min``); a smaller ``skyband_min`` lowers it too.
+DEFAULT_TRIGRAM_SKYBAND_MIN: Final = 24
 #: Queries with k up to this use the stored skybands (larger k scan the segment).
 DEFAULT_SKYBAND_K: Final = 8
 #: Branching of the multi-level top lists used for prefix queries (see docs/FORMAT.md).
@@ -809,6 +815,15 @@ def trigram_lower_scores(
     return np.asarray(level_mix(kn, param, c2, tot, dropped2[v], n123, lower), dtype=np.float64)
 
 
+def trigram_band_min(skyband_min: int, trigram_skyband_min: int | None) -> int:
+    """The trigram rows' band threshold: the given one, else the default capped by ``skyband_min``."""
+    if trigram_skyband_min is None:
+        return min(skyband_min, DEFAULT_TRIGRAM_SKYBAND_MIN)
+    if isinstance(trigram_skyband_min, bool) or not isinstance(trigram_skyband_min, int) or trigram_skyband_min < 0:
+        raise InvalidArgumentError(f"trigram_skyband_min must be an integer >= 0, got {trigram_skyband_min!r}")
+    return trigram_skyband_min
+
+
 def trigram_bands(
     starts: np.ndarray,
     tpos: np.ndarray,
@@ -861,6 +876,7 @@ def build_ngram_sections(
     *,
     skyband_k: int = DEFAULT_SKYBAND_K,
     skyband_min: int = DEFAULT_SKYBAND_MIN,
+    trigram_skyband_min: int | None = None,
     fitted: Any = None,
 ) -> tuple[list[tuple[bytes, np.dtype | None, bytes | np.ndarray]], int]:
     """The sections of a model file for any estimator and order 2 or 3, and its minor version.
@@ -1008,7 +1024,8 @@ def build_ngram_sections(
             kn, stored[1] if kn else lam2, floor_new, rows, succ2, file_values2, history, dropped2, n123_2, v, pos, alph,
         )  # fmt: skip
         alpha_keys = [keys[i] for i in alph[:n].tolist()]
-        tsgs, tsge, tskp, tski, tskc = trigram_bands(ctx_starts, pos, alph[pos.astype(np.int64)], value3, lower, alpha_keys, n, skyband_k, skyband_min)
+        tmin = trigram_band_min(skyband_min, trigram_skyband_min)
+        tsgs, tsge, tskp, tski, tskc = trigram_bands(ctx_starts, pos, alph[pos.astype(np.int64)], value3, lower, alpha_keys, n, skyband_k, tmin)
         sections += [
             (b"TCTB", u4, tctb),
             *EXACT.encode(CONTEXT_TAGS, lengths),
@@ -1027,6 +1044,7 @@ def build_ngram_sections(
         meta["trigrams"] = int(t)
         meta["trigram_contexts"] = int(j)
         meta["trigram_summary_min"] = SUMMARY_MIN
+        meta["trigram_skyband_min"] = tmin
     sections[0] = (b"META", None, msgpack.packb(meta, use_bin_type=True))
     return sections, NGRAM_MINOR
 
@@ -1039,6 +1057,7 @@ def build(
     *,
     skyband_k: int = DEFAULT_SKYBAND_K,
     skyband_min: int = DEFAULT_SKYBAND_MIN,
+    trigram_skyband_min: int | None = None,
     fitted: Any = None,
 ) -> None:
     """Fit ``estimator`` to ``counts`` and write the model file atomically to ``path``.
@@ -1049,7 +1068,8 @@ def build(
     of a context's values (the dropped mass, recorded so that every context sums to 1).
     """
     sections, minor = build_ngram_sections(
-        counts, tables, estimator, skyband_k=skyband_k, skyband_min=skyband_min, fitted=fitted
+        counts, tables, estimator, skyband_k=skyband_k, skyband_min=skyband_min,
+        trigram_skyband_min=trigram_skyband_min, fitted=fitted,
     )
     atomic_write(path, encode_sections(sections, minor=minor))
 
@@ -1356,6 +1376,10 @@ def _check_model_kind(name: str, meta: dict[str, Any], minor: int, tags: set[byt
                 raise _fail(name, f"metadata field {key!r} is invalid: {v!r}"[:200])
         if meta.get("trigram_summary_min") != SUMMARY_MIN:
             raise _fail(name, f"metadata field 'trigram_summary_min' is invalid: {meta.get('trigram_summary_min')!r}"[:200])
+        # files written before the field existed used skyband_min for the trigram rows too
+        tmin = meta.setdefault("trigram_skyband_min", meta["skyband_min"])
+        if isinstance(tmin, bool) or not isinstance(tmin, int) or not 0 <= tmin <= _U32_MAX:
+            raise _fail(name, f"metadata field 'trigram_skyband_min' is invalid: {tmin!r}"[:200])
 
 
 def _sorted_sparse(name: str, label: str, idx: np.ndarray, val: np.ndarray, end: int) -> None:
@@ -1473,7 +1497,10 @@ def _check_ngram_arrays(name: str, meta: dict[str, Any], a: dict[str, np.ndarray
             kn, meta["discounts"][1] if kn else meta["lambda"], floor, rows, a["SUCC"], cnts,
             a["HIST"].astype(np.int64), dropped2, n123_2, np.repeat(ctx_v, np.diff(starts)), tsuc, a["ALPH"].astype(np.int64),
         )  # fmt: skip
-        got = trigram_bands(starts, tsuc, a["ALPH"].astype(np.int64)[tsuc.astype(np.int64)], val, lower, keys, n, meta["skyband_k"], meta["skyband_min"])
+        got = trigram_bands(
+            starts, tsuc, a["ALPH"].astype(np.int64)[tsuc.astype(np.int64)], val, lower, keys, n, meta["skyband_k"],
+            meta["trigram_skyband_min"],
+        )
         for label, arr in zip(("TSGS", "TSGE", "TSKP", "TSKI", "TSKC"), got):
             if not np.array_equal(arr, a[label]):
                 raise _fail(name, f"section {label} is not the skyband data of the trigram rows")

@@ -326,3 +326,26 @@ def test_crafted_changes_to_each_1_4_section_raise_or_answer_in_range(rich_kn3: 
                 continue
             _ask(m0)
     assert _mutations(rich_kn3, tag)  # every new section is present and was changed
+
+
+def test_trigram_skyband_min_is_recorded_and_checked(kn3: bytes, tmp_path: Path) -> None:
+    # docs/FORMAT.md §7.11: META trigram_skyband_min, the writer's default min(skyband_min, 24)
+    from nextword.store import DEFAULT_SKYBAND_MIN, DEFAULT_TRIGRAM_SKYBAND_MIN
+
+    good = tmp_path / "good.nwm"
+    good.write_bytes(kn3)
+    with nextword.load(good, verify=True) as m:
+        assert m.header()["trigram_skyband_min"] == min(DEFAULT_SKYBAND_MIN, DEFAULT_TRIGRAM_SKYBAND_MIN)
+    small = tmp_path / "small.nwm"
+    nextword.train_texts(["the cat sat on the mat"], small, smoothing="kn", order=3, min_count=1, skyband_min=2)
+    with nextword.load(small, verify=True) as m:
+        assert m.header()["trigram_skyband_min"] == 2  # a smaller skyband_min lowers it too
+    bad = tmp_path / "bad.nwm"
+    for value in (-1, "24", True, 2**33):
+        bad.write_bytes(_with_meta(kn3, {"trigram_skyband_min": value}))
+        with pytest.raises(nextword.ModelFormatError, match="trigram_skyband_min"):
+            nextword.load(bad)
+    # a threshold the bands were not built with: verify recomputes the bands and refuses
+    bad.write_bytes(_with_meta(kn3, {"trigram_skyband_min": 0}))
+    with pytest.raises(nextword.ModelFormatError, match="skyband data of the trigram rows"):
+        nextword.load(bad, verify=True)
