@@ -34,13 +34,17 @@ Measured figures: bench/RESULTS.md, "Size budget".
 
 from __future__ import annotations
 
+import copy
+import dataclasses
 import re
-from typing import TYPE_CHECKING, Callable, Final, Literal
+from typing import TYPE_CHECKING, Callable, Final, Literal, Sequence
 
 import numpy as np
 
 from .counts import CountTables
 from .errors import InvalidArgumentError
+from .estimators import Fitted, Level
+from .ngrams import NgramCounts, group_starts
 from .store import build_sections, encode_sections, history_counts
 
 if TYPE_CHECKING:  # prune is imported by model (the train default), not the other way round
@@ -545,3 +549,195 @@ def prune_to_size(
     info["words_removed"] = words_before - smaller.tables.n_words
     info["words_kept"] = smaller.tables.n_words
     return pruned, chunks, info
+
+
+# -- pruning a fitted n-gram model of any estimator and order ---------------------------------
+#
+# The pruned model keeps every context's total as estimated on the full data; a dropped
+# n-gram's value stays in that total as *dropped mass*, which backs off to the lower
+# order: with T the context's total and ``dropped`` the part of it no longer stored,
+#
+#     Kneser-Ney:      γ(h) = (D₁n₁ + D₂n₂ + D₃n₃ + dropped) / T   (n_j over the stored n-grams)
+#     Jelinek-Mercer:  γ(h) = (1 − λ) + λ · dropped / T
+#
+# and every stored n-gram keeps its α (its value over the unchanged T). Removing one
+# n-gram (h, w) therefore moves exactly its α from the first term to γ(h): P(·|h) still
+# sums to 1, no other α changes. Lower-order values stay as estimated on the full data
+# (Kneser-Ney's continuation counts are not recounted over the kept n-grams, nor are the
+# discounts refitted), and no order depends on another structurally: in the interpolated
+# form a trigram context needs neither its bigram (u, v) nor the bigram (v, w), so every
+# n-gram of order ≥ 2 is scored alone on the full model and the least valuable go first,
+# whatever their order. A context left with no n-gram is dropped with them (γ = 1 there:
+# the same as a context never seen). The unigram level is the vocabulary; it shrinks only
+# by dropping whole words into <unk> (:func:`drop_ngram_words`).
+
+
+def _pack(rows: np.ndarray, base: int) -> np.ndarray:
+    """One int64 key per row of ids in ``0..base-1``, ordered as the rows are (lexicographically)."""
+    key = np.zeros(len(rows), np.int64)
+    for c in range(rows.shape[1]):
+        key = key * base + rows[:, c].astype(np.int64)
+    return key
+
+
+def _owners(lev: Level) -> np.ndarray:
+    return np.repeat(np.arange(len(lev.ctx)), np.diff(lev.ctx_start))
+
+
+class _Probs:
+    """Vectorised P_m(w | h) of a fitted model for many (h, w) rows at once (α, γ computed once per level)."""
+
+    def __init__(self, fitted: Fitted) -> None:
+        self.fitted = fitted
+        self.base = fitted.bos + 1
+        self._alpha: dict[int, np.ndarray] = {}
+        self._gamma: dict[int, np.ndarray] = {}
+        lev1 = fitted.levels[0]
+        p1 = np.full(fitted.n_outcomes, fitted.base())
+        if len(lev1.ctx):
+            p1 = p1 * float(fitted.gammas(1)[0])
+            p1[lev1.grams[:, 0]] += fitted.alphas(1)
+        self.p1 = p1
+
+    def alpha(self, m: int) -> np.ndarray:
+        if m not in self._alpha:
+            self._alpha[m] = self.fitted.alphas(m)
+        return self._alpha[m]
+
+    def gamma(self, m: int) -> np.ndarray:
+        if m not in self._gamma:
+            self._gamma[m] = self.fitted.gammas(m)
+        return self._gamma[m]
+
+    def probs(self, rows: np.ndarray) -> np.ndarray:
+        """P_m(w | h) for each row (h…, w) of a ``(k, m)`` id array."""
+        m = rows.shape[1]
+        if m == 1:
+            return np.asarray(self.p1[rows[:, 0]], dtype=np.float64)
+        lower = self.probs(rows[:, 1:])
+        lev = self.fitted.levels[m - 1]
+        alpha = np.zeros(len(rows))
+        gamma = np.ones(len(rows))
+        if len(lev.grams):
+            gk, rk = _pack(lev.grams, self.base), _pack(rows, self.base)
+            pos = np.minimum(np.searchsorted(gk, rk), len(gk) - 1)
+            hit = gk[pos] == rk
+            alpha[hit] = self.alpha(m)[pos[hit]]
+            ck, rc = _pack(lev.ctx, self.base), _pack(rows[:, :-1], self.base)
+            cpos = np.minimum(np.searchsorted(ck, rc), len(ck) - 1)
+            chit = ck[cpos] == rc
+            gamma[chit] = self.gamma(m)[cpos[chit]]
+        return alpha + gamma * lower
+
+
+def context_probability(lev: Level, counts: NgramCounts, m: int) -> np.ndarray:
+    """P(h) = c(h •) / N for every context of ``lev`` (order m): raw counts as a history.
+
+    c(h •) is how often h was followed by a predicted token in the training text (its raw
+    m-gram counts summed, also for Kneser-Ney, whose stored lower-order values are
+    continuation counts), N the number of predicted tokens.
+    """
+    raw_g, raw_c = counts.grams[m - 1], counts.counts[m - 1]
+    n_tokens = float(counts.counts[0].sum())
+    starts = group_starts(raw_g[:, : m - 1])
+    if len(raw_g) == 0 or len(lev.ctx) == 0:
+        return np.zeros(len(lev.ctx))
+    base = counts.bos + 1
+    raw_ctx = _pack(raw_g[starts[:-1], : m - 1], base)
+    raw_tot = np.add.reduceat(raw_c, starts[:-1]).astype(np.float64)
+    q = _pack(lev.ctx, base)
+    pos = np.minimum(np.searchsorted(raw_ctx, q), len(raw_ctx) - 1)
+    return np.where(raw_ctx[pos] == q, raw_tot[pos], 0.0) / n_tokens
+
+
+def ngram_scores(fitted: Fitted, counts: NgramCounts) -> list[np.ndarray]:
+    """Stolcke's relative-entropy score of every stored n-gram of order ≥ 2; ``out[m-1]`` for order m.
+
+    The score of (h, w_j) is P(h) · D(P(·|h) ‖ P′(·|h)) with P′ this model without that
+    n-gram (see the comment above: its α_j joins γ(h), nothing else in h changes), P(h)
+    from :func:`context_probability`. With L the lower-order distribution P_{m−1}(·|h′),
+    P′(w|h) = P(w|h) + α_j·L(w) for w ≠ w_j and P′(w_j|h) = (γ + α_j)·L(w_j), so
+
+        D = P_j ln(P_j / P′_j) − Σ_{i stored, i≠j} P_i ln(1 + α_j L_i / P_i)
+              − γ ln(1 + α_j / γ) · (1 − Σ_{i stored} L_i)
+
+    (the last term: every word not stored after h, whose P = γ·L). The sum over the
+    stored words depends on j only through α_j, i.e. through its value: it is computed
+    once per distinct value of each context (:func:`_row_sums`, as for the bigram
+    scores). Each n-gram is scored alone, on its own context's distribution (the change
+    it makes to higher-order contexts that interpolate with it is not counted, as in
+    Stolcke's criterion). ``out[0]`` (the unigram level) is empty: words are valued by
+    :func:`ngram_word_values`.
+    """
+    probs = _Probs(fitted)
+    out: list[np.ndarray] = [np.zeros(0)]
+    for m in range(2, fitted.order + 1):
+        lev = fitted.levels[m - 1]
+        k = len(lev.grams)
+        if k == 0:
+            out.append(np.zeros(0))
+            continue
+        owner = _owners(lev)
+        a = probs.alpha(m)
+        g = probs.gamma(m)
+        low = probs.probs(lev.grams[:, 1:])
+        gj = g[owner]
+        p = a + gj * low
+        radix = int(lev.value.max()) + 1
+        combos, pair_combo = np.unique(owner * radix + lev.value, return_inverse=True)
+        pair_combo = pair_combo.reshape(-1)
+        first = np.zeros(len(combos), np.int64)
+        first[pair_combo[::-1]] = np.arange(k)[::-1]  # any member: α is a function of (context, value)
+        combo_row = combos // radix
+        f = _row_sums(p, low, lev.ctx_start, combo_row, a[first])
+        uncovered = np.maximum(1.0 - np.bincount(owner, weights=low, minlength=len(lev.ctx)), 0.0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            own_f = p * np.log1p(a * low / p)
+            own = p * np.log(p / ((gj + a) * low))
+            unseen = gj * np.log1p(a / gj) * uncovered[owner]
+            kl = own - (f[pair_combo] - own_f) - unseen
+        kl = np.where(a == 0.0, 0.0, np.where(np.isnan(kl), np.inf, kl))
+        out.append(context_probability(lev, counts, m)[owner] * np.maximum(kl, 0.0))
+    return out
+
+
+def prune_level(lev: Level, keep: np.ndarray) -> Level:
+    """``lev`` with only the n-grams where ``keep`` is true; kept contexts keep their totals."""
+    keep = np.asarray(keep, dtype=bool)
+    if keep.shape != (len(lev.grams),):
+        raise InvalidArgumentError(f"keep must have one entry per n-gram ({len(lev.grams)}), got shape {keep.shape}")
+    new = Level.of(lev.grams[keep], lev.value[keep])
+    origin = _owners(lev)[keep][new.ctx_start[:-1]]
+    return dataclasses.replace(new, ctx_total=np.asarray(lev.ctx_total[origin], dtype=np.int64))
+
+
+def prune_fitted(fitted: Fitted, keep: Sequence[np.ndarray | None]) -> Fitted:
+    """The model without the n-grams ``keep`` rejects (``keep[m-1]`` per order; None keeps a level whole).
+
+    Only orders ≥ 2 may lose n-grams. Every context's distribution still sums to 1
+    (dropped mass backs off, see the comment above :func:`ngram_scores`).
+    """
+    if len(keep) != fitted.order:
+        raise InvalidArgumentError(f"{len(keep)} keep masks given for order {fitted.order}")
+    if keep[0] is not None and not bool(np.all(keep[0])):
+        raise InvalidArgumentError("the unigram level is the vocabulary: drop words with drop_ngram_words instead")
+    out = copy.copy(fitted)
+    out.levels = [lev if k is None else prune_level(lev, k) for lev, k in zip(fitted.levels, keep)]
+    return out
+
+
+def stored_ngrams(fitted: Fitted) -> int:
+    """How many n-grams of order ≥ 2 the model stores (what pruning can remove)."""
+    return sum(len(lev.grams) for lev in fitted.levels[1:])
+
+
+def keep_best(values: Sequence[np.ndarray], k: int) -> list[np.ndarray | None]:
+    """Keep masks for the ``k`` highest of the per-order ``values`` (orders ≥ 2) together; ties to the lower order, then index."""
+    flat = np.concatenate([np.asarray(v, dtype=np.float64) for v in values[1:]]) if len(values) > 1 else np.zeros(0)
+    mask = top_k(flat, k)
+    out: list[np.ndarray | None] = [None]
+    at = 0
+    for v in values[1:]:
+        out.append(mask[at : at + len(v)])
+        at += len(v)
+    return out

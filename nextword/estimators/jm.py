@@ -12,6 +12,8 @@ from __future__ import annotations
 
 from typing import Any, ClassVar, Sequence
 
+import numpy as np
+
 from ..errors import InvalidArgumentError
 from ..ngrams import NgramCounts
 from ..store import MAX_LAMBDA  # one source: why the cap is 0.999 is documented there
@@ -33,7 +35,27 @@ class FittedJelinekMercer(Fitted):
         return (self.lams[m - 1] if m > 1 else 1.0) * (c / cv)
 
     def gamma(self, m: int, j: int) -> float:
-        return 1.0 - self.lams[m - 1] if m > 1 else 0.0
+        if m == 1:
+            return 0.0
+        lam = self.lams[m - 1]
+        lev = self.levels[m - 1]
+        dropped = int(lev.ctx_total[j]) - lev.kept_total(j)
+        # a pruned context's dropped counts back off: their λ share joins 1 − λ
+        return 1.0 - lam if dropped == 0 else (1.0 - lam) + lam * (dropped / int(lev.ctx_total[j]))
+
+    def alphas(self, m: int) -> np.ndarray:
+        lev = self.levels[m - 1]
+        owner = np.repeat(np.arange(len(lev.ctx)), np.diff(lev.ctx_start))
+        lam = self.lams[m - 1] if m > 1 else 1.0
+        return np.asarray(lam * (lev.value / lev.ctx_total[owner]), dtype=np.float64)
+
+    def gammas(self, m: int) -> np.ndarray:
+        lev = self.levels[m - 1]
+        if m == 1:
+            return np.zeros(len(lev.ctx))
+        lam = self.lams[m - 1]
+        dropped = lev.dropped()
+        return np.where(dropped == 0, 1.0 - lam, (1.0 - lam) + lam * (dropped / np.maximum(lev.ctx_total, 1)))
 
     def base(self) -> float:
         return 0.0
