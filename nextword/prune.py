@@ -43,9 +43,9 @@ import numpy as np
 
 from .counts import CountTables
 from .errors import InvalidArgumentError
-from .estimators import Fitted, Level
+from .estimators import Estimator, Fitted, Level
 from .ngrams import NgramCounts, group_starts
-from .store import build_sections, encode_sections, history_counts
+from .store import build_ngram_sections, build_sections, encode_sections, history_counts
 
 if TYPE_CHECKING:  # prune is imported by model (the train default), not the other way round
     from .model import Model
@@ -630,6 +630,32 @@ class _Probs:
         return alpha + gamma * lower
 
 
+def context_distributions(fitted: Fitted) -> Callable[[tuple[int, ...]], np.ndarray]:
+    """A function giving P(·|h) over every outcome (float64, length n_words + 2) for a context of ids.
+
+    Built order by order as one vector — P₁, then γ(h)·P + α on each stored context's row
+    — with α and γ computed once per level: the whole distribution of a context at once,
+    for checks (every context sums to 1) and brute-force rankings of pruned models.
+    """
+    probs = _Probs(fitted)
+    levels = fitted.levels
+
+    def dist(h: tuple[int, ...]) -> np.ndarray:
+        h = fitted.context_of(h)
+        p = probs.p1.copy()
+        for m in range(2, len(h) + 2):
+            lev = levels[m - 1]
+            j = lev.find_context(h[len(h) - (m - 1):])
+            if j < 0:
+                continue
+            s, e = int(lev.ctx_start[j]), int(lev.ctx_start[j + 1])
+            p = probs.gamma(m)[j] * p
+            p[lev.grams[s:e, -1]] += probs.alpha(m)[s:e]
+        return p
+
+    return dist
+
+
 def context_probability(lev: Level, counts: NgramCounts, m: int) -> np.ndarray:
     """P(h) = c(h •) / N for every context of ``lev`` (order m): raw counts as a history.
 
@@ -726,6 +752,11 @@ def prune_fitted(fitted: Fitted, keep: Sequence[np.ndarray | None]) -> Fitted:
     return out
 
 
+def unigrams_only(fitted: Fitted) -> Fitted:
+    """The model with every n-gram of order ≥ 2 pruned: the vocabulary alone."""
+    return prune_fitted(fitted, [None] + [np.zeros(len(lev.grams), dtype=bool) for lev in fitted.levels[1:]])
+
+
 def stored_ngrams(fitted: Fitted) -> int:
     """How many n-grams of order ≥ 2 the model stores (what pruning can remove)."""
     return sum(len(lev.grams) for lev in fitted.levels[1:])
@@ -741,3 +772,216 @@ def keep_best(values: Sequence[np.ndarray], k: int) -> list[np.ndarray | None]:
         out.append(mask[at : at + len(v)])
         at += len(v)
     return out
+
+
+class _Prefitted(Estimator):
+    """An estimator whose fit returns a model fitted (and pruned) already: how a pruned model reaches :func:`store.build`."""
+
+    def __init__(self, fitted: Fitted) -> None:
+        self.fitted = fitted
+        self.name = fitted.name  # type: ignore[misc]
+
+    def fit(self, counts: NgramCounts) -> Fitted:
+        return self.fitted
+
+
+def ngram_file(counts: NgramCounts, tables: CountTables, fitted: Fitted, **build: int) -> Chunks:
+    """The model file of a fitted (possibly pruned) model, as chunks (written by :func:`store.atomic_write`)."""
+    sections, minor = build_ngram_sections(counts, tables, _Prefitted(fitted), **build)
+    return encode_sections(sections, minor=minor)
+
+
+def drop_ngram_words(counts: NgramCounts, tables: CountTables, keep: np.ndarray) -> tuple[NgramCounts, CountTables]:
+    """The counts of every order with only the words where ``keep`` is true; the rest become ``<unk>``.
+
+    :func:`drop_words` for every order: the model is exactly the one trained on the text
+    with the dropped words replaced by an unknown word (n-grams made equal are summed),
+    so the estimator is fitted again on the result.
+    """
+    small = drop_words(tables, keep)
+    n, m = tables.n_words, small.n_words
+    keep = np.asarray(keep, dtype=bool)
+    remap = np.empty(n + 3, dtype=np.int64)
+    remap[:n] = np.where(keep, np.cumsum(keep) - 1, m + 1)
+    remap[n:] = [m, m + 1, m + 2]
+    seen = np.flatnonzero(small.unigram)
+    grams = [seen.astype(np.int64)[:, None], np.column_stack((small.pair_left, small.pair_right)).astype(np.int64)]
+    values = [np.asarray(small.unigram[seen], dtype=np.int64), np.asarray(small.pair_count, dtype=np.int64)]
+    for level in range(3, counts.order + 1):
+        g = remap[counts.grams[level - 1]]
+        key = _pack(g, m + 3)
+        uniq, inverse = np.unique(key, return_inverse=True)
+        summed = np.bincount(inverse.reshape(-1), weights=counts.counts[level - 1].astype(np.float64), minlength=len(uniq))
+        rows = np.zeros((len(uniq), level), dtype=np.int64)
+        rest = uniq.copy()
+        for c in range(level - 1, -1, -1):
+            rows[:, c] = rest % (m + 3)
+            rest //= m + 3
+        grams.append(rows)
+        values.append(np.rint(summed).astype(np.int64))
+    return NgramCounts(m, tuple(grams[: counts.order]), tuple(values[: counts.order])), small
+
+
+def ngram_word_values(counts: NgramCounts, scores: Sequence[np.ndarray], fitted: Fitted) -> np.ndarray:
+    """Value of every vocabulary word (ids 0 … n−1) for :func:`prune_ngrams_to_size`; the smallest go first.
+
+    As :func:`word_values` for the entropy rule: the word's term c(x)/N·ln(N/c(x)) of the
+    unigram entropy (raw counts) plus the scores of every stored n-gram it is part of,
+    in any position — dropping the word loses all of them.
+    """
+    n = counts.n_words
+    c = np.zeros(n + 3)
+    c[counts.grams[0][:, 0]] = counts.counts[0]
+    c = c[:n]
+    total = float(counts.counts[0].sum())
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out = np.where(c > 0, c / total * np.log(total / np.where(c > 0, c, 1.0)), 0.0)
+    for m in range(2, fitted.order + 1):
+        g = fitted.levels[m - 1].grams
+        v = np.where(np.isfinite(scores[m - 1]), scores[m - 1], 0.0)
+        for col in range(m):
+            ids = g[:, col]
+            inside = ids < n
+            out += np.bincount(ids[inside], weights=v[inside], minlength=n)[:n]
+    return out
+
+
+def prune_ngrams_to_size(
+    counts: NgramCounts,
+    tables: CountTables,
+    estimator: Estimator,
+    max_bytes: int,
+    *,
+    vocabulary: bool = True,
+    progress: Callable[[str], None] | None = None,
+    **build: int,
+) -> tuple[Fitted, NgramCounts, CountTables, Chunks, dict[str, float]]:
+    """Keep the most valuable n-grams (and words) of any estimator and order that fit ``max_bytes``.
+
+    Returns (pruned model, counts, tables, file chunks, info); the counts and tables
+    are smaller than the inputs when words were dropped. The rule, by value per byte:
+
+    * every stored n-gram of order ≥ 2 is valued by its relative-entropy score
+      (:func:`ngram_scores`) divided by the bytes one n-gram of its order costs, measured
+      from three builds (all n-grams; none above order 2; none above order 1) — a
+      trigram and a bigram cost different amounts, so one threshold on score per byte
+      decides between them;
+    * the kept count is found on measured sizes: a first guess from those per-order
+      costs, then secant steps on the measured file size until the file fits and the next
+      step would not (each trial is a full build of the file);
+    * words go only when the vocabulary alone (every n-gram of order ≥ 2 dropped) does not
+      fit: the least valuable words (:func:`ngram_word_values`) become ``<unk>`` — a tenth
+      of the kept words at a time after a first guess from the bytes per word — the
+      estimator is fitted again on the smaller counts and the n-grams are fitted to what
+      is left. With ``vocabulary=False`` such a budget is an error instead.
+
+    ``progress(label)`` is called before each expensive step.
+    """
+    def say(label: str) -> None:
+        if progress is not None:
+            progress(label)
+
+    if estimator.name == "jm" and counts.order == 2:
+        raise InvalidArgumentError("a Jelinek-Mercer bigram model is pruned by prune_to_size (its file stores the counts themselves)")
+    words_before = tables.n_words
+    say("fitting")
+    fitted = estimator.fit(counts)
+    chunks = ngram_file(counts, tables, fitted, **build)
+    total = stored_ngrams(fitted)
+    if _nbytes(chunks) <= max_bytes:
+        return fitted, counts, tables, chunks, {"kept": total, "removed": 0, "bytes": _nbytes(chunks),
+                                                "words_kept": words_before, "words_removed": 0}
+    say(f"scoring {total:,} n-grams (entropy rule)")
+    scores = ngram_scores(fitted, counts)
+    floor = _nbytes(ngram_file(counts, tables, unigrams_only(fitted), **build))
+    if floor > max_bytes:
+        if not vocabulary:
+            raise InvalidArgumentError(
+                f"a budget of {max_bytes:,} bytes is below the vocabulary alone ({floor:,} bytes); "
+                "let the vocabulary shrink too (the default; not with --keep-vocabulary / vocabulary=False) or lower max_vocab"
+            )
+        wv = ngram_word_values(counts, scores, fitted)
+        n = tables.n_words
+        keep = np.zeros(n, dtype=bool)
+        keep[np.argsort(-wv, kind="stable")[: max(1, int(n * max_bytes / floor * 0.95))]] = True
+        while True:
+            say(f"dropping words: keeping {int(keep.sum()):,} of {n:,}")
+            small_counts, small_tables = drop_ngram_words(counts, tables, keep)
+            small_fit = estimator.fit(small_counts)
+            floor = _nbytes(ngram_file(small_counts, small_tables, unigrams_only(small_fit), **build))
+            if floor <= max_bytes:
+                break
+            if keep.sum() == 1:
+                raise InvalidArgumentError(
+                    f"a budget of {max_bytes:,} bytes is below the smallest possible model ({floor:,} bytes: one word)"
+                )
+            kept = np.flatnonzero(keep)
+            keep[kept[np.argsort(wv[kept], kind="stable")[: max(1, len(kept) // 10)]]] = False
+        counts, tables, fitted = small_counts, small_tables, small_fit
+        say(f"scoring {stored_ngrams(fitted):,} n-grams (entropy rule)")
+        scores = ngram_scores(fitted, counts)
+    fitted_out, chunks, info = _fit_ngrams(counts, tables, fitted, scores, max_bytes, floor, say, build)
+    info["words_kept"] = tables.n_words
+    info["words_removed"] = words_before - tables.n_words
+    return fitted_out, counts, tables, chunks, info
+
+
+def _nbytes(chunks: Chunks) -> int:
+    return sum(len(c) for c in chunks)
+
+
+def _fit_ngrams(counts: NgramCounts, tables: CountTables, fitted: Fitted, scores: list[np.ndarray], max_bytes: int,
+                floor: int, say: Callable[[str], None], build: dict[str, int]) -> tuple[Fitted, Chunks, dict[str, float]]:
+    """The most valuable n-grams by score per byte that fit ``max_bytes`` (``floor``: the file with none)."""
+    order = fitted.order
+    total = stored_ngrams(fitted)
+    sizes = [len(lev.grams) for lev in fitted.levels]
+    # bytes per n-gram of each order: the full file, then each order above 2 removed in turn
+    full = _nbytes(ngram_file(counts, tables, fitted, **build))
+    cost = [0.0] * (order + 1)
+    upper = full
+    for m in range(order, 1, -1):
+        if m == 2:
+            below = floor
+        else:
+            keep = [None] + [np.ones(sizes[i], bool) if i + 1 < m else np.zeros(sizes[i], bool) for i in range(1, order)]
+            say(f"measuring the bytes of order {m}")
+            below = _nbytes(ngram_file(counts, tables, prune_fitted(fitted, keep), **build))
+        cost[m] = max((upper - below) / max(sizes[m - 1], 1), 1e-9)
+        upper = below
+    values = [np.zeros(0)] + [np.where(np.isfinite(scores[m - 1]), scores[m - 1] / cost[m], np.inf) for m in range(2, order + 1)]
+    # predicted size of keeping the best k: floor + the costs of the kept n-grams, in value order
+    flat_cost = np.concatenate([np.full(sizes[m - 1], cost[m]) for m in range(2, order + 1)])
+    flat_value = np.concatenate(values[1:])
+    by_value = np.argsort(-flat_value, kind="stable")
+    predicted = floor + np.concatenate([[0.0], np.cumsum(flat_cost[by_value])])
+    budget = float(max_bytes)
+    known: dict[int, tuple[int, Chunks | None, Fitted | None]] = {0: (floor, None, None), total: (full, None, None)}
+    lo, hi = 0, total  # lo fits, hi does not
+    k = int(np.searchsorted(predicted, budget, side="right")) - 1
+    best: tuple[int, Chunks, Fitted] | None = None
+    for _ in range(40):
+        k = max(lo + 1, min(hi - 1, k))
+        if k <= lo or k >= hi:
+            break
+        say(f"building a file with {k:,} of {total:,} n-grams")
+        pruned = prune_fitted(fitted, keep_best(values, k))
+        chunks = ngram_file(counts, tables, pruned, **build)
+        size = _nbytes(chunks)
+        known[k] = (size, None, None)
+        if size <= max_bytes:
+            lo, best = k, (k, chunks, pruned)
+            if max_bytes - size < 0.002 * max_bytes:
+                break
+        else:
+            hi = k
+        # secant on the measured sizes either side, corrected by the predicted shape
+        (k0, s0), (k1, s1) = (lo, known[lo][0]), (hi, known[hi][0])
+        guess = k0 + (budget - s0) * (k1 - k0) / max(s1 - s0, 1)
+        k = int(guess) if hi - lo > 2 else lo + 1
+    if best is None:
+        pruned = prune_fitted(fitted, keep_best(values, lo))
+        chunks = ngram_file(counts, tables, pruned, **build)
+        best = (lo, chunks, pruned)
+    k, chunks, pruned = best
+    return pruned, chunks, {"kept": k, "removed": total - k, "bytes": _nbytes(chunks)}

@@ -577,7 +577,9 @@ def build_sections(
     del sky_parts
     skyc = np.concatenate(cum_parts) if cum_parts else np.zeros(0, sky_dtype)
     del cum_parts
-    if tables.history is not None and np.any(row_sums != tables.history):
+    # a history may hold more than its stored pairs: a pruned n-gram model keeps each
+    # context's total (the dropped mass, see nextword.prune) — h-prune's change (was !=)
+    if tables.history is not None and np.any(row_sums > tables.history):
         raise InvalidArgumentError("history counts disagree with the pairs")
 
     dis_ids = [i for i, (k, d) in enumerate(zip(tables.keys, tables.displays)) if k != d]
@@ -766,7 +768,12 @@ def build_ngram_sections(
     o2 = np.lexsort((g2[:, 1], g2[:, 0]))
     left, right, value2 = g2[o2, 0], g2[o2, 1], lev2.value[o2]
     n_hist = n + 3
-    history = np.bincount(left, weights=value2, minlength=n_hist).astype(np.int64) if kn else None
+    history = None
+    if kn:
+        # each context's total as the estimator holds it: the sum of its stored values, or
+        # more once pruned (the dropped mass, see nextword.prune) — h-prune's change
+        history = np.zeros(n_hist, dtype=np.int64)
+        history[remap[lev2.ctx[:, 0]]] = lev2.ctx_total
     new_tables = CountTables(keys, displays, unigram, left, right, value2, dict(tables.stats), history)
     sections = build_sections(new_tables, lam=0.0 if kn else lam2, skyband_k=skyband_k, skyband_min=skyband_min)
     meta = msgpack.unpackb(sections[0][2], raw=False)
@@ -798,7 +805,8 @@ def build_ngram_sections(
         owner = np.cumsum(new_ctx) - 1
         trow = np.searchsorted(ctx_v, np.arange(n_hist + 1), side="left")
         tcts = np.concatenate([first, [len(u)]])
-        ttot = np.bincount(owner, weights=value3, minlength=len(first)).astype(np.int64)
+        # the contexts' totals as the estimator holds them (above the stored sum once pruned) — h-prune's change
+        ttot = lev3.ctx_total[np.repeat(np.arange(len(lev3.ctx)), np.diff(lev3.ctx_start))[o3][first]].astype(np.int64)
         if len(value3) and (int(value3.max()) > _U32_MAX or int(ttot.max()) > _U32_MAX or len(value3) > _U32_MAX):
             raise InvalidArgumentError("too many trigrams (or counts too large) for 32-bit fields")
         u4 = np.dtype("<u4")
