@@ -209,7 +209,7 @@ def _parser() -> _Parser:
     t.add_argument("--field", default="text", help="JSON Lines field holding the message (default %(default)s)")
     t.add_argument("--workers", type=int, default=None, help=f"counting processes (0 = one per core; default: one per core for inputs of {PARALLEL_MIN_BYTES >> 20} MB or more, else 1; same file either way)")
     t.add_argument("--memory-cap", metavar="SIZE", type=_size, help="bound the pair counts in memory, spilling to disk, e.g. 1GB (default: no bound)")
-    t.add_argument("--max-size", metavar="SIZE", type=_size, help="prune pairs until the file fits, e.g. 4MB (default: no budget)")
+    t.add_argument("--max-size", metavar="SIZE", type=_size, help="prune n-grams (and words) until the file fits, e.g. 4MB; any --order and --smoothing (default: no budget)")
     t.add_argument("--rule", choices=("count", "entropy"), default=DEFAULT_RULE, help="pruning rule with --max-size (default %(default)s)")
     t.add_argument("--json", action="store_true", help="print the training report as JSON")
 

@@ -29,6 +29,16 @@ divided by the measured bytes per pair. Words and pairs are taken best first unt
 estimated size reaches the budget; the words taken are kept, then the pairs are pruned
 again on the smaller vocabulary until the measured file fits.
 
+Models of any estimator and order (Kneser-Ney order 2 and 3, Jelinek-Mercer order 3)
+are pruned on their fitted levels instead (:func:`prune_ngrams_to_size`, the comment
+above :func:`ngram_scores`): every n-gram of order ≥ 2 is scored by Stolcke's exact
+relative entropy, a dropped n-gram's value stays in its context's total as *dropped
+mass* that backs off to the lower order (γ grows by exactly the dropped α, so every
+context still sums to 1 and no other stored probability changes), and n-grams of
+different orders compete by score per measured byte of their order, words by the same
+value-per-byte rule as above. ``train --max-size`` uses it for every estimator and
+order (:func:`write_to_size`); a Jelinek-Mercer bigram keeps the pair rule above.
+
 Measured figures: bench/RESULTS.md, "Size budget".
 """
 
@@ -36,6 +46,7 @@ from __future__ import annotations
 
 import copy
 import dataclasses
+import os
 import re
 from typing import TYPE_CHECKING, Callable, Final, Literal, Sequence
 
@@ -45,7 +56,7 @@ from .counts import CountTables
 from .errors import InvalidArgumentError
 from .estimators import Estimator, Fitted, Level
 from .ngrams import NgramCounts, group_starts
-from .store import build_ngram_sections, build_sections, encode_sections, history_counts
+from .store import DEFAULT_SKYBAND_K, DEFAULT_SKYBAND_MIN, atomic_write, build_ngram_sections, build_sections, encode_sections, history_counts
 
 if TYPE_CHECKING:  # prune is imported by model (the train default), not the other way round
     from .model import Model
@@ -63,6 +74,19 @@ __all__ = [
     "prune_to_size",
     "vocabulary_bytes",
     "top_k",
+    "context_distributions",
+    "context_probability",
+    "ngram_scores",
+    "prune_level",
+    "prune_fitted",
+    "unigrams_only",
+    "stored_ngrams",
+    "keep_best",
+    "ngram_file",
+    "drop_ngram_words",
+    "ngram_word_values",
+    "prune_ngrams_to_size",
+    "write_to_size",
 ]
 
 RULES = ("entropy", "count")
@@ -87,7 +111,8 @@ def tables_from_model(model: Model) -> CountTables:
     if model.estimator != "jm" or model.order != 2:
         raise InvalidArgumentError(
             f"{model.path}: pruning reads Jelinek-Mercer bigram files; this one is {model.estimator} order {model.order} "
-            "(its stored values are not plain pair counts)"
+            f"(its stored values are not plain pair counts): train it with a budget instead, "
+            f"nextword train CORPUS --order {model.order} --smoothing {model.estimator} --max-size SIZE"
         )
     a = model._src.arrays
     n = model.n_words
@@ -852,6 +877,7 @@ def prune_ngrams_to_size(
     estimator: Estimator,
     max_bytes: int,
     *,
+    rule: Rule = DEFAULT_RULE,
     vocabulary: bool = True,
     progress: Callable[[str], None] | None = None,
     **build: int,
@@ -875,8 +901,18 @@ def prune_ngrams_to_size(
       estimator is fitted again on the smaller counts and the n-grams are fitted to what
       is left. With ``vocabulary=False`` such a budget is an error instead.
 
+    ``rule`` "count" values each n-gram by its stored value (raw count, or Kneser-Ney's
+    adjusted count) instead of its score, per byte the same way.
     ``progress(label)`` is called before each expensive step.
     """
+    if rule not in RULES:
+        raise InvalidArgumentError(f"unknown pruning rule {rule!r}; expected one of {RULES}")
+
+    def score(f: Fitted, c: NgramCounts) -> list[np.ndarray]:
+        if rule == "count":
+            return [np.zeros(0)] + [lev.value.astype(np.float64) for lev in f.levels[1:]]
+        return ngram_scores(f, c)
+
     def say(label: str) -> None:
         if progress is not None:
             progress(label)
@@ -891,36 +927,40 @@ def prune_ngrams_to_size(
     if _nbytes(chunks) <= max_bytes:
         return fitted, counts, tables, chunks, {"kept": total, "removed": 0, "bytes": _nbytes(chunks),
                                                 "words_kept": words_before, "words_removed": 0}
-    say(f"scoring {total:,} n-grams (entropy rule)")
-    scores = ngram_scores(fitted, counts)
+    say(f"scoring {total:,} n-grams ({rule} rule)")
+    scores = score(fitted, counts)
+    full = _nbytes(chunks)
     floor = _nbytes(ngram_file(counts, tables, unigrams_only(fitted), **build))
-    if floor > max_bytes:
-        if not vocabulary:
-            raise InvalidArgumentError(
-                f"a budget of {max_bytes:,} bytes is below the vocabulary alone ({floor:,} bytes); "
-                "let the vocabulary shrink too (the default; not with --keep-vocabulary / vocabulary=False) or lower max_vocab"
-            )
+    costs = _order_costs(counts, tables, fitted, full, floor, say, build)
+    if not vocabulary and floor > max_bytes:
+        raise InvalidArgumentError(
+            f"a budget of {max_bytes:,} bytes is below the vocabulary alone ({floor:,} bytes); "
+            "let the vocabulary shrink too (the default; not with --keep-vocabulary / vocabulary=False) or lower max_vocab"
+        )
+    if vocabulary:
         wv = ngram_word_values(counts, scores, fitted)
+        keep = _choose_ngram_words(counts, tables, estimator, fitted, scores, wv, costs, floor, max_bytes, build)
         n = tables.n_words
-        keep = np.zeros(n, dtype=bool)
-        keep[np.argsort(-wv, kind="stable")[: max(1, int(n * max_bytes / floor * 0.95))]] = True
-        while True:
+        while not keep.all():
             say(f"dropping words: keeping {int(keep.sum()):,} of {n:,}")
             small_counts, small_tables = drop_ngram_words(counts, tables, keep)
             small_fit = estimator.fit(small_counts)
-            floor = _nbytes(ngram_file(small_counts, small_tables, unigrams_only(small_fit), **build))
-            if floor <= max_bytes:
+            small_floor = _nbytes(ngram_file(small_counts, small_tables, unigrams_only(small_fit), **build))
+            if small_floor <= max_bytes:
+                say(f"scoring {stored_ngrams(small_fit):,} n-grams ({rule} rule)")
+                counts, tables, fitted, floor = small_counts, small_tables, small_fit, small_floor
+                scores = score(fitted, counts)
+                costs = _order_costs(counts, tables, fitted, _nbytes(ngram_file(counts, tables, fitted, **build)),
+                                     floor, say, build)
                 break
             if keep.sum() == 1:
                 raise InvalidArgumentError(
-                    f"a budget of {max_bytes:,} bytes is below the smallest possible model ({floor:,} bytes: one word)"
+                    f"a budget of {max_bytes:,} bytes is below the smallest possible model ({small_floor:,} bytes: one word)"
                 )
+            # the estimate was optimistic: drop the least valuable tenth of the kept words too
             kept = np.flatnonzero(keep)
             keep[kept[np.argsort(wv[kept], kind="stable")[: max(1, len(kept) // 10)]]] = False
-        counts, tables, fitted = small_counts, small_tables, small_fit
-        say(f"scoring {stored_ngrams(fitted):,} n-grams (entropy rule)")
-        scores = ngram_scores(fitted, counts)
-    fitted_out, chunks, info = _fit_ngrams(counts, tables, fitted, scores, max_bytes, floor, say, build)
+    fitted_out, chunks, info = _fit_ngrams(counts, tables, fitted, scores, max_bytes, floor, costs, say, build)
     info["words_kept"] = tables.n_words
     info["words_removed"] = words_before - tables.n_words
     return fitted_out, counts, tables, chunks, info
@@ -930,25 +970,71 @@ def _nbytes(chunks: Chunks) -> int:
     return sum(len(c) for c in chunks)
 
 
-def _fit_ngrams(counts: NgramCounts, tables: CountTables, fitted: Fitted, scores: list[np.ndarray], max_bytes: int,
-                floor: int, say: Callable[[str], None], build: dict[str, int]) -> tuple[Fitted, Chunks, dict[str, float]]:
-    """The most valuable n-grams by score per byte that fit ``max_bytes`` (``floor``: the file with none)."""
+def _order_costs(counts: NgramCounts, tables: CountTables, fitted: Fitted, full: int, floor: int,
+                 say: Callable[[str], None], build: dict[str, int]) -> list[float]:
+    """Bytes per stored n-gram of each order (``out[m]``), measured: the full file, then each order from the top removed in turn."""
     order = fitted.order
-    total = stored_ngrams(fitted)
     sizes = [len(lev.grams) for lev in fitted.levels]
-    # bytes per n-gram of each order: the full file, then each order above 2 removed in turn
-    full = _nbytes(ngram_file(counts, tables, fitted, **build))
     cost = [0.0] * (order + 1)
     upper = full
     for m in range(order, 1, -1):
         if m == 2:
             below = floor
         else:
-            keep = [None] + [np.ones(sizes[i], bool) if i + 1 < m else np.zeros(sizes[i], bool) for i in range(1, order)]
+            keep: list[np.ndarray | None] = [None] + [
+                np.ones(sizes[i], bool) if i + 1 < m else np.zeros(sizes[i], bool) for i in range(1, order)]
             say(f"measuring the bytes of order {m}")
             below = _nbytes(ngram_file(counts, tables, prune_fitted(fitted, keep), **build))
         cost[m] = max((upper - below) / max(sizes[m - 1], 1), 1e-9)
         upper = below
+    return cost
+
+
+def _choose_ngram_words(counts: NgramCounts, tables: CountTables, estimator: Estimator, fitted: Fitted, scores: list[np.ndarray],
+                        wv: np.ndarray, cost: list[float], floor: int, max_bytes: int, build: dict[str, int]) -> np.ndarray:
+    """Which words to keep, by value per byte against the n-grams (as :func:`choose_vocabulary` for pairs).
+
+    A word's value (:func:`ngram_word_values`) over the bytes one word costs (the
+    vocabulary-only file against the one-word file), an n-gram's score over its order's
+    cost; both taken best first until the estimated size reaches the budget.
+    """
+    n = tables.n_words
+    one = np.zeros(n, dtype=bool)
+    one[int(np.argmax(wv))] = True
+    c1, t1 = drop_ngram_words(counts, tables, one)
+    fixed = _nbytes(ngram_file(c1, t1, unigrams_only(estimator.fit(c1)), **build))
+    per_word = max((floor - fixed) / max(n - 1, 1), 1e-9)
+    values = np.concatenate([np.where(np.isfinite(scores[m - 1]), scores[m - 1] / cost[m], np.inf)
+                             for m in range(2, fitted.order + 1)])
+    costs = np.concatenate([np.full(len(scores[m - 1]), cost[m]) for m in range(2, fitted.order + 1)])
+    ascending = np.argsort(values, kind="stable")
+    gram_value = values[ascending]
+    gram_cost = costs[ascending][::-1]  # the n-grams' costs, best first
+    word_value = wv / per_word
+    by_value = np.argsort(-word_value, kind="stable")
+    # every item best first: a word's place is its rank among the words plus the n-grams worth strictly more
+    ahead = len(gram_value) - np.searchsorted(gram_value, word_value[by_value], side="right")
+    place = np.arange(n) + ahead
+    cost_all = np.empty(n + len(gram_value))
+    is_word = np.zeros(len(cost_all), dtype=bool)
+    is_word[place] = True
+    cost_all[place] = per_word
+    cost_all[~is_word] = gram_cost
+    fits = fixed + np.cumsum(cost_all) - per_word <= max_bytes  # the first word is in ``fixed``
+    cut = len(fits) if fits.all() else int(np.argmin(fits))
+    keep = np.zeros(n, dtype=bool)
+    keep[by_value[place < cut]] = True
+    keep[int(np.argmax(wv))] = True
+    return keep
+
+
+def _fit_ngrams(counts: NgramCounts, tables: CountTables, fitted: Fitted, scores: list[np.ndarray], max_bytes: int,
+                floor: int, cost: list[float], say: Callable[[str], None], build: dict[str, int]) -> tuple[Fitted, Chunks, dict[str, float]]:
+    """The most valuable n-grams by score per byte that fit ``max_bytes`` (``floor``: the file with none)."""
+    order = fitted.order
+    total = stored_ngrams(fitted)
+    sizes = [len(lev.grams) for lev in fitted.levels]
+    full = _nbytes(ngram_file(counts, tables, fitted, **build))
     values = [np.zeros(0)] + [np.where(np.isfinite(scores[m - 1]), scores[m - 1] / cost[m], np.inf) for m in range(2, order + 1)]
     # predicted size of keeping the best k: floor + the costs of the kept n-grams, in value order
     flat_cost = np.concatenate([np.full(sizes[m - 1], cost[m]) for m in range(2, order + 1)])
@@ -985,3 +1071,34 @@ def _fit_ngrams(counts: NgramCounts, tables: CountTables, fitted: Fitted, scores
         best = (lo, chunks, pruned)
     k, chunks, pruned = best
     return pruned, chunks, {"kept": k, "removed": total - k, "bytes": _nbytes(chunks)}
+
+
+def write_to_size(
+    counts: NgramCounts,
+    tables: CountTables,
+    estimator: Estimator,
+    max_bytes: int,
+    path: str | os.PathLike[str],
+    *,
+    rule: Rule = DEFAULT_RULE,
+    progress: Callable[[str], None] | None = None,
+    skyband_k: int = DEFAULT_SKYBAND_K,
+    skyband_min: int = DEFAULT_SKYBAND_MIN,
+) -> tuple[CountTables, int]:
+    """Prune any n-gram model to ``max_bytes`` (:func:`prune_ngrams_to_size`) and write it atomically to ``path``.
+
+    The build step of ``train --max-size`` for every estimator and order; a
+    Jelinek-Mercer bigram goes through :func:`prune_to_size` (its file stores the counts
+    themselves, pruned pairs renormalised over c(v)). Returns the tables the file was
+    built from (fewer words when words were dropped) and the number of stored bigrams.
+    """
+    if estimator.name == "jm" and counts.order == 2:
+        lam = float(estimator.lams[0])  # type: ignore[attr-defined]
+        small, chunks, _ = prune_to_size(tables, max_bytes, rule=rule, lam=lam, progress=progress,
+                                         skyband_k=skyband_k, skyband_min=skyband_min)
+        atomic_write(path, chunks)
+        return small, len(small.pair_count)
+    fitted, _, small_tables, chunks, _ = prune_ngrams_to_size(
+        counts, tables, estimator, max_bytes, rule=rule, progress=progress, skyband_k=skyband_k, skyband_min=skyband_min)
+    atomic_write(path, chunks)
+    return small_tables, len(fitted.levels[1].grams)

@@ -205,3 +205,138 @@ def test_a_tiny_jm_bigram_by_hand() -> None:
     assert fitted._prob(0, (0,)) == pytest.approx(5 / 12)
     assert pruned._prob(0, (0,)) == pytest.approx(1 / 3)
     assert pruned._prob(1, (0,)) == pytest.approx(0.5 / 3 + 2 / 3 * 1 / 6)
+
+
+# -- the size budget ----------------------------------------------------------------------------
+
+def _pydoc_lines(n_topics: int = 40) -> list[str]:
+    from pydoc_data.topics import topics  # real English text shipped with Python
+
+    return [ln for k in sorted(topics)[:n_topics] for ln in topics[k].splitlines() if ln.strip()]
+
+
+@pytest.fixture(scope="module")
+def real_counts() -> tuple[object, NgramCounts]:
+    from nextword.counts import CountBuilder
+
+    b = CountBuilder(order=3)
+    b.add_texts(_pydoc_lines())
+    return b.ngram_counts(min_count=1)
+
+
+def _context_sums(fitted: Fitted) -> list[float]:
+    from nextword.prune import context_distributions
+
+    dist = context_distributions(fitted)
+    ctxs = {tuple(r) for m in range(2, fitted.order + 1) for r in fitted.levels[m - 1].ctx.tolist()}
+    return [math.fsum(dist(h).tolist()) for h in sorted(ctxs)[:400]]
+
+
+@pytest.mark.parametrize("smoothing,order", [("kn", 2), ("kn", 3), ("jm", 3)])
+@pytest.mark.parametrize("share", [0.6, 0.3])
+def test_a_budget_is_met_by_the_most_valuable_ngrams_and_every_context_sums_to_one(real_counts, smoothing, order, share) -> None:
+    from nextword.prune import ngram_file, prune_ngrams_to_size
+
+    tables, counts3 = real_counts
+    counts = counts3 if order == 3 else NgramCounts(counts3.n_words, counts3.grams[:2], counts3.counts[:2])
+    est = KneserNey() if smoothing == "kn" else JelinekMercer((0.9, 0.8))
+    from nextword.prune import unigrams_only
+
+    fitted = est.fit(counts)
+    full = sum(len(c) for c in ngram_file(counts, tables, fitted))
+    floor = sum(len(c) for c in ngram_file(counts, tables, unigrams_only(fitted)))
+    budget = int(floor + share * (full - floor))  # between the vocabulary alone and the whole model
+    pruned, c2, t2, chunks, info = prune_ngrams_to_size(counts, tables, est, budget, vocabulary=False)
+    assert info["bytes"] == sum(len(c) for c in chunks) <= budget
+    assert info["kept"] == stored_ngrams(pruned) and info["removed"] > 0
+    # near the budget: the search stops within 2 % of it (linear steps on measured sizes)
+    assert info["bytes"] > 0.98 * budget
+    # the file is exactly the pruned model's own file
+    assert b"".join(bytes(c) for c in chunks) == b"".join(bytes(c) for c in ngram_file(c2, t2, pruned))
+    # probabilities sum to 1 in every context (the dropped mass backs off)
+    assert all(s == pytest.approx(1.0, abs=1e-9) for s in _context_sums(pruned))
+    # each kept n-gram is worth at least as much per byte as each dropped one of the same order
+    scores = ngram_scores(fitted, counts)
+    for m in range(2, order + 1):
+        before = {tuple(r) for r in fitted.levels[m - 1].grams.tolist()}
+        kept = {tuple(r) for r in pruned.levels[m - 1].grams.tolist()}
+        assert kept <= before
+        value = dict(zip(map(tuple, fitted.levels[m - 1].grams.tolist()), scores[m - 1].tolist()))
+        if kept and before - kept:
+            assert min(value[g] for g in kept) >= max(value[g] for g in before - kept)
+
+
+@pytest.mark.parametrize("smoothing", ["kn", "jm"])
+def test_a_budget_below_the_vocabulary_drops_words_or_is_refused(real_counts, smoothing) -> None:
+    from nextword.prune import ngram_file, prune_ngrams_to_size, unigrams_only
+
+    tables, counts = real_counts
+    est = KneserNey() if smoothing == "kn" else JelinekMercer((0.9, 0.8))
+    fitted = est.fit(counts)
+    floor = sum(len(c) for c in ngram_file(counts, tables, unigrams_only(fitted)))
+    with pytest.raises(InvalidArgumentError, match="below the vocabulary alone"):
+        prune_ngrams_to_size(counts, tables, est, floor - 1, vocabulary=False)
+    pruned, c2, t2, chunks, info = prune_ngrams_to_size(counts, tables, est, int(floor * 0.8))
+    assert info["bytes"] <= floor * 0.8 and info["words_removed"] > 0 and t2.n_words == c2.n_words < tables.n_words
+    assert all(s == pytest.approx(1.0, abs=1e-9) for s in _context_sums(pruned))
+    with pytest.raises(InvalidArgumentError, match="smallest possible model"):
+        prune_ngrams_to_size(counts, tables, est, 2000)
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(corpora, st.data())
+def test_dropping_words_equals_counting_the_text_with_them_unknown(corpus, data) -> None:
+    # the reference counter NgramCounts.from_sentences on the text with the dropped words
+    # replaced by <unk> (ids renumbered in order) must give exactly the merged counts
+    from nextword.counts import CountTables
+    from nextword.prune import drop_ngram_words
+
+    n, sents = corpus
+    sents = [[n + 1 if t == n else t for t in s] for s in sents]
+    counts = NgramCounts.from_sentences(sents, n, 3)
+    keep = np.asarray(data.draw(st.lists(st.booleans(), min_size=n, max_size=n)), dtype=bool)
+    if not keep.any():
+        keep[0] = True
+    uni = np.zeros(n + 2, np.int64)
+    uni[counts.grams[0][:, 0]] = counts.counts[0]
+    tables = CountTables([f"w{i}" for i in range(n)], [f"w{i}" for i in range(n)], uni,
+                         counts.grams[1][:, 0], counts.grams[1][:, 1], counts.counts[1], {})
+    got, small = drop_ngram_words(counts, tables, keep)
+    m = int(keep.sum())
+    new_id = {old: i for i, old in enumerate(np.flatnonzero(keep).tolist())}
+    want = NgramCounts.from_sentences([[new_id.get(t, m + 1) for t in s] for s in sents], m, 3)
+    assert got.n_words == m and small.n_words == m
+    for a, b, c, d in zip(got.grams, want.grams, got.counts, want.counts):
+        assert np.array_equal(a, b) and np.array_equal(c, d)
+
+
+def test_train_max_size_prunes_every_estimator_and_order(tmp_path) -> None:
+    import nextword
+
+    lines = _pydoc_lines(30)
+    corpus = tmp_path / "c.txt"
+    corpus.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    for smoothing, order in (("kn", 3), ("jm", 3), ("kn", 2)):
+        full = tmp_path / f"{smoothing}{order}.nwm"
+        nextword.train(corpus, full, order=order, smoothing=smoothing, min_count=1)
+        budget = full.stat().st_size // 2
+        small = tmp_path / f"{smoothing}{order}-small.nwm"
+        report = nextword.train(corpus, small, order=order, smoothing=smoothing, min_count=1, max_bytes=budget)
+        assert report.file_bytes == small.stat().st_size <= budget
+        assert 0 < report.n_bigrams
+
+
+
+def test_cli_train_max_size_for_a_kneser_ney_trigram(tmp_path) -> None:
+    import json
+    import subprocess
+    import sys
+
+    corpus = tmp_path / "c.txt"
+    corpus.write_text("\n".join(_pydoc_lines(30)) + "\n", encoding="utf-8")
+    out = tmp_path / "k.nwm"
+    r = subprocess.run([sys.executable, "-m", "nextword", "train", str(corpus), "-o", str(out), "--order", "3",
+                        "--smoothing", "kn", "--min-count", "1", "--max-size", "150KB", "--json"],
+                       capture_output=True, text=True)
+    assert r.returncode == 0, r.stderr
+    assert out.stat().st_size <= 150_000 and json.loads(r.stdout)["file_bytes"] == out.stat().st_size
