@@ -813,10 +813,19 @@ def _cmd_prune(args: argparse.Namespace) -> int:
     bar = Progress("prune")
     try:
         bar.stage(f"reading the counts of {args.model}")
-        _, chunks, info = prune_to_size(
-            tables_from_model(model), parse_size(args.max_size), rule=args.rule, lam=model.stored_lam,
-            vocabulary=not args.keep_vocabulary, skyband_k=model._sky_k, skyband_min=model._sky_min, progress=lambda label: bar.stage(label),
-        )
+        if model.estimator == "jm" and model.order == 2:
+            _, chunks, info = prune_to_size(
+                tables_from_model(model), parse_size(args.max_size), rule=args.rule, lam=model.stored_lam,
+                vocabulary=not args.keep_vocabulary, skyband_k=model._sky_k, skyband_min=model._sky_min, progress=lambda label: bar.stage(label),
+            )
+        else:  # any other estimator or order: its stored levels, pruned by relative entropy; its words stay
+            from .prune import Prefitted, fitted_from_model, prune_ngrams_to_size
+
+            fitted, counts, tables, mass = fitted_from_model(model)
+            _, _, _, chunks, info = prune_ngrams_to_size(
+                counts, tables, Prefitted(fitted), parse_size(args.max_size), rule=args.rule, vocabulary=False,
+                context_mass=mass, skyband_k=model._sky_k, skyband_min=model._sky_min, progress=lambda label: bar.stage(label),
+            )
         bar.stage(f"writing {args.output}")
         atomic_write(args.output, chunks)
     finally:
@@ -826,7 +835,8 @@ def _cmd_prune(args: argparse.Namespace) -> int:
         print(json.dumps(out))
     else:
         print(
-            f"wrote {args.output}: {info['bytes']:,} bytes (was {model.file_size:,}); kept {info['kept']:,} pairs, "
+            f"wrote {args.output}: {info['bytes']:,} bytes (was {model.file_size:,}); kept {info['kept']:,} "
+            f"{'pairs' if model.estimator == 'jm' and model.order == 2 else 'n-grams'}, "
             f"removed {info['removed']:,}; kept {info['words_kept']:,} words, removed {info['words_removed']:,} ({args.rule} rule)"
         )
     return 0

@@ -87,6 +87,8 @@ __all__ = [
     "ngram_word_values",
     "prune_ngrams_to_size",
     "write_to_size",
+    "fitted_from_model",
+    "Prefitted",
 ]
 
 RULES = ("entropy", "count")
@@ -701,7 +703,7 @@ def context_probability(lev: Level, counts: NgramCounts, m: int) -> np.ndarray:
     return np.where(raw_ctx[pos] == q, raw_tot[pos], 0.0) / n_tokens
 
 
-def ngram_scores(fitted: Fitted, counts: NgramCounts) -> list[np.ndarray]:
+def ngram_scores(fitted: Fitted, counts: NgramCounts, *, context_mass: Sequence[np.ndarray] | None = None) -> list[np.ndarray]:
     """Stolcke's relative-entropy score of every stored n-gram of order ≥ 2; ``out[m-1]`` for order m.
 
     The score of (h, w_j) is P(h) · D(P(·|h) ‖ P′(·|h)) with P′ this model without that
@@ -718,7 +720,8 @@ def ngram_scores(fitted: Fitted, counts: NgramCounts) -> list[np.ndarray]:
     scores). Each n-gram is scored alone, on its own context's distribution (the change
     it makes to higher-order contexts that interpolate with it is not counted, as in
     Stolcke's criterion). ``out[0]`` (the unigram level) is empty: words are valued by
-    :func:`ngram_word_values`.
+    :func:`ngram_word_values`. ``context_mass[m-1]``, if given, is P(h) of each context of
+    order m instead (see :func:`fitted_from_model`).
     """
     probs = _Probs(fitted)
     out: list[np.ndarray] = [np.zeros(0)]
@@ -748,7 +751,8 @@ def ngram_scores(fitted: Fitted, counts: NgramCounts) -> list[np.ndarray]:
             unseen = gj * np.log1p(a / gj) * uncovered[owner]
             kl = own - (f[pair_combo] - own_f) - unseen
         kl = np.where(a == 0.0, 0.0, np.where(np.isnan(kl), np.inf, kl))
-        out.append(context_probability(lev, counts, m)[owner] * np.maximum(kl, 0.0))
+        ph = context_probability(lev, counts, m) if context_mass is None else np.asarray(context_mass[m - 1], dtype=np.float64)
+        out.append(ph[owner] * np.maximum(kl, 0.0))
     return out
 
 
@@ -799,7 +803,7 @@ def keep_best(values: Sequence[np.ndarray], k: int) -> list[np.ndarray | None]:
     return out
 
 
-class _Prefitted(Estimator):
+class Prefitted(Estimator):
     """An estimator whose fit returns a model fitted (and pruned) already: how a pruned model reaches :func:`store.build`."""
 
     def __init__(self, fitted: Fitted) -> None:
@@ -812,7 +816,7 @@ class _Prefitted(Estimator):
 
 def ngram_file(counts: NgramCounts, tables: CountTables, fitted: Fitted, **build: int) -> Chunks:
     """The model file of a fitted (possibly pruned) model, as chunks (written by :func:`store.atomic_write`)."""
-    sections, minor = build_ngram_sections(counts, tables, _Prefitted(fitted), **build)
+    sections, minor = build_ngram_sections(counts, tables, Prefitted(fitted), **build)
     return encode_sections(sections, minor=minor)
 
 
@@ -880,6 +884,7 @@ def prune_ngrams_to_size(
     rule: Rule = DEFAULT_RULE,
     vocabulary: bool = True,
     progress: Callable[[str], None] | None = None,
+    context_mass: Sequence[np.ndarray] | None = None,
     **build: int,
 ) -> tuple[Fitted, NgramCounts, CountTables, Chunks, dict[str, float]]:
     """Keep the most valuable n-grams (and words) of any estimator and order that fit ``max_bytes``.
@@ -903,7 +908,8 @@ def prune_ngrams_to_size(
 
     ``rule`` "count" values each n-gram by its stored value (raw count, or Kneser-Ney's
     adjusted count) instead of its score, per byte the same way.
-    ``progress(label)`` is called before each expensive step.
+    ``progress(label)`` is called before each expensive step. ``context_mass`` is passed
+    to :func:`ngram_scores` (pruning a model read from a file; its words are kept).
     """
     if rule not in RULES:
         raise InvalidArgumentError(f"unknown pruning rule {rule!r}; expected one of {RULES}")
@@ -911,7 +917,7 @@ def prune_ngrams_to_size(
     def score(f: Fitted, c: NgramCounts) -> list[np.ndarray]:
         if rule == "count":
             return [np.zeros(0)] + [lev.value.astype(np.float64) for lev in f.levels[1:]]
-        return ngram_scores(f, c)
+        return ngram_scores(f, c, context_mass=context_mass)
 
     def say(label: str) -> None:
         if progress is not None:
@@ -919,6 +925,8 @@ def prune_ngrams_to_size(
 
     if estimator.name == "jm" and counts.order == 2:
         raise InvalidArgumentError("a Jelinek-Mercer bigram model is pruned by prune_to_size (its file stores the counts themselves)")
+    if context_mass is not None and vocabulary:
+        raise InvalidArgumentError("a model read from a file keeps its words (vocabulary=False): dropping words needs its raw counts")
     words_before = tables.n_words
     say("fitting")
     fitted = estimator.fit(counts)
@@ -933,10 +941,9 @@ def prune_ngrams_to_size(
     floor = _nbytes(ngram_file(counts, tables, unigrams_only(fitted), **build))
     costs = _order_costs(counts, tables, fitted, full, floor, say, build)
     if not vocabulary and floor > max_bytes:
-        raise InvalidArgumentError(
-            f"a budget of {max_bytes:,} bytes is below the vocabulary alone ({floor:,} bytes); "
-            "let the vocabulary shrink too (the default; not with --keep-vocabulary / vocabulary=False) or lower max_vocab"
-        )
+        how = ("a model read from a file keeps its words: train it with --max-size to let words go" if context_mass is not None
+               else "let the vocabulary shrink too (the default; not with --keep-vocabulary / vocabulary=False) or lower max_vocab")
+        raise InvalidArgumentError(f"a budget of {max_bytes:,} bytes is below the vocabulary alone ({floor:,} bytes); {how}")
     if vocabulary:
         wv = ngram_word_values(counts, scores, fitted)
         keep = _choose_ngram_words(counts, tables, estimator, fitted, scores, wv, costs, floor, max_bytes, build)
@@ -1102,3 +1109,86 @@ def write_to_size(
         counts, tables, estimator, max_bytes, rule=rule, progress=progress, skyband_k=skyband_k, skyband_min=skyband_min)
     atomic_write(path, chunks)
     return small_tables, len(fitted.levels[1].grams)
+
+
+def fitted_from_model(model: Model) -> tuple[Fitted, NgramCounts, CountTables, list[np.ndarray]]:
+    """The fitted levels a Kneser-Ney or order-3 model file stores, to prune the file itself.
+
+    Returns (fitted model, its levels as counts, tables with the vocabulary, P(h) of every
+    context per order for :func:`ngram_scores`). Stored values are what the estimator
+    stores (Kneser-Ney's adjusted counts), so nothing is fitted again; each context's
+    total is the file's (HIST, TTOT, or c(v) from the unigram counts for Jelinek-Mercer),
+    dropped mass included when the file was pruned before. P(h) comes from raw counts:
+    the highest order's stored values are raw counts, so P(u v) = TTOT/N (order 3) and
+    P(v) = c(v •)/N with c(v •) the bigram row total (order 2, and Jelinek-Mercer, whose
+    every value is raw); for a Kneser-Ney trigram file the bigram contexts' raw totals are
+    the sums of the trigram totals ending in v (every token after v has a token before v,
+    or v is the sentence start, whose row is raw) — exact for a file never pruned, a lower
+    bound where whole trigram contexts were dropped.
+    Words cannot be dropped this way (that needs the raw counts to fit again).
+    """
+    from .estimators import FittedJelinekMercer, FittedKneserNey
+    from .reference_kn import Discounts
+
+    a = model._src.arrays
+    n = model.n_words
+    n_hist = n + 3
+    bos = n + 2
+    unig = np.asarray(a["UNIG"], dtype=np.int64)
+    seen = np.flatnonzero(unig)
+    rows = np.asarray(a["ROWS"], dtype=np.int64)
+    alph = np.asarray(a["ALPH"], dtype=np.int64)
+    left = np.repeat(np.arange(n_hist), np.diff(rows))
+    right = alph[np.asarray(a["SUCC"], dtype=np.int64)]
+    value2 = model._counts(np.arange(int(rows[-1])))
+    o2 = np.lexsort((right, left))
+    g2 = np.column_stack((left[o2], right[o2]))
+    v2 = value2[o2]
+    grams = [seen[:, None], g2]
+    values = [unig[seen], v2]
+    kn = model.estimator == "kn"
+    hist = np.asarray(a["HIST"], dtype=np.int64) if kn else history_counts(unig, n)
+    if model.order == 3:
+        trow = np.asarray(a["TROW"], dtype=np.int64)
+        tcts = np.asarray(a["TCTS"], dtype=np.int64)
+        ctx_v = np.repeat(np.arange(n_hist), np.diff(trow))
+        ctx_u = np.asarray(a["TCTU"], dtype=np.int64)
+        owner = np.repeat(np.arange(len(ctx_u)), np.diff(tcts))
+        g3 = np.column_stack((ctx_u[owner], ctx_v[owner], alph[np.asarray(a["TSUC"], dtype=np.int64)]))
+        o3 = np.lexsort((g3[:, 2], g3[:, 1], g3[:, 0]))
+        grams.append(g3[o3])
+        values.append(np.asarray(a["TVAL"], dtype=np.int64)[o3])
+        ttot = np.asarray(a["TTOT"], dtype=np.int64)
+    counts = NgramCounts(n, tuple(grams), tuple(values))
+    levels = [Level.of(g, v) for g, v in zip(grams, values)]
+    levels[1] = dataclasses.replace(levels[1], ctx_total=hist[levels[1].ctx[:, 0]])
+    n_tokens = float(hist.sum()) if kn or model.order == 2 else float(unig.sum())
+    mass = [np.zeros(0), hist[levels[1].ctx[:, 0]] / float(unig.sum() if not kn else hist.sum())]
+    if model.order == 3:
+        l3 = levels[2]
+        ctx_key = l3.ctx[:, 0] * n_hist + l3.ctx[:, 1]
+        file_key = ctx_u * n_hist + ctx_v
+        order = np.argsort(file_key)
+        levels[2] = dataclasses.replace(l3, ctx_total=ttot[order][np.searchsorted(file_key[order], ctx_key)])
+        if kn:
+            raw = np.bincount(ctx_v, weights=ttot, minlength=n_hist)
+            raw[bos] = hist[bos]
+            n_tokens = float(raw.sum())
+            mass[1] = raw[levels[1].ctx[:, 0]] / n_tokens
+        mass.append(levels[2].ctx_total / n_tokens)
+    fitted: Fitted
+    if kn:
+        fitted = FittedKneserNey(counts, levels, [Discounts(*d) for d in model.discounts], {})
+    else:
+        lam3 = model.stored_lam3 if model.stored_lam3 is not None else model.stored_lam
+        fitted = FittedJelinekMercer(counts, levels, [1.0, model.stored_lam, lam3][: model.order])
+    tables = CountTables(
+        keys=[model._key(i) for i in range(n)],
+        displays=[model.display(i) for i in range(n)],
+        unigram=unig,
+        pair_left=g2[:, 0],
+        pair_right=g2[:, 1],
+        pair_count=v2,
+        stats=dict(model.stats),
+    )
+    return fitted, counts, tables, mass

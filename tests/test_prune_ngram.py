@@ -340,3 +340,61 @@ def test_cli_train_max_size_for_a_kneser_ney_trigram(tmp_path) -> None:
                        capture_output=True, text=True)
     assert r.returncode == 0, r.stderr
     assert out.stat().st_size <= 150_000 and json.loads(r.stdout)["file_bytes"] == out.stat().st_size
+
+
+@pytest.mark.parametrize("smoothing,order", [("kn", 2), ("kn", 3), ("jm", 3)])
+def test_a_model_file_gives_back_the_fitted_levels_and_the_same_scores(tmp_path, real_counts, smoothing, order) -> None:
+    # the levels read from the file equal the estimator's fit of the counts (ids matched by key),
+    # P(h) equals the raw counts' context probability, so the scores are the same
+    import nextword
+    from nextword.prune import context_probability, fitted_from_model
+
+    tables, counts3 = real_counts
+    counts = counts3 if order == 3 else NgramCounts(counts3.n_words, counts3.grams[:2], counts3.counts[:2])
+    est = KneserNey() if smoothing == "kn" else JelinekMercer((0.9, 0.8))
+    path = tmp_path / "m.nwm"
+    from nextword.store import build
+
+    build(counts, tables, est, path)
+    ref = est.fit(counts)
+    got, gcounts, gtables, mass = fitted_from_model(nextword.load(path))
+    n = tables.n_words
+    to_file = np.arange(n + 3)
+    index = {k: i for i, k in enumerate(gtables.keys)}
+    to_file[:n] = [index[k] for k in tables.keys]
+    ref_scores = ngram_scores(ref, counts)
+    got_scores = ngram_scores(got, gcounts, context_mass=mass)
+    for m in range(1, order + 1):
+        rl, gl = ref.levels[m - 1], got.levels[m - 1]
+        mapped = {tuple(to_file[r].tolist()): (v, i) for i, (r, v) in enumerate(zip(rl.grams, rl.value.tolist()))}
+        have = {tuple(r): (v, i) for i, (r, v) in enumerate(zip(gl.grams.tolist(), gl.value.tolist()))}
+        assert {g: v for g, (v, _) in mapped.items()} == {g: v for g, (v, _) in have.items()}
+        rtot = {tuple(to_file[c].tolist()): t for c, t in zip(rl.ctx, rl.ctx_total.tolist())}
+        assert rtot == {tuple(c): t for c, t in zip(gl.ctx.tolist(), gl.ctx_total.tolist())}
+        if m >= 2:
+            rmass = {tuple(to_file[c].tolist()): p for c, p in zip(rl.ctx, context_probability(rl, counts, m).tolist())}
+            for c, p in zip(gl.ctx.tolist(), mass[m - 1].tolist()):
+                assert p == pytest.approx(rmass[tuple(c)], rel=1e-12)
+            for g, (_, i) in have.items():
+                assert got_scores[m - 1][i] == pytest.approx(ref_scores[m - 1][mapped[g][1]], rel=1e-9, abs=1e-15)
+
+
+def test_cli_prune_of_a_kneser_ney_trigram_file(tmp_path) -> None:
+    import json
+    import subprocess
+    import sys
+
+    import nextword
+
+    full = tmp_path / "k.nwm"
+    nextword.train_texts(_pydoc_lines(30), full, order=3, smoothing="kn", min_count=1)
+    out = tmp_path / "p.nwm"
+    budget = full.stat().st_size // 2
+    r = subprocess.run([sys.executable, "-m", "nextword", "prune", str(full), "-o", str(out), "--max-size", str(budget), "--json"],
+                       capture_output=True, text=True)
+    assert r.returncode == 0, r.stderr
+    info = json.loads(r.stdout)
+    assert out.stat().st_size == info["bytes"] <= budget and info["removed"] > 0 and info["words_removed"] == 0
+    r = subprocess.run([sys.executable, "-m", "nextword", "prune", str(full), "-o", str(tmp_path / "q.nwm"), "--max-size", "20KB"],
+                       capture_output=True, text=True)
+    assert r.returncode == 2 and r.stderr.count("\n") == 1 and "keeps its words" in r.stderr, r.stderr
