@@ -1077,6 +1077,8 @@ def _fit_ngrams(counts: NgramCounts, tables: CountTables, fitted: Fitted, scores
         chunks = ngram_file(counts, tables, pruned, **build)
         best = (lo, chunks, pruned)
     k, chunks, pruned = best
+    if _nbytes(chunks) > max_bytes:  # only when even the vocabulary alone is over the budget
+        raise InvalidArgumentError(f"could not fit {max_bytes:,} bytes: the vocabulary alone takes {floor:,}")
     return pruned, chunks, {"kept": k, "removed": total - k, "bytes": _nbytes(chunks)}
 
 
