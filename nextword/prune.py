@@ -957,8 +957,8 @@ def prune_ngrams_to_size(
                 say(f"scoring {stored_ngrams(small_fit):,} n-grams ({rule} rule)")
                 counts, tables, fitted, floor = small_counts, small_tables, small_fit, small_floor
                 scores = score(fitted, counts)
-                costs = _order_costs(counts, tables, fitted, _nbytes(ngram_file(counts, tables, fitted, **build)),
-                                     floor, say, build)
+                full = _nbytes(ngram_file(counts, tables, fitted, **build))
+                costs = _order_costs(counts, tables, fitted, full, floor, say, build)
                 break
             if keep.sum() == 1:
                 raise InvalidArgumentError(
@@ -967,7 +967,7 @@ def prune_ngrams_to_size(
             # the estimate was optimistic: drop the least valuable tenth of the kept words too
             kept = np.flatnonzero(keep)
             keep[kept[np.argsort(wv[kept], kind="stable")[: max(1, len(kept) // 10)]]] = False
-    fitted_out, chunks, info = _fit_ngrams(counts, tables, fitted, scores, max_bytes, floor, costs, say, build)
+    fitted_out, chunks, info = _fit_ngrams(counts, tables, fitted, scores, max_bytes, floor, full, costs, say, build)
     info["words_kept"] = tables.n_words
     info["words_removed"] = words_before - tables.n_words
     return fitted_out, counts, tables, chunks, info
@@ -1036,12 +1036,15 @@ def _choose_ngram_words(counts: NgramCounts, tables: CountTables, estimator: Est
 
 
 def _fit_ngrams(counts: NgramCounts, tables: CountTables, fitted: Fitted, scores: list[np.ndarray], max_bytes: int,
-                floor: int, cost: list[float], say: Callable[[str], None], build: dict[str, int]) -> tuple[Fitted, Chunks, dict[str, float]]:
-    """The most valuable n-grams by score per byte that fit ``max_bytes`` (``floor``: the file with none)."""
+                floor: int, full: int, cost: list[float], say: Callable[[str], None],
+                build: dict[str, int]) -> tuple[Fitted, Chunks, dict[str, float]]:
+    """The most valuable n-grams by score per byte that fit ``max_bytes`` (``floor``/``full``: the file with none/all)."""
     order = fitted.order
     total = stored_ngrams(fitted)
+    if full <= max_bytes:  # after dropping words every n-gram may fit
+        chunks = ngram_file(counts, tables, fitted, **build)
+        return fitted, chunks, {"kept": total, "removed": 0, "bytes": _nbytes(chunks)}
     sizes = [len(lev.grams) for lev in fitted.levels]
-    full = _nbytes(ngram_file(counts, tables, fitted, **build))
     values = [np.zeros(0)] + [np.where(np.isfinite(scores[m - 1]), scores[m - 1] / cost[m], np.inf) for m in range(2, order + 1)]
     # predicted size of keeping the best k: floor + the costs of the kept n-grams, in value order
     flat_cost = np.concatenate([np.full(sizes[m - 1], cost[m]) for m in range(2, order + 1)])
@@ -1049,7 +1052,7 @@ def _fit_ngrams(counts: NgramCounts, tables: CountTables, fitted: Fitted, scores
     by_value = np.argsort(-flat_value, kind="stable")
     predicted = floor + np.concatenate([[0.0], np.cumsum(flat_cost[by_value])])
     budget = float(max_bytes)
-    known: dict[int, tuple[int, Chunks | None, Fitted | None]] = {0: (floor, None, None), total: (full, None, None)}
+    known: dict[int, int] = {0: floor, total: full}  # measured file sizes by kept count
     lo, hi = 0, total  # lo fits, hi does not
     k = int(np.searchsorted(predicted, budget, side="right")) - 1
     best: tuple[int, Chunks, Fitted] | None = None
@@ -1061,7 +1064,7 @@ def _fit_ngrams(counts: NgramCounts, tables: CountTables, fitted: Fitted, scores
         pruned = prune_fitted(fitted, keep_best(values, k))
         chunks = ngram_file(counts, tables, pruned, **build)
         size = _nbytes(chunks)
-        known[k] = (size, None, None)
+        known[k] = size
         if size <= max_bytes:
             lo, best = k, (k, chunks, pruned)
             if max_bytes - size < 0.002 * max_bytes:
@@ -1069,7 +1072,7 @@ def _fit_ngrams(counts: NgramCounts, tables: CountTables, fitted: Fitted, scores
         else:
             hi = k
         # secant on the measured sizes either side, corrected by the predicted shape
-        (k0, s0), (k1, s1) = (lo, known[lo][0]), (hi, known[hi][0])
+        (k0, s0), (k1, s1) = (lo, known[lo]), (hi, known[hi])
         guess = k0 + (budget - s0) * (k1 - k0) / max(s1 - s0, 1)
         k = int(guess) if hi - lo > 2 else lo + 1
     if best is None:
