@@ -33,7 +33,7 @@ sys.path.insert(0, str(HERE))
 import nextword  # noqa: E402
 from nextword.baselines import DictBigram  # noqa: E402
 from nextword.counts import PARALLEL_MIN_BYTES  # noqa: E402
-from nextword.text import _TOKEN_RE, normalize  # noqa: E402
+from nextword.text import TOKEN_RE, normalize  # noqa: E402
 
 
 def make_queries(lines: list[str], n: int, seed: int) -> list[tuple[str, str]]:
@@ -42,7 +42,7 @@ def make_queries(lines: list[str], n: int, seed: int) -> list[tuple[str, str]]:
     out: list[tuple[str, str]] = []
     while len(out) < n:
         text = normalize(rng.choice(lines))
-        words = [m for m in _TOKEN_RE.finditer(text) if m.lastgroup == "word" and not m.group().isdigit()]
+        words = [m for m in TOKEN_RE.finditer(text) if m.lastgroup == "word" and not m.group().isdigit()]
         if not words:
             continue
         m = rng.choice(words)

@@ -6,7 +6,8 @@ for the k words the user most likely wants next or is in the middle of typing.
 
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables
 from .errors import InputDataError, InvalidArgumentError, LayerNotFoundError, ModelFormatError, NextwordError
-from .model import DEFAULT_LAMBDA, Model, Suggestion, TrainReport, load, train, train_texts
+from .build import DEFAULT_LAMBDA, TrainReport, train, train_texts
+from .model import Model, Suggestion, load
 
 __version__ = "0.1.0"
 

@@ -6,18 +6,32 @@ suite's oracle: it scores *every* vocabulary word, so the engine's bounded candi
 search must reproduce its ranking exactly. It shares only the text rules
 (``nextword.text``) with the engine. :func:`nltk_baseline` times the general-purpose
 library a Python user would pick (nltk.lm, an optional dependency).
+:func:`write_same_smoothing_bigram` writes, for an order-3 model file, the bigram model of
+the same smoothing on the same counts, so ``nextword eval`` shows what the two-word
+context buys.
 """
 
 from __future__ import annotations
 
 import time
 from collections import Counter
-from typing import Any, Callable, Iterable
+import os
+from typing import TYPE_CHECKING, Any, Callable, Iterable
 
+import numpy as np
+
+from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT
 from .errors import InvalidArgumentError
-from .text import BOS, EOS, UNK, fold, parse_typed, sentences
+from .text import BOS, EOS, UNK, fold, normalize, parse_typed, sentences, word_spans
 
-__all__ = ["DictBigram", "key_sentences", "nltk_baseline", "sample_queries", "time_queries"]
+if TYPE_CHECKING:
+    from .model import Model
+    from .ngrams import NgramCounts
+
+__all__ = [
+    "DictBigram", "key_sentences", "nltk_baseline", "sample_queries", "time_queries",
+    "raw_bigram_counts", "write_same_smoothing_bigram",
+]
 
 
 def key_sentences(messages: Iterable[str], *, min_count: int, max_vocab: int) -> tuple[list[list[str]], list[str]]:
@@ -41,7 +55,7 @@ def key_sentences(messages: Iterable[str], *, min_count: int, max_vocab: int) ->
 class DictBigram:
     """Counts in dicts; ``rank`` scores all words, sorts, and takes the first k."""
 
-    def __init__(self, messages: Iterable[str], *, min_count: int = 2, max_vocab: int = 30_000) -> None:
+    def __init__(self, messages: Iterable[str], *, min_count: int = DEFAULT_MIN_COUNT, max_vocab: int = DEFAULT_MAX_VOCAB) -> None:
         streams, self.vocab = key_sentences(messages, min_count=min_count, max_vocab=max_vocab)
         self.known = known = set(self.vocab)
         self.unigram: Counter[str] = Counter()
@@ -91,9 +105,6 @@ class DictBigram:
 
 def sample_queries(messages: Iterable[str], n: int) -> list[str]:
     """The first ``n`` typed texts the keystroke simulation would ask about."""
-    from .evaluate import word_spans
-    from .text import normalize
-
     out: list[str] = []
     for message in messages:
         message = normalize(message)
@@ -125,7 +136,7 @@ def nltk_baseline(
     k: int,
     lam: float,
     *,
-    min_count: int = 2,
+    min_count: int = DEFAULT_MIN_COUNT,
     progress: Callable[[int], None] | None = None,
 ) -> dict[str, Any]:
     """Fit nltk.lm's bigram MLE on the same tokens and answer top-k queries by scoring the vocabulary.
@@ -161,3 +172,84 @@ def nltk_baseline(
 
     times = time_queries(suggest, queries, progress=progress)
     return {"fit_seconds": fit_seconds, "query_seconds": times, "vocabulary": len(words)}
+
+
+# -- the bigram of the same smoothing, for an order-3 model ---------------------------------
+
+
+def raw_bigram_counts(model: Model) -> NgramCounts:
+    """Raw unigram and bigram counts of an order-3 model file's training text, in its ids.
+
+    Jelinek-Mercer files store raw counts at every order: read as they are. Kneser-Ney
+    files store raw counts only at the highest order and for n-grams that start with
+    ``<s>`` (continuation counts below), but those determine the rest: every bigram
+    occurrence (v, w) with v ≠ ``<s>`` is the end of exactly one trigram occurrence
+    (u, v, w) in the same sentence (u = ``<s>`` for a sentence's second token), so
+    c(v, w) = Σ_u c(u, v, w); c(<s>, w) is stored; and every predicted token has exactly one
+    predecessor, so c(w) = Σ_v c(v, w). These are the counts counting the same corpus
+    with the same vocabulary gives (a test compares the files byte for byte). A file whose
+    context totals are not the sums of its stored n-grams (pruned) is refused
+    (:class:`~nextword.errors.InvalidArgumentError`): its raw counts are lost.
+    """
+    from .ngrams import NgramCounts
+
+    if model.order != 3:
+        raise InvalidArgumentError(f"{model.path}: raw bigram counts are derived from order-3 files; this one is order {model.order}")
+    if not model.totals_are_sums():
+        raise InvalidArgumentError(
+            f"{model.path}: its context totals are not the sums of its stored n-grams (a pruned file), "
+            "so its raw bigram counts cannot be recovered"
+        )
+    stored = model.stored_ngrams()
+    n, bos = model.n_words, model.n_words + 2
+    if model.estimator == "jm":
+        return NgramCounts(n, stored.grams[:2], stored.counts[:2])
+    g2, v2 = stored.grams[1], stored.counts[1]
+    g3, v3 = stored.grams[2], stored.counts[2]
+    base = bos + 1
+    after_bos = g2[:, 0] == bos
+    key = np.concatenate([g2[after_bos, 0] * base + g2[after_bos, 1], g3[:, 1] * base + g3[:, 2]])
+    value = np.concatenate([v2[after_bos], v3])
+    uniq, inv = np.unique(key, return_inverse=True)
+    big = np.bincount(inv, weights=value).astype(np.int64)
+    bigrams = np.stack([uniq // base, uniq % base], axis=1)
+    uni = np.bincount(bigrams[:, 1], weights=big, minlength=n + 2).astype(np.int64)
+    words = np.flatnonzero(uni > 0)
+    return NgramCounts(n, (words.reshape(-1, 1), bigrams), (uni[words], big))
+
+
+def write_same_smoothing_bigram(model: Model, path: str | os.PathLike[str]) -> str:
+    """Write the bigram model of ``model``'s smoothing on the same counts; returns how it was made.
+
+    For a Jelinek-Mercer trigram: the Jelinek-Mercer bigram with the λ the trigram's queries
+    use for the bigram level (λ2, or a load-time override). For a Kneser-Ney trigram: the
+    Kneser-Ney bigram of the raw counts (:func:`raw_bigram_counts`), its discounts fitted
+    from their count-of-counts as ``train --order 2 --smoothing kn`` does. Same words, same
+    ids' keys and spellings, same skyband settings. Refuses a bigram file (it is its own
+    bigram) and its own path.
+    """
+    from .counts import CountTables
+    from .estimators import JelinekMercer, KneserNey
+    from .paths import check_new_output
+    from .store import build
+
+    check_new_output(model.path, path, "bigram baseline model")
+    counts = raw_bigram_counts(model)
+    n = model.n_words
+    uni = np.zeros(n + 2, dtype=np.int64)
+    uni[counts.grams[0][:, 0]] = counts.counts[0]
+    g2 = counts.grams[1]
+    tables = CountTables(
+        keys=model.word_keys(), displays=[model.display(i) for i in range(n)], unigram=uni,
+        pair_left=g2[:, 0].copy(), pair_right=g2[:, 1].copy(), pair_count=counts.counts[1].copy(), stats=dict(model.stats),
+    )
+    head = model.header()
+    if model.estimator == "kn":
+        estimator: JelinekMercer | KneserNey = KneserNey()
+        how = "Kneser-Ney bigram of the same counts (raw bigram counts summed from the trigrams; discounts fitted)"
+    else:
+        lam2 = model.query_lambdas()[0]
+        estimator = JelinekMercer([lam2])
+        how = f"Jelinek-Mercer bigram of the same counts with the model's λ2 = {lam2:g}"
+    build(counts, tables, estimator, path, skyband_k=head["skyband_k"], skyband_min=head["skyband_min"])
+    return how

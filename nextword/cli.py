@@ -13,15 +13,17 @@ import json
 import os
 import statistics
 import sys
+import textwrap
 import time
 from typing import Any, NoReturn, Sequence
 
 from . import __version__
 from ._progress import Progress
+from .build import DEFAULT_LAMBDA, SMOOTHINGS, TRAIN_ORDERS, train, train_texts
 from .corpus import FORMATS, iter_messages, open_sources
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, PARALLEL_MIN_BYTES
 from .errors import InputDataError, InvalidArgumentError, NextwordError
-from .model import DEFAULT_LAMBDA, SMOOTHINGS, TRAIN_ORDERS, Model, load, train, train_texts
+from .model import Model, load
 from .paths import Labelled, check_outputs, check_writable
 from .serve import DEFAULT_MAX_OPEN_USERS
 from .prune import DEFAULT_RULE
@@ -159,6 +161,7 @@ _EXAMPLES: dict[str, list[str]] = {
     "info": ["nextword info demo.nwm", "nextword info demo.nwm --verify --json"],
     "eval": [
         "nextword eval demo.nwm held.txt -k 1 3 5",
+        "nextword eval trigram-kn.nwm held.txt -k 3 --report report/",
         "nextword eval demo.nwm held.jsonl --train-data train.jsonl --report report/ --json",
     ],
     "split": [
@@ -170,6 +173,7 @@ _EXAMPLES: dict[str, list[str]] = {
     "tune": [
         "nextword tune demo.nwm tune.txt --test-percent 30 -o tuned.nwm",
         "nextword tune demo.nwm tune.txt --objective keystrokes -k 3 -o tuned.nwm --json",
+        "nextword tune trigram.nwm tune.txt -o trigram-tuned.nwm --report tune-report/",
     ],
     "personal": [
         'nextword personal me.nwp --model demo.nwm learn "Meet me at Quarrington Lake"',
@@ -180,7 +184,11 @@ _EXAMPLES: dict[str, list[str]] = {
         "nextword prune demo.nwm -o small.nwm --max-size 1.5MiB --rule count --json",
         "nextword prune demo.nwm --curve tune.txt --sizes 16KB 12KB 8KB --plot sizes.png",
     ],
-    "export": ["nextword export demo.nwm --arpa demo.arpa.gz", "nextword export demo.nwm --arpa demo.arpa --lam 0.7"],
+    "export": [
+        "nextword export demo.nwm -o demo.arpa.gz",
+        "nextword export demo.nwm -o demo.arpa --lam 0.7 --json",
+        "nextword export trigram-kn.nwm -o trigram-kn.arpa",
+    ],
     "serve": ["nextword serve demo.nwm --users users/", "nextword serve demo.nwm --tcp 127.0.0.1:0"],
     "live": ["nextword live demo.nwm", "nextword live demo.nwm -k 3 --lam 0.8"],
 }
@@ -226,14 +234,17 @@ def _parser() -> _Parser:
     i.add_argument("--verify", action="store_true", help="read and check every section of the file, not only what opening it needs")
     i.add_argument("--json", action="store_true", help="print JSON")
 
-    e = sub.add_parser("eval", help="measure keystroke savings, accuracy and latency on typing logs")
+    e = sub.add_parser("eval", help="measure keystroke savings, accuracy and latency on typing logs, beside baselines "
+                       "(λ = 0 and 0.999; for an order-3 model the bigram of the same smoothing)")
     e.add_argument("model", help=_MODEL_HELP)
     e.add_argument("logs", nargs="+", metavar="LOG", help="held-out typing logs: text or JSON Lines (.gz ok)")
     e.add_argument("-k", type=_positive, nargs="+", default=[1, 3, 5], help="suggestion counts (default 1 3 5)")
     e.add_argument("--lam", type=_lam, default=None, help=_LAM_HELP)
     e.add_argument("--format", choices=FORMATS, default="auto", help=_FORMAT_HELP)
     e.add_argument("--field", default="text", help="JSON Lines field holding the message (default %(default)s)")
-    e.add_argument("--no-baselines", action="store_true", help="skip the λ = 0 and λ = 0.999 runs")
+    e.add_argument("--no-baselines", action="store_true",
+                   help="skip the baseline runs: λ = 0 and λ = 0.999 (Jelinek-Mercer) and, for an order-3 model, the bigram "
+                   "of the same smoothing on the same counts")
     e.add_argument("--train-data", nargs="+", metavar="FILE", help="training text: also time the plain-dict and nltk baselines (default: none, no timing baselines)")
     e.add_argument("--baseline-queries", type=_positive, default=200, help="queries timed per slow baseline (default %(default)s)")
     e.add_argument("--report", metavar="DIR", help="write report.md and plots into DIR, created if missing (default: none)")
@@ -256,13 +267,20 @@ def _parser() -> _Parser:
     sp.add_argument("--field", default="text", help="JSON Lines field holding the message (default %(default)s)")
     sp.add_argument("--json", action="store_true", help="print the counts as JSON")
 
-    tu = sub.add_parser("tune", help="choose λ on held-out text (perplexity by EM, keystrokes by search, per history count)")
+    tu = sub.add_parser(
+        "tune",
+        help="choose λ on held-out text (perplexity by EM, keystrokes by search, per history count); "
+        "λ per order for a Jelinek-Mercer trigram; Kneser-Ney files are refused (their discounts stay fixed)",
+    )
     tu.add_argument("model", help=_MODEL_HELP)
     tu.add_argument("heldout", nargs="+", metavar="HELDOUT", help="held-out text or JSON Lines (.gz ok), never the test text")
     tu.add_argument("-k", type=_positive, default=3, help="suggestions for the keystroke objective (default %(default)s)")
     tu.add_argument("--objective", choices=("perplexity", "keystrokes"), default="perplexity",
-                    help="what the chosen λ optimises: held-out perplexity (EM) or keystroke savings at -k (search)")
-    tu.add_argument("--buckets", action="store_true", help="fit λ per history-count bucket (perplexity objective)")
+                    help="what the chosen λ optimises: held-out perplexity (EM; a trigram gets λ per order) or keystroke "
+                    "savings at -k (search; a trigram gets one λ for both orders)")
+    tu.add_argument("--buckets", action="store_true",
+                    help="fit λ per history-count bucket (perplexity objective); for a trigram per order and bucket, "
+                    "reported but not stored (its file keeps one λ per order)")
     tu.add_argument("--no-ksr-curve", action="store_true", help="skip the keystroke simulation curve (perplexity objective)")
     tu.add_argument("--min-bucket-events", type=_positive, default=500, help="held-out tokens per bucket (default %(default)s)")
     tu.add_argument("--test-percent", type=int, default=0, metavar="P",
@@ -287,13 +305,14 @@ def _parser() -> _Parser:
     pe.add_argument("--half-life-days", type=float, default=None, help="decay: a message's weight halves after this many days (new layers; default: no decay)")
     pe.add_argument("--json", action="store_true", help="print JSON")
 
-    pr = sub.add_parser("prune", help="drop the least valuable pairs (and words) until the model fits a size budget")
+    pr = sub.add_parser("prune", help="drop the least valuable n-grams (and words) until the model fits a size budget (any estimator and order)")
     pr.add_argument("model", help=_MODEL_HELP)
     pr.add_argument("-o", "--output", help="the pruned model (written atomically, never over its input); required unless --curve (default: none)")
     pr.add_argument("--max-size", metavar="SIZE", type=_size, help="budget, e.g. 4MB, 1.5MiB, 800000; required unless --curve (default: none)")
     pr.add_argument("--rule", choices=("count", "entropy"), default=DEFAULT_RULE, help="which pairs and words go first (default %(default)s)")
     pr.add_argument("--keep-vocabulary", action="store_true",
-                    help="remove pairs only, never words (default: words go too when they are worth less per byte)")
+                    help="remove n-grams only, never words (default: words go too when they are worth less per byte; "
+                    "Kneser-Ney and order-3 files always keep their words)")
     pr.add_argument("--curve", nargs="+", metavar="HELDOUT",
                     help="write nothing; print file size against KSR@k and perplexity on these held-out logs, both rules, for each of --sizes (default: no curve)")
     pr.add_argument("--sizes", nargs="+", metavar="SIZE", type=_size,
@@ -303,10 +322,12 @@ def _parser() -> _Parser:
     pr.add_argument("--plot", metavar="PNG", help="with --curve: also draw file size against KSR@k, one line per rule (needs matplotlib; default: no plot)")
     pr.add_argument("--json", action="store_true", help="print the result as JSON")
 
-    ex = sub.add_parser("export", help="export a model to another format")
+    ex = sub.add_parser("export", help="export a model (any estimator and order) as an ARPA back-off file")
     ex.add_argument("model", help=_MODEL_HELP)
-    ex.add_argument("--arpa", required=True, metavar="FILE", help="write the ARPA back-off text here (.gz = compressed; never over the model)")
-    ex.add_argument("--lam", type=_lam, default=None, help=_LAM_HELP)
+    ex.add_argument("-o", "--output", "--arpa", dest="output", required=True, metavar="FILE",
+                    help="write the ARPA back-off text here: every stored n-gram with its interpolated log10 probability, "
+                    "every context with its back-off weight (.gz = compressed; atomically, never over the model)")
+    ex.add_argument("--lam", type=_lam, default=None, help="override every order's λ, as at query time (Jelinek-Mercer only; default: the λ stored in the model)")
     ex.add_argument("--json", action="store_true", help="print the result as JSON")
 
     sv = sub.add_parser("serve", help="answer suggest/learn/forget requests over a local socket (JSON lines)")
@@ -329,6 +350,23 @@ def _parser() -> _Parser:
     lv.add_argument("-k", type=_positive, default=5, help="suggestions shown (default %(default)s)")
     lv.add_argument("--lam", type=_lam, default=None, help=_LAM_HELP)
 
+    tu.description = (
+        "Choose λ on held-out text. A Jelinek-Mercer bigram gets one λ (or λ per history-count bucket with --buckets); "
+        "a Jelinek-Mercer trigram gets λ per order (perplexity) or one λ for both orders (keystrokes). "
+        "Kneser-Ney files are refused in one line (exit 2): their discounts stay at the count-of-counts estimate."
+    )
+    e.description = (
+        "Simulate typing held-out logs: keystroke savings, hit@k, perplexity, latency. Baselines on the same logs: "
+        "the model at λ = 0 and λ = 0.999 (Jelinek-Mercer) and, for an order-3 model, the bigram of the same "
+        "smoothing on the same counts (what the two-word context buys)."
+    )
+    ex.description = (
+        "Write any model (Jelinek-Mercer or Kneser-Ney, order 2 or 3) as an ARPA back-off file: every stored n-gram "
+        "with its interpolated log10 probability, every context with its back-off weight log10 γ, so the ordinary "
+        "back-off reading reproduces the model for every context and word."
+    )
+    for command in (tu, e, ex):  # the raw formatter keeps text as written: wrap it here
+        command.description = textwrap.fill(command.description or "", width=88)
     for name, command in sub.choices.items():
         command.intermixed = True
         if name in _EXAMPLES:
@@ -464,20 +502,22 @@ def _cmd_info(args: argparse.Namespace) -> int:
 
 
 def _cmd_eval(args: argparse.Namespace) -> int:
-    # stages: reading, the model, two λ baselines, then (with --train-data) 6 timing stages
-    bar = Progress("eval", stages=2 + 2 * (not args.no_baselines) + 6 * bool(args.train_data))
+    model = load(args.model, lam=args.lam)
+    # stages: reading, the model, the λ baselines (Jelinek-Mercer) and the bigram of the same
+    # smoothing (order 3), then (with --train-data) 6 timing stages
+    baselines = 0 if args.no_baselines else 2 * (model.estimator == "jm") + (model.order == 3)
+    bar = Progress("eval", stages=2 + baselines + 6 * bool(args.train_data))
     try:
-        return _run_eval(args, bar)
+        return _run_eval(args, bar, model)
     finally:
         bar.done()  # also on errors: the error message then starts on a clean line
 
 
-def _run_eval(args: argparse.Namespace, bar: Progress) -> int:
+def _run_eval(args: argparse.Namespace, bar: Progress, model: Model) -> int:
     from .baselines import DictBigram, nltk_baseline, sample_queries, time_queries
     from .evaluate import evaluate
     from .report import eval_data, text_report, write_report
 
-    model = load(args.model, lam=args.lam)
     ks = sorted(set(args.k))
     sources = open_sources(args.logs, fmt=args.format, field=args.field)
     sizes = [0 if s.name == "-" else os.path.getsize(s.name) for s in sources]
@@ -499,10 +539,29 @@ def _run_eval(args: argparse.Namespace, bar: Progress) -> int:
     baselines: dict[str, Any] = {}
     if not args.no_baselines and model.estimator == "jm":  # λ has no meaning for Kneser-Ney
         baselines["lambda"] = {}
-        for label, lam in (("unigram only (λ = 0)", 0.0), ("bigram only (λ = 0.999)", 0.999)):
+        top = "bigram only" if model.order == 2 else "highest order only"
+        for label, lam in (("unigram only (λ = 0)", 0.0), (f"{top} (λ = 0.999)", 0.999)):
             bar.stage(f"baseline {label.split(' (')[0]}", total=n_msgs, unit="messages")
             o, _ = evaluate(model, logs, ks, lam=lam, progress=bar.update)
             baselines["lambda"][label] = o.as_dict()
+    if not args.no_baselines and model.order == 3:  # what the two-word context buys
+        import tempfile
+
+        from .baselines import write_same_smoothing_bigram
+
+        bar.stage("baseline: the bigram of the same smoothing", total=n_msgs, unit="messages")
+        with tempfile.TemporaryDirectory(prefix="nextword-eval-") as tmp:
+            try:
+                how = write_same_smoothing_bigram(model, os.path.join(tmp, "bigram.nwm"))
+            except InvalidArgumentError as e:  # a pruned file: its raw counts are gone; say so, measure the rest
+                baselines["bigram_skipped"] = str(e)
+                print(f"nextword: note: no bigram baseline: {e}", file=sys.stderr)
+            else:
+                bigram = load(os.path.join(tmp, "bigram.nwm"))
+                o, _ = evaluate(bigram, logs, ks, progress=bar.update)
+                bigram.close()
+                name = f"{'Kneser-Ney' if model.estimator == 'kn' else 'Jelinek-Mercer'} bigram, same counts"
+                baselines["bigram"] = {**o.as_dict(), "name": name, "how": how}
     if args.train_data:
         bar.stage("reading training data")
         train_msgs = list(iter_messages(open_sources(args.train_data, fmt=args.format, field=args.field)))
@@ -609,26 +668,30 @@ def _cmd_split(args: argparse.Namespace) -> int:
 
 
 def _cmd_tune(args: argparse.Namespace) -> int:
-    # stages: held-out events, the keystroke search (unless off), before, writing (-o), after
-    search = args.objective == "keystrokes" or not args.no_ksr_curve
-    measured_after = bool(args.output) or not args.buckets
-    bar = Progress("tune", stages=2 + search + bool(args.output) + measured_after)
-    try:
-        return _run_tune(args, bar, search)
-    finally:
-        bar.done()  # also on errors: the error message then starts on a clean line
-
-
-def _run_tune(args: argparse.Namespace, bar: Progress, search: bool) -> int:
-    from .evaluate import evaluate, is_held_out
-    from .store import rewrite_model
-    from .tune import events_of, fit_buckets, keystroke_search, optimal_lambda, perplexity_at
+    from .tune import check_tunable
 
     if not 0 <= args.test_percent <= 90:
         raise UsageError(f"argument --test-percent: expected 0-90, got {args.test_percent}")
     if args.buckets and args.objective != "perplexity":
         raise UsageError("--buckets fits λ per bucket by perplexity; use it with --objective perplexity")
     model = load(args.model)
+    check_tunable(model)  # Kneser-Ney: one line, exit 2 (its discounts stay fixed)
+    # stages: held-out events, the keystroke search (unless off), before, writing (-o), after
+    search = args.objective == "keystrokes" or not args.no_ksr_curve
+    trigram = model.order == 3  # λ per order: "after" is always measured, from a written file
+    measured_after = trigram or bool(args.output) or not args.buckets
+    bar = Progress("tune", stages=2 + search + (trigram or bool(args.output)) + measured_after)
+    try:
+        return _run_tune(args, bar, search, model)
+    finally:
+        bar.done()  # also on errors: the error message then starts on a clean line
+
+
+def _run_tune(args: argparse.Namespace, bar: Progress, search: bool, model: Model) -> int:
+    from .evaluate import evaluate, is_held_out
+    from .store import rewrite_model
+    from .tune import events_of, fit_buckets, keystroke_search, optimal_lambda, perplexity_at
+
     messages = [m for m in iter_messages(open_sources(args.heldout, fmt=args.format, field=args.field)) if m.strip()]
     if args.test_percent:
         tune_msgs = [m for m in messages if not is_held_out(m, args.test_percent, salt="tune:")]
@@ -639,6 +702,15 @@ def _run_tune(args: argparse.Namespace, bar: Progress, search: bool) -> int:
         used = f"tuned and measured on the same {len(tune_msgs):,} messages (optimistic; use --test-percent)"
     if not tune_msgs or not test_msgs:
         raise InvalidArgumentError("not enough held-out messages to tune and measure")
+    n_test = sum(1 for m in test_msgs if m.strip())
+
+    def measure(m: Model, when: str) -> dict[str, float]:
+        bar.stage(f"measuring {when} on {n_test:,} messages", total=n_test, unit="messages")
+        overall, _ = evaluate(m, [("test", test_msgs)], (args.k,), progress=bar.update)
+        return {"perplexity": overall.perplexity, "ksr": overall.per_k[args.k].ksr}
+
+    if model.order == 3:
+        return _tune_orders(args, bar, search, model, tune_msgs, used, measure)
     bar.stage(f"held-out events of {len(tune_msgs):,} messages, perplexity curve")
     ev = events_of(model, tune_msgs)
     b, u = ev.bu()
@@ -657,13 +729,6 @@ def _run_tune(args: argparse.Namespace, bar: Progress, search: bool) -> int:
         chosen = ppl_lam
         if args.buckets:
             buckets = fit_buckets(ev, min_events=args.min_bucket_events)
-    n_test = sum(1 for m in test_msgs if m.strip())
-
-    def measure(m: Model, when: str) -> dict[str, float]:
-        bar.stage(f"measuring {when} on {n_test:,} messages", total=n_test, unit="messages")
-        overall, _ = evaluate(m, [("test", test_msgs)], (args.k,), progress=bar.update)
-        return {"perplexity": overall.perplexity, "ksr": overall.per_k[args.k].ksr}
-
     before = measure(model, "before")
     result: dict[str, Any] = {
         "model": args.model,
@@ -716,6 +781,92 @@ def _run_tune(args: argparse.Namespace, bar: Progress, search: bool) -> int:
     return 0
 
 
+def _tune_orders(
+    args: argparse.Namespace, bar: Progress, search: bool, model: Model, tune_msgs: list[str], used: str, measure: Any
+) -> int:
+    """``tune`` of a Jelinek-Mercer trigram file: λ per order by perplexity (EM), or one λ for
+    both orders by keystrokes; per-order buckets are fitted and reported but a format 1.3
+    file stores one λ per order, so the file gets the single λ per order."""
+    import tempfile
+
+    from .tune import keystroke_search, tune_orders, write_lambdas
+
+    bar.stage(f"held-out events of {len(tune_msgs):,} messages, λ per order, perplexity curves")
+    t = tune_orders(model, tune_msgs, buckets=args.buckets, min_events=args.min_bucket_events)
+    ksr_lam: float | None = None
+    ksr_curve: dict[float, float] = {}
+    if search:
+        bar.stage(f"searching one λ for both orders for KSR@{args.k}", unit="messages")
+        ksr_lam, ksr_curve = keystroke_search(model, tune_msgs, k=args.k, progress=bar.update)
+    chosen = [ksr_lam] * 2 if args.objective == "keystrokes" and ksr_lam is not None else list(t.lambdas)
+    before = measure(model, "before")
+    notes = []
+    if t.buckets is not None:
+        notes.append("λ buckets per order are reported, not stored: a trigram file (format 1.3) records one λ per order, "
+                     "so the file gets the single per-order optimum")
+    if args.objective == "keystrokes":
+        notes.append("the keystroke objective searches one λ shared by both orders (what --lam does at query time)")
+    result: dict[str, Any] = {
+        "model": args.model,
+        "estimator": model.estimator,
+        "order": model.order,
+        "objective": args.objective,
+        "held_out_use": used,
+        "stored_lambdas": t.stored,
+        "perplexity_optimal_lambdas": t.lambdas,
+        "keystroke_optimal_lambda": ksr_lam,
+        "chosen_lambdas": chosen,
+        "tune_perplexity": {"stored": t.stored_perplexity, "optimal": t.perplexity},
+        "buckets": None if t.buckets is None else {
+            **t.buckets.as_meta(), "events": t.buckets.events, "tune_perplexity": t.bucket_perplexity, "stored": False},
+        "perplexity_curves": {str(m): [{"lambda": k, "perplexity": v} for k, v in c.items()] for m, c in t.curves.items()},
+        "ksr_curve": [{"lambda": k, "ksr": v} for k, v in ksr_curve.items()],
+        "k": args.k,
+        "before": before,
+        "notes": notes,
+    }
+    with tempfile.TemporaryDirectory(prefix="nextword-tune-") as tmp:
+        target = args.output or os.path.join(tmp, "tuned.nwm")
+        bar.stage(f"writing {args.output or 'the tuned model (temporary)'}")
+        write_lambdas(model, target, chosen)
+        if args.output:
+            result["output"] = args.output
+        tuned = load(target)
+        result["after"] = measure(tuned, "after")
+        tuned.close()
+    bar.done()
+    if args.report:
+        _tune_report(args.report, result)
+    if args.json:
+        print(json.dumps(result, indent=2))
+        return 0
+    print(f"model: {args.model} (Jelinek-Mercer order 3); {used}")
+    for m, curve in t.curves.items():
+        others = ", ".join(f"λ{j} = {t.lambdas[j - 2]:.4f}" for j in t.curves if j != m)
+        print(f"λ{m} ({others}): " + "  ".join(f"{lam:.4g}: {ppl:.2f}" for lam, ppl in curve.items()))
+    if ksr_curve:
+        print(f"one λ for both orders, KSR@{args.k}: " + "  ".join(f"{lam:.4g}: {100 * v:.2f}%" for lam, v in ksr_curve.items()))
+    lams = lambda v: ", ".join(f"λ{m} = {x:.4f}" for m, x in enumerate(v, 2))  # noqa: E731
+    ksr_note = f"; keystroke-optimal shared λ (k = {args.k}) = {ksr_lam:.4f}" if ksr_lam is not None else ""
+    print(f"perplexity-optimal {lams(t.lambdas)} (tune perplexity {t.perplexity:.2f}, stored λ {t.stored_perplexity:.2f})"
+          f"{ksr_note}; chosen {lams(chosen)} ({args.objective})")
+    if t.buckets is not None:
+        for m, (bounds, values, events) in enumerate(zip(t.buckets.bounds, t.buckets.lambdas, t.buckets.events), 2):
+            spans = [f"c<{bounds[0]}"] + [f"{a}≤c<{b}" for a, b in zip(bounds, bounds[1:])] + ([f"c≥{bounds[-1]}"] if bounds else [])
+            if not bounds:
+                spans = ["all"]
+            print(f"  λ{m} by context count: " + "; ".join(f"{sp}: {v:.4f} ({n:,})" for sp, v, n in zip(spans, values, events)))
+        print(f"  tune perplexity with the buckets {t.bucket_perplexity:.2f}")
+    for note in notes:
+        print(f"note: {note}")
+    after = result["after"]
+    print(f"before ({lams(t.stored)}): perplexity {before['perplexity']:.2f}, KSR@{args.k} {100 * before['ksr']:.2f}%; "
+          f"after: perplexity {after['perplexity']:.2f}, KSR@{args.k} {100 * after['ksr']:.2f}%")
+    if args.output:
+        print(f"wrote {args.output}")
+    return 0
+
+
 def _tune_report(out_dir: str, result: dict[str, Any]) -> None:
     from pathlib import Path
 
@@ -724,11 +875,20 @@ def _tune_report(out_dir: str, result: dict[str, Any]) -> None:
 
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    lines = [f"# λ tuning of `{result['model']}`", "", result["held_out_use"], "",
-             f"Chosen λ = {result['chosen_lambda']:.4f} ({result['objective']}).", "", "| λ | perplexity |", "|---|---|"]
-    lines += [f"| {r['lambda']:.4f} | {r['perplexity']:.2f} |" for r in result["perplexity_curve"]]
+    lines = [f"# λ tuning of `{result['model']}`", "", result["held_out_use"], ""]
+    if "chosen_lambdas" in result:  # λ per order (Jelinek-Mercer trigram)
+        chosen = ", ".join(f"λ{m} = {x:.4f}" for m, x in enumerate(result["chosen_lambdas"], 2))
+        lines += [f"Chosen {chosen} ({result['objective']}).", ""]
+        for m, rows in result["perplexity_curves"].items():
+            lines += ["", f"| λ{m} (other orders at their optimum) | perplexity |", "|---|---|"]
+            lines += [f"| {r['lambda']:.4f} | {r['perplexity']:.2f} |" for r in rows]
+        lines += [*(f"\nNote: {n}." for n in result["notes"])]
+    else:
+        lines += [f"Chosen λ = {result['chosen_lambda']:.4f} ({result['objective']}).", "", "| λ | perplexity |", "|---|---|"]
+        lines += [f"| {r['lambda']:.4f} | {r['perplexity']:.2f} |" for r in result["perplexity_curve"]]
     if result["ksr_curve"]:
-        lines += ["", f"| λ | KSR@{result['k']} |", "|---|---|"]
+        shared = " (one λ for both orders)" if "chosen_lambdas" in result else ""
+        lines += ["", f"| λ{shared} | KSR@{result['k']} |", "|---|---|"]
         lines += [f"| {r['lambda']:.4f} | {100 * r['ksr']:.2f}% |" for r in result["ksr_curve"]]
     if not plots_available():
         lines += ["", PLOTS_SKIPPED]
@@ -801,7 +961,7 @@ def _cmd_personal(args: argparse.Namespace) -> int:
 
 
 def _cmd_prune(args: argparse.Namespace) -> int:
-    from .prune import parse_size, prune_to_size, tables_from_model
+    from .prune import parse_size, prune_model
     from .store import atomic_write, check_new_output
 
     model = load(args.model)
@@ -813,19 +973,9 @@ def _cmd_prune(args: argparse.Namespace) -> int:
     bar = Progress("prune")
     try:
         bar.stage(f"reading the counts of {args.model}")
-        if model.estimator == "jm" and model.order == 2:
-            _, chunks, info = prune_to_size(
-                tables_from_model(model), parse_size(args.max_size), rule=args.rule, lam=model.stored_lam,
-                vocabulary=not args.keep_vocabulary, skyband_k=model._sky_k, skyband_min=model._sky_min, progress=lambda label: bar.stage(label),
-            )
-        else:  # any other estimator or order: its stored levels, pruned by relative entropy; its words stay
-            from .prune import Prefitted, fitted_from_model, prune_ngrams_to_size
-
-            fitted, counts, tables, mass = fitted_from_model(model)
-            _, _, _, chunks, info = prune_ngrams_to_size(
-                counts, tables, Prefitted(fitted), parse_size(args.max_size), rule=args.rule, vocabulary=False,
-                context_mass=mass, skyband_k=model._sky_k, skyband_min=model._sky_min, progress=lambda label: bar.stage(label),
-            )
+        # a Jelinek-Mercer bigram by its pairs (and words); any other kind on its stored levels, words kept
+        chunks, info = prune_model(model, parse_size(args.max_size), rule=args.rule, vocabulary=not args.keep_vocabulary,
+                                   progress=lambda label: bar.stage(label))
         bar.stage(f"writing {args.output}")
         atomic_write(args.output, chunks)
     finally:
@@ -852,7 +1002,7 @@ def _prune_curve(args: argparse.Namespace, model: Model) -> int:
         raise UsageError(f"--plot {args.plot} needs matplotlib: pip install 'nextword[plot]'")
 
     from .evaluate import evaluate
-    from .prune import RULES, parse_size, prune_to_size, tables_from_model
+    from .prune import RULES, parse_size, prune_model
     from .store import atomic_write
 
     held = [m for m in iter_messages(open_sources(args.curve)) if m.strip()]
@@ -860,7 +1010,6 @@ def _prune_curve(args: argparse.Namespace, model: Model) -> int:
         raise InvalidArgumentError("no held-out messages in " + ", ".join(args.curve))
     ksr_msgs = held[: args.messages]
     sizes = [parse_size(x) for x in args.sizes] if args.sizes else [int(model.file_size * f) for f in (1.0, 0.75, 0.5, 0.35, 0.25)]
-    tables = tables_from_model(model)
     rows: list[dict[str, Any]] = []
     skipped: list[dict[str, Any]] = []
     bar = Progress("pruning curve")
@@ -871,10 +1020,7 @@ def _prune_curve(args: argparse.Namespace, model: Model) -> int:
                 path = args.model
                 if budget < model.file_size:
                     try:
-                        _, chunks, _ = prune_to_size(
-                            tables, budget, rule=rule, lam=model.stored_lam,  # type: ignore[arg-type]
-                            vocabulary=not args.keep_vocabulary, skyband_k=model._sky_k, skyband_min=model._sky_min,
-                        )
+                        chunks, _ = prune_model(model, budget, rule=rule, vocabulary=not args.keep_vocabulary)  # type: ignore[arg-type]
                     except InvalidArgumentError as e:  # below the smallest model of this vocabulary rule
                         skipped.append({"rule": rule, "budget": budget, "reason": str(e)})
                         continue
@@ -915,12 +1061,15 @@ def _cmd_export(args: argparse.Namespace) -> int:
     from .export import write_arpa
 
     model = load(args.model)
-    write_arpa(model, args.arpa, lam=args.lam)
-    out = {"model": args.model, "output": args.arpa, "unigrams": model.n_words + 3, "bigrams": model.n_bigrams}
+    written = write_arpa(model, args.output, lam=args.lam)
+    names = ("unigrams", "bigrams", "trigrams")
+    out: dict[str, Any] = {"model": args.model, "output": args.output, "estimator": model.estimator, "order": model.order,
+                           **{names[m]: k for m, k in enumerate(written)}}
     if args.json:
         print(json.dumps(out))
     else:
-        print(f"wrote {args.arpa}: {out['unigrams']:,} unigrams, {out['bigrams']:,} bigrams")
+        counts = ", ".join(f"{k:,} {names[m]}" for m, k in enumerate(written))
+        print(f"wrote {args.output}: {counts} ({'Kneser-Ney' if model.estimator == 'kn' else 'Jelinek-Mercer'} order {model.order})")
     return 0
 
 
@@ -992,7 +1141,7 @@ def _io_paths(args: argparse.Namespace) -> tuple[list[Labelled], list[Labelled],
         outs = [("pruned model", args.output)] if args.output else []
         outs += [("size plot", args.plot)] if args.plot else []
     elif cmd == "export":
-        ins, outs = [("model", args.model)], [("ARPA file", args.arpa)]
+        ins, outs = [("model", args.model)], [("ARPA file", args.output)]
     elif cmd == "eval":
         ins = [("model", args.model)] + [("log", x) for x in args.logs] + [("training text", x) for x in args.train_data or []]
     elif cmd == "personal":

@@ -35,7 +35,7 @@ from .corpus import Source, iter_records
 from .errors import InvalidArgumentError
 from .store import atomic_write
 from .model import Model, Suggestion
-from .text import _HAS_LETTER, _TOKEN_RE, fold, normalize
+from .text import fold, normalize, word_spans
 
 __all__ = [
     "KStats",
@@ -47,17 +47,6 @@ __all__ = [
     "is_held_out",
     "split_messages",
 ]
-
-
-def word_spans(message: str) -> list[tuple[int, int]]:
-    """(start, end) of every word of an NFC-normalised message, by the text rules."""
-    spans = []
-    for m in _TOKEN_RE.finditer(message):
-        if m.lastgroup == "word":
-            s = m.group()
-            if s.isalpha() or _HAS_LETTER.search(s):
-                spans.append((m.start(), m.end()))
-    return spans
 
 
 def ceiling_keystrokes(message: str) -> int:

@@ -26,15 +26,16 @@ hand-made table need not be: a missing context is then added with its implied
 probability (P(v | u) computed by the model, which is what the reader would have
 computed without it), so the reading is unchanged.
 
-:func:`write_arpa` is the same export for the bigram :class:`~nextword.model.Model`:
+:func:`write_arpa` exports a loaded :class:`~nextword.model.Model` of any estimator and
+order through the same writer: :func:`fitted_from_model` rebuilds the file's fitted
+estimator from its stored values (``Model.stored_ngrams``; Jelinek-Mercer with the λ a
+query uses, per order, and per history count when the bigram file stores λ buckets;
+Kneser-Ney with the file's discounts), whose probabilities equal the model's. For the
+Jelinek-Mercer bigram this is the familiar layout: every seen pair with
+log10(λ·c(v,w)/c(v) + (1−λ)·c(w)/N), every unigram with log10 c(w)/N and, for a history,
+back-off weight log10(1 − λ) (its own bucket's λ), so an unseen pair gets (1 − λ)·P(w).
 
-* every seen pair (v, w): log10 P(w | v) = log10(λ·c(v,w)/c(v) + (1−λ)·c(w)/N);
-* every unigram w (words, ``</s>``, ``<unk>``): log10 c(w)/N, with back-off weight
-  log10(1 − λ) when w is a history, so that an unseen pair gets (1 − λ)·P(w);
-* ``<s>``: probability −99, back-off weight log10(1 − λ).
-
-With λ by history count, each history's back-off weight uses its own λ. Words are
-written as their case-folded keys (unique, never containing spaces). Log values are
+Words are written as their case-folded keys (unique, never containing spaces). Log values are
 written with 10 decimals (an absolute error ≤ 5e-11 in log10, so a probability — even a
 product of three back-off terms — reads back within about 4e-10 relative; 10 significant
 digits would not do: −12.34567890 keeps only 8 decimals, 1e-8 relative).
@@ -50,13 +51,15 @@ from typing import Iterable, Iterator, Sequence, Union
 import numpy as np
 
 from .errors import InvalidArgumentError
-from .estimators import Fitted
+from .estimators import Fitted, FittedJelinekMercer, FittedKneserNey
 from .model import Model
+from .ngrams import NgramCounts
 from .paths import check_outputs
+from .reference_kn import Discounts
 from .store import atomic_write
 from .text import BOS, EOS, UNK
 
-__all__ = ["write_arpa", "arpa_lines", "write_arpa_fitted", "arpa_lines_fitted"]
+__all__ = ["write_arpa", "arpa_lines", "fitted_from_model", "write_arpa_fitted", "arpa_lines_fitted"]
 
 PathArg = Union[str, "os.PathLike[str]"]
 
@@ -112,66 +115,45 @@ def _write(lines: Iterable[str], path: PathArg) -> None:
     atomic_write(path, _gzipped(chunks) if os.fspath(path).endswith(".gz") else chunks)
 
 
-# -- the bigram Model ----------------------------------------------------------------------
+# -- a loaded model file, any estimator and order ------------------------------------------
+
+
+def fitted_from_model(model: Model, *, lam: float | None = None) -> Fitted:
+    """The fitted estimator a model file stores, scoring exactly as the model does.
+
+    Built from the stored levels (:meth:`Model.stored_levels`: values and context totals as
+    queries read them): Jelinek-Mercer with the λ
+    per order a query uses (``lam`` replaces every order's, as at query time; else a bigram
+    file's λ buckets by history count apply), Kneser-Ney with the file's discounts (``lam``
+    is refused: it has no λ).
+    """
+    levels = model.stored_levels()
+    counts = NgramCounts(model.n_words, tuple(lev.grams for lev in levels), tuple(lev.value for lev in levels))
+    if model.estimator == "kn":
+        if lam is not None:
+            raise InvalidArgumentError(f"lam={lam!r} given for a Kneser-Ney model, which has no λ")
+        return FittedKneserNey(counts, levels, [Discounts(*d) for d in model.discounts], {})
+    lams = model.query_lambdas(lam)
+    buckets: list[tuple[list[int], list[float]] | None] = [None] * (model.order - 1)
+    if lam is None and model.order == 2 and model.uses_lambda_buckets():
+        buckets = [(list(model.lambda_bounds), list(model.lambda_values))]
+    return FittedJelinekMercer(counts, levels, [1.0, *lams], [None, *buckets])
 
 
 def arpa_lines(model: Model, *, lam: float | None = None) -> Iterator[str]:
-    """The ARPA text of ``model``, line by line (``lam`` overrides the stored λ)."""
-    n = model.n_words
-    rows = np.asarray(model._src.arrays["ROWS"], dtype=np.int64)
-    counts = [n + 3, int(rows[-1])]
-    return _document(counts, [_model_unigrams(model, lam), _model_bigrams(model, lam, rows)])
+    """The ARPA text of ``model`` (any estimator and order), line by line (``lam`` overrides λ)."""
+    return arpa_lines_fitted(fitted_from_model(model, lam=lam), model.word_keys())
 
 
-def _model_keys(model: Model) -> list[str]:
-    return [model._key(i) for i in range(model.n_words)] + [EOS, UNK, BOS]
+def write_arpa(model: Model, path: PathArg, *, lam: float | None = None) -> list[int]:
+    """Write the ARPA file of ``model`` (any estimator, order 2 or 3) atomically.
 
-
-def _model_unigrams(model: Model, lam: float | None) -> Iterator[str]:
-    n = model.n_words
-    keys = _model_keys(model)
-    unig = np.asarray(model._unig, dtype=np.int64)
-    for i in range(n + 3):
-        prob = "-99" if i == n + 2 else _log10(unig[i] / model.total)
-        if i == n:  # </s> is never a history
-            yield f"{prob}\t{keys[i]}"
-            continue
-        cv = model._hist(i)
-        bow = _log10(1.0 - model._lam_of(i, lam)) if cv > 0 else "0"
-        yield f"{prob}\t{keys[i]}\t{bow}"
-
-
-def _model_bigrams(model: Model, lam: float | None, rows: np.ndarray) -> Iterator[str]:
-    n = model.n_words
-    keys = _model_keys(model)
-    unig = np.asarray(model._unig, dtype=np.int64)
-    total = model.total
-    for v in range(n + 3):
-        s, e = int(rows[v]), int(rows[v + 1])
-        if s == e:
-            continue
-        cv = model._hist(v)
-        lam_v = model._lam_of(v, lam)
-        ids = np.asarray(model._alph, dtype=np.int64)[np.asarray(model._succ[s:e], dtype=np.int64)]
-        c = model._counts(np.arange(s, e))
-        probs = lam_v * (c / cv) + (1.0 - lam_v) * (unig[ids] / total)
-        hv = keys[v]
-        for w, p in zip(ids.tolist(), probs.tolist()):
-            yield f"{_log10(p)}\t{hv} {keys[w]}"
-
-
-def write_arpa(model: Model, path: PathArg, *, lam: float | None = None) -> None:
-    """Write the ARPA file atomically; a name ending in ``.gz`` is gzip-compressed.
-
-    Raises :class:`~nextword.errors.InvalidArgumentError` if ``path`` is the model file.
+    A name ending in ``.gz`` is gzip-compressed. Raises
+    :class:`~nextword.errors.InvalidArgumentError` if ``path`` is the model file (checked
+    before any work). Returns the number of entries per order (unigrams include ``<s>``).
     """
-    if model.estimator != "jm" or model.order != 2:
-        raise InvalidArgumentError(
-            f"{model.path}: ARPA export reads Jelinek-Mercer bigram files; this one is {model.estimator} order "
-            f"{model.order} (write_arpa_fitted exports any fitted estimator of order 1..3)"
-        )
     check_outputs([("model", model.path)], [("ARPA file", path)])
-    _write(arpa_lines(model, lam=lam), path)
+    return write_arpa_fitted(fitted_from_model(model, lam=lam), model.word_keys(), path)
 
 
 # -- any fitted estimator, order 1..3 ------------------------------------------------------
@@ -300,8 +282,8 @@ def _fitted_document(fitted: Fitted, keys: Sequence[str]) -> tuple[list[int], It
 
     def section(m: int) -> Iterator[str]:
         bows = t.backoffs(m)
-        for row, p, bow in zip(t.listed[m - 1].tolist(), t.listed_p[m - 1].tolist(), bows):
-            words = " ".join(names[i] for i in row)
+        columns = [[names[i] for i in col] for col in t.listed[m - 1].T.tolist()]  # one list lookup per id
+        for words, p, bow in zip(map(" ".join, zip(*columns)), t.listed_p[m - 1].tolist(), bows):
             yield f"{_log10(p)}\t{words}" if bow is None else f"{_log10(p)}\t{words}\t{bow}"
 
     return counts, _document(counts, [unigrams(), *(section(m) for m in range(2, fitted.order + 1))])

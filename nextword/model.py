@@ -16,41 +16,36 @@ import bisect
 import math
 import os
 import sys
-import time
-from dataclasses import dataclass
-from typing import Any, Iterable, Iterator, NamedTuple, Sequence
+from typing import Any, Callable, Iterable, Iterator, NamedTuple, Sequence
 
 import numpy as np
 
-from ._progress import DEFAULT_TICK, Progress
-from .corpus import Format, iter_messages, open_sources
-from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables, auto_workers, count_in_processes
-from .estimators import unigram_floor
-from .errors import InputDataError, InvalidArgumentError, ModelFormatError
-from .prune import DEFAULT_RULE
+from .codecs import codec_named
+from .estimators import Level, unigram_floor
+from .ngrams import NgramCounts
+from .errors import InvalidArgumentError, ModelFormatError
+from .candidates import CandidateRange, PrefixRange, merge_ranked
 from .store import (
     COUNT_ESCAPE,
-    DEFAULT_SKYBAND_K,
-    DEFAULT_SKYBAND_MIN,
+    CONTEXT_TAGS,
+    CTX_BLOCK,
     MAX_LAMBDA,
-    TOPK_FANOUT,
+    SUMMARY_MIN,
+    TRIGRAM_TAGS,
     ModelArrays,
     read_model,
-    key_head,
-    topk_levels,
-    write_model,
 )
-from .text import BOS, EOS, UNK, fold, parse_typed, sentences
+from .text import BOS, EOS, UNK, fold, parse_typed, recase, sentences
 
-__all__ = ["Model", "Suggestion", "TrainReport", "train", "train_texts", "load", "DEFAULT_LAMBDA", "SMOOTHINGS", "TRAIN_ORDERS"]
+__all__ = ["Model", "Suggestion", "load", "check_k", "check_lam"]
 
-#: Weight of the bigram estimate; a value near 0.9 is the usual starting point (common practice).
-DEFAULT_LAMBDA = 0.9
 #: sections whose size grows with the number of stored pairs, and with the vocabulary (for ``info``)
 _PAIR_SECTIONS = ("SUCC", "CNTS", "BIGI", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC")
 _VOCAB_SECTIONS = ("TKID", "IDTK", "ALPH", "APOS", "KEY4", "TOPK", "UNIG", "ROWS", "HIST", "DISI", "DISO")
 # below this many successor candidates, plain Python beats numpy's per-call overhead
 _SMALL = 80
+#: a plain row range longer than this is cut with numpy before the Python scoring (_NgramScorer)
+_TRIM = 24
 
 
 class Suggestion(NamedTuple):
@@ -64,32 +59,15 @@ class Suggestion(NamedTuple):
     prob: float
 
 
-@dataclass(frozen=True, slots=True)
-class TrainReport:
-    """What :func:`train` did: sizes, corpus statistics and timings."""
-
-    path: str
-    n_words: int
-    n_bigrams: int
-    word_tokens: int
-    messages: int
-    file_bytes: int
-    count_seconds: float
-    build_seconds: float
-
-    @property
-    def words_per_second(self) -> float:
-        total = self.count_seconds + self.build_seconds
-        return self.word_tokens / total if total > 0 else 0.0
-
-
-def _check_lam(lam: float) -> float:
+def check_lam(lam: float) -> float:
+    """``lam`` as a float if it is a number in [0, 1], else :class:`InvalidArgumentError` (a query's λ override)."""
     if isinstance(lam, bool) or not isinstance(lam, (int, float)) or not 0.0 <= lam <= 1.0:
         raise InvalidArgumentError(f"lam must be a number in [0, 1], got {lam!r}")
     return float(lam)
 
 
-def _check_k(k: int) -> int:
+def check_k(k: int) -> int:
+    """``k`` if it is an integer >= 1, else :class:`InvalidArgumentError` (how many suggestions a query returns)."""
     if isinstance(k, bool) or not isinstance(k, int) or k < 1:
         raise InvalidArgumentError(f"k must be an integer >= 1, got {k!r}")
     return k
@@ -101,24 +79,6 @@ def _native_view(arr: np.ndarray) -> memoryview:
         arr = arr.astype(arr.dtype.newbyteorder("="))
     fmt = {1: "B", 2: "H", 4: "I", 8: "Q"}[arr.dtype.itemsize]
     return memoryview(np.ascontiguousarray(arr)).cast("B").cast(fmt)  # type: ignore[arg-type,call-overload]
-
-
-class _AlphaKeys:
-    """Sequence view of the vocabulary keys in alphabetical order, truncated to a length."""
-
-    __slots__ = ("restore", "idtk", "alph", "length")
-
-    def __init__(self, restore: Any, idtk: memoryview, alph: memoryview, length: int) -> None:
-        self.restore = restore
-        self.idtk = idtk
-        self.alph = alph
-        self.length = length
-
-    def __len__(self) -> int:
-        return len(self.alph) - 2
-
-    def __getitem__(self, i: int) -> str:
-        return self.restore(self.idtk[self.alph[i]])[: self.length]  # type: ignore[no-any-return]
 
 
 class Model:
@@ -144,7 +104,7 @@ class Model:
         stored += [float(x) for x in buckets.get("lambdas", [])]
         self.lambda_clamped: bool = max(stored) > MAX_LAMBDA
         self.stored_lam: float = min(stored[0], MAX_LAMBDA)
-        self.lam: float = self.stored_lam if lam is None else _check_lam(lam)
+        self.lam: float = self.stored_lam if lam is None else check_lam(lam)
         self.lambda_bounds: list[int] = list(buckets.get("bounds", []))
         self.lambda_values: list[float] = [min(x, MAX_LAMBDA) for x in stored[1:]]
         self._override = lam is not None
@@ -173,17 +133,18 @@ class Model:
         self._mv_segs, self._mv_sege, self._mv_skyp = mv["SEGS"], mv["SEGE"], mv["SKYP"]
         self._mv_cnts = memoryview(np.ascontiguousarray(a["CNTS"])).cast("B")  # type: ignore[arg-type]
         self._mv_bigi, self._mv_bigc, self._mv_skyi = mv["BIGI"], mv["BIGC"], mv["SKYI"]
-        # multi-level prefix top lists as 2-D views (blocks x FANOUT)
-        self._levels: list[np.ndarray] = []
-        start = 0
-        for nb in topk_levels(n):
-            self._levels.append(a["TOPK"][start : start + nb * TOPK_FANOUT].reshape(nb, TOPK_FANOUT))
-            start += nb * TOPK_FANOUT
         self._apos = a["APOS"]
-        # small caches of pure functions of the file (keyboards repeat prefixes constantly);
-        # dict reads and writes are atomic, so sharing a Model between threads stays safe
-        self._range_cache: dict[str, tuple[int, int]] = {}
-        self._top_cache: dict[tuple[int, int, int], list[int]] = {}
+        # which words a query considers (docs/SEAMS.md, the candidate seam): exact prefixes today
+        self._candidates = PrefixRange(
+            trie=self._trie, idtk=self._mv_idtk, alph_view=self._mv_alph, key4=self._mv_key4,
+            alph=self._alph, topk=a["TOPK"], n_words=n, max_key_chars=self._max_key,
+        )
+        #: alphabetical positions [lo, hi) of the words starting with a folded prefix
+        self._prefix_range: Callable[[str], tuple[int, int]] = self._candidates.span
+        #: the k most frequent word ids of an alphabetical range (the ranking's lower bound)
+        self._range_top_ids: Callable[[int, int, int], list[int]] = self._candidates.top_ids
+        # a small cache of a pure function of the file; dict reads and writes are atomic,
+        # so sharing a Model between threads stays safe
         self._display_cache: dict[int, str] = {}
         self._big: dict[int, int] | None = None
         #: the smoothing method ("jm" or "kn") and n-gram order (2 or 3) the file stores
@@ -376,7 +337,7 @@ class Model:
         Words are case-insensitive. ``'</s>'`` asks for the end of the sentence; a word
         outside the vocabulary gets the probability of ``<unk>``, as in perplexity.
         """
-        lam = None if lam is None else _check_lam(lam)
+        lam = None if lam is None else check_lam(lam)
         v = self._history_id(previous_word)
         if self._general:
             return self._ng.prob(self._predicted_id(word), (v,), self._ng_lams(lam))
@@ -389,7 +350,7 @@ class Model:
         model reads only the last token, an order-3 model the last two. For a
         Jelinek-Mercer bigram this is :meth:`prob` with ``history[-1]``.
         """
-        lam = None if lam is None else _check_lam(lam)
+        lam = None if lam is None else check_lam(lam)
         ctx = self._context_ids(history)
         if self._general:
             return self._ng.prob(self._predicted_id(word), ctx, self._ng_lams(lam))
@@ -397,7 +358,7 @@ class Model:
 
     def _context_ids(self, history: Sequence[str | None]) -> tuple[int, ...]:
         """Context ids of the last order−1 tokens, never reaching back across a sentence start."""
-        if isinstance(history, str) or not isinstance(history, Sequence):
+        if type(history) is not tuple and (isinstance(history, str) or not isinstance(history, Sequence)):
             raise InvalidArgumentError(f"history must be a sequence of tokens, got {type(history).__name__}")
         ids = [self._history_id(t) for t in history] or [self._bos]
         if self._bos in ids:
@@ -422,7 +383,7 @@ class Model:
         The parts of :meth:`perplexity`, so that results over several texts can be pooled.
         The sum is ``-inf`` if a token has probability 0 (possible only with λ = 1).
         """
-        lam = None if lam is None else _check_lam(lam)
+        lam = None if lam is None else check_lam(lam)
         log_sum = 0.0
         events = 0
         if self._general:
@@ -500,79 +461,6 @@ class Model:
         return math.exp(-log_sum / events)
 
     # -- ranking ------------------------------------------------------------------------------
-
-    def _prefix_range(self, key: str) -> tuple[int, int]:
-        """Alphabetical positions [lo, hi) of the words whose key starts with ``key``.
-
-        The 4-byte key heads (KEY4) give the range of prefixes up to 4 UTF-8 bytes with
-        two binary searches over integers; longer prefixes refine it over the keys.
-        """
-        n = self.n_words
-        if not key:
-            return 0, n
-        hit = self._range_cache.get(key)
-        if hit is not None:
-            return hit
-        if len(key) > self._max_key:
-            result = (0, 0)
-        else:
-            head = self._mv_key4
-            lo = bisect.bisect_left(head, key_head(key, 0x00), 0, n)
-            hi = bisect.bisect_right(head, key_head(key, 0xFF), lo, n)
-            if len(key.encode("utf-8")) > 4 and lo < hi:
-                seq = _AlphaKeys(self._trie.restore_key, self._mv_idtk, self._mv_alph, len(key))
-                lo = bisect.bisect_left(seq, key, lo, hi)
-                hi = bisect.bisect_right(seq, key, lo, hi)
-            result = (lo, hi)
-        if len(self._range_cache) > 65536:
-            self._range_cache.clear()
-        self._range_cache[key] = result
-        return result
-
-    def _range_top_ids(self, lo: int, hi: int, k: int) -> list[int]:
-        """The k smallest word ids (= most frequent) among alphabetical positions [lo, hi).
-
-        Uses the stored top lists: the range splits into at most 2·(FANOUT−1) pieces per
-        level plus at most FANOUT top-level blocks, each contributing ≤ k ids, so the work
-        is bounded whatever the number of matching words (for k ≤ FANOUT).
-        """
-        F = TOPK_FANOUT
-        if lo == 0 and hi == self.n_words:
-            return list(range(min(k, hi)))
-        if hi - lo <= 2 * F:
-            return sorted(self._mv_alph[lo:hi].tolist())[:k]
-        hit = self._top_cache.get((lo, hi, k))
-        if hit is not None:
-            return hit
-        if k > F:
-            vals = self._alph[lo:hi]
-        else:
-            pieces = []
-            unit, level, a, b = 1, 0, lo, hi
-            while True:
-                nxt = unit * F
-                A = -(-a // nxt) * nxt
-                B = (b // nxt) * nxt
-                if level == len(self._levels) or A >= B:
-                    pieces.append(self._units(level, a // unit, b // unit, k))
-                    break
-                pieces.append(self._units(level, a // unit, A // unit, k))
-                pieces.append(self._units(level, B // unit, b // unit, k))
-                a, b, unit, level = A, B, nxt, level + 1
-            vals = np.concatenate(pieces)
-        if len(vals) > k:
-            vals = np.partition(vals, k - 1)[:k]
-        vals = np.sort(vals)
-        top: list[int] = vals[vals < self.n_words].tolist()
-        if len(self._top_cache) > 16384:
-            self._top_cache.clear()
-        self._top_cache[lo, hi, k] = top
-        return top
-
-    def _units(self, level: int, i: int, j: int, k: int) -> np.ndarray:
-        if level == 0:
-            return self._alph[i:j]
-        return self._levels[level - 1][i:j, :k].ravel()
 
     def _rank(self, v: int, lo: int, hi: int, k: int, lam: float) -> list[tuple[int, float]]:
         """Top-k (word id, probability) in alphabetical positions [lo, hi) after history v.
@@ -709,19 +597,19 @@ class Model:
         """
         if not isinstance(typed, str):
             raise InvalidArgumentError(f"typed must be str, got {type(typed).__name__}")
-        k = _check_k(k)
-        lam = None if lam is None else _check_lam(lam)
+        k = check_k(k)
+        lam = None if lam is None else check_lam(lam)
         ctx = parse_typed(typed)
         if self._general:
             lams = self._ng_lams(lam)
-            lo, hi = self._prefix_range(fold(ctx.prefix))
-            if lo >= hi:
+            rs = self._candidates.ranges(fold(ctx.prefix))
+            if not rs:
                 return []
             ids = self._context_ids(ctx.history)
             try:
-                ranked = self._ng.rank(ids, lo, hi, k, lams)
+                ranked = self._rank_ranges(self._ng.rank, ids, rs, k, lams)
                 at_start = ids[-1] == self._bos
-                return [Suggestion(_recase(self.display(i), ctx.prefix, at_start), p) for i, p in ranked]
+                return [Suggestion(recase(self.display(i), ctx.prefix, at_start), p) for i, p in ranked]
             except (IndexError, ValueError, UnicodeDecodeError) as e:
                 raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
         if ctx.previous == BOS:
@@ -731,15 +619,18 @@ class Model:
         else:
             wid = self._word_id(fold(ctx.previous))
             v = self._unk if wid is None else wid
-        lo, hi = self._prefix_range(fold(ctx.prefix))
-        if lo >= hi:
+        rs = self._candidates.ranges(fold(ctx.prefix))
+        if not rs:
             return []
         try:
-            ranked = self._rank(v, lo, hi, k, self._lam_of(v, lam))
+            if len(rs) == 1 and rs[0][2] == 1.0:  # the exact prefix: one range, ranked directly
+                ranked = self._rank(v, rs[0][0], rs[0][1], k, self._lam_of(v, lam))
+            else:
+                ranked = self._rank_ranges(self._rank, v, rs, k, self._lam_of(v, lam))
             at_start = v == self._bos
             shown = self._display_cache
             return [
-                Suggestion(_recase(shown.get(i) or self.display(i), ctx.prefix, at_start), p) for i, p in ranked
+                Suggestion(recase(shown.get(i) or self.display(i), ctx.prefix, at_start), p) for i, p in ranked
             ]
         except (IndexError, ValueError, UnicodeDecodeError) as e:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
@@ -750,16 +641,16 @@ class Model:
         The raw ranking behind :meth:`suggest`, without text parsing or capitalisation;
         keys are the case-folded vocabulary keys.
         """
-        k = _check_k(k)
-        lam = None if lam is None else _check_lam(lam)
+        k = check_k(k)
+        lam = None if lam is None else check_lam(lam)
         if self._general:
             return self.rank_after((previous_word,), prefix, k, lam=lam)
         v = self._history_id(previous_word)
-        lo, hi = self._prefix_range(fold(prefix))
-        if lo >= hi:
+        rs = self._candidates.ranges(fold(prefix))
+        if not rs:
             return []
         try:
-            return [(self._key(i), p) for i, p in self._rank(v, lo, hi, k, self._lam_of(v, lam))]
+            return [(self._key(i), p) for i, p in self._rank_ranges(self._rank, v, rs, k, self._lam_of(v, lam))]
         except (IndexError, ValueError) as e:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
 
@@ -767,25 +658,216 @@ class Model:
         self, history: Sequence[str | None], prefix: str = "", k: int = 3, *, lam: float | None = None
     ) -> list[tuple[str, float]]:
         """Like :meth:`rank_ids` with a context of tokens oldest first (see :meth:`prob_after`)."""
-        k = _check_k(k)
-        lam = None if lam is None else _check_lam(lam)
+        k = check_k(k)
+        lam = None if lam is None else check_lam(lam)
         ctx = self._context_ids(history)
-        lo, hi = self._prefix_range(fold(prefix))
-        if lo >= hi:
+        rs = self._candidates.ranges(fold(prefix))
+        if not rs:
             return []
         try:
             if self._general:
-                return [(self._key(i), p) for i, p in self._ng.rank(ctx, lo, hi, k, self._ng_lams(lam))]
+                return [(self._key(i), p) for i, p in self._rank_ranges(self._ng.rank, ctx, rs, k, self._ng_lams(lam))]
             v = ctx[-1]
-            return [(self._key(i), p) for i, p in self._rank(v, lo, hi, k, self._lam_of(v, lam))]
+            return [(self._key(i), p) for i, p in self._rank_ranges(self._rank, v, rs, k, self._lam_of(v, lam))]
         except (IndexError, ValueError) as e:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
+
+    def _rank_ranges(
+        self, rank: Callable[[Any, int, int, int, Any], list[tuple[int, float]]], context: Any,
+        ranges: Sequence[CandidateRange], k: int, weights: Any,
+    ) -> list[tuple[int, float]]:
+        """Top-k (word id, score) over the candidate ranges: ``rank`` (exact within one range) per
+        range, merged by channel weight × probability (:func:`~nextword.candidates.merge_ranked`).
+
+        The exact prefix is one range of weight 1.0, ranked directly: scores stay probabilities.
+        """
+        if len(ranges) == 1:
+            lo, hi, w = ranges[0]
+            if w == 1.0:
+                return rank(context, lo, hi, k, weights)
+        per = [(w, rank(context, lo, hi, k, weights)) for lo, hi, w in ranges]
+        return merge_ranked(per, self._mv_apos.__getitem__, k)
 
     def header(self) -> dict[str, Any]:
         """The file's metadata as plain data (a copy): estimator, order, λ or discounts, sizes."""
         import copy
 
         return copy.deepcopy(self._src.meta)
+
+    # -- public accessors for the personal layer (nextword.personal) -------------------------
+    # One block, so accessors other modules need can be merged beside it. The layer mixes
+    # its own counts with this model's P(w | context) and ranks exactly with the model's
+    # own exact top k (rank_after) as one candidate source; these give it the rest.
+
+    def spelling(self, word: str) -> str | None:
+        """The display spelling of vocabulary word ``word`` (any casing), or None if the model lacks it."""
+        if not isinstance(word, str):
+            raise InvalidArgumentError(f"word must be str, got {type(word).__name__}")
+        wid = self._word_id(fold(word))
+        return None if wid is None else self.display(wid)
+
+    def probs_after(
+        self, words: Sequence[str], history: Sequence[str | None], *, lam: float | None = None
+    ) -> list[float]:
+        """P(w | history) for each of ``words``: :meth:`prob_after` of each, bit for bit.
+
+        The context is read once, so scoring a handful of candidates after one context
+        (what the personal layer does per keystroke) costs one lookup per word.
+        """
+        if isinstance(words, str) or not isinstance(words, Sequence):
+            raise InvalidArgumentError(f"words must be a sequence of words, got {type(words).__name__}")
+        lam = None if lam is None else check_lam(lam)
+        ctx = self._context_ids(history)
+        ids = []
+        for w in words:
+            if not isinstance(w, str):
+                raise InvalidArgumentError(f"words must be str, got {type(w).__name__}")
+            ids.append(self._predicted_id(w))
+        if self._general:
+            lams = self._ng_lams(lam)
+            if len(ids) >= 8 and max(ids) < self.n_words:  # the scorer's vector path: the same operations
+                return self._ng.scores(np.asarray(ids, dtype=np.int64), ctx, lams).tolist()  # type: ignore[no-any-return]
+            return [self._ng.prob(w, ctx, lams) for w in ids]
+        v = ctx[-1]
+        lam_v = self._lam_of(v, lam)
+        return [self._prob_ids(v, w, lam_v) for w in ids]
+
+    # -- end of the public accessors for the personal layer ------------------------------------
+    # -- public accessors for export, tune and evaluation (h-wiring) ------------------------
+    # What the commands outside the query layer need of a loaded file, so that no module
+    # reads Model privates: the word keys, the stored n-gram values, the held-out text in
+    # this file's ids, and the λ values a query uses.
+
+    def word_keys(self) -> list[str]:
+        """The case-folded key of every word id 0..n_words−1 (unique, never white space)."""
+        return [self._key(i) for i in range(self.n_words)]
+
+    def stored_ngrams(self) -> NgramCounts:
+        """Every stored n-gram of every order 1..order with its stored value, in this file's ids.
+
+        Jelinek-Mercer: raw counts (a pruned file: the kept pairs, whose sums are the
+        stored history counts); Kneser-Ney: the adjusted counts the file stores (raw at the
+        highest order and after ``<s>``, continuation counts below). Fitting the file's
+        estimator on these values (``Level.of``) gives back the model's probabilities.
+        """
+        a = self._src.arrays
+        n = self.n_words
+        unig = np.asarray(a["UNIG"], dtype=np.int64)
+        w1 = np.flatnonzero(unig > 0)
+        rows = np.asarray(a["ROWS"], dtype=np.int64)
+        alph = np.asarray(a["ALPH"], dtype=np.int64)
+        left = np.repeat(np.arange(n + 3, dtype=np.int64), np.diff(rows))
+        right = alph[np.asarray(a["SUCC"], dtype=np.int64)]
+        value2 = self._counts(np.arange(int(rows[-1])))
+        o2 = np.lexsort((right, left))
+        grams = [w1.reshape(-1, 1), np.stack([left[o2], right[o2]], axis=1)]
+        values = [unig[w1], value2[o2]]
+        if self.order == 3:
+            u3, v3, w3, val3 = self._stored_trigrams(left, right)
+            o3 = np.lexsort((w3, v3, u3))
+            grams.append(np.stack([u3[o3], v3[o3], w3[o3]], axis=1))
+            values.append(val3[o3])
+        return NgramCounts(n, tuple(grams), tuple(values))
+
+    def stored_levels(self) -> list[Level]:
+        """What the file stores per order, in the estimator-neutral form (``estimators.Level``).
+
+        The n-grams and values of :meth:`stored_ngrams`, and per context the *total* and the
+        counts of values 1, 2, ≥ 3 exactly as queries read them (history counts — stored, or
+        derived from the unigram counts —, the Kneser-Ney n₁/n₂/n₃₊ sections, the trigram
+        totals), so a fitted estimator built on these levels scores as the model does even
+        where a file's totals are not the sums of its stored values. A context with a total
+        but no stored n-gram is kept, with an empty block.
+        """
+        a = self._src.arrays
+        n = self.n_words
+        counts = self.stored_ngrams()
+        levels = [Level.of(counts.grams[0], counts.counts[0])]
+        hist = np.asarray([self._hist(v) for v in range(n + 3)], dtype=np.int64)
+        g2, v2 = counts.grams[1], counts.counts[1]
+        ctx2 = np.flatnonzero(hist > 0)
+        start2 = np.searchsorted(g2[:, 0], np.append(ctx2, n + 3), side="left").astype(np.int64)
+        n123 = (np.asarray(a["HN13"], dtype=np.int64).reshape(-1, 3)[ctx2] if self.estimator == "kn"
+                else _n123_of(v2, start2))
+        levels.append(Level(g2, v2, ctx2.reshape(-1, 1), start2, hist[ctx2], n123))
+        if self.order == 3:
+            g3, v3 = counts.grams[2], counts.counts[2]
+            base = n + 3
+            keys = g3[:, 0] * base + g3[:, 1]
+            starts = np.flatnonzero(np.r_[True, keys[1:] != keys[:-1]]) if len(keys) else np.zeros(0, np.int64)
+            ctx3 = g3[starts, :2] if len(keys) else np.zeros((0, 2), np.int64)
+            start3 = np.append(starts, len(keys)).astype(np.int64)
+            sums = np.add.reduceat(v3, starts) if len(keys) else np.zeros(0, np.int64)
+            # dropped mass per context (TDRI/TDRV, keyed by the context's bigram entry)
+            ent = self._bigram_entries(ctx3[:, 0], ctx3[:, 1])
+            dropped = np.asarray([self._ng._sparse(self._ng._tdri, self._ng._tdrv, int(i)) for i in ent], dtype=np.int64)
+            levels.append(Level(g3, v3, ctx3, start3, (sums + dropped).astype(np.int64), _n123_of(v3, start3)))
+        return levels
+
+    def _bigram_entries(self, u: np.ndarray, v: np.ndarray) -> np.ndarray:
+        """Index of bigram entry (u, v) in the rows for each pair (every pair stored)."""
+        rows = np.asarray(self._src.arrays["ROWS"], dtype=np.int64)
+        npos = self.n_words + 3
+        left = np.repeat(np.arange(npos, dtype=np.int64), np.diff(rows))
+        keys = left * npos + np.asarray(self._succ, dtype=np.int64)  # increasing: rows by u, then position
+        out = np.searchsorted(keys, np.asarray(u, dtype=np.int64) * npos + self._apos[v].astype(np.int64))
+        return np.asarray(out, dtype=np.int64)
+
+    def _stored_trigrams(self, left: np.ndarray, right: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """(u, v, w, value) of every stored trigram; ``left``/``right`` are the bigram entries' ids in file order."""
+        ng = self._ng
+        lens = np.asarray(ng._tlen.all(), dtype=np.int64)
+        owner = np.repeat(np.arange(len(lens), dtype=np.int64), lens)
+        alph = np.asarray(self._src.arrays["ALPH"], dtype=np.int64)
+        w = alph[np.asarray(ng._tsuc, dtype=np.int64)]
+        return left[owner], right[owner], w, np.asarray(ng._tval.all(), dtype=np.int64)
+
+    def totals_are_sums(self) -> bool:
+        """Whether every context's total is the sum of its stored n-grams' values.
+
+        True for every file ``train`` writes; false where a pruned file keeps the mass of
+        dropped n-grams in its totals — then the raw counts cannot be rebuilt from it.
+        """
+        for lev in self.stored_levels()[1:]:
+            if bool((lev.ctx_start[1:] == lev.ctx_start[:-1]).any()):
+                return False
+            sums = np.add.reduceat(lev.value, lev.ctx_start[:-1]) if len(lev.value) else np.zeros(0, np.int64)
+            if not np.array_equal(sums, lev.ctx_total):
+                return False
+        return True
+
+    def sentence_ids(self, lines: Iterable[str]) -> list[list[int]]:
+        """Every sentence of ``lines`` as ids (words; ``<unk>`` for unknown words and breaks), cut as in training.
+
+        The input :func:`nextword.tune.order_events` takes; ``<s>`` and ``</s>`` are not included.
+        """
+        if isinstance(lines, str):
+            raise InvalidArgumentError("expected an iterable of messages, not one string")
+        out: list[list[int]] = []
+        for line in lines:
+            for sent in sentences(line):
+                ids = []
+                for tok in sent:
+                    wid = None if tok is None else self._word_id(fold(tok))
+                    ids.append(self._unk if wid is None else wid)
+                out.append(ids)
+        return out
+
+    def query_lambdas(self, lam: float | None = None) -> list[float]:
+        """[λ2] or [λ2, λ3] as a query uses them (a load-time or ``lam`` override replaces every
+        order's); empty for Kneser-Ney. λ by history count, if stored, is :meth:`lam_for`."""
+        if self.estimator == "kn":
+            if lam is not None:
+                raise InvalidArgumentError(f"lam={lam!r} given for a Kneser-Ney model, which has no λ")
+            return []
+        lam = None if lam is None else check_lam(lam)
+        if self.order == 2:
+            return [self.lam if lam is None else lam]
+        return list(self._ng_lams(lam))
+
+    def uses_lambda_buckets(self) -> bool:
+        """Whether queries take λ from the stored buckets by history count (not overridden)."""
+        return bool(self.lambda_values) and not self._override
 
     def info(self) -> dict[str, Any]:
         """Sizes, settings and corpus statistics, as plain data (for ``nextword info``)."""
@@ -798,8 +880,8 @@ class Model:
         # spellings); the rest is header, section table, metadata and padding
         pair_bytes = sum(a[s].nbytes for s in _PAIR_SECTIONS)
         vocab_bytes = sum(a[s].nbytes for s in _VOCAB_SECTIONS if s in a) + len(self._src.raw["TRIE"]) + len(self._disb)
-        # Kneser-Ney context counts and the trigram sections (format 1.3)
-        ngram_bytes = sum(a[s].nbytes for s in ("HN13", "TROW", "TCTU", "TCTS", "TSUC", "TVAL", "TTOT", "TN13") if s in a)
+        # Kneser-Ney context counts, context totals and the trigram sections (format 1.4)
+        ngram_bytes = sum(a[s].nbytes for s in a if s not in _PAIR_SECTIONS and s not in _VOCAB_SECTIONS)
         pairs = self.n_bigrams
         return {
             "path": self.path,
@@ -831,21 +913,16 @@ class Model:
         }
 
 
-def _recase(word: str, prefix: str, at_start: bool) -> str:
-    if prefix:
-        first = prefix[0]
-        if first.islower():  # the common case: an explicitly lowercase prefix wins
-            return word
-        if prefix.isupper() and sum(c.isupper() for c in prefix) >= 2:
-            return word.upper()
-        if first.isupper():
-            return word[:1].upper() + word[1:]
-    if at_start:
-        return word[:1].upper() + word[1:]
-    return word
+def _n123_of(value: np.ndarray, start: np.ndarray) -> np.ndarray:
+    """(contexts, 3): how many of each context's values (blocks ``start[j]:start[j+1]``) are 1, 2 and ≥ 3."""
+    owner = np.repeat(np.arange(len(start) - 1), np.diff(start))
+    out = np.zeros((len(start) - 1, 3), dtype=np.int64)
+    for j, mask in enumerate((value == 1, value == 2, value >= 3)):
+        out[:, j] = np.bincount(owner[mask], minlength=len(start) - 1)
+    return out
 
 
-# -- building and loading ---------------------------------------------------------------------
+# -- loading ---------------------------------------------------------------------
 
 
 def load(path: str | os.PathLike[str], *, lam: float | None = None, verify: bool = False) -> Model:
@@ -856,204 +933,13 @@ def load(path: str | os.PathLike[str], *, lam: float | None = None, verify: bool
     checked, which keeps opening fast whatever the model size.
     """
     if lam is not None:
-        _check_lam(lam)
+        check_lam(lam)
     return Model(read_model(path, verify=verify), lam=lam)
-
-
-#: smoothing methods ``train`` offers: Jelinek-Mercer interpolation, interpolated modified Kneser-Ney
-SMOOTHINGS = ("jm", "kn")
-#: n-gram orders ``train`` offers (2 = one-word context, 3 = two-word context)
-TRAIN_ORDERS = (2, 3)
-
-
-def _check_kind(order: int, smoothing: str, lam: float | None, max_bytes: int | None) -> None:
-    if isinstance(order, bool) or order not in TRAIN_ORDERS:
-        raise InvalidArgumentError(f"order must be one of {', '.join(map(str, TRAIN_ORDERS))}, got {order!r}")
-    if smoothing not in SMOOTHINGS:
-        raise InvalidArgumentError(f"smoothing must be one of {', '.join(SMOOTHINGS)}, got {smoothing!r}")
-    if smoothing == "kn" and lam is not None:
-        raise InvalidArgumentError(f"lam={lam!r} given with Kneser-Ney smoothing, which has no λ (its discounts are fitted)")
-
-
-def _finish(
-    builder: CountBuilder,
-    output_path: str | os.PathLike[str],
-    *,
-    lam: float,
-    min_count: int,
-    max_vocab: int,
-    skyband_k: int,
-    skyband_min: int,
-    t0: float,
-    max_bytes: int | None = None,
-    prune_rule: str = DEFAULT_RULE,
-    order: int = 2,
-    smoothing: str = "jm",
-    lam3: float = DEFAULT_LAMBDA,
-) -> TrainReport:
-    t1 = time.perf_counter()
-    general = order != 2 or smoothing != "jm"
-    if general:
-        tables, counts = builder.ngram_counts(min_count=min_count, max_vocab=max_vocab)
-    else:
-        tables = builder.tables(min_count=min_count, max_vocab=max_vocab)
-    if tables.stats["word_tokens"] == 0:
-        raise InputDataError("the input holds no words")
-    if general:
-        from .estimators import JelinekMercer, KneserNey
-        from .store import build
-
-        estimator = KneserNey() if smoothing == "kn" else JelinekMercer((lam, lam3))
-        if max_bytes is None:
-            build(counts, tables, estimator, output_path, skyband_k=skyband_k, skyband_min=skyband_min)
-        else:  # every estimator and order: nextword.prune chooses the n-grams (and words) that fit
-            from .prune import write_to_size
-
-            tables, n_bigrams = write_to_size(counts, tables, estimator, max_bytes, output_path, rule=prune_rule,  # type: ignore[arg-type]
-                                              skyband_k=skyband_k, skyband_min=skyband_min)
-    elif max_bytes is None:
-        write_model(tables, output_path, lam=lam, skyband_k=skyband_k, skyband_min=skyband_min)
-    else:
-        from .prune import prune_to_size
-        from .store import atomic_write
-
-        tables, chunks, _ = prune_to_size(
-            tables, max_bytes, rule=prune_rule, lam=lam, skyband_k=skyband_k, skyband_min=skyband_min  # type: ignore[arg-type]
-        )
-        atomic_write(output_path, chunks)
-    t2 = time.perf_counter()
-    return TrainReport(
-        path=os.fspath(output_path),
-        n_words=tables.n_words,
-        n_bigrams=n_bigrams if general and max_bytes is not None else len(tables.pair_count),
-        word_tokens=tables.stats["word_tokens"],
-        messages=tables.stats["messages"],
-        file_bytes=os.path.getsize(output_path),
-        count_seconds=t1 - t0,
-        build_seconds=t2 - t1,
-    )
-
-
-def _check_build_args(lam: float, skyband_k: int, skyband_min: int) -> float:
-    lam = _check_lam(lam)
-    if lam > MAX_LAMBDA:
-        raise InvalidArgumentError(
-            f"a stored λ must be at most {MAX_LAMBDA} (λ = 1 gives every unseen pair probability 0), got {lam!r}; "
-            "queries may still pass lam=1.0"
-        )
-    if isinstance(skyband_k, bool) or not isinstance(skyband_k, int) or not 1 <= skyband_k <= 4096:
-        raise InvalidArgumentError(f"skyband_k must be an integer in [1, 4096], got {skyband_k!r}")
-    if isinstance(skyband_min, bool) or not isinstance(skyband_min, int) or skyband_min < 0:
-        raise InvalidArgumentError(f"skyband_min must be an integer >= 0, got {skyband_min!r}")
-    return lam
-
-
-def train(
-    inputs: str | os.PathLike[str] | Iterable[str | os.PathLike[str]],
-    output_path: str | os.PathLike[str],
-    *,
-    lam: float | None = None,
-    min_count: int = DEFAULT_MIN_COUNT,
-    max_vocab: int = DEFAULT_MAX_VOCAB,
-    fmt: Format = "auto",
-    field: str = "text",
-    skyband_k: int = DEFAULT_SKYBAND_K,
-    skyband_min: int = DEFAULT_SKYBAND_MIN,
-    progress: bool | None = None,
-    max_bytes: int | None = None,
-    prune_rule: str = DEFAULT_RULE,
-    workers: int | None = None,
-    memory_cap: int | None = None,
-    order: int = 2,
-    smoothing: str = "jm",
-    lam3: float = DEFAULT_LAMBDA,
-) -> TrainReport:
-    """Count the messages in ``inputs`` and write a model file to ``output_path``.
-
-    ``inputs`` is a path or a list of paths (``"-"`` = standard input): plain text with
-    one message per line, or JSON Lines with a ``field`` holding the message, optionally
-    gzip-compressed. Each input is read exactly once. The file is written atomically.
-    ``max_bytes`` prunes word pairs (``prune_rule`` "entropy" or "count") until the file
-    fits, and whole words where they are worth less per byte (a dropped word becomes
-    ``<unk>``; no count is lost, see :mod:`nextword.prune`). ``workers`` > 1 counts
-    chunks of messages in that many processes (0 = one per core) and merges the partial
-    counts; the file is byte for byte the one a single process writes. The default
-    (``None``) picks the fastest: one per core for inputs of at least
-    :data:`~nextword.counts.PARALLEL_MIN_BYTES`, else one (:func:`~nextword.counts.auto_workers`). ``memory_cap``
-    (bytes) bounds the pair counts held in memory by spilling sorted runs to a temporary
-    directory (see :class:`~nextword.counts.CountBuilder`).
-    ``skyband_k`` and ``skyband_min`` trade file size for query speed (see
-    docs/FORMAT.md); the defaults suit keyboards.
-    ``order`` 3 conditions on the last two words of the sentence; ``smoothing`` "kn"
-    (interpolated modified Kneser-Ney, discounts fitted, no λ) replaces Jelinek-Mercer
-    ("jm", λ = ``lam`` for the bigram level, default 0.9, and ``lam3`` for the trigram
-    level). Both are counted in the same streaming pass (:class:`~nextword.counts.CountBuilder` of that order).
-    """
-    _check_kind(order, smoothing, lam, max_bytes)
-    lam = _check_build_args(DEFAULT_LAMBDA if lam is None else lam, skyband_k, skyband_min)
-    lam3 = _check_build_args(lam3, skyband_k, skyband_min)
-    sources = open_sources(inputs, fmt=fmt, field=field)
-    from .paths import check_outputs
-
-    check_outputs([("corpus", s.name) for s in sources if s.name != "-"], [("model", output_path)])
-    t0 = time.perf_counter()
-    if workers is None:
-        workers = auto_workers(s.name for s in sources)
-    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 0:
-        raise InvalidArgumentError(f"workers must be an integer >= 0, got {workers!r}")
-    workers = workers or (os.cpu_count() or 1)
-    # no ticker thread when worker processes are forked (a thread at fork time risks a deadlock)
-    bar = Progress("train", stages=2, enabled=progress, tick=None if workers > 1 else DEFAULT_TICK)
-    try:
-        bar.stage("counting", unit="B")  # total: the input files' sizes (compressed bytes for gzip)
-        messages = iter_messages(sources, progress=bar.update)
-        if workers == 1:
-            builder = CountBuilder(memory_cap=memory_cap, order=order)
-            builder.add_texts(messages)
-        else:
-            builder = count_in_processes(messages, workers, memory_cap=memory_cap, order=order)
-        bar.stage("building the model file" if max_bytes is None else f"building and pruning to {max_bytes:,} bytes")
-        return _finish(
-            builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
-            skyband_k=skyband_k, skyband_min=skyband_min, t0=t0, max_bytes=max_bytes, prune_rule=prune_rule,
-            order=order, smoothing=smoothing, lam3=lam3,
-        )
-    finally:
-        bar.done()  # also on errors: the error message then starts on a clean line
-
-
-def train_texts(
-    texts: Iterable[str],
-    output_path: str | os.PathLike[str],
-    *,
-    lam: float | None = None,
-    min_count: int = DEFAULT_MIN_COUNT,
-    max_vocab: int = DEFAULT_MAX_VOCAB,
-    skyband_k: int = DEFAULT_SKYBAND_K,
-    skyband_min: int = DEFAULT_SKYBAND_MIN,
-    order: int = 2,
-    smoothing: str = "jm",
-    lam3: float = DEFAULT_LAMBDA,
-) -> TrainReport:
-    """Like :func:`train`, but from messages already in memory (consumed once)."""
-    _check_kind(order, smoothing, lam, None)
-    lam = _check_build_args(DEFAULT_LAMBDA if lam is None else lam, skyband_k, skyband_min)
-    lam3 = _check_build_args(lam3, skyband_k, skyband_min)
-    if isinstance(texts, str):
-        raise InvalidArgumentError("train_texts() takes an iterable of messages, not one string")
-    t0 = time.perf_counter()
-    builder = CountBuilder(order=order)
-    builder.add_texts(texts)
-    return _finish(
-        builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
-        skyband_k=skyband_k, skyband_min=skyband_min, t0=t0,
-        order=order, smoothing=smoothing, lam3=lam3,
-    )
 
 
 def _discount(c: np.ndarray, d: Sequence[float]) -> np.ndarray:
     """D(c) per value: D1 for 1, D2 for 2, D3+ for 3 or more, 0 for 0 (as ``Discounts.of``)."""
-    return np.where(c >= 3, d[2], np.where(c >= 2, d[1], np.where(c >= 1, d[0], 0.0)))
+    return np.asarray([0.0, d[0], d[1], d[2]])[np.minimum(c, 3)]  # type: ignore[no-any-return]
 
 
 def _discount1(c: int, d: Sequence[float]) -> float:
@@ -1065,22 +951,25 @@ class _NgramScorer:
 
     Every word's score has the interpolated shape
 
-        P(w | u v) = α₃(u v w) + γ₃(u v) · [α₂(v w) + γ₂(v) · P₁(w)]
+        P(w | u v) = α₃(u v w) + γ₃(u v) · B(v, w),   B(v, w) = α₂(v w) + γ₂(v) · P₁(w)
 
-    (Kneser-Ney: α = max(a − D(a), 0)/total, γ = (D₁n₁ + D₂n₂ + D₃n₃)/total; JM: α = λ·c/total,
-    γ = 1 − λ; an unseen context has α = 0, γ = 1). Ids rank by the floor P₁ (the file's
-    unigram values, ties by key), so for a prefix range the exact top k lies among the k
-    smallest ids of the range, the bigram successors of v in the range (the stored
-    skyband when the segment is long) and every trigram successor of (u, v) in the range
-    (docs/SEAMS.md). Each candidate is scored with the full formula, in the operation
-    order of the oracles (``reference_kn.DictKneserNey.prob_key``), so results agree with
-    them to the last bit.
+    (:func:`nextword.store.level_mix`; an unseen context has α = 0, γ = 1). Ids rank by
+    the floor P₁, so for a prefix range the exact top k lies among the k smallest ids of
+    the range, the bigram successors of v in the range (their stored skyband when the
+    segment is long) and the trigram successors of (u, v) in the range (their stored
+    skyband under dominance on (trigram value, B) when the segment is long); see
+    docs/SEAMS.md. A query scores those few candidates with Python floats (memoryviews
+    and bisect), or with numpy when there are many, in the operation order of the
+    oracles (``reference_kn.DictKneserNey.prob_key``), so results agree with them to the
+    last bit. Stored values come through the file's codec (:mod:`nextword.codecs`).
     """
 
     def __init__(self, m: Model, a: dict[str, np.ndarray]) -> None:
         self.m = m
         self.kn = m.estimator == "kn"
         self.order = m.order
+        meta = m._src.meta
+        self.codec = codec_named(m.path, meta.get("codec"))
         unig = a["UNIG"].astype(np.int64)
         if self.kn:
             self.floor = unigram_floor(unig, m.discounts[0], m.total)
@@ -1091,41 +980,87 @@ class _NgramScorer:
         if not bool(np.all((self.floor >= 0.0) & (self.floor <= 1.0 + 1e-9))):
             raise ModelFormatError(f"{m.path}: damaged model data: a unigram probability outside [0, 1]")
         self._floor_list: list[float] = self.floor.tolist()
+        self._hdri, self._hdrv = _native_view(a["HDRI"]), _native_view(a["HDRV"])
+        # the trigram skybands hold for the stored parameters (KN: always; JM: stored λs, λ₃ > 0)
+        self._band_lams = (m.stored_lam, m.stored_lam3) if not self.kn else None
         if self.order == 3:
-            self._trow = _native_view(a["TROW"])
-            self._tctu = _native_view(a["TCTU"])
-            self._tcts = _native_view(a["TCTS"])
+            self._t = int(meta["trigrams"])
+            self._tctb = _native_view(a["TCTB"])
+            self._tlen = self.codec.decode(m.path, a, CONTEXT_TAGS)
             self._tsuc_mv = _native_view(a["TSUC"])
-            self._tval_mv = _native_view(a["TVAL"])
-            self._ttot = _native_view(a["TTOT"])
             self._tsuc = a["TSUC"]
-            self._tval = a["TVAL"]
-            self._mv_tn13 = _native_view(a["TN13"]) if self.kn else None
-
-    # -- per-context weights -------------------------------------------------------------
-
-    def _gamma2(self, v: int, tot: int) -> float:
-        h = self._mv_hn13
-        d = self.d2
-        return (d[0] * h[3 * v] + d[1] * h[3 * v + 1] + d[2] * h[3 * v + 2]) / tot  # type: ignore[no-any-return]
-
-    def _gamma3(self, j: int, tot: int) -> float:
-        h = self._mv_tn13
-        assert h is not None
-        d = self.d3
-        return (d[0] * h[3 * j] + d[1] * h[3 * j + 1] + d[2] * h[3 * j + 2]) / tot  # type: ignore[no-any-return]
-
-    def _context3(self, ctx: tuple[int, ...]) -> int:
-        """Index of trigram context (u, v) in TCTU, or −1 (not stored, or a one-token context)."""
-        if self.order != 3 or len(ctx) != 2:
-            return -1
-        u, v = ctx
-        s, e = self._trow[v], self._trow[v + 1]
-        i = bisect.bisect_left(self._tctu, u, s, e)
-        return i if i < e and self._tctu[i] == u else -1
+            self._tval = self.codec.decode(m.path, a, TRIGRAM_TAGS)
+            self._tlni, self._tlnv = _native_view(a["TLNI"]), _native_view(a["TLNV"])
+            self._tdri, self._tdrv = _native_view(a["TDRI"]), _native_view(a["TDRV"])
+            self._tsgs, self._tsge = _native_view(a["TSGS"]), _native_view(a["TSGE"])
+            self._tskp, self._tski, self._tskc = _native_view(a["TSKP"]), _native_view(a["TSKI"]), _native_view(a["TSKC"])
 
     def _damaged(self, what: str) -> ModelFormatError:
         return ModelFormatError(f"{self.m.path}: damaged model data: {what}")
+
+    @staticmethod
+    def _sparse(idx: memoryview, val: memoryview, i: int) -> int:
+        """val at index i of a sorted sparse table, else 0."""
+        j = bisect.bisect_left(idx, i)
+        return val[j] if j < len(idx) and idx[j] == i else 0  # type: ignore[no-any-return]
+
+    # -- per-context weights -------------------------------------------------------------
+
+    def _level2(self, v: int, lam2: float) -> tuple[int, float]:
+        """(T, γ₂) of bigram context v (T = 0: never a context, γ₂ = 1)."""
+        tot = self.m._hist(v)
+        if tot <= 0:
+            return 0, 1.0
+        dropped = self._sparse(self._hdri, self._hdrv, v)
+        if dropped > tot:
+            raise self._damaged(f"dropped mass {dropped} above its context total {tot}")
+        if self.kn:
+            h, d = self._mv_hn13, self.d2
+            return tot, (dropped + d[0] * h[3 * v] + d[1] * h[3 * v + 1] + d[2] * h[3 * v + 2]) / tot
+        return tot, (1.0 - lam2) + lam2 * (dropped / tot)
+
+    def _context3(self, ctx: tuple[int, ...]) -> int:
+        """The bigram entry (u, v) of trigram context (u, v), or −1 (not a context, or a one-token context)."""
+        if self.order != 3 or len(ctx) != 2:
+            return -1
+        m = self.m
+        u, v = ctx
+        rs, re_ = m._mv_rows[u], m._mv_rows[u + 1]
+        pos = m._mv_apos[v]
+        i = bisect.bisect_left(m._mv_succ, pos, rs, re_)
+        if i >= re_ or m._mv_succ[i] != pos or self._tlen.at(i) == 0:
+            return -1
+        return i
+
+    def _rows3(self, i: int) -> tuple[int, int]:
+        """Row entries [s, e) of the trigram context at bigram entry i (checked: a damaged length never escapes)."""
+        b0 = i - (i % CTX_BLOCK)
+        s = self._tctb[i // CTX_BLOCK] + (sum(self._tlen.slice(b0, i)) if i > b0 else 0)
+        e = s + self._tlen.at(i)
+        if not 0 <= s < e <= self._t:
+            raise self._damaged(f"trigram context {i} has entries [{s}, {e})")
+        return s, e
+
+    def _level3(self, j: int, s: int, e: int, lam3: float) -> tuple[int, float]:
+        """(T, γ₃) of trigram context j with entries [s, e): its sums read from the row or TLNV."""
+        if e - s > SUMMARY_MIN:
+            i = bisect.bisect_left(self._tlni, j)
+            if i >= len(self._tlni) or self._tlni[i] != j:
+                raise self._damaged(f"trigram context {j} has no stored summary")
+            sm, n1, n2, n3 = (self._tlnv[4 * i + x] for x in range(4))
+            if n1 + n2 + n3 != e - s or sm < e - s:
+                raise self._damaged(f"trigram context {j} has a summary that does not fit its row")
+        else:
+            vals = self._tval.slice(s, e)
+            sm, n1, n2 = sum(vals), vals.count(1), vals.count(2)
+            n3 = len(vals) - n1 - n2
+        tot = sm + self._sparse(self._tdri, self._tdrv, j)
+        if tot <= 0:
+            raise self._damaged(f"trigram context {j} has a total of {tot}")
+        if self.kn:
+            d = self.d3
+            return tot, (tot - sm + d[0] * n1 + d[1] * n2 + d[2] * n3) / tot
+        return tot, (1.0 - lam3) + lam3 * ((tot - sm) / tot)
 
     # -- one probability -------------------------------------------------------------------
 
@@ -1133,31 +1068,30 @@ class _NgramScorer:
         m = self.m
         p = self._floor_list[w]
         v = ctx[-1]
-        tot = m._hist(v)
+        tot, g = self._level2(v, lams[0])
         if tot > 0:
             c = m._pair_count(v, w)
             if c > tot:
                 raise m._over(c, tot)
-            if self.kn:
-                p = max(c - _discount1(c, self.d2), 0.0) / tot + self._gamma2(v, tot) * p
-            else:
-                p = lams[0] * (c / tot) + (1.0 - lams[0]) * p
+            p = self._alpha(c, tot, self.d2 if self.kn else lams[0]) + g * p
         j = self._context3(ctx)
         if j >= 0:
-            tot3 = self._ttot[j]
-            s, e = self._tcts[j], self._tcts[j + 1]
+            s, e = self._rows3(j)
+            tot3, g3 = self._level3(j, s, e, lams[1])
             pos = m._mv_apos[w]
             i = bisect.bisect_left(self._tsuc_mv, pos, s, e)
-            c3 = self._tval_mv[i] if i < e and self._tsuc_mv[i] == pos else 0
-            if c3 > tot3 or tot3 == 0:
+            c3 = self._tval.at(i) if i < e and self._tsuc_mv[i] == pos else 0
+            if c3 > tot3:
                 raise self._damaged(f"trigram value {c3} above its context total {tot3}")
-            if self.kn:
-                p = max(c3 - _discount1(c3, self.d3), 0.0) / tot3 + self._gamma3(j, tot3) * p
-            else:
-                p = lams[1] * (c3 / tot3) + (1.0 - lams[1]) * p
+            p = self._alpha(c3, tot3, self.d3 if self.kn else lams[1]) + g3 * p
         if not 0.0 <= p <= 1.0 + 1e-9:
             raise self._damaged(f"a probability of {p!r}")
         return p  # type: ignore[no-any-return]
+
+    def _alpha(self, c: int, tot: int, param: Any) -> float:
+        if self.kn:
+            return max(c - _discount1(c, param), 0.0) / tot
+        return param * (c / tot)  # type: ignore[no-any-return]
 
     # -- many probabilities ----------------------------------------------------------------
 
@@ -1167,7 +1101,7 @@ class _NgramScorer:
         p = self.floor[ids]
         pos = m._apos[ids].astype(np.int64)
         v = ctx[-1]
-        tot = m._hist(v)
+        tot, g = self._level2(v, lams[0])
         if tot > 0:
             rs, re_ = m._mv_rows[v], m._mv_rows[v + 1]
             row = m._succ[rs:re_]
@@ -1180,57 +1114,204 @@ class _NgramScorer:
                 if int(c.max()) > tot:
                     raise m._over(int(c.max()), tot)
             if self.kn:
-                p = np.maximum(c - _discount(c, self.d2), 0.0) / tot + self._gamma2(v, tot) * p
+                p = np.maximum(c - _discount(c, self.d2), 0.0) / tot + g * p
             else:
-                p = lams[0] * (c / tot) + (1.0 - lams[0]) * p
+                p = lams[0] * (c / tot) + g * p
         j = self._context3(ctx)
         if j >= 0:
-            tot3 = self._ttot[j]
-            s, e = self._tcts[j], self._tcts[j + 1]
+            s, e = self._rows3(j)
+            tot3, g3 = self._level3(j, s, e, lams[1])
             row = self._tsuc[s:e]
             at = np.searchsorted(row, pos.astype(row.dtype))
             hit = at < len(row)
             hit[hit] = row[at[hit]] == pos[hit]
             c = np.zeros(len(ids), dtype=np.int64)
-            c[hit] = self._tval[s + at[hit]]
-            if tot3 == 0 or (len(c) and int(c.max()) > tot3):
+            c[hit] = self._tval.take(s + at[hit])
+            if len(c) and int(c.max()) > tot3:
                 raise self._damaged(f"a trigram value above its context total {tot3}")
             if self.kn:
-                p = np.maximum(c - _discount(c, self.d3), 0.0) / tot3 + self._gamma3(j, tot3) * p
+                p = np.maximum(c - _discount(c, self.d3), 0.0) / tot3 + g3 * p
             else:
-                p = lams[1] * (c / tot3) + (1.0 - lams[1]) * p
+                p = lams[1] * (c / tot3) + g3 * p
         if len(p) and not bool(np.all((p >= 0.0) & (p <= 1.0 + 1e-9))):
             raise self._damaged("a probability outside [0, 1]")
         return np.asarray(p, dtype=np.float64)
+
+    # -- ranking ---------------------------------------------------------------------------
+
+    def _band3(self, s: int, e: int, k: int) -> list[int] | None:
+        """Entries of trigram segment [s, e) with fewer than k dominators, if its skyband is stored."""
+        segs, sege = self._tsgs, self._tsge
+        i = bisect.bisect_left(segs, s)
+        while i < len(segs) and segs[i] == s:
+            if sege[i] == e:
+                start, stop = self._tskp[i], self._tskp[i + 1]
+                stop = min(start + self._tskc[i * self.m._sky_k + k - 1], stop)
+                offs = self._tski[start:stop].tolist()
+                if offs and max(offs) >= e - s:
+                    raise self._damaged(f"trigram skyband {i} points outside its segment")
+                return [s + o for o in offs]
+            i += 1
+        return None
 
     def rank(self, ctx: tuple[int, ...], lo: int, hi: int, k: int, lams: tuple[float, float]) -> list[tuple[int, float]]:
         """Top-k (word id, probability) among alphabetical positions [lo, hi), ties by key."""
         m = self.m
         if not self.kn and (lams[0] == 1.0 or (self.order == 3 and lams[1] == 1.0)):
             # a zero floor: unseen words tie at 0 and rank by key, so score the whole range
-            ids = m._alph[lo:hi].astype(np.int64)
-        else:
-            parts = [np.asarray(m._range_top_ids(lo, hi, k), dtype=np.int64)]
-            v = ctx[-1]
-            if m._hist(v) > 0:
-                rs, re_ = m._mv_rows[v], m._mv_rows[v + 1]
-                s = bisect.bisect_left(m._mv_succ, lo, rs, re_)
-                e = bisect.bisect_left(m._mv_succ, hi, s, re_)
-                if e > s:
-                    band = m._segment_band(s, e, k) if e - s > m._sky_min and k <= m._sky_k else None
-                    entries = np.asarray(band, dtype=np.int64) if band else np.arange(s, e)
-                    parts.append(m._alph[m._succ[entries].astype(np.int64)].astype(np.int64))
-            j = self._context3(ctx)
+            return self._rank_numpy(m._alph[lo:hi].astype(np.int64), ctx, k, lams)
+        top = m._range_top_ids(lo, hi, k)
+        v = ctx[-1]
+        tot, g = self._level2(v, lams[0])
+        b_idx: Sequence[int] = ()
+        b_full = True  # b_idx holds every bigram successor in the range
+        if tot > 0:
+            rs, re_ = m._mv_rows[v], m._mv_rows[v + 1]
+            s = bisect.bisect_left(m._mv_succ, lo, rs, re_)
+            e = bisect.bisect_left(m._mv_succ, hi, s, re_)
+            b_idx = range(s, e)
+            if e - s > m._sky_min and k <= m._sky_k:
+                band = m._segment_band(s, e, k)
+                if band is not None:
+                    b_idx, b_full = band, False
+        j = self._context3(ctx)
+        t_idx: Sequence[int] = ()
+        t_full = True
+        s3 = e3 = tot3 = 0
+        g3 = 1.0
+        if j >= 0:
+            s3, e3 = self._rows3(j)
+            tot3, g3 = self._level3(j, s3, e3, lams[1])
+            a3 = bisect.bisect_left(self._tsuc_mv, lo, s3, e3)
+            b3 = bisect.bisect_left(self._tsuc_mv, hi, a3, e3)
+            t_idx = range(a3, b3)
+            if b3 - a3 > m._sky_min and k <= m._sky_k and (self.kn or (lams == self._band_lams and lams[1] > 0.0)):
+                band3 = self._band3(a3, b3, k)
+                if band3 is not None:
+                    t_idx, t_full = band3, False
+        # score the candidates with Python floats. A long plain range is first cut
+        # with numpy to the entries that can still reach the top k (see _trim_trigrams
+        # and _trim_bigrams); every other candidate then looks its values up by bisect.
+        succ, apos, alph, fl = m._mv_succ, m._mv_apos, m._mv_alph, self._floor_list
+        c3: dict[int, int] = {}
+        if len(t_idx):
+            if isinstance(t_idx, range) and len(t_idx) > _TRIM:
+                c3, t_full = self._trim_trigrams(t_idx, v, tot, g, tot3, g3, k, lams), False
+            elif isinstance(t_idx, range):
+                c3 = dict(zip(self._tsuc_mv[t_idx.start : t_idx.stop].tolist(), self._tval.slice(t_idx.start, t_idx.stop)))
+            else:
+                c3 = {self._tsuc_mv[i]: self._tval.at(i) for i in t_idx}
+            if max(c3.values()) > tot3:
+                raise self._damaged(f"a trigram value above its context total {tot3}")
+        c2: dict[int, int] = {}
+        if len(b_idx):
+            if isinstance(b_idx, range) and len(b_idx) > _TRIM:
+                c2, b_full = self._trim_bigrams(b_idx, tot, g, k + len(c3), lams[0]), False
+            elif isinstance(b_idx, range):
+                ps = succ[b_idx.start : b_idx.stop].tolist()
+                cs = [m._count_at(b_idx.start + x) if c == COUNT_ESCAPE else c for x, c in enumerate(m._mv_cnts[b_idx.start : b_idx.stop].tolist())]
+                c2 = dict(zip(ps, cs))
+            else:
+                c2 = {succ[i]: m._count_at(i) for i in b_idx}
+            if max(c2.values()) > tot:
+                raise m._over(max(c2.values()), tot)
+        cands = set(c2) | set(c3)
+        cands.update(apos[w] for w in top)
+        kn = self.kn
+        # D(c) by min(c, 3): the same floats as _discount1, without a call per candidate
+        dk2: Sequence[float] = (0.0, *self.d2) if kn else ()
+        dk3: Sequence[float] = (0.0, *self.d3) if kn else ()
+        l2, l3 = lams
+        scored: list[tuple[float, int, int]] = []
+        for p in cands:
+            w = alph[p]
+            score: float = fl[w]
+            if tot > 0:
+                c = c2.get(p)
+                if c is None:
+                    c = 0 if b_full else m._pair_count(v, w)
+                    if c > tot:
+                        raise m._over(c, tot)
+                score = (max(c - dk2[c if c < 3 else 3], 0.0) / tot if kn else l2 * (c / tot)) + g * score
             if j >= 0:
-                s3, e3 = self._tcts[j], self._tcts[j + 1]
-                a3 = bisect.bisect_left(self._tsuc_mv, lo, s3, e3)
-                b3 = bisect.bisect_left(self._tsuc_mv, hi, a3, e3)
-                if b3 > a3:
-                    parts.append(m._alph[self._tsuc[a3:b3].astype(np.int64)].astype(np.int64))
-            seen = np.zeros(m.n_words + 3, dtype=bool)  # a set over the id space: sorted, no hashing
-            for part in parts:
-                seen[part] = True
-            ids = np.flatnonzero(seen[: m.n_words])
+                c = c3.get(p)
+                if c is None:
+                    c = 0 if t_full else self._trigram_value(s3, e3, p, tot3)
+                score = (max(c - dk3[c if c < 3 else 3], 0.0) / tot3 if kn else l3 * (c / tot3)) + g3 * score
+            scored.append((-score, p, w))
+        scored.sort()
+        out = [(w, -neg) for neg, _, w in scored[:k]]
+        for _, q in out:
+            if not 0.0 <= q <= 1.0 + 1e-9:
+                raise self._damaged(f"a probability of {q!r}")
+        return out
+
+    def _trim_trigrams(
+        self, t_idx: range, v: int, tot: int, g: float, tot3: int, g3: float, k: int, lams: tuple[float, float]
+    ) -> dict[int, int]:
+        """Position → value of the k best trigram successors in ``t_idx`` by their full score.
+
+        A trigram successor outside them has k successors of the same context ranking
+        before it (score descending, position ascending), so it is not in the top k. The
+        scores are those of :meth:`scores`, computed with numpy for the whole range.
+        """
+        m = self.m
+        s, e = t_idx.start, t_idx.stop
+        traw = self._tsuc[s:e]
+        tpos = traw.astype(np.int64)
+        c3 = self._tval.take(np.arange(s, e))
+        if int(c3.max()) > tot3:
+            raise self._damaged(f"a trigram value above its context total {tot3}")
+        b = self.floor[m._alph[tpos].astype(np.int64)]
+        if tot > 0:
+            rs, re_ = m._mv_rows[v], m._mv_rows[v + 1]
+            row = m._succ[rs:re_]
+            at = np.minimum(row.searchsorted(traw), max(len(row) - 1, 0))
+            hit = np.flatnonzero(row[at] == traw) if len(row) else np.zeros(0, dtype=np.int64)
+            c2 = np.zeros(len(tpos), dtype=np.int64)
+            if len(hit):
+                c2[hit] = m._counts(rs + at[hit])
+                if int(c2.max()) > tot:
+                    raise m._over(int(c2.max()), tot)
+            if self.kn:
+                b = np.maximum(c2 - _discount(c2, self.d2), 0.0) / tot + g * b
+            else:
+                b = lams[0] * (c2 / tot) + g * b
+        if self.kn:
+            score = np.maximum(c3 - _discount(c3, self.d3), 0.0) / tot3 + g3 * b
+        else:
+            score = lams[1] * (c3 / tot3) + g3 * b
+        sel = np.lexsort((tpos, -score))[:k]
+        return dict(zip(tpos[sel].tolist(), c3[sel].tolist()))
+
+    def _trim_bigrams(self, b_idx: range, tot: int, g: float, keep: int, lam2: float) -> dict[int, int]:
+        """Position → value of the ``keep`` best bigram successors in ``b_idx`` by B (§9.7).
+
+        A word that follows v but not (u, v) scores γ₃·B, so among those only the k best
+        by (B descending, position ascending) can reach the top k; keeping k plus the
+        number of trigram candidates keeps at least k such words.
+        """
+        m = self.m
+        s, e = b_idx.start, b_idx.stop
+        pos = m._succ[s:e].astype(np.int64)
+        c = m._counts(np.arange(s, e))
+        if self.kn:
+            alpha = np.maximum(c - _discount(c, self.d2), 0.0) / tot
+        else:
+            alpha = lam2 * (c / tot)
+        b = alpha + g * self.floor[m._alph[pos].astype(np.int64)]
+        sel = np.argsort(-b, kind="stable")[:keep]  # stable: positions ascending among ties
+        return dict(zip(pos[sel].tolist(), c[sel].tolist()))
+
+    def _trigram_value(self, s: int, e: int, pos: int, tot3: int) -> int:
+        i = bisect.bisect_left(self._tsuc_mv, pos, s, e)
+        c = self._tval.at(i) if i < e and self._tsuc_mv[i] == pos else 0
+        if c > tot3:
+            raise self._damaged(f"trigram value {c} above its context total {tot3}")
+        return c
+
+    def _rank_numpy(self, ids: np.ndarray, ctx: tuple[int, ...], k: int, lams: tuple[float, float]) -> list[tuple[int, float]]:
+        m = self.m
         ids = ids[ids < m.n_words]
         if len(ids) == 0:
             return []

@@ -1,16 +1,33 @@
 """A personal layer over an immutable base model: learns a user's words and word pairs.
 
-The combined distribution after history v is a mixture
+The combined distribution after a context (…, u, v) — u, v the last two tokens of the
+sentence so far — is a mixture
 
-    P(w | v) = (1 − μ) · P_base(w | v) + μ · P_user(w | v)
+    P(w | u v) = (1 − μ) · P_base(w | context) + μ · P_user(w | v)
 
-where P_user is the same interpolated bigram estimate as the base model's, computed from
-the user's own (decayed) counts, and μ = max_weight · N_user / (N_user + strength) grows
-with the amount of personal data N_user (predicted tokens learned, after decay): 0 with
-no data, half of ``max_weight`` after ``strength`` tokens. Both parts are distributions
-over the same outcomes — the base vocabulary, the user's words, ``</s>`` and ``<unk>``
-(a user's word the base lacks gets 0 from the base part, whose ``<unk>`` mass stays on
-``<unk>``) — so the mixture sums to 1 after every history.
+    P_user(w | v) = λ · c(v, w) / c(v) + (1 − λ) · c(w) / N_user     (c(v) > 0)
+    P_user(w | v) = c(w) / N_user                                     (v new to the user)
+
+P_base is the base model's own probability with the context *it* reads: the last word
+for a bigram base, the last two words for a trigram base (Jelinek-Mercer or Kneser-Ney
+alike; :meth:`nextword.Model.prob_after`). P_user is a Jelinek-Mercer bigram of the
+user's own (decayed) counts, λ = ``lam``. The personal counts keep the one-word context
+on purpose: a user's log is thousands of words, not millions, so word *triples* would
+almost all be seen once and add little over the pairs (the base already brings the
+two-word context); and storing triples would keep much more of each message's word order
+in the layer file, which by design holds only counts of pairs. μ = max_weight · N_user /
+(N_user + strength) grows with the amount of personal data N_user (predicted tokens
+learned, after decay): 0 with no data, half of ``max_weight`` after ``strength`` tokens.
+Both parts are distributions over the same outcomes — the base vocabulary, the user's
+words, ``</s>`` and ``<unk>`` (a user's word the base lacks gets 0 from the base part,
+whose ``<unk>`` mass stays on ``<unk>``) — so the mixture sums to 1 after every context.
+
+Ranking is exact: :meth:`PersonalLayer.suggest` returns the first k of every suggestible
+word matching the typed prefix ordered by (mixture probability descending, base
+probability descending, key) — equal mixture floats go to the word the base prefers, so
+with no personal data the layer returns the base's own ranking. It never scores every
+word: the candidates are the base's own exact top list and the user's words, and a bound
+rules out the rest (:meth:`PersonalLayer._rank`).
 
 A word the base model lacks becomes *suggestible* once the user has used it
 ``min_uses`` times (it has probability before that, it is just not offered); blocked
@@ -83,15 +100,15 @@ import struct
 import threading
 import time
 import zlib
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from typing import Any
 
 import msgpack
 
 from .errors import InvalidArgumentError, LayerNotFoundError, ModelFormatError
-from .model import Model, Suggestion, _check_k, _recase
+from .model import Model, Suggestion, check_k
 from .store import atomic_write
-from .text import BOS, EOS, UNK, fold, parse_typed, sentences
+from .text import BOS, EOS, UNK, fold, parse_typed, recase, sentences
 
 __all__ = [
     "PersonalLayer",
@@ -131,6 +148,11 @@ _FILE_MODE = 0o600
 _MAX_COUNT = 1e300  # stored counts are renormalised long before this
 _MAX_TIMES = 1 << 31  # one record's repeat count of one pair
 _SPACE = re.compile(r"\s")
+# the ranking's walk over the user's words: steps allowed against the base's first list and
+# its deeper lists (the last list has no limit), and how deep those lists go
+_WALK_BUDGETS = (24, 96)
+_DEEPER = (64, 512)
+_DEEPER_MAX_HISTORY = 4096  # c(v) of the base's last context word up to which deeper lists are asked for
 _SETTINGS_KEYS = ("min_uses", "strength", "max_weight", "lam", "half_life_messages", "half_life_days", "max_entries")
 _OPS = ("learn", "forget", "block", "unblock", "clear")
 
@@ -149,6 +171,16 @@ def _valid_text(value: object, what: str) -> str:
             f"{what} {ascii(value)} is not valid Unicode text (it contains a lone surrogate, e.g. undecodable bytes)"
         ) from None
     return value
+
+
+def _history(history: object) -> tuple[str | None, ...]:
+    """Context tokens (oldest first; None or '<s>' = sentence start) checked at the boundary; empty = sentence start."""
+    if isinstance(history, str) or not isinstance(history, Sequence):
+        raise InvalidArgumentError(f"history must be a sequence of tokens, got {type(history).__name__}")
+    for t in history:
+        if t is not None:
+            _valid_text(t, "history token")
+    return tuple(history) if history else (BOS,)
 
 
 def _word_key(word: object, what: str = "word") -> str:
@@ -236,10 +268,8 @@ class PersonalLayer:
         max_entries: int = 65_536,
         path: str | os.PathLike[str] | None = None,
     ) -> None:
-        # the mixing and the exact ranking below read a one-word context and the base's
-        # bigram scores; a Kneser-Ney or two-word-context base would be ranked wrongly
-        if (getattr(base, "estimator", "jm"), getattr(base, "order", 2)) != ("jm", 2):
-            raise InvalidArgumentError("personal layers need a Jelinek-Mercer bigram base for now")
+        if not isinstance(base, Model):
+            raise InvalidArgumentError(f"base must be a nextword.Model, got {type(base).__name__}")
         self._apply_settings(
             _check_settings(
                 min_uses=min_uses,
@@ -257,7 +287,13 @@ class PersonalLayer:
             raise InvalidArgumentError(f"a blocklist holds at most {MAX_BLOCKED} words, got {len(self.blocklist)}")
         self._lock = threading.RLock()
         self._closed = False
-        self._base_cache: dict[tuple[str | None, str, int], list[tuple[str, float]]] = {}
+        self._blocked_sorted: list[str] | None = None  # the blocklist sorted, for prefix counts (None: stale)
+        # pure functions of the immutable base, cached: its top lists and its word set
+        self._base_cache: dict[tuple[tuple[str | None, ...], str, int], tuple[tuple[str, float], ...]] = {}
+        self._base_words: dict[str, str | None] = {}
+        self._base_probs: dict[tuple[tuple[str | None, ...], str], float] = {}  # the base's P(w | context)
+        depth = base.header().get("skyband_k", 8)
+        self._cheap_depth: int = depth if isinstance(depth, int) and 1 <= depth <= 64 else 8
         self._path: str | None = None
         self._lock_fd: int | None = None
         self._snap_fd: int | None = None  # held so the snapshot's inode stays unique while we use it
@@ -382,6 +418,7 @@ class PersonalLayer:
         self._sorted_keys: list[str] = []
         self._by_count: list[tuple[float, str]] = []
         self._by_initial: dict[str, list[tuple[float, str]]] = {}
+        self._prefix_words: dict[str, list[tuple[float, str]]] = {}  # cached by prefix until a count changes
         self._row_sorted: dict[tuple[str, str], list[tuple[float, str]]] = {}
 
     def _decay_step(self, when: float | None) -> None:
@@ -406,6 +443,7 @@ class PersonalLayer:
         self._sorted_keys = sorted(words)
         self._by_count = sorted((-self._uni[w], w) for w in words)
         self._by_initial = {}
+        self._prefix_words = {}
         for c, w in self._by_count:
             self._by_initial.setdefault(w[:1], []).append((c, w))
         self._row_sorted = {}
@@ -414,6 +452,8 @@ class PersonalLayer:
         old = self._uni.get(key)
         new = (old or 0.0) + inc
         self._uni[key] = new
+        if self._prefix_words:
+            self._prefix_words = {}
         if key in (EOS, UNK):
             return
         initial = self._by_initial.setdefault(key[:1], [])
@@ -517,19 +557,20 @@ class PersonalLayer:
             self._forget(rec["key"])
         elif op == "block":
             self.blocklist.add(rec["key"])
+            self._blocked_sorted = None
         elif op == "unblock":
             self.blocklist.discard(rec["key"])
+            self._blocked_sorted = None
         else:
             self._reset()
 
     def _apply_learn(self, rec: Record) -> None:
         self._decay_step(rec["when"])
         inc = 1.0 / self._scale
+        sorted_rows = self._row_sorted
         for h, w, n in rec["pairs"]:
             add = inc * n
             self._bump(w, add)
-            self._row_sorted.pop((h, ""), None)
-            self._row_sorted.pop((h, w[:1]), None)
             row = self._big.setdefault(h, {})
             old = row.get(w)
             if old is None:
@@ -537,6 +578,13 @@ class PersonalLayer:
                 row[w] = add
             else:
                 row[w] = old + add
+            if w not in (EOS, UNK):  # keep the cached sorted successor lists in step (no rebuild per message)
+                for key in ((h, ""), (h, w[:1])):
+                    lst = sorted_rows.get(key)
+                    if lst is not None:
+                        if old is not None:
+                            del lst[bisect.bisect_left(lst, (-old, w))]
+                        bisect.insort(lst, (-row[w], w))
             self._hist[h] = self._hist.get(h, 0.0) + add
             self._total += add
         for key, tok in rec["set"].items():
@@ -555,6 +603,7 @@ class PersonalLayer:
             del self._sorted_keys[bisect.bisect_left(self._sorted_keys, key)]
             initial = self._by_initial[key[:1]]
             del initial[bisect.bisect_left(initial, (-old, key))]
+        self._prefix_words = {}
         self._row_sorted = {}
         removed_entries = 0 if old is None else 1
         self._total -= self._uni.pop(key, 0.0)
@@ -617,11 +666,15 @@ class PersonalLayer:
     # -- probabilities ----------------------------------------------------------------------------
 
     def _hkey(self, previous_word: str | None) -> str:
+        """The user's history key of a context token, mapped exactly as :func:`_learn_record` counts it."""
         if previous_word is None or previous_word == BOS:
             return BOS
         if previous_word == UNK:
             return UNK
-        return fold(previous_word)
+        key = fold(previous_word)
+        if len(previous_word) > MAX_WORD_CHARS or not _is_word_key(key):
+            return UNK
+        return key
 
     def _p_user(self, v: str, w: str) -> float:
         total = self._total
@@ -633,24 +686,45 @@ class PersonalLayer:
             return u
         return self.lam * (self._big[v].get(w, 0.0) / cv) + (1.0 - self.lam) * u
 
-    def _p_base(self, v: str, w: str) -> float:
-        base = self.base
-        prev = None if v == BOS else (v if v == UNK or v in base else UNK)
-        if w in (EOS, UNK):
-            return base.prob(w, prev)
-        if w not in base:
-            return 0.0
-        return base.prob(w, prev)
+    def _base_spelling(self, key: str) -> str | None:
+        """The base's display spelling of word ``key``, None if it lacks the word (cached: the base never changes)."""
+        try:
+            return self._base_words[key]
+        except KeyError:
+            pass
+        shown = self.base.spelling(key)
+        if len(self._base_words) >= 200_000:
+            self._base_words.clear()
+        self._base_words[key] = shown
+        return shown
 
-    def prob(self, word: str, previous_word: str | None = None) -> float:
-        """P(word | previous_word) under the mixture (``None`` = sentence start)."""
-        v = self._hkey(previous_word)
+    def _in_base(self, key: str) -> bool:
+        return self._base_spelling(key) is not None
+
+    def _p_base(self, history: tuple[str | None, ...], w: str) -> float:
+        if w not in (EOS, UNK) and not self._in_base(w):
+            return 0.0  # the base gives this word's mass to <unk>
+        return self.base.prob_after(w, history)
+
+    def prob_after(self, word: str, history: Sequence[str | None]) -> float:
+        """P(word | history) under the mixture; ``history`` the context tokens oldest first.
+
+        ``None`` or ``'<s>'`` marks a sentence start. The base part reads as many of the
+        last tokens as its order uses (two for a trigram base), the personal part the last one.
+        """
+        hist = _history(history)
+        v = self._hkey(hist[-1])
+        _valid_text(word, "word")
         w = word if word in (EOS, UNK) else fold(word)
         with self._lock:
-            if w not in (EOS, UNK) and w not in self.base and w not in self._uni:
+            if w not in (EOS, UNK) and w not in self._uni and not self._in_base(w):
                 w = UNK
             mu = self.weight
-            return (1.0 - mu) * self._p_base(v, w) + mu * self._p_user(v, w)
+            return (1.0 - mu) * self._p_base(hist, w) + mu * self._p_user(v, w)
+
+    def prob(self, word: str, previous_word: str | None = None) -> float:
+        """P(word | previous_word) under the mixture (``None`` = sentence start): :meth:`prob_after` of one token."""
+        return self.prob_after(word, (previous_word,))
 
     def vocabulary(self) -> list[str]:
         """Every outcome with its own probability: base words, the user's words, </s>, <unk>."""
@@ -668,13 +742,13 @@ class PersonalLayer:
         log_sum, events = 0.0, 0
         for line in lines:
             for sent in sentences(line):
-                prev: str | None = None
+                hist: list[str | None] = [BOS]
                 for tok in [*sent, EOS]:
                     w = UNK if tok is None else tok
-                    p = self.prob(w, prev)
+                    p = self.prob_after(w, hist[-2:])
                     log_sum += math.log(p) if p > 0 else -math.inf
                     events += 1
-                    prev = UNK if tok is None else tok
+                    hist.append(w)
         if events == 0:
             raise InvalidArgumentError("no words to score: the text is empty")
         return math.exp(-log_sum / events)
@@ -684,40 +758,253 @@ class PersonalLayer:
     def _suggestible(self, key: str) -> bool:
         if key in self.blocklist or key in (EOS, UNK, BOS):
             return False
-        return key in self.base or self._uni.get(key, 0.0) * self._scale >= self.min_uses - 1e-9
+        return self._uni.get(key, 0.0) * self._scale >= self.min_uses - 1e-9 or self._in_base(key)
 
     def rank_keys(self, previous_word: str | None, prefix: str, k: int) -> list[tuple[str, float]]:
         """Top k (key, P) under the mixture among suggestible words starting with ``prefix``.
 
-        Exact: a word the user never used scores (1 − μ)·P_base, so among those only the
-        first k of the base ranking (blocked ones skipped) can qualify; every user word
-        matching the prefix is scored in full.
+        :meth:`rank_after` with the one-token context ``(previous_word,)``.
         """
-        k = _check_k(k)
+        return self.rank_after((previous_word,), prefix, k)
+
+    def rank_after(self, history: Sequence[str | None], prefix: str, k: int) -> list[tuple[str, float]]:
+        """Top k (key, P) under the mixture after ``history`` among suggestible words starting with ``prefix``.
+
+        Exact: equal to scoring every suggestible word that starts with ``prefix`` with
+        :meth:`prob_after` and sorting by (probability descending, the base model's
+        probability descending, key) — see :meth:`_rank` for why it need not.
+        """
+        k = check_k(k)
+        hist = _history(history)
+        _valid_text(prefix, "prefix")
         with self._lock:
             self.refresh()
-            return self._rank_keys(self._hkey(previous_word), prefix, k)
+            return self._rank(hist, prefix, k)
+
+    def _blocked_with_prefix(self, p: str) -> int:
+        """How many blocked words start with ``p`` (an estimate is enough: it sizes a request)."""
+        if not self.blocklist:
+            return 0
+        keys = self._blocked_sorted
+        if keys is None:
+            keys = self._blocked_sorted = sorted(self.blocklist)
+        if not p:
+            return len(keys)
+        lo = bisect.bisect_left(keys, p)
+        return bisect.bisect_left(keys, p + "\U0010ffff", lo) - lo
+
+    def _base_top(
+        self, hist: tuple[str | None, ...], prefix: str, p: str, want: int, k: int
+    ) -> tuple[tuple[tuple[str, float], ...], bool]:
+        """The base model's exact top ``want`` (or deeper, until it holds k words not blocked) and whether it is the whole range.
+
+        ``prefix`` as typed goes to the base (which folds it as its own ``suggest`` does);
+        ``p`` is its folded form.
+
+        Cached: the base never changes, and keyboards repeat contexts and prefixes.
+        """
+        blocked = self.blocklist
+        nb = self._blocked_with_prefix(p) if blocked else 0
+        ctx = hist[-(self.base.order - 1):]
+        while True:
+            key = (ctx, p, want)
+            top = self._base_cache.get(key)
+            if top is None:
+                # a tuple of (str, float) tuples: the garbage collector stops tracking it, so a
+                # full cache adds nothing to its pauses
+                top = tuple(self.base.rank_after(ctx, prefix, want))
+                if len(self._base_cache) >= 20_000:
+                    self._base_cache.clear()
+                self._base_cache[key] = top
+            if len(top) < want:
+                return top, True  # every word of the prefix range is in it
+            if nb == 0 or sum(1 for w, _ in top if w not in blocked) >= k:
+                return top, False
+            want *= 2
+
+    def _rank(self, hist: tuple[str | None, ...], prefix: str, k: int) -> list[tuple[str, float]]:
+        """The mixture's exact top k from two candidate sources, without scoring every word.
+
+        score(w) = (1 − μ)·B(w) + μ·U(w), B the base's P(w | its context), U the user's
+        P(w | v) (v the last token); ties go to the larger B, then the smaller key.
+
+        1. *The base's own exact top list* T: its top k (plus the blocked words of the
+           prefix; in fact as deep as its skybands reach, and deeper when step 2 walks
+           long after a context with few successors) with B. Every word of T is scored in full. A word x outside T that the
+           user never used has U(x) = 0 and comes after the last of T in the base's order
+           (B smaller, or B equal and key larger); then every word y of T beats it in the
+           mixture's order: (1 − μ)·B(y) + μ·U(y) ≥ (1 − μ)·B(x) (floating-point addition
+           and multiplication by a constant ≥ 0 are monotone), and on equality B(y) ≥ B(x),
+           and on equality again key(y) < key(x). T holds k words that are not blocked (or
+           the whole prefix range), so no such x can enter the top k.
+        2. *The user's words* outside T: B(w) ≤ B_T, the last probability of T (0 when T is
+           the whole range), so score(w) ≤ (1 − μ)·B_T + μ·U(w). The user's successors of v
+           (by pair count) and the user's words (by count) are walked together, threshold
+           style: a word met in neither list has U at most the formula applied to both
+           lists' next counts, so once the k-th best lower bound (exact scores of T, μ·U(w)
+           of met words) beats that, no unmet word can enter. Met words are then given
+           their exact B (one batched base lookup) in order of their upper bound, until
+           the k-th exact score beats the next upper bound.
+        All comparisons are strict on the same floating-point expressions the scores use,
+        so the result equals scoring every word (tests/test_personal_models.py).
+        """
+        p = fold(prefix)
+        mu = self.weight
+        oml = 1.0 - mu
+        v = self._hkey(hist[-1])
+        blocked = self.blocklist
+        # the base's list as deep as its stored skybands reach (as cheap as its top k, and
+        # never less than k plus the blocked words of the prefix); when the user's words are
+        # too many to rule out against its last probability (a context whose successors
+        # nearly tie, e.g. a rare word seen before a dozen words once each), a deeper list,
+        # whose last probability is much lower (a rare context has few successors: cheap)
+        first = max(k + min(self._blocked_with_prefix(p), 64) if blocked else k, self._cheap_depth)
+        uni = self._uni
+        plan: tuple[tuple[int, int | None], ...] = ((first, None),)
+        if mu > 0.0 and self.base.history_count(hist[-1]) <= _DEEPER_MAX_HISTORY:
+            # deeper lists only after a context with few successors (cheap to rank deeper);
+            # after a common word the walk simply goes on against the first list
+            plan = ((first, _WALK_BUDGETS[0]), (max(first, _DEEPER[0]), _WALK_BUDGETS[1]), (max(first, _DEEPER[1]), None))
+        for want, budget in plan:
+            top, complete = self._base_top(hist, prefix, p, want, k)
+            bt = 0.0 if complete or not top else top[-1][1]
+            scored: dict[str, tuple[float, float]] = {}  # key -> (mixture, base) for exactly scored words
+            for w, b in top:
+                if w not in blocked:
+                    # a word the user never used has U = 0.0 exactly (what _p_user returns for it)
+                    scored[w] = (oml * b + mu * (self._p_user(v, w) if w in uni else 0.0), b)
+            if mu <= 0.0 or self._total <= 0.0:
+                break
+            pending = self._user_candidates(v, p, k, bt, mu, scored, budget=None if complete else budget)
+            if pending is None:
+                continue  # over budget: a deeper list
+            if pending:
+                self._resolve(pending, hist, k, mu, scored)
+            break
+        best = sorted((-s, -b, w) for w, (s, b) in scored.items())[:k]
+        return [(w, -s) for s, _, w in best]
+
+    def _user_candidates(
+        self, v: str, p: str, k: int, bt: float, mu: float, scored: dict[str, tuple[float, float]], *, budget: int | None
+    ) -> list[tuple[float, str, float]] | None:
+        """The user's words that may beat the k-th best: (upper bound, key, U), by the threshold walk.
+
+        None when the walk would take more than ``budget`` steps (the caller asks the base for a deeper list).
+        """
+        total = self._total
+        cv = self._hist.get(v, 0.0)
+        lam = self.lam
+        succ = self._successors_by_count(v, p) if cv > 0 else []
+        words = self._user_words_by_count(p)
+        cb = (1.0 - mu) * bt
+        blocked = self.blocklist
+        # the k best lower bounds so far (a min-heap): exact scores, and μ·U of met words
+        lows = sorted(s for s, _ in scored.values())[-k:]  # ascending: a min-heap
+        kth = lows[0] if len(lows) >= k else -1.0
+        met: set[str] = set()
+        pending: list[tuple[float, str, float]] = []
+        si = ui = 0
+        scale, min_uses = self._scale, self.min_uses - 1e-9  # the rule of _suggestible, same expression
+        while ui < len(words):  # the word list holds every user word with the prefix
+            ns = succ[si] if si < len(succ) else None
+            nu = words[ui]
+            s_next = -ns[0] if ns is not None else 0.0
+            u_next = -nu[0]
+            if cv > 0:
+                share_s = lam * (s_next / cv)
+                share_u = (1.0 - lam) * (u_next / total)
+                bound = cb + mu * (lam * (s_next / cv) + (1.0 - lam) * (u_next / total))
+            else:
+                share_s, share_u = -1.0, 0.0
+                bound = cb + mu * (u_next / total)
+            if kth > bound:
+                break
+            if budget is not None:
+                budget -= 1
+                if budget < 0:
+                    return None
+            if ns is not None and share_s >= share_u:
+                w = ns[1]
+                si += 1
+            else:
+                w = nu[1]
+                ui += 1
+            if w in met:
+                continue
+            met.add(w)
+            if w in scored or w in blocked or not w.startswith(p):
+                continue
+            if self._uni.get(w, 0.0) * scale < min_uses and not self._in_base(w):
+                continue  # a new word not used min_uses times yet: not offered
+            u = self._p_user(v, w)
+            pending.append((cb + mu * u, w, u))
+            low = mu * u
+            if len(lows) < k:
+                heapq.heappush(lows, low)
+            elif low > lows[0]:
+                heapq.heapreplace(lows, low)
+            if len(lows) >= k:
+                kth = lows[0]
+        return pending
+
+    def _resolve(
+        self,
+        pending: list[tuple[float, str, float]],
+        hist: tuple[str | None, ...],
+        k: int,
+        mu: float,
+        scored: dict[str, tuple[float, float]],
+    ) -> None:
+        """Give pending user words their exact score, best upper bound first, while one may still enter."""
+        pending.sort(key=lambda t: (-t[0], t[1]))
+        exact = sorted(s for s, _ in scored.values())[-k:]  # ascending: a min-heap
+        i = 0
+        step = 4  # a few first, one by one; then every word still above the k-th score at once (the base's vector path)
+        while i < len(pending):
+            if len(exact) >= k and pending[i][0] < exact[0]:
+                break  # every later word scores at most its bound, below the k-th exact score
+            if step:
+                chunk = pending[i : i + step]
+                step = 0
+            else:
+                floor = exact[0] if len(exact) >= k else -1.0
+                j = i
+                while j < len(pending) and pending[j][0] >= floor:
+                    j += 1
+                chunk = pending[i:j]
+            i += len(chunk)
+            ctx = hist[-(self.base.order - 1):]
+            cache = self._base_probs
+            missing = [w for _, w, _ in chunk if (ctx, w) not in cache and self._in_base(w)]
+            if missing:
+                if len(cache) >= 100_000:
+                    cache.clear()
+                for w, b in zip(missing, self.base.probs_after(missing, ctx)):
+                    cache[ctx, w] = b
+            for _, w, u in chunk:
+                b = cache.get((ctx, w), 0.0)  # 0.0: a word the base lacks
+                s = (1.0 - mu) * b + mu * u
+                scored[w] = (s, b)
+                if len(exact) < k:
+                    heapq.heappush(exact, s)
+                elif s > exact[0]:
+                    heapq.heapreplace(exact, s)
 
     def _user_words_by_count(self, p: str) -> list[tuple[float, str]]:
         """The user's words by (−stored count, key): those starting with ``p`` when few, else all."""
-        if p:
+        if not p:
+            return self._by_count
+        if len(p) == 1:
+            return self._by_initial.get(p, [])
+        hit = self._prefix_words.get(p)
+        if hit is None:
             keys = self._sorted_keys
             lo = bisect.bisect_left(keys, p)
             hi = bisect.bisect_left(keys, p + "\U0010ffff", lo)
-            if hi - lo <= 64:
-                return sorted((-self._uni[w], w) for w in keys[lo:hi])
-            return self._by_initial.get(p[:1], [])
-        return self._by_count
-
-    def _base_ranking(self, prev: str | None, p: str, want: int) -> list[tuple[str, float]]:
-        """The base model's top ``want`` (cached: the base never changes, its rankings repeat)."""
-        key = (prev, p, want)
-        hit = self._base_cache.get(key)
-        if hit is None:
-            hit = self.base.rank_ids(prev, p, want)
-            if len(self._base_cache) >= 20_000:
-                self._base_cache.clear()
-            self._base_cache[key] = hit
+            hit = sorted((-self._uni[w], w) for w in keys[lo:hi]) if hi - lo <= 256 else self._by_initial.get(p[:1], [])
+            if len(self._prefix_words) >= 4096:
+                self._prefix_words.clear()
+            self._prefix_words[p] = hit
         return hit
 
     def _successors_by_count(self, v: str, p: str) -> list[tuple[float, str]]:
@@ -731,91 +1018,23 @@ class PersonalLayer:
             self._row_sorted[key] = cached
         return cached
 
-    def _rank_keys(self, v: str, prefix: str, k: int) -> list[tuple[str, float]]:
-        """Threshold algorithm over three lists, each sorted by one part of the score.
-
-        score(w) = (1 − μ)·P_base(w | v) + μ·(λ_u·c(v,w)/c(v) + (1 − λ_u)·c(w)/N_user) (the user
-        part is c(w)/N_user when v is new to the user). The base ranking, the user's
-        successors of v by count and the user's words by count are walked in parallel;
-        a word not yet met in any list scores at most the same formula applied to the
-        next value of each list, so once the k-th best candidate beats that bound no
-        other word can enter the top k.
-        """
-        p = fold(prefix)
-        mu = self.weight
-        bprev = None if v == BOS else (v if v == UNK or v in self.base else UNK)
-        blocked = self.blocklist
-        cands: dict[str, float] = {}
-        seen: set[str] = set()
-        total = self._total
-        cv_user = self._hist.get(v, 0.0) if mu > 0 else 0.0
-        succ = self._successors_by_count(v, p) if cv_user > 0 else []
-        words = self._user_words_by_count(p) if mu > 0 else []
-        lam_u = self.lam if cv_user > 0 else 0.0
-
-        kth = [-1.0]
-
-        def consider(w: str, pb: float | None = None) -> None:
-            if w in seen:
-                return
-            seen.add(w)
-            if w.startswith(p) and w not in blocked and self._suggestible(w):
-                base_p = self._p_base(v, w) if pb is None else pb
-                cands[w] = (1.0 - mu) * base_p + mu * self._p_user(v, w)
-                if len(cands) >= k:
-                    kth[0] = heapq.nlargest(k, cands.values())[-1]
-
-        base_list: list[tuple[str, float]] = []
-        want, bi, si, ui, base_done = k, 0, 0, 0, False
-        while True:
-            if bi >= len(base_list) and not base_done:
-                base_list = self._base_ranking(bprev, p, want)
-                base_done = len(base_list) < want
-                want *= 2
-            nb = base_list[bi] if bi < len(base_list) else None
-            ns = succ[si] if si < len(succ) else None
-            nu = words[ui] if ui < len(words) else None
-            if nb is None and ns is None and nu is None:
-                break
-            # each list's share of the bound on any word not met yet
-            cb = (1.0 - mu) * nb[1] if nb else -1.0
-            cs = mu * lam_u * (-ns[0] / cv_user) if ns else -1.0
-            cu = mu * (1.0 - lam_u) * (-nu[0] / total) if nu else -1.0
-            if kth[0] > max(cb, 0.0) + max(cs, 0.0) + max(cu, 0.0):
-                break
-            # advance the list that contributes most to the bound (adaptive sorted access)
-            if cb >= cs and cb >= cu and nb is not None:
-                consider(nb[0], nb[1])
-                bi += 1
-            elif cs >= cu and ns is not None:
-                consider(ns[1])
-                si += 1
-            elif nu is not None:
-                consider(nu[1])
-                ui += 1
-            else:  # only zero-share lists are left
-                if nb is not None:
-                    consider(nb[0], nb[1])
-                    bi += 1
-                if ns is not None:
-                    consider(ns[1])
-                    si += 1
-        best = heapq.nsmallest(k, ((-s, w) for w, s in cands.items()))
-        return [(w, -s) for s, w in best]
-
     def suggest(self, typed: str, k: int = 3) -> list[Suggestion]:
-        """Like :meth:`nextword.Model.suggest`, over the mixture of base and personal counts."""
-        ctx = parse_typed(typed)
-        prev = None if ctx.previous == BOS else ctx.previous
+        """Like :meth:`nextword.Model.suggest`, over the mixture of base and personal counts.
+
+        The context is the one the base model reads (the last two words of the sentence
+        for a trigram base); the personal counts use its last word.
+        """
+        if not isinstance(typed, str):
+            raise InvalidArgumentError(f"typed must be str, got {type(typed).__name__}")
+        k = check_k(k)
+        ctx = parse_typed(typed)  # its tokens are valid text already
         at_start = ctx.previous == BOS
         out = []
         with self._lock:
-            for key, p in self.rank_keys(prev, ctx.prefix, k):
-                if key in self.base:
-                    shown = self.base.display(self.base._word_id(key))  # type: ignore[arg-type]
-                else:
-                    shown = self._spelling.get(key, key)
-                out.append(Suggestion(_recase(shown, ctx.prefix, at_start), p))
+            self.refresh()
+            for key, p in self._rank(ctx.history, ctx.prefix, k):
+                shown = self._base_spelling(key) or self._spelling.get(key, key)
+                out.append(Suggestion(recase(shown, ctx.prefix, at_start), p))
         return out
 
     # -- files ------------------------------------------------------------------------------------
@@ -1063,6 +1282,7 @@ class PersonalLayer:
         self._reset()
         self._snapshot_id = snap["snapshot_id"]
         self.blocklist = set(snap["blocklist"])
+        self._blocked_sorted = None
         self.messages = snap["messages"]
         self._last_time = snap["last_time"]
         self._uni = snap["unigram"]

@@ -87,8 +87,12 @@ __all__ = [
     "ngram_word_values",
     "prune_ngrams_to_size",
     "write_to_size",
-    "fitted_from_model",
-    "Prefitted",
+    "context_bigrams",
+    "with_dependants",
+    "keep_contexts",
+    "kept_ngrams",
+    "file_context_mass",
+    "prune_model",
 ]
 
 RULES = ("entropy", "count")
@@ -109,29 +113,37 @@ def parse_size(text: str) -> int:
 
 
 def tables_from_model(model: Model) -> CountTables:
-    """The counts a model file holds, as :class:`CountTables` (to prune an existing model)."""
+    """The counts a Jelinek-Mercer bigram file holds, as :class:`CountTables` (to prune an existing model).
+
+    Read through the model's public accessors (:meth:`Model.stored_ngrams`: the unigram
+    counts and the pairs; :meth:`Model.stored_levels`: c(v) as queries read it). The
+    history counts are kept only where they differ from those the unigram counts give
+    (a file pruned before, which stores them); else None, as for a file never pruned.
+    Kneser-Ney and order-3 files are pruned on their fitted levels (:func:`prune_model`).
+    """
     if model.estimator != "jm" or model.order != 2:
         raise InvalidArgumentError(
-            f"{model.path}: pruning reads Jelinek-Mercer bigram files; this one is {model.estimator} order {model.order} "
-            f"(its stored values are not plain pair counts): train it with a budget instead, "
-            f"nextword train CORPUS --order {model.order} --smoothing {model.estimator} --max-size SIZE"
+            f"{model.path}: tables_from_model reads Jelinek-Mercer bigram files; this one is {model.estimator} order {model.order} "
+            f"(its stored values are not plain pair counts): prune it with prune_model"
         )
-    a = model._src.arrays
+    stored = model.stored_ngrams()
     n = model.n_words
-    rows = np.asarray(a["ROWS"], dtype=np.int64)
-    left = np.repeat(np.arange(n + 3), np.diff(rows))
-    right = np.asarray(a["ALPH"], dtype=np.int64)[np.asarray(a["SUCC"], dtype=np.int64)]
-    counts = model._counts(np.arange(int(rows[-1])))
-    order = np.lexsort((right, left))
+    unigram = np.zeros(n + 2, dtype=np.int64)
+    unigram[stored.grams[0][:, 0]] = stored.counts[0]
+    lev2 = model.stored_levels()[1]
+    stored_hist = np.zeros(n + 3, dtype=np.int64)
+    stored_hist[lev2.ctx[:, 0]] = lev2.ctx_total
+    history = None if np.array_equal(stored_hist, history_counts(unigram, n)) else stored_hist
+    g2 = stored.grams[1]
     return CountTables(
-        keys=[model._key(i) for i in range(n)],
+        keys=model.word_keys(),
         displays=[model.display(i) for i in range(n)],
-        unigram=np.asarray(a["UNIG"], dtype=np.int64),
-        pair_left=left[order],
-        pair_right=right[order],
-        pair_count=counts[order],
+        unigram=unigram,
+        pair_left=np.asarray(g2[:, 0], dtype=np.int64),
+        pair_right=np.asarray(g2[:, 1], dtype=np.int64),
+        pair_count=np.asarray(stored.counts[1], dtype=np.int64),
         stats=dict(model.stats),
-        history=None if "HIST" not in a else np.asarray(a["HIST"], dtype=np.int64),
+        history=history,
     )
 
 
@@ -591,12 +603,17 @@ def prune_to_size(
 # n-gram (h, w) therefore moves exactly its α from the first term to γ(h): P(·|h) still
 # sums to 1, no other α changes. Lower-order values stay as estimated on the full data
 # (Kneser-Ney's continuation counts are not recounted over the kept n-grams, nor are the
-# discounts refitted), and no order depends on another structurally: in the interpolated
-# form a trigram context needs neither its bigram (u, v) nor the bigram (v, w), so every
-# n-gram of order ≥ 2 is scored alone on the full model and the least valuable go first,
-# whatever their order. A context left with no n-gram is dropped with them (γ = 1 there:
-# the same as a context never seen). The unigram level is the vocabulary; it shrinks only
-# by dropping whole words into <unk> (:func:`drop_ngram_words`).
+# discounts refitted). Every n-gram of order ≥ 2 is scored alone on the full model and the
+# least valuable go first, whatever their order, under one structural rule: a kept trigram
+# (u, v, w) keeps the bigram (u, v) — a bigram that is the context of a kept trigram is not
+# prunable (common practice in back-off n-gram pruning: the longer n-gram's context stays
+# in the model; the file format finds a trigram context through its bigram entry, §7.14 of
+# docs/FORMAT.md). So a bigram is ranked by the larger of its own value and the values of
+# the trigrams it is the context of (:func:`with_dependants`: it leaves with its last
+# dependant), and the selection adds the context bigram of every kept trigram that a tie
+# left out (:func:`keep_contexts`). A context left with no n-gram is dropped with them
+# (γ = 1 there: the same as a context never seen). The unigram level is the vocabulary; it
+# shrinks only by dropping whole words into <unk> (:func:`drop_ngram_words`).
 
 
 def _pack(rows: np.ndarray, base: int) -> np.ndarray:
@@ -721,7 +738,7 @@ def ngram_scores(fitted: Fitted, counts: NgramCounts, *, context_mass: Sequence[
     it makes to higher-order contexts that interpolate with it is not counted, as in
     Stolcke's criterion). ``out[0]`` (the unigram level) is empty: words are valued by
     :func:`ngram_word_values`. ``context_mass[m-1]``, if given, is P(h) of each context of
-    order m instead (see :func:`fitted_from_model`).
+    order m instead (see :func:`file_context_mass`).
     """
     probs = _Probs(fitted)
     out: list[np.ndarray] = [np.zeros(0)]
@@ -756,28 +773,59 @@ def ngram_scores(fitted: Fitted, counts: NgramCounts, *, context_mass: Sequence[
     return out
 
 
-def prune_level(lev: Level, keep: np.ndarray) -> Level:
-    """``lev`` with only the n-grams where ``keep`` is true; kept contexts keep their totals."""
+def prune_level(lev: Level, keep: np.ndarray, *, contexts: np.ndarray | None = None) -> Level:
+    """``lev`` with only the n-grams where ``keep`` is true; kept contexts keep their totals.
+
+    A context left with no n-gram goes too (γ = 1 there, as for a context never seen),
+    unless ``contexts`` (a mask over ``lev.ctx``) asks to keep it: then it stays with its
+    total and an empty block, which scores the same (all its mass is dropped mass) — the
+    form :meth:`nextword.Model.stored_levels` reads such a context back in.
+    """
     keep = np.asarray(keep, dtype=bool)
     if keep.shape != (len(lev.grams),):
         raise InvalidArgumentError(f"keep must have one entry per n-gram ({len(lev.grams)}), got shape {keep.shape}")
-    new = Level.of(lev.grams[keep], lev.value[keep])
-    origin = _owners(lev)[keep][new.ctx_start[:-1]]
-    return dataclasses.replace(new, ctx_total=np.asarray(lev.ctx_total[origin], dtype=np.int64))
+    owner = _owners(lev)[keep]
+    per_ctx = np.bincount(owner, minlength=len(lev.ctx))
+    stay = per_ctx > 0
+    if contexts is not None:
+        stay |= np.asarray(contexts, dtype=bool)
+    where = np.flatnonzero(stay)
+    starts = np.zeros(len(where) + 1, dtype=np.int64)
+    np.cumsum(per_ctx[where], out=starts[1:])
+    value = lev.value[keep]
+    n123 = np.zeros((len(lev.ctx), 3), np.int64)
+    for col, mask in enumerate((value == 1, value == 2, value >= 3)):
+        n123[:, col] = np.bincount(owner[mask], minlength=len(lev.ctx))
+    return Level(lev.grams[keep], value, lev.ctx[where], starts, np.asarray(lev.ctx_total[where], dtype=np.int64), n123[where])
 
 
 def prune_fitted(fitted: Fitted, keep: Sequence[np.ndarray | None]) -> Fitted:
     """The model without the n-grams ``keep`` rejects (``keep[m-1]`` per order; None keeps a level whole).
 
     Only orders ≥ 2 may lose n-grams. Every context's distribution still sums to 1
-    (dropped mass backs off, see the comment above :func:`ngram_scores`).
+    (dropped mass backs off, see the comment above :func:`ngram_scores`). A bigram context
+    v stays (with its total) while a kept trigram (u, v, w) reads it, even with no bigram
+    left: the file stores B(v, w) for the trigram's bands from v's total (docs/FORMAT.md §7.16).
     """
     if len(keep) != fitted.order:
         raise InvalidArgumentError(f"{len(keep)} keep masks given for order {fitted.order}")
     if keep[0] is not None and not bool(np.all(keep[0])):
         raise InvalidArgumentError("the unigram level is the vocabulary: drop words with drop_ngram_words instead")
+    levels = list(fitted.levels)
+    for m in range(fitted.order, 1, -1):
+        k = keep[m - 1]
+        needed = None
+        if m < fitted.order:  # contexts the kept (m+1)-grams back off into: their last m−1 context tokens
+            upper = levels[m]
+            lev = fitted.levels[m - 1]
+            base = fitted.bos + 1
+            needed = np.isin(_pack(lev.ctx, base), _pack(upper.grams[:, 1:m], base))
+        if k is None and needed is None:
+            continue
+        levels[m - 1] = prune_level(fitted.levels[m - 1], np.ones(len(fitted.levels[m - 1].grams), bool) if k is None else k,
+                                    contexts=needed)
     out = copy.copy(fitted)
-    out.levels = [lev if k is None else prune_level(lev, k) for lev, k in zip(fitted.levels, keep)]
+    out.levels = levels
     return out
 
 
@@ -803,20 +851,61 @@ def keep_best(values: Sequence[np.ndarray], k: int) -> list[np.ndarray | None]:
     return out
 
 
-class Prefitted(Estimator):
-    """An estimator whose fit returns a model fitted (and pruned) already: how a pruned model reaches :func:`store.build`."""
+def context_bigrams(fitted: Fitted) -> np.ndarray:
+    """For each stored trigram (u, v, w), the index of its context bigram (u, v) in ``levels[1].grams``.
 
-    def __init__(self, fitted: Fitted) -> None:
-        self.fitted = fitted
-        self.name = fitted.name  # type: ignore[misc]
+    Empty below order 3. Every trigram's context is a stored bigram in a model fitted from
+    counts and in a file (the format keeps it); anything else is refused.
+    """
+    if fitted.order < 3:
+        return np.zeros(0, np.int64)
+    g2, g3 = fitted.levels[1].grams, fitted.levels[2].grams
+    if len(g3) == 0:
+        return np.zeros(0, np.int64)
+    base = fitted.bos + 1
+    k2, q = _pack(g2, base), _pack(g3[:, :2], base)
+    pos = np.searchsorted(k2, q)
+    if len(k2) == 0 or int(pos.max()) >= len(k2) or not bool(np.all(k2[pos] == q)):
+        raise InvalidArgumentError("a stored trigram's context (u, v) is not a stored bigram")
+    return np.asarray(pos, dtype=np.int64)
 
-    def fit(self, counts: NgramCounts) -> Fitted:
-        return self.fitted
+
+def with_dependants(fitted: Fitted, values: Sequence[np.ndarray]) -> list[np.ndarray]:
+    """Per-order ``values`` with each bigram raised to the largest value of the trigrams it is the context of.
+
+    The ranking under the rule "a kept trigram keeps its context bigram" (see the comment
+    above :func:`ngram_scores`): taking the best k by these values never keeps a trigram
+    without its context, ties apart (:func:`keep_contexts` settles those).
+    """
+    out = [np.asarray(v, dtype=np.float64).copy() for v in values]
+    if fitted.order >= 3 and len(out[2]):
+        np.maximum.at(out[1], context_bigrams(fitted), out[2])
+    return out
+
+
+def keep_contexts(fitted: Fitted, keep: Sequence[np.ndarray | None]) -> list[np.ndarray | None]:
+    """Keep masks with the context bigram (u, v) of every kept trigram (u, v, w) kept too."""
+    out = list(keep)
+    if fitted.order >= 3 and out[2] is not None and out[1] is not None:
+        k2 = np.asarray(out[1], dtype=bool).copy()
+        k2[context_bigrams(fitted)[np.asarray(out[2], dtype=bool)]] = True
+        out[1] = k2
+    return out
+
+
+def kept_ngrams(keep: Sequence[np.ndarray | None], fitted: Fitted) -> int:
+    """How many n-grams of order ≥ 2 the masks keep (None: the whole level)."""
+    return sum(len(lev.grams) if k is None else int(np.count_nonzero(k)) for lev, k in zip(fitted.levels[1:], keep[1:]))
 
 
 def ngram_file(counts: NgramCounts, tables: CountTables, fitted: Fitted, **build: int) -> Chunks:
-    """The model file of a fitted (possibly pruned) model, as chunks (written by :func:`store.atomic_write`)."""
-    sections, minor = build_ngram_sections(counts, tables, Prefitted(fitted), **build)
+    """The model file of a fitted (possibly pruned) model, as chunks (written by :func:`store.atomic_write`).
+
+    The bytes :func:`nextword.store.build` writes with ``fitted=fitted``: a pruned level's
+    dropped mass (context totals above the sum of the stored values) is recorded and
+    backs off through γ (docs/FORMAT.md §7.13, §7.15).
+    """
+    sections, minor = build_ngram_sections(counts, tables, None, fitted=fitted, **build)
     return encode_sections(sections, minor=minor)
 
 
@@ -878,13 +967,14 @@ def ngram_word_values(counts: NgramCounts, scores: Sequence[np.ndarray], fitted:
 def prune_ngrams_to_size(
     counts: NgramCounts,
     tables: CountTables,
-    estimator: Estimator,
+    estimator: Estimator | None,
     max_bytes: int,
     *,
     rule: Rule = DEFAULT_RULE,
     vocabulary: bool = True,
     progress: Callable[[str], None] | None = None,
     context_mass: Sequence[np.ndarray] | None = None,
+    fitted: Fitted | None = None,
     **build: int,
 ) -> tuple[Fitted, NgramCounts, CountTables, Chunks, dict[str, float]]:
     """Keep the most valuable n-grams (and words) of any estimator and order that fit ``max_bytes``.
@@ -907,9 +997,12 @@ def prune_ngrams_to_size(
       is left. With ``vocabulary=False`` such a budget is an error instead.
 
     ``rule`` "count" values each n-gram by its stored value (raw count, or Kneser-Ney's
-    adjusted count) instead of its score, per byte the same way.
-    ``progress(label)`` is called before each expensive step. ``context_mass`` is passed
-    to :func:`ngram_scores` (pruning a model read from a file; its words are kept).
+    adjusted count) instead of its score, per byte the same way. Either way a kept
+    trigram keeps its context bigram (the comment above :func:`ngram_scores`).
+    ``progress(label)`` is called before each expensive step. ``fitted`` prunes that
+    fitted model instead of fitting ``estimator`` to ``counts`` (a model read from a file,
+    :func:`prune_model`; its words are kept, so ``vocabulary`` must be False), and
+    ``context_mass`` is passed to :func:`ngram_scores` (P(h) where the raw counts are gone).
     """
     if rule not in RULES:
         raise InvalidArgumentError(f"unknown pruning rule {rule!r}; expected one of {RULES}")
@@ -923,13 +1016,16 @@ def prune_ngrams_to_size(
         if progress is not None:
             progress(label)
 
-    if estimator.name == "jm" and counts.order == 2:
+    if fitted is None and estimator is None:
+        raise InvalidArgumentError("prune_ngrams_to_size needs an estimator or a fitted model")
+    if (fitted.name if fitted is not None else estimator.name) == "jm" and counts.order == 2:  # type: ignore[union-attr]
         raise InvalidArgumentError("a Jelinek-Mercer bigram model is pruned by prune_to_size (its file stores the counts themselves)")
-    if context_mass is not None and vocabulary:
-        raise InvalidArgumentError("a model read from a file keeps its words (vocabulary=False): dropping words needs its raw counts")
+    if fitted is not None and vocabulary:
+        raise InvalidArgumentError("a fitted model keeps its words (vocabulary=False): dropping words needs its raw counts")
     words_before = tables.n_words
-    say("fitting")
-    fitted = estimator.fit(counts)
+    if fitted is None:
+        say("fitting")
+        fitted = estimator.fit(counts)  # type: ignore[union-attr]
     chunks = ngram_file(counts, tables, fitted, **build)
     total = stored_ngrams(fitted)
     if _nbytes(chunks) <= max_bytes:
@@ -941,10 +1037,11 @@ def prune_ngrams_to_size(
     floor = _nbytes(ngram_file(counts, tables, unigrams_only(fitted), **build))
     costs = _order_costs(counts, tables, fitted, full, floor, say, build)
     if not vocabulary and floor > max_bytes:
-        how = ("a model read from a file keeps its words: train it with --max-size to let words go" if context_mass is not None
+        how = ("a model read from a file keeps its words: train it with --max-size to let words go" if estimator is None
                else "let the vocabulary shrink too (the default; not with --keep-vocabulary / vocabulary=False) or lower max_vocab")
         raise InvalidArgumentError(f"a budget of {max_bytes:,} bytes is below the vocabulary alone ({floor:,} bytes); {how}")
     if vocabulary:
+        assert estimator is not None  # a fitted model is pruned with vocabulary=False (checked above)
         wv = ngram_word_values(counts, scores, fitted)
         keep = _choose_ngram_words(counts, tables, estimator, fitted, scores, wv, costs, floor, max_bytes, build)
         n = tables.n_words
@@ -1046,9 +1143,14 @@ def _fit_ngrams(counts: NgramCounts, tables: CountTables, fitted: Fitted, scores
         return fitted, chunks, {"kept": total, "removed": 0, "bytes": _nbytes(chunks)}
     sizes = [len(lev.grams) for lev in fitted.levels]
     values = [np.zeros(0)] + [np.where(np.isfinite(scores[m - 1]), scores[m - 1] / cost[m], np.inf) for m in range(2, order + 1)]
+    ranked = with_dependants(fitted, values)  # a bigram leaves with its last trigram (see above ngram_scores)
+
+    def choose(k: int) -> list[np.ndarray | None]:
+        return keep_contexts(fitted, keep_best(ranked, k))
+
     # predicted size of keeping the best k: floor + the costs of the kept n-grams, in value order
     flat_cost = np.concatenate([np.full(sizes[m - 1], cost[m]) for m in range(2, order + 1)])
-    flat_value = np.concatenate(values[1:])
+    flat_value = np.concatenate(ranked[1:])
     by_value = np.argsort(-flat_value, kind="stable")
     predicted = floor + np.concatenate([[0.0], np.cumsum(flat_cost[by_value])])
     budget = float(max_bytes)
@@ -1061,12 +1163,13 @@ def _fit_ngrams(counts: NgramCounts, tables: CountTables, fitted: Fitted, scores
         if k <= lo or k >= hi:
             break
         say(f"building a file with {k:,} of {total:,} n-grams")
-        pruned = prune_fitted(fitted, keep_best(values, k))
+        keep = choose(k)
+        pruned = prune_fitted(fitted, keep)
         chunks = ngram_file(counts, tables, pruned, **build)
         size = _nbytes(chunks)
         known[k] = size
         if size <= max_bytes:
-            lo, best = k, (k, chunks, pruned)
+            lo, best = k, (kept_ngrams(keep, fitted), chunks, pruned)
             if max_bytes - size < 0.002 * max_bytes:
                 break
         else:
@@ -1076,9 +1179,10 @@ def _fit_ngrams(counts: NgramCounts, tables: CountTables, fitted: Fitted, scores
         guess = k0 + (budget - s0) * (k1 - k0) / max(s1 - s0, 1)
         k = int(guess) if hi - lo > 2 else lo + 1
     if best is None:
-        pruned = prune_fitted(fitted, keep_best(values, lo))
+        keep = choose(lo)
+        pruned = prune_fitted(fitted, keep)
         chunks = ngram_file(counts, tables, pruned, **build)
-        best = (lo, chunks, pruned)
+        best = (kept_ngrams(keep, fitted), chunks, pruned)
     k, chunks, pruned = best
     if _nbytes(chunks) > max_bytes:  # only when even the vocabulary alone is over the budget
         raise InvalidArgumentError(f"could not fit {max_bytes:,} bytes: the vocabulary alone takes {floor:,}")
@@ -1116,84 +1220,74 @@ def write_to_size(
     return small_tables, len(fitted.levels[1].grams)
 
 
-def fitted_from_model(model: Model) -> tuple[Fitted, NgramCounts, CountTables, list[np.ndarray]]:
-    """The fitted levels a Kneser-Ney or order-3 model file stores, to prune the file itself.
+def file_context_mass(fitted: Fitted) -> list[np.ndarray]:
+    """P(h) of every context per order (``out[m-1]``) of a model read from a file, for :func:`ngram_scores`.
 
-    Returns (fitted model, its levels as counts, tables with the vocabulary, P(h) of every
-    context per order for :func:`ngram_scores`). Stored values are what the estimator
-    stores (Kneser-Ney's adjusted counts), so nothing is fitted again; each context's
-    total is the file's (HIST, TTOT, or c(v) from the unigram counts for Jelinek-Mercer),
-    dropped mass included when the file was pruned before. P(h) comes from raw counts:
-    the highest order's stored values are raw counts, so P(u v) = TTOT/N (order 3) and
-    P(v) = c(v •)/N with c(v •) the bigram row total (order 2, and Jelinek-Mercer, whose
-    every value is raw); for a Kneser-Ney trigram file the bigram contexts' raw totals are
-    the sums of the trigram totals ending in v (every token after v has a token before v,
-    or v is the sentence start, whose row is raw) — exact for a file never pruned, a lower
-    bound where whole trigram contexts were dropped.
-    Words cannot be dropped this way (that needs the raw counts to fit again).
+    The file has no raw counts, but its highest order's values are raw counts, and so
+    are Jelinek-Mercer's every value and Kneser-Ney's bigram row after ``<s>``:
+
+    * order 2, and every Jelinek-Mercer bigram level: P(v) = T(v)/N, T(v) the context total;
+    * Kneser-Ney order 3: c(v •) = Σ_u T(u v) (every token after v ≠ ``<s>`` has a token
+      before v), c(<s> •) = T(<s>); P(u v) = T(u v)/N;
+
+    with N = Σ_v c(v •), the number of predicted tokens. Exact for a file never pruned
+    (the same as :func:`context_probability` on its training counts); where a previous
+    pruning dropped whole trigram contexts, Kneser-Ney's c(v •) is a lower bound.
     """
-    from .estimators import FittedJelinekMercer, FittedKneserNey
-    from .reference_kn import Discounts
+    lev2 = fitted.levels[1]
+    raw2 = np.asarray(lev2.ctx_total, dtype=np.float64)
+    if fitted.order >= 3 and fitted.name == "kn":
+        lev3 = fitted.levels[2]
+        by_v = np.bincount(lev3.ctx[:, 1], weights=lev3.ctx_total.astype(np.float64), minlength=fitted.bos + 1)
+        raw2 = np.where(lev2.ctx[:, 0] == fitted.bos, raw2, by_v[lev2.ctx[:, 0]])
+    n_tokens = max(float(raw2.sum()), 1.0)
+    out = [np.zeros(0), raw2 / n_tokens]
+    if fitted.order >= 3:
+        out.append(fitted.levels[2].ctx_total.astype(np.float64) / n_tokens)
+    return out
 
-    a = model._src.arrays
-    n = model.n_words
-    n_hist = n + 3
-    bos = n + 2
-    unig = np.asarray(a["UNIG"], dtype=np.int64)
-    seen = np.flatnonzero(unig)
-    rows = np.asarray(a["ROWS"], dtype=np.int64)
-    alph = np.asarray(a["ALPH"], dtype=np.int64)
-    left = np.repeat(np.arange(n_hist), np.diff(rows))
-    right = alph[np.asarray(a["SUCC"], dtype=np.int64)]
-    value2 = model._counts(np.arange(int(rows[-1])))
-    o2 = np.lexsort((right, left))
-    g2 = np.column_stack((left[o2], right[o2]))
-    v2 = value2[o2]
-    grams = [seen[:, None], g2]
-    values = [unig[seen], v2]
-    kn = model.estimator == "kn"
-    hist = np.asarray(a["HIST"], dtype=np.int64) if kn else history_counts(unig, n)
-    if model.order == 3:
-        trow = np.asarray(a["TROW"], dtype=np.int64)
-        tcts = np.asarray(a["TCTS"], dtype=np.int64)
-        ctx_v = np.repeat(np.arange(n_hist), np.diff(trow))
-        ctx_u = np.asarray(a["TCTU"], dtype=np.int64)
-        owner = np.repeat(np.arange(len(ctx_u)), np.diff(tcts))
-        g3 = np.column_stack((ctx_u[owner], ctx_v[owner], alph[np.asarray(a["TSUC"], dtype=np.int64)]))
-        o3 = np.lexsort((g3[:, 2], g3[:, 1], g3[:, 0]))
-        grams.append(g3[o3])
-        values.append(np.asarray(a["TVAL"], dtype=np.int64)[o3])
-        ttot = np.asarray(a["TTOT"], dtype=np.int64)
-    counts = NgramCounts(n, tuple(grams), tuple(values))
-    levels = [Level.of(g, v) for g, v in zip(grams, values)]
-    levels[1] = dataclasses.replace(levels[1], ctx_total=hist[levels[1].ctx[:, 0]])
-    n_tokens = float(hist.sum()) if kn or model.order == 2 else float(unig.sum())
-    mass = [np.zeros(0), hist[levels[1].ctx[:, 0]] / float(unig.sum() if not kn else hist.sum())]
-    if model.order == 3:
-        l3 = levels[2]
-        ctx_key = l3.ctx[:, 0] * n_hist + l3.ctx[:, 1]
-        file_key = ctx_u * n_hist + ctx_v
-        order = np.argsort(file_key)
-        levels[2] = dataclasses.replace(l3, ctx_total=ttot[order][np.searchsorted(file_key[order], ctx_key)])
-        if kn:
-            raw = np.bincount(ctx_v, weights=ttot, minlength=n_hist)
-            raw[bos] = hist[bos]
-            n_tokens = float(raw.sum())
-            mass[1] = raw[levels[1].ctx[:, 0]] / n_tokens
-        mass.append(levels[2].ctx_total / n_tokens)
-    fitted: Fitted
-    if kn:
-        fitted = FittedKneserNey(counts, levels, [Discounts(*d) for d in model.discounts], {})
-    else:
-        lam3 = model.stored_lam3 if model.stored_lam3 is not None else model.stored_lam
-        fitted = FittedJelinekMercer(counts, levels, [1.0, model.stored_lam, lam3][: model.order])
+
+def prune_model(
+    model: Model,
+    max_bytes: int,
+    *,
+    rule: Rule = DEFAULT_RULE,
+    vocabulary: bool = True,
+    progress: Callable[[str], None] | None = None,
+) -> tuple[Chunks, dict[str, float]]:
+    """A model file of any estimator and order pruned to ``max_bytes``: (file chunks, info), nothing written.
+
+    A Jelinek-Mercer bigram file goes through :func:`prune_to_size` on its counts
+    (:func:`tables_from_model`; ``vocabulary`` lets words go). Any other file is pruned
+    on the fitted estimator it stores (:func:`nextword.export.fitted_from_model`: values,
+    context totals with any dropped mass, discounts or λ, all read through the model's
+    public accessors), with P(h) from :func:`file_context_mass`; its words stay (dropping
+    one needs the raw counts to fit again), so a budget below the vocabulary is an error.
+    The skyband settings are the file's (:meth:`Model.header`).
+    """
+    head = model.header()
+    build = {"skyband_k": int(head["skyband_k"]), "skyband_min": int(head["skyband_min"])}
+    if model.estimator == "jm" and model.order == 2:
+        _, chunks, info = prune_to_size(tables_from_model(model), max_bytes, rule=rule, lam=model.stored_lam,
+                                        vocabulary=vocabulary, progress=progress, **build)
+        return chunks, info
+    from .export import fitted_from_model  # the file's fitted estimator, rebuilt from its stored levels
+
+    fitted = fitted_from_model(model)
+    levels = fitted.levels
+    counts = NgramCounts(model.n_words, tuple(lev.grams for lev in levels), tuple(lev.value for lev in levels))
+    unigram = np.zeros(model.n_words + 2, dtype=np.int64)
+    unigram[levels[0].grams[:, 0]] = levels[0].value
     tables = CountTables(
-        keys=[model._key(i) for i in range(n)],
-        displays=[model.display(i) for i in range(n)],
-        unigram=unig,
-        pair_left=g2[:, 0],
-        pair_right=g2[:, 1],
-        pair_count=v2,
+        keys=model.word_keys(),
+        displays=[model.display(i) for i in range(model.n_words)],
+        unigram=unigram,
+        pair_left=levels[1].grams[:, 0],
+        pair_right=levels[1].grams[:, 1],
+        pair_count=levels[1].value,
         stats=dict(model.stats),
     )
-    return fitted, counts, tables, mass
+    _, _, _, chunks, info = prune_ngrams_to_size(
+        counts, tables, None, max_bytes, rule=rule, vocabulary=False, progress=progress,
+        context_mass=file_context_mass(fitted), fitted=fitted, **build)
+    return chunks, info

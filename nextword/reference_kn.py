@@ -40,6 +40,7 @@ from collections import Counter
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 
+from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT
 from .errors import InvalidArgumentError
 from .text import BOS, EOS, UNK, fold, parse_typed
 
@@ -111,8 +112,8 @@ class DictKneserNey:
         messages: Iterable[str],
         *,
         order: int = 3,
-        min_count: int = 2,
-        max_vocab: int = 30_000,
+        min_count: int = DEFAULT_MIN_COUNT,
+        max_vocab: int = DEFAULT_MAX_VOCAB,
         discounts: Sequence[float] | None = None,
     ) -> None:
         from .baselines import key_sentences

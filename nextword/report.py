@@ -41,6 +41,16 @@ def eval_data(model_path: str, overall: LogStats, per_log: list[LogStats], basel
     }
 
 
+def _model_baselines(baselines: dict[str, Any]) -> dict[str, Any]:
+    """The baseline models measured on the same logs, by name: the bigram of the same
+    smoothing (order-3 models), then the λ runs (Jelinek-Mercer)."""
+    out: dict[str, Any] = {}
+    if baselines.get("bigram"):
+        out[baselines["bigram"]["name"]] = baselines["bigram"]
+    out.update(baselines.get("lambda", {}))
+    return out
+
+
 def _pct(x: float) -> str:
     return f"{100 * x:5.1f}%" if math.isfinite(x) else "   n/a"
 
@@ -82,9 +92,11 @@ def text_report(data: dict[str, Any], overall: LogStats, per_log: list[LogStats]
     if b:
         out.append("")
         out.append("baselines on the same logs:")
-        for name, item in b.get("lambda", {}).items():
+        for name, item in _model_baselines(b).items():
             ksr = ", ".join(f"KSR@{row['k']} {_pct(row['ksr']).strip()}" for row in item["per_k"])
             out.append(f"  {name}: {ksr}; perplexity {item['perplexity']:.2f}")
+        if b.get("bigram"):
+            out.append(f"  bigram baseline: {b['bigram']['how']}")
         d = b.get("dict")
         if d:
             out.append(
@@ -130,10 +142,12 @@ def markdown_report(data: dict[str, Any], images: list[str], note: str = "") -> 
         lines.append("| model | " + " | ".join(f"KSR@{r['k']}" for r in o["per_k"]) + " | perplexity |")
         lines.append("|---|" + "---|" * (len(o["per_k"]) + 1))
         lines.append("| this model | " + " | ".join(_pct(r["ksr"]).strip() for r in o["per_k"]) + f" | {o['perplexity']:.2f} |")
-        for name, item in b.get("lambda", {}).items():
+        for name, item in _model_baselines(b).items():
             lines.append(
                 f"| {name} | " + " | ".join(_pct(r["ksr"]).strip() for r in item["per_k"]) + f" | {item['perplexity']:.2f} |"
             )
+        if b.get("bigram"):
+            lines += ["", f"The bigram baseline: {b['bigram']['how']}; it shows what the two-word context buys."]
         d, n = b.get("dict"), b.get("nltk")
         if d or n:
             lines += ["", "| implementation | fit | suggest p50 | ratio to the engine |", "|---|---|---|---|"]
@@ -245,7 +259,7 @@ def ksr_figure(data: dict[str, Any]) -> Any:
     o = data["overall"]
     ks = [r["k"] for r in o["per_k"]]
     series: list[tuple[str, list[float]]] = [("this model", [100 * r["ksr"] for r in o["per_k"]])]
-    for name, item in (data.get("baselines") or {}).get("lambda", {}).items():
+    for name, item in _model_baselines(data.get("baselines") or {}).items():
         series.append((name, [100 * r["ksr"] for r in item["per_k"]]))
     same = identical_to(series)
     fig, ax = _figure()
@@ -317,8 +331,46 @@ def _mark_other(ax: Any, lam: float | None, chosen: float, xs: list[float], ys: 
             linestyle="none", label=f"{name} λ = {float(lam):.4f}")
 
 
+def _order_tune_figures(result: dict[str, Any]) -> dict[str, Any]:
+    """:func:`tune_figures` for λ per order: one perplexity curve per order (the other
+    orders at their optimum), each order's chosen λ marked; the shared-λ KSR curve."""
+    chosen = [float(x) for x in result["chosen_lambdas"]]
+    figs: dict[str, Any] = {}
+    fig, ax = _figure()
+    for i, (m, rows) in enumerate(result["perplexity_curves"].items()):
+        xs, ys = [r["lambda"] for r in rows], [r["perplexity"] for r in rows]
+        line, = ax.plot(xs, ys, marker=_MARKERS[i % len(_MARKERS)], linestyle=_STYLES[i % len(_STYLES)],
+                        label=f"λ{m} varied, other orders at their optimum")
+        lam = chosen[int(m) - 2]
+        import numpy as np
+
+        order = np.argsort(xs)
+        y = float(np.interp(lam, np.asarray(xs)[order], np.asarray(ys)[order]))
+        ax.plot([lam], [y], marker="*", markersize=12, color=line.get_color(), linestyle="none",
+                label=f"chosen λ{m} = {lam:.4f} ({result.get('objective', '')})")
+    ax.set_xlabel("λ of one order")
+    ax.set_ylabel("held-out perplexity")
+    ax.legend(fontsize=8)
+    figs["perplexity.png"] = fig
+    if result["ksr_curve"]:
+        fig, ax = _figure()
+        kc = result["ksr_curve"]
+        xs, ys = [r["lambda"] for r in kc], [100 * r["ksr"] for r in kc]
+        ax.plot(xs, ys, "o-", markersize=4, label=f"KSR@{result['k']}, one λ for both orders")
+        best = result.get("keystroke_optimal_lambda")
+        if best is not None:
+            _mark_lambda(ax, xs, ys, float(best), "keystroke-optimal")
+        ax.set_xlabel("λ (both orders)")
+        ax.set_ylabel(f"KSR@{result['k']} (%)")
+        ax.legend(fontsize=8)
+        figs["ksr.png"] = fig
+    return figs
+
+
 def tune_figures(result: dict[str, Any]) -> dict[str, Any]:
     """The figures of ``nextword tune --report``: {file name: Figure}, the chosen λ marked on each."""
+    if "chosen_lambdas" in result:
+        return _order_tune_figures(result)
     chosen = float(result["chosen_lambda"])
     why = str(result.get("objective", ""))
     figs: dict[str, Any] = {}

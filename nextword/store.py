@@ -22,6 +22,8 @@ import marisa_trie
 import msgpack
 import numpy as np
 
+from .codecs import COUNT_ESCAPE as COUNT_ESCAPE  # one source: the codec owns the escape byte
+from .codecs import EXACT, ExactCodec, codec_named
 from .counts import CountTables
 from .errors import InvalidArgumentError, ModelFormatError
 from .paths import check_new_output as check_new_output  # re-exported: callers of the store use it
@@ -48,25 +50,59 @@ MAGIC: Final = b"\x89NWM\r\n\x1a\n"
 FORMAT_VERSION: Final = (1, 0)
 #: Minor version 1 adds λ by history count (META "lambda_buckets"); minor version 2 adds
 #: pruned models (optional HIST section: c(v) as the sum of the kept pairs); minor version
-#: 3 adds the estimator and order fields of META, Kneser-Ney (HN13) and the trigram
-#: sections (TROW ... TN13). Files that use none of these stay 1.0.
-MAX_MINOR: Final = 3
-#: sections that only some files have: tag -> element type ("id" = the file's id type)
+#: 3 added the estimator and order fields of META, Kneser-Ney and a first trigram layout;
+#: minor version 4 replaces that layout (value codec in META, one-byte trigram values,
+#: derived context totals, dropped mass, trigram skybands; docs/FORMAT.md §7.11-7.16).
+#: Files that use none of these stay 1.0. 1.3 files are refused with a message naming
+#: the version (they were never released; retraining writes 1.4).
+MAX_MINOR: Final = 4
+#: the layout of Kneser-Ney and trigram files
+NGRAM_MINOR: Final = 4
+#: bigram entries per block of TCTB (an entry's trigram start = its block's base + the
+#: lengths of the entries before it in the block)
+CTX_BLOCK: Final = 16
+#: a trigram context with more successors than this has (Σ values, n₁, n₂, n₃₊) stored in
+#: TLNI/TLNV; shorter ones are summed from their row at query time
+SUMMARY_MIN: Final = 32
+#: the value tags of each level (the codec's sections)
+BIGRAM_TAGS: Final = (b"CNTS", b"BIGI", b"BIGC")
+TRIGRAM_TAGS: Final = (b"TVAL", b"TBGI", b"TBGC")
+#: each bigram entry's number of trigram successors (0: not a trigram context), same escapes
+CONTEXT_TAGS: Final = (b"TLEN", b"TLEI", b"TLEV")
+#: sections that only some files have: tag -> element type ("id" = the file's id type,
+#: "u2|u4" = either, declared in the section table)
 _OPTIONAL: Final = {
     b"HIST": "u4",
     b"HN13": "u4",
-    b"TROW": "u4",
-    b"TCTU": "id",
-    b"TCTS": "u4",
+    b"HDRI": "id",
+    b"HDRV": "u4",
+    b"TCTB": "u4",
+    b"TLEN": "u1",
+    b"TLEI": "u4",
+    b"TLEV": "u4",
     b"TSUC": "id",
-    b"TVAL": "u4",
-    b"TTOT": "u4",
-    b"TN13": "u4",
+    b"TVAL": "u1",
+    b"TBGI": "u4",
+    b"TBGC": "u4",
+    b"TLNI": "u4",
+    b"TLNV": "u4",
+    b"TDRI": "u4",
+    b"TDRV": "u4",
+    b"TSGS": "u4",
+    b"TSGE": "u4",
+    b"TSKP": "u4",
+    b"TSKI": "u2|u4",
+    b"TSKC": "u2|u4",
 }
 #: smoothing methods and n-gram orders a model file can record (META "estimator", "order")
 ESTIMATORS: Final = ("jm", "kn")
 ORDERS: Final = (2, 3)
-_TRIGRAM: Final = (b"TROW", b"TCTU", b"TCTS", b"TSUC", b"TVAL", b"TTOT")
+_TRIGRAM: Final = (
+    b"TCTB", b"TLEN", b"TLEI", b"TLEV", b"TSUC", b"TVAL", b"TBGI", b"TBGC",
+    b"TLNI", b"TLNV", b"TDRI", b"TDRV", b"TSGS", b"TSGE", b"TSKP", b"TSKI", b"TSKC",
+)  # fmt: skip
+#: in every 1.4 n-gram file: per-history totals (with dropped mass) and the dropped part
+_NGRAM_BASE: Final = (b"HIST", b"HDRI", b"HDRV")
 HEADER = struct.Struct("<8sHHIQII")  # magic, major, minor, sections, file size, table crc, header crc
 ENTRY = struct.Struct("<4sB3xQQI4x")  # tag, dtype code, offset, length, crc
 MAX_SECTIONS: Final = 64
@@ -80,7 +116,6 @@ DEFAULT_SKYBAND_MIN: Final = 64
 DEFAULT_SKYBAND_K: Final = 8
 #: Branching of the multi-level top lists used for prefix queries (see docs/FORMAT.md).
 TOPK_FANOUT: Final = 64
-COUNT_ESCAPE: Final = 255
 #: Largest λ a model file stores (and tuning chooses). At λ = 1 every pair not seen in
 #: training gets probability 0, so one unseen held-out pair makes perplexity infinite;
 #: at λ ≤ 0.999 every word keeps at least 0.001·c(w)/N. The cap costs little: for any λ
@@ -123,6 +158,9 @@ _SECTIONS: Final = {
 _BIGRAM_SIZED: Final = (b"SUCC", b"CNTS", b"BIGI", b"BIGC", b"SEGS", b"SEGE", b"SKYP", b"SKYI", b"SKYC")
 _CHECKED_ON_LOAD: Final = tuple(t for t in _SECTIONS if t not in _BIGRAM_SIZED)
 _U32_MAX: Final = 0xFFFFFFFF
+# optional sections checksummed on every load: vocabulary-sized and sparse ones (the
+# trigram-sized ones only with verify=True; queries check what they read from them)
+_OPTIONAL_CHECKED_ON_LOAD: Final = (b"HIST", b"HN13", b"HDRI", b"HDRV", b"TLEI", b"TLEV", b"TBGI", b"TBGC", b"TLNI", b"TLNV", b"TDRI", b"TDRV")
 
 
 def _id_dtype(n_words: int) -> np.dtype:
@@ -550,10 +588,7 @@ def build_sections(
     rows, right_pos, counts, row_sums = _sorted_pairs(tables, apos.astype(idt), idt, n_hist)
     if rows[-1] > _U32_MAX:
         raise InvalidArgumentError("too many bigrams for 32-bit offsets")
-    cnts = np.empty(len(counts), dtype=np.uint8)
-    np.minimum(counts, COUNT_ESCAPE, out=cnts, casting="unsafe")
-    bigi = np.flatnonzero(cnts == COUNT_ESCAPE).astype(np.uint32)
-    bigc = counts[bigi]
+    (_, _, cnts), (_, _, bigi), (_, _, bigc) = EXACT.encode(BIGRAM_TAGS, counts)
 
     long_rows = np.flatnonzero(np.diff(rows) > skyband_min)
     seg_s_a, seg_e_a = _prefix_segments(
@@ -577,9 +612,7 @@ def build_sections(
     del sky_parts
     skyc = np.concatenate(cum_parts) if cum_parts else np.zeros(0, sky_dtype)
     del cum_parts
-    # a history may hold more than its stored pairs: a pruned n-gram model keeps each
-    # context's total (the dropped mass, see nextword.prune) — h-prune's change (was !=)
-    if tables.history is not None and np.any(row_sums > tables.history):
+    if tables.history is not None and np.any(row_sums != tables.history):
         raise InvalidArgumentError("history counts disagree with the pairs")
 
     dis_ids = [i for i, (k, d) in enumerate(zip(tables.keys, tables.displays)) if k != d]
@@ -683,12 +716,12 @@ def _discount_checks(discounts: list[list[float]], order: int) -> tuple[list[lis
     its first term max(a − D(a), 0) grows strictly with a, i.e. 1 − D₁ < 2 − D₂ < 3 − D₃.
     Chen & Goodman's estimates usually satisfy it at that level; when they do not, the
     level takes one discount D₁ for every count (strictly increasing a − D₁), and the
-    note says why. The unigram level needs nothing: ids rank by its floor value itself,
-    and the trigram level's candidates are all scored.
+    note says why. The trigram level's skybands (§7.16) need the same of its discounts.
+    The unigram level needs nothing: ids rank by its floor value itself.
     """
     out = [list(d) for d in discounts]
     notes: dict[str, str] = {}
-    for m in range(2, 3):
+    for m in range(2, order + 1):
         d1, d2, d3 = out[m - 1]
         if not (1 - d1 < 2 - d2 < 3 - d3):
             notes[str(m)] = (
@@ -707,6 +740,118 @@ def _n123(owner: np.ndarray, value: np.ndarray, n_owner: int) -> np.ndarray:
     return out
 
 
+def level_mix(
+    kn: bool, param: Any, value: Any, total: Any, dropped: Any, n123: Any, lower: Any
+) -> Any:
+    """One interpolation step, α(value) + γ · lower, for floats or float64 arrays alike.
+
+    Kneser-Ney (``param`` = the level's [D₁, D₂, D₃₊]): α = max(a − D(a), 0)/T and
+    γ = (dropped + D₁n₁ + D₂n₂ + D₃n₃)/T; Jelinek-Mercer (``param`` = λ): α = λ·c/T and
+    γ = (1 − λ) + λ·dropped/T. T is the context's total, stored values plus the dropped
+    mass (0 unless pruned), so each context's distribution sums to 1 either way. The
+    build (skybands) and the queries call this one function, so both compute the same
+    floating-point numbers, in the operation order of the dict oracles.
+    """
+    n1, n2, n3 = n123
+    if kn:
+        d = param
+        if isinstance(value, np.ndarray):
+            disc = np.where(value >= 3, d[2], np.where(value >= 2, d[1], np.where(value >= 1, d[0], 0.0)))
+            alpha = np.maximum(value - disc, 0.0) / total
+        else:
+            one = 0.0 if value <= 0 else d[0] if value < 2 else d[1] if value < 3 else d[2]
+            alpha = max(value - one, 0.0) / total
+        return alpha + (dropped + d[0] * n1 + d[1] * n2 + d[2] * n3) / total * lower
+    lam = param
+    return lam * (value / total) + ((1.0 - lam) + lam * (dropped / total)) * lower
+
+
+def _rows_lookup(key_rows: np.ndarray, values: np.ndarray, keys: np.ndarray) -> np.ndarray:
+    """values[i] where key_rows[i] == key, else 0, for each key (key_rows sorted)."""
+    if len(key_rows) == 0:
+        return np.zeros(len(keys), dtype=np.int64)
+    at = np.minimum(np.searchsorted(key_rows, keys), len(key_rows) - 1)
+    return np.where(key_rows[at] == keys, values[at], 0).astype(np.int64)
+
+
+def trigram_lower_scores(
+    kn: bool,
+    param: Any,
+    floor: np.ndarray,
+    rows: np.ndarray,
+    succ: np.ndarray,
+    values2: np.ndarray,
+    hist: np.ndarray,
+    dropped2: np.ndarray,
+    n123_2: np.ndarray | None,
+    ctx_v: np.ndarray,
+    tpos: np.ndarray,
+    alph: np.ndarray,
+) -> np.ndarray:
+    """The bigram-level score B(v, w) = α₂(v w) + γ₂(v)·P₁(w) of every trigram (u, v, w).
+
+    ``ctx_v`` is each trigram's v, ``tpos`` its successor's alphabetical position; the
+    bigram level is the file's rows (``rows``, ``succ``, ``values2``) with their totals
+    and dropped mass. The trigram skybands dominate on (trigram value, B) (§7.16).
+    """
+    n_pos = len(alph)
+    n_rows = len(rows) - 1
+    row_of = np.repeat(np.arange(n_rows, dtype=np.int64), np.diff(rows))
+    key2 = row_of * n_pos + succ.astype(np.int64)
+    key3 = ctx_v.astype(np.int64) * n_pos + tpos.astype(np.int64)
+    c2 = _rows_lookup(key2, values2.astype(np.int64), key3)
+    v = ctx_v.astype(np.int64)
+    tot = hist[v].astype(np.int64)
+    if len(tot) and int(tot.min()) <= 0:
+        raise InvalidArgumentError("a trigram context whose last word has no bigram total")
+    n123 = (0, 0, 0) if n123_2 is None else (n123_2[v, 0], n123_2[v, 1], n123_2[v, 2])
+    lower = floor[alph[tpos.astype(np.int64)].astype(np.int64)]
+    return np.asarray(level_mix(kn, param, c2, tot, dropped2[v], n123, lower), dtype=np.float64)
+
+
+def trigram_bands(
+    starts: np.ndarray,
+    tpos: np.ndarray,
+    values3: np.ndarray,
+    lower: np.ndarray,
+    alpha_keys: Sequence[str],
+    n: int,
+    skyband_k: int,
+    skyband_min: int,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """TSGS, TSGE, TSKP, TSKI, TSKC: the k-skyband of every long trigram row segment.
+
+    Segments are the prefix segments of the trigram rows (as for the bigram rows, §7.9).
+    Entry x dominates w when x's trigram value is ≥ w's and x comes first in (B desc,
+    alphabetical position asc), B = :func:`trigram_lower_scores`; see docs/SEAMS.md.
+    """
+    t = len(tpos)
+    owner = np.repeat(np.arange(len(starts) - 1, dtype=np.int64), np.diff(starts))
+    long_ctx = np.flatnonzero(np.diff(starts) > skyband_min)
+    seg_s, seg_e = _prefix_segments(
+        _prefix_groups(alpha_keys, skyband_min),
+        tpos,
+        starts[long_ctx],
+        _row_word_ends(starts, tpos, long_ctx, n),
+        skyband_min,
+    )
+    rank = np.empty(t, dtype=np.int64)
+    if len(seg_s):
+        rank[np.lexsort((tpos, -lower, owner))] = np.arange(t)
+    longest = int((seg_e - seg_s).max(initial=0))
+    sky_dtype = np.dtype("<u2") if longest <= 0xFFFF else np.dtype("<u4")
+    bands, cums = [], []
+    for a, b in zip(seg_s.tolist(), seg_e.tolist()):
+        band, cum = _skyband(rank[a:b], values3[a:b], skyband_k)
+        bands.append(band.astype(sky_dtype))
+        cums.append(cum.astype(sky_dtype))
+    skyp = np.zeros(len(bands) + 1, dtype=np.int64)
+    skyp[1:] = np.cumsum(np.fromiter(map(len, bands), dtype=np.int64, count=len(bands)))
+    skyi = np.concatenate(bands) if bands else np.zeros(0, sky_dtype)
+    skyc = np.concatenate(cums) if cums else np.zeros(0, sky_dtype)
+    return seg_s, seg_e, skyp, skyi.astype(sky_dtype), skyc.astype(sky_dtype)
+
+
 def build_ngram_sections(
     counts: Any,
     tables: CountTables,
@@ -714,17 +859,24 @@ def build_ngram_sections(
     *,
     skyband_k: int = DEFAULT_SKYBAND_K,
     skyband_min: int = DEFAULT_SKYBAND_MIN,
+    fitted: Any = None,
 ) -> tuple[list[tuple[bytes, np.dtype | None, bytes | np.ndarray]], int]:
     """The sections of a model file for any estimator and order 2 or 3, and its minor version.
 
     ``counts`` (:class:`~nextword.ngrams.NgramCounts`) holds the n-grams in the ids of
     ``tables`` (which gives the keys, spellings and corpus statistics); ``estimator``
-    (:class:`~nextword.estimators.Estimator`) fits the values to store. A
-    Jelinek-Mercer bigram gives exactly the file :func:`build_sections` gives (format
+    (:class:`~nextword.estimators.Estimator`) fits the values to store, unless
+    ``fitted`` (its :class:`~nextword.estimators.Fitted`, e.g. a pruned one) is given.
+    A Jelinek-Mercer bigram gives exactly the file :func:`build_sections` gives (format
     1.0). Otherwise ids are re-ranked by the estimator's unigram level (Kneser-Ney: the
     continuation counts, ties by key), the bigram rows hold the bigram level's values,
-    HIST their totals (Kneser-Ney), HN13 the bigram contexts' n₁/n₂/n₃₊, and order 3
-    adds the trigram sections; see docs/FORMAT.md §7.13–7.15.
+    HIST their context totals, HN13 the bigram contexts' n₁/n₂/n₃₊ (Kneser-Ney), and
+    order 3 adds the trigram sections; see docs/FORMAT.md §7.11–7.16.
+
+    Pruned levels: a :class:`~nextword.estimators.base.Level` whose ``ctx_total`` exceeds
+    the sum of a context's stored values has *dropped mass*; the file records it
+    (HDRI/HDRV for the bigram level, TDRI/TDRV for the trigram level) and γ takes it in,
+    so every context still sums to 1.
     """
     from .estimators import FittedJelinekMercer, FittedKneserNey, unigram_floor  # they import this module
 
@@ -736,20 +888,27 @@ def build_ngram_sections(
         raise InvalidArgumentError(f"order must be one of {', '.join(map(str, ORDERS))}, got {order!r}")
     if tables.history is not None:
         raise InvalidArgumentError("pruned counts can only be stored as a Jelinek-Mercer bigram model for now")
-    fitted = estimator.fit(counts)
+    if fitted is None:
+        fitted = estimator.fit(counts)
     kn = isinstance(fitted, FittedKneserNey)
     if not kn and not isinstance(fitted, FittedJelinekMercer):
         raise InvalidArgumentError(f"no model file layout for estimator {getattr(fitted, 'name', fitted)!r}")
+    if fitted.order != order:
+        raise InvalidArgumentError(f"the fitted model is of order {fitted.order}, the counts of order {order}")
     lev1, lev2 = fitted.levels[0], fitted.levels[1]
     uni = np.zeros(n + 2, dtype=np.int64)
     uni[lev1.grams[:, 0]] = lev1.value
+    lam2 = 0.0
     if not kn:
         lam2 = float(fitted.lams[1])
         if order == 2:
+            if len(lev2.value) and bool(np.any(lev2.ctx_total != np.add.reduceat(lev2.value, lev2.ctx_start[:-1]))):
+                raise InvalidArgumentError("a pruned Jelinek-Mercer bigram is written by the pruning step (format 1.2)")
             return build_sections(tables, lam=lam2, skyband_k=skyband_k, skyband_min=skyband_min), 0
         if not np.array_equal(uni, np.asarray(tables.unigram, dtype=np.int64)):
             raise InvalidArgumentError("the n-gram counts disagree with the tables' unigram counts")
     # new ids: words by the floor descending, ties by key (JM: c(w)/N, the ids unchanged)
+    stored: list[list[float]] = []
     if kn:
         stored, notes = _discount_checks([[d.d1, d.d2, d.d3] for d in fitted.discounts], order)
         floor = unigram_floor(uni, stored[0], int(uni.sum()))
@@ -764,66 +923,110 @@ def build_ngram_sections(
     displays = [tables.displays[i] for i in old_of_new.tolist()]
     unigram = np.zeros(n + 2, dtype=np.int64)
     unigram[remap[: n + 2]] = uni
+    floor_new = np.empty(n + 2, dtype=np.float64)
+    floor_new[remap[: n + 2]] = floor
     g2 = remap[lev2.grams]
     o2 = np.lexsort((g2[:, 1], g2[:, 0]))
     left, right, value2 = g2[o2, 0], g2[o2, 1], lev2.value[o2]
     n_hist = n + 3
-    history = None
-    if kn:
-        # each context's total as the estimator holds it: the sum of its stored values, or
-        # more once pruned (the dropped mass, see nextword.prune) — h-prune's change
-        history = np.zeros(n_hist, dtype=np.int64)
+    row_sum = np.bincount(left, weights=value2, minlength=n_hist).astype(np.int64)
+    history = np.zeros(n_hist, dtype=np.int64)
+    if len(lev2.ctx):
         history[remap[lev2.ctx[:, 0]]] = lev2.ctx_total
-    new_tables = CountTables(keys, displays, unigram, left, right, value2, dict(tables.stats), history)
+    dropped2 = history - row_sum
+    if bool(np.any(dropped2 < 0)):
+        raise InvalidArgumentError("a bigram context total is below the sum of its stored values")
+    if int(history.max(initial=0)) > _U32_MAX:
+        raise InvalidArgumentError("bigram context totals too large for 32-bit fields")
+    new_tables = CountTables(keys, displays, unigram, left, right, value2, dict(tables.stats), None)
     sections = build_sections(new_tables, lam=0.0 if kn else lam2, skyband_k=skyband_k, skyband_min=skyband_min)
     meta = msgpack.unpackb(sections[0][2], raw=False)
     meta["estimator"] = "kn" if kn else "jm"
     meta["order"] = order
+    meta["codec"] = EXACT.meta()
+    idt = _id_dtype(n)
+    u4 = np.dtype("<u4")
+    hdri = np.flatnonzero(dropped2 > 0)
+    sections += [(b"HIST", u4, history), (b"HDRI", idt, hdri), (b"HDRV", u4, dropped2[hdri])]
+    n123_2 = None
     if kn:
         meta["discounts"] = stored
         why = {str(m): r for m, r in fitted.fallbacks.items()}
         for m, r in notes.items():
             why[m] = f"{why[m]}; {r}" if m in why else r
         meta["discount_notes"] = why
-        sections.append((b"HN13", np.dtype("<u4"), _n123(left, value2, n_hist).reshape(-1)))
+        n123_2 = _n123(left, value2, n_hist)
+        sections.append((b"HN13", u4, n123_2.reshape(-1)))
     else:
         meta["lambda3"] = float(fitted.lams[2])
     if order == 3:
-        idt = _id_dtype(n)
         alph = np.asarray(sections[4][2], dtype=np.int64)  # ALPH, as build_sections made it
         apos = np.empty(n + 2, dtype=np.int64)
         apos[alph] = np.arange(n + 2)
+        rows = np.asarray(sections[9][2], dtype=np.int64)  # ROWS, SUCC: the bigram entries
+        succ2 = np.asarray(sections[10][2], dtype=np.int64)
+        b = len(succ2)
+        n_pos = n + 2
+        key2 = np.repeat(np.arange(n_hist, dtype=np.int64), np.diff(rows)) * n_pos + succ2  # sorted
         lev3 = fitted.levels[2]
         g3 = remap[lev3.grams]
         pos = apos[g3[:, 2]]
-        o3 = np.lexsort((pos, g3[:, 0], g3[:, 1]))  # grouped by v, then u, successors alphabetical
-        u, v, pos, value3 = g3[o3, 0], g3[o3, 1], pos[o3], lev3.value[o3]
-        new_ctx = np.ones(len(u), dtype=bool)
+        tot_of_gram = np.repeat(lev3.ctx_total, np.diff(lev3.ctx_start))
+        o3 = np.lexsort((pos, apos[g3[:, 1]], g3[:, 0]))  # in bigram entry order (u, then v's position)
+        u, v, pos, value3, tot_of_gram = g3[o3, 0], g3[o3, 1], pos[o3], lev3.value[o3], tot_of_gram[o3]
+        t = len(u)
+        new_ctx = np.ones(t, dtype=bool)
         new_ctx[1:] = (u[1:] != u[:-1]) | (v[1:] != v[:-1])
         first = np.flatnonzero(new_ctx)
-        ctx_u, ctx_v = u[first], v[first]
+        j = len(first)
+        ckey = u[first] * n_pos + apos[v[first]]
+        big = np.searchsorted(key2, ckey)  # each context's bigram entry (u, v)
+        if j and (int(big.max()) >= b or not bool(np.all(key2[np.minimum(big, b - 1)] == ckey))):
+            raise InvalidArgumentError("a trigram context (u, v) is not a stored bigram; a pruned bigram level must keep it")
         owner = np.cumsum(new_ctx) - 1
-        trow = np.searchsorted(ctx_v, np.arange(n_hist + 1), side="left")
-        tcts = np.concatenate([first, [len(u)]])
-        # the contexts' totals as the estimator holds them (above the stored sum once pruned) — h-prune's change
-        ttot = lev3.ctx_total[np.repeat(np.arange(len(lev3.ctx)), np.diff(lev3.ctx_start))[o3][first]].astype(np.int64)
-        if len(value3) and (int(value3.max()) > _U32_MAX or int(ttot.max()) > _U32_MAX or len(value3) > _U32_MAX):
+        ctx_starts = np.concatenate([first, [t]]).astype(np.int64)
+        lengths = np.zeros(b, dtype=np.int64)
+        lengths[big] = np.diff(ctx_starts)
+        starts = np.zeros(b + 1, dtype=np.int64)
+        np.cumsum(lengths, out=starts[1:])
+        sums = np.bincount(owner, weights=value3, minlength=j).astype(np.int64)
+        dropped3 = tot_of_gram[first].astype(np.int64) - sums
+        if bool(np.any(dropped3 < 0)):
+            raise InvalidArgumentError("a trigram context total is below the sum of its stored values")
+        if t and (int(value3.max()) > _U32_MAX or int((sums + dropped3).max()) > _U32_MAX or t > _U32_MAX):
             raise InvalidArgumentError("too many trigrams (or counts too large) for 32-bit fields")
-        u4 = np.dtype("<u4")
+        tctb = starts[: b + 1 : CTX_BLOCK]
+        n123_3 = _n123(owner, value3, j)
+        long_ctx = np.flatnonzero(np.diff(ctx_starts) > SUMMARY_MIN)
+        tlnv = np.column_stack([sums[long_ctx], n123_3[long_ctx]]).reshape(-1)
+        tdri = np.flatnonzero(dropped3 > 0)
+        file_values2 = np.asarray(sections[11][2], dtype=np.int64)  # CNTS, BIGI, BIGC: the rows' order
+        file_values2[np.asarray(sections[12][2], dtype=np.int64)] = np.asarray(sections[13][2], dtype=np.int64)
+        lower = trigram_lower_scores(
+            kn, stored[1] if kn else lam2, floor_new, rows, succ2, file_values2, history, dropped2, n123_2, v, pos, alph,
+        )  # fmt: skip
+        alpha_keys = [keys[i] for i in alph[:n].tolist()]
+        tsgs, tsge, tskp, tski, tskc = trigram_bands(ctx_starts, pos, value3, lower, alpha_keys, n, skyband_k, skyband_min)
         sections += [
-            (b"TROW", u4, trow),
-            (b"TCTU", idt, ctx_u),
-            (b"TCTS", u4, tcts),
+            (b"TCTB", u4, tctb),
+            *EXACT.encode(CONTEXT_TAGS, lengths),
             (b"TSUC", idt, pos),
-            (b"TVAL", u4, value3),
-            (b"TTOT", u4, ttot),
+            *EXACT.encode(TRIGRAM_TAGS, value3),
+            (b"TLNI", u4, big[long_ctx]),
+            (b"TLNV", u4, tlnv),
+            (b"TDRI", u4, big[tdri]),
+            (b"TDRV", u4, dropped3[tdri]),
+            (b"TSGS", u4, tsgs),
+            (b"TSGE", u4, tsge),
+            (b"TSKP", u4, tskp),
+            (b"TSKI", tski.dtype, tski),
+            (b"TSKC", tskc.dtype, tskc),
         ]
-        if kn:
-            sections.append((b"TN13", u4, _n123(owner, value3, len(first)).reshape(-1)))
-        meta["trigrams"] = int(len(u))
-        meta["trigram_contexts"] = int(len(first))
+        meta["trigrams"] = int(t)
+        meta["trigram_contexts"] = int(j)
+        meta["trigram_summary_min"] = SUMMARY_MIN
     sections[0] = (b"META", None, msgpack.packb(meta, use_bin_type=True))
-    return sections, 3
+    return sections, NGRAM_MINOR
 
 
 def build(
@@ -834,13 +1037,18 @@ def build(
     *,
     skyband_k: int = DEFAULT_SKYBAND_K,
     skyband_min: int = DEFAULT_SKYBAND_MIN,
+    fitted: Any = None,
 ) -> None:
     """Fit ``estimator`` to ``counts`` and write the model file atomically to ``path``.
 
     The one entry point from n-gram counts (of any order the format stores) to a file;
-    see :func:`build_ngram_sections`.
+    see :func:`build_ngram_sections`. ``fitted`` stores an already fitted (e.g. pruned)
+    model instead of fitting ``estimator``: its levels' ``ctx_total`` may exceed the sum
+    of a context's values (the dropped mass, recorded so that every context sums to 1).
     """
-    sections, minor = build_ngram_sections(counts, tables, estimator, skyband_k=skyband_k, skyband_min=skyband_min)
+    sections, minor = build_ngram_sections(
+        counts, tables, estimator, skyband_k=skyband_k, skyband_min=skyband_min, fitted=fitted
+    )
     atomic_write(path, encode_sections(sections, minor=minor))
 
 
@@ -957,7 +1165,14 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
         raise _fail(name, "header checksum mismatch (damaged file)")
     if major != FORMAT_VERSION[0] or minor > MAX_MINOR:
         raise _fail(
-            name, f"unsupported format version {major}.{minor} (this library reads {FORMAT_VERSION[0]}.0 to {FORMAT_VERSION[0]}.{MAX_MINOR})"
+            name,
+            f"unsupported format version {major}.{minor} (this library reads {FORMAT_VERSION[0]}.0 to "
+            f"{FORMAT_VERSION[0]}.2 and {FORMAT_VERSION[0]}.{MAX_MINOR})",
+        )
+    if minor == 3:
+        raise _fail(
+            name,
+            "format 1.3 (the first Kneser-Ney/trigram layout) is no longer read; retrain the model to write format 1.4",
         )
     if file_size != size:
         raise _fail(name, f"file is {size} bytes but its header says {file_size} (truncated or appended)")
@@ -998,7 +1213,8 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
     if missing:
         raise _fail(name, f"missing sections {', '.join(missing)}")
     optional = [t for t in _OPTIONAL if t in sections]
-    for tag in [*(_SECTIONS if verify else _CHECKED_ON_LOAD), *optional]:
+    small = [t for t in optional if verify or t in _OPTIONAL_CHECKED_ON_LOAD]
+    for tag in [*(_SECTIONS if verify else _CHECKED_ON_LOAD), *small]:
         code, off, length, crc = sections[tag]
         if zlib.crc32(buf[off : off + length]) != crc:
             raise _fail(name, f"section {tag.decode()} checksum mismatch (damaged file)")
@@ -1033,7 +1249,11 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
 
     for tag in optional:
         code, off, length, _ = sections[tag]
-        want = idt if _OPTIONAL[tag] == "id" else np.dtype("<" + _OPTIONAL[tag])
+        kind = _OPTIONAL[tag]
+        if kind == "u2|u4":
+            want = np.dtype("<u2") if code == 2 else np.dtype("<u4")
+        else:
+            want = idt if kind == "id" else np.dtype("<" + kind)
         if _DTYPES[code] != want:
             raise _fail(name, f"section {tag.decode()} has element type {_DTYPES[code]}, expected {want}")
         arrays[tag.decode()] = np.frombuffer(mm, dtype=want, count=length // want.itemsize, offset=off)
@@ -1085,19 +1305,22 @@ def _check_meta(name: str, meta: Any, size: int) -> dict[str, Any]:
 
 
 def _check_model_kind(name: str, meta: dict[str, Any], minor: int, tags: set[bytes]) -> None:
-    """META's estimator fields (format 1.3) and the optional sections they call for."""
+    """META's estimator fields (format 1.4) and the optional sections they call for."""
     if minor < 3:
         if meta.get("estimator", "jm") != "jm" or meta.get("order", 2) != 2 or "discounts" in meta or "lambda3" in meta:
             raise _fail(name, f"format 1.{minor} files hold Jelinek-Mercer bigram models only")
+        if "codec" in meta:
+            raise _fail(name, f"format 1.{minor} files have no 'codec' field (their values are exact)")
         meta["estimator"], meta["order"] = "jm", 2
         return
+    codec_named(name, meta.get("codec"))
     est, order = meta.get("estimator"), meta.get("order")
     if est not in ESTIMATORS:
         raise _fail(name, f"metadata field 'estimator' is invalid: {est!r}"[:200])
     if isinstance(order, bool) or order not in ORDERS:
         raise _fail(name, f"metadata field 'order' is invalid: {order!r}"[:200])
     if est == "jm" and order == 2:
-        raise _fail(name, "a Jelinek-Mercer bigram model is a format 1.0-1.2 file, not 1.3")
+        raise _fail(name, f"a Jelinek-Mercer bigram model is a format 1.0-1.2 file, not 1.{minor}")
     if est == "kn":
         ds = meta.get("discounts")
         ok = isinstance(ds, list) and len(ds) == order and all(
@@ -1106,9 +1329,10 @@ def _check_model_kind(name: str, meta: dict[str, Any], minor: int, tags: set[byt
         )
         if not ok:
             raise _fail(name, f"metadata field 'discounts' is invalid: {ds!r}"[:300])
-        d1, d2, d3 = cast(list, ds)[1]  # the bigram level's, which the skybands need (§7.13)
-        if not (1 - d1 < 2 - d2 < 3 - d3):
-            raise _fail(name, "discounts of order 2 do not keep 1-D1 < 2-D2 < 3-D3")
+        for m in range(2, order + 1):  # the levels with skybands need it (§7.13, §7.16)
+            d1, d2, d3 = cast(list, ds)[m - 1]
+            if not (1 - d1 < 2 - d2 < 3 - d3):
+                raise _fail(name, f"discounts of order {m} do not keep 1-D1 < 2-D2 < 3-D3")
         notes = meta.get("discount_notes", {})
         if not isinstance(notes, dict) or not all(isinstance(k, str) and isinstance(v, str) for k, v in notes.items()):
             raise _fail(name, "metadata field 'discount_notes' is invalid")
@@ -1117,7 +1341,7 @@ def _check_model_kind(name: str, meta: dict[str, Any], minor: int, tags: set[byt
         if isinstance(lam3, bool) or not isinstance(lam3, (int, float)) or not 0.0 <= float(lam3) <= 1.0:
             raise _fail(name, f"metadata field 'lambda3' is invalid: {lam3!r}"[:200])
         meta["lambda3"] = float(lam3)
-    want = ({b"HIST", b"HN13"} if est == "kn" else set()) | (set(_TRIGRAM) | ({b"TN13"} if est == "kn" else set()) if order == 3 else set())
+    want = set(_NGRAM_BASE) | ({b"HN13"} if est == "kn" else set()) | (set(_TRIGRAM) if order == 3 else set())
     have = tags & set(_OPTIONAL)
     if have != want:
         extra = sorted(t.decode() for t in have - want)
@@ -1128,60 +1352,129 @@ def _check_model_kind(name: str, meta: dict[str, Any], minor: int, tags: set[byt
             v = meta.get(key)
             if isinstance(v, bool) or not isinstance(v, int) or not 0 <= v <= _U32_MAX:
                 raise _fail(name, f"metadata field {key!r} is invalid: {v!r}"[:200])
+        if meta.get("trigram_summary_min") != SUMMARY_MIN:
+            raise _fail(name, f"metadata field 'trigram_summary_min' is invalid: {meta.get('trigram_summary_min')!r}"[:200])
 
 
-def _check_ngram_arrays(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], *, full: bool) -> None:
-    """Lengths, offsets and ids of the Kneser-Ney and trigram sections (format 1.3).
+def _sorted_sparse(name: str, label: str, idx: np.ndarray, val: np.ndarray, end: int) -> None:
+    """A sparse (index, value) table: as long as each other, indices increasing below ``end``, values ≥ 1."""
+    if len(idx) != len(val):
+        raise _fail(name, f"section {label}: index and value tables differ in length")
+    if len(idx) and (int(idx[-1]) >= end or int(val.min()) < 1 or bool(np.any(idx[1:] <= idx[:-1]))):
+        raise _fail(name, f"section {label}: indices not increasing below {end}, or a zero value")
 
-    Always: every length against META, the offset arrays increasing from 0 to their
-    end, every trigram context id in range. With ``full``: the orderings, the totals
-    and the n₁/n₂/n₃₊ counts recomputed from the stored values.
+
+def _check_ngram_arrays(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], *, keys: list[str] | None) -> None:
+    """Lengths, offsets and ids of the Kneser-Ney and trigram sections (format 1.4).
+
+    Always (cost of the vocabulary, the sparse tables and the first/last entries, so that
+    opening stays fast): every length against META, TCTB increasing from 0, the last
+    bigram entry's trigrams ending at the last trigram, the sparse tables sorted and in range.
+    Queries check every other value where they read it. With ``full``: the orderings,
+    totals, n₁/n₂/n₃₊, summaries and skybands recomputed from the stored values (``keys``:
+    the vocabulary in alphabetical order, given only for that).
     """
     n = meta["n_words"]
     n_pos, n_hist = n + 2, n + 3
     kn = meta["estimator"] == "kn"
+    if len(a["HIST"]) != n_hist:
+        raise _fail(name, f"section HIST holds {len(a['HIST'])} entries, expected {n_hist}")
     if kn and len(a["HN13"]) != 3 * n_hist:
         raise _fail(name, f"section HN13 holds {len(a['HN13'])} entries, expected {3 * n_hist}")
+    _sorted_sparse(name, "HDRI/HDRV", a["HDRI"], a["HDRV"], n_hist)
+    if len(a["HDRI"]) and bool(np.any(a["HDRV"] > a["HIST"][a["HDRI"]])):
+        raise _fail(name, "section HDRV holds dropped mass above its context total")
     if meta["order"] == 3:
-        t, j = meta["trigrams"], meta["trigram_contexts"]
-        expected = {"TROW": n_hist + 1, "TCTU": j, "TCTS": j + 1, "TSUC": t, "TVAL": t, "TTOT": j, **({"TN13": 3 * j} if kn else {})}
+        t, j, b = meta["trigrams"], meta["trigram_contexts"], meta["bigrams"]
+        EXACT.check(name, a, TRIGRAM_TAGS, t)
+        EXACT.check(name, a, CONTEXT_TAGS, b)
+        nseg, K = len(a["TSGS"]), meta["skyband_k"]
+        expected = {
+            "TCTB": b // CTX_BLOCK + 1, "TSUC": t,
+            "TLNV": 4 * len(a["TLNI"]), "TDRV": len(a["TDRI"]), "TSGE": nseg, "TSKP": nseg + 1, "TSKC": nseg * K,
+        }  # fmt: skip
         for label, want in expected.items():
             if len(a[label]) != want:
                 raise _fail(name, f"section {label} holds {len(a[label])} entries, expected {want}")
-        for label, end in (("TROW", j), ("TCTS", t)):
-            arr = a[label]
-            if arr[0] != 0 or arr[-1] != end or np.any(arr[1:] < arr[:-1]):
-                raise _fail(name, f"section {label} offsets are not increasing from 0 to {end}")
-        if j and int(a["TCTU"].max()) >= n_hist:
-            raise _fail(name, "section TCTU holds an id out of range")
-        if t and (int(a["TSUC"].max()) >= n_pos or int(a["TVAL"].min()) == 0):
-            raise _fail(name, "section TSUC holds a position out of range, or TVAL a zero value")
-        if j and np.any(a["TCTS"][1:] == a["TCTS"][:-1]):
-            raise _fail(name, "section TCTS has a trigram context without successors")
-    if not full:
+        tctb = a["TCTB"]
+        last = (b // CTX_BLOCK) * CTX_BLOCK  # the end: the last block's base + its lengths (at most 15 reads)
+        tail = EXACT.decode(name, a, CONTEXT_TAGS).slice(last, b)
+        if tctb[0] != 0 or np.any(tctb[1:] < tctb[:-1]) or int(tctb[-1]) + sum(tail) != t:
+            raise _fail(name, f"sections TCTB/TLEN do not run from 0 to {t}")
+        _sorted_sparse(name, "TLNI/TLNV", a["TLNI"], np.ones(len(a["TLNI"]), np.int64), b)
+        _sorted_sparse(name, "TDRI/TDRV", a["TDRI"], a["TDRV"], b)
+        if a["TSKP"][0] != 0 or int(a["TSKP"][-1]) != len(a["TSKI"]):
+            raise _fail(name, "section TSKP does not run from 0 to the end of TSKI")
+    if keys is None:
         return
     rows = a["ROWS"].astype(np.int64)
     row_of = np.repeat(np.arange(n_hist), np.diff(rows))
-    if kn:
-        cnts = a["CNTS"].astype(np.int64)
-        cnts[a["BIGI"].astype(np.int64)] = a["BIGC"]
-        if not np.array_equal(_n123(row_of, cnts, n_hist).reshape(-1), a["HN13"]):
-            raise _fail(name, "section HN13 disagrees with the bigram values")
+    cnts = a["CNTS"].astype(np.int64)
+    cnts[a["BIGI"].astype(np.int64)] = a["BIGC"]
+    dropped2 = np.zeros(n_hist, dtype=np.int64)
+    dropped2[a["HDRI"].astype(np.int64)] = a["HDRV"]
+    if not np.array_equal(np.bincount(row_of, weights=cnts, minlength=n_hist).astype(np.int64) + dropped2, a["HIST"]):
+        raise _fail(name, "section HIST is not the row sums plus the dropped mass")
+    n123_2 = _n123(row_of, cnts, n_hist)
+    if kn and not np.array_equal(n123_2.reshape(-1), a["HN13"]):
+        raise _fail(name, "section HN13 disagrees with the bigram values")
     if meta["order"] == 3:
-        trow, tctu, tcts = a["TROW"].astype(np.int64), a["TCTU"].astype(np.int64), a["TCTS"].astype(np.int64)
-        ctx_v = np.repeat(np.arange(n_hist), np.diff(trow))
-        ckey = ctx_v * n_hist + tctu
-        if len(ckey) > 1 and np.any(ckey[1:] <= ckey[:-1]):
-            raise _fail(name, "section TCTU is not strictly increasing within each context word")
-        owner = np.repeat(np.arange(len(tctu)), np.diff(tcts))
-        skey = owner * n_pos + a["TSUC"].astype(np.int64)
+        t, j, b = meta["trigrams"], meta["trigram_contexts"], meta["bigrams"]
+        EXACT.check_full(name, a, TRIGRAM_TAGS)
+        small, esc = a["TLEN"], a["TLEI"]
+        if len(esc) > 1 and bool(np.any(esc[1:] <= esc[:-1])) or not np.array_equal(np.flatnonzero(small == COUNT_ESCAPE), esc):
+            raise _fail(name, "sections TLEN and TLEI disagree")
+        lengths = EXACT.decode(name, a, CONTEXT_TAGS).all()
+        all_starts = np.zeros(b + 1, dtype=np.int64)
+        np.cumsum(lengths, out=all_starts[1:])
+        if all_starts[-1] != t or not np.array_equal(a["TCTB"].astype(np.int64), all_starts[: b + 1 : CTX_BLOCK]):
+            raise _fail(name, "section TCTB does not hold the block bases of TLEN")
+        big = np.flatnonzero(lengths)
+        if len(big) != j:
+            raise _fail(name, f"section TLEN has {len(big)} trigram contexts, metadata says {j}")
+        starts = np.concatenate([all_starts[big], [t]])
+        ctx_v = a["ALPH"].astype(np.int64)[a["SUCC"].astype(np.int64)[big]]
+        if j and (int(ctx_v.max()) >= n_pos or bool(np.any(ctx_v == n))):
+            raise _fail(name, "section TLEN gives a trigram context ending in </s>")
+        tsuc = a["TSUC"].astype(np.int64)
+        if t and int(tsuc.max()) >= n_pos:
+            raise _fail(name, "section TSUC holds a position out of range")
+        owner = np.repeat(np.arange(j), np.diff(starts))
+        skey = owner * n_pos + tsuc
         if len(skey) > 1 and np.any(skey[1:] <= skey[:-1]):
             raise _fail(name, "section TSUC is not strictly increasing within each context")
-        val = a["TVAL"].astype(np.int64)
-        if not np.array_equal(np.bincount(owner, weights=val, minlength=len(tctu)).astype(np.int64), a["TTOT"]):
-            raise _fail(name, "section TTOT disagrees with TVAL")
-        if kn and not np.array_equal(_n123(owner, val, len(tctu)).reshape(-1), a["TN13"]):
-            raise _fail(name, "section TN13 disagrees with TVAL")
+        if j and int(a["HIST"][ctx_v].min()) == 0:
+            raise _fail(name, "a trigram context whose last word has no bigram total")
+        val = EXACT.decode(name, a, TRIGRAM_TAGS).all()
+        sums = np.bincount(owner, weights=val, minlength=j).astype(np.int64)
+        n123_3 = _n123(owner, val, j)
+        long_ctx = np.flatnonzero(np.diff(starts) > SUMMARY_MIN)
+        if not np.array_equal(a["TLNI"], big[long_ctx]) or not np.array_equal(
+            np.column_stack([sums[long_ctx], n123_3[long_ctx]]).reshape(-1), a["TLNV"]
+        ):
+            raise _fail(name, "sections TLNI/TLNV are not the summaries of the long trigram contexts")
+        dropped3 = np.zeros(b, dtype=np.int64)
+        dropped3[a["TDRI"].astype(np.int64)] = a["TDRV"]
+        not_ctx = np.ones(b, dtype=bool)
+        not_ctx[big] = False
+        if bool(np.any(dropped3[not_ctx])):
+            raise _fail(name, "section TDRI names a bigram entry that is no trigram context")
+        if int((sums + dropped3[big]).max(initial=0)) > _U32_MAX:
+            raise _fail(name, "a trigram context total above 32 bits")
+        from .estimators import unigram_floor
+
+        if kn:
+            floor = unigram_floor(a["UNIG"], meta["discounts"][0], meta["total"])
+        else:
+            floor = a["UNIG"].astype(np.int64) / meta["total"]
+        lower = trigram_lower_scores(
+            kn, meta["discounts"][1] if kn else meta["lambda"], floor, rows, a["SUCC"], cnts,
+            a["HIST"].astype(np.int64), dropped2, n123_2, np.repeat(ctx_v, np.diff(starts)), tsuc, a["ALPH"].astype(np.int64),
+        )  # fmt: skip
+        got = trigram_bands(starts, tsuc, val, lower, keys, n, meta["skyband_k"], meta["skyband_min"])
+        for label, arr in zip(("TSGS", "TSGE", "TSKP", "TSKI", "TSKC"), got):
+            if not np.array_equal(arr, a[label]):
+                raise _fail(name, f"section {label} is not the skyband data of the trigram rows")
 
 
 def _check_arrays(
@@ -1239,8 +1532,9 @@ def _check_arrays(
     if len(disi) and (disi[-1] >= n or np.any(disi[1:] <= disi[:-1])):
         raise _fail(name, "section DISI is not an increasing list of word ids")
     _check_escaped_counts(name, a, n, b)
-    if meta["estimator"] != "jm" or meta["order"] != 2:
-        _check_ngram_arrays(name, meta, a, full=full)
+    ngram = meta["estimator"] != "jm" or meta["order"] != 2
+    if ngram:
+        _check_ngram_arrays(name, meta, a, keys=None)
     if not full:
         return
 
@@ -1261,12 +1555,15 @@ def _check_arrays(
     full_counts = cnts.astype(np.int64)
     full_counts[bigi] = bigc
     hist = a["HIST"] if "HIST" in a else history_counts(a["UNIG"], n)
-    if not np.array_equal(np.bincount(row_of, weights=full_counts, minlength=n_hist), hist):
+    # n-gram files: HIST = row sums + dropped mass, checked with the other 1.4 sections
+    if not ngram and not np.array_equal(np.bincount(row_of, weights=full_counts, minlength=n_hist), hist):
         raise _fail(name, "row counts disagree with the history counts")
     col = np.bincount(a["ALPH"][succ], weights=full_counts, minlength=n_pos)
     if meta["estimator"] == "kn":
-        # Kneser-Ney: a word's unigram value is its number of distinct predecessors (§7.13)
-        if not np.array_equal(np.bincount(a["ALPH"][succ], minlength=n_pos), a["UNIG"]):
+        # Kneser-Ney: a word's unigram value is its number of distinct predecessors (§7.13),
+        # at least the rows still holding it when the bigram level is pruned
+        cont = np.bincount(a["ALPH"][succ], minlength=n_pos)
+        if not (np.array_equal(cont, a["UNIG"]) or (len(a["HDRI"]) and not np.any(cont > a["UNIG"]))):
             raise _fail(name, "section UNIG disagrees with the bigram rows (continuation counts)")
     elif "HIST" not in a and not np.array_equal(col, a["UNIG"]):
         raise _fail(name, "section UNIG disagrees with the bigram counts")
@@ -1297,6 +1594,8 @@ def _check_arrays(
         bytes(raw["DISB"]).decode("utf-8")
     except UnicodeDecodeError:
         raise _fail(name, "section DISB is not UTF-8") from None
+    if ngram:
+        _check_ngram_arrays(name, meta, a, keys=keys)
     _check_derived(name, meta, a, keys, full_counts)
 
 

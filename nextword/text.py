@@ -39,8 +39,13 @@ __all__ = [
     "fold_all",
     "normalize",
     "tokens",
+    "word_spans",
+    "is_word",
+    "TOKEN_RE",
+    "HAS_LETTER",
     "sentences",
     "parse_typed",
+    "recase",
     "MAX_CONTEXT_CHARS",
 ]
 
@@ -56,13 +61,21 @@ END: Final = 2
 
 _SENTENCE_END_CHARS = ".!?…‼‽⁇⁈⁉。！？｡\n\r\u2028\u2029\u0085\x0b\x0c"
 _JOINERS = "'’\\-‐‑"
-_TOKEN_RE = re.compile(
+#: The one token pattern of the text rules. Its named groups: ``num`` (digits with internal
+#: ``. , :``), ``word`` (letters/digits joined by apostrophes or hyphens; a word only if
+#: :func:`is_word`, else a number), ``end`` (a run of sentence-end characters) and
+#: ``other`` (one punctuation or symbol character: symbols break the context, punctuation
+#: is skipped). :func:`tokens` is the reference reading; the counting fast path
+#: (:mod:`nextword.counts`) and the keystroke simulation (:mod:`nextword.evaluate`) read
+#: the same matches, so every module cuts text alike.
+TOKEN_RE: Final = re.compile(
     r"(?P<num>\d+(?:[.,:]\d+)+)"
     rf"|(?P<word>[^\W_]+(?:[{_JOINERS}][^\W_]+)*)"
     rf"|(?P<end>[{re.escape(_SENTENCE_END_CHARS)}]+)"
     r"|(?P<other>[^\w\s])"
 )
-_HAS_LETTER = re.compile(r"[^\W\d_]")
+#: a letter (a ``word`` match is a word only if it holds one, see :func:`is_word`)
+HAS_LETTER: Final = re.compile(r"[^\W\d_]")
 _FOLD_PAIRS = (("’", "'"), ("‐", "-"), ("‑", "-"))
 _FOLD_TABLE = str.maketrans(dict(_FOLD_PAIRS))
 
@@ -101,8 +114,9 @@ def fold_all(words: list[str]) -> list[str]:
     return text.split("\n")
 
 
-def _is_word(token: str) -> bool:
-    return token.isalpha() or _HAS_LETTER.search(token) is not None
+def is_word(token: str) -> bool:
+    """Whether a ``word`` match of :data:`TOKEN_RE` is a word: it holds at least one letter (``5pm`` yes, ``42`` no)."""
+    return token.isalpha() or HAS_LETTER.search(token) is not None
 
 
 def tokens(text: str) -> Iterator[tuple[int, str]]:
@@ -111,17 +125,26 @@ def tokens(text: str) -> Iterator[tuple[int, str]]:
     Kinds are :data:`WORD`, :data:`BREAK` (a number or symbol) and :data:`END` (a
     sentence boundary). Soft punctuation yields nothing.
     """
-    for m in _TOKEN_RE.finditer(text):
+    for m in TOKEN_RE.finditer(text):
         group = m.lastgroup
         s = m.group()
         if group == "word":
-            yield (WORD if _is_word(s) else BREAK), s
+            yield (WORD if is_word(s) else BREAK), s
         elif group == "end":
             yield END, s
         elif group == "num":
             yield BREAK, s
         elif not unicodedata.category(s).startswith("P"):
             yield BREAK, s
+
+
+def word_spans(text: str) -> list[tuple[int, int]]:
+    """(start, end) of every word of already-normalised ``text``, by the rules of :func:`tokens`.
+
+    The keystroke simulation types these spans letter by letter; they are the words
+    :func:`sentences` returns, with their places in the text.
+    """
+    return [m.span() for m in TOKEN_RE.finditer(text) if m.lastgroup == "word" and is_word(m.group())]
 
 
 def sentences(text: str) -> list[list[str | None]]:
@@ -146,6 +169,27 @@ def sentences(text: str) -> list[list[str | None]]:
     if cur:
         out.append(cur)
     return out
+
+
+def recase(word: str, prefix: str, at_start: bool) -> str:
+    """Show a vocabulary word with the casing the user asked for by typing ``prefix``.
+
+    Keys are case-folded (:func:`fold`), so the casing of a suggestion is a text rule of
+    its own: an explicitly lowercase prefix stays lowercase; two or more capitals typed
+    (``"NE"``) ask for the whole word in capitals; a capital first letter, or a sentence
+    start (``at_start``) with nothing typed, capitalises the first letter.
+    """
+    if prefix:
+        first = prefix[0]
+        if first.islower():  # the common case: an explicitly lowercase prefix wins
+            return word
+        if prefix.isupper() and sum(c.isupper() for c in prefix) >= 2:
+            return word.upper()
+        if first.isupper():
+            return word[:1].upper() + word[1:]
+    if at_start:
+        return word[:1].upper() + word[1:]
+    return word
 
 
 @dataclass(frozen=True, slots=True)
@@ -194,7 +238,7 @@ _FIRST_WINDOW = 40
 def _parse_tail(text: str, window: int, *, final: bool) -> Context | None:
     truncated = len(text) > window
     tail = normalize(text[-window:] if truncated else text)
-    toks = list(_TOKEN_RE.finditer(tail))
+    toks = list(TOKEN_RE.finditer(tail))
     cut = truncated and bool(toks) and toks[0].start() == 0 and toks[0].lastgroup in ("word", "num")
     prefix = ""
     if toks:
@@ -223,7 +267,7 @@ def _parse_tail(text: str, window: int, *, final: bool) -> Context | None:
     for m in reversed(toks):
         group = m.lastgroup
         s = m.group()
-        if group == "word" and _is_word(s):
+        if group == "word" and is_word(s):
             found.append(s)
         elif group == "end":
             found.append(BOS)

@@ -16,7 +16,7 @@ import pytest
 
 import nextword
 import nextword.counts
-import nextword.model
+import nextword.build
 from nextword.cli import main
 from nextword.counts import PARALLEL_MIN_BYTES, auto_workers
 
@@ -35,13 +35,13 @@ def corpus(tmp_path: Path) -> Path:
 def spy(monkeypatch: pytest.MonkeyPatch) -> list[int]:
     """Records the worker count of every multi-process count."""
     calls: list[int] = []
-    real = nextword.model.count_in_processes
+    real = nextword.build.count_in_processes
 
     def wrapped(messages: Any, workers: int, **kwargs: Any) -> Any:
         calls.append(workers)
         return real(messages, workers, **kwargs)
 
-    monkeypatch.setattr(nextword.model, "count_in_processes", wrapped)
+    monkeypatch.setattr(nextword.build, "count_in_processes", wrapped)
     return calls
 
 

@@ -1003,34 +1003,40 @@ def test_the_title_names_every_version_the_readers_accept() -> None:
 
 
 # ---------------------------------------------------------------------------------------
-# Format 1.3 (§7.11–7.14, §9.7): Kneser-Ney and the two-word context, read from the
+# Format 1.4 (§7.11–7.16, §9.7): Kneser-Ney and the two-word context, read from the
 # document alone (the reader above does §§3–8 of the common sections).
 
-OPTIONAL_13 = {"HIST": "u32", "HN13": "u32", "TROW": "u32", "TCTU": "id", "TCTS": "u32", "TSUC": "id",
-               "TVAL": "u32", "TTOT": "u32", "TN13": "u32"}  # fmt: skip
+TRIGRAM_14 = {"TCTB": "u32", "TLEN": "u8", "TLEI": "u32", "TLEV": "u32", "TSUC": "id", "TVAL": "u8",
+              "TBGI": "u32", "TBGC": "u32", "TLNI": "u32", "TLNV": "u32", "TDRI": "u32", "TDRV": "u32",
+              "TSGS": "u32", "TSGE": "u32", "TSKP": "u32", "TSKI": "u16|u32", "TSKC": "u16|u32"}  # fmt: skip
+BASE_14 = {"HIST": "u32", "HDRI": "id", "HDRV": "u32"}
+OPTIONAL_14 = {**BASE_14, "HN13": "u32", **TRIGRAM_14}
 KIND_SECTIONS = {  # §7.11
-    ("kn", 2): {"HIST", "HN13"},
-    ("kn", 3): {"HIST", "HN13", "TROW", "TCTU", "TCTS", "TSUC", "TVAL", "TTOT", "TN13"},
-    ("jm", 3): {"TROW", "TCTU", "TCTS", "TSUC", "TVAL", "TTOT"},
+    ("kn", 2): {*BASE_14, "HN13"},
+    ("kn", 3): {*BASE_14, "HN13", *TRIGRAM_14},
+    ("jm", 3): {*BASE_14, *TRIGRAM_14},
 }
+SUMMARY_MIN = 32  # §7.15
 
 
 class NgramReader(NwmReader):
-    """§7.11–7.14: the 1.3 sections; §9.7: probabilities and brute-force rankings."""
+    """§7.11–7.16: the 1.4 sections; §9.7: probabilities and brute-force rankings."""
 
     def __init__(self, path: str | Path) -> None:
         super().__init__(path)
-        if self.version != (1, 3):
-            raise FormatError("not a 1.3 file")
+        if self.version != (1, 4):
+            raise FormatError("not a 1.4 file")
         m = self.meta
+        if m.get("codec") != {"name": "exact", "version": 1}:  # §7.11, §7.12
+            raise FormatError("unknown codec")
         self.kind = (m["estimator"], m["order"])
         if set(self.sections) - set(LAYOUT) != KIND_SECTIONS[self.kind]:
             raise FormatError("optional sections do not fit the kind")
         n = self.n
         for tag in KIND_SECTIONS[self.kind]:
             e = self.sections[tag]
-            want = self.id_type if OPTIONAL_13[tag] == "id" else OPTIONAL_13[tag]
-            if e.code != CODE_OF[want]:
+            want = self.id_type if OPTIONAL_14[tag] == "id" else OPTIONAL_14[tag]
+            if e.code not in [CODE_OF[x] for x in want.split("|")]:
                 raise FormatError(f"{tag}: element code {e.code}")
             dt = ELEMENTS[e.code]
             self.a[tag] = np.frombuffer(self.data, dtype=dt, count=e.length // dt.itemsize, offset=e.offset)
@@ -1038,27 +1044,77 @@ class NgramReader(NwmReader):
         rows = a["ROWS"].astype(np.int64)
         counts = self.full_counts()
         row_of = np.repeat(np.arange(n + 3), np.diff(rows))
+        # §7.13: HIST = row sums + dropped mass; HDRI/HDRV sparse
+        hdri = a["HDRI"].astype(np.int64)
+        if len(hdri) != len(a["HDRV"]) or np.any(np.diff(hdri) <= 0) or np.any(hdri >= n + 3) or np.any(a["HDRV"] < 1):
+            raise FormatError("HDRI/HDRV")
+        self.dropped2 = np.zeros(n + 3, dtype=np.int64)
+        self.dropped2[hdri] = a["HDRV"]
+        if not np.array_equal(np.bincount(row_of, weights=counts, minlength=n + 3) + self.dropped2, a["HIST"]):
+            raise FormatError("HIST")
         if self.kind[0] == "kn":
-            # §7.12: UNIG[w] = rows holding w; §7.13: HIST = row sums, HN13 = N1, N2, N3+ per row
-            if not np.array_equal(np.bincount(a["ALPH"][a["SUCC"]], minlength=n + 2), a["UNIG"]):
+            # §7.12: UNIG[w] = rows holding w (no dropped mass here)
+            if not len(hdri) and not np.array_equal(np.bincount(a["ALPH"][a["SUCC"]], minlength=n + 2), a["UNIG"]):
                 raise FormatError("UNIG is not the continuation counts")
-            if not np.array_equal(np.bincount(row_of, weights=counts, minlength=n + 3), a["HIST"]):
-                raise FormatError("HIST")
             h = a["HN13"].reshape(n + 3, 3)
             for j, mask in enumerate((counts == 1, counts == 2, counts >= 3)):
                 if not np.array_equal(np.bincount(row_of[mask], minlength=n + 3), h[:, j]):
                     raise FormatError("HN13")
             self.d = [list(x) for x in m["discounts"]]
         if self.kind[1] == 3:
-            c, t = m["trigram_contexts"], m["trigrams"]
-            trow, tcts = a["TROW"].astype(np.int64), a["TCTS"].astype(np.int64)
-            if len(trow) != n + 4 or len(a["TCTU"]) != c or len(tcts) != c + 1 or len(a["TSUC"]) != t or len(a["TVAL"]) != t:
-                raise FormatError("trigram section lengths")
-            if trow[0] != 0 or trow[-1] != c or tcts[0] != 0 or tcts[-1] != t or np.any(np.diff(tcts) <= 0):
-                raise FormatError("TROW/TCTS offsets")
-            owner = np.repeat(np.arange(c), np.diff(tcts))
-            if not np.array_equal(np.bincount(owner, weights=a["TVAL"], minlength=c), a["TTOT"]):
-                raise FormatError("TTOT")
+            self._read_trigrams()
+
+    def _read_trigrams(self) -> None:
+        a, n, m = self.a, self.n, self.meta
+        c, t = m["trigram_contexts"], m["trigrams"]
+        if m["trigram_summary_min"] != SUMMARY_MIN:
+            raise FormatError("trigram_summary_min")
+        b = m["bigrams"]
+        # §7.14: a context is a bigram entry; TLEN (escapes as §7.12) gives its number of trigrams
+        lens = a["TLEN"].astype(np.int64)
+        tlei = a["TLEI"].astype(np.int64)
+        if len(lens) != b or not np.array_equal(np.flatnonzero(lens == ESCAPE), tlei) or len(a["TLEV"]) != len(tlei):
+            raise FormatError("TLEN/TLEI/TLEV")
+        if np.any(a["TLEV"] < ESCAPE):
+            raise FormatError("TLEV")
+        lens[tlei] = a["TLEV"]
+        self.lengths = lens
+        all_starts = np.concatenate([[0], np.cumsum(lens)])
+        if len(a["TCTB"]) != b // 16 + 1 or not np.array_equal(a["TCTB"], all_starts[: b + 1 : 16]) or all_starts[-1] != t:
+            raise FormatError("TCTB")
+        self.all_starts = all_starts
+        self.ctx_entry = np.flatnonzero(lens)  # the bigram entry of each context, in order
+        if len(self.ctx_entry) != c:
+            raise FormatError("trigram_contexts")
+        self.starts = np.concatenate([all_starts[self.ctx_entry], [t]])
+        # §7.12: the exact codec
+        val = a["TVAL"].astype(np.int64)
+        tbgi = a["TBGI"].astype(np.int64)
+        if len(val) != t or len(a["TSUC"]) != t or np.any(val == 0) or not np.array_equal(np.flatnonzero(val == ESCAPE), tbgi):
+            raise FormatError("TVAL/TBGI")
+        if len(a["TBGC"]) != len(tbgi) or np.any(a["TBGC"] < ESCAPE):
+            raise FormatError("TBGC")
+        val[tbgi] = a["TBGC"]
+        self.tval = val
+        owner = np.repeat(np.arange(c), np.diff(self.starts))
+        if np.any(np.diff(owner * (n + 2) + a["TSUC"].astype(np.int64)) <= 0) or np.any(a["TSUC"] >= n + 2):
+            raise FormatError("TSUC")
+        # §7.15: summaries of the long contexts, dropped mass
+        sums = np.bincount(owner, weights=val, minlength=c).astype(np.int64)
+        long_ctx = np.flatnonzero(np.diff(self.starts) > SUMMARY_MIN)
+        if not np.array_equal(a["TLNI"], self.ctx_entry[long_ctx]):  # §7.15: by bigram entry index
+            raise FormatError("TLNI")
+        tlnv = a["TLNV"].reshape(-1, 4)
+        for i, j in enumerate(long_ctx.tolist()):
+            vals = val[self.starts[j] : self.starts[j + 1]]
+            want = [int(sums[j]), int((vals == 1).sum()), int((vals == 2).sum()), int((vals >= 3).sum())]
+            if tlnv[i].tolist() != want:
+                raise FormatError("TLNV")
+        tdri = a["TDRI"].astype(np.int64)
+        if len(tdri) != len(a["TDRV"]) or np.any(np.diff(tdri) <= 0) or np.any(lens[tdri] == 0) or np.any(a["TDRV"] < 1):
+            raise FormatError("TDRI/TDRV")
+        self.dropped3 = np.zeros(b, dtype=np.int64)  # by bigram entry
+        self.dropped3[tdri] = a["TDRV"]
 
     def floor(self, w: int) -> float:  # §9.7 P1
         u = self.a["UNIG"]
@@ -1074,36 +1130,70 @@ class NgramReader(NwmReader):
     def _disc(a: int, d: list[float]) -> float:
         return 0.0 if a == 0 else d[0] if a == 1 else d[1] if a == 2 else d[2]
 
-    def _mix(self, a: int, total: int, n123: tuple[int, int, int], order: int, lower: float) -> float:
-        if self.kind[0] == "kn":
+    def _mix(self, a: int, total: int, dropped: int, n123: tuple[int, int, int], order: int, lower: float) -> float:
+        if self.kind[0] == "kn":  # §9.7: r first in γ
             d = self.d[order - 1]
-            gamma = (d[0] * n123[0] + d[1] * n123[1] + d[2] * n123[2]) / total
+            gamma = (dropped + d[0] * n123[0] + d[1] * n123[1] + d[2] * n123[2]) / total
             return max(a - self._disc(a, d), 0.0) / total + gamma * lower
         lam = self.meta["lambda"] if order == 2 else self.meta["lambda3"]
-        return lam * (a / total) + (1.0 - lam) * lower
+        return lam * (a / total) + ((1.0 - lam) + lam * (dropped / total)) * lower
+
+    def lower(self, v: int, w: int) -> float:
+        """§9.7 B(v, w): the bigram level's score."""
+        a = self.a
+        p = self.floor(w)
+        total = int(a["HIST"][v])
+        if total:
+            n123 = tuple(int(x) for x in a["HN13"][3 * v : 3 * v + 3]) if self.kind[0] == "kn" else (0, 0, 0)
+            p = self._mix(self.pair_count(v, w), total, int(self.dropped2[v]), n123, 2, p)  # type: ignore[arg-type]
+        return p
+
+    def context(self, u: int, v: int) -> int:
+        """§7.14: the bigram entry of (u, v) if it is a trigram context, else −1."""
+        s, e = int(self.a["ROWS"][u]), int(self.a["ROWS"][u + 1])
+        succ = self.a["SUCC"][s:e].tolist()
+        p = int(self.a["APOS"][v])
+        if p not in succ:
+            return -1
+        i = s + succ.index(p)
+        return i if self.lengths[i] else -1
 
     def prob3(self, ctx: tuple[int, ...], w: int) -> float:
         """§9.7 for a context of ids (u, v) or (v,)."""
         a = self.a
-        p = self.floor(w)
-        v = ctx[-1]
-        total = int(a["HIST"][v]) if self.kind[0] == "kn" else self.history_count(v)
-        if total:
-            n123 = tuple(int(x) for x in a["HN13"][3 * v : 3 * v + 3]) if self.kind[0] == "kn" else (0, 0, 0)
-            p = self._mix(self.pair_count(v, w), total, n123, 2, p)  # type: ignore[arg-type]
+        p = self.lower(ctx[-1], w)
         if self.kind[1] == 3 and len(ctx) == 2:
-            u = ctx[0]
-            lo, hi = int(a["TROW"][v]), int(a["TROW"][v + 1])
-            us = a["TCTU"][lo:hi].tolist()
-            if u in us:
-                j = lo + us.index(u)
-                s, e = int(a["TCTS"][j]), int(a["TCTS"][j + 1])
+            j = self.context(ctx[0], ctx[1])
+            if j >= 0:
+                s, e = int(self.all_starts[j]), int(self.all_starts[j]) + int(self.lengths[j])
                 succ = a["TSUC"][s:e].tolist()
+                vals = self.tval[s:e]
                 pos = int(a["APOS"][w])
-                c3 = int(a["TVAL"][s + succ.index(pos)]) if pos in succ else 0
-                n123 = tuple(int(x) for x in a["TN13"][3 * j : 3 * j + 3]) if self.kind[0] == "kn" else (0, 0, 0)
-                p = self._mix(c3, int(a["TTOT"][j]), n123, 3, p)  # type: ignore[arg-type]
+                c3 = int(vals[succ.index(pos)]) if pos in succ else 0
+                n123 = (int((vals == 1).sum()), int((vals == 2).sum()), int((vals >= 3).sum()))
+                dropped = int(self.dropped3[j])
+                p = self._mix(c3, int(vals.sum()) + dropped, dropped, n123, 3, p)
         return p
+
+    def check_trigram_bands(self) -> int:
+        """§7.16 by brute force: every segment's band and counts from the dominance rule; returns #segments."""
+        a, K = self.a, self.meta["skyband_k"]
+        segs, sege = a["TSGS"].astype(np.int64), a["TSGE"].astype(np.int64)
+        skyp, skyi, skyc = a["TSKP"].astype(np.int64), a["TSKI"].astype(np.int64), a["TSKC"].astype(np.int64)
+        ctx_v = a["ALPH"][a["SUCC"][self.ctx_entry].astype(np.int64)].astype(np.int64)  # each context's v
+        for i, (s, e) in enumerate(zip(segs.tolist(), sege.tolist())):
+            j = int(np.searchsorted(self.starts, s, side="right") - 1)
+            assert self.starts[j] <= s < e <= self.starts[j + 1]
+            v = int(ctx_v[j])
+            pos = a["TSUC"][s:e].tolist()
+            b = [self.lower(v, int(a["ALPH"][p])) for p in pos]
+            c3 = self.tval[s:e].tolist()
+            ahead = lambda x, w: (-b[x], pos[x]) < (-b[w], pos[w])  # noqa: E731
+            doms = [sum(1 for x in range(e - s) if x != w and c3[x] >= c3[w] and ahead(x, w)) for w in range(e - s)]
+            want = sorted((d, o) for o, d in enumerate(doms) if d < K)
+            assert skyi[skyp[i] : skyp[i + 1]].tolist() == [o for _, o in want], i
+            assert skyc[i * K : (i + 1) * K].tolist() == [sum(1 for d, _ in want if d < q) for q in range(1, K + 1)], i
+        return len(segs)
 
     def brute_rank(self, ctx: tuple[int, ...], prefix: str, k: int) -> list[tuple[str, float]]:
         scored = [(self.prob3(ctx, w), self.keys[w]) for w in range(self.n) if self.keys[w].startswith(prefix)]
@@ -1118,16 +1208,21 @@ def _ctx_ids(r: NgramReader, history: list[str]) -> tuple[int, ...]:
     return tuple(ids[-(r.kind[1] - 1):])
 
 
-@pytest.mark.parametrize("smoothing,order", [("kn", 2), ("kn", 3), ("jm", 3)])
-def test_ngram_files_follow_sections_7_11_to_7_14_and_9_7(tmp_path: Path, smoothing: str, order: int) -> None:
+@pytest.mark.parametrize("smoothing,order,bands", [("kn", 2, 4), ("kn", 3, 4), ("jm", 3, 4), ("kn", 3, 64), ("jm", 3, 2)])
+def test_ngram_files_follow_sections_7_11_to_7_16_and_9_7(tmp_path: Path, smoothing: str, order: int, bands: int) -> None:
     path = tmp_path / "m.nwm"
-    nextword.train_texts(REAL, path, smoothing=smoothing, order=order, min_count=1, skyband_min=4)
+    # "of the" gets more than 64 successors: its sums are stored (§7.15), its row has a band (§7.16)
+    wide = [f"Of the {w}." for w in _syllable_words(70)]
+    nextword.train_texts(REAL + wide, path, smoothing=smoothing, order=order, min_count=1, skyband_min=bands, skyband_k=3)
     r = NgramReader(path)
     model = nextword.load(path)
     assert r.kind == (smoothing, order) == (model.estimator, model.order)
+    if order == 3:
+        assert r.check_trigram_bands() > 0
+        assert len(r.a["TLNI"]) > 0  # the stored summaries are read too
     rng = random.Random(5)
     words = [r.keys[i] for i in range(min(r.n, 60))]
-    ctxs = [["<s>"], ["<s>", "i"], ["i", "am"], ["the", "zzz"], ["<unk>", "<unk>"]]
+    ctxs = [["<s>"], ["<s>", "i"], ["i", "am"], ["the", "zzz"], ["<unk>", "<unk>"], ["of", "the"], ["<s>", "the"]]
     ctxs += [[rng.choice(words), rng.choice(words)] for _ in range(8)]
     for hist in ctxs:
         ids = _ctx_ids(r, hist)
@@ -1139,27 +1234,39 @@ def test_ngram_files_follow_sections_7_11_to_7_14_and_9_7(tmp_path: Path, smooth
             total += p
         assert total == pytest.approx(1.0, rel=1e-9)
         for prefix in ["", "s", "t", "a", "re"]:
-            got = model.rank_after(hist, prefix, 5)
-            want = r.brute_rank(ids, prefix, 5)
-            assert [k for k, _ in got] == [k for k, _ in want], (hist, prefix)
+            for k in (1, 3, 5):
+                got = model.rank_after(hist, prefix, k)
+                want = r.brute_rank(ids, prefix, k)
+                assert [k for k, _ in got] == [k for k, _ in want], (hist, prefix)
 
 
 def test_worked_kn_trigram_example() -> None:
     # §10.7: retrain the example, compare the quoted arrays and the hand computation
-    import re
     import tempfile
 
     text = DOC.read_text(encoding="utf-8")
     part = text[text.index("### 10.7") : text.index("## 11.")]
-    quoted = {m.group(1): [int(x) for x in m.group(2).split(",")] for m in re.finditer(r"^([A-Z0-9]{4}) = \[([^\]]*)\]$", part, re.M)}
-    assert set(quoted) == {"UNIG", "HIST", "HN13", "TROW", "TCTU", "TCTS", "TSUC", "TVAL", "TTOT", "TN13"}
+    first, second = part.split("**A trigram skyband.**")
+
+    def quoted(chunk: str) -> dict[str, list[int]]:
+        return {m.group(1): [int(x) for x in m.group(2).split(",") if x.strip()]
+                for m in re.finditer(r"^([A-Z0-9]{4}) = \[([^\]]*)\]$", chunk, re.M)}  # fmt: skip
+
+    q1, q2 = quoted(first), quoted(second)
+    assert set(q1) == {"UNIG", "HIST", "HN13", "TCTB", "TLEN", "TSUC", "TVAL", "TSKP"}
+    assert set(q2) == {"TSGS", "TSGE", "TSKP", "TSKI", "TSKC"}
+    msgs = ["I am Sam.", "Sam I am.", "I do not like green eggs and ham."]
     with tempfile.TemporaryDirectory() as d:
         path = Path(d) / "ex.nwm"
-        nextword.train_texts(["I am Sam.", "Sam I am.", "I do not like green eggs and ham."], path,
-                             smoothing="kn", order=3, min_count=1)
+        nextword.train_texts(msgs, path, smoothing="kn", order=3, min_count=1)
         r = NgramReader(path)
-        for tag, values in quoted.items():
+        for tag, values in q1.items():
             assert r.a[tag].tolist() == values, tag
+        for tag in ("HDRI", "HDRV", "TDRI", "TDRV", "TBGI", "TBGC", "TLEI", "TLEV", "TLNI", "TLNV", "TSGS", "TSGE", "TSKI", "TSKC"):
+            assert len(r.a[tag]) == 0, tag  # the text says these are empty
+        assert r.id_type == "u16"
+        assert r.a["ROWS"].tolist() == [0, 2, 4, 6, 7, 8, 9, 10, 11, 12, 13, 13, 13, 15]  # quoted in the text
+        assert r.a["SUCC"].tolist() == [0, 2, 6, 10, 9, 10, 5, 8, 1, 3, 10, 4, 7, 6, 9]
         assert r.keys[:10] == ["i", "sam", "am", "and", "do", "eggs", "green", "ham", "like", "not"]
         assert r.d == [[2 / 3] * 3, [13 / 17] * 3, [0.5] * 3]
         # P(sam | i am) = 1/4 + (1/2)(2/17 + (13/17)(7/54)) = 329/918
@@ -1168,3 +1275,9 @@ def test_worked_kn_trigram_example() -> None:
         top = model.suggest("I am ", 3)
         assert [s.word for s in top] == ["Sam", "I", "am"]  # display spellings (§7.10)
         assert [round(s.prob, 6) for s in top] == [0.358388, 0.049564, 0.024074]
+        banded = Path(d) / "band.nwm"
+        nextword.train_texts(msgs, banded, smoothing="kn", order=3, min_count=1, skyband_min=1, skyband_k=2)
+        r2 = NgramReader(banded)
+        for tag, values in q2.items():
+            assert r2.a[tag].tolist() == values, tag
+        assert r2.check_trigram_bands() == 1

@@ -123,7 +123,7 @@ def test_random_corpora_equal_the_oracle(tmp_path_factory: pytest.TempPathFactor
         assert "vocabulary is empty" in str(e)
         return
     model = nextword.load(path, verify=True)
-    assert (model.estimator, model.order, model.format_version) == ("kn", 2, (1, 3))
+    assert (model.estimator, model.order, model.format_version) == ("kn", 2, (1, 4))
     oracle = oracle_like(model, messages, min_count=min_count)
     ctxs = contexts_for(rng, vocab, 2)
     check_probabilities(model, oracle, ctxs)
@@ -244,7 +244,7 @@ def test_cli_train_and_info_for_the_new_models(tmp_path: Path) -> None:
     import json
 
     data = json.loads(info.stdout)
-    assert (data["estimator"], data["order"], data["format_version"]) == ("kn", 3, "1.3")
+    assert (data["estimator"], data["order"], data["format_version"]) == ("kn", 3, "1.4")
     assert len(data["discounts"]) == 3 and "too few counts" in data["discount_notes"]["3"]
     text = _cli("info", str(out)).stdout
     assert "estimator" in text and "discount_notes" in text

@@ -25,6 +25,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import nextword
+from nextword.counts import DEFAULT_MIN_COUNT
 from nextword.errors import InvalidArgumentError
 from nextword.reference_kn import DictKneserNey, ngrams_of_sentence
 from nextword.text import BOS, UNK, fold, parse_typed, sentences
@@ -43,7 +44,7 @@ from test_model_kn import (
 class DictJMTrigram:
     """Jelinek-Mercer order 3 from dict counts; the same public surface the checks use."""
 
-    def __init__(self, messages: Sequence[str], *, lam2: float, lam3: float, min_count: int = 2) -> None:
+    def __init__(self, messages: Sequence[str], *, lam2: float, lam3: float, min_count: int = DEFAULT_MIN_COUNT) -> None:
         vocab_from = DictKneserNey(messages, order=3, min_count=min_count)  # the vocabulary rule only
         self.vocab = vocab_from.vocab
         self.outcomes = vocab_from.outcomes
@@ -111,7 +112,7 @@ def test_random_corpora_equal_the_oracles(tmp_path_factory: pytest.TempPathFacto
     model = _train(messages, tmp_path_factory.mktemp("tri") / "m.nwm", smoothing, min_count=min_count, **extra)
     if model is None:
         return
-    assert (model.estimator, model.order, model.format_version) == (smoothing, 3, (1, 3))
+    assert (model.estimator, model.order, model.format_version) == (smoothing, 3, (1, 4))
     oracle: DictKneserNey | DictJMTrigram
     if smoothing == "kn":
         oracle = oracle_like(model, messages, min_count=min_count)
@@ -275,18 +276,3 @@ def test_crafted_kn_trigram_files_raise_only_model_format_errors(kn3_bytes: byte
         except ModelFormatError:
             continue
         _ask_everything(m)
-
-
-@pytest.mark.parametrize("smoothing,order", [("kn", 2), ("kn", 3), ("jm", 3)])
-def test_personal_layers_refuse_other_bases(tmp_path: Path, smoothing: str, order: int) -> None:
-    # the layer mixes one-word-context bigram scores; over these bases it would rank wrongly
-    from nextword.personal import PersonalLayer
-
-    path = tmp_path / "m.nwm"
-    nextword.train_texts(["fix the bike", "fix the bell"] * 3, path, smoothing=smoothing, order=order, min_count=1)
-    base = nextword.load(path)
-    with pytest.raises(InvalidArgumentError, match="personal layers need a Jelinek-Mercer bigram base for now"):
-        PersonalLayer(base)
-    with pytest.raises(InvalidArgumentError, match="Jelinek-Mercer bigram base"):
-        PersonalLayer.open(base, tmp_path / "me.nwp", create=True)
-    assert not (tmp_path / "me.nwp").exists()

@@ -1,7 +1,6 @@
 """Commands over Kneser-Ney and order-3 model files: each works, or refuses in one line.
 
-Tools that read a model's stored values as plain pair counts (ARPA export of a model
-file, pruning) must not silently mis-read a Kneser-Ney or trigram file (its stored
+Tools that read a model's stored values as plain pair counts (pruning) must not silently mis-read a Kneser-Ney or trigram file (its stored
 values are continuation counts and trigram rows); eval must run on every kind. Corpus:
 CPython's ``pydoc_data.topics`` (real English shipped with Python).
 """
@@ -37,13 +36,7 @@ def files(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path]:
     return tmp / "kn3.nwm", tmp / "held.txt"
 
 
-def test_export_refuses_a_kneser_ney_trigram_file(files: tuple[Path, Path], tmp_path: Path) -> None:
-    # (prune reads such files since the n-gram pruning: tests/test_prune_ngram.py)
-    model, _ = files
-    for args, word in ((["export", str(model), "--arpa", str(tmp_path / "x.arpa")], "ARPA export"),):
-        r = _cli(*args)
-        assert r.returncode == 2 and r.stderr.count("\n") == 1 and word in r.stderr and "kn order 3" in r.stderr, r.stderr
-    assert not list(tmp_path.iterdir())  # nothing written
+# (export and prune read every kind: tests/test_export_models.py, tests/test_prune_ngram.py)
 
 
 def test_eval_runs_on_a_kneser_ney_trigram_with_baselines(files: tuple[Path, Path]) -> None:

@@ -36,13 +36,15 @@ USER = [
 def _brute(layer: PersonalLayer, prev: str | None, prefix: str, k: int) -> list[tuple[str, float]]:
     """Score every outcome of the mixture and sort: the definition of the ranking."""
     p = fold(prefix)
+    base = layer.base
     scored = [
-        (layer.prob(w, prev), w)
+        (-layer.prob(w, prev), -(base.prob(w, prev) if w in base else 0.0), w)
         for w in layer.vocabulary()
-        if w.startswith(p) and layer._suggestible(w) and w not in ("</s>", "<unk>")
+        if w.startswith(p) and w not in layer.blocklist and w not in ("</s>", "<unk>")
+        and (w in base or layer.count(w) >= layer.min_uses - 1e-9)
     ]
-    scored.sort(key=lambda t: (-t[0], t[1]))
-    return [(w, s) for s, w in scored[:k]]
+    scored.sort()  # mixture descending, then the base's probability descending, then key
+    return [(w, -s) for s, _, w in scored[:k]]
 
 
 def test_mixture_sums_to_one_and_weight_rule(base: nextword.Model) -> None:

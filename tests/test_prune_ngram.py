@@ -255,15 +255,22 @@ def test_a_budget_is_met_by_the_most_valuable_ngrams_and_every_context_sums_to_o
     assert b"".join(bytes(c) for c in chunks) == b"".join(bytes(c) for c in ngram_file(c2, t2, pruned))
     # probabilities sum to 1 in every context (the dropped mass backs off)
     assert all(s == pytest.approx(1.0, abs=1e-9) for s in _context_sums(pruned))
-    # each kept n-gram is worth at least as much per byte as each dropped one of the same order
+    # each kept n-gram is worth at least as much per byte as each dropped one of the same order,
+    # except bigrams kept as the context (u, v) of a kept trigram (u, v, w) — every such bigram is kept
+    # (common practice in back-off n-gram pruning: a longer n-gram keeps its context)
     scores = ngram_scores(fitted, counts)
+    kept3 = {tuple(r) for r in pruned.levels[2].grams.tolist()} if order == 3 else set()
+    contexts = {g[:2] for g in kept3}
     for m in range(2, order + 1):
         before = {tuple(r) for r in fitted.levels[m - 1].grams.tolist()}
         kept = {tuple(r) for r in pruned.levels[m - 1].grams.tolist()}
         assert kept <= before
+        if m == 2:
+            assert contexts <= kept
+            kept = kept - contexts
         value = dict(zip(map(tuple, fitted.levels[m - 1].grams.tolist()), scores[m - 1].tolist()))
-        if kept and before - kept:
-            assert min(value[g] for g in kept) >= max(value[g] for g in before - kept)
+        if kept and before - kept - contexts:
+            assert min(value[g] for g in kept) >= max(value[g] for g in before - kept - contexts)
 
 
 @pytest.mark.parametrize("smoothing", ["kn", "jm"])
@@ -347,7 +354,8 @@ def test_a_model_file_gives_back_the_fitted_levels_and_the_same_scores(tmp_path,
     # the levels read from the file equal the estimator's fit of the counts (ids matched by key),
     # P(h) equals the raw counts' context probability, so the scores are the same
     import nextword
-    from nextword.prune import context_probability, fitted_from_model
+    from nextword.export import fitted_from_model
+    from nextword.prune import context_probability, file_context_mass
 
     tables, counts3 = real_counts
     counts = counts3 if order == 3 else NgramCounts(counts3.n_words, counts3.grams[:2], counts3.counts[:2])
@@ -357,10 +365,13 @@ def test_a_model_file_gives_back_the_fitted_levels_and_the_same_scores(tmp_path,
 
     build(counts, tables, est, path)
     ref = est.fit(counts)
-    got, gcounts, gtables, mass = fitted_from_model(nextword.load(path))
+    model = nextword.load(path)
+    got = fitted_from_model(model)  # the public way to a file's levels (Model.stored_levels)
+    gcounts = NgramCounts(model.n_words, tuple(lev.grams for lev in got.levels), tuple(lev.value for lev in got.levels))
+    mass = file_context_mass(got)
     n = tables.n_words
     to_file = np.arange(n + 3)
-    index = {k: i for i, k in enumerate(gtables.keys)}
+    index = {k: i for i, k in enumerate(model.word_keys())}
     to_file[:n] = [index[k] for k in tables.keys]
     ref_scores = ngram_scores(ref, counts)
     got_scores = ngram_scores(got, gcounts, context_mass=mass)

@@ -74,3 +74,20 @@ def test_walkthrough_runs_end_to_end(in_tmp_with_examples: Path) -> None:
     for made in ("train.txt", "tune.txt", "test.txt", "demo.nwm", "tuned.nwm", "ship.nwm", "report/report.md", "tune-report/tune.md"):
         assert (in_tmp_with_examples / made).exists(), made
     assert (in_tmp_with_examples / "ship.nwm").stat().st_size <= 16_000
+
+
+def test_trigram_tune_example_runs(in_tmp_with_examples: Path) -> None:
+    # the "On the command line" block of "λ per order", after the walk-through's split
+    split = next(b for b in _blocks("sh") if "nextword split" in b and "--tune-out" in b).strip().splitlines()[0]
+    block = next(b for b in _blocks("sh") if "tri-tuned.nwm" in b)
+    steps = [shlex.split(split)] + [shlex.split(line) for line in block.strip().splitlines()]
+    assert [s[1] for s in steps] == ["split", "train", "tune", "eval", "export"]
+    for args in steps:
+        proc = _cli(args[1:], in_tmp_with_examples)
+        assert proc.returncode == 0, (args, proc.stderr)
+    import nextword
+
+    tuned = nextword.load(in_tmp_with_examples / "tri-tuned.nwm")
+    assert tuned.order == 3 and tuned.query_lambdas() != [0.9, 0.9]
+    for made in ("tri-report/tune.md", "tri.arpa.gz"):
+        assert (in_tmp_with_examples / made).exists(), made

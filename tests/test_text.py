@@ -7,7 +7,7 @@ import pytest
 from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 
-from nextword.text import BOS, UNK, Context, fold, parse_typed, sentences
+from nextword.text import BOS, UNK, Context, fold, normalize, parse_typed, sentences, word_spans
 
 
 def test_words_keep_internal_apostrophes_and_hyphens() -> None:
@@ -132,3 +132,16 @@ def test_windowed_parse_equals_parsing_the_whole_tail(n: int) -> None:
         assert (got.previous, got.prefix) == ("the", "wor")
         # before "the": the filler's last word, or <s> (a sentence end, nothing, or a cut word)
         assert got.before in (BOS, "word", "a" * n)
+
+
+@given(st.lists(st.sampled_from(_PIECES), max_size=30))
+def test_word_spans_are_the_words_of_sentences(parts: list[str]) -> None:
+    # the oracle: sentences(), the reference reading of the same rules, minus its breaks
+    text = normalize("".join(parts))
+    want = [w for sent in sentences(text) for w in sent if w is not None]
+    assert [text[s:e] for s, e in word_spans(text)] == want
+
+
+def test_word_spans_example() -> None:
+    # hand-checked: "5pm" is a word, "42" and "7:30" are numbers, "don't" one word
+    assert word_spans("meet 5pm, 42 don't 7:30") == [(0, 4), (5, 8), (13, 18)]

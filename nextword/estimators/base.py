@@ -80,9 +80,9 @@ class Level:
         A pruned level keeps each context's total as estimated on the full data; the mass
         of its dropped n-grams moves to the lower order (see :mod:`nextword.prune`).
         """
-        if len(self.grams) == 0:
-            return np.zeros(len(self.ctx), np.int64)
-        kept = np.add.reduceat(self.value, self.ctx_start[:-1]) if len(self.ctx) else np.zeros(0, np.int64)
+        # prefix sums, not reduceat: a context may have an empty block (Model.stored_levels)
+        cs = np.concatenate([[0], np.cumsum(self.value, dtype=np.int64)])
+        kept = cs[self.ctx_start[1:]] - cs[self.ctx_start[:-1]]
         return np.asarray(self.ctx_total - kept, dtype=np.int64)
 
     def find(self, j: int, w: int) -> int:

@@ -32,14 +32,14 @@ def adjusted_values(counts: NgramCounts) -> list[np.ndarray]:
         if m == order:
             out.append(raw.copy())
             continue
-        upper = counts.grams[m]
-        suffix = upper[:, 1:]
-        uniq, cont = np.unique(suffix, axis=0, return_counts=True) if len(suffix) else (suffix, np.zeros(0, np.int64))
+        # every upper n-gram (u, …) is distinct, so the number of distinct left extensions
+        # of a suffix is the number of upper rows ending in it: one lookup per row + a bincount
+        # (no sort of the suffixes, which are not in order)
+        suffix = counts.grams[m][:, 1:]
         value = np.zeros(len(grams), np.int64)
-        if len(uniq):
-            # both sorted lexicographically: locate each suffix among this order's grams
-            idx = _rows_index(grams, uniq, counts.bos + 1)
-            value[idx] = cont
+        if len(suffix):
+            idx = _rows_index(grams, suffix, counts.bos + 1)
+            value = np.bincount(idx, minlength=len(grams)).astype(np.int64)
         starts_bos = grams[:, 0] == counts.bos
         value[starts_bos] = raw[starts_bos]
         if int((value < 1).sum()):

@@ -1,0 +1,211 @@
+"""The candidate seam: which vocabulary words a query considers for a typed prefix.
+
+A query has a context and a partial word. The estimator says how likely each word is
+after the context; this module says *which* words are worth scoring at all, as ranges of
+alphabetical positions (the order of the model file's ALPH section), each with a channel
+weight — how likely the user typed what they typed if they meant a word of that range:
+
+* :class:`PrefixRange` (today): the words whose key starts with the folded prefix form
+  one contiguous range, weight 1.0. Its stored top lists also give the k most frequent
+  words of any range (:meth:`PrefixRange.top_ids`), the lower bound the exact ranking
+  needs for the words it does not score one by one.
+* a near-miss source (issue 17) returns several ranges — the exact prefix and the
+  prefixes one likely slip away on the keyboard — each weighted by P(typed | prefix).
+
+The model ranks each range exactly (top k by P(word | context), ties by position) and
+:func:`merge_ranked` combines them by weight × probability. A word reached through several
+ranges keeps its best weighted score (the single most likely intended prefix), which keeps
+the merge exact: every word of the overall top k is in the top k of the range that gives
+its best score. With one range of weight 1.0 the merge is the identity, and
+:class:`~nextword.model.Model` skips it.
+"""
+
+from __future__ import annotations
+
+import bisect
+import heapq
+from typing import Any, Callable, NamedTuple, Protocol, Sequence
+
+import numpy as np
+
+from .store import TOPK_FANOUT, key_head, topk_levels
+
+__all__ = ["CandidateRange", "CandidateSource", "PrefixRange", "merge_ranked"]
+
+
+class CandidateRange(NamedTuple):
+    """Alphabetical positions [lo, hi) to rank, and the channel weight of their scores."""
+
+    lo: int
+    hi: int
+    weight: float
+
+
+class CandidateSource(Protocol):
+    """What the query layer asks of a candidate source (exact prefixes, near misses)."""
+
+    def ranges(self, key: str) -> tuple[CandidateRange, ...]:
+        """Non-empty ranges to rank for the folded typed prefix ``key``; empty if none."""
+        ...  # pragma: no cover - a protocol
+
+
+class _AlphaKeys:
+    """Sequence view of the vocabulary keys in alphabetical order, truncated to a length."""
+
+    __slots__ = ("restore", "idtk", "alph", "length")
+
+    def __init__(self, restore: Any, idtk: memoryview, alph: memoryview, length: int) -> None:
+        self.restore = restore
+        self.idtk = idtk
+        self.alph = alph
+        self.length = length
+
+    def __len__(self) -> int:
+        return len(self.alph) - 2
+
+    def __getitem__(self, i: int) -> str:
+        return self.restore(self.idtk[self.alph[i]])[: self.length]  # type: ignore[no-any-return]
+
+
+class PrefixRange:
+    """Exact-prefix candidates over a model file's sorted vocabulary.
+
+    Built by the query layer from the file's trie, IDTK, ALPH, KEY4 and TOPK sections
+    (already checked by the reader). Keeps two small caches of pure functions of the file
+    (keyboards repeat prefixes constantly); dict reads and writes are atomic, so sharing
+    one between threads is safe.
+    """
+
+    def __init__(
+        self,
+        *,
+        trie: Any,
+        idtk: memoryview,
+        alph_view: memoryview,
+        key4: memoryview,
+        alph: np.ndarray,
+        topk: np.ndarray,
+        n_words: int,
+        max_key_chars: int,
+    ) -> None:
+        self.n_words = n_words
+        self._trie = trie
+        self._mv_idtk = idtk
+        self._mv_alph = alph_view
+        self._mv_key4 = key4
+        self._alph = alph
+        self._max_key = max_key_chars
+        # multi-level prefix top lists as 2-D views (blocks x FANOUT)
+        self._levels: list[np.ndarray] = []
+        start = 0
+        for nb in topk_levels(n_words):
+            self._levels.append(topk[start : start + nb * TOPK_FANOUT].reshape(nb, TOPK_FANOUT))
+            start += nb * TOPK_FANOUT
+        self._range_cache: dict[str, tuple[int, int]] = {}
+        self._ranges_cache: dict[str, tuple[CandidateRange, ...]] = {}
+        self._top_cache: dict[tuple[int, int, int], list[int]] = {}
+
+    def ranges(self, key: str) -> tuple[CandidateRange, ...]:
+        """The one range of words starting with ``key``, weight 1.0; none if no word does."""
+        hit = self._ranges_cache.get(key)
+        if hit is not None:  # cached: building the named tuple costs more than the search
+            return hit
+        lo, hi = self.span(key)
+        result = (CandidateRange(lo, hi, 1.0),) if lo < hi else ()
+        if len(self._ranges_cache) > 65536:
+            self._ranges_cache.clear()
+        self._ranges_cache[key] = result
+        return result
+
+    def span(self, key: str) -> tuple[int, int]:
+        """Alphabetical positions [lo, hi) of the words whose key starts with ``key``.
+
+        The 4-byte key heads (KEY4) give the range of prefixes up to 4 UTF-8 bytes with
+        two binary searches over integers; longer prefixes refine it over the keys.
+        """
+        n = self.n_words
+        if not key:
+            return 0, n
+        hit = self._range_cache.get(key)
+        if hit is not None:
+            return hit
+        if len(key) > self._max_key:
+            result = (0, 0)
+        else:
+            head = self._mv_key4
+            lo = bisect.bisect_left(head, key_head(key, 0x00), 0, n)
+            hi = bisect.bisect_right(head, key_head(key, 0xFF), lo, n)
+            if len(key.encode("utf-8")) > 4 and lo < hi:
+                seq = _AlphaKeys(self._trie.restore_key, self._mv_idtk, self._mv_alph, len(key))
+                lo = bisect.bisect_left(seq, key, lo, hi)
+                hi = bisect.bisect_right(seq, key, lo, hi)
+            result = (lo, hi)
+        if len(self._range_cache) > 65536:
+            self._range_cache.clear()
+        self._range_cache[key] = result
+        return result
+
+    def top_ids(self, lo: int, hi: int, k: int) -> list[int]:
+        """The k smallest word ids (= highest floor probability) among alphabetical positions [lo, hi).
+
+        Uses the stored top lists: the range splits into at most 2·(FANOUT−1) pieces per
+        level plus at most FANOUT top-level blocks, each contributing ≤ k ids, so the work
+        is bounded whatever the number of matching words (for k ≤ FANOUT).
+        """
+        F = TOPK_FANOUT
+        if lo == 0 and hi == self.n_words:
+            return list(range(min(k, hi)))
+        if hi - lo <= 2 * F:
+            return sorted(self._mv_alph[lo:hi].tolist())[:k]
+        hit = self._top_cache.get((lo, hi, k))
+        if hit is not None:
+            return hit
+        if k > F:
+            vals = self._alph[lo:hi]
+        else:
+            pieces = []
+            unit, level, a, b = 1, 0, lo, hi
+            while True:
+                nxt = unit * F
+                A = -(-a // nxt) * nxt
+                B = (b // nxt) * nxt
+                if level == len(self._levels) or A >= B:
+                    pieces.append(self._units(level, a // unit, b // unit, k))
+                    break
+                pieces.append(self._units(level, a // unit, A // unit, k))
+                pieces.append(self._units(level, B // unit, b // unit, k))
+                a, b, unit, level = A, B, nxt, level + 1
+            vals = np.concatenate(pieces)
+        if len(vals) > k:
+            vals = np.partition(vals, k - 1)[:k]
+        vals = np.sort(vals)
+        top: list[int] = vals[vals < self.n_words].tolist()
+        if len(self._top_cache) > 16384:
+            self._top_cache.clear()
+        self._top_cache[lo, hi, k] = top
+        return top
+
+    def _units(self, level: int, i: int, j: int, k: int) -> np.ndarray:
+        if level == 0:
+            return self._alph[i:j]
+        return self._levels[level - 1][i:j, :k].ravel()
+
+
+def merge_ranked(
+    ranked: Sequence[tuple[float, Sequence[tuple[int, float]]]], position: Callable[[int], int], k: int
+) -> list[tuple[int, float]]:
+    """Top k of several ranges' rankings by channel weight × probability.
+
+    ``ranked`` holds (weight, [(word id, probability), ...]) per range, each list the exact
+    top k of its range. A word in several lists keeps its best weighted score. Ties go to
+    the alphabetically first word (``position`` maps a word id to its alphabetical
+    position), as within one range.
+    """
+    best: dict[int, float] = {}
+    for weight, pairs in ranked:
+        for wid, p in pairs:
+            s = weight * p
+            if s > best.get(wid, -1.0):
+                best[wid] = s
+    top = heapq.nsmallest(k, ((-s, position(w), w) for w, s in best.items()))
+    return [(w, -neg) for neg, _, w in top]
