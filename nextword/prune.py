@@ -36,8 +36,12 @@ relative entropy, a dropped n-gram's value stays in its context's total as *drop
 mass* that backs off to the lower order (γ grows by exactly the dropped α, so every
 context still sums to 1 and no other stored probability changes), and n-grams of
 different orders compete by score per measured byte of their order, words by the same
-value-per-byte rule as above. ``train --max-size`` uses it for every estimator and
-order (:func:`write_to_size`); a Jelinek-Mercer bigram keeps the pair rule above.
+value-per-byte rule as above; a kept trigram keeps its context bigram (the file finds a
+trigram context through its bigram entry). The file is :func:`nextword.store.build` of
+the pruned fitted model (the dropped mass stored, format 1.4). ``train --max-size`` uses
+it for every estimator and order (:func:`write_to_size`), ``nextword prune`` on a file
+of any kind (:func:`prune_model`, read through the model's public accessors); a
+Jelinek-Mercer bigram keeps the pair rule above.
 
 Measured figures: bench/RESULTS.md, "Size budget".
 """
