@@ -818,16 +818,15 @@ def prune_fitted(fitted: Fitted, keep: Sequence[np.ndarray | None]) -> Fitted:
     levels = list(fitted.levels)
     for m in range(fitted.order, 1, -1):
         k = keep[m - 1]
+        if k is None:  # the level whole: every context keeps its n-grams
+            continue
         needed = None
         if m < fitted.order:  # contexts the kept (m+1)-grams back off into: their last m−1 context tokens
             upper = levels[m]
             lev = fitted.levels[m - 1]
             base = fitted.bos + 1
             needed = np.isin(_pack(lev.ctx, base), _pack(upper.grams[:, 1:m], base))
-        if k is None and needed is None:
-            continue
-        levels[m - 1] = prune_level(fitted.levels[m - 1], np.ones(len(fitted.levels[m - 1].grams), bool) if k is None else k,
-                                    contexts=needed)
+        levels[m - 1] = prune_level(fitted.levels[m - 1], k, contexts=needed)
     out = copy.copy(fitted)
     out.levels = levels
     return out
@@ -1020,16 +1019,18 @@ def prune_ngrams_to_size(
         if progress is not None:
             progress(label)
 
-    if fitted is None and estimator is None:
+    source = fitted if fitted is not None else estimator
+    if source is None:
         raise InvalidArgumentError("prune_ngrams_to_size needs an estimator or a fitted model")
-    if (fitted.name if fitted is not None else estimator.name) == "jm" and counts.order == 2:  # type: ignore[union-attr]
+    if source.name == "jm" and counts.order == 2:
         raise InvalidArgumentError("a Jelinek-Mercer bigram model is pruned by prune_to_size (its file stores the counts themselves)")
     if fitted is not None and vocabulary:
         raise InvalidArgumentError("a fitted model keeps its words (vocabulary=False): dropping words needs its raw counts")
     words_before = tables.n_words
     if fitted is None:
+        assert estimator is not None  # source is one of the two
         say("fitting")
-        fitted = estimator.fit(counts)  # type: ignore[union-attr]
+        fitted = estimator.fit(counts)
     chunks = ngram_file(counts, tables, fitted, **build)
     total = stored_ngrams(fitted)
     if _nbytes(chunks) <= max_bytes:
