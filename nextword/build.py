@@ -63,11 +63,6 @@ def _check_kind(order: int, smoothing: str, lam: float | None, max_bytes: int | 
         raise InvalidArgumentError(f"smoothing must be one of {', '.join(SMOOTHINGS)}, got {smoothing!r}")
     if smoothing == "kn" and lam is not None:
         raise InvalidArgumentError(f"lam={lam!r} given with Kneser-Ney smoothing, which has no λ (its discounts are fitted)")
-    if max_bytes is not None and (order != 2 or smoothing != "jm"):
-        raise InvalidArgumentError(
-            f"a size budget (max_bytes={max_bytes!r}) works only for Jelinek-Mercer bigram models for now "
-            f"(got smoothing {smoothing!r}, order {order})"
-        )
 
 
 def _finish(
@@ -99,7 +94,14 @@ def _finish(
         from .store import build
 
         estimator = KneserNey() if smoothing == "kn" else JelinekMercer((lam, lam3))
-        build(counts, tables, estimator, output_path, skyband_k=skyband_k, skyband_min=skyband_min)
+        if max_bytes is None:
+            build(counts, tables, estimator, output_path, skyband_k=skyband_k, skyband_min=skyband_min)
+            n_bigrams = len(tables.pair_count)
+        else:  # every estimator and order: nextword.prune chooses the n-grams (and words) that fit
+            from .prune import write_to_size
+
+            tables, n_bigrams = write_to_size(counts, tables, estimator, max_bytes, output_path, rule=prune_rule,  # type: ignore[arg-type]
+                                              skyband_k=skyband_k, skyband_min=skyband_min)
     elif max_bytes is None:
         write_model(tables, output_path, lam=lam, skyband_k=skyband_k, skyband_min=skyband_min)
     else:
@@ -114,7 +116,7 @@ def _finish(
     return TrainReport(
         path=os.fspath(output_path),
         n_words=tables.n_words,
-        n_bigrams=len(tables.pair_count),
+        n_bigrams=n_bigrams if general else len(tables.pair_count),
         word_tokens=tables.stats["word_tokens"],
         messages=tables.stats["messages"],
         file_bytes=os.path.getsize(output_path),
@@ -162,9 +164,9 @@ def train(
     ``inputs`` is a path or a list of paths (``"-"`` = standard input): plain text with
     one message per line, or JSON Lines with a ``field`` holding the message, optionally
     gzip-compressed. Each input is read exactly once. The file is written atomically.
-    ``max_bytes`` prunes word pairs (``prune_rule`` "entropy" or "count") until the file
-    fits, and whole words where they are worth less per byte (a dropped word becomes
-    ``<unk>``; no count is lost, see :mod:`nextword.prune`). ``workers`` > 1 counts
+    ``max_bytes`` prunes n-grams (``prune_rule`` "entropy" or "count"; every estimator and
+    order) until the file fits, and whole words where they are worth less per byte (a
+    dropped word becomes ``<unk>``; no count is lost, see :mod:`nextword.prune`). ``workers`` > 1 counts
     chunks of messages in that many processes (0 = one per core) and merges the partial
     counts; the file is byte for byte the one a single process writes. The default
     (``None``) picks the fastest: one per core for inputs of at least

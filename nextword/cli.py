@@ -217,7 +217,7 @@ def _parser() -> _Parser:
     t.add_argument("--field", default="text", help="JSON Lines field holding the message (default %(default)s)")
     t.add_argument("--workers", type=int, default=None, help=f"counting processes (0 = one per core; default: one per core for inputs of {PARALLEL_MIN_BYTES >> 20} MB or more, else 1; same file either way)")
     t.add_argument("--memory-cap", metavar="SIZE", type=_size, help="bound the pair counts in memory, spilling to disk, e.g. 1GB (default: no bound)")
-    t.add_argument("--max-size", metavar="SIZE", type=_size, help="prune pairs until the file fits, e.g. 4MB (default: no budget)")
+    t.add_argument("--max-size", metavar="SIZE", type=_size, help="prune n-grams (and words) until the file fits, e.g. 4MB; any --order and --smoothing (default: no budget)")
     t.add_argument("--rule", choices=("count", "entropy"), default=DEFAULT_RULE, help="pruning rule with --max-size (default %(default)s)")
     t.add_argument("--json", action="store_true", help="print the training report as JSON")
 
@@ -305,13 +305,14 @@ def _parser() -> _Parser:
     pe.add_argument("--half-life-days", type=float, default=None, help="decay: a message's weight halves after this many days (new layers; default: no decay)")
     pe.add_argument("--json", action="store_true", help="print JSON")
 
-    pr = sub.add_parser("prune", help="drop the least valuable pairs (and words) until the model fits a size budget")
+    pr = sub.add_parser("prune", help="drop the least valuable n-grams (and words) until the model fits a size budget (any estimator and order)")
     pr.add_argument("model", help=_MODEL_HELP)
     pr.add_argument("-o", "--output", help="the pruned model (written atomically, never over its input); required unless --curve (default: none)")
     pr.add_argument("--max-size", metavar="SIZE", type=_size, help="budget, e.g. 4MB, 1.5MiB, 800000; required unless --curve (default: none)")
     pr.add_argument("--rule", choices=("count", "entropy"), default=DEFAULT_RULE, help="which pairs and words go first (default %(default)s)")
     pr.add_argument("--keep-vocabulary", action="store_true",
-                    help="remove pairs only, never words (default: words go too when they are worth less per byte)")
+                    help="remove n-grams only, never words (default: words go too when they are worth less per byte; "
+                    "Kneser-Ney and order-3 files always keep their words)")
     pr.add_argument("--curve", nargs="+", metavar="HELDOUT",
                     help="write nothing; print file size against KSR@k and perplexity on these held-out logs, both rules, for each of --sizes (default: no curve)")
     pr.add_argument("--sizes", nargs="+", metavar="SIZE", type=_size,
@@ -960,7 +961,7 @@ def _cmd_personal(args: argparse.Namespace) -> int:
 
 
 def _cmd_prune(args: argparse.Namespace) -> int:
-    from .prune import parse_size, prune_to_size, tables_from_model
+    from .prune import parse_size, prune_model
     from .store import atomic_write, check_new_output
 
     model = load(args.model)
@@ -972,10 +973,9 @@ def _cmd_prune(args: argparse.Namespace) -> int:
     bar = Progress("prune")
     try:
         bar.stage(f"reading the counts of {args.model}")
-        _, chunks, info = prune_to_size(
-            tables_from_model(model), parse_size(args.max_size), rule=args.rule, lam=model.stored_lam,
-            vocabulary=not args.keep_vocabulary, skyband_k=model.header()["skyband_k"], skyband_min=model.header()["skyband_min"], progress=lambda label: bar.stage(label),
-        )
+        # a Jelinek-Mercer bigram by its pairs (and words); any other kind on its stored levels, words kept
+        chunks, info = prune_model(model, parse_size(args.max_size), rule=args.rule, vocabulary=not args.keep_vocabulary,
+                                   progress=lambda label: bar.stage(label))
         bar.stage(f"writing {args.output}")
         atomic_write(args.output, chunks)
     finally:
@@ -985,7 +985,8 @@ def _cmd_prune(args: argparse.Namespace) -> int:
         print(json.dumps(out))
     else:
         print(
-            f"wrote {args.output}: {info['bytes']:,} bytes (was {model.file_size:,}); kept {info['kept']:,} pairs, "
+            f"wrote {args.output}: {info['bytes']:,} bytes (was {model.file_size:,}); kept {info['kept']:,} "
+            f"{'pairs' if model.estimator == 'jm' and model.order == 2 else 'n-grams'}, "
             f"removed {info['removed']:,}; kept {info['words_kept']:,} words, removed {info['words_removed']:,} ({args.rule} rule)"
         )
     return 0
@@ -1001,7 +1002,7 @@ def _prune_curve(args: argparse.Namespace, model: Model) -> int:
         raise UsageError(f"--plot {args.plot} needs matplotlib: pip install 'nextword[plot]'")
 
     from .evaluate import evaluate
-    from .prune import RULES, parse_size, prune_to_size, tables_from_model
+    from .prune import RULES, parse_size, prune_model
     from .store import atomic_write
 
     held = [m for m in iter_messages(open_sources(args.curve)) if m.strip()]
@@ -1009,7 +1010,6 @@ def _prune_curve(args: argparse.Namespace, model: Model) -> int:
         raise InvalidArgumentError("no held-out messages in " + ", ".join(args.curve))
     ksr_msgs = held[: args.messages]
     sizes = [parse_size(x) for x in args.sizes] if args.sizes else [int(model.file_size * f) for f in (1.0, 0.75, 0.5, 0.35, 0.25)]
-    tables = tables_from_model(model)
     rows: list[dict[str, Any]] = []
     skipped: list[dict[str, Any]] = []
     bar = Progress("pruning curve")
@@ -1020,10 +1020,7 @@ def _prune_curve(args: argparse.Namespace, model: Model) -> int:
                 path = args.model
                 if budget < model.file_size:
                     try:
-                        _, chunks, _ = prune_to_size(
-                            tables, budget, rule=rule, lam=model.stored_lam,  # type: ignore[arg-type]
-                            vocabulary=not args.keep_vocabulary, skyband_k=model.header()["skyband_k"], skyband_min=model.header()["skyband_min"],
-                        )
+                        chunks, _ = prune_model(model, budget, rule=rule, vocabulary=not args.keep_vocabulary)  # type: ignore[arg-type]
                     except InvalidArgumentError as e:  # below the smallest model of this vocabulary rule
                         skipped.append({"rule": rule, "budget": budget, "reason": str(e)})
                         continue

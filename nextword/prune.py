@@ -29,19 +29,38 @@ divided by the measured bytes per pair. Words and pairs are taken best first unt
 estimated size reaches the budget; the words taken are kept, then the pairs are pruned
 again on the smaller vocabulary until the measured file fits.
 
+Models of any estimator and order (Kneser-Ney order 2 and 3, Jelinek-Mercer order 3)
+are pruned on their fitted levels instead (:func:`prune_ngrams_to_size`, the comment
+above :func:`ngram_scores`): every n-gram of order ≥ 2 is scored by Stolcke's exact
+relative entropy, a dropped n-gram's value stays in its context's total as *dropped
+mass* that backs off to the lower order (γ grows by exactly the dropped α, so every
+context still sums to 1 and no other stored probability changes), and n-grams of
+different orders compete by score per measured byte of their order, words by the same
+value-per-byte rule as above; a kept trigram keeps its context bigram (the file finds a
+trigram context through its bigram entry). The file is :func:`nextword.store.build` of
+the pruned fitted model (the dropped mass stored, format 1.4). ``train --max-size`` uses
+it for every estimator and order (:func:`write_to_size`), ``nextword prune`` on a file
+of any kind (:func:`prune_model`, read through the model's public accessors); a
+Jelinek-Mercer bigram keeps the pair rule above.
+
 Measured figures: bench/RESULTS.md, "Size budget".
 """
 
 from __future__ import annotations
 
+import copy
+import dataclasses
+import os
 import re
-from typing import TYPE_CHECKING, Callable, Final, Literal
+from typing import TYPE_CHECKING, Callable, Final, Literal, Sequence
 
 import numpy as np
 
 from .counts import CountTables
 from .errors import InvalidArgumentError
-from .store import build_sections, encode_sections, history_counts
+from .estimators import Estimator, Fitted, Level
+from .ngrams import NgramCounts, group_starts
+from .store import DEFAULT_SKYBAND_K, DEFAULT_SKYBAND_MIN, atomic_write, build_ngram_sections, build_sections, encode_sections, history_counts
 
 if TYPE_CHECKING:  # prune is imported by model (the train default), not the other way round
     from .model import Model
@@ -59,6 +78,25 @@ __all__ = [
     "prune_to_size",
     "vocabulary_bytes",
     "top_k",
+    "context_distributions",
+    "context_probability",
+    "ngram_scores",
+    "prune_level",
+    "prune_fitted",
+    "unigrams_only",
+    "stored_ngrams",
+    "keep_best",
+    "ngram_file",
+    "drop_ngram_words",
+    "ngram_word_values",
+    "prune_ngrams_to_size",
+    "write_to_size",
+    "context_bigrams",
+    "with_dependants",
+    "keep_contexts",
+    "kept_ngrams",
+    "file_context_mass",
+    "prune_model",
 ]
 
 RULES = ("entropy", "count")
@@ -79,28 +117,37 @@ def parse_size(text: str) -> int:
 
 
 def tables_from_model(model: Model) -> CountTables:
-    """The counts a model file holds, as :class:`CountTables` (to prune an existing model)."""
+    """The counts a Jelinek-Mercer bigram file holds, as :class:`CountTables` (to prune an existing model).
+
+    Read through the model's public accessors (:meth:`Model.stored_ngrams`: the unigram
+    counts and the pairs; :meth:`Model.stored_levels`: c(v) as queries read it). The
+    history counts are kept only where they differ from those the unigram counts give
+    (a file pruned before, which stores them); else None, as for a file never pruned.
+    Kneser-Ney and order-3 files are pruned on their fitted levels (:func:`prune_model`).
+    """
     if model.estimator != "jm" or model.order != 2:
         raise InvalidArgumentError(
-            f"{model.path}: pruning reads Jelinek-Mercer bigram files; this one is {model.estimator} order {model.order} "
-            "(its stored values are not plain pair counts)"
+            f"{model.path}: tables_from_model reads Jelinek-Mercer bigram files; this one is {model.estimator} order {model.order} "
+            f"(its stored values are not plain pair counts): prune it with prune_model"
         )
-    a = model._src.arrays
+    stored = model.stored_ngrams()
     n = model.n_words
-    rows = np.asarray(a["ROWS"], dtype=np.int64)
-    left = np.repeat(np.arange(n + 3), np.diff(rows))
-    right = np.asarray(a["ALPH"], dtype=np.int64)[np.asarray(a["SUCC"], dtype=np.int64)]
-    counts = model._counts(np.arange(int(rows[-1])))
-    order = np.lexsort((right, left))
+    unigram = np.zeros(n + 2, dtype=np.int64)
+    unigram[stored.grams[0][:, 0]] = stored.counts[0]
+    lev2 = model.stored_levels()[1]
+    stored_hist = np.zeros(n + 3, dtype=np.int64)
+    stored_hist[lev2.ctx[:, 0]] = lev2.ctx_total
+    history = None if np.array_equal(stored_hist, history_counts(unigram, n)) else stored_hist
+    g2 = stored.grams[1]
     return CountTables(
-        keys=[model._key(i) for i in range(n)],
+        keys=model.word_keys(),
         displays=[model.display(i) for i in range(n)],
-        unigram=np.asarray(a["UNIG"], dtype=np.int64),
-        pair_left=left[order],
-        pair_right=right[order],
-        pair_count=counts[order],
+        unigram=unigram,
+        pair_left=np.asarray(g2[:, 0], dtype=np.int64),
+        pair_right=np.asarray(g2[:, 1], dtype=np.int64),
+        pair_count=np.asarray(stored.counts[1], dtype=np.int64),
         stats=dict(model.stats),
-        history=None if "HIST" not in a else np.asarray(a["HIST"], dtype=np.int64),
+        history=history,
     )
 
 
@@ -545,3 +592,707 @@ def prune_to_size(
     info["words_removed"] = words_before - smaller.tables.n_words
     info["words_kept"] = smaller.tables.n_words
     return pruned, chunks, info
+
+
+# -- pruning a fitted n-gram model of any estimator and order ---------------------------------
+#
+# The pruned model keeps every context's total as estimated on the full data; a dropped
+# n-gram's value stays in that total as *dropped mass*, which backs off to the lower
+# order: with T the context's total and ``dropped`` the part of it no longer stored,
+#
+#     Kneser-Ney:      γ(h) = (D₁n₁ + D₂n₂ + D₃n₃ + dropped) / T   (n_j over the stored n-grams)
+#     Jelinek-Mercer:  γ(h) = (1 − λ) + λ · dropped / T
+#
+# and every stored n-gram keeps its α (its value over the unchanged T). Removing one
+# n-gram (h, w) therefore moves exactly its α from the first term to γ(h): P(·|h) still
+# sums to 1, no other α changes. Lower-order values stay as estimated on the full data
+# (Kneser-Ney's continuation counts are not recounted over the kept n-grams, nor are the
+# discounts refitted). Every n-gram of order ≥ 2 is scored alone on the full model and the
+# least valuable go first, whatever their order, under one structural rule: a kept trigram
+# (u, v, w) keeps the bigram (u, v) — a bigram that is the context of a kept trigram is not
+# prunable (common practice in back-off n-gram pruning: the longer n-gram's context stays
+# in the model; the file format finds a trigram context through its bigram entry, §7.14 of
+# docs/FORMAT.md). So a bigram is ranked by the larger of its own value and the values of
+# the trigrams it is the context of (:func:`with_dependants`: it leaves with its last
+# dependant), and the selection adds the context bigram of every kept trigram that a tie
+# left out (:func:`keep_contexts`). A context left with no n-gram is dropped with them
+# (γ = 1 there: the same as a context never seen). The unigram level is the vocabulary; it
+# shrinks only by dropping whole words into <unk> (:func:`drop_ngram_words`).
+
+
+def _pack(rows: np.ndarray, base: int) -> np.ndarray:
+    """One int64 key per row of ids in ``0..base-1``, ordered as the rows are (lexicographically)."""
+    key = np.zeros(len(rows), np.int64)
+    for c in range(rows.shape[1]):
+        key = key * base + rows[:, c].astype(np.int64)
+    return key
+
+
+def _owners(lev: Level) -> np.ndarray:
+    return np.repeat(np.arange(len(lev.ctx)), np.diff(lev.ctx_start))
+
+
+class _Probs:
+    """Vectorised P_m(w | h) of a fitted model for many (h, w) rows at once (α, γ computed once per level)."""
+
+    def __init__(self, fitted: Fitted) -> None:
+        self.fitted = fitted
+        self.base = fitted.bos + 1
+        self._alpha: dict[int, np.ndarray] = {}
+        self._gamma: dict[int, np.ndarray] = {}
+        lev1 = fitted.levels[0]
+        p1 = np.full(fitted.n_outcomes, fitted.base())
+        if len(lev1.ctx):
+            p1 = p1 * float(fitted.gammas(1)[0])
+            p1[lev1.grams[:, 0]] += fitted.alphas(1)
+        self.p1 = p1
+
+    def alpha(self, m: int) -> np.ndarray:
+        if m not in self._alpha:
+            self._alpha[m] = self.fitted.alphas(m)
+        return self._alpha[m]
+
+    def gamma(self, m: int) -> np.ndarray:
+        if m not in self._gamma:
+            self._gamma[m] = self.fitted.gammas(m)
+        return self._gamma[m]
+
+    def probs(self, rows: np.ndarray) -> np.ndarray:
+        """P_m(w | h) for each row (h…, w) of a ``(k, m)`` id array."""
+        m = rows.shape[1]
+        if m == 1:
+            return np.asarray(self.p1[rows[:, 0]], dtype=np.float64)
+        lower = self.probs(rows[:, 1:])
+        lev = self.fitted.levels[m - 1]
+        alpha = np.zeros(len(rows))
+        gamma = np.ones(len(rows))
+        if len(lev.grams):
+            gk, rk = _pack(lev.grams, self.base), _pack(rows, self.base)
+            pos = np.minimum(np.searchsorted(gk, rk), len(gk) - 1)
+            hit = gk[pos] == rk
+            alpha[hit] = self.alpha(m)[pos[hit]]
+            ck, rc = _pack(lev.ctx, self.base), _pack(rows[:, :-1], self.base)
+            cpos = np.minimum(np.searchsorted(ck, rc), len(ck) - 1)
+            chit = ck[cpos] == rc
+            gamma[chit] = self.gamma(m)[cpos[chit]]
+        return alpha + gamma * lower
+
+
+def context_distributions(fitted: Fitted) -> Callable[[tuple[int, ...]], np.ndarray]:
+    """A function giving P(·|h) over every outcome (float64, length n_words + 2) for a context of ids.
+
+    Built order by order as one vector — P₁, then γ(h)·P + α on each stored context's row
+    — with α and γ computed once per level: the whole distribution of a context at once,
+    for checks (every context sums to 1) and brute-force rankings of pruned models.
+    """
+    probs = _Probs(fitted)
+    levels = fitted.levels
+
+    def dist(h: tuple[int, ...]) -> np.ndarray:
+        h = fitted.context_of(h)
+        p = probs.p1.copy()
+        for m in range(2, len(h) + 2):
+            lev = levels[m - 1]
+            j = lev.find_context(h[len(h) - (m - 1):])
+            if j < 0:
+                continue
+            s, e = int(lev.ctx_start[j]), int(lev.ctx_start[j + 1])
+            p = probs.gamma(m)[j] * p
+            p[lev.grams[s:e, -1]] += probs.alpha(m)[s:e]
+        return p
+
+    return dist
+
+
+def context_probability(lev: Level, counts: NgramCounts, m: int) -> np.ndarray:
+    """P(h) = c(h •) / N for every context of ``lev`` (order m): raw counts as a history.
+
+    c(h •) is how often h was followed by a predicted token in the training text (its raw
+    m-gram counts summed, also for Kneser-Ney, whose stored lower-order values are
+    continuation counts), N the number of predicted tokens.
+    """
+    raw_g, raw_c = counts.grams[m - 1], counts.counts[m - 1]
+    n_tokens = float(counts.counts[0].sum())
+    starts = group_starts(raw_g[:, : m - 1])
+    if len(raw_g) == 0 or len(lev.ctx) == 0:
+        return np.zeros(len(lev.ctx))
+    base = counts.bos + 1
+    raw_ctx = _pack(raw_g[starts[:-1], : m - 1], base)
+    raw_tot = np.add.reduceat(raw_c, starts[:-1]).astype(np.float64)
+    q = _pack(lev.ctx, base)
+    pos = np.minimum(np.searchsorted(raw_ctx, q), len(raw_ctx) - 1)
+    return np.where(raw_ctx[pos] == q, raw_tot[pos], 0.0) / n_tokens
+
+
+def ngram_scores(fitted: Fitted, counts: NgramCounts, *, context_mass: Sequence[np.ndarray] | None = None) -> list[np.ndarray]:
+    """Stolcke's relative-entropy score of every stored n-gram of order ≥ 2; ``out[m-1]`` for order m.
+
+    The score of (h, w_j) is P(h) · D(P(·|h) ‖ P′(·|h)) with P′ this model without that
+    n-gram (see the comment above: its α_j joins γ(h), nothing else in h changes), P(h)
+    from :func:`context_probability`. With L the lower-order distribution P_{m−1}(·|h′),
+    P′(w|h) = P(w|h) + α_j·L(w) for w ≠ w_j and P′(w_j|h) = (γ + α_j)·L(w_j), so
+
+        D = P_j ln(P_j / P′_j) − Σ_{i stored, i≠j} P_i ln(1 + α_j L_i / P_i)
+              − γ ln(1 + α_j / γ) · (1 − Σ_{i stored} L_i)
+
+    (the last term: every word not stored after h, whose P = γ·L). The sum over the
+    stored words depends on j only through α_j, i.e. through its value: it is computed
+    once per distinct value of each context (:func:`_row_sums`, as for the bigram
+    scores). Each n-gram is scored alone, on its own context's distribution (the change
+    it makes to higher-order contexts that interpolate with it is not counted, as in
+    Stolcke's criterion). ``out[0]`` (the unigram level) is empty: words are valued by
+    :func:`ngram_word_values`. ``context_mass[m-1]``, if given, is P(h) of each context of
+    order m instead (see :func:`file_context_mass`).
+    """
+    probs = _Probs(fitted)
+    out: list[np.ndarray] = [np.zeros(0)]
+    for m in range(2, fitted.order + 1):
+        lev = fitted.levels[m - 1]
+        k = len(lev.grams)
+        if k == 0:
+            out.append(np.zeros(0))
+            continue
+        owner = _owners(lev)
+        a = probs.alpha(m)
+        g = probs.gamma(m)
+        low = probs.probs(lev.grams[:, 1:])
+        gj = g[owner]
+        p = a + gj * low
+        radix = int(lev.value.max()) + 1
+        combos, pair_combo = np.unique(owner * radix + lev.value, return_inverse=True)
+        pair_combo = pair_combo.reshape(-1)
+        first = np.zeros(len(combos), np.int64)
+        first[pair_combo[::-1]] = np.arange(k)[::-1]  # any member: α is a function of (context, value)
+        combo_row = combos // radix
+        f = _row_sums(p, low, lev.ctx_start, combo_row, a[first])
+        uncovered = np.maximum(1.0 - np.bincount(owner, weights=low, minlength=len(lev.ctx)), 0.0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            own_f = p * np.log1p(a * low / p)
+            own = p * np.log(p / ((gj + a) * low))
+            unseen = gj * np.log1p(a / gj) * uncovered[owner]
+            kl = own - (f[pair_combo] - own_f) - unseen
+        kl = np.where(a == 0.0, 0.0, np.where(np.isnan(kl), np.inf, kl))
+        ph = context_probability(lev, counts, m) if context_mass is None else np.asarray(context_mass[m - 1], dtype=np.float64)
+        out.append(ph[owner] * np.maximum(kl, 0.0))
+    return out
+
+
+def prune_level(lev: Level, keep: np.ndarray, *, contexts: np.ndarray | None = None) -> Level:
+    """``lev`` with only the n-grams where ``keep`` is true; kept contexts keep their totals.
+
+    A context left with no n-gram goes too (γ = 1 there, as for a context never seen),
+    unless ``contexts`` (a mask over ``lev.ctx``) asks to keep it: then it stays with its
+    total and an empty block, which scores the same (all its mass is dropped mass) — the
+    form :meth:`nextword.Model.stored_levels` reads such a context back in.
+    """
+    keep = np.asarray(keep, dtype=bool)
+    if keep.shape != (len(lev.grams),):
+        raise InvalidArgumentError(f"keep must have one entry per n-gram ({len(lev.grams)}), got shape {keep.shape}")
+    owner = _owners(lev)[keep]
+    per_ctx = np.bincount(owner, minlength=len(lev.ctx))
+    stay = per_ctx > 0
+    if contexts is not None:
+        stay |= np.asarray(contexts, dtype=bool)
+    where = np.flatnonzero(stay)
+    starts = np.zeros(len(where) + 1, dtype=np.int64)
+    np.cumsum(per_ctx[where], out=starts[1:])
+    value = lev.value[keep]
+    n123 = np.zeros((len(lev.ctx), 3), np.int64)
+    for col, mask in enumerate((value == 1, value == 2, value >= 3)):
+        n123[:, col] = np.bincount(owner[mask], minlength=len(lev.ctx))
+    return Level(lev.grams[keep], value, lev.ctx[where], starts, np.asarray(lev.ctx_total[where], dtype=np.int64), n123[where])
+
+
+def prune_fitted(fitted: Fitted, keep: Sequence[np.ndarray | None]) -> Fitted:
+    """The model without the n-grams ``keep`` rejects (``keep[m-1]`` per order; None keeps a level whole).
+
+    Only orders ≥ 2 may lose n-grams. Every context's distribution still sums to 1
+    (dropped mass backs off, see the comment above :func:`ngram_scores`). A bigram context
+    v stays (with its total) while a kept trigram (u, v, w) reads it, even with no bigram
+    left: the file stores B(v, w) for the trigram's bands from v's total (docs/FORMAT.md §7.16).
+    """
+    if len(keep) != fitted.order:
+        raise InvalidArgumentError(f"{len(keep)} keep masks given for order {fitted.order}")
+    if keep[0] is not None and not bool(np.all(keep[0])):
+        raise InvalidArgumentError("the unigram level is the vocabulary: drop words with drop_ngram_words instead")
+    levels = list(fitted.levels)
+    for m in range(fitted.order, 1, -1):
+        k = keep[m - 1]
+        if k is None:  # the level whole: every context keeps its n-grams
+            continue
+        needed = None
+        if m < fitted.order:  # contexts the kept (m+1)-grams back off into: their last m−1 context tokens
+            upper = levels[m]
+            lev = fitted.levels[m - 1]
+            base = fitted.bos + 1
+            needed = np.isin(_pack(lev.ctx, base), _pack(upper.grams[:, 1:m], base))
+        levels[m - 1] = prune_level(fitted.levels[m - 1], k, contexts=needed)
+    out = copy.copy(fitted)
+    out.levels = levels
+    return out
+
+
+def unigrams_only(fitted: Fitted) -> Fitted:
+    """The model with every n-gram of order ≥ 2 pruned: the vocabulary alone."""
+    return prune_fitted(fitted, [None] + [np.zeros(len(lev.grams), dtype=bool) for lev in fitted.levels[1:]])
+
+
+def stored_ngrams(fitted: Fitted) -> int:
+    """How many n-grams of order ≥ 2 the model stores (what pruning can remove)."""
+    return sum(len(lev.grams) for lev in fitted.levels[1:])
+
+
+def keep_best(values: Sequence[np.ndarray], k: int) -> list[np.ndarray | None]:
+    """Keep masks for the ``k`` highest of the per-order ``values`` (orders ≥ 2) together; ties to the lower order, then index."""
+    flat = np.concatenate([np.asarray(v, dtype=np.float64) for v in values[1:]]) if len(values) > 1 else np.zeros(0)
+    mask = top_k(flat, k)
+    out: list[np.ndarray | None] = [None]
+    at = 0
+    for v in values[1:]:
+        out.append(mask[at : at + len(v)])
+        at += len(v)
+    return out
+
+
+def context_bigrams(fitted: Fitted) -> np.ndarray:
+    """For each stored trigram (u, v, w), the index of its context bigram (u, v) in ``levels[1].grams``.
+
+    Empty below order 3. Every trigram's context is a stored bigram in a model fitted from
+    counts and in a file (the format keeps it); anything else is refused.
+    """
+    if fitted.order < 3:
+        return np.zeros(0, np.int64)
+    g2, g3 = fitted.levels[1].grams, fitted.levels[2].grams
+    if len(g3) == 0:
+        return np.zeros(0, np.int64)
+    base = fitted.bos + 1
+    k2, q = _pack(g2, base), _pack(g3[:, :2], base)
+    pos = np.searchsorted(k2, q)
+    if len(k2) == 0 or int(pos.max()) >= len(k2) or not bool(np.all(k2[pos] == q)):
+        raise InvalidArgumentError("a stored trigram's context (u, v) is not a stored bigram")
+    return np.asarray(pos, dtype=np.int64)
+
+
+def with_dependants(fitted: Fitted, values: Sequence[np.ndarray]) -> list[np.ndarray]:
+    """Per-order ``values`` with each bigram raised to the largest value of the trigrams it is the context of.
+
+    The ranking under the rule "a kept trigram keeps its context bigram" (see the comment
+    above :func:`ngram_scores`): taking the best k by these values never keeps a trigram
+    without its context, ties apart (:func:`keep_contexts` settles those).
+    """
+    out = [np.asarray(v, dtype=np.float64).copy() for v in values]
+    if fitted.order >= 3 and len(out[2]):
+        np.maximum.at(out[1], context_bigrams(fitted), out[2])
+    return out
+
+
+def keep_contexts(fitted: Fitted, keep: Sequence[np.ndarray | None]) -> list[np.ndarray | None]:
+    """Keep masks with the context bigram (u, v) of every kept trigram (u, v, w) kept too."""
+    out = list(keep)
+    if fitted.order >= 3 and out[2] is not None and out[1] is not None:
+        k2 = np.asarray(out[1], dtype=bool).copy()
+        k2[context_bigrams(fitted)[np.asarray(out[2], dtype=bool)]] = True
+        out[1] = k2
+    return out
+
+
+def kept_ngrams(keep: Sequence[np.ndarray | None], fitted: Fitted) -> int:
+    """How many n-grams of order ≥ 2 the masks keep (None: the whole level)."""
+    return sum(len(lev.grams) if k is None else int(np.count_nonzero(k)) for lev, k in zip(fitted.levels[1:], keep[1:]))
+
+
+def ngram_file(counts: NgramCounts, tables: CountTables, fitted: Fitted, **build: int) -> Chunks:
+    """The model file of a fitted (possibly pruned) model, as chunks (written by :func:`store.atomic_write`).
+
+    The bytes :func:`nextword.store.build` writes with ``fitted=fitted``: a pruned level's
+    dropped mass (context totals above the sum of the stored values) is recorded and
+    backs off through γ (docs/FORMAT.md §7.13, §7.15).
+    """
+    sections, minor = build_ngram_sections(counts, tables, None, fitted=fitted, **build)
+    return encode_sections(sections, minor=minor)
+
+
+def drop_ngram_words(counts: NgramCounts, tables: CountTables, keep: np.ndarray) -> tuple[NgramCounts, CountTables]:
+    """The counts of every order with only the words where ``keep`` is true; the rest become ``<unk>``.
+
+    :func:`drop_words` for every order: the model is exactly the one trained on the text
+    with the dropped words replaced by an unknown word (n-grams made equal are summed),
+    so the estimator is fitted again on the result.
+    """
+    small = drop_words(tables, keep)
+    n, m = tables.n_words, small.n_words
+    keep = np.asarray(keep, dtype=bool)
+    remap = np.empty(n + 3, dtype=np.int64)
+    remap[:n] = np.where(keep, np.cumsum(keep) - 1, m + 1)
+    remap[n:] = [m, m + 1, m + 2]
+    seen = np.flatnonzero(small.unigram)
+    grams = [seen.astype(np.int64)[:, None], np.column_stack((small.pair_left, small.pair_right)).astype(np.int64)]
+    values = [np.asarray(small.unigram[seen], dtype=np.int64), np.asarray(small.pair_count, dtype=np.int64)]
+    for level in range(3, counts.order + 1):
+        g = remap[counts.grams[level - 1]]
+        key = _pack(g, m + 3)
+        uniq, inverse = np.unique(key, return_inverse=True)
+        summed = np.bincount(inverse.reshape(-1), weights=counts.counts[level - 1].astype(np.float64), minlength=len(uniq))
+        rows = np.zeros((len(uniq), level), dtype=np.int64)
+        rest = uniq.copy()
+        for c in range(level - 1, -1, -1):
+            rows[:, c] = rest % (m + 3)
+            rest //= m + 3
+        grams.append(rows)
+        values.append(np.rint(summed).astype(np.int64))
+    return NgramCounts(m, tuple(grams[: counts.order]), tuple(values[: counts.order])), small
+
+
+def ngram_word_values(counts: NgramCounts, scores: Sequence[np.ndarray], fitted: Fitted) -> np.ndarray:
+    """Value of every vocabulary word (ids 0 … n−1) for :func:`prune_ngrams_to_size`; the smallest go first.
+
+    As :func:`word_values` for the entropy rule: the word's term c(x)/N·ln(N/c(x)) of the
+    unigram entropy (raw counts) plus the scores of every stored n-gram it is part of,
+    in any position — dropping the word loses all of them.
+    """
+    n = counts.n_words
+    c = np.zeros(n + 3)
+    c[counts.grams[0][:, 0]] = counts.counts[0]
+    c = c[:n]
+    total = float(counts.counts[0].sum())
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out = np.where(c > 0, c / total * np.log(total / np.where(c > 0, c, 1.0)), 0.0)
+    for m in range(2, fitted.order + 1):
+        g = fitted.levels[m - 1].grams
+        v = np.where(np.isfinite(scores[m - 1]), scores[m - 1], 0.0)
+        for col in range(m):
+            ids = g[:, col]
+            inside = ids < n
+            out += np.bincount(ids[inside], weights=v[inside], minlength=n)[:n]
+    return out
+
+
+def prune_ngrams_to_size(
+    counts: NgramCounts,
+    tables: CountTables,
+    estimator: Estimator | None,
+    max_bytes: int,
+    *,
+    rule: Rule = DEFAULT_RULE,
+    vocabulary: bool = True,
+    progress: Callable[[str], None] | None = None,
+    context_mass: Sequence[np.ndarray] | None = None,
+    fitted: Fitted | None = None,
+    **build: int,
+) -> tuple[Fitted, NgramCounts, CountTables, Chunks, dict[str, float]]:
+    """Keep the most valuable n-grams (and words) of any estimator and order that fit ``max_bytes``.
+
+    Returns (pruned model, counts, tables, file chunks, info); the counts and tables
+    are smaller than the inputs when words were dropped. The rule, by value per byte:
+
+    * every stored n-gram of order ≥ 2 is valued by its relative-entropy score
+      (:func:`ngram_scores`) divided by the bytes one n-gram of its order costs, measured
+      from three builds (all n-grams; none above order 2; none above order 1) — a
+      trigram and a bigram cost different amounts, so one threshold on score per byte
+      decides between them;
+    * the kept count is found on measured sizes: a first guess from those per-order
+      costs, then secant steps on the measured file size until the file fits and the next
+      step would not (each trial is a full build of the file);
+    * words go only when the vocabulary alone (every n-gram of order ≥ 2 dropped) does not
+      fit: the least valuable words (:func:`ngram_word_values`) become ``<unk>`` — a tenth
+      of the kept words at a time after a first guess from the bytes per word — the
+      estimator is fitted again on the smaller counts and the n-grams are fitted to what
+      is left. With ``vocabulary=False`` such a budget is an error instead.
+
+    ``rule`` "count" values each n-gram by its stored value (raw count, or Kneser-Ney's
+    adjusted count) instead of its score, per byte the same way. Either way a kept
+    trigram keeps its context bigram (the comment above :func:`ngram_scores`).
+    ``progress(label)`` is called before each expensive step. ``fitted`` prunes that
+    fitted model instead of fitting ``estimator`` to ``counts`` (a model read from a file,
+    :func:`prune_model`; its words are kept, so ``vocabulary`` must be False), and
+    ``context_mass`` is passed to :func:`ngram_scores` (P(h) where the raw counts are gone).
+    """
+    if rule not in RULES:
+        raise InvalidArgumentError(f"unknown pruning rule {rule!r}; expected one of {RULES}")
+
+    def score(f: Fitted, c: NgramCounts) -> list[np.ndarray]:
+        if rule == "count":
+            return [np.zeros(0)] + [lev.value.astype(np.float64) for lev in f.levels[1:]]
+        return ngram_scores(f, c, context_mass=context_mass)
+
+    def say(label: str) -> None:
+        if progress is not None:
+            progress(label)
+
+    source = fitted if fitted is not None else estimator
+    if source is None:
+        raise InvalidArgumentError("prune_ngrams_to_size needs an estimator or a fitted model")
+    if source.name == "jm" and counts.order == 2:
+        raise InvalidArgumentError("a Jelinek-Mercer bigram model is pruned by prune_to_size (its file stores the counts themselves)")
+    if fitted is not None and vocabulary:
+        raise InvalidArgumentError("a fitted model keeps its words (vocabulary=False): dropping words needs its raw counts")
+    words_before = tables.n_words
+    if fitted is None:
+        assert estimator is not None  # source is one of the two
+        say("fitting")
+        fitted = estimator.fit(counts)
+    chunks = ngram_file(counts, tables, fitted, **build)
+    total = stored_ngrams(fitted)
+    if _nbytes(chunks) <= max_bytes:
+        return fitted, counts, tables, chunks, {"kept": total, "removed": 0, "bytes": _nbytes(chunks),
+                                                "words_kept": words_before, "words_removed": 0}
+    say(f"scoring {total:,} n-grams ({rule} rule)")
+    scores = score(fitted, counts)
+    full = _nbytes(chunks)
+    floor = _nbytes(ngram_file(counts, tables, unigrams_only(fitted), **build))
+    costs = _order_costs(counts, tables, fitted, full, floor, say, build)
+    if not vocabulary and floor > max_bytes:
+        how = ("a model read from a file keeps its words: train it with --max-size to let words go" if estimator is None
+               else "let the vocabulary shrink too (the default; not with --keep-vocabulary / vocabulary=False) or lower max_vocab")
+        raise InvalidArgumentError(f"a budget of {max_bytes:,} bytes is below the vocabulary alone ({floor:,} bytes); {how}")
+    if vocabulary:
+        assert estimator is not None  # a fitted model is pruned with vocabulary=False (checked above)
+        wv = ngram_word_values(counts, scores, fitted)
+        keep = _choose_ngram_words(counts, tables, estimator, fitted, scores, wv, costs, floor, max_bytes, build)
+        n = tables.n_words
+        while not keep.all():
+            say(f"dropping words: keeping {int(keep.sum()):,} of {n:,}")
+            small_counts, small_tables = drop_ngram_words(counts, tables, keep)
+            small_fit = estimator.fit(small_counts)
+            small_floor = _nbytes(ngram_file(small_counts, small_tables, unigrams_only(small_fit), **build))
+            if small_floor <= max_bytes:
+                say(f"scoring {stored_ngrams(small_fit):,} n-grams ({rule} rule)")
+                counts, tables, fitted, floor = small_counts, small_tables, small_fit, small_floor
+                scores = score(fitted, counts)
+                full = _nbytes(ngram_file(counts, tables, fitted, **build))
+                costs = _order_costs(counts, tables, fitted, full, floor, say, build)
+                break
+            if keep.sum() == 1:
+                raise InvalidArgumentError(
+                    f"a budget of {max_bytes:,} bytes is below the smallest possible model ({small_floor:,} bytes: one word)"
+                )
+            # the estimate was optimistic: drop the least valuable tenth of the kept words too
+            kept = np.flatnonzero(keep)
+            keep[kept[np.argsort(wv[kept], kind="stable")[: max(1, len(kept) // 10)]]] = False
+    fitted_out, chunks, info = _fit_ngrams(counts, tables, fitted, scores, max_bytes, floor, full, costs, say, build)
+    info["words_kept"] = tables.n_words
+    info["words_removed"] = words_before - tables.n_words
+    return fitted_out, counts, tables, chunks, info
+
+
+def _nbytes(chunks: Chunks) -> int:
+    return sum(len(c) for c in chunks)
+
+
+def _order_costs(counts: NgramCounts, tables: CountTables, fitted: Fitted, full: int, floor: int,
+                 say: Callable[[str], None], build: dict[str, int]) -> list[float]:
+    """Bytes per stored n-gram of each order (``out[m]``), measured: the full file, then each order from the top removed in turn."""
+    order = fitted.order
+    sizes = [len(lev.grams) for lev in fitted.levels]
+    cost = [0.0] * (order + 1)
+    upper = full
+    for m in range(order, 1, -1):
+        if m == 2:
+            below = floor
+        else:
+            keep: list[np.ndarray | None] = [None] + [
+                np.ones(sizes[i], bool) if i + 1 < m else np.zeros(sizes[i], bool) for i in range(1, order)]
+            say(f"measuring the bytes of order {m}")
+            below = _nbytes(ngram_file(counts, tables, prune_fitted(fitted, keep), **build))
+        cost[m] = max((upper - below) / max(sizes[m - 1], 1), 1e-9)
+        upper = below
+    return cost
+
+
+def _choose_ngram_words(counts: NgramCounts, tables: CountTables, estimator: Estimator, fitted: Fitted, scores: list[np.ndarray],
+                        wv: np.ndarray, cost: list[float], floor: int, max_bytes: int, build: dict[str, int]) -> np.ndarray:
+    """Which words to keep, by value per byte against the n-grams (as :func:`choose_vocabulary` for pairs).
+
+    A word's value (:func:`ngram_word_values`) over the bytes one word costs (the
+    vocabulary-only file against the one-word file), an n-gram's score over its order's
+    cost; both taken best first until the estimated size reaches the budget.
+    """
+    n = tables.n_words
+    one = np.zeros(n, dtype=bool)
+    one[int(np.argmax(wv))] = True
+    c1, t1 = drop_ngram_words(counts, tables, one)
+    fixed = _nbytes(ngram_file(c1, t1, unigrams_only(estimator.fit(c1)), **build))
+    per_word = max((floor - fixed) / max(n - 1, 1), 1e-9)
+    values = np.concatenate([np.where(np.isfinite(scores[m - 1]), scores[m - 1] / cost[m], np.inf)
+                             for m in range(2, fitted.order + 1)])
+    costs = np.concatenate([np.full(len(scores[m - 1]), cost[m]) for m in range(2, fitted.order + 1)])
+    ascending = np.argsort(values, kind="stable")
+    gram_value = values[ascending]
+    gram_cost = costs[ascending][::-1]  # the n-grams' costs, best first
+    word_value = wv / per_word
+    by_value = np.argsort(-word_value, kind="stable")
+    # every item best first: a word's place is its rank among the words plus the n-grams worth strictly more
+    ahead = len(gram_value) - np.searchsorted(gram_value, word_value[by_value], side="right")
+    place = np.arange(n) + ahead
+    cost_all = np.empty(n + len(gram_value))
+    is_word = np.zeros(len(cost_all), dtype=bool)
+    is_word[place] = True
+    cost_all[place] = per_word
+    cost_all[~is_word] = gram_cost
+    fits = fixed + np.cumsum(cost_all) - per_word <= max_bytes  # the first word is in ``fixed``
+    cut = len(fits) if fits.all() else int(np.argmin(fits))
+    keep = np.zeros(n, dtype=bool)
+    keep[by_value[place < cut]] = True
+    keep[int(np.argmax(wv))] = True
+    return keep
+
+
+def _fit_ngrams(counts: NgramCounts, tables: CountTables, fitted: Fitted, scores: list[np.ndarray], max_bytes: int,
+                floor: int, full: int, cost: list[float], say: Callable[[str], None],
+                build: dict[str, int]) -> tuple[Fitted, Chunks, dict[str, float]]:
+    """The most valuable n-grams by score per byte that fit ``max_bytes`` (``floor``/``full``: the file with none/all)."""
+    order = fitted.order
+    total = stored_ngrams(fitted)
+    if full <= max_bytes:  # after dropping words every n-gram may fit
+        chunks = ngram_file(counts, tables, fitted, **build)
+        return fitted, chunks, {"kept": total, "removed": 0, "bytes": _nbytes(chunks)}
+    sizes = [len(lev.grams) for lev in fitted.levels]
+    values = [np.zeros(0)] + [np.where(np.isfinite(scores[m - 1]), scores[m - 1] / cost[m], np.inf) for m in range(2, order + 1)]
+    ranked = with_dependants(fitted, values)  # a bigram leaves with its last trigram (see above ngram_scores)
+
+    def choose(k: int) -> list[np.ndarray | None]:
+        return keep_contexts(fitted, keep_best(ranked, k))
+
+    # predicted size of keeping the best k: floor + the costs of the kept n-grams, in value order
+    flat_cost = np.concatenate([np.full(sizes[m - 1], cost[m]) for m in range(2, order + 1)])
+    flat_value = np.concatenate(ranked[1:])
+    by_value = np.argsort(-flat_value, kind="stable")
+    predicted = floor + np.concatenate([[0.0], np.cumsum(flat_cost[by_value])])
+    budget = float(max_bytes)
+    known: dict[int, int] = {0: floor, total: full}  # measured file sizes by kept count
+    lo, hi = 0, total  # lo fits, hi does not
+    k = int(np.searchsorted(predicted, budget, side="right")) - 1
+    best: tuple[int, Chunks, Fitted] | None = None
+    for _ in range(40):
+        k = max(lo + 1, min(hi - 1, k))
+        if k <= lo or k >= hi:
+            break
+        say(f"building a file with {k:,} of {total:,} n-grams")
+        keep = choose(k)
+        pruned = prune_fitted(fitted, keep)
+        chunks = ngram_file(counts, tables, pruned, **build)
+        size = _nbytes(chunks)
+        known[k] = size
+        if size <= max_bytes:
+            lo, best = k, (kept_ngrams(keep, fitted), chunks, pruned)
+            if max_bytes - size < 0.002 * max_bytes:
+                break
+        else:
+            hi = k
+        # secant on the measured sizes either side, corrected by the predicted shape
+        (k0, s0), (k1, s1) = (lo, known[lo]), (hi, known[hi])
+        guess = k0 + (budget - s0) * (k1 - k0) / max(s1 - s0, 1)
+        k = int(guess) if hi - lo > 2 else lo + 1
+    if best is None:
+        keep = choose(lo)
+        pruned = prune_fitted(fitted, keep)
+        chunks = ngram_file(counts, tables, pruned, **build)
+        best = (kept_ngrams(keep, fitted), chunks, pruned)
+    k, chunks, pruned = best
+    if _nbytes(chunks) > max_bytes:  # only when even the vocabulary alone is over the budget
+        raise InvalidArgumentError(f"could not fit {max_bytes:,} bytes: the vocabulary alone takes {floor:,}")
+    return pruned, chunks, {"kept": k, "removed": total - k, "bytes": _nbytes(chunks)}
+
+
+def write_to_size(
+    counts: NgramCounts,
+    tables: CountTables,
+    estimator: Estimator,
+    max_bytes: int,
+    path: str | os.PathLike[str],
+    *,
+    rule: Rule = DEFAULT_RULE,
+    progress: Callable[[str], None] | None = None,
+    skyband_k: int = DEFAULT_SKYBAND_K,
+    skyband_min: int = DEFAULT_SKYBAND_MIN,
+) -> tuple[CountTables, int]:
+    """Prune any n-gram model to ``max_bytes`` (:func:`prune_ngrams_to_size`) and write it atomically to ``path``.
+
+    The build step of ``train --max-size`` for every estimator and order; a
+    Jelinek-Mercer bigram goes through :func:`prune_to_size` (its file stores the counts
+    themselves, pruned pairs renormalised over c(v)). Returns the tables the file was
+    built from (fewer words when words were dropped) and the number of stored bigrams.
+    """
+    if estimator.name == "jm" and counts.order == 2:
+        lam = float(estimator.lams[0])  # type: ignore[attr-defined]
+        small, chunks, _ = prune_to_size(tables, max_bytes, rule=rule, lam=lam, progress=progress,
+                                         skyband_k=skyband_k, skyband_min=skyband_min)
+        atomic_write(path, chunks)
+        return small, len(small.pair_count)
+    fitted, _, small_tables, chunks, _ = prune_ngrams_to_size(
+        counts, tables, estimator, max_bytes, rule=rule, progress=progress, skyband_k=skyband_k, skyband_min=skyband_min)
+    atomic_write(path, chunks)
+    return small_tables, len(fitted.levels[1].grams)
+
+
+def file_context_mass(fitted: Fitted) -> list[np.ndarray]:
+    """P(h) of every context per order (``out[m-1]``) of a model read from a file, for :func:`ngram_scores`.
+
+    The file has no raw counts, but its highest order's values are raw counts, and so
+    are Jelinek-Mercer's every value and Kneser-Ney's bigram row after ``<s>``:
+
+    * order 2, and every Jelinek-Mercer bigram level: P(v) = T(v)/N, T(v) the context total;
+    * Kneser-Ney order 3: c(v •) = Σ_u T(u v) (every token after v ≠ ``<s>`` has a token
+      before v), c(<s> •) = T(<s>); P(u v) = T(u v)/N;
+
+    with N = Σ_v c(v •), the number of predicted tokens. Exact for a file never pruned
+    (the same as :func:`context_probability` on its training counts); where a previous
+    pruning dropped whole trigram contexts, Kneser-Ney's c(v •) is a lower bound.
+    """
+    lev2 = fitted.levels[1]
+    raw2 = np.asarray(lev2.ctx_total, dtype=np.float64)
+    if fitted.order >= 3 and fitted.name == "kn":
+        lev3 = fitted.levels[2]
+        by_v = np.bincount(lev3.ctx[:, 1], weights=lev3.ctx_total.astype(np.float64), minlength=fitted.bos + 1)
+        raw2 = np.where(lev2.ctx[:, 0] == fitted.bos, raw2, by_v[lev2.ctx[:, 0]])
+    n_tokens = max(float(raw2.sum()), 1.0)
+    out = [np.zeros(0), raw2 / n_tokens]
+    if fitted.order >= 3:
+        out.append(fitted.levels[2].ctx_total.astype(np.float64) / n_tokens)
+    return out
+
+
+def prune_model(
+    model: Model,
+    max_bytes: int,
+    *,
+    rule: Rule = DEFAULT_RULE,
+    vocabulary: bool = True,
+    progress: Callable[[str], None] | None = None,
+) -> tuple[Chunks, dict[str, float]]:
+    """A model file of any estimator and order pruned to ``max_bytes``: (file chunks, info), nothing written.
+
+    A Jelinek-Mercer bigram file goes through :func:`prune_to_size` on its counts
+    (:func:`tables_from_model`; ``vocabulary`` lets words go). Any other file is pruned
+    on the fitted estimator it stores (:func:`nextword.export.fitted_from_model`: values,
+    context totals with any dropped mass, discounts or λ, all read through the model's
+    public accessors), with P(h) from :func:`file_context_mass`; its words stay (dropping
+    one needs the raw counts to fit again), so a budget below the vocabulary is an error.
+    The skyband settings are the file's (:meth:`Model.header`).
+    """
+    head = model.header()
+    build = {"skyband_k": int(head["skyband_k"]), "skyband_min": int(head["skyband_min"])}
+    if model.estimator == "jm" and model.order == 2:
+        _, chunks, info = prune_to_size(tables_from_model(model), max_bytes, rule=rule, lam=model.stored_lam,
+                                        vocabulary=vocabulary, progress=progress, **build)
+        return chunks, info
+    from .export import fitted_from_model  # the file's fitted estimator, rebuilt from its stored levels
+
+    fitted = fitted_from_model(model)
+    levels = fitted.levels
+    counts = NgramCounts(model.n_words, tuple(lev.grams for lev in levels), tuple(lev.value for lev in levels))
+    unigram = np.zeros(model.n_words + 2, dtype=np.int64)
+    unigram[levels[0].grams[:, 0]] = levels[0].value
+    tables = CountTables(
+        keys=model.word_keys(),
+        displays=[model.display(i) for i in range(model.n_words)],
+        unigram=unigram,
+        pair_left=levels[1].grams[:, 0],
+        pair_right=levels[1].grams[:, 1],
+        pair_count=levels[1].value,
+        stats=dict(model.stats),
+    )
+    _, _, _, chunks, info = prune_ngrams_to_size(
+        counts, tables, None, max_bytes, rule=rule, vocabulary=False, progress=progress,
+        context_mass=file_context_mass(fitted), fitted=fitted, **build)
+    return chunks, info

@@ -226,8 +226,32 @@ class DictKneserNey:
         n1 = sum(1 for c in row.values() if 0 < c < 2)
         n2 = sum(1 for c in row.values() if 2 <= c < 3)
         n3 = sum(1 for c in row.values() if c >= 3)
-        gamma = (d.d1 * n1 + d.d2 * n2 + d.d3 * n3) / total
+        dropped = total - sum(row.values())
+        if dropped:  # a pruned context: each dropped n-gram's whole count backs off
+            gamma = (d.d1 * n1 + d.d2 * n2 + d.d3 * n3 + dropped) / total
+        else:
+            gamma = (d.d1 * n1 + d.d2 * n2 + d.d3 * n3) / total
         return first + gamma * lower
+
+    def without(self, grams: Iterable[Gram]) -> DictKneserNey:
+        """This model with the given n-grams (of order ≥ 2, as key tuples) pruned.
+
+        The pruned model of :mod:`nextword.prune`, written plainly: a dropped n-gram
+        leaves its context's row, the context's total stays as counted, so the dropped
+        count backs off to the lower order (γ gains it); continuation counts, discounts
+        and every other row stay as estimated on the full data.
+        """
+        out = DictKneserNey.__new__(DictKneserNey)
+        out.__dict__.update(self.__dict__)
+        out.table = [{h: Counter(row) for h, row in t.items()} for t in self.table]
+        for g in grams:
+            if len(g) < 2:
+                raise InvalidArgumentError(f"only n-grams of order 2 or more are pruned, got {g!r}")
+            row = out.table[len(g)].get(g[:-1])
+            if row is None or g[-1] not in row:
+                raise InvalidArgumentError(f"{g!r} is not a stored n-gram")
+            del row[g[-1]]
+        return out
 
     def prob(self, word: str, context: Sequence[str] = ()) -> float:
         """P(word | the last order−1 tokens of ``context``); ``<s>`` marks a sentence start."""

@@ -289,8 +289,7 @@ def test_cli_train_and_info_for_the_new_models(tmp_path: Path) -> None:
         (["--order", "4"], "invalid choice: 4"),
         (["--smoothing", "wb"], "invalid choice: 'wb'"),
         (["--smoothing", "kn", "--lam", "0.5"], "lam=0.5 given with Kneser-Ney"),
-        (["--smoothing", "kn", "--max-size", "1MB"], "size budget"),
-        (["--order", "3", "--max-size", "1MB"], "size budget"),
+        (["--order", "3", "--smoothing", "kn", "--max-size", "100"], "below the smallest possible model"),
         (["--lam3", "0.5"], "--lam3 0.5 needs --order 3 --smoothing jm"),
     ]:
         r = _cli("train", str(corpus), "-o", str(tmp_path / "x.nwm"), *args)

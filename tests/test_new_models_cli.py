@@ -36,13 +36,7 @@ def files(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path]:
     return tmp / "kn3.nwm", tmp / "held.txt"
 
 
-def test_prune_refuses_a_kneser_ney_trigram_file(files: tuple[Path, Path], tmp_path: Path) -> None:
-    # (ARPA export works on every kind: tests/test_export_models.py)
-    model, _ = files
-    for args, word in ((["prune", str(model), "-o", str(tmp_path / "p.nwm"), "--max-size", "10KB"], "pruning"),):
-        r = _cli(*args)
-        assert r.returncode == 2 and r.stderr.count("\n") == 1 and word in r.stderr and "kn order 3" in r.stderr, r.stderr
-    assert not list(tmp_path.iterdir())  # nothing written
+# (export and prune read every kind: tests/test_export_models.py, tests/test_prune_ngram.py)
 
 
 def test_eval_runs_on_a_kneser_ney_trigram_with_baselines(files: tuple[Path, Path]) -> None:

@@ -70,6 +70,21 @@ class Level:
                 return -1
         return lo
 
+    def kept_total(self, j: int) -> int:
+        """Sum of the values stored in context ``j`` (below :attr:`ctx_total` once pruned)."""
+        return int(self.value[int(self.ctx_start[j]) : int(self.ctx_start[j + 1])].sum())
+
+    def dropped(self) -> np.ndarray:
+        """Per context, the part of its total no longer in stored n-grams (0 unless pruned).
+
+        A pruned level keeps each context's total as estimated on the full data; the mass
+        of its dropped n-grams moves to the lower order (see :mod:`nextword.prune`).
+        """
+        # prefix sums, not reduceat: a context may have an empty block (Model.stored_levels)
+        cs = np.concatenate([[0], np.cumsum(self.value, dtype=np.int64)])
+        kept = cs[self.ctx_start[1:]] - cs[self.ctx_start[:-1]]
+        return np.asarray(self.ctx_total - kept, dtype=np.int64)
+
     def find(self, j: int, w: int) -> int:
         """Index of n-gram (context j, w) in :attr:`grams`, or −1."""
         s, e = int(self.ctx_start[j]), int(self.ctx_start[j + 1])
@@ -97,6 +112,14 @@ class Fitted(ABC):
     @abstractmethod
     def gamma(self, m: int, j: int) -> float:
         """γ_m of context ``j`` of order m."""
+
+    @abstractmethod
+    def alphas(self, m: int) -> np.ndarray:
+        """α_m of every stored n-gram of order m (float64, the scalar :meth:`alpha`'s formula)."""
+
+    @abstractmethod
+    def gammas(self, m: int) -> np.ndarray:
+        """γ_m of every context of order m (float64, the scalar :meth:`gamma`'s formula)."""
 
     @abstractmethod
     def base(self) -> float:

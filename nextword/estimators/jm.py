@@ -17,6 +17,8 @@ from __future__ import annotations
 import bisect
 from typing import Any, ClassVar, Sequence
 
+import numpy as np
+
 from ..errors import InvalidArgumentError
 from ..ngrams import NgramCounts
 from ..store import MAX_LAMBDA  # one source: why the cap is 0.999 is documented there
@@ -52,8 +54,37 @@ class FittedJelinekMercer(Fitted):
         c, cv = int(lev.value[i]), int(lev.ctx_total[j])
         return (self.lam_of(m, j) if m > 1 else 1.0) * (c / cv)
 
+    def lams_of(self, m: int) -> np.ndarray:
+        """λ_m of every context of order m (:meth:`lam_of`, vectorised; 1.0 for the unigram level)."""
+        lev = self.levels[m - 1]
+        if m == 1:
+            return np.ones(len(lev.ctx))
+        b = self.buckets[m - 1]
+        if b is None:
+            return np.full(len(lev.ctx), self.lams[m - 1])
+        return np.asarray(b[1], dtype=np.float64)[np.searchsorted(np.asarray(b[0], dtype=np.int64), lev.ctx_total, side="right")]
+
     def gamma(self, m: int, j: int) -> float:
-        return 1.0 - self.lam_of(m, j) if m > 1 else 0.0
+        if m == 1:
+            return 0.0
+        lam = self.lam_of(m, j)
+        lev = self.levels[m - 1]
+        dropped = int(lev.ctx_total[j]) - lev.kept_total(j)
+        # a pruned context's dropped counts back off: their λ share joins 1 − λ
+        return 1.0 - lam if dropped == 0 else (1.0 - lam) + lam * (dropped / int(lev.ctx_total[j]))
+
+    def alphas(self, m: int) -> np.ndarray:
+        lev = self.levels[m - 1]
+        owner = np.repeat(np.arange(len(lev.ctx)), np.diff(lev.ctx_start))
+        return np.asarray(self.lams_of(m)[owner] * (lev.value / lev.ctx_total[owner]), dtype=np.float64)
+
+    def gammas(self, m: int) -> np.ndarray:
+        lev = self.levels[m - 1]
+        if m == 1:
+            return np.zeros(len(lev.ctx))
+        lam = self.lams_of(m)
+        dropped = lev.dropped()
+        return np.where(dropped == 0, 1.0 - lam, (1.0 - lam) + lam * (dropped / np.maximum(lev.ctx_total, 1)))
 
     def base(self) -> float:
         return 0.0

@@ -81,7 +81,27 @@ class FittedKneserNey(Fitted):
         lev = self.levels[m - 1]
         d = self.discounts[m - 1]
         n1, n2, n3 = (int(x) for x in lev.ctx_n123[j])
+        dropped = int(lev.ctx_total[j]) - lev.kept_total(j)
+        if dropped:  # a pruned context: the whole value of each dropped n-gram backs off
+            return (d.d1 * n1 + d.d2 * n2 + d.d3 * n3 + dropped) / int(lev.ctx_total[j])
         return (d.d1 * n1 + d.d2 * n2 + d.d3 * n3) / int(lev.ctx_total[j])
+
+    def alphas(self, m: int) -> np.ndarray:
+        lev = self.levels[m - 1]
+        owner = np.repeat(np.arange(len(lev.ctx)), np.diff(lev.ctx_start))
+        d = self._d[m - 1]
+        a = lev.value
+        disc = d[np.minimum(a, 3)]
+        return np.asarray(np.maximum(a - disc, 0.0) / lev.ctx_total[owner], dtype=np.float64)
+
+    def gammas(self, m: int) -> np.ndarray:
+        lev = self.levels[m - 1]
+        d = self.discounts[m - 1]
+        n = lev.ctx_n123
+        num = d.d1 * n[:, 0] + d.d2 * n[:, 1] + d.d3 * n[:, 2]
+        dropped = lev.dropped()
+        num = np.where(dropped == 0, num, num + dropped)
+        return np.asarray(num / lev.ctx_total, dtype=np.float64)
 
     def base(self) -> float:
         return 1.0 / self.n_outcomes
