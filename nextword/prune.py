@@ -843,15 +843,22 @@ def stored_ngrams(fitted: Fitted) -> int:
 
 
 def keep_best(values: Sequence[np.ndarray], k: int) -> list[np.ndarray | None]:
-    """Keep masks for the ``k`` highest of the per-order ``values`` (orders ≥ 2) together; ties to the lower order, then index."""
-    flat = np.concatenate([np.asarray(v, dtype=np.float64) for v in values[1:]]) if len(values) > 1 else np.zeros(0)
+    """Keep masks for the ``k`` highest of the per-order ``values`` (orders ≥ 2) together; ties to the higher order, then index.
+
+    Ties go to the higher order so that a bigram raised to the value of a trigram it is the
+    context of (:func:`with_dependants`) never stays at the cut while that trigram goes: the
+    trigram ranks first, and a kept bigram is then either the context of a kept trigram or
+    worth its own value.
+    """
+    upper = [np.asarray(v, dtype=np.float64) for v in values[1:]][::-1]  # highest order first
+    flat = np.concatenate(upper) if upper else np.zeros(0)
     mask = top_k(flat, k)
-    out: list[np.ndarray | None] = [None]
+    masks: list[np.ndarray] = []
     at = 0
-    for v in values[1:]:
-        out.append(mask[at : at + len(v)])
+    for v in upper:
+        masks.append(mask[at : at + len(v)])
         at += len(v)
-    return out
+    return [None, *masks[::-1]]
 
 
 def context_bigrams(fitted: Fitted) -> np.ndarray:
