@@ -854,7 +854,14 @@ def trigram_bands(
     )
     rank = np.empty(t, dtype=np.int64)
     if len(seg_s):
-        rank[np.lexsort((np.asarray(tids, dtype=np.int64), -lower, owner))] = np.arange(t)
+        # ranks matter only within a segment: order just the entries inside some segment
+        # (segments may nest, the mask counts each entry once); same bands as ranking all t
+        edge = np.zeros(t + 1, dtype=np.int64)
+        np.add.at(edge, seg_s, 1)
+        np.add.at(edge, seg_e, -1)
+        inside = np.flatnonzero(np.cumsum(edge[:t]) > 0)
+        order = np.lexsort((np.asarray(tids, dtype=np.int64)[inside], -lower[inside], owner[inside]))
+        rank[inside[order]] = np.arange(len(inside))
     longest = int((seg_e - seg_s).max(initial=0))
     sky_dtype = np.dtype("<u2") if longest <= 0xFFFF else np.dtype("<u4")
     bands, cums = [], []
