@@ -21,7 +21,7 @@ from ._progress import DEFAULT_TICK, Progress
 from .corpus import Format, iter_messages, open_sources
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables, auto_workers, count_in_processes
 from .errors import InputDataError, InvalidArgumentError
-from .model import Model, check_lam
+from .model import Model, check_lam, load
 from .prune import DEFAULT_RULE
 from .store import DEFAULT_SKYBAND_K, DEFAULT_SKYBAND_MIN, MAX_LAMBDA, write_model
 
@@ -43,6 +43,7 @@ class TrainReport:
     file_bytes: int
     count_seconds: float
     build_seconds: float
+    n_trigrams: int = 0  # stored trigrams (order-3 models)
 
     @property
     def words_per_second(self) -> float:
@@ -113,6 +114,10 @@ def _finish(
         )
         atomic_write(output_path, chunks)
     t2 = time.perf_counter()
+    n_trigrams = 0
+    if order == 3:  # what the file stores (pruning may have dropped some): its header says
+        with load(output_path) as written:
+            n_trigrams = int(written.header().get("trigrams", 0))
     return TrainReport(
         path=os.fspath(output_path),
         n_words=tables.n_words,
@@ -122,6 +127,7 @@ def _finish(
         file_bytes=os.path.getsize(output_path),
         count_seconds=t1 - t0,
         build_seconds=t2 - t1,
+        n_trigrams=n_trigrams,
     )
 
 

@@ -406,6 +406,8 @@ def _cmd_train(args: argparse.Namespace) -> int:
         "messages": report.messages,
         "file_bytes": report.file_bytes,
         "bytes_per_bigram": report.file_bytes / max(report.n_bigrams, 1),
+        "trigrams": report.n_trigrams,
+        "bytes_per_ngram": report.file_bytes / max(report.n_bigrams + report.n_trigrams, 1),
         "count_seconds": round(report.count_seconds, 4),
         "build_seconds": round(report.build_seconds, 4),
         "words_per_second": round(report.words_per_second),
@@ -415,8 +417,9 @@ def _cmd_train(args: argparse.Namespace) -> int:
     else:
         print(
             f"wrote {report.path}: {report.n_words:,} words, {report.n_bigrams:,} bigrams, "
-            f"{report.file_bytes:,} bytes ({data['bytes_per_bigram']:.2f} bytes/bigram); "
-            f"counted {report.word_tokens:,} words in {report.count_seconds + report.build_seconds:.2f} s "
+            + (f"{report.n_trigrams:,} trigrams, {report.file_bytes:,} bytes ({data['bytes_per_ngram']:.2f} bytes/n-gram); "
+               if report.n_trigrams else f"{report.file_bytes:,} bytes ({data['bytes_per_bigram']:.2f} bytes/bigram); ")
+            + f"counted {report.word_tokens:,} words in {report.count_seconds + report.build_seconds:.2f} s "
             f"({report.words_per_second:,.0f} words/s)"
         )
     return 0

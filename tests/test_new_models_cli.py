@@ -51,3 +51,19 @@ def test_eval_runs_on_a_kneser_ney_trigram_with_baselines(files: tuple[Path, Pat
     overall, _ = evaluate(nextword.load(model), [("held", msgs)], (3,))
     assert data["overall"]["per_k"][0]["ksr"] == overall.per_k[3].ksr
     assert "lambda" not in data["baselines"]  # λ baselines exist only for Jelinek-Mercer
+
+
+def test_train_reports_the_trigrams_it_stored(files: tuple[Path, Path], tmp_path: Path) -> None:
+    # the report counts what the file stores (its header), also after pruning to a budget
+    _, held = files
+    for extra in ([], ["--max-size", "40KB"]):
+        out = tmp_path / f"t{len(extra)}.nwm"
+        r = _cli("train", str(held), "-o", str(out), "--order", "3", "--smoothing", "kn", "--json", *extra)
+        assert r.returncode == 0, r.stderr
+        data = json.loads(r.stdout)
+        with nextword.load(out) as m:
+            head = m.header()
+        assert data["trigrams"] == head["trigrams"] > 0
+        assert data["bytes_per_ngram"] == data["file_bytes"] / (data["bigrams"] + data["trigrams"])
+        text = _cli("train", str(held), "-o", str(tmp_path / "again.nwm"), "--order", "3", "--smoothing", "kn", *extra)
+        assert f"{head['trigrams']:,} trigrams" in text.stdout and "bytes/n-gram" in text.stdout
