@@ -23,6 +23,7 @@ import numpy as np
 
 from .codecs import codec_named
 from .estimators import Level, unigram_floor
+from .estimators.jm import jm_alpha, jm_gamma, jm_step
 from .ngrams import NgramCounts
 from .errors import InvalidArgumentError, ModelFormatError
 from .candidates import CandidateRange, PrefixRange, merge_ranked
@@ -333,7 +334,7 @@ class Model:
         c = self._pair_count(v, w)
         if c > cv:
             raise self._over(c, cv)
-        return lam * (c / cv) + (1.0 - lam) * u  # type: ignore[no-any-return]
+        return jm_step(lam, c, cv, u)  # type: ignore[no-any-return]
 
     def prob(self, word: str, previous_word: str | None = None, *, lam: float | None = None) -> float:
         """P(word | previous_word). ``None`` or ``'<s>'`` means the sentence start.
@@ -513,7 +514,9 @@ class Model:
                     break
         if cs and max(cs) > cv:
             raise self._over(max(cs), cv)
-        # same float operations, in the same order, as the brute-force formula
+        # estimators.jm.jm_step inlined in this hot loop (a call per candidate costs more than
+        # the formula): the same float operations, in the same order, as every other path
+        # and the brute-force oracle, which the ranking tests compare with ==
         # ties by id (floor descending, then key): see docs/SEAMS.md "Ties"
         cands = [(-(lam * (c / cv) + oml * (unig[w] / total)), w) for w, c in zip([alph[p] for p in ps], cs)]
         seen = set(ps)
@@ -552,7 +555,7 @@ class Model:
         counts = self._counts(idx)
         if len(counts) and int(counts.max()) > cv:
             raise self._over(int(counts.max()), cv)
-        score = lam * (counts / cv) + (1.0 - lam) * (self._unig[ids] / total)
+        score = jm_step(lam, counts, cv, self._unig[ids] / total)
         top_a = np.asarray(top, dtype=np.int64)
         top_pos = self._apos[top_a].astype(np.int64)
         at = np.minimum(np.searchsorted(pos, top_pos), len(pos) - 1)
@@ -1035,7 +1038,7 @@ class _NgramScorer:
         if self.kn:
             h, d = self._mv_hn13, self.d2
             return tot, (dropped + d[0] * h[3 * v] + d[1] * h[3 * v + 1] + d[2] * h[3 * v + 2]) / tot
-        return tot, (1.0 - lam2) + lam2 * (dropped / tot)
+        return tot, jm_gamma(lam2, dropped, tot)
 
     def _context3(self, ctx: tuple[int, ...]) -> int:
         """The bigram entry (u, v) of trigram context (u, v), or −1 (not a context, or a one-token context)."""
@@ -1078,7 +1081,7 @@ class _NgramScorer:
         if self.kn:
             d = self.d3
             return tot, (tot - sm + d[0] * n1 + d[1] * n2 + d[2] * n3) / tot
-        return tot, (1.0 - lam3) + lam3 * ((tot - sm) / tot)
+        return tot, jm_gamma(lam3, tot - sm, tot)
 
     # -- one probability -------------------------------------------------------------------
 
@@ -1109,7 +1112,7 @@ class _NgramScorer:
     def _alpha(self, c: int, tot: int, param: Any) -> float:
         if self.kn:
             return max(c - _discount1(c, param), 0.0) / tot
-        return param * (c / tot)  # type: ignore[no-any-return]
+        return jm_alpha(param, c, tot)  # type: ignore[no-any-return]
 
     # -- many probabilities ----------------------------------------------------------------
 

@@ -106,6 +106,7 @@ from typing import Any
 import msgpack
 
 from .errors import InvalidArgumentError, LayerNotFoundError, ModelFormatError
+from .estimators.jm import jm_step
 from .model import Model, Suggestion, check_k
 from .store import atomic_write
 from .text import BOS, EOS, UNK, fold, parse_typed, recase, sentences
@@ -684,7 +685,7 @@ class PersonalLayer:
         cv = self._hist.get(v, 0.0)
         if cv <= 0:
             return u
-        return self.lam * (self._big[v].get(w, 0.0) / cv) + (1.0 - self.lam) * u
+        return jm_step(self.lam, self._big[v].get(w, 0.0), cv, u)  # type: ignore[no-any-return]
 
     def _base_spelling(self, key: str) -> str | None:
         """The base's display spelling of word ``key``, None if it lacks the word (cached: the base never changes)."""

@@ -768,8 +768,9 @@ def level_mix(
             one = 0.0 if value <= 0 else d[0] if value < 2 else d[1] if value < 3 else d[2]
             alpha = max(value - one, 0.0) / total
         return alpha + (dropped + d[0] * n1 + d[1] * n2 + d[2] * n3) / total * lower
-    lam = param
-    return lam * (value / total) + ((1.0 - lam) + lam * (dropped / total)) * lower
+    from .estimators.jm import jm_step  # the one copy of the formula (store <-> estimators: the known cycle)
+
+    return jm_step(param, value, total, lower, dropped)
 
 
 def _rows_lookup(key_rows: np.ndarray, values: np.ndarray, keys: np.ndarray) -> np.ndarray:

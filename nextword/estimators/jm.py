@@ -24,7 +24,31 @@ from ..ngrams import NgramCounts
 from ..store import MAX_LAMBDA  # one source: why the cap is 0.999 is documented there
 from .base import Estimator, Fitted, Level
 
-__all__ = ["JelinekMercer", "FittedJelinekMercer", "MAX_LAMBDA"]
+__all__ = ["JelinekMercer", "FittedJelinekMercer", "MAX_LAMBDA", "jm_alpha", "jm_gamma", "jm_step"]
+
+
+# The engine's one copy of the Jelinek-Mercer step. The fitted estimator below, the query
+# paths (nextword.model), the skyband build (nextword.store.level_mix) and the export all
+# call these, so every layer computes the same floating-point numbers, in the operation
+# order of the dict oracle (``lam * (c / cv) + (1 - lam) * u``; with no dropped mass the
+# γ below is exactly 1 − λ, since x + 0.0 == x). Work on floats and float64 arrays alike.
+# (λ tuning's EM and the entropy pruning criterion work with the parts of this formula,
+# c/T and the lower-order probability, in their own derived expressions.)
+
+
+def jm_alpha(lam: Any, value: Any, total: Any) -> Any:
+    """α = λ·c/T: a stored n-gram's own share (``value`` c, context total T)."""
+    return lam * (value / total)
+
+
+def jm_gamma(lam: Any, dropped: Any, total: Any) -> Any:
+    """γ = (1 − λ) + λ·dropped/T: the weight of the lower order (dropped: mass pruned from the context)."""
+    return (1.0 - lam) + lam * (dropped / total)
+
+
+def jm_step(lam: Any, value: Any, total: Any, lower: Any, dropped: Any = 0) -> Any:
+    """P = α + γ·lower: one interpolation step of a seen context."""
+    return jm_alpha(lam, value, total) + jm_gamma(lam, dropped, total) * lower
 
 
 #: λ by context count for one order: (bounds c1 < c2 < ..., one more λ than bounds)
@@ -52,7 +76,7 @@ class FittedJelinekMercer(Fitted):
     def alpha(self, m: int, j: int, i: int) -> float:
         lev = self.levels[m - 1]
         c, cv = int(lev.value[i]), int(lev.ctx_total[j])
-        return (self.lam_of(m, j) if m > 1 else 1.0) * (c / cv)
+        return jm_alpha(self.lam_of(m, j) if m > 1 else 1.0, c, cv)  # type: ignore[no-any-return]
 
     def lams_of(self, m: int) -> np.ndarray:
         """λ_m of every context of order m (:meth:`lam_of`, vectorised; 1.0 for the unigram level)."""
@@ -71,12 +95,12 @@ class FittedJelinekMercer(Fitted):
         lev = self.levels[m - 1]
         dropped = int(lev.ctx_total[j]) - lev.kept_total(j)
         # a pruned context's dropped counts back off: their λ share joins 1 − λ
-        return 1.0 - lam if dropped == 0 else (1.0 - lam) + lam * (dropped / int(lev.ctx_total[j]))
+        return jm_gamma(lam, dropped, int(lev.ctx_total[j]))  # type: ignore[no-any-return]
 
     def alphas(self, m: int) -> np.ndarray:
         lev = self.levels[m - 1]
         owner = np.repeat(np.arange(len(lev.ctx)), np.diff(lev.ctx_start))
-        return np.asarray(self.lams_of(m)[owner] * (lev.value / lev.ctx_total[owner]), dtype=np.float64)
+        return np.asarray(jm_alpha(self.lams_of(m)[owner], lev.value, lev.ctx_total[owner]), dtype=np.float64)
 
     def gammas(self, m: int) -> np.ndarray:
         lev = self.levels[m - 1]
@@ -84,7 +108,7 @@ class FittedJelinekMercer(Fitted):
             return np.zeros(len(lev.ctx))
         lam = self.lams_of(m)
         dropped = lev.dropped()
-        return np.where(dropped == 0, 1.0 - lam, (1.0 - lam) + lam * (dropped / np.maximum(lev.ctx_total, 1)))
+        return np.asarray(jm_gamma(lam, dropped, np.maximum(lev.ctx_total, 1)), dtype=np.float64)
 
     def base(self) -> float:
         return 0.0
