@@ -22,10 +22,11 @@ from .corpus import Format, iter_messages, open_sources
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTables, auto_workers, count_in_processes
 from .errors import InputDataError, InvalidArgumentError
 from .model import Model, check_lam, load
+from .ngrams import NgramCounts
 from .prune import DEFAULT_RULE
 from .store import DEFAULT_SKYBAND_K, DEFAULT_SKYBAND_MIN, MAX_LAMBDA, write_model
 
-__all__ = ["TrainReport", "train", "train_texts", "write_same_smoothing_bigram", "DEFAULT_LAMBDA", "SMOOTHINGS", "TRAIN_ORDERS"]
+__all__ = ["TrainReport", "train", "train_texts", "write_same_smoothing_bigram", "tables_like", "DEFAULT_LAMBDA", "SMOOTHINGS", "TRAIN_ORDERS"]
 
 #: Weight of the bigram estimate; a value near 0.9 is the usual starting point (common practice).
 DEFAULT_LAMBDA = 0.9
@@ -265,14 +266,7 @@ def write_same_smoothing_bigram(model: Model, path: str | os.PathLike[str]) -> s
 
     check_new_output(model.path, path, "bigram baseline model")
     counts = raw_bigram_counts(model)
-    n = model.n_words
-    uni = np.zeros(n + 2, dtype=np.int64)
-    uni[counts.grams[0][:, 0]] = counts.counts[0]
-    g2 = counts.grams[1]
-    tables = CountTables(
-        keys=model.word_keys(), displays=[model.display(i) for i in range(n)], unigram=uni,
-        pair_left=g2[:, 0].copy(), pair_right=g2[:, 1].copy(), pair_count=counts.counts[1].copy(), stats=dict(model.stats),
-    )
+    tables = tables_like(model, counts)
     head = model.header()
     if model.estimator == "kn":
         estimator: JelinekMercer | KneserNey = KneserNey()
@@ -283,3 +277,19 @@ def write_same_smoothing_bigram(model: Model, path: str | os.PathLike[str]) -> s
         how = f"Jelinek-Mercer bigram of the same counts with the model's λ2 = {lam2:g}"
     build(counts, tables, estimator, path, skyband_k=head["skyband_k"], skyband_min=head["skyband_min"])
     return how
+
+
+def tables_like(model: Model, counts: NgramCounts) -> CountTables:
+    """The vocabulary of ``model`` (keys, spellings, statistics) with the unigram and bigram counts of ``counts``.
+
+    What rebuilding a file from counts recovered out of it needs (the same words in the same
+    ids, so the rebuilt file's word order and spellings are the model's).
+    """
+    n = model.n_words
+    uni = np.zeros(n + 2, dtype=np.int64)
+    uni[counts.grams[0][:, 0]] = counts.counts[0]
+    g2 = counts.grams[1]
+    return CountTables(
+        keys=model.word_keys(), displays=[model.display(i) for i in range(n)], unigram=uni,
+        pair_left=g2[:, 0].copy(), pair_right=g2[:, 1].copy(), pair_count=counts.counts[1].copy(), stats=dict(model.stats),
+    )

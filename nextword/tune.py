@@ -757,7 +757,7 @@ def write_lambdas(model: Model, path: str | os.PathLike[str], lams: Sequence[flo
     test checks it). A bigram file keeps its own rewrite, which also carries λ buckets
     and pruned history counts (``store.rewrite_model``). Never over the model itself.
     """
-    from .counts import CountTables
+    from .build import tables_like
     from .estimators import JelinekMercer
     from .paths import check_new_output
     from .store import build
@@ -769,13 +769,6 @@ def write_lambdas(model: Model, path: str | os.PathLike[str], lams: Sequence[flo
     if not model.totals_are_sums():
         raise InvalidArgumentError(f"{model.path}: a pruned trigram file keeps dropped mass in its totals; tune λ before pruning")
     counts = model.stored_ngrams()
-    n = model.n_words
-    uni = np.zeros(n + 2, dtype=np.int64)
-    uni[counts.grams[0][:, 0]] = counts.counts[0]
-    g2 = counts.grams[1]
-    tables = CountTables(
-        keys=model.word_keys(), displays=[model.display(i) for i in range(n)], unigram=uni,
-        pair_left=g2[:, 0].copy(), pair_right=g2[:, 1].copy(), pair_count=counts.counts[1].copy(), stats=dict(model.stats),
-    )
+    tables = tables_like(model, counts)
     head = model.header()
     build(counts, tables, JelinekMercer(list(lams)), path, skyband_k=head["skyband_k"], skyband_min=head["skyband_min"])
