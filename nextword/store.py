@@ -26,6 +26,9 @@ from .codecs import COUNT_ESCAPE as COUNT_ESCAPE  # one source: the codec owns t
 from .codecs import EXACT, ExactCodec, codec_named
 from .counts import CountTables
 from .errors import InvalidArgumentError, ModelFormatError
+from .estimators import FittedJelinekMercer, FittedKneserNey, unigram_floor
+from .estimators.jm import MAX_LAMBDA as MAX_LAMBDA  # re-exported: one source, the estimator that owns λ
+from .estimators.jm import jm_step
 from .paths import check_new_output as check_new_output  # re-exported: callers of the store use it
 
 __all__ = [
@@ -122,13 +125,6 @@ DEFAULT_TRIGRAM_SKYBAND_MIN: Final = 24
 DEFAULT_SKYBAND_K: Final = 8
 #: Branching of the multi-level top lists used for prefix queries (see docs/FORMAT.md).
 TOPK_FANOUT: Final = 64
-#: Largest λ a model file stores (and tuning chooses). At λ = 1 every pair not seen in
-#: training gets probability 0, so one unseen held-out pair makes perplexity infinite;
-#: at λ ≤ 0.999 every word keeps at least 0.001·c(w)/N. The cap costs little: for any λ
-#: in (0.999, 1], λ·b + (1−λ)·u ≥ 0.999·(λ·b + (1−λ)·u), so no held-out token loses more
-#: than ln(1/0.999) ≈ 0.001 nats, i.e. perplexity rises by at most 0.1 %. Queries may
-#: still pass λ = 1 explicitly (the pure bigram estimate); only stored λ are capped.
-MAX_LAMBDA: Final = 0.999
 
 _DTYPES: Final = {0: None, 1: np.dtype("<u1"), 2: np.dtype("<u2"), 3: np.dtype("<u4"), 4: np.dtype("<u8")}
 _CODES: Final = {np.dtype("<u1"): 1, np.dtype("<u2"): 2, np.dtype("<u4"): 3, np.dtype("<u8"): 4}
@@ -768,8 +764,6 @@ def level_mix(
             one = 0.0 if value <= 0 else d[0] if value < 2 else d[1] if value < 3 else d[2]
             alpha = max(value - one, 0.0) / total
         return alpha + (dropped + d[0] * n1 + d[1] * n2 + d[2] * n3) / total * lower
-    from .estimators.jm import jm_step  # the one copy of the formula (store <-> estimators: the known cycle)
-
     return jm_step(param, value, total, lower, dropped)
 
 
@@ -904,7 +898,6 @@ def build_ngram_sections(
     (HDRI/HDRV for the bigram level, TDRI/TDRV for the trigram level) and γ takes it in,
     so every context still sums to 1.
     """
-    from .estimators import FittedJelinekMercer, FittedKneserNey, unigram_floor  # they import this module
 
     n = tables.n_words
     if counts.n_words != n:
@@ -1495,7 +1488,6 @@ def _check_ngram_arrays(name: str, meta: dict[str, Any], a: dict[str, np.ndarray
             raise _fail(name, "section TDRI names a bigram entry that is no trigram context")
         if int((sums + dropped3[big]).max(initial=0)) > _U32_MAX:
             raise _fail(name, "a trigram context total above 32 bits")
-        from .estimators import unigram_floor
 
         if kn:
             floor = unigram_floor(a["UNIG"], meta["discounts"][0], meta["total"])
@@ -1668,7 +1660,6 @@ def _check_derived(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], ke
     for pos, wid in enumerate(a["ALPH"][:n].tolist()):
         key_of_id[wid] = keys[pos]
     if meta["estimator"] == "kn":
-        from .estimators import unigram_floor
 
         # Kneser-Ney: ids rank by the floor P1 itself (§7.13), compared as the stored float64 values
         fl = unigram_floor(a["UNIG"], meta["discounts"][0], meta["total"])[:n].tolist()

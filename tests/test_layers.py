@@ -132,14 +132,11 @@ def test_module_level_imports_have_no_cycle() -> None:
     assert _cycle(_graph(lazy=False)) is None
 
 
-def test_imports_inside_functions_close_no_cycle_but_the_known_one() -> None:
+def test_imports_inside_functions_close_no_cycle() -> None:
     # A function's import runs late, but a cycle through it is still two layers that need
-    # each other. The one left: store.build (the build half of store.py) imports the
-    # estimators, whose jm.py takes MAX_LAMBDA from store; the store split removes it
-    # (docs/SEAMS.md). Any other cycle fails here.
-    graph = _graph(lazy=True)
-    graph["nextword.store"] = {t for t in graph["nextword.store"] if not t.startswith("nextword.estimators")}
-    assert _cycle(graph) is None
+    # each other (the last one, store <-> estimators over MAX_LAMBDA, ended when the
+    # estimator that owns λ took the constant).
+    assert _cycle(_graph(lazy=True)) is None
 
 
 def test_the_cycle_finder_finds_a_cycle() -> None:

@@ -15,14 +15,21 @@ stored buckets (:meth:`nextword.Model.lam_for`) and of :class:`nextword.tune.Ord
 from __future__ import annotations
 
 import bisect
-from typing import Any, ClassVar, Sequence
+from typing import Any, ClassVar, Final, Sequence
 
 import numpy as np
 
 from ..errors import InvalidArgumentError
 from ..ngrams import NgramCounts
-from ..store import MAX_LAMBDA  # one source: why the cap is 0.999 is documented there
 from .base import Estimator, Fitted, Level
+
+#: Largest λ a model file stores (and tuning chooses). At λ = 1 every pair not seen in
+#: training gets probability 0, so one unseen held-out pair makes perplexity infinite;
+#: at λ ≤ 0.999 every word keeps at least 0.001·c(w)/N. The cap costs little: for any λ
+#: in (0.999, 1], λ·b + (1−λ)·u ≥ 0.999·(λ·b + (1−λ)·u), so no held-out token loses more
+#: than ln(1/0.999) ≈ 0.001 nats, i.e. perplexity rises by at most 0.1 %. Queries may
+#: still pass λ = 1 explicitly (the pure bigram estimate); only stored λ are capped.
+MAX_LAMBDA: Final = 0.999
 
 __all__ = ["JelinekMercer", "FittedJelinekMercer", "MAX_LAMBDA", "jm_alpha", "jm_gamma", "jm_step"]
 
