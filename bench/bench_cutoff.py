@@ -20,7 +20,6 @@ import time
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
@@ -29,24 +28,11 @@ import nextword  # noqa: E402
 from nextword.baselines import sample_queries, time_queries  # noqa: E402
 from nextword.counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder  # noqa: E402
 from nextword.estimators import JelinekMercer, KneserNey  # noqa: E402
-from nextword.estimators.base import Level  # noqa: E402
+from nextword.prune import prune_level  # noqa: E402
 from nextword.evaluate import evaluate  # noqa: E402
 from nextword.store import build  # noqa: E402
 
 DATA = HERE / "data"
-
-
-def cut(level: Level, min_value: int) -> Level:
-    """The level without its n-grams of value below ``min_value``; contexts and totals kept."""
-    keep = level.value >= min_value
-    owner = np.repeat(np.arange(len(level.ctx)), np.diff(level.ctx_start))
-    starts = np.zeros(len(level.ctx) + 1, dtype=np.int64)
-    starts[1:] = np.cumsum(np.bincount(owner[keep], minlength=len(level.ctx)))
-    value = level.value[keep]
-    n123 = np.zeros((len(level.ctx), 3), np.int64)
-    for j, mask in enumerate((value == 1, value == 2, value >= 3)):
-        n123[:, j] = np.bincount(owner[keep][mask], minlength=len(level.ctx))
-    return Level(level.grams[keep], value, level.ctx, starts, level.ctx_total, n123)
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -65,7 +51,7 @@ def main(argv: list[str] | None = None) -> int:
         for name, est in (("KN", KneserNey()), ("JM", JelinekMercer((0.9, 0.9)))):
             for min_value in (1, 2):
                 fitted = est.fit(counts)
-                fitted.levels = [*fitted.levels[:2], cut(fitted.levels[2], min_value)]
+                fitted.levels = [*fitted.levels[:2], prune_level(fitted.levels[2], fitted.levels[2].value >= min_value)]
                 path = Path(t) / f"{name}{min_value}.nwm"
                 build(counts, tables, est, path, fitted=fitted)
                 loads = []

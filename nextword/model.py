@@ -819,7 +819,13 @@ class Model:
             sums = np.add.reduceat(v3, starts) if len(keys) else np.zeros(0, np.int64)
             # dropped mass per context (TDRI/TDRV, keyed by the context's bigram entry)
             ent = self._bigram_entries(ctx3[:, 0], ctx3[:, 1])
-            dropped = np.asarray([self._ng._sparse(self._ng._tdri, self._ng._tdrv, int(i)) for i in ent], dtype=np.int64)
+            tdri = np.asarray(self._src.arrays["TDRI"], dtype=np.int64)
+            tdrv = np.asarray(self._src.arrays["TDRV"], dtype=np.int64)
+            dropped = np.zeros(len(ent), dtype=np.int64)
+            if len(tdri):  # the sorted sparse table, looked up for every context at once
+                at = np.minimum(np.searchsorted(tdri, ent), len(tdri) - 1)
+                hit = tdri[at] == ent
+                dropped[hit] = tdrv[at[hit]]
             levels.append(Level(g3, v3, ctx3, start3, (sums + dropped).astype(np.int64), _n123_of(v3, start3)))
         return levels
 
