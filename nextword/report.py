@@ -353,18 +353,25 @@ def _order_tune_figures(result: dict[str, Any]) -> dict[str, Any]:
     ax.legend(fontsize=8)
     figs["perplexity.png"] = fig
     if result["ksr_curve"]:
-        fig, ax = _figure()
-        kc = result["ksr_curve"]
-        xs, ys = [r["lambda"] for r in kc], [100 * r["ksr"] for r in kc]
-        ax.plot(xs, ys, "o-", markersize=4, label=f"KSR@{result['k']}, one λ for both orders")
         best = result.get("keystroke_optimal_lambda")
-        if best is not None:
-            _mark_lambda(ax, xs, ys, float(best), "keystroke-optimal")
-        ax.set_xlabel("λ (both orders)")
-        ax.set_ylabel(f"KSR@{result['k']} (%)")
-        ax.legend(fontsize=8)
-        figs["ksr.png"] = fig
+        figs["ksr.png"] = _ksr_figure(result, f"KSR@{result['k']}, one λ for both orders", "λ (both orders)",
+                                      None if best is None else float(best), "keystroke-optimal", None)
     return figs
+
+
+def _ksr_figure(result: dict[str, Any], label: str, xlabel: str, chosen: float | None, why: str, other: float | None) -> Any:
+    """The tune report's KSR-against-λ curve, ``chosen`` marked (and ``other``, the curve's own optimum, if different)."""
+    fig, ax = _figure()
+    kc = result["ksr_curve"]
+    xs, ys = [r["lambda"] for r in kc], [100 * r["ksr"] for r in kc]
+    ax.plot(xs, ys, "o-", markersize=4, label=label)
+    if chosen is not None:
+        _mark_lambda(ax, xs, ys, chosen, why)
+        _mark_other(ax, other, chosen, xs, ys, "keystroke-optimal")
+    ax.set_xlabel(xlabel)
+    ax.set_ylabel(f"KSR@{result['k']} (%)")
+    ax.legend(fontsize=8)
+    return fig
 
 
 def tune_figures(result: dict[str, Any]) -> dict[str, Any]:
@@ -385,16 +392,7 @@ def tune_figures(result: dict[str, Any]) -> dict[str, Any]:
     ax.legend(fontsize=8)
     figs["perplexity.png"] = fig
     if result["ksr_curve"]:
-        fig, ax = _figure()
-        kc = result["ksr_curve"]
-        xs, ys = [r["lambda"] for r in kc], [100 * r["ksr"] for r in kc]
-        ax.plot(xs, ys, "o-", markersize=4, label=f"KSR@{result['k']}")
-        _mark_lambda(ax, xs, ys, chosen, why)
-        _mark_other(ax, result.get("keystroke_optimal_lambda"), chosen, xs, ys, "keystroke-optimal")
-        ax.set_xlabel("λ")
-        ax.set_ylabel(f"KSR@{result['k']} (%)")
-        ax.legend(fontsize=8)
-        figs["ksr.png"] = fig
+        figs["ksr.png"] = _ksr_figure(result, f"KSR@{result['k']}", "λ", chosen, why, result.get("keystroke_optimal_lambda"))
     return figs
 
 
