@@ -23,6 +23,7 @@ from .build import DEFAULT_LAMBDA, SMOOTHINGS, TRAIN_ORDERS, train, train_texts
 from .corpus import FORMATS, iter_messages, open_sources
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, PARALLEL_MIN_BYTES
 from .errors import InputDataError, InvalidArgumentError, NextwordError
+from .mix import MixedModel, open_any
 from .model import Model, load
 from .paths import Labelled, check_outputs, check_writable
 from .serve import DEFAULT_MAX_OPEN_USERS
@@ -144,7 +145,7 @@ def _size(text: str) -> str:
 DEFAULT_TUNE_PERCENT = 10
 """Share of the tune part when ``nextword split --tune-out`` is given without ``--tune-percent``."""
 
-_MODEL_HELP = "model file (.nwm) written by nextword train"
+_MODEL_HELP = "model file (.nwm) written by nextword train, or a mixture file (.nwx) written by nextword mix"
 _LAM_HELP = "override the model's λ, in [0, 1] (default: the λ stored in the model)"
 _FORMAT_HELP = "text (one message per line) or jsonl; auto = jsonl for .jsonl/.ndjson/.json names (default: %(default)s)"
 
@@ -191,6 +192,10 @@ _EXAMPLES: dict[str, list[str]] = {
     ],
     "serve": ["nextword serve demo.nwm --users users/", "nextword serve demo.nwm --tcp 127.0.0.1:0"],
     "live": ["nextword live demo.nwm", "nextword live demo.nwm -k 3 --lam 0.8"],
+    "mix": [
+        "nextword mix general.nwm ferry.nwm --heldout ferry-tune.txt -o ferry.nwx",
+        "nextword mix general.nwm ferry.nwm --weights 0.3 0.7 -o ferry.nwx --json",
+    ],
 }
 """Example lines shown under each command's --help (tests parse every one)."""
 
@@ -345,6 +350,18 @@ def _parser() -> _Parser:
     sv.add_argument("--grace", type=_seconds, default=5.0, help="seconds a stop waits for requests in progress (default %(default)s)")
     sv.add_argument("--max-open-users", type=_positive, default=DEFAULT_MAX_OPEN_USERS, help="personal layers kept open at once; the least recently used is closed (default %(default)s)")
 
+    mx = sub.add_parser("mix", help="mix several models (e.g. a general and a domain model) with weights fitted on held-out text")
+    mx.add_argument("parts", nargs="+", metavar="MODEL", help="model files to mix (any estimator and order; counted under the same text rules)")
+    mx.add_argument("-o", "--output", required=True, metavar="MIX_FILE",
+                    help="the mixture file to write (atomically; it names its parts by relative path, with their size and SHA-256)")
+    how = mx.add_mutually_exclusive_group(required=True)
+    how.add_argument("--heldout", nargs="+", metavar="HELDOUT",
+                     help="fit the weights by EM on this held-out text (the domain's, never its test text)")
+    how.add_argument("--weights", nargs="+", type=float, metavar="W", help="use these weights, one per part, each >= 0, summing to 1")
+    mx.add_argument("--format", choices=FORMATS, default="auto", help=_FORMAT_HELP)
+    mx.add_argument("--field", default="text", help="JSON Lines field holding the message (default %(default)s)")
+    mx.add_argument("--json", action="store_true", help="print the result as JSON")
+
     lv = sub.add_parser("live", help="type in the terminal and watch suggestions update on every key")
     lv.add_argument("model", help=_MODEL_HELP)
     lv.add_argument("-k", type=_positive, default=5, help="suggestions shown (default %(default)s)")
@@ -431,7 +448,7 @@ def _size_arg(text: str) -> int:
     return parse_size(text)
 
 
-def _time_query(model: Model, text: str, k: int, lam: float | None) -> float:
+def _time_query(model: Model | MixedModel, text: str, k: int, lam: float | None) -> float:
     """Median seconds of repeated calls (the first, cold call excluded)."""
     model.suggest(text, k, lam=lam)
     runs = []
@@ -444,7 +461,7 @@ def _time_query(model: Model, text: str, k: int, lam: float | None) -> float:
 
 def _cmd_suggest(args: argparse.Namespace) -> int:
     t0 = time.perf_counter()
-    model = load(args.model)
+    model = open_any(args.model)
     load_s = time.perf_counter() - t0
     texts = args.texts if args.texts else [line.rstrip("\n") for line in sys.stdin]
     results: list[dict[str, Any]] = []
@@ -476,11 +493,19 @@ def _strip(suggestions: list[dict[str, Any]]) -> str:
 
 
 def _cmd_info(args: argparse.Namespace) -> int:
-    model = load(args.model, verify=args.verify)
+    model = open_any(args.model, verify=args.verify)
     data = model.info()
     data["verified"] = bool(args.verify)
     if args.json:
         print(json.dumps(data, indent=2, ensure_ascii=False))
+        return 0
+    if isinstance(model, MixedModel):
+        print(f"{'mixture':48} {args.model}")
+        print(f"{'union vocabulary':48} {data['vocabulary']}")
+        print(f"{'file bytes (the parts and the mixture file)':48} {data['file_bytes']}")
+        for i, (part, w) in enumerate(zip(data["parts"], data["weights"])):
+            kind = f"{part.get('estimator', 'jm')} order {part.get('order', 2)}"
+            print(f"{'part ' + str(i):48} weight {w:.4f}: {part['path']} ({kind}, {part['vocabulary']} words, {part['file_bytes']} bytes)")
         return 0
     corpus = data.pop("corpus")
     labels = {
@@ -505,10 +530,15 @@ def _cmd_info(args: argparse.Namespace) -> int:
 
 
 def _cmd_eval(args: argparse.Namespace) -> int:
-    model = load(args.model, lam=args.lam)
+    model = open_any(args.model, lam=args.lam)
+    if isinstance(model, MixedModel) and args.train_data:
+        raise UsageError("--train-data times the plain-dict and nltk baselines against one model file, not a mixture")
     # stages: reading, the model, the λ baselines (Jelinek-Mercer) and the bigram of the same
-    # smoothing (order 3), then (with --train-data) 6 timing stages
-    baselines = 0 if args.no_baselines else 2 * (model.estimator == "jm") + (model.order == 3)
+    # smoothing (order 3) — or each part alone (a mixture) —, then (with --train-data) 6 timing stages
+    if isinstance(model, MixedModel):
+        baselines = 0 if args.no_baselines else len(model.parts)
+    else:
+        baselines = 0 if args.no_baselines else 2 * (model.estimator == "jm") + (model.order == 3)
     bar = Progress("eval", stages=2 + baselines + 6 * bool(args.train_data))
     try:
         return _run_eval(args, bar, model)
@@ -516,8 +546,7 @@ def _cmd_eval(args: argparse.Namespace) -> int:
         bar.done()  # also on errors: the error message then starts on a clean line
 
 
-def _run_eval(args: argparse.Namespace, bar: Progress, model: Model) -> int:
-    from .baselines import DictBigram, nltk_baseline, sample_queries, time_queries
+def _run_eval(args: argparse.Namespace, bar: Progress, model: Model | MixedModel) -> int:
     from .evaluate import evaluate
     from .report import eval_data, text_report, write_report
 
@@ -540,14 +569,44 @@ def _run_eval(args: argparse.Namespace, bar: Progress, model: Model) -> int:
     bar.stage("simulating typing", total=n_msgs, unit="messages")
     overall, per_log = evaluate(model, logs, ks, progress=bar.update)
     baselines: dict[str, Any] = {}
-    if not args.no_baselines and model.estimator == "jm":  # λ has no meaning for Kneser-Ney
+    if isinstance(model, MixedModel):
+        if not args.no_baselines:  # what mixing buys: each part alone on the same logs
+            baselines["parts"] = {}
+            for i, (part, w) in enumerate(zip(model.parts, model.weights)):
+                bar.stage(f"baseline: part {i} alone", total=n_msgs, unit="messages")
+                o, _ = evaluate(part, logs, ks, progress=bar.update)
+                baselines["parts"][f"part {i} alone ({part.path}, weight {w:.3f})"] = o.as_dict()
+    else:
+        if not args.no_baselines:
+            baselines.update(_model_baselines(bar, model, logs, ks, n_msgs))
+        if args.train_data:
+            baselines.update(_timing_baselines(args, bar, model, logs, ks))
+    bar.done()
+    data = eval_data(args.model, overall, per_log, baselines)
+    if args.report:
+        write_report(args.report, data, overall.latencies)
+    if args.json:
+        print(json.dumps(data, indent=2, ensure_ascii=False))
+    else:
+        print(text_report(data, overall, per_log))
+    return 0
+
+
+def _model_baselines(
+    bar: Progress, model: Model, logs: list[tuple[str, list[str]]], ks: list[int], n_msgs: int
+) -> dict[str, Any]:
+    """The λ runs (Jelinek-Mercer) and the bigram of the same smoothing (order 3) on the same logs."""
+    from .evaluate import evaluate
+
+    baselines: dict[str, Any] = {}
+    if model.estimator == "jm":  # λ has no meaning for Kneser-Ney
         baselines["lambda"] = {}
         top = "bigram only" if model.order == 2 else "highest order only"
         for label, lam in (("unigram only (λ = 0)", 0.0), (f"{top} (λ = 0.999)", 0.999)):
             bar.stage(f"baseline {label.split(' (')[0]}", total=n_msgs, unit="messages")
             o, _ = evaluate(model, logs, ks, lam=lam, progress=bar.update)
             baselines["lambda"][label] = o.as_dict()
-    if not args.no_baselines and model.order == 3:  # what the two-word context buys
+    if model.order == 3:  # what the two-word context buys
         import tempfile
 
         from .build import write_same_smoothing_bigram
@@ -565,49 +624,50 @@ def _run_eval(args: argparse.Namespace, bar: Progress, model: Model) -> int:
                 bigram.close()
                 name = f"{'Kneser-Ney' if model.estimator == 'kn' else 'Jelinek-Mercer'} bigram, same counts"
                 baselines["bigram"] = {**o.as_dict(), "name": name, "how": how}
-    if args.train_data:
-        bar.stage("reading training data")
-        train_msgs = list(iter_messages(open_sources(args.train_data, fmt=args.format, field=args.field)))
-        queries = sample_queries((m for _, msgs in logs for m in msgs), args.baseline_queries)
-        k = max(ks)
-        bar.stage(f"timing our training on {len(train_msgs):,} messages")
-        t0 = time.perf_counter()
-        train_texts(train_msgs, _scratch(), min_count=model.stats.get("min_count", 2))
-        ours_fit = time.perf_counter() - t0
-        bar.stage("fitting the plain-dict baseline")
-        t0 = time.perf_counter()
-        base = DictBigram(train_msgs, min_count=model.stats.get("min_count", 2), max_vocab=model.stats.get("max_vocab", 30000))
-        fit = time.perf_counter() - t0
-        bar.stage("timing the engine's queries", total=len(queries), unit="queries")
-        eng = time_queries(lambda q: model.suggest(q, k), queries, progress=bar.update)
-        bar.stage("timing the plain-dict baseline's queries", total=len(queries), unit="queries")
-        slow = time_queries(lambda q: base.suggest_keys(q, k, model.lam), queries, progress=bar.update)
-        same = sum(
-            [fold(s.word) for s in model.suggest(q, k)] == [w for w, _ in base.suggest_keys(q, k, model.lam)]
-            for q in queries
-        )
-        eng_p50 = statistics.median(eng) * 1e6
-        baselines["dict"] = {
-            "fit_seconds": fit, "queries": len(queries), "p50_us": statistics.median(slow) * 1e6,
-            "engine_p50_us": eng_p50, "ratio_p50": statistics.median(slow) * 1e6 / eng_p50, "identical": same,
-        }
-        nq = queries[: max(1, min(len(queries), 20))]
-        bar.stage("nltk.lm baseline: fit, then queries", total=len(nq), unit="queries")
-        n = nltk_baseline(train_msgs, nq, k, model.lam, min_count=model.stats.get("min_count", 2), progress=bar.update)
-        n_p50 = statistics.median(n["query_seconds"]) * 1e6
-        baselines["nltk"] = {
-            "fit_seconds": n["fit_seconds"], "fit_ratio": n["fit_seconds"] / ours_fit, "queries": len(nq),
-            "p50_us": n_p50, "ratio_p50": n_p50 / eng_p50, "engine_fit_seconds": ours_fit,
-        }
-    bar.done()
-    data = eval_data(args.model, overall, per_log, baselines)
-    if args.report:
-        write_report(args.report, data, overall.latencies)
-    if args.json:
-        print(json.dumps(data, indent=2, ensure_ascii=False))
-    else:
-        print(text_report(data, overall, per_log))
-    return 0
+    return baselines
+
+
+def _timing_baselines(
+    args: argparse.Namespace, bar: Progress, model: Model, logs: list[tuple[str, list[str]]], ks: list[int]
+) -> dict[str, Any]:
+    """Training and query time beside the plain-dict and nltk baselines (``--train-data``)."""
+    from .baselines import DictBigram, nltk_baseline, sample_queries, time_queries
+
+    baselines: dict[str, Any] = {}
+    bar.stage("reading training data")
+    train_msgs = list(iter_messages(open_sources(args.train_data, fmt=args.format, field=args.field)))
+    queries = sample_queries((m for _, msgs in logs for m in msgs), args.baseline_queries)
+    k = max(ks)
+    bar.stage(f"timing our training on {len(train_msgs):,} messages")
+    t0 = time.perf_counter()
+    train_texts(train_msgs, _scratch(), min_count=model.stats.get("min_count", 2))
+    ours_fit = time.perf_counter() - t0
+    bar.stage("fitting the plain-dict baseline")
+    t0 = time.perf_counter()
+    base = DictBigram(train_msgs, min_count=model.stats.get("min_count", 2), max_vocab=model.stats.get("max_vocab", 30000))
+    fit = time.perf_counter() - t0
+    bar.stage("timing the engine's queries", total=len(queries), unit="queries")
+    eng = time_queries(lambda q: model.suggest(q, k), queries, progress=bar.update)
+    bar.stage("timing the plain-dict baseline's queries", total=len(queries), unit="queries")
+    slow = time_queries(lambda q: base.suggest_keys(q, k, model.lam), queries, progress=bar.update)
+    same = sum(
+        [fold(s.word) for s in model.suggest(q, k)] == [w for w, _ in base.suggest_keys(q, k, model.lam)]
+        for q in queries
+    )
+    eng_p50 = statistics.median(eng) * 1e6
+    baselines["dict"] = {
+        "fit_seconds": fit, "queries": len(queries), "p50_us": statistics.median(slow) * 1e6,
+        "engine_p50_us": eng_p50, "ratio_p50": statistics.median(slow) * 1e6 / eng_p50, "identical": same,
+    }
+    nq = queries[: max(1, min(len(queries), 20))]
+    bar.stage("nltk.lm baseline: fit, then queries", total=len(nq), unit="queries")
+    n = nltk_baseline(train_msgs, nq, k, model.lam, min_count=model.stats.get("min_count", 2), progress=bar.update)
+    n_p50 = statistics.median(n["query_seconds"]) * 1e6
+    baselines["nltk"] = {
+        "fit_seconds": n["fit_seconds"], "fit_ratio": n["fit_seconds"] / ours_fit, "queries": len(nq),
+        "p50_us": n_p50, "ratio_p50": n_p50 / eng_p50, "engine_fit_seconds": ours_fit,
+    }
+    return baselines
 
 
 def _scratch() -> str:
@@ -905,7 +965,7 @@ def _tune_report(out_dir: str, result: dict[str, Any]) -> None:
 def _cmd_personal(args: argparse.Namespace) -> int:
     from .personal import JOURNAL_SUFFIX, PersonalLayer
 
-    base = load(args.model)
+    base = open_any(args.model)
     if args.action in ("suggest", "info") and not args.create:
         layer = PersonalLayer.load(base, args.layer)  # read only: a missing file is an error, never created
     else:
@@ -1089,7 +1149,7 @@ def _cmd_serve(args: argparse.Namespace) -> int:
     )
     if args.allow_non_loopback and not args.tcp:
         raise UsageError("--allow-non-loopback only applies to --tcp")
-    model = load(args.model)
+    model = open_any(args.model)
     users = None if args.users is None else prepare_users_dir(args.users)  # before listening: no socket left on error
     if args.tcp:
         host, port = parse_host_port(args.tcp)
@@ -1111,12 +1171,54 @@ def _cmd_serve(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_mix(args: argparse.Namespace) -> int:
+    from .mix import fit_weights, write_mix
+
+    if len(args.parts) != len(set(os.path.realpath(p) for p in args.parts)):
+        raise UsageError("a model is named twice among the parts")
+    out: dict[str, Any] = {"output": args.output, "parts": args.parts}
+    if args.weights is not None:
+        weights = list(args.weights)
+        fitted = None
+    else:
+        messages = [m for m in iter_messages(open_sources(args.heldout, fmt=args.format, field=args.field)) if m.strip()]
+        if not messages:
+            raise InputDataError("no held-out messages in " + ", ".join(args.heldout))
+        models = [load(p) for p in args.parts]
+        bar = Progress("mix")
+        try:
+            bar.stage(f"fitting weights on {len(messages):,} held-out messages")
+            fit = fit_weights(models, messages)
+            bar.stage("perplexity of each part alone")
+            alone = [m.perplexity(messages) for m in models]
+        finally:
+            bar.done()
+            for m in models:
+                m.close()
+        weights = fit.weights
+        fitted = {"method": "em", "heldout": [os.path.basename(h) for h in args.heldout], "messages": len(messages), **fit.as_dict()}
+        out.update({"heldout": args.heldout, "messages": len(messages), "fit": fit.as_dict(), "perplexity_alone": alone})
+    write_mix(args.output, args.parts, weights, fitted=fitted)
+    out["weights"] = weights
+    if args.json:
+        print(json.dumps(out, ensure_ascii=False))
+        return 0
+    shown = ", ".join(f"{w:.4f} {p}" for w, p in zip(weights, args.parts))
+    print(f"wrote {args.output}: {shown}")
+    if fitted is not None:
+        alone_txt = ", ".join(f"{x:.2f}" for x in out["perplexity_alone"])
+        print(f"held-out perplexity {fitted['perplexity']:.2f} mixed (each part alone: {alone_txt}); "
+              f"{fitted['unknown_words']:,} of {fitted['known_words'] + fitted['unknown_words']:,} held-out words unknown to every part; "
+              f"EM: {fitted['iterations']} iterations")
+    return 0
+
+
 def _cmd_live(args: argparse.Namespace) -> int:
     from .live import run_live
 
     if not (sys.stdin.isatty() and sys.stdout.isatty()):
         raise UsageError("live needs a terminal (stdin and stdout must be a TTY)")
-    return run_live(load(args.model), k=args.k, lam=args.lam)
+    return run_live(open_any(args.model, lam=args.lam), k=args.k, lam=None)
 
 
 _REPORT_FILES = {"eval": ("report.md", "ksr.png", "latency.png"), "tune": ("tune.md", "perplexity.png", "ksr.png")}
@@ -1149,6 +1251,9 @@ def _io_paths(args: argparse.Namespace) -> tuple[list[Labelled], list[Labelled],
         ins = [("model", args.model)] + [("log", x) for x in args.logs] + [("training text", x) for x in args.train_data or []]
     elif cmd == "personal":
         ins, outs = [("base model", args.model)], [("personal layer", args.layer)]
+    elif cmd == "mix":
+        ins = [("model", x) for x in args.parts] + [("held-out text", x) for x in args.heldout or []]
+        outs = [("mixture", args.output)]
     if cmd in _REPORT_FILES and args.report:
         dirs = [("report directory", args.report)]
     return ins, outs, dirs
@@ -1188,6 +1293,7 @@ def main(argv: Sequence[str] | None = None) -> int:
             "export": _cmd_export,
             "prune": _cmd_prune,
             "live": _cmd_live,
+            "mix": _cmd_mix,
             "serve": _cmd_serve,
         }[args.command]
         return handler(args)

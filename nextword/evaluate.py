@@ -34,7 +34,8 @@ import numpy as np
 from .corpus import Source, iter_records
 from .errors import InvalidArgumentError
 from .store import atomic_write
-from .model import Model, Suggestion
+from .mix import Predictor
+from .model import Suggestion
 from .text import fold, normalize, word_spans
 
 __all__ = [
@@ -232,7 +233,7 @@ def simulate_message(
 
 
 def evaluate(
-    model: Model,
+    model: Predictor,
     logs: Iterable[tuple[str, Iterable[str]]],
     ks: Sequence[int] = (1, 3, 5),
     *,

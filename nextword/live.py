@@ -35,7 +35,8 @@ import unicodedata
 from dataclasses import dataclass, field
 from typing import Any, NamedTuple, Sequence
 
-from .model import Model, Suggestion
+from .mix import Predictor
+from .model import Suggestion
 from .text import parse_typed
 
 __all__ = ["HELP", "SHORT_HELP", "Key", "KeyDecoder", "LineEditor", "Frame", "layout", "paint", "display_width", "run_live"]
@@ -444,7 +445,7 @@ def _key_mode(saved: list[Any]) -> list[Any]:
     return [iflag, oflag, cflag, lflag, ispeed, ospeed, cc]
 
 
-def run_live(model: Model, *, k: int = 5, lam: float | None = None) -> int:
+def run_live(model: Predictor, *, k: int = 5, lam: float | None = None) -> int:
     """Run the interactive screen on the terminal (stdin/stdout) until Ctrl-D / Ctrl-C; returns 0."""
     fd_in, fd_out = sys.stdin.fileno(), sys.stdout.fileno()
     saved = termios.tcgetattr(fd_in)

@@ -101,6 +101,8 @@ class Model:
         self.n_bigrams: int = meta["bigrams"]
         self.total: int = meta["total"]
         self.stats: dict[str, int] = dict(meta.get("stats", {}))
+        #: version of the text rules the file was counted with (``text.TEXT_RULES``)
+        self.text_rules: int = meta["text_rules"]
         # stored λ above MAX_LAMBDA (files written before the cap) are clamped, not refused:
         # λ = 1 would give every unseen pair probability 0; ``lambda_clamped`` says it happened
         stored = [float(meta["lambda"])]

@@ -107,6 +107,7 @@ import msgpack
 
 from .errors import InvalidArgumentError, LayerNotFoundError, ModelFormatError
 from .estimators.jm import jm_step
+from .mix import MixedModel, Predictor
 from .model import Model, Suggestion, check_k
 from .store import atomic_write
 from .text import BOS, EOS, UNK, fold, parse_typed, recase, sentences
@@ -257,7 +258,7 @@ class PersonalLayer:
 
     def __init__(
         self,
-        base: Model,
+        base: Predictor,
         *,
         min_uses: int = 2,
         strength: float = 2000.0,
@@ -269,8 +270,8 @@ class PersonalLayer:
         max_entries: int = 65_536,
         path: str | os.PathLike[str] | None = None,
     ) -> None:
-        if not isinstance(base, Model):
-            raise InvalidArgumentError(f"base must be a nextword.Model, got {type(base).__name__}")
+        if not isinstance(base, (Model, MixedModel)):
+            raise InvalidArgumentError(f"base must be a nextword.Model or MixedModel, got {type(base).__name__}")
         self._apply_settings(
             _check_settings(
                 min_uses=min_uses,
@@ -326,7 +327,7 @@ class PersonalLayer:
 
     @classmethod
     def open(
-        cls, base: Model, path: str | os.PathLike[str], *, create: bool = False, **settings: Any
+        cls, base: Predictor, path: str | os.PathLike[str], *, create: bool = False, **settings: Any
     ) -> PersonalLayer:
         """The layer saved at ``path``, saving every change there until :meth:`close`.
 
@@ -1241,7 +1242,7 @@ class PersonalLayer:
         atomic_write(name, [_HEADER.pack(PERSONAL_MAGIC, 1, _SNAPSHOT_MINOR, len(body), zlib.crc32(body)), body], mode=_FILE_MODE)
 
     @classmethod
-    def load(cls, base: Model, path: str | os.PathLike[str]) -> PersonalLayer:
+    def load(cls, base: Predictor, path: str | os.PathLike[str]) -> PersonalLayer:
         """A detached copy of the layer at ``path`` (snapshot plus journal); it saves nothing.
 
         Reads under a shared lock when the layer's lock file exists, so it never sees a

@@ -42,9 +42,9 @@ def eval_data(model_path: str, overall: LogStats, per_log: list[LogStats], basel
 
 
 def _model_baselines(baselines: dict[str, Any]) -> dict[str, Any]:
-    """The baseline models measured on the same logs, by name: the bigram of the same
-    smoothing (order-3 models), then the λ runs (Jelinek-Mercer)."""
-    out: dict[str, Any] = {}
+    """The baseline models measured on the same logs, by name: each part alone (a
+    mixture), the bigram of the same smoothing (order-3 models), then the λ runs (Jelinek-Mercer)."""
+    out: dict[str, Any] = dict(baselines.get("parts", {}))
     if baselines.get("bigram"):
         out[baselines["bigram"]["name"]] = baselines["bigram"]
     out.update(baselines.get("lambda", {}))

@@ -57,7 +57,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import InvalidArgumentError, LayerNotFoundError, NextwordError
-from .model import Model
+from .mix import Predictor
 from .personal import PersonalLayer
 
 __all__ = [
@@ -341,7 +341,7 @@ class Server:
 
     def __init__(
         self,
-        model: Model,
+        model: Predictor,
         listener: socket.socket,
         *,
         users_dir: str | os.PathLike[str] | None = None,
@@ -932,7 +932,7 @@ _HANDLERS: dict[str, tuple[frozenset[str], Callable[[Server, dict[str, Any]], di
 
 
 def run_server(
-    model: Model,
+    model: Predictor,
     listener: socket.socket,
     *,
     users_dir: str | os.PathLike[str] | None,

@@ -29,6 +29,7 @@ from .errors import InvalidArgumentError, ModelFormatError
 from .estimators import FittedJelinekMercer, FittedKneserNey, unigram_floor
 from .estimators.jm import MAX_LAMBDA as MAX_LAMBDA  # re-exported: one source, the estimator that owns λ
 from .estimators.jm import jm_step
+from .text import TEXT_RULES
 from .paths import check_new_output as check_new_output  # re-exported: callers of the store use it
 
 __all__ = [
@@ -1305,6 +1306,11 @@ def _check_meta(name: str, meta: Any, size: int) -> dict[str, Any]:
     need("skyband_k", int, 1, 4096)
     need("skyband_min", int, 0, 1 << 32)
     need("max_key_chars", int, 1, 1 << 20)
+    rules = meta.setdefault("text_rules", 1)  # absent: version 1, the rules every file so far was counted with
+    if isinstance(rules, bool) or not isinstance(rules, int) or rules < 1:
+        raise _fail(name, f"metadata field 'text_rules' is invalid: {rules!r}"[:200])
+    if rules > TEXT_RULES:
+        raise _fail(name, f"counted with text rules version {rules}; this nextword has version {TEXT_RULES}")
     if meta.get("topk_fanout") != TOPK_FANOUT:
         raise _fail(name, f"metadata field 'topk_fanout' is invalid: {meta.get('topk_fanout')!r}")
     if not isinstance(meta.get("stats", {}), dict):

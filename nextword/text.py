@@ -47,6 +47,7 @@ __all__ = [
     "parse_typed",
     "recase",
     "MAX_CONTEXT_CHARS",
+    "TEXT_RULES",
 ]
 
 #: Reserved symbols. None of them can be a word: words contain no ``<`` or ``>``.
@@ -78,6 +79,12 @@ TOKEN_RE: Final = re.compile(
 HAS_LETTER: Final = re.compile(r"[^\W\d_]")
 _FOLD_PAIRS = (("’", "'"), ("‐", "-"), ("‑", "-"))
 _FOLD_TABLE = str.maketrans(dict(_FOLD_PAIRS))
+
+#: Version of these rules. A model file records the version it was counted with (META
+#: ``text_rules``; absent means 1); the reader refuses a newer one, and a mixture refuses
+#: parts counted under different rules, since they would cut the same text differently.
+#: Bump it whenever a change here would cut any text differently.
+TEXT_RULES: Final = 1
 
 #: suggest() looks at no more than this many characters before the cursor, so a call
 #: costs the same whether the document is one line or a whole book.
