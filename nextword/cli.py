@@ -23,7 +23,7 @@ from .build import DEFAULT_LAMBDA, SMOOTHINGS, TRAIN_ORDERS, train, train_texts
 from .corpus import FORMATS, iter_messages, open_sources
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, PARALLEL_MIN_BYTES
 from .errors import InputDataError, InvalidArgumentError, NextwordError
-from .mix import MixedModel, open_any
+from .mix import MixedModel, is_mix_file, load_mix, open_any
 from .model import Model, load
 from .paths import Labelled, check_outputs, check_writable
 from .serve import DEFAULT_MAX_OPEN_USERS
@@ -737,6 +737,10 @@ def _cmd_tune(args: argparse.Namespace) -> int:
         raise UsageError(f"argument --test-percent: expected 0-90, got {args.test_percent}")
     if args.buckets and args.objective != "perplexity":
         raise UsageError("--buckets fits λ per bucket by perplexity; use it with --objective perplexity")
+    if is_mix_file(args.model):
+        if args.buckets or args.report:
+            raise UsageError(f"{'--buckets' if args.buckets else '--report'} applies to a model file's λ; a mixture's tuning refits its weights")
+        return _tune_mix(args)
     model = load(args.model)
     check_tunable(model)  # Kneser-Ney: one line, exit 2 (its discounts stay fixed)
     # stages: held-out events, the keystroke search (unless off), before, writing (-o), after
@@ -748,6 +752,60 @@ def _cmd_tune(args: argparse.Namespace) -> int:
         return _run_tune(args, bar, search, model)
     finally:
         bar.done()  # also on errors: the error message then starts on a clean line
+
+
+def _tune_mix(args: argparse.Namespace) -> int:
+    """Refit a mixture's weights: EM on held-out perplexity, or (two parts) the weight of best KSR@k on a grid."""
+    from .evaluate import evaluate, is_held_out
+    from .mix import fit_weights, load_mix, read_mix, write_mix
+
+    mix = load_mix(args.model)
+    messages = [m for m in iter_messages(open_sources(args.heldout, fmt=args.format, field=args.field)) if m.strip()]
+    if args.test_percent:
+        tune_msgs = [m for m in messages if not is_held_out(m, args.test_percent, salt="tune:")]
+        test_msgs = [m for m in messages if is_held_out(m, args.test_percent, salt="tune:")]
+    else:
+        tune_msgs, test_msgs = messages, messages
+    if not tune_msgs or not test_msgs:
+        raise InvalidArgumentError("not enough held-out messages to tune and measure")
+    if args.objective == "keystrokes" and len(mix.parts) != 2:
+        raise UsageError(f"--objective keystrokes searches the weight of a two-part mixture; {args.model} has {len(mix.parts)} parts")
+    bar = Progress("tune")
+    try:
+        bar.stage(f"fitting weights by EM on {len(tune_msgs):,} messages")
+        fit = fit_weights(mix.parts, tune_msgs)
+        chosen = fit.weights
+        curve: list[dict[str, float]] = []
+        if args.objective == "keystrokes":
+            grid = sorted({0.0, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 1.0, round(fit.weights[0], 4)})
+            for w in grid:
+                bar.stage(f"KSR@{args.k} at weight {w:.2f}", unit="messages")
+                o, _ = evaluate(MixedModel(mix.parts, [w, 1.0 - w]), [("tune", tune_msgs)], (args.k,), progress=bar.update)
+                curve.append({"weight": w, "ksr": o.per_k[args.k].ksr})
+            best = max(curve, key=lambda r: (r["ksr"], -abs(r["weight"] - fit.weights[0])))
+            chosen = [best["weight"], 1.0 - best["weight"]]
+        measured: dict[str, dict[str, Any]] = {}
+        for when, ws in (("before", list(mix.weights)), ("after", chosen)):
+            bar.stage(f"measuring {when}", unit="messages")
+            o, _ = evaluate(MixedModel(mix.parts, ws), [("test", test_msgs)], (args.k,), progress=bar.update)
+            measured[when] = {"weights": ws, "perplexity": o.perplexity, "ksr": o.per_k[args.k].ksr}
+        if args.output:
+            bar.stage(f"writing {args.output}")
+            fitted = {"method": "em" if args.objective == "perplexity" else f"ksr@{args.k} grid", "messages": len(tune_msgs), **fit.as_dict()}
+            write_mix(args.output, [p["path"] for p in read_mix(args.model)["parts"]], chosen, fitted=fitted)
+    finally:
+        bar.done()
+    result: dict[str, Any] = {"model": args.model, "objective": args.objective, "k": args.k, "em": fit.as_dict(),
+                              "chosen_weights": chosen, "ksr_curve": curve, **measured, "output": args.output}
+    if args.json:
+        print(json.dumps(result, ensure_ascii=False))
+        return 0
+    b, a = measured["before"], measured["after"]
+    print(f"weights {', '.join(f'{w:.4f}' for w in b['weights'])} -> {', '.join(f'{w:.4f}' for w in chosen)} ({args.objective})")
+    print(f"perplexity {b['perplexity']:.2f} -> {a['perplexity']:.2f}; KSR@{args.k} {100 * b['ksr']:.2f}% -> {100 * a['ksr']:.2f}%")
+    if args.output:
+        print(f"wrote {args.output}")
+    return 0
 
 
 def _run_tune(args: argparse.Namespace, bar: Progress, search: bool, model: Model) -> int:
@@ -1027,6 +1085,8 @@ def _cmd_prune(args: argparse.Namespace) -> int:
     from .prune import parse_size, prune_model
     from .store import atomic_write, check_new_output
 
+    if is_mix_file(args.model):
+        return _prune_mix(args)
     model = load(args.model)
     if args.curve:
         return _prune_curve(args, model)
@@ -1052,6 +1112,28 @@ def _cmd_prune(args: argparse.Namespace) -> int:
             f"{'pairs' if model.estimator == 'jm' and model.order == 2 else 'n-grams'}, "
             f"removed {info['removed']:,}; kept {info['words_kept']:,} words, removed {info['words_removed']:,} ({args.rule} rule)"
         )
+    return 0
+
+
+def _prune_mix(args: argparse.Namespace) -> int:
+    """Prune a mixture's parts to a budget shared by their sizes (``prune.prune_mixture``)."""
+    from .prune import parse_size, prune_mixture
+
+    if args.curve:
+        raise UsageError("--curve measures one model file; prune a mixture with -o and --max-size")
+    if not args.output or not args.max_size:
+        raise UsageError("prune needs -o/--output and --max-size")
+    bar = Progress("prune")
+    try:
+        info = prune_mixture(args.model, parse_size(args.max_size), args.output, rule=args.rule,
+                             vocabulary=not args.keep_vocabulary, progress=lambda label: bar.stage(label))
+    finally:
+        bar.done()
+    if args.json:
+        print(json.dumps(info))
+    else:
+        shown = ", ".join(f"{p['path']} {p['bytes']:,} bytes" for p in info["parts"])
+        print(f"wrote {args.output} and its parts: {shown}; {info['bytes']:,} bytes in all (weights kept; re-fit with nextword tune)")
     return 0
 
 
@@ -1121,8 +1203,22 @@ def _prune_curve(args: argparse.Namespace, model: Model) -> int:
 
 
 def _cmd_export(args: argparse.Namespace) -> int:
-    from .export import write_arpa
+    from .export import write_arpa, write_arpa_mix
 
+    if is_mix_file(args.model):
+        if args.lam is not None:
+            raise UsageError("--lam applies to a model file; a mixture's parts keep their own λ")
+        mix = load_mix(args.model)
+        written = write_arpa_mix(mix, args.output)
+        names = ("unigrams", "bigrams", "trigrams")
+        out_mix: dict[str, Any] = {"model": args.model, "output": args.output, "estimator": "mix", "order": mix.order,
+                                   "weights": list(mix.weights), **{names[m]: k for m, k in enumerate(written)}}
+        if args.json:
+            print(json.dumps(out_mix))
+        else:
+            print(f"wrote {args.output}: {', '.join(f'{k:,} {names[m]}' for m, k in enumerate(written))} "
+                  f"(a mixture of {len(mix.parts)} parts, static interpolation: exact for every listed n-gram)")
+        return 0
     model = load(args.model)
     written = write_arpa(model, args.output, lam=args.lam)
     names = ("unigrams", "bigrams", "trigrams")

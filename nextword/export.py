@@ -52,6 +52,7 @@ import numpy as np
 
 from .errors import InvalidArgumentError
 from .estimators import Fitted, FittedJelinekMercer, FittedKneserNey
+from .mix import MixedModel
 from .model import Model
 from .ngrams import NgramCounts
 from .paths import check_outputs
@@ -59,7 +60,7 @@ from .reference_kn import Discounts
 from .store import atomic_write
 from .text import BOS, EOS, UNK
 
-__all__ = ["write_arpa", "arpa_lines", "fitted_from_model", "write_arpa_fitted", "arpa_lines_fitted"]
+__all__ = ["write_arpa", "arpa_lines", "fitted_from_model", "write_arpa_fitted", "arpa_lines_fitted", "write_arpa_mix"]
 
 PathArg = Union[str, "os.PathLike[str]"]
 
@@ -302,4 +303,127 @@ def write_arpa_fitted(
     check_outputs([("input", p) for p in inputs], [("ARPA file", path)])
     counts, lines = _fitted_document(fitted, keys)
     _write(lines, path)
+    return counts
+
+
+# -- a mixture of models -------------------------------------------------------------------------
+
+
+def write_arpa_mix(mix: MixedModel, path: PathArg) -> list[int]:
+    """Write a mixture as an ARPA back-off file (static interpolation), atomically.
+
+    A mixture of back-off models is not itself a back-off model: after a context h, a
+    word no part lists scores Σ_i w_i·γ_i(h)·P_i(w | h′), which is not one weight times one
+    lower-order distribution. The file is the usual static approximation of it:
+
+    * every n-gram some part lists (in the union vocabulary; a context word a part lacks
+      is that part's ``<unk>``, as the mixture reads it) with the **exact** mixture
+      probability Σ_i w_i·P_i(w | h) — at the highest order these are the mixture's own
+      probabilities (:meth:`MixedModel.prob_after`); a lower order m uses each part's
+      order-m distribution, which is what a sentence start asks for and what the file
+      backs off to;
+    * every context with the back-off weight that makes it sum to 1 over the outcomes:
+      bow(h) = (1 − Σ_listed P(w | h)) / (1 − Σ_listed P_file(w | h′)).
+
+    So the file reproduces the mixture for every listed n-gram and sums to 1 for every
+    context; an unlisted n-gram gets bow(h)·P(w | h′) instead of the exact mixture
+    (tests/test_mix.py measures both). Returns the entries per order.
+    """
+    paths = [("model", str(p.path)) for p in mix.parts]
+    check_outputs(paths, [("ARPA file", path)])
+    keys = mix.union_keys()
+    n = len(keys)
+    names = [*keys, EOS, UNK, BOS]
+    eos, unk, bos = n, n + 1, n + 2
+    base = n + 3
+    order = mix.order
+    # each part: its exact tables, and the map from union ids to its own ids
+    tables: list[_Tables] = []
+    maps: list[np.ndarray] = []  # union id -> part id as a context token (unknown word -> part's <unk>)
+    present: list[np.ndarray] = []  # union id -> whether the part predicts it with its own probability
+    for part in mix.parts:
+        pk = part.word_keys()
+        pn = len(pk)
+        index = {k: i for i, k in enumerate(pk)}
+        mp = np.full(base, pn + 1, np.int64)  # default: the part's <unk>
+        have = np.zeros(base, bool)
+        for u, k in enumerate(keys):
+            i = index.get(k)
+            if i is not None:
+                mp[u], have[u] = i, True
+        mp[eos], mp[unk], mp[bos] = pn, pn + 1, pn + 2
+        have[eos] = have[unk] = True
+        tables.append(_Tables(fitted_from_model(part)))
+        maps.append(mp)
+        present.append(have)
+
+    def mix_prob(m: int, rows: np.ndarray) -> np.ndarray:
+        """Σ_i w_i·P_i^(m)(w | h) for union rows (h w) of m ids (each part at most its own order)."""
+        out = np.zeros(len(rows), np.float64)
+        for t, mp, have, w in zip(tables, maps, present, mix.weights):
+            mm = min(m, t.fitted.order)
+            part_rows = mp[rows[:, m - mm:]]
+            p = t.prob_rows(mm, part_rows) if len(rows) else np.zeros(0)
+            out += w * np.where(have[rows[:, -1]], p, 0.0)
+        return out
+
+    # listed n-grams per order: the union of the parts' listed n-grams, in union ids
+    listed: list[np.ndarray] = [np.arange(base, dtype=np.int64).reshape(-1, 1)]
+    for m in range(2, order + 1):
+        found = []
+        for t, part in zip(tables, mix.parts):
+            if m > t.fitted.order:
+                continue
+            pk = [*part.word_keys(), EOS, UNK, BOS]
+            to_union = np.asarray([names.index(k) if k in (EOS, UNK, BOS) else -1 for k in pk], np.int64)
+            pos = {k: i for i, k in enumerate(keys)}
+            to_union[: len(pk) - 3] = [pos[k] for k in pk[:-3]]
+            found.append(to_union[t.listed[m - 1]])
+        rows = np.unique(np.concatenate(found), axis=0) if found else np.zeros((0, m), np.int64)
+        listed.append(rows)
+    # a listed context of order m+1 must be listed at order m (it carries the back-off weight)
+    for m in range(order - 1, 1, -1):
+        ctx = np.unique(listed[m][:, :-1], axis=0) if len(listed[m]) else np.zeros((0, m), np.int64)
+        missing = ctx[_lookup(listed[m - 1], ctx, base) < 0]
+        if len(missing):
+            listed[m - 1] = np.unique(np.concatenate([listed[m - 1], missing]), axis=0)
+    probs = [mix_prob(1, listed[0][:eos + 2])]  # every outcome; <s> is never predicted
+    probs[0] = np.concatenate([probs[0], [0.0]])
+    for m in range(2, order + 1):
+        probs.append(mix_prob(m, listed[m - 1]))
+    bows: list[np.ndarray] = [np.zeros(len(listed[m - 1])) for m in range(1, order + 1)]  # log10 bow per listed row
+
+    def file_prob(m: int, rows: np.ndarray) -> np.ndarray:
+        """What a reader of the file computes for rows (h w) of m ids, with the weights found so far."""
+        if m == 1:
+            return probs[0][rows[:, 0]]
+        i = _lookup(listed[m - 1], rows, base)
+        j = _lookup(listed[m - 2], rows[:, :-1], base)
+        low = file_prob(m - 1, rows[:, 1:])
+        logb = np.nan_to_num(bows[m - 2], nan=0.0)  # a context without a weight backs off with weight 1
+        bw = np.where(j >= 0, 10.0 ** logb[np.maximum(j, 0)], 1.0) if len(listed[m - 2]) else np.ones(len(rows))
+        return np.where(i >= 0, probs[m - 1][np.maximum(i, 0)], bw * low)
+
+    for m in range(2, order + 1):
+        rows = listed[m - 1]
+        if not len(rows):
+            continue
+        ctx_of = _lookup(listed[m - 2], rows[:, :-1], base)
+        hi = np.bincount(ctx_of, weights=probs[m - 1], minlength=len(listed[m - 2]))
+        lo = np.bincount(ctx_of, weights=file_prob(m - 1, rows[:, 1:]), minlength=len(listed[m - 2]))
+        has = np.bincount(ctx_of, minlength=len(listed[m - 2])) > 0
+        tiny = 1e-300
+        bow = np.maximum(1.0 - hi, tiny) / np.maximum(1.0 - lo, tiny)
+        bows[m - 2] = np.where(has, np.log10(bow), np.nan)  # NaN: no back-off weight written
+    counts = [len(listed[0])] + [len(listed[m - 1]) for m in range(2, order + 1)]
+
+    def section(m: int) -> Iterator[str]:
+        columns = [[names[i] for i in col] for col in listed[m - 1].T.tolist()]
+        p = probs[m - 1].tolist()
+        b = bows[m - 1].tolist() if m < order else [math.nan] * len(p)
+        for idx, words in enumerate(map(" ".join, zip(*columns))):
+            prob = "-99" if m == 1 and listed[0][idx, 0] == bos else _log10(p[idx])
+            yield f"{prob}\t{words}" if math.isnan(b[idx]) else f"{prob}\t{words}\t{b[idx]:.10f}"
+
+    _write(_document(counts, [section(m) for m in range(1, order + 1)]), path)
     return counts

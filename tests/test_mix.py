@@ -412,3 +412,71 @@ def test_service_answers_over_a_mixture(two: tuple[Path, Path], tmp_path: Path) 
         server.stop()
         t.join(60)
         shutil.rmtree(short, ignore_errors=True)
+
+
+# -- export ---------------------------------------------------------------------------------------------
+
+
+def test_arpa_export_of_a_mixture_is_exact_where_listed_and_sums_to_one(two: tuple[Path, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """Read back by the independent ARPA reader of tests/test_export_ngram.py (format from memory, shares no code)."""
+    from test_export_ngram import _read
+
+    out = tmp_path / "m.nwx"
+    write_mix(out, list(two), [0.35, 0.65])
+    mix = load_mix(out)
+    assert main(["export", str(out), "-o", str(tmp_path / "m.arpa"), "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["estimator"] == "mix"
+    arpa = _read(tmp_path / "m.arpa")
+    assert arpa.order == mix.order == 3
+    assert arpa.counts[1] == mix.n_words + 3
+    # every listed trigram: the mixture's own probability
+    top = list(arpa.grams[3])
+    rng = random.Random(1)
+    for words in rng.sample(top, min(400, len(top))):
+        if words[-1] == "<s>":
+            continue
+        h = tuple(None if t == "<s>" else t for t in words[:-1])
+        assert arpa.prob(words[:-1], words[-1]) == pytest.approx(mix.prob_after(words[-1], h), rel=1e-9), words
+    # sentence starts are bigram-level contexts in both: exact for every listed word
+    for words in [w for w in arpa.grams[2] if w[0] == "<s>"][:200]:
+        assert arpa.prob(words[:1], words[1]) == pytest.approx(mix.prob_after(words[1], (None,)), rel=1e-9), words
+    outcomes = [*mix.union_keys(), EOS, UNK]
+    contexts = [("<s>",), ("<unk>", "the"), ("the", "object"), ("of", "the")] + [w[:-1] for w in rng.sample(top, 20)]
+    for h in contexts:
+        assert math.fsum(arpa.prob(h, w) for w in outcomes) == pytest.approx(1.0, abs=1e-9), h
+
+
+# -- tune and prune --------------------------------------------------------------------------------------
+
+
+def test_cli_tune_refits_the_weights_by_em(two: tuple[Path, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    held = tmp_path / "held.txt"
+    held.write_text("\n".join(_real_lines()[2400:2700]), encoding="utf-8")
+    out = tmp_path / "m.nwx"
+    write_mix(out, list(two), [0.9, 0.1])
+    assert main(["tune", str(out), str(held), "-o", str(tmp_path / "t.nwx"), "--json"]) == 0
+    got = json.loads(capsys.readouterr().out)
+    fit = fit_weights([nextword.load(p) for p in two], held.read_text(encoding="utf-8").splitlines())
+    assert got["chosen_weights"] == pytest.approx(fit.weights, abs=1e-12)
+    assert load_mix(tmp_path / "t.nwx").weights == pytest.approx(tuple(fit.weights), abs=1e-12)
+    assert got["after"]["perplexity"] <= got["before"]["perplexity"]
+    assert main(["tune", str(out), str(held), "--buckets"]) == 2
+    assert "refits its weights" in capsys.readouterr().err
+
+
+def test_cli_prune_fits_the_budget_and_stays_exact(two: tuple[Path, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    out = tmp_path / "m.nwx"
+    write_mix(out, list(two), [0.4, 0.6])
+    total = sum(p.stat().st_size for p in two)
+    budget = int(total * 0.85)
+    assert main(["prune", str(out), "--max-size", str(budget), "-o", str(tmp_path / "small.nwx"), "--json"]) == 0
+    info = json.loads(capsys.readouterr().out)
+    written = [Path(p["path"]) for p in info["parts"]]
+    assert sum(p.stat().st_size for p in written) + (tmp_path / "small.nwx").stat().st_size <= budget
+    small = load_mix(tmp_path / "small.nwx")
+    assert small.weights == (0.4, 0.6)
+    for h in [("<s>",), ("the",), ("of", "the")]:
+        outcomes = small.union_keys() + [EOS, UNK]
+        assert math.fsum(small.probs_after(outcomes, h)) == pytest.approx(1.0, abs=1e-12)
+        for prefix in ("", "t", "ob"):
+            assert small.rank_after(h, prefix, 4) == _brute(small, h, prefix, 4)
