@@ -139,9 +139,45 @@ class MixedModel:
         depths = [p.header().get("skyband_k", _FIRST_DEPTH) for p in parts]
         self._depth = min(d for d in depths if isinstance(d, int) and d >= 1) if depths else _FIRST_DEPTH
         self._keys: list[str] | None = None  # the sorted union vocabulary, built on first use
+        self._build_id_maps()
         # display spelling by key: a pure function of the immutable parts (dict reads and
         # writes are atomic, so sharing the mixture between threads stays safe)
-        self._shown: dict[str, str | None] = {}
+        self._spelled: dict[str, str | None] = {}
+
+    def _build_id_maps(self) -> None:
+        """Maps between the parts' word ids, built once (about 15 ms per 30,000-word part).
+
+        A word is named inside the mixture by its *canonical* number: offset_i + its id in
+        the first part i that has it. ``_to[i][j][a]`` is part j's id of part i's word a
+        (−1 if part j lacks it); ``_canon[j][b]`` the canonical number of part j's word b.
+        Plain lists: indexing one is cheaper than indexing a numpy array per word.
+        """
+        keys = [p.word_keys() for p in self.parts]
+        index = [{k: i for i, k in enumerate(ks)} for ks in keys]
+        n = len(self.parts)
+        self._part_keys = keys
+        self._offsets = [0] * n
+        for i in range(1, n):
+            self._offsets[i] = self._offsets[i - 1] + len(keys[i - 1])
+        self._to: list[list[list[int] | None]] = [[None] * n for _ in range(n)]
+        for i in range(n):
+            for j in range(n):
+                if i != j:
+                    get = index[j].get
+                    self._to[i][j] = [get(k, -1) for k in keys[i]]
+        self._canon: list[list[int]] = []
+        for j in range(n):
+            canon = np.arange(len(keys[j]), dtype=np.int64) + self._offsets[j]
+            done = np.zeros(len(keys[j]), dtype=bool)
+            for i in range(j):
+                there = np.asarray(self._to[j][i], dtype=np.int64)
+                hit = (there >= 0) & ~done
+                canon[hit] = there[hit] + self._offsets[i]
+                done |= hit
+            self._canon.append(canon.tolist())
+        # canonical number -> (part, id): the part that names it
+        self._home = [(i, a) for i in range(n) for a in range(len(keys[i]))]
+        self._shown_c: dict[int, str] = {}
 
     # -- lifecycle ----------------------------------------------------------------------------
 
@@ -185,7 +221,7 @@ class MixedModel:
         if not isinstance(word, str):
             raise InvalidArgumentError(f"word must be str, got {type(word).__name__}")
         try:
-            return self._shown[word]
+            return self._spelled[word]
         except KeyError:
             pass
         found = None
@@ -193,9 +229,9 @@ class MixedModel:
             found = self.parts[i].spelling(word)
             if found is not None:
                 break
-        if len(self._shown) >= 100_000:
-            self._shown.clear()
-        self._shown[word] = found
+        if len(self._spelled) >= 100_000:
+            self._spelled.clear()
+        self._spelled[word] = found
         return found
 
     def tie_rank(self, word: str) -> int:
@@ -338,79 +374,131 @@ class MixedModel:
         return self.rank_after((previous_word,), prefix, k, lam=lam)
 
     def _rank(self, hist: tuple[str | None, ...], prefix: str, k: int) -> list[tuple[str, float]]:
+        return [(self._key_c(c), p) for c, p in self._rank_c(hist, prefix, k)]
+
+    def _key_c(self, c: int) -> str:
+        i, a = self._home[c]
+        return self._part_keys[i][a]
+
+    def _rank_c(self, hist: tuple[str | None, ...], prefix: str, k: int) -> list[tuple[int, float]]:
+        """The top k as (canonical number, probability); see :meth:`rank_after`."""
         parts, weights = self.parts, self.weights
         n = len(parts)
         want = max(k, self._depth)
+        canon = self._canon
         while True:
-            lists = [p.rank_after(hist, prefix, want) for p in parts]
+            lists = [p.rank_after_ids(hist, prefix, want) for p in parts]
             complete = [len(lst) < want for lst in lists]
             # the most an unmet part can give a word: its list's last probability (0 for a whole range)
             cap = [0.0 if done else lst[-1][1] for lst, done in zip(lists, complete)]
-            seen: dict[str, list[float | None]] = {}
-            for i, lst in enumerate(lists):
-                for key, pr in lst:
-                    row = seen.get(key)
+            seen: dict[int, list[float | None]] = {}
+            # unknown (None) where a part's list is not the whole range; a part that lacks the
+            # word is found out only if the word may still enter (its id map then says -1: 0.0)
+            template: list[float | None] = [0.0 if done else None for done in complete]
+            for j, lst in enumerate(lists):
+                cj = canon[j]
+                for b, pr in lst:
+                    c = cj[b]
+                    row = seen.get(c)
                     if row is None:
-                        row = seen[key] = [0.0 if complete[j] else None for j in range(n)]
-                    row[i] = pr
+                        row = seen[c] = template.copy()
+                    row[j] = pr
             exact, pending = self._bounds(seen, cap, k)
             if pending:
                 self._resolve(pending, seen, hist)
-                exact, pending = self._bounds(seen, cap, k)
+                for c in pending:  # every part of these is known now
+                    tot = 0.0
+                    for w, known in zip(weights, seen[c]):
+                        tot += w * known  # type: ignore[operator]
+                    exact.append((-tot, c))
             exact.sort()
             if all(complete):
                 break
             bound = 0.0
-            for w, c in zip(weights, cap):
-                bound += w * c
+            for w, cp in zip(weights, cap):
+                bound += w * cp
             if len(exact) >= k and -exact[k - 1][0] > bound:
                 break
             want *= 4
-        return [(key, -s) for s, key in exact[:k]]
+        if len(exact) > k:
+            # equal probabilities go by key: sort the words tied with the k-th by key (only those need keys)
+            last = exact[k - 1][0]
+            top = [e for e in exact if e[0] <= last]
+            if len(top) > k or any(top[i][0] == top[i + 1][0] for i in range(len(top) - 1)):
+                top.sort(key=lambda e: (e[0], self._key_c(e[1])))
+            exact = top
+        elif any(exact[i][0] == exact[i + 1][0] for i in range(len(exact) - 1)):
+            exact.sort(key=lambda e: (e[0], self._key_c(e[1])))
+        return [(c, -s) for s, c in exact[:k]]
 
-    def _bounds(self, seen: dict[str, list[float | None]], cap: list[float], k: int) -> tuple[list[tuple[float, str]], list[str]]:
-        """(−score, key) of the words whose every part is known, and the words that may still enter the top k.
+    def _bounds(self, seen: dict[int, list[float | None]], cap: list[float], k: int) -> tuple[list[tuple[float, int]], list[int]]:
+        """(−score, word) of the words whose every part is known, and the words that may still enter the top k.
 
         A word with an unknown part i scores between its sum with P_i = 0 and with P_i =
         cap_i (the same additions in the same order, monotone): one whose upper end is
         strictly below the k-th best lower end cannot enter, and is never looked up.
         """
         weights = self.weights
-        exact: list[tuple[float, str]] = []
-        partial: list[tuple[float, float, str]] = []
+        exact: list[tuple[float, int]] = []
+        partial: list[tuple[float, int]] = []
         lows: list[float] = []
-        for key, row in seen.items():
+        for c, row in seen.items():
             lo = hi = 0.0
             known = True
-            for w, pr, c in zip(weights, row, cap):
+            for w, pr, cp in zip(weights, row, cap):
                 if pr is None:
                     known = False
-                    hi += w * c
+                    hi += w * cp
                     lo += 0.0
                 else:
                     lo += w * pr
                     hi += w * pr
             lows.append(lo)
             if known:
-                exact.append((-lo, key))
+                exact.append((-lo, c))
             else:
-                partial.append((lo, hi, key))
+                partial.append((hi, c))
         if not partial:
             return exact, []
         lows.sort(reverse=True)
         kth = lows[k - 1] if len(lows) >= k else -1.0
-        return exact, [key for _, hi, key in partial if hi >= kth]
+        return exact, [c for hi, c in partial if hi >= kth]
 
-    def _resolve(self, keys: list[str], seen: dict[str, list[float | None]], hist: tuple[str | None, ...]) -> None:
-        """Fill in every unknown part probability of ``keys`` (one batched lookup per part; 0 where a part lacks the word)."""
-        for i, p in enumerate(self.parts):
-            ask = [key for key in keys if seen[key][i] is None]
-            if not ask:
-                continue
-            inside = [key for key in ask if key in p]
-            got = dict(zip(inside, p.probs_after(inside, hist))) if inside else {}
-            for key in ask:
-                seen[key][i] = got.get(key, 0.0)
+    def _resolve(self, words: list[int], seen: dict[int, list[float | None]], hist: tuple[str | None, ...]) -> None:
+        """Fill in every unknown part probability of ``words`` (one batched lookup per part)."""
+        home, to = self._home, self._to
+        for j, p in enumerate(self.parts):
+            ask, ids = [], []
+            for c in words:
+                row = seen[c]
+                if row[j] is not None:
+                    continue
+                i0, a = home[c]
+                b = a if i0 == j else to[i0][j][a]  # type: ignore[index]
+                if b < 0:
+                    row[j] = 0.0  # the part lacks the word: it gives it nothing
+                else:
+                    ask.append(c)
+                    ids.append(b)
+            if ids:
+                for c, pr in zip(ask, p.probs_of_ids(ids, hist)):
+                    seen[c][j] = pr
+
+    def _shown(self, c: int) -> str:
+        """Display spelling of canonical word c: from the heaviest part that has it."""
+        hit = self._shown_c.get(c)
+        if hit is not None:
+            return hit
+        i0, a = self._home[c]
+        for j in self._by_weight:
+            b = a if j == i0 else self._to[i0][j][a]  # type: ignore[index]
+            if b >= 0:
+                shown = self.parts[j].display(b)
+                break
+        if len(self._shown_c) >= 100_000:
+            self._shown_c.clear()
+        self._shown_c[c] = shown
+        return shown
 
     def suggest(self, typed: str, k: int = 3, *, lam: float | None = None) -> list[Suggestion]:
         """Like :meth:`Model.suggest`, over the mixture: complete the partial word or predict the next one."""
@@ -421,9 +509,8 @@ class MixedModel:
         ctx = parse_typed(typed)
         at_start = ctx.previous == BOS
         out = []
-        for key, p in self._rank(ctx.history, ctx.prefix, k):
-            shown = self.spelling(key) or key
-            out.append(Suggestion(recase(shown, ctx.prefix, at_start), p))
+        for c, p in self._rank_c(ctx.history, ctx.prefix, k):
+            out.append(Suggestion(recase(self._shown(c), ctx.prefix, at_start), p))
         return out
 
     # -- description ------------------------------------------------------------------------------

@@ -760,8 +760,61 @@ class Model:
     # this file's ids, and the λ values a query uses.
 
     def word_keys(self) -> list[str]:
-        """The case-folded key of every word id 0..n_words−1 (unique, never white space)."""
-        return [self._key(i) for i in range(self.n_words)]
+        """The case-folded key of every word id 0..n_words−1 (unique, never white space).
+
+        One walk over the trie (its (key, key id) pairs), not a lookup per id: a third of the time.
+        """
+        keys: list[str] = [""] * self.n_words
+        tkid = self._mv_tkid
+        for key, kid in self._trie.items():
+            wid = tkid[kid]
+            if not 0 <= wid < self.n_words or keys[wid]:
+                raise ModelFormatError(f"{self.path}: damaged model data: trie key {kid} maps to word id {wid}")
+            keys[wid] = key
+        if not all(keys):
+            raise ModelFormatError(f"{self.path}: damaged model data: a word id has no trie key")
+        return keys
+
+    # -- public accessors for mixtures (nextword.mix): the same queries in this file's word ids ------
+    # A mixture joins its parts' lists by id (maps between the parts' ids are built once),
+    # so that a keystroke costs no key restoring or folding beyond the parts' own ranking.
+
+    def rank_after_ids(self, history: Sequence[str | None], prefix: str = "", k: int = 3) -> list[tuple[int, float]]:
+        """:meth:`rank_after` with this file's word ids instead of keys (the same ranking, the same floats)."""
+        k = check_k(k)
+        ctx = self._context_ids(history)
+        rs = self._candidates.ranges(fold(prefix))
+        if not rs:
+            return []
+        try:
+            if self._general:
+                return self._rank_ranges(self._ng.rank, ctx, rs, k, self._ng_lams(None))
+            v = ctx[-1]
+            return self._rank_ranges(self._rank, v, rs, k, self._lam_of(v, None))
+        except (IndexError, ValueError) as e:
+            raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
+
+    def probs_of_ids(self, ids: Sequence[int], history: Sequence[str | None]) -> list[float]:
+        """:meth:`probs_after` of word ids 0..n_words−1 of this file, bit for bit."""
+        ctx = self._context_ids(history)
+        n = self.n_words
+        for w in ids:
+            if isinstance(w, bool) or not isinstance(w, int) or not 0 <= w < n:
+                raise InvalidArgumentError(f"word id must be an integer in [0, {n}), got {w!r}")
+        if self._general:
+            lams = self._ng_lams(None)
+            if len(ids) >= 8:  # the scorer's vector path: the same operations
+                return self._ng.scores(np.asarray(ids, dtype=np.int64), ctx, lams).tolist()  # type: ignore[no-any-return]
+            return [self._ng.prob(w, ctx, lams) for w in ids]
+        v = ctx[-1]
+        lam_v = self._lam_of(v, None)
+        return [self._prob_ids(v, w, lam_v) for w in ids]
+
+    def key_of(self, wid: int) -> str:
+        """The case-folded key of word id ``wid``."""
+        if isinstance(wid, bool) or not isinstance(wid, int) or not 0 <= wid < self.n_words:
+            raise InvalidArgumentError(f"word id must be an integer in [0, {self.n_words}), got {wid!r}")
+        return self._key(wid)
 
     def stored_ngrams(self) -> NgramCounts:
         """Every stored n-gram of every order 1..order with its stored value, in this file's ids.

@@ -480,3 +480,26 @@ def test_cli_prune_fits_the_budget_and_stays_exact(two: tuple[Path, Path], tmp_p
         assert math.fsum(small.probs_after(outcomes, h)) == pytest.approx(1.0, abs=1e-12)
         for prefix in ("", "t", "ob"):
             assert small.rank_after(h, prefix, 4) == _brute(small, h, prefix, 4)
+
+
+def test_mixture_file_layout_as_documented(tmp_path: Path) -> None:
+    """docs/FORMAT.md §13.2, read with msgpack alone (no nextword code reads the file here)."""
+    import hashlib
+
+    import msgpack
+
+    lines = _real_lines()
+    nextword.train_texts(lines[:300], tmp_path / "general.nwm", min_count=1)
+    nextword.train_texts(lines[300:400], tmp_path / "ferry.nwm", min_count=1)
+    write_mix(tmp_path / "ferry.nwx", [tmp_path / "general.nwm", tmp_path / "ferry.nwm"], [0.3, 0.7])
+    raw = (tmp_path / "ferry.nwx").read_bytes()
+    assert raw[:8] == bytes.fromhex("894e57580d0a1a0a")
+    assert raw[8:9] == b"\x83" and raw[9:17] == bytes.fromhex("a776657273696f6e") and raw[17:20] == bytes.fromhex("920100")
+    assert raw[20:26] == bytes.fromhex("a57061727473") and raw[26:27] == b"\x92"
+    assert raw[27:45] == bytes.fromhex("83a470617468ab67656e6572616c2e6e776d")
+    assert raw.endswith(bytes.fromhex("a7776569676874739" "2cb3fd3333333333333cb3fe6666666666666"))
+    body = msgpack.unpackb(raw[8:], raw=False)
+    assert list(body) == ["version", "parts", "weights"]
+    for part in body["parts"]:
+        data = (tmp_path / part["path"]).read_bytes()
+        assert part["bytes"] == len(data) and part["sha256"] == hashlib.sha256(data).hexdigest()
