@@ -39,7 +39,8 @@ from typing import NoReturn, Sequence
 
 import nextword
 from nextword.errors import InvalidArgumentError, NextwordError
-from nextword.model import Model, Suggestion
+from nextword.mix import Predictor, open_any
+from nextword.model import Suggestion
 from nextword.personal import PersonalLayer
 from nextword.text import parse_typed
 
@@ -130,7 +131,7 @@ class TypingBox:
     def __init__(
         self,
         master: tk.Misc,
-        model: Model,
+        model: Predictor,
         *,
         layer: PersonalLayer | None = None,
         k: int = 3,
@@ -338,7 +339,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         else:
             model_path, trained = prepare_model(cache)
             print(f"{'trained' if trained else 'using cached'} demo model {model_path}", file=sys.stderr)
-        model = nextword.load(model_path)
+        model = open_any(model_path)  # a model file or a mixture (.nwx)
         layer_path = Path(args.user_layer) if args.user_layer else cache / LAYER_NAME
         layer_path.parent.mkdir(parents=True, exist_ok=True)
         layer = PersonalLayer.open(model, layer_path, create=True)

@@ -8,6 +8,7 @@ from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, CountBuilder, CountTab
 from .errors import InputDataError, InvalidArgumentError, LayerNotFoundError, ModelFormatError, NextwordError
 from .build import DEFAULT_LAMBDA, TrainReport, train, train_texts
 from .model import Model, Suggestion, load
+from .mix import MixedModel, load_mix
 
 __version__ = "0.1.0"
 
@@ -20,6 +21,7 @@ __all__ = [
     "InputDataError",
     "InvalidArgumentError",
     "LayerNotFoundError",
+    "MixedModel",
     "Model",
     "ModelFormatError",
     "NextwordError",
@@ -27,6 +29,7 @@ __all__ = [
     "TrainReport",
     "__version__",
     "load",
+    "load_mix",
     "train",
     "train_texts",
 ]
