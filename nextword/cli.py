@@ -356,8 +356,8 @@ def _parser() -> _Parser:
                     help="the mixture file to write (atomically; it names its parts by relative path, with their size and SHA-256)")
     how = mx.add_mutually_exclusive_group(required=True)
     how.add_argument("--heldout", nargs="+", metavar="HELDOUT",
-                     help="fit the weights by EM on this held-out text (the domain's, never its test text)")
-    how.add_argument("--weights", nargs="+", type=float, metavar="W", help="use these weights, one per part, each >= 0, summing to 1")
+                     help="fit the weights by EM on this held-out text (the domain's, never its test text); one of --heldout and --weights is required (default: none)")
+    how.add_argument("--weights", nargs="+", type=float, metavar="W", help="use these weights, one per part, each >= 0, summing to 1 (default: none)")
     mx.add_argument("--format", choices=FORMATS, default="auto", help=_FORMAT_HELP)
     mx.add_argument("--field", default="text", help="JSON Lines field holding the message (default %(default)s)")
     mx.add_argument("--json", action="store_true", help="print the result as JSON")
