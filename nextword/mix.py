@@ -206,8 +206,8 @@ class MixedModel:
         keys = self._keys
         if keys is None:
             merged: set[str] = set()
-            for p in self.parts:
-                merged.update(p.word_keys())
+            for ks in self._part_keys:
+                merged.update(ks)
             keys = self._keys = sorted(merged)
         return keys
 
