@@ -60,6 +60,10 @@ static int is_sentence_end(uint32_t cp) {
     return 0;
 }
 static int is_joiner(uint32_t cp) { return cp == '\'' || cp == 0x2019 || cp == '-' || cp == 0x2010 || cp == 0x2011; }
+/* `ch in text._JOINERS` in _parse_tail: that Python string also holds the backslash that
+ * escapes the hyphen inside the regex class, so a word followed by a typed "\\" is a prefix
+ * there too (mirrored here; the regex's joiners above have no backslash). */
+static int in_joiners_string(uint32_t cp) { return is_joiner(cp) || cp == '\\'; }
 
 int nw_is_lower(uint32_t cp) { return cat_of(cp) == UTF8PROC_CATEGORY_LL || in_ranges(nw_other_lower, COUNT(nw_other_lower), cp); }
 int nw_is_upper(uint32_t cp) { return cat_of(cp) == UTF8PROC_CATEGORY_LU || in_ranges(nw_other_upper, COUNT(nw_other_upper), cp); }
@@ -226,7 +230,7 @@ static int parse_tail(const uint8_t *text, size_t len, size_t window, int final,
             out->prefix_s = last.start;
             out->prefix_e = last.end;
             nt--;
-        } else if (last.group == NW_TOK_OTHER && is_joiner((uint32_t)cps[last.start]) && last.end == L && nt >= 2 &&
+        } else if (last.group == NW_TOK_OTHER && in_joiners_string((uint32_t)cps[last.start]) && last.end == L && nt >= 2 &&
                    toks[nt - 2].group == NW_TOK_WORD && toks[nt - 2].end == last.start) {
             out->prefix_s = toks[nt - 2].start;
             out->prefix_e = last.end;
