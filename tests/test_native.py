@@ -399,7 +399,7 @@ def _sections(data: bytes) -> dict[bytes, tuple[int, int]]:
 
 @pytest.fixture(scope="module")
 def fuzz_driver(build_dir: Path) -> Path:
-    _make(build_dir, "fuzz", timeout=600)
+    _make(build_dir, "fuzz", "ZLIB=0", timeout=600)  # also exercises the built-in CRC-32 under the sanitizers
     return build_dir / "nwfuzz"
 
 
@@ -480,3 +480,21 @@ def test_fuzz_random_mutations_under_sanitizers(fuzz_driver: Path, hostile_seeds
                           timeout=300)
     assert proc.returncode == 0, proc.stderr[-3000:]
     assert "iterations" in proc.stdout
+
+
+@pytest.mark.parametrize("name", ["jm2", "kn3"])
+def test_no_heap_allocation_per_query_and_threads_share_a_model(build_dir: Path, models: dict[str, Path],
+                                                                corpus: tuple[list[str], list[str]], tmp_path: Path,
+                                                                name: str) -> None:
+    # native/tools/nwcheck.c counts malloc/calloc/realloc/free around 500 queries (after a first
+    # pass) and runs 4 threads on one model, each of which must give the single-thread answers
+    _make(build_dir, "check-tools")
+    queries = tmp_path / "q.txt"
+    queries.write_text("".join(t.replace("\n", " ") + "\n" for t, _ in _queries(corpus[1], 500, seed=2)), encoding="utf-8")
+    tool = str(build_dir / "nwcheck")
+    proc = subprocess.run([tool, "--alloc", str(models[name]), str(queries)], capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    assert '"allocations": 0' in proc.stdout
+    proc = subprocess.run([tool, "--threads", "4", str(models[name]), str(queries)], capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    assert '"threads_differing": 0' in proc.stdout

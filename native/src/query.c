@@ -580,7 +580,7 @@ nw_status nw_suggest(nw_session *s, const char *text, size_t len, int k, nw_sugg
         int kinds[2] = {ctx.before_kind, ctx.prev_kind};
         int32_t ss[2] = {ctx.before_s, ctx.prev_s}, ee[2] = {ctx.before_e, ctx.prev_e};
         for (int q = 0; q < 2; q++) {
-            uint32_t id;
+            uint32_t id = 0;
             if (kinds[q] == NW_CTX_BOS) id = bos;
             else if (kinds[q] == NW_CTX_UNK) id = unk;
             else if ((st = word_id_cps(s, s->cps, ss[q], ee[q], &id, err))) return st;
