@@ -498,3 +498,49 @@ def test_no_heap_allocation_per_query_and_threads_share_a_model(build_dir: Path,
     proc = subprocess.run([tool, "--threads", "4", str(models[name]), str(queries)], capture_output=True, text=True, timeout=120)
     assert proc.returncode == 0, proc.stdout + proc.stderr
     assert '"threads_differing": 0' in proc.stdout
+
+
+def test_cmake_build(models: dict[str, Path], tmp_path: Path) -> None:
+    # the CMake build (the one Android's NDK uses) builds warning-free and answers like the Makefile's
+    if shutil.which("cmake") is None:
+        _unavailable("cmake is missing (Debian: cmake)")
+    build = tmp_path / "cmake"
+    for cmd in (["cmake", "-S", str(NATIVE), "-B", str(build)], ["cmake", "--build", str(build), "--target", "nwsuggest"]):
+        proc = subprocess.run(cmd, capture_output=True, text=True, timeout=300)
+        assert proc.returncode == 0, proc.stdout[-3000:] + proc.stderr[-3000:]
+    model = nextword.load(models["kn3"])
+    for typed in ("The ", "the m", "Return the v"):
+        proc = subprocess.run([str(build / "nwsuggest"), "--json", "-k", "5", str(models["kn3"]), typed],
+                              capture_output=True, text=True, timeout=60)
+        import json
+
+        got = json.loads(proc.stdout)
+        assert [(g["word"], g["prob"]) for g in got] == [(s.word, s.prob) for s in model.suggest(typed, 5)]
+
+
+def test_jni_shim_from_java(build_dir: Path, models: dict[str, Path], tmp_path: Path) -> None:
+    # examples/jni: the C shim compiled against the JDK's headers and called from Java
+    # (org/example/nextword/Demo.java); the Kotlin sketch declares the same native methods
+    javac, java = shutil.which("javac"), shutil.which("java")
+    if javac is None or java is None:
+        pytest.skip("no JDK here (javac/java): the JNI example is not compiled")
+    jdk = Path(os.path.realpath(javac)).parent.parent
+    if not (jdk / "include" / "jni.h").exists():
+        pytest.skip(f"no JNI headers under {jdk}")
+    jni = ROOT / "examples" / "jni"
+    lib = tmp_path / "libnextword_jni.so"
+    subprocess.run(["cc", "-shared", "-fPIC", "-Wall", "-Wextra", "-Werror", f"-I{jdk}/include", f"-I{jdk}/include/linux",
+                    f"-I{NATIVE}/include", str(jni / "nextword_jni.c"), str(build_dir / "libnextword.a"),
+                    "-lmarisa", "-lutf8proc", "-lz", "-lstdc++", "-o", str(lib)], check=True, timeout=120)
+    subprocess.run([javac, "-d", str(tmp_path / "classes"), *map(str, (jni / "org/example/nextword").glob("*.java"))],
+                   check=True, timeout=120)
+    typed = ["The ", "the m", "Return the v", "If x is ", ""]
+    proc = subprocess.run([java, f"-Dnextword.jni={lib}", "-cp", str(tmp_path / "classes"), "org.example.nextword.Demo",
+                           str(models["kn3"]), *typed], capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stderr
+    model = nextword.load(models["kn3"])
+    for line, t in zip(proc.stdout.splitlines(), typed):
+        got = [(w, float(p)) for w, p in (item.rsplit(" ", 1) for item in line.split("\t"))]
+        want = [(s.word, s.prob) for s in model.suggest(t, 3)]
+        assert [w for w, _ in got] == [w for w, _ in want]
+        assert all(p == pytest.approx(q, rel=1e-15) for (_, p), (_, q) in zip(got, want))
