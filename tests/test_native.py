@@ -300,9 +300,10 @@ def test_worked_example_of_the_format_document(native: Native, tmp_path: Path) -
 # -- text rules: code point by code point against Python ----------------------------------------
 
 # Python 3.11's unicodedata is Unicode 14.0; utf8proc 2.8 is Unicode 15.0. The comparison skips
-# code points unassigned in Python's version (new in 15.0) and those whose category changed.
+# the code points unassigned in Python's version (4,489 are new in 15.0) and any whose category
+# differs between the two (none today). utf8proc's enum order (utf8proc.h) for the category check:
 _CATS = {"Lu": 1, "Ll": 2, "Lt": 3, "Lm": 4, "Lo": 5, "Mn": 6, "Mc": 7, "Me": 8, "Nd": 9, "Nl": 10, "No": 11,
-         "Pc": 12, "Pd": 13, "Ps": 14, "Pe": 15, "Pi": 16, "Pf": 17, "Po": 18, "Sm": 19, "Sk": 20, "Sc": 21,
+         "Pc": 12, "Pd": 13, "Ps": 14, "Pe": 15, "Pi": 16, "Pf": 17, "Po": 18, "Sm": 19, "Sc": 20, "Sk": 21,
          "So": 22, "Zs": 23, "Zl": 24, "Zp": 25, "Cc": 26, "Cf": 27, "Cs": 28, "Co": 29, "Cn": 0}
 
 
@@ -333,7 +334,7 @@ def test_character_classes_equal_pythons(native: Native) -> None:
         n = native.lib.nw_char_upper(c, up)
         assert "".join(chr(up[i]) for i in range(n)) == ch.upper(), hex(c)
         checked += 1
-    assert checked > 250_000
+    assert checked > 280_000
 
 
 def test_fold_equals_python(native: Native) -> None:
