@@ -32,7 +32,7 @@ import nextword
 from nextword import text as nwtext
 from nextword.evaluate import is_held_out
 from nextword.prune import prune_model
-from nextword.store import ENTRY, HEADER, atomic_write
+from nextword.store import ENTRY, HEADER, atomic_write, rewrite_model
 
 ROOT = Path(__file__).resolve().parent.parent
 NATIVE = ROOT / "native"
@@ -189,6 +189,8 @@ def models(corpus: tuple[list[str], list[str]], tmp_path_factory: pytest.TempPat
         chunks, _ = prune_model(m, int(out[name].stat().st_size * 0.6))
         out[f"{name}-pruned"] = d / f"{name}-pruned.nwm"
         atomic_write(out[f"{name}-pruned"], chunks)
+    out["jm2-buckets"] = d / "jm2-buckets.nwm"  # format 1.1: λ by history count
+    rewrite_model(out["jm2"], out["jm2-buckets"], lam=0.8, buckets={"bounds": [3, 30, 300], "lambdas": [0.3, 0.6, 0.85, 0.95]})
     return out
 
 
@@ -222,13 +224,15 @@ def _same(ours: list[tuple[str, float]], theirs: list[Any]) -> bool:
     )
 
 
-@pytest.mark.parametrize("name", ["jm2", "kn2", "jm3", "kn3", "jm2-pruned", "kn3-pruned"])
+FILES = ["jm2", "kn2", "jm3", "kn3", "jm2-pruned", "kn3-pruned", "jm2-buckets"]
+
+
+@pytest.mark.parametrize("name", FILES)
 def test_suggest_equals_python_on_held_out_queries(native: Native, models: dict[str, Path],
                                                      corpus: tuple[list[str], list[str]], name: str) -> None:
-    # reference: nextword.Model.suggest on the same file; 2,000 queries x 6 files = 12,000
+    # reference: nextword.Model.suggest on the same file; 2,000 queries x 7 files = 14,000
     model = nextword.load(models[name])
-    if name.endswith("pruned"):
-        assert model.format_version in ((1, 2), (1, 4))
+    assert model.format_version == {"jm2": (1, 0), "jm2-pruned": (1, 2), "jm2-buckets": (1, 1)}.get(name, (1, 4))
     code, msg, m = native.open(models[name])
     assert code == 0, msg
     s = native.session(m)
@@ -249,7 +253,7 @@ def test_suggest_equals_python_on_held_out_queries(native: Native, models: dict[
         native.lib.nw_close(m)
 
 
-@pytest.mark.parametrize("name", ["jm2", "kn2", "jm3", "kn3", "jm2-pruned", "kn3-pruned"])
+@pytest.mark.parametrize("name", FILES)
 def test_prob_equals_python(native: Native, models: dict[str, Path], corpus: tuple[list[str], list[str]], name: str) -> None:
     # reference: nextword.Model.prob_after (every history form: start, <unk>, one or two words)
     model = nextword.load(models[name])
@@ -360,6 +364,34 @@ def test_parse_typed_equals_python(native: Native) -> None:
         typed = "".join(parts)
         ctx = nwtext.parse_typed(typed)
         assert native.parse(typed) == (ctx.history, ctx.prefix), repr(typed)
+
+
+def test_unknown_versions_and_codecs_are_refused_by_name(native: Native, models: dict[str, Path], tmp_path: Path) -> None:
+    # docs/FORMAT.md §3 and §7.11: 1.3, 1.5 and 2.0 are refused (NW_E_VERSION), as is a codec name
+    # or version the library does not know (NW_E_UNSUPPORTED); never read as something else
+    data = models["kn3"].read_bytes()
+    cases = {"1.3": (4, "1.3"), "1.5": (4, "1.5"), "2.4": (4, "2.4")}
+    for version, (want, says) in cases.items():
+        buf = bytearray(data)
+        struct.pack_into("<HH", buf, 8, *map(int, version.split(".")))
+        _recrc(buf)
+        (tmp_path / "v.nwm").write_bytes(bytes(buf))
+        with pytest.raises(nextword.ModelFormatError):
+            nextword.load(tmp_path / "v.nwm")
+        code, msg, _ = native.open(tmp_path / "v.nwm")
+        assert code == want and says in msg, (version, code, msg)
+    off, length = _sections(data)[b"META"]
+    meta = data[off : off + length]
+    for old, new in ((b"\xa5exact", b"\xa5quant"), (b"\xa7version\x01", b"\xa7version\x02")):
+        assert meta.count(old) == 1
+        buf = bytearray(data)
+        buf[off : off + length] = meta.replace(old, new)
+        _recrc(buf)
+        (tmp_path / "c.nwm").write_bytes(bytes(buf))
+        with pytest.raises(nextword.ModelFormatError):
+            nextword.load(tmp_path / "c.nwm")
+        code, msg, _ = native.open(tmp_path / "c.nwm")
+        assert code == 5 and "codec" in msg, (new, code, msg)
 
 
 def test_bad_arguments_are_refused(native: Native, models: dict[str, Path]) -> None:

@@ -72,9 +72,11 @@ JNIEXPORT jbyteArray JNICALL Java_org_example_nextword_NextwordNative_suggest(JN
         return NULL;
     }
     jsize n = (*env)->GetArrayLength(env, text);
-    /* the library reads at most the last 256 characters: pass at most the last 1,024 bytes */
-    jsize from = n > 1024 ? n - 1024 : 0;
-    char in[1024];
+    /* the library reads at most the last 256 characters (4 bytes each at most): the last 1,032
+     * bytes hold them and at least one more character when the text has more, so the library
+     * still sees that the text was cut */
+    jsize from = n > 1032 ? n - 1032 : 0;
+    char in[1032];
     (*env)->GetByteArrayRegion(env, text, from, n - from, (jbyte *)in);
     size_t start = 0;
     while (start < (size_t)(n - from) && ((unsigned char)in[start] & 0xC0) == 0x80) start++; /* a whole character */

@@ -110,7 +110,8 @@ NW_API const char *nw_status_name(nw_status status);
 
 /* ---- text rules, exposed for tests and for callers that cut text themselves ---------- */
 
-/* key(word) of docs/FORMAT.md §9.1 (NFC(casefold(word)) with ’ → ' and ‐ ‑ → -) into out. */
+/* key(word) of docs/FORMAT.md §9.1 (NFC(casefold(word)) with ’ → ' and ‐ ‑ → -) into out.
+ * (A helper, not a query: it allocates a scratch buffer.) */
 NW_API nw_status nw_fold(const char *word, size_t len, char *out, size_t cap, size_t *out_len);
 
 /* What parse_typed finds at the end of text: kinds 0 = word (span of the NFC tail in
