@@ -27,6 +27,8 @@ from pathlib import Path
 from typing import Any, Iterator
 
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
 import nextword
 from nextword import text as nwtext
@@ -276,6 +278,42 @@ def test_prob_equals_python(native: Native, models: dict[str, Path], corpus: tup
     finally:
         native.lib.nw_session_free(s)
         native.lib.nw_close(m)
+
+
+_PIECES = ["the ", "The ", "THE ", "of ", "a", "re", "x", " ", ". ", "! ", "\n", ", ", "42 ", "3.5", "#", "don't ", "É",
+           "ß", "e\u0301", "Return ", "value", "-", "’", "\\", "  ", "is ", "in", "( ", "zq"]
+
+
+@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(parts=st.lists(st.sampled_from(_PIECES), max_size=30), k=st.integers(1, 12), name=st.sampled_from(["jm2", "kn3"]))
+def test_any_typed_text_gets_pythons_answer(native: Native, models: dict[str, Path], parts: list[str], k: int,
+                                            name: str) -> None:
+    # property: for any typed text (words, numbers, symbols, casing, sentence ends, joiners,
+    # combining marks), the C answer is Model.suggest's, words and probabilities
+    typed = "".join(parts)
+    model = _loaded(models[name])
+    code, m = _opened(native, models[name])
+    code, ours = native.suggest(m, typed, k)
+    assert code == 0
+    assert _same(ours, model.suggest(typed, k)), (typed, ours, model.suggest(typed, k))
+
+
+_CACHE: dict[Any, Any] = {}
+
+
+def _loaded(path: Path) -> nextword.Model:
+    if ("py", path) not in _CACHE:
+        _CACHE["py", path] = nextword.load(path)
+    return _CACHE["py", path]  # type: ignore[no-any-return]
+
+
+def _opened(native: Native, path: Path) -> tuple[int, Any]:
+    """A session on the C model of ``path``, opened once and kept for the rest of the test run."""
+    if ("c", path) not in _CACHE:
+        code, msg, m = native.open(path)
+        assert code == 0, msg
+        _CACHE["c", path] = (m, native.session(m))
+    return 0, _CACHE["c", path][1]
 
 
 def test_worked_example_of_the_format_document(native: Native, tmp_path: Path) -> None:

@@ -6,6 +6,7 @@
 #define _POSIX_C_SOURCE 200809L
 #include <errno.h>
 #include <fcntl.h>
+#include <pthread.h>
 #include <stdarg.h>
 #include <stdio.h>
 #include <stdlib.h>
@@ -52,17 +53,14 @@ static void crc_init(void) {
         for (int t = 1; t < 8; t++) crc_table[t][i] = (crc_table[t - 1][i] >> 8) ^ crc_table[0][crc_table[t - 1][i] & 0xff];
 }
 static void crc_once(void) {
-    /* a benign race: every thread computes the same table */
-    static volatile int ready = 0;
-    if (!ready) {
-        crc_init();
-        __atomic_store_n(&ready, 1, __ATOMIC_RELEASE);
-    }
+    static pthread_once_t once = PTHREAD_ONCE_INIT;
+    pthread_once(&once, crc_init);
 }
 #endif
+
 uint32_t nw_crc32(const uint8_t *p, size_t n) {
 #ifdef NW_ZLIB
-    /* zlib's CRC-32 is the reference (§1) and about 20% faster than the tables below */
+    /* zlib's CRC-32 is the reference (§1) and about 20% faster than the tables above */
     uLong c = crc32(0L, Z_NULL, 0);
     while (n) {
         uInt part = n > 0x40000000u ? 0x40000000u : (uInt)n;
