@@ -571,6 +571,22 @@ def test_no_heap_allocation_per_query_and_threads_share_a_model(build_dir: Path,
     assert '"threads_differing": 0' in proc.stdout
 
 
+def test_command_line(build_dir: Path, models: dict[str, Path], tmp_path: Path) -> None:
+    # nwsuggest: answers as Model.suggest; errors are one line on stderr, exit 2 for usage, 1 for data
+    import json
+
+    tool = str(build_dir / "nwsuggest")
+    proc = subprocess.run([tool, "--json", "-k", "4", str(models["jm3"]), "Return", "the", "v"], capture_output=True, text=True)
+    want = [(s.word, s.prob) for s in nextword.load(models["jm3"]).suggest("Return the v", 4)]
+    assert proc.returncode == 0 and [(g["word"], g["prob"]) for g in json.loads(proc.stdout)] == want
+    (tmp_path / "short.nwm").write_bytes(models["jm3"].read_bytes()[:100])
+    for args, rc, says in (([], 2, "MODEL is required"), (["-k", "0", str(models["jm3"]), "a"], 2, "k must be"),
+                           ([str(tmp_path / "short.nwm"), "a"], 1, "truncated"), ([str(tmp_path / "none.nwm")], 1, "cannot open")):
+        proc = subprocess.run([tool, *args], capture_output=True, text=True)
+        assert proc.returncode == rc and proc.stderr.count("\n") == 1 and proc.stderr.startswith("nwsuggest: error: ")
+        assert says in proc.stderr
+
+
 def test_cmake_build(models: dict[str, Path], tmp_path: Path) -> None:
     # the CMake build (the one Android's NDK uses) builds warning-free and answers like the Makefile's
     if shutil.which("cmake") is None:

@@ -14,8 +14,7 @@
 #include "nextword.h"
 
 static int usage(const char *why) {
-    fprintf(stderr, "nwsuggest: error: %s\nusage: nwsuggest [-k K] [--json] MODEL TEXT...\n"
-                    "       nwsuggest --bench [-k K] MODEL QUERIES\n", why);
+    fprintf(stderr, "nwsuggest: error: %s (usage: nwsuggest [-k K] [--json] MODEL TEXT... | nwsuggest --bench [-k K] MODEL QUERIES)\n", why);
     return 2;
 }
 
