@@ -284,10 +284,8 @@ static nw_status read_meta(nw_model *m, const uint8_t *p, size_t n, uint64_t siz
 }
 
 /* format 1.4 fields and the optional sections each kind has (store._check_model_kind) */
-static nw_status read_kind(nw_model *m, const meta_view *mv, const sec *secs, nw_error *err) {
+static nw_status read_kind(nw_model *m, const meta_view *mv, nw_error *err) {
     nw_mpv v;
-    int has[N_SPECS];
-    for (int i = 0; i < N_SPECS; i++) has[i] = secs[i].present;
     if (m->minor < 3) {
         int bad = 0;
         if (field(mv, F_ESTIMATOR, &v) == 1 && !nw_mp_str_eq(&v, "jm")) bad = 1;
@@ -373,7 +371,6 @@ static nw_status read_kind(nw_model *m, const meta_view *mv, const sec *secs, nw
             return nw_fail(err, NW_E_FORMAT, "metadata field 'lambda3' is invalid");
         if (m->lam3 > MAX_LAMBDA) m->lam3 = MAX_LAMBDA;
     }
-    (void)has;
     return NW_OK;
 }
 
@@ -624,7 +621,7 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
     meta_view mv;
     nw_status st;
     if ((st = read_meta(m, buf + meta->off, meta->len, size, &mv, err))) return st;
-    if ((st = read_kind(m, &mv, secs, err))) return st;
+    if ((st = read_kind(m, &mv, err))) return st;
     if (m->minor >= 3) {
         /* exactly the optional sections of the file's kind */
         for (int i = N_REQUIRED; i < N_SPECS; i++) {
