@@ -1,0 +1,166 @@
+"""The native C runtime (native/) against the Python library, side by side in one run.
+
+On the 5M-word corpus (``bench/data/{train,test}.txt`` from ``prepare_corpus.py``) a JM bigram
+(the defaults) and a KN trigram are trained with ``nextword.build.train``; the first
+``--queries`` typed texts of the held-out part (the keystroke simulation's own queries,
+``baselines.sample_queries``) are answered by ``Model.suggest`` and by the C library
+(``nwsuggest --bench``, which times each call with a monotonic clock in the same process as
+the library), in this one run, on the same files. Also: open time (mmap + every load-time
+check, median of 21 opens) against ``nextword.load``, the RSS of the C process with the
+model open after all queries, and the answers compared word for word.
+
+    python bench/prepare_corpus.py && python bench/bench_native.py
+
+Targets (issue 16): C p50/p99 ≤ 5/20 µs and ≥ 5× faster than Python in the same run; open ≤ 1 ms.
+"""
+
+from __future__ import annotations
+
+import argparse
+import ctypes
+import json
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+HERE = Path(__file__).resolve().parent
+ROOT = HERE.parent
+sys.path.insert(0, str(HERE))
+
+from bench_core import machine, publish  # noqa: E402
+
+import nextword  # noqa: E402
+from nextword.baselines import sample_queries, time_queries  # noqa: E402
+
+DATA = HERE / "data"
+MODELS: tuple[tuple[str, dict[str, Any]], ...] = (
+    ("JM bigram (defaults)", {}),
+    ("KN trigram", {"order": 3, "smoothing": "kn"}),
+)
+
+
+def figure_files(data: Path = DATA) -> dict[str, tuple[list[Path], list[Path]]]:
+    """The figures this script publishes: the models' training file and the held-out file of the queries."""
+    return {"native: 5M-word models, queries from held-out text": ([data / "train.txt"], [data / "test.txt"])}
+
+
+def _percentile(xs: list[float], q: float) -> float:
+    s = sorted(xs)
+    return s[min(len(s) - 1, int(len(s) * q))]
+
+
+def build(out: Path) -> Path:
+    """The library and nwsuggest, from source (native/Makefile)."""
+    subprocess.run(["make", "-s", "-C", str(ROOT / "native"), f"BUILD={out}"], check=True, capture_output=True)
+    return out
+
+
+def same_answers(lib_path: Path, model_path: Path, model: nextword.Model, queries: list[str], k: int) -> int:
+    """How many queries the C library answers exactly as Model.suggest (words and probabilities)."""
+    lib = ctypes.CDLL(str(lib_path))
+
+    class Sugg(ctypes.Structure):
+        _fields_ = [("word", ctypes.c_char_p), ("len", ctypes.c_size_t), ("prob", ctypes.c_double)]
+
+    m, s = ctypes.c_void_p(), ctypes.c_void_p()
+    assert lib.nw_open(str(model_path).encode(), ctypes.byref(m), None) == 0
+    assert lib.nw_session_new(m, ctypes.byref(s), None) == 0
+    out, buf, n = (Sugg * 64)(), ctypes.create_string_buffer(1 << 14), ctypes.c_size_t()
+    same = 0
+    for q in queries:
+        data = q.encode()
+        lib.nw_suggest(s, data, ctypes.c_size_t(len(data)), k, out, ctypes.byref(n), buf, ctypes.c_size_t(len(buf)), None)
+        ours = [(out[i].word[: out[i].len].decode(), out[i].prob) for i in range(n.value)]
+        same += ours == [(x.word, x.prob) for x in model.suggest(q, k)]
+    lib.nw_session_free(s)
+    lib.nw_close(m)
+    return same
+
+
+def measure(label: str, kw: dict[str, Any], train: Path, queries: list[str], qfile: Path, tools: Path, tmp: Path,
+            k: int, rounds: int) -> dict[str, Any]:
+    path = tmp / "model.nwm"
+    nextword.train(train, path, **kw)
+    loads = []
+    for _ in range(21):
+        t0 = time.perf_counter()
+        model = nextword.load(path)
+        loads.append(time.perf_counter() - t0)
+    for q in queries:  # warm, as the C side's first round
+        model.suggest(q, k)
+    py = [time_queries(lambda q: model.suggest(q, k), queries) for _ in range(rounds)]
+    c = []
+    for _ in range(rounds):
+        proc = subprocess.run([str(tools / "nwsuggest"), "--bench", "-k", str(k), str(path), str(qfile)],
+                              capture_output=True, text=True, check=True)
+        c.append(json.loads(proc.stdout))
+    py_p50 = statistics.median(_percentile(t, 0.5) * 1e6 for t in py)
+    py_p99 = statistics.median(_percentile(t, 0.99) * 1e6 for t in py)
+    c_p50 = statistics.median(r["p50_us"] for r in c)
+    c_p99 = statistics.median(r["p99_us"] for r in c)
+    info = model.info()
+    return {
+        "label": label, "file_bytes": path.stat().st_size, "version": info["format_version"],
+        "py_p50": py_p50, "py_p99": py_p99, "c_p50": c_p50, "c_p99": c_p99, "c_max": statistics.median(r["max_us"] for r in c),
+        "c_open_ms": statistics.median(r["open_ms"] for r in c), "py_load_ms": statistics.median(loads) * 1e3,
+        "rss_kb": statistics.median(r["rss_kb"] for r in c), "rss_before_kb": statistics.median(r["rss_kb_before_open"] for r in c),
+        "same": same_answers(tools / "libnextword.so", path, model, queries, k), "queries": len(queries),
+    }
+
+
+def table(rows: list[dict[str, Any]]) -> str:
+    out = ["| model | file | C p50 / p99 / max | Python p50 / p99 | speed-up p50 / p99 | C open (median of 21) | "
+           "Python load | RSS of the C process (before open → model open, all queries asked) | same answers |",
+           "|---|---|---|---|---|---|---|---|---|"]
+    for r in rows:
+        out.append(
+            f"| {r['label']} | {r['file_bytes'] / 1e6:.2f} MB (format {r['version']}) | "
+            f"{r['c_p50']:.2f} / {r['c_p99']:.2f} / {r['c_max']:.0f} µs | {r['py_p50']:.1f} / {r['py_p99']:.1f} µs | "
+            f"{r['py_p50'] / r['c_p50']:.1f}× / {r['py_p99'] / r['c_p99']:.1f}× | {r['c_open_ms']:.3f} ms | "
+            f"{r['py_load_ms']:.3f} ms | {r['rss_before_kb'] / 1024:.1f} → {r['rss_kb'] / 1024:.1f} MB | "
+            f"{r['same']:,} of {r['queries']:,} |"
+        )
+    return "\n".join(out)
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description="the native C runtime against Model.suggest, side by side")
+    ap.add_argument("--queries", type=int, default=12000, help="held-out typed texts (default 12000)")
+    ap.add_argument("-k", type=int, default=3, help="suggestions per query (default 3)")
+    ap.add_argument("--rounds", type=int, default=3, help="timed rounds per side; medians reported (default 3)")
+    ap.add_argument("--data", type=Path, default=DATA, help="directory with train.txt and test.txt")
+    ap.add_argument("--no-results", action="store_true", help="do not edit bench/RESULTS.md")
+    args = ap.parse_args(argv)
+    train, test = args.data / "train.txt", args.data / "test.txt"
+    if not train.exists():
+        print("bench_native: run bench/prepare_corpus.py first", file=sys.stderr)
+        return 2
+    held = test.read_text(encoding="utf-8").splitlines()
+    queries = [q for q in sample_queries(held, args.queries) if "\n" not in q]
+    with tempfile.TemporaryDirectory(prefix="nextword-native-") as t:
+        tmp = Path(t)
+        tools = build(tmp / "build")
+        qfile = tmp / "queries.txt"
+        qfile.write_text("".join(q + "\n" for q in queries), encoding="utf-8")
+        rows = [measure(label, kw, train, queries, qfile, tools, tmp, args.k, args.rounds) for label, kw in MODELS]
+    md = f"""### Native C runtime against the Python library (`bench/bench_native.py`)
+
+Command: `python bench/prepare_corpus.py && python bench/bench_native.py` — {time.strftime('%Y-%m-%d')}
+Machine: {machine()} (shared; compare within the table). {len(queries):,} held-out typed texts
+(`baselines.sample_queries`), k = {args.k}, single calls, median of {args.rounds} rounds per side in this one run;
+C timed inside its process (`nwsuggest --bench`, built with native/Makefile, -O2), Python with `time_queries`.
+Targets: C p50/p99 ≤ 5/20 µs and ≥ 5× faster than Python; open (mmap + load-time checks) ≤ 1 ms; no heap
+allocation per query (tests/test_native.py counts them: 0).
+
+{table(rows)}
+"""
+    publish(md, "native", write=not args.no_results)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

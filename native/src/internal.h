@@ -1,0 +1,129 @@
+/* Internal declarations of the nextword native runtime (not part of the API). */
+#ifndef NW_INTERNAL_H
+#define NW_INTERNAL_H
+
+#include <stddef.h>
+#include <stdint.h>
+
+#ifdef __cplusplus
+extern "C" {
+#endif
+
+/* trie.cpp: libmarisa behind a C interface */
+void *nw_trie_map(const void *ptr, size_t len, size_t *n_keys);
+void nw_trie_free(void *trie);
+void *nw_cursor_new(void);
+void nw_cursor_free(void *cursor);
+/* trie key id of `key`, -1 if absent, -2 on a library error */
+long long nw_trie_lookup(const void *trie, void *cursor, const char *key, size_t len);
+/* the key of trie key id `key_id` (valid until the cursor's next use); 0 on success */
+int nw_trie_restore(const void *trie, void *cursor, size_t key_id, const char **key, size_t *len);
+
+#ifdef __cplusplus
+}
+#endif
+
+#ifndef __cplusplus
+#include <string.h>
+
+#include "nextword.h"
+
+/* One typed array inside the mapped file: n elements of w bytes (1, 2, 4), little-endian. */
+typedef struct nw_arr {
+    const uint8_t *p;
+    uint64_t n;
+    int w;
+} nw_arr;
+
+static inline uint32_t nw_at(const nw_arr *a, uint64_t i) {
+    const uint8_t *q = a->p + i * (uint64_t)a->w;
+    switch (a->w) {
+    case 1: return q[0];
+    case 2: return (uint32_t)q[0] | ((uint32_t)q[1] << 8);
+    default: return (uint32_t)q[0] | ((uint32_t)q[1] << 8) | ((uint32_t)q[2] << 16) | ((uint32_t)q[3] << 24);
+    }
+}
+
+/* first index in [lo, hi) with a[i] >= x (a sorted there; any order terminates) */
+static inline uint64_t nw_lower(const nw_arr *a, uint64_t lo, uint64_t hi, uint32_t x) {
+    while (lo < hi) {
+        uint64_t mid = lo + (hi - lo) / 2;
+        if (nw_at(a, mid) < x) lo = mid + 1; else hi = mid;
+    }
+    return lo;
+}
+
+/* The values of one n-gram level as its codec stores them (the one dispatch point). */
+typedef struct nw_level_values {
+    nw_arr small, esc_i, esc_v;
+    const char *tags;  /* e.g. "CNTS/BIGI/BIGC", for messages */
+} nw_level_values;
+
+struct nw_model;
+typedef struct nw_codec {
+    const char *name;
+    int version;
+    /* load-time checks of one level holding `n` values (lengths, escape table) */
+    int (*check)(const struct nw_model *m, const nw_level_values *lv, uint64_t n, nw_error *err);
+    /* value of n-gram i; 0 on success, -1 if the data is damaged */
+    int (*value)(const nw_level_values *lv, uint64_t i, uint64_t *out);
+} nw_codec;
+
+extern const nw_codec nw_codec_exact;
+
+#define NW_LEVELS_MAX 8
+
+struct nw_model {
+    uint8_t *map;
+    size_t map_len;
+    char path[256];
+    uint16_t major, minor;
+    uint32_t n;           /* vocabulary size */
+    uint64_t b, total, t, tctx;
+    int kn, order;
+    double lam, lam3;     /* stored, clamped to 0.999 */
+    int n_bounds;         /* λ buckets (format 1.1): bounds and one more λ */
+    uint64_t bounds[64];
+    double lambdas[65];
+    double d[3][3];       /* Kneser-Ney discounts per order */
+    uint32_t sky_k;
+    uint64_t sky_min, tsky_min, max_key;
+    const nw_codec *codec;
+    nw_arr TKID, IDTK, ALPH, APOS, KEY4, TOPK, UNIG, ROWS, SUCC, SEGS, SEGE, SKYP, SKYI, SKYC, DISI, DISO;
+    nw_arr HIST, HN13, HDRI, HDRV, TCTB, TSUC, TLNI, TLNV, TDRI, TDRV, TSGS, TSGE, TSKP, TSKI, TSKC;
+    nw_level_values v2, v3, tlen;
+    const uint8_t *disb;
+    uint64_t disb_len;
+    int has_hist;
+    void *trie;
+    int n_levels;
+    uint64_t level_off[NW_LEVELS_MAX]; /* first entry of each TOPK level */
+    uint64_t level_nb[NW_LEVELS_MAX];
+    double *floor;        /* P1 of ids 0 .. n+1 */
+};
+
+nw_status nw_fail(nw_error *err, nw_status code, const char *fmt, ...)
+#if defined(__GNUC__)
+    __attribute__((format(printf, 3, 4)))
+#endif
+    ;
+
+uint32_t nw_crc32(const uint8_t *p, size_t n);
+
+/* c(v) as a history: HIST if stored, else derived from UNIG (§7.6) */
+static inline uint64_t nw_hist(const struct nw_model *m, uint32_t v) {
+    if (m->has_hist) return nw_at(&m->HIST, v);
+    if (v == m->n) return 0;
+    if (v == m->n + 2) return nw_at(&m->UNIG, m->n);
+    return nw_at(&m->UNIG, v);
+}
+
+/* text.c */
+size_t nw_utf8_encode(uint32_t cp, uint8_t out[4]);
+/* decode one code point of valid-or-not UTF-8; returns bytes used, 0 if invalid */
+size_t nw_utf8_decode(const uint8_t *p, size_t n, uint32_t *cp);
+int nw_is_lower(uint32_t cp);
+int nw_is_upper(uint32_t cp);
+int nw_is_title(uint32_t cp);
+#endif /* !__cplusplus */
+#endif
