@@ -61,7 +61,7 @@ BREAK: Final = 1
 END: Final = 2
 
 _SENTENCE_END_CHARS = ".!?…‼‽⁇⁈⁉。！？｡\n\r\u2028\u2029\u0085\x0b\x0c"
-_JOINERS = "'’\\-‐‑"
+_JOINERS = "'’-‐‑"  # a word may continue after one of these (apostrophes, hyphens)
 #: The one token pattern of the text rules. Its named groups: ``num`` (digits with internal
 #: ``. , :``), ``word`` (letters/digits joined by apostrophes or hyphens; a word only if
 #: :func:`is_word`, else a number), ``end`` (a run of sentence-end characters) and
@@ -71,7 +71,7 @@ _JOINERS = "'’\\-‐‑"
 #: the same matches, so every module cuts text alike.
 TOKEN_RE: Final = re.compile(
     r"(?P<num>\d+(?:[.,:]\d+)+)"
-    rf"|(?P<word>[^\W_]+(?:[{_JOINERS}][^\W_]+)*)"
+    rf"|(?P<word>[^\W_]+(?:[{re.escape(_JOINERS)}][^\W_]+)*)"
     rf"|(?P<end>[{re.escape(_SENTENCE_END_CHARS)}]+)"
     r"|(?P<other>[^\w\s])"
 )

@@ -145,3 +145,16 @@ def test_word_spans_are_the_words_of_sentences(parts: list[str]) -> None:
 def test_word_spans_example() -> None:
     # hand-checked: "5pm" is a word, "42" and "7:30" are numbers, "don't" one word
     assert word_spans("meet 5pm, 42 don't 7:30") == [(0, 4), (5, 8), (13, 18)]
+
+
+def test_a_backslash_after_a_word_is_not_a_joiner() -> None:
+    """Only apostrophes and hyphens join (the rules above); a trailing backslash is punctuation.
+
+    Found by the native runtime's comparison: the character class once held the regex
+    escape of the hyphen as a joiner of its own.
+    """
+    from nextword.text import parse_typed
+
+    assert parse_typed("One line\\").prefix == ""
+    assert parse_typed("One line\\").previous == "line"
+    assert parse_typed("well-").prefix == "well-"  # a real joiner still waits for the rest of the word

@@ -63,7 +63,7 @@ static int is_joiner(uint32_t cp) { return cp == '\'' || cp == 0x2019 || cp == '
 /* `ch in text._JOINERS` in _parse_tail: that Python string also holds the backslash that
  * escapes the hyphen inside the regex class, so a word followed by a typed "\\" is a prefix
  * there too (mirrored here; the regex's joiners above have no backslash). */
-static int in_joiners_string(uint32_t cp) { return is_joiner(cp) || cp == '\\'; }
+static int in_joiners_string(uint32_t cp) { return is_joiner(cp); }
 
 int nw_is_lower(uint32_t cp) { return cat_of(cp) == UTF8PROC_CATEGORY_LL || in_ranges(nw_other_lower, COUNT(nw_other_lower), cp); }
 int nw_is_upper(uint32_t cp) { return cat_of(cp) == UTF8PROC_CATEGORY_LU || in_ranges(nw_other_upper, COUNT(nw_other_upper), cp); }
