@@ -37,7 +37,7 @@ import sys
 import tempfile
 import time
 from pathlib import Path
-from typing import Any
+from typing import Any, Mapping
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
@@ -59,12 +59,18 @@ def _lines(path: Path) -> list[str]:
     return [ln.rstrip("\n") for ln in path.open(encoding="utf-8") if ln.strip()]
 
 
-def prepare(out: Path = OUT) -> dict[str, Path]:
+def figure_files(out: Path = OUT) -> dict[str, tuple[list[Path], list[Path]]]:
+    """Each figure this script publishes: (the text its models were trained or tuned on, its held-out files)."""
+    trained = [out / "domain-train.txt", out / "domain-tune.txt", out / "general-train.txt", out / "concatenated-train.txt"]
+    return {"mix: every row, on the domain's held-out part": (trained, [out / "domain-test.txt"])}
+
+
+def prepare(out: Path = OUT, *, dicts: Mapping[str, Path] = DICTS, fortunes: Path = FORTUNES) -> dict[str, Path]:
     """Write the domain's train/tune/test parts and the general training text; return their paths."""
     out.mkdir(parents=True, exist_ok=True)
     domain = out / "fortunes.txt"
     with open(domain, "w", encoding="utf-8") as f:
-        for _, msg in messages(dicts={}, fortunes=FORTUNES):
+        for _, msg in messages(dicts={}, fortunes=fortunes):
             f.write(msg + "\n")
     paths = {name: out / f"domain-{name}.txt" for name in ("train", "tune", "test")}
     subprocess.run([sys.executable, "-m", "nextword", "split", str(domain), "--train-out", str(paths["train"]),
@@ -74,7 +80,7 @@ def prepare(out: Path = OUT) -> dict[str, Path]:
     general = out / "general-train.txt"
     kept = dropped = 0
     with open(general, "w", encoding="utf-8") as f:
-        for _, msg in messages(dicts=DICTS, fortunes=None):
+        for _, msg in messages(dicts=dicts, fortunes=None):
             if is_held_out(msg, TEST_PERCENT):
                 continue
             if msg in avoid:

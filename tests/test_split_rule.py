@@ -24,6 +24,7 @@ sys.path.insert(0, str(ROOT / "bench"))
 
 import bench_core  # noqa: E402
 import bench_eval  # noqa: E402
+import bench_mix  # noqa: E402
 import bench_models  # noqa: E402
 import bench_tune  # noqa: E402
 import prepare_corpus  # noqa: E402
@@ -65,6 +66,7 @@ def prepared(sources: tuple[dict[str, Path], Path, list[str]], tmp_path_factory:
     data, out = root / "data", root / "out" / "eval"
     prepare_corpus.prepare(data, dicts=dicts, fortunes=fortunes)
     bench_eval.split_fortunes(out, fortunes=fortunes)
+    bench_mix.prepare(root / "out" / "mix", dicts=dicts, fortunes=fortunes)
     return data, out
 
 
@@ -82,8 +84,8 @@ def test_synthetic_input_is_read_from_every_source(sources: tuple[dict[str, Path
 def test_no_held_out_message_of_any_figure_is_training_text(prepared: tuple[Path, Path]) -> None:
     data, out = prepared
     figures = {**bench_core.figure_files(data), **bench_eval.figure_files(data, out), **bench_tune.figure_files(out),
-               **bench_models.figure_files(data, out)}
-    assert len(figures) == 6
+               **bench_models.figure_files(data, out), **bench_mix.figure_files(out.parent / "mix")}
+    assert len(figures) == 7
     for name, (train, held_out) in figures.items():
         train_msgs, held = _lines(train), _lines(held_out)
         assert train_msgs and held, name
