@@ -219,6 +219,8 @@ def _parser() -> _Parser:
     t.add_argument("--memory-cap", metavar="SIZE", type=_size, help="bound the pair counts in memory, spilling to disk, e.g. 1GB (default: no bound)")
     t.add_argument("--max-size", metavar="SIZE", type=_size, help="prune n-grams (and words) until the file fits, e.g. 4MB; any --order and --smoothing (default: no budget)")
     t.add_argument("--rule", choices=("count", "entropy"), default=DEFAULT_RULE, help="pruning rule with --max-size (default %(default)s)")
+    t.add_argument("--quantize", metavar="BITS", type=int, choices=(2, 4, 8), default=None,
+                   help="store n-gram values as BITS-bit codes into a fitted codebook (2, 4 or 8; format 1.5, smaller file, top k still exact for its own probabilities; default: exact values)")
     t.add_argument("--json", action="store_true", help="print the training report as JSON")
 
     s = sub.add_parser("suggest", help="print suggestions for typed texts")
@@ -397,6 +399,7 @@ def _cmd_train(args: argparse.Namespace) -> int:
         prune_rule=args.rule,
         workers=args.workers,
         memory_cap=None if args.memory_cap is None else _size_arg(args.memory_cap),
+        quantize=args.quantize,
     )
     data = {
         "path": report.path,
