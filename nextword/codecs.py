@@ -199,12 +199,13 @@ class ExactCodec(Codec):
         return _ExactView(where, small, esc_i, esc_v)
 
 
-#: code widths the quantised codec offers: codes never straddle a byte, so a read is one
-#: byte, one shift and one mask (widths 3, 5, 6, 7 would need two-byte reads)
-QUANT_BITS: Final = (2, 4, 8)
-#: the width ``--quantize`` suggests (measured in bench/bench_quant.py: 4 bits keep the
-#: perplexity within 1% of the exact model on the benchmark corpus; see RESULTS.md)
-DEFAULT_QUANT_BITS: Final = 4
+#: code widths the quantised codec offers (2 at least: 1 and 2 keep codes of their own,
+#: and values >= 3 need one more); a code spans at most two bytes, so a read is one or two
+#: byte loads, a shift and a mask
+QUANT_BITS: Final = (2, 3, 4, 5, 6, 7, 8)
+#: the width ``--quantize`` suggests (measured by bench/bench_quant.py on the 5M-word corpus: 5 bits
+#: cost 0.4-0.5% perplexity against exact values, 4 bits 1.3-1.9%; see bench/RESULTS.md)
+DEFAULT_QUANT_BITS: Final = 5
 _LLOYD_ROUNDS: Final = 30
 
 
@@ -258,13 +259,24 @@ def fit_codebook(values: np.ndarray, bits: int, *, method: str = "lloyd") -> np.
 
 
 def _nearest(codebook: np.ndarray, values: np.ndarray) -> np.ndarray:
-    """Index of the codebook entry nearest each value in the log domain (ties to the smaller)."""
+    """Index of each value's codebook entry: 1 and 2 their own, a value ≥ 3 the nearest entry ≥ 3 in the log domain.
+
+    The nearest entry in the log domain is the bin Lloyd's step assigns (its boundaries
+    are the midpoints of neighbouring log centroids); ties go to the smaller entry.
+    """
     v = np.asarray(values, dtype=np.int64)
-    hi = np.minimum(np.searchsorted(codebook, v), len(codebook) - 1)
-    lo = np.maximum(hi - 1, 0)
-    lv = np.log(v.astype(np.float64))
-    take_lo = np.abs(lv - np.log(codebook[lo].astype(np.float64))) <= np.abs(np.log(codebook[hi].astype(np.float64)) - lv)
-    return np.where(take_lo, lo, hi)
+    out = np.searchsorted(codebook, v)  # exact for 1 and 2 (always in the codebook when present)
+    first = int(np.searchsorted(codebook, 3))
+    big = codebook[first:]
+    sel = np.flatnonzero(v >= 3)
+    if len(sel) and len(big):
+        x = v[sel]
+        hi = np.minimum(np.searchsorted(big, x), len(big) - 1)
+        lo = np.maximum(hi - 1, 0)
+        lv = np.log(x.astype(np.float64))
+        take_lo = np.abs(lv - np.log(big[lo].astype(np.float64))) <= np.abs(np.log(big[hi].astype(np.float64)) - lv)
+        out[sel] = first + np.where(take_lo, lo, hi)
+    return out
 
 
 class _QuantView(ValueView):
@@ -275,10 +287,9 @@ class _QuantView(ValueView):
         self._cb = codebook.astype(np.int64)
         self._cb_list: list[int] = self._cb.tolist()
         self._bits = bits
-        self._shift = {2: 2, 4: 1, 8: 0}[bits]  # log2(codes per byte)
-        self._low = (1 << self._shift) - 1
         self._mask = (1 << bits) - 1
         self._n = n
+        self._last = len(packed) - 1
 
     def _bad(self, code: int) -> ModelFormatError:
         return ModelFormatError(f"{self._where}: value code {code} past the codebook of {len(self._cb_list)} entries")
@@ -286,7 +297,12 @@ class _QuantView(ValueView):
     def at(self, i: int) -> int:
         if not 0 <= i < self._n:
             raise IndexError(i)
-        code = (self._mv[i >> self._shift] >> ((i & self._low) * self._bits)) & self._mask
+        bit = i * self._bits
+        sh = bit & 7
+        w = self._mv[bit >> 3]
+        if sh + self._bits > 8:
+            w |= self._mv[(bit >> 3) + 1] << 8
+        code = (w >> sh) & self._mask
         try:
             return self._cb_list[code]
         except IndexError:
@@ -296,7 +312,10 @@ class _QuantView(ValueView):
         idx = np.asarray(idx, dtype=np.int64)
         if len(idx) and (int(idx.min()) < 0 or int(idx.max()) >= self._n):
             raise IndexError("value index out of range")
-        c = (self._packed[idx >> self._shift].astype(np.int64) >> ((idx & self._low) * self._bits)) & self._mask
+        bit = idx * self._bits
+        at = bit >> 3
+        w = self._packed[at].astype(np.int64) | (self._packed[np.minimum(at + 1, self._last)].astype(np.int64) << 8)
+        c = (w >> (bit & 7)) & self._mask
         if len(c) and int(c.max()) >= len(self._cb):
             raise self._bad(int(c.max()))
         return c
@@ -317,9 +336,10 @@ class _QuantView(ValueView):
 class QuantCodec(Codec):
     """Values as ``bits``-bit codes into a per-level codebook of increasing integers.
 
-    Sections (tags of the level): ``tags[0]`` u1, the codes packed little-end first
-    (code i in byte ⌊i·bits/8⌋ at bit (i·bits) mod 8), ⌈n·bits/8⌉ bytes, unused high bits
-    of the last byte 0; ``tags[1]`` u4, the codebook (1 … 2**bits entries, strictly
+    Sections (tags of the level): ``tags[0]`` u1, the codes as one little-endian bit
+    stream (code i is bits i·bits … i·bits+bits−1, bit j of the stream being bit j mod 8
+    of byte ⌊j/8⌋, least significant first), ⌈n·bits/8⌉ bytes, unused high bits of the
+    last byte 0; ``tags[1]`` u4, the codebook (1 … 2**bits entries, strictly
     increasing, ≥ 1); ``tags[2]`` u4, empty. The decoded value of n-gram i is
     ``codebook[code(i)]``; the estimator turns decoded values into α and γ exactly as for
     the exact codec, and the context totals stored beside them (HIST, TLNV) are sums of
@@ -359,15 +379,11 @@ class QuantCodec(Codec):
         if len(v) and (int(cb[0]) < 1 or int(cb[-1]) > _U32_MAX):
             raise InvalidArgumentError("stored values must lie in [1, 2**32)")
         codes = np.searchsorted(cb, v).astype(np.uint8)
-        per = 8 // self.bits
-        padded = np.zeros(self.packed_len(len(v)) * per, dtype=np.uint8)
-        padded[: len(codes)] = codes
-        grid = padded.reshape(-1, per).astype(np.uint16)
-        packed = np.zeros(len(grid), dtype=np.uint16)
-        for j in range(per):
-            packed |= grid[:, j] << (j * self.bits)
+        # the bit stream: code i at bits i·q … i·q+q−1, least significant bit first
+        stream = ((codes[:, None] >> np.arange(self.bits, dtype=np.uint8)) & 1).astype(np.uint8).reshape(-1)
+        packed = np.packbits(stream, bitorder="little")
         u1, u4 = np.dtype("<u1"), np.dtype("<u4")
-        return [(tags[0], u1, packed.astype(np.uint8)), (tags[1], u4, cb.astype(np.uint32)), (tags[2], u4, np.zeros(0, np.uint32))]
+        return [(tags[0], u1, packed), (tags[1], u4, cb.astype(np.uint32)), (tags[2], u4, np.zeros(0, np.uint32))]
 
     def section_types(self, tags: tuple[bytes, bytes, bytes]) -> dict[bytes, str]:
         return {tags[0]: "u1", tags[1]: "u4", tags[2]: "u4"}
@@ -390,7 +406,9 @@ class QuantCodec(Codec):
     def check_full(self, where: str, arrays: dict[str, np.ndarray], tags: tuple[bytes, bytes, bytes]) -> None:
         """Every code is inside the codebook (verify=True)."""
         packed, cb = arrays[tags[0].decode()], arrays[tags[1].decode()]
-        codes = (packed.astype(np.int64)[:, None] >> (np.arange(8 // self.bits) * self.bits)) & ((1 << self.bits) - 1)
+        bits = np.unpackbits(np.asarray(packed, dtype=np.uint8), bitorder="little")
+        slots = len(bits) // self.bits
+        codes = bits[: slots * self.bits].reshape(slots, self.bits).astype(np.int64) @ (1 << np.arange(self.bits, dtype=np.int64))
         if len(codes) and int(codes.max()) >= len(cb):
             raise ModelFormatError(f"{where}: section {tags[0].decode()} holds a code past the codebook")
 
