@@ -36,9 +36,12 @@ DATA = HERE / "data"
 CODECS = (
     ("exact", None),
     ("quant 8-bit", (8, "lloyd")),
+    ("quant 6-bit", (6, "lloyd")),
+    ("quant 5-bit (Lloyd)", (5, "lloyd")),
+    ("quant 5-bit (quantile bins)", (5, "quantile")),
     ("quant 4-bit (Lloyd)", (4, "lloyd")),
     ("quant 4-bit (quantile bins)", (4, "quantile")),
-    ("quant 2-bit", (2, "lloyd")),
+    ("quant 3-bit", (3, "lloyd")),
 )
 
 
@@ -66,6 +69,38 @@ def load_ms(path: Path, rounds: int) -> float:
         times.append(time.perf_counter() - t)
         m.close()
     return 1000 * statistics.median(times)
+
+
+def successor_estimate(path: Path) -> dict[str, float]:
+    """Bytes per successor if the u16 successor lists were Elias-Fano coded (an estimate, not a format).
+
+    Per list of ℓ entries over a universe U: ℓ·(2 + ⌊log₂(U/ℓ)⌋) bits (the upper and lower
+    bits of Elias-Fano), pointers not counted. Bigram rows: U = the n + 2 positions.
+    Trigram rows: U = the n + 2 positions ("plain"), or U = the length of v's bigram row
+    ("by bigram row": each successor coded as its index among v's successors).
+    """
+    import numpy as np
+
+    from nextword.codecs import EXACT as EX
+    from nextword.store import CONTEXT_TAGS, read_model
+
+    arr = read_model(path)
+    a = arr.arrays
+    u = len(a["UNIG"])
+    rows = a["ROWS"].astype(np.int64)
+    ln = np.diff(rows)
+    ln = ln[ln > 0]
+    out = {"bigram": float((ln * (2 + np.floor(np.log2(u / ln)))).sum() / 8 / rows[-1])}
+    if "TLEN" in a:
+        lens = EX.decode(str(path), a, CONTEXT_TAGS).all()
+        ctx = np.flatnonzero(lens)
+        v = a["ALPH"].astype(np.int64)[a["SUCC"].astype(np.int64)[ctx]]
+        row_len = np.maximum(rows[v + 1] - rows[v], 1)
+        l3 = lens[ctx]
+        out["trigram plain"] = float((l3 * (2 + np.floor(np.log2(u / l3)))).sum() / 8 / l3.sum())
+        out["trigram by bigram row"] = float((l3 * (2 + np.maximum(0, np.floor(np.log2(row_len / l3))))).sum() / 8 / l3.sum())
+    arr.close()
+    return out
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -139,6 +174,7 @@ def main(argv: list[str] | None = None) -> int:
             r["load"] = load_ms(r["path"], 21)
             models[i].close()
         ex = rows[0]
+        est = successor_estimate(ex["path"])
         lines = []
         for r in rows:
             lines.append(
@@ -147,6 +183,9 @@ def main(argv: list[str] | None = None) -> int:
                 f"{100 * (r['ksr'] - ex['ksr']):+.2f} | {r['load']:.2f} | {r['p50']:.0f} | {r['p99']:.0f} | {r['p99'] / ex['p99']:.2f} |"
             )
         sections.append(f"""#### {label}
+
+Elias-Fano estimate for the successor lists (stored as u16 = 2 bytes each today; `successor_estimate`, pointers not
+counted): {'; '.join(f'{k}: {v:.2f} bytes per successor' for k, v in est.items())}.
 
 | codec | format | file bytes | n-grams | bytes / n-gram | perplexity | vs exact | KSR@3 | vs exact (points) | load ms | suggest p50 µs | p99 µs | p99 / exact |
 |---|---|---|---|---|---|---|---|---|---|---|---|---|

@@ -285,28 +285,29 @@ class _QuantView(ValueView):
         self._packed = packed
         self._mv = memoryview(np.ascontiguousarray(packed)).cast("B")  # type: ignore[arg-type]
         self._cb = codebook.astype(np.int64)
-        self._cb_list: list[int] = self._cb.tolist()
+        # the decoding table of every possible code: past the codebook, -1 (refused where read)
+        self._cb_list: list[int] = self._cb.tolist() + [-1] * ((1 << bits) - len(self._cb))
         self._bits = bits
         self._mask = (1 << bits) - 1
         self._n = n
         self._last = len(packed) - 1
 
     def _bad(self, code: int) -> ModelFormatError:
-        return ModelFormatError(f"{self._where}: value code {code} past the codebook of {len(self._cb_list)} entries")
+        return ModelFormatError(f"{self._where}: value code {code} past the codebook of {len(self._cb)} entries")
 
     def at(self, i: int) -> int:
         if not 0 <= i < self._n:
             raise IndexError(i)
-        bit = i * self._bits
+        q = self._bits
+        bit = i * q
         sh = bit & 7
         w = self._mv[bit >> 3]
-        if sh + self._bits > 8:
+        if sh + q > 8:
             w |= self._mv[(bit >> 3) + 1] << 8
-        code = (w >> sh) & self._mask
-        try:
-            return self._cb_list[code]
-        except IndexError:
-            raise self._bad(code) from None
+        v = self._cb_list[(w >> sh) & self._mask]
+        if v < 0:
+            raise self._bad((w >> sh) & self._mask)
+        return v
 
     def _codes(self, idx: np.ndarray) -> np.ndarray:
         idx = np.asarray(idx, dtype=np.int64)
@@ -321,10 +322,24 @@ class _QuantView(ValueView):
         return c
 
     def slice(self, s: int, e: int) -> list[int]:
-        if e - s <= 16:
-            return [self.at(i) for i in range(s, e)]
-        out: list[int] = self._cb[self._codes(np.arange(s, e))].tolist()
-        return out
+        if not 0 <= s <= e <= self._n:
+            raise IndexError((s, e))
+        if e - s > 24:
+            out: list[int] = self._cb[self._codes(np.arange(s, e))].tolist()
+            return out
+        # a short run (the common case: a context's few successors), decoded inline
+        mv, cb, q, mask = self._mv, self._cb_list, self._bits, self._mask
+        res = []
+        bit = s * q
+        for _ in range(e - s):
+            sh = bit & 7
+            b = bit >> 3
+            w = (mv[b] | (mv[b + 1] << 8)) if sh + q > 8 else mv[b]
+            res.append(cb[(w >> sh) & mask])
+            bit += q
+        if res and min(res) < 0:
+            raise self._bad(-1)
+        return res
 
     def take(self, idx: np.ndarray) -> np.ndarray:
         return self._cb[self._codes(idx)]  # type: ignore[no-any-return]

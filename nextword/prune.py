@@ -1288,11 +1288,16 @@ def prune_model(
     context totals with any dropped mass, discounts or λ, all read through the model's
     public accessors), with P(h) from :func:`file_context_mass`; its words stay (dropping
     one needs the raw counts to fit again), so a budget below the vocabulary is an error.
-    The skyband settings are the file's (:meth:`Model.header`).
+    The skyband settings and the value codec are the file's (:meth:`Model.header`,
+    ``Model.codec``): a quantised file stays quantised at its width (its stored values
+    already fit the codebook, so nothing is quantised twice), and a quantised Jelinek-Mercer
+    bigram is pruned on its fitted levels like the other kinds.
     """
     head = model.header()
-    build = {"skyband_k": int(head["skyband_k"]), "skyband_min": int(head["skyband_min"])}
-    if model.estimator == "jm" and model.order == 2:
+    build: dict[str, Any] = {"skyband_k": int(head["skyband_k"]), "skyband_min": int(head["skyband_min"])}
+    if model.codec is not EXACT:
+        build["codec"] = model.codec
+    elif model.estimator == "jm" and model.order == 2:
         _, chunks, info = prune_to_size(tables_from_model(model), max_bytes, rule=rule, lam=model.stored_lam,
                                         vocabulary=vocabulary, progress=progress, **build)
         return chunks, info

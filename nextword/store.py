@@ -1114,6 +1114,11 @@ def rewrite_model(
     """
     check_new_output(src, dst, "tuned model")
     src_meta = read_model(src).meta
+    if "codec" in src_meta:  # the layouts of 1.0-1.2 store exact values only
+        raise InvalidArgumentError(
+            f"a new λ can only be stored in an exact Jelinek-Mercer bigram model (format 1.0-1.2); {os.fspath(src)} is format "
+            f"1.{read_model(src).version[1]} with codec {src_meta['codec'].get('name')!r}"
+        )
     if src_meta["estimator"] != "jm" or src_meta["order"] != 2:
         raise InvalidArgumentError(
             f"a new λ can only be stored in a Jelinek-Mercer bigram model; {os.fspath(src)} is {src_meta['estimator']} order {src_meta['order']}"

@@ -388,3 +388,68 @@ def test_crafted_quantised_files_raise_only_model_format_errors(q3_bytes: bytes,
         except ModelFormatError:
             continue
         _ask_everything(m)
+
+
+# -- size budget and command line ---------------------------------------------------------
+
+
+@pytest.mark.parametrize("smoothing,order", [("jm", 2), ("kn", 3)])
+def test_write_to_size_and_prune_model_keep_the_quantised_codec(tmp_path: Path, smoothing: str, order: int) -> None:
+    from nextword.prune import prune_model, write_to_size
+
+    msgs = random_messages(random.Random(11), 2500, WORDS + [f"w{i}" for i in range(300)])
+    b = CountBuilder(order=order)
+    b.add_texts(msgs)
+    tables, counts = b.ngram_counts(min_count=1)
+    est = KneserNey() if smoothing == "kn" else JelinekMercer((0.9, 0.9)[: order - 1])
+    full = tmp_path / "full.nwm"
+    atomic_write(full, ngram_file(counts, tables, est.fit(counts), codec=QuantCodec(5)))
+    budget = int(full.stat().st_size * 0.7)
+    out = tmp_path / "small.nwm"
+    write_to_size(counts, tables, est, budget, out, quantize=5)
+    m = nextword.load(out, verify=True)
+    assert m.file_size <= budget and m.format_version == (1, 5) and m.codec.meta()["bits"] == 5
+    assert m.n_bigrams + int(m.header().get("trigrams", 0)) < nextword.load(full).n_bigrams + int(nextword.load(full).header().get("trigrams", 0))
+    rng = random.Random(2)
+    check_sums(m, contexts_of(m, rng))
+    check_rankings(m, contexts_of(m, rng), ["", "w1", "b"], [1, 3])
+    # pruning the quantised file again keeps its codec and width
+    chunks, _ = prune_model(nextword.load(full), int(full.stat().st_size * 0.8), vocabulary=False)
+    again = tmp_path / "again.nwm"
+    atomic_write(again, chunks)
+    m2 = nextword.load(again, verify=True)
+    assert m2.format_version == (1, 5) and m2.codec.meta()["bits"] == 5
+    check_sums(m2, contexts_of(m2, rng))
+
+
+def test_a_new_lambda_is_refused_for_a_quantised_bigram(tmp_path: Path) -> None:
+    from nextword.store import rewrite_model
+
+    msgs = random_messages(random.Random(3), 200, WORDS)
+    nextword.train_texts(msgs, tmp_path / "q.nwm", min_count=1, quantize=4)
+    with pytest.raises(InvalidArgumentError, match="exact Jelinek-Mercer bigram model .* codec 'quant'"):
+        rewrite_model(tmp_path / "q.nwm", tmp_path / "t.nwm", lam=0.5)
+
+
+def _cli(*args: str) -> "subprocess.CompletedProcess[str]":
+    import subprocess
+    import sys
+
+    return subprocess.run([sys.executable, "-m", "nextword", *args], capture_output=True, text=True, timeout=120)
+
+
+def test_cli_train_quantize(tmp_path: Path) -> None:
+    import json
+
+    corpus = tmp_path / "c.txt"
+    corpus.write_text("\n".join(random_messages(random.Random(4), 400, WORDS)) + "\n", encoding="utf-8")
+    r = _cli("train", str(corpus), "-o", str(tmp_path / "q.nwm"), "--order", "3", "--smoothing", "kn", "--quantize", "5",
+             "--min-count", "1", "--json")
+    assert r.returncode == 0, r.stderr
+    assert json.loads(r.stdout)["file_bytes"] == (tmp_path / "q.nwm").stat().st_size
+    info = _cli("info", str(tmp_path / "q.nwm"), "--json")
+    assert info.returncode == 0, info.stderr
+    assert json.loads(info.stdout)["codec"] == {"name": "quant", "version": 1, "bits": 5}
+    bad = _cli("train", str(corpus), "-o", str(tmp_path / "x.nwm"), "--quantize", "9")
+    assert bad.returncode == 2 and bad.stderr.strip().splitlines()[-1].startswith("nextword: error:")
+    assert "--quantize" in bad.stderr and "Traceback" not in bad.stderr
