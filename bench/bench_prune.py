@@ -309,7 +309,7 @@ def part_orders(args: argparse.Namespace) -> str:
                         f"quotes for today's 2 MB model — target (+1 point) {'met' if d >= 1.0 else 'NOT met'}.\n")
     if kn4 is not None:
         d = 100 * (kn4[6] - jm[6])
-        verdict = (f"\n**Target** (issue 13): the 4 MB Kneser-Ney trigram ({kn4[2]:,} bytes, {kn4[4]:,} n-grams) against the "
+        verdict += (f"\n**Target** (issue 13): the 4 MB Kneser-Ney trigram ({kn4[2]:,} bytes, {kn4[4]:,} n-grams) against the "
                    f"unpruned JM bigram ({jm[2]:,} bytes): KSR@3 {100 * kn4[6]:.2f}% vs {100 * jm[6]:.2f}% ({d:+.2f} points) — "
                    f"{'met' if d > 0 else 'NOT met'}.\n")
     table = "\n".join(f"| {lab} | {bud} | {size:,} | {words:,} | {grams:,} | {ppl:.1f} | {100 * ksr:.2f}% | {100 * (ksr - jm[6]):+.2f} |"

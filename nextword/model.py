@@ -166,8 +166,10 @@ class Model:
         self.codec = codec_named(self.path, meta["codec"]) if "codec" in meta else EXACT
         # a quantised file's bigram values come through its codec; exact ones are read in place
         self._vals2: ValueView | None = None if self.codec is EXACT else self.codec.decode(self.path, a, BIGRAM_TAGS, self.n_bigrams)
-        # everything but the exact Jelinek-Mercer bigram goes through the general scorer (_NgramScorer)
-        self._general = self.estimator != "jm" or self.order != 2 or self._vals2 is not None
+        # everything but the Jelinek-Mercer bigram goes through the general scorer (_NgramScorer);
+        # a quantised JM bigram too when it has dropped mass (the JM bigram path has no γ term
+        # for it); without, both paths compute the same floats (γ = 1 − λ exactly when r = 0)
+        self._general = self.estimator != "jm" or self.order != 2 or (self._vals2 is not None and len(a["HDRI"]) > 0)
         if self._general:
             if self.estimator == "kn" and lam is not None:
                 raise InvalidArgumentError(f"lam={lam!r} given for a Kneser-Ney model, which has no λ")
@@ -507,13 +509,14 @@ class Model:
         if len(entries) > _SMALL:
             return self._rank_many(entries, top, cv, lam, k)
         succ, alph, apos = self._mv_succ, self._mv_alph, self._mv_apos
+        vals = self._vals2
         if isinstance(entries, range):
             ps = succ[s:e].tolist()
-            cs = self._mv_cnts[s:e].tolist()
+            cs = self._mv_cnts[s:e].tolist() if vals is None else vals.slice(s, e)
         else:
             ps = [succ[i] for i in entries]
-            cs = [self._mv_cnts[i] for i in entries]
-        if COUNT_ESCAPE in cs:  # counts >= 255 are rare: replace them one by one
+            cs = [self._mv_cnts[i] for i in entries] if vals is None else [vals.at(i) for i in entries]
+        if vals is None and COUNT_ESCAPE in cs:  # counts >= 255 are rare: replace them one by one
             j = cs.index(COUNT_ESCAPE)
             while True:
                 cs[j] = self._count_at(entries[j])
@@ -939,7 +942,7 @@ class Model:
             ),
             "tokens": self.total,
             # a Jelinek-Mercer bigram's answer is unchanged (the service's protocol quotes it)
-            **({"estimator": self.estimator, "order": self.order} if self._general else {}),
+            **({"estimator": self.estimator, "order": self.order} if self._general or self._vals2 is not None else {}),
             **({"codec": self.codec.meta()} if self.codec is not EXACT else {}),
             **({"discounts": self.discounts, "discount_notes": self.discount_notes} if self.estimator == "kn" else {}),
             **({"lambda3": self.stored_lam3} if self.stored_lam3 is not None else {}),
