@@ -51,7 +51,7 @@ def figure_files(data: Path = DATA) -> dict[str, tuple[list[Path], list[Path]]]:
 
 
 def timed_queries(model: nextword.Model, queries: list[tuple[str, str]]) -> list[float]:
-    """Seconds per suggest(k=3) call over ``queries`` ((kind, text before the cursor) pairs)."""
+    """Seconds per suggest(k=3) call over ``queries`` ((kind, typed text) pairs)."""
     out = []
     clock = time.perf_counter
     for _, typed in queries:
