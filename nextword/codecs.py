@@ -2,18 +2,19 @@
 
 The store lays out n-grams (rows of successors per context); a *codec* owns only the
 numbers stored beside them. The file records the codec by name and version in META
-(``"codec": {"name": ..., "version": ...}``, format 1.4); a reader refuses a codec it
+(``"codec": {"name": ..., "version": ...}`` and, for ``quant``, ``"bits"``; formats 1.4 and 1.5); a reader refuses a codec it
 does not know, by name. Each level's values live in sections whose tags the store
 chooses (``CNTS``/``BIGI``/``BIGC`` for the bigram level, ``TVAL``/``TBGI``/``TBGC`` for
 the trigram level), so one codec class serves every level.
 
 ``exact`` stores the integer values themselves (raw counts for Jelinek-Mercer, adjusted
 counts for Kneser-Ney): one byte per n-gram, 255 marking an escape whose full value sits
-in a sorted side table (index, value). The estimator turns them into α and γ at query
-time. A quantised codec (issue 15) is a second class: its :meth:`Codec.encode` gets the
-same values plus the estimator's α per n-gram, stores codes and a codebook, and its view
-answers :meth:`ValueView.at` with what the scorer needs; ``stores_alpha`` tells the
-scorer which of the two it reads (docs/SEAMS.md, "codec").
+in a sorted side table (index, value). ``quant`` (format 1.5, issue 15) stores each value
+as a q-bit code into a codebook fitted per level (:func:`fit_codebook`); the build
+replaces the values by their decoded ones (:meth:`Codec.quantize`) before anything else
+is derived from them, so either way the view yields integer values that the estimator
+turns into α and γ at query time, and the file describes one consistent model
+(docs/SEAMS.md, "The codec seam"; docs/FORMAT.md §7.12, §7.17).
 """
 
 from __future__ import annotations
@@ -64,10 +65,6 @@ class Codec(ABC):
 
     name: ClassVar[str]
     version: ClassVar[int]
-    #: False: the view yields integer values the estimator turns into α and γ;
-    #: True: it yields α directly (a quantised codec), with γ stored per context.
-    stores_alpha: ClassVar[bool] = False
-
     @abstractmethod
     def encode(self, tags: tuple[bytes, bytes, bytes], values: np.ndarray) -> list[Section]:
         """The sections holding ``values`` (int, ≥ 1, in n-gram order)."""
