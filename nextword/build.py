@@ -67,6 +67,13 @@ def _check_kind(order: int, smoothing: str, lam: float | None, max_bytes: int | 
         raise InvalidArgumentError(f"lam={lam!r} given with Kneser-Ney smoothing, which has no λ (its discounts are fitted)")
 
 
+def _check_quantize(quantize: int | None) -> None:
+    from .codecs import QUANT_BITS
+
+    if quantize is not None and (isinstance(quantize, bool) or quantize not in QUANT_BITS):
+        raise InvalidArgumentError(f"quantize must be one of {', '.join(map(str, QUANT_BITS))} bits (or None), got {quantize!r}")
+
+
 def _finish(
     builder: CountBuilder,
     output_path: str | os.PathLike[str],
@@ -82,9 +89,13 @@ def _finish(
     order: int = 2,
     smoothing: str = "jm",
     lam3: float = DEFAULT_LAMBDA,
+    quantize: int | None = None,
 ) -> TrainReport:
+    from .codecs import codec_for_bits
+
+    codec = codec_for_bits(quantize)
     t1 = time.perf_counter()
-    general = order != 2 or smoothing != "jm"
+    general = order != 2 or smoothing != "jm" or quantize is not None
     if general:
         tables, counts = builder.ngram_counts(min_count=min_count, max_vocab=max_vocab)
     else:
@@ -97,13 +108,13 @@ def _finish(
 
         estimator = KneserNey() if smoothing == "kn" else JelinekMercer((lam, lam3))
         if max_bytes is None:
-            build(counts, tables, estimator, output_path, skyband_k=skyband_k, skyband_min=skyband_min)
+            build(counts, tables, estimator, output_path, skyband_k=skyband_k, skyband_min=skyband_min, codec=codec)
             n_bigrams = len(tables.pair_count)
         else:  # every estimator and order: nextword.prune chooses the n-grams (and words) that fit
             from .prune import write_to_size
 
             tables, n_bigrams = write_to_size(counts, tables, estimator, max_bytes, output_path, rule=prune_rule,  # type: ignore[arg-type]
-                                              skyband_k=skyband_k, skyband_min=skyband_min)
+                                              skyband_k=skyband_k, skyband_min=skyband_min, quantize=quantize)
     elif max_bytes is None:
         write_model(tables, output_path, lam=lam, skyband_k=skyband_k, skyband_min=skyband_min)
     else:
@@ -165,6 +176,7 @@ def train(
     order: int = 2,
     smoothing: str = "jm",
     lam3: float = DEFAULT_LAMBDA,
+    quantize: int | None = None,
 ) -> TrainReport:
     """Count the messages in ``inputs`` and write a model file to ``output_path``.
 
@@ -186,8 +198,13 @@ def train(
     (interpolated modified Kneser-Ney, discounts fitted, no λ) replaces Jelinek-Mercer
     ("jm", λ = ``lam`` for the bigram level, default 0.9, and ``lam3`` for the trigram
     level). Both are counted in the same streaming pass (:class:`~nextword.counts.CountBuilder` of that order).
+    ``quantize`` (bits: 2, 4 or 8) stores the n-gram values as codes into a codebook fitted
+    per level (:class:`~nextword.codecs.QuantCodec`, format 1.5): a smaller file whose
+    probabilities are the quantised model's own, still summing to 1 per context, and
+    whose top k is still exact for them (docs/SEAMS.md). ``None`` keeps the exact values.
     """
     _check_kind(order, smoothing, lam, max_bytes)
+    _check_quantize(quantize)
     lam = _check_build_args(DEFAULT_LAMBDA if lam is None else lam, skyband_k, skyband_min)
     lam3 = _check_build_args(lam3, skyband_k, skyband_min)
     sources = open_sources(inputs, fmt=fmt, field=field)
@@ -214,7 +231,7 @@ def train(
         return _finish(
             builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
             skyband_k=skyband_k, skyband_min=skyband_min, t0=t0, max_bytes=max_bytes, prune_rule=prune_rule,
-            order=order, smoothing=smoothing, lam3=lam3,
+            order=order, smoothing=smoothing, lam3=lam3, quantize=quantize,
         )
     finally:
         bar.done()  # also on errors: the error message then starts on a clean line
@@ -232,9 +249,11 @@ def train_texts(
     order: int = 2,
     smoothing: str = "jm",
     lam3: float = DEFAULT_LAMBDA,
+    quantize: int | None = None,
 ) -> TrainReport:
     """Like :func:`train`, but from messages already in memory (consumed once)."""
     _check_kind(order, smoothing, lam, None)
+    _check_quantize(quantize)
     lam = _check_build_args(DEFAULT_LAMBDA if lam is None else lam, skyband_k, skyband_min)
     lam3 = _check_build_args(lam3, skyband_k, skyband_min)
     if isinstance(texts, str):
@@ -245,7 +264,7 @@ def train_texts(
     return _finish(
         builder, output_path, lam=lam, min_count=min_count, max_vocab=max_vocab,
         skyband_k=skyband_k, skyband_min=skyband_min, t0=t0,
-        order=order, smoothing=smoothing, lam3=lam3,
+        order=order, smoothing=smoothing, lam3=lam3, quantize=quantize,
     )
 
 

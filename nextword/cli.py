@@ -20,6 +20,7 @@ from typing import Any, NoReturn, Sequence
 from . import __version__
 from ._progress import Progress
 from .build import DEFAULT_LAMBDA, SMOOTHINGS, TRAIN_ORDERS, train, train_texts
+from .codecs import QUANT_BITS
 from .corpus import FORMATS, iter_messages, open_sources
 from .counts import DEFAULT_MAX_VOCAB, DEFAULT_MIN_COUNT, PARALLEL_MIN_BYTES
 from .errors import InputDataError, InvalidArgumentError, NextwordError
@@ -224,6 +225,8 @@ def _parser() -> _Parser:
     t.add_argument("--memory-cap", metavar="SIZE", type=_size, help="bound the pair counts in memory, spilling to disk, e.g. 1GB (default: no bound)")
     t.add_argument("--max-size", metavar="SIZE", type=_size, help="prune n-grams (and words) until the file fits, e.g. 4MB; any --order and --smoothing (default: no budget)")
     t.add_argument("--rule", choices=("count", "entropy"), default=DEFAULT_RULE, help="pruning rule with --max-size (default %(default)s)")
+    t.add_argument("--quantize", metavar="BITS", type=int, choices=QUANT_BITS, default=None,
+                   help="store n-gram values as BITS-bit codes (2 to 8) into a codebook fitted per level (format 1.5, smaller file, top k still exact for its own probabilities; default: exact values)")
     t.add_argument("--json", action="store_true", help="print the training report as JSON")
 
     s = sub.add_parser("suggest", help="print suggestions for typed texts")
@@ -414,6 +417,7 @@ def _cmd_train(args: argparse.Namespace) -> int:
         prune_rule=args.rule,
         workers=args.workers,
         memory_cap=None if args.memory_cap is None else _size_arg(args.memory_cap),
+        quantize=args.quantize,
     )
     data = {
         "path": report.path,

@@ -2,18 +2,19 @@
 
 The store lays out n-grams (rows of successors per context); a *codec* owns only the
 numbers stored beside them. The file records the codec by name and version in META
-(``"codec": {"name": ..., "version": ...}``, format 1.4); a reader refuses a codec it
+(``"codec": {"name": ..., "version": ...}`` and, for ``quant``, ``"bits"``; formats 1.4 and 1.5); a reader refuses a codec it
 does not know, by name. Each level's values live in sections whose tags the store
 chooses (``CNTS``/``BIGI``/``BIGC`` for the bigram level, ``TVAL``/``TBGI``/``TBGC`` for
 the trigram level), so one codec class serves every level.
 
 ``exact`` stores the integer values themselves (raw counts for Jelinek-Mercer, adjusted
 counts for Kneser-Ney): one byte per n-gram, 255 marking an escape whose full value sits
-in a sorted side table (index, value). The estimator turns them into α and γ at query
-time. A quantised codec (issue 15) is a second class: its :meth:`Codec.encode` gets the
-same values plus the estimator's α per n-gram, stores codes and a codebook, and its view
-answers :meth:`ValueView.at` with what the scorer needs; ``stores_alpha`` tells the
-scorer which of the two it reads (docs/SEAMS.md, "codec").
+in a sorted side table (index, value). ``quant`` (format 1.5, issue 15) stores each value
+as a q-bit code into a codebook fitted per level (:func:`fit_codebook`); the build
+replaces the values by their decoded ones (:meth:`Codec.quantize`) before anything else
+is derived from them, so either way the view yields integer values that the estimator
+turns into α and γ at query time, and the file describes one consistent model
+(docs/SEAMS.md, "The codec seam"; docs/FORMAT.md §7.12, §7.17).
 """
 
 from __future__ import annotations
@@ -26,7 +27,10 @@ import numpy as np
 
 from .errors import InvalidArgumentError, ModelFormatError
 
-__all__ = ["Codec", "ValueView", "ExactCodec", "EXACT", "COUNT_ESCAPE", "codec_named", "CODECS"]
+__all__ = [
+    "Codec", "ValueView", "ExactCodec", "EXACT", "QuantCodec", "QUANT_BITS", "DEFAULT_QUANT_BITS", "COUNT_ESCAPE",
+    "codec_named", "codec_for_bits", "CODECS", "fit_codebook",
+]
 
 #: the one-byte value that says "look the value up in the escape table"
 COUNT_ESCAPE: Final = 255
@@ -61,10 +65,6 @@ class Codec(ABC):
 
     name: ClassVar[str]
     version: ClassVar[int]
-    #: False: the view yields integer values the estimator turns into α and γ;
-    #: True: it yields α directly (a quantised codec), with γ stored per context.
-    stores_alpha: ClassVar[bool] = False
-
     @abstractmethod
     def encode(self, tags: tuple[bytes, bytes, bytes], values: np.ndarray) -> list[Section]:
         """The sections holding ``values`` (int, ≥ 1, in n-gram order)."""
@@ -78,12 +78,27 @@ class Codec(ABC):
         """Lengths and the cheap checks done on every load (raise ModelFormatError)."""
 
     @abstractmethod
-    def decode(self, where: str, arrays: dict[str, np.ndarray], tags: tuple[bytes, bytes, bytes]) -> ValueView:
-        """The query-side view over the mapped sections (no copy of the n-gram-sized ones)."""
+    def decode(self, where: str, arrays: dict[str, np.ndarray], tags: tuple[bytes, bytes, bytes], n: int | None = None) -> ValueView:
+        """The query-side view over the mapped sections (no copy of the n-gram-sized ones).
+
+        ``n``: the level's number of values (a packed codec's last byte may hold unused slots).
+        """
 
     def meta(self) -> dict[str, object]:
         """What META records about the codec."""
         return {"name": self.name, "version": self.version}
+
+    def quantize(self, values: np.ndarray) -> np.ndarray:
+        """The values a file of this codec stores for ``values`` (int64; the identity when exact).
+
+        The build replaces a level's values by these *before* it computes context totals,
+        n₁/n₂/n₃₊ and skybands, so the file describes one consistent model (the quantised
+        one), whose contexts sum to 1 by the estimator's own algebra (docs/SEAMS.md).
+        """
+        return np.asarray(values, dtype=np.int64)
+
+    def check_full(self, where: str, arrays: dict[str, np.ndarray], tags: tuple[bytes, bytes, bytes]) -> None:
+        """Every entry (verify=True); the default checks nothing beyond :meth:`check`."""
 
 
 class _ExactView(ValueView):
@@ -176,14 +191,249 @@ class ExactCodec(Codec):
         if not np.array_equal(np.flatnonzero(small == COUNT_ESCAPE), esc_i):
             raise ModelFormatError(f"{where}: sections {names[0]} and {names[1]} disagree")
 
-    def decode(self, where: str, arrays: dict[str, np.ndarray], tags: tuple[bytes, bytes, bytes]) -> ValueView:
+    def decode(self, where: str, arrays: dict[str, np.ndarray], tags: tuple[bytes, bytes, bytes], n: int | None = None) -> ValueView:
         small, esc_i, esc_v = (arrays[t.decode()] for t in tags)
         return _ExactView(where, small, esc_i, esc_v)
 
 
+#: code widths the quantised codec offers (2 at least: 1 and 2 keep codes of their own,
+#: and values >= 3 need one more); a code spans at most two bytes, so a read is one or two
+#: byte loads, a shift and a mask
+QUANT_BITS: Final = (2, 3, 4, 5, 6, 7, 8)
+#: the width ``--quantize`` suggests (measured by bench/bench_quant.py on the 5M-word corpus: 5 bits
+#: cost 0.4-0.5% perplexity against exact values, 4 bits 1.3-1.9%; see bench/RESULTS.md)
+DEFAULT_QUANT_BITS: Final = 5
+_LLOYD_ROUNDS: Final = 30
+
+
+def fit_codebook(values: np.ndarray, bits: int, *, method: str = "lloyd") -> np.ndarray:
+    """At most 2**bits increasing integers (≥ 1) to stand for ``values`` (ints ≥ 1).
+
+    1 and 2 keep codes of their own (Kneser-Ney's discount classes and its n₁, n₂ read
+    them, so the quantised model keeps its discounts' meaning), every value ≥ 3 maps to
+    a representative ≥ 3. The other codes split the values ≥ 3 into contiguous bins in
+    the log domain, weighting each distinct value by the tokens it stands for
+    (multiplicity × value), i.e. minimising Σ tokens · (log â − log a)², the first-order
+    change of the training log-likelihood. ``method`` "quantile" stops at the initial
+    equal-weight bins; "lloyd" then runs Lloyd's iterations (bench/bench_quant.py
+    measures both). A level with at most 2**bits distinct values is kept exactly.
+    """
+    v = np.asarray(values, dtype=np.int64)
+    if len(v) and int(v.min()) < 1:
+        raise InvalidArgumentError("quantised values must be >= 1")
+    if method not in ("lloyd", "quantile"):
+        raise InvalidArgumentError(f"codebook method must be 'lloyd' or 'quantile', got {method!r}")
+    uniq, mult = np.unique(v, return_counts=True)
+    n_codes = 1 << bits
+    if len(uniq) <= n_codes:
+        return uniq
+    fixed = uniq[uniq < 3]
+    big, big_m = uniq[uniq >= 3], mult[uniq >= 3]
+    m = n_codes - len(fixed)
+    x = np.log(big.astype(np.float64))
+    w = big_m.astype(np.float64) * big
+    # initial bins: equal shares of the weight (weighted quantiles), cut between distinct values
+    cum = np.cumsum(w)
+    cuts = np.searchsorted(cum, cum[-1] * np.arange(1, m) / m, side="right")
+    cuts = np.unique(np.clip(cuts, 1, len(big) - 1))
+    bounds = (x[cuts - 1] + x[cuts]) / 2.0
+    for _ in range(_LLOYD_ROUNDS if method == "lloyd" else 0):
+        bin_of = np.searchsorted(bounds, x, side="right")
+        sw = np.bincount(bin_of, weights=w, minlength=len(bounds) + 1)
+        cent = np.bincount(bin_of, weights=w * x, minlength=len(bounds) + 1)[sw > 0] / sw[sw > 0]
+        new = (cent[1:] + cent[:-1]) / 2.0
+        if len(new) == len(bounds) and np.array_equal(new, bounds):
+            break
+        bounds = new
+    bin_of = np.searchsorted(bounds, x, side="right")
+    sw = np.bincount(bin_of, weights=w, minlength=len(bounds) + 1)
+    used = np.flatnonzero(sw > 0)
+    cent = np.bincount(bin_of, weights=w * x, minlength=len(bounds) + 1)[used] / sw[used]
+    lo = np.array([big[bin_of == b].min() for b in used])
+    hi = np.array([big[bin_of == b].max() for b in used])
+    rep = np.clip(np.rint(np.exp(cent)).astype(np.int64), lo, hi)
+    return np.unique(np.concatenate([fixed, rep]))
+
+
+def _nearest(codebook: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """Index of each value's codebook entry: 1 and 2 their own, a value ≥ 3 the nearest entry ≥ 3 in the log domain.
+
+    The nearest entry in the log domain is the bin Lloyd's step assigns (its boundaries
+    are the midpoints of neighbouring log centroids); ties go to the smaller entry.
+    """
+    v = np.asarray(values, dtype=np.int64)
+    out = np.searchsorted(codebook, v)  # exact for 1 and 2 (always in the codebook when present)
+    first = int(np.searchsorted(codebook, 3))
+    big = codebook[first:]
+    sel = np.flatnonzero(v >= 3)
+    if len(sel) and len(big):
+        x = v[sel]
+        hi = np.minimum(np.searchsorted(big, x), len(big) - 1)
+        lo = np.maximum(hi - 1, 0)
+        lv = np.log(x.astype(np.float64))
+        take_lo = np.abs(lv - np.log(big[lo].astype(np.float64))) <= np.abs(np.log(big[hi].astype(np.float64)) - lv)
+        out[sel] = first + np.where(take_lo, lo, hi)
+    return out
+
+
+class _QuantView(ValueView):
+    def __init__(self, where: str, packed: np.ndarray, codebook: np.ndarray, bits: int, n: int) -> None:
+        self._where = where
+        self._packed = packed
+        self._mv = memoryview(np.ascontiguousarray(packed)).cast("B")  # type: ignore[arg-type]
+        self._cb = codebook.astype(np.int64)
+        # the decoding table of every possible code: past the codebook, -1 (refused where read)
+        self._cb_list: list[int] = self._cb.tolist() + [-1] * ((1 << bits) - len(self._cb))
+        self._bits = bits
+        self._mask = (1 << bits) - 1
+        self._n = n
+        self._last = len(packed) - 1
+
+    def _bad(self, code: int) -> ModelFormatError:
+        return ModelFormatError(f"{self._where}: value code {code} past the codebook of {len(self._cb)} entries")
+
+    def at(self, i: int) -> int:
+        if not 0 <= i < self._n:
+            raise IndexError(i)
+        q = self._bits
+        bit = i * q
+        sh = bit & 7
+        w = self._mv[bit >> 3]
+        if sh + q > 8:
+            w |= self._mv[(bit >> 3) + 1] << 8
+        v = self._cb_list[(w >> sh) & self._mask]
+        if v < 0:
+            raise self._bad((w >> sh) & self._mask)
+        return v
+
+    def _codes(self, idx: np.ndarray) -> np.ndarray:
+        idx = np.asarray(idx, dtype=np.int64)
+        if len(idx) and (int(idx.min()) < 0 or int(idx.max()) >= self._n):
+            raise IndexError("value index out of range")
+        bit = idx * self._bits
+        at = bit >> 3
+        w = self._packed[at].astype(np.int64) | (self._packed[np.minimum(at + 1, self._last)].astype(np.int64) << 8)
+        c = (w >> (bit & 7)) & self._mask
+        if len(c) and int(c.max()) >= len(self._cb):
+            raise self._bad(int(c.max()))
+        return c
+
+    def slice(self, s: int, e: int) -> list[int]:
+        if not 0 <= s <= e <= self._n:
+            raise IndexError((s, e))
+        if e - s > 96:
+            out: list[int] = self._cb[self._codes(np.arange(s, e))].tolist()
+            return out
+        # a short run (the common case: a context's successors): its bytes as one Python
+        # integer, the codes cut from it by shifts (no numpy call, no per-code branch)
+        q, mask, cb = self._bits, self._mask, self._cb_list
+        first = s * q
+        x = int.from_bytes(self._mv[first >> 3 : (e * q + 7) >> 3], "little") >> (first & 7)
+        res = [cb[(x >> j) & mask] for j in range(0, (e - s) * q, q)]
+        if res and min(res) < 0:
+            raise self._bad(-1)
+        return res
+
+    def take(self, idx: np.ndarray) -> np.ndarray:
+        return self._cb[self._codes(idx)]  # type: ignore[no-any-return]
+
+    def all(self) -> np.ndarray:
+        return self._cb[self._codes(np.arange(self._n))]  # type: ignore[no-any-return]
+
+
+class QuantCodec(Codec):
+    """Values as ``bits``-bit codes into a per-level codebook of increasing integers.
+
+    Sections (tags of the level): ``tags[0]`` u1, the codes as one little-endian bit
+    stream (code i is bits i·bits … i·bits+bits−1, bit j of the stream being bit j mod 8
+    of byte ⌊j/8⌋, least significant first), ⌈n·bits/8⌉ bytes, unused high bits of the
+    last byte 0; ``tags[1]`` u4, the codebook (1 … 2**bits entries, strictly
+    increasing, ≥ 1); ``tags[2]`` u4, empty. The decoded value of n-gram i is
+    ``codebook[code(i)]``; the estimator turns decoded values into α and γ exactly as for
+    the exact codec, and the context totals stored beside them (HIST, TLNV) are sums of
+    decoded values, so each context sums to 1 (docs/SEAMS.md). The codebook is increasing,
+    so dominance on codes is dominance on decoded values and the skybands, built from the
+    decoded values, stay exact for the quantised model's own probabilities.
+    """
+
+    name: ClassVar[str] = "quant"
+    version: ClassVar[int] = 1
+
+    def __init__(self, bits: int, *, method: str = "lloyd") -> None:
+        if isinstance(bits, bool) or bits not in QUANT_BITS:
+            raise InvalidArgumentError(f"quantisation bits must be one of {', '.join(map(str, QUANT_BITS))}, got {bits!r}")
+        self.bits = bits
+        self.method = method
+
+    def meta(self) -> dict[str, object]:
+        return {"name": self.name, "version": self.version, "bits": self.bits}
+
+    def quantize(self, values: np.ndarray) -> np.ndarray:
+        v = np.asarray(values, dtype=np.int64)
+        if len(v) == 0:
+            return v
+        cb = fit_codebook(v, self.bits, method=self.method)
+        return cb[_nearest(cb, v)]
+
+    def packed_len(self, n: int) -> int:
+        """Bytes of ``tags[0]`` for n values."""
+        return (n * self.bits + 7) // 8
+
+    def encode(self, tags: tuple[bytes, bytes, bytes], values: np.ndarray) -> list[Section]:
+        v = np.asarray(values, dtype=np.int64)
+        cb = np.unique(v)
+        if len(cb) > (1 << self.bits):
+            raise InvalidArgumentError(f"{len(cb)} distinct values do not fit {self.bits}-bit codes; quantize() them first")
+        if len(v) and (int(cb[0]) < 1 or int(cb[-1]) > _U32_MAX):
+            raise InvalidArgumentError("stored values must lie in [1, 2**32)")
+        codes = np.searchsorted(cb, v).astype(np.uint8)
+        # the bit stream: code i at bits i·q … i·q+q−1, least significant bit first
+        stream = ((codes[:, None] >> np.arange(self.bits, dtype=np.uint8)) & 1).astype(np.uint8).reshape(-1)
+        packed = np.packbits(stream, bitorder="little")
+        u1, u4 = np.dtype("<u1"), np.dtype("<u4")
+        return [(tags[0], u1, packed), (tags[1], u4, cb.astype(np.uint32)), (tags[2], u4, np.zeros(0, np.uint32))]
+
+    def section_types(self, tags: tuple[bytes, bytes, bytes]) -> dict[bytes, str]:
+        return {tags[0]: "u1", tags[1]: "u4", tags[2]: "u4"}
+
+    def check(self, where: str, arrays: dict[str, np.ndarray], tags: tuple[bytes, bytes, bytes], n: int) -> None:
+        packed, cb, rest = (arrays[t.decode()] for t in tags)
+        names = [t.decode() for t in tags]
+        if len(packed) != self.packed_len(n):
+            raise ModelFormatError(f"{where}: section {names[0]} holds {len(packed)} bytes, expected {self.packed_len(n)} for {n} {self.bits}-bit codes")
+        if not 1 <= len(cb) <= (1 << self.bits) and not (n == 0 and len(cb) == 0):
+            raise ModelFormatError(f"{where}: section {names[1]} holds {len(cb)} codebook entries, expected 1 to {1 << self.bits}")
+        if len(cb) and (int(cb[0]) < 1 or bool(np.any(cb[1:] <= cb[:-1]))):
+            raise ModelFormatError(f"{where}: section {names[1]} is not a strictly increasing codebook of values >= 1")
+        if len(rest):
+            raise ModelFormatError(f"{where}: section {names[2]} must be empty for codec 'quant'")
+        tail = n * self.bits % 8
+        if tail and int(packed[-1]) >> tail:
+            raise ModelFormatError(f"{where}: section {names[0]} has non-zero bits after the last code")
+
+    def check_full(self, where: str, arrays: dict[str, np.ndarray], tags: tuple[bytes, bytes, bytes]) -> None:
+        """Every code is inside the codebook (verify=True)."""
+        packed, cb = arrays[tags[0].decode()], arrays[tags[1].decode()]
+        bits = np.unpackbits(np.asarray(packed, dtype=np.uint8), bitorder="little")
+        slots = len(bits) // self.bits
+        codes = bits[: slots * self.bits].reshape(slots, self.bits).astype(np.int64) @ (1 << np.arange(self.bits, dtype=np.int64))
+        if len(codes) and int(codes.max()) >= len(cb):
+            raise ModelFormatError(f"{where}: section {tags[0].decode()} holds a code past the codebook")
+
+    def decode(self, where: str, arrays: dict[str, np.ndarray], tags: tuple[bytes, bytes, bytes], n: int | None = None) -> ValueView:
+        packed, cb, _ = (arrays[t.decode()] for t in tags)
+        slots = len(packed) * 8 // self.bits
+        return _QuantView(where, packed, cb, self.bits, slots if n is None else min(n, slots))
+
+
 EXACT: Final = ExactCodec()
 #: every codec a file may name (name → instance)
-CODECS: Final[dict[str, Codec]] = {EXACT.name: EXACT}
+CODECS: Final[dict[str, Codec]] = {EXACT.name: EXACT, QuantCodec.name: QuantCodec(DEFAULT_QUANT_BITS)}
+
+
+def codec_for_bits(bits: int | None) -> Codec:
+    """The codec a build uses: ``None`` → exact, else the quantised codec of that width."""
+    return EXACT if bits is None else QuantCodec(bits)
 
 
 def codec_named(where: str, spec: object) -> Codec:
@@ -196,4 +446,9 @@ def codec_named(where: str, spec: object) -> Codec:
         raise ModelFormatError(f"{where}: unknown value codec {name!r} (this library reads: {', '.join(CODECS)})"[:200])
     if isinstance(version, bool) or version != codec.version:
         raise ModelFormatError(f"{where}: codec {name!r} version {version!r} is not supported (this library reads version {codec.version})"[:200])
+    if isinstance(codec, QuantCodec):
+        bits = spec.get("bits")
+        if isinstance(bits, bool) or bits not in QUANT_BITS:
+            raise ModelFormatError(f"{where}: codec 'quant' with bits {bits!r} (this library reads {', '.join(map(str, QUANT_BITS))})"[:200])
+        return QuantCodec(bits)
     return codec

@@ -21,13 +21,14 @@ from typing import Any, Callable, Iterable, Iterator, NamedTuple, Sequence
 
 import numpy as np
 
-from .codecs import codec_named
+from .codecs import EXACT, ValueView, codec_named
 from .estimators import Level, unigram_floor
 from .estimators.jm import jm_alpha, jm_gamma, jm_step
 from .ngrams import NgramCounts
 from .errors import InvalidArgumentError, ModelFormatError
 from .candidates import CandidateRange, PrefixRange, merge_ranked
 from .store import (
+    BIGRAM_TAGS,
     COUNT_ESCAPE,
     CONTEXT_TAGS,
     CTX_BLOCK,
@@ -163,8 +164,14 @@ class Model:
         self.discount_notes: dict[str, str] = dict(meta.get("discount_notes", {}))
         #: λ of the trigram level (Jelinek-Mercer order 3), else None
         self.stored_lam3: float | None = min(meta["lambda3"], MAX_LAMBDA) if "lambda3" in meta else None
-        # everything but the Jelinek-Mercer bigram goes through the general scorer (_NgramScorer)
-        self._general = self.estimator != "jm" or self.order != 2
+        #: how the file stores its n-gram values (docs/FORMAT.md §7.12, §7.17)
+        self.codec = codec_named(self.path, meta["codec"]) if "codec" in meta else EXACT
+        # a quantised file's bigram values come through its codec; exact ones are read in place
+        self._vals2: ValueView | None = None if self.codec is EXACT else self.codec.decode(self.path, a, BIGRAM_TAGS, self.n_bigrams)
+        # everything but the Jelinek-Mercer bigram goes through the general scorer (_NgramScorer);
+        # a quantised JM bigram too when it has dropped mass (the JM bigram path has no γ term
+        # for it); without, both paths compute the same floats (γ = 1 − λ exactly when r = 0)
+        self._general = self.estimator != "jm" or self.order != 2 or (self._vals2 is not None and len(a["HDRI"]) > 0)
         if self._general:
             if self.estimator == "kn" and lam is not None:
                 raise InvalidArgumentError(f"lam={lam!r} given for a Kneser-Ney model, which has no λ")
@@ -252,6 +259,8 @@ class Model:
     # -- counts -----------------------------------------------------------------------------
 
     def _count_at(self, i: int) -> int:
+        if self._vals2 is not None:
+            return self._vals2.at(i)
         c = self._mv_cnts[i]
         if c != COUNT_ESCAPE:
             return c  # type: ignore[no-any-return]
@@ -264,6 +273,8 @@ class Model:
         return value
 
     def _counts(self, idx: np.ndarray) -> np.ndarray:
+        if self._vals2 is not None:
+            return np.asarray(self._vals2.take(idx), dtype=np.int64)
         c = self._cnts[idx].astype(np.int64)
         if len(self._bigi) == 0:
             return c
@@ -507,13 +518,14 @@ class Model:
         if len(entries) > _SMALL:
             return self._rank_many(entries, top, cv, lam, k)
         succ, alph, apos = self._mv_succ, self._mv_alph, self._mv_apos
+        vals = self._vals2
         if isinstance(entries, range):
             ps = succ[s:e].tolist()
-            cs = self._mv_cnts[s:e].tolist()
+            cs = self._mv_cnts[s:e].tolist() if vals is None else vals.slice(s, e)
         else:
             ps = [succ[i] for i in entries]
-            cs = [self._mv_cnts[i] for i in entries]
-        if COUNT_ESCAPE in cs:  # counts >= 255 are rare: replace them one by one
+            cs = [self._mv_cnts[i] for i in entries] if vals is None else [vals.at(i) for i in entries]
+        if vals is None and COUNT_ESCAPE in cs:  # counts >= 255 are rare: replace them one by one
             j = cs.index(COUNT_ESCAPE)
             while True:
                 cs[j] = self._count_at(entries[j])
@@ -992,7 +1004,8 @@ class Model:
             ),
             "tokens": self.total,
             # a Jelinek-Mercer bigram's answer is unchanged (the service's protocol quotes it)
-            **({"estimator": self.estimator, "order": self.order} if self._general else {}),
+            **({"estimator": self.estimator, "order": self.order} if self._general or self._vals2 is not None else {}),
+            **({"codec": self.codec.meta()} if self.codec is not EXACT else {}),
             **({"discounts": self.discounts, "discount_notes": self.discount_notes} if self.estimator == "kn" else {}),
             **({"lambda3": self.stored_lam3} if self.stored_lam3 is not None else {}),
             **({"trigrams": self._src.meta["trigrams"]} if self.order == 3 else {}),
@@ -1090,10 +1103,10 @@ class _NgramScorer:
             self._t = int(meta["trigrams"])
             self._tsky_min: int = meta["trigram_skyband_min"]
             self._tctb = _native_view(a["TCTB"])
-            self._tlen = self.codec.decode(m.path, a, CONTEXT_TAGS)
+            self._tlen = EXACT.decode(m.path, a, CONTEXT_TAGS)  # lengths are always exact
             self._tsuc_mv = _native_view(a["TSUC"])
             self._tsuc = a["TSUC"]
-            self._tval = self.codec.decode(m.path, a, TRIGRAM_TAGS)
+            self._tval = self.codec.decode(m.path, a, TRIGRAM_TAGS, self._t)
             self._tlni, self._tlnv = _native_view(a["TLNI"]), _native_view(a["TLNV"])
             self._tdri, self._tdrv = _native_view(a["TDRI"]), _native_view(a["TDRV"])
             self._tsgs, self._tsge = _native_view(a["TSGS"]), _native_view(a["TSGE"])
@@ -1339,6 +1352,9 @@ class _NgramScorer:
             if isinstance(b_idx, range) and len(b_idx) > _SMALL:
                 c2, b_full = self._trim_bigrams(b_idx, tot, g, k + len(c3), lams[0]), False
                 ps, cs = list(c2), list(c2.values())
+            elif m._vals2 is not None:  # a quantised file: decoded through its codebook
+                ps = [succ[i] for i in b_idx] if not isinstance(b_idx, range) else succ[b_idx.start : b_idx.stop].tolist()
+                cs = [m._vals2.at(i) for i in b_idx] if not isinstance(b_idx, range) else m._vals2.slice(b_idx.start, b_idx.stop)
             elif isinstance(b_idx, range):
                 ps = succ[b_idx.start : b_idx.stop].tolist()
                 cs = m._mv_cnts[b_idx.start : b_idx.stop].tolist()

@@ -60,6 +60,7 @@ from .counts import CountTables
 from .errors import InvalidArgumentError
 from .estimators import Estimator, Fitted, Level
 from .ngrams import NgramCounts, group_starts
+from .codecs import EXACT, codec_for_bits
 from .store import DEFAULT_SKYBAND_K, DEFAULT_SKYBAND_MIN, atomic_write, build_ngram_sections, build_sections, encode_sections, history_counts
 
 if TYPE_CHECKING:  # prune is imported by model (the train default), not the other way round
@@ -387,7 +388,7 @@ class _Trials:
     is kept (it is never the answer), so the cache holds no more than one answer.
     """
 
-    def __init__(self, tables: CountTables, rule: Rule, lam: float, build: dict[str, int],
+    def __init__(self, tables: CountTables, rule: Rule, lam: float, build: dict[str, Any],
                  progress: Callable[[str], None] | None, max_bytes: int) -> None:
         self.tables = tables
         self.max_bytes = max_bytes
@@ -908,7 +909,7 @@ def kept_ngrams(keep: Sequence[np.ndarray | None], fitted: Fitted) -> int:
     return sum(len(lev.grams) if k is None else int(np.count_nonzero(k)) for lev, k in zip(fitted.levels[1:], keep[1:]))
 
 
-def ngram_file(counts: NgramCounts, tables: CountTables, fitted: Fitted, **build: int) -> Chunks:
+def ngram_file(counts: NgramCounts, tables: CountTables, fitted: Fitted, **build: Any) -> Chunks:
     """The model file of a fitted (possibly pruned) model, as chunks (written by :func:`store.atomic_write`).
 
     The bytes :func:`nextword.store.build` writes with ``fitted=fitted``: a pruned level's
@@ -985,7 +986,7 @@ def prune_ngrams_to_size(
     progress: Callable[[str], None] | None = None,
     context_mass: Sequence[np.ndarray] | None = None,
     fitted: Fitted | None = None,
-    **build: int,
+    **build: Any,
 ) -> tuple[Fitted, NgramCounts, CountTables, Chunks, dict[str, float]]:
     """Keep the most valuable n-grams (and words) of any estimator and order that fit ``max_bytes``.
 
@@ -1029,7 +1030,7 @@ def prune_ngrams_to_size(
     source = fitted if fitted is not None else estimator
     if source is None:
         raise InvalidArgumentError("prune_ngrams_to_size needs an estimator or a fitted model")
-    if source.name == "jm" and counts.order == 2:
+    if source.name == "jm" and counts.order == 2 and build.get("codec", EXACT) is EXACT:
         raise InvalidArgumentError("a Jelinek-Mercer bigram model is pruned by prune_to_size (its file stores the counts themselves)")
     if fitted is not None and vocabulary:
         raise InvalidArgumentError("a fitted model keeps its words (vocabulary=False): dropping words needs its raw counts")
@@ -1087,7 +1088,7 @@ def _nbytes(chunks: Chunks) -> int:
 
 
 def _order_costs(counts: NgramCounts, tables: CountTables, fitted: Fitted, full: int, floor: int,
-                 say: Callable[[str], None], build: dict[str, int]) -> list[float]:
+                 say: Callable[[str], None], build: dict[str, Any]) -> list[float]:
     """Bytes per stored n-gram of each order (``out[m]``), measured: the full file, then each order from the top removed in turn."""
     order = fitted.order
     sizes = [len(lev.grams) for lev in fitted.levels]
@@ -1107,7 +1108,7 @@ def _order_costs(counts: NgramCounts, tables: CountTables, fitted: Fitted, full:
 
 
 def _choose_ngram_words(counts: NgramCounts, tables: CountTables, estimator: Estimator, fitted: Fitted, scores: list[np.ndarray],
-                        wv: np.ndarray, cost: list[float], floor: int, max_bytes: int, build: dict[str, int]) -> np.ndarray:
+                        wv: np.ndarray, cost: list[float], floor: int, max_bytes: int, build: dict[str, Any]) -> np.ndarray:
     """Which words to keep, by value per byte against the n-grams (as :func:`choose_vocabulary` for pairs).
 
     A word's value (:func:`ngram_word_values`) over the bytes one word costs (the
@@ -1146,7 +1147,7 @@ def _choose_ngram_words(counts: NgramCounts, tables: CountTables, estimator: Est
 
 def _fit_ngrams(counts: NgramCounts, tables: CountTables, fitted: Fitted, scores: list[np.ndarray], max_bytes: int,
                 floor: int, full: int, cost: list[float], say: Callable[[str], None],
-                build: dict[str, int]) -> tuple[Fitted, Chunks, dict[str, float]]:
+                build: dict[str, Any]) -> tuple[Fitted, Chunks, dict[str, float]]:
     """The most valuable n-grams by score per byte that fit ``max_bytes`` (``floor``/``full``: the file with none/all)."""
     order = fitted.order
     total = stored_ngrams(fitted)
@@ -1212,14 +1213,26 @@ def write_to_size(
     progress: Callable[[str], None] | None = None,
     skyband_k: int = DEFAULT_SKYBAND_K,
     skyband_min: int = DEFAULT_SKYBAND_MIN,
+    quantize: int | None = None,
 ) -> tuple[CountTables, int]:
     """Prune any n-gram model to ``max_bytes`` (:func:`prune_ngrams_to_size`) and write it atomically to ``path``.
 
-    The build step of ``train --max-size`` for every estimator and order; a
+    The build step of ``train --max-size`` for every estimator and order; an exact
     Jelinek-Mercer bigram goes through :func:`prune_to_size` (its file stores the counts
     themselves, pruned pairs renormalised over c(v)). Returns the tables the file was
     built from (fewer words when words were dropped) and the number of stored bigrams.
+
+    ``quantize`` (bits) stores the values quantised (:class:`~nextword.codecs.QuantCodec`):
+    every trial build measures the quantised file, so the n-grams kept are those that fit
+    the budget at the quantised cost per n-gram (the choice of bits is the caller's; the
+    rule and its measurements are in docs/SEAMS.md, "Size budget and quantisation").
     """
+    if quantize is not None:
+        fitted, _, small_tables, chunks, _ = prune_ngrams_to_size(
+            counts, tables, estimator, max_bytes, rule=rule, progress=progress, skyband_k=skyband_k,
+            skyband_min=skyband_min, codec=codec_for_bits(quantize))
+        atomic_write(path, chunks)
+        return small_tables, len(fitted.levels[1].grams)
     if estimator.name == "jm" and counts.order == 2:
         lam = float(estimator.lams[0])  # type: ignore[attr-defined]
         small, chunks, _ = prune_to_size(tables, max_bytes, rule=rule, lam=lam, progress=progress,
@@ -1275,11 +1288,16 @@ def prune_model(
     context totals with any dropped mass, discounts or λ, all read through the model's
     public accessors), with P(h) from :func:`file_context_mass`; its words stay (dropping
     one needs the raw counts to fit again), so a budget below the vocabulary is an error.
-    The skyband settings are the file's (:meth:`Model.header`).
+    The skyband settings and the value codec are the file's (:meth:`Model.header`,
+    ``Model.codec``): a quantised file stays quantised at its width (its stored values
+    already fit the codebook, so nothing is quantised twice), and a quantised Jelinek-Mercer
+    bigram is pruned on its fitted levels like the other kinds.
     """
     head = model.header()
-    build = {"skyband_k": int(head["skyband_k"]), "skyband_min": int(head["skyband_min"])}
-    if model.estimator == "jm" and model.order == 2:
+    build: dict[str, Any] = {"skyband_k": int(head["skyband_k"]), "skyband_min": int(head["skyband_min"])}
+    if model.codec is not EXACT:
+        build["codec"] = model.codec
+    elif model.estimator == "jm" and model.order == 2:
         _, chunks, info = prune_to_size(tables_from_model(model), max_bytes, rule=rule, lam=model.stored_lam,
                                         vocabulary=vocabulary, progress=progress, **build)
         return chunks, info

@@ -23,7 +23,7 @@ import msgpack
 import numpy as np
 
 from .codecs import COUNT_ESCAPE as COUNT_ESCAPE  # one source: the codec owns the escape byte
-from .codecs import EXACT, ExactCodec, codec_named
+from .codecs import EXACT, Codec, ExactCodec, codec_named
 from .counts import CountTables
 from .errors import InvalidArgumentError, ModelFormatError
 from .estimators import FittedJelinekMercer, FittedKneserNey, unigram_floor
@@ -33,6 +33,8 @@ from .text import TEXT_RULES
 from .paths import check_new_output as check_new_output  # re-exported: callers of the store use it
 
 __all__ = [
+    "level_values",
+    "QUANT_MINOR",
     "MAGIC",
     "FORMAT_VERSION",
     "write_model",
@@ -60,9 +62,13 @@ FORMAT_VERSION: Final = (1, 0)
 #: derived context totals, dropped mass, trigram skybands; docs/FORMAT.md §7.11-7.16).
 #: Files that use none of these stay 1.0. 1.3 files are refused with a message naming
 #: the version (they were never released; retraining writes 1.4).
-MAX_MINOR: Final = 4
+MAX_MINOR: Final = 5
 #: the layout of Kneser-Ney and trigram files
 NGRAM_MINOR: Final = 4
+#: the same layout with quantised values (META codec "quant", docs/FORMAT.md §7.17); any
+#: estimator and order, the Jelinek-Mercer bigram included (it needs HIST: its row sums
+#: are sums of decoded values, no longer the unigram counts)
+QUANT_MINOR: Final = 5
 #: bigram entries per block of TCTB (an entry's trigram start = its block's base + the
 #: lengths of the entries before it in the block)
 CTX_BLOCK: Final = 16
@@ -881,6 +887,7 @@ def build_ngram_sections(
     skyband_min: int = DEFAULT_SKYBAND_MIN,
     trigram_skyband_min: int | None = None,
     fitted: Any = None,
+    codec: Codec = EXACT,
 ) -> tuple[list[tuple[bytes, np.dtype | None, bytes | np.ndarray]], int]:
     """The sections of a model file for any estimator and order 2 or 3, and its minor version.
 
@@ -898,9 +905,16 @@ def build_ngram_sections(
     the sum of a context's stored values has *dropped mass*; the file records it
     (HDRI/HDRV for the bigram level, TDRI/TDRV for the trigram level) and γ takes it in,
     so every context still sums to 1.
+
+    ``codec`` (:mod:`nextword.codecs`) chooses how the bigram and trigram values are
+    stored. A quantising codec replaces each level's values by their decoded values
+    first (``codec.quantize``), keeping each context's dropped mass; every total, n₁/n₂/n₃₊
+    and skyband is then computed from the decoded values, so the file is one consistent
+    (quantised) model and writes format 1.5.
     """
 
     n = tables.n_words
+    quant = codec.name != EXACT.name
     if counts.n_words != n:
         raise InvalidArgumentError(f"counts are over {counts.n_words} words, the tables over {n}")
     order = counts.order
@@ -921,11 +935,11 @@ def build_ngram_sections(
     lam2 = 0.0
     if not kn:
         lam2 = float(fitted.lams[1])
-        if order == 2:
+        if order == 2 and not quant:
             if len(lev2.value) and bool(np.any(lev2.ctx_total != np.add.reduceat(lev2.value, lev2.ctx_start[:-1]))):
                 raise InvalidArgumentError("a pruned Jelinek-Mercer bigram is written by the pruning step (format 1.2)")
             return build_sections(tables, lam=lam2, skyband_k=skyband_k, skyband_min=skyband_min), 0
-        if not np.array_equal(uni, np.asarray(tables.unigram, dtype=np.int64)):
+        if order == 3 and not np.array_equal(uni, np.asarray(tables.unigram, dtype=np.int64)):
             raise InvalidArgumentError("the n-gram counts disagree with the tables' unigram counts")
     # new ids: words by the floor descending, ties by key (JM: c(w)/N, the ids unchanged)
     stored: list[list[float]] = []
@@ -956,6 +970,9 @@ def build_ngram_sections(
     dropped2 = history - row_sum
     if bool(np.any(dropped2 < 0)):
         raise InvalidArgumentError("a bigram context total is below the sum of its stored values")
+    if quant:  # the decoded values, each context keeping its dropped mass: T = Σ decoded + r
+        value2 = codec.quantize(value2)
+        history = np.bincount(left, weights=value2, minlength=n_hist).astype(np.int64) + dropped2
     if int(history.max(initial=0)) > _U32_MAX:
         raise InvalidArgumentError("bigram context totals too large for 32-bit fields")
     new_tables = CountTables(keys, displays, unigram, left, right, value2, dict(tables.stats), None)
@@ -963,7 +980,12 @@ def build_ngram_sections(
     meta = msgpack.unpackb(sections[0][2], raw=False)
     meta["estimator"] = "kn" if kn else "jm"
     meta["order"] = order
-    meta["codec"] = EXACT.meta()
+    meta["codec"] = codec.meta()
+    at = [tag for tag, _, _ in sections].index(BIGRAM_TAGS[0])
+    file_values2 = np.asarray(sections[at][2], dtype=np.int64)  # CNTS, BIGI, BIGC: the rows' order
+    file_values2[np.asarray(sections[at + 1][2], dtype=np.int64)] = np.asarray(sections[at + 2][2], dtype=np.int64)
+    if quant:  # the same (already decoded) values, in the rows' order, as codes
+        sections[at : at + 3] = codec.encode(BIGRAM_TAGS, file_values2)
     idt = _id_dtype(n)
     u4 = np.dtype("<u4")
     hdri = np.flatnonzero(dropped2 > 0)
@@ -977,7 +999,7 @@ def build_ngram_sections(
         meta["discount_notes"] = why
         n123_2 = _n123(left, value2, n_hist)
         sections.append((b"HN13", u4, n123_2.reshape(-1)))
-    else:
+    elif order == 3:
         meta["lambda3"] = float(fitted.lams[2])
     if order == 3:
         alph = np.asarray(sections[4][2], dtype=np.int64)  # ALPH, as build_sections made it
@@ -1013,6 +1035,9 @@ def build_ngram_sections(
         dropped3 = tot_of_gram[first].astype(np.int64) - sums
         if bool(np.any(dropped3 < 0)):
             raise InvalidArgumentError("a trigram context total is below the sum of its stored values")
+        if quant:
+            value3 = codec.quantize(value3)
+            sums = np.bincount(owner, weights=value3, minlength=j).astype(np.int64)
         if t and (int(value3.max()) > _U32_MAX or int((sums + dropped3).max()) > _U32_MAX or t > _U32_MAX):
             raise InvalidArgumentError("too many trigrams (or counts too large) for 32-bit fields")
         tctb = starts[: b + 1 : CTX_BLOCK]
@@ -1020,8 +1045,6 @@ def build_ngram_sections(
         long_ctx = np.flatnonzero(np.diff(ctx_starts) > SUMMARY_MIN)
         tlnv = np.column_stack([sums[long_ctx], n123_3[long_ctx]]).reshape(-1)
         tdri = np.flatnonzero(dropped3 > 0)
-        file_values2 = np.asarray(sections[11][2], dtype=np.int64)  # CNTS, BIGI, BIGC: the rows' order
-        file_values2[np.asarray(sections[12][2], dtype=np.int64)] = np.asarray(sections[13][2], dtype=np.int64)
         lower = trigram_lower_scores(
             kn, stored[1] if kn else lam2, floor_new, rows, succ2, file_values2, history, dropped2, n123_2, v, pos, alph,
         )  # fmt: skip
@@ -1032,7 +1055,7 @@ def build_ngram_sections(
             (b"TCTB", u4, tctb),
             *EXACT.encode(CONTEXT_TAGS, lengths),
             (b"TSUC", idt, pos),
-            *EXACT.encode(TRIGRAM_TAGS, value3),
+            *codec.encode(TRIGRAM_TAGS, value3),
             (b"TLNI", u4, big[long_ctx]),
             (b"TLNV", u4, tlnv),
             (b"TDRI", u4, big[tdri]),
@@ -1048,7 +1071,7 @@ def build_ngram_sections(
         meta["trigram_summary_min"] = SUMMARY_MIN
         meta["trigram_skyband_min"] = tmin
     sections[0] = (b"META", None, msgpack.packb(meta, use_bin_type=True))
-    return sections, NGRAM_MINOR
+    return sections, QUANT_MINOR if quant else NGRAM_MINOR
 
 
 def build(
@@ -1061,6 +1084,7 @@ def build(
     skyband_min: int = DEFAULT_SKYBAND_MIN,
     trigram_skyband_min: int | None = None,
     fitted: Any = None,
+    codec: Codec = EXACT,
 ) -> None:
     """Fit ``estimator`` to ``counts`` and write the model file atomically to ``path``.
 
@@ -1071,7 +1095,7 @@ def build(
     """
     sections, minor = build_ngram_sections(
         counts, tables, estimator, skyband_k=skyband_k, skyband_min=skyband_min,
-        trigram_skyband_min=trigram_skyband_min, fitted=fitted,
+        trigram_skyband_min=trigram_skyband_min, fitted=fitted, codec=codec,
     )
     atomic_write(path, encode_sections(sections, minor=minor))
 
@@ -1091,6 +1115,11 @@ def rewrite_model(
     """
     check_new_output(src, dst, "tuned model")
     src_meta = read_model(src).meta
+    if "codec" in src_meta:  # the layouts of 1.0-1.2 store exact values only
+        raise InvalidArgumentError(
+            f"a new λ can only be stored in an exact Jelinek-Mercer bigram model (format 1.0-1.2); {os.fspath(src)} is format "
+            f"1.{read_model(src).version[1]} with codec {src_meta['codec'].get('name')!r}"
+        )
     if src_meta["estimator"] != "jm" or src_meta["order"] != 2:
         raise InvalidArgumentError(
             f"a new λ can only be stored in a Jelinek-Mercer bigram model; {os.fspath(src)} is {src_meta['estimator']} order {src_meta['order']}"
@@ -1191,7 +1220,7 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
         raise _fail(
             name,
             f"unsupported format version {major}.{minor} (this library reads {FORMAT_VERSION[0]}.0 to "
-            f"{FORMAT_VERSION[0]}.2 and {FORMAT_VERSION[0]}.{MAX_MINOR})",
+            f"{FORMAT_VERSION[0]}.2, {FORMAT_VERSION[0]}.{NGRAM_MINOR} and {FORMAT_VERSION[0]}.{QUANT_MINOR})",
         )
     if minor == 3:
         raise _fail(
@@ -1342,14 +1371,16 @@ def _check_model_kind(name: str, meta: dict[str, Any], minor: int, tags: set[byt
             raise _fail(name, f"format 1.{minor} files have no 'codec' field (their values are exact)")
         meta["estimator"], meta["order"] = "jm", 2
         return
-    codec_named(name, meta.get("codec"))
+    codec = codec_named(name, meta.get("codec"))
+    if (codec.name != EXACT.name) != (minor == QUANT_MINOR):
+        raise _fail(name, f"format 1.{minor} files do not use codec {codec.name!r} (1.{NGRAM_MINOR}: exact values, 1.{QUANT_MINOR}: quantised)")
     est, order = meta.get("estimator"), meta.get("order")
     if est not in ESTIMATORS:
         raise _fail(name, f"metadata field 'estimator' is invalid: {est!r}"[:200])
     if isinstance(order, bool) or order not in ORDERS:
         raise _fail(name, f"metadata field 'order' is invalid: {order!r}"[:200])
-    if est == "jm" and order == 2:
-        raise _fail(name, f"a Jelinek-Mercer bigram model is a format 1.0-1.2 file, not 1.{minor}")
+    if est == "jm" and order == 2 and minor != QUANT_MINOR:
+        raise _fail(name, f"a Jelinek-Mercer bigram model is a format 1.0-1.2 or 1.{QUANT_MINOR} file, not 1.{minor}")
     if est == "kn":
         ds = meta.get("discounts")
         ok = isinstance(ds, list) and len(ds) == order and all(
@@ -1365,7 +1396,7 @@ def _check_model_kind(name: str, meta: dict[str, Any], minor: int, tags: set[byt
         notes = meta.get("discount_notes", {})
         if not isinstance(notes, dict) or not all(isinstance(k, str) and isinstance(v, str) for k, v in notes.items()):
             raise _fail(name, "metadata field 'discount_notes' is invalid")
-    else:
+    elif order == 3:
         lam3 = meta.get("lambda3")
         if isinstance(lam3, bool) or not isinstance(lam3, (int, float)) or not 0.0 <= float(lam3) <= 1.0:
             raise _fail(name, f"metadata field 'lambda3' is invalid: {lam3!r}"[:200])
@@ -1417,9 +1448,10 @@ def _check_ngram_arrays(name: str, meta: dict[str, Any], a: dict[str, np.ndarray
     _sorted_sparse(name, "HDRI/HDRV", a["HDRI"], a["HDRV"], n_hist)
     if len(a["HDRI"]) and bool(np.any(a["HDRV"] > a["HIST"][a["HDRI"]])):
         raise _fail(name, "section HDRV holds dropped mass above its context total")
+    codec = codec_named(name, meta["codec"])
     if meta["order"] == 3:
         t, j, b = meta["trigrams"], meta["trigram_contexts"], meta["bigrams"]
-        EXACT.check(name, a, TRIGRAM_TAGS, t)
+        codec.check(name, a, TRIGRAM_TAGS, t)
         EXACT.check(name, a, CONTEXT_TAGS, b)
         nseg, K = len(a["TSGS"]), meta["skyband_k"]
         expected = {
@@ -1442,8 +1474,7 @@ def _check_ngram_arrays(name: str, meta: dict[str, Any], a: dict[str, np.ndarray
         return
     rows = a["ROWS"].astype(np.int64)
     row_of = np.repeat(np.arange(n_hist), np.diff(rows))
-    cnts = a["CNTS"].astype(np.int64)
-    cnts[a["BIGI"].astype(np.int64)] = a["BIGC"]
+    cnts = level_values(name, meta, a, BIGRAM_TAGS, meta["bigrams"])
     dropped2 = np.zeros(n_hist, dtype=np.int64)
     dropped2[a["HDRI"].astype(np.int64)] = a["HDRV"]
     if not np.array_equal(np.bincount(row_of, weights=cnts, minlength=n_hist).astype(np.int64) + dropped2, a["HIST"]):
@@ -1453,7 +1484,7 @@ def _check_ngram_arrays(name: str, meta: dict[str, Any], a: dict[str, np.ndarray
         raise _fail(name, "section HN13 disagrees with the bigram values")
     if meta["order"] == 3:
         t, j, b = meta["trigrams"], meta["trigram_contexts"], meta["bigrams"]
-        EXACT.check_full(name, a, TRIGRAM_TAGS)
+        codec.check_full(name, a, TRIGRAM_TAGS)
         small, esc = a["TLEN"], a["TLEI"]
         if len(esc) > 1 and bool(np.any(esc[1:] <= esc[:-1])) or not np.array_equal(np.flatnonzero(small == COUNT_ESCAPE), esc):
             raise _fail(name, "sections TLEN and TLEI disagree")
@@ -1478,7 +1509,7 @@ def _check_ngram_arrays(name: str, meta: dict[str, Any], a: dict[str, np.ndarray
             raise _fail(name, "section TSUC is not strictly increasing within each context")
         if j and int(a["HIST"][ctx_v].min()) == 0:
             raise _fail(name, "a trigram context whose last word has no bigram total")
-        val = EXACT.decode(name, a, TRIGRAM_TAGS).all()
+        val = codec.decode(name, a, TRIGRAM_TAGS, t).all()
         sums = np.bincount(owner, weights=val, minlength=j).astype(np.int64)
         n123_3 = _n123(owner, val, j)
         long_ctx = np.flatnonzero(np.diff(starts) > SUMMARY_MIN)
@@ -1534,7 +1565,6 @@ def _check_arrays(
         "UNIG": n_pos,
         "ROWS": n_hist + 1,
         "SUCC": b,
-        "CNTS": b,
         "SEGE": len(a["SEGS"]),
         "SKYP": len(a["SEGS"]) + 1,
         "SKYC": len(a["SEGS"]) * meta["skyband_k"],
@@ -1544,8 +1574,8 @@ def _check_arrays(
     for label, want in expected.items():
         if len(a[label]) != want:
             raise _fail(name, f"section {label} holds {len(a[label])} entries, expected {want}")
-    if len(a["BIGI"]) != len(a["BIGC"]):
-        raise _fail(name, "sections BIGI and BIGC differ in length")
+    codec = codec_named(name, meta["codec"]) if "codec" in meta else EXACT
+    codec.check(name, a, BIGRAM_TAGS, b)
     if len(trie) != n:
         raise _fail(name, f"trie holds {len(trie)} words, metadata says {n}")
 
@@ -1566,8 +1596,9 @@ def _check_arrays(
     disi = a["DISI"]
     if len(disi) and (disi[-1] >= n or np.any(disi[1:] <= disi[:-1])):
         raise _fail(name, "section DISI is not an increasing list of word ids")
-    _check_escaped_counts(name, a, n, b)
-    ngram = meta["estimator"] != "jm" or meta["order"] != 2
+    if codec is EXACT:
+        _check_escaped_counts(name, a, n, b)
+    ngram = meta["estimator"] != "jm" or meta["order"] != 2 or codec is not EXACT
     if ngram:
         _check_ngram_arrays(name, meta, a, keys=None)
     if not full:
@@ -1580,15 +1611,19 @@ def _check_arrays(
     key = row_of * n_pos + succ
     if b > 1 and np.any(key[1:] <= key[:-1]):
         raise _fail(name, "section SUCC rows are not strictly increasing")
-    if b and (cnts.min() == 0 or (rows[n + 1] - rows[n]) != 0):
-        raise _fail(name, "section CNTS holds a zero count, or </s> has successors")
-    bigi, bigc = a["BIGI"].astype(np.int64), a["BIGC"].astype(np.int64)
-    if len(bigi) and (bigi.max() >= b or np.any(bigi[1:] <= bigi[:-1]) or bigc.min() < COUNT_ESCAPE):
-        raise _fail(name, "sections BIGI/BIGC are inconsistent")
-    if not np.array_equal(np.flatnonzero(cnts == COUNT_ESCAPE), bigi):
-        raise _fail(name, "sections CNTS and BIGI disagree")
-    full_counts = cnts.astype(np.int64)
-    full_counts[bigi] = bigc
+    if b and (rows[n + 1] - rows[n]) != 0:
+        raise _fail(name, "</s> has successors")
+    if codec is EXACT:
+        if b and cnts.min() == 0:
+            raise _fail(name, "section CNTS holds a zero count")
+        bigi, bigc = a["BIGI"].astype(np.int64), a["BIGC"].astype(np.int64)
+        if len(bigi) and (bigi.max() >= b or np.any(bigi[1:] <= bigi[:-1]) or bigc.min() < COUNT_ESCAPE):
+            raise _fail(name, "sections BIGI/BIGC are inconsistent")
+        if not np.array_equal(np.flatnonzero(cnts == COUNT_ESCAPE), bigi):
+            raise _fail(name, "sections CNTS and BIGI disagree")
+    else:
+        codec.check_full(name, a, BIGRAM_TAGS)
+    full_counts = level_values(name, meta, a, BIGRAM_TAGS, b)
     hist = a["HIST"] if "HIST" in a else history_counts(a["UNIG"], n)
     # n-gram files: HIST = row sums + dropped mass, checked with the other 1.4 sections
     if not ngram and not np.array_equal(np.bincount(row_of, weights=full_counts, minlength=n_hist), hist):
@@ -1605,7 +1640,7 @@ def _check_arrays(
             raise _fail(name, "section UNIG disagrees with the bigram rows (continuation counts)")
     elif "HIST" not in a and not np.array_equal(col, a["UNIG"]):
         raise _fail(name, "section UNIG disagrees with the bigram counts")
-    elif "HIST" in a and np.any(col > a["UNIG"]):
+    elif "HIST" in a and codec is EXACT and np.any(col > a["UNIG"]):
         raise _fail(name, "a pruned model holds more pair counts than unigram counts")
     skyp = a["SKYP"].astype(np.int64)
     if skyp[0] != 0 or skyp[-1] != len(a["SKYI"]) or np.any(skyp[1:] < skyp[:-1]):
@@ -1635,6 +1670,12 @@ def _check_arrays(
     if ngram:
         _check_ngram_arrays(name, meta, a, keys=keys)
     _check_derived(name, meta, a, keys, full_counts)
+
+
+def level_values(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], tags: tuple[bytes, bytes, bytes], n: int) -> np.ndarray:
+    """Every decoded value of one level (int64), through the file's codec (exact before 1.4)."""
+    codec = codec_named(name, meta["codec"]) if "codec" in meta else EXACT
+    return np.asarray(codec.decode(name, a, tags, n).all(), dtype=np.int64)
 
 
 def _check_escaped_counts(name: str, a: dict[str, np.ndarray], n: int, b: int) -> None:

@@ -197,10 +197,12 @@ class NwmReader:
         a, n, b, K = self.a, self.n, self.meta["bigrams"], self.meta["skyband_k"]
         lengths = {
             "TKID": n, "IDTK": n, "KEY4": n, "ALPH": n + 2, "APOS": n + 2, "UNIG": n + 2,
-            "ROWS": n + 4, "SUCC": b, "CNTS": b, "SEGE": len(a["SEGS"]),
+            "ROWS": n + 4, "SUCC": b, "SEGE": len(a["SEGS"]),
             "SKYP": len(a["SEGS"]) + 1, "SKYC": len(a["SEGS"]) * K,
-            "TOPK": F * sum(topk_levels(n)), "DISO": len(a["DISI"]) + 1, "BIGC": len(a["BIGI"]),
+            "TOPK": F * sum(topk_levels(n)), "DISO": len(a["DISI"]) + 1,
         }  # fmt: skip
+        if self.version != (1, 5):  # §7.17: a 1.5 file's value sections hold codes (NgramReader reads them)
+            lengths |= {"CNTS": b, "BIGC": len(a["BIGI"])}
         for tag, want in lengths.items():
             if len(a[tag]) != want:
                 raise FormatError(f"{tag} has {len(a[tag])} entries, expected {want}")
@@ -231,7 +233,9 @@ class NwmReader:
         if np.any(np.diff(row_of * (n + 2) + succ) <= 0):
             raise FormatError("SUCC not strictly increasing within a row")
         cnts, bigi = a["CNTS"], a["BIGI"].astype(np.int64)
-        if np.any(cnts == 0) or not np.array_equal(np.flatnonzero(cnts == ESCAPE), bigi) or np.any(a["BIGC"] < ESCAPE):
+        if self.version != (1, 5) and (
+            np.any(cnts == 0) or not np.array_equal(np.flatnonzero(cnts == ESCAPE), bigi) or np.any(a["BIGC"] < ESCAPE)
+        ):
             raise FormatError("CNTS/BIGI/BIGC")
         # §7.9: segments inside one row, word successors only, sorted; bands inside them
         segs, sege = a["SEGS"].astype(np.int64), a["SEGE"].astype(np.int64)
@@ -307,6 +311,8 @@ class NwmReader:
         i = bisect.bisect_left(succ, p, s, e)
         if i == e or succ[i] != p:
             return 0
+        if self.version == (1, 5):
+            return int(self.full_counts()[i])
         c = int(self.a["CNTS"][i])
         if c == ESCAPE:
             j = bisect.bisect_left(self.a["BIGI"], i)
@@ -1011,7 +1017,8 @@ TRIGRAM_14 = {"TCTB": "u32", "TLEN": "u8", "TLEI": "u32", "TLEV": "u32", "TSUC":
               "TSGS": "u32", "TSGE": "u32", "TSKP": "u32", "TSKI": "u16|u32", "TSKC": "u16|u32"}  # fmt: skip
 BASE_14 = {"HIST": "u32", "HDRI": "id", "HDRV": "u32"}
 OPTIONAL_14 = {**BASE_14, "HN13": "u32", **TRIGRAM_14}
-KIND_SECTIONS = {  # §7.11
+KIND_SECTIONS = {  # §7.11; (jm, 2) only in a 1.5 file (§7.17)
+    ("jm", 2): {*BASE_14},
     ("kn", 2): {*BASE_14, "HN13"},
     ("kn", 3): {*BASE_14, "HN13", *TRIGRAM_14},
     ("jm", 3): {*BASE_14, *TRIGRAM_14},
@@ -1019,17 +1026,51 @@ KIND_SECTIONS = {  # §7.11
 SUMMARY_MIN = 32  # §7.15
 
 
+def quant_values(codes: np.ndarray, codebook: np.ndarray, q: int, count: int) -> np.ndarray:
+    """§7.17: ``count`` q-bit codes of a little-endian bit stream, each looked up in the codebook."""
+    if len(codes) != (count * q + 7) // 8:
+        raise FormatError("code section length")
+    cb = codebook.astype(np.int64)
+    if count and (len(cb) < 1 or len(cb) > 1 << q or cb[0] < 1 or np.any(np.diff(cb) <= 0)):
+        raise FormatError("codebook")
+    tail = count * q % 8
+    if tail and int(codes[-1]) >> tail:
+        raise FormatError("unused bits of the last code byte")
+    out = np.zeros(count, dtype=np.int64)
+    data = codes.tobytes() + b"\0"
+    for i in range(count):  # the byte arithmetic of §7.17, one code at a time
+        p = i * q
+        word = data[p // 8] + 256 * data[p // 8 + 1]
+        code = (word >> (p % 8)) & ((1 << q) - 1)
+        if code >= len(cb):
+            raise FormatError("code past the codebook")
+        out[i] = cb[code]
+    return out
+
+
 class NgramReader(NwmReader):
-    """§7.11–7.16: the 1.4 sections; §9.7: probabilities and brute-force rankings."""
+    """§7.11–7.16 (and §7.17 for 1.5): the n-gram sections; §9.7: probabilities and brute-force rankings."""
 
     def __init__(self, path: str | Path) -> None:
         super().__init__(path)
-        if self.version != (1, 4):
-            raise FormatError("not a 1.4 file")
+        if self.version not in ((1, 4), (1, 5)):
+            raise FormatError("not a 1.4 or 1.5 file")
         m = self.meta
-        if m.get("codec") != {"name": "exact", "version": 1}:  # §7.11, §7.12
+        codec = m.get("codec")
+        self.q: int | None = None
+        if self.version == (1, 4) and codec != {"name": "exact", "version": 1}:  # §7.11, §7.12
             raise FormatError("unknown codec")
+        if self.version == (1, 5):  # §7.17
+            if not isinstance(codec, dict) or set(codec) != {"name", "version", "bits"} or codec["name"] != "quant" \
+                    or codec["version"] != 1 or codec["bits"] not in range(2, 9) or isinstance(codec["bits"], bool):
+                raise FormatError("unknown codec")
+            self.q = codec["bits"]
+            if len(self.a["BIGC"]):
+                raise FormatError("BIGC not empty")
+            self._counts = quant_values(self.a["CNTS"], self.a["BIGI"], self.q, m["bigrams"])
         self.kind = (m["estimator"], m["order"])
+        if self.kind == ("jm", 2) and self.version != (1, 5):
+            raise FormatError("a JM bigram is 1.5 only among the n-gram layouts")
         if set(self.sections) - set(LAYOUT) != KIND_SECTIONS[self.kind]:
             raise FormatError("optional sections do not fit the kind")
         n = self.n
@@ -1087,14 +1128,18 @@ class NgramReader(NwmReader):
         if len(self.ctx_entry) != c:
             raise FormatError("trigram_contexts")
         self.starts = np.concatenate([all_starts[self.ctx_entry], [t]])
-        # §7.12: the exact codec
-        val = a["TVAL"].astype(np.int64)
-        tbgi = a["TBGI"].astype(np.int64)
-        if len(val) != t or len(a["TSUC"]) != t or np.any(val == 0) or not np.array_equal(np.flatnonzero(val == ESCAPE), tbgi):
-            raise FormatError("TVAL/TBGI")
-        if len(a["TBGC"]) != len(tbgi) or np.any(a["TBGC"] < ESCAPE):
-            raise FormatError("TBGC")
-        val[tbgi] = a["TBGC"]
+        if self.q is not None:  # §7.17: codes into the trigram codebook
+            if len(a["TBGC"]) or len(a["TSUC"]) != t:
+                raise FormatError("TBGC not empty, or TSUC")
+            val = quant_values(a["TVAL"], a["TBGI"], self.q, t)
+        else:  # §7.12: the exact codec
+            val = a["TVAL"].astype(np.int64)
+            tbgi = a["TBGI"].astype(np.int64)
+            if len(val) != t or len(a["TSUC"]) != t or np.any(val == 0) or not np.array_equal(np.flatnonzero(val == ESCAPE), tbgi):
+                raise FormatError("TVAL/TBGI")
+            if len(a["TBGC"]) != len(tbgi) or np.any(a["TBGC"] < ESCAPE):
+                raise FormatError("TBGC")
+            val[tbgi] = a["TBGC"]
         self.tval = val
         owner = np.repeat(np.arange(c), np.diff(self.starts))
         if np.any(np.diff(owner * (n + 2) + a["TSUC"].astype(np.int64)) <= 0) or np.any(a["TSUC"] >= n + 2):
@@ -1115,6 +1160,11 @@ class NgramReader(NwmReader):
             raise FormatError("TDRI/TDRV")
         self.dropped3 = np.zeros(b, dtype=np.int64)  # by bigram entry
         self.dropped3[tdri] = a["TDRV"]
+
+    def full_counts(self) -> np.ndarray:
+        if self.version == (1, 5):
+            return self._counts  # §7.17: the stored (decoded) values
+        return super().full_counts()
 
     def floor(self, w: int) -> float:  # §9.7 P1
         u = self.a["UNIG"]
@@ -1246,7 +1296,7 @@ def test_worked_kn_trigram_example() -> None:
     import tempfile
 
     text = DOC.read_text(encoding="utf-8")
-    part = text[text.index("### 10.7") : text.index("## 11.")]
+    part = text[text.index("### 10.7") : text.index("### 10.8")]
     first, second = part.split("**A trigram skyband.**")
 
     def quoted(chunk: str) -> dict[str, list[int]]:
@@ -1282,3 +1332,93 @@ def test_worked_kn_trigram_example() -> None:
         for tag, values in q2.items():
             assert r2.a[tag].tolist() == values, tag
         assert r2.check_trigram_bands() == 1
+
+
+# ---------------------------------------------------------------------------------------
+# Format 1.5 (§7.17): the same layout with quantised values, read by the reader above.
+
+
+@pytest.mark.parametrize("smoothing,order,bits", [("jm", 2, 2), ("kn", 2, 3), ("kn", 3, 2), ("jm", 3, 5), ("kn", 3, 7)])
+def test_quantised_files_follow_section_7_17(tmp_path: Path, smoothing: str, order: int, bits: int) -> None:
+    path = tmp_path / "q.nwm"
+    wide = [f"Of the {w}." for w in _syllable_words(70)]
+    nextword.train_texts(REAL + wide, path, smoothing=smoothing, order=order, min_count=1, skyband_min=4, skyband_k=3,
+                         quantize=bits)
+    r = NgramReader(path)
+    model = nextword.load(path)
+    assert r.version == (1, 5) and r.q == bits and r.kind == (smoothing, order)
+    counts = r.full_counts()
+    cb = r.a["BIGI"]
+    assert set(counts.tolist()) <= set(cb.tolist()) and len(cb) <= 1 << bits
+    if bits <= 3:  # the Sam pairs (300, 150) and the rare ones cannot all keep their own value
+        exact = NgramReader(_exact_twin(tmp_path, smoothing, order, wide))
+        assert len(np.unique(exact.full_counts())) > len(cb)
+    # §7.9 with the stored values: every bigram segment's band by brute force
+    a, K = r.a, r.meta["skyband_k"]
+    segs = list(zip(a["SEGS"].tolist(), a["SEGE"].tolist()))
+    assert segs
+    for i, (s, e) in enumerate(segs):
+        ids = [int(a["ALPH"][a["SUCC"][j]]) for j in range(s, e)]
+        _, band, skyc = _brute_band(ids, counts[s:e].tolist(), K)
+        assert a["SKYI"][a["SKYP"][i] : a["SKYP"][i + 1]].tolist() == band, i
+        assert a["SKYC"][i * K : (i + 1) * K].tolist() == skyc, i
+    if order == 3:
+        assert r.check_trigram_bands() > 0
+    rng = random.Random(7)
+    words = [r.keys[i] for i in range(min(r.n, 60))]
+    ctxs = [["<s>"], ["i"], ["am"], ["of", "the"], ["<s>", "i"], ["i", "am"], ["<unk>", "<unk>"]]
+    ctxs += [[rng.choice(words), rng.choice(words)] for _ in range(6)]
+    for hist in ctxs:
+        ids = _ctx_ids(r, hist)
+        total = 0.0
+        for w in range(r.n + 2):
+            key = "</s>" if w == r.n else "<unk>" if w == r.n + 1 else r.keys[w]
+            p = r.prob3(ids, w)
+            assert model.prob_after(key, hist) == pytest.approx(p, rel=1e-12, abs=0), (hist, key)
+            total += p
+        assert total == pytest.approx(1.0, rel=1e-9)  # §7.17: every context still sums to 1
+        for prefix in ["", "s", "t", "a", "re"]:
+            for k in (1, 3, 5):
+                got = model.rank_after(hist, prefix, k)
+                want = r.brute_rank(ids, prefix, k)
+                assert [k for k, _ in got] == [k for k, _ in want], (hist, prefix)
+
+
+def _exact_twin(tmp_path: Path, smoothing: str, order: int, wide: list[str]) -> Path:
+    path = tmp_path / "exact.nwm"
+    if (smoothing, order) == ("jm", 2):  # the exact JM bigram is a 1.0 file: compare a KN bigram's rows instead
+        smoothing = "kn"
+    nextword.train_texts(REAL + wide, path, smoothing=smoothing, order=order, min_count=1, skyband_min=4, skyband_k=3)
+    return path
+
+
+def test_worked_quantised_example(tmp_path: Path) -> None:
+    # §10.8: retrain the example, compare the quoted arrays, the bit arithmetic and the hand computation
+    text = DOC.read_text(encoding="utf-8")
+    part = text[text.index("### 10.8") : text.index("## 11.")]
+    quoted = {m.group(1): [int(x) for x in m.group(2).split(",") if x.strip()]
+              for m in re.finditer(r"^([A-Z0-9]{4}) = \[([^\]]*)\]$", part, re.M)}  # fmt: skip
+    assert set(quoted) == {"CNTS", "BIGI", "BIGC", "HIST"}
+    msgs = ["I am Sam."] * 9 + ["Sam I am."] * 4 + ["I do not like green eggs and ham."] * 3
+    path = tmp_path / "q.nwm"
+    nextword.train_texts(msgs, path, min_count=1, quantize=2)
+    r = NgramReader(path)
+    assert r.meta["codec"] == {"name": "quant", "version": 1, "bits": 2} and "lambda3" not in r.meta
+    for tag, values in quoted.items():
+        assert r.a[tag].tolist() == values, tag
+    assert len(r.a["HDRI"]) == len(r.a["HDRV"]) == 0
+    assert r.a["UNIG"].tolist() == [16, 13, 13, 3, 3, 3, 3, 3, 3, 3, 16, 0]
+    assert r.a["SUCC"].tolist() == [0, 2, 9, 10, 6, 10, 5, 8, 1, 3, 10, 4, 7, 6, 9]  # as §10.3
+    # the exact counts quoted in the text, and their stored values
+    assert r.full_counts().tolist() == [13, 3, 9, 4, 4, 9, 3, 3, 3, 3, 3, 3, 3, 13, 4]
+    assert r.keys[:3] == ["i", "am", "sam"]
+    assert r.prob3((0,), 1) == pytest.approx(0.9 * 13 / 16 + 0.1 * 13 / 79, rel=1e-15)
+    assert r.prob3((r.n + 2,), 0) == pytest.approx(0.9 * 13 / 17 + 0.1 * 16 / 79, rel=1e-15)
+    model = nextword.load(path)
+    assert model.prob("am", "i") == pytest.approx(0.7477056962, abs=1e-10)
+    assert model.prob("i", None) == pytest.approx(0.708488, abs=1e-6)
+    # the q = 5 example of §7.17: code 3 is bits 15..19, (B[1] + 256·B[2]) >> 7, low 5 bits
+    codes = [17, 5, 30, 22, 9]
+    stream = sum(c << (5 * i) for i, c in enumerate(codes)).to_bytes(4, "little")
+    assert ((stream[1] + 256 * stream[2]) >> 7) & 31 == 22
+    assert quant_values(np.frombuffer(stream, dtype=np.uint8), np.arange(1, 33, dtype=np.uint32), 5, 5).tolist() == [c + 1 for c in codes]
