@@ -38,7 +38,8 @@ SETTINGS = settings(max_examples=30, deadline=None, suppress_health_check=[Healt
 # invented word lists for property tests (they check invariants, not the estimate)
 DOMAIN = ["ferry", "deck", "ticket", "harbor", "the", "a", "to", "late", "pier", "ramp"]
 GENERAL = ["the", "a", "to", "of", "and", "river", "bank", "harbor", "was", "late", "town"]
-KINDS = [("jm", 2), ("kn", 2), ("jm", 3), ("kn", 3)]
+# (smoothing, order[, quantised value bits]): every estimator, order and codec can be a part
+KINDS: list[tuple] = [("jm", 2), ("kn", 2), ("jm", 3), ("kn", 3), ("kn", 3, 4), ("jm", 2, 5)]
 
 
 def _real_lines() -> list[str]:
@@ -48,8 +49,9 @@ def _real_lines() -> list[str]:
     return [ln for k in sorted(topics) for ln in topics[k].splitlines() if ln.strip()]
 
 
-def _train(lines: list[str], path: Path, kind: tuple[str, int]) -> nextword.Model:
-    nextword.train_texts(lines, path, smoothing=kind[0], order=kind[1], min_count=1)
+def _train(lines: list[str], path: Path, kind: tuple) -> nextword.Model:
+    extra = {"quantize": kind[2]} if len(kind) > 2 else {}
+    nextword.train_texts(lines, path, smoothing=kind[0], order=kind[1], min_count=1, **extra)
     return nextword.load(path)
 
 
