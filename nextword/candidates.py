@@ -29,9 +29,10 @@ from typing import Any, NamedTuple, Protocol, Sequence
 
 import numpy as np
 
+from .keyboard import Channel
 from .store import TOPK_FANOUT, key_head, topk_levels
 
-__all__ = ["CandidateRange", "CandidateSource", "PrefixRange", "merge_ranked"]
+__all__ = ["CandidateRange", "CandidateSource", "NearMiss", "PrefixRange", "merge_ranked"]
 
 
 class CandidateRange(NamedTuple):
@@ -105,6 +106,7 @@ class PrefixRange:
         self._range_cache: dict[str, tuple[int, int]] = {}
         self._ranges_cache: dict[str, tuple[CandidateRange, ...]] = {}
         self._top_cache: dict[tuple[int, int, int], list[int]] = {}
+        self._next_cache: dict[str, tuple[str, ...]] = {}
 
     def ranges(self, key: str) -> tuple[CandidateRange, ...]:
         """The one range of words starting with ``key``, weight 1.0; none if no word does."""
@@ -144,6 +146,39 @@ class PrefixRange:
         if len(self._range_cache) > 65536:
             self._range_cache.clear()
         self._range_cache[key] = result
+        return result
+
+    def key_at(self, pos: int) -> str:
+        """The key of the word at alphabetical position ``pos``."""
+        return self._trie.restore_key(self._mv_idtk[self._mv_alph[pos]])  # type: ignore[no-any-return]
+
+    def next_letters(self, key: str) -> tuple[str, ...]:
+        """The characters that follow ``key`` in some vocabulary word, alphabetically.
+
+        One key read and one range search per distinct next character (the words sharing
+        ``key + c`` are one contiguous range), cached: near-miss readings ask for the
+        same short prefixes again and again.
+        """
+        hit = self._next_cache.get(key)
+        if hit is not None:
+            return hit
+        lo, hi = self.span(key)
+        n = len(key)
+        out: list[str] = []
+        pos = lo
+        while pos < hi:
+            word = self.key_at(pos)
+            if len(word) <= n:  # the word ``key`` itself comes first
+                pos += 1
+                continue
+            c = word[n]
+            out.append(c)
+            end = self.span(key + c)[1]
+            pos = end if end > pos else pos + 1
+        result = tuple(out)
+        if len(self._next_cache) > 65536:
+            self._next_cache.clear()
+        self._next_cache[key] = result
         return result
 
     def top_ids(self, lo: int, hi: int, k: int) -> list[int]:
@@ -190,6 +225,101 @@ class PrefixRange:
         if level == 0:
             return self._alph[i:j]
         return self._levels[level - 1][i:j, :k].ravel()
+
+
+class NearMiss:
+    """Typo-tolerant candidates: the exact prefix plus the prefixes a slip of the finger turns
+    into what was typed, each weighted by the channel (:class:`~nextword.keyboard.Channel`).
+
+    The readings of a typed prefix come from a depth-first search that builds the intended
+    prefix letter by letter beside the typed letters (match, substitution by a key that
+    could have produced the typed one, omitted letter, extra tap, swapped pair) and stops a
+    branch as soon as its intended prefix starts no vocabulary word (one cached range
+    search), its weight drops below the channel's floor or it has used ``max_edits``
+    edits. So the work depends on the typed prefix and the vocabulary's branching near it,
+    never on the vocabulary size. A reading's weight is its best alignment's product
+    (:meth:`Channel.weight`, the dynamic-programming reference it is tested against).
+
+    A prefix whose shorter prefix is also a reading with at least its weight adds nothing
+    (its words are in the shorter prefix's range with a weight as high) and is dropped;
+    the rest become ranges, best weight first. A prefix that ends in an omitted letter is
+    never generated for the same reason. When no near miss survives, the result is
+    exactly :meth:`PrefixRange.ranges` (one range, weight 1.0): answers and speed are those
+    of the plain prefix.
+    """
+
+    def __init__(self, prefixes: PrefixRange, channel: Channel) -> None:
+        self.prefixes = prefixes
+        self.channel = channel
+        self._cache: dict[str, tuple[CandidateRange, ...]] = {}
+
+    def ranges(self, key: str) -> tuple[CandidateRange, ...]:
+        """Ranges of the readings of the folded typed prefix ``key``, best weight first."""
+        hit = self._cache.get(key)
+        if hit is not None:
+            return hit
+        if not key:
+            return self.prefixes.ranges(key)
+        best = self.readings(key)
+        kept: list[tuple[float, str]] = []
+        for p, w in best.items():
+            if any(best.get(p[:i], 0.0) >= w for i in range(1, len(p))):
+                continue
+            kept.append((w, p))
+        kept.sort(key=lambda e: (-e[0], e[1]))
+        span = self.prefixes.span
+        result = tuple(CandidateRange(*span(p), w) for w, p in kept)
+        if len(self._cache) > 16384:
+            self._cache.clear()
+        self._cache[key] = result
+        return result
+
+    def readings(self, key: str) -> dict[str, float]:
+        """Every vocabulary prefix that reads as the typed ``key``, with its best weight."""
+        ch = self.channel
+        floor, max_edits, m = ch.floor, ch.max_edits, len(key)
+        span = self.prefixes.span
+        nexts = self.prefixes.next_letters
+        sources, omit, swap = ch.sources, ch.omit_weight, ch.swap_weight
+        insertion = ch.insertion_weight
+        best: dict[str, float] = {}
+
+        def live(p: str) -> bool:
+            lo, hi = span(p)
+            return lo < hi
+
+        def visit(a: int, p: str, w: float, e: int) -> None:
+            if a == m:
+                if w > best.get(p, 0.0):
+                    best[p] = w
+                return
+            x = key[a]
+            px = p + x
+            if live(px):
+                visit(a + 1, px, w, e)
+            if e == max_edits:
+                return
+            e1 = e + 1
+            for y, r in sources.get(x, ()):
+                w2 = w * r
+                if w2 < floor:
+                    break
+                py = p + y
+                if live(py):
+                    visit(a + 1, py, w2, e1)
+            r = insertion(p[-1] if p else None, x)
+            if r > 0.0 and w * r >= floor:
+                visit(a + 1, p, w * r, e1)
+            if omit > 0.0 and w * omit >= floor:
+                for y in nexts(p):
+                    visit(a, p + y, w * omit, e1)
+            if swap > 0.0 and a + 1 < m and key[a + 1] != x and w * swap >= floor:
+                pyx = p + key[a + 1] + x
+                if live(pyx):
+                    visit(a + 2, pyx, w * swap, e1)
+
+        visit(0, "", 1.0, 0)
+        return best
 
 
 def merge_ranked(ranked: Sequence[tuple[float, Sequence[tuple[int, float]]]], k: int) -> list[tuple[int, float]]:

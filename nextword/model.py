@@ -14,6 +14,7 @@ tests compare it with scoring every word.
 from __future__ import annotations
 
 import bisect
+import heapq
 import math
 import os
 import sys
@@ -26,7 +27,8 @@ from .estimators import Level, unigram_floor
 from .estimators.jm import jm_alpha, jm_gamma, jm_step
 from .ngrams import NgramCounts
 from .errors import InvalidArgumentError, ModelFormatError
-from .candidates import CandidateRange, PrefixRange, merge_ranked
+from .candidates import CandidateRange, CandidateSource, NearMiss, PrefixRange, merge_ranked
+from .keyboard import Channel
 from .store import (
     COUNT_ESCAPE,
     CONTEXT_TAGS,
@@ -144,6 +146,9 @@ class Model:
             trie=self._trie, idtk=self._mv_idtk, alph_view=self._mv_alph, key4=self._mv_key4,
             alph=self._alph, topk=a["TOPK"], n_words=n, max_key_chars=self._max_key,
         )
+        # near-miss sources per typing channel (typo-tolerant queries), built on first use
+        self._near: dict[Channel, NearMiss] = {}
+        self._pmax_cache: dict[Any, float] = {}
         #: alphabetical positions [lo, hi) of the words starting with a folded prefix
         self._prefix_range: Callable[[str], tuple[int, int]] = self._candidates.span
         #: the k most frequent word ids of an alphabetical range (the ranking's lower bound)
@@ -593,7 +598,22 @@ class Model:
                     ranked.append((wid, 0.0))
         return ranked
 
-    def suggest(self, typed: str, k: int = 3, *, lam: float | None = None) -> list[Suggestion]:
+    def _source(self, typo: Channel | None) -> CandidateSource:
+        """The candidate source of a query: exact prefixes, or near misses under ``typo``."""
+        if typo is None:
+            return self._candidates
+        if not isinstance(typo, Channel):
+            raise InvalidArgumentError(f"typo must be a nextword.keyboard.Channel or None, got {type(typo).__name__}")
+        src = self._near.get(typo)
+        if src is None:
+            if len(self._near) > 16:
+                self._near.clear()
+            src = self._near[typo] = NearMiss(self._candidates, typo)
+        return src
+
+    def suggest(
+        self, typed: str, k: int = 3, *, lam: float | None = None, typo: Channel | None = None
+    ) -> list[Suggestion]:
         """The k words the user most likely wants at the cursor, best first.
 
         If ``typed`` ends inside a word, that partial word is completed
@@ -601,6 +621,12 @@ class Model:
         last complete word of the same sentence (the sentence start if none, the unknown
         symbol right after a number or symbol). Suggestions are capitalised at a sentence
         start and after a capitalised prefix; an explicitly lowercase prefix stays lowercase.
+
+        With ``typo`` (a :class:`~nextword.keyboard.Channel`) the partial word may hold
+        slips of the finger: words are ranked by channel weight × probability over the
+        prefixes that read as what was typed (:class:`~nextword.candidates.NearMiss`), and
+        the scores are those products, no longer probabilities. Off by default: the exact
+        prefix answer stays what it always was.
         """
         if not isinstance(typed, str):
             raise InvalidArgumentError(f"typed must be str, got {type(typed).__name__}")
@@ -609,7 +635,7 @@ class Model:
         ctx = parse_typed(typed)
         if self._general:
             lams = self._ng_lams(lam)
-            rs = self._candidates.ranges(fold(ctx.prefix))
+            rs = self._source(typo).ranges(fold(ctx.prefix))
             if not rs:
                 return []
             ids = self._context_ids(ctx.history)
@@ -626,7 +652,7 @@ class Model:
         else:
             wid = self._word_id(fold(ctx.previous))
             v = self._unk if wid is None else wid
-        rs = self._candidates.ranges(fold(ctx.prefix))
+        rs = self._source(typo).ranges(fold(ctx.prefix))
         if not rs:
             return []
         try:
@@ -642,7 +668,10 @@ class Model:
         except (IndexError, ValueError, UnicodeDecodeError) as e:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
 
-    def rank_ids(self, previous_word: str | None, prefix: str = "", k: int = 3, *, lam: float | None = None) -> list[tuple[str, float]]:
+    def rank_ids(
+        self, previous_word: str | None, prefix: str = "", k: int = 3, *, lam: float | None = None,
+        typo: Channel | None = None,
+    ) -> list[tuple[str, float]]:
         """(key, probability) of the top k after ``previous_word`` among words starting with ``prefix``.
 
         The raw ranking behind :meth:`suggest`, without text parsing or capitalisation;
@@ -651,9 +680,9 @@ class Model:
         k = check_k(k)
         lam = None if lam is None else check_lam(lam)
         if self._general:
-            return self.rank_after((previous_word,), prefix, k, lam=lam)
+            return self.rank_after((previous_word,), prefix, k, lam=lam, typo=typo)
         v = self._history_id(previous_word)
-        rs = self._candidates.ranges(fold(prefix))
+        rs = self._source(typo).ranges(fold(prefix))
         if not rs:
             return []
         try:
@@ -662,13 +691,17 @@ class Model:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
 
     def rank_after(
-        self, history: Sequence[str | None], prefix: str = "", k: int = 3, *, lam: float | None = None
+        self, history: Sequence[str | None], prefix: str = "", k: int = 3, *, lam: float | None = None,
+        typo: Channel | None = None,
     ) -> list[tuple[str, float]]:
-        """Like :meth:`rank_ids` with a context of tokens oldest first (see :meth:`prob_after`)."""
+        """Like :meth:`rank_ids` with a context of tokens oldest first (see :meth:`prob_after`).
+
+        With ``typo``, scores are channel weight × probability (see :meth:`suggest`).
+        """
         k = check_k(k)
         lam = None if lam is None else check_lam(lam)
         ctx = self._context_ids(history)
-        rs = self._candidates.ranges(fold(prefix))
+        rs = self._source(typo).ranges(fold(prefix))
         if not rs:
             return []
         try:
@@ -692,8 +725,42 @@ class Model:
             lo, hi, w = ranges[0]
             if w == 1.0:
                 return rank(context, lo, hi, k, weights)
-        per = [(w, rank(context, lo, hi, k, weights)) for lo, hi, w in ranges]
+        # Several weighted ranges (near misses): rank them best weight first and stop once
+        # a range's weight × the context's best probability anywhere falls below the k-th
+        # score so far: none of its words can enter the top k (strictly below, so not
+        # even a tie is lost), and neither can any later range's.
+        per: list[tuple[float, list[tuple[int, float]]]] = []
+        best: dict[int, float] = {}
+        kth = -1.0
+        pmax: float | None = None
+        for lo, hi, w in sorted(ranges, key=lambda r: -r[2]):
+            if len(best) >= k:
+                if pmax is None:
+                    pmax = self._best_prob(rank, context, weights)
+                if w * pmax < kth:
+                    break
+            pairs = rank(context, lo, hi, k, weights)
+            per.append((w, pairs))
+            for wid, p in pairs:
+                s = w * p
+                if s > best.get(wid, -1.0):
+                    best[wid] = s
+            if len(best) >= k:
+                kth = heapq.nlargest(k, best.values())[-1]
         return merge_ranked(per, k)
+
+    def _best_prob(self, rank: Callable[[Any, int, int, int, Any], list[tuple[int, float]]], context: Any,
+                   weights: Any) -> float:
+        """The highest P(word | context) over the whole vocabulary (cached per context)."""
+        key = (context, weights)
+        hit = self._pmax_cache.get(key)
+        if hit is None:
+            top = rank(context, 0, self.n_words, 1, weights)
+            hit = top[0][1] if top else 1.0
+            if len(self._pmax_cache) > 4096:
+                self._pmax_cache.clear()
+            self._pmax_cache[key] = hit
+        return hit
 
     def header(self) -> dict[str, Any]:
         """The file's metadata as plain data (a copy): estimator, order, λ or discounts, sizes."""
