@@ -252,6 +252,8 @@ class NearMiss:
         self.prefixes = prefixes
         self.channel = channel
         self._cache: dict[str, tuple[CandidateRange, ...]] = {}
+        self._fronts: dict[str, dict[tuple[str, int], float]] = {}
+        self._closures: dict[str, dict[tuple[str, int], float]] = {}
 
     def ranges(self, key: str) -> tuple[CandidateRange, ...]:
         """Ranges of the readings of the folded typed prefix ``key``, best weight first."""
@@ -276,50 +278,92 @@ class NearMiss:
 
     def readings(self, key: str) -> dict[str, float]:
         """Every vocabulary prefix that reads as the typed ``key``, with its best weight."""
-        ch = self.channel
-        floor, max_edits, m = ch.floor, ch.max_edits, len(key)
-        span = self.prefixes.span
-        nexts = self.prefixes.next_letters
-        sources, omit, swap = ch.sources, ch.omit_weight, ch.swap_weight
-        insertion = ch.insertion_weight
         best: dict[str, float] = {}
-
-        def live(p: str) -> bool:
-            lo, hi = span(p)
-            return lo < hi
-
-        def visit(a: int, p: str, w: float, e: int) -> None:
-            if a == m:
-                if w > best.get(p, 0.0):
-                    best[p] = w
-                return
-            x = key[a]
-            px = p + x
-            if live(px):
-                visit(a + 1, px, w, e)
-            if e == max_edits:
-                return
-            e1 = e + 1
-            for y, r in sources.get(x, ()):
-                w2 = w * r
-                if w2 < floor:
-                    break
-                py = p + y
-                if live(py):
-                    visit(a + 1, py, w2, e1)
-            r = insertion(p[-1] if p else None, x)
-            if r > 0.0 and w * r >= floor:
-                visit(a + 1, p, w * r, e1)
-            if omit > 0.0 and w * omit >= floor:
-                for y in nexts(p):
-                    visit(a, p + y, w * omit, e1)
-            if swap > 0.0 and a + 1 < m and key[a + 1] != x and w * swap >= floor:
-                pyx = p + key[a + 1] + x
-                if live(pyx):
-                    visit(a + 2, pyx, w * swap, e1)
-
-        visit(0, "", 1.0, 0)
+        for (p, _e), w in self._frontier(key).items():
+            if w > best.get(p, 0.0):
+                best[p] = w
         return best
+
+    # The search, one typed letter at a time. A state is (intended prefix, edits used) with
+    # the best weight of the alignments reaching it; which moves a state allows next
+    # depends only on the state, and weights only shrink along a path (every move weighs
+    # at most 1), so keeping the best weight per state loses no reading, and pruning at
+    # the floor loses none that ends above it (max and × by a positive number commute in
+    # floating point too, so the weights are those of the path-by-path products).
+    # ``_frontier(q)`` holds the states after consuming all of q (no trailing omission);
+    # ``_closure(q)`` adds the states reached from them by omitted letters. Both are
+    # cached per typed prefix, so a keystroke costs the moves out of the last states only.
+
+    def _frontier(self, key: str) -> dict[tuple[str, int], float]:
+        hit = self._fronts.get(key)
+        if hit is not None:
+            return hit
+        if not key:
+            out = {("", 0): 1.0}
+        else:
+            out = {}
+            ch = self.channel
+            floor, max_edits = ch.floor, ch.max_edits
+            span = self.prefixes.span
+            x = key[-1]
+            subs = ch.sources.get(x, ())
+            insertion = ch.insertion_weight
+
+            def put(p: str, e: int, w: float) -> None:
+                if w > out.get((p, e), 0.0):
+                    out[p, e] = w
+
+            for (p, e), w in self._closure(key[:-1]).items():
+                px = p + x
+                lo, hi = span(px)
+                if lo < hi:
+                    put(px, e, w)
+                if e == max_edits:
+                    continue
+                for y, r in subs:
+                    w2 = w * r
+                    if w2 < floor:
+                        break
+                    lo, hi = span(p + y)
+                    if lo < hi:
+                        put(p + y, e + 1, w2)
+                r = insertion(p[-1] if p else None, x)
+                if r > 0.0 and w * r >= floor:
+                    put(p, e + 1, w * r)
+            swap = ch.swap_weight
+            if len(key) >= 2 and swap > 0.0 and key[-2] != x:
+                tail = x + key[-2]
+                for (p, e), w in self._closure(key[:-2]).items():
+                    if e < max_edits and w * swap >= floor:
+                        lo, hi = span(p + tail)
+                        if lo < hi:
+                            put(p + tail, e + 1, w * swap)
+        if len(self._fronts) > 65536:
+            self._fronts.clear()
+            self._closures.clear()
+        self._fronts[key] = out
+        return out
+
+    def _closure(self, key: str) -> dict[tuple[str, int], float]:
+        hit = self._closures.get(key)
+        if hit is not None:
+            return hit
+        ch = self.channel
+        omit, floor, max_edits = ch.omit_weight, ch.floor, ch.max_edits
+        out = dict(self._frontier(key))
+        todo = list(out.items())
+        while todo:
+            (p, e), w = todo.pop()
+            if e == max_edits or omit <= 0.0 or w * omit < floor:
+                continue
+            w2 = w * omit
+            for y in self.prefixes.next_letters(p):
+                st = (p + y, e + 1)
+                if w2 > out.get(st, 0.0):
+                    out[st] = w2
+                    todo.append((st, w2))
+        self._closures[key] = out
+        return out
 
 
 def merge_ranked(ranked: Sequence[tuple[float, Sequence[tuple[int, float]]]], k: int) -> list[tuple[int, float]]:

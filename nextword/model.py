@@ -46,6 +46,9 @@ __all__ = ["Model", "Suggestion", "load", "check_k", "check_lam"]
 #: sections whose size grows with the number of stored pairs, and with the vocabulary (for ``info``)
 _PAIR_SECTIONS = ("SUCC", "CNTS", "BIGI", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC")
 _VOCAB_SECTIONS = ("TKID", "IDTK", "ALPH", "APOS", "KEY4", "TOPK", "UNIG", "ROWS", "HIST", "DISI", "DISO")
+#: how many of a context's best words bound the near-miss ranges (Model._context_top): the
+#: stored skyband depth, so the list comes from the bands without scanning a segment
+_BOUND_TOP = 8
 # below this many successor candidates, plain Python beats numpy's per-call overhead
 _SMALL = 80
 #: a plain trigram row range longer than this is cut with numpy before the Python scoring (_NgramScorer;
@@ -148,7 +151,7 @@ class Model:
         )
         # near-miss sources per typing channel (typo-tolerant queries), built on first use
         self._near: dict[Channel, NearMiss] = {}
-        self._pmax_cache: dict[Any, float] = {}
+        self._top_cache: dict[Any, tuple[list[int], list[float], float]] = {}
         #: alphabetical positions [lo, hi) of the words starting with a folded prefix
         self._prefix_range: Callable[[str], tuple[int, int]] = self._candidates.span
         #: the k most frequent word ids of an alphabetical range (the ranking's lower bound)
@@ -725,20 +728,29 @@ class Model:
             lo, hi, w = ranges[0]
             if w == 1.0:
                 return rank(context, lo, hi, k, weights)
-        # Several weighted ranges (near misses): rank them best weight first and stop once
-        # a range's weight × the context's best probability anywhere falls below the k-th
-        # score so far: none of its words can enter the top k (strictly below, so not
-        # even a tie is lost), and neither can any later range's.
+        # Several weighted ranges (near misses): rank them best weight first, but skip a
+        # range when its weight × an upper bound of P(word | context) over it is below the
+        # k-th score so far: none of its words can enter the top k (strictly below, so not
+        # even a tie is lost). The bound comes from the context's top list over the whole
+        # vocabulary (its first _BOUND_TOP words, cached per context): a range holding
+        # some of them is bounded by the best of those, any other word by the list's last
+        # probability.
         per: list[tuple[float, list[tuple[int, float]]]] = []
         best: dict[int, float] = {}
         kth = -1.0
-        pmax: float | None = None
+        top: tuple[list[int], list[float], float] | None = None
         for lo, hi, w in sorted(ranges, key=lambda r: -r[2]):
             if len(best) >= k:
-                if pmax is None:
-                    pmax = self._best_prob(rank, context, weights)
-                if w * pmax < kth:
-                    break
+                if top is None:
+                    top = self._context_top(rank, context, weights)
+                pos, probs, rest = top
+                i = bisect.bisect_left(pos, lo)
+                j = bisect.bisect_left(pos, hi, i)
+                bound = max(probs[i:j]) if j > i else rest
+                if bound < rest:
+                    bound = rest
+                if w * bound < kth:
+                    continue
             pairs = rank(context, lo, hi, k, weights)
             per.append((w, pairs))
             for wid, p in pairs:
@@ -749,17 +761,21 @@ class Model:
                 kth = heapq.nlargest(k, best.values())[-1]
         return merge_ranked(per, k)
 
-    def _best_prob(self, rank: Callable[[Any, int, int, int, Any], list[tuple[int, float]]], context: Any,
-                   weights: Any) -> float:
-        """The highest P(word | context) over the whole vocabulary (cached per context)."""
+    def _context_top(
+        self, rank: Callable[[Any, int, int, int, Any], list[tuple[int, float]]], context: Any, weights: Any
+    ) -> tuple[list[int], list[float], float]:
+        """The context's best _BOUND_TOP words over the whole vocabulary, by alphabetical
+        position: (positions ascending, their probabilities, the bound of every other word)."""
         key = (context, weights)
-        hit = self._pmax_cache.get(key)
+        hit = self._top_cache.get(key)
         if hit is None:
-            top = rank(context, 0, self.n_words, 1, weights)
-            hit = top[0][1] if top else 1.0
-            if len(self._pmax_cache) > 4096:
-                self._pmax_cache.clear()
-            self._pmax_cache[key] = hit
+            top = rank(context, 0, self.n_words, _BOUND_TOP, weights)
+            rest = top[-1][1] if len(top) == _BOUND_TOP else 0.0  # fewer: the list holds every word
+            by_pos = sorted((self._mv_apos[wid], p) for wid, p in top)
+            hit = ([q for q, _ in by_pos], [p for _, p in by_pos], rest)
+            if len(self._top_cache) > 4096:
+                self._top_cache.clear()
+            self._top_cache[key] = hit
         return hit
 
     def header(self) -> dict[str, Any]:
