@@ -139,6 +139,9 @@ class PrefixRange:
             lo = bisect.bisect_left(head, key_head(key, 0x00), 0, n)
             hi = bisect.bisect_right(head, key_head(key, 0xFF), lo, n)
             if len(key.encode("utf-8")) > 4 and lo < hi:
+                parent = self._range_cache.get(key[:-1])
+                if parent is not None:  # the words starting with key are among those starting with key[:-1]
+                    lo, hi = max(lo, parent[0]), min(hi, parent[1])
                 seq = _AlphaKeys(self._trie.restore_key, self._mv_idtk, self._mv_alph, len(key))
                 lo = bisect.bisect_left(seq, key, lo, hi)
                 hi = bisect.bisect_right(seq, key, lo, hi)
@@ -262,19 +265,20 @@ class NearMiss:
             return hit
         if not key:
             return self.prefixes.ranges(key)
-        best = self.readings(key)
-        kept: list[tuple[float, str]] = []
-        for p, w in best.items():
-            if any(best.get(p[:i], 0.0) >= w for i in range(1, len(p))):
-                continue
-            kept.append((w, p))
-        kept.sort(key=lambda e: (-e[0], e[1]))
         span = self.prefixes.span
-        result = tuple(CandidateRange(*span(p), w) for w, p in kept)
+        result = tuple(CandidateRange(*span(p), w) for p, w in self.prefix_weights(key))
         if len(self._cache) > 16384:
             self._cache.clear()
         self._cache[key] = result
         return result
+
+    def prefix_weights(self, key: str) -> list[tuple[str, float]]:
+        """The intended prefixes behind typed ``key`` with their weights, best first (ties by
+        prefix), without those a shorter prefix of the list covers with at least their weight."""
+        best = self.readings(key)
+        kept = [(p, w) for p, w in best.items() if not any(best.get(p[:i], 0.0) >= w for i in range(1, len(p)))]
+        kept.sort(key=lambda e: (-e[1], e[0]))
+        return kept
 
     def readings(self, key: str) -> dict[str, float]:
         """Every vocabulary prefix that reads as the typed ``key``, with its best weight."""

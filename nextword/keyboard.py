@@ -44,6 +44,8 @@ from .text import fold
 __all__ = [
     "LAYOUTS",
     "DEFAULT_SIGMA",
+    "DEFAULT_TYPO_RATE",
+    "DEFAULT_FLOOR",
     "Layout",
     "Channel",
     "load_layout",
@@ -59,6 +61,18 @@ LAYOUTS: tuple[str, ...] = ("qwerty", "azerty", "qwertz")
 #: order of magnitude of the touch spreads reported for phone keyboards (from memory);
 #: it only shapes *which* neighbour a miss hits, the miss rate is set separately.
 DEFAULT_SIGMA = 0.5
+
+#: the substitution rate the typing channel assumes unless told (:meth:`Channel.from_rate`;
+#: omissions, insertions and swaps at a tenth of it). Deliberately far below the slip
+#: rates a typist really has: it is the weight of the typed letters against the language
+#: model, chosen on a tune split of the fortunes held out from both the model and the
+#: benchmark's test part (bench/bench_typo.py --tune): at 0.002 the error-free typist loses
+#: about 0.1 point of KSR@3 and a typist with 5% slips gets back over 60% of what the slips
+#: cost; larger values recover no more and cost more at 0% (docs in bench/RESULTS.md).
+DEFAULT_TYPO_RATE = 0.002
+
+#: the lowest relative weight a reading may have (see :class:`Channel`)
+DEFAULT_FLOOR = 1e-6
 
 _FORMAT = "nextword-layout"
 _VERSION = 1
@@ -206,13 +220,13 @@ class Channel:
         self,
         layout: Layout | None = None,
         *,
-        substitution: float = 0.05,
-        omission: float = 0.005,
-        insertion: float = 0.005,
-        transposition: float = 0.005,
+        substitution: float = DEFAULT_TYPO_RATE,
+        omission: float = DEFAULT_TYPO_RATE / 10,
+        insertion: float = DEFAULT_TYPO_RATE / 10,
+        transposition: float = DEFAULT_TYPO_RATE / 10,
         sigma: float = DEFAULT_SIGMA,
         max_edits: int = 1,
-        floor: float = 1e-4,
+        floor: float = DEFAULT_FLOOR,
     ) -> None:
         self.layout = load_layout("qwerty") if layout is None else layout
         if not isinstance(self.layout, Layout):
@@ -262,7 +276,7 @@ class Channel:
         self._key = (self.layout, self.rates, self.sigma, self.max_edits, self.floor)
 
     @classmethod
-    def from_rate(cls, rate: float, layout: Layout | None = None, **knobs: Any) -> Channel:
+    def from_rate(cls, rate: float = DEFAULT_TYPO_RATE, layout: Layout | None = None, **knobs: Any) -> Channel:
         """A channel expecting letter substitutions at ``rate`` and the other slips at a tenth of it."""
         r = _rate("typo rate", rate)
         return cls(layout, substitution=r, omission=r / 10, insertion=r / 10, transposition=r / 10, **knobs)

@@ -789,6 +789,22 @@ class Model:
     # its own counts with this model's P(w | context) and ranks exactly with the model's
     # own exact top k (rank_after) as one candidate source; these give it the rest.
 
+    def typo_prefixes(self, prefix: str, typo: Channel) -> list[tuple[str, float]]:
+        """The vocabulary prefixes typed ``prefix`` may have meant under the channel ``typo``,
+        with their channel weights, best first (:meth:`NearMiss.prefix_weights`; the exact
+        prefix, when words start with it, weighs 1.0). What a layer ranking on top of
+        this model needs to be typo-tolerant the same way."""
+        if not isinstance(prefix, str):
+            raise InvalidArgumentError(f"prefix must be str, got {type(prefix).__name__}")
+        if not isinstance(typo, Channel):
+            raise InvalidArgumentError(f"typo must be a nextword.keyboard.Channel, got {type(typo).__name__}")
+        src = self._source(typo)
+        assert isinstance(src, NearMiss)
+        key = fold(prefix)
+        if not key:
+            return [("", 1.0)]
+        return src.prefix_weights(key)
+
     def tie_rank(self, word: str) -> int:
         """Where ``word`` goes among words of equal probability: its id (floor descending, then key).
 
