@@ -184,6 +184,15 @@ class PrefixRange:
         self._next_cache[key] = result
         return result
 
+    def extends(self, key: str, c: str) -> bool:
+        """Whether some vocabulary word starts with ``key + c``: from the cached next
+        characters of ``key`` when known, else one walk down the trie (several times
+        cheaper than a range search, and near-miss searches test many dead prefixes)."""
+        nxt = self._next_cache.get(key)
+        if nxt is not None:
+            return c in nxt
+        return next(self._trie.iterkeys(key + c), None) is not None
+
     def top_ids(self, lo: int, hi: int, k: int) -> list[int]:
         """The k smallest word ids (= highest floor probability) among alphabetical positions [lo, hi).
 
@@ -308,7 +317,7 @@ class NearMiss:
             out = {}
             ch = self.channel
             floor, max_edits = ch.floor, ch.max_edits
-            span = self.prefixes.span
+            extends = self.prefixes.extends
             x = key[-1]
             subs = ch.sources.get(x, ())
             insertion = ch.insertion_weight
@@ -318,18 +327,15 @@ class NearMiss:
                     out[p, e] = w
 
             for (p, e), w in self._closure(key[:-1]).items():
-                px = p + x
-                lo, hi = span(px)
-                if lo < hi:
-                    put(px, e, w)
+                if extends(p, x):
+                    put(p + x, e, w)
                 if e == max_edits:
                     continue
                 for y, r in subs:
                     w2 = w * r
                     if w2 < floor:
                         break
-                    lo, hi = span(p + y)
-                    if lo < hi:
+                    if extends(p, y):
                         put(p + y, e + 1, w2)
                 r = insertion(p[-1] if p else None, x)
                 if r > 0.0 and w * r >= floor:
@@ -338,10 +344,8 @@ class NearMiss:
             if len(key) >= 2 and swap > 0.0 and key[-2] != x:
                 tail = x + key[-2]
                 for (p, e), w in self._closure(key[:-2]).items():
-                    if e < max_edits and w * swap >= floor:
-                        lo, hi = span(p + tail)
-                        if lo < hi:
-                            put(p + tail, e + 1, w * swap)
+                    if e < max_edits and w * swap >= floor and extends(p, x) and extends(p + x, key[-2]):
+                        put(p + tail, e + 1, w * swap)
         if len(self._fronts) > 65536:
             self._fronts.clear()
             self._closures.clear()
