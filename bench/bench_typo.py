@@ -86,21 +86,30 @@ def typed_queries(held: list[str], typist: NoisyTypist, n: int) -> list[str]:
 
 
 def timing(path: Path, queries: list[str], channel: Channel) -> dict[str, dict[str, float]]:
+    """Percentiles of each query's wall time and of the thread's CPU time in it, exact and
+    tolerant, interleaved query by query. On a shared machine a time slice lost to another
+    process lands in the wall time of whichever call it hits (a few ms on a loaded 2-core
+    box), so the CPU time is the engine's own cost and the wall time what a caller saw."""
     exact, tolerant = nextword.load(path), nextword.load(path)
-    te, tt = [], []
-    clock = time.perf_counter
+    walls: dict[str, list[float]] = {"exact": [], "tolerant": []}
+    cpus: dict[str, list[float]] = {"exact": [], "tolerant": []}
+    wall, cpu = time.perf_counter, time.thread_time
     for q in queries:  # interleaved: the same machine state for both
-        t0 = clock()
+        w0, c0 = wall(), cpu()
         exact.suggest(q, 3)
-        t1 = clock()
+        w1, c1 = wall(), cpu()
         tolerant.suggest(q, 3, typo=channel)
-        t2 = clock()
-        te.append(t1 - t0)
-        tt.append(t2 - t1)
+        w2, c2 = wall(), cpu()
+        walls["exact"].append(w1 - w0)
+        walls["tolerant"].append(w2 - w1)
+        cpus["exact"].append(c1 - c0)
+        cpus["tolerant"].append(c2 - c1)
+
     def pct(xs: list[float]) -> dict[str, float]:
         a = np.asarray(xs) * 1e6
         return {"p50": float(np.percentile(a, 50)), "p95": float(np.percentile(a, 95)), "p99": float(np.percentile(a, 99))}
-    return {"exact": pct(te), "tolerant": pct(tt)}
+
+    return {f"{name} {kind}": pct(xs) for kind, d in (("wall", walls), ("cpu", cpus)) for name, xs in d.items()}
 
 
 def curve_figure(curves: dict[str, dict[str, list[float]]]) -> Any:
@@ -214,11 +223,14 @@ def main(argv: list[str] | None = None) -> int:
                           f"{'met' if abs(zero_delta) <= 0.2 else 'missed'}).")
             queries = typed_queries(held, NoisyTypist(substitution=0.05, seed=args.seed), args.queries)
             tm = timing(path, queries, channel)
-            e, o = tm["exact"], tm["tolerant"]
-            checks.append(f"  suggest latency over {len(queries):,} typed texts of the 5% typist, each timed once, "
-                          f"interleaved: exact prefix p50 {e['p50']:.0f} / p95 {e['p95']:.0f} / p99 {e['p99']:.0f} µs, "
-                          f"tolerant p50 {o['p50']:.0f} / p95 {o['p95']:.0f} / **p99 {o['p99']:.0f} µs** (target ≤ 300: "
-                          f"{'met' if o['p99'] <= 300 else 'missed'}).")
+            line = []
+            for kind in ("cpu", "wall"):
+                e, o = tm[f"exact {kind}"], tm[f"tolerant {kind}"]
+                line.append(f"{'CPU time' if kind == 'cpu' else 'wall time'}: exact prefix p50 {e['p50']:.0f} / p95 "
+                            f"{e['p95']:.0f} / p99 {e['p99']:.0f} µs, tolerant p50 {o['p50']:.0f} / p95 {o['p95']:.0f} / "
+                            f"**p99 {o['p99']:.0f} µs** (target ≤ 300: {'met' if o['p99'] <= 300 else 'missed'})")
+            checks.append(f"  suggest latency over {len(queries):,} typed texts of the 5% typist (typed in full, slips "
+                          f"kept), each timed once on a freshly loaded file, interleaved — {'; '.join(line)}.")
             sections += [f"**{label}** (`nextword.train` defaults otherwise)", "", *rows, ""]
             model.close()
         sections += ["Targets:", "", *checks, ""]
