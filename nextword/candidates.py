@@ -346,7 +346,7 @@ class NearMiss:
                 for (p, e), w in self._closure(key[:-2]).items():
                     if e < max_edits and w * swap >= floor and extends(p, x) and extends(p + x, key[-2]):
                         put(p + tail, e + 1, w * swap)
-        if len(self._fronts) > 65536:
+        if len(self._fronts) > 8192:  # a few kB each: bounded to tens of MB
             self._fronts.clear()
             self._closures.clear()
         self._fronts[key] = out

@@ -856,12 +856,14 @@ def _op_suggest(server: Server, req: dict[str, Any]) -> dict[str, Any]:
     if isinstance(k, bool) or not isinstance(k, int) or not 1 <= k <= server.limits.max_k:
         raise RequestError("bad_field", f"k must be an integer from 1 to {server.limits.max_k}, got {_show(k)}", "k")
     typo = _typos(req)
+    # the typo keyword only when asked for: the plain call stays exactly what it was
+    extra: dict[str, Any] = {} if typo is None else {"typo": typo}
     user = server._user(req, required=False)
     if user is None:
-        found = server.model.suggest(text, k, typo=typo)
+        found = server.model.suggest(text, k, **extra)
     else:
         with server._using(user, create=False) as layer:
-            found = server.model.suggest(text, k, typo=typo) if layer is None else layer.suggest(text, k, typo=typo)
+            found = server.model.suggest(text, k, **extra) if layer is None else layer.suggest(text, k, **extra)
         if not all(math.isfinite(s.prob) for s in found):
             raise RequestError("user_layer", f"user {user}: the layer's counts give no finite probability (damaged layer file?)")
     return {"suggestions": [{"word": s.word, "prob": s.prob} for s in found]}

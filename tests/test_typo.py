@@ -239,17 +239,15 @@ def test_near_miss_ranges_cover_each_word_with_its_best_reading(
 ) -> None:
     model = _model(tmp_path_factory.getbasetemp(), seed, 2, "jm")
     keys = model.word_keys()
-    alpha = sorted(range(len(keys)), key=lambda i: keys[i])  # alphabetical positions: code-point order
     got: dict[str, float] = {}
-    from nextword.candidates import NearMiss, PrefixRange
-
-    src = model._source(ch)  # noqa: SLF001 - the model's own near-miss source for this channel
-    assert isinstance(src, NearMiss)
-    assert isinstance(src.prefixes, PrefixRange)
-    for lo, hi, w in src.ranges(typed):
-        for pos in range(lo, hi):
-            key = keys[alpha[pos]]
-            got[key] = max(got.get(key, 0.0), w)
+    # the near-miss source's readings: each covers the words starting with its prefix (the
+    # prefix ranges themselves are checked against brute force in tests/test_candidates.py)
+    readings = model.typo_prefixes(typed, ch)
+    assert [w for _, w in readings] == sorted((w for _, w in readings), reverse=True)
+    for p, w in readings:
+        for key in keys:
+            if key.startswith(p):
+                got[key] = max(got.get(key, 0.0), w)
     assert got == _brute_weights(model, ch, typed)
 
 
