@@ -287,3 +287,22 @@ def test_without_a_likely_typo_the_answer_is_the_plain_one(tmp_path: Path) -> No
         assert model.rank_after(("qa",), typed, 5, typo=ch) == model.rank_after(("qa",), typed, 5)
     with pytest.raises(InvalidArgumentError, match="typo"):
         model.suggest("qa", 3, typo=0.05)  # type: ignore[arg-type]
+
+
+def test_a_near_miss_holding_the_contexts_best_word_is_ranked(tmp_path: Path) -> None:
+    # After "a", "the" is by far the likeliest word; words starting with "r" are rare. Typed
+    # "a r": t is next to r on QWERTY, so "the" (read from "t") must outrank the rare "r…"
+    # words — the range of "t" may not be skipped by the bound from the context's top list.
+    filler = [f"a {w}" for w in ("one", "two", "six", "ten", "cat", "dog", "cow", "pig", "hen", "owl", "elk", "yak")]
+    texts = ["a the"] * 200 + ["a rat", "a ram", "a rag", "a ran"] + filler * 3
+    path = tmp_path / "m.nwm"
+    nextword.train_texts(texts, path, min_count=1)
+    model = nextword.load(path)
+    ch = Channel(substitution=0.2, omission=0.0, insertion=0.0, transposition=0.0, floor=1e-9)
+    got = model.rank_after(("a",), "r", 3, typo=ch)
+    weights = _brute_weights(model, ch, "r")
+    words = sorted(weights)
+    probs = model.probs_after(words, ("a",))
+    brute = sorted(((weights[w] * p, w) for w, p in zip(words, probs)), key=lambda e: (-e[0], model.tie_rank(e[1])))[:3]
+    assert got == [(w, s) for s, w in brute]
+    assert got[0][0] == "the"
