@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import json
 import math
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -49,6 +50,21 @@ def test_qwerty_distances_by_hand() -> None:
     # QWERTZ swaps y and z against QWERTY; AZERTY swaps a/q and z/w (common practice)
     assert load_layout("qwertz").centres["z"] == lay.centres["y"]
     assert load_layout("azerty").centres["a"] == lay.centres["q"]
+
+
+@pytest.mark.skipif(sys.version_info < (3, 11), reason="tomllib is in the standard library from Python 3.11")
+def test_shipped_layouts_are_package_data() -> None:
+    # the layouts are read with importlib.resources, so an install must carry them: every
+    # file of nextword/layouts matches a package-data glob of pyproject.toml (setuptools
+    # matches them relative to the package directory: common practice)
+    import fnmatch
+    import tomllib
+
+    root = Path(__file__).resolve().parent.parent
+    globs = tomllib.loads((root / "pyproject.toml").read_text(encoding="utf-8"))["tool"]["setuptools"]["package-data"]["nextword"]
+    files = sorted(p.relative_to(root / "nextword").as_posix() for p in (root / "nextword" / "layouts").iterdir())
+    assert files == [f"layouts/{name}.json" for name in sorted(LAYOUTS)]
+    assert all(any(fnmatch.fnmatch(f, g) for g in globs) for f in files)
 
 
 def test_layout_file_round_trip_and_hostile_files(tmp_path: Path) -> None:
