@@ -265,6 +265,7 @@ class NearMiss:
         self.channel = channel
         self._cache: dict[str, tuple[CandidateRange, ...]] = {}
         self._fronts: dict[str, dict[tuple[str, int], float]] = {}
+        self._weights: dict[str, tuple[tuple[str, float], ...]] = {}
         self._closures: dict[str, dict[tuple[str, int], float]] = {}
 
     def ranges(self, key: str) -> tuple[CandidateRange, ...]:
@@ -281,13 +282,21 @@ class NearMiss:
         self._cache[key] = result
         return result
 
-    def prefix_weights(self, key: str) -> list[tuple[str, float]]:
+    def prefix_weights(self, key: str) -> tuple[tuple[str, float], ...]:
         """The intended prefixes behind typed ``key`` with their weights, best first (ties by
-        prefix), without those a shorter prefix of the list covers with at least their weight."""
+        prefix), without those a shorter prefix of the list covers with at least their weight.
+        Cached per typed prefix."""
+        hit = self._weights.get(key)
+        if hit is not None:
+            return hit
         best = self.readings(key)
         kept = [(p, w) for p, w in best.items() if not any(best.get(p[:i], 0.0) >= w for i in range(1, len(p)))]
         kept.sort(key=lambda e: (-e[1], e[0]))
-        return kept
+        result = tuple(kept)
+        if len(self._weights) > 16384:
+            self._weights.clear()
+        self._weights[key] = result
+        return result
 
     def readings(self, key: str) -> dict[str, float]:
         """Every vocabulary prefix that reads as the typed ``key``, with its best weight."""

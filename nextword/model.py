@@ -49,6 +49,8 @@ _VOCAB_SECTIONS = ("TKID", "IDTK", "ALPH", "APOS", "KEY4", "TOPK", "UNIG", "ROWS
 #: how many of a context's best words bound the near-miss ranges (Model._context_top): the
 #: stored skyband depth, so the list comes from the bands without scanning a segment
 _BOUND_TOP = 8
+#: near-miss ranges of at most this many words are scored word by word (Model._rank_near)
+_TINY_RANGE = 4
 # below this many successor candidates, plain Python beats numpy's per-call overhead
 _SMALL = 80
 #: a plain trigram row range longer than this is cut with numpy before the Python scoring (_NgramScorer;
@@ -151,7 +153,7 @@ class Model:
         )
         # near-miss sources per typing channel (typo-tolerant queries), built on first use
         self._near: dict[Channel, NearMiss] = {}
-        self._top_cache: dict[Any, tuple[list[int], list[float], float]] = {}
+        self._top_cache: dict[Any, tuple[list[tuple[str, float]], float]] = {}
         #: alphabetical positions [lo, hi) of the words starting with a folded prefix
         self._prefix_range: Callable[[str], tuple[int, int]] = self._candidates.span
         #: the k most frequent word ids of an alphabetical range (the ranking's lower bound)
@@ -601,6 +603,11 @@ class Model:
                     ranked.append((wid, 0.0))
         return ranked
 
+    @staticmethod
+    def _check_typo(typo: Channel | None) -> None:
+        if typo is not None and not isinstance(typo, Channel):
+            raise InvalidArgumentError(f"typo must be a nextword.keyboard.Channel or None, got {type(typo).__name__}")
+
     def _source(self, typo: Channel | None) -> CandidateSource:
         """The candidate source of a query: exact prefixes, or near misses under ``typo``."""
         if typo is None:
@@ -635,15 +642,16 @@ class Model:
             raise InvalidArgumentError(f"typed must be str, got {type(typed).__name__}")
         k = check_k(k)
         lam = None if lam is None else check_lam(lam)
+        self._check_typo(typo)
         ctx = parse_typed(typed)
         if self._general:
             lams = self._ng_lams(lam)
-            rs = self._source(typo).ranges(fold(ctx.prefix))
-            if not rs:
+            key = fold(ctx.prefix)
+            if typo is None and not self._candidates.ranges(key):
                 return []
             ids = self._context_ids(ctx.history)
             try:
-                ranked = self._rank_ranges(self._ng.rank, ids, rs, k, lams)
+                ranked = self._rank_typed(self._ng.rank, ids, key, typo, k, lams, None)
                 at_start = ids[-1] == self._bos
                 return [Suggestion(recase(self.display(i), ctx.prefix, at_start), p) for i, p in ranked]
             except (IndexError, ValueError, UnicodeDecodeError) as e:
@@ -655,11 +663,14 @@ class Model:
         else:
             wid = self._word_id(fold(ctx.previous))
             v = self._unk if wid is None else wid
-        rs = self._source(typo).ranges(fold(ctx.prefix))
-        if not rs:
+        key = fold(ctx.prefix)
+        rs = self._candidates.ranges(key) if typo is None else ()
+        if typo is None and not rs:
             return []
         try:
-            if len(rs) == 1 and rs[0][2] == 1.0:  # the exact prefix: one range, ranked directly
+            if typo is not None:
+                ranked = self._rank_typed(self._rank, v, key, typo, k, self._lam_of(v, lam), self._prob_ids)
+            elif len(rs) == 1 and rs[0][2] == 1.0:  # the exact prefix: one range, ranked directly
                 ranked = self._rank(v, rs[0][0], rs[0][1], k, self._lam_of(v, lam))
             else:
                 ranked = self._rank_ranges(self._rank, v, rs, k, self._lam_of(v, lam))
@@ -682,14 +693,13 @@ class Model:
         """
         k = check_k(k)
         lam = None if lam is None else check_lam(lam)
+        self._check_typo(typo)
         if self._general:
             return self.rank_after((previous_word,), prefix, k, lam=lam, typo=typo)
         v = self._history_id(previous_word)
-        rs = self._source(typo).ranges(fold(prefix))
-        if not rs:
-            return []
         try:
-            return [(self._key(i), p) for i, p in self._rank_ranges(self._rank, v, rs, k, self._lam_of(v, lam))]
+            ranked = self._rank_typed(self._rank, v, fold(prefix), typo, k, self._lam_of(v, lam), self._prob_ids)
+            return [(self._key(i), p) for i, p in ranked]
         except (IndexError, ValueError) as e:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
 
@@ -703,15 +713,16 @@ class Model:
         """
         k = check_k(k)
         lam = None if lam is None else check_lam(lam)
+        self._check_typo(typo)
         ctx = self._context_ids(history)
-        rs = self._source(typo).ranges(fold(prefix))
-        if not rs:
-            return []
+        key = fold(prefix)
         try:
             if self._general:
-                return [(self._key(i), p) for i, p in self._rank_ranges(self._ng.rank, ctx, rs, k, self._ng_lams(lam))]
-            v = ctx[-1]
-            return [(self._key(i), p) for i, p in self._rank_ranges(self._rank, v, rs, k, self._lam_of(v, lam))]
+                ranked = self._rank_typed(self._ng.rank, ctx, key, typo, k, self._ng_lams(lam), None)
+            else:
+                v = ctx[-1]
+                ranked = self._rank_typed(self._rank, v, key, typo, k, self._lam_of(v, lam), self._prob_ids)
+            return [(self._key(i), p) for i, p in ranked]
         except (IndexError, ValueError) as e:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
 
@@ -728,54 +739,95 @@ class Model:
             lo, hi, w = ranges[0]
             if w == 1.0:
                 return rank(context, lo, hi, k, weights)
-        # Several weighted ranges (near misses): rank them best weight first, but skip a
-        # range when its weight × an upper bound of P(word | context) over it is below the
-        # k-th score so far: none of its words can enter the top k (strictly below, so not
-        # even a tie is lost). The bound comes from the context's top list over the whole
-        # vocabulary (its first _BOUND_TOP words, cached per context): a range holding
-        # some of them is bounded by the best of those, any other word by the list's last
-        # probability.
+        per = [(w, rank(context, lo, hi, k, weights)) for lo, hi, w in ranges]
+        return merge_ranked(per, k)
+
+    def _rank_typed(
+        self, rank: Callable[[Any, int, int, int, Any], list[tuple[int, float]]], context: Any, key: str,
+        typo: Channel | None, k: int, weights: Any, score_of: Callable[[Any, int, Any], float] | None,
+    ) -> list[tuple[int, float]]:
+        """Top-k (word id, score) for the folded typed prefix ``key``: its exact prefix range,
+        or (with ``typo``) the near-miss readings (:meth:`_rank_near`). ``score_of(context,
+        id, weights)`` is the scorer's own P(word | context), the same value ``rank`` gives,
+        when one word costs less than ranking a few (the Jelinek-Mercer bigram), else None."""
+        if typo is None:
+            rs = self._candidates.ranges(key)
+            return self._rank_ranges(rank, context, rs, k, weights) if rs else []
+        src = self._source(typo)
+        assert isinstance(src, NearMiss)
+        readings = src.prefix_weights(key) if key else [("", 1.0)]
+        return self._rank_near(rank, context, readings, k, weights, score_of)
+
+    def _rank_near(
+        self, rank: Callable[[Any, int, int, int, Any], list[tuple[int, float]]], context: Any,
+        readings: Sequence[tuple[str, float]], k: int, weights: Any, score_of: Callable[[Any, int, Any], float] | None,
+    ) -> list[tuple[int, float]]:
+        """Top k by channel weight × probability over the readings (intended prefix, weight),
+        best weight first: each reading's range ranked exactly, merged by :func:`merge_ranked`.
+
+        A reading is skipped when its weight × an upper bound of P(word | context) over its
+        words is below the k-th score so far: none of them can enter the top k (strictly
+        below, so not even a tie is lost). The bound comes from the context's top list over
+        the whole vocabulary (its first _BOUND_TOP words, cached per context): the best of
+        those that start with the reading's prefix, and the list's last probability for
+        every other word. Ranges are looked up only for the readings actually ranked; a
+        range of at most _TINY_RANGE words is scored word by word with ``score_of`` (the same
+        value, without the ranking's set-up). The exact prefix alone (weight 1.0) is ranked
+        directly: scores stay probabilities.
+        """
+        alph = self._mv_alph
+        span = self._candidates.span
+        if len(readings) == 1 and readings[0][1] == 1.0:
+            lo, hi = span(readings[0][0])
+            return rank(context, lo, hi, k, weights) if lo < hi else []
         per: list[tuple[float, list[tuple[int, float]]]] = []
         best: dict[int, float] = {}
         kth = -1.0
-        top: tuple[list[int], list[float], float] | None = None
-        for lo, hi, w in sorted(ranges, key=lambda r: -r[2]):
+        top: tuple[list[tuple[str, float]], float] | None = None
+        for p, w in readings:
             if len(best) >= k:
                 if top is None:
                     top = self._context_top(rank, context, weights)
-                pos, probs, rest = top
-                i = bisect.bisect_left(pos, lo)
-                j = bisect.bisect_left(pos, hi, i)
-                bound = max(probs[i:j]) if j > i else rest
-                if bound < rest:
-                    bound = rest
+                listed, bound = top
+                for word, prob in listed:
+                    if prob > bound and word.startswith(p):
+                        bound = prob
                 if w * bound < kth:
                     continue
-            pairs = rank(context, lo, hi, k, weights)
+            lo, hi = span(p)
+            if lo >= hi:
+                continue
+            if score_of is not None and hi - lo <= _TINY_RANGE:
+                scored = sorted((-score_of(context, alph[pos], weights), alph[pos]) for pos in range(lo, hi))
+                pairs = [(wid, -neg) for neg, wid in scored[:k]]
+            else:
+                pairs = rank(context, lo, hi, k, weights)
             per.append((w, pairs))
-            for wid, p in pairs:
-                s = w * p
-                if s > best.get(wid, -1.0):
-                    best[wid] = s
-            if len(best) >= k:
+            raised = False
+            for wid, prob in pairs:
+                sc = w * prob
+                if sc > best.get(wid, -1.0):
+                    best[wid] = sc
+                    raised = raised or sc > kth
+            if raised and len(best) >= k:  # the k-th score only moves when a score above it came in
                 kth = heapq.nlargest(k, best.values())[-1]
         return merge_ranked(per, k)
 
     def _context_top(
         self, rank: Callable[[Any, int, int, int, Any], list[tuple[int, float]]], context: Any, weights: Any
-    ) -> tuple[list[int], list[float], float]:
-        """The context's best _BOUND_TOP words over the whole vocabulary, by alphabetical
-        position: (positions ascending, their probabilities, the bound of every other word)."""
-        key = (context, weights)
-        hit = self._top_cache.get(key)
+    ) -> tuple[list[tuple[str, float]], float]:
+        """The context's best _BOUND_TOP words over the whole vocabulary as (key, probability),
+        and the bound of every other word (the list's last probability; 0.0 when the list
+        holds every word)."""
+        cache_key = (context, weights)
+        hit = self._top_cache.get(cache_key)
         if hit is None:
             top = rank(context, 0, self.n_words, _BOUND_TOP, weights)
-            rest = top[-1][1] if len(top) == _BOUND_TOP else 0.0  # fewer: the list holds every word
-            by_pos = sorted((self._mv_apos[wid], p) for wid, p in top)
-            hit = ([q for q, _ in by_pos], [p for _, p in by_pos], rest)
+            rest = top[-1][1] if len(top) == _BOUND_TOP else 0.0
+            hit = ([(self._key(wid), p) for wid, p in top], rest)
             if len(self._top_cache) > 4096:
                 self._top_cache.clear()
-            self._top_cache[key] = hit
+            self._top_cache[cache_key] = hit
         return hit
 
     def header(self) -> dict[str, Any]:
@@ -803,7 +855,7 @@ class Model:
         key = fold(prefix)
         if not key:
             return [("", 1.0)]
-        return src.prefix_weights(key)
+        return list(src.prefix_weights(key))
 
     def tie_rank(self, word: str) -> int:
         """Where ``word`` goes among words of equal probability: its id (floor descending, then key).
