@@ -39,6 +39,7 @@ from typing import NoReturn, Sequence
 
 import nextword
 from nextword.errors import InvalidArgumentError, NextwordError
+from nextword.keyboard import Channel
 from nextword.mix import Predictor, open_any
 from nextword.model import Suggestion
 from nextword.personal import PersonalLayer
@@ -135,12 +136,15 @@ class TypingBox:
         *,
         layer: PersonalLayer | None = None,
         k: int = 3,
+        typo: Channel | None = None,
     ) -> None:
         if isinstance(k, bool) or not isinstance(k, int) or not 1 <= k <= MAX_K:
             raise InvalidArgumentError(f"k must be an integer from 1 to {MAX_K} (one Alt+digit per button), got {k!r}")
         self.model = model
         self.layer = layer
         self.k = k
+        #: typo-tolerant suggestions (a nextword.keyboard.Channel) or exact prefixes (None)
+        self.typo = typo
         self.suggestions: list[Suggestion] = []
         self.last_latency = 0.0
         self._pending = False
@@ -209,8 +213,8 @@ class TypingBox:
     def suggest(self, typed: str) -> list[Suggestion]:
         """One query, to the layer when there is one (it mixes in the user's counts)."""
         if self.layer is not None:
-            return self.layer.suggest(typed, self.k)
-        return self.model.suggest(typed, self.k)
+            return self.layer.suggest(typed, self.k, typo=self.typo)
+        return self.model.suggest(typed, self.k, typo=self.typo)
 
     def schedule_refresh(self) -> None:
         """Re-rank once the current burst of events is handled (a paste is one query, not many)."""
@@ -325,6 +329,8 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("model", nargs="?", help="a .nwm model (default: the demo corpus, trained once into the cache directory)")
     p.add_argument("--user-layer", metavar="PATH", help=f"personal layer file (default: {LAYER_NAME} in the cache directory)")
     p.add_argument("-k", type=_k, default=3, help=f"number of suggestion buttons, 1-{MAX_K} (default 3)")
+    p.add_argument("--tolerate-typos", action="store_true",
+                   help="also offer words the typed letters miss by one slip of the finger (QWERTY; default: off)")
     p.add_argument("--cache-dir", metavar="DIR", help=f"where the demo model and default layer live (default: {default_cache_dir()})")
     return p
 
@@ -350,7 +356,7 @@ def main(argv: Sequence[str] | None = None) -> int:
             return 1
         root.title("nextword typing box")
         use_plain_theme(root)
-        TypingBox(root, model, layer=layer, k=args.k)
+        TypingBox(root, model, layer=layer, k=args.k, typo=Channel() if args.tolerate_typos else None)
         root.mainloop()
         return 0
     except _UsageError as e:

@@ -29,9 +29,10 @@ from typing import Any, NamedTuple, Protocol, Sequence
 
 import numpy as np
 
+from .keyboard import Channel
 from .store import TOPK_FANOUT, key_head, topk_levels
 
-__all__ = ["CandidateRange", "CandidateSource", "PrefixRange", "merge_ranked"]
+__all__ = ["CandidateRange", "CandidateSource", "NearMiss", "PrefixRange", "merge_ranked"]
 
 
 class CandidateRange(NamedTuple):
@@ -105,6 +106,7 @@ class PrefixRange:
         self._range_cache: dict[str, tuple[int, int]] = {}
         self._ranges_cache: dict[str, tuple[CandidateRange, ...]] = {}
         self._top_cache: dict[tuple[int, int, int], list[int]] = {}
+        self._next_cache: dict[str, tuple[str, ...]] = {}
 
     def ranges(self, key: str) -> tuple[CandidateRange, ...]:
         """The one range of words starting with ``key``, weight 1.0; none if no word does."""
@@ -137,6 +139,9 @@ class PrefixRange:
             lo = bisect.bisect_left(head, key_head(key, 0x00), 0, n)
             hi = bisect.bisect_right(head, key_head(key, 0xFF), lo, n)
             if len(key.encode("utf-8")) > 4 and lo < hi:
+                parent = self._range_cache.get(key[:-1])
+                if parent is not None:  # the words starting with key are among those starting with key[:-1]
+                    lo, hi = max(lo, parent[0]), min(hi, parent[1])
                 seq = _AlphaKeys(self._trie.restore_key, self._mv_idtk, self._mv_alph, len(key))
                 lo = bisect.bisect_left(seq, key, lo, hi)
                 hi = bisect.bisect_right(seq, key, lo, hi)
@@ -145,6 +150,48 @@ class PrefixRange:
             self._range_cache.clear()
         self._range_cache[key] = result
         return result
+
+    def key_at(self, pos: int) -> str:
+        """The key of the word at alphabetical position ``pos``."""
+        return self._trie.restore_key(self._mv_idtk[self._mv_alph[pos]])  # type: ignore[no-any-return]
+
+    def next_letters(self, key: str) -> tuple[str, ...]:
+        """The characters that follow ``key`` in some vocabulary word, alphabetically.
+
+        One key read and one range search per distinct next character (the words sharing
+        ``key + c`` are one contiguous range), cached: near-miss readings ask for the
+        same short prefixes again and again.
+        """
+        hit = self._next_cache.get(key)
+        if hit is not None:
+            return hit
+        lo, hi = self.span(key)
+        n = len(key)
+        out: list[str] = []
+        pos = lo
+        while pos < hi:
+            word = self.key_at(pos)
+            if len(word) <= n:  # the word ``key`` itself comes first
+                pos += 1
+                continue
+            c = word[n]
+            out.append(c)
+            end = self.span(key + c)[1]
+            pos = end if end > pos else pos + 1
+        result = tuple(out)
+        if len(self._next_cache) > 65536:
+            self._next_cache.clear()
+        self._next_cache[key] = result
+        return result
+
+    def extends(self, key: str, c: str) -> bool:
+        """Whether some vocabulary word starts with ``key + c``: from the cached next
+        characters of ``key`` when known, else one walk down the trie (several times
+        cheaper than a range search, and near-miss searches test many dead prefixes)."""
+        nxt = self._next_cache.get(key)
+        if nxt is not None:
+            return c in nxt
+        return next(self._trie.iterkeys(key + c), None) is not None
 
     def top_ids(self, lo: int, hi: int, k: int) -> list[int]:
         """The k smallest word ids (= highest floor probability) among alphabetical positions [lo, hi).
@@ -190,6 +237,150 @@ class PrefixRange:
         if level == 0:
             return self._alph[i:j]
         return self._levels[level - 1][i:j, :k].ravel()
+
+
+class NearMiss:
+    """Typo-tolerant candidates: the exact prefix plus the prefixes a slip of the finger turns
+    into what was typed, each weighted by the channel (:class:`~nextword.keyboard.Channel`).
+
+    The readings of a typed prefix come from a depth-first search that builds the intended
+    prefix letter by letter beside the typed letters (match, substitution by a key that
+    could have produced the typed one, omitted letter, extra tap, swapped pair) and stops a
+    branch as soon as its intended prefix starts no vocabulary word (one cached range
+    search), its weight drops below the channel's floor or it has used ``max_edits``
+    edits. So the work depends on the typed prefix and the vocabulary's branching near it,
+    never on the vocabulary size. A reading's weight is its best alignment's product
+    (:meth:`Channel.weight`, the dynamic-programming reference it is tested against).
+
+    A prefix whose shorter prefix is also a reading with at least its weight adds nothing
+    (its words are in the shorter prefix's range with a weight as high) and is dropped;
+    the rest become ranges, best weight first. A prefix that ends in an omitted letter is
+    never generated for the same reason. When no near miss survives, the result is
+    exactly :meth:`PrefixRange.ranges` (one range, weight 1.0): answers and speed are those
+    of the plain prefix.
+    """
+
+    def __init__(self, prefixes: PrefixRange, channel: Channel) -> None:
+        self.prefixes = prefixes
+        self.channel = channel
+        self._cache: dict[str, tuple[CandidateRange, ...]] = {}
+        self._fronts: dict[str, dict[tuple[str, int], float]] = {}
+        self._weights: dict[str, tuple[tuple[str, float], ...]] = {}
+        self._closures: dict[str, dict[tuple[str, int], float]] = {}
+
+    def ranges(self, key: str) -> tuple[CandidateRange, ...]:
+        """Ranges of the readings of the folded typed prefix ``key``, best weight first."""
+        hit = self._cache.get(key)
+        if hit is not None:
+            return hit
+        if not key:
+            return self.prefixes.ranges(key)
+        span = self.prefixes.span
+        result = tuple(CandidateRange(*span(p), w) for p, w in self.prefix_weights(key))
+        if len(self._cache) > 16384:
+            self._cache.clear()
+        self._cache[key] = result
+        return result
+
+    def prefix_weights(self, key: str) -> tuple[tuple[str, float], ...]:
+        """The intended prefixes behind typed ``key`` with their weights, best first (ties by
+        prefix), without those a shorter prefix of the list covers with at least their weight.
+        Cached per typed prefix."""
+        hit = self._weights.get(key)
+        if hit is not None:
+            return hit
+        best = self.readings(key)
+        kept = [(p, w) for p, w in best.items() if not any(best.get(p[:i], 0.0) >= w for i in range(1, len(p)))]
+        kept.sort(key=lambda e: (-e[1], e[0]))
+        result = tuple(kept)
+        if len(self._weights) > 16384:
+            self._weights.clear()
+        self._weights[key] = result
+        return result
+
+    def readings(self, key: str) -> dict[str, float]:
+        """Every vocabulary prefix that reads as the typed ``key``, with its best weight."""
+        best: dict[str, float] = {}
+        for (p, _e), w in self._frontier(key).items():
+            if w > best.get(p, 0.0):
+                best[p] = w
+        return best
+
+    # The search, one typed letter at a time. A state is (intended prefix, edits used) with
+    # the best weight of the alignments reaching it; which moves a state allows next
+    # depends only on the state, and weights only shrink along a path (every move weighs
+    # at most 1), so keeping the best weight per state loses no reading, and pruning at
+    # the floor loses none that ends above it (max and × by a positive number commute in
+    # floating point too, so the weights are those of the path-by-path products).
+    # ``_frontier(q)`` holds the states after consuming all of q (no trailing omission);
+    # ``_closure(q)`` adds the states reached from them by omitted letters. Both are
+    # cached per typed prefix, so a keystroke costs the moves out of the last states only.
+
+    def _frontier(self, key: str) -> dict[tuple[str, int], float]:
+        hit = self._fronts.get(key)
+        if hit is not None:
+            return hit
+        if not key:
+            out = {("", 0): 1.0}
+        else:
+            out = {}
+            ch = self.channel
+            floor, max_edits = ch.floor, ch.max_edits
+            extends = self.prefixes.extends
+            x = key[-1]
+            subs = ch.sources.get(x, ())
+            insertion = ch.insertion_weight
+
+            def put(p: str, e: int, w: float) -> None:
+                if w > out.get((p, e), 0.0):
+                    out[p, e] = w
+
+            for (p, e), w in self._closure(key[:-1]).items():
+                if extends(p, x):
+                    put(p + x, e, w)
+                if e == max_edits:
+                    continue
+                for y, r in subs:
+                    w2 = w * r
+                    if w2 < floor:
+                        break
+                    if extends(p, y):
+                        put(p + y, e + 1, w2)
+                r = insertion(p[-1] if p else None, x)
+                if r > 0.0 and w * r >= floor:
+                    put(p, e + 1, w * r)
+            swap = ch.swap_weight
+            if len(key) >= 2 and swap > 0.0 and key[-2] != x:
+                tail = x + key[-2]
+                for (p, e), w in self._closure(key[:-2]).items():
+                    if e < max_edits and w * swap >= floor and extends(p, x) and extends(p + x, key[-2]):
+                        put(p + tail, e + 1, w * swap)
+        if len(self._fronts) > 8192:  # a few kB each: bounded to tens of MB
+            self._fronts.clear()
+            self._closures.clear()
+        self._fronts[key] = out
+        return out
+
+    def _closure(self, key: str) -> dict[tuple[str, int], float]:
+        hit = self._closures.get(key)
+        if hit is not None:
+            return hit
+        ch = self.channel
+        omit, floor, max_edits = ch.omit_weight, ch.floor, ch.max_edits
+        out = dict(self._frontier(key))
+        todo = list(out.items())
+        while todo:
+            (p, e), w = todo.pop()
+            if e == max_edits or omit <= 0.0 or w * omit < floor:
+                continue
+            w2 = w * omit
+            for y in self.prefixes.next_letters(p):
+                st = (p + y, e + 1)
+                if w2 > out.get(st, 0.0):
+                    out[st] = w2
+                    todo.append((st, w2))
+        self._closures[key] = out
+        return out
 
 
 def merge_ranked(ranked: Sequence[tuple[float, Sequence[tuple[int, float]]]], k: int) -> list[tuple[int, float]]:

@@ -107,6 +107,40 @@ def _seconds(text: str) -> float:
     return value
 
 
+def _slip_rate(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a rate in [0, 0.5], got {text!r}") from None
+    if not 0.0 <= value <= 0.5:
+        raise argparse.ArgumentTypeError(f"expected a rate in [0, 0.5], got {text}")
+    return value
+
+
+def _typo_channel(args: argparse.Namespace) -> Any:
+    """The typing channel of ``--tolerate-typos``, ``--channel-rate`` and ``--layout`` (None when off)."""
+    from .keyboard import Channel, load_layout
+
+    if not args.tolerate_typos:
+        return None
+    if not 0.0 < args.channel_rate < 0.5:
+        raise UsageError(f"--channel-rate must be in (0, 0.5), got {args.channel_rate}")
+    return Channel.from_rate(args.channel_rate, load_layout(args.layout))
+
+
+def _add_typo_options(p: argparse.ArgumentParser) -> None:
+    from .keyboard import DEFAULT_TYPO_RATE, LAYOUTS
+
+    p.add_argument("--tolerate-typos", action="store_true",
+                   help="also complete words the typed letters miss by one slip of the finger (a neighbouring key, "
+                   "a left-out, extra or swapped letter); scores become channel weight × probability (default: off)")
+    p.add_argument("--channel-rate", type=_slip_rate, default=DEFAULT_TYPO_RATE, metavar="RATE",
+                   help="with --tolerate-typos: the letter-slip rate the channel assumes, i.e. how much the typed "
+                   "letters are trusted against the language model (default %(default)s, tuned on held-out text)")
+    p.add_argument("--layout", default="qwerty", metavar="NAME|FILE",
+                   help=f"keyboard layout of the slips: {', '.join(LAYOUTS)} or a layout JSON file (default %(default)s)")
+
+
 def _percent(text: str) -> int:
     try:
         value = int(text)
@@ -159,12 +193,14 @@ _EXAMPLES: dict[str, list[str]] = {
     "suggest": [
         'nextword suggest demo.nwm "See you at the " "Can someone bring the tr"',
         'nextword suggest demo.nwm -k 5 "thanks for " --json',
+        'nextword suggest demo.nwm --tolerate-typos "See you at the ststion"',
     ],
     "info": ["nextword info demo.nwm", "nextword info demo.nwm --verify --json"],
     "eval": [
         "nextword eval demo.nwm held.txt -k 1 3 5",
         "nextword eval trigram-kn.nwm held.txt -k 3 --report report/",
         "nextword eval demo.nwm held.jsonl --train-data train.jsonl --report report/ --json",
+        "nextword eval demo.nwm held.txt -k 3 --typo-rate 0.05 --tolerate-typos --no-baselines",
     ],
     "split": [
         "nextword split logs.txt --train-out train.txt --test-out test.txt",
@@ -235,6 +271,7 @@ def _parser() -> _Parser:
     s.add_argument("-k", type=_positive, default=3, help="suggestions per text (default %(default)s)")
     s.add_argument("--lam", type=_lam, default=None, help=_LAM_HELP)
     s.add_argument("--time", action="store_true", help="time each query (median of repeated calls)")
+    _add_typo_options(s)
     s.add_argument("--json", action="store_true", help="print JSON")
 
     i = sub.add_parser("info", help="describe a model file")
@@ -256,6 +293,17 @@ def _parser() -> _Parser:
     e.add_argument("--train-data", nargs="+", metavar="FILE", help="training text: also time the plain-dict and nltk baselines (default: none, no timing baselines)")
     e.add_argument("--baseline-queries", type=_positive, default=200, help="queries timed per slow baseline (default %(default)s)")
     e.add_argument("--report", metavar="DIR", help="write report.md and plots into DIR, created if missing (default: none)")
+    e.add_argument("--typo-rate", type=_slip_rate, default=0.0, metavar="R",
+                   help="simulate a typist whose letter taps land on a neighbouring key with probability R (a 2-D "
+                   "Gaussian touch model; wrong letters stay, no backspace) (default %(default)s: error-free)")
+    e.add_argument("--omission-rate", type=_slip_rate, default=0.0, metavar="R",
+                   help="share of letters the simulated typist leaves out (default %(default)s)")
+    e.add_argument("--insertion-rate", type=_slip_rate, default=0.0, metavar="R",
+                   help="share of letters followed by an extra tap near them (default %(default)s)")
+    e.add_argument("--transposition-rate", type=_slip_rate, default=0.0, metavar="R",
+                   help="share of letters swapped with the next one (default %(default)s)")
+    e.add_argument("--typo-seed", type=int, default=0, metavar="N", help="seed of the simulated slips (default %(default)s)")
+    _add_typo_options(e)
     e.add_argument("--json", action="store_true", help="print JSON")
 
     sp = sub.add_parser("split", help="split logs into train, tune and test parts by a hash of each message")
@@ -369,6 +417,7 @@ def _parser() -> _Parser:
     lv.add_argument("model", help=_MODEL_HELP)
     lv.add_argument("-k", type=_positive, default=5, help="suggestions shown (default %(default)s)")
     lv.add_argument("--lam", type=_lam, default=None, help=_LAM_HELP)
+    _add_typo_options(lv)
 
     tu.description = (
         "Choose λ on held-out text. A Jelinek-Mercer bigram gets one λ (or λ per history-count bucket with --buckets); "
@@ -452,13 +501,13 @@ def _size_arg(text: str) -> int:
     return parse_size(text)
 
 
-def _time_query(model: Model | MixedModel, text: str, k: int, lam: float | None) -> float:
+def _time_query(model: Model | MixedModel, text: str, k: int, lam: float | None, typo: Any = None) -> float:
     """Median seconds of repeated calls (the first, cold call excluded)."""
-    model.suggest(text, k, lam=lam)
+    model.suggest(text, k, lam=lam, typo=typo)
     runs = []
     for _ in range(51):
         t0 = time.perf_counter()
-        model.suggest(text, k, lam=lam)
+        model.suggest(text, k, lam=lam, typo=typo)
         runs.append(time.perf_counter() - t0)
     return statistics.median(runs)
 
@@ -467,13 +516,15 @@ def _cmd_suggest(args: argparse.Namespace) -> int:
     t0 = time.perf_counter()
     model = open_any(args.model)
     load_s = time.perf_counter() - t0
+    typo = _typo_channel(args)
     texts = args.texts if args.texts else [line.rstrip("\n") for line in sys.stdin]
     results: list[dict[str, Any]] = []
     for text in texts:
-        sugg = model.suggest(text, args.k, lam=args.lam)
+        sugg = model.suggest(text, args.k, lam=args.lam, typo=typo)
+        # with --tolerate-typos the score is channel weight × probability, not a probability
         item: dict[str, Any] = {"text": text, "suggestions": [{"word": s.word, "prob": s.prob} for s in sugg]}
         if args.time:
-            item["microseconds"] = round(_time_query(model, text, args.k, args.lam) * 1e6, 1)
+            item["microseconds"] = round(_time_query(model, text, args.k, args.lam, typo) * 1e6, 1)
         results.append(item)
     if args.json:
         out: dict[str, Any] = {"model": args.model, "results": results}
@@ -570,36 +621,47 @@ def _run_eval(args: argparse.Namespace, bar: Progress, model: Model | MixedModel
         if not any(m.strip() for m in msgs):
             raise InputDataError(f"{name}: no messages to evaluate (the log is empty or blank)")
     n_msgs = sum(1 for _, msgs in logs for m in msgs if m.strip())  # what evaluate() simulates
+    typist, typo = _eval_typist(args), _typo_channel(args)
+    noisy = {"typist": typist, "typo": typo}
     bar.stage("simulating typing", total=n_msgs, unit="messages")
-    overall, per_log = evaluate(model, logs, ks, progress=bar.update)
+    overall, per_log = evaluate(model, logs, ks, progress=bar.update, **noisy)
     baselines: dict[str, Any] = {}
     if isinstance(model, MixedModel):
         if not args.no_baselines:  # what mixing buys: each part alone on the same logs
             baselines["parts"] = {}
             for i, (part, w) in enumerate(zip(model.parts, model.weights)):
                 bar.stage(f"baseline: part {i} alone", total=n_msgs, unit="messages")
-                o, _ = evaluate(part, logs, ks, progress=bar.update)
+                o, _ = evaluate(part, logs, ks, progress=bar.update, **noisy)
                 baselines["parts"][f"part {i} alone ({part.path}, weight {w:.3f})"] = o.as_dict()
     else:
         if not args.no_baselines:
-            baselines.update(_model_baselines(bar, model, logs, ks, n_msgs))
+            baselines.update(_model_baselines(bar, model, logs, ks, n_msgs, noisy))
         if args.train_data:
             baselines.update(_timing_baselines(args, bar, model, logs, ks))
     bar.done()
     data = eval_data(args.model, overall, per_log, baselines)
+    if typist is not None or typo is not None:
+        data["typing"] = {
+            "typist": None if typist is None else typist.describe(),
+            "tolerance": None if typo is None else repr(typo),
+            "backspace": "none: a wrong tap stays; a word not offered is left as typed",
+        }
     if args.report:
         write_report(args.report, data, overall.latencies)
     if args.json:
         print(json.dumps(data, indent=2, ensure_ascii=False))
     else:
         print(text_report(data, overall, per_log))
+        if "typing" in data:
+            print(_typing_lines(data["typing"], overall))
     return 0
 
 
 def _model_baselines(
-    bar: Progress, model: Model, logs: list[tuple[str, list[str]]], ks: list[int], n_msgs: int
+    bar: Progress, model: Model, logs: list[tuple[str, list[str]]], ks: list[int], n_msgs: int, noisy: dict[str, Any]
 ) -> dict[str, Any]:
-    """The λ runs (Jelinek-Mercer) and the bigram of the same smoothing (order 3) on the same logs."""
+    """The λ runs (Jelinek-Mercer) and the bigram of the same smoothing (order 3) on the same logs,
+    with the same typist and typo tolerance (``noisy``) as the model's own run."""
     from .evaluate import evaluate
 
     baselines: dict[str, Any] = {}
@@ -608,7 +670,7 @@ def _model_baselines(
         top = "bigram only" if model.order == 2 else "highest order only"
         for label, lam in (("unigram only (λ = 0)", 0.0), (f"{top} (λ = 0.999)", 0.999)):
             bar.stage(f"baseline {label.split(' (')[0]}", total=n_msgs, unit="messages")
-            o, _ = evaluate(model, logs, ks, lam=lam, progress=bar.update)
+            o, _ = evaluate(model, logs, ks, lam=lam, progress=bar.update, **noisy)
             baselines["lambda"][label] = o.as_dict()
     if model.order == 3:  # what the two-word context buys
         import tempfile
@@ -624,7 +686,7 @@ def _model_baselines(
                 print(f"nextword: note: no bigram baseline: {e}", file=sys.stderr)
             else:
                 bigram = load(os.path.join(tmp, "bigram.nwm"))
-                o, _ = evaluate(bigram, logs, ks, progress=bar.update)
+                o, _ = evaluate(bigram, logs, ks, progress=bar.update, **noisy)
                 bigram.close()
                 name = f"{'Kneser-Ney' if model.estimator == 'kn' else 'Jelinek-Mercer'} bigram, same counts"
                 baselines["bigram"] = {**o.as_dict(), "name": name, "how": how}
@@ -672,6 +734,37 @@ def _timing_baselines(
         "p50_us": n_p50, "ratio_p50": n_p50 / eng_p50, "engine_fit_seconds": ours_fit,
     }
     return baselines
+
+
+def _typing_lines(typing: dict[str, Any], overall: Any) -> str:
+    """What ``eval`` adds to its table for a noisy typist or typo-tolerant suggestions."""
+    t = typing["typist"]
+    who = ("error-free typist" if t is None else
+           f"noisy typist: substitution {t['substitution']}, omission {t['omission']}, insertion {t['insertion']}, "
+           f"transposition {t['transposition']} ({t['layout']}, σ {t['sigma']} keys, seed {t['seed']}); "
+           f"backspace {typing['backspace']}")
+    lines = ["", who, f"typo tolerance: {typing['tolerance'] or 'off'}"]
+    for k in overall.ks:
+        st = overall.per_k[k]
+        lines.append(f"  k={k}: words never offered {100 * st.not_completed_rate:.1f}%, "
+                     f"of them misspelt by a slip {100 * st.lost_rate:.1f}% of all words")
+    return "\n".join(lines)
+
+
+def _eval_typist(args: argparse.Namespace) -> Any:
+    """The noisy typist of ``eval``'s slip options (None for an error-free typist)."""
+    from .evaluate import NoisyTypist
+    from .keyboard import load_layout
+
+    rates = (args.typo_rate, args.omission_rate, args.insertion_rate, args.transposition_rate)
+    if not any(rates):
+        return None
+    if args.typo_seed < 0:
+        raise UsageError(f"--typo-seed must be >= 0, got {args.typo_seed}")
+    if sum(rates) > 0.5:
+        raise UsageError(f"the slip rates must sum to at most 0.5, got {sum(rates)}")
+    return NoisyTypist(substitution=args.typo_rate, omission=args.omission_rate, insertion=args.insertion_rate,
+                       transposition=args.transposition_rate, seed=args.typo_seed, layout=load_layout(args.layout))
 
 
 def _scratch() -> str:
@@ -1318,7 +1411,7 @@ def _cmd_live(args: argparse.Namespace) -> int:
 
     if not (sys.stdin.isatty() and sys.stdout.isatty()):
         raise UsageError("live needs a terminal (stdin and stdout must be a TTY)")
-    return run_live(open_any(args.model, lam=args.lam), k=args.k, lam=None)
+    return run_live(open_any(args.model, lam=args.lam), k=args.k, lam=None, typo=_typo_channel(args))
 
 
 _REPORT_FILES = {"eval": ("report.md", "ksr.png", "latency.png"), "tune": ("tune.md", "perplexity.png", "ksr.png")}

@@ -12,6 +12,17 @@ The rules (also in README, "Measuring a model"):
 * Keystroke savings KSR = 1 − keystrokes / characters (the measure framed by Trnka &
   McCoy 2008, "Evaluating word prediction: framing keystroke savings").
 
+A *noisy typist* (:class:`NoisyTypist`, ``nextword eval --typo-rate``) misses keys: each
+letter of the layout is, independently, tapped right, replaced by a neighbouring key (a
+2-D Gaussian around the key's centre, :func:`nextword.keyboard.sample_miss`), left out,
+followed by an extra tap, or swapped with the next letter, at the stated rates. The taps
+of every word are drawn once per message from a generator seeded by the typist's seed and
+the message text, so every k, model and tolerance setting sees the same slips. The user
+still accepts the intended word as soon as it is offered; otherwise they type on: a wrong
+tap costs its keystroke and stays (no backspace), so a word never offered ends up
+misspelt in the text and is the context of the next word. Every tap counts as a
+keystroke (an extra tap too, a left-out letter saves one).
+
 The *ceiling* is a perfect predictor under the same rules: one tap per word, and the
 space after it free. Because the typed text never depends on k (accepting a
 word produces exactly the message's text), one query with the largest k answers every
@@ -33,6 +44,7 @@ import numpy as np
 
 from .corpus import Source, iter_records
 from .errors import InvalidArgumentError
+from .keyboard import DEFAULT_SIGMA, Channel, Layout, load_layout, sample_extra, sample_miss
 from .store import atomic_write
 from .mix import Predictor
 from .model import Suggestion
@@ -41,7 +53,9 @@ from .text import fold, normalize, word_spans
 __all__ = [
     "KStats",
     "LogStats",
+    "NoisyTypist",
     "simulate_message",
+    "simulate_noisy",
     "evaluate",
     "word_spans",
     "ceiling_keystrokes",
@@ -71,6 +85,10 @@ class KStats:
     accepted: int = 0
     hits_before_typing: int = 0
     letters_before_accept: int = 0
+    #: words whose typed letters were no longer a prefix of the word when it was accepted or
+    #: typed out (noisy typist only), and those of them never offered ("lost to slips")
+    slipped: int = 0
+    lost: int = 0
 
     @property
     def ksr(self) -> float:
@@ -90,12 +108,22 @@ class KStats:
         return self.hits_before_typing / self.words if self.words else 0.0
 
     @property
+    def not_completed_rate(self) -> float:
+        """Share of words never offered: typed out in full, as typed."""
+        return (self.words - self.accepted) / self.words if self.words else 0.0
+
+    @property
+    def lost_rate(self) -> float:
+        """Share of words that a slip left misspelt and never offered (noisy typist)."""
+        return self.lost / self.words if self.words else 0.0
+
+    @property
     def mean_letters_before_accept(self) -> float:
         return self.letters_before_accept / self.accepted if self.accepted else 0.0
 
     def add(self, other: KStats) -> None:
         for name in ("keystrokes", "characters", "ceiling_keystrokes", "words", "accepted",
-                     "hits_before_typing", "letters_before_accept"):
+                     "hits_before_typing", "letters_before_accept", "slipped", "lost"):
             setattr(self, name, getattr(self, name) + getattr(other, name))
 
     def as_dict(self) -> dict[str, Any]:
@@ -111,6 +139,10 @@ class KStats:
             "ceiling_keystrokes": self.ceiling_keystrokes,
             "words": self.words,
             "accepted_words": self.accepted,
+            "not_completed_rate": self.not_completed_rate,
+            "lost_rate": self.lost_rate,
+            "slipped_words": self.slipped,
+            "lost_words": self.lost,
         }
 
 
@@ -232,6 +264,161 @@ def simulate_message(
     return out
 
 
+def _check_rate(name: str, v: float) -> float:
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) or not 0.0 <= v <= 0.5:
+        raise InvalidArgumentError(f"{name} must be a number in [0, 0.5], got {v!r}")
+    return float(v)
+
+
+@dataclass(frozen=True)
+class NoisyTypist:
+    """A typist who misses keys (see the module docstring): rates per letter tap, seeded.
+
+    ``substitution`` is the share of letter taps that land on another key (drawn by the
+    Gaussian touch model with spread ``sigma`` key pitches around the intended key);
+    ``omission``, ``insertion`` (an extra tap after the letter, Gaussian around it: often
+    a double tap) and ``transposition`` (the letter swapped with the next one) are the
+    optional other slips. Letters the layout lacks, digits and punctuation are typed right.
+    """
+
+    substitution: float = 0.0
+    omission: float = 0.0
+    insertion: float = 0.0
+    transposition: float = 0.0
+    seed: int = 0
+    layout: Layout | None = None
+    sigma: float = DEFAULT_SIGMA
+
+    def __post_init__(self) -> None:
+        total = sum(_check_rate(n, getattr(self, n)) for n in ("substitution", "omission", "insertion", "transposition"))
+        if total > 0.5:
+            raise InvalidArgumentError(f"the slip rates must sum to at most 0.5, got {total!r}")
+        if isinstance(self.seed, bool) or not isinstance(self.seed, int) or self.seed < 0:
+            raise InvalidArgumentError(f"seed must be an integer >= 0, got {self.seed!r}")
+        if isinstance(self.sigma, bool) or not isinstance(self.sigma, (int, float)) or not 0.05 <= self.sigma <= 10:
+            raise InvalidArgumentError(f"sigma must be a number in [0.05, 10] key pitches, got {self.sigma!r}")
+        if self.layout is None:
+            object.__setattr__(self, "layout", load_layout("qwerty"))
+        elif not isinstance(self.layout, Layout):
+            raise InvalidArgumentError(f"layout must be a Layout, got {type(self.layout).__name__}")
+
+    def rng(self, message: str) -> np.random.Generator:
+        """The generator of one message's slips: from the seed and the message text only."""
+        digest = hashlib.sha1(message.encode("utf-8")).digest()
+        return np.random.default_rng([self.seed, int.from_bytes(digest[:8], "big")])
+
+    def taps(self, word: str, rng: np.random.Generator) -> str:
+        """What the typist taps for ``word`` (its letters, with slips drawn from ``rng``)."""
+        lay = self.layout
+        assert lay is not None
+        s, o, n, t = self.substitution, self.omission, self.insertion, self.transposition
+        out: list[str] = []
+        i = 0
+        while i < len(word):
+            ch = word[i]
+            low = ch.lower()
+            if low not in lay.centres:
+                out.append(ch)
+                i += 1
+                continue
+            u = rng.random()
+            if u < s:
+                hit = sample_miss(lay, low, rng, sigma=self.sigma)
+                out.append(hit.upper() if ch != low and len(hit.upper()) == 1 else hit)
+            elif u < s + o:
+                pass
+            elif u < s + o + n:
+                extra = sample_extra(lay, low, rng, sigma=self.sigma)
+                out.append(ch)
+                out.append(extra.upper() if ch != low and len(extra.upper()) == 1 else extra)
+            elif u < s + o + n + t and i + 1 < len(word) and word[i + 1].lower() in lay.centres and word[i + 1] != ch:
+                out.append(word[i + 1])
+                out.append(ch)
+                i += 1
+            else:
+                out.append(ch)
+            i += 1
+        return "".join(out)
+
+    def describe(self) -> dict[str, Any]:
+        """The settings as plain data (for reports)."""
+        assert self.layout is not None
+        return {"substitution": self.substitution, "omission": self.omission, "insertion": self.insertion,
+                "transposition": self.transposition, "seed": self.seed, "layout": self.layout.name, "sigma": self.sigma}
+
+
+def simulate_noisy(
+    suggest: SuggestFn,
+    message: str,
+    ks: Sequence[int],
+    typist: NoisyTypist,
+    *,
+    latencies: list[float] | None = None,
+) -> dict[int, KStats]:
+    """Replay one message typed by ``typist`` (module docstring); returns per-k totals.
+
+    The text typed depends on k here (a word not offered stays misspelt), so each k is
+    replayed on its own; identical typed texts are asked once (largest k) and the answer
+    reused. ``latencies`` receives the duration of every call actually made.
+    """
+    message = normalize(message)
+    kmax = max(ks)
+    spans = word_spans(message)
+    rng = typist.rng(message)
+    noisy = [typist.taps(message[s:e], rng) for s, e in spans]
+    ceiling = ceiling_keystrokes(message)
+    answers: dict[str, list[str]] = {}
+    clock = time.perf_counter
+    out: dict[int, KStats] = {}
+    for k in ks:
+        st = KStats(k, characters=len(message), words=len(spans), ceiling_keystrokes=ceiling)
+        text: list[str] = []
+        keys = 0
+        pos = 0
+        free = False
+        for (start, end), taps in zip(spans, noisy):
+            gap = message[pos:start]
+            keys += len(gap) - (free and gap[:1] == " ")
+            text.append(gap)
+            word = message[start:end]
+            before = "".join(text)
+            accepted_at = -1
+            for j in range(max(len(taps), 1)):
+                typed = before + taps[:j]
+                shown = answers.get(typed)
+                if shown is None:
+                    t0 = clock()
+                    sugg = suggest(typed, kmax)
+                    if latencies is not None:
+                        latencies.append(clock() - t0)
+                    shown = answers[typed] = [x.word for x in sugg]
+                if word in shown[:k]:
+                    accepted_at = j
+                    break
+            if accepted_at >= 0:
+                j = accepted_at
+                keys += j + 1
+                text.append(word)
+                st.accepted += 1
+                st.letters_before_accept += j
+                st.hits_before_typing += j == 0
+                st.slipped += not word.startswith(taps[:j])
+                free = True
+            else:
+                keys += len(taps)
+                text.append(taps)
+                slipped = taps != word
+                st.slipped += slipped
+                st.lost += slipped
+                free = False
+            pos = end
+        tail = message[pos:]
+        keys += len(tail) - (free and tail[:1] == " ")
+        st.keystrokes = keys
+        out[k] = st
+    return out
+
+
 def evaluate(
     model: Predictor,
     logs: Iterable[tuple[str, Iterable[str]]],
@@ -239,8 +426,13 @@ def evaluate(
     *,
     lam: float | None = None,
     progress: Callable[[int], None] | None = None,
+    typist: NoisyTypist | None = None,
+    typo: Channel | None = None,
 ) -> tuple[LogStats, list[LogStats]]:
     """Simulate typing every message of every log; returns (overall, per log).
+
+    ``typist`` replaces the perfect typist by a noisy one; ``typo`` makes the model's
+    suggestions typo-tolerant (:meth:`Model.suggest`), so the two can be measured apart.
 
     ``logs`` yields (name, messages) pairs; each message iterable is consumed once
     (perplexity and the out-of-vocabulary rate are computed on the same pass).
@@ -251,8 +443,11 @@ def evaluate(
     if not ks or any(isinstance(k, bool) or not isinstance(k, int) or k < 1 for k in ks):
         raise InvalidArgumentError(f"k values must be integers >= 1, got {list(ks)!r}")
 
+    if typist is not None and not isinstance(typist, NoisyTypist):
+        raise InvalidArgumentError(f"typist must be a NoisyTypist or None, got {type(typist).__name__}")
+
     def suggest(text: str, k: int) -> list[Suggestion]:
-        return model.suggest(text, k, lam=lam)
+        return model.suggest(text, k, lam=lam, typo=typo)
 
     overall = LogStats("all", ks)
     per_log: list[LogStats] = []
@@ -265,7 +460,11 @@ def evaluate(
             if not message.strip():
                 continue
             kept.append(message)
-            for k, ks_stats in simulate_message(suggest, message, ks, latencies=st.latencies).items():
+            if typist is None:
+                per_k = simulate_message(suggest, message, ks, latencies=st.latencies)
+            else:
+                per_k = simulate_noisy(suggest, message, ks, typist, latencies=st.latencies)
+            for k, ks_stats in per_k.items():
                 st.per_k[k].add(ks_stats)
             st.messages += 1
             done += 1

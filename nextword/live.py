@@ -35,6 +35,7 @@ import unicodedata
 from dataclasses import dataclass, field
 from typing import Any, NamedTuple, Sequence
 
+from .keyboard import Channel
 from .mix import Predictor
 from .model import Suggestion
 from .text import parse_typed
@@ -445,8 +446,10 @@ def _key_mode(saved: list[Any]) -> list[Any]:
     return [iflag, oflag, cflag, lflag, ispeed, ospeed, cc]
 
 
-def run_live(model: Predictor, *, k: int = 5, lam: float | None = None) -> int:
-    """Run the interactive screen on the terminal (stdin/stdout) until Ctrl-D / Ctrl-C; returns 0."""
+def run_live(model: Predictor, *, k: int = 5, lam: float | None = None, typo: Channel | None = None) -> int:
+    """Run the interactive screen on the terminal (stdin/stdout) until Ctrl-D / Ctrl-C; returns 0.
+
+    ``typo``: typo-tolerant suggestions (:meth:`Model.suggest`)."""
     fd_in, fd_out = sys.stdin.fileno(), sys.stdout.fileno()
     saved = termios.tcgetattr(fd_in)
     wake_r, wake_w = os.pipe()
@@ -468,7 +471,7 @@ def run_live(model: Predictor, *, k: int = 5, lam: float | None = None) -> int:
         nonlocal asked, suggestions, latency
         if editor.typed != asked:  # a burst of keys (a paste, fast typing) is one query
             t0 = time.perf_counter()
-            suggestions = model.suggest(editor.typed, k, lam=lam)
+            suggestions = model.suggest(editor.typed, k, lam=lam, typo=typo)
             latency = time.perf_counter() - t0
             asked = editor.typed
         return suggestions

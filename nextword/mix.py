@@ -49,6 +49,7 @@ import msgpack
 import numpy as np
 
 from .errors import InputDataError, InvalidArgumentError, ModelFormatError
+from .keyboard import Channel
 from .model import Model, Suggestion, check_k, load
 from .store import atomic_write
 from .text import BOS, EOS, UNK, fold, parse_typed, recase, sentences
@@ -346,7 +347,8 @@ class MixedModel:
     # -- ranking -------------------------------------------------------------------------------
 
     def rank_after(
-        self, history: Sequence[str | None], prefix: str = "", k: int = 3, *, lam: float | None = None
+        self, history: Sequence[str | None], prefix: str = "", k: int = 3, *, lam: float | None = None,
+        typo: Channel | None = None,
     ) -> list[tuple[str, float]]:
         """Top k (key, P) under the mixture after ``history`` among union words starting with ``prefix``.
 
@@ -367,6 +369,10 @@ class MixedModel:
         k = check_k(k)
         if not isinstance(prefix, str):
             raise InvalidArgumentError(f"prefix must be str, got {type(prefix).__name__}")
+        if typo is not None:
+            if not isinstance(typo, Channel):
+                raise InvalidArgumentError(f"typo must be a nextword.keyboard.Channel or None, got {type(typo).__name__}")
+            return [(self._key_c(c), p) for c, p in self._rank_typo(tuple(history), prefix, k, typo)]
         return self._rank(tuple(history), prefix, k)
 
     def rank_ids(self, previous_word: str | None, prefix: str = "", k: int = 3, *, lam: float | None = None) -> list[tuple[str, float]]:
@@ -500,18 +506,49 @@ class MixedModel:
         self._shown_c[c] = shown
         return shown
 
-    def suggest(self, typed: str, k: int = 3, *, lam: float | None = None) -> list[Suggestion]:
-        """Like :meth:`Model.suggest`, over the mixture: complete the partial word or predict the next one."""
+    def suggest(self, typed: str, k: int = 3, *, lam: float | None = None, typo: Channel | None = None) -> list[Suggestion]:
+        """Like :meth:`Model.suggest`, over the mixture: complete the partial word or predict the next one.
+
+        With ``typo`` (a :class:`~nextword.keyboard.Channel`) the partial word may hold a
+        slip, as in :meth:`Model.suggest`; scores are then channel weight × mixture probability.
+        """
         self._no_lam(lam)
         if not isinstance(typed, str):
             raise InvalidArgumentError(f"typed must be str, got {type(typed).__name__}")
         k = check_k(k)
         ctx = parse_typed(typed)
         at_start = ctx.previous == BOS
-        out = []
-        for c, p in self._rank_c(ctx.history, ctx.prefix, k):
-            out.append(Suggestion(recase(self._shown(c), ctx.prefix, at_start), p))
-        return out
+        ranked = self._rank_c(ctx.history, ctx.prefix, k) if typo is None else self._rank_typo(ctx.history, ctx.prefix, k, typo)
+        return [Suggestion(recase(self._shown(c), ctx.prefix, at_start), p) for c, p in ranked]
+
+    def typo_prefixes(self, prefix: str, typo: Channel) -> list[tuple[str, float]]:
+        """The union prefixes typed ``prefix`` may have meant under ``typo``, with channel weights, best first.
+
+        The union of the parts' readings (:meth:`Model.typo_prefixes`); a reading's weight
+        depends only on the typed letters and the reading, so parts agree on it.
+        """
+        readings: dict[str, float] = {}
+        for p in self.parts:
+            for r, w in p.typo_prefixes(prefix, typo):
+                if w > readings.get(r, -1.0):
+                    readings[r] = w
+        return sorted(readings.items(), key=lambda t: (-t[1], t[0]))
+
+    def _rank_typo(self, hist: tuple[str | None, ...], prefix: str, k: int, typo: Channel) -> list[tuple[int, float]]:
+        """Top k by channel weight × mixture probability, each word with its best reading.
+
+        Exact as ``candidates.merge_ranked`` is: a word of the true top k is in the exact top
+        k of the reading that gives it its best weight (fl(w·p) is monotone in p), so the
+        mixture's exact top k per reading, merged by best score, holds it. Ties by key.
+        """
+        best: dict[int, float] = {}
+        for reading, w in self.typo_prefixes(prefix, typo):
+            for c, p in self._rank_c(hist, reading, k):
+                s = w * p
+                if s > best.get(c, -1.0):
+                    best[c] = s
+        top = sorted(best.items(), key=lambda t: (-t[1], self._key_c(t[0])))
+        return top[:k]
 
     # -- description ------------------------------------------------------------------------------
 

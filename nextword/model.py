@@ -14,6 +14,7 @@ tests compare it with scoring every word.
 from __future__ import annotations
 
 import bisect
+import heapq
 import math
 import os
 import sys
@@ -26,7 +27,8 @@ from .estimators import Level, unigram_floor
 from .estimators.jm import jm_alpha, jm_gamma, jm_step
 from .ngrams import NgramCounts
 from .errors import InvalidArgumentError, ModelFormatError
-from .candidates import CandidateRange, PrefixRange, merge_ranked
+from .candidates import CandidateRange, CandidateSource, NearMiss, PrefixRange, merge_ranked
+from .keyboard import Channel
 from .store import (
     BIGRAM_TAGS,
     COUNT_ESCAPE,
@@ -45,6 +47,11 @@ __all__ = ["Model", "Suggestion", "load", "check_k", "check_lam"]
 #: sections whose size grows with the number of stored pairs, and with the vocabulary (for ``info``)
 _PAIR_SECTIONS = ("SUCC", "CNTS", "BIGI", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC")
 _VOCAB_SECTIONS = ("TKID", "IDTK", "ALPH", "APOS", "KEY4", "TOPK", "UNIG", "ROWS", "HIST", "DISI", "DISO")
+#: how many of a context's best words bound the near-miss ranges (Model._context_top): the
+#: stored skyband depth, so the list comes from the bands without scanning a segment
+_BOUND_TOP = 8
+#: near-miss ranges of at most this many words are scored word by word (Model._rank_near)
+_TINY_RANGE = 4
 # below this many successor candidates, plain Python beats numpy's per-call overhead
 _SMALL = 80
 #: a plain trigram row range longer than this is cut with numpy before the Python scoring (_NgramScorer;
@@ -147,6 +154,9 @@ class Model:
             trie=self._trie, idtk=self._mv_idtk, alph_view=self._mv_alph, key4=self._mv_key4,
             alph=self._alph, topk=a["TOPK"], n_words=n, max_key_chars=self._max_key,
         )
+        # near-miss sources per typing channel (typo-tolerant queries), built on first use
+        self._near: dict[Channel, NearMiss] = {}
+        self._top_cache: dict[Any, tuple[list[tuple[str, float]], float]] = {}
         #: alphabetical positions [lo, hi) of the words starting with a folded prefix
         self._prefix_range: Callable[[str], tuple[int, int]] = self._candidates.span
         #: the k most frequent word ids of an alphabetical range (the ranking's lower bound)
@@ -614,7 +624,27 @@ class Model:
                     ranked.append((wid, 0.0))
         return ranked
 
-    def suggest(self, typed: str, k: int = 3, *, lam: float | None = None) -> list[Suggestion]:
+    @staticmethod
+    def _check_typo(typo: Channel | None) -> None:
+        if typo is not None and not isinstance(typo, Channel):
+            raise InvalidArgumentError(f"typo must be a nextword.keyboard.Channel or None, got {type(typo).__name__}")
+
+    def _source(self, typo: Channel | None) -> CandidateSource:
+        """The candidate source of a query: exact prefixes, or near misses under ``typo``."""
+        if typo is None:
+            return self._candidates
+        if not isinstance(typo, Channel):
+            raise InvalidArgumentError(f"typo must be a nextword.keyboard.Channel or None, got {type(typo).__name__}")
+        src = self._near.get(typo)
+        if src is None:
+            if len(self._near) > 16:
+                self._near.clear()
+            src = self._near[typo] = NearMiss(self._candidates, typo)
+        return src
+
+    def suggest(
+        self, typed: str, k: int = 3, *, lam: float | None = None, typo: Channel | None = None
+    ) -> list[Suggestion]:
         """The k words the user most likely wants at the cursor, best first.
 
         If ``typed`` ends inside a word, that partial word is completed
@@ -622,20 +652,27 @@ class Model:
         last complete word of the same sentence (the sentence start if none, the unknown
         symbol right after a number or symbol). Suggestions are capitalised at a sentence
         start and after a capitalised prefix; an explicitly lowercase prefix stays lowercase.
+
+        With ``typo`` (a :class:`~nextword.keyboard.Channel`) the partial word may hold
+        slips of the finger: words are ranked by channel weight × probability over the
+        prefixes that read as what was typed (:class:`~nextword.candidates.NearMiss`), and
+        the scores are those products, no longer probabilities. Off by default: the exact
+        prefix answer stays what it always was.
         """
         if not isinstance(typed, str):
             raise InvalidArgumentError(f"typed must be str, got {type(typed).__name__}")
         k = check_k(k)
         lam = None if lam is None else check_lam(lam)
+        self._check_typo(typo)
         ctx = parse_typed(typed)
         if self._general:
             lams = self._ng_lams(lam)
-            rs = self._candidates.ranges(fold(ctx.prefix))
-            if not rs:
+            key = fold(ctx.prefix)
+            if typo is None and not self._candidates.ranges(key):
                 return []
             ids = self._context_ids(ctx.history)
             try:
-                ranked = self._rank_ranges(self._ng.rank, ids, rs, k, lams)
+                ranked = self._rank_typed(self._ng.rank, ids, key, typo, k, lams, None)
                 at_start = ids[-1] == self._bos
                 return [Suggestion(recase(self.display(i), ctx.prefix, at_start), p) for i, p in ranked]
             except (IndexError, ValueError, UnicodeDecodeError) as e:
@@ -647,11 +684,14 @@ class Model:
         else:
             wid = self._word_id(fold(ctx.previous))
             v = self._unk if wid is None else wid
-        rs = self._candidates.ranges(fold(ctx.prefix))
-        if not rs:
+        key = fold(ctx.prefix)
+        rs = self._candidates.ranges(key) if typo is None else ()
+        if typo is None and not rs:
             return []
         try:
-            if len(rs) == 1 and rs[0][2] == 1.0:  # the exact prefix: one range, ranked directly
+            if typo is not None:
+                ranked = self._rank_typed(self._rank, v, key, typo, k, self._lam_of(v, lam), self._prob_ids)
+            elif len(rs) == 1 and rs[0][2] == 1.0:  # the exact prefix: one range, ranked directly
                 ranked = self._rank(v, rs[0][0], rs[0][1], k, self._lam_of(v, lam))
             else:
                 ranked = self._rank_ranges(self._rank, v, rs, k, self._lam_of(v, lam))
@@ -663,7 +703,10 @@ class Model:
         except (IndexError, ValueError, UnicodeDecodeError) as e:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
 
-    def rank_ids(self, previous_word: str | None, prefix: str = "", k: int = 3, *, lam: float | None = None) -> list[tuple[str, float]]:
+    def rank_ids(
+        self, previous_word: str | None, prefix: str = "", k: int = 3, *, lam: float | None = None,
+        typo: Channel | None = None,
+    ) -> list[tuple[str, float]]:
         """(key, probability) of the top k after ``previous_word`` among words starting with ``prefix``.
 
         The raw ranking behind :meth:`suggest`, without text parsing or capitalisation;
@@ -671,32 +714,36 @@ class Model:
         """
         k = check_k(k)
         lam = None if lam is None else check_lam(lam)
+        self._check_typo(typo)
         if self._general:
-            return self.rank_after((previous_word,), prefix, k, lam=lam)
+            return self.rank_after((previous_word,), prefix, k, lam=lam, typo=typo)
         v = self._history_id(previous_word)
-        rs = self._candidates.ranges(fold(prefix))
-        if not rs:
-            return []
         try:
-            return [(self._key(i), p) for i, p in self._rank_ranges(self._rank, v, rs, k, self._lam_of(v, lam))]
+            ranked = self._rank_typed(self._rank, v, fold(prefix), typo, k, self._lam_of(v, lam), self._prob_ids)
+            return [(self._key(i), p) for i, p in ranked]
         except (IndexError, ValueError) as e:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
 
     def rank_after(
-        self, history: Sequence[str | None], prefix: str = "", k: int = 3, *, lam: float | None = None
+        self, history: Sequence[str | None], prefix: str = "", k: int = 3, *, lam: float | None = None,
+        typo: Channel | None = None,
     ) -> list[tuple[str, float]]:
-        """Like :meth:`rank_ids` with a context of tokens oldest first (see :meth:`prob_after`)."""
+        """Like :meth:`rank_ids` with a context of tokens oldest first (see :meth:`prob_after`).
+
+        With ``typo``, scores are channel weight × probability (see :meth:`suggest`).
+        """
         k = check_k(k)
         lam = None if lam is None else check_lam(lam)
+        self._check_typo(typo)
         ctx = self._context_ids(history)
-        rs = self._candidates.ranges(fold(prefix))
-        if not rs:
-            return []
+        key = fold(prefix)
         try:
             if self._general:
-                return [(self._key(i), p) for i, p in self._rank_ranges(self._ng.rank, ctx, rs, k, self._ng_lams(lam))]
-            v = ctx[-1]
-            return [(self._key(i), p) for i, p in self._rank_ranges(self._rank, v, rs, k, self._lam_of(v, lam))]
+                ranked = self._rank_typed(self._ng.rank, ctx, key, typo, k, self._ng_lams(lam), None)
+            else:
+                v = ctx[-1]
+                ranked = self._rank_typed(self._rank, v, key, typo, k, self._lam_of(v, lam), self._prob_ids)
+            return [(self._key(i), p) for i, p in ranked]
         except (IndexError, ValueError) as e:
             raise ModelFormatError(f"{self.path}: damaged model data: {e}") from None
 
@@ -716,6 +763,94 @@ class Model:
         per = [(w, rank(context, lo, hi, k, weights)) for lo, hi, w in ranges]
         return merge_ranked(per, k)
 
+    def _rank_typed(
+        self, rank: Callable[[Any, int, int, int, Any], list[tuple[int, float]]], context: Any, key: str,
+        typo: Channel | None, k: int, weights: Any, score_of: Callable[[Any, int, Any], float] | None,
+    ) -> list[tuple[int, float]]:
+        """Top-k (word id, score) for the folded typed prefix ``key``: its exact prefix range,
+        or (with ``typo``) the near-miss readings (:meth:`_rank_near`). ``score_of(context,
+        id, weights)`` is the scorer's own P(word | context), the same value ``rank`` gives,
+        when one word costs less than ranking a few (the Jelinek-Mercer bigram), else None."""
+        if typo is None:
+            rs = self._candidates.ranges(key)
+            return self._rank_ranges(rank, context, rs, k, weights) if rs else []
+        src = self._source(typo)
+        assert isinstance(src, NearMiss)
+        readings = src.prefix_weights(key) if key else [("", 1.0)]
+        return self._rank_near(rank, context, readings, k, weights, score_of)
+
+    def _rank_near(
+        self, rank: Callable[[Any, int, int, int, Any], list[tuple[int, float]]], context: Any,
+        readings: Sequence[tuple[str, float]], k: int, weights: Any, score_of: Callable[[Any, int, Any], float] | None,
+    ) -> list[tuple[int, float]]:
+        """Top k by channel weight × probability over the readings (intended prefix, weight),
+        best weight first: each reading's range ranked exactly, merged by :func:`merge_ranked`.
+
+        A reading is skipped when its weight × an upper bound of P(word | context) over its
+        words is below the k-th score so far: none of them can enter the top k (strictly
+        below, so not even a tie is lost). The bound comes from the context's top list over
+        the whole vocabulary (its first _BOUND_TOP words, cached per context): the best of
+        those that start with the reading's prefix, and the list's last probability for
+        every other word. Ranges are looked up only for the readings actually ranked; a
+        range of at most _TINY_RANGE words is scored word by word with ``score_of`` (the same
+        value, without the ranking's set-up). The exact prefix alone (weight 1.0) is ranked
+        directly: scores stay probabilities.
+        """
+        alph = self._mv_alph
+        span = self._candidates.span
+        if len(readings) == 1 and readings[0][1] == 1.0:
+            lo, hi = span(readings[0][0])
+            return rank(context, lo, hi, k, weights) if lo < hi else []
+        per: list[tuple[float, list[tuple[int, float]]]] = []
+        best: dict[int, float] = {}
+        kth = -1.0
+        top: tuple[list[tuple[str, float]], float] | None = None
+        for p, w in readings:
+            if len(best) >= k:
+                if top is None:
+                    top = self._context_top(rank, context, weights)
+                listed, bound = top
+                for word, prob in listed:
+                    if prob > bound and word.startswith(p):
+                        bound = prob
+                if w * bound < kth:
+                    continue
+            lo, hi = span(p)
+            if lo >= hi:
+                continue
+            if score_of is not None and hi - lo <= _TINY_RANGE:
+                scored = sorted((-score_of(context, alph[pos], weights), alph[pos]) for pos in range(lo, hi))
+                pairs = [(wid, -neg) for neg, wid in scored[:k]]
+            else:
+                pairs = rank(context, lo, hi, k, weights)
+            per.append((w, pairs))
+            raised = False
+            for wid, prob in pairs:
+                sc = w * prob
+                if sc > best.get(wid, -1.0):
+                    best[wid] = sc
+                    raised = raised or sc > kth
+            if raised and len(best) >= k:  # the k-th score only moves when a score above it came in
+                kth = heapq.nlargest(k, best.values())[-1]
+        return merge_ranked(per, k)
+
+    def _context_top(
+        self, rank: Callable[[Any, int, int, int, Any], list[tuple[int, float]]], context: Any, weights: Any
+    ) -> tuple[list[tuple[str, float]], float]:
+        """The context's best _BOUND_TOP words over the whole vocabulary as (key, probability),
+        and the bound of every other word (the list's last probability; 0.0 when the list
+        holds every word)."""
+        cache_key = (context, weights)
+        hit = self._top_cache.get(cache_key)
+        if hit is None:
+            top = rank(context, 0, self.n_words, _BOUND_TOP, weights)
+            rest = top[-1][1] if len(top) == _BOUND_TOP else 0.0
+            hit = ([(self._key(wid), p) for wid, p in top], rest)
+            if len(self._top_cache) > 4096:
+                self._top_cache.clear()
+            self._top_cache[cache_key] = hit
+        return hit
+
     def header(self) -> dict[str, Any]:
         """The file's metadata as plain data (a copy): estimator, order, λ or discounts, sizes."""
         import copy
@@ -726,6 +861,22 @@ class Model:
     # One block, so accessors other modules need can be merged beside it. The layer mixes
     # its own counts with this model's P(w | context) and ranks exactly with the model's
     # own exact top k (rank_after) as one candidate source; these give it the rest.
+
+    def typo_prefixes(self, prefix: str, typo: Channel) -> list[tuple[str, float]]:
+        """The vocabulary prefixes typed ``prefix`` may have meant under the channel ``typo``,
+        with their channel weights, best first (:meth:`NearMiss.prefix_weights`; the exact
+        prefix, when words start with it, weighs 1.0). What a layer ranking on top of
+        this model needs to be typo-tolerant the same way."""
+        if not isinstance(prefix, str):
+            raise InvalidArgumentError(f"prefix must be str, got {type(prefix).__name__}")
+        if not isinstance(typo, Channel):
+            raise InvalidArgumentError(f"typo must be a nextword.keyboard.Channel, got {type(typo).__name__}")
+        src = self._source(typo)
+        assert isinstance(src, NearMiss)
+        key = fold(prefix)
+        if not key:
+            return [("", 1.0)]
+        return list(src.prefix_weights(key))
 
     def tie_rank(self, word: str) -> int:
         """Where ``word`` goes among words of equal probability: its id (floor descending, then key).

@@ -106,6 +106,7 @@ from typing import Any
 import msgpack
 
 from .errors import InvalidArgumentError, LayerNotFoundError, ModelFormatError
+from .keyboard import Channel
 from .estimators.jm import jm_step
 from .mix import MixedModel, Predictor
 from .model import Model, Suggestion, check_k
@@ -783,6 +784,34 @@ class PersonalLayer:
             self.refresh()
             return self._rank(hist, prefix, k)
 
+    def _rank_typo(self, hist: tuple[str | None, ...], prefix: str, k: int, typo: Channel) -> list[tuple[str, float]]:
+        """Typo-tolerant top k: the exact mixture top k (:meth:`_rank`) of each prefix the typed
+        one may mean (:meth:`Model.typo_prefixes`), merged by channel weight × mixture
+        probability, a word keeping its best. Every word of the overall top k is in the top
+        k of the prefix giving its best score, so the merge is exact (ties: the base's tie
+        order, then the key); a prefix whose weight is below the k-th score so far cannot
+        contribute (a mixture probability is at most 1) and ends the walk. Words only the
+        user has are reached through the exact prefix alone: the near-miss search walks the
+        base model's vocabulary.
+        """
+        p = fold(prefix)
+        readings = self.base.typo_prefixes(prefix, typo)
+        if all(q != p for q, _ in readings):
+            readings = [(p, 1.0), *readings]
+        best: dict[str, float] = {}
+        kth = -1.0
+        for q, w in readings:
+            if len(best) >= k and w < kth:
+                break
+            for key, s in self._rank(hist, q, k):
+                sc = w * s
+                if sc > best.get(key, -1.0):
+                    best[key] = sc
+            if len(best) >= k:
+                kth = sorted(best.values(), reverse=True)[k - 1]
+        order = self.base.tie_rank
+        return sorted(best.items(), key=lambda e: (-e[1], order(e[0]), e[0]))[:k]
+
     def _blocked_with_prefix(self, p: str) -> int:
         """How many blocked words start with ``p`` (an estimate is enough: it sizes a request)."""
         if not self.blocklist:
@@ -1026,11 +1055,12 @@ class PersonalLayer:
             self._row_sorted[key] = cached
         return cached
 
-    def suggest(self, typed: str, k: int = 3) -> list[Suggestion]:
+    def suggest(self, typed: str, k: int = 3, *, typo: Channel | None = None) -> list[Suggestion]:
         """Like :meth:`nextword.Model.suggest`, over the mixture of base and personal counts.
 
         The context is the one the base model reads (the last two words of the sentence
-        for a trigram base); the personal counts use its last word.
+        for a trigram base); the personal counts use its last word. ``typo``: typo-tolerant
+        completion as in :meth:`nextword.Model.suggest` (see :meth:`_rank_typo`).
         """
         if not isinstance(typed, str):
             raise InvalidArgumentError(f"typed must be str, got {type(typed).__name__}")
@@ -1040,7 +1070,9 @@ class PersonalLayer:
         out = []
         with self._lock:
             self.refresh()
-            for key, p in self._rank(ctx.history, ctx.prefix, k):
+            ranked = self._rank(ctx.history, ctx.prefix, k) if typo is None else self._rank_typo(
+                ctx.history, ctx.prefix, k, typo)
+            for key, p in ranked:
                 shown = self._base_spelling(key) or self._spelling.get(key, key)
                 out.append(Suggestion(recase(shown, ctx.prefix, at_start), p))
         return out

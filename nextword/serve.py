@@ -38,6 +38,7 @@ Design, and why:
 from __future__ import annotations
 
 import errno
+import functools
 import ipaddress
 import json
 import math
@@ -57,6 +58,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import InvalidArgumentError, LayerNotFoundError, NextwordError
+from .keyboard import DEFAULT_TYPO_RATE, Channel
 from .mix import Predictor
 from .personal import PersonalLayer
 
@@ -829,17 +831,39 @@ def _word(req: dict[str, Any]) -> str:
     return word.strip()
 
 
+@functools.lru_cache(maxsize=16)
+def _channel(rate: float) -> Channel:
+    """One typing channel per requested rate (building one computes its key tables)."""
+    return Channel.from_rate(rate)
+
+
+def _typos(req: dict[str, Any]) -> Channel | None:
+    """The request's ``typos`` field: absent or false = exact prefixes, true = the default
+    channel, a number = a channel expecting letter slips at that rate (QWERTY)."""
+    value = req.get("typos", False)
+    if value is False:
+        return None
+    if value is True:
+        return _channel(DEFAULT_TYPO_RATE)
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or not 0 < value < 0.5:
+        raise RequestError("bad_field", f"typos must be true, false or a slip rate in (0, 0.5), got {_show(value)}", "typos")
+    return _channel(float(value))
+
+
 def _op_suggest(server: Server, req: dict[str, Any]) -> dict[str, Any]:
     text = _text(req, "text")
     k = req.get("k", 3)
     if isinstance(k, bool) or not isinstance(k, int) or not 1 <= k <= server.limits.max_k:
         raise RequestError("bad_field", f"k must be an integer from 1 to {server.limits.max_k}, got {_show(k)}", "k")
+    typo = _typos(req)
+    # the typo keyword only when asked for: the plain call stays exactly what it was
+    extra: dict[str, Any] = {} if typo is None else {"typo": typo}
     user = server._user(req, required=False)
     if user is None:
-        found = server.model.suggest(text, k)
+        found = server.model.suggest(text, k, **extra)
     else:
         with server._using(user, create=False) as layer:
-            found = server.model.suggest(text, k) if layer is None else layer.suggest(text, k)
+            found = server.model.suggest(text, k, **extra) if layer is None else layer.suggest(text, k, **extra)
         if not all(math.isfinite(s.prob) for s in found):
             raise RequestError("user_layer", f"user {user}: the layer's counts give no finite probability (damaged layer file?)")
     return {"suggestions": [{"word": s.word, "prob": s.prob} for s in found]}
@@ -922,7 +946,7 @@ def _op_info(server: Server, req: dict[str, Any]) -> dict[str, Any]:
 
 
 _HANDLERS: dict[str, tuple[frozenset[str], Callable[[Server, dict[str, Any]], dict[str, Any]]]] = {
-    "suggest": (frozenset({"text", "k", "user"}), _op_suggest),
+    "suggest": (frozenset({"text", "k", "user", "typos"}), _op_suggest),
     "learn": (frozenset({"user", "text"}), _op_learn),
     "forget": (frozenset({"user", "word", "all"}), _op_forget),
     "block": (frozenset({"user", "word"}), _op_block),
