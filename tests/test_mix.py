@@ -505,3 +505,38 @@ def test_mixture_file_layout_as_documented(tmp_path: Path) -> None:
     for part in body["parts"]:
         data = (tmp_path / part["path"]).read_bytes()
         assert part["bytes"] == len(data) and part["sha256"] == hashlib.sha256(data).hexdigest()
+
+
+# -- typo tolerance ---------------------------------------------------------------------------------------
+
+
+def test_typo_tolerant_ranking_of_a_mixture_equals_brute_force(two: tuple[Path, Path]) -> None:
+    """Channel weight × mixture probability, each word with its best reading (the rule of Model.suggest(typo=))."""
+    from nextword.keyboard import Channel, load_layout
+
+    typo = Channel.from_rate(0.05, load_layout("qwerty"))
+    mix = MixedModel([nextword.load(p) for p in two], [0.45, 0.55])
+    for h in [("<s>",), ("the",), ("of", "the"), ("return", "the")]:
+        for typed in ["obk", "tge", "vakue", "lust", "x", "re"]:
+            readings = mix.typo_prefixes(typed, typo)
+            assert readings and all(w > 0 for _, w in readings)
+            scored = []
+            for key in mix.union_keys():
+                ws = [w for r, w in readings if key.startswith(r)]
+                if ws:
+                    scored.append((-(max(ws) * mix.prob_after(key, h)), key))
+            scored.sort()
+            for k in (1, 3, 5):
+                assert mix.rank_after(h, typed, k, typo=typo) == [(key, -s) for s, key in scored[:k]], (h, typed, k)
+    got = mix.suggest("Return the vakue", 3, typo=typo)
+    assert [fold(s.word) for s in got] == [w for w, _ in mix.rank_after(("return", "the"), "vakue", 3, typo=typo)]
+
+
+def test_eval_of_a_mixture_with_a_noisy_typist(two: tuple[Path, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    test = tmp_path / "test.txt"
+    test.write_text("\n".join(_real_lines()[2600:2640]), encoding="utf-8")
+    out = tmp_path / "m.nwx"
+    write_mix(out, list(two), [0.5, 0.5])
+    assert main(["eval", str(out), str(test), "-k", "3", "--typo-rate", "0.05", "--tolerate-typos", "--json"]) == 0
+    data = json.loads(capsys.readouterr().out)
+    assert data["typing"]["typist"]["substitution"] == 0.05 and len(data["baselines"]["parts"]) == 2
