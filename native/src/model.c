@@ -370,10 +370,13 @@ static nw_status read_kind(nw_model *m, const meta_view *mv, nw_error *err) {
                            (int)(name.len > 40 ? 40 : name.len), (const char *)name.s, (unsigned long long)ver.u);
         m->quant_bits = 0;
         if (m->codec == &nw_codec_quant) { /* codecs.codec_named: bits an int in 2 .. 8, booleans refused */
-            if (!have_bits || bits.t != MP_POS || bits.u < 2 || bits.u > 8)
-                return nw_fail(err, NW_E_UNSUPPORTED, "codec 'quant' with bits %s%llu (this library reads 2 to 8)",
-                               !have_bits ? "(missing) " : bits.t != MP_POS ? "(not an int) " : "",
-                               (unsigned long long)(bits.t == MP_POS ? bits.u : 0));
+            if (!have_bits)
+                return nw_fail(err, NW_E_UNSUPPORTED, "codec 'quant' without bits (this library reads 2 to 8)");
+            if (bits.t != MP_POS)
+                return nw_fail(err, NW_E_UNSUPPORTED, "codec 'quant' with bits that are not a positive int (this library reads 2 to 8)");
+            if (bits.u < 2 || bits.u > 8)
+                return nw_fail(err, NW_E_UNSUPPORTED, "codec 'quant' with bits %llu (this library reads 2 to 8)",
+                               (unsigned long long)bits.u);
             m->quant_bits = (int)bits.u;
         }
         /* a 1.4 file names 'exact', a 1.5 file 'quant' (store._check_model_kind) */
