@@ -25,6 +25,7 @@ from nextword.store import HEADER, atomic_write, read_model
 
 from test_native import (  # noqa: F401 - build_dir, native, corpus and fuzz_driver are fixtures used here
     Native,
+    _make,
     _mutants,
     _queries,
     _recrc,
@@ -157,6 +158,24 @@ def test_worked_quantised_example_of_the_format_document(native: Native, tmp_pat
             assert sum(native.prob(s, w, hist)[1] for w in vocab) == pytest.approx(1.0, abs=1e-12), hist
     finally:
         _close(native, m, s)
+
+
+@pytest.mark.parametrize("name", ["jm2-pruned-q5", "kn3-q5"])
+def test_quantised_queries_allocate_nothing_and_threads_share_a_model(build_dir: Path, qmodels: dict[str, Path],
+                                                                      corpus: tuple[list[str], list[str]], tmp_path: Path,
+                                                                      name: str) -> None:
+    # native/tools/nwcheck.c (as tests/test_native.py uses it): no heap allocation around 500
+    # queries of a 1.5 file, and 4 threads on one model give the single-thread answers
+    _make(build_dir, "check-tools")
+    queries = tmp_path / "q.txt"
+    queries.write_text("".join(t.replace("\n", " ") + "\n" for t, _ in _queries(corpus[1], 500, seed=4)), encoding="utf-8")
+    tool = str(build_dir / "nwcheck")
+    proc = subprocess.run([tool, "--alloc", str(qmodels[name]), str(queries)], capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    assert '"allocations": 0' in proc.stdout
+    proc = subprocess.run([tool, "--threads", "4", str(qmodels[name]), str(queries)], capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    assert '"threads_differing": 0' in proc.stdout
 
 
 # -- refusals: the codec fields and every load check of §7.17 -----------------------------------
