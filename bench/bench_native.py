@@ -1,7 +1,8 @@
 """The native C runtime (native/) against the Python library, side by side in one run.
 
 On the 5M-word corpus (``bench/data/{train,test}.txt`` from ``prepare_corpus.py``) a JM bigram
-(the defaults) and a KN trigram are trained with ``nextword.build.train``; the first
+(the defaults), a KN trigram and the same KN trigram quantised to 5 bits (format 1.5, the
+``quant`` codec; compare its row with the exact one) are trained with ``nextword.build.train``; the first
 ``--queries`` typed texts of the held-out part (the keystroke simulation's own queries,
 ``baselines.sample_queries``) are answered by ``Model.suggest`` and by the C library
 (``nwsuggest --bench``, which times each call with a monotonic clock in the same process as
@@ -40,6 +41,7 @@ DATA = HERE / "data"
 MODELS: tuple[tuple[str, dict[str, Any]], ...] = (
     ("JM bigram (defaults)", {}),
     ("KN trigram", {"order": 3, "smoothing": "kn"}),
+    ("KN trigram, quantised 5 bits (format 1.5)", {"order": 3, "smoothing": "kn", "quantize": 5}),
 )
 
 

@@ -55,8 +55,10 @@ static inline uint64_t nw_lower(const nw_arr *a, uint64_t lo, uint64_t hi, uint3
 
 /* The values of one n-gram level as its codec stores them (the one dispatch point). */
 typedef struct nw_level_values {
-    nw_arr small, esc_i, esc_v;
+    nw_arr small, esc_i, esc_v;  /* quant (§7.17): the code stream, the codebook, empty */
     const char *tags;  /* e.g. "CNTS/BIGI/BIGC", for messages */
+    uint64_t count;    /* the level's number of values */
+    int bits;          /* quant: the code width q (2 .. 8) */
 } nw_level_values;
 
 struct nw_model;
@@ -89,6 +91,8 @@ struct nw_model {
     uint32_t sky_k;
     uint64_t sky_min, tsky_min, max_key;
     const nw_codec *codec;
+    int quant_bits;       /* META codec "bits" (format 1.5), else 0 */
+    int jm_path;          /* answered as Model's JM bigram path (λ by history count applies) */
     nw_arr TKID, IDTK, ALPH, APOS, KEY4, TOPK, UNIG, ROWS, SUCC, SEGS, SEGE, SKYP, SKYI, SKYC, DISI, DISO;
     nw_arr HIST, HN13, HDRI, HDRV, TCTB, TSUC, TLNI, TLNV, TDRI, TDRV, TSGS, TSGE, TSKP, TSKI, TSKC;
     nw_level_values v2, v3, tlen;

@@ -164,8 +164,49 @@ static int exact_check(const struct nw_model *m, const nw_level_values *lv, uint
 }
 
 const nw_codec nw_codec_exact = {"exact", 1, exact_check, exact_value};
-/* every codec this library reads (a second one is one more entry) */
-static const nw_codec *const CODECS[] = {&nw_codec_exact};
+
+/* -- the quant codec (§7.17): q-bit codes, one little-endian bit stream, into a codebook -- */
+
+static int quant_value(const nw_level_values *lv, uint64_t i, uint64_t *out) {
+    if (i >= lv->count) return -1;
+    int q = lv->bits;
+    uint64_t bit = i * (uint64_t)q, at = bit >> 3;
+    unsigned sh = (unsigned)(bit & 7);
+    uint32_t w = lv->small.p[at];
+    if (sh + (unsigned)q > 8) w |= (uint32_t)lv->small.p[at + 1] << 8; /* in range: checked length */
+    uint32_t code = (w >> sh) & ((1u << q) - 1u);
+    if (code >= lv->esc_i.n) return -1; /* "value code ... past the codebook" */
+    *out = nw_at(&lv->esc_i, code);
+    return 0;
+}
+
+static int quant_check(const struct nw_model *m, const nw_level_values *lv, uint64_t n, nw_error *err) {
+    (void)m;
+    int q = lv->bits;
+    uint64_t want = (n * (uint64_t)q + 7) / 8, ncb = lv->esc_i.n, maxcb = 1ull << q;
+    if (lv->small.n != want)
+        return nw_fail(err, NW_E_FORMAT, "section %.4s holds %llu bytes, expected %llu for %llu %d-bit codes", lv->tags,
+                       (unsigned long long)lv->small.n, (unsigned long long)want, (unsigned long long)n, q), -1;
+    if (!(ncb >= 1 && ncb <= maxcb) && !(n == 0 && ncb == 0))
+        return nw_fail(err, NW_E_FORMAT, "section %.4s holds %llu codebook entries, expected 1 to %llu", lv->tags + 5,
+                       (unsigned long long)ncb, (unsigned long long)maxcb), -1;
+    int ok = ncb == 0 || nw_at(&lv->esc_i, 0) >= 1;
+    for (uint64_t j = 1; ok && j < ncb; j++) ok = nw_at(&lv->esc_i, j) > nw_at(&lv->esc_i, j - 1);
+    if (!ok)
+        return nw_fail(err, NW_E_FORMAT, "section %.4s is not a strictly increasing codebook of values >= 1", lv->tags + 5), -1;
+    if (lv->esc_v.n)
+        return nw_fail(err, NW_E_FORMAT, "section %.4s must be empty for codec 'quant'", lv->tags + 10), -1;
+    unsigned tail = (unsigned)(n * (uint64_t)q % 8);
+    if (tail && (lv->small.p[lv->small.n - 1] >> tail))
+        return nw_fail(err, NW_E_FORMAT, "section %.4s has non-zero bits after the last code", lv->tags), -1;
+    return 0;
+}
+
+static const nw_codec nw_codec_quant = {"quant", 1, quant_check, quant_value};
+/* every codec this library reads, and the format minor version each belongs to */
+static const nw_codec *const CODECS[] = {&nw_codec_exact, &nw_codec_quant};
+#define EXACT_MINOR 4
+#define QUANT_MINOR 5
 
 /* -- META (§7.1, §7.11) ----------------------------------------------------------------- */
 
@@ -304,8 +345,8 @@ static nw_status read_kind(nw_model *m, const meta_view *mv, nw_error *err) {
         return nw_fail(err, NW_E_FORMAT, "metadata field 'codec' is invalid");
     {
         nw_mp q = {mv->p, mv->n, mv->at[F_CODEC]};
-        nw_mpv tmp, name = {0}, ver = {0};
-        int have_name = 0, have_ver = 0;
+        nw_mpv tmp, name = {0}, ver = {0}, bits = {0};
+        int have_name = 0, have_ver = 0, have_bits = 0;
         nw_mp_read(&q, &tmp);
         for (uint64_t j = 0; j < v.u; j++) {
             nw_mpv key, val;
@@ -316,6 +357,7 @@ static nw_status read_kind(nw_model *m, const meta_view *mv, nw_error *err) {
             nw_mp_skip(&q, 1);
             if (nw_mp_str_eq(&key, "name")) { name = val; have_name = 1; }
             else if (nw_mp_str_eq(&key, "version")) { ver = val; have_ver = 1; }
+            else if (nw_mp_str_eq(&key, "bits")) { bits = val; have_bits = 1; }
         }
         if (!have_name || name.t != MP_STR || !have_ver || ver.t != MP_POS)
             return nw_fail(err, NW_E_FORMAT, "metadata field 'codec' is invalid");
@@ -323,8 +365,24 @@ static nw_status read_kind(nw_model *m, const meta_view *mv, nw_error *err) {
         for (size_t c = 0; c < sizeof CODECS / sizeof CODECS[0]; c++)
             if (nw_mp_str_eq(&name, CODECS[c]->name) && ver.u == (uint64_t)CODECS[c]->version) m->codec = CODECS[c];
         if (m->codec == NULL)
-            return nw_fail(err, NW_E_UNSUPPORTED, "unknown value codec '%.*s' version %llu (this library reads 'exact' version 1)",
+            return nw_fail(err, NW_E_UNSUPPORTED,
+                           "unknown value codec '%.*s' version %llu (this library reads 'exact' version 1 and 'quant' version 1)",
                            (int)(name.len > 40 ? 40 : name.len), (const char *)name.s, (unsigned long long)ver.u);
+        m->quant_bits = 0;
+        if (m->codec == &nw_codec_quant) { /* codecs.codec_named: bits an int in 2 .. 8, booleans refused */
+            if (!have_bits)
+                return nw_fail(err, NW_E_UNSUPPORTED, "codec 'quant' without bits (this library reads 2 to 8)");
+            if (bits.t != MP_POS)
+                return nw_fail(err, NW_E_UNSUPPORTED, "codec 'quant' with bits that are not a positive int (this library reads 2 to 8)");
+            if (bits.u < 2 || bits.u > 8)
+                return nw_fail(err, NW_E_UNSUPPORTED, "codec 'quant' with bits %llu (this library reads 2 to 8)",
+                               (unsigned long long)bits.u);
+            m->quant_bits = (int)bits.u;
+        }
+        /* a 1.4 file names 'exact', a 1.5 file 'quant' (store._check_model_kind) */
+        if ((m->codec == &nw_codec_quant) != (m->minor == QUANT_MINOR))
+            return nw_fail(err, NW_E_VERSION, "format 1.%u files do not use codec '%s' (1.%d: exact values, 1.%d: quantised)",
+                           m->minor, m->codec->name, EXACT_MINOR, QUANT_MINOR);
     }
     if (field(mv, F_ESTIMATOR, &v) != 1 || !(nw_mp_str_eq(&v, "jm") || nw_mp_str_eq(&v, "kn")))
         return nw_fail(err, NW_E_FORMAT, "metadata field 'estimator' is invalid");
@@ -332,8 +390,9 @@ static nw_status read_kind(nw_model *m, const meta_view *mv, nw_error *err) {
     if (field(mv, F_ORDER, &v) != 1 || v.t != MP_POS || (v.u != 2 && v.u != 3))
         return nw_fail(err, NW_E_FORMAT, "metadata field 'order' is invalid");
     m->order = (int)v.u;
-    if (!m->kn && m->order == 2)
-        return nw_fail(err, NW_E_FORMAT, "a Jelinek-Mercer bigram model is a format 1.0-1.2 file, not 1.%u", m->minor);
+    if (!m->kn && m->order == 2 && m->minor != QUANT_MINOR)
+        return nw_fail(err, NW_E_FORMAT, "a Jelinek-Mercer bigram model is a format 1.0-1.2 or 1.%d file, not 1.%u", QUANT_MINOR,
+                       m->minor);
     if (m->kn) {
         int ok = field(mv, F_DISCOUNTS, &v) == 1 && v.t == MP_ARR && v.u == (uint64_t)m->order;
         nw_mp q = {mv->p, mv->n, mv->at[F_DISCOUNTS]};
@@ -366,7 +425,7 @@ static nw_status read_kind(nw_model *m, const meta_view *mv, nw_error *err) {
             }
             if (!okn) return nw_fail(err, NW_E_FORMAT, "metadata field 'discount_notes' is invalid");
         }
-    } else {
+    } else if (m->order == 3) { /* a 1.5 JM bigram has no lambda3 (and Python ignores one) */
         if ((m->lam3 = 0, need_num(mv, F_LAMBDA3, 0.0, 1.0, &m->lam3, err)))
             return nw_fail(err, NW_E_FORMAT, "metadata field 'lambda3' is invalid");
         if (m->lam3 > MAX_LAMBDA) m->lam3 = MAX_LAMBDA;
@@ -415,7 +474,7 @@ static nw_status check_arrays(nw_model *m, nw_error *err) {
     struct { const char *label; const nw_arr *a; uint64_t want; } exp[] = {
         {"TKID", &m->TKID, n}, {"IDTK", &m->IDTK, n}, {"ALPH", &m->ALPH, npos}, {"APOS", &m->APOS, npos},
         {"KEY4", &m->KEY4, n}, {"TOPK", &m->TOPK, topk * TOPK_FANOUT}, {"UNIG", &m->UNIG, npos},
-        {"ROWS", &m->ROWS, nhist + 1}, {"SUCC", &m->SUCC, b}, {"CNTS", &m->v2.small, b},
+        {"ROWS", &m->ROWS, nhist + 1}, {"SUCC", &m->SUCC, b},
         {"SEGE", &m->SEGE, m->SEGS.n}, {"SKYP", &m->SKYP, m->SEGS.n + 1}, {"SKYC", &m->SKYC, m->SEGS.n * m->sky_k},
         {"HIST", &m->HIST, m->has_hist ? nhist : m->HIST.n}, {"DISO", &m->DISO, m->DISI.n + 1},
     };
@@ -423,7 +482,8 @@ static nw_status check_arrays(nw_model *m, nw_error *err) {
         if (exp[i].a->n != exp[i].want)
             return nw_fail(err, NW_E_FORMAT, "section %s holds %llu entries, expected %llu", exp[i].label,
                            (unsigned long long)exp[i].a->n, (unsigned long long)exp[i].want);
-    if (m->v2.esc_i.n != m->v2.esc_v.n) return nw_fail(err, NW_E_FORMAT, "sections BIGI and BIGC differ in length");
+    /* the bigram level's values through the file's codec (codec.check) */
+    if (m->codec->check(m, &m->v2, b, err)) return err ? err->code : NW_E_FORMAT;
     nw_status st;
     if ((st = check_perm(&m->TKID, &m->IDTK, n, "TKID", err))) return st;
     if ((st = check_perm(&m->ALPH, &m->APOS, npos, "ALPH", err))) return st;
@@ -449,7 +509,7 @@ static nw_status check_arrays(nw_model *m, nw_error *err) {
     }
     /* store._check_escaped_counts: every escaped pair count is at most its row's c(v) */
     const nw_arr *bigi = &m->v2.esc_i, *bigc = &m->v2.esc_v;
-    if (bigi->n) {
+    if (m->codec == &nw_codec_exact && bigi->n) {
         for (uint64_t j = 0; j < bigi->n; j++)
             if (nw_at(bigi, j) >= b) return nw_fail(err, NW_E_FORMAT, "section BIGI points past the last pair");
         for (uint64_t j = 0; j < bigi->n; j++) {
@@ -538,7 +598,7 @@ static nw_status make_floor(nw_model *m, nw_error *err) {
     } else {
         for (uint64_t i = 0; i < npos; i++) m->floor[i] = (double)nw_at(&m->UNIG, i) / total;
     }
-    if (m->order != 2 || m->kn) /* Model: the general scorer checks its floor on load */
+    if (!m->jm_path) /* Model: the general scorer checks its floor on load */
         for (uint64_t i = 0; i < npos; i++)
             if (!(m->floor[i] >= 0.0 && m->floor[i] <= 1.0 + 1e-9))
                 return nw_fail(err, NW_E_FORMAT, "damaged model data: a unigram probability outside [0, 1]");
@@ -551,8 +611,8 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
     if (nw_crc32(buf, 28) != (uint32_t)le(buf + 28, 4)) return nw_fail(err, NW_E_FORMAT, "header checksum mismatch (damaged file)");
     m->major = (uint16_t)le(buf + 8, 2);
     m->minor = (uint16_t)le(buf + 10, 2);
-    if (m->major != 1 || m->minor > 4)
-        return nw_fail(err, NW_E_VERSION, "unsupported format version %u.%u (this library reads 1.0 to 1.2 and 1.4)",
+    if (m->major != 1 || m->minor > QUANT_MINOR)
+        return nw_fail(err, NW_E_VERSION, "unsupported format version %u.%u (this library reads 1.0 to 1.2, 1.4 and 1.5)",
                        m->major, m->minor);
     if (m->minor == 3)
         return nw_fail(err, NW_E_VERSION,
@@ -669,17 +729,25 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
     m->v2.esc_i = arr_of(m, &secs[spec_index("BIGI")]);
     m->v2.esc_v = arr_of(m, &secs[spec_index("BIGC")]);
     m->v2.tags = "CNTS/BIGI/BIGC";
+    m->v2.count = m->b;
+    m->v2.bits = m->quant_bits;
     if (m->order == 3) {
         m->v3.small = arr_of(m, &secs[spec_index("TVAL")]);
         m->v3.esc_i = arr_of(m, &secs[spec_index("TBGI")]);
         m->v3.esc_v = arr_of(m, &secs[spec_index("TBGC")]);
         m->v3.tags = "TVAL/TBGI/TBGC";
+        m->v3.count = m->t;
+        m->v3.bits = m->quant_bits;
         m->tlen.small = arr_of(m, &secs[spec_index("TLEN")]);
         m->tlen.esc_i = arr_of(m, &secs[spec_index("TLEI")]);
         m->tlen.esc_v = arr_of(m, &secs[spec_index("TLEV")]);
         m->tlen.tags = "TLEN/TLEI/TLEV";
+        m->tlen.count = m->b;
     }
     m->has_hist = secs[hist].present;
+    /* Model._general: a quantised JM bigram with dropped mass goes through the general scorer */
+    m->jm_path = !m->kn && m->order == 2 &&
+                 !(m->codec == &nw_codec_quant && secs[spec_index("HDRI")].present && secs[spec_index("HDRI")].len > 0);
     m->disb = buf + secs[spec_index("DISB")].off;
     m->disb_len = secs[spec_index("DISB")].len;
     /* stored λ above 0.999 are clamped, not refused (Model.lambda_clamped) */

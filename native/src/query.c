@@ -206,7 +206,7 @@ static nw_status context(const nw_model *m, const uint32_t *ids, int nids, cstat
     cs->g2 = 1.0;
     cs->g3 = 1.0;
     uint64_t tot = nw_hist(m, v);
-    if (!m->kn && m->order == 2) cs->lam2 = lam_of(m, tot);
+    if (m->jm_path) cs->lam2 = lam_of(m, tot);
     else cs->lam2 = m->lam;
     cs->lam3 = m->order == 3 && !m->kn ? m->lam3 : cs->lam2;
     if (tot > 0) {
