@@ -360,7 +360,7 @@ class QuantCodec(Codec):
     version: ClassVar[int] = 1
 
     def __init__(self, bits: int, *, method: str = "lloyd") -> None:
-        if isinstance(bits, bool) or bits not in QUANT_BITS:
+        if type(bits) is not int or bits not in QUANT_BITS:  # 5.0 would pass `in`, then fail as a shift
             raise InvalidArgumentError(f"quantisation bits must be one of {', '.join(map(str, QUANT_BITS))}, got {bits!r}")
         self.bits = bits
         self.method = method
@@ -444,11 +444,11 @@ def codec_named(where: str, spec: object) -> Codec:
     codec = CODECS.get(name) if isinstance(name, str) else None
     if codec is None:
         raise ModelFormatError(f"{where}: unknown value codec {name!r} (this library reads: {', '.join(CODECS)})"[:200])
-    if isinstance(version, bool) or version != codec.version:
+    if type(version) is not int or version != codec.version:  # 1.0 or True is not a version number
         raise ModelFormatError(f"{where}: codec {name!r} version {version!r} is not supported (this library reads version {codec.version})"[:200])
     if isinstance(codec, QuantCodec):
         bits = spec.get("bits")
-        if isinstance(bits, bool) or bits not in QUANT_BITS:
+        if type(bits) is not int or bits not in QUANT_BITS:  # 5.0 would pass `in`, then fail as a shift
             raise ModelFormatError(f"{where}: codec 'quant' with bits {bits!r} (this library reads {', '.join(map(str, QUANT_BITS))})"[:200])
         return QuantCodec(bits)
     return codec

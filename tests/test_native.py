@@ -405,8 +405,9 @@ def test_parse_typed_equals_python(native: Native) -> None:
 
 
 def test_unknown_versions_and_codecs_are_refused_by_name(native: Native, models: dict[str, Path], tmp_path: Path) -> None:
-    # docs/FORMAT.md §3 and §7.11: 1.3, 1.5 and 2.0 are refused (NW_E_VERSION), as is a codec name
-    # or version the library does not know (NW_E_UNSUPPORTED); never read as something else
+    # docs/FORMAT.md §3, §7.11 and §7.17: 1.3 and 2.x are refused (NW_E_VERSION), so is an exact-codec
+    # file labelled 1.5 (a 1.5 file names the quant codec), and a codec name or version the library
+    # does not know (NW_E_UNSUPPORTED); never read as something else
     data = models["kn3"].read_bytes()
     cases = {"1.3": (4, "1.3"), "1.5": (4, "1.5"), "2.4": (4, "2.4")}
     for version, (want, says) in cases.items():

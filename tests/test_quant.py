@@ -464,3 +464,17 @@ def test_cli_train_quantize(tmp_path: Path) -> None:
     bad = _cli("train", str(corpus), "-o", str(tmp_path / "x.nwm"), "--quantize", "9")
     assert bad.returncode == 2 and bad.stderr.strip().splitlines()[-1].startswith("nextword: error:")
     assert "--quantize" in bad.stderr and "Traceback" not in bad.stderr
+
+
+@pytest.mark.parametrize("spec, message", [
+    ({"name": "quant", "version": 1, "bits": 5.0}, "bits 5.0"),
+    ({"name": "quant", "version": 1.0, "bits": 5}, "version 1.0"),
+    ({"name": "exact", "version": True}, "version True"),
+])
+def test_codec_numbers_must_be_integers(spec: dict, message: str) -> None:
+    """A float or boolean where META needs an integer is refused by name (the C reader refuses them too)."""
+    from nextword.codecs import codec_named
+    from nextword.errors import ModelFormatError
+
+    with pytest.raises(ModelFormatError, match=message):
+        codec_named("m.nwm", spec)
