@@ -174,7 +174,7 @@ nw_status nw_exact_sum(const double *x, size_t n, double *out) {
         if (!isfinite(v)) return NW_E_ARG; /* an intermediate overflow (math.fsum raises) */
         np = i;
         if (np >= sizeof p / sizeof p[0]) return NW_E_ARG; /* never for doubles: at most ~40 partials */
-        p[np++] = v;
+        if (v != 0.0) p[np++] = v; /* zeros are not kept (so fsum([-0.0]) is 0.0) */
     }
     double hi = 0.0;
     if (np > 0) {
@@ -341,7 +341,8 @@ static nw_status read_fields(const uint8_t *data, size_t n, part_rec *parts, int
     char what[128];
     if (n < 8 || memcmp(data, "\x89NWX\r\n\x1a\n", 8) != 0) return BAD("not a nextword mixture file (bad magic)");
     nw_mp m = {data, n, 8};
-    if (nw_mp_skip(&m, 0) || m.i != n) return BAD("damaged mixture data");
+    /* Python's msgpack nests at most 1024 containers deep; nw_mp_skip stops past depth 512 */
+    if (nw_mp_skip(&m, 512 - 1024) || m.i != n) return BAD("damaged mixture data");
     m.i = 8;
     nw_mpv top, v;
     nw_mp_read(&m, &top);
@@ -584,7 +585,7 @@ static nw_status open_parts(struct nw_mix *x, const char *name, const part_rec *
                 st = BAD("%s: part %d (%s) has changed since mixing (SHA-256 differs)", name, i, pp);
             if (st == NW_OK && (st = nw_open_model(pp, &x->part[i], err)) != NW_OK && err) {
                 char msg[sizeof err->message];
-                snprintf(msg, sizeof msg, "%.80s: part %d: %.220s", name, i, err->message);
+                snprintf(msg, sizeof msg, "%.80s: part %d: %.200s", name, i, err->message);
                 memcpy(err->message, msg, sizeof msg);
             }
         }
