@@ -431,6 +431,28 @@ def test_parts_are_found_relative_to_the_mixture(native: Native, hostile_dir: Pa
         os.chdir(cwd)
 
 
+def test_skipping_the_part_digests_as_load_mix_verify_parts_false(native: Native, hostile_dir: Path) -> None:
+    # nw_open_ex(NW_OPEN_SKIP_PART_DIGESTS) = load_mix(verify_parts=False): a recorded digest that
+    # differs is not read (the sizes still are); nw_open checks it, as load_mix does by default
+    body = _good_body(hostile_dir, ["a.nwm", "b.nwm"], [0.5, 0.5])
+    body["parts"][1]["sha256"] = "0" * 64
+    path = hostile_dir / "nodigest.nwx"
+    _write_raw(path, body)
+    lib = native.lib
+    lib.nw_open_ex.argtypes = [ctypes.c_char_p, ctypes.c_uint, ctypes.POINTER(ctypes.c_void_p), ctypes.c_void_p]
+    m = ctypes.c_void_p()
+    assert lib.nw_open_ex(str(path).encode(), 1, ctypes.byref(m), None) == 0
+    load_mix(path, verify_parts=False).close()
+    lib.nw_close(m)
+    assert native.open(path)[0] == NW_E_FORMAT and _python_outcome(path) == "refused"
+    assert lib.nw_open_ex(str(path).encode(), 2, ctypes.byref(m), None) == NW_E_ARG
+    body["parts"][1]["bytes"] += 1  # the size is checked either way
+    _write_raw(path, body)
+    assert lib.nw_open_ex(str(path).encode(), 1, ctypes.byref(m), None) == NW_E_FORMAT
+    with pytest.raises(nextword.ModelFormatError):
+        load_mix(path, verify_parts=False)
+
+
 @pytest.fixture(scope="module")
 def fuzz_driver(build_dir: Path) -> Path:
     _make(build_dir, "fuzz", "ZLIB=0", timeout=600)

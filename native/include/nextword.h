@@ -91,6 +91,11 @@ typedef struct nw_info {
  * (§13) is checked as nextword.mix.load_mix checks it (every field, each part's size and
  * SHA-256, the parts' text rules) and its parts are opened relative to its folder. */
 NW_API nw_status nw_open(const char *path, nw_model **out, nw_error *err);
+/* nw_open with flags: NW_OPEN_SKIP_PART_DIGESTS opens a mixture without reading its parts for
+ * their SHA-256 (their sizes are still checked), as load_mix(path, verify_parts=False): for an
+ * app that verified the files once (e.g. after download) and opens them at every start. */
+#define NW_OPEN_SKIP_PART_DIGESTS 1u
+NW_API nw_status nw_open_ex(const char *path, unsigned flags, nw_model **out, nw_error *err);
 /* Unmap and free; NULL is allowed. No session of the model may be in use. */
 NW_API void nw_close(nw_model *model);
 NW_API nw_status nw_info_get(const nw_model *model, nw_info *out);

@@ -724,9 +724,12 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
 
 static const uint8_t MIX_MAGIC[8] = {0x89, 'N', 'W', 'X', '\r', '\n', 0x1a, '\n'};
 
-nw_status nw_open(const char *path, nw_model **out, nw_error *err) {
+nw_status nw_open(const char *path, nw_model **out, nw_error *err) { return nw_open_ex(path, 0, out, err); }
+
+nw_status nw_open_ex(const char *path, unsigned flags, nw_model **out, nw_error *err) {
     if (!path || !out) return nw_fail(err, NW_E_ARG, "path and out must not be NULL");
     *out = NULL;
+    if (flags & ~(unsigned)NW_OPEN_SKIP_PART_DIGESTS) return nw_fail(err, NW_E_ARG, "unknown flags 0x%x", flags);
     /* a mixture file (docs/FORMAT.md §13) is told apart by its magic */
     uint8_t head[8];
     int fd = open(path, O_RDONLY | O_CLOEXEC);
@@ -737,7 +740,7 @@ nw_status nw_open(const char *path, nw_model **out, nw_error *err) {
     nw_model *m = (nw_model *)calloc(1, sizeof *m);
     if (!m) return nw_fail(err, NW_E_NOMEM, "out of memory");
     snprintf(m->path, sizeof m->path, "%s", path);
-    nw_status st = nw_mix_open(path, m, err);
+    nw_status st = nw_mix_open(path, m, !(flags & NW_OPEN_SKIP_PART_DIGESTS), err);
     if (st != NW_OK) {
         nw_close(m);
         return st;

@@ -71,7 +71,7 @@ nw_status nw_q_prob(nw_session *s, const char *word, const char *const *history,
 
 /* mix.c: a mixture file (docs/FORMAT.md §13) */
 struct nw_mix;
-nw_status nw_mix_open(const char *path, nw_model *shell, nw_error *err);
+nw_status nw_mix_open(const char *path, nw_model *shell, int verify_parts, nw_error *err);
 void nw_mix_free(struct nw_mix *x);
 nw_status nw_mix_session_new(const nw_model *m, nw_session *s, nw_error *err);
 void nw_mix_session_free(struct nw_mix_session *ms);
