@@ -533,3 +533,33 @@ def test_command_line_opens_a_mixture(build_dir: Path, mixes: dict[str, Path]) -
                           capture_output=True, text=True, timeout=60)
     want = [(s.word, s.prob) for s in _mix(mixes["jm2+kn3"]).suggest("Return the v", 4)]
     assert proc.returncode == 0 and [(g["word"], g["prob"]) for g in json.loads(proc.stdout)] == want
+
+
+def test_jni_shim_from_java_opens_a_mixture(build_dir: Path, mixes: dict[str, Path], tmp_path: Path) -> None:
+    # examples/jni unchanged: the shim's nw_open takes a .nwx as it takes a model file
+    import shutil
+
+    javac, java = shutil.which("javac"), shutil.which("java")
+    if javac is None or java is None:
+        pytest.skip("no JDK here (javac/java): the JNI example is not compiled")
+    jdk = Path(os.path.realpath(javac)).parent.parent
+    if not (jdk / "include" / "jni.h").exists():
+        pytest.skip(f"no JNI headers under {jdk}")
+    root = Path(__file__).resolve().parent.parent
+    jni = root / "examples" / "jni"
+    lib = tmp_path / "libnextword_jni.so"
+    subprocess.run(["cc", "-shared", "-fPIC", "-Wall", "-Wextra", "-Werror", f"-I{jdk}/include", f"-I{jdk}/include/linux",
+                    f"-I{root / 'native' / 'include'}", str(jni / "nextword_jni.c"), str(build_dir / "libnextword.a"),
+                    "-lmarisa", "-lutf8proc", "-lz", "-lm", "-lstdc++", "-o", str(lib)], check=True, timeout=120)
+    subprocess.run([javac, "-d", str(tmp_path / "classes"), *map(str, (jni / "org/example/nextword").glob("*.java"))],
+                   check=True, timeout=120)
+    typed = ["The ", "the m", "Return the v", "If x is ", ""]
+    proc = subprocess.run([java, f"-Dnextword.jni={lib}", "-cp", str(tmp_path / "classes"), "org.example.nextword.Demo",
+                           str(mixes["kn3+kn3"]), *typed], capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stderr
+    mix = _mix(mixes["kn3+kn3"])
+    for line, t in zip(proc.stdout.splitlines(), typed):
+        got = [(w, float(p)) for w, p in (item.rsplit(" ", 1) for item in line.split("\t"))]
+        want = [(s.word, s.prob) for s in mix.suggest(t, 3)]
+        assert [w for w, _ in got] == [w for w, _ in want]
+        assert all(p == pytest.approx(q, rel=1e-15) for (_, p), (_, q) in zip(got, want))
