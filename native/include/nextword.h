@@ -7,6 +7,11 @@
  *   nw_suggest  = nextword.Model.suggest(typed, k)      (words recased, probabilities)
  *   nw_prob     = nextword.Model.prob_after(word, history)
  *
+ * nw_open also opens a mixture file (.nwx, docs/FORMAT.md §13: model files and weights,
+ * told apart by its magic); the same calls then answer as nextword.mix.MixedModel.suggest
+ * and MixedModel.prob_after: P(w | h) = Σ_i w_i·P_i(w | h) over the union vocabulary,
+ * the exact top k by (probability descending, key ascending), bit for bit.
+ *
  * Threads: an opened nw_model is immutable and may be shared by any number of threads
  * without locks. Each thread queries through its own nw_session (the per-thread scratch:
  * text buffers, candidate lists and the trie cursor). Creating a session allocates once;
@@ -36,11 +41,15 @@ extern "C" {
 
 /* Largest k a query accepts (the model file's top-list fanout). */
 #define NW_MAX_K 64
+/* Most parts a mixture file may name (nextword.mix.MAX_PARTS). */
+#define NW_MAX_PARTS 8
+/* Version of the text rules this library implements (nextword.text.TEXT_RULES). */
+#define NW_TEXT_RULES 1
 
 typedef enum nw_status {
     NW_OK = 0,
     NW_E_ARG = 1,         /* bad argument: NULL, k out of [1, NW_MAX_K], invalid UTF-8 text */
-    NW_E_IO = 2,          /* the file cannot be opened or mapped */
+    NW_E_IO = 2,          /* the file cannot be opened or mapped (or a mixture's part is missing) */
     NW_E_FORMAT = 3,      /* not a valid model file (checks of docs/FORMAT.md §8 failed) */
     NW_E_VERSION = 4,     /* a format version this library does not read (1.3, 1.6+, 2.x), or a codec that does not belong to it */
     NW_E_UNSUPPORTED = 5, /* a valid file of a kind this library does not read (unknown codec) */
@@ -65,18 +74,28 @@ typedef struct nw_suggestion {
 } nw_suggestion;
 
 typedef struct nw_info {
-    uint16_t major, minor;  /* format version */
-    uint32_t n_words;       /* vocabulary size */
-    uint64_t bigrams, trigrams, total;
-    int order;              /* 2 or 3 */
-    int kneser_ney;         /* 1: interpolated modified Kneser-Ney, 0: Jelinek-Mercer */
+    uint16_t major, minor;  /* format version (of the mixture file for a mixture) */
+    uint32_t n_words;       /* vocabulary size (the union vocabulary for a mixture) */
+    uint64_t bigrams, trigrams, total;  /* 0 for a mixture */
+    int order;              /* 2 or 3 (a mixture: its longest part's) */
+    int kneser_ney;         /* 1: interpolated modified Kneser-Ney, 0: Jelinek-Mercer, -1: a mixture */
     double lambda, lambda3; /* stored λ (JM; clamped to 0.999), λ₃ for JM order 3 */
-    const char *codec;      /* "exact" */
-    uint64_t file_size;
+    const char *codec;      /* "exact", or "mixture" */
+    uint64_t file_size;     /* a mixture: its own file plus its parts */
+    int text_rules;         /* version of the text rules the counts were cut with */
+    int n_parts;            /* 0 for a model file; 1..NW_MAX_PARTS for a mixture */
+    double weights[NW_MAX_PARTS]; /* a mixture's weights as it uses them (normalised as Python does) */
 } nw_info;
 
-/* Open `path` (mmap + every load-time check of docs/FORMAT.md §8). */
+/* Open `path` (mmap + every load-time check of docs/FORMAT.md §8). A mixture file
+ * (§13) is checked as nextword.mix.load_mix checks it (every field, each part's size and
+ * SHA-256, the parts' text rules) and its parts are opened relative to its folder. */
 NW_API nw_status nw_open(const char *path, nw_model **out, nw_error *err);
+/* nw_open with flags: NW_OPEN_SKIP_PART_DIGESTS opens a mixture without reading its parts for
+ * their SHA-256 (their sizes are still checked), as load_mix(path, verify_parts=False): for an
+ * app that verified the files once (e.g. after download) and opens them at every start. */
+#define NW_OPEN_SKIP_PART_DIGESTS 1u
+NW_API nw_status nw_open_ex(const char *path, unsigned flags, nw_model **out, nw_error *err);
 /* Unmap and free; NULL is allowed. No session of the model may be in use. */
 NW_API void nw_close(nw_model *model);
 NW_API nw_status nw_info_get(const nw_model *model, nw_info *out);
@@ -104,6 +123,14 @@ NW_API nw_status nw_suggest(nw_session *s, const char *text, size_t len, int k, 
  */
 NW_API nw_status nw_prob(nw_session *s, const char *word, const char *const *history, size_t n_history, double *out,
                   nw_error *err);
+
+/* ---- helpers a mixture uses, exposed for tests ------------------------------------------ */
+
+/* The correctly rounded sum of x[0..n) (as Python's math.fsum); NW_E_ARG on a non-finite
+ * input or an intermediate overflow. */
+NW_API nw_status nw_exact_sum(const double *x, size_t n, double *out);
+/* SHA-256 (FIPS 180-4) of len bytes. */
+NW_API void nw_sha256(const void *data, size_t len, uint8_t out[32]);
 
 /* A stable name for a status ("NW_E_FORMAT", ...). */
 NW_API const char *nw_status_name(nw_status status);

@@ -104,6 +104,8 @@ struct nw_model {
     uint64_t level_off[NW_LEVELS_MAX]; /* first entry of each TOPK level */
     uint64_t level_nb[NW_LEVELS_MAX];
     double *floor;        /* P1 of ids 0 .. n+1 */
+    int text_rules;       /* META text_rules (absent: 1) */
+    struct nw_mix *mix;   /* a mixture file (mix.c): then only path and mix are set */
 };
 
 nw_status nw_fail(nw_error *err, nw_status code, const char *fmt, ...)

@@ -33,6 +33,13 @@ static int payload(nw_mp *m, nw_mpv *v, uint64_t len) {
     return 0;
 }
 
+/* a timestamp (ext -1) whose nanoseconds exceed 999999999 is refused by Python's msgpack */
+static int timestamp_ok(const nw_mpv *v) {
+    if (v->len == 8) return (be(v->s, 4) >> 2) <= 999999999u;
+    if (v->len == 12) return be(v->s, 4) <= 999999999u;
+    return 1;
+}
+
 int nw_mp_read(nw_mp *m, nw_mpv *v) {
     memset(v, 0, sizeof *v);
     if (need(m, 1)) return -1;
@@ -60,7 +67,8 @@ int nw_mp_read(nw_mp *m, nw_mpv *v) {
         m->i += (size_t)k + 1;
         v->t = MP_EXT;
         if (type == -1 && len != 4 && len != 8 && len != 12) return -1; /* a timestamp of a bad size */
-        return payload(m, v, len);
+        if (payload(m, v, len)) return -1;
+        return type == -1 && !timestamp_ok(v) ? -1 : 0;
     }
     case 0xca: case 0xcb: {
         k = b == 0xca ? 4 : 8;
@@ -94,7 +102,8 @@ int nw_mp_read(nw_mp *m, nw_mpv *v) {
         int8_t type = (int8_t)m->p[m->i++];
         v->t = MP_EXT;
         if (type == -1 && len != 4 && len != 8) return -1;
-        return payload(m, v, len);
+        if (payload(m, v, len)) return -1;
+        return type == -1 && !timestamp_ok(v) ? -1 : 0;
     }
     case 0xd9: case 0xda: case 0xdb:
         k = 1 << (b - 0xd9);

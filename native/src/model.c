@@ -17,6 +17,7 @@
 
 #include "internal.h"
 #include "meta.h"
+#include "query.h"
 
 #define MAX_LAMBDA 0.999 /* estimators.jm.MAX_LAMBDA */
 #define TOPK_FANOUT 64
@@ -211,11 +212,11 @@ static const nw_codec *const CODECS[] = {&nw_codec_exact, &nw_codec_quant};
 /* -- META (§7.1, §7.11) ----------------------------------------------------------------- */
 
 enum { F_N_WORDS, F_LAMBDA, F_TOTAL, F_BIGRAMS, F_SKY_K, F_SKY_MIN, F_FANOUT, F_MAX_KEY, F_STATS, F_BUCKETS,
-       F_ESTIMATOR, F_ORDER, F_CODEC, F_DISCOUNTS, F_NOTES, F_LAMBDA3, F_TRIGRAMS, F_TCTX, F_TSUMMIN, F_TSKYMIN, F_COUNT };
+       F_ESTIMATOR, F_ORDER, F_CODEC, F_DISCOUNTS, F_NOTES, F_LAMBDA3, F_TRIGRAMS, F_TCTX, F_TSUMMIN, F_TSKYMIN, F_TEXT_RULES, F_COUNT };
 static const char *const FIELDS[F_COUNT] = {"n_words", "lambda", "total", "bigrams", "skyband_k", "skyband_min",
                                             "topk_fanout", "max_key_chars", "stats", "lambda_buckets", "estimator",
                                             "order", "codec", "discounts", "discount_notes", "lambda3", "trigrams",
-                                            "trigram_contexts", "trigram_summary_min", "trigram_skyband_min"};
+                                            "trigram_contexts", "trigram_summary_min", "trigram_skyband_min", "text_rules"};
 
 typedef struct meta_view {
     const uint8_t *p;
@@ -278,6 +279,17 @@ static nw_status read_meta(nw_model *m, const uint8_t *p, size_t n, uint64_t siz
     m->sky_k = (uint32_t)x;
     if ((st = need_int(mv, F_SKY_MIN, 0, 4294967296.0, &m->sky_min, err))) return st;
     if ((st = need_int(mv, F_MAX_KEY, 1, 1048576, &m->max_key, err))) return st;
+    /* text_rules: absent means 1; a newer version than this library's rules is refused */
+    m->text_rules = 1;
+    if (mv->at[F_TEXT_RULES] != (size_t)-1) {
+        nw_mpv tr;
+        if (field(mv, F_TEXT_RULES, &tr) != 1 || tr.t != MP_POS || tr.u < 1)
+            return nw_fail(err, NW_E_FORMAT, "metadata field 'text_rules' is invalid");
+        if (tr.u > NW_TEXT_RULES)
+            return nw_fail(err, NW_E_VERSION, "counted with text rules version %llu; this library has version %d",
+                           (unsigned long long)tr.u, NW_TEXT_RULES);
+        m->text_rules = (int)tr.u;
+    }
     nw_mpv v;
     if (field(mv, F_FANOUT, &v) != 1 || nw_mp_num(&v) != 64.0 || !(nw_mp_is_int(&v) || v.t == MP_FLOAT))
         return nw_fail(err, NW_E_FORMAT, "metadata field 'topk_fanout' is invalid");
@@ -778,7 +790,34 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
     return make_floor(m, err);
 }
 
-nw_status nw_open(const char *path, nw_model **out, nw_error *err) {
+static const uint8_t MIX_MAGIC[8] = {0x89, 'N', 'W', 'X', '\r', '\n', 0x1a, '\n'};
+
+nw_status nw_open(const char *path, nw_model **out, nw_error *err) { return nw_open_ex(path, 0, out, err); }
+
+nw_status nw_open_ex(const char *path, unsigned flags, nw_model **out, nw_error *err) {
+    if (!path || !out) return nw_fail(err, NW_E_ARG, "path and out must not be NULL");
+    *out = NULL;
+    if (flags & ~(unsigned)NW_OPEN_SKIP_PART_DIGESTS) return nw_fail(err, NW_E_ARG, "unknown flags 0x%x", flags);
+    /* a mixture file (docs/FORMAT.md §13) is told apart by its magic */
+    uint8_t head[8];
+    int fd = open(path, O_RDONLY | O_CLOEXEC);
+    if (fd < 0) return nw_fail(err, NW_E_IO, "%s: cannot open model: %s", path, strerror(errno));
+    ssize_t got = read(fd, head, sizeof head);
+    close(fd);
+    if (got != (ssize_t)sizeof head || memcmp(head, MIX_MAGIC, sizeof head) != 0) return nw_open_model(path, out, err);
+    nw_model *m = (nw_model *)calloc(1, sizeof *m);
+    if (!m) return nw_fail(err, NW_E_NOMEM, "out of memory");
+    snprintf(m->path, sizeof m->path, "%s", path);
+    nw_status st = nw_mix_open(path, m, !(flags & NW_OPEN_SKIP_PART_DIGESTS), err);
+    if (st != NW_OK) {
+        nw_close(m);
+        return st;
+    }
+    *out = m;
+    return NW_OK;
+}
+
+nw_status nw_open_model(const char *path, nw_model **out, nw_error *err) {
     if (!path || !out) return nw_fail(err, NW_E_ARG, "path and out must not be NULL");
     *out = NULL;
     nw_model *m = (nw_model *)calloc(1, sizeof *m);
@@ -825,6 +864,7 @@ nw_status nw_open(const char *path, nw_model **out, nw_error *err) {
 
 void nw_close(nw_model *m) {
     if (!m) return;
+    nw_mix_free(m->mix);
     if (m->trie) nw_trie_free(m->trie);
     if (m->map) munmap(m->map, m->map_len);
     free(m->floor);
@@ -833,6 +873,10 @@ void nw_close(nw_model *m) {
 
 nw_status nw_info_get(const nw_model *m, nw_info *o) {
     if (!m || !o) return NW_E_ARG;
+    memset(o, 0, sizeof *o);
+    if (m->mix) return nw_mix_info(m, o);
+    o->text_rules = m->text_rules;
+    o->n_parts = 0;
     o->major = m->major;
     o->minor = m->minor;
     o->n_words = m->n;

@@ -17,43 +17,14 @@
 #include <string.h>
 
 #include "internal.h"
+#include "query.h"
 #include "text.h"
 
-#define FOLD_CAP 16384
 #define TOPK_FANOUT 64
 #define CTX_BLOCK 16
 #define SUMMARY_MIN 32
 
-typedef struct cand {
-    double score;
-    uint32_t id;
-} cand;
-
-struct nw_session {
-    const nw_model *m;
-    void *cursor;
-    int32_t cps[NW_TAIL_CAP];
-    nw_tok toks[NW_TAIL_CAP];
-    int32_t fold[FOLD_CAP];
-    uint8_t key[FOLD_CAP * 4];
-    size_t key_len;
-    cand best[NW_MAX_K];
-    int nbest, k;
-    uint32_t top[NW_MAX_K];
-    int ntop;
-};
-
-/* the per-query context: bigram level of v, trigram level of (u, v) */
-typedef struct cstate {
-    uint32_t v;
-    uint64_t tot2;
-    double g2, lam2;
-    int has3;
-    uint64_t s3, e3, tot3;
-    double g3, lam3;
-} cstate;
-
-nw_status nw_session_new(const nw_model *m, nw_session **out, nw_error *err) {
+nw_status nw_q_session_new(const nw_model *m, nw_session **out, nw_error *err) {
     if (!m || !out) return nw_fail(err, NW_E_ARG, "model and out must not be NULL");
     nw_session *s = (nw_session *)calloc(1, sizeof *s);
     if (!s) return nw_fail(err, NW_E_NOMEM, "out of memory");
@@ -67,11 +38,24 @@ nw_status nw_session_new(const nw_model *m, nw_session **out, nw_error *err) {
     return NW_OK;
 }
 
-void nw_session_free(nw_session *s) {
+void nw_q_session_free(nw_session *s) {
     if (!s) return;
+    nw_mix_session_free(s->mix);
     nw_cursor_free(s->cursor);
     free(s);
 }
+
+nw_status nw_session_new(const nw_model *m, nw_session **out, nw_error *err) {
+    nw_status st = nw_q_session_new(m, out, err);
+    if (st || !m->mix) return st;
+    if ((st = nw_mix_session_new(m, *out, err))) {
+        nw_q_session_free(*out);
+        *out = NULL;
+    }
+    return st;
+}
+
+void nw_session_free(nw_session *s) { nw_q_session_free(s); }
 
 #define DAMAGED(...) nw_fail(err, NW_E_DAMAGED, __VA_ARGS__)
 
@@ -486,11 +470,6 @@ static nw_status prefix_range(nw_session *s, long ncp, uint64_t *lo_out, uint64_
 
 /* -- output: display spelling (§7.10), recased (text.recase) ----------------------------- */
 
-typedef struct out_buf {
-    char *p;
-    size_t cap, used;
-    int overflow;
-} out_buf;
 
 static void put_cp(out_buf *o, uint32_t cp) {
     uint8_t tmp[4];
@@ -501,7 +480,7 @@ static void put_cp(out_buf *o, uint32_t cp) {
 }
 
 /* mode 0: as stored, 1: first letter upper, 2: all upper */
-static nw_status emit_word(nw_session *s, uint32_t w, int mode, out_buf *o, nw_error *err) {
+nw_status nw_q_emit(nw_session *s, uint32_t w, int mode, out_buf *o, nw_error *err) {
     const nw_model *m = s->m;
     const uint8_t *p;
     size_t len;
@@ -537,7 +516,7 @@ static nw_status emit_word(nw_session *s, uint32_t w, int mode, out_buf *o, nw_e
     return NW_OK;
 }
 
-static int recase_mode(const int32_t *prefix, int32_t n, int at_start) {
+int nw_q_recase_mode(const int32_t *prefix, int32_t n, int at_start) {
     if (n > 0) {
         uint32_t first = (uint32_t)prefix[0];
         if (nw_is_lower(first)) return 0;
@@ -559,58 +538,76 @@ static int recase_mode(const int32_t *prefix, int32_t n, int at_start) {
 
 /* -- the API ------------------------------------------------------------------------------ */
 
-nw_status nw_suggest(nw_session *s, const char *text, size_t len, int k, nw_suggestion *out, size_t *n_out, char *buf,
-                     size_t buf_size, nw_error *err) {
-    if (!s || (!text && len) || !out || !n_out || (!buf && buf_size)) return nw_fail(err, NW_E_ARG, "NULL argument");
-    if (k < 1 || k > NW_MAX_K) return nw_fail(err, NW_E_ARG, "k must be an integer in [1, %d], got %d", NW_MAX_K, k);
-    *n_out = 0;
+nw_status nw_q_prepare(nw_session *s, const int32_t *cps, const nw_ctx *ctx, cstate *cs, uint64_t *lo, uint64_t *hi,
+                       nw_error *err) {
     const nw_model *m = s->m;
-    nw_ctx ctx;
-    int32_t ncps = 0;
-    if (nw_parse_text((const uint8_t *)(text ? text : ""), len, s->cps, &ncps, s->toks, &ctx) != 0)
-        return nw_fail(err, NW_E_ARG, "text is not valid UTF-8");
     /* context ids: (before, previous) or (<s>), cut at the last sentence start */
     uint32_t ids[2];
     int nids = 0;
     nw_status st;
     uint32_t bos = m->n + 2, unk = m->n + 1;
-    if (ctx.prev_kind == NW_CTX_BOS) {
+    if (ctx->prev_kind == NW_CTX_BOS) {
         ids[nids++] = bos;
     } else {
-        int kinds[2] = {ctx.before_kind, ctx.prev_kind};
-        int32_t ss[2] = {ctx.before_s, ctx.prev_s}, ee[2] = {ctx.before_e, ctx.prev_e};
+        int kinds[2] = {ctx->before_kind, ctx->prev_kind};
+        int32_t ss[2] = {ctx->before_s, ctx->prev_s}, ee[2] = {ctx->before_e, ctx->prev_e};
         for (int q = 0; q < 2; q++) {
             uint32_t id = 0;
             if (kinds[q] == NW_CTX_BOS) id = bos;
             else if (kinds[q] == NW_CTX_UNK) id = unk;
-            else if ((st = word_id_cps(s, s->cps, ss[q], ee[q], &id, err))) return st;
+            else if ((st = word_id_cps(s, cps, ss[q], ee[q], &id, err))) return st;
             ids[nids++] = id;
         }
     }
     const uint32_t *cids = ids;
     int ncids = nids;
     if (m->order == 2) { cids = ids + nids - 1; ncids = 1; }
-    cstate cs;
-    if ((st = context(m, cids, ncids, &cs, err))) return st;
-    int at_start = ids[nids - 1] == bos;
+    if ((st = context(m, cids, ncids, cs, err))) return st;
     /* the folded prefix and its range */
-    int32_t plen = ctx.prefix_e - ctx.prefix_s;
+    int32_t plen = ctx->prefix_e - ctx->prefix_s;
     long nf = 0;
     s->key_len = 0;
     if (plen > 0) {
-        nf = nw_fold_cps(s->cps + ctx.prefix_s, (size_t)plen, s->fold, FOLD_CAP);
+        nf = nw_fold_cps(cps + ctx->prefix_s, (size_t)plen, s->fold, FOLD_CAP);
         if ((st = fold_to_key(s, nf, err))) return st;
     }
-    uint64_t lo = 0, hi = 0;
-    if ((st = prefix_range(s, nf, &lo, &hi, err))) return st;
+    *lo = *hi = 0;
+    return prefix_range(s, nf, lo, hi, err);
+}
+
+nw_status nw_q_rank(nw_session *s, const cstate *cs, uint64_t lo, uint64_t hi, int k, nw_error *err) {
+    s->nbest = 0;
     if (lo >= hi) return NW_OK;
     s->k = k;
-    if ((st = rank(s, &cs, lo, hi, err))) return st;
-    int mode_start = recase_mode(s->cps + ctx.prefix_s, plen, at_start);
+    return rank(s, cs, lo, hi, err);
+}
+
+nw_status nw_q_score(const nw_session *s, const cstate *cs, uint32_t w, double *out, nw_error *err) {
+    return score(s->m, cs, w, nw_at(&s->m->APOS, w), UINT64_MAX, UINT64_MAX, out, err);
+}
+
+nw_status nw_suggest(nw_session *s, const char *text, size_t len, int k, nw_suggestion *out, size_t *n_out, char *buf,
+                     size_t buf_size, nw_error *err) {
+    if (!s || (!text && len) || !out || !n_out || (!buf && buf_size)) return nw_fail(err, NW_E_ARG, "NULL argument");
+    if (k < 1 || k > NW_MAX_K) return nw_fail(err, NW_E_ARG, "k must be an integer in [1, %d], got %d", NW_MAX_K, k);
+    *n_out = 0;
+    if (s->mix) return nw_mix_suggest(s, text, len, k, out, n_out, buf, buf_size, err);
+    nw_ctx ctx;
+    int32_t ncps = 0;
+    if (nw_parse_text((const uint8_t *)(text ? text : ""), len, s->cps, &ncps, s->toks, &ctx) != 0)
+        return nw_fail(err, NW_E_ARG, "text is not valid UTF-8");
+    nw_status st;
+    cstate cs;
+    uint64_t lo = 0, hi = 0;
+    if ((st = nw_q_prepare(s, s->cps, &ctx, &cs, &lo, &hi, err))) return st;
+    if (lo >= hi) return NW_OK;
+    if ((st = nw_q_rank(s, &cs, lo, hi, k, err))) return st;
+    int at_start = ctx.prev_kind == NW_CTX_BOS;
+    int mode_start = nw_q_recase_mode(s->cps + ctx.prefix_s, ctx.prefix_e - ctx.prefix_s, at_start);
     out_buf o = {buf, buf_size, 0, 0};
     for (int i = 0; i < s->nbest; i++) {
         size_t at = o.used;
-        if ((st = emit_word(s, s->best[i].id, mode_start, &o, err))) return st;
+        if ((st = nw_q_emit(s, s->best[i].id, mode_start, &o, err))) return st;
         out[i].word = buf + at;
         out[i].len = o.used - at - 1;
         out[i].prob = s->best[i].score;
@@ -632,9 +629,8 @@ static nw_status token_id(nw_session *s, const char *tok, int predicted, uint32_
     return st ? st : id_of_key(s, id, err);
 }
 
-nw_status nw_prob(nw_session *s, const char *word, const char *const *history, size_t n_history, double *out,
-                  nw_error *err) {
-    if (!s || !out || (!history && n_history)) return nw_fail(err, NW_E_ARG, "NULL argument");
+nw_status nw_q_prob(nw_session *s, const char *word, const char *const *history, size_t n_history, double *out,
+                    uint32_t *word_id, nw_error *err) {
     const nw_model *m = s->m;
     uint32_t ids[2], w;
     int nids = 0;
@@ -654,9 +650,18 @@ nw_status nw_prob(nw_session *s, const char *word, const char *const *history, s
             if ((st = token_id(s, history[i], 0, &ids[nids++], err))) return st;
     }
     if ((st = token_id(s, word, 1, &w, err))) return st;
+    *word_id = w;
     cstate cs;
     if ((st = context(m, ids, nids, &cs, err))) return st;
     return score(m, &cs, w, nw_at(&m->APOS, w), UINT64_MAX, UINT64_MAX, out, err);
+}
+
+nw_status nw_prob(nw_session *s, const char *word, const char *const *history, size_t n_history, double *out,
+                  nw_error *err) {
+    if (!s || !out || (!history && n_history)) return nw_fail(err, NW_E_ARG, "NULL argument");
+    if (s->mix) return nw_mix_prob(s, word, history, n_history, out, err);
+    uint32_t w;
+    return nw_q_prob(s, word, history, n_history, out, &w, err);
 }
 
 nw_status nw_fold(const char *word, size_t len, char *out, size_t cap, size_t *out_len) {

@@ -6,6 +6,9 @@
  *                                            bytes inside one section (not the trie) with every CRC fixed
  *
  * A query may answer (every probability in [0, 1]) or refuse with NW_E_DAMAGED; anything else aborts.
+ * Mixture files (.nwx, told apart by their magic) go the same way; their mutants are written
+ * beside the seed (parts are named relative to the mixture's folder) and may also be refused
+ * with NW_E_IO (a part that is not there).
  */
 #define _POSIX_C_SOURCE 200809L
 #include <math.h>
@@ -59,12 +62,21 @@ static void ask_everything(nw_model *m) {
     nw_session_free(s);
 }
 
+static int is_mixture(const char *path) {
+    FILE *f = fopen(path, "rb");
+    unsigned char head[8] = {0};
+    if (!f) return 0;
+    size_t got = fread(head, 1, 8, f);
+    fclose(f);
+    return got == 8 && memcmp(head, "\x89NWX\r\n\x1a\n", 8) == 0;
+}
+
 static const char *try_file(const char *path) {
     nw_model *m;
     nw_error err;
     nw_status st = nw_open(path, &m, &err);
     if (st != NW_OK) {
-        if (st != NW_E_FORMAT && st != NW_E_VERSION && st != NW_E_UNSUPPORTED) {
+        if (st != NW_E_FORMAT && st != NW_E_VERSION && st != NW_E_UNSUPPORTED && !(st == NW_E_IO && is_mixture(path))) {
             fprintf(stderr, "%s: unexpected open status %s: %s\n", path, nw_status_name(st), err.message);
             abort();
         }
@@ -135,19 +147,23 @@ int main(int argc, char **argv) {
         int i = 3;
         rng_state = 1;
         if (i + 1 < argc && !strcmp(argv[i], "--seed")) { rng_state = (uint64_t)atoll(argv[i + 1]); i += 2; }
-        char tmp[] = "/tmp/nwfuzz-XXXXXX";
-        int fd = mkstemp(tmp);
-        if (fd < 0) return 1;
-        close(fd);
         long total = 0, opened = 0;
         for (; i < argc; i++) {
             size_t len;
             uint8_t *seed = read_all(argv[i], &len);
             if (!seed) { fprintf(stderr, "nwfuzz: cannot read %s\n", argv[i]); return 1; }
+            int mixture = is_mixture(argv[i]);
+            char tmp[4096];
+            const char *slash = strrchr(argv[i], '/');
+            int dir_len = slash ? (int)(slash - argv[i]) : 1;
+            snprintf(tmp, sizeof tmp, "%.*s/nwfuzz-XXXXXX", dir_len, slash ? argv[i] : ".");
+            int fd = mkstemp(tmp);
+            if (fd < 0) return 1;
+            close(fd);
             uint8_t *buf = malloc(len);
             for (long it = 0; it < n; it++) {
                 memcpy(buf, seed, len);
-                if (it % 2) {
+                if (it % 2 || mixture) {
                     int k = 1 + (int)(rnd() % 4);
                     for (int j = 0; j < k; j++) buf[rnd() % len] = (uint8_t)rnd();
                 } else {
@@ -161,8 +177,8 @@ int main(int argc, char **argv) {
             }
             free(buf);
             free(seed);
+            unlink(tmp);
         }
-        unlink(tmp);
         printf("iterations %ld, opened %ld\n", total, opened);
         return 0;
     }
