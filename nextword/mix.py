@@ -101,7 +101,10 @@ def check_weights(weights: Sequence[float], n_parts: int) -> list[float]:
         if w < 0:
             raise InvalidArgumentError(f"a weight must not be negative, got {w!r}")
         out.append(float(w))
-    total = math.fsum(out)
+    try:
+        total = math.fsum(out)
+    except OverflowError:  # e.g. [1e308, 1e308]: no sum, so not 1
+        raise InvalidArgumentError(f"weights must sum to 1, got {' + '.join(repr(w) for w in out)} (overflows)") from None
     if abs(total - 1.0) > _SUM_TOLERANCE:
         raise InvalidArgumentError(f"weights must sum to 1, got {' + '.join(repr(w) for w in out)} = {total!r}")
     return [w / total for w in out]

@@ -278,6 +278,7 @@ def test_hostile_mixture_files_raise(two: tuple[Path, Path], tmp_path: Path) -> 
         "weights sum": MIX_MAGIC + msgpack.packb({**body, "weights": [0.5, 0.6]}),
         "weights negative": MIX_MAGIC + msgpack.packb({**body, "weights": [-0.5, 1.5]}),
         "weights count": MIX_MAGIC + msgpack.packb({**body, "weights": [1.0]}),
+        "weights overflow": MIX_MAGIC + msgpack.packb({**body, "weights": [1e308, 1e308]}),
         "fitted not map": MIX_MAGIC + msgpack.packb({**body, "fitted": 3}),
     }
     for name, data in cases.items():
