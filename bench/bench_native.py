@@ -160,7 +160,7 @@ def main(argv: list[str] | None = None) -> int:
         for i, (_, kw) in enumerate(MODELS):
             paths.append(tmp / f"model{i}.nwm")
             nextword.train(train, paths[-1], **kw)
-        write_mix(tmp / "mix.nwx", paths, list(MIX_WEIGHTS))
+        write_mix(tmp / "mix.nwx", paths[:2], list(MIX_WEIGHTS))  # the exact JM bigram and KN trigram
         rows = [measure(label, path, queries, qfile, tools, args.k, args.rounds) for (label, _), path in zip(MODELS, paths)]
         mix_label = f"mixture {MIX_WEIGHTS[0]} × JM bigram + {MIX_WEIGHTS[1]} × KN trigram (.nwx)"
         rows.append(measure(mix_label, tmp / "mix.nwx", queries, qfile, tools, args.k, args.rounds))
