@@ -513,14 +513,14 @@ def _mutants(seeds: dict[str, bytes], n: int, seed: int) -> Iterator[tuple[str, 
         yield name, bytes(buf)
 
 
-def test_hostile_files_give_error_codes_never_a_crash(fuzz_driver: Path, hostile_seeds: dict[str, bytes],
-                                                      tmp_path: Path) -> None:
-    # Every mutated file goes through the C open and, if it opens, every query of the driver, in
-    # an AddressSanitizer + UndefinedBehaviorSanitizer build: no crash, no out-of-bounds read, no
-    # probability outside [0, 1]. A file the Python reader refuses on load is refused by the C
-    # open too (the same checks, docs/FORMAT.md §8).
+def check_mutants_under_sanitizers(fuzz_driver: Path, seeds: dict[str, bytes], n: int, seed: int, tmp_path: Path) -> None:
+    """``n`` mutants of ``seeds`` through the sanitizer build of the fuzz driver (C open and every query).
+
+    No crash, no out-of-bounds read, no probability outside [0, 1]; the seeds open; a file the
+    Python reader refuses on load is refused by the C open too (the same checks, docs/FORMAT.md §8).
+    """
     files, python_refused = [], set()
-    for i, (name, data) in enumerate(_mutants(hostile_seeds, 400, seed=1)):
+    for i, (name, data) in enumerate(_mutants(seeds, n, seed=seed)):
         path = tmp_path / f"{i:04d}-{name}.nwm"
         path.write_bytes(data)
         files.append(path)
@@ -528,17 +528,23 @@ def test_hostile_files_give_error_codes_never_a_crash(fuzz_driver: Path, hostile
             nextword.load(path)
         except nextword.ModelFormatError:
             python_refused.add(path.name)
-    for name, data in hostile_seeds.items():
+    for name, data in seeds.items():
         (tmp_path / f"seed-{name}.nwm").write_bytes(data)
         files.append(tmp_path / f"seed-{name}.nwm")
     proc = subprocess.run([str(fuzz_driver), "--files", *map(str, files)], capture_output=True, text=True, timeout=300)
     assert proc.returncode == 0, proc.stderr[-3000:]
     status = dict(line.split("\t")[:2] for line in proc.stdout.splitlines() if "\t" in line)
     assert len(status) == len(files)
-    assert all(status[f"seed-{n}.nwm"] == "ok" for n in hostile_seeds), status
+    assert all(status[f"seed-{n}.nwm"] == "ok" for n in seeds), status
     opened_by_c = {n for n, st in status.items() if st == "ok"}
     assert not (python_refused & opened_by_c), sorted(python_refused & opened_by_c)[:10]
     assert len(python_refused) > 50  # the mutations do reach the checks
+
+
+def test_hostile_files_give_error_codes_never_a_crash(fuzz_driver: Path, hostile_seeds: dict[str, bytes],
+                                                      tmp_path: Path) -> None:
+    # every mutated model file in an AddressSanitizer + UndefinedBehaviorSanitizer build
+    check_mutants_under_sanitizers(fuzz_driver, hostile_seeds, 400, 1, tmp_path)
 
 
 def test_fuzz_random_mutations_under_sanitizers(fuzz_driver: Path, hostile_seeds: dict[str, bytes], tmp_path: Path) -> None:

@@ -28,7 +28,7 @@ from hypothesis import strategies as st
 import nextword
 from nextword.evaluate import is_held_out
 from nextword.mix import MIX_MAGIC, load_mix, write_mix
-from test_native import _PIECES, Native, _make, _mutants, _queries, _same, hostile_seeds  # noqa: F401 - a fixture
+from test_native import _PIECES, Native, _make, _mutants, _queries, _same, build_dir, hostile_seeds  # noqa: F401 - fixtures
 
 NW_E_ARG, NW_E_IO, NW_E_FORMAT, NW_E_VERSION = 1, 2, 3, 4
 
@@ -41,13 +41,6 @@ class Info(ctypes.Structure):
         ("codec", ctypes.c_char_p), ("file_size", ctypes.c_uint64), ("text_rules", ctypes.c_int),
         ("n_parts", ctypes.c_int), ("weights", ctypes.c_double * 8),
     ]  # fmt: skip
-
-
-@pytest.fixture(scope="module")
-def build_dir(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    build = tmp_path_factory.mktemp("native-mix-build")
-    _make(build)
-    return build
 
 
 @pytest.fixture(scope="module")

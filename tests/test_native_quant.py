@@ -26,12 +26,12 @@ from nextword.store import HEADER, atomic_write, read_model
 from test_native import (  # noqa: F401 - build_dir, native, corpus and fuzz_driver are fixtures used here
     Native,
     _make,
-    _mutants,
     _queries,
     _recrc,
     _same,
     _sections,
     build_dir,
+    check_mutants_under_sanitizers,
     corpus,
     fuzz_driver,
     native,
@@ -379,29 +379,8 @@ def quant_seeds(tmp_path_factory: pytest.TempPathFactory) -> dict[str, bytes]:
 
 def test_hostile_quantised_files_give_error_codes_never_a_crash(fuzz_driver: Path, quant_seeds: dict[str, bytes],
                                                                 tmp_path: Path) -> None:
-    # every mutant of a 1.5 file goes through the C open and every query of the driver in an
-    # AddressSanitizer + UndefinedBehaviorSanitizer build: no crash, no out-of-bounds read, no
-    # probability outside [0, 1]; a file the Python reader refuses on load is refused by C too
-    files, python_refused = [], set()
-    for i, (name, data) in enumerate(_mutants(quant_seeds, 1500, seed=3)):
-        path = tmp_path / f"{i:04d}-{name}.nwm"
-        path.write_bytes(data)
-        files.append(path)
-        try:
-            nextword.load(path)
-        except nextword.ModelFormatError:
-            python_refused.add(path.name)
-    for name, data in quant_seeds.items():
-        (tmp_path / f"seed-{name}.nwm").write_bytes(data)
-        files.append(tmp_path / f"seed-{name}.nwm")
-    proc = subprocess.run([str(fuzz_driver), "--files", *map(str, files)], capture_output=True, text=True, timeout=300)
-    assert proc.returncode == 0, proc.stderr[-3000:]
-    status = dict(line.split("\t")[:2] for line in proc.stdout.splitlines() if "\t" in line)
-    assert len(status) == len(files)
-    assert all(status[f"seed-{n}.nwm"] == "ok" for n in quant_seeds), status
-    opened_by_c = {n for n, st in status.items() if st == "ok"}
-    assert not (python_refused & opened_by_c), sorted(python_refused & opened_by_c)[:10]
-    assert len(python_refused) > 50  # the mutations do reach the checks
+    # every mutant of a 1.5 file in the sanitizer build (tests/test_native.py's check)
+    check_mutants_under_sanitizers(fuzz_driver, quant_seeds, 1500, 3, tmp_path)
 
 
 def test_fuzz_random_mutations_of_quantised_files_under_sanitizers(fuzz_driver: Path, quant_seeds: dict[str, bytes],
