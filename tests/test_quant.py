@@ -38,6 +38,8 @@ from nextword.estimators import JelinekMercer, KneserNey
 from nextword.prune import keep_contexts, ngram_file, prune_fitted
 from nextword.store import BIGRAM_TAGS, ENTRY, HEADER, TRIGRAM_TAGS, atomic_write, read_model
 from nextword.text import EOS, UNK
+from test_dropped_mass import _recrc  # the file's CRCs after an edit
+from test_model_trigram import _ask_everything  # every query kind, answers in [0, 1] or ModelFormatError
 
 SETTINGS = settings(max_examples=int(os.environ.get("NW_QUANT_EXAMPLES", "30")), deadline=None,
                     suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
@@ -228,20 +230,6 @@ def _sections(buf: bytes | bytearray) -> dict[bytes, tuple[int, int, int]]:
     return out
 
 
-def _recrc(buf: bytearray) -> None:
-    import struct
-    import zlib
-
-    n_sec = HEADER.unpack_from(buf, 0)[3]
-    for i in range(n_sec):
-        at = HEADER.size + i * ENTRY.size
-        tag, code, off, length, _ = ENTRY.unpack_from(buf, at)
-        ENTRY.pack_into(buf, at, tag, code, off, length, zlib.crc32(bytes(buf[off : off + length])))
-    table = bytes(buf[HEADER.size : HEADER.size + n_sec * ENTRY.size])
-    struct.pack_into("<I", buf, 24, zlib.crc32(table))
-    struct.pack_into("<I", buf, 28, zlib.crc32(bytes(buf[:28])))
-
-
 HOSTILE_MSGS = ["the cat sat on the mat"] * 40 + ["the dog sat. a cat ran", "Bo and Abe sat on a mat", "the mat is red"] * 4 \
     + ["the cat sat", "the cat ran"] * 9
 
@@ -259,32 +247,6 @@ def jm2_bytes(tmp_path_factory: pytest.TempPathFactory) -> bytes:
     path = tmp_path_factory.mktemp("hostile") / "jm2.nwm"
     nextword.train_texts(HOSTILE_MSGS, path, min_count=1, skyband_min=1, skyband_k=2, quantize=3)
     return path.read_bytes()
-
-
-def _ask_everything(m: nextword.Model) -> None:
-    for hist in (["<s>"], ["the"], ["the", "cat"], ["<s>", "the"], ["zz", "on"], ["on", "the"]):
-        for w in ("the", "cat", "mat", "</s>", "<unk>", "red"):
-            try:
-                p = m.prob_after(w, hist)
-            except ModelFormatError:
-                continue
-            assert 0.0 <= p <= 1.0 + 1e-9, (w, hist, p)
-        for prefix in ("", "c", "m", "th"):
-            for k in (1, 3, 10):
-                try:
-                    got = m.rank_after(hist, prefix, k)
-                except ModelFormatError:
-                    continue
-                assert all(0.0 <= p <= 1.0 + 1e-9 for _, p in got)
-    for typed in ("", "the ", "the c", "Bo a", "on the m"):
-        try:
-            m.suggest(typed, 3)
-        except ModelFormatError:
-            pass
-    try:
-        m.perplexity(HOSTILE_MSGS[-3:])
-    except ModelFormatError:
-        pass
 
 
 def test_the_undamaged_quantised_files_answer_everything(q3_bytes: bytes, jm2_bytes: bytes, tmp_path: Path) -> None:
