@@ -341,8 +341,8 @@ def write_arpa_mix(mix: MixedModel, path: PathArg) -> list[int]:
     tables: list[_Tables] = []
     maps: list[np.ndarray] = []  # union id -> part id as a context token (unknown word -> part's <unk>)
     present: list[np.ndarray] = []  # union id -> whether the part predicts it with its own probability
-    for part in mix.parts:
-        pk = part.word_keys()
+    part_keys = [part.word_keys() for part in mix.parts]
+    for part, pk in zip(mix.parts, part_keys):
         pn = len(pk)
         index = {k: i for i, k in enumerate(pk)}
         mp = np.full(base, pn + 1, np.int64)  # default: the part's <unk>
@@ -369,16 +369,14 @@ def write_arpa_mix(mix: MixedModel, path: PathArg) -> list[int]:
 
     # listed n-grams per order: the union of the parts' listed n-grams, in union ids
     listed: list[np.ndarray] = [np.arange(base, dtype=np.int64).reshape(-1, 1)]
+    pos = {k: i for i, k in enumerate(names)}
+    to_union = [np.asarray([pos[k] for k in [*pk, EOS, UNK, BOS]], np.int64) for pk in part_keys]
     for m in range(2, order + 1):
         found = []
-        for t, part in zip(tables, mix.parts):
+        for t, tu in zip(tables, to_union):
             if m > t.fitted.order:
                 continue
-            pk = [*part.word_keys(), EOS, UNK, BOS]
-            to_union = np.asarray([names.index(k) if k in (EOS, UNK, BOS) else -1 for k in pk], np.int64)
-            pos = {k: i for i, k in enumerate(keys)}
-            to_union[: len(pk) - 3] = [pos[k] for k in pk[:-3]]
-            found.append(to_union[t.listed[m - 1]])
+            found.append(tu[t.listed[m - 1]])
         rows = np.unique(np.concatenate(found), axis=0) if found else np.zeros((0, m), np.int64)
         listed.append(rows)
     # a listed context of order m+1 must be listed at order m (it carries the back-off weight)

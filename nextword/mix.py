@@ -250,8 +250,8 @@ class MixedModel:
     def words(self) -> Iterator[tuple[str, int]]:
         """(display spelling, summed stored unigram value) of every union word, by that value descending."""
         totals: dict[str, int] = {}
-        for p in self.parts:
-            for key, (_, c) in zip(p.word_keys(), p.words()):
+        for p, keys in zip(self.parts, self._part_keys):
+            for key, (_, c) in zip(keys, p.words()):
                 totals[key] = totals.get(key, 0) + int(c)
         for key, c in sorted(totals.items(), key=lambda kv: (-kv[1], kv[0])):
             yield self.spelling(key) or key, c
@@ -458,7 +458,6 @@ class MixedModel:
                 if pr is None:
                     known = False
                     hi += w * cp
-                    lo += 0.0
                 else:
                     lo += w * pr
                     hi += w * pr
@@ -655,8 +654,7 @@ def fit_weights(
         if moved <= tolerance:
             break
     weights = check_weights([float(x) for x in w], len(parts))
-    final = MixedModel(parts, weights)
-    ll = float(np.log(probs @ np.asarray(final.weights)).sum())
+    ll = float(np.log(probs @ np.asarray(weights)).sum())
     return EMResult(
         weights=weights, iterations=it, log_likelihood=ll, tokens=int(len(probs)),
         perplexity=math.exp(-ll / len(probs)), known_words=known, unknown_words=unknown,
