@@ -8,6 +8,13 @@ probabilities, rankings and display spellings as ``nextword.load(...)``. A last 
 retrains the worked example of FORMAT.md §10 and compares it with the bytes and arrays
 quoted there, so the document fails CI when the format changes.
 
+Format 1.6 (§7.18) is read by the same classes: ``ef_decode`` decodes a chunked
+Elias-Fano sequence bit by bit from the text of §7.18 (it does not use
+``nextword.succinct``), and the reader rebuilds the arrays of the plain layout from it.
+The 1.6 tests compare with the library's encoder (a property test), with the plain file
+of the same model, with the worked example of §10.9, and damage files for each check §8
+lists for 1.6 (``write_file`` lays a file out again by §11 with its CRCs right).
+
 The main training corpus is real text: the first lines of the Python documentation
 topics in the standard library (``pydoc_data.topics``) and the "I am Sam" sentences of
 Jurafsky & Martin, *Speech and Language Processing* (3rd ed. draft, ch. 3), repeated so
@@ -28,6 +35,7 @@ import struct
 import zlib
 from collections import Counter, defaultdict
 from dataclasses import dataclass
+from collections.abc import Callable
 from pathlib import Path
 from pydoc_data.topics import topics  # standard library: the text of help() topics
 
@@ -35,6 +43,8 @@ import marisa_trie
 import msgpack
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 import nextword
 from nextword.text import fold, sentences
@@ -59,11 +69,98 @@ LAYOUT = {
 }  # fmt: skip
 # §8 item 6: not checksummed on every load by the Python reader
 BIGRAM_SIZED = ("SUCC", "CNTS", "BIGI", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC")
-CODE_OF = {"raw": 0, "u8": 1, "u16": 2, "u32": 3}
+CODE_OF = {"raw": 0, "u8": 1, "u16": 2, "u32": 3, "u64": 4}
+# §7.18: a 1.6 file drops the inverse permutations and the plain bigram lists, and holds
+# two chunked Elias-Fano sequences instead (header u32 or u64, stream u8)
+DROPPED_16 = ("IDTK", "APOS", "ROWS", "SUCC")
+LAYOUT_16 = {**{t: k for t, k in LAYOUT.items() if t not in DROPPED_16},
+             "RWEH": "u32|u64", "RWEB": "u8", "SEFH": "u32|u64", "SEFB": "u8"}  # fmt: skip
+SUCCESSORS_16 = {"name": "ef", "version": 1}  # §7.18: META.successors
+EF_CHUNK = 64  # §7.18: values per chunk
+EF_PAD = 8  # §7.18: zero bytes after the stream
 
 
 class FormatError(Exception):
     """The independent reader rejected a file."""
+
+
+def ef_low_width(r: int, m: int) -> int:
+    """§7.18: ℓ = ⌊log₂ ⌊r / m⌋⌋ when r ≥ m, else 0."""
+    q, low = r // m, 0
+    while q >= 2:
+        q //= 2
+        low += 1
+    return low
+
+
+def ef_decode(head: list[int], stream: bytes, count: int, *, strict: bool) -> list[int]:
+    """§7.18: the ``count`` values of a chunked Elias-Fano sequence, read bit by bit, with
+    every check the section lists (``strict``: a strictly increasing sequence)."""
+    chunks = -(-count // EF_CHUNK)
+    if len(head) != 2 * (chunks + 1):
+        raise FormatError(f"EF header has {len(head)} entries, expected {2 * (chunks + 1)}")
+    first, off = head[0::2], head[1::2]
+    if off[0] != 0 or any(b < a for a, b in zip(off, off[1:])):
+        raise FormatError("EF bit offsets")
+    if count == 0 and first[0] != 0:
+        raise FormatError("empty EF sequence with a non-zero end")
+    end = off[chunks]
+    if len(stream) != -(-end // 8) + EF_PAD:
+        raise FormatError("EF stream length")
+
+    def bit(p: int) -> int:  # stream bit p: bit (p mod 8) of byte ⌊p/8⌋
+        return (stream[p // 8] >> (p % 8)) & 1
+
+    if any(bit(p) for p in range(end, 8 * len(stream))):
+        raise FormatError("EF bit set past the end")
+    out: list[int] = []
+    for c in range(chunks):
+        m = min(EF_CHUNK, count - EF_CHUNK * c)
+        r = first[c + 1] - first[c]
+        if r < 0 or (strict and r < m):
+            raise FormatError(f"EF chunk {c} first values")
+        low = ef_low_width(r, m)
+        if off[c + 1] - off[c] != m * low + (r >> low) + m:
+            raise FormatError(f"EF chunk {c} size")
+        lows = [sum(bit(off[c] + k * low + j) << j for j in range(low)) for k in range(m)]
+        region = off[c] + m * low
+        ones = [p - region for p in range(region, off[c + 1]) if bit(p)]
+        if len(ones) != m:
+            raise FormatError(f"EF chunk {c} has {len(ones)} high bits set, expected {m}")
+        vals = [first[c] + (ones[k] - k) * 2**low + lows[k] for k in range(m)]
+        if vals[0] != first[c] or vals[-1] > first[c + 1]:
+            raise FormatError(f"EF chunk {c} values outside [F_c, F_c+1]")
+        out += vals
+    if count and out[-1] + 1 != first[chunks]:
+        raise FormatError("EF sentinel is not the last value + 1")
+    if any(b < a or (strict and b == a) for a, b in zip(out, out[1:])):
+        raise FormatError("EF sequence not increasing")
+    return out
+
+
+def ef_encode_doc(values: list[int]) -> tuple[list[int], bytes]:
+    """§7.18 the other way round: the header values and the stream of a non-decreasing
+    sequence (used to craft files; the library's encoder must give the same bytes)."""
+    count = len(values)
+    chunks = -(-count // EF_CHUNK)
+    first = [values[EF_CHUNK * c] for c in range(chunks)] + [values[-1] + 1 if count else 0]
+    bits: list[int] = []
+    head: list[int] = []
+    for c in range(chunks):
+        m = min(EF_CHUNK, count - EF_CHUNK * c)
+        r = first[c + 1] - first[c]
+        low = ef_low_width(r, m)
+        head += [first[c], len(bits)]
+        d = [values[EF_CHUNK * c + k] - first[c] for k in range(m)]
+        for x in d:
+            bits += [(x >> j) & 1 for j in range(low)]
+        high = [0] * ((r >> low) + m)
+        for k, x in enumerate(d):
+            high[(x >> low) + k] = 1
+        bits += high
+    head += [first[chunks], len(bits)]
+    stream = bytes(sum(b << j for j, b in enumerate(bits[i : i + 8])) for i in range(0, len(bits), 8))
+    return head, stream + bytes(EF_PAD)
 
 
 def id_type(n: int) -> str:
@@ -140,7 +237,8 @@ class NwmReader:
         if len(data) != prev_end + (-prev_end % 8) or any(data[prev_end:]):
             raise FormatError("bytes after the last section")
         self.sections = {e.tag: e for e in self.entries}
-        missing = set(LAYOUT) - set(self.sections)
+        self.layout = LAYOUT_16 if self.version == (1, 6) else LAYOUT  # §7.18
+        missing = set(self.layout) - set(self.sections)
         if missing:
             raise FormatError(f"missing {sorted(missing)}")
         for e in self.entries:  # this reader always checks every CRC (§8, item 13)
@@ -152,7 +250,7 @@ class NwmReader:
         n = self.n = self.meta["n_words"]
         self.id_type = id_type(n)
         self.a: dict[str, np.ndarray] = {}
-        for tag, kind in LAYOUT.items():
+        for tag, kind in self.layout.items():
             want = self.id_type if kind == "id" else kind
             e = self.sections[tag]
             if e.code not in [CODE_OF[t] for t in want.split("|")]:
@@ -165,6 +263,13 @@ class NwmReader:
         self.trie.frombytes(self.raw("TRIE"))
         self.total = self.meta["total"]
         self.lam = self.meta["lambda"]
+        codec = self.meta.get("codec")
+        # §7.17, §7.18: the value sections hold codes in a 1.5 file and in a 1.6 file of codec quant
+        self.coded = self.version == (1, 5) or (
+            self.version == (1, 6) and isinstance(codec, dict) and codec.get("name") == "quant"
+        )
+        if self.version == (1, 6):
+            self._expand_16()
         self._check_arrays()
         self.keys = [self.trie.restore_key(int(m)) for m in self.a["IDTK"]]  # key of each word id
         self.alpha_keys = [self.keys[w] for w in self.a["ALPH"][: self.n]]  # key at each position
@@ -172,6 +277,35 @@ class NwmReader:
     def raw(self, tag: str) -> bytes:
         e = self.sections[tag]
         return self.data[e.offset : e.offset + e.length]
+
+    def ef(self, name: str, count: int, *, strict: bool) -> list[int]:
+        """§7.18: the sequence of sections ``name``H/``name``B."""
+        return ef_decode(self.a[name + "H"].tolist(), self.raw(name + "B"), count, strict=strict)
+
+    def _expand_16(self) -> None:
+        """§7.18: rebuild ROWS, SUCC, IDTK and APOS of a 1.6 file from its sequences; the
+        checks of §8 then run on them as for any other file."""
+        a, n, b = self.a, self.n, self.meta["bigrams"]
+        if self.meta.get("successors") != SUCCESSORS_16:
+            raise FormatError(f"META successors = {self.meta.get('successors')!r}")
+        rows = np.array(self.ef("RWE", n + 4, strict=False), dtype=np.int64)
+        for tag, inv, m in (("TKID", "IDTK", n), ("ALPH", "APOS", n + 2)):  # permutations first
+            perm = a[tag].astype(np.int64)
+            if not np.array_equal(np.sort(perm), np.arange(m)):
+                raise FormatError(f"{tag} is not a permutation")
+            out = np.zeros(m, dtype=np.int64)
+            out[perm] = np.arange(m)
+            a[inv] = out
+        y = np.array(self.ef("SEF", b, strict=True), dtype=np.int64)
+        if len(y) and y[-1] >= (n + 3) * (n + 2):
+            raise FormatError("SEF value past the last row")
+        if rows[0] != 0 or rows[-1] != b or np.any(np.diff(rows) < 0):
+            raise FormatError("ROWS offsets")
+        row_of = np.repeat(np.arange(n + 3), np.diff(rows))
+        succ = y - row_of * (n + 2)  # the position of entry i of row v: Y_i − v·(n+2)
+        if np.any(succ < 0) or np.any(succ >= n + 2):
+            raise FormatError("SEF value outside its row")
+        a["ROWS"], a["SUCC"] = rows, succ
 
     def _check_meta(self) -> None:  # §7.1
         m = self.meta
@@ -201,7 +335,7 @@ class NwmReader:
             "SKYP": len(a["SEGS"]) + 1, "SKYC": len(a["SEGS"]) * K,
             "TOPK": F * sum(topk_levels(n)), "DISO": len(a["DISI"]) + 1,
         }  # fmt: skip
-        if self.version != (1, 5):  # §7.17: a 1.5 file's value sections hold codes (NgramReader reads them)
+        if not self.coded:  # §7.17: a 1.5 (or quant 1.6) file's value sections hold codes (NgramReader reads them)
             lengths |= {"CNTS": b, "BIGC": len(a["BIGI"])}
         for tag, want in lengths.items():
             if len(a[tag]) != want:
@@ -233,7 +367,7 @@ class NwmReader:
         if np.any(np.diff(row_of * (n + 2) + succ) <= 0):
             raise FormatError("SUCC not strictly increasing within a row")
         cnts, bigi = a["CNTS"], a["BIGI"].astype(np.int64)
-        if self.version != (1, 5) and (
+        if not self.coded and (
             np.any(cnts == 0) or not np.array_equal(np.flatnonzero(cnts == ESCAPE), bigi) or np.any(a["BIGC"] < ESCAPE)
         ):
             raise FormatError("CNTS/BIGI/BIGC")
@@ -311,7 +445,7 @@ class NwmReader:
         i = bisect.bisect_left(succ, p, s, e)
         if i == e or succ[i] != p:
             return 0
-        if self.version == (1, 5):
+        if self.coded:
             return int(self.full_counts()[i])
         c = int(self.a["CNTS"][i])
         if c == ESCAPE:
@@ -1017,11 +1151,20 @@ TRIGRAM_14 = {"TCTB": "u32", "TLEN": "u8", "TLEI": "u32", "TLEV": "u32", "TSUC":
               "TSGS": "u32", "TSGE": "u32", "TSKP": "u32", "TSKI": "u16|u32", "TSKC": "u16|u32"}  # fmt: skip
 BASE_14 = {"HIST": "u32", "HDRI": "id", "HDRV": "u32"}
 OPTIONAL_14 = {**BASE_14, "HN13": "u32", **TRIGRAM_14}
-KIND_SECTIONS = {  # §7.11; (jm, 2) only in a 1.5 file (§7.17)
+KIND_SECTIONS = {  # §7.11; (jm, 2) only in a 1.5 or 1.6 file (§7.17, §7.18)
     ("jm", 2): {*BASE_14},
     ("kn", 2): {*BASE_14, "HN13"},
     ("kn", 3): {*BASE_14, "HN13", *TRIGRAM_14},
     ("jm", 3): {*BASE_14, *TRIGRAM_14},
+}
+# §7.18: in a 1.6 file HN12 replaces HN13, and two sequences replace TCTB, TLEN, TLEI, TLEV, TSUC
+PLAIN_TRIGRAM_ONLY = {"TCTB", "TLEN", "TLEI", "TLEV", "TSUC"}
+TRIGRAM_16 = {"TPTH", "TPTB", "TEFH", "TEFB"}
+OPTIONAL_16 = {"HN12": "id", "TPTH": "u32|u64", "TPTB": "u8", "TEFH": "u32|u64", "TEFB": "u8"}
+KIND_SECTIONS_16 = {
+    kind: (tags - {"HN13"} - PLAIN_TRIGRAM_ONLY) | ({"HN12"} if "HN13" in tags else set())
+    | (TRIGRAM_16 if "TSUC" in tags else set())
+    for kind, tags in KIND_SECTIONS.items()
 }
 SUMMARY_MIN = 32  # §7.15
 
@@ -1053,14 +1196,15 @@ class NgramReader(NwmReader):
 
     def __init__(self, path: str | Path) -> None:
         super().__init__(path)
-        if self.version not in ((1, 4), (1, 5)):
-            raise FormatError("not a 1.4 or 1.5 file")
+        if self.version not in ((1, 4), (1, 5), (1, 6)):
+            raise FormatError("not a 1.4, 1.5 or 1.6 file")
         m = self.meta
         codec = m.get("codec")
         self.q: int | None = None
-        if self.version == (1, 4) and codec != {"name": "exact", "version": 1}:  # §7.11, §7.12
+        exact = codec == {"name": "exact", "version": 1}
+        if (self.version == (1, 4) or self.version == (1, 6) and not self.coded) and not exact:  # §7.11, §7.12, §7.18
             raise FormatError("unknown codec")
-        if self.version == (1, 5):  # §7.17
+        if self.coded:  # §7.17 (1.5, or 1.6 with codec quant: §7.18)
             if not isinstance(codec, dict) or set(codec) != {"name", "version", "bits"} or codec["name"] != "quant" \
                     or codec["version"] != 1 or codec["bits"] not in range(2, 9) or isinstance(codec["bits"], bool):
                 raise FormatError("unknown codec")
@@ -1068,15 +1212,19 @@ class NgramReader(NwmReader):
             if len(self.a["BIGC"]):
                 raise FormatError("BIGC not empty")
             self._counts = quant_values(self.a["CNTS"], self.a["BIGI"], self.q, m["bigrams"])
+        if self.version != (1, 6) and "successors" in m:  # §7.18, §8 item 19
+            raise FormatError("META successors in a 1.4 or 1.5 file")
         self.kind = (m["estimator"], m["order"])
-        if self.kind == ("jm", 2) and self.version != (1, 5):
-            raise FormatError("a JM bigram is 1.5 only among the n-gram layouts")
-        if set(self.sections) - set(LAYOUT) != KIND_SECTIONS[self.kind]:
+        if self.kind == ("jm", 2) and self.version == (1, 4):
+            raise FormatError("a JM bigram is 1.5 or 1.6 only among the n-gram layouts")
+        kind_sections = (KIND_SECTIONS_16 if self.version == (1, 6) else KIND_SECTIONS)[self.kind]
+        if set(self.sections) - set(self.layout) != kind_sections:
             raise FormatError("optional sections do not fit the kind")
         n = self.n
-        for tag in KIND_SECTIONS[self.kind]:
+        for tag in kind_sections:
             e = self.sections[tag]
-            want = self.id_type if OPTIONAL_14[tag] == "id" else OPTIONAL_14[tag]
+            kind = {**OPTIONAL_14, **OPTIONAL_16}[tag]
+            want = self.id_type if kind == "id" else kind
             if e.code not in [CODE_OF[x] for x in want.split("|")]:
                 raise FormatError(f"{tag}: element code {e.code}")
             dt = ELEMENTS[e.code]
@@ -1085,6 +1233,15 @@ class NgramReader(NwmReader):
         rows = a["ROWS"].astype(np.int64)
         counts = self.full_counts()
         row_of = np.repeat(np.arange(n + 3), np.diff(rows))
+        if "HN12" in a:  # §7.18: N₁, N₂ per row; N₃₊ = row length − N₁ − N₂
+            n12 = a["HN12"].astype(np.int64)
+            if len(n12) != 2 * (n + 3):
+                raise FormatError("HN12 length")
+            n12 = n12.reshape(n + 3, 2)
+            n3 = np.diff(rows) - n12[:, 0] - n12[:, 1]
+            if np.any(n3 < 0):
+                raise FormatError("HN12 counts more entries than a row has")
+            a["HN13"] = np.column_stack([n12, n3]).reshape(-1)
         # §7.13: HIST = row sums + dropped mass; HDRI/HDRV sparse
         hdri = a["HDRI"].astype(np.int64)
         if len(hdri) != len(a["HDRV"]) or np.any(np.diff(hdri) <= 0) or np.any(hdri >= n + 3) or np.any(a["HDRV"] < 1):
@@ -1111,18 +1268,21 @@ class NgramReader(NwmReader):
         if m["trigram_summary_min"] != SUMMARY_MIN:
             raise FormatError("trigram_summary_min")
         b = m["bigrams"]
-        # §7.14: a context is a bigram entry; TLEN (escapes as §7.12) gives its number of trigrams
-        lens = a["TLEN"].astype(np.int64)
-        tlei = a["TLEI"].astype(np.int64)
-        if len(lens) != b or not np.array_equal(np.flatnonzero(lens == ESCAPE), tlei) or len(a["TLEV"]) != len(tlei):
-            raise FormatError("TLEN/TLEI/TLEV")
-        if np.any(a["TLEV"] < ESCAPE):
-            raise FormatError("TLEV")
-        lens[tlei] = a["TLEV"]
+        if self.version == (1, 6):
+            all_starts, lens = self._trigram_lists_16(b, t)
+        else:
+            # §7.14: a context is a bigram entry; TLEN (escapes as §7.12) gives its number of trigrams
+            lens = a["TLEN"].astype(np.int64)
+            tlei = a["TLEI"].astype(np.int64)
+            if len(lens) != b or not np.array_equal(np.flatnonzero(lens == ESCAPE), tlei) or len(a["TLEV"]) != len(tlei):
+                raise FormatError("TLEN/TLEI/TLEV")
+            if np.any(a["TLEV"] < ESCAPE):
+                raise FormatError("TLEV")
+            lens[tlei] = a["TLEV"]
+            all_starts = np.concatenate([[0], np.cumsum(lens)])
+            if len(a["TCTB"]) != b // 16 + 1 or not np.array_equal(a["TCTB"], all_starts[: b + 1 : 16]) or all_starts[-1] != t:
+                raise FormatError("TCTB")
         self.lengths = lens
-        all_starts = np.concatenate([[0], np.cumsum(lens)])
-        if len(a["TCTB"]) != b // 16 + 1 or not np.array_equal(a["TCTB"], all_starts[: b + 1 : 16]) or all_starts[-1] != t:
-            raise FormatError("TCTB")
         self.all_starts = all_starts
         self.ctx_entry = np.flatnonzero(lens)  # the bigram entry of each context, in order
         if len(self.ctx_entry) != c:
@@ -1161,8 +1321,34 @@ class NgramReader(NwmReader):
         self.dropped3 = np.zeros(b, dtype=np.int64)  # by bigram entry
         self.dropped3[tdri] = a["TDRV"]
 
+    def _trigram_lists_16(self, b: int, t: int) -> tuple[np.ndarray, np.ndarray]:
+        """§7.18: start(0 … b) from TPTH/TPTB, and TSUC rebuilt from the remapped successors
+        of TEFH/TEFB (x = Y − B_i, position = SUCC[ROWS[v] + x]); returns (starts, lengths)."""
+        a, n = self.a, self.n
+        starts = np.array(self.ef("TPT", b + 1, strict=False), dtype=np.int64)
+        if starts[0] != 0 or starts[-1] != t:
+            raise FormatError("TPT does not run from 0 to t")
+        y = self.ef("TEF", t, strict=True)
+        rows, succ = a["ROWS"], a["SUCC"]
+        tsuc = np.zeros(t, dtype=np.int64)
+        self.remapped: list[tuple[int, int, list[int]]] = []  # (bigram entry i, B_i, [x …]) per context (§10.9)
+        for i in range(b):
+            s, e = int(starts[i]), int(starts[i + 1])
+            if s == e:
+                continue
+            base = 0 if s == 0 else y[s - 1] + 1
+            v = int(a["ALPH"][succ[i]])  # the context (u, v) is bigram entry i: v is its successor
+            xs = [y[j] - base for j in range(s, e)]
+            length = int(rows[v + 1] - rows[v])
+            if min(xs) < 0 or max(xs) >= length:
+                raise FormatError(f"remapped successor outside the row of {v}")
+            tsuc[s:e] = succ[int(rows[v]) + np.array(xs)]
+            self.remapped.append((i, base, xs))
+        a["TSUC"] = tsuc
+        return starts, np.diff(starts)
+
     def full_counts(self) -> np.ndarray:
-        if self.version == (1, 5):
+        if self.coded:
             return self._counts  # §7.17: the stored (decoded) values
         return super().full_counts()
 
@@ -1395,7 +1581,7 @@ def _exact_twin(tmp_path: Path, smoothing: str, order: int, wide: list[str]) -> 
 def test_worked_quantised_example(tmp_path: Path) -> None:
     # §10.8: retrain the example, compare the quoted arrays, the bit arithmetic and the hand computation
     text = DOC.read_text(encoding="utf-8")
-    part = text[text.index("### 10.8") : text.index("## 11.")]
+    part = text[text.index("### 10.8") : text.index("### 10.9")]
     quoted = {m.group(1): [int(x) for x in m.group(2).split(",") if x.strip()]
               for m in re.finditer(r"^([A-Z0-9]{4}) = \[([^\]]*)\]$", part, re.M)}  # fmt: skip
     assert set(quoted) == {"CNTS", "BIGI", "BIGC", "HIST"}
@@ -1422,3 +1608,535 @@ def test_worked_quantised_example(tmp_path: Path) -> None:
     stream = sum(c << (5 * i) for i, c in enumerate(codes)).to_bytes(4, "little")
     assert ((stream[1] + 256 * stream[2]) >> 7) & 31 == 22
     assert quant_values(np.frombuffer(stream, dtype=np.uint8), np.arange(1, 33, dtype=np.uint32), 5, 5).tolist() == [c + 1 for c in codes]
+
+
+# ---------------------------------------------------------------------------------------
+# Format 1.6 (§7.18): compressed successor lists, read by the reader above (ef_decode).
+
+
+def file_sections(path: str | Path) -> tuple[int, list[tuple[str, int, bytes]]]:
+    """(minor version, [(tag, element code, bytes)]) of a file, in table order (§3, §4)."""
+    data = Path(path).read_bytes()
+    _, _, minor, count, *_ = HEADER.unpack_from(data, 0)
+    out = []
+    for i in range(count):
+        tag, code, _, off, length, _, _ = ENTRY.unpack_from(data, HEADER.size + i * ENTRY.size)
+        out.append((tag.decode("ascii"), code, data[off : off + length]))
+    return minor, out
+
+
+def write_file(minor: int, sections: list[tuple[str, int, bytes]]) -> bytes:
+    """§11 and §2–4: lay ``sections`` out from offset 32 + 32·S, each padded to 8 bytes, with
+    every CRC (used to craft damaged files whose checksums are right)."""
+    table_end = HEADER.size + ENTRY.size * len(sections)
+    body, table, off = b"", b"", table_end
+    for tag, code, data in sections:
+        table += ENTRY.pack(tag.encode("ascii"), code, b"\0\0\0", off, len(data), zlib.crc32(data), b"\0" * 4)
+        padded = data + bytes(-len(data) % 8)
+        body += padded
+        off += len(padded)
+    head = HEADER.pack(MAGIC, 1, minor, len(sections), off, zlib.crc32(table), 0)[:28]
+    return head + struct.pack("<I", zlib.crc32(head)) + table + body
+
+
+def _doc_part(start: str, end: str) -> str:
+    text = DOC.read_text(encoding="utf-8")
+    return text[text.index(start) : text.index(end)]
+
+
+def _bits(stream: bytes, start: int, stop: int) -> list[int]:
+    """§7.18 (as §7.17): stream bit p is bit (p mod 8) of byte ⌊p/8⌋."""
+    return [(stream[p // 8] >> (p % 8)) & 1 for p in range(start, stop)]
+
+
+def test_worked_compact_example(tmp_path: Path) -> None:
+    # §10.9: retrain §10.7's model with compact=True, compare the quoted header, table,
+    # sections, bit strings, decoded sequences and the hand decodes with the file
+    part = _doc_part("### 10.9", "## 11.")
+    msgs = ["I am Sam.", "Sam I am.", "I do not like green eggs and ham."]
+    path, plain = tmp_path / "c.nwm", tmp_path / "p.nwm"
+    nextword.train_texts(msgs, path, smoothing="kn", order=3, min_count=1, compact=True)
+    nextword.train_texts(msgs, plain, smoothing="kn", order=3, min_count=1)
+    data = path.read_bytes()
+    (want_head,) = re.findall(r"^compact-header-hex: ([0-9a-f]{64})$", part, re.M)
+    assert data[:32].hex() == want_head, f"regenerate docs/FORMAT.md §10.9 (new header: {data[:32].hex()})"
+    assert len(data) == 6856 and plain.stat().st_size == 7016  # quoted in the text
+    r, p = NgramReader(path), NgramReader(plain)
+    assert r.version == (1, 6) and p.version == (1, 4)
+    assert r.meta["codec"] == {"name": "exact", "version": 1} and r.meta["successors"] == SUCCESSORS_16
+    # the section table, row by row
+    rows = re.findall(r"^\| `(0x[0-9a-f]+)` \| `(\w{4})` \| (\d) \((\w+)\) \| `(0x[0-9a-f]+)` \((\d+)\) \| (\d+) \| `([0-9a-f]{8})` \| (\d+) \|",
+                      part, re.M)  # fmt: skip
+    assert len(rows) == len(r.entries) == 42
+    ends = [e.offset + e.length for e in r.entries]
+    nxt = [e.offset for e in r.entries[1:]] + [len(data)]
+    for i, (row, e) in enumerate(zip(rows, r.entries)):
+        at, tag, code, _, off, off_dec, length, crc, pad = row
+        assert (int(at, 16), tag, int(code), int(off, 16), int(off_dec), int(length), int(crc, 16), int(pad)) == (
+            32 + 32 * i, e.tag, e.code, e.offset, e.offset, e.length, e.crc, nxt[i] - ends[i]), tag
+    new = {"RWEH", "RWEB", "SEFH", "SEFB", "HN12", "TPTH", "TPTB", "TEFH", "TEFB"}
+    gone = {"IDTK", "APOS", "ROWS", "SUCC", "HN13", "TCTB", "TLEN", "TLEI", "TLEV", "TSUC"}
+    assert set(r.sections) == set(p.sections) - gone | new
+    for tag in set(r.sections) - new - {"META"}:  # "every other section holds the same bytes"
+        assert r.raw(tag) == p.raw(tag), tag
+    extra = bytes.fromhex("aa73756363657373 6f7273 82a46e616d65a26566a776657273696f6e01")
+    assert len(r.raw("META")) == len(p.raw("META")) + 29 == 753 and extra in r.raw("META")
+    assert {k: v for k, v in r.meta.items() if k != "successors"} == p.meta
+    # the quoted sections: headers and HN12 as numbers, streams as hex bytes
+    block = re.search(r"^compact-sections:\n(.*?)^```", part, re.M | re.S)
+    assert block
+    quoted_lists = dict(re.findall(r"^(\w{4}) = \[([0-9, ]*)\]$", block.group(1), re.M))
+    quoted_hex = dict(re.findall(r"^(\w{4}): ([0-9a-f ]+)$", block.group(1), re.M))
+    assert set(quoted_lists) == {"RWEH", "SEFH", "TPTH", "TEFH", "HN12"} and set(quoted_hex) == {"RWEB", "SEFB", "TPTB", "TEFB"}
+    for tag, values in quoted_lists.items():
+        assert r.a[tag].tolist() == [int(x) for x in values.split(",")], tag
+    for tag, hexes in quoted_hex.items():
+        assert r.raw(tag) == bytes.fromhex(hexes), tag
+    # the bit strings: low parts in groups of ℓ, then the high region, from bit 0
+    strings = re.findall(r"^(RWE|SEF|TPT|TEF)?\s+(low|high)\s+([01 ]+)$", part, re.M)
+    shown: dict[str, str] = {}
+    name = ""
+    for seq, kind, bits in strings:
+        name = seq or name
+        shown[name] = shown.get(name, "") + bits.replace(" ", "")
+    for name, count, widths in (("RWE", 14, 0), ("SEF", 15, 3), ("TPT", 16, 0), ("TEF", 14, 0)):
+        h = r.a[name + "H"].tolist()
+        assert ef_low_width(h[2] - h[0], count) == widths
+        assert shown[name] == "".join(map(str, _bits(r.raw(name + "B"), 0, h[3]))), name
+    # decoded sequences equal §10.7's arrays
+    rows_q = [0, 2, 4, 6, 7, 8, 9, 10, 11, 12, 13, 13, 13, 15]
+    assert r.ef("RWE", 14, strict=False) == rows_q == p.a["ROWS"].tolist()
+    y2 = [0, 2, 18, 22, 33, 34, 41, 56, 61, 75, 94, 100, 115, 150, 153]
+    assert r.ef("SEF", 15, strict=True) == y2
+    assert r.a["SUCC"].tolist() == [0, 2, 6, 10, 9, 10, 5, 8, 1, 3, 10, 4, 7, 6, 9] == p.a["SUCC"].tolist()
+    starts = [0, 2, 3, 4, 4, 5, 5, 6, 7, 8, 9, 9, 10, 11, 13, 14]
+    assert r.ef("TPT", 16, strict=False) == starts and np.diff(starts).tolist() == p.a["TLEN"].tolist()
+    remapped = _doc_arrays("compact-remapped")
+    assert r.ef("TEF", 14, strict=True) == remapped["Y3"]
+    assert [i for i, _, _ in r.remapped] == remapped["CTX"]
+    assert [base for _, base, _ in r.remapped] == remapped["BASE"]
+    assert [x for _, _, xs in r.remapped for x in xs] == remapped["X"]
+    assert r.a["TSUC"].tolist() == remapped["TSUC"] == p.a["TSUC"].tolist()
+    for tag in ("IDTK", "APOS", "HN13"):
+        assert r.a[tag].tolist() == p.a[tag].tolist(), tag
+    # the hand decodes of the text
+    sef = r.raw("SEFB")
+    low13 = sum(b << j for j, b in enumerate(_bits(sef, 39, 42)))
+    ones = [q for q, b in enumerate(_bits(sef, 45, 79)) if b]
+    assert (low13, ones) == (6, [0, 1, 4, 5, 8, 9, 11, 14, 15, 18, 21, 23, 26, 31, 33])
+    assert ones[13] - 13 == 18 and 18 * 2**3 + 6 == 150 == y2[13] and 150 - 12 * (r.n + 2) == 6 == r.a["APOS"][0]
+    assert [q for q, b in enumerate(_bits(r.raw("RWEB"), 0, 30)) if b][13] == 28
+    tpt_ones = [q for q, b in enumerate(_bits(r.raw("TPTB"), 0, 31)) if b]
+    assert tpt_ones[13:] == [24, 27, 29]
+    tef_ones = [q for q, b in enumerate(_bits(r.raw("TEFB"), 0, 29)) if b]
+    assert tef_ones[8:] == [17, 19, 21, 23, 25, 27]
+    assert r.a["HN12"][[0, 1, 24, 25]].tolist() == [1, 1, 1, 1]
+    # P(sam | i am), and the library reads the same file
+    assert r.prob3((0, 2), 1) == p.prob3((0, 2), 1) == pytest.approx(329 / 918, rel=1e-12)
+    model = nextword.load(path)
+    assert model.format_version == (1, 6)
+    assert [(s.word, round(s.prob, 6)) for s in model.suggest("I am ", 3)] == [("Sam", 0.358388), ("I", 0.049564), ("am", 0.024074)]
+
+
+COMPACT_KINDS = [("jm", 2, None), ("kn", 2, 5), ("kn", 3, None), ("kn", 3, 4)]
+
+
+@pytest.mark.parametrize("smoothing,order,bits", COMPACT_KINDS)
+def test_compact_files_answer_like_their_plain_twins(tmp_path: Path, smoothing: str, order: int, bits: int | None) -> None:
+    # §7.18: "the same model as a 1.4 or 1.5 file of the same kind": the doc's reader
+    # decodes the sequences into the arrays of the plain file, and the reader's and the
+    # library's probabilities and rankings on the 1.6 file equal those on the plain one
+    wide = [f"Of the {w}." for w in _syllable_words(70)]
+    opts = dict(smoothing=smoothing, order=order, min_count=1, skyband_min=4, skyband_k=3, quantize=bits)
+    path, twin = tmp_path / "c.nwm", tmp_path / "p.nwm"
+    nextword.train_texts(REAL + wide, path, compact=True, **opts)  # type: ignore[arg-type]
+    nextword.train_texts(REAL + wide, twin, **opts)  # type: ignore[arg-type]
+    r, model, plain = NgramReader(path), nextword.load(path), nextword.load(twin)
+    assert r.version == model.format_version == (1, 6) and r.kind == (smoothing, order) and r.q == bits
+    plain_minor = 0 if (smoothing, order, bits) == ("jm", 2, None) else 4 if bits is None else 5
+    assert plain.format_version == (1, plain_minor)
+    assert len(r.a["RWEH"]) > 4 and len(r.a["SEFH"]) > 4  # several chunks
+    rp = NwmReader(twin) if plain_minor == 0 else NgramReader(twin)
+    for tag in ("ROWS", "SUCC", "IDTK", "APOS", *(("HN13",) if smoothing == "kn" else ()), *(("TSUC",) if order == 3 else ())):
+        assert r.a[tag].tolist() == rp.a[tag].tolist(), tag
+    assert np.array_equal(r.full_counts(), rp.full_counts())
+    if order == 3:
+        assert len(r.a["TEFH"]) > 4 and r.check_trigram_bands() > 0
+        assert np.array_equal(r.lengths, rp.lengths) and np.array_equal(r.tval, rp.tval)  # type: ignore[attr-defined]
+    rng = random.Random(16)
+    words = [r.keys[i] for i in range(min(r.n, 60))]
+    ctxs = [["<s>"], ["i"], ["the"], ["of", "the"], ["<s>", "i"], ["i", "am"], ["<unk>", "<unk>"], ["the", "zzz"]]
+    ctxs += [[rng.choice(words), rng.choice(words)] for _ in range(5)]
+    for hist in ctxs:
+        ids = _ctx_ids(r, hist)
+        total = 0.0
+        for w in range(r.n + 2):
+            key = "</s>" if w == r.n else "<unk>" if w == r.n + 1 else r.keys[w]
+            got = r.prob3(ids, w)
+            if plain_minor:
+                assert got == rp.prob3(ids, w), (hist, key)  # type: ignore[attr-defined]
+            else:  # the 1.0 twin: §9.3, the same numbers by another formula
+                assert got == pytest.approx(rp.prob(ids[-1], w, rp.lam), rel=1e-12), (hist, key)
+            lib = model.prob_after(key, hist)
+            assert lib == plain.prob_after(key, hist), (hist, key)
+            assert lib == pytest.approx(got, rel=1e-12, abs=0), (hist, key)
+            total += got
+        assert total == pytest.approx(1.0, rel=1e-9)
+        for prefix in ["", "s", "t", "a", "re"]:
+            for k in (1, 3, 5):
+                got_rank = model.rank_after(hist, prefix, k)
+                assert got_rank == plain.rank_after(hist, prefix, k), (hist, prefix, k)
+                assert [w for w, _ in got_rank] == [w for w, _ in r.brute_rank(ids, prefix, k)], (hist, prefix, k)
+    for w, h in (("am", "i"), ("the", None), ("i", "<unk>"), ("zzz", "of")):
+        assert model.prob(w, h) == plain.prob(w, h)
+    for typed in ("", "I ", "I am ", "of the ", "of the b", "The assert st", "Sam I a"):
+        assert model.suggest(typed, 4) == plain.suggest(typed, 4), typed
+
+
+# §7.18 and the encoder nextword.succinct.ef_encode: any non-decreasing sequence (runs of
+# equal values, gaps from 0 to millions, 0 … 300 values: zero to five chunks)
+@st.composite
+def _gaps(draw: st.DrawFn) -> list[int]:
+    size = draw(st.integers(0, 300))  # drawn first, so that long (several-chunk) sequences are common
+    gap = st.one_of(st.just(0), st.integers(1, 3), st.integers(0, 1000), st.integers(0, 1 << 22))
+    return draw(st.lists(gap, min_size=size, max_size=size))
+
+
+@settings(max_examples=120, deadline=None)
+@given(start=st.integers(0, 1 << 20), gaps=_gaps())
+def test_the_doc_decoder_reads_the_library_encoder(start: int, gaps: list[int]) -> None:
+    from nextword.succinct import ef_encode  # the writer under test; the decoder is the doc's
+
+    values = list(itertools.accumulate(gaps, initial=start))[1:]
+    head, stream = ef_encode(np.array(values, dtype=np.int64))
+    strict = all(b > a for a, b in zip(values, values[1:]))
+    assert ef_decode(head.tolist(), bytes(stream), len(values), strict=strict) == values  # the doc, §7.18
+    # and §7.18 written the other way round gives the same bytes: the text fixes the layout
+    assert ef_encode_doc(values) == (head.tolist(), bytes(stream))
+
+
+@pytest.fixture(scope="module")
+def compact_kn3(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
+    """A KN trigram model of the real text as 1.6, and as 1.4 and 1.5 (for the cases that
+    need a plain file): every sequence has several chunks."""
+    d = tmp_path_factory.mktemp("compact")
+    wide = [f"Of the {w}." for w in _syllable_words(70)]
+    out = {}
+    for name, extra in (("c", {"compact": True}), ("p14", {}), ("p15", {"quantize": 4})):
+        out[name] = d / f"{name}.nwm"
+        nextword.train_texts(REAL + wide, out[name], smoothing="kn", order=3, min_count=1, skyband_min=4, skyband_k=3,
+                             **extra)  # type: ignore[arg-type]
+    return out
+
+
+Sections = dict[str, list]  # tag -> [element code, bytes], in table order
+
+
+def _craft(src: Path, dst: Path, edit: Callable[[Sections, dict], int | None]) -> Path:
+    """A copy of ``src`` changed by ``edit`` (sections and META; it may return another
+    minor version), laid out again by §11 with every CRC right."""
+    minor, listed = file_sections(src)
+    secs: Sections = {tag: [code, data] for tag, code, data in listed}
+    meta = msgpack.unpackb(secs["META"][1], raw=False)
+    minor = edit(secs, meta) or minor
+    secs["META"][1] = msgpack.packb(meta, use_bin_type=True)
+    dst.write_bytes(write_file(minor, [(tag, code, data) for tag, (code, data) in secs.items()]))
+    return dst
+
+
+def _head(secs: Sections, name: str) -> list[int]:
+    code, data = secs[name + "H"]
+    return np.frombuffer(data, dtype="<u4" if code == 3 else "<u8").tolist()
+
+
+def _set_head(secs: Sections, name: str, head: list[int]) -> None:
+    secs[name + "H"] = [3, np.array(head, dtype="<u4").tobytes()]
+
+
+def _set_seq(secs: Sections, name: str, values: list[int]) -> None:
+    """Code ``values`` by §7.18 (a valid coding of a wrong sequence)."""
+    head, stream = ef_encode_doc(values)
+    _set_head(secs, name, head)
+    secs[name + "B"] = [1, stream]
+
+
+def _seq(secs: Sections, name: str, count: int) -> list[int]:
+    return ef_decode(_head(secs, name), secs[name + "B"][1], count, strict=False)
+
+
+def _flip(stream: bytes, p: int) -> bytes:
+    b = bytearray(stream)
+    b[p // 8] ^= 1 << (p % 8)
+    return bytes(b)
+
+
+def _chunk_parts(head: list[int], values: list[int], c: int) -> tuple[int, int, int, list[int], list[int]]:
+    """(m, ℓ, O_c, highs, lows) of chunk c (§7.18)."""
+    m = min(EF_CHUNK, len(values) - EF_CHUNK * c)
+    low = ef_low_width(head[2 * c + 2] - head[2 * c], m)
+    d = [y - head[2 * c] for y in values[EF_CHUNK * c : EF_CHUNK * c + m]]
+    return m, low, head[2 * c + 1], [x >> low for x in d], [x & ((1 << low) - 1) for x in d]
+
+
+def _set_bits(stream: bytes, start: int, width: int, value: int) -> bytes:
+    for j in range(width):
+        if ((stream[(start + j) // 8] >> ((start + j) % 8)) & 1) != (value >> j) & 1:
+            stream = _flip(stream, start + j)
+    return stream
+
+
+def _swap_lows(secs: Sections, name: str, count: int) -> None:
+    """Make the sequence decrease: swap the low parts of two neighbours with equal high parts."""
+    head, stream = _head(secs, name), secs[name + "B"][1]
+    values = _seq(secs, name, count)
+    for c in range(len(head) // 2 - 1):
+        m, low, off, highs, lows = _chunk_parts(head, values, c)
+        for k in range(m - 1):
+            if low and highs[k] == highs[k + 1] and lows[k] < lows[k + 1]:
+                stream = _set_bits(stream, off + k * low, low, lows[k + 1])
+                secs[name + "B"][1] = _set_bits(stream, off + (k + 1) * low, low, lows[k])
+                return
+    raise AssertionError(f"no two neighbours of {name} to swap")
+
+
+def _beyond_chunk(secs: Sections, name: str, count: int) -> int:
+    """Make the last value of a chunk decode above F_{c+1} (§7.18: it must be ≤ F_{c+1}); its index."""
+    head, stream = _head(secs, name), secs[name + "B"][1]
+    values = _seq(secs, name, count)
+    for c in range(len(head) // 2 - 1):
+        m, low, off, highs, lows = _chunk_parts(head, values, c)
+        r = head[2 * c + 2] - head[2 * c]
+        if low and r % (1 << low) < (1 << low) - 1:
+            region = off + m * low
+            stream = _flip(stream, region + highs[-1] + m - 1)  # the last value's high bit …
+            stream = _flip(stream, region + (r >> low) + m - 1)  # … moved to the region's end
+            secs[name + "B"][1] = _set_bits(stream, off + (m - 1) * low, low, (1 << low) - 1)
+            return EF_CHUNK * c + m - 1
+    raise AssertionError(f"no chunk of {name} to damage")
+
+
+def _history(r: NwmReader, v: int) -> str:
+    return "<s>" if v == r.n + 2 else "<unk>" if v == r.n + 1 else r.keys[v]
+
+
+def _ask_all(model: nextword.Model, hist: list[str], r: NwmReader) -> None:
+    for w in [*r.keys, "</s>", "<unk>"]:
+        model.prob_after(w, hist)
+    model.rank_after(hist, "", 5)
+
+
+def _add_successors(secs: Sections, meta: dict) -> None:
+    meta["successors"] = dict(SUCCESSORS_16)
+
+
+def _h(name: str, change: Callable[[list[int]], None]) -> Callable[[Sections, dict], None]:
+    def edit(secs: Sections, meta: dict) -> None:
+        head = _head(secs, name)
+        change(head)
+        _set_head(secs, name, head)
+    return edit
+
+
+def _counts(meta: dict) -> dict[str, int]:
+    n, b = meta["n_words"], meta["bigrams"]
+    return {"RWE": n + 4, "SEF": b, "TPT": b + 1, "TEF": meta["trigrams"]}
+
+
+def _reseq(name: str, change: Callable[[list[int], dict], None]) -> Callable[[Sections, dict], None]:
+    def edit(secs: Sections, meta: dict) -> None:
+        values = _seq(secs, name, _counts(meta)[name])
+        change(values, meta)
+        _set_seq(secs, name, values)
+    return edit
+
+
+def _set(values: list[int], i: int, x: int) -> None:
+    values[i] = x
+
+
+def _past_end(secs: Sections, meta: dict) -> None:
+    for name in ("RWE", "SEF", "TPT", "TEF"):
+        end = _head(secs, name)[-1]
+        if end % 8:
+            secs[name + "B"][1] = _flip(secs[name + "B"][1], end)  # a bit of the last byte, after O_C
+            return
+    raise AssertionError("every stream ends on a byte boundary")
+
+
+def _retype(tag: str, code: int) -> Callable[[Sections, dict], None]:
+    def edit(secs: Sections, meta: dict) -> None:
+        secs[tag][0] = code
+    return edit
+
+
+def _hn12(secs: Sections, meta: dict, *, drop: bool) -> None:
+    hn = np.frombuffer(secs["HN12"][1], dtype="<u2").copy()
+    if drop:
+        hn = hn[:-1]
+    else:  # N₁ of row 0 = its length + 1 (row 0 is the first word's, ROWS[1] − ROWS[0] long)
+        hn[0] = _seq(secs, "RWE", meta["n_words"] + 4)[1] + 1
+    secs["HN12"][1] = hn.tobytes()
+
+
+def _id_array(tag: str, i: int, value: Callable[[np.ndarray, dict], int]) -> Callable[[Sections, dict], None]:
+    def edit(s: Sections, meta: dict) -> None:
+        a = np.frombuffer(s[tag][1], dtype="<u2").copy()
+        a[i] = value(a, meta)
+        s[tag][1] = a.tobytes()
+    return edit
+
+
+# docs/FORMAT.md §8 items 19–25 (format 1.6, checks on every load): one damaged file per
+# check, CRCs fixed; (source file, edit, the library's message)
+LOAD_CASES: dict[str, tuple[str, Callable[[Sections, dict], int | None], str]] = {
+    "19 successors missing": ("c", lambda s, m: m.pop("successors") and None, "'successors' belongs to format 1.6"),
+    "19 successors version 2": ("c", lambda s, m: m.update(successors={"name": "ef", "version": 2}), "unknown successor layout"),
+    "19 successors name": ("c", lambda s, m: m.update(successors={"name": "pef", "version": 1}), "unknown successor layout"),
+    "19 successors in 1.4": ("p14", _add_successors, "'successors' belongs to format 1.6"),
+    "19 successors in 1.5": ("p15", _add_successors, "'successors' belongs to format 1.6"),
+    "20 a sequence missing": ("c", lambda s, m: s.pop("SEFB") and None, "missing sections SEFB"),
+    "20 HN13 in a 1.6 file": ("c", lambda s, m: s.update(HN13=[3, bytes(12 * (m["n_words"] + 3))]), "unexpected sections"),
+    "20 TSUC in a 1.6 file": ("c", lambda s, m: s.update(TSUC=[2, bytes(2 * m["trigrams"])]), "unexpected sections"),
+    "20 stream not u8": ("c", _retype("TEFB", 2), "TEFB has element type"),
+    "20 header not u32/u64": ("c", _retype("SEFH", 2), "SEFH has element type"),
+    "20 HN12 not the id type": ("c", _retype("HN12", 3), "HN12 has element type"),
+    "22 RWE header entries": ("c", _h("RWE", lambda h: h.extend(h[-2:])), "RWEH/RWEB has .* header entries"),
+    "22 SEF header entries": ("c", _h("SEF", lambda h: h.extend(h[-2:])), "SEFH/SEFB has .* header entries"),
+    "22 TPT header entries": ("c", _h("TPT", lambda h: h.extend(h[-2:])), "TPTH/TPTB has .* header entries"),
+    "22 TEF header entries": ("c", _h("TEF", lambda h: h.extend(h[-2:])), "TEFH/TEFB has .* header entries"),
+    "22 O0 not 0": ("c", _h("SEF", lambda h: _set(h, 1, 1)), "chunk offsets do not start at 0"),
+    "22 O decreasing": ("c", _h("SEF", lambda h: _set(h, 3, h[5] + 1)), "chunk offsets do not start at 0 and increase"),
+    "22 F decreasing": ("c", _h("TPT", lambda h: _set(h, 2, h[4] + 1)), "TPTH/TPTB chunk first values are not increasing"),
+    "22 SEF chunk shorter than m": ("c", _h("SEF", lambda h: _set(h, 2, h[0] + 63)), "SEFH/SEFB chunk first values"),
+    "22 TEF chunk shorter than m": ("c", _h("TEF", lambda h: _set(h, 2, h[0] + 63)), "TEFH/TEFB chunk first values"),
+    "22 chunk size": ("c", _h("TEF", lambda h: _set(h, len(h) - 1, h[-1] + 1)), r"TEFH/TEFB chunk \d+ has \d+ bits, its values need"),
+    "22 stream length": ("c", lambda s, m: s["SEFB"].__setitem__(1, s["SEFB"][1] + bytes(8)), r"SEFH/SEFB stream has \d+ bytes"),
+    "22 bit past the end": ("c", _past_end, "stream has bits set past its end"),
+    "22 padding": ("c", lambda s, m: s["RWEB"].__setitem__(1, s["RWEB"][1][:-1] + b"\x80"), "RWEH/RWEB stream padding"),
+    "23 ROWS does not end at b": ("c", _reseq("RWE", lambda v, m: _set(v, -1, m["bigrams"] - 1)), "row starts are not increasing"),
+    "23 ROWS does not start at 0": ("c", _reseq("RWE", lambda v, m: _set(v, 0, 1)), "row starts are not increasing"),
+    "23 ROWS decreasing": ("c", lambda s, m: _swap_lows(s, "RWE", m["n_words"] + 4), "row starts are not increasing"),
+    "23 TPT does not start at 0": ("c", _reseq("TPT", lambda v, m: v.__setitem__(slice(None), [x + 1 for x in v])), "TPTH/TPTB do not run from 0"),
+    "23 TPT does not end at t": ("c", _reseq("TPT", lambda v, m: _set(v, -1, m["trigrams"] - 1)), "TPTH/TPTB do not run from 0"),
+    "23 SEF past the last row": ("c", _reseq("SEF", lambda v, m: _set(v, -1, (m["n_words"] + 3) * (m["n_words"] + 2))), "past the last row"),
+    "24 TKID not a permutation": ("c", _id_array("TKID", 1, lambda a, m: int(a[0])), "TKID"),
+    "24 ALPH not a permutation": ("c", _id_array("ALPH", 0, lambda a, m: m["n_words"] + 2), "ALPH is not a valid permutation"),
+    "25 HN12 length": ("c", lambda s, m: _hn12(s, m, drop=True), r"HN12 holds \d+ entries, expected"),
+    "25 HN12 above a row's length": ("c", lambda s, m: _hn12(s, m, drop=False), "HN12 counts more entries than a row has"),
+}
+
+
+def test_the_crafting_writer_reproduces_the_file(compact_kn3: dict[str, Path], tmp_path: Path) -> None:
+    # §11 (and §2–4) rebuild the library's file byte for byte, so the damaged files below
+    # differ from it only by their edit
+    for name, src in compact_kn3.items():
+        assert _craft(src, tmp_path / f"{name}.nwm", lambda s, m: None).read_bytes() == src.read_bytes(), name
+
+
+@pytest.mark.parametrize("case", list(LOAD_CASES))
+def test_compact_load_checks(compact_kn3: dict[str, Path], tmp_path: Path, case: str) -> None:
+    src, edit, message = LOAD_CASES[case]
+    path = _craft(compact_kn3[src], tmp_path / "bad.nwm", edit)
+    with pytest.raises(nextword.ModelFormatError, match=message):
+        nextword.load(path)
+    with pytest.raises(FormatError):  # the doc's reader refuses it too
+        NgramReader(path)
+
+
+def test_compact_checksums(compact_kn3: dict[str, Path], tmp_path: Path) -> None:
+    # §8 item 21: RWEH, RWEB, HN12 are checksummed on every load; the n-gram-sized
+    # sequences only with verify=True (a flipped stream bit keeps every header check)
+    data = compact_kn3["c"].read_bytes()
+    r = NgramReader(compact_kn3["c"])
+    for tag in ("RWEH", "RWEB", "HN12", "SEFB", "TPTB", "TEFB"):
+        b = bytearray(data)
+        b[r.sections[tag].offset] ^= 0x01  # bit 0 of the first byte (the first low or high bit)
+        path = tmp_path / f"{tag}.nwm"
+        path.write_bytes(bytes(b))
+        with pytest.raises(FormatError, match=f"{tag} CRC"):
+            NwmReader(path)
+        if tag in ("RWEH", "RWEB", "HN12"):
+            with pytest.raises(nextword.ModelFormatError, match=f"section {tag} checksum"):
+                nextword.load(path)
+        else:
+            nextword.load(path).close()
+            with pytest.raises(nextword.ModelFormatError, match=f"section {tag} checksum"):
+                nextword.load(path, verify=True)
+
+
+def _bad_position(secs: Sections, meta: dict, r: NgramReader) -> list[str]:
+    """The last entry of a word's row decodes to position n+2 (still below the next row's values)."""
+    n, rows, y = r.n, r.a["ROWS"].tolist(), _seq(secs, "SEF", meta["bigrams"])
+    for v in range(n):
+        last = rows[v + 1] - 1
+        if rows[v] <= last and last + 1 < len(y) and y[last + 1] > (v + 1) * (n + 2):
+            y[last] = (v + 1) * (n + 2)
+            _set_seq(secs, "SEF", y)
+            return [r.keys[v]]
+    raise AssertionError("no row to damage")
+
+
+def _bad_x(secs: Sections, meta: dict, r: NgramReader) -> list[str]:
+    """The last trigram successor of the last context gets x = the length of its row."""
+    i, base, xs = r.remapped[-1]
+    v = int(r.a["ALPH"][r.a["SUCC"][i]])
+    u = int(np.searchsorted(r.a["ROWS"], i, side="right")) - 1
+    y = _seq(secs, "TEF", meta["trigrams"])
+    y[-1] = base + int(r.a["ROWS"][v + 1] - r.a["ROWS"][v])
+    _set_seq(secs, "TEF", y)
+    return [_history(r, u), _history(r, v)]
+
+
+def _bad_chunk(secs: Sections, meta: dict, r: NgramReader) -> list[str]:
+    i = _beyond_chunk(secs, "SEF", meta["bigrams"])
+    return [_history(r, int(np.searchsorted(r.a["ROWS"], i, side="right")) - 1)]
+
+
+def _bad_high_bits(secs: Sections, meta: dict, r: NgramReader) -> list[str]:
+    """Chunk 0 of SEF loses a set bit of its high region (m − 1 values left)."""
+    head, values = _head(secs, "SEF"), _seq(secs, "SEF", meta["bigrams"])
+    m, low, off, highs, _ = _chunk_parts(head, values, 0)
+    secs["SEFB"][1] = _flip(secs["SEFB"][1], off + m * low + highs[0])
+    return [r.keys[0]]
+
+
+# §7.18 / §8: "a query checks every value it decodes"; (edit, the library's message)
+QUERY_CASES: dict[str, tuple[Callable[[Sections, dict, NgramReader], list[str]], str]] = {
+    "a position past n+1": (_bad_position, "outside the positions"),
+    "an x past its row": (_bad_x, "outside the row of its last word"),
+    "a value above F_c+1": (_bad_chunk, "does not decode to its values"),
+    "m_c - 1 high bits": (_bad_high_bits, "does not decode to its values"),
+}
+
+
+@pytest.mark.parametrize("case", list(QUERY_CASES))
+def test_compact_query_checks(compact_kn3: dict[str, Path], tmp_path: Path, case: str) -> None:
+    edit, message = QUERY_CASES[case]
+    r = NgramReader(compact_kn3["c"])
+    hist: list[str] = []
+    path = _craft(compact_kn3["c"], tmp_path / "bad.nwm", lambda s, m: hist.extend(edit(s, m, r)))
+    model = nextword.load(path)  # the headers are fine: opening does not decode these values
+    with pytest.raises(nextword.ModelFormatError, match=message):
+        _ask_all(model, hist, r)
+    with pytest.raises(nextword.ModelFormatError):
+        nextword.load(path, verify=True)
+    with pytest.raises(FormatError):
+        NgramReader(path)
+
+
+def test_compact_headers_may_be_u64(compact_kn3: dict[str, Path], tmp_path: Path) -> None:
+    # §7.18: "…H (element type u32 or u64, declared in the section table)": the same file
+    # with every header widened to u64 is read by both readers with the same answers
+    def widen(secs: Sections, meta: dict) -> None:
+        for name in ("RWE", "SEF", "TPT", "TEF"):
+            secs[name + "H"] = [4, np.array(_head(secs, name), dtype="<u8").tobytes()]
+
+    path = _craft(compact_kn3["c"], tmp_path / "wide.nwm", widen)
+    r, r32 = NgramReader(path), NgramReader(compact_kn3["c"])
+    assert r.sections["SEFH"].code == 4 and r.sections["SEFH"].length == 2 * r32.sections["SEFH"].length
+    for tag in ("ROWS", "SUCC", "TSUC"):
+        assert np.array_equal(r.a[tag], r32.a[tag]), tag
+    wide, narrow = nextword.load(path, verify=True), nextword.load(compact_kn3["c"])
+    for hist in (["<s>"], ["of", "the"], ["i", "am"], ["<s>", "i"]):
+        assert wide.rank_after(hist, "", 5) == narrow.rank_after(hist, "", 5)
+        assert [wide.prob_after(w, hist) for w in r.keys[:50]] == [narrow.prob_after(w, hist) for w in r.keys[:50]]
