@@ -1787,8 +1787,8 @@ def test_compact_files_answer_like_their_plain_twins(tmp_path: Path, smoothing: 
                 got_rank = model.rank_after(hist, prefix, k)
                 assert got_rank == plain.rank_after(hist, prefix, k), (hist, prefix, k)
                 assert [w for w, _ in got_rank] == [w for w, _ in r.brute_rank(ids, prefix, k)], (hist, prefix, k)
-    for w, h in (("am", "i"), ("the", None), ("i", "<unk>"), ("zzz", "of")):
-        assert model.prob(w, h) == plain.prob(w, h)
+    for word, before in (("am", "i"), ("the", None), ("i", "<unk>"), ("zzz", "of")):
+        assert model.prob(word, before) == plain.prob(word, before)
     for typed in ("", "I ", "I am ", "of the ", "of the b", "The assert st", "Sam I a"):
         assert model.suggest(typed, 4) == plain.suggest(typed, 4), typed
 
@@ -1925,6 +1925,10 @@ def _ask_all(model: nextword.Model, hist: list[str], r: NwmReader) -> None:
     model.rank_after(hist, "", 5)
 
 
+def _pop(d: dict, key: str) -> None:
+    del d[key]
+
+
 def _add_successors(secs: Sections, meta: dict) -> None:
     meta["successors"] = dict(SUCCESSORS_16)
 
@@ -1989,12 +1993,12 @@ def _id_array(tag: str, i: int, value: Callable[[np.ndarray, dict], int]) -> Cal
 # docs/FORMAT.md §8 items 19–25 (format 1.6, checks on every load): one damaged file per
 # check, CRCs fixed; (source file, edit, the library's message)
 LOAD_CASES: dict[str, tuple[str, Callable[[Sections, dict], int | None], str]] = {
-    "19 successors missing": ("c", lambda s, m: m.pop("successors") and None, "'successors' belongs to format 1.6"),
+    "19 successors missing": ("c", lambda s, m: _pop(m, "successors"), "'successors' belongs to format 1.6"),
     "19 successors version 2": ("c", lambda s, m: m.update(successors={"name": "ef", "version": 2}), "unknown successor layout"),
     "19 successors name": ("c", lambda s, m: m.update(successors={"name": "pef", "version": 1}), "unknown successor layout"),
     "19 successors in 1.4": ("p14", _add_successors, "'successors' belongs to format 1.6"),
     "19 successors in 1.5": ("p15", _add_successors, "'successors' belongs to format 1.6"),
-    "20 a sequence missing": ("c", lambda s, m: s.pop("SEFB") and None, "missing sections SEFB"),
+    "20 a sequence missing": ("c", lambda s, m: _pop(s, "SEFB"), "missing sections SEFB"),
     "20 HN13 in a 1.6 file": ("c", lambda s, m: s.update(HN13=[3, bytes(12 * (m["n_words"] + 3))]), "unexpected sections"),
     "20 TSUC in a 1.6 file": ("c", lambda s, m: s.update(TSUC=[2, bytes(2 * m["trigrams"])]), "unexpected sections"),
     "20 stream not u8": ("c", _retype("TEFB", 2), "TEFB has element type"),
