@@ -46,8 +46,8 @@ from .text import BOS, EOS, UNK, fold, parse_typed, recase, sentences
 __all__ = ["Model", "Suggestion", "load", "check_k", "check_lam"]
 
 #: sections whose size grows with the number of stored pairs, and with the vocabulary (for ``info``)
-_PAIR_SECTIONS = ("SUCC", "CNTS", "BIGI", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC")
-_VOCAB_SECTIONS = ("TKID", "IDTK", "ALPH", "APOS", "KEY4", "TOPK", "UNIG", "ROWS", "HIST", "DISI", "DISO")
+_PAIR_SECTIONS = ("SUCC", "CNTS", "BIGI", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC", "SEFH", "SEFB")
+_VOCAB_SECTIONS = ("TKID", "IDTK", "ALPH", "APOS", "KEY4", "TOPK", "UNIG", "ROWS", "HIST", "DISI", "DISO", "RWEH", "RWEB")
 #: how many of a context's best words bound the near-miss ranges (Model._context_top): the
 #: stored skyband depth, so the list comes from the bands without scanning a segment
 _BOUND_TOP = 8
@@ -183,7 +183,8 @@ class Model:
         # everything but the Jelinek-Mercer bigram goes through the general scorer (_NgramScorer);
         # a quantised JM bigram too when it has dropped mass (the JM bigram path has no γ term
         # for it); without, both paths compute the same floats (γ = 1 − λ exactly when r = 0)
-        self._general = self.estimator != "jm" or self.order != 2 or (self._vals2 is not None and len(a["HDRI"]) > 0)
+        # a JM bigram with dropped mass (a pruned 1.5/1.6 file) needs γ = (1 − λ) + λ·r/T: the general path
+        self._general = self.estimator != "jm" or self.order != 2 or ("HDRI" in a and len(a["HDRI"]) > 0)
         if self._general:
             if self.estimator == "kn" and lam is not None:
                 raise InvalidArgumentError(f"lam={lam!r} given for a Kneser-Ney model, which has no λ")
@@ -1123,17 +1124,17 @@ class Model:
 
     def info(self) -> dict[str, Any]:
         """Sizes, settings and corpus statistics, as plain data (for ``nextword info``)."""
-        a = self._src.arrays
-        bigram_bytes = sum(
-            a[s].nbytes for s in ("SUCC", "CNTS", "BIGI", "BIGC", "ROWS", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC")
-        )
+        a = self._src.section_bytes  # what the file holds (a 1.6 file's decoded arrays are not in it)
+        bigram_bytes = sum(a.get(s, 0) for s in ("SUCC", "CNTS", "BIGI", "BIGC", "ROWS", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC",
+                                                  "SEFH", "SEFB", "RWEH", "RWEB"))
         # the file split into what grows with the pairs and what grows with the vocabulary
         # (trie, permutations, key heads, top lists, unigram/history counts, row offsets,
         # spellings); the rest is header, section table, metadata and padding
-        pair_bytes = sum(a[s].nbytes for s in _PAIR_SECTIONS)
-        vocab_bytes = sum(a[s].nbytes for s in _VOCAB_SECTIONS if s in a) + len(self._src.raw["TRIE"]) + len(self._disb)
+        pair_bytes = sum(a.get(s, 0) for s in _PAIR_SECTIONS)
+        vocab_bytes = sum(a.get(s, 0) for s in _VOCAB_SECTIONS) + a["TRIE"] + a["DISB"]
         # Kneser-Ney context counts, context totals and the trigram sections (format 1.4)
-        ngram_bytes = sum(a[s].nbytes for s in a if s not in _PAIR_SECTIONS and s not in _VOCAB_SECTIONS)
+        ngram_bytes = sum(v for s, v in a.items() if s not in _PAIR_SECTIONS and s not in _VOCAB_SECTIONS
+                          and s not in ("META", "TRIE", "DISB"))
         pairs = self.n_bigrams
         return {
             "path": self.path,
@@ -1159,6 +1160,7 @@ class Model:
             # a Jelinek-Mercer bigram's answer is unchanged (the service's protocol quotes it)
             **({"estimator": self.estimator, "order": self.order} if self._general or self._vals2 is not None else {}),
             **({"codec": self.codec.meta()} if self.codec is not EXACT else {}),
+            **({"successors": dict(self._src.meta["successors"])} if "successors" in self._src.meta else {}),
             **({"discounts": self.discounts, "discount_notes": self.discount_notes} if self.estimator == "kn" else {}),
             **({"lambda3": self.stored_lam3} if self.stored_lam3 is not None else {}),
             **({"trigrams": self._src.meta["trigrams"]} if self.order == 3 else {}),

@@ -1282,6 +1282,8 @@ class ModelArrays:
     #: the successor lists, whatever their layout (docs/SEAMS.md, "The successor seam")
     succ2: BigramLists
     succ3: TrigramLists | None
+    #: each section's length in the file, in bytes (by tag)
+    section_bytes: dict[str, int]
 
     def close(self) -> None:
         # arrays keep exporting the buffer while alive; let the GC unmap when they go
@@ -1444,7 +1446,8 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
         succ2 = PlainBigramLists(arrays["SUCC"])
         if meta["order"] == 3:
             succ3 = PlainTrigramLists(name, arrays["TSUC"], arrays["TCTB"], EXACT.decode(name, arrays, CONTEXT_TAGS), succ2, rows_mv)
-    return ModelArrays(name, (major, minor), meta, trie, arrays, raw, size, mm, succ2, succ3)
+    section_bytes = {tag.decode("ascii", "replace"): length for tag, (_, _, length, _) in sections.items()}
+    return ModelArrays(name, (major, minor), meta, trie, arrays, raw, size, mm, succ2, succ3, section_bytes)
 
 
 def _expand_compact(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], *, full: bool) -> dict[str, ChunkedEF]:
@@ -1807,7 +1810,7 @@ def _check_arrays(
         raise _fail(name, "section DISI is not an increasing list of word ids")
     if codec is EXACT:
         _check_escaped_counts(name, a, n, b)
-    ngram = meta["estimator"] != "jm" or meta["order"] != 2 or codec is not EXACT
+    ngram = meta["estimator"] != "jm" or meta["order"] != 2 or codec is not EXACT or "successors" in meta
     if ngram:
         _check_ngram_arrays(name, meta, a, keys=None)
     if not full:
