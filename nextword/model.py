@@ -40,7 +40,7 @@ from .store import (
     ModelArrays,
     read_model,
 )
-from .successors import TrigramLists
+from .successors import SparseTable, TrigramLists
 from .text import BOS, EOS, UNK, fold, parse_typed, recase, sentences
 
 __all__ = ["Model", "Suggestion", "load", "check_k", "check_lam"]
@@ -1047,8 +1047,8 @@ class Model:
             sums = np.add.reduceat(v3, starts) if len(keys) else np.zeros(0, np.int64)
             # dropped mass per context (TDRI/TDRV, keyed by the context's bigram entry)
             ent = self._bigram_entries(ctx3[:, 0], ctx3[:, 1])
-            tdri = np.asarray(self._src.arrays["TDRI"], dtype=np.int64)
-            tdrv = np.asarray(self._src.arrays["TDRV"], dtype=np.int64)
+            assert self._src.dropped3 is not None  # an order-3 file has the table (checked on load)
+            tdri, tdrv = self._src.dropped3.all()
             dropped = np.zeros(len(ent), dtype=np.int64)
             if len(tdri):  # the sorted sparse table, looked up for every context at once
                 at = np.minimum(np.searchsorted(tdri, ent), len(tdri) - 1)
@@ -1261,7 +1261,8 @@ class _NgramScorer:
             self._tsky_min: int = meta["trigram_skyband_min"]
             self._tval = self.codec.decode(m.path, a, TRIGRAM_TAGS, self._t)
             self._tlni, self._tlnv = _native_view(a["TLNI"]), _native_view(a["TLNV"])
-            self._tdri, self._tdrv = _native_view(a["TDRI"]), _native_view(a["TDRV"])
+            assert m._src.dropped3 is not None  # an order-3 file has the table (checked on load)
+            self._dropped3: SparseTable = m._src.dropped3
             self._tsgs, self._tsge = _native_view(a["TSGS"]), _native_view(a["TSGE"])
             self._tskp, self._tski, self._tskc = _native_view(a["TSKP"]), _native_view(a["TSKI"]), _native_view(a["TSKC"])
 
@@ -1327,7 +1328,7 @@ class _NgramScorer:
             vals = self._tval.slice(s, e)
             sm, n1, n2 = sum(vals), vals.count(1), vals.count(2)
             n3 = len(vals) - n1 - n2
-        tot = sm + self._sparse(self._tdri, self._tdrv, j)
+        tot = sm + self._dropped3.get(j)
         if tot <= 0:
             raise self._damaged(f"trigram context {j} has a total of {tot}")
         if self.kn:

@@ -26,7 +26,10 @@ from .codecs import ValueView
 from .errors import ModelFormatError
 from .succinct import ChunkedEF
 
-__all__ = ["BigramLists", "TrigramLists", "PlainBigramLists", "EFBigramLists", "PlainTrigramLists", "EFTrigramLists"]
+__all__ = [
+    "BigramLists", "TrigramLists", "PlainBigramLists", "EFBigramLists", "PlainTrigramLists", "EFTrigramLists",
+    "SparseTable", "PlainSparseTable", "EFSparseTable",
+]
 
 #: bigram entries per block of the plain layout's TCTB (docs/FORMAT.md §7.14)
 CTX_BLOCK: Final = 16
@@ -277,3 +280,56 @@ class EFTrigramLists(TrigramLists):
         if int(x.min()) < 0 or bool((x >= rows[v + 1] - rows[v]).any()):
             raise self._damaged("a trigram successor outside the row of its context's last word")
         return succ[rows[v] + x]
+
+
+class SparseTable(ABC):
+    """A sorted sparse table index → value ≥ 1 (the dropped mass of trigram contexts); absent = 0."""
+
+    @abstractmethod
+    def get(self, i: int) -> int:
+        """The value of index ``i`` (0 when it has none)."""
+
+    @abstractmethod
+    def all(self) -> tuple[np.ndarray, np.ndarray]:
+        """(indices, values), both int64, indices increasing."""
+
+
+class PlainSparseTable(SparseTable):
+    """Formats 1.4/1.5: an index array and a value array (``TDRI``/``TDRV``)."""
+
+    def __init__(self, idx: np.ndarray, val: np.ndarray) -> None:
+        self._idx, self._val = idx, val
+        self._mi, self._mv = _view(idx), _view(val)
+
+    def get(self, i: int) -> int:
+        j = bisect.bisect_left(self._mi, i)
+        return self._mv[j] if j < len(self._mi) and self._mi[j] == i else 0  # type: ignore[no-any-return]
+
+    def all(self) -> tuple[np.ndarray, np.ndarray]:
+        return np.asarray(self._idx, dtype=np.int64), np.asarray(self._val, dtype=np.int64)
+
+
+class EFSparseTable(SparseTable):
+    """Format 1.6: the indices as one Elias-Fano sequence, the values as the prefix sums of another (§7.18)."""
+
+    def __init__(self, where: str, label: str, idx: ChunkedEF, cum: ChunkedEF) -> None:
+        self._where, self._label, self._idx, self._cum = where, label, idx, cum
+
+    def _bad(self) -> ModelFormatError:
+        return ModelFormatError(f"{self._where}: damaged model data: {self._label} holds a value below 1")
+
+    def get(self, i: int) -> int:
+        n = len(self._idx)
+        j = self._idx.lower_bound(i, 0, n)
+        if j >= n or self._idx.at(j) != i:
+            return 0
+        v = self._cum.at(j + 1) - self._cum.at(j)
+        if v < 1:
+            raise self._bad()
+        return v
+
+    def all(self) -> tuple[np.ndarray, np.ndarray]:
+        val = np.diff(self._cum.all())
+        if len(val) and int(val.min()) < 1:
+            raise self._bad()
+        return self._idx.all(), val

@@ -271,7 +271,9 @@ def _minor(data: bytes, minor: int) -> bytes:
     (lambda d: _head_value(d, b"TPTH", 0, 1), "TPTH/TPTB do not run from 0|has .* bits"),
     (lambda d: _patched(d, b"SEFB", -1, b"\x01"), "padding is not zero|bits set past its end"),
     (lambda d: _patched(d, b"RWEB", -1, b"\x80"), "padding is not zero|bits set past its end"),
-    (lambda d: _patched(d, b"HN12", 0, b"\xff\xff"), "HN12 counts more entries than a row has"),
+    (lambda d: _with_meta(d, {"dropped_contexts": [10**9, 0]}), "'dropped_contexts' is invalid"),
+    (lambda d: _with_meta(d, {"dropped_contexts": [0]}), "'dropped_contexts' is invalid"),
+    (lambda d: _head_value(d, b"UNEH", 0, 1), "UNEH/UNEB do not hold prefix sums from 0|has .* bits"),
     (lambda d: _patched(d, b"ALPH", 0, d[_sections(d)[b"ALPH"][1] + 2 : _sections(d)[b"ALPH"][1] + 4]), "not a valid permutation"),
     (lambda d: _with_meta(d, {"successors": {"name": "ef", "version": 2}}), "unknown successor layout"),
     (lambda d: _with_meta(d, {"successors": {"name": "xx", "version": 1}}), "unknown successor layout"),
@@ -331,7 +333,7 @@ def test_crafted_compact_files_raise_only_model_format_errors(c3_bytes: bytes, c
     # random bytes in any section but the trie (trusted after its CRC, FORMAT.md §8), every CRC fixed
     buf = bytearray(c3_bytes if which == "kn3" else c2_bytes)
     spans = {tag: (off, length) for tag, (_, off, length) in _sections(buf).items() if tag != b"TRIE" and length}
-    new = [t for t in (b"RWEH", b"RWEB", b"SEFH", b"SEFB", b"TPTH", b"TPTB", b"TEFH", b"TEFB", b"HN12") if t in spans]
+    new = [t for t in spans if t[3:] in (b"H", b"B") and t not in (b"TBGI",)]
     tag = data.draw(st.sampled_from(sorted(spans) + new * 3))
     off, length = spans[tag]
     for i, b in data.draw(st.lists(st.tuples(st.integers(0, length - 1), st.integers(0, 255)), min_size=1, max_size=4)):
