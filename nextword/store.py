@@ -867,10 +867,16 @@ def trigram_lower_scores(
     return np.asarray(level_mix(kn, param, c2, tot, dropped2[v], n123, lower), dtype=np.float64)
 
 
-def trigram_band_min(skyband_min: int, trigram_skyband_min: int | None) -> int:
-    """The trigram rows' band threshold: the given one, else the default capped by ``skyband_min``."""
+def trigram_band_min(skyband_min: int, trigram_skyband_min: int | None, *, compact: bool = False) -> int:
+    """The trigram rows' band threshold: the given one, else the default capped by ``skyband_min``.
+
+    A compact (1.6) file defaults to ``skyband_min`` itself, as the bigram rows: there a
+    band costs about as much as the successors it stands for (its offsets are u16, the
+    successors about 1.2 bytes), so bands only for the segments where a cut would cost most
+    (measured in bench/bench_quant.py: 1.94 → 1.91 bytes per n-gram, 24 → 64).
+    """
     if trigram_skyband_min is None:
-        return min(skyband_min, DEFAULT_TRIGRAM_SKYBAND_MIN)
+        return skyband_min if compact else min(skyband_min, DEFAULT_TRIGRAM_SKYBAND_MIN)
     if isinstance(trigram_skyband_min, bool) or not isinstance(trigram_skyband_min, int) or trigram_skyband_min < 0:
         raise InvalidArgumentError(f"trigram_skyband_min must be an integer >= 0, got {trigram_skyband_min!r}")
     return trigram_skyband_min
@@ -1104,7 +1110,7 @@ def build_ngram_sections(
             kn, stored[1] if kn else lam2, floor_new, rows, succ2, file_values2, history, dropped2, n123_2, v, pos, alph,
         )  # fmt: skip
         alpha_keys = [keys[i] for i in alph[:n].tolist()]
-        tmin = trigram_band_min(skyband_min, trigram_skyband_min)
+        tmin = trigram_band_min(skyband_min, trigram_skyband_min, compact=compact)
         tsgs, tsge, tskp, tski, tskc = trigram_bands(ctx_starts, pos, alph[pos.astype(np.int64)], value3, lower, alpha_keys, n, skyband_k, tmin)
         sections += [
             (b"TCTB", u4, tctb),
@@ -1649,6 +1655,8 @@ def _check_model_kind(name: str, meta: dict[str, Any], minor: int, tags: set[byt
         raise _fail(name, f"metadata field 'successors' belongs to format 1.{COMPACT_MINOR} files exactly")
     if compact and layout != SUCCESSORS_META:
         raise _fail(name, f"unknown successor layout {layout!r} (this library reads {SUCCESSORS_META!r})"[:300])
+    if codec.version == 2 and not compact:
+        raise _fail(name, f"codec {codec.name!r} version 2 belongs to format 1.{COMPACT_MINOR} files, not 1.{minor}")
     if not compact and (codec.name != EXACT.name) != (minor == QUANT_MINOR):
         raise _fail(name, f"format 1.{minor} files do not use codec {codec.name!r} (1.{NGRAM_MINOR}: exact values, 1.{QUANT_MINOR}: quantised)")
     est, order = meta.get("estimator"), meta.get("order")
