@@ -357,6 +357,9 @@ class _QuantOnesView(ValueView):
         self._mvb = memoryview(self._bm).cast("B")  # type: ignore[arg-type]
         self._codes = _QuantView(where, np.ascontiguousarray(codes).view(np.uint8), codebook, bits, n_codes)
         self._n, self._m = n, n_codes
+        # the ones before each byte of the bitmap within its block, for gathers (built on the first; 2 bytes
+        # per 8 n-grams in memory)
+        self._pre: np.ndarray | None = None
 
     def _bad(self) -> ModelFormatError:
         return ModelFormatError(f"{self._where}: damaged model data: a ones bitmap rank past the value codes")
@@ -383,7 +386,7 @@ class _QuantOnesView(ValueView):
         if not 0 <= s <= e <= self._n:
             raise IndexError((s, e))
         if e - s > 96:
-            out: list[int] = self.take(np.arange(s, e)).tolist()
+            out: list[int] = self._range(s, e).tolist()
             return out
         res: list[int] = []
         i = s
@@ -403,22 +406,44 @@ class _QuantOnesView(ValueView):
             i = stop
         return res
 
+    def _range(self, s: int, e: int) -> np.ndarray:
+        """Values s … e−1 at once: the covering blocks' bits unpacked, one read of the codes."""
+        b0, b1 = s >> 9, (e - 1) >> 9
+        blocks = self._bm[b0 * _BLOCK_BYTES : (b1 + 1) * _BLOCK_BYTES].reshape(-1, _BLOCK_BYTES)
+        bits = np.unpackbits(blocks[:, 4:], axis=1, bitorder="little").reshape(-1)
+        lo = s - (b0 << 9)
+        ones_before = int(blocks[0, :4].view("<u4")[0]) + int(np.count_nonzero(bits[:lo]))
+        zero = bits[lo : lo + (e - s)] == 0
+        j0, k = s - ones_before, int(np.count_nonzero(zero))
+        if j0 < 0 or j0 + k > self._m:
+            raise self._bad()
+        out = np.ones(e - s, dtype=np.int64)
+        if k:
+            out[zero] = self._codes.take(np.arange(j0, j0 + k))
+        return out
+
     def take(self, idx: np.ndarray) -> np.ndarray:
         idx = np.asarray(idx, dtype=np.int64)
         if len(idx) == 0:
             return np.zeros(0, dtype=np.int64)
         if int(idx.min()) < 0 or int(idx.max()) >= self._n:
             raise IndexError("value index out of range")
+        if len(idx) > 16 and int(idx[-1]) - int(idx[0]) == len(idx) - 1 and bool((np.diff(idx) == 1).all()):
+            return self._range(int(idx[0]), int(idx[-1]) + 1)  # a run of entries (a row or a context)
         blk, off = idx >> 9, idx & (ONES_BLOCK - 1)
-        base = blk * _BLOCK_BYTES
         bm = self._bm
-        rank = bm[base[:, None] + np.arange(4)].astype(np.int64) @ (np.int64(1) << (8 * np.arange(4, dtype=np.int64)))
-        byte_at = base + 4 + (off >> 3)
-        bit = (bm[byte_at] >> (off & 7)) & 1
+        if self._pre is None:  # built on first use: the ones before each byte within its block (u16)
+            body = bm.reshape(-1, _BLOCK_BYTES)[:, 4:]
+            pre = np.zeros((len(body), _BLOCK_BYTES), dtype=np.uint16)
+            np.cumsum(_POPCOUNT[body[:, :-1]], axis=1, out=pre[:, 5:], dtype=np.uint16)
+            self._pre = pre.reshape(-1)
+        byte_at = blk * _BLOCK_BYTES + 4 + (off >> 3)
+        byte = bm[byte_at]
+        bit = (byte >> (off & 7)) & 1
+        rank = bm.view("<u4")[blk * (_BLOCK_BYTES // 4)].astype(np.int64)
         # ones before i in its block: whole bytes before it, then the low bits of its byte
-        pre = np.cumsum(_POPCOUNT[bm[base[:, None] + 4 + np.arange(64)]], axis=1)
-        whole = np.where(off >= 8, pre[np.arange(len(idx)), np.maximum((off >> 3) - 1, 0)], 0)
-        part = _POPCOUNT[bm[byte_at] & ((1 << (off & 7)) - 1)]
+        whole = self._pre[byte_at].astype(np.int64)
+        part = _POPCOUNT[byte & ((1 << (off & 7)) - 1)]
         j = idx - rank - whole - part
         out = np.ones(len(idx), dtype=np.int64)
         nz = bit == 0

@@ -145,7 +145,8 @@ class Model:
         self._mv_alph, self._mv_apos, self._mv_unig = mv["ALPH"], mv["APOS"], mv["UNIG"]
         self._mv_rows = mv["ROWS"]
         self._mv_skyc = mv["SKYC"]
-        self._mv_hist = mv.get("HIST")
+        # c(v) per history: stored (pruned and n-gram files; a 1.6 file reads it coded), else derived from UNIG
+        self._mv_hist: Any = mv.get("HIST", arrays.views.get("HIST"))
         self._mv_disi, self._mv_diso, self._mv_key4 = mv["DISI"], mv["DISO"], mv["KEY4"]
         self._mv_segs, self._mv_sege, self._mv_skyp = mv["SEGS"], mv["SEGE"], mv["SKYP"]
         self._mv_cnts = memoryview(np.ascontiguousarray(a["CNTS"])).cast("B")  # type: ignore[arg-type]
@@ -1034,7 +1035,8 @@ class Model:
         g2, v2 = counts.grams[1], counts.counts[1]
         ctx2 = np.flatnonzero(hist > 0)
         start2 = np.searchsorted(g2[:, 0], np.append(ctx2, n + 3), side="left").astype(np.int64)
-        n123 = (np.asarray(a["HN13"], dtype=np.int64).reshape(-1, 3)[ctx2] if self.estimator == "kn"
+        hn13 = a["HN13"] if "HN13" in a else (self._src.views["HN13"].all() if self.estimator == "kn" else None)
+        n123 = (np.asarray(hn13, dtype=np.int64).reshape(-1, 3)[ctx2] if self.estimator == "kn"
                 else _n123_of(v2, start2))
         levels.append(Level(g2, v2, ctx2.reshape(-1, 1), start2, hist[ctx2], n123))
         if self.order == 3:
@@ -1244,7 +1246,7 @@ class _NgramScorer:
         if self.kn:
             self.floor = unigram_floor(unig, m.discounts[0], m.total)
             self.d2, self.d3 = m.discounts[1], (m.discounts[2] if self.order == 3 else m.discounts[1])
-            self._mv_hn13 = _native_view(a["HN13"])
+            self._mv_hn13: Any = _native_view(a["HN13"]) if "HN13" in a else m._src.views["HN13"]
         else:
             self.floor = unig / m.total
         if not bool(np.all((self.floor >= 0.0) & (self.floor <= 1.0 + 1e-9))):

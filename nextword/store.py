@@ -24,10 +24,10 @@ import numpy as np
 
 from .codecs import COUNT_ESCAPE as COUNT_ESCAPE  # one source: the codec owns the escape byte
 from .codecs import EXACT, Codec, ExactCodec, codec_named
-from .succinct import ChunkedEF, ef_check_headers, ef_encode
+from .succinct import ChunkedEF, PrefixSums, ef_check_headers, ef_encode
 from .successors import (
     BigramLists, EFBigramLists, EFSparseTable, EFTrigramLists, PlainBigramLists, PlainSparseTable, PlainTrigramLists,
-    SparseTable, TrigramLists,
+    RowCounts, SparseTable, TrigramLists,
 )  # fmt: skip
 from .counts import CountTables
 from .errors import InvalidArgumentError, ModelFormatError
@@ -1327,6 +1327,9 @@ class ModelArrays:
     section_bytes: dict[str, int]
     #: the trigram contexts' dropped mass (order 3), whatever its layout
     dropped3: SparseTable | None
+    #: tables a 1.6 file keeps coded until read ("HIST": PrefixSums, "HN13": RowCounts), read by index like
+    #: the arrays they stand for; absent from ``arrays`` then (decoded there with ``verify=True``)
+    views: dict[str, Any]
 
     def close(self) -> None:
         # arrays keep exporting the buffer while alive; let the GC unmap when they go
@@ -1475,6 +1478,7 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
             raise _fail(name, f"section {tag.decode()} has element type {_DTYPES[code]}, expected {want}")
         arrays[tag.decode()] = np.frombuffer(mm, dtype=want, count=length // want.itemsize, offset=off)
     efs = _expand_compact(name, meta, arrays, full=verify) if compact else {}
+    views: dict[str, Any] = {k: efs[k] for k in ("HIST", "HN13") if k in efs}
     trie = marisa_trie.Trie()
     trie.map(raw["TRIE"])
     _check_arrays(name, meta, trie, arrays, raw, full=verify)
@@ -1493,10 +1497,10 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
             succ3 = PlainTrigramLists(name, arrays["TSUC"], arrays["TCTB"], EXACT.decode(name, arrays, CONTEXT_TAGS), succ2, rows_mv)
             dropped3 = PlainSparseTable(arrays["TDRI"], arrays["TDRV"])
     section_bytes = {tag.decode("ascii", "replace"): length for tag, (_, _, length, _) in sections.items()}
-    return ModelArrays(name, (major, minor), meta, trie, arrays, raw, size, mm, succ2, succ3, section_bytes, dropped3)
+    return ModelArrays(name, (major, minor), meta, trie, arrays, raw, size, mm, succ2, succ3, section_bytes, dropped3, views)
 
 
-def _expand_compact(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], *, full: bool) -> dict[str, ChunkedEF]:
+def _expand_compact(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], *, full: bool) -> dict[str, Any]:
     """Check a 1.6 file's Elias-Fano sequences (§7.18) and rebuild its vocabulary-sized arrays.
 
     On every load (O(chunks) and O(vocabulary)): every sequence's headers and stream;
@@ -1518,9 +1522,9 @@ def _expand_compact(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], *
             and 0 <= dropped[0] <= n_hist and (want == 1 or 0 <= dropped[1] <= b)):
         raise _fail(name, f"metadata field 'dropped_contexts' is invalid: {dropped!r}"[:200])
 
-    def seq(tag: str, count: int, *, strict: bool) -> ChunkedEF:
+    def seq(tag: str, count: int, *, strict: bool, chunks: bool = True) -> ChunkedEF:
         head, stream = a.pop(tag + "H"), a.pop(tag + "B")
-        ef_check_headers(name, f"sections {tag}H/{tag}B", head, stream, count, strict=strict)
+        ef_check_headers(name, f"sections {tag}H/{tag}B", head, stream, count, strict=strict, chunks=chunks or full)
         return ChunkedEF(name, f"sections {tag}H/{tag}B", head, stream, count)
 
     def counts(tag: str, count: int, *, positive: bool = False) -> np.ndarray:
@@ -1542,20 +1546,33 @@ def _expand_compact(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], *
             raise _fail(name, f"section {label} is not a valid permutation")
         out = np.zeros(m, dtype=idt)
         out[arr.astype(np.int64)] = np.arange(m)
+        if not np.array_equal(out[arr.astype(np.int64)], np.arange(m)):
+            raise _fail(name, f"section {label} is not a valid permutation")
         a[inv] = out
     a["UNIG"] = counts("UNE", n_pos).astype(np.uint32)
-    efs = {"SEF": seq("SEF", b, strict=True)}
+    efs: dict[str, Any] = {}
+    # the n-gram-sized sequences: their chunks' headers are checked when a query decodes them
+    efs["SEF"] = seq("SEF", b, strict=True, chunks=False)
     if efs["SEF"].end() > n_hist * n_pos:
         raise _fail(name, "sections SEFH/SEFB: a successor past the last row")
     if "HSEH" in a:
-        a["HIST"] = counts("HSE", n_hist).astype(np.uint32)
+        if full:
+            a["HIST"] = counts("HSE", n_hist).astype(np.uint32)
+        else:  # read per query (two reads of a cached chunk): opening stays fast
+            efs["HIST"] = PrefixSums(name, "sections HSEH/HSEB", seq("HSE", n_hist + 1, strict=False))
+            if efs["HIST"].first() != 0:
+                raise _fail(name, "sections HSEH/HSEB do not hold prefix sums from 0")
         n_hdr = dropped[0]
         idx = seq("HDI", n_hdr, strict=True).all()
         if len(idx) and int(idx[-1]) >= n_hist:
             raise _fail(name, f"sections HDIH/HDIB: a history id not below {n_hist}")
         a["HDRI"] = idx.astype(idt)
         a["HDRV"] = counts("HDV", n_hdr, positive=True).astype(np.uint32)
-    if "N1EH" in a:
+    if "N1EH" in a and not full:
+        n1v = PrefixSums(name, "sections N1EH/N1EB", seq("N1E", n_hist + 1, strict=False))
+        n2v = PrefixSums(name, "sections N2EH/N2EB", seq("N2E", n_hist + 1, strict=False))
+        efs["HN13"] = RowCounts(name, n1v, n2v, rows)
+    elif "N1EH" in a:
         n1, n2 = counts("N1E", n_hist), counts("N2E", n_hist)
         n3 = np.diff(rows) - n1 - n2
         if bool(np.any(n3 < 0)):
@@ -1563,13 +1580,13 @@ def _expand_compact(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], *
         a["HN13"] = np.column_stack([n1, n2, n3]).reshape(-1).astype(np.uint32)
     if meta["order"] == 3:
         t = meta["trigrams"]
-        efs["TPT"] = seq("TPT", b + 1, strict=False)
+        efs["TPT"] = seq("TPT", b + 1, strict=False, chunks=False)
         if efs["TPT"].first() != 0 or efs["TPT"].end() != t + 1:
             raise _fail(name, f"sections TPTH/TPTB do not run from 0 to {t}")
-        efs["TEF"] = seq("TEF", t, strict=True)
+        efs["TEF"] = seq("TEF", t, strict=True, chunks=False)
         n_tdr = dropped[1]
-        efs["TDI"] = seq("TDI", n_tdr, strict=True)
-        efs["TDV"] = seq("TDV", n_tdr + 1, strict=True)
+        efs["TDI"] = seq("TDI", n_tdr, strict=True, chunks=False)
+        efs["TDV"] = seq("TDV", n_tdr + 1, strict=True, chunks=False)
         if efs["TDI"].end() > b or efs["TDV"].first() != 0:
             raise _fail(name, "sections TDIH/TDVH do not index bigram entries, or their sums do not start at 0")
     if full:
@@ -1646,6 +1663,8 @@ def _check_model_kind(name: str, meta: dict[str, Any], minor: int, tags: set[byt
             raise _fail(name, f"format 1.{minor} files hold Jelinek-Mercer bigram models only")
         if "codec" in meta:
             raise _fail(name, f"format 1.{minor} files have no 'codec' field (their values are exact)")
+        if "successors" in meta:
+            raise _fail(name, f"metadata field 'successors' belongs to format 1.{COMPACT_MINOR} files exactly")
         meta["estimator"], meta["order"] = "jm", 2
         return
     codec = codec_named(name, meta.get("codec"))
@@ -1731,12 +1750,13 @@ def _check_ngram_arrays(name: str, meta: dict[str, Any], a: dict[str, np.ndarray
     n = meta["n_words"]
     n_pos, n_hist = n + 2, n + 3
     kn = meta["estimator"] == "kn"
-    if len(a["HIST"]) != n_hist:
+    if "HIST" in a and len(a["HIST"]) != n_hist:
         raise _fail(name, f"section HIST holds {len(a['HIST'])} entries, expected {n_hist}")
-    if kn and len(a["HN13"]) != 3 * n_hist:
+    if kn and "HN13" in a and len(a["HN13"]) != 3 * n_hist:
         raise _fail(name, f"section HN13 holds {len(a['HN13'])} entries, expected {3 * n_hist}")
     _sorted_sparse(name, "HDRI/HDRV", a["HDRI"], a["HDRV"], n_hist)
-    if len(a["HDRI"]) and bool(np.any(a["HDRV"] > a["HIST"][a["HDRI"]])):
+    # (a 1.6 file opened without verify reads HIST per query, which compares each dropped mass with its total)
+    if "HIST" in a and len(a["HDRI"]) and bool(np.any(a["HDRV"] > a["HIST"][a["HDRI"]])):
         raise _fail(name, "section HDRV holds dropped mass above its context total")
     codec = codec_named(name, meta["codec"])
     if meta["order"] == 3:
@@ -1891,7 +1911,7 @@ def _check_arrays(
     disi = a["DISI"]
     if len(disi) and (disi[-1] >= n or np.any(disi[1:] <= disi[:-1])):
         raise _fail(name, "section DISI is not an increasing list of word ids")
-    if codec is EXACT:
+    if codec is EXACT and ("HIST" in a or "successors" not in meta):  # (1.6 without verify: the queries compare)
         _check_escaped_counts(name, a, n, b)
     ngram = meta["estimator"] != "jm" or meta["order"] != 2 or codec is not EXACT or "successors" in meta
     if ngram:
