@@ -70,11 +70,12 @@ LAYOUT = {
 # §8 item 6: not checksummed on every load by the Python reader
 BIGRAM_SIZED = ("SUCC", "CNTS", "BIGI", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC")
 CODE_OF = {"raw": 0, "u8": 1, "u16": 2, "u32": 3, "u64": 4}
-# §7.18: a 1.6 file drops the inverse permutations and the plain bigram lists, and holds
-# two chunked Elias-Fano sequences instead (header u32 or u64, stream u8)
-DROPPED_16 = ("IDTK", "APOS", "ROWS", "SUCC")
+# §7.18: a 1.6 file drops the inverse permutations, the plain bigram lists and UNIG, and
+# holds chunked Elias-Fano sequences instead (two sections each: header u32 or u64, stream u8)
+DROPPED_16 = ("IDTK", "APOS", "ROWS", "SUCC", "UNIG")
 LAYOUT_16 = {**{t: k for t, k in LAYOUT.items() if t not in DROPPED_16},
-             "RWEH": "u32|u64", "RWEB": "u8", "SEFH": "u32|u64", "SEFB": "u8"}  # fmt: skip
+             "RWEH": "u32|u64", "RWEB": "u8", "SEFH": "u32|u64", "SEFB": "u8",
+             "UNEH": "u32|u64", "UNEB": "u8"}  # fmt: skip
 SUCCESSORS_16 = {"name": "ef", "version": 1}  # §7.18: META.successors
 EF_CHUNK = 64  # §7.18: values per chunk
 EF_PAD = 8  # §7.18: zero bytes after the stream
@@ -270,6 +271,8 @@ class NwmReader:
         )
         if self.version == (1, 6):
             self._expand_16()
+        elif "successors" in self.meta:  # §7.18: refused in files 1.0–1.5
+            raise FormatError("META successors in a file older than 1.6")
         self._check_arrays()
         self.keys = [self.trie.restore_key(int(m)) for m in self.a["IDTK"]]  # key of each word id
         self.alpha_keys = [self.keys[w] for w in self.a["ALPH"][: self.n]]  # key at each position
@@ -282,13 +285,24 @@ class NwmReader:
         """§7.18: the sequence of sections ``name``H/``name``B."""
         return ef_decode(self.a[name + "H"].tolist(), self.raw(name + "B"), count, strict=strict)
 
+    def prefix_sums(self, name: str, count: int, *, positive: bool = False) -> np.ndarray:
+        """§7.18: ``count`` values stored as their count + 1 prefix sums 0, x₀, x₀+x₁, …
+        (x_i = P_{i+1} − P_i; ``positive``: every x ≥ 1, a strictly increasing sequence);
+        each x must fit the u32 of the section it replaces."""
+        cum = np.array(self.ef(name, count + 1, strict=positive), dtype=np.int64)
+        x = np.diff(cum)
+        if cum[0] != 0 or (count and int(x.max()) > 0xFFFFFFFF):
+            raise FormatError(f"{name} does not hold prefix sums from 0 of 32-bit values")
+        return x
+
     def _expand_16(self) -> None:
-        """§7.18: rebuild ROWS, SUCC, IDTK and APOS of a 1.6 file from its sequences; the
-        checks of §8 then run on them as for any other file."""
+        """§7.18: rebuild ROWS, SUCC, UNIG, IDTK and APOS of a 1.6 file from its sequences;
+        the checks of §8 then run on them as for any other file."""
         a, n, b = self.a, self.n, self.meta["bigrams"]
         if self.meta.get("successors") != SUCCESSORS_16:
             raise FormatError(f"META successors = {self.meta.get('successors')!r}")
         rows = np.array(self.ef("RWE", n + 4, strict=False), dtype=np.int64)
+        a["UNIG"] = self.prefix_sums("UNE", n + 2)
         for tag, inv, m in (("TKID", "IDTK", n), ("ALPH", "APOS", n + 2)):  # permutations first
             perm = a[tag].astype(np.int64)
             if not np.array_equal(np.sort(perm), np.arange(m)):
@@ -1157,25 +1171,74 @@ KIND_SECTIONS = {  # §7.11; (jm, 2) only in a 1.5 or 1.6 file (§7.17, §7.18)
     ("kn", 3): {*BASE_14, "HN13", *TRIGRAM_14},
     ("jm", 3): {*BASE_14, *TRIGRAM_14},
 }
-# §7.18: in a 1.6 file HN12 replaces HN13, and two sequences replace TCTB, TLEN, TLEI, TLEV, TSUC
-PLAIN_TRIGRAM_ONLY = {"TCTB", "TLEN", "TLEI", "TLEV", "TSUC"}
-TRIGRAM_16 = {"TPTH", "TPTB", "TEFH", "TEFB"}
-OPTIONAL_16 = {"HN12": "id", "TPTH": "u32|u64", "TPTB": "u8", "TEFH": "u32|u64", "TEFB": "u8"}
+# §7.18: in a 1.6 file sequences (…H u32|u64, …B u8) replace these sections of the 1.4 layout
+REPLACED_16 = {
+    "HIST": ("HSE",), "HDRI": ("HDI",), "HDRV": ("HDV",), "HN13": ("N1E", "N2E"),
+    "TCTB": ("TPT",), "TLEN": (), "TLEI": (), "TLEV": (), "TSUC": ("TEF",), "TDRI": ("TDI",), "TDRV": ("TDV",),
+}  # fmt: skip
+OPTIONAL_16 = {name + s: k for names in REPLACED_16.values() for name in names for s, k in (("H", "u32|u64"), ("B", "u8"))}
 KIND_SECTIONS_16 = {
-    kind: (tags - {"HN13"} - PLAIN_TRIGRAM_ONLY) | ({"HN12"} if "HN13" in tags else set())
-    | (TRIGRAM_16 if "TSUC" in tags else set())
+    kind: (tags - set(REPLACED_16)) | {name + s for t in tags & set(REPLACED_16) for name in REPLACED_16[t] for s in "HB"}
     for kind, tags in KIND_SECTIONS.items()
 }
 SUMMARY_MIN = 32  # §7.15
+
+
+ONES_BLOCK = 512  # §7.18, the quant codec version 2: n-grams per block of the ones bitmap
+ONES_BLOCK_BYTES = 4 + ONES_BLOCK // 8  # a u32 rank, then 64 bytes of bits
+
+
+def check_codebook(codebook: np.ndarray, q: int, count: int) -> np.ndarray:
+    """§7.17: 1 … 2^q strictly increasing values ≥ 1 (0 entries for an empty level)."""
+    cb = codebook.astype(np.int64)
+    if count and (len(cb) < 1 or len(cb) > 1 << q or cb[0] < 1 or np.any(np.diff(cb) <= 0)):
+        raise FormatError("codebook")
+    return cb
+
+
+def quant2_values(bitmap: bytes, codebook: np.ndarray, code_words: bytes, q: int, count: int) -> np.ndarray:
+    """§7.18 "The quant codec, version 2": the ``count`` values of a level from its ones
+    bitmap (per block of 512 n-grams a u32 rank and 64 bytes of bits; bit set ⇔ value 1)
+    and the q-bit codes of the other values, read one n-gram at a time as the text says."""
+    blocks = -(-count // ONES_BLOCK)
+    if len(bitmap) != ONES_BLOCK_BYTES * blocks:
+        raise FormatError("ones bitmap length")
+    cb = check_codebook(codebook, q, count)
+
+    def bit(blk: int, j: int) -> int:  # bit j of block blk: bit j mod 8 of the block's byte ⌊j/8⌋
+        return (bitmap[ONES_BLOCK_BYTES * blk + 4 + j // 8] >> (j % 8)) & 1
+
+    ranks = [struct.unpack_from("<I", bitmap, ONES_BLOCK_BYTES * blk)[0] for blk in range(blocks)]
+    ones_in = [sum(bit(blk, j) for j in range(ONES_BLOCK)) for blk in range(blocks)]
+    if ranks != list(itertools.accumulate(ones_in, initial=0))[:blocks]:  # the first is 0
+        raise FormatError("ones bitmap ranks")
+    if any(bit(blocks - 1, j) for j in range(count - ONES_BLOCK * (blocks - 1), ONES_BLOCK)) if blocks else False:
+        raise FormatError("ones bitmap bits after the last n-gram")
+    m = count - (ranks[-1] + ones_in[-1] if blocks else 0)  # the values other than 1
+    if len(code_words) != 4 * (-(-m * q // 32)):
+        raise FormatError("code section length")
+    stream = code_words  # the u32 words' bytes in file order: the bit stream of §7.17
+    if any((stream[p // 8] >> (p % 8)) & 1 for p in range(m * q, 8 * len(stream))):
+        raise FormatError("bits after the last code")
+    out = np.zeros(count, dtype=np.int64)
+    for i in range(count):
+        blk, j = divmod(i, ONES_BLOCK)
+        if bit(blk, j):
+            out[i] = 1
+            continue
+        r = i - ranks[blk] - sum(bit(blk, k) for k in range(j))  # code number r of the stream
+        code = sum(((stream[(r * q + k) // 8] >> ((r * q + k) % 8)) & 1) << k for k in range(q))
+        if r >= m or code >= len(cb):
+            raise FormatError("code past the codebook")
+        out[i] = cb[code]
+    return out
 
 
 def quant_values(codes: np.ndarray, codebook: np.ndarray, q: int, count: int) -> np.ndarray:
     """§7.17: ``count`` q-bit codes of a little-endian bit stream, each looked up in the codebook."""
     if len(codes) != (count * q + 7) // 8:
         raise FormatError("code section length")
-    cb = codebook.astype(np.int64)
-    if count and (len(cb) < 1 or len(cb) > 1 << q or cb[0] < 1 or np.any(np.diff(cb) <= 0)):
-        raise FormatError("codebook")
+    cb = check_codebook(codebook, q, count)
     tail = count * q % 8
     if tail and int(codes[-1]) >> tail:
         raise FormatError("unused bits of the last code byte")
@@ -1204,20 +1267,19 @@ class NgramReader(NwmReader):
         exact = codec == {"name": "exact", "version": 1}
         if (self.version == (1, 4) or self.version == (1, 6) and not self.coded) and not exact:  # §7.11, §7.12, §7.18
             raise FormatError("unknown codec")
-        if self.coded:  # §7.17 (1.5, or 1.6 with codec quant: §7.18)
+        self.quant_version = 0
+        if self.coded:  # §7.17 (1.5, or 1.6 with codec quant: §7.18; version 2 in 1.6 files only)
+            versions = (1, 2) if self.version == (1, 6) else (1,)
             if not isinstance(codec, dict) or set(codec) != {"name", "version", "bits"} or codec["name"] != "quant" \
-                    or codec["version"] != 1 or codec["bits"] not in range(2, 9) or isinstance(codec["bits"], bool):
+                    or codec["version"] not in versions or isinstance(codec["version"], bool) \
+                    or codec["bits"] not in range(2, 9) or isinstance(codec["bits"], bool):
                 raise FormatError("unknown codec")
-            self.q = codec["bits"]
-            if len(self.a["BIGC"]):
-                raise FormatError("BIGC not empty")
-            self._counts = quant_values(self.a["CNTS"], self.a["BIGI"], self.q, m["bigrams"])
-        if self.version != (1, 6) and "successors" in m:  # §7.18, §8 item 19
-            raise FormatError("META successors in a 1.4 or 1.5 file")
+            self.q, self.quant_version = codec["bits"], codec["version"]
+            self._counts = self.level_values("CNTS", "BIGI", "BIGC", m["bigrams"])
         self.kind = (m["estimator"], m["order"])
         if self.kind == ("jm", 2) and self.version == (1, 4):
             raise FormatError("a JM bigram is 1.5 or 1.6 only among the n-gram layouts")
-        kind_sections = (KIND_SECTIONS_16 if self.version == (1, 6) else KIND_SECTIONS)[self.kind]
+        kind_sections = (KIND_SECTIONS_16 if self.version == (1, 6) else KIND_SECTIONS)[self.kind]  # §7.18
         if set(self.sections) - set(self.layout) != kind_sections:
             raise FormatError("optional sections do not fit the kind")
         n = self.n
@@ -1233,15 +1295,8 @@ class NgramReader(NwmReader):
         rows = a["ROWS"].astype(np.int64)
         counts = self.full_counts()
         row_of = np.repeat(np.arange(n + 3), np.diff(rows))
-        if "HN12" in a:  # §7.18: N₁, N₂ per row; N₃₊ = row length − N₁ − N₂
-            n12 = a["HN12"].astype(np.int64)
-            if len(n12) != 2 * (n + 3):
-                raise FormatError("HN12 length")
-            n12 = n12.reshape(n + 3, 2)
-            n3 = np.diff(rows) - n12[:, 0] - n12[:, 1]
-            if np.any(n3 < 0):
-                raise FormatError("HN12 counts more entries than a row has")
-            a["HN13"] = np.column_stack([n12, n3]).reshape(-1)
+        if self.version == (1, 6):
+            self._expand_ngram_16(rows)
         # §7.13: HIST = row sums + dropped mass; HDRI/HDRV sparse
         hdri = a["HDRI"].astype(np.int64)
         if len(hdri) != len(a["HDRV"]) or np.any(np.diff(hdri) <= 0) or np.any(hdri >= n + 3) or np.any(a["HDRV"] < 1):
@@ -1261,6 +1316,37 @@ class NgramReader(NwmReader):
             self.d = [list(x) for x in m["discounts"]]
         if self.kind[1] == 3:
             self._read_trigrams()
+
+    def level_values(self, packed: str, codebook: str, rest: str, count: int) -> np.ndarray:
+        """The stored values of a quantised level: §7.17 (version 1), §7.18 (version 2)."""
+        a = self.a
+        assert self.q is not None
+        if self.quant_version == 2:
+            return quant2_values(self.raw(packed), a[codebook], self.raw(rest), self.q, count)
+        if len(a[rest]):
+            raise FormatError(f"{rest} not empty")
+        return quant_values(a[packed], a[codebook], self.q, count)
+
+    def _expand_ngram_16(self, rows: np.ndarray) -> None:
+        """§7.18: HIST, HDRI/HDRV, HN13 (and TDRI/TDRV) of a 1.6 file from its sequences;
+        the checks of §7.11–7.16 then run on them. META dropped_contexts gives D₂ (and D₃)."""
+        a, n, m = self.a, self.n, self.meta
+        d = m.get("dropped_contexts")
+        if not (isinstance(d, list) and len(d) == m["order"] - 1 and all(type(x) is int for x in d)
+                and 0 <= d[0] <= n + 3 and (len(d) == 1 or 0 <= d[1] <= m["bigrams"])):
+            raise FormatError(f"META dropped_contexts = {d!r}")
+        a["HIST"] = self.prefix_sums("HSE", n + 3)
+        a["HDRI"] = np.array(self.ef("HDI", d[0], strict=True), dtype=np.int64)
+        a["HDRV"] = self.prefix_sums("HDV", d[0], positive=True)
+        if "N1EH" in a:  # N₁, N₂ per row; N₃₊ = row length − N₁ − N₂
+            n1, n2 = self.prefix_sums("N1E", n + 3), self.prefix_sums("N2E", n + 3)
+            n3 = np.diff(rows) - n1 - n2
+            if np.any(n3 < 0):
+                raise FormatError("N1E/N2E count more entries than a row has")
+            a["HN13"] = np.column_stack([n1, n2, n3]).reshape(-1)
+        if "TDIH" in a:
+            a["TDRI"] = np.array(self.ef("TDI", d[1], strict=True), dtype=np.int64)
+            a["TDRV"] = self.prefix_sums("TDV", d[1], positive=True)
 
     def _read_trigrams(self) -> None:
         a, n, m = self.a, self.n, self.meta
@@ -1288,10 +1374,10 @@ class NgramReader(NwmReader):
         if len(self.ctx_entry) != c:
             raise FormatError("trigram_contexts")
         self.starts = np.concatenate([all_starts[self.ctx_entry], [t]])
-        if self.q is not None:  # §7.17: codes into the trigram codebook
-            if len(a["TBGC"]) or len(a["TSUC"]) != t:
-                raise FormatError("TBGC not empty, or TSUC")
-            val = quant_values(a["TVAL"], a["TBGI"], self.q, t)
+        if self.q is not None:  # §7.17, §7.18: codes into the trigram codebook
+            if len(a["TSUC"]) != t:
+                raise FormatError("TSUC")
+            val = self.level_values("TVAL", "TBGI", "TBGC", t)
         else:  # §7.12: the exact codec
             val = a["TVAL"].astype(np.int64)
             tbgi = a["TBGI"].astype(np.int64)
@@ -1649,6 +1735,15 @@ def _bits(stream: bytes, start: int, stop: int) -> list[int]:
     return [(stream[p // 8] >> (p % 8)) & 1 for p in range(start, stop)]
 
 
+SEQUENCES_16 = ("UNE", "RWE", "SEF", "HSE", "HDI", "HDV", "N1E", "N2E", "TPT", "TEF", "TDI", "TDV")  # §10.9's file
+REPLACED_14 = {"IDTK", "APOS", "UNIG", "ROWS", "SUCC", "HIST", "HDRI", "HDRV", "HN13",
+               "TCTB", "TLEN", "TLEI", "TLEV", "TSUC", "TDRI", "TDRV"}  # fmt: skip
+
+
+def _ones(stream: bytes, stop: int) -> list[int]:
+    return [q for q, b in enumerate(_bits(stream, 0, stop)) if b]
+
+
 def test_worked_compact_example(tmp_path: Path) -> None:
     # §10.9: retrain §10.7's model with compact=True, compare the quoted header, table,
     # sections, bit strings, decoded sequences and the hand decodes with the file
@@ -1660,55 +1755,84 @@ def test_worked_compact_example(tmp_path: Path) -> None:
     data = path.read_bytes()
     (want_head,) = re.findall(r"^compact-header-hex: ([0-9a-f]{64})$", part, re.M)
     assert data[:32].hex() == want_head, f"regenerate docs/FORMAT.md §10.9 (new header: {data[:32].hex()})"
-    assert len(data) == 6856 and plain.stat().st_size == 7016  # quoted in the text
+    assert len(data) == 7224 and plain.stat().st_size == 7016  # quoted in the text
     r, p = NgramReader(path), NgramReader(plain)
     assert r.version == (1, 6) and p.version == (1, 4)
     assert r.meta["codec"] == {"name": "exact", "version": 1} and r.meta["successors"] == SUCCESSORS_16
     # the section table, row by row
     rows = re.findall(r"^\| `(0x[0-9a-f]+)` \| `(\w{4})` \| (\d) \((\w+)\) \| `(0x[0-9a-f]+)` \((\d+)\) \| (\d+) \| `([0-9a-f]{8})` \| (\d+) \|",
                       part, re.M)  # fmt: skip
-    assert len(rows) == len(r.entries) == 42
+    assert len(rows) == len(r.entries) == 51 and len(p.entries) == 43
     ends = [e.offset + e.length for e in r.entries]
     nxt = [e.offset for e in r.entries[1:]] + [len(data)]
     for i, (row, e) in enumerate(zip(rows, r.entries)):
         at, tag, code, _, off, off_dec, length, crc, pad = row
         assert (int(at, 16), tag, int(code), int(off, 16), int(off_dec), int(length), int(crc, 16), int(pad)) == (
             32 + 32 * i, e.tag, e.code, e.offset, e.offset, e.length, e.crc, nxt[i] - ends[i]), tag
-    new = {"RWEH", "RWEB", "SEFH", "SEFB", "HN12", "TPTH", "TPTB", "TEFH", "TEFB"}
-    gone = {"IDTK", "APOS", "ROWS", "SUCC", "HN13", "TCTB", "TLEN", "TLEI", "TLEV", "TSUC"}
-    assert set(r.sections) == set(p.sections) - gone | new
+    new = {name + s for name in SEQUENCES_16 for s in "HB"}
+    assert set(r.sections) == set(p.sections) - REPLACED_14 | new and len(new) == 24 and len(REPLACED_14) == 16
     for tag in set(r.sections) - new - {"META"}:  # "every other section holds the same bytes"
         assert r.raw(tag) == p.raw(tag), tag
     extra = bytes.fromhex("aa73756363657373 6f7273 82a46e616d65a26566a776657273696f6e01")
-    assert len(r.raw("META")) == len(p.raw("META")) + 29 == 753 and extra in r.raw("META")
-    assert {k: v for k, v in r.meta.items() if k != "successors"} == p.meta
-    # the quoted sections: headers and HN12 as numbers, streams as hex bytes
+    extra2 = b"\xb0dropped_contexts\x92\x00\x00"
+    assert len(extra) == 29 and len(extra2) == 20
+    assert len(r.raw("META")) == len(p.raw("META")) + 49 == 773 and extra in r.raw("META") and extra2 in r.raw("META")
+    assert r.meta["dropped_contexts"] == [0, 0]
+    assert (r.meta["trigram_skyband_min"], p.meta["trigram_skyband_min"]) == (r.meta["skyband_min"], 24) == (64, 24)
+    skip = {"successors", "dropped_contexts", "trigram_skyband_min"}
+    assert {k: v for k, v in r.meta.items() if k not in skip} == {k: v for k, v in p.meta.items() if k not in skip}
+    # the sequence table: N, H, r₀, ⌊r₀/m₀⌋, ℓ₀, the size sum and the stream's bytes
+    counts = dict(zip(SEQUENCES_16, [r.n + 3, r.n + 4, 15, r.n + 4, 0, 1, r.n + 4, r.n + 4, 16, 14, 0, 1]))
+    table = re.findall(r"^\| `(\w{3})` \([^|]*\) \| (\d+) \| ([0-9, ]+) \|([^|]*)\|([^|]*)\|([^|]*)\|([^|]*)\| (\d+) \+ 8 \|$",
+                       part, re.M)  # fmt: skip
+    assert [t[0] for t in table] == list(SEQUENCES_16)
+    for name, count, head_s, r0, quot, low, size, nbytes in table:
+        h = r.a[name + "H"].tolist()
+        assert int(count) == counts[name] and [int(x) for x in head_s.split(",")] == h, name
+        assert len(r.raw(name + "B")) == int(nbytes) + EF_PAD == -(-h[-1] // 8) + EF_PAD, name
+        if counts[name]:
+            rr, m = h[2] - h[0], counts[name]
+            assert (int(r0), int(quot), int(low)) == (rr, rr // m, ef_low_width(rr, m)), name
+            terms = [int(x) for x in re.findall(r"\d+", size)]
+            lw = ef_low_width(rr, m)
+            assert terms == [m * lw, rr >> lw, m, h[3]], name
+        else:
+            assert not (r0 + quot + low + size).strip() and h == [0, 0], name
+    # the quoted sections: headers as numbers, streams as hex bytes
     block = re.search(r"^compact-sections:\n(.*?)^```", part, re.M | re.S)
     assert block
     quoted_lists = dict(re.findall(r"^(\w{4}) = \[([0-9, ]*)\]$", block.group(1), re.M))
     quoted_hex = dict(re.findall(r"^(\w{4}): ([0-9a-f ]+)$", block.group(1), re.M))
-    assert set(quoted_lists) == {"RWEH", "SEFH", "TPTH", "TEFH", "HN12"} and set(quoted_hex) == {"RWEB", "SEFB", "TPTB", "TEFB"}
+    assert set(quoted_lists) == {s + "H" for s in SEQUENCES_16} and set(quoted_hex) == {s + "B" for s in SEQUENCES_16}
     for tag, values in quoted_lists.items():
         assert r.a[tag].tolist() == [int(x) for x in values.split(",")], tag
     for tag, hexes in quoted_hex.items():
         assert r.raw(tag) == bytes.fromhex(hexes), tag
     # the bit strings: low parts in groups of ℓ, then the high region, from bit 0
-    strings = re.findall(r"^(RWE|SEF|TPT|TEF)?\s+(low|high)\s+([01 ]+)$", part, re.M)
+    strings = re.findall(r"^(\w{3})?\s+(low|high)\s+([01 ]+)$", part, re.M)
     shown: dict[str, str] = {}
     name = ""
     for seq, kind, bits in strings:
         name = seq or name
         shown[name] = shown.get(name, "") + bits.replace(" ", "")
-    for name, count, widths in (("RWE", 14, 0), ("SEF", 15, 3), ("TPT", 16, 0), ("TEF", 14, 0)):
+    assert set(shown) == {"UNE", "RWE", "SEF", "HSE", "N1E", "N2E", "TPT", "TEF"}
+    for name in shown:
         h = r.a[name + "H"].tolist()
-        assert ef_low_width(h[2] - h[0], count) == widths
         assert shown[name] == "".join(map(str, _bits(r.raw(name + "B"), 0, h[3]))), name
+    for name in ("HDV", "TDV"):  # "the single high bits 10"
+        assert "".join(map(str, _bits(r.raw(name + "B"), 0, r.a[name + "H"][3]))) == "10"
     # decoded sequences equal §10.7's arrays
     rows_q = [0, 2, 4, 6, 7, 8, 9, 10, 11, 12, 13, 13, 13, 15]
     assert r.ef("RWE", 14, strict=False) == rows_q == p.a["ROWS"].tolist()
     y2 = [0, 2, 18, 22, 33, 34, 41, 56, 61, 75, 94, 100, 115, 150, 153]
     assert r.ef("SEF", 15, strict=True) == y2
     assert r.a["SUCC"].tolist() == [0, 2, 6, 10, 9, 10, 5, 8, 1, 3, 10, 4, 7, 6, 9] == p.a["SUCC"].tolist()
+    une = [0, 2, 4, 5, 6, 7, 8, 9, 10, 11, 12, 15, 15]
+    assert r.ef("UNE", 13, strict=False) == une and une[-1] == r.total
+    assert r.a["UNIG"].tolist() == [2, 2, 1, 1, 1, 1, 1, 1, 1, 1, 3, 0] == p.a["UNIG"].tolist() == np.diff(une).tolist()
+    hse = [0, 3, 5, 7, 8, 9, 10, 11, 12, 13, 14, 14, 14, 17]
+    assert r.ef("HSE", 14, strict=False) == hse
+    assert r.a["HIST"].tolist() == [3, 2, 2, 1, 1, 1, 1, 1, 1, 1, 0, 0, 3] == p.a["HIST"].tolist() == np.diff(hse).tolist()
     starts = [0, 2, 3, 4, 4, 5, 5, 6, 7, 8, 9, 9, 10, 11, 13, 14]
     assert r.ef("TPT", 16, strict=False) == starts and np.diff(starts).tolist() == p.a["TLEN"].tolist()
     remapped = _doc_arrays("compact-remapped")
@@ -1717,25 +1841,63 @@ def test_worked_compact_example(tmp_path: Path) -> None:
     assert [base for _, base, _ in r.remapped] == remapped["BASE"]
     assert [x for _, _, xs in r.remapped for x in xs] == remapped["X"]
     assert r.a["TSUC"].tolist() == remapped["TSUC"] == p.a["TSUC"].tolist()
-    for tag in ("IDTK", "APOS", "HN13"):
+    for tag in ("IDTK", "APOS", "HN13", "HDRI", "HDRV", "TDRI", "TDRV"):
         assert r.a[tag].tolist() == p.a[tag].tolist(), tag
+    assert r.ef("HDI", 0, strict=True) == r.ef("TDI", 0, strict=True) == [] and r.ef("HDV", 1, strict=True) == [0]
     # the hand decodes of the text
     sef = r.raw("SEFB")
     low13 = sum(b << j for j, b in enumerate(_bits(sef, 39, 42)))
     ones = [q for q, b in enumerate(_bits(sef, 45, 79)) if b]
     assert (low13, ones) == (6, [0, 1, 4, 5, 8, 9, 11, 14, 15, 18, 21, 23, 26, 31, 33])
     assert ones[13] - 13 == 18 and 18 * 2**3 + 6 == 150 == y2[13] and 150 - 12 * (r.n + 2) == 6 == r.a["APOS"][0]
-    assert [q for q, b in enumerate(_bits(r.raw("RWEB"), 0, 30)) if b][13] == 28
-    tpt_ones = [q for q, b in enumerate(_bits(r.raw("TPTB"), 0, 31)) if b]
+    assert _ones(r.raw("RWEB"), 30)[13] == 28
+    une_ones = _ones(r.raw("UNEB"), 29)
+    assert une_ones[:2] == [0, 3] and une_ones[10:12] == [22, 26] and (26 - 11) - (22 - 10) == 3 == r.a["UNIG"][10]
+    assert _ones(r.raw("HSEB"), 32)[12:] == [26, 30] and (30 - 13) - (26 - 12) == 3 == r.a["HIST"][12]
+    assert _ones(r.raw("HSEB"), 32)[2:4] == [7, 10] and (10 - 3) - (7 - 2) == 2 == r.a["HIST"][2]
+    n1, n2 = _ones(r.raw("N1EB"), 28), _ones(r.raw("N2EB"), 17)
+    assert n1[:2] == n2[:2] == [0, 2] and n1[12:] == [24, 26] and n2[12:] == [13, 15]
+    assert r.a["HN13"][[0, 1, 2, 6, 7, 8, 36, 37, 38]].tolist() == [1, 1, 0, 2, 0, 0, 1, 1, 0]
+    tpt_ones = _ones(r.raw("TPTB"), 31)
     assert tpt_ones[13:] == [24, 27, 29]
-    tef_ones = [q for q, b in enumerate(_bits(r.raw("TEFB"), 0, 29)) if b]
+    tef_ones = _ones(r.raw("TEFB"), 29)
     assert tef_ones[8:] == [17, 19, 21, 23, 25, 27]
-    assert r.a["HN12"][[0, 1, 24, 25]].tolist() == [1, 1, 1, 1]
     # P(sam | i am), and the library reads the same file
     assert r.prob3((0, 2), 1) == p.prob3((0, 2), 1) == pytest.approx(329 / 918, rel=1e-12)
     model = nextword.load(path)
     assert model.format_version == (1, 6)
     assert [(s.word, round(s.prob, 6)) for s in model.suggest("I am ", 3)] == [("Sam", 0.358388), ("I", 0.049564), ("am", 0.024074)]
+    # the same model with quantize=2: the quant codec version 2 (§7.18), by hand
+    qpath = tmp_path / "q.nwm"
+    nextword.train_texts(msgs, qpath, smoothing="kn", order=3, min_count=1, quantize=2, compact=True)
+    qdata = qpath.read_bytes()
+    (want_q,) = re.findall(r"^compact-quant-header-hex: ([0-9a-f]{64})$", part, re.M)
+    assert qdata[:32].hex() == want_q, f"regenerate docs/FORMAT.md §10.9 (new header: {qdata[:32].hex()})"
+    rq = NgramReader(qpath)
+    assert len(qdata) == 7368 and len(rq.entries) == 51
+    assert rq.meta["codec"] == {"name": "quant", "version": 2, "bits": 2} and rq.quant_version == 2
+    values = {"CNTS", "BIGI", "BIGC", "TVAL", "TBGI", "TBGC"}
+    assert [e.tag for e in rq.entries] == [e.tag for e in r.entries]
+    for tag in set(rq.sections) - values - {"META"}:
+        assert rq.raw(tag) == r.raw(tag), tag
+    qblock = re.search(r"^compact-quant-sections:\n(.*?)^```", part, re.M | re.S)
+    assert qblock
+    for tag, hexes, zeros in re.findall(r"^(\w{4}): ([0-9a-f ]+?) \+ (\d+) × 00$", qblock.group(1), re.M):
+        assert rq.raw(tag) == bytes.fromhex(hexes) + bytes(int(zeros)) and len(rq.raw(tag)) == ONES_BLOCK_BYTES, tag
+    qlists = dict(re.findall(r"^(\w{4}) = \[([0-9, ]*)\]$", qblock.group(1), re.M))
+    assert set(qlists) == {"BIGI", "BIGC", "TBGI", "TBGC"}
+    for tag, vals in qlists.items():
+        assert rq.a[tag].tolist() == [int(x) for x in vals.split(",") if x.strip()], tag
+    bitmap = rq.raw("CNTS")
+    assert struct.unpack_from("<I", bitmap, 0)[0] == 0 and (bitmap[4], bitmap[5]) == (0xFE, 0x5F)
+    set_before_13 = sum(_bits(bitmap[4:], 0, 13))
+    assert _bits(bitmap[4:], 13, 14) == [0] and set_before_13 == 12 and 13 - 0 - set_before_13 == 1
+    code1 = sum(b << j for j, b in enumerate(_bits(rq.raw("BIGC"), 2, 4)))
+    assert code1 == 1 and rq.a["BIGI"][code1] == 2 == rq.full_counts()[13] == r.full_counts()[13]
+    assert np.array_equal(rq.full_counts(), r.full_counts()) and np.array_equal(rq.tval, r.tval)  # without loss
+    assert rq.full_counts().tolist() == [2] + [1] * 12 + [2, 1]
+    assert rq.prob3((0, 2), 1) == pytest.approx(329 / 918, rel=1e-12)
+    assert nextword.load(qpath).suggest("I am ", 3) == model.suggest("I am ", 3)
 
 
 COMPACT_KINDS = [("jm", 2, None), ("kn", 2, 5), ("kn", 3, None), ("kn", 3, 4)]
