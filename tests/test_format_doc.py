@@ -1402,7 +1402,8 @@ class NgramReader(NwmReader):
             if tlnv[i].tolist() != want:
                 raise FormatError("TLNV")
         tdri = a["TDRI"].astype(np.int64)
-        if len(tdri) != len(a["TDRV"]) or np.any(np.diff(tdri) <= 0) or np.any(lens[tdri] == 0) or np.any(a["TDRV"] < 1):
+        if len(tdri) != len(a["TDRV"]) or np.any(np.diff(tdri) <= 0) or np.any(tdri >= b) or np.any(lens[tdri[tdri < b]] == 0) \
+                or np.any(a["TDRV"] < 1):
             raise FormatError("TDRI/TDRV")
         self.dropped3 = np.zeros(b, dtype=np.int64)  # by bigram entry
         self.dropped3[tdri] = a["TDRV"]
@@ -1979,12 +1980,12 @@ def test_the_doc_decoder_reads_the_library_encoder(start: int, gaps: list[int]) 
 
 @pytest.fixture(scope="module")
 def compact_kn3(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
-    """A KN trigram model of the real text as 1.6, and as 1.4 and 1.5 (for the cases that
-    need a plain file): every sequence has several chunks."""
+    """A KN trigram model of the real text as 1.6 (exact, and quant version 2), and as 1.4
+    and 1.5 (for the cases that need a plain file): every long sequence has several chunks."""
     d = tmp_path_factory.mktemp("compact")
     wide = [f"Of the {w}." for w in _syllable_words(70)]
     out = {}
-    for name, extra in (("c", {"compact": True}), ("p14", {}), ("p15", {"quantize": 4})):
+    for name, extra in (("c", {"compact": True}), ("q", {"compact": True, "quantize": 4}), ("p14", {}), ("p15", {"quantize": 4})):
         out[name] = d / f"{name}.nwm"
         nextword.train_texts(REAL + wide, out[name], smoothing="kn", order=3, min_count=1, skyband_min=4, skyband_k=3,
                              **extra)  # type: ignore[arg-type]
@@ -2104,8 +2105,11 @@ def _h(name: str, change: Callable[[list[int]], None]) -> Callable[[Sections, di
 
 
 def _counts(meta: dict) -> dict[str, int]:
+    """N of every sequence (§7.18's table)."""
     n, b = meta["n_words"], meta["bigrams"]
-    return {"RWE": n + 4, "SEF": b, "TPT": b + 1, "TEF": meta["trigrams"]}
+    d2, d3 = meta["dropped_contexts"]
+    return {"RWE": n + 4, "SEF": b, "TPT": b + 1, "TEF": meta["trigrams"], "UNE": n + 3, "HSE": n + 4,
+            "N1E": n + 4, "N2E": n + 4, "HDI": d2, "HDV": d2 + 1, "TDI": d3, "TDV": d3 + 1}
 
 
 def _reseq(name: str, change: Callable[[list[int], dict], None]) -> Callable[[Sections, dict], None]:
@@ -2135,13 +2139,13 @@ def _retype(tag: str, code: int) -> Callable[[Sections, dict], None]:
     return edit
 
 
-def _hn12(secs: Sections, meta: dict, *, drop: bool) -> None:
-    hn = np.frombuffer(secs["HN12"][1], dtype="<u2").copy()
-    if drop:
-        hn = hn[:-1]
-    else:  # N₁ of row 0 = its length + 1 (row 0 is the first word's, ROWS[1] − ROWS[0] long)
-        hn[0] = _seq(secs, "RWE", meta["n_words"] + 4)[1] + 1
-    secs["HN12"][1] = hn.tobytes()
+def _n1_above_row(secs: Sections, meta: dict) -> None:
+    """N₁ of row 0 = its length + 1 (re-coded validly: only N₃₊ = length − N₁ − N₂ < 0 shows it)."""
+    rows = _seq(secs, "RWE", meta["n_words"] + 4)
+    cum = _seq(secs, "N1E", meta["n_words"] + 4)
+    x = np.diff(cum)
+    x[0] = rows[1] - rows[0] + 1
+    _set_seq(secs, "N1E", [0, *itertools.accumulate(x.tolist())])
 
 
 def _id_array(tag: str, i: int, value: Callable[[np.ndarray, dict], int]) -> Callable[[Sections, dict], None]:
@@ -2152,43 +2156,99 @@ def _id_array(tag: str, i: int, value: Callable[[np.ndarray, dict], int]) -> Cal
     return edit
 
 
-# docs/FORMAT.md §8 items 19–25 (format 1.6, checks on every load): one damaged file per
-# check, CRCs fixed; (source file, edit, the library's message)
+def _dropped3(idx: int | None, cum: list[int]) -> Callable[[Sections, dict], None]:
+    """One trigram context with dropped mass: TDI = [idx] (None: b, past the last bigram entry), TDV = cum."""
+    def edit(secs: Sections, meta: dict) -> None:
+        meta["dropped_contexts"] = [meta["dropped_contexts"][0], 1]
+        _set_seq(secs, "TDI", [meta["bigrams"] if idx is None else idx])
+        _set_seq(secs, "TDV", cum)
+    return edit
+
+
+def _bitmap(edit: Callable[[bytearray, dict], None]) -> Callable[[Sections, dict], None]:
+    def run(secs: Sections, meta: dict) -> None:
+        b = bytearray(secs["CNTS"][1])
+        edit(b, meta)
+        secs["CNTS"][1] = bytes(b)
+    return run
+
+
+def _set_bit_after_n(b: bytearray, meta: dict) -> None:
+    j = meta["bigrams"] % ONES_BLOCK  # the first bit past the last n-gram (of the last block)
+    assert j, "the bigram level fills its last block"
+    b[len(b) - ONES_BLOCK_BYTES + 4 + j // 8] |= 1 << (j % 8)
+
+
+def _code_tail(secs: Sections, meta: dict) -> None:
+    """A bit after the last code of BIGC (the words' unused high bits)."""
+    w = np.frombuffer(secs["BIGC"][1], dtype="<u4").copy()
+    q = meta["codec"]["bits"]
+    bitmap = secs["CNTS"][1]
+    blocks = len(bitmap) // ONES_BLOCK_BYTES
+    last = bitmap[(blocks - 1) * ONES_BLOCK_BYTES :]
+    ones = struct.unpack_from("<I", last, 0)[0] + sum(bin(x).count("1") for x in last[4:])
+    tail = (meta["bigrams"] - ones) * q % 32
+    assert tail, "the codes fill their last word"
+    w[-1] |= np.uint32(1 << tail)
+    secs["BIGC"][1] = w.tobytes()
+
+
+# docs/FORMAT.md §8 items 19–26 (format 1.6, checks on every load): one damaged file per
+# check, CRCs fixed; (source file, edit, the library's message). A plain load refuses it.
 LOAD_CASES: dict[str, tuple[str, Callable[[Sections, dict], int | None], str]] = {
     "19 successors missing": ("c", lambda s, m: _pop(m, "successors"), "'successors' belongs to format 1.6"),
     "19 successors version 2": ("c", lambda s, m: m.update(successors={"name": "ef", "version": 2}), "unknown successor layout"),
     "19 successors name": ("c", lambda s, m: m.update(successors={"name": "pef", "version": 1}), "unknown successor layout"),
     "19 successors in 1.4": ("p14", _add_successors, "'successors' belongs to format 1.6"),
     "19 successors in 1.5": ("p15", _add_successors, "'successors' belongs to format 1.6"),
+    "19 dropped_contexts missing": ("c", lambda s, m: _pop(m, "dropped_contexts"), "'dropped_contexts' is invalid"),
+    "19 dropped_contexts of order 2": ("c", lambda s, m: m.update(dropped_contexts=[0]), "'dropped_contexts' is invalid"),
+    "19 D2 above n+3": ("c", lambda s, m: m.update(dropped_contexts=[m["n_words"] + 4, 0]), "'dropped_contexts' is invalid"),
+    "19 D3 above b": ("c", lambda s, m: m.update(dropped_contexts=[0, m["bigrams"] + 1]), "'dropped_contexts' is invalid"),
     "20 a sequence missing": ("c", lambda s, m: _pop(s, "SEFB"), "missing sections SEFB"),
+    "20 N1E missing": ("c", lambda s, m: (_pop(s, "N1EH"), _pop(s, "N1EB")) and None, "missing sections"),
     "20 HN13 in a 1.6 file": ("c", lambda s, m: s.update(HN13=[3, bytes(12 * (m["n_words"] + 3))]), "unexpected sections"),
+    "20 HIST in a 1.6 file": ("c", lambda s, m: s.update(HIST=[3, bytes(4 * (m["n_words"] + 3))]), "unexpected sections"),
     "20 TSUC in a 1.6 file": ("c", lambda s, m: s.update(TSUC=[2, bytes(2 * m["trigrams"])]), "unexpected sections"),
     "20 stream not u8": ("c", _retype("TEFB", 2), "TEFB has element type"),
     "20 header not u32/u64": ("c", _retype("SEFH", 2), "SEFH has element type"),
-    "20 HN12 not the id type": ("c", _retype("HN12", 3), "HN12 has element type"),
+    "20 prefix-sum header not u32/u64": ("c", _retype("HSEH", 2), "HSEH has element type"),
+    "20 quant version 2 in a 1.5 file": ("p15", lambda s, m: m["codec"].update(version=2), "version 2 belongs to format 1.6"),
     "22 RWE header entries": ("c", _h("RWE", lambda h: h.extend(h[-2:])), "RWEH/RWEB has .* header entries"),
     "22 SEF header entries": ("c", _h("SEF", lambda h: h.extend(h[-2:])), "SEFH/SEFB has .* header entries"),
     "22 TPT header entries": ("c", _h("TPT", lambda h: h.extend(h[-2:])), "TPTH/TPTB has .* header entries"),
     "22 TEF header entries": ("c", _h("TEF", lambda h: h.extend(h[-2:])), "TEFH/TEFB has .* header entries"),
+    "22 UNE header entries": ("c", _h("UNE", lambda h: h.extend(h[-2:])), "UNEH/UNEB has .* header entries"),
+    "22 TDV header entries": ("c", _h("TDV", lambda h: h.extend(h[-2:])), "TDVH/TDVB has .* header entries"),
+    "22 HDI of N = 0 ends above 0": ("c", _h("HDI", lambda h: _set(h, 0, 1)), "HDIH/HDIB (is empty but ends|chunk offsets)"),
     "22 O0 not 0": ("c", _h("SEF", lambda h: _set(h, 1, 1)), "chunk offsets do not start at 0"),
-    "22 O decreasing": ("c", _h("SEF", lambda h: _set(h, 3, h[5] + 1)), "chunk offsets do not start at 0 and increase"),
-    "22 F decreasing": ("c", _h("TPT", lambda h: _set(h, 2, h[4] + 1)), "TPTH/TPTB chunk first values are not increasing"),
-    "22 SEF chunk shorter than m": ("c", _h("SEF", lambda h: _set(h, 2, h[0] + 63)), "SEFH/SEFB chunk first values"),
-    "22 TEF chunk shorter than m": ("c", _h("TEF", lambda h: _set(h, 2, h[0] + 63)), "TEFH/TEFB chunk first values"),
-    "22 chunk size": ("c", _h("TEF", lambda h: _set(h, len(h) - 1, h[-1] + 1)), r"TEFH/TEFB chunk \d+ has \d+ bits, its values need"),
     "22 stream length": ("c", lambda s, m: s["SEFB"].__setitem__(1, s["SEFB"][1] + bytes(8)), r"SEFH/SEFB stream has \d+ bytes"),
     "22 bit past the end": ("c", _past_end, "stream has bits set past its end"),
     "22 padding": ("c", lambda s, m: s["RWEB"].__setitem__(1, s["RWEB"][1][:-1] + b"\x80"), "RWEH/RWEB stream padding"),
-    "23 ROWS does not end at b": ("c", _reseq("RWE", lambda v, m: _set(v, -1, m["bigrams"] - 1)), "row starts are not increasing"),
-    "23 ROWS does not start at 0": ("c", _reseq("RWE", lambda v, m: _set(v, 0, 1)), "row starts are not increasing"),
-    "23 ROWS decreasing": ("c", lambda s, m: _swap_lows(s, "RWE", m["n_words"] + 4), "row starts are not increasing"),
-    "23 TPT does not start at 0": ("c", _reseq("TPT", lambda v, m: v.__setitem__(slice(None), [x + 1 for x in v])), "TPTH/TPTB do not run from 0"),
-    "23 TPT does not end at t": ("c", _reseq("TPT", lambda v, m: _set(v, -1, m["trigrams"] - 1)), "TPTH/TPTB do not run from 0"),
-    "23 SEF past the last row": ("c", _reseq("SEF", lambda v, m: _set(v, -1, (m["n_words"] + 3) * (m["n_words"] + 2))), "past the last row"),
-    "24 TKID not a permutation": ("c", _id_array("TKID", 1, lambda a, m: int(a[0])), "TKID"),
-    "24 ALPH not a permutation": ("c", _id_array("ALPH", 0, lambda a, m: m["n_words"] + 2), "ALPH is not a valid permutation"),
-    "25 HN12 length": ("c", lambda s, m: _hn12(s, m, drop=True), r"HN12 holds \d+ entries, expected"),
-    "25 HN12 above a row's length": ("c", lambda s, m: _hn12(s, m, drop=False), "HN12 counts more entries than a row has"),
+    "22 TEF padding": ("c", lambda s, m: s["TEFB"].__setitem__(1, s["TEFB"][1][:-1] + b"\x80"), "TEFH/TEFB stream padding"),
+    "23 RWE O decreasing": ("c", _h("RWE", lambda h: _set(h, 3, h[5] + 1)), "RWEH/RWEB chunk offsets do not start at 0 and increase"),
+    "23 HSE F decreasing": ("c", _h("HSE", lambda h: _set(h, 2, h[4] + 1)), "HSEH/HSEB chunk first values are not increasing"),
+    "23 UNE chunk size": ("c", _h("UNE", lambda h: _set(h, 3, h[3] + 1)), r"UNEH/UNEB chunk 0 has \d+ bits, its values need"),
+    "23 N2E chunk size": ("c", _h("N2E", lambda h: _set(h, len(h) - 1, h[-1] + 1)), r"N2EH/N2EB chunk \d+ has \d+ bits"),
+    "23 HDV last chunk shorter than m": ("c", _h("HDV", lambda h: _set(h, len(h) - 2, h[-4])), "HDVH/HDVB chunk first values"),
+    "24 ROWS does not end at b": ("c", _reseq("RWE", lambda v, m: _set(v, -1, m["bigrams"] - 1)), "row starts are not increasing"),
+    "24 ROWS does not start at 0": ("c", _reseq("RWE", lambda v, m: _set(v, 0, 1)), "row starts are not increasing"),
+    "24 ROWS decreasing": ("c", lambda s, m: _swap_lows(s, "RWE", m["n_words"] + 4), "row starts are not increasing"),
+    "24 UNE not from 0": ("c", _reseq("UNE", lambda v, m: v.__setitem__(slice(None), [x + 1 for x in v])), "UNEH/UNEB do not hold prefix sums from 0"),
+    "24 HSE not from 0": ("c", _reseq("HSE", lambda v, m: v.__setitem__(slice(None), [x + 1 for x in v])), "HSEH/HSEB do not hold prefix sums from 0"),
+    "24 TPT does not start at 0": ("c", _reseq("TPT", lambda v, m: v.__setitem__(slice(None), [x + 1 for x in v])), "TPTH/TPTB do not run from 0"),
+    "24 TPT does not end at t": ("c", _reseq("TPT", lambda v, m: _set(v, -1, m["trigrams"] - 1)), "TPTH/TPTB do not run from 0"),
+    "24 SEF past the last row": ("c", _reseq("SEF", lambda v, m: _set(v, -1, (m["n_words"] + 3) * (m["n_words"] + 2))), "past the last row"),
+    "24 TDI past b": ("c", _dropped3(None, [0, 1]), "TDIH/TDVH do not index bigram entries"),
+    "24 TDV not from 0": ("c", _dropped3(0, [1, 2]), "TDIH/TDVH do not index bigram entries, or their sums do not start at 0"),
+    "25 TKID not a permutation": ("c", _id_array("TKID", 1, lambda a, m: int(a[0])), "TKID"),
+    "25 ALPH not a permutation": ("c", _id_array("ALPH", 0, lambda a, m: m["n_words"] + 2), "ALPH is not a valid permutation"),
+    "26 bitmap length": ("q", lambda s, m: s["CNTS"].__setitem__(1, s["CNTS"][1] + bytes(ONES_BLOCK_BYTES)), r"section CNTS holds \d+ bytes, expected"),
+    "26 first rank": ("q", _bitmap(lambda b, m: b.__setitem__(0, 1)), "ranks that do not start at 0"),
+    "26 bit after the last n-gram": ("q", _bitmap(_set_bit_after_n), "bits set after the last n-gram"),
+    "26 code section length": ("q", lambda s, m: s["BIGC"].__setitem__(1, s["BIGC"][1] + bytes(4)), r"section BIGC holds \d+ words, expected"),
+    "26 bits after the last code": ("q", _code_tail, "BIGC has non-zero bits after the last code"),
+    "26 codebook not increasing": ("q", lambda s, m: s["BIGI"].__setitem__(1, s["BIGI"][1][4:8] + s["BIGI"][1][4:]), "not a strictly increasing codebook"),
 }
 
 
@@ -2210,24 +2270,31 @@ def test_compact_load_checks(compact_kn3: dict[str, Path], tmp_path: Path, case:
 
 
 def test_compact_checksums(compact_kn3: dict[str, Path], tmp_path: Path) -> None:
-    # §8 item 21: RWEH, RWEB, HN12 are checksummed on every load; the n-gram-sized
-    # sequences only with verify=True (a flipped stream bit keeps every header check)
+    # §8 item 21: the vocabulary-sized sequences are checksummed on every load, the
+    # n-gram-sized ones only with verify=True (a flipped stream bit keeps every header check)
     data = compact_kn3["c"].read_bytes()
     r = NgramReader(compact_kn3["c"])
-    for tag in ("RWEH", "RWEB", "HN12", "SEFB", "TPTB", "TEFB"):
+    on_load = ("RWEH", "RWEB", "UNEB", "HSEB", "N1EB", "N2EH", "HDVB", "HDIH")
+    for tag in (*on_load, "SEFB", "TPTB", "TEFB", "TDVB"):
         b = bytearray(data)
         b[r.sections[tag].offset] ^= 0x01  # bit 0 of the first byte (the first low or high bit)
         path = tmp_path / f"{tag}.nwm"
         path.write_bytes(bytes(b))
         with pytest.raises(FormatError, match=f"{tag} CRC"):
             NwmReader(path)
-        if tag in ("RWEH", "RWEB", "HN12"):
+        if tag in on_load:
             with pytest.raises(nextword.ModelFormatError, match=f"section {tag} checksum"):
                 nextword.load(path)
         else:
             nextword.load(path).close()
             with pytest.raises(nextword.ModelFormatError, match=f"section {tag} checksum"):
                 nextword.load(path, verify=True)
+
+
+def _entry_history(r: NgramReader, i: int) -> list[str]:
+    """The two-word history (u, v) of bigram entry i (§7.14: a trigram context is a bigram entry)."""
+    u = int(np.searchsorted(r.a["ROWS"], i, side="right")) - 1
+    return [_history(r, u), _history(r, int(r.a["ALPH"][r.a["SUCC"][i]]))]
 
 
 def _bad_position(secs: Sections, meta: dict, r: NgramReader) -> list[str]:
@@ -2246,11 +2313,10 @@ def _bad_x(secs: Sections, meta: dict, r: NgramReader) -> list[str]:
     """The last trigram successor of the last context gets x = the length of its row."""
     i, base, xs = r.remapped[-1]
     v = int(r.a["ALPH"][r.a["SUCC"][i]])
-    u = int(np.searchsorted(r.a["ROWS"], i, side="right")) - 1
     y = _seq(secs, "TEF", meta["trigrams"])
     y[-1] = base + int(r.a["ROWS"][v + 1] - r.a["ROWS"][v])
     _set_seq(secs, "TEF", y)
-    return [_history(r, u), _history(r, v)]
+    return _entry_history(r, i)
 
 
 def _bad_chunk(secs: Sections, meta: dict, r: NgramReader) -> list[str]:
@@ -2266,22 +2332,59 @@ def _bad_high_bits(secs: Sections, meta: dict, r: NgramReader) -> list[str]:
     return [r.keys[0]]
 
 
-# §7.18 / §8: "a query checks every value it decodes"; (edit, the library's message)
-QUERY_CASES: dict[str, tuple[Callable[[Sections, dict, NgramReader], list[str]], str]] = {
-    "a position past n+1": (_bad_position, "outside the positions"),
-    "an x past its row": (_bad_x, "outside the row of its last word"),
-    "a value above F_c+1": (_bad_chunk, "does not decode to its values"),
-    "m_c - 1 high bits": (_bad_high_bits, "does not decode to its values"),
+def _header(name: str, change: Callable[[list[int]], None], hist: Callable[[NgramReader], list[str]]
+            ) -> Callable[[Sections, dict, NgramReader], list[str]]:
+    """A chunk header of an n-gram-sized sequence changed: §8 item 27 finds it when the chunk is decoded."""
+    def edit(secs: Sections, meta: dict, r: NgramReader) -> list[str]:
+        _h(name, change)(secs, meta)
+        return hist(r)
+    return edit
+
+
+def _first_context(r: NgramReader) -> list[str]:
+    return _entry_history(r, int(r.ctx_entry[0]))
+
+
+def _last_context(r: NgramReader) -> list[str]:
+    return _entry_history(r, int(r.ctx_entry[-1]))
+
+
+def _n3_below_zero(secs: Sections, meta: dict, r: NgramReader) -> list[str]:
+    _n1_above_row(secs, meta)
+    return [r.keys[0]]
+
+
+def _dropped_zero(secs: Sections, meta: dict, r: NgramReader) -> list[str]:
+    """The first trigram context gets a dropped mass of 0 (TDV prefix sums [0, 0]: not strict)."""
+    i = int(r.ctx_entry[0])
+    _dropped3(i, [0, 0])(secs, meta)
+    return _entry_history(r, i)
+
+
+# §7.18 / §8 items 27–28, checks when a chunk is decoded: a plain load opens the file, a
+# query that decodes the damaged chunk refuses it, and so does verify=True; (edit, message)
+DECODE_CASES: dict[str, tuple[Callable[[Sections, dict, NgramReader], list[str]], str]] = {
+    "27 SEF O decreasing": (_header("SEF", lambda h: _set(h, 3, h[5] + 1), lambda r: [r.keys[0]]), "does not decode to its values"),
+    "27 SEF chunk shorter than m": (_header("SEF", lambda h: _set(h, 2, h[0] + 63), lambda r: [r.keys[0]]), "does not decode to its values"),
+    "27 TPT F decreasing": (_header("TPT", lambda h: _set(h, 2, h[4] + 1), _first_context), "does not decode to its values"),
+    "27 TEF chunk shorter than m": (_header("TEF", lambda h: _set(h, 2, h[0] + 63), _first_context), "does not decode to its values"),
+    "27 TEF last chunk size": (_header("TEF", lambda h: _set(h, len(h) - 1, h[-1] + 1), _last_context), "does not decode to its values"),
+    "27 a value above F_c+1": (_bad_chunk, "does not decode to its values"),
+    "27 m_c - 1 high bits": (_bad_high_bits, "does not decode to its values"),
+    "28 a position past n+1": (_bad_position, "outside the positions"),
+    "28 an x past its row": (_bad_x, "outside the row of its last word"),
+    "28 N3+ below 0": (_n3_below_zero, "counts more entries than it has"),
+    "28 a dropped mass of 0": (_dropped_zero, "holds a value below 1"),
 }
 
 
-@pytest.mark.parametrize("case", list(QUERY_CASES))
-def test_compact_query_checks(compact_kn3: dict[str, Path], tmp_path: Path, case: str) -> None:
-    edit, message = QUERY_CASES[case]
+@pytest.mark.parametrize("case", list(DECODE_CASES))
+def test_compact_decode_checks(compact_kn3: dict[str, Path], tmp_path: Path, case: str) -> None:
+    edit, message = DECODE_CASES[case]
     r = NgramReader(compact_kn3["c"])
     hist: list[str] = []
     path = _craft(compact_kn3["c"], tmp_path / "bad.nwm", lambda s, m: hist.extend(edit(s, m, r)))
-    model = nextword.load(path)  # the headers are fine: opening does not decode these values
+    model = nextword.load(path)  # the load checks pass: opening does not decode these values
     with pytest.raises(nextword.ModelFormatError, match=message):
         _ask_all(model, hist, r)
     with pytest.raises(nextword.ModelFormatError):
@@ -2290,11 +2393,46 @@ def test_compact_query_checks(compact_kn3: dict[str, Path], tmp_path: Path, case
         NgramReader(path)
 
 
+def _quant_rank(secs: Sections, meta: dict) -> None:
+    """Block 1's rank one too high (the ones before it): seen only with verify=True."""
+    b = bytearray(secs["CNTS"][1])
+    at = ONES_BLOCK_BYTES  # block 1
+    b[at : at + 4] = struct.pack("<I", struct.unpack_from("<I", b, at)[0] + 1)
+    secs["CNTS"][1] = bytes(b)
+
+
+def _quant_code(secs: Sections, meta: dict) -> None:
+    """The first code of BIGC set to the codebook's length (past it), if the codebook has room."""
+    q, cb = meta["codec"]["bits"], np.frombuffer(secs["BIGI"][1], dtype="<u4")
+    assert len(cb) < 1 << q, "a full codebook"
+    w = np.frombuffer(secs["BIGC"][1], dtype="<u4").copy()
+    w[0] = (int(w[0]) & ~((1 << q) - 1)) | len(cb)
+    secs["BIGC"][1] = w.tobytes()
+
+
+def test_compact_quant_checks(tmp_path: Path) -> None:
+    # §7.18, the quant codec version 2: a middle block's rank and a code are checked with
+    # verify=True; a plain load opens the file (the last block's rank is checked on load,
+    # through M: test_compact_load_checks)
+    src = tmp_path / "q.nwm"
+    wide = [f"Of the {w}." for w in _syllable_words(400)]
+    nextword.train_texts(REAL + wide, src, smoothing="kn", order=3, min_count=1, quantize=4, compact=True)
+    r = NgramReader(src)
+    assert r.quant_version == 2 and len(r.raw("CNTS")) >= 3 * ONES_BLOCK_BYTES  # a middle block
+    for name, edit in (("rank", _quant_rank), ("code", _quant_code)):
+        path = _craft(src, tmp_path / f"{name}.nwm", edit)
+        nextword.load(path).close()
+        with pytest.raises(nextword.ModelFormatError, match="rank that is not the ones before it" if name == "rank" else "code past the codebook"):
+            nextword.load(path, verify=True)
+        with pytest.raises(FormatError):
+            NgramReader(path)
+
+
 def test_compact_headers_may_be_u64(compact_kn3: dict[str, Path], tmp_path: Path) -> None:
     # §7.18: "…H (element type u32 or u64, declared in the section table)": the same file
     # with every header widened to u64 is read by both readers with the same answers
     def widen(secs: Sections, meta: dict) -> None:
-        for name in ("RWE", "SEF", "TPT", "TEF"):
+        for name in _counts(meta):
             secs[name + "H"] = [4, np.array(_head(secs, name), dtype="<u8").tobytes()]
 
     path = _craft(compact_kn3["c"], tmp_path / "wide.nwm", widen)
