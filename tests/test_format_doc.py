@@ -2092,6 +2092,11 @@ def _pop(d: dict, key: str) -> None:
     del d[key]
 
 
+def _pop_all(d: dict, *keys: str) -> None:
+    for key in keys:
+        del d[key]
+
+
 def _add_successors(secs: Sections, meta: dict) -> None:
     meta["successors"] = dict(SUCCESSORS_16)
 
@@ -2206,7 +2211,7 @@ LOAD_CASES: dict[str, tuple[str, Callable[[Sections, dict], int | None], str]] =
     "19 D2 above n+3": ("c", lambda s, m: m.update(dropped_contexts=[m["n_words"] + 4, 0]), "'dropped_contexts' is invalid"),
     "19 D3 above b": ("c", lambda s, m: m.update(dropped_contexts=[0, m["bigrams"] + 1]), "'dropped_contexts' is invalid"),
     "20 a sequence missing": ("c", lambda s, m: _pop(s, "SEFB"), "missing sections SEFB"),
-    "20 N1E missing": ("c", lambda s, m: (_pop(s, "N1EH"), _pop(s, "N1EB")) and None, "missing sections"),
+    "20 N1E missing": ("c", lambda s, m: _pop_all(s, "N1EH", "N1EB"), "missing sections"),
     "20 HN13 in a 1.6 file": ("c", lambda s, m: s.update(HN13=[3, bytes(12 * (m["n_words"] + 3))]), "unexpected sections"),
     "20 HIST in a 1.6 file": ("c", lambda s, m: s.update(HIST=[3, bytes(4 * (m["n_words"] + 3))]), "unexpected sections"),
     "20 TSUC in a 1.6 file": ("c", lambda s, m: s.update(TSUC=[2, bytes(2 * m["trigrams"])]), "unexpected sections"),
