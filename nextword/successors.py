@@ -113,8 +113,8 @@ class EFBigramLists(BigramLists):
 
     def __init__(self, where: str, ef: ChunkedEF, rows: np.ndarray, n_pos: int) -> None:
         self._where, self._ef, self._u = where, ef, n_pos
-        self._rows = np.asarray(rows, dtype=np.int64)
-        self._rows_l: list[int] = self._rows.tolist()
+        self._rows = np.ascontiguousarray(rows, dtype=np.int64)
+        self._rows_l = memoryview(self._rows).cast("B").cast("q")  # type: ignore[arg-type]  # scalar reads
         self._cache: OrderedDict[int, tuple[int, np.ndarray, memoryview]] = OrderedDict()
         self._cached = 0
 
@@ -384,7 +384,8 @@ class RowCounts:
 
     def __init__(self, where: str, n1: PrefixSums, n2: PrefixSums, rows: np.ndarray) -> None:
         self._where, self._n1, self._n2 = where, n1, n2
-        self._rows: list[int] = np.asarray(rows, dtype=np.int64).tolist()
+        self._rows_a = np.ascontiguousarray(rows, dtype=np.int64)
+        self._rows = memoryview(self._rows_a).cast("B").cast("q")  # type: ignore[arg-type]  # scalar reads
 
     def __len__(self) -> int:
         return 3 * len(self._n1)
@@ -402,7 +403,7 @@ class RowCounts:
 
     def all(self) -> np.ndarray:
         n1, n2 = self._n1.all(), self._n2.all()
-        n3 = np.diff(np.asarray(self._rows, dtype=np.int64)) - n1 - n2
+        n3 = np.diff(self._rows_a) - n1 - n2
         if bool((n3 < 0).any()):
             raise ModelFormatError(f"{self._where}: damaged model data: a row counts more entries than it has")
         return np.column_stack([n1, n2, n3]).reshape(-1)
