@@ -2379,7 +2379,7 @@ DECODE_CASES: dict[str, tuple[Callable[[Sections, dict, NgramReader], list[str]]
     "28 a position past n+1": (_bad_position, "outside the positions"),
     "28 an x past its row": (_bad_x, "outside the row of its last word"),
     "28 N3+ below 0": (_n3_below_zero, "counts more entries than it has"),
-    "28 a dropped mass of 0": (_dropped_zero, "holds a value below 1"),
+    "28 a dropped mass of 0": (_dropped_zero, "holds a value below 1|does not decode to its values"),
 }
 
 
