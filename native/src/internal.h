@@ -26,6 +26,7 @@ int nw_trie_restore(const void *trie, void *cursor, size_t key_id, const char **
 #ifndef __cplusplus
 #include <string.h>
 
+#include "ef.h"
 #include "nextword.h"
 
 /* One typed array inside the mapped file: n elements of w bytes (1, 2, 4), little-endian. */
@@ -96,6 +97,12 @@ struct nw_model {
     nw_arr TKID, IDTK, ALPH, APOS, KEY4, TOPK, UNIG, ROWS, SUCC, SEGS, SEGE, SKYP, SKYI, SKYC, DISI, DISO;
     nw_arr HIST, HN13, HDRI, HDRV, TCTB, TSUC, TLNI, TLNV, TDRI, TDRV, TSGS, TSGE, TSKP, TSKI, TSKC;
     nw_level_values v2, v3, tlen;
+    /* format 1.6 (§7.18): the lists as chunked Elias-Fano sequences; ROWS, IDTK and APOS are
+     * then arrays made on open in `lists` (one allocation), HN13 is read from HN12 */
+    int ef;
+    nw_ef rwe, sef, tpt, tef; /* ROWS; v·(n+2) + SUCC; trigram starts; remapped trigram successors */
+    nw_arr HN12;
+    uint8_t *lists;
     const uint8_t *disb;
     uint64_t disb_len;
     int has_hist;

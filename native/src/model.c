@@ -15,6 +15,7 @@
 #include <sys/stat.h>
 #include <unistd.h>
 
+#include "ef.h"
 #include "internal.h"
 #include "meta.h"
 #include "query.h"
@@ -102,7 +103,7 @@ typedef struct sec {
     int present;
 } sec;
 
-enum kind { K_RAW, K_ID, K_U1, K_U4, K_U24 };
+enum kind { K_RAW, K_ID, K_U1, K_U4, K_U24, K_U48 };
 typedef struct spec {
     const char *tag;
     enum kind kind;
@@ -124,11 +125,26 @@ static const spec SPECS[] = {
     {"TLNI", K_U4, 0, 1},  {"TLNV", K_U4, 0, 1},  {"TDRI", K_U4, 0, 1}, {"TDRV", K_U4, 0, 1},
     {"TSGS", K_U4, 0, 0},  {"TSGE", K_U4, 0, 0},  {"TSKP", K_U4, 0, 0}, {"TSKI", K_U24, 0, 0},
     {"TSKC", K_U24, 0, 0},
+    /* format 1.6 (§7.18): chunked Elias-Fano sequences (header u32 or u64, stream u8) and HN12;
+     * read only in a 1.6 file (an older file ignores them as unknown tags) */
+    {"RWEH", K_U48, 0, 1}, {"RWEB", K_U1, 0, 1},  {"SEFH", K_U48, 0, 1}, {"SEFB", K_U1, 0, 0},
+    {"TPTH", K_U48, 0, 1}, {"TPTB", K_U1, 0, 0},  {"TEFH", K_U48, 0, 1}, {"TEFB", K_U1, 0, 0},
+    {"HN12", K_ID, 0, 1},
 };
 #define N_SPECS ((int)(sizeof SPECS / sizeof SPECS[0]))
 #define N_REQUIRED 22
 static const char *const TRIGRAM_TAGS[] = {"TCTB", "TLEN", "TLEI", "TLEV", "TSUC", "TVAL", "TBGI", "TBGC", "TLNI",
                                            "TLNV", "TDRI", "TDRV", "TSGS", "TSGE", "TSKP", "TSKI", "TSKC"};
+
+/* the sections a 1.6 file replaces (§7.18), and those that replace them */
+static const char *const REMOVED_16[] = {"IDTK", "APOS", "ROWS", "SUCC", "HN13", "TCTB", "TLEN", "TLEI", "TLEV", "TSUC"};
+static const char *const ADDED_16[] = {"RWEH", "RWEB", "SEFH", "SEFB", "TPTH", "TPTB", "TEFH", "TEFB", "HN12"};
+static int tag_in(const char *tag, const char *const *list, size_t n) {
+    for (size_t j = 0; j < n; j++)
+        if (!strcmp(tag, list[j])) return 1;
+    return 0;
+}
+#define IN(tag, list) tag_in(tag, list, sizeof list / sizeof list[0])
 
 static int spec_index(const char *tag) {
     for (int i = 0; i < N_SPECS; i++)
@@ -208,15 +224,18 @@ static const nw_codec nw_codec_quant = {"quant", 1, quant_check, quant_value};
 static const nw_codec *const CODECS[] = {&nw_codec_exact, &nw_codec_quant};
 #define EXACT_MINOR 4
 #define QUANT_MINOR 5
+#define EF_MINOR 6 /* compressed successor lists (§7.18), with either codec */
 
 /* -- META (§7.1, §7.11) ----------------------------------------------------------------- */
 
 enum { F_N_WORDS, F_LAMBDA, F_TOTAL, F_BIGRAMS, F_SKY_K, F_SKY_MIN, F_FANOUT, F_MAX_KEY, F_STATS, F_BUCKETS,
-       F_ESTIMATOR, F_ORDER, F_CODEC, F_DISCOUNTS, F_NOTES, F_LAMBDA3, F_TRIGRAMS, F_TCTX, F_TSUMMIN, F_TSKYMIN, F_TEXT_RULES, F_COUNT };
+       F_ESTIMATOR, F_ORDER, F_CODEC, F_DISCOUNTS, F_NOTES, F_LAMBDA3, F_TRIGRAMS, F_TCTX, F_TSUMMIN, F_TSKYMIN, F_TEXT_RULES,
+       F_SUCCESSORS, F_COUNT };
 static const char *const FIELDS[F_COUNT] = {"n_words", "lambda", "total", "bigrams", "skyband_k", "skyband_min",
                                             "topk_fanout", "max_key_chars", "stats", "lambda_buckets", "estimator",
                                             "order", "codec", "discounts", "discount_notes", "lambda3", "trigrams",
-                                            "trigram_contexts", "trigram_summary_min", "trigram_skyband_min", "text_rules"};
+                                            "trigram_contexts", "trigram_summary_min", "trigram_skyband_min", "text_rules",
+                                            "successors"};
 
 typedef struct meta_view {
     const uint8_t *p;
@@ -336,9 +355,42 @@ static nw_status read_meta(nw_model *m, const uint8_t *p, size_t n, uint64_t siz
     return NW_OK;
 }
 
+/* META successors (§7.18): {"name": "ef", "version": 1} in a 1.6 file, absent elsewhere */
+static nw_status read_successors(nw_model *m, const meta_view *mv, nw_error *err) {
+    nw_mpv v;
+    m->ef = m->minor == EF_MINOR;
+    if (!m->ef) {
+        if (mv->at[F_SUCCESSORS] != (size_t)-1)
+            return nw_fail(err, NW_E_FORMAT, "format 1.%u files have no 'successors' field (their lists are plain arrays)", m->minor);
+        return NW_OK;
+    }
+    if (field(mv, F_SUCCESSORS, &v) != 1 || v.t != MP_MAP)
+        return nw_fail(err, NW_E_FORMAT, "metadata field 'successors' is invalid");
+    nw_mp q = {mv->p, mv->n, mv->at[F_SUCCESSORS]};
+    nw_mpv tmp, name = {0}, ver = {0};
+    int have_name = 0, have_ver = 0;
+    nw_mp_read(&q, &tmp);
+    for (uint64_t j = 0; j < v.u; j++) {
+        nw_mpv key, val;
+        if (nw_mp_read(&q, &key)) return nw_fail(err, NW_E_FORMAT, "metadata field 'successors' is invalid");
+        nw_mp r = {mv->p, mv->n, q.i};
+        if (nw_mp_read(&r, &val) || nw_mp_skip(&q, 1)) return nw_fail(err, NW_E_FORMAT, "metadata field 'successors' is invalid");
+        if (nw_mp_str_eq(&key, "name")) { name = val; have_name = 1; }
+        else if (nw_mp_str_eq(&key, "version")) { ver = val; have_ver = 1; }
+    }
+    if (!have_name || name.t != MP_STR || !have_ver || ver.t != MP_POS)
+        return nw_fail(err, NW_E_FORMAT, "metadata field 'successors' is invalid");
+    if (!nw_mp_str_eq(&name, "ef") || ver.u != 1)
+        return nw_fail(err, NW_E_UNSUPPORTED, "unknown successor list coding '%.*s' version %llu (this library reads 'ef' version 1)",
+                       (int)(name.len > 40 ? 40 : name.len), (const char *)name.s, (unsigned long long)ver.u);
+    return NW_OK;
+}
+
 /* format 1.4 fields and the optional sections each kind has (store._check_model_kind) */
 static nw_status read_kind(nw_model *m, const meta_view *mv, nw_error *err) {
     nw_mpv v;
+    nw_status st0 = read_successors(m, mv, err);
+    if (st0) return st0;
     if (m->minor < 3) {
         int bad = 0;
         if (field(mv, F_ESTIMATOR, &v) == 1 && !nw_mp_str_eq(&v, "jm")) bad = 1;
@@ -391,8 +443,8 @@ static nw_status read_kind(nw_model *m, const meta_view *mv, nw_error *err) {
                                (unsigned long long)bits.u);
             m->quant_bits = (int)bits.u;
         }
-        /* a 1.4 file names 'exact', a 1.5 file 'quant' (store._check_model_kind) */
-        if ((m->codec == &nw_codec_quant) != (m->minor == QUANT_MINOR))
+        /* a 1.4 file names 'exact', a 1.5 file 'quant', a 1.6 file either (store._check_model_kind) */
+        if (m->minor != EF_MINOR && (m->codec == &nw_codec_quant) != (m->minor == QUANT_MINOR))
             return nw_fail(err, NW_E_VERSION, "format 1.%u files do not use codec '%s' (1.%d: exact values, 1.%d: quantised)",
                            m->minor, m->codec->name, EXACT_MINOR, QUANT_MINOR);
     }
@@ -402,9 +454,9 @@ static nw_status read_kind(nw_model *m, const meta_view *mv, nw_error *err) {
     if (field(mv, F_ORDER, &v) != 1 || v.t != MP_POS || (v.u != 2 && v.u != 3))
         return nw_fail(err, NW_E_FORMAT, "metadata field 'order' is invalid");
     m->order = (int)v.u;
-    if (!m->kn && m->order == 2 && m->minor != QUANT_MINOR)
-        return nw_fail(err, NW_E_FORMAT, "a Jelinek-Mercer bigram model is a format 1.0-1.2 or 1.%d file, not 1.%u", QUANT_MINOR,
-                       m->minor);
+    if (!m->kn && m->order == 2 && m->minor != QUANT_MINOR && m->minor != EF_MINOR)
+        return nw_fail(err, NW_E_FORMAT, "a Jelinek-Mercer bigram model is a format 1.0-1.2, 1.%d or 1.%d file, not 1.%u",
+                       QUANT_MINOR, EF_MINOR, m->minor);
     if (m->kn) {
         int ok = field(mv, F_DISCOUNTS, &v) == 1 && v.t == MP_ARR && v.u == (uint64_t)m->order;
         nw_mp q = {mv->p, mv->n, mv->at[F_DISCOUNTS]};
@@ -479,14 +531,102 @@ static nw_status check_perm(const nw_arr *arr, const nw_arr *inv, uint64_t mlen,
     return NW_OK;
 }
 
-static nw_status check_arrays(nw_model *m, nw_error *err) {
+/* one chunked Elias-Fano sequence as the section table gives it (opened by open_lists) */
+typedef struct ef_raw {
+    const uint8_t *head, *stream;
+    uint64_t head_n, stream_len;
+    int hw;
+} ef_raw;
+
+static void put32(uint8_t *p, uint64_t x) {
+    p[0] = (uint8_t)x;
+    p[1] = (uint8_t)(x >> 8);
+    p[2] = (uint8_t)(x >> 16);
+    p[3] = (uint8_t)(x >> 24);
+}
+
+/* inverse of permutation `a` of 0 .. len-1 into `inv` (u32 entries), refusing a non-permutation */
+static nw_status invert(const nw_arr *a, uint64_t len, uint8_t *inv, const char *label, nw_error *err) {
+    memset(inv, 0xFF, 4 * len);
+    for (uint64_t i = 0; i < len; i++) {
+        uint32_t x = nw_at(a, i);
+        const uint8_t *q = inv + 4 * (uint64_t)x;
+        if (x >= len || (q[0] & q[1] & q[2] & q[3]) != 0xFF)
+            return nw_fail(err, NW_E_FORMAT, "section %s is not a valid permutation", label);
+        put32(inv + 4 * (uint64_t)x, i);
+    }
+    return NW_OK;
+}
+
+/* Format 1.6 (§7.18 "Checks on load"): every sequence's headers and stream, ROWS decoded
+ * (n+4 values), TKID and ALPH checked to be permutations and inverted into IDTK and APOS.
+ * The arrays are u32 in `lists`, so every other check and query reads them as in 1.4. */
+static nw_status open_lists(nw_model *m, const ef_raw *raw, nw_error *err) {
+    uint64_t n = m->n, npos = n + 2, nhist = n + 3, b = m->b;
+    if (m->TKID.n != n || m->ALPH.n != npos)
+        return nw_fail(err, NW_E_FORMAT, "section %s holds %llu entries, expected %llu", m->TKID.n != n ? "TKID" : "ALPH",
+                       (unsigned long long)(m->TKID.n != n ? m->TKID.n : m->ALPH.n),
+                       (unsigned long long)(m->TKID.n != n ? n : npos));
+    nw_status st;
+    const ef_raw *r = raw;
+    if ((st = nw_ef_open(&m->rwe, "RWEH/RWEB", r[0].head, r[0].head_n, r[0].hw, r[0].stream, r[0].stream_len, nhist + 1, 0, err)))
+        return st;
+    if ((st = nw_ef_open(&m->sef, "SEFH/SEFB", r[1].head, r[1].head_n, r[1].hw, r[1].stream, r[1].stream_len, b, 1, err)))
+        return st;
+    if (nw_ef_first(&m->sef, m->sef.chunks) > nhist * npos)
+        return nw_fail(err, NW_E_FORMAT, "SEFH/SEFB ends at %llu, past the last row's positions",
+                       (unsigned long long)nw_ef_first(&m->sef, m->sef.chunks));
+    if (m->order == 3) {
+        uint64_t t = m->t;
+        if ((st = nw_ef_open(&m->tpt, "TPTH/TPTB", r[2].head, r[2].head_n, r[2].hw, r[2].stream, r[2].stream_len, b + 1, 0, err)))
+            return st;
+        if (nw_ef_first(&m->tpt, 0) != 0 || nw_ef_first(&m->tpt, m->tpt.chunks) != t + 1)
+            return nw_fail(err, NW_E_FORMAT, "TPTH/TPTB does not run from 0 to %llu", (unsigned long long)t);
+        if ((st = nw_ef_open(&m->tef, "TEFH/TEFB", r[3].head, r[3].head_n, r[3].hw, r[3].stream, r[3].stream_len, t, 1, err)))
+            return st;
+    }
+    /* one allocation: ROWS (n+4), IDTK (n), APOS (n+2), u32 each */
+    m->lists = (uint8_t *)malloc(4 * ((nhist + 1) + n + npos));
+    if (!m->lists) return nw_fail(err, NW_E_NOMEM, "out of memory");
+    uint8_t *rows = m->lists, *idtk = rows + 4 * (nhist + 1), *apos = idtk + 4 * n;
+    uint64_t vals[NW_EF_CHUNK];
+    for (uint64_t c = 0; c < m->rwe.chunks; c++) {
+        int cnt;
+        if (nw_ef_chunk(&m->rwe, c, vals, &cnt))
+            return nw_fail(err, NW_E_FORMAT, "RWEH/RWEB chunk %llu does not decode to its values", (unsigned long long)c);
+        for (int k = 0; k < cnt; k++) {
+            if (vals[k] > b) return nw_fail(err, NW_E_FORMAT, "section ROWS offsets are not increasing from 0 to %llu", (unsigned long long)b);
+            put32(rows + 4 * (c * NW_EF_CHUNK + (uint64_t)k), vals[k]);
+        }
+    }
+    m->ROWS = (nw_arr){rows, nhist + 1, 4};
+    if ((st = invert(&m->TKID, n, idtk, "TKID", err))) return st;
+    m->IDTK = (nw_arr){idtk, n, 4};
+    if ((st = invert(&m->ALPH, npos, apos, "ALPH", err))) return st;
+    m->APOS = (nw_arr){apos, npos, 4};
+    if (m->kn) {
+        if (m->HN12.n != 2 * nhist)
+            return nw_fail(err, NW_E_FORMAT, "section HN12 holds %llu entries, expected %llu", (unsigned long long)m->HN12.n,
+                           (unsigned long long)(2 * nhist));
+        for (uint64_t v = 0; v < nhist; v++) { /* ROWS is checked non-decreasing by check_arrays, before any query */
+            uint64_t len = (uint64_t)nw_at(&m->ROWS, v + 1) - nw_at(&m->ROWS, v);
+            if ((uint64_t)nw_at(&m->HN12, 2 * v) + nw_at(&m->HN12, 2 * v + 1) > len)
+                return nw_fail(err, NW_E_FORMAT, "section HN12: N1 + N2 of row %llu above its length", (unsigned long long)v);
+        }
+    }
+    return NW_OK;
+}
+
+static nw_status check_arrays(nw_model *m, const ef_raw *raw, nw_error *err) {
     uint64_t n = m->n, npos = n + 2, nhist = n + 3, b = m->b;
     uint64_t topk = 0;
     for (int l = 0; l < m->n_levels; l++) topk += m->level_nb[l];
+    nw_status st;
+    if (m->ef && (st = open_lists(m, raw, err))) return st;
     struct { const char *label; const nw_arr *a; uint64_t want; } exp[] = {
         {"TKID", &m->TKID, n}, {"IDTK", &m->IDTK, n}, {"ALPH", &m->ALPH, npos}, {"APOS", &m->APOS, npos},
         {"KEY4", &m->KEY4, n}, {"TOPK", &m->TOPK, topk * TOPK_FANOUT}, {"UNIG", &m->UNIG, npos},
-        {"ROWS", &m->ROWS, nhist + 1}, {"SUCC", &m->SUCC, b},
+        {"ROWS", &m->ROWS, nhist + 1}, {"SUCC", &m->SUCC, m->ef ? 0 : b}, /* 1.6: read through m->sef */
         {"SEGE", &m->SEGE, m->SEGS.n}, {"SKYP", &m->SKYP, m->SEGS.n + 1}, {"SKYC", &m->SKYC, m->SEGS.n * m->sky_k},
         {"HIST", &m->HIST, m->has_hist ? nhist : m->HIST.n}, {"DISO", &m->DISO, m->DISI.n + 1},
     };
@@ -496,7 +636,6 @@ static nw_status check_arrays(nw_model *m, nw_error *err) {
                            (unsigned long long)exp[i].a->n, (unsigned long long)exp[i].want);
     /* the bigram level's values through the file's codec (codec.check) */
     if (m->codec->check(m, &m->v2, b, err)) return err ? err->code : NW_E_FORMAT;
-    nw_status st;
     if ((st = check_perm(&m->TKID, &m->IDTK, n, "TKID", err))) return st;
     if ((st = check_perm(&m->ALPH, &m->APOS, npos, "ALPH", err))) return st;
     if (nw_at(&m->ALPH, n) != n || nw_at(&m->ALPH, n + 1) != n + 1)
@@ -539,7 +678,7 @@ static nw_status check_arrays(nw_model *m, nw_error *err) {
     }
     if (m->minor < 3) return NW_OK;
     /* store._check_ngram_arrays (the always-on part) */
-    if (m->kn && m->HN13.n != 3 * nhist)
+    if (m->kn && !m->ef && m->HN13.n != 3 * nhist)
         return nw_fail(err, NW_E_FORMAT, "section HN13 holds %llu entries, expected %llu", (unsigned long long)m->HN13.n,
                        (unsigned long long)(3 * nhist));
     if (!sparse_ok(&m->HDRI, &m->HDRV, nhist, 0))
@@ -551,10 +690,11 @@ static nw_status check_arrays(nw_model *m, nw_error *err) {
     if (m->order == 3) {
         uint64_t t = m->t;
         if (m->codec->check(m, &m->v3, t, err)) return err ? err->code : NW_E_FORMAT;
-        if (nw_codec_exact.check(m, &m->tlen, b, err)) return err ? err->code : NW_E_FORMAT;
+        if (!m->ef && nw_codec_exact.check(m, &m->tlen, b, err)) return err ? err->code : NW_E_FORMAT;
         uint64_t nseg = m->TSGS.n;
         struct { const char *label; const nw_arr *a; uint64_t want; } e3[] = {
-            {"TCTB", &m->TCTB, b / CTX_BLOCK + 1}, {"TSUC", &m->TSUC, t}, {"TLNV", &m->TLNV, 4 * m->TLNI.n},
+            {"TCTB", &m->TCTB, m->ef ? 0 : b / CTX_BLOCK + 1}, {"TSUC", &m->TSUC, m->ef ? 0 : t}, /* 1.6: m->tpt, m->tef */
+            {"TLNV", &m->TLNV, 4 * m->TLNI.n},
             {"TDRV", &m->TDRV, m->TDRI.n}, {"TSGE", &m->TSGE, nseg}, {"TSKP", &m->TSKP, nseg + 1},
             {"TSKC", &m->TSKC, nseg * m->sky_k},
         };
@@ -563,10 +703,10 @@ static nw_status check_arrays(nw_model *m, nw_error *err) {
                 return nw_fail(err, NW_E_FORMAT, "section %s holds %llu entries, expected %llu", e3[i].label,
                                (unsigned long long)e3[i].a->n, (unsigned long long)e3[i].want);
         const nw_arr *tctb = &m->TCTB;
-        int ok = nw_at(tctb, 0) == 0;
+        int ok = m->ef || nw_at(tctb, 0) == 0;
         for (uint64_t j = 1; ok && j < tctb->n; j++) ok = nw_at(tctb, j) >= nw_at(tctb, j - 1);
-        uint64_t end = ok ? nw_at(tctb, tctb->n - 1) : 0;
-        for (uint64_t i = (b / CTX_BLOCK) * CTX_BLOCK; ok && i < b; i++) {
+        uint64_t end = m->ef ? t : ok ? nw_at(tctb, tctb->n - 1) : 0;
+        for (uint64_t i = (b / CTX_BLOCK) * CTX_BLOCK; ok && !m->ef && i < b; i++) {
             uint64_t len;
             if (nw_codec_exact.value(&m->tlen, i, &len)) return nw_fail(err, NW_E_FORMAT, "damaged model: escaped value without an entry");
             end += len;
@@ -623,8 +763,8 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
     if (nw_crc32(buf, 28) != (uint32_t)le(buf + 28, 4)) return nw_fail(err, NW_E_FORMAT, "header checksum mismatch (damaged file)");
     m->major = (uint16_t)le(buf + 8, 2);
     m->minor = (uint16_t)le(buf + 10, 2);
-    if (m->major != 1 || m->minor > QUANT_MINOR)
-        return nw_fail(err, NW_E_VERSION, "unsupported format version %u.%u (this library reads 1.0 to 1.2, 1.4 and 1.5)",
+    if (m->major != 1 || m->minor > EF_MINOR)
+        return nw_fail(err, NW_E_VERSION, "unsupported format version %u.%u (this library reads 1.0 to 1.2 and 1.4 to 1.6)",
                        m->major, m->minor);
     if (m->minor == 3)
         return nw_fail(err, NW_E_VERSION,
@@ -675,6 +815,12 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
     if ((8 - prev_end % 8) % 8 != size - prev_end) return nw_fail(err, NW_E_FORMAT, "unexpected bytes after the last section");
     for (uint64_t q = prev_end; q < size; q++)
         if (buf[q]) return nw_fail(err, NW_E_FORMAT, "unexpected bytes after the last section");
+    /* the 1.6 tags are unknown (ignored) in an older file; the replaced ones may not be in a 1.6 file */
+    for (int i = 0; i < N_SPECS; i++) {
+        if (m->minor != EF_MINOR && IN(SPECS[i].tag, ADDED_16)) secs[i].present = 0;
+        if (m->minor == EF_MINOR && IN(SPECS[i].tag, REMOVED_16) && secs[i].present)
+            return nw_fail(err, NW_E_FORMAT, "format 1.6 files have no section %s (its lists are Elias-Fano coded)", SPECS[i].tag);
+    }
     int hist = spec_index("HIST");
     if (m->minor < 3) {
         if (secs[hist].present != (m->minor == 2))
@@ -684,7 +830,8 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
                 return nw_fail(err, NW_E_FORMAT, "format 1.%u files have no Kneser-Ney or trigram sections", m->minor);
     }
     for (int i = 0; i < N_REQUIRED; i++)
-        if (!secs[i].present) return nw_fail(err, NW_E_FORMAT, "missing sections %s", SPECS[i].tag);
+        if (!secs[i].present && !(m->minor == EF_MINOR && IN(SPECS[i].tag, REMOVED_16)))
+            return nw_fail(err, NW_E_FORMAT, "missing sections %s", SPECS[i].tag);
     for (int i = 0; i < N_SPECS; i++)
         if (secs[i].present && SPECS[i].crc_on_load && nw_crc32(buf + secs[i].off, secs[i].len) != secs[i].crc)
             return nw_fail(err, NW_E_FORMAT, "section %s checksum mismatch (damaged file)", SPECS[i].tag);
@@ -701,6 +848,15 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
             int want = !strcmp(tag, "HIST") || !strcmp(tag, "HDRI") || !strcmp(tag, "HDRV") || (m->kn && !strcmp(tag, "HN13"));
             for (size_t j = 0; j < sizeof TRIGRAM_TAGS / sizeof TRIGRAM_TAGS[0]; j++)
                 if (m->order == 3 && !strcmp(tag, TRIGRAM_TAGS[j])) want = 1;
+            if (m->ef) { /* §7.18: the replaced sections out, the sequences in */
+                if (IN(tag, REMOVED_16)) want = 0;
+                if (!strcmp(tag, "RWEH") || !strcmp(tag, "RWEB") || !strcmp(tag, "SEFH") || !strcmp(tag, "SEFB")) want = 1;
+                if (m->order == 3 && (!strcmp(tag, "TPTH") || !strcmp(tag, "TPTB") || !strcmp(tag, "TEFH") || !strcmp(tag, "TEFB")))
+                    want = 1;
+                if (m->kn && !strcmp(tag, "HN12")) want = 1;
+            } else if (IN(tag, ADDED_16)) {
+                continue; /* ignored above */
+            }
             if (want != secs[i].present)
                 return nw_fail(err, NW_E_FORMAT, "a %s order-%d file: section %s is %s", m->kn ? "kn" : "jm", m->order, tag,
                                want ? "missing" : "unexpected");
@@ -726,6 +882,7 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
         case K_ID: want = idw; break;
         case K_U1: want = 1; break;
         case K_U4: want = 3; break;
+        case K_U48: want = secs[i].code == 4 ? 4 : 3; break;
         default: want = secs[i].code == 2 ? 2 : 3; break;
         }
         if (secs[i].code != want)
@@ -733,8 +890,8 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
     }
 #define A(name) m->name = arr_of(m, &secs[spec_index(#name)])
 #define OPT(name) if (secs[spec_index(#name)].present) A(name)
-    A(TKID); A(IDTK); A(ALPH); A(APOS); A(KEY4); A(TOPK); A(UNIG); A(ROWS); A(SUCC); A(SEGS); A(SEGE);
-    A(SKYP); A(SKYI); A(SKYC); A(DISI); A(DISO);
+    A(TKID); A(ALPH); A(KEY4); A(TOPK); A(UNIG); A(SEGS); A(SEGE); A(SKYP); A(SKYI); A(SKYC); A(DISI); A(DISO);
+    OPT(IDTK); OPT(APOS); OPT(ROWS); OPT(SUCC); OPT(HN12); /* 1.6: IDTK, APOS, ROWS made on open (open_lists) */
     OPT(HIST); OPT(HN13); OPT(HDRI); OPT(HDRV); OPT(TCTB); OPT(TSUC); OPT(TLNI); OPT(TLNV); OPT(TDRI); OPT(TDRV);
     OPT(TSGS); OPT(TSGE); OPT(TSKP); OPT(TSKI); OPT(TSKC);
     m->v2.small = arr_of(m, &secs[spec_index("CNTS")]);
@@ -743,6 +900,19 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
     m->v2.tags = "CNTS/BIGI/BIGC";
     m->v2.count = m->b;
     m->v2.bits = m->quant_bits;
+    ef_raw raw[4];
+    memset(raw, 0, sizeof raw);
+    if (m->ef) {
+        static const char *const EF_TAGS[4][2] = {{"RWEH", "RWEB"}, {"SEFH", "SEFB"}, {"TPTH", "TPTB"}, {"TEFH", "TEFB"}};
+        for (int q = 0; q < (m->order == 3 ? 4 : 2); q++) {
+            const sec *h = &secs[spec_index(EF_TAGS[q][0])], *b = &secs[spec_index(EF_TAGS[q][1])];
+            raw[q].head = buf + h->off;
+            raw[q].hw = (int)ITEM[h->code];
+            raw[q].head_n = h->len / ITEM[h->code];
+            raw[q].stream = buf + b->off;
+            raw[q].stream_len = b->len;
+        }
+    }
     if (m->order == 3) {
         m->v3.small = arr_of(m, &secs[spec_index("TVAL")]);
         m->v3.esc_i = arr_of(m, &secs[spec_index("TBGI")]);
@@ -750,6 +920,8 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
         m->v3.tags = "TVAL/TBGI/TBGC";
         m->v3.count = m->t;
         m->v3.bits = m->quant_bits;
+    }
+    if (m->order == 3 && !m->ef) {
         m->tlen.small = arr_of(m, &secs[spec_index("TLEN")]);
         m->tlen.esc_i = arr_of(m, &secs[spec_index("TLEI")]);
         m->tlen.esc_v = arr_of(m, &secs[spec_index("TLEV")]);
@@ -786,7 +958,7 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
     m->trie = nw_trie_map(buf + trie->off, trie->len, &n_keys);
     if (!m->trie) return nw_fail(err, NW_E_FORMAT, "damaged model: the trie cannot be mapped");
     if (n_keys != m->n) return nw_fail(err, NW_E_FORMAT, "trie holds %zu words, metadata says %u", n_keys, m->n);
-    if ((st = check_arrays(m, err))) return st;
+    if ((st = check_arrays(m, raw, err))) return st;
     return make_floor(m, err);
 }
 
@@ -868,6 +1040,7 @@ void nw_close(nw_model *m) {
     if (m->trie) nw_trie_free(m->trie);
     if (m->map) munmap(m->map, m->map_len);
     free(m->floor);
+    free(m->lists);
     free(m);
 }
 

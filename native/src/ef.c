@@ -1,0 +1,207 @@
+/* Chunked Elias-Fano sequences (docs/FORMAT.md §7.18): checks on open, access by position,
+ * search by value. The bit layout is nextword/succinct.py's.
+ *
+ * Reads use 64-bit little-endian loads at any byte offset before the stream's end bit O_C:
+ * the 8 zero bytes after the stream (checked on open) keep every such load inside it. A
+ * high region is shorter than 3·64 bits (⌊r/2^ℓ⌋ < 2m by the choice of ℓ), so selecting
+ * the k-th set bit is at most four loads and popcounts. */
+#include "ef.h"
+
+#include <string.h>
+
+#include "internal.h"
+
+#if defined(__GNUC__) || defined(__clang__)
+#define POPCNT(x) ((unsigned)__builtin_popcountll(x))
+#define CTZ(x) ((unsigned)__builtin_ctzll(x))
+#define CLZ(x) ((unsigned)__builtin_clzll(x))
+#else
+static unsigned POPCNT(uint64_t x) { unsigned c = 0; while (x) { x &= x - 1; c++; } return c; }
+static unsigned CTZ(uint64_t x) { unsigned c = 0; while (!(x & 1)) { x >>= 1; c++; } return c; }
+static unsigned CLZ(uint64_t x) { unsigned c = 0; while (!(x >> 63)) { x <<= 1; c++; } return c; }
+#endif
+
+static inline uint64_t load64(const uint8_t *p) {
+    uint64_t x;
+    memcpy(&x, p, 8);
+#if defined(__BYTE_ORDER__) && __BYTE_ORDER__ == __ORDER_BIG_ENDIAN__
+    x = __builtin_bswap64(x);
+#endif
+    return x;
+}
+
+static inline uint64_t head_at(const nw_ef *e, uint64_t i) {
+    const uint8_t *p = e->head + i * (uint64_t)e->hw;
+    if (e->hw == 8) return load64(p);
+    return (uint64_t)p[0] | ((uint64_t)p[1] << 8) | ((uint64_t)p[2] << 16) | ((uint64_t)p[3] << 24);
+}
+
+uint64_t nw_ef_first(const nw_ef *e, uint64_t c) { return head_at(e, 2 * c); }
+
+/* ℓ = ⌊log₂ ⌊r/m⌋⌋ when r ≥ m, else 0 (succinct._low_bits) */
+static inline unsigned low_width(uint64_t r, uint64_t m) {
+    uint64_t q = r / m;
+    return q ? 63u - CLZ(q) : 0u;
+}
+
+/* ℓ bits (1 ≤ ℓ ≤ 63) at bit p, least significant first; p + ℓ ≤ O_C */
+static inline uint64_t read_bits(const uint8_t *bits, uint64_t p, unsigned l) {
+    unsigned sh = (unsigned)(p & 7);
+    uint64_t w = load64(bits + (p >> 3)) >> sh;
+    if (l + sh > 64) w |= (uint64_t)bits[(p >> 3) + 8] << (64 - sh);
+    return w & ((1ull << l) - 1);
+}
+
+/* the bits [p, p + avail) of the region as one word, avail = min(64 − (p mod 8), he − p) */
+static inline uint64_t region_word(const uint8_t *bits, uint64_t p, uint64_t he, uint64_t *avail) {
+    unsigned sh = (unsigned)(p & 7);
+    uint64_t w = load64(bits + (p >> 3)) >> sh, a = 64 - sh;
+    if (a > he - p) a = he - p;
+    if (a < 64) w &= (1ull << a) - 1;
+    *avail = a;
+    return w;
+}
+
+typedef struct chunk_view {
+    uint64_t first, r, lo_at, hs, he;
+    unsigned l;
+    int m;
+} chunk_view;
+
+static inline void view(const nw_ef *e, uint64_t c, chunk_view *v) {
+    uint64_t m = e->n - c * NW_EF_CHUNK;
+    if (m > NW_EF_CHUNK) m = NW_EF_CHUNK;
+    v->first = head_at(e, 2 * c);
+    v->r = head_at(e, 2 * c + 2) - v->first; /* F non-decreasing: checked on open */
+    v->lo_at = head_at(e, 2 * c + 1);
+    v->he = head_at(e, 2 * c + 3);
+    v->m = (int)m;
+    v->l = low_width(v->r, m);
+    v->hs = v->lo_at + m * v->l;
+}
+
+/* first + (high·2^ℓ + low), refused above F_{c+1} */
+static inline int value_of(const nw_ef *e, const chunk_view *v, uint64_t high, int k, uint64_t *out) {
+    if (high > (v->r >> v->l)) return -1;
+    uint64_t d = high << v->l;
+    if (v->l) d |= read_bits(e->bits, v->lo_at + (uint64_t)k * v->l, v->l);
+    if (d > v->r) return -1;
+    *out = v->first + d;
+    return 0;
+}
+
+int nw_ef_get(const nw_ef *e, uint64_t j, uint64_t *out) {
+    if (j >= e->n) return -1;
+    chunk_view v;
+    view(e, j / NW_EF_CHUNK, &v);
+    int k = (int)(j % NW_EF_CHUNK);
+    unsigned left = (unsigned)k;
+    for (uint64_t p = v.hs; p < v.he;) {
+        uint64_t avail, w = region_word(e->bits, p, v.he, &avail);
+        unsigned pc = POPCNT(w);
+        if (left < pc) {
+            for (; left; left--) w &= w - 1;
+            uint64_t at = p + CTZ(w) - v.hs; /* offset of the k-th set bit in the region */
+            return value_of(e, &v, at - (uint64_t)k, k, out);
+        }
+        left -= pc;
+        p += avail;
+    }
+    return -1; /* fewer than k+1 set bits: damaged */
+}
+
+int nw_ef_chunk(const nw_ef *e, uint64_t c, uint64_t vals[NW_EF_CHUNK], int *m) {
+    if (c >= e->chunks) return -1;
+    chunk_view v;
+    view(e, c, &v);
+    int k = 0;
+    for (uint64_t p = v.hs; p < v.he;) {
+        uint64_t avail, w = region_word(e->bits, p, v.he, &avail);
+        while (w) {
+            if (k == v.m) return -1; /* more set bits than values */
+            uint64_t at = p + CTZ(w) - v.hs;
+            w &= w - 1;
+            if (value_of(e, &v, at - (uint64_t)k, k, &vals[k])) return -1;
+            k++;
+        }
+        p += avail;
+    }
+    if (k != v.m) return -1;
+    *m = k;
+    return 0;
+}
+
+int nw_ef_lower(const nw_ef *e, uint64_t y, uint64_t s, uint64_t end, uint64_t *at, uint64_t *val) {
+    if (end > e->n) return -1;
+    if (s >= end) { *at = s; return 0; }
+    uint64_t c0 = s / NW_EF_CHUNK, c1 = (end - 1) / NW_EF_CHUNK;
+    /* the last chunk in [c0, c1] whose first value is < y holds the answer or ends before it */
+    uint64_t lo = c0, hi = c1 + 1;
+    while (lo < hi) {
+        uint64_t mid = lo + (hi - lo) / 2;
+        if (head_at(e, 2 * mid) < y) lo = mid + 1; else hi = mid;
+    }
+    if (lo == c0) { /* every chunk of the range starts at ≥ y: the answer is s */
+        *at = s;
+        return nw_ef_get(e, s, val);
+    }
+    uint64_t c = lo - 1, base = c * NW_EF_CHUNK;
+    uint64_t vals[NW_EF_CHUNK];
+    int m;
+    if (nw_ef_chunk(e, c, vals, &m)) return -1;
+    uint64_t a = s > base ? s - base : 0, b = end - base < (uint64_t)m ? end - base : (uint64_t)m;
+    while (a < b) { /* first k in [a, b) with vals[k] ≥ y */
+        uint64_t mid = a + (b - a) / 2;
+        if (vals[mid] < y) a = mid + 1; else b = mid;
+    }
+    *at = base + a;
+    if (*at < end) {
+        if (a < (uint64_t)m) *val = vals[a];
+        else if (nw_ef_get(e, *at, val)) return -1; /* the next chunk's first value */
+    }
+    return 0;
+}
+
+nw_status nw_ef_open(nw_ef *e, const char *label, const uint8_t *head, uint64_t head_n, int hw, const uint8_t *stream,
+                     uint64_t stream_len, uint64_t n, int strict, nw_error *err) {
+    memset(e, 0, sizeof *e);
+    if (hw != 4 && hw != 8) return nw_fail(err, NW_E_FORMAT, "%s header is neither u32 nor u64", label);
+    uint64_t c = n / NW_EF_CHUNK + (n % NW_EF_CHUNK != 0);
+    if (head_n != 2 * (c + 1))
+        return nw_fail(err, NW_E_FORMAT, "%s has %llu header entries, expected %llu for %llu values", label,
+                       (unsigned long long)head_n, (unsigned long long)(2 * (c + 1)), (unsigned long long)n);
+    e->head = head;
+    e->hw = hw;
+    e->bits = stream;
+    e->n = n;
+    e->chunks = c;
+    if (head_at(e, 1) != 0) return nw_fail(err, NW_E_FORMAT, "%s chunk offsets do not start at 0 and increase", label);
+    uint64_t total = head_at(e, 2 * c + 1);
+    uint64_t want = (total >> 3) + ((total & 7) != 0) + NW_EF_PAD;
+    if (stream_len != want)
+        return nw_fail(err, NW_E_FORMAT, "%s stream has %llu bytes, expected %llu", label, (unsigned long long)stream_len,
+                       (unsigned long long)want);
+    if (n == 0 && head_at(e, 0) != 0) return nw_fail(err, NW_E_FORMAT, "%s is empty but ends at %llu", label,
+                                                     (unsigned long long)head_at(e, 0));
+    for (uint64_t i = 0; i < c; i++) {
+        uint64_t f0 = head_at(e, 2 * i), f1 = head_at(e, 2 * i + 2), o0 = head_at(e, 2 * i + 1), o1 = head_at(e, 2 * i + 3);
+        uint64_t m = n - i * NW_EF_CHUNK;
+        if (m > NW_EF_CHUNK) m = NW_EF_CHUNK;
+        if (o1 < o0) return nw_fail(err, NW_E_FORMAT, "%s chunk offsets do not start at 0 and increase", label);
+        if (f1 < f0 || (strict && f1 - f0 < m))
+            return nw_fail(err, NW_E_FORMAT, "%s chunk first values are not increasing", label);
+        uint64_t r = f1 - f0;
+        unsigned l = low_width(r, m);
+        uint64_t size = m * l + (r >> l) + m; /* < 64·63 + 3·64: ⌊r/2^ℓ⌋ < 2m */
+        if (size != o1 - o0)
+            return nw_fail(err, NW_E_FORMAT, "%s chunk %llu has %llu bits, its values need %llu", label, (unsigned long long)i,
+                           (unsigned long long)(o1 - o0), (unsigned long long)size);
+    }
+    /* every bit from O_C on is zero (the last byte's unused bits and the padding) */
+    uint64_t byte = total >> 3;
+    if ((total & 7) && (stream[byte] >> (total & 7)))
+        return nw_fail(err, NW_E_FORMAT, "%s stream has bits set past its end", label);
+    for (uint64_t q = byte + ((total & 7) != 0); q < stream_len; q++)
+        if (stream[q]) return nw_fail(err, NW_E_FORMAT, "%s stream padding is not zero", label);
+    return NW_OK;
+}
