@@ -42,6 +42,8 @@ int main(int argc, char **argv) {
     if (hw != 4 && hw != 8) return 2;
     if (nw_ef_open(&e, "SEQ", head, hlen / (uint64_t)hw, hw, stream, slen, n, atoi(argv[5]), &err) != NW_OK) {
         printf("open ERR %s\n", err.message);
+        free(head);
+        free(stream);
         return 0;
     }
     printf("open OK\n");
