@@ -18,7 +18,7 @@ import heapq
 import math
 import os
 import sys
-from typing import Any, Callable, Iterable, Iterator, NamedTuple, Sequence
+from typing import Any, Callable, Iterable, Iterator, NamedTuple, Sequence, cast
 
 import numpy as np
 
@@ -40,6 +40,7 @@ from .store import (
     ModelArrays,
     read_model,
 )
+from .successors import TrigramLists
 from .text import BOS, EOS, UNK, fold, parse_typed, recase, sentences
 
 __all__ = ["Model", "Suggestion", "load", "check_k", "check_lam"]
@@ -133,7 +134,8 @@ class Model:
         self._trie = arrays.trie
         self._alph = a["ALPH"]
         self._unig = a["UNIG"]
-        self._succ = a["SUCC"]
+        #: the bigram successor lists (any layout: docs/SEAMS.md, "The successor seam")
+        self._s2 = arrays.succ2
         self._cnts = a["CNTS"]
         self._bigi = a["BIGI"]
         self._bigc = a["BIGC"]
@@ -141,7 +143,7 @@ class Model:
         mv = {k: _native_view(v) for k, v in a.items() if k not in ("CNTS",)}
         self._mv_tkid, self._mv_idtk = mv["TKID"], mv["IDTK"]
         self._mv_alph, self._mv_apos, self._mv_unig = mv["ALPH"], mv["APOS"], mv["UNIG"]
-        self._mv_rows, self._mv_succ = mv["ROWS"], mv["SUCC"]
+        self._mv_rows = mv["ROWS"]
         self._mv_skyc = mv["SKYC"]
         self._mv_hist = mv.get("HIST")
         self._mv_disi, self._mv_diso, self._mv_key4 = mv["DISI"], mv["DISO"], mv["KEY4"]
@@ -327,8 +329,8 @@ class Model:
     def _pair_count(self, v: int, w: int) -> int:
         rs, re_ = self._mv_rows[v], self._mv_rows[v + 1]
         pos = self._mv_apos[w]
-        i = bisect.bisect_left(self._mv_succ, pos, rs, re_)
-        if i < re_ and self._mv_succ[i] == pos:
+        i = self._s2.find(v, pos, rs, re_)
+        if i >= 0:
             return self._count_at(i)
         return 0
 
@@ -520,20 +522,20 @@ class Model:
         if lam == 0.0:
             return [(w, oml * (unig[w] / total)) for w in top]
         rs, re_ = self._mv_rows[v], self._mv_rows[v + 1]
-        s = bisect.bisect_left(self._mv_succ, lo, rs, re_)
-        e = bisect.bisect_left(self._mv_succ, hi, s, re_)
+        s = self._s2.lower_bound(v, lo, rs, re_)
+        e = self._s2.lower_bound(v, hi, s, re_)
         entries: Sequence[int] = range(s, e)
         if e - s > self._sky_min and k <= self._sky_k:
             entries = self._segment_band(s, e, k) or entries
         if len(entries) > _SMALL:
-            return self._rank_many(entries, top, cv, lam, k)
-        succ, alph, apos = self._mv_succ, self._mv_alph, self._mv_apos
+            return self._rank_many(v, entries, top, cv, lam, k)
+        alph, apos = self._mv_alph, self._mv_apos
         vals = self._vals2
         if isinstance(entries, range):
-            ps = succ[s:e].tolist()
+            ps = self._s2.slice(v, s, e).tolist()
             cs = self._mv_cnts[s:e].tolist() if vals is None else vals.slice(s, e)
         else:
-            ps = [succ[i] for i in entries]
+            ps = self._s2.take(v, np.asarray(entries, dtype=np.int64)).tolist()
             cs = [self._mv_cnts[i] for i in entries] if vals is None else [vals.at(i) for i in entries]
         if vals is None and COUNT_ESCAPE in cs:  # counts >= 255 are rare: replace them one by one
             j = cs.index(COUNT_ESCAPE)
@@ -573,14 +575,14 @@ class Model:
             i += 1
         return None
 
-    def _rank_many(self, entries: Sequence[int], top: list[int], cv: int, lam: float, k: int) -> list[tuple[int, float]]:
+    def _rank_many(self, v: int, entries: Sequence[int], top: list[int], cv: int, lam: float, k: int) -> list[tuple[int, float]]:
         """The vectorised version of the candidate scoring in :meth:`_rank`, for many successors."""
         if isinstance(entries, range):
             idx = np.arange(entries.start, entries.stop)
-            pos = self._succ[entries.start : entries.stop].astype(np.int64)
+            pos = self._s2.slice(v, entries.start, entries.stop)
         else:
             idx = np.sort(np.asarray(entries, dtype=np.int64))  # skybands are stored by dominance
-            pos = self._succ[idx].astype(np.int64)
+            pos = self._s2.take(v, idx)
         ids = self._alph[pos].astype(np.int64)
         total = self.total
         counts = self._counts(idx)
@@ -608,9 +610,9 @@ class Model:
     def _rank_bigram_only(self, v: int, lo: int, hi: int, k: int, cv: int) -> list[tuple[int, float]]:
         """λ = 1: successors by count, then zero-probability words by id (floor descending, then key)."""
         rs, re_ = self._mv_rows[v], self._mv_rows[v + 1]
-        s = bisect.bisect_left(self._mv_succ, lo, rs, re_)
-        e = bisect.bisect_left(self._mv_succ, hi, s, re_)
-        pos = self._succ[s:e].astype(np.int64)
+        s = self._s2.lower_bound(v, lo, rs, re_)
+        e = self._s2.lower_bound(v, hi, s, re_)
+        pos = self._s2.slice(v, s, e)
         counts = self._counts(np.arange(s, e))
         if len(counts) and int(counts.max()) > cv:
             raise self._over(int(counts.max()), cv)
@@ -1001,7 +1003,7 @@ class Model:
         rows = np.asarray(a["ROWS"], dtype=np.int64)
         alph = np.asarray(a["ALPH"], dtype=np.int64)
         left = np.repeat(np.arange(n + 3, dtype=np.int64), np.diff(rows))
-        right = alph[np.asarray(a["SUCC"], dtype=np.int64)]
+        right = alph[self._s2.all()]
         value2 = self._counts(np.arange(int(rows[-1])))
         o2 = np.lexsort((right, left))
         grams = [w1.reshape(-1, 1), np.stack([left[o2], right[o2]], axis=1)]
@@ -1059,17 +1061,17 @@ class Model:
         rows = np.asarray(self._src.arrays["ROWS"], dtype=np.int64)
         npos = self.n_words + 3
         left = np.repeat(np.arange(npos, dtype=np.int64), np.diff(rows))
-        keys = left * npos + np.asarray(self._succ, dtype=np.int64)  # increasing: rows by u, then position
+        keys = left * npos + self._s2.all()  # increasing: rows by u, then position
         out = np.searchsorted(keys, np.asarray(u, dtype=np.int64) * npos + self._apos[v].astype(np.int64))
         return np.asarray(out, dtype=np.int64)
 
     def _stored_trigrams(self, left: np.ndarray, right: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """(u, v, w, value) of every stored trigram; ``left``/``right`` are the bigram entries' ids in file order."""
         ng = self._ng
-        lens = np.asarray(ng._tlen.all(), dtype=np.int64)
+        lens = ng.lists().lengths()
         owner = np.repeat(np.arange(len(lens), dtype=np.int64), lens)
         alph = np.asarray(self._src.arrays["ALPH"], dtype=np.int64)
-        w = alph[np.asarray(ng._tsuc, dtype=np.int64)]
+        w = alph[ng.lists().all()]
         return left[owner], right[owner], w, np.asarray(ng._tval.all(), dtype=np.int64)
 
     def totals_are_sums(self) -> bool:
@@ -1250,13 +1252,11 @@ class _NgramScorer:
         self._ctx_cache: dict[tuple[tuple[int, ...], tuple[float, float]], tuple[int, float, int, int, int, int, float]] = {}
         # the trigram skybands hold for the stored parameters (KN: always; JM: stored λs, λ₃ > 0)
         self._band_lams = (m.stored_lam, m.stored_lam3) if not self.kn else None
+        # the trigram successor lists (None below order 3, where no code path reads them)
+        self._s3: TrigramLists = cast(TrigramLists, m._src.succ3)
         if self.order == 3:
             self._t = int(meta["trigrams"])
             self._tsky_min: int = meta["trigram_skyband_min"]
-            self._tctb = _native_view(a["TCTB"])
-            self._tlen = EXACT.decode(m.path, a, CONTEXT_TAGS)  # lengths are always exact
-            self._tsuc_mv = _native_view(a["TSUC"])
-            self._tsuc = a["TSUC"]
             self._tval = self.codec.decode(m.path, a, TRIGRAM_TAGS, self._t)
             self._tlni, self._tlnv = _native_view(a["TLNI"]), _native_view(a["TLNV"])
             self._tdri, self._tdrv = _native_view(a["TDRI"]), _native_view(a["TDRV"])
@@ -1295,16 +1295,19 @@ class _NgramScorer:
         u, v = ctx
         rs, re_ = m._mv_rows[u], m._mv_rows[u + 1]
         pos = m._mv_apos[v]
-        i = bisect.bisect_left(m._mv_succ, pos, rs, re_)
-        if i >= re_ or m._mv_succ[i] != pos or self._tlen.at(i) == 0:
+        i = m._s2.find(u, pos, rs, re_)
+        if i < 0:
             return -1
-        return i
+        s, e = self._s3.span(i)
+        return i if e > s else -1
+
+    def lists(self) -> TrigramLists:
+        """The trigram successor lists (any layout)."""
+        return self._s3
 
     def _rows3(self, i: int) -> tuple[int, int]:
         """Row entries [s, e) of the trigram context at bigram entry i (checked: a damaged length never escapes)."""
-        b0 = i - (i % CTX_BLOCK)
-        s = self._tctb[i // CTX_BLOCK] + (sum(self._tlen.slice(b0, i)) if i > b0 else 0)
-        e = s + self._tlen.at(i)
+        s, e = self._s3.span(i)
         if not 0 <= s < e <= self._t:
             raise self._damaged(f"trigram context {i} has entries [{s}, {e})")
         return s, e
@@ -1347,8 +1350,8 @@ class _NgramScorer:
             s, e = self._rows3(j)
             tot3, g3 = self._level3(j, s, e, lams[1])
             pos = m._mv_apos[w]
-            i = bisect.bisect_left(self._tsuc_mv, pos, s, e)
-            c3 = self._tval.at(i) if i < e and self._tsuc_mv[i] == pos else 0
+            i = self._s3.lower_bound(j, v, pos, s, e)
+            c3 = self._tval.at(i) if i < e and self._s3.at(j, v, i) == pos else 0
             if c3 > tot3:
                 raise self._damaged(f"trigram value {c3} above its context total {tot3}")
             p = self._alpha(c3, tot3, self.d3 if self.kn else lams[1]) + g3 * p
@@ -1372,8 +1375,8 @@ class _NgramScorer:
         tot, g = self._level2(v, lams[0])
         if tot > 0:
             rs, re_ = m._mv_rows[v], m._mv_rows[v + 1]
-            row = m._succ[rs:re_]
-            at = np.searchsorted(row, pos.astype(row.dtype))  # same dtype: the row is not converted
+            row = m._s2.slice(v, rs, re_)
+            at = np.searchsorted(row, pos)
             hit = at < len(row)
             hit[hit] = row[at[hit]] == pos[hit]
             c = np.zeros(len(ids), dtype=np.int64)
@@ -1389,8 +1392,8 @@ class _NgramScorer:
         if j >= 0:
             s, e = self._rows3(j)
             tot3, g3 = self._level3(j, s, e, lams[1])
-            row = self._tsuc[s:e]
-            at = np.searchsorted(row, pos.astype(row.dtype))
+            row = self._s3.slice(j, v, s, e)
+            at = np.searchsorted(row, pos)
             hit = at < len(row)
             hit[hit] = row[at[hit]] == pos[hit]
             c = np.zeros(len(ids), dtype=np.int64)
@@ -1458,8 +1461,8 @@ class _NgramScorer:
         b_full = True  # b_idx holds every bigram successor in the range
         if tot > 0:
             rs, re_ = m._mv_rows[v], m._mv_rows[v + 1]
-            s = bisect.bisect_left(m._mv_succ, lo, rs, re_)
-            e = bisect.bisect_left(m._mv_succ, hi, s, re_)
+            s = m._s2.lower_bound(v, lo, rs, re_)
+            e = m._s2.lower_bound(v, hi, s, re_)
             b_idx = range(s, e)
             if e - s > m._sky_min and k <= m._sky_k:
                 band = m._segment_band(s, e, k)
@@ -1467,8 +1470,8 @@ class _NgramScorer:
                     b_idx, b_full = band, False
         t_idx: Sequence[int] = ()
         if j >= 0:
-            a3 = bisect.bisect_left(self._tsuc_mv, lo, s3, e3)
-            b3 = bisect.bisect_left(self._tsuc_mv, hi, a3, e3)
+            a3 = self._s3.lower_bound(j, v, lo, s3, e3)
+            b3 = self._s3.lower_bound(j, v, hi, a3, e3)
             t_idx = range(a3, b3)
             if b3 - a3 > self._tsky_min and k <= m._sky_k and (self.kn or (lams == self._band_lams and lams[1] > 0.0)):
                 band3 = self._band3(a3, b3, k)
@@ -1481,7 +1484,8 @@ class _NgramScorer:
         # scored too low that way is a successor left out of a band or a cut, so k exactly
         # scored candidates rank before it anyway (docs/SEAMS.md), and the top k is exact.
         # A word outside c3 scores γ₃·B, so of those only the k best by (B, id) are kept.
-        succ, apos, alph, fl = m._mv_succ, m._mv_apos, m._mv_alph, self._floor_list
+        s2, s3l = m._s2, self._s3
+        apos, alph, fl = m._mv_apos, m._mv_alph, self._floor_list
         kn = self.kn
         # D(c) by min(c, 3): the same floats as _discount1, without a call per candidate
         dk2: Sequence[float] = (0.0, *self.d2) if kn else ()
@@ -1490,30 +1494,30 @@ class _NgramScorer:
         c3: dict[int, int] = {}
         if len(t_idx):
             if isinstance(t_idx, range) and len(t_idx) > _TRIM:
-                c3 = self._trim_trigrams(t_idx, v, tot, g, tot3, g3, k, lams)
+                c3 = self._trim_trigrams(j, t_idx, v, tot, g, tot3, g3, k, lams)
             elif isinstance(t_idx, range):
-                c3 = dict(zip(self._tsuc_mv[t_idx.start : t_idx.stop].tolist(), self._tval.slice(t_idx.start, t_idx.stop)))
+                c3 = dict(zip(s3l.slice(j, v, t_idx.start, t_idx.stop).tolist(), self._tval.slice(t_idx.start, t_idx.stop)))
             else:
-                c3 = {self._tsuc_mv[i]: self._tval.at(i) for i in t_idx}
+                c3 = {s3l.at(j, v, i): self._tval.at(i) for i in t_idx}
             if max(c3.values()) > tot3:
                 raise self._damaged(f"a trigram value above its context total {tot3}")
         # B(v, x) of the bigram candidates, by position
         bs: dict[int, float] = {}
         if len(b_idx):
             if isinstance(b_idx, range) and len(b_idx) > _SMALL:
-                c2, b_full = self._trim_bigrams(b_idx, tot, g, k + len(c3), lams[0]), False
+                c2, b_full = self._trim_bigrams(v, b_idx, tot, g, k + len(c3), lams[0]), False
                 ps, cs = list(c2), list(c2.values())
             elif m._vals2 is not None:  # a quantised file: decoded through its codebook
-                ps = [succ[i] for i in b_idx] if not isinstance(b_idx, range) else succ[b_idx.start : b_idx.stop].tolist()
+                ps = (s2.take(v, np.asarray(b_idx, dtype=np.int64)) if not isinstance(b_idx, range) else s2.slice(v, b_idx.start, b_idx.stop)).tolist()
                 cs = [m._vals2.at(i) for i in b_idx] if not isinstance(b_idx, range) else m._vals2.slice(b_idx.start, b_idx.stop)
             elif isinstance(b_idx, range):
-                ps = succ[b_idx.start : b_idx.stop].tolist()
+                ps = s2.slice(v, b_idx.start, b_idx.stop).tolist()
                 cs = m._mv_cnts[b_idx.start : b_idx.stop].tolist()
                 if COUNT_ESCAPE in cs:
                     cs = [m._count_at(b_idx.start + x) if c == COUNT_ESCAPE else c for x, c in enumerate(cs)]
             else:
                 cn = m._mv_cnts
-                ps = [succ[i] for i in b_idx]
+                ps = s2.take(v, np.asarray(b_idx, dtype=np.int64)).tolist()
                 cs = [cn[i] for i in b_idx]
                 if COUNT_ESCAPE in cs:
                     cs = [m._count_at(i) if c == COUNT_ESCAPE else c for i, c in zip(b_idx, cs)]
@@ -1544,8 +1548,8 @@ class _NgramScorer:
                     if tot > 0:
                         c2v = 0
                         if not b_full:
-                            i = bisect.bisect_left(succ, p, rs, re_)
-                            if i < re_ and succ[i] == p:
+                            i = s2.find(v, p, rs, re_)
+                            if i >= 0:
                                 c2v = m._count_at(i)
                         if c2v > tot:
                             raise m._over(c2v, tot)
@@ -1561,7 +1565,7 @@ class _NgramScorer:
         return out
 
     def _trim_trigrams(
-        self, t_idx: range, v: int, tot: int, g: float, tot3: int, g3: float, k: int, lams: tuple[float, float]
+        self, j: int, t_idx: range, v: int, tot: int, g: float, tot3: int, g3: float, k: int, lams: tuple[float, float]
     ) -> dict[int, int]:
         """Position → value of the k best trigram successors in ``t_idx`` by their full score.
 
@@ -1571,21 +1575,18 @@ class _NgramScorer:
         """
         m = self.m
         s, e = t_idx.start, t_idx.stop
-        traw = self._tsuc[s:e]
-        tpos = traw.astype(np.int64)
+        tpos = self._s3.slice(j, v, s, e)
         c3 = self._tval.take(np.arange(s, e))
         if int(c3.max()) > tot3:
             raise self._damaged(f"a trigram value above its context total {tot3}")
         tids = m._alph[tpos].astype(np.int64)
         b = self.floor[tids]
         if tot > 0:
-            rs, re_ = m._mv_rows[v], m._mv_rows[v + 1]
-            row = m._succ[rs:re_]
-            at = np.minimum(row.searchsorted(traw), max(len(row) - 1, 0))
-            hit = np.flatnonzero(row[at] == traw) if len(row) else np.zeros(0, dtype=np.int64)
+            ent = self._s3.bigram_entries(j, v, s, e)
+            hit = np.flatnonzero(ent >= 0)
             c2 = np.zeros(len(tpos), dtype=np.int64)
             if len(hit):
-                c2[hit] = m._counts(rs + at[hit])
+                c2[hit] = m._counts(ent[hit])
                 if int(c2.max()) > tot:
                     raise m._over(int(c2.max()), tot)
             if self.kn:
@@ -1599,7 +1600,7 @@ class _NgramScorer:
         sel = _best(score, tids, k)
         return dict(zip(tpos[sel].tolist(), c3[sel].tolist()))
 
-    def _trim_bigrams(self, b_idx: range, tot: int, g: float, keep: int, lam2: float) -> dict[int, int]:
+    def _trim_bigrams(self, v: int, b_idx: range, tot: int, g: float, keep: int, lam2: float) -> dict[int, int]:
         """Position → value of the ``keep`` best bigram successors in ``b_idx`` by B (§9.7).
 
         A word that follows v but not (u, v) scores γ₃·B, so among those only the k best
@@ -1608,7 +1609,7 @@ class _NgramScorer:
         """
         m = self.m
         s, e = b_idx.start, b_idx.stop
-        pos = m._succ[s:e].astype(np.int64)
+        pos = m._s2.slice(v, s, e)
         c = m._counts(np.arange(s, e))
         if self.kn:
             alpha = np.maximum(c - _discount(c, self.d2), 0.0) / tot

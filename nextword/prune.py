@@ -61,7 +61,7 @@ from .errors import InvalidArgumentError
 from .estimators import Estimator, Fitted, Level
 from .ngrams import NgramCounts, group_starts
 from .codecs import EXACT, codec_for_bits
-from .store import DEFAULT_SKYBAND_K, DEFAULT_SKYBAND_MIN, atomic_write, build_ngram_sections, build_sections, encode_sections, history_counts
+from .store import COMPACT_MINOR, DEFAULT_SKYBAND_K, DEFAULT_SKYBAND_MIN, atomic_write, build_ngram_sections, build_sections, encode_sections, history_counts
 
 if TYPE_CHECKING:  # prune is imported by model (the train default), not the other way round
     from .model import Model
@@ -613,8 +613,10 @@ def prune_to_size(
 # (u, v, w) keeps the bigram (u, v) — a bigram that is the context of a kept trigram is not
 # prunable (common practice in back-off n-gram pruning: the longer n-gram's context stays
 # in the model; the file format finds a trigram context through its bigram entry, §7.14 of
-# docs/FORMAT.md). So a bigram is ranked by the larger of its own value and the values of
-# the trigrams it is the context of (:func:`with_dependants`: it leaves with its last
+# docs/FORMAT.md) — and its suffix bigram (v, w) (common practice too, for back-off
+# models; format 1.6 stores a trigram's successor as its index in v's bigram row, §7.18).
+# So a bigram is ranked by the larger of its own value and the values of the trigrams it
+# is the context or the suffix of (:func:`with_dependants`: it leaves with its last
 # dependant), and the selection adds the context bigram of every kept trigram that a tie
 # left out (:func:`keep_contexts`). A context left with no n-gram is dropped with them
 # (γ = 1 there: the same as a context never seen). The unigram level is the vocabulary; it
@@ -881,6 +883,23 @@ def context_bigrams(fitted: Fitted) -> np.ndarray:
     return np.asarray(pos, dtype=np.int64)
 
 
+def suffix_bigrams(fitted: Fitted) -> np.ndarray:
+    """For each stored trigram (u, v, w), the index of its suffix bigram (v, w) in ``levels[1].grams``, −1 if not stored.
+
+    Empty below order 3. A model fitted from counts stores every suffix (the text that
+    holds u v w holds v w); a file pruned before this rule may lack some.
+    """
+    if fitted.order < 3:
+        return np.zeros(0, np.int64)
+    g2, g3 = fitted.levels[1].grams, fitted.levels[2].grams
+    if len(g3) == 0 or len(g2) == 0:
+        return np.full(len(g3), -1, np.int64)
+    base = fitted.bos + 1
+    k2, q = _pack(g2, base), _pack(g3[:, 1:], base)
+    pos = np.minimum(np.searchsorted(k2, q), len(k2) - 1)
+    return np.where(k2[pos] == q, pos, -1).astype(np.int64)
+
+
 def with_dependants(fitted: Fitted, values: Sequence[np.ndarray]) -> list[np.ndarray]:
     """Per-order ``values`` with each bigram raised to the largest value of the trigrams it is the context of.
 
@@ -891,15 +910,21 @@ def with_dependants(fitted: Fitted, values: Sequence[np.ndarray]) -> list[np.nda
     out = [np.asarray(v, dtype=np.float64).copy() for v in values]
     if fitted.order >= 3 and len(out[2]):
         np.maximum.at(out[1], context_bigrams(fitted), out[2])
+        suffix = suffix_bigrams(fitted)
+        ok = suffix >= 0
+        np.maximum.at(out[1], suffix[ok], out[2][ok])
     return out
 
 
 def keep_contexts(fitted: Fitted, keep: Sequence[np.ndarray | None]) -> list[np.ndarray | None]:
-    """Keep masks with the context bigram (u, v) of every kept trigram (u, v, w) kept too."""
+    """Keep masks with the context bigram (u, v) and the suffix bigram (v, w) of every kept trigram (u, v, w) kept too."""
     out = list(keep)
     if fitted.order >= 3 and out[2] is not None and out[1] is not None:
         k2 = np.asarray(out[1], dtype=bool).copy()
-        k2[context_bigrams(fitted)[np.asarray(out[2], dtype=bool)]] = True
+        kept3 = np.asarray(out[2], dtype=bool)
+        k2[context_bigrams(fitted)[kept3]] = True
+        suffix = suffix_bigrams(fitted)[kept3]
+        k2[suffix[suffix >= 0]] = True
         out[1] = k2
     return out
 
@@ -1030,7 +1055,7 @@ def prune_ngrams_to_size(
     source = fitted if fitted is not None else estimator
     if source is None:
         raise InvalidArgumentError("prune_ngrams_to_size needs an estimator or a fitted model")
-    if source.name == "jm" and counts.order == 2 and build.get("codec", EXACT) is EXACT:
+    if source.name == "jm" and counts.order == 2 and build.get("codec", EXACT) is EXACT and not build.get("compact"):
         raise InvalidArgumentError("a Jelinek-Mercer bigram model is pruned by prune_to_size (its file stores the counts themselves)")
     if fitted is not None and vocabulary:
         raise InvalidArgumentError("a fitted model keeps its words (vocabulary=False): dropping words needs its raw counts")
@@ -1214,6 +1239,7 @@ def write_to_size(
     skyband_k: int = DEFAULT_SKYBAND_K,
     skyband_min: int = DEFAULT_SKYBAND_MIN,
     quantize: int | None = None,
+    compact: bool = False,
 ) -> tuple[CountTables, int]:
     """Prune any n-gram model to ``max_bytes`` (:func:`prune_ngrams_to_size`) and write it atomically to ``path``.
 
@@ -1226,11 +1252,12 @@ def write_to_size(
     every trial build measures the quantised file, so the n-grams kept are those that fit
     the budget at the quantised cost per n-gram (the choice of bits is the caller's; the
     rule and its measurements are in docs/SEAMS.md, "Size budget and quantisation").
+    ``compact`` measures and writes format 1.6 files (chunked Elias-Fano successor lists).
     """
-    if quantize is not None:
+    if quantize is not None or compact:
         fitted, _, small_tables, chunks, _ = prune_ngrams_to_size(
             counts, tables, estimator, max_bytes, rule=rule, progress=progress, skyband_k=skyband_k,
-            skyband_min=skyband_min, codec=codec_for_bits(quantize))
+            skyband_min=skyband_min, codec=codec_for_bits(quantize), compact=compact)
         atomic_write(path, chunks)
         return small_tables, len(fitted.levels[1].grams)
     if estimator.name == "jm" and counts.order == 2:
@@ -1297,7 +1324,9 @@ def prune_model(
     build: dict[str, Any] = {"skyband_k": int(head["skyband_k"]), "skyband_min": int(head["skyband_min"])}
     if model.codec is not EXACT:
         build["codec"] = model.codec
-    elif model.estimator == "jm" and model.order == 2:
+    if model.format_version[1] == COMPACT_MINOR:
+        build["compact"] = True
+    if model.codec is EXACT and not build.get("compact") and model.estimator == "jm" and model.order == 2:
         _, chunks, info = prune_to_size(tables_from_model(model), max_bytes, rule=rule, lam=model.stored_lam,
                                         vocabulary=vocabulary, progress=progress, **build)
         return chunks, info

@@ -24,6 +24,8 @@ import numpy as np
 
 from .codecs import COUNT_ESCAPE as COUNT_ESCAPE  # one source: the codec owns the escape byte
 from .codecs import EXACT, Codec, ExactCodec, codec_named
+from .succinct import ChunkedEF, ef_check_headers, ef_encode
+from .successors import BigramLists, EFBigramLists, EFTrigramLists, PlainBigramLists, PlainTrigramLists, TrigramLists
 from .counts import CountTables
 from .errors import InvalidArgumentError, ModelFormatError
 from .estimators import FittedJelinekMercer, FittedKneserNey, unigram_floor
@@ -35,6 +37,8 @@ from .paths import check_new_output as check_new_output  # re-exported: callers 
 __all__ = [
     "level_values",
     "QUANT_MINOR",
+    "COMPACT_MINOR",
+    "compact_sections",
     "MAGIC",
     "FORMAT_VERSION",
     "write_model",
@@ -62,13 +66,19 @@ FORMAT_VERSION: Final = (1, 0)
 #: derived context totals, dropped mass, trigram skybands; docs/FORMAT.md §7.11-7.16).
 #: Files that use none of these stay 1.0. 1.3 files are refused with a message naming
 #: the version (they were never released; retraining writes 1.4).
-MAX_MINOR: Final = 5
+MAX_MINOR: Final = 6
 #: the layout of Kneser-Ney and trigram files
 NGRAM_MINOR: Final = 4
 #: the same layout with quantised values (META codec "quant", docs/FORMAT.md §7.17); any
 #: estimator and order, the Jelinek-Mercer bigram included (it needs HIST: its row sums
 #: are sums of decoded values, no longer the unigram counts)
 QUANT_MINOR: Final = 5
+#: any 1.4/1.5 kind with its monotone sequences coded by chunked Elias-Fano (META
+#: "successors", docs/FORMAT.md §7.18): successor lists, row and trigram starts, and no
+#: stored inverse permutations
+COMPACT_MINOR: Final = 6
+#: META "successors" of a 1.6 file (the only layout so far)
+SUCCESSORS_META: Final = {"name": "ef", "version": 1}
 #: bigram entries per block of TCTB (an entry's trigram start = its block's base + the
 #: lengths of the entries before it in the block)
 CTX_BLOCK: Final = 16
@@ -104,7 +114,22 @@ _OPTIONAL: Final = {
     b"TSKP": "u4",
     b"TSKI": "u2|u4",
     b"TSKC": "u2|u4",
+    # format 1.6 (§7.18): chunked Elias-Fano headers (u32 or u64) and bit streams, and HN13's replacement
+    b"RWEH": "u4|u8",
+    b"RWEB": "u1",
+    b"SEFH": "u4|u8",
+    b"SEFB": "u1",
+    b"TPTH": "u4|u8",
+    b"TPTB": "u1",
+    b"TEFH": "u4|u8",
+    b"TEFB": "u1",
+    b"HN12": "id",
 }
+#: the required sections of §7 that a 1.6 file replaces (§7.18), and the sections it has instead
+_COMPACT_DROPS: Final = (b"IDTK", b"APOS", b"ROWS", b"SUCC")
+_COMPACT_BASE: Final = (b"RWEH", b"RWEB", b"SEFH", b"SEFB")
+_COMPACT_TRIGRAM: Final = (b"TPTH", b"TPTB", b"TEFH", b"TEFB")
+_PLAIN_TRIGRAM_ONLY: Final = (b"TCTB", b"TLEN", b"TLEI", b"TLEV", b"TSUC")
 #: smoothing methods and n-gram orders a model file can record (META "estimator", "order")
 ESTIMATORS: Final = ("jm", "kn")
 ORDERS: Final = (2, 3)
@@ -169,7 +194,10 @@ _CHECKED_ON_LOAD: Final = tuple(t for t in _SECTIONS if t not in _BIGRAM_SIZED)
 _U32_MAX: Final = 0xFFFFFFFF
 # optional sections checksummed on every load: vocabulary-sized and sparse ones (the
 # trigram-sized ones only with verify=True; queries check what they read from them)
-_OPTIONAL_CHECKED_ON_LOAD: Final = (b"HIST", b"HN13", b"HDRI", b"HDRV", b"TLEI", b"TLEV", b"TBGI", b"TBGC", b"TLNI", b"TLNV", b"TDRI", b"TDRV")
+_OPTIONAL_CHECKED_ON_LOAD: Final = (
+    b"HIST", b"HN13", b"HDRI", b"HDRV", b"TLEI", b"TLEV", b"TBGI", b"TBGC", b"TLNI", b"TLNV", b"TDRI", b"TDRV",
+    b"RWEH", b"RWEB", b"HN12",
+)  # fmt: skip
 
 
 def _id_dtype(n_words: int) -> np.dtype:
@@ -888,6 +916,7 @@ def build_ngram_sections(
     trigram_skyband_min: int | None = None,
     fitted: Any = None,
     codec: Codec = EXACT,
+    compact: bool = False,
 ) -> tuple[list[tuple[bytes, np.dtype | None, bytes | np.ndarray]], int]:
     """The sections of a model file for any estimator and order 2 or 3, and its minor version.
 
@@ -911,6 +940,10 @@ def build_ngram_sections(
     first (``codec.quantize``), keeping each context's dropped mass; every total, n₁/n₂/n₃₊
     and skyband is then computed from the decoded values, so the file is one consistent
     (quantised) model and writes format 1.5.
+
+    ``compact`` writes format 1.6 instead (:func:`compact_sections`, docs/FORMAT.md §7.18):
+    the same model with its successor lists and starts coded by chunked Elias-Fano, any
+    estimator and order and either codec, the Jelinek-Mercer bigram included.
     """
 
     n = tables.n_words
@@ -935,7 +968,7 @@ def build_ngram_sections(
     lam2 = 0.0
     if not kn:
         lam2 = float(fitted.lams[1])
-        if order == 2 and not quant:
+        if order == 2 and not quant and not compact:
             if len(lev2.value) and bool(np.any(lev2.ctx_total != np.add.reduceat(lev2.value, lev2.ctx_start[:-1]))):
                 raise InvalidArgumentError("a pruned Jelinek-Mercer bigram is written by the pruning step (format 1.2)")
             return build_sections(tables, lam=lam2, skyband_k=skyband_k, skyband_min=skyband_min), 0
@@ -1071,7 +1104,83 @@ def build_ngram_sections(
         meta["trigram_summary_min"] = SUMMARY_MIN
         meta["trigram_skyband_min"] = tmin
     sections[0] = (b"META", None, msgpack.packb(meta, use_bin_type=True))
-    return sections, QUANT_MINOR if quant else NGRAM_MINOR
+    minor = QUANT_MINOR if quant else NGRAM_MINOR
+    return compact_sections(sections, minor) if compact else (sections, minor)
+
+
+def _ef_sections(head_tag: bytes, bits_tag: bytes, values: np.ndarray) -> list[tuple[bytes, np.dtype | None, bytes | np.ndarray]]:
+    """The two sections of one chunked Elias-Fano sequence (§7.18): u32 headers when they fit, else u64."""
+    head, stream = ef_encode(values)
+    wide = len(head) and int(head.max()) > _U32_MAX
+    return [(head_tag, np.dtype("<u8") if wide else np.dtype("<u4"), head), (bits_tag, np.dtype("<u1"), stream)]
+
+
+def compact_sections(
+    sections: list[tuple[bytes, np.dtype | None, bytes | np.ndarray]], minor: int
+) -> tuple[list[tuple[bytes, np.dtype | None, bytes | np.ndarray]], int]:
+    """The format 1.6 sections of a 1.4/1.5 file's sections (docs/FORMAT.md §7.18).
+
+    The same model, with its monotone sequences coded by chunked Elias-Fano: the bigram
+    successors as v·(n+2) + position, the trigram successors as their index in v's
+    bigram row (every stored trigram (u, v, w) must have its bigram (v, w) stored:
+    pruning keeps it), the row starts and the trigram contexts' starts; the inverse
+    permutations are dropped (a reader computes them) and HN13 keeps N₁ and N₂ only.
+    """
+    if minor not in (NGRAM_MINOR, QUANT_MINOR):
+        raise InvalidArgumentError(f"only format 1.{NGRAM_MINOR}/1.{QUANT_MINOR} sections have a compact form, not 1.{minor}")
+    by = {tag: (dt, data) for tag, dt, data in sections}
+    meta = msgpack.unpackb(by[b"META"][1], raw=False)
+    n = int(meta["n_words"])
+    n_pos, n_hist = n + 2, n + 3
+    idt = _id_dtype(n)
+    rows = np.asarray(by[b"ROWS"][1], dtype=np.int64)
+    succ = np.asarray(by[b"SUCC"][1], dtype=np.int64)
+    row_of = np.repeat(np.arange(n_hist, dtype=np.int64), np.diff(rows))
+    new: dict[bytes, list[tuple[bytes, np.dtype | None, bytes | np.ndarray]]] = {
+        b"ROWS": _ef_sections(b"RWEH", b"RWEB", rows),
+        b"SUCC": _ef_sections(b"SEFH", b"SEFB", row_of * n_pos + succ),
+    }
+    if b"HN13" in by:
+        n123 = np.asarray(by[b"HN13"][1], dtype=np.int64).reshape(-1, 3)
+        new[b"HN13"] = [(b"HN12", idt, n123[:, :2].reshape(-1))]
+    if b"TSUC" in by:
+        b = len(succ)
+        lengths = EXACT.decode("compact", {t.decode(): np.asarray(by[t][1]) for t in CONTEXT_TAGS}, CONTEXT_TAGS).all()
+        lengths = np.asarray(lengths, dtype=np.int64)
+        starts = np.zeros(b + 1, dtype=np.int64)
+        np.cumsum(lengths, out=starts[1:])
+        tsuc = np.asarray(by[b"TSUC"][1], dtype=np.int64)
+        owner = np.repeat(np.arange(b, dtype=np.int64), lengths)
+        alph = np.asarray(by[b"ALPH"][1], dtype=np.int64)
+        v = alph[succ[owner]]
+        key2 = row_of * n_pos + succ  # increasing: rows by v, then position
+        want = v * n_pos + tsuc
+        at = np.searchsorted(key2, want)
+        if len(at) and (int(at.max()) >= b or not bool(np.all(key2[np.minimum(at, b - 1)] == want))):
+            raise InvalidArgumentError("a stored trigram (u, v, w) whose bigram (v, w) is not stored has no compact (1.6) form")
+        x = at - rows[v]
+        ctx = np.flatnonzero(lengths)
+        last = np.zeros(len(ctx), dtype=np.int64)
+        if len(ctx):
+            last = x[starts[ctx + 1] - 1] + 1  # each context's range: its last index + 1
+        base = np.zeros(len(ctx), dtype=np.int64)
+        if len(ctx) > 1:
+            np.cumsum(last[:-1], out=base[1:])
+        y = x + np.repeat(base, lengths[ctx])
+        new[b"TCTB"] = _ef_sections(b"TPTH", b"TPTB", starts)
+        new[b"TSUC"] = _ef_sections(b"TEFH", b"TEFB", y)
+    meta["successors"] = dict(SUCCESSORS_META)
+    out: list[tuple[bytes, np.dtype | None, bytes | np.ndarray]] = []
+    for tag, dt, data in sections:
+        if tag == b"META":
+            out.append((tag, None, msgpack.packb(meta, use_bin_type=True)))
+        elif tag in new:
+            out += new[tag]
+        elif tag in _COMPACT_DROPS or tag in _PLAIN_TRIGRAM_ONLY or tag == b"HN13":
+            continue
+        else:
+            out.append((tag, dt, data))
+    return out, COMPACT_MINOR
 
 
 def build(
@@ -1085,6 +1194,7 @@ def build(
     trigram_skyband_min: int | None = None,
     fitted: Any = None,
     codec: Codec = EXACT,
+    compact: bool = False,
 ) -> None:
     """Fit ``estimator`` to ``counts`` and write the model file atomically to ``path``.
 
@@ -1095,7 +1205,7 @@ def build(
     """
     sections, minor = build_ngram_sections(
         counts, tables, estimator, skyband_k=skyband_k, skyband_min=skyband_min,
-        trigram_skyband_min=trigram_skyband_min, fitted=fitted, codec=codec,
+        trigram_skyband_min=trigram_skyband_min, fitted=fitted, codec=codec, compact=compact,
     )
     atomic_write(path, encode_sections(sections, minor=minor))
 
@@ -1169,6 +1279,9 @@ class ModelArrays:
     raw: dict[str, memoryview]
     file_size: int
     _mmap: mmap.mmap
+    #: the successor lists, whatever their layout (docs/SEAMS.md, "The successor seam")
+    succ2: BigramLists
+    succ3: TrigramLists | None
 
     def close(self) -> None:
         # arrays keep exporting the buffer while alive; let the GC unmap when they go
@@ -1220,7 +1333,7 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
         raise _fail(
             name,
             f"unsupported format version {major}.{minor} (this library reads {FORMAT_VERSION[0]}.0 to "
-            f"{FORMAT_VERSION[0]}.2, {FORMAT_VERSION[0]}.{NGRAM_MINOR} and {FORMAT_VERSION[0]}.{QUANT_MINOR})",
+            f"{FORMAT_VERSION[0]}.2 and {FORMAT_VERSION[0]}.{NGRAM_MINOR} to {FORMAT_VERSION[0]}.{COMPACT_MINOR})",
         )
     if minor == 3:
         raise _fail(
@@ -1258,16 +1371,18 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
         sections[tag] = (code, off, length, crc)
     if -prev_end % ALIGN != size - prev_end or any(buf[prev_end:size]):
         raise _fail(name, "unexpected bytes after the last section")
-    missing = [t.decode() for t in _SECTIONS if t not in sections]
+    compact = minor == COMPACT_MINOR
+    required = [t for t in _SECTIONS if not (compact and t in _COMPACT_DROPS)] + (list(_COMPACT_BASE) if compact else [])
+    missing = [t.decode() for t in required if t not in sections]
     if minor < 3 and (b"HIST" in sections) != (minor == 2):
         raise _fail(name, "section HIST must be present exactly in format 1.2 (pruned) files")
     if minor < 3 and any(t in sections for t in _OPTIONAL if t != b"HIST"):
         raise _fail(name, f"format {major}.{minor} files have no Kneser-Ney or trigram sections")
     if missing:
         raise _fail(name, f"missing sections {', '.join(missing)}")
-    optional = [t for t in _OPTIONAL if t in sections]
-    small = [t for t in optional if verify or t in _OPTIONAL_CHECKED_ON_LOAD]
-    for tag in [*(_SECTIONS if verify else _CHECKED_ON_LOAD), *small]:
+    optional = [t for t in _OPTIONAL if t in sections and not (compact and t in _COMPACT_BASE)]
+    small = [t for t in [*optional, *(_COMPACT_BASE if compact else ())] if verify or t in _OPTIONAL_CHECKED_ON_LOAD]
+    for tag in [*(t for t in (_SECTIONS if verify else _CHECKED_ON_LOAD) if t in sections), *small]:
         code, off, length, crc = sections[tag]
         if zlib.crc32(buf[off : off + length]) != crc:
             raise _fail(name, f"section {tag.decode()} checksum mismatch (damaged file)")
@@ -1284,6 +1399,8 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
     arrays: dict[str, np.ndarray] = {}
     raw: dict[str, memoryview] = {}
     for tag, kind in _SECTIONS.items():
+        if compact and tag in _COMPACT_DROPS:
+            continue
         code, off, length, _ = sections[tag]
         label = tag.decode()
         if kind == "raw":
@@ -1300,20 +1417,98 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
             raise _fail(name, f"section {label} has element type {_DTYPES[code]}, expected {want}")
         arrays[label] = np.frombuffer(mm, dtype=want, count=length // want.itemsize, offset=off)
 
-    for tag in optional:
+    for tag in [*optional, *(_COMPACT_BASE if compact else ())]:
         code, off, length, _ = sections[tag]
         kind = _OPTIONAL[tag]
         if kind == "u2|u4":
             want = np.dtype("<u2") if code == 2 else np.dtype("<u4")
+        elif kind == "u4|u8":
+            want = np.dtype("<u8") if code == 4 else np.dtype("<u4")
         else:
             want = idt if kind == "id" else np.dtype("<" + kind)
         if _DTYPES[code] != want:
             raise _fail(name, f"section {tag.decode()} has element type {_DTYPES[code]}, expected {want}")
         arrays[tag.decode()] = np.frombuffer(mm, dtype=want, count=length // want.itemsize, offset=off)
+    efs = _expand_compact(name, meta, arrays, full=verify) if compact else {}
     trie = marisa_trie.Trie()
     trie.map(raw["TRIE"])
     _check_arrays(name, meta, trie, arrays, raw, full=verify)
-    return ModelArrays(name, (major, minor), meta, trie, arrays, raw, size, mm)
+    succ2: BigramLists
+    succ3: TrigramLists | None = None
+    rows_mv = memoryview(np.ascontiguousarray(arrays["ROWS"], dtype=np.int64)).cast("B").cast("q")  # type: ignore[arg-type]
+    if compact:
+        succ2 = EFBigramLists(name, efs["SEF"], arrays["ROWS"], n + 2)
+        if meta["order"] == 3:
+            succ3 = EFTrigramLists(name, efs["TEF"], efs["TPT"], succ2, rows_mv, arrays["ALPH"])
+    else:
+        succ2 = PlainBigramLists(arrays["SUCC"])
+        if meta["order"] == 3:
+            succ3 = PlainTrigramLists(name, arrays["TSUC"], arrays["TCTB"], EXACT.decode(name, arrays, CONTEXT_TAGS), succ2, rows_mv)
+    return ModelArrays(name, (major, minor), meta, trie, arrays, raw, size, mm, succ2, succ3)
+
+
+def _expand_compact(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], *, full: bool) -> dict[str, ChunkedEF]:
+    """Check a 1.6 file's Elias-Fano sequences (§7.18) and rebuild its vocabulary-sized arrays.
+
+    On every load (O(chunks) and O(vocabulary)): every sequence's headers and stream;
+    ROWS decoded; IDTK and APOS computed as the inverses of TKID and ALPH (checked to be
+    permutations by ``_check_arrays`` afterwards); HN13 rebuilt from HN12 and the row
+    lengths. With ``full`` every sequence is decoded into the arrays of a 1.4/1.5 file
+    (SUCC, TSUC, TLEN/TLEI/TLEV, TCTB), which ``_check_arrays`` then verifies as such.
+    """
+    n, b = meta["n_words"], meta["bigrams"]
+    n_pos, n_hist = n + 2, n + 3
+    idt = _id_dtype(n)
+
+    def seq(tag: str, count: int, *, strict: bool) -> ChunkedEF:
+        head, stream = a.pop(tag + "H"), a.pop(tag + "B")
+        ef_check_headers(name, f"sections {tag}H/{tag}B", head, stream, count, strict=strict)
+        return ChunkedEF(name, f"sections {tag}H/{tag}B", head, stream, count)
+
+    rows_ef = seq("RWE", n_hist + 1, strict=False)
+    rows = rows_ef.all()
+    if rows[0] != 0 or rows[-1] != b or bool(np.any(rows[1:] < rows[:-1])):
+        raise _fail(name, f"sections RWEH/RWEB: row starts are not increasing from 0 to {b}")
+    a["ROWS"] = rows.astype(np.uint32) if b <= _U32_MAX else rows.astype(np.uint64)
+    for label, inv, m in (("TKID", "IDTK", n), ("ALPH", "APOS", n_pos)):
+        arr = a[label]
+        if len(arr) != m or (m and int(arr.max()) >= m):
+            raise _fail(name, f"section {label} is not a valid permutation")
+        out = np.zeros(m, dtype=idt)
+        out[arr.astype(np.int64)] = np.arange(m)
+        a[inv] = out
+    efs = {"SEF": seq("SEF", b, strict=True)}
+    if efs["SEF"].end() > n_hist * n_pos:
+        raise _fail(name, "sections SEFH/SEFB: a successor past the last row")
+    if "HN12" in a:
+        hn = a.pop("HN12").astype(np.int64)
+        if len(hn) != 2 * n_hist:
+            raise _fail(name, f"section HN12 holds {len(hn)} entries, expected {2 * n_hist}")
+        n12 = hn.reshape(-1, 2)
+        n3 = np.diff(rows) - n12[:, 0] - n12[:, 1]
+        if bool(np.any(n3 < 0)):
+            raise _fail(name, "section HN12 counts more entries than a row has")
+        a["HN13"] = np.column_stack([n12, n3]).reshape(-1).astype(np.uint32)
+    if meta["order"] == 3:
+        t = meta["trigrams"]
+        efs["TPT"] = seq("TPT", b + 1, strict=False)
+        if efs["TPT"].first() != 0 or efs["TPT"].end() != t + 1:
+            raise _fail(name, f"sections TPTH/TPTB do not run from 0 to {t}")
+        efs["TEF"] = seq("TEF", t, strict=True)
+    if full:
+        succ2 = EFBigramLists(name, efs["SEF"], rows, n_pos)
+        a["SUCC"] = succ2.all().astype(idt)
+        if meta["order"] == 3:
+            rows_mv = memoryview(np.ascontiguousarray(rows, dtype=np.int64)).cast("B").cast("q")  # type: ignore[arg-type]
+            succ3 = EFTrigramLists(name, efs["TEF"], efs["TPT"], succ2, rows_mv, a["ALPH"])
+            lengths = succ3.lengths()
+            a["TSUC"] = succ3.all().astype(idt)
+            for tag, _, enc in EXACT.encode(CONTEXT_TAGS, lengths):
+                a[tag.decode()] = np.asarray(enc)
+            starts = np.zeros(b + 1, dtype=np.int64)
+            np.cumsum(lengths, out=starts[1:])
+            a["TCTB"] = starts[: b + 1 : CTX_BLOCK].astype(np.uint32)
+    return efs
 
 
 def _check_meta(name: str, meta: Any, size: int) -> dict[str, Any]:
@@ -1372,14 +1567,20 @@ def _check_model_kind(name: str, meta: dict[str, Any], minor: int, tags: set[byt
         meta["estimator"], meta["order"] = "jm", 2
         return
     codec = codec_named(name, meta.get("codec"))
-    if (codec.name != EXACT.name) != (minor == QUANT_MINOR):
+    compact = minor == COMPACT_MINOR
+    layout = meta.get("successors")
+    if compact != (layout is not None):
+        raise _fail(name, f"metadata field 'successors' belongs to format 1.{COMPACT_MINOR} files exactly")
+    if compact and layout != SUCCESSORS_META:
+        raise _fail(name, f"unknown successor layout {layout!r} (this library reads {SUCCESSORS_META!r})"[:300])
+    if not compact and (codec.name != EXACT.name) != (minor == QUANT_MINOR):
         raise _fail(name, f"format 1.{minor} files do not use codec {codec.name!r} (1.{NGRAM_MINOR}: exact values, 1.{QUANT_MINOR}: quantised)")
     est, order = meta.get("estimator"), meta.get("order")
     if est not in ESTIMATORS:
         raise _fail(name, f"metadata field 'estimator' is invalid: {est!r}"[:200])
     if isinstance(order, bool) or order not in ORDERS:
         raise _fail(name, f"metadata field 'order' is invalid: {order!r}"[:200])
-    if est == "jm" and order == 2 and minor != QUANT_MINOR:
+    if est == "jm" and order == 2 and minor not in (QUANT_MINOR, COMPACT_MINOR):
         raise _fail(name, f"a Jelinek-Mercer bigram model is a format 1.0-1.2 or 1.{QUANT_MINOR} file, not 1.{minor}")
     if est == "kn":
         ds = meta.get("discounts")
@@ -1401,8 +1602,13 @@ def _check_model_kind(name: str, meta: dict[str, Any], minor: int, tags: set[byt
         if isinstance(lam3, bool) or not isinstance(lam3, (int, float)) or not 0.0 <= float(lam3) <= 1.0:
             raise _fail(name, f"metadata field 'lambda3' is invalid: {lam3!r}"[:200])
         meta["lambda3"] = float(lam3)
-    want = set(_NGRAM_BASE) | ({b"HN13"} if est == "kn" else set()) | (set(_TRIGRAM) if order == 3 else set())
-    have = tags & set(_OPTIONAL)
+    if compact:
+        want = set(_NGRAM_BASE) | ({b"HN12"} if est == "kn" else set())
+        want |= (set(_TRIGRAM) - set(_PLAIN_TRIGRAM_ONLY)) | set(_COMPACT_TRIGRAM) if order == 3 else set()
+        have = tags & (set(_OPTIONAL) - set(_COMPACT_BASE))
+    else:
+        want = set(_NGRAM_BASE) | ({b"HN13"} if est == "kn" else set()) | (set(_TRIGRAM) if order == 3 else set())
+        have = tags & set(_OPTIONAL)
     if have != want:
         extra = sorted(t.decode() for t in have - want)
         lost = sorted(t.decode() for t in want - have)
@@ -1452,20 +1658,23 @@ def _check_ngram_arrays(name: str, meta: dict[str, Any], a: dict[str, np.ndarray
     if meta["order"] == 3:
         t, j, b = meta["trigrams"], meta["trigram_contexts"], meta["bigrams"]
         codec.check(name, a, TRIGRAM_TAGS, t)
-        EXACT.check(name, a, CONTEXT_TAGS, b)
+        plain = "TLEN" in a  # absent: a 1.6 file opened without verify (its sequences checked by _expand_compact)
+        if plain:
+            EXACT.check(name, a, CONTEXT_TAGS, b)
         nseg, K = len(a["TSGS"]), meta["skyband_k"]
         expected = {
-            "TCTB": b // CTX_BLOCK + 1, "TSUC": t,
+            **({"TCTB": b // CTX_BLOCK + 1, "TSUC": t} if plain else {}),
             "TLNV": 4 * len(a["TLNI"]), "TDRV": len(a["TDRI"]), "TSGE": nseg, "TSKP": nseg + 1, "TSKC": nseg * K,
         }  # fmt: skip
         for label, want in expected.items():
             if len(a[label]) != want:
                 raise _fail(name, f"section {label} holds {len(a[label])} entries, expected {want}")
-        tctb = a["TCTB"]
-        last = (b // CTX_BLOCK) * CTX_BLOCK  # the end: the last block's base + its lengths (at most 15 reads)
-        tail = EXACT.decode(name, a, CONTEXT_TAGS).slice(last, b)
-        if tctb[0] != 0 or np.any(tctb[1:] < tctb[:-1]) or int(tctb[-1]) + sum(tail) != t:
-            raise _fail(name, f"sections TCTB/TLEN do not run from 0 to {t}")
+        if plain:
+            tctb = a["TCTB"]
+            last = (b // CTX_BLOCK) * CTX_BLOCK  # the end: the last block's base + its lengths (at most 15 reads)
+            tail = EXACT.decode(name, a, CONTEXT_TAGS).slice(last, b)
+            if tctb[0] != 0 or np.any(tctb[1:] < tctb[:-1]) or int(tctb[-1]) + sum(tail) != t:
+                raise _fail(name, f"sections TCTB/TLEN do not run from 0 to {t}")
         _sorted_sparse(name, "TLNI/TLNV", a["TLNI"], np.ones(len(a["TLNI"]), np.int64), b)
         _sorted_sparse(name, "TDRI/TDRV", a["TDRI"], a["TDRV"], b)
         if a["TSKP"][0] != 0 or int(a["TSKP"][-1]) != len(a["TSKI"]):
@@ -1564,7 +1773,7 @@ def _check_arrays(
         "TOPK": sum(topk_levels(n)) * TOPK_FANOUT,
         "UNIG": n_pos,
         "ROWS": n_hist + 1,
-        "SUCC": b,
+        **({"SUCC": b} if "SUCC" in a else {}),
         "SEGE": len(a["SEGS"]),
         "SKYP": len(a["SEGS"]) + 1,
         "SKYC": len(a["SEGS"]) * meta["skyband_k"],

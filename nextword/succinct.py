@@ -156,6 +156,14 @@ class ChunkedEF:
     def __len__(self) -> int:
         return self._n
 
+    def first(self) -> int:
+        """Y₀ (0 for an empty sequence): the first chunk's header value."""
+        return self._first_l[0]
+
+    def end(self) -> int:
+        """Y_{N−1} + 1 (0 for an empty sequence): the sentinel header value."""
+        return self._first_l[-1]
+
     def _bad(self, c: int) -> ModelFormatError:
         return ModelFormatError(f"{self._where}: {self._label} chunk {c} does not decode to its values")
 
@@ -200,8 +208,11 @@ class ChunkedEF:
         c0, c1 = s >> _SHIFT, (e - 1) >> _SHIFT
         if c0 == c1:
             return self.chunk(c0)[s - (c0 << _SHIFT) : e - (c0 << _SHIFT)]
-        parts = [self.chunk(c) for c in range(c0, c1 + 1)]
-        return np.concatenate(parts)[s - (c0 << _SHIFT) : e - (c0 << _SHIFT)]
+        if c1 - c0 < 8:
+            block = np.concatenate([self.chunk(c) for c in range(c0, c1 + 1)])
+        else:
+            block = self._decode(c0, c1 + 1)
+        return block[s - (c0 << _SHIFT) : e - (c0 << _SHIFT)]
 
     def lower_bound(self, y: int, s: int, e: int) -> int:
         """The first j in [s, e) with Y_j ≥ y (e if none): a search over chunk heads, then one chunk."""
@@ -227,16 +238,37 @@ class ChunkedEF:
         k = a + int(np.searchsorted(vals[a:b], y, side="left"))
         return base + k
 
+    def take(self, idx: np.ndarray) -> np.ndarray:
+        """Y at every index of ``idx`` (int64); decodes each touched chunk once."""
+        idx = np.asarray(idx, dtype=np.int64)
+        if len(idx) == 0:
+            return np.zeros(0, dtype=np.int64)
+        if int(idx.min()) < 0 or int(idx.max()) >= self._n:
+            raise IndexError("Elias-Fano index out of range")
+        ch = idx >> _SHIFT
+        c0, c1 = int(ch.min()), int(ch.max())
+        if c1 - c0 < 8:
+            block = np.concatenate([self.chunk(c) for c in range(c0, c1 + 1)])
+        else:
+            block = self._decode(c0, c1 + 1)
+        return block[idx - (c0 << _SHIFT)]
+
     def all(self) -> np.ndarray:
         """Every value (int64): the whole stream decoded at once (verification, export, prune)."""
-        n = self._n
-        if n == 0:
+        return self._decode(0, (self._n + CHUNK - 1) >> _SHIFT)
+
+    def _decode(self, c0: int, c1: int) -> np.ndarray:
+        """The values of chunks c0 … c1−1, vectorised (long ranges; the cache is not used)."""
+        if c1 <= c0:
             return np.zeros(0, dtype=np.int64)
-        c = (n + CHUNK - 1) >> _SHIFT
-        first, off = self._first, self._off
-        m = np.minimum(CHUNK, n - (np.arange(c, dtype=np.int64) << _SHIFT))
+        n = min(self._n, c1 << _SHIFT) - (c0 << _SHIFT)
+        cs = np.arange(c0, c1, dtype=np.int64)
+        first, off = self._first[c0 : c1 + 1], self._off[c0 : c1 + 1]
+        m = np.minimum(CHUNK, self._n - (cs << _SHIFT))
         low, _ = ef_chunk_bits(first[1:] - first[:-1], m)
-        bits = np.unpackbits(self._stream, bitorder="little")
+        b0 = int(off[0]) >> 3
+        bits = np.unpackbits(self._stream[b0 : (int(off[-1]) + 7) >> 3], bitorder="little")
+        off = off - 8 * b0
         ch = np.arange(n, dtype=np.int64) >> _SHIFT
         i = np.arange(n, dtype=np.int64) - (ch << _SHIFT)
         lw = low[ch]
@@ -259,8 +291,8 @@ class ChunkedEF:
         if not np.array_equal(owner, ch):
             raise ModelFormatError(f"{self._where}: {self._label} high bits do not match the chunk sizes")
         hi = ones - hstart[ch] - i
-        vals = first[ch] + ((hi << lw) | lo)
-        if bool((vals > first[1:][ch]).any()):
-            bad = int(np.flatnonzero(vals > first[1:][ch])[0])
-            raise self._bad(bad >> _SHIFT)
+        vals = first[:-1][ch] + ((hi << lw) | lo)
+        over = vals > first[1:][ch]
+        if bool(over.any()):
+            raise self._bad(c0 + (int(np.flatnonzero(over)[0]) >> _SHIFT))
         return vals

@@ -1,0 +1,279 @@
+"""Query-side access to the successor lists of a model file, whatever their layout.
+
+The store lays the n-grams out as lists of successors per context; how a list is coded is
+the file's business (docs/SEAMS.md, "The successor seam"): formats 1.0–1.5 store each
+successor as its alphabetical position in one plain array (``SUCC``, ``TSUC``), format 1.6
+as chunked Elias-Fano sequences (:mod:`nextword.succinct`, docs/FORMAT.md §7.18), the
+trigram successors remapped to their index in the bigram row of v. The query code asks
+these views, never the arrays, so a new layout is one new pair of classes here.
+
+Every method takes the context it is about (v for a bigram row, the trigram context's
+bigram entry j and its v), because a compressed layout needs it to turn a stored number
+into a position; the plain layout ignores it. Entry indices are global (the row's entries
+are ``rows[v] … rows[v+1]−1``, a trigram context's ``span(j)``), as the value codecs'.
+"""
+
+from __future__ import annotations
+
+import bisect
+import sys
+from abc import ABC, abstractmethod
+from typing import Final
+
+import numpy as np
+
+from .codecs import ValueView
+from .errors import ModelFormatError
+from .succinct import ChunkedEF
+
+__all__ = ["BigramLists", "TrigramLists", "PlainBigramLists", "EFBigramLists", "PlainTrigramLists", "EFTrigramLists"]
+
+#: bigram entries per block of the plain layout's TCTB (docs/FORMAT.md §7.14)
+CTX_BLOCK: Final = 16
+
+
+def _view(arr: np.ndarray) -> memoryview:
+    """A memoryview for fast scalar reads (Python ints) of a little-endian array."""
+    if sys.byteorder != "little":  # pragma: no cover - no big-endian CI
+        arr = arr.astype(arr.dtype.newbyteorder("="))
+    fmt = {1: "B", 2: "H", 4: "I", 8: "Q"}[arr.dtype.itemsize]
+    return memoryview(np.ascontiguousarray(arr)).cast("B").cast(fmt)  # type: ignore[arg-type,call-overload]
+
+
+class BigramLists(ABC):
+    """The alphabetical positions of the successors of each bigram context (row) v."""
+
+    @abstractmethod
+    def lower_bound(self, v: int, pos: int, s: int, e: int) -> int:
+        """The first entry in [s, e) (inside row v) whose position is ≥ ``pos`` (e if none)."""
+
+    @abstractmethod
+    def at(self, v: int, i: int) -> int:
+        """The position of entry ``i`` of row v."""
+
+    @abstractmethod
+    def slice(self, v: int, s: int, e: int) -> np.ndarray:
+        """The positions of entries s … e−1 of row v (int64)."""
+
+    @abstractmethod
+    def take(self, v: int, idx: np.ndarray) -> np.ndarray:
+        """The positions of the entries ``idx`` of row v (int64)."""
+
+    @abstractmethod
+    def all(self) -> np.ndarray:
+        """The position of every entry (int64, entry order): verification, export, pruning."""
+
+    def find(self, v: int, pos: int, s: int, e: int) -> int:
+        """The entry of row v in [s, e) with position ``pos``, or −1."""
+        i = self.lower_bound(v, pos, s, e)
+        return i if i < e and self.at(v, i) == pos else -1
+
+
+class PlainBigramLists(BigramLists):
+    """Formats 1.0–1.5: ``SUCC``, one position per entry (u16 or u32)."""
+
+    def __init__(self, succ: np.ndarray) -> None:
+        self._a = succ
+        self._mv = _view(succ)
+
+    def lower_bound(self, v: int, pos: int, s: int, e: int) -> int:
+        return bisect.bisect_left(self._mv, pos, s, e)
+
+    def at(self, v: int, i: int) -> int:
+        return self._mv[i]  # type: ignore[no-any-return]
+
+    def slice(self, v: int, s: int, e: int) -> np.ndarray:
+        return self._a[s:e].astype(np.int64)
+
+    def take(self, v: int, idx: np.ndarray) -> np.ndarray:
+        return self._a[np.asarray(idx, dtype=np.int64)].astype(np.int64)
+
+    def all(self) -> np.ndarray:
+        return np.asarray(self._a, dtype=np.int64)
+
+
+class EFBigramLists(BigramLists):
+    """Format 1.6: Y = v·(n+2) + position, one chunked Elias-Fano sequence (§7.18)."""
+
+    def __init__(self, where: str, ef: ChunkedEF, rows: np.ndarray, n_pos: int) -> None:
+        self._where, self._ef, self._rows, self._u = where, ef, rows, n_pos
+
+    def _damaged(self, v: int) -> ModelFormatError:
+        return ModelFormatError(f"{self._where}: damaged model data: a successor of row {v} outside the positions")
+
+    def lower_bound(self, v: int, pos: int, s: int, e: int) -> int:
+        return self._ef.lower_bound(v * self._u + pos, s, e)
+
+    def at(self, v: int, i: int) -> int:
+        p = self._ef.at(i) - v * self._u
+        if not 0 <= p < self._u:
+            raise self._damaged(v)
+        return p
+
+    def _check(self, v: int, p: np.ndarray) -> np.ndarray:
+        if len(p) and (int(p.min()) < 0 or int(p.max()) >= self._u):
+            raise self._damaged(v)
+        return p
+
+    def slice(self, v: int, s: int, e: int) -> np.ndarray:
+        return self._check(v, self._ef.slice(s, e) - v * self._u)
+
+    def take(self, v: int, idx: np.ndarray) -> np.ndarray:
+        return self._check(v, self._ef.take(idx) - v * self._u)
+
+    def all(self) -> np.ndarray:
+        rows = np.asarray(self._rows, dtype=np.int64)
+        owner = np.repeat(np.arange(len(rows) - 1, dtype=np.int64), np.diff(rows))
+        p = self._ef.all() - owner * self._u
+        if len(p) and (int(p.min()) < 0 or int(p.max()) >= self._u):
+            raise ModelFormatError(f"{self._where}: damaged model data: a bigram successor outside the positions")
+        return p
+
+
+class TrigramLists(ABC):
+    """The successors of each trigram context, found by its bigram entry j = (u, v)."""
+
+    @abstractmethod
+    def span(self, j: int) -> tuple[int, int]:
+        """The context's entries [s, e) (s == e: not a trigram context); checked inside the level."""
+
+    @abstractmethod
+    def lengths(self) -> np.ndarray:
+        """The number of successors of every bigram entry (int64)."""
+
+    @abstractmethod
+    def lower_bound(self, j: int, v: int, pos: int, s: int, e: int) -> int:
+        """The first entry in [s, e) (inside context j, whose last word is v) with position ≥ ``pos``."""
+
+    @abstractmethod
+    def at(self, j: int, v: int, i: int) -> int:
+        """The position of entry ``i`` of context j."""
+
+    @abstractmethod
+    def slice(self, j: int, v: int, s: int, e: int) -> np.ndarray:
+        """The positions of entries s … e−1 of context j (int64)."""
+
+    @abstractmethod
+    def bigram_entries(self, j: int, v: int, s: int, e: int) -> np.ndarray:
+        """For entries s … e−1 of context j (u, v), the bigram entry (v, w) of each successor w, −1 if not stored."""
+
+    @abstractmethod
+    def all(self) -> np.ndarray:
+        """The position of every trigram entry (int64, entry order)."""
+
+
+class PlainTrigramLists(TrigramLists):
+    """Formats 1.4/1.5: ``TSUC`` positions, lengths in ``TLEN`` (a codec view) with block bases ``TCTB``."""
+
+    def __init__(self, where: str, tsuc: np.ndarray, tctb: np.ndarray, tlen: ValueView, bigrams: BigramLists, rows: memoryview) -> None:
+        self._where, self._a, self._mv = where, tsuc, _view(tsuc)
+        self._tctb, self._tlen = _view(tctb), tlen
+        self._t = len(tsuc)
+        self._s2, self._rows = bigrams, rows
+
+    def span(self, j: int) -> tuple[int, int]:
+        b0 = j - (j % CTX_BLOCK)
+        s = self._tctb[j // CTX_BLOCK] + (sum(self._tlen.slice(b0, j)) if j > b0 else 0)
+        e = s + self._tlen.at(j)
+        if not 0 <= s <= e <= self._t:
+            raise ModelFormatError(f"{self._where}: damaged model data: trigram context {j} has entries [{s}, {e})")
+        return s, e
+
+    def lengths(self) -> np.ndarray:
+        return np.asarray(self._tlen.all(), dtype=np.int64)
+
+    def lower_bound(self, j: int, v: int, pos: int, s: int, e: int) -> int:
+        return bisect.bisect_left(self._mv, pos, s, e)
+
+    def at(self, j: int, v: int, i: int) -> int:
+        return self._mv[i]  # type: ignore[no-any-return]
+
+    def slice(self, j: int, v: int, s: int, e: int) -> np.ndarray:
+        return self._a[s:e].astype(np.int64)
+
+    def bigram_entries(self, j: int, v: int, s: int, e: int) -> np.ndarray:
+        rs, re_ = self._rows[v], self._rows[v + 1]
+        tpos = self.slice(j, v, s, e)
+        row = self._s2.slice(v, rs, re_)
+        if len(row) == 0:
+            return np.full(len(tpos), -1, dtype=np.int64)
+        at = np.minimum(np.searchsorted(row, tpos), len(row) - 1)
+        return np.where(row[at] == tpos, rs + at, -1).astype(np.int64)
+
+    def all(self) -> np.ndarray:
+        return np.asarray(self._a, dtype=np.int64)
+
+
+class EFTrigramLists(TrigramLists):
+    """Format 1.6: successors as their index x in v's bigram row, made one increasing sequence (§7.18).
+
+    Y_i = x_i + B_j for the entries of context j, B_j = Y_{start(j)−1} + 1 (0 for the first
+    entry of the level), so the level is one chunked Elias-Fano sequence and a context's
+    successors cost about 2 + log₂(row length of v / context length) bits each.
+    """
+
+    def __init__(self, where: str, ef: ChunkedEF, ptr: ChunkedEF, bigrams: BigramLists, rows: memoryview, alph: np.ndarray) -> None:
+        self._where, self._ef, self._ptr, self._s2, self._rows, self._alph = where, ef, ptr, bigrams, rows, alph
+        self._t = len(ef)
+
+    def _damaged(self, what: str) -> ModelFormatError:
+        return ModelFormatError(f"{self._where}: damaged model data: {what}")
+
+    def span(self, j: int) -> tuple[int, int]:
+        s, e = self._ptr.at(j), self._ptr.at(j + 1)
+        if not 0 <= s <= e <= self._t:
+            raise self._damaged(f"trigram context {j} has entries [{s}, {e})")
+        return s, e
+
+    def lengths(self) -> np.ndarray:
+        return np.diff(self._ptr.all())
+
+    def _base(self, s: int) -> int:
+        return 0 if s == 0 else self._ef.at(s - 1) + 1
+
+    def _x(self, j: int, v: int, y: np.ndarray, s: int) -> tuple[np.ndarray, int]:
+        """Row-v indices of decoded values ``y`` of context j (first entry s), checked; and rows[v]."""
+        x = y - self._base(s)
+        rs, re_ = self._rows[v], self._rows[v + 1]
+        if len(x) and (int(x.min()) < 0 or int(x.max()) >= re_ - rs):
+            raise self._damaged(f"a successor of trigram context {j} outside the row of its last word")
+        return x, rs
+
+    def lower_bound(self, j: int, v: int, pos: int, s: int, e: int) -> int:
+        rs, re_ = self._rows[v], self._rows[v + 1]
+        k = self._s2.lower_bound(v, pos, rs, re_) - rs
+        ctx_s = self._ptr.at(j)
+        return self._ef.lower_bound(self._base(ctx_s) + k, s, e)
+
+    def at(self, j: int, v: int, i: int) -> int:
+        ctx_s = self._ptr.at(j)
+        x, rs = self._x(j, v, np.asarray([self._ef.at(i)], dtype=np.int64), ctx_s)
+        return self._s2.at(v, rs + int(x[0]))
+
+    def slice(self, j: int, v: int, s: int, e: int) -> np.ndarray:
+        if s >= e:
+            return np.zeros(0, dtype=np.int64)
+        return self._s2.take(v, self.bigram_entries(j, v, s, e))
+
+    def bigram_entries(self, j: int, v: int, s: int, e: int) -> np.ndarray:
+        x, rs = self._x(j, v, self._ef.slice(s, e), self._ptr.at(j))
+        return x + rs
+
+    def all(self) -> np.ndarray:
+        starts = self._ptr.all()
+        lens = np.diff(starts)
+        y = self._ef.all()
+        if len(y) == 0:
+            return y
+        ctx = np.flatnonzero(lens)
+        first = starts[ctx]
+        base = np.zeros(len(ctx), dtype=np.int64)
+        nz = first > 0
+        base[nz] = y[first[nz] - 1] + 1
+        x = y - np.repeat(base, lens[ctx])
+        succ = self._s2.all()
+        rows = np.asarray(self._rows, dtype=np.int64)
+        v = np.repeat(self._alph[succ[ctx]].astype(np.int64), lens[ctx])
+        if int(x.min()) < 0 or bool((x >= rows[v + 1] - rows[v]).any()):
+            raise self._damaged("a trigram successor outside the row of its context's last word")
+        return succ[rows[v] + x]
