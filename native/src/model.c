@@ -127,8 +127,8 @@ static const spec SPECS[] = {
     {"TSKC", K_U24, 0, 0},
     /* format 1.6 (§7.18): chunked Elias-Fano sequences (header u32 or u64, stream u8) and HN12;
      * read only in a 1.6 file (an older file ignores them as unknown tags) */
-    {"RWEH", K_U48, 0, 1}, {"RWEB", K_U1, 0, 1},  {"SEFH", K_U48, 0, 1}, {"SEFB", K_U1, 0, 0},
-    {"TPTH", K_U48, 0, 1}, {"TPTB", K_U1, 0, 0},  {"TEFH", K_U48, 0, 1}, {"TEFB", K_U1, 0, 0},
+    {"RWEH", K_U48, 0, 1}, {"RWEB", K_U1, 0, 1},  {"SEFH", K_U48, 0, 0}, {"SEFB", K_U1, 0, 0},
+    {"TPTH", K_U48, 0, 0}, {"TPTB", K_U1, 0, 0},  {"TEFH", K_U48, 0, 0}, {"TEFB", K_U1, 0, 0},
     {"HN12", K_ID, 0, 1},
 };
 #define N_SPECS ((int)(sizeof SPECS / sizeof SPECS[0]))
@@ -569,6 +569,8 @@ static nw_status open_lists(nw_model *m, const ef_raw *raw, nw_error *err) {
                        (unsigned long long)(m->TKID.n != n ? n : npos));
     nw_status st;
     const ef_raw *r = raw;
+    if (b > 0xFFFFFFFFu) /* ROWS is made as u32 below (a 1.4 file's ROWS is u32 too) */
+        return nw_fail(err, NW_E_FORMAT, "a format 1.6 file of %llu bigrams: more than this library reads", (unsigned long long)b);
     if ((st = nw_ef_open(&m->rwe, "RWEH/RWEB", r[0].head, r[0].head_n, r[0].hw, r[0].stream, r[0].stream_len, nhist + 1, 0, err)))
         return st;
     if ((st = nw_ef_open(&m->sef, "SEFH/SEFB", r[1].head, r[1].head_n, r[1].hw, r[1].stream, r[1].stream_len, b, 1, err)))
