@@ -12,18 +12,37 @@ cannot be built (unless NEXTWORD_REQUIRE_NATIVE=1).
 from __future__ import annotations
 
 import random
+import struct
 import subprocess
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+import nextword
 from nextword.errors import ModelFormatError
+from nextword.mix import load_mix, write_mix
+from nextword.prune import prune_model
+from nextword.store import HEADER, atomic_write, read_model
 from nextword.succinct import CHUNK, ChunkedEF, ef_check_headers, ef_encode
 
-from test_native import _make, build_dir  # noqa: F401 - build_dir is a fixture used here
+from test_native import (  # noqa: F401 - build_dir, native, corpus and fuzz_driver are fixtures used here
+    Native,
+    _make,
+    _queries,
+    _recrc,
+    _same,
+    _sections,
+    build_dir,
+    check_mutants_under_sanitizers,
+    corpus,
+    fuzz_driver,
+    native,
+)
+from test_native_quant import NW_E_DAMAGED, NW_E_FORMAT, NW_E_UNSUPPORTED, NW_E_VERSION, _both_refuse, _meta_edit, _retable
 
 
 @pytest.fixture(scope="module")
@@ -200,3 +219,302 @@ def test_chunk_size_is_the_documented_one() -> None:
     assert CHUNK == 64
     header = (Path(__file__).resolve().parent.parent / "native" / "src" / "ef.h").read_text(encoding="utf-8")
     assert "#define NW_EF_CHUNK 64" in header and "#define NW_EF_PAD 8" in header
+
+
+# -- whole 1.6 files: the same answers as nextword.Model ---------------------------------------------
+
+KINDS = {
+    "jm2": dict(),
+    "kn2": dict(smoothing="kn", skyband_min=8),
+    "jm3": dict(order=3),
+    "kn3": dict(smoothing="kn", order=3, skyband_min=8, skyband_k=4),
+}
+FILES = ["jm2", "jm2-q5", "kn2", "kn2-q5", "kn3", "kn3-q5", "jm3-q5", "kn3-pruned"]
+
+
+@pytest.fixture(scope="module")
+def cmodels(corpus: tuple[list[str], list[str]], tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
+    """1.6 files of every kind, exact and 5-bit; a pruned 1.6 KN trigram (dropped mass); and the
+    1.4/1.5 file of the same model beside each KN trigram (name + "-plain")."""
+    train, _ = corpus
+    d = tmp_path_factory.mktemp("native-compact-models")
+    out: dict[str, Path] = {}
+    for name in [f for f in FILES if f != "kn3-pruned"]:
+        kind, _, q = name.partition("-q")
+        out[name] = d / f"{name}.nwm"
+        nextword.train_texts(train, out[name], min_count=2, quantize=int(q) if q else None, compact=True, **KINDS[kind])  # type: ignore[arg-type]
+    for name in ("kn3", "kn3-q5"):
+        out[f"{name}-plain"] = d / f"{name}-plain.nwm"
+        q = 5 if name.endswith("q5") else None
+        nextword.train_texts(train, out[f"{name}-plain"], min_count=2, quantize=q, **KINDS["kn3"])  # type: ignore[arg-type]
+    chunks, _ = prune_model(nextword.load(out["kn3"]), int(out["kn3"].stat().st_size * 0.6))
+    out["kn3-pruned"] = d / "kn3-pruned.nwm"
+    atomic_write(out["kn3-pruned"], chunks)
+    return out
+
+
+def _open(native: Native, path: Path) -> tuple[Any, Any]:
+    code, msg, m = native.open(path)
+    assert code == 0, msg
+    return m, native.session(m)
+
+
+def _close(native: Native, m: Any, s: Any) -> None:
+    native.lib.nw_session_free(s)
+    native.lib.nw_close(m)
+
+
+def test_the_files_are_what_the_comparison_needs(cmodels: dict[str, Path]) -> None:
+    # format 1.6 with META successors ef/1 (docs/FORMAT.md §7.18), the codec asked for; the pruned
+    # file has dropped mass; the plain files are 1.4/1.5 (the same model, other layout)
+    for name, path in cmodels.items():
+        arrays = read_model(path)
+        if name.endswith("-plain"):
+            assert arrays.version == ((1, 5) if "q5" in name else (1, 4)), name
+            continue
+        assert arrays.version == (1, 6), name
+        assert arrays.meta["successors"] == {"name": "ef", "version": 1}
+        assert arrays.meta["codec"]["name"] == ("quant" if "q5" in name else "exact"), name
+        tags = set(_sections(path.read_bytes()))
+        assert {b"RWEH", b"RWEB", b"SEFH", b"SEFB"} <= tags and not tags & {b"SUCC", b"ROWS", b"IDTK", b"APOS", b"TSUC"}
+        assert ({b"TPTH", b"TPTB", b"TEFH", b"TEFB"} <= tags) == ("3" in name), name
+        assert (b"HN12" in tags) == name.startswith("kn"), name
+    assert len(read_model(cmodels["kn3-pruned"]).arrays["HDRI"]) > 0
+
+
+@pytest.mark.parametrize("name", FILES)
+def test_compact_suggest_equals_python_on_held_out_queries(native: Native, cmodels: dict[str, Path],
+                                                           corpus: tuple[list[str], list[str]], name: str) -> None:
+    # reference: nextword.Model.suggest on the same 1.6 file; 1,200 held-out queries per file
+    # (next word, 1-3 letter prefixes, casing, sentence starts, unseen contexts), bit for bit
+    model = nextword.load(cmodels[name])
+    m, s = _open(native, cmodels[name])
+    try:
+        bad, answered, bit_equal, probs = [], 0, 0, 0
+        for typed, k in _queries(corpus[1], 1200, seed=sum(map(ord, name))):
+            code, ours = native.suggest(s, typed, k)
+            assert code == 0, (typed, k, code)
+            theirs = model.suggest(typed, k)
+            answered += bool(theirs)
+            if not _same(ours, theirs):
+                bad.append((typed, k, ours, theirs))
+            bit_equal += sum(p == t.prob for (_, p), t in zip(ours, theirs))
+            probs += len(theirs)
+        assert not bad, bad[:5]
+        assert answered > 900
+        assert bit_equal == probs
+    finally:
+        _close(native, m, s)
+
+
+@pytest.mark.parametrize("name", ["jm2-q5", "kn2", "kn3", "kn3-q5", "kn3-pruned"])
+def test_compact_prob_equals_prob_after(native: Native, cmodels: dict[str, Path], corpus: tuple[list[str], list[str]],
+                                        name: str) -> None:
+    # reference: nextword.Model.prob_after (every history form: start, <unk>, one or two words)
+    model = nextword.load(cmodels[name])
+    m, s = _open(native, cmodels[name])
+    rng = random.Random(13)
+    words = [w for ln in corpus[1][:300] for w in ln.split()][:600] + ["</s>", "<unk>", "zzqx", "The", "THE"]
+    try:
+        for _ in range(500):
+            hist: list[str | None] = rng.choice([[], [None], ["<unk>"], [rng.choice(words)], [rng.choice(words), rng.choice(words)],
+                                                 ["<s>", rng.choice(words)], [rng.choice(words), "<s>", rng.choice(words)]])
+            hist = [h for h in hist if h != "</s>"]
+            w = rng.choice(words)
+            code, p = native.prob(s, w, hist)
+            assert code == 0
+            assert p == model.prob_after(w, hist), (w, hist)
+    finally:
+        _close(native, m, s)
+
+
+@pytest.mark.parametrize("name", ["kn3", "kn3-q5"])
+def test_a_compact_file_answers_as_its_plain_layout(native: Native, cmodels: dict[str, Path],
+                                                    corpus: tuple[list[str], list[str]], name: str) -> None:
+    # the 1.6 file and the 1.4/1.5 file of the same training run are one model (§7.18: "stores the
+    # same model"): the C runtime gives the same words and the same floats from both layouts
+    m1, s1 = _open(native, cmodels[name])
+    m2, s2 = _open(native, cmodels[f"{name}-plain"])
+    try:
+        for typed, k in _queries(corpus[1], 600, seed=2):
+            assert native.suggest(s1, typed, k) == native.suggest(s2, typed, k), typed
+    finally:
+        _close(native, m1, s1)
+        _close(native, m2, s2)
+
+
+def test_a_mixture_with_a_compact_part_equals_python(native: Native, cmodels: dict[str, Path],
+                                                     corpus: tuple[list[str], list[str]], tmp_path: Path) -> None:
+    # reference: nextword.mix.load_mix(...).suggest (docs/FORMAT.md §13) on a mixture of a 1.6 KN
+    # trigram and a 1.5 KN trigram, bit for bit
+    path = tmp_path / "mix.nwx"
+    write_mix(path, [cmodels["kn3-q5"], cmodels["kn3-plain"]], [0.35, 0.65])
+    mix = load_mix(path)
+    m, s = _open(native, path)
+    try:
+        for typed, k in _queries(corpus[1], 400, seed=8):
+            code, ours = native.suggest(s, typed, k)
+            theirs = mix.suggest(typed, k)
+            assert code == 0 and [w for w, _ in ours] == [t.word for t in theirs], typed
+            assert [p for _, p in ours] == [t.prob for t in theirs], typed
+    finally:
+        _close(native, m, s)
+
+
+def test_compact_queries_allocate_nothing_and_threads_share_a_model(build_dir: Path, cmodels: dict[str, Path],
+                                                                    corpus: tuple[list[str], list[str]], tmp_path: Path) -> None:
+    # native/tools/nwcheck.c: no heap allocation around 500 queries of a 1.6 file (the Elias-Fano
+    # reads use the stack), and 4 threads on one model give the single-thread answers
+    _make(build_dir, "check-tools")
+    queries = tmp_path / "q.txt"
+    queries.write_text("".join(t.replace("\n", " ") + "\n" for t, _ in _queries(corpus[1], 500, seed=4)), encoding="utf-8")
+    tool = str(build_dir / "nwcheck")
+    for name in ("kn3-q5", "jm2"):
+        proc = subprocess.run([tool, "--alloc", str(cmodels[name]), str(queries)], capture_output=True, text=True, timeout=120)
+        assert proc.returncode == 0 and '"allocations": 0' in proc.stdout, proc.stdout + proc.stderr
+    proc = subprocess.run([tool, "--threads", "4", str(cmodels["kn3-q5"]), str(queries)], capture_output=True, text=True,
+                          timeout=120)
+    assert proc.returncode == 0 and '"threads_differing": 0' in proc.stdout, proc.stdout + proc.stderr
+
+
+# -- refusals: META successors, the section set, every load check of §7.18 ---------------------------
+
+
+def test_successors_field_is_checked_by_name(native: Native, cmodels: dict[str, Path], tmp_path: Path) -> None:
+    # §7.18: 'successors' {"name": "ef", "version": 1} is required in 1.6 and refused elsewhere;
+    # another name or version is refused naming it (C: NW_E_UNSUPPORTED)
+    data = cmodels["kn3-q5"].read_bytes()
+    _both_refuse(native, tmp_path, _meta_edit(data, b"\xa2ef", b"\xa2pf"), {NW_E_UNSUPPORTED}, "'pf'")
+    _both_refuse(native, tmp_path, _meta_edit(data, b"\xa2ef\xa7version\x01", b"\xa2ef\xa7version\x02"), {NW_E_UNSUPPORTED},
+                 "version 2")
+    _both_refuse(native, tmp_path, _meta_edit(data, b"\xaasuccessors", b"\xaasuccessorz"), {NW_E_FORMAT}, "successors")
+    for minor in (4, 5):  # a 1.6 file labelled 1.4/1.5: the field (and the sections) do not belong there
+        buf = bytearray(data)
+        struct.pack_into("<H", buf, 10, minor)
+        _recrc(buf)
+        _both_refuse(native, tmp_path, bytes(buf), {NW_E_FORMAT, NW_E_VERSION}, "")
+
+
+def _rename(buf: bytearray, old: bytes, new: bytes) -> None:
+    n_sec = HEADER.unpack_from(buf, 0)[3]
+    for i in range(n_sec):
+        at = HEADER.size + i * 32
+        if bytes(buf[at : at + 4]) == old:
+            buf[at : at + 4] = new
+            return
+    raise AssertionError(old)
+
+
+@pytest.mark.parametrize("seq", ["RWE", "SEF", "TPT", "TEF"])
+def test_every_sequence_load_check_refuses_what_python_refuses(native: Native, cmodels: dict[str, Path], tmp_path: Path,
+                                                               seq: str) -> None:
+    # §7.18 "Checks on load", each on a crafted file with every checksum fixed: the stream one byte
+    # short, a bit set in the padding, a chunk offset moved, the chunks' first values decreasing,
+    # the header one entry short; and a replaced section (SUCC, TSUC) in place of a sequence's header
+    src = cmodels["kn3"]
+    data = src.read_bytes()
+    secs = _sections(data)
+    h_off, h_len = secs[f"{seq}H".encode()]
+    b_off, b_len = secs[f"{seq}B".encode()]
+    width = 4  # the writer's u32 headers (every value fits)
+    head = np.frombuffer(data[h_off : h_off + h_len], dtype="<u4")
+    assert len(head) >= 6  # three chunks or more
+
+    def crafted(edit: Any) -> bytes:
+        buf = bytearray(data)
+        edit(buf)
+        _recrc(buf)
+        return bytes(buf)
+
+    def short_stream(b: bytearray) -> None:
+        b[b_off + b_len - 1] = 0
+        _retable(b, f"{seq}B".encode(), b_off, b_len - 1)
+
+    def padding(b: bytearray) -> None:
+        b[b_off + b_len - 1] = 0x80
+
+    def offset(b: bytearray) -> None:  # chunk 0's end offset (O₁, or the stream length) one bit later
+        struct.pack_into("<I", b, h_off + 3 * width, int(head[3]) + 1)
+
+    def first(b: bytearray) -> None:  # chunk 1's first value above chunk 2's (the first values must not decrease)
+        struct.pack_into("<I", b, h_off + 2 * width, int(head[4]) + 1)
+
+    def short_head(b: bytearray) -> None:
+        b[h_off + h_len - 8 : h_off + h_len] = bytes(8)
+        _retable(b, f"{seq}H".encode(), h_off, h_len - 8)
+
+    def replaced(b: bytearray) -> None:
+        _rename(b, f"{seq}H".encode(), b"SUCC" if seq != "TEF" else b"TSUC")
+
+    for edit, says in ((short_stream, "stream has"), (padding, "stream"), (offset, ""), (first, ""),
+                       (short_head, "header entries"), (replaced, "")):
+        _both_refuse(native, tmp_path, crafted(edit), {NW_E_FORMAT}, says)
+
+
+def test_a_damaged_stream_is_caught_by_the_query_that_reads_it(native: Native, cmodels: dict[str, Path],
+                                                               corpus: tuple[list[str], list[str]], tmp_path: Path) -> None:
+    # SEFB's checksum is checked only with verify=True (a bigram-sized section, §8 item 6): a stream
+    # whose high bits lose their set bits (checksums fixed, headers intact) opens; a query reading
+    # those chunks answers NW_E_DAMAGED or a valid answer, never a probability outside [0, 1]
+    src = cmodels["kn2"]
+    buf = bytearray(src.read_bytes())
+    off, length = _sections(bytes(buf))[b"SEFB"]
+    buf[off : off + length // 2] = bytes(length // 2)
+    _recrc(buf)
+    path = tmp_path / "dark.nwm"
+    path.write_bytes(bytes(buf))
+    m, s = _open(native, path)
+    damaged = 0
+    try:
+        for typed, k in _queries(corpus[1], 300, seed=6):
+            code, ours = native.suggest(s, typed, k)
+            assert code in (0, NW_E_DAMAGED), code
+            damaged += code == NW_E_DAMAGED
+            assert all(0.0 <= p <= 1.0 + 1e-9 for _, p in ours)
+    finally:
+        _close(native, m, s)
+    assert damaged > 20
+    with pytest.raises(nextword.ModelFormatError):
+        nextword.load(path, verify=True)
+
+
+# -- hostile 1.6 files under the sanitizers ---------------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def compact_seeds(tmp_path_factory: pytest.TempPathFactory) -> dict[str, bytes]:
+    """Small valid 1.6 files of every kind (the messages of tests/test_load_bounds.py), to mutate."""
+    import test_load_bounds  # the same seed messages as the Python reader's hostile tests
+
+    d = tmp_path_factory.mktemp("compact-seeds")
+    seeds: dict[str, bytes] = {}
+    for q in (None, 2):
+        for name, kw in (("jm2", {}), ("kn2", dict(smoothing="kn")), ("jm3", dict(order=3)), ("kn3", dict(smoothing="kn", order=3))):
+            path = d / f"{name}-{q}.nwm"
+            nextword.train_texts(test_load_bounds.MSGS, path, min_count=1, skyband_min=1, skyband_k=2, quantize=q, compact=True,
+                                 **kw)  # type: ignore[arg-type]
+            seeds[f"{name}-{q}"] = path.read_bytes()
+    chunks, _ = prune_model(nextword.load(d / "kn3-None.nwm"), len(seeds["kn3-None"]) - 200)
+    atomic_write(d / "kn3-pruned.nwm", chunks)
+    seeds["kn3-pruned"] = (d / "kn3-pruned.nwm").read_bytes()
+    return seeds
+
+
+def test_hostile_compact_files_give_error_codes_never_a_crash(fuzz_driver: Path, compact_seeds: dict[str, bytes],
+                                                              tmp_path: Path) -> None:
+    # every mutant of a 1.6 file in the sanitizer build (tests/test_native.py's check: no crash, the
+    # seeds open, whatever the Python reader refuses on load the C open refuses too)
+    check_mutants_under_sanitizers(fuzz_driver, compact_seeds, 1200, 4, tmp_path)
+
+
+def test_fuzz_random_mutations_of_compact_files_under_sanitizers(fuzz_driver: Path, compact_seeds: dict[str, bytes],
+                                                                 tmp_path: Path) -> None:
+    # the driver's own mutations (random bytes, and crafted files with fixed checksums) of every 1.6 seed
+    seeds = []
+    for name, data in compact_seeds.items():
+        (tmp_path / f"{name}.nwm").write_bytes(data)
+        seeds.append(str(tmp_path / f"{name}.nwm"))
+    proc = subprocess.run([str(fuzz_driver), "--mutate", "300", "--seed", "12", *seeds], capture_output=True, text=True,
+                          timeout=300)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    assert "iterations" in proc.stdout
