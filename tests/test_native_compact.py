@@ -166,7 +166,7 @@ def test_hostile_sequences_are_refused_or_read_in_bounds(ef_tool: Path, tmp_path
     # mutated headers and streams (any byte, a truncated or lengthened stream, a header entry
     # changed) under the sanitizers: the open refuses every sequence succinct.ef_check_headers
     # refuses (§7.18 "Checks on load"), and a sequence both accept decodes to succinct's values
-    # or is reported damaged ("E"), never read out of bounds
+    # or is reported damaged ("E"); reads and searches never go out of bounds
     rng = random.Random(5)
     base = [np.cumsum(rng.choice([1, 2, 5, 40, 3000]) * np.ones(n, dtype=np.int64)) for n in (1, 64, 100, 300)]
     base.append(np.cumsum(np.array([rng.randrange(0, 9) for _ in range(200)], dtype=np.int64)))
@@ -193,8 +193,10 @@ def test_hostile_sequences_are_refused_or_read_in_bounds(ef_tool: Path, tmp_path
             py_ok = True
         except ModelFormatError:
             py_ok = False
+        top = int(y[-1]) + 2
+        searches = [f"l {rng.randrange(top)} {s} {rng.randrange(s, n + 1)}" for s in (rng.randrange(n + 1) for _ in range(30))]
         out = _run(ef_tool, tmp_path, head.astype(np.uint64), 4 if int(head.max()) < 1 << 32 else 8, stream, n, strict,
-                   [f"g {j}" for j in range(n)] + ["a"])
+                   [f"g {j}" for j in range(n)] + ["a"] + searches)
         if not out[0].startswith("open OK"):
             refused += 1
             continue
@@ -203,7 +205,7 @@ def test_hostile_sequences_are_refused_or_read_in_bounds(ef_tool: Path, tmp_path
             vals = ChunkedEF("t", "SEQ", head.astype(np.uint64), stream, n).all()
         except ModelFormatError:
             vals = None
-        body, rest = out[1 : 1 + n], out[1 + n :]
+        body, rest = out[1 : 1 + n], out[1 + n : len(out) - len(searches)]  # the searches: only no crash
         if vals is None or "E" in body or rest[-1] != "end":
             damaged += 1  # reported as damaged by one reader (C is the stricter: every value ≤ F_{c+1})
         if vals is not None and "E" not in body:

@@ -62,6 +62,20 @@ static inline uint64_t region_word(const uint8_t *bits, uint64_t p, uint64_t he,
     return w;
 }
 
+/* position of the r-th set bit of w (r < popcount(w)): a byte at a time, then within the byte */
+static inline unsigned select64(uint64_t w, unsigned r) {
+    unsigned base = 0;
+    for (;;) {
+        unsigned c = POPCNT(w & 0xFF);
+        if (r < c) break;
+        r -= c;
+        w >>= 8;
+        base += 8;
+    }
+    for (; r; r--) w &= w - 1;
+    return base + CTZ(w);
+}
+
 typedef struct chunk_view {
     uint64_t first, r, lo_at, hs, he;
     unsigned l;
@@ -100,8 +114,7 @@ int nw_ef_get(const nw_ef *e, uint64_t j, uint64_t *out) {
         uint64_t avail, w = region_word(e->bits, p, v.he, &avail);
         unsigned pc = POPCNT(w);
         if (left < pc) {
-            for (; left; left--) w &= w - 1;
-            uint64_t at = p + CTZ(w) - v.hs; /* offset of the k-th set bit in the region */
+            uint64_t at = p + select64(w, left) - v.hs; /* offset of the k-th set bit in the region */
             return value_of(e, &v, at - (uint64_t)k, k, out);
         }
         left -= pc;
@@ -131,6 +144,50 @@ int nw_ef_chunk(const nw_ef *e, uint64_t c, uint64_t vals[NW_EF_CHUNK], int *m) 
     return 0;
 }
 
+/* The first k of chunk v with Y ≥ y (m if none) and its value, without decoding the chunk:
+ * the values with a high part below hy = ⌊(y − F_c)/2^ℓ⌋ are the set bits before the hy-th
+ * zero of the high region (a select of zeros), so only the values whose high part is hy
+ * (and the next one) are read. */
+static int chunk_lower(const nw_ef *e, const chunk_view *v, uint64_t y, int *k_out, uint64_t *val) {
+    uint64_t d = y > v->first ? y - v->first : 0;
+    *k_out = v->m;
+    if (d > v->r) return 0; /* every value is ≤ F_{c+1} < y */
+    uint64_t hy = d >> v->l, p = v->hs;
+    if (hy) { /* just after the (hy−1)-th zero */
+        uint64_t left = hy - 1;
+        for (;;) {
+            if (p >= v->he) return -1;
+            uint64_t avail, w = region_word(e->bits, p, v->he, &avail);
+            uint64_t z = ~w & (avail < 64 ? (1ull << avail) - 1 : ~0ull);
+            unsigned zc = POPCNT(z);
+            if (left < zc) {
+                p += select64(z, (unsigned)left) + 1;
+                break;
+            }
+            left -= zc;
+            p += avail;
+        }
+    }
+    uint64_t k = (p - v->hs) - hy; /* set bits before p */
+    while (p < v->he && k < (uint64_t)v->m) {
+        uint64_t avail, w = region_word(e->bits, p, v->he, &avail);
+        while (w && k < (uint64_t)v->m) {
+            uint64_t pos = p + CTZ(w) - v->hs;
+            w &= w - 1;
+            uint64_t x;
+            if (value_of(e, v, pos - k, (int)k, &x)) return -1;
+            if (x >= y) {
+                *k_out = (int)k;
+                *val = x;
+                return 0;
+            }
+            k++;
+        }
+        p += avail;
+    }
+    return 0;
+}
+
 int nw_ef_lower(const nw_ef *e, uint64_t y, uint64_t s, uint64_t end, uint64_t *at, uint64_t *val) {
     if (end > e->n) return -1;
     if (s >= end) { *at = s; return 0; }
@@ -146,18 +203,18 @@ int nw_ef_lower(const nw_ef *e, uint64_t y, uint64_t s, uint64_t end, uint64_t *
         return nw_ef_get(e, s, val);
     }
     uint64_t c = lo - 1, base = c * NW_EF_CHUNK;
-    uint64_t vals[NW_EF_CHUNK];
-    int m;
-    if (nw_ef_chunk(e, c, vals, &m)) return -1;
-    uint64_t a = s > base ? s - base : 0, b = end - base < (uint64_t)m ? end - base : (uint64_t)m;
-    while (a < b) { /* first k in [a, b) with vals[k] ≥ y */
-        uint64_t mid = a + (b - a) / 2;
-        if (vals[mid] < y) a = mid + 1; else b = mid;
-    }
-    *at = base + a;
+    chunk_view v;
+    view(e, c, &v);
+    int kk;
+    uint64_t kv = 0;
+    if (chunk_lower(e, &v, y, &kk, &kv)) return -1;
+    /* the chunk is sorted: the answer within [a, b) of it is kk moved into that range */
+    uint64_t a = s > base ? s - base : 0, b = end - base < (uint64_t)v.m ? end - base : (uint64_t)v.m;
+    uint64_t r = (uint64_t)kk < a ? a : (uint64_t)kk > b ? b : (uint64_t)kk;
+    *at = base + r;
     if (*at < end) {
-        if (a < (uint64_t)m) *val = vals[a];
-        else if (nw_ef_get(e, *at, val)) return -1; /* the next chunk's first value */
+        if (r == (uint64_t)kk && kk < v.m) *val = kv;
+        else if (nw_ef_get(e, *at, val)) return -1; /* position a of the range, or the next chunk's first value */
     }
     return 0;
 }

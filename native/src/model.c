@@ -126,7 +126,7 @@ static const spec SPECS[] = {
     {"TSGS", K_U4, 0, 0},  {"TSGE", K_U4, 0, 0},  {"TSKP", K_U4, 0, 0}, {"TSKI", K_U24, 0, 0},
     {"TSKC", K_U24, 0, 0},
     /* format 1.6 (§7.18): chunked Elias-Fano sequences (header u32 or u64, stream u8) and HN12;
-     * read only in a 1.6 file (an older file ignores them as unknown tags) */
+     * (in an older file they are sections its kind does not have: refused) */
     {"RWEH", K_U48, 0, 1}, {"RWEB", K_U1, 0, 1},  {"SEFH", K_U48, 0, 0}, {"SEFB", K_U1, 0, 0},
     {"TPTH", K_U48, 0, 0}, {"TPTB", K_U1, 0, 0},  {"TEFH", K_U48, 0, 0}, {"TEFB", K_U1, 0, 0},
     {"HN12", K_ID, 0, 1},
@@ -138,7 +138,6 @@ static const char *const TRIGRAM_TAGS[] = {"TCTB", "TLEN", "TLEI", "TLEV", "TSUC
 
 /* the sections a 1.6 file replaces (§7.18), and those that replace them */
 static const char *const REMOVED_16[] = {"IDTK", "APOS", "ROWS", "SUCC", "HN13", "TCTB", "TLEN", "TLEI", "TLEV", "TSUC"};
-static const char *const ADDED_16[] = {"RWEH", "RWEB", "SEFH", "SEFB", "TPTH", "TPTB", "TEFH", "TEFB", "HN12"};
 static int tag_in(const char *tag, const char *const *list, size_t n) {
     for (size_t j = 0; j < n; j++)
         if (!strcmp(tag, list[j])) return 1;
@@ -817,9 +816,9 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
     if ((8 - prev_end % 8) % 8 != size - prev_end) return nw_fail(err, NW_E_FORMAT, "unexpected bytes after the last section");
     for (uint64_t q = prev_end; q < size; q++)
         if (buf[q]) return nw_fail(err, NW_E_FORMAT, "unexpected bytes after the last section");
-    /* the 1.6 tags are unknown (ignored) in an older file; the replaced ones may not be in a 1.6 file */
+    /* the sections a 1.6 file replaces may not be in it (the 1.6 ones are refused in older
+     * files below, with the other sections a file's kind does not have) */
     for (int i = 0; i < N_SPECS; i++) {
-        if (m->minor != EF_MINOR && IN(SPECS[i].tag, ADDED_16)) secs[i].present = 0;
         if (m->minor == EF_MINOR && IN(SPECS[i].tag, REMOVED_16) && secs[i].present)
             return nw_fail(err, NW_E_FORMAT, "format 1.6 files have no section %s (its lists are Elias-Fano coded)", SPECS[i].tag);
     }
@@ -856,8 +855,6 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
                 if (m->order == 3 && (!strcmp(tag, "TPTH") || !strcmp(tag, "TPTB") || !strcmp(tag, "TEFH") || !strcmp(tag, "TEFB")))
                     want = 1;
                 if (m->kn && !strcmp(tag, "HN12")) want = 1;
-            } else if (IN(tag, ADDED_16)) {
-                continue; /* ignored above */
             }
             if (want != secs[i].present)
                 return nw_fail(err, NW_E_FORMAT, "a %s order-%d file: section %s is %s", m->kn ? "kn" : "jm", m->order, tag,
