@@ -11,14 +11,25 @@
 
 #include "internal.h"
 
+/* per-byte bit counts of x (SWAR): byte i holds popcount(byte i of x) */
+static inline uint64_t byte_counts(uint64_t x) {
+    x = x - ((x >> 1) & 0x5555555555555555ull);
+    x = (x & 0x3333333333333333ull) + ((x >> 2) & 0x3333333333333333ull);
+    return (x + (x >> 4)) & 0x0F0F0F0F0F0F0F0Full;
+}
+
 #if defined(__GNUC__) || defined(__clang__)
-#define POPCNT(x) ((unsigned)__builtin_popcountll(x))
 #define CTZ(x) ((unsigned)__builtin_ctzll(x))
 #define CLZ(x) ((unsigned)__builtin_clzll(x))
 #else
-static unsigned POPCNT(uint64_t x) { unsigned c = 0; while (x) { x &= x - 1; c++; } return c; }
 static unsigned CTZ(uint64_t x) { unsigned c = 0; while (!(x & 1)) { x >>= 1; c++; } return c; }
 static unsigned CLZ(uint64_t x) { unsigned c = 0; while (!(x >> 63)) { x <<= 1; c++; } return c; }
+#endif
+#if (defined(__GNUC__) || defined(__clang__)) && (defined(__POPCNT__) || defined(__aarch64__))
+#define POPCNT(x) ((unsigned)__builtin_popcountll(x)) /* one instruction on this target */
+#else
+/* without a popcount instruction (x86-64 baseline) the builtin is a libgcc call: SWAR instead */
+static inline unsigned POPCNT(uint64_t x) { return (unsigned)((byte_counts(x) * 0x0101010101010101ull) >> 56); }
 #endif
 
 static inline uint64_t load64(const uint8_t *p) {
@@ -40,7 +51,7 @@ uint64_t nw_ef_first(const nw_ef *e, uint64_t c) { return head_at(e, 2 * c); }
 
 /* ℓ = ⌊log₂ ⌊r/m⌋⌋ when r ≥ m, else 0 (succinct._low_bits) */
 static inline unsigned low_width(uint64_t r, uint64_t m) {
-    uint64_t q = r / m;
+    uint64_t q = m == NW_EF_CHUNK ? r >> 6 : r / m; /* a full chunk: no division */
     return q ? 63u - CLZ(q) : 0u;
 }
 
@@ -62,18 +73,16 @@ static inline uint64_t region_word(const uint8_t *bits, uint64_t p, uint64_t he,
     return w;
 }
 
-/* position of the r-th set bit of w (r < popcount(w)): a byte at a time, then within the byte */
+/* position of the r-th set bit of w (r < popcount(w)): the byte that holds it from the
+ * prefix sums of the byte counts, then at most 7 steps inside that byte */
 static inline unsigned select64(uint64_t w, unsigned r) {
+    uint64_t prefix = byte_counts(w) * 0x0101010101010101ull; /* byte i: bits set in bytes 0 … i */
     unsigned base = 0;
-    for (;;) {
-        unsigned c = POPCNT(w & 0xFF);
-        if (r < c) break;
-        r -= c;
-        w >>= 8;
-        base += 8;
-    }
-    for (; r; r--) w &= w - 1;
-    return base + CTZ(w);
+    while (((prefix >> base) & 0xFF) <= r) base += 8;
+    if (base) r -= (unsigned)((prefix >> (base - 8)) & 0xFF);
+    uint64_t b = (w >> base) & 0xFF;
+    for (; r; r--) b &= b - 1;
+    return base + CTZ(b);
 }
 
 typedef struct chunk_view {

@@ -97,15 +97,45 @@ static nw_status word_id_cps(nw_session *s, const int32_t *cps, int32_t a, int32
  * outside its row, a remapped trigram successor past its row. */
 
 #define NONE UINT64_MAX
+#define SCAN_MIN 12 /* consecutive entries from which a 1.6 scan decodes whole chunks */
 #define ABSENT (UINT64_MAX - 1) /* a bigram entry known not to exist */
 
-/* alphabetical position of bigram entry i of row v */
-static int succ_pos(const nw_model *m, uint32_t v, uint64_t i, uint32_t *pos) {
-    if (!m->ef) { *pos = nw_at(&m->SUCC, i); return 0; }
-    uint64_t y, npos = (uint64_t)m->n + 2, base = (uint64_t)v * npos;
-    if (nw_ef_get(&m->sef, i, &y) || y < base || y - base >= npos) return -1;
+/* One decoded chunk of a sequence, for a scan of consecutive entries (a chunk decoded at
+ * once costs about what a few reads by position cost; on the stack, per scan). */
+typedef struct ef_scan {
+    const nw_ef *e;
+    uint64_t chunk; /* NONE: nothing decoded yet */
+    int m;
+    uint64_t vals[NW_EF_CHUNK];
+} ef_scan;
+
+/* Y_j of the scan's sequence, through its decoded chunk */
+static int scan_at(ef_scan *sc, uint64_t j, uint64_t *y) {
+    uint64_t c = j / NW_EF_CHUNK, k = j % NW_EF_CHUNK;
+    if (c != sc->chunk) {
+        sc->chunk = NONE;
+        if (nw_ef_chunk(sc->e, c, sc->vals, &sc->m)) return -1;
+        sc->chunk = c;
+    }
+    if (k >= (uint64_t)sc->m) return -1;
+    *y = sc->vals[k];
+    return 0;
+}
+
+/* position of SEF value y in row v (§7.18: y − v·(n+2), which must be below n+2) */
+static int succ_of(const nw_model *m, uint32_t v, uint64_t y, uint32_t *pos) {
+    uint64_t npos = (uint64_t)m->n + 2, base = (uint64_t)v * npos;
+    if (y < base || y - base >= npos) return -1;
     *pos = (uint32_t)(y - base);
     return 0;
+}
+
+/* alphabetical position of bigram entry i of row v (sc: a scan of consecutive entries, or NULL) */
+static int succ_pos(const nw_model *m, uint32_t v, uint64_t i, uint32_t *pos, ef_scan *sc) {
+    if (!m->ef) { *pos = nw_at(&m->SUCC, i); return 0; }
+    uint64_t y;
+    if (sc ? scan_at(sc, i, &y) : nw_ef_get(&m->sef, i, &y)) return -1;
+    return succ_of(m, v, y, pos);
 }
 
 /* the first entry in [a, re) of row v whose position is ≥ pos (re if none); *hit: it is pos */
@@ -151,14 +181,14 @@ static int tri_range(const nw_model *m, uint64_t i, uint64_t *s, uint64_t *e, ui
 }
 
 /* alphabetical position of trigram entry j of context cs (1.6: bigram entry *bi of row v
- * holds it; 1.4/1.5: *bi = NONE) */
-static int tri_pos(const nw_model *m, const cstate *cs, uint64_t j, uint32_t *pos, uint64_t *bi) {
+ * holds it; 1.4/1.5: *bi = NONE); sc: a scan of consecutive entries, or NULL */
+static int tri_pos(const nw_model *m, const cstate *cs, uint64_t j, uint32_t *pos, uint64_t *bi, ef_scan *sc) {
     *bi = NONE;
     if (!m->ef) { *pos = nw_at(&m->TSUC, j); return 0; }
     uint64_t y, rs = nw_at(&m->ROWS, cs->v), re = nw_at(&m->ROWS, cs->v + 1);
-    if (nw_ef_get(&m->tef, j, &y) || y < cs->tb || y - cs->tb >= re - rs) return -1;
+    if ((sc ? scan_at(sc, j, &y) : nw_ef_get(&m->tef, j, &y)) || y < cs->tb || y - cs->tb >= re - rs) return -1;
     *bi = rs + (y - cs->tb);
-    return succ_pos(m, cs->v, *bi, pos);
+    return succ_pos(m, cs->v, *bi, pos, NULL);
 }
 
 /* the first trigram entry in [a, cs->e3) whose position is ≥ pos; *hit: it is pos. bi: the
@@ -473,6 +503,8 @@ static nw_status rank(nw_session *s, const cstate *cs, uint64_t lo, uint64_t hi,
             return st;
         if (found && from == to) found = 0; /* an empty band: scan (Model._rank) */
         uint64_t count = found ? to - from : b - a;
+        ef_scan scan = {&m->sef, NONE, 0, {0}}; /* 1.6: the entries [a, b) in order (no band) */
+        ef_scan *scp = found || count < SCAN_MIN ? NULL : &scan;
         for (uint64_t x = 0; x < count; x++) {
             uint64_t i = a + x;
             if (found) {
@@ -481,7 +513,7 @@ static nw_status rank(nw_session *s, const cstate *cs, uint64_t lo, uint64_t hi,
                 i = a + off;
             }
             uint32_t pos;
-            if (succ_pos(m, cs->v, i, &pos))
+            if (succ_pos(m, cs->v, i, &pos, scp))
                 return DAMAGED("%s: damaged model data: the successor list of row %u does not decode", m->path, cs->v);
             if (pos < lo || pos >= hi) return DAMAGED("%s: damaged model data: successor position %u out of order", m->path, pos);
             uint64_t c2;
@@ -503,6 +535,8 @@ static nw_status rank(nw_session *s, const cstate *cs, uint64_t lo, uint64_t hi,
             (st = band(m, &m->TSGS, &m->TSGE, &m->TSKP, &m->TSKI, &m->TSKC, a, b, k, &from, &to, &found, err)))
             return st;
         uint64_t count = found ? to - from : b - a;
+        ef_scan scan = {&m->tef, NONE, 0, {0}};
+        ef_scan *scp = found || count < SCAN_MIN ? NULL : &scan;
         for (uint64_t x = 0; x < count; x++) {
             uint64_t i = a + x;
             if (found) {
@@ -512,7 +546,7 @@ static nw_status rank(nw_session *s, const cstate *cs, uint64_t lo, uint64_t hi,
             }
             uint32_t pos;
             uint64_t bi, c2 = NONE;
-            if (tri_pos(m, cs, i, &pos, &bi))
+            if (tri_pos(m, cs, i, &pos, &bi, scp))
                 return DAMAGED("%s: damaged model data: the trigram successors of a context do not decode", m->path);
             if (pos < lo || pos >= hi) return DAMAGED("%s: damaged model data: trigram successor %u out of order", m->path, pos);
             uint64_t c3;
