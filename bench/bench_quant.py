@@ -1,4 +1,4 @@
-"""Quantised values (codec ``quant``, format 1.5) against exact ones, side by side in one run.
+"""Quantised values (codec ``quant``, format 1.5) and compact files (format 1.6) against exact ones, side by side in one run.
 
 On the 5M-word benchmark corpus (``bench/data/{train,test}.txt``, the split of
 ``bench/prepare_corpus.py``), for the JM bigram, the KN bigram and the KN trigram, every
@@ -32,16 +32,20 @@ from nextword.codecs import EXACT, QuantCodec  # noqa: E402
 from nextword.evaluate import evaluate  # noqa: E402
 
 DATA = HERE / "data"
-#: (label, codec) of every file per model kind; None = the exact codec
+#: (label, codec, compact) of every file per model kind; codec None = the exact codec; compact: format 1.6
+#: (chunked Elias-Fano successor lists; a quantised compact file uses quant version 2, the ones elided)
 CODECS = (
-    ("exact", None),
-    ("quant 8-bit", (8, "lloyd")),
-    ("quant 6-bit", (6, "lloyd")),
-    ("quant 5-bit (Lloyd)", (5, "lloyd")),
-    ("quant 5-bit (quantile bins)", (5, "quantile")),
-    ("quant 4-bit (Lloyd)", (4, "lloyd")),
-    ("quant 4-bit (quantile bins)", (4, "quantile")),
-    ("quant 3-bit", (3, "lloyd")),
+    ("exact", None, False),
+    ("quant 8-bit", (8, "lloyd"), False),
+    ("quant 6-bit", (6, "lloyd"), False),
+    ("quant 5-bit (Lloyd)", (5, "lloyd"), False),
+    ("quant 5-bit (quantile bins)", (5, "quantile"), False),
+    ("quant 4-bit (Lloyd)", (4, "lloyd"), False),
+    ("quant 4-bit (quantile bins)", (4, "quantile"), False),
+    ("quant 3-bit", (3, "lloyd"), False),
+    ("compact, exact", None, True),
+    ("compact, quant 5-bit", (5, "lloyd"), True),
+    ("compact, quant 4-bit", (4, "lloyd"), True),
 )
 
 
@@ -140,14 +144,14 @@ def main(argv: list[str] | None = None) -> int:
         fitted = est.fit(counts)
         rows = []
         models = []
-        for name, spec in CODECS:
-            path = out / f"{key}-{name.split()[0]}{'' if spec is None else '-'.join(map(str, spec))}.nwm"
+        for name, spec, compact in CODECS:
+            path = out / f"{key}-{name.split()[0].strip(',')}{'' if spec is None else '-'.join(map(str, spec))}.nwm"
             tb = time.perf_counter()
-            if spec is None and key == "jm2":
+            if spec is None and key == "jm2" and not compact:
                 write_model(tables, path, lam=0.9)  # the default model: format 1.0
             else:
-                codec = EXACT if spec is None else QuantCodec(spec[0], method=spec[1])
-                atomic_write(path, ngram_file(counts, tables, fitted, codec=codec))
+                codec = EXACT if spec is None else QuantCodec(spec[0], method=spec[1], ones=compact)
+                atomic_write(path, ngram_file(counts, tables, fitted, codec=codec, compact=compact))
             build_s = time.perf_counter() - tb
             m = nextword.load(path, verify=True)
             m.close()
@@ -182,10 +186,24 @@ def main(argv: list[str] | None = None) -> int:
                 f"{r['ppl']:.2f} | {100 * (r['ppl'] / ex['ppl'] - 1):+.2f}% | {100 * r['ksr']:.2f}% | "
                 f"{100 * (r['ksr'] - ex['ksr']):+.2f} | {r['load']:.2f} | {r['p50']:.0f} | {r['p99']:.0f} | {r['p99'] / ex['p99']:.2f} |"
             )
+        best = min((r for r in rows if r["name"].startswith("compact")), key=lambda r: r["bytes"] / r["grams"])
+        q5 = next(r for r in rows if r["name"] == "compact, quant 5-bit")
+        cex = next(r for r in rows if r["name"] == "compact, exact")
+        verdict = (
+            f"Targets: smallest file **{best['bytes'] / best['grams']:.3f} bytes / n-gram** ({best['name']}; ≤ 2.0: "
+            f"{'met' if best['bytes'] / best['grams'] <= 2.0 else 'NOT met'}); compact 5-bit against exact: "
+            f"{100 * (q5['ksr'] - ex['ksr']):+.2f} KSR@3 points (≥ −0.1: {'met' if q5['ksr'] - ex['ksr'] >= -0.001 else 'NOT met'}), "
+            f"{100 * (q5['ppl'] / ex['ppl'] - 1):+.2f}% perplexity (≤ 1%: {'met' if q5['ppl'] / ex['ppl'] <= 1.01 else 'NOT met'}), "
+            f"load {q5['load']:.2f} ms (≤ 5: {'met' if q5['load'] <= 5 else 'NOT met'}), p99 {q5['p99'] / ex['p99']:.2f}× the exact "
+            f"file's (≤ 1.3: {'met' if q5['p99'] / ex['p99'] <= 1.3 else 'NOT met'}); the compact layout alone (exact values) "
+            f"{cex['p99'] / ex['p99']:.2f}×, with answers identical to the exact file's (tests/test_compact.py)."
+        )
         sections.append(f"""#### {label}
 
-Elias-Fano estimate for the successor lists (stored as u16 = 2 bytes each today; `successor_estimate`, pointers not
-counted): {'; '.join(f'{k}: {v:.2f} bytes per successor' for k, v in est.items())}.
+{verdict}
+
+Elias-Fano estimate made before the compact layout existed (per row, pointers not counted; `successor_estimate`):
+{'; '.join(f'{k}: {v:.2f} bytes per successor' for k, v in est.items())}.
 
 | codec | format | file bytes | n-grams | bytes / n-gram | perplexity | vs exact | KSR@3 | vs exact (points) | load ms | suggest p50 µs | p99 µs | p99 / exact |
 |---|---|---|---|---|---|---|---|---|---|---|---|---|
@@ -200,6 +218,8 @@ n-grams = stored bigrams + trigrams; bytes / n-gram = the whole file (vocabulary
 process, the models of a kind interleaved for {args.rounds} rounds of {len(queries):,} `suggest(k=3)` queries
 (median of the rounds' p50/p99); load = median of 21 `nextword.load` calls. Targets (issue 15): ≤ 2.0 bytes /
 n-gram; quantisation ≤ 0.1 KSR@3 points and ≤ 1% perplexity; load ≤ 5 ms; p99 ≤ 1.3× exact.
+Rows "compact, …": format 1.6 (`compact=True`: chunked Elias-Fano successor lists, starts and counts, docs/FORMAT.md
+§7.18); quantised compact files use the `quant` codec version 2 (a ones bitmap, codes only for the other values).
 
 """ + "\n".join(sections)
     publish(md, "quant", write=not args.no_results)

@@ -94,7 +94,7 @@ def _finish(
 ) -> TrainReport:
     from .codecs import codec_for_bits
 
-    codec = codec_for_bits(quantize)
+    codec = codec_for_bits(quantize, ones=compact)  # a compact file elides the ones too (quant version 2)
     t1 = time.perf_counter()
     general = order != 2 or smoothing != "jm" or quantize is not None or compact
     if general:

@@ -29,7 +29,7 @@ from .errors import InvalidArgumentError, ModelFormatError
 
 __all__ = [
     "Codec", "ValueView", "ExactCodec", "EXACT", "QuantCodec", "QUANT_BITS", "DEFAULT_QUANT_BITS", "COUNT_ESCAPE",
-    "codec_named", "codec_for_bits", "CODECS", "fit_codebook",
+    "codec_named", "codec_for_bits", "CODECS", "fit_codebook", "ones_bitmap", "ONES_BLOCK",
 ]
 
 #: the one-byte value that says "look the value up in the escape table"
@@ -64,7 +64,7 @@ class Codec(ABC):
     """Stored values of one level ↔ its sections (tags chosen by the store)."""
 
     name: ClassVar[str]
-    version: ClassVar[int]
+    version: int  # a class constant, except where one class reads several versions (quant 1 and 2)
     @abstractmethod
     def encode(self, tags: tuple[bytes, bytes, bytes], values: np.ndarray) -> list[Section]:
         """The sections holding ``values`` (int, ≥ 1, in n-gram order)."""
@@ -154,7 +154,7 @@ class ExactCodec(Codec):
     """Integer values as one byte each; 255 escapes to a sorted (index u32, value u32) table."""
 
     name: ClassVar[str] = "exact"
-    version: ClassVar[int] = 1
+    version: int = 1
 
     def encode(self, tags: tuple[bytes, bytes, bytes], values: np.ndarray) -> list[Section]:
         v = np.asarray(values)
@@ -341,6 +341,131 @@ class _QuantView(ValueView):
         return self._cb[self._codes(np.arange(self._n))]  # type: ignore[no-any-return]
 
 
+#: n-grams per block of a ``quant`` version 2 level's ones bitmap: a u32 rank, then 64 bytes of bits
+ONES_BLOCK: Final = 512
+_BLOCK_BYTES: Final = 4 + ONES_BLOCK // 8
+_POPCOUNT: Final = np.array([bin(i).count("1") for i in range(256)], dtype=np.int64)
+
+
+class _QuantOnesView(ValueView):
+    """``quant`` version 2: 1 where the ones bitmap says so, else the next code of the code stream."""
+
+    def __init__(self, where: str, bitmap: np.ndarray, codes: np.ndarray, codebook: np.ndarray, bits: int, n: int,
+                 n_codes: int) -> None:
+        self._where = where
+        self._bm = np.ascontiguousarray(bitmap, dtype=np.uint8)
+        self._mvb = memoryview(self._bm).cast("B")  # type: ignore[arg-type]
+        self._codes = _QuantView(where, np.ascontiguousarray(codes).view(np.uint8), codebook, bits, n_codes)
+        self._n, self._m = n, n_codes
+        # the ones before each byte of the bitmap within its block, for gathers (built on the first; 2 bytes
+        # per 8 n-grams in memory)
+        self._pre: np.ndarray | None = None
+
+    def _bad(self) -> ModelFormatError:
+        return ModelFormatError(f"{self._where}: damaged model data: a ones bitmap rank past the value codes")
+
+    def _block(self, blk: int) -> tuple[int, int]:
+        """(ones before block ``blk``, its 512 bits as one int)."""
+        base = blk * _BLOCK_BYTES
+        mv = self._mvb
+        return int.from_bytes(mv[base : base + 4], "little"), int.from_bytes(mv[base + 4 : base + _BLOCK_BYTES], "little")
+
+    def at(self, i: int) -> int:
+        if not 0 <= i < self._n:
+            raise IndexError(i)
+        rank, word = self._block(i >> 9)
+        off = i & (ONES_BLOCK - 1)
+        if (word >> off) & 1:
+            return 1
+        j = i - rank - (word & ((1 << off) - 1)).bit_count()
+        if not 0 <= j < self._m:
+            raise self._bad()
+        return self._codes.at(j)
+
+    def slice(self, s: int, e: int) -> list[int]:
+        if not 0 <= s <= e <= self._n:
+            raise IndexError((s, e))
+        if e - s > 96:
+            out: list[int] = self._range(s, e).tolist()
+            return out
+        res: list[int] = []
+        i = s
+        while i < e:  # block by block (a short run lies in one or two)
+            blk = i >> 9
+            stop = min(e, (blk + 1) << 9)
+            rank, word = self._block(blk)
+            lo, hi = i & (ONES_BLOCK - 1), ((stop - 1) & (ONES_BLOCK - 1)) + 1
+            j = i - rank - (word & ((1 << lo) - 1)).bit_count()
+            run = (word >> lo) & ((1 << (hi - lo)) - 1)
+            k = (hi - lo) - run.bit_count()  # codes in this piece
+            if j < 0 or j + k > self._m:
+                raise self._bad()
+            vals = self._codes.slice(j, j + k)
+            it = iter(vals)
+            res += [1 if (run >> x) & 1 else next(it) for x in range(hi - lo)]
+            i = stop
+        return res
+
+    def _range(self, s: int, e: int) -> np.ndarray:
+        """Values s … e−1 at once: the covering blocks' bits unpacked, one read of the codes."""
+        b0, b1 = s >> 9, (e - 1) >> 9
+        blocks = self._bm[b0 * _BLOCK_BYTES : (b1 + 1) * _BLOCK_BYTES].reshape(-1, _BLOCK_BYTES)
+        bits = np.unpackbits(blocks[:, 4:], axis=1, bitorder="little").reshape(-1)
+        lo = s - (b0 << 9)
+        ones_before = int(blocks[0, :4].view("<u4")[0]) + int(np.count_nonzero(bits[:lo]))
+        zero = bits[lo : lo + (e - s)] == 0
+        j0, k = s - ones_before, int(np.count_nonzero(zero))
+        if j0 < 0 or j0 + k > self._m:
+            raise self._bad()
+        out = np.ones(e - s, dtype=np.int64)
+        if k:
+            out[zero] = self._codes.take(np.arange(j0, j0 + k))
+        return out
+
+    def take(self, idx: np.ndarray) -> np.ndarray:
+        idx = np.asarray(idx, dtype=np.int64)
+        if len(idx) == 0:
+            return np.zeros(0, dtype=np.int64)
+        if int(idx.min()) < 0 or int(idx.max()) >= self._n:
+            raise IndexError("value index out of range")
+        if len(idx) > 16 and int(idx[-1]) - int(idx[0]) == len(idx) - 1 and bool((np.diff(idx) == 1).all()):
+            return self._range(int(idx[0]), int(idx[-1]) + 1)  # a run of entries (a row or a context)
+        blk, off = idx >> 9, idx & (ONES_BLOCK - 1)
+        bm = self._bm
+        if self._pre is None:  # built on first use: the ones before each byte within its block (u16)
+            body = bm.reshape(-1, _BLOCK_BYTES)[:, 4:]
+            pre = np.zeros((len(body), _BLOCK_BYTES), dtype=np.uint16)
+            np.cumsum(_POPCOUNT[body[:, :-1]], axis=1, out=pre[:, 5:], dtype=np.uint16)
+            self._pre = pre.reshape(-1)
+        byte_at = blk * _BLOCK_BYTES + 4 + (off >> 3)
+        byte = bm[byte_at]
+        bit = (byte >> (off & 7)) & 1
+        rank = bm.view("<u4")[blk * (_BLOCK_BYTES // 4)].astype(np.int64)
+        # ones before i in its block: whole bytes before it, then the low bits of its byte
+        whole = self._pre[byte_at].astype(np.int64)
+        part = _POPCOUNT[byte & ((1 << (off & 7)) - 1)]
+        j = idx - rank - whole - part
+        out = np.ones(len(idx), dtype=np.int64)
+        nz = bit == 0
+        if bool(nz.any()):
+            jj = j[nz]
+            if int(jj.min()) < 0 or int(jj.max()) >= self._m:
+                raise self._bad()
+            out[nz] = self._codes.take(jj)
+        return out
+
+    def all(self) -> np.ndarray:
+        n = self._n
+        blocks = self._bm.reshape(-1, _BLOCK_BYTES)[:, 4:]
+        ones = np.unpackbits(blocks.reshape(-1), bitorder="little")[:n].astype(bool)
+        out = np.ones(n, dtype=np.int64)
+        k = int(np.count_nonzero(~ones))
+        if k != self._m:
+            raise self._bad()
+        out[~ones] = self._codes.all()[:k] if k else out[:0]
+        return out
+
+
 class QuantCodec(Codec):
     """Values as ``bits``-bit codes into a per-level codebook of increasing integers.
 
@@ -357,13 +482,16 @@ class QuantCodec(Codec):
     """
 
     name: ClassVar[str] = "quant"
-    version: ClassVar[int] = 1
+    version: int = 1
 
-    def __init__(self, bits: int, *, method: str = "lloyd") -> None:
+    def __init__(self, bits: int, *, method: str = "lloyd", ones: bool = False) -> None:
         if type(bits) is not int or bits not in QUANT_BITS:  # 5.0 would pass `in`, then fail as a shift
             raise InvalidArgumentError(f"quantisation bits must be one of {', '.join(map(str, QUANT_BITS))}, got {bits!r}")
         self.bits = bits
         self.method = method
+        #: version 2: a ones bitmap (1 bit per n-gram, with a rank per 512) and codes only for the other values
+        self.ones = ones
+        self.version = 2 if ones else 1
 
     def meta(self) -> dict[str, object]:
         return {"name": self.name, "version": self.version, "bits": self.bits}
@@ -387,11 +515,18 @@ class QuantCodec(Codec):
         if len(v) and (int(cb[0]) < 1 or int(cb[-1]) > _U32_MAX):
             raise InvalidArgumentError("stored values must lie in [1, 2**32)")
         codes = np.searchsorted(cb, v).astype(np.uint8)
-        # the bit stream: code i at bits i·q … i·q+q−1, least significant bit first
-        stream = ((codes[:, None] >> np.arange(self.bits, dtype=np.uint8)) & 1).astype(np.uint8).reshape(-1)
-        packed = np.packbits(stream, bitorder="little")
         u1, u4 = np.dtype("<u1"), np.dtype("<u4")
-        return [(tags[0], u1, packed), (tags[1], u4, cb.astype(np.uint32)), (tags[2], u4, np.zeros(0, np.uint32))]
+        if not self.ones:
+            return [(tags[0], u1, self._pack(codes)), (tags[1], u4, cb.astype(np.uint32)), (tags[2], u4, np.zeros(0, np.uint32))]
+        one = v == 1
+        packed = self._pack(codes[~one])
+        packed = np.concatenate([packed, np.zeros(-len(packed) % 4, np.uint8)]).view("<u4")
+        return [(tags[0], u1, ones_bitmap(one)), (tags[1], u4, cb.astype(np.uint32)), (tags[2], u4, packed)]
+
+    def _pack(self, codes: np.ndarray) -> np.ndarray:
+        """The codes as one bit stream: code i at bits i·q … i·q+q−1, least significant bit first."""
+        stream = ((codes[:, None] >> np.arange(self.bits, dtype=np.uint8)) & 1).astype(np.uint8).reshape(-1)
+        return np.packbits(stream, bitorder="little")
 
     def section_types(self, tags: tuple[bytes, bytes, bytes]) -> dict[bytes, str]:
         return {tags[0]: "u1", tags[1]: "u4", tags[2]: "u4"}
@@ -399,6 +534,9 @@ class QuantCodec(Codec):
     def check(self, where: str, arrays: dict[str, np.ndarray], tags: tuple[bytes, bytes, bytes], n: int) -> None:
         packed, cb, rest = (arrays[t.decode()] for t in tags)
         names = [t.decode() for t in tags]
+        if self.ones:
+            self._check_ones(where, names, packed, cb, rest, n)
+            return
         if len(packed) != self.packed_len(n):
             raise ModelFormatError(f"{where}: section {names[0]} holds {len(packed)} bytes, expected {self.packed_len(n)} for {n} {self.bits}-bit codes")
         if not 1 <= len(cb) <= (1 << self.bits) and not (n == 0 and len(cb) == 0):
@@ -411,17 +549,66 @@ class QuantCodec(Codec):
         if tail and int(packed[-1]) >> tail:
             raise ModelFormatError(f"{where}: section {names[0]} has non-zero bits after the last code")
 
+    def _check_ones(self, where: str, names: list[str], bitmap: np.ndarray, cb: np.ndarray, codes: np.ndarray, n: int) -> None:
+        """Version 2 on load: the bitmap's length, the last block's rank and padding, the code stream's length."""
+        blocks = (n + ONES_BLOCK - 1) // ONES_BLOCK
+        if len(bitmap) != blocks * _BLOCK_BYTES:
+            raise ModelFormatError(f"{where}: section {names[0]} holds {len(bitmap)} bytes, expected {blocks * _BLOCK_BYTES} for {n} n-grams")
+        if not 1 <= len(cb) <= (1 << self.bits) and not (n == 0 and len(cb) == 0):
+            raise ModelFormatError(f"{where}: section {names[1]} holds {len(cb)} codebook entries, expected 1 to {1 << self.bits}")
+        if len(cb) and (int(cb[0]) < 1 or bool(np.any(cb[1:] <= cb[:-1]))):
+            raise ModelFormatError(f"{where}: section {names[1]} is not a strictly increasing codebook of values >= 1")
+        ones = 0
+        if blocks:
+            last = bitmap[(blocks - 1) * _BLOCK_BYTES :]
+            bits = np.unpackbits(last[4:], bitorder="little")
+            if bool(bits[n - (blocks - 1) * ONES_BLOCK :].any()):
+                raise ModelFormatError(f"{where}: section {names[0]} has bits set after the last n-gram")
+            ones = int(last[:4].view("<u4")[0]) + int(bits.sum())
+            if int(bitmap[:4].view("<u4")[0]) != 0 or ones > n:
+                raise ModelFormatError(f"{where}: section {names[0]} has ranks that do not start at 0 or exceed the n-grams")
+        want = ((n - ones) * self.bits + 31) // 32
+        if len(codes) != want:
+            raise ModelFormatError(f"{where}: section {names[2]} holds {len(codes)} words, expected {want} for {n - ones} {self.bits}-bit codes")
+        tail = (n - ones) * self.bits % 32
+        if tail and int(codes[-1]) >> tail:
+            raise ModelFormatError(f"{where}: section {names[2]} has non-zero bits after the last code")
+
+    def n_codes(self, arrays: dict[str, np.ndarray], tags: tuple[bytes, bytes, bytes], n: int) -> int:
+        """How many n-grams of the level have a code (version 2: those whose value is not 1)."""
+        if not self.ones or n == 0:
+            return n
+        bitmap = arrays[tags[0].decode()]
+        blocks = (n + ONES_BLOCK - 1) // ONES_BLOCK
+        last = bitmap[(blocks - 1) * _BLOCK_BYTES :]
+        return n - int(last[:4].view("<u4")[0]) - int(np.unpackbits(last[4:]).sum())
+
     def check_full(self, where: str, arrays: dict[str, np.ndarray], tags: tuple[bytes, bytes, bytes]) -> None:
-        """Every code is inside the codebook (verify=True)."""
-        packed, cb = arrays[tags[0].decode()], arrays[tags[1].decode()]
+        """Every code is inside the codebook, and (version 2) every block's rank is right (verify=True)."""
+        if self.ones:
+            bitmap = arrays[tags[0].decode()].reshape(-1, _BLOCK_BYTES)
+            counts = np.unpackbits(bitmap[:, 4:], axis=1).sum(axis=1).astype(np.int64)
+            ranks = bitmap[:, :4].copy().view("<u4").reshape(-1).astype(np.int64)
+            if len(ranks) and not np.array_equal(ranks, np.concatenate([[0], np.cumsum(counts)[:-1]])):
+                raise ModelFormatError(f"{where}: section {tags[0].decode()} has a block rank that is not the ones before it")
+            self._check_codes(where, tags[2].decode(), np.ascontiguousarray(arrays[tags[2].decode()]).view(np.uint8),
+                              arrays[tags[1].decode()])
+            return
+        self._check_codes(where, tags[0].decode(), arrays[tags[0].decode()], arrays[tags[1].decode()])
+
+    def _check_codes(self, where: str, label: str, packed: np.ndarray, cb: np.ndarray) -> None:
         bits = np.unpackbits(np.asarray(packed, dtype=np.uint8), bitorder="little")
         slots = len(bits) // self.bits
         codes = bits[: slots * self.bits].reshape(slots, self.bits).astype(np.int64) @ (1 << np.arange(self.bits, dtype=np.int64))
         if len(codes) and int(codes.max()) >= len(cb):
-            raise ModelFormatError(f"{where}: section {tags[0].decode()} holds a code past the codebook")
+            raise ModelFormatError(f"{where}: section {label} holds a code past the codebook")
 
     def decode(self, where: str, arrays: dict[str, np.ndarray], tags: tuple[bytes, bytes, bytes], n: int | None = None) -> ValueView:
-        packed, cb, _ = (arrays[t.decode()] for t in tags)
+        packed, cb, rest = (arrays[t.decode()] for t in tags)
+        if self.ones:
+            blocks = len(packed) // _BLOCK_BYTES
+            total = blocks * ONES_BLOCK if n is None else n
+            return _QuantOnesView(where, packed, rest, cb, self.bits, total, self.n_codes(arrays, tags, total))
         slots = len(packed) * 8 // self.bits
         return _QuantView(where, packed, cb, self.bits, slots if n is None else min(n, slots))
 
@@ -431,9 +618,22 @@ EXACT: Final = ExactCodec()
 CODECS: Final[dict[str, Codec]] = {EXACT.name: EXACT, QuantCodec.name: QuantCodec(DEFAULT_QUANT_BITS)}
 
 
-def codec_for_bits(bits: int | None) -> Codec:
-    """The codec a build uses: ``None`` → exact, else the quantised codec of that width."""
-    return EXACT if bits is None else QuantCodec(bits)
+def ones_bitmap(one: np.ndarray) -> np.ndarray:
+    """The ones bitmap of ``quant`` version 2: per block of 512 n-grams a u32 (little-endian) count of the
+    ones before the block, then the block's 512 bits (bit j of the block = bit j mod 8 of its byte ⌊j/8⌋)."""
+    one = np.asarray(one, dtype=bool)
+    blocks = (len(one) + ONES_BLOCK - 1) // ONES_BLOCK
+    bits = np.zeros(blocks * ONES_BLOCK, dtype=np.uint8)
+    bits[: len(one)] = one
+    body = np.packbits(bits, bitorder="little").reshape(blocks, ONES_BLOCK // 8)
+    per = bits.reshape(blocks, ONES_BLOCK).sum(axis=1).astype(np.int64)
+    ranks = (np.cumsum(per) - per).astype("<u4").view(np.uint8).reshape(blocks, 4)
+    return np.concatenate([ranks, body], axis=1).reshape(-1)
+
+
+def codec_for_bits(bits: int | None, *, ones: bool = False) -> Codec:
+    """The codec a build uses: ``None`` → exact, else the quantised codec of that width (``ones``: version 2)."""
+    return EXACT if bits is None else QuantCodec(bits, ones=ones)
 
 
 def codec_named(where: str, spec: object) -> Codec:
@@ -444,11 +644,13 @@ def codec_named(where: str, spec: object) -> Codec:
     codec = CODECS.get(name) if isinstance(name, str) else None
     if codec is None:
         raise ModelFormatError(f"{where}: unknown value codec {name!r} (this library reads: {', '.join(CODECS)})"[:200])
-    if type(version) is not int or version != codec.version:  # 1.0 or True is not a version number
-        raise ModelFormatError(f"{where}: codec {name!r} version {version!r} is not supported (this library reads version {codec.version})"[:200])
+    versions = (1, 2) if isinstance(codec, QuantCodec) else (codec.version,)
+    if type(version) is not int or version not in versions:  # 1.0 or True is not a version number
+        raise ModelFormatError(f"{where}: codec {name!r} version {version!r} is not supported (this library reads version "
+                               f"{' and '.join(map(str, versions))})"[:200])
     if isinstance(codec, QuantCodec):
         bits = spec.get("bits")
         if type(bits) is not int or bits not in QUANT_BITS:  # 5.0 would pass `in`, then fail as a shift
             raise ModelFormatError(f"{where}: codec 'quant' with bits {bits!r} (this library reads {', '.join(map(str, QUANT_BITS))})"[:200])
-        return QuantCodec(bits)
+        return QuantCodec(bits, ones=version == 2)
     return codec

@@ -40,14 +40,14 @@ from .store import (
     ModelArrays,
     read_model,
 )
-from .successors import TrigramLists
+from .successors import SparseTable, TrigramLists
 from .text import BOS, EOS, UNK, fold, parse_typed, recase, sentences
 
 __all__ = ["Model", "Suggestion", "load", "check_k", "check_lam"]
 
 #: sections whose size grows with the number of stored pairs, and with the vocabulary (for ``info``)
-_PAIR_SECTIONS = ("SUCC", "CNTS", "BIGI", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC")
-_VOCAB_SECTIONS = ("TKID", "IDTK", "ALPH", "APOS", "KEY4", "TOPK", "UNIG", "ROWS", "HIST", "DISI", "DISO")
+_PAIR_SECTIONS = ("SUCC", "CNTS", "BIGI", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC", "SEFH", "SEFB")
+_VOCAB_SECTIONS = ("TKID", "IDTK", "ALPH", "APOS", "KEY4", "TOPK", "UNIG", "ROWS", "HIST", "DISI", "DISO", "RWEH", "RWEB")
 #: how many of a context's best words bound the near-miss ranges (Model._context_top): the
 #: stored skyband depth, so the list comes from the bands without scanning a segment
 _BOUND_TOP = 8
@@ -145,7 +145,8 @@ class Model:
         self._mv_alph, self._mv_apos, self._mv_unig = mv["ALPH"], mv["APOS"], mv["UNIG"]
         self._mv_rows = mv["ROWS"]
         self._mv_skyc = mv["SKYC"]
-        self._mv_hist = mv.get("HIST")
+        # c(v) per history: stored (pruned and n-gram files; a 1.6 file reads it coded), else derived from UNIG
+        self._mv_hist: Any = mv.get("HIST", arrays.views.get("HIST"))
         self._mv_disi, self._mv_diso, self._mv_key4 = mv["DISI"], mv["DISO"], mv["KEY4"]
         self._mv_segs, self._mv_sege, self._mv_skyp = mv["SEGS"], mv["SEGE"], mv["SKYP"]
         self._mv_cnts = memoryview(np.ascontiguousarray(a["CNTS"])).cast("B")  # type: ignore[arg-type]
@@ -183,7 +184,8 @@ class Model:
         # everything but the Jelinek-Mercer bigram goes through the general scorer (_NgramScorer);
         # a quantised JM bigram too when it has dropped mass (the JM bigram path has no γ term
         # for it); without, both paths compute the same floats (γ = 1 − λ exactly when r = 0)
-        self._general = self.estimator != "jm" or self.order != 2 or (self._vals2 is not None and len(a["HDRI"]) > 0)
+        # a JM bigram with dropped mass (a pruned 1.5/1.6 file) needs γ = (1 − λ) + λ·r/T: the general path
+        self._general = self.estimator != "jm" or self.order != 2 or ("HDRI" in a and len(a["HDRI"]) > 0)
         if self._general:
             if self.estimator == "kn" and lam is not None:
                 raise InvalidArgumentError(f"lam={lam!r} given for a Kneser-Ney model, which has no λ")
@@ -1033,7 +1035,8 @@ class Model:
         g2, v2 = counts.grams[1], counts.counts[1]
         ctx2 = np.flatnonzero(hist > 0)
         start2 = np.searchsorted(g2[:, 0], np.append(ctx2, n + 3), side="left").astype(np.int64)
-        n123 = (np.asarray(a["HN13"], dtype=np.int64).reshape(-1, 3)[ctx2] if self.estimator == "kn"
+        hn13 = a["HN13"] if "HN13" in a else (self._src.views["HN13"].all() if self.estimator == "kn" else None)
+        n123 = (np.asarray(hn13, dtype=np.int64).reshape(-1, 3)[ctx2] if self.estimator == "kn"
                 else _n123_of(v2, start2))
         levels.append(Level(g2, v2, ctx2.reshape(-1, 1), start2, hist[ctx2], n123))
         if self.order == 3:
@@ -1046,8 +1049,8 @@ class Model:
             sums = np.add.reduceat(v3, starts) if len(keys) else np.zeros(0, np.int64)
             # dropped mass per context (TDRI/TDRV, keyed by the context's bigram entry)
             ent = self._bigram_entries(ctx3[:, 0], ctx3[:, 1])
-            tdri = np.asarray(self._src.arrays["TDRI"], dtype=np.int64)
-            tdrv = np.asarray(self._src.arrays["TDRV"], dtype=np.int64)
+            assert self._src.dropped3 is not None  # an order-3 file has the table (checked on load)
+            tdri, tdrv = self._src.dropped3.all()
             dropped = np.zeros(len(ent), dtype=np.int64)
             if len(tdri):  # the sorted sparse table, looked up for every context at once
                 at = np.minimum(np.searchsorted(tdri, ent), len(tdri) - 1)
@@ -1123,17 +1126,17 @@ class Model:
 
     def info(self) -> dict[str, Any]:
         """Sizes, settings and corpus statistics, as plain data (for ``nextword info``)."""
-        a = self._src.arrays
-        bigram_bytes = sum(
-            a[s].nbytes for s in ("SUCC", "CNTS", "BIGI", "BIGC", "ROWS", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC")
-        )
+        a = self._src.section_bytes  # what the file holds (a 1.6 file's decoded arrays are not in it)
+        bigram_bytes = sum(a.get(s, 0) for s in ("SUCC", "CNTS", "BIGI", "BIGC", "ROWS", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC",
+                                                  "SEFH", "SEFB", "RWEH", "RWEB"))
         # the file split into what grows with the pairs and what grows with the vocabulary
         # (trie, permutations, key heads, top lists, unigram/history counts, row offsets,
         # spellings); the rest is header, section table, metadata and padding
-        pair_bytes = sum(a[s].nbytes for s in _PAIR_SECTIONS)
-        vocab_bytes = sum(a[s].nbytes for s in _VOCAB_SECTIONS if s in a) + len(self._src.raw["TRIE"]) + len(self._disb)
+        pair_bytes = sum(a.get(s, 0) for s in _PAIR_SECTIONS)
+        vocab_bytes = sum(a.get(s, 0) for s in _VOCAB_SECTIONS) + a["TRIE"] + a["DISB"]
         # Kneser-Ney context counts, context totals and the trigram sections (format 1.4)
-        ngram_bytes = sum(a[s].nbytes for s in a if s not in _PAIR_SECTIONS and s not in _VOCAB_SECTIONS)
+        ngram_bytes = sum(v for s, v in a.items() if s not in _PAIR_SECTIONS and s not in _VOCAB_SECTIONS
+                          and s not in ("META", "TRIE", "DISB"))
         pairs = self.n_bigrams
         return {
             "path": self.path,
@@ -1159,6 +1162,7 @@ class Model:
             # a Jelinek-Mercer bigram's answer is unchanged (the service's protocol quotes it)
             **({"estimator": self.estimator, "order": self.order} if self._general or self._vals2 is not None else {}),
             **({"codec": self.codec.meta()} if self.codec is not EXACT else {}),
+            **({"successors": dict(self._src.meta["successors"])} if "successors" in self._src.meta else {}),
             **({"discounts": self.discounts, "discount_notes": self.discount_notes} if self.estimator == "kn" else {}),
             **({"lambda3": self.stored_lam3} if self.stored_lam3 is not None else {}),
             **({"trigrams": self._src.meta["trigrams"]} if self.order == 3 else {}),
@@ -1242,7 +1246,7 @@ class _NgramScorer:
         if self.kn:
             self.floor = unigram_floor(unig, m.discounts[0], m.total)
             self.d2, self.d3 = m.discounts[1], (m.discounts[2] if self.order == 3 else m.discounts[1])
-            self._mv_hn13 = _native_view(a["HN13"])
+            self._mv_hn13: Any = _native_view(a["HN13"]) if "HN13" in a else m._src.views["HN13"]
         else:
             self.floor = unig / m.total
         if not bool(np.all((self.floor >= 0.0) & (self.floor <= 1.0 + 1e-9))):
@@ -1259,7 +1263,8 @@ class _NgramScorer:
             self._tsky_min: int = meta["trigram_skyband_min"]
             self._tval = self.codec.decode(m.path, a, TRIGRAM_TAGS, self._t)
             self._tlni, self._tlnv = _native_view(a["TLNI"]), _native_view(a["TLNV"])
-            self._tdri, self._tdrv = _native_view(a["TDRI"]), _native_view(a["TDRV"])
+            assert m._src.dropped3 is not None  # an order-3 file has the table (checked on load)
+            self._dropped3: SparseTable = m._src.dropped3
             self._tsgs, self._tsge = _native_view(a["TSGS"]), _native_view(a["TSGE"])
             self._tskp, self._tski, self._tskc = _native_view(a["TSKP"]), _native_view(a["TSKI"]), _native_view(a["TSKC"])
 
@@ -1325,7 +1330,7 @@ class _NgramScorer:
             vals = self._tval.slice(s, e)
             sm, n1, n2 = sum(vals), vals.count(1), vals.count(2)
             n3 = len(vals) - n1 - n2
-        tot = sm + self._sparse(self._tdri, self._tdrv, j)
+        tot = sm + self._dropped3.get(j)
         if tot <= 0:
             raise self._damaged(f"trigram context {j} has a total of {tot}")
         if self.kn:

@@ -1257,7 +1257,7 @@ def write_to_size(
     if quantize is not None or compact:
         fitted, _, small_tables, chunks, _ = prune_ngrams_to_size(
             counts, tables, estimator, max_bytes, rule=rule, progress=progress, skyband_k=skyband_k,
-            skyband_min=skyband_min, codec=codec_for_bits(quantize), compact=compact)
+            skyband_min=skyband_min, codec=codec_for_bits(quantize, ones=compact), compact=compact)
         atomic_write(path, chunks)
         return small_tables, len(fitted.levels[1].grams)
     if estimator.name == "jm" and counts.order == 2:

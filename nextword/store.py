@@ -24,8 +24,11 @@ import numpy as np
 
 from .codecs import COUNT_ESCAPE as COUNT_ESCAPE  # one source: the codec owns the escape byte
 from .codecs import EXACT, Codec, ExactCodec, codec_named
-from .succinct import ChunkedEF, ef_check_headers, ef_encode
-from .successors import BigramLists, EFBigramLists, EFTrigramLists, PlainBigramLists, PlainTrigramLists, TrigramLists
+from .succinct import ChunkedEF, PrefixSums, ef_check_headers, ef_encode
+from .successors import (
+    BigramLists, EFBigramLists, EFSparseTable, EFTrigramLists, PlainBigramLists, PlainSparseTable, PlainTrigramLists,
+    RowCounts, SparseTable, TrigramLists,
+)  # fmt: skip
 from .counts import CountTables
 from .errors import InvalidArgumentError, ModelFormatError
 from .estimators import FittedJelinekMercer, FittedKneserNey, unigram_floor
@@ -123,13 +126,31 @@ _OPTIONAL: Final = {
     b"TPTB": "u1",
     b"TEFH": "u4|u8",
     b"TEFB": "u1",
-    b"HN12": "id",
+    b"UNEH": "u4|u8",
+    b"UNEB": "u1",
+    b"HSEH": "u4|u8",
+    b"HSEB": "u1",
+    b"N1EH": "u4|u8",
+    b"N1EB": "u1",
+    b"N2EH": "u4|u8",
+    b"N2EB": "u1",
+    b"HDIH": "u4|u8",
+    b"HDIB": "u1",
+    b"HDVH": "u4|u8",
+    b"HDVB": "u1",
+    b"TDIH": "u4|u8",
+    b"TDIB": "u1",
+    b"TDVH": "u4|u8",
+    b"TDVB": "u1",
 }
 #: the required sections of §7 that a 1.6 file replaces (§7.18), and the sections it has instead
-_COMPACT_DROPS: Final = (b"IDTK", b"APOS", b"ROWS", b"SUCC")
-_COMPACT_BASE: Final = (b"RWEH", b"RWEB", b"SEFH", b"SEFB")
-_COMPACT_TRIGRAM: Final = (b"TPTH", b"TPTB", b"TEFH", b"TEFB")
-_PLAIN_TRIGRAM_ONLY: Final = (b"TCTB", b"TLEN", b"TLEI", b"TLEV", b"TSUC")
+_COMPACT_DROPS: Final = (b"IDTK", b"APOS", b"ROWS", b"SUCC", b"UNIG")
+_COMPACT_BASE: Final = (b"RWEH", b"RWEB", b"SEFH", b"SEFB", b"UNEH", b"UNEB")
+#: a 1.6 file's optional sections per kind, in place of the plain ones (§7.18)
+_COMPACT_NGRAM_BASE: Final = (b"HSEH", b"HSEB", b"HDIH", b"HDIB", b"HDVH", b"HDVB")
+_COMPACT_KN: Final = (b"N1EH", b"N1EB", b"N2EH", b"N2EB")
+_COMPACT_TRIGRAM: Final = (b"TPTH", b"TPTB", b"TEFH", b"TEFB", b"TDIH", b"TDIB", b"TDVH", b"TDVB")
+_PLAIN_TRIGRAM_ONLY: Final = (b"TCTB", b"TLEN", b"TLEI", b"TLEV", b"TSUC", b"TDRI", b"TDRV")
 #: smoothing methods and n-gram orders a model file can record (META "estimator", "order")
 ESTIMATORS: Final = ("jm", "kn")
 ORDERS: Final = (2, 3)
@@ -196,7 +217,8 @@ _U32_MAX: Final = 0xFFFFFFFF
 # trigram-sized ones only with verify=True; queries check what they read from them)
 _OPTIONAL_CHECKED_ON_LOAD: Final = (
     b"HIST", b"HN13", b"HDRI", b"HDRV", b"TLEI", b"TLEV", b"TBGI", b"TBGC", b"TLNI", b"TLNV", b"TDRI", b"TDRV",
-    b"RWEH", b"RWEB", b"HN12",
+    b"RWEH", b"RWEB", b"UNEH", b"UNEB", b"HSEH", b"HSEB", b"N1EH", b"N1EB", b"N2EH", b"N2EB", b"HDIH", b"HDIB",
+    b"HDVH", b"HDVB",
 )  # fmt: skip
 
 
@@ -845,10 +867,16 @@ def trigram_lower_scores(
     return np.asarray(level_mix(kn, param, c2, tot, dropped2[v], n123, lower), dtype=np.float64)
 
 
-def trigram_band_min(skyband_min: int, trigram_skyband_min: int | None) -> int:
-    """The trigram rows' band threshold: the given one, else the default capped by ``skyband_min``."""
+def trigram_band_min(skyband_min: int, trigram_skyband_min: int | None, *, compact: bool = False) -> int:
+    """The trigram rows' band threshold: the given one, else the default capped by ``skyband_min``.
+
+    A compact (1.6) file defaults to ``skyband_min`` itself, as the bigram rows: there a
+    band costs about as much as the successors it stands for (its offsets are u16, the
+    successors about 1.2 bytes), so bands only for the segments where a cut would cost most
+    (measured in bench/bench_quant.py: 1.94 → 1.91 bytes per n-gram, 24 → 64).
+    """
     if trigram_skyband_min is None:
-        return min(skyband_min, DEFAULT_TRIGRAM_SKYBAND_MIN)
+        return skyband_min if compact else min(skyband_min, DEFAULT_TRIGRAM_SKYBAND_MIN)
     if isinstance(trigram_skyband_min, bool) or not isinstance(trigram_skyband_min, int) or trigram_skyband_min < 0:
         raise InvalidArgumentError(f"trigram_skyband_min must be an integer >= 0, got {trigram_skyband_min!r}")
     return trigram_skyband_min
@@ -1082,7 +1110,7 @@ def build_ngram_sections(
             kn, stored[1] if kn else lam2, floor_new, rows, succ2, file_values2, history, dropped2, n123_2, v, pos, alph,
         )  # fmt: skip
         alpha_keys = [keys[i] for i in alph[:n].tolist()]
-        tmin = trigram_band_min(skyband_min, trigram_skyband_min)
+        tmin = trigram_band_min(skyband_min, trigram_skyband_min, compact=compact)
         tsgs, tsge, tskp, tski, tskc = trigram_bands(ctx_starts, pos, alph[pos.astype(np.int64)], value3, lower, alpha_keys, n, skyband_k, tmin)
         sections += [
             (b"TCTB", u4, tctb),
@@ -1123,8 +1151,10 @@ def compact_sections(
     The same model, with its monotone sequences coded by chunked Elias-Fano: the bigram
     successors as v·(n+2) + position, the trigram successors as their index in v's
     bigram row (every stored trigram (u, v, w) must have its bigram (v, w) stored:
-    pruning keeps it), the row starts and the trigram contexts' starts; the inverse
-    permutations are dropped (a reader computes them) and HN13 keeps N₁ and N₂ only.
+    pruning keeps it), the row starts and the trigram contexts' starts; the per-word and
+    per-context counts (UNIG, HIST, N₁ and N₂ of HN13, the dropped masses) as their
+    prefix sums, the sparse tables' indices as themselves; the inverse permutations are
+    dropped (a reader computes them).
     """
     if minor not in (NGRAM_MINOR, QUANT_MINOR):
         raise InvalidArgumentError(f"only format 1.{NGRAM_MINOR}/1.{QUANT_MINOR} sections have a compact form, not 1.{minor}")
@@ -1140,9 +1170,17 @@ def compact_sections(
         b"ROWS": _ef_sections(b"RWEH", b"RWEB", rows),
         b"SUCC": _ef_sections(b"SEFH", b"SEFB", row_of * n_pos + succ),
     }
+    def prefix(values: Any) -> np.ndarray:
+        return np.concatenate([[0], np.cumsum(np.asarray(values, dtype=np.int64))]).astype(np.int64)
+
+    new[b"UNIG"] = _ef_sections(b"UNEH", b"UNEB", prefix(by[b"UNIG"][1]))
+    if b"HIST" in by:
+        new[b"HIST"] = _ef_sections(b"HSEH", b"HSEB", prefix(by[b"HIST"][1]))
+        new[b"HDRI"] = _ef_sections(b"HDIH", b"HDIB", np.asarray(by[b"HDRI"][1], dtype=np.int64))
+        new[b"HDRV"] = _ef_sections(b"HDVH", b"HDVB", prefix(by[b"HDRV"][1]))
     if b"HN13" in by:
         n123 = np.asarray(by[b"HN13"][1], dtype=np.int64).reshape(-1, 3)
-        new[b"HN13"] = [(b"HN12", idt, n123[:, :2].reshape(-1))]
+        new[b"HN13"] = _ef_sections(b"N1EH", b"N1EB", prefix(n123[:, 0])) + _ef_sections(b"N2EH", b"N2EB", prefix(n123[:, 1]))
     if b"TSUC" in by:
         b = len(succ)
         lengths = EXACT.decode("compact", {t.decode(): np.asarray(by[t][1]) for t in CONTEXT_TAGS}, CONTEXT_TAGS).all()
@@ -1169,7 +1207,10 @@ def compact_sections(
         y = x + np.repeat(base, lengths[ctx])
         new[b"TCTB"] = _ef_sections(b"TPTH", b"TPTB", starts)
         new[b"TSUC"] = _ef_sections(b"TEFH", b"TEFB", y)
+        new[b"TDRI"] = _ef_sections(b"TDIH", b"TDIB", np.asarray(by[b"TDRI"][1], dtype=np.int64))
+        new[b"TDRV"] = _ef_sections(b"TDVH", b"TDVB", prefix(by[b"TDRV"][1]))
     meta["successors"] = dict(SUCCESSORS_META)
+    meta["dropped_contexts"] = [len(by[b"HDRI"][1])] + ([len(by[b"TDRI"][1])] if b"TDRI" in by else [])
     out: list[tuple[bytes, np.dtype | None, bytes | np.ndarray]] = []
     for tag, dt, data in sections:
         if tag == b"META":
@@ -1177,7 +1218,7 @@ def compact_sections(
         elif tag in new:
             out += new[tag]
         elif tag in _COMPACT_DROPS or tag in _PLAIN_TRIGRAM_ONLY or tag == b"HN13":
-            continue
+            continue  # replaced above, or (IDTK, APOS) computed by the reader
         else:
             out.append((tag, dt, data))
     return out, COMPACT_MINOR
@@ -1282,6 +1323,13 @@ class ModelArrays:
     #: the successor lists, whatever their layout (docs/SEAMS.md, "The successor seam")
     succ2: BigramLists
     succ3: TrigramLists | None
+    #: each section's length in the file, in bytes (by tag)
+    section_bytes: dict[str, int]
+    #: the trigram contexts' dropped mass (order 3), whatever its layout
+    dropped3: SparseTable | None
+    #: tables a 1.6 file keeps coded until read ("HIST": PrefixSums, "HN13": RowCounts), read by index like
+    #: the arrays they stand for; absent from ``arrays`` then (decoded there with ``verify=True``)
+    views: dict[str, Any]
 
     def close(self) -> None:
         # arrays keep exporting the buffer while alive; let the GC unmap when they go
@@ -1430,40 +1478,62 @@ def _parse(name: str, mm: mmap.mmap, size: int, verify: bool) -> ModelArrays:
             raise _fail(name, f"section {tag.decode()} has element type {_DTYPES[code]}, expected {want}")
         arrays[tag.decode()] = np.frombuffer(mm, dtype=want, count=length // want.itemsize, offset=off)
     efs = _expand_compact(name, meta, arrays, full=verify) if compact else {}
+    views: dict[str, Any] = {k: efs[k] for k in ("HIST", "HN13") if k in efs}
     trie = marisa_trie.Trie()
     trie.map(raw["TRIE"])
     _check_arrays(name, meta, trie, arrays, raw, full=verify)
     succ2: BigramLists
     succ3: TrigramLists | None = None
+    dropped3: SparseTable | None = None
     rows_mv = memoryview(np.ascontiguousarray(arrays["ROWS"], dtype=np.int64)).cast("B").cast("q")  # type: ignore[arg-type]
     if compact:
         succ2 = EFBigramLists(name, efs["SEF"], arrays["ROWS"], n + 2)
         if meta["order"] == 3:
             succ3 = EFTrigramLists(name, efs["TEF"], efs["TPT"], succ2, rows_mv, arrays["ALPH"])
+            dropped3 = EFSparseTable(name, "sections TDIH/TDVH", efs["TDI"], efs["TDV"])
     else:
         succ2 = PlainBigramLists(arrays["SUCC"])
         if meta["order"] == 3:
             succ3 = PlainTrigramLists(name, arrays["TSUC"], arrays["TCTB"], EXACT.decode(name, arrays, CONTEXT_TAGS), succ2, rows_mv)
-    return ModelArrays(name, (major, minor), meta, trie, arrays, raw, size, mm, succ2, succ3)
+            dropped3 = PlainSparseTable(arrays["TDRI"], arrays["TDRV"])
+    section_bytes = {tag.decode("ascii", "replace"): length for tag, (_, _, length, _) in sections.items()}
+    return ModelArrays(name, (major, minor), meta, trie, arrays, raw, size, mm, succ2, succ3, section_bytes, dropped3, views)
 
 
-def _expand_compact(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], *, full: bool) -> dict[str, ChunkedEF]:
+def _expand_compact(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], *, full: bool) -> dict[str, Any]:
     """Check a 1.6 file's Elias-Fano sequences (§7.18) and rebuild its vocabulary-sized arrays.
 
     On every load (O(chunks) and O(vocabulary)): every sequence's headers and stream;
-    ROWS decoded; IDTK and APOS computed as the inverses of TKID and ALPH (checked to be
-    permutations by ``_check_arrays`` afterwards); HN13 rebuilt from HN12 and the row
-    lengths. With ``full`` every sequence is decoded into the arrays of a 1.4/1.5 file
-    (SUCC, TSUC, TLEN/TLEI/TLEV, TCTB), which ``_check_arrays`` then verifies as such.
+    ROWS, UNIG, HIST, HN13 and HDRI/HDRV decoded into the arrays of a 1.4/1.5 file; IDTK
+    and APOS computed as the inverses of TKID and ALPH (checked to be permutations by
+    ``_check_arrays`` afterwards). The successor lists, trigram starts and TDRI/TDRV stay
+    coded (returned, read by the query views). With ``full`` every sequence is decoded
+    into the arrays of a 1.4/1.5 file (SUCC, TSUC, TLEN/TLEI/TLEV, TCTB, TDRI/TDRV), which
+    ``_check_arrays`` then verifies as such.
     """
     n, b = meta["n_words"], meta["bigrams"]
     n_pos, n_hist = n + 2, n + 3
     idt = _id_dtype(n)
+    # how many contexts of each level (bigram, trigram) have dropped mass: the sparse tables' lengths
+    dropped = meta.get("dropped_contexts")
+    want = meta["order"] - 1
+    if not (isinstance(dropped, list) and len(dropped) == want and all(isinstance(x, int) and not isinstance(x, bool)
+                                                                        for x in dropped)
+            and 0 <= dropped[0] <= n_hist and (want == 1 or 0 <= dropped[1] <= b)):
+        raise _fail(name, f"metadata field 'dropped_contexts' is invalid: {dropped!r}"[:200])
 
-    def seq(tag: str, count: int, *, strict: bool) -> ChunkedEF:
+    def seq(tag: str, count: int, *, strict: bool, chunks: bool = True) -> ChunkedEF:
         head, stream = a.pop(tag + "H"), a.pop(tag + "B")
-        ef_check_headers(name, f"sections {tag}H/{tag}B", head, stream, count, strict=strict)
+        ef_check_headers(name, f"sections {tag}H/{tag}B", head, stream, count, strict=strict, chunks=chunks or full)
         return ChunkedEF(name, f"sections {tag}H/{tag}B", head, stream, count)
+
+    def counts(tag: str, count: int, *, positive: bool = False) -> np.ndarray:
+        """Values stored as their prefix sums (count + 1 values from 0): the values, checked ≥ 0 (≥ 1) and ≤ 32 bits."""
+        cum = seq(tag, count + 1, strict=positive).all()
+        vals = np.diff(cum)
+        if cum[0] != 0 or (count and (int(vals.min()) < (1 if positive else 0) or int(vals.max()) > _U32_MAX)):
+            raise _fail(name, f"sections {tag}H/{tag}B do not hold prefix sums from 0 of {'positive ' if positive else ''}32-bit values")
+        return vals
 
     rows_ef = seq("RWE", n_hist + 1, strict=False)
     rows = rows_ef.all()
@@ -1476,25 +1546,49 @@ def _expand_compact(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], *
             raise _fail(name, f"section {label} is not a valid permutation")
         out = np.zeros(m, dtype=idt)
         out[arr.astype(np.int64)] = np.arange(m)
+        if not np.array_equal(out[arr.astype(np.int64)], np.arange(m)):
+            raise _fail(name, f"section {label} is not a valid permutation")
         a[inv] = out
-    efs = {"SEF": seq("SEF", b, strict=True)}
+    a["UNIG"] = counts("UNE", n_pos).astype(np.uint32)
+    efs: dict[str, Any] = {}
+    # the n-gram-sized sequences: their chunks' headers are checked when a query decodes them
+    efs["SEF"] = seq("SEF", b, strict=True, chunks=False)
     if efs["SEF"].end() > n_hist * n_pos:
         raise _fail(name, "sections SEFH/SEFB: a successor past the last row")
-    if "HN12" in a:
-        hn = a.pop("HN12").astype(np.int64)
-        if len(hn) != 2 * n_hist:
-            raise _fail(name, f"section HN12 holds {len(hn)} entries, expected {2 * n_hist}")
-        n12 = hn.reshape(-1, 2)
-        n3 = np.diff(rows) - n12[:, 0] - n12[:, 1]
+    if "HSEH" in a:
+        if full:
+            a["HIST"] = counts("HSE", n_hist).astype(np.uint32)
+        else:  # read per query (two reads of a cached chunk): opening stays fast
+            efs["HIST"] = PrefixSums(name, "sections HSEH/HSEB", seq("HSE", n_hist + 1, strict=False))
+            if efs["HIST"].first() != 0:
+                raise _fail(name, "sections HSEH/HSEB do not hold prefix sums from 0")
+        n_hdr = dropped[0]
+        idx = seq("HDI", n_hdr, strict=True).all()
+        if len(idx) and int(idx[-1]) >= n_hist:
+            raise _fail(name, f"sections HDIH/HDIB: a history id not below {n_hist}")
+        a["HDRI"] = idx.astype(idt)
+        a["HDRV"] = counts("HDV", n_hdr, positive=True).astype(np.uint32)
+    if "N1EH" in a and not full:
+        n1v = PrefixSums(name, "sections N1EH/N1EB", seq("N1E", n_hist + 1, strict=False))
+        n2v = PrefixSums(name, "sections N2EH/N2EB", seq("N2E", n_hist + 1, strict=False))
+        efs["HN13"] = RowCounts(name, n1v, n2v, rows)
+    elif "N1EH" in a:
+        n1, n2 = counts("N1E", n_hist), counts("N2E", n_hist)
+        n3 = np.diff(rows) - n1 - n2
         if bool(np.any(n3 < 0)):
-            raise _fail(name, "section HN12 counts more entries than a row has")
-        a["HN13"] = np.column_stack([n12, n3]).reshape(-1).astype(np.uint32)
+            raise _fail(name, "sections N1EH/N2EH count more entries than a row has")
+        a["HN13"] = np.column_stack([n1, n2, n3]).reshape(-1).astype(np.uint32)
     if meta["order"] == 3:
         t = meta["trigrams"]
-        efs["TPT"] = seq("TPT", b + 1, strict=False)
+        efs["TPT"] = seq("TPT", b + 1, strict=False, chunks=False)
         if efs["TPT"].first() != 0 or efs["TPT"].end() != t + 1:
             raise _fail(name, f"sections TPTH/TPTB do not run from 0 to {t}")
-        efs["TEF"] = seq("TEF", t, strict=True)
+        efs["TEF"] = seq("TEF", t, strict=True, chunks=False)
+        n_tdr = dropped[1]
+        efs["TDI"] = seq("TDI", n_tdr, strict=True, chunks=False)
+        efs["TDV"] = seq("TDV", n_tdr + 1, strict=True, chunks=False)
+        if efs["TDI"].end() > b or efs["TDV"].first() != 0:
+            raise _fail(name, "sections TDIH/TDVH do not index bigram entries, or their sums do not start at 0")
     if full:
         succ2 = EFBigramLists(name, efs["SEF"], rows, n_pos)
         a["SUCC"] = succ2.all().astype(idt)
@@ -1508,7 +1602,12 @@ def _expand_compact(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], *
             starts = np.zeros(b + 1, dtype=np.int64)
             np.cumsum(lengths, out=starts[1:])
             a["TCTB"] = starts[: b + 1 : CTX_BLOCK].astype(np.uint32)
+            idx, val = EFSparseTable(name, "sections TDIH/TDVH", efs["TDI"], efs["TDV"]).all()
+            if len(val) and int(val.max()) > _U32_MAX:
+                raise _fail(name, "sections TDVH/TDVB hold a value above 32 bits")
+            a["TDRI"], a["TDRV"] = idx.astype(np.uint32), val.astype(np.uint32)
     return efs
+
 
 
 def _check_meta(name: str, meta: Any, size: int) -> dict[str, Any]:
@@ -1564,6 +1663,8 @@ def _check_model_kind(name: str, meta: dict[str, Any], minor: int, tags: set[byt
             raise _fail(name, f"format 1.{minor} files hold Jelinek-Mercer bigram models only")
         if "codec" in meta:
             raise _fail(name, f"format 1.{minor} files have no 'codec' field (their values are exact)")
+        if "successors" in meta:
+            raise _fail(name, f"metadata field 'successors' belongs to format 1.{COMPACT_MINOR} files exactly")
         meta["estimator"], meta["order"] = "jm", 2
         return
     codec = codec_named(name, meta.get("codec"))
@@ -1573,6 +1674,8 @@ def _check_model_kind(name: str, meta: dict[str, Any], minor: int, tags: set[byt
         raise _fail(name, f"metadata field 'successors' belongs to format 1.{COMPACT_MINOR} files exactly")
     if compact and layout != SUCCESSORS_META:
         raise _fail(name, f"unknown successor layout {layout!r} (this library reads {SUCCESSORS_META!r})"[:300])
+    if codec.version == 2 and not compact:
+        raise _fail(name, f"codec {codec.name!r} version 2 belongs to format 1.{COMPACT_MINOR} files, not 1.{minor}")
     if not compact and (codec.name != EXACT.name) != (minor == QUANT_MINOR):
         raise _fail(name, f"format 1.{minor} files do not use codec {codec.name!r} (1.{NGRAM_MINOR}: exact values, 1.{QUANT_MINOR}: quantised)")
     est, order = meta.get("estimator"), meta.get("order")
@@ -1603,7 +1706,7 @@ def _check_model_kind(name: str, meta: dict[str, Any], minor: int, tags: set[byt
             raise _fail(name, f"metadata field 'lambda3' is invalid: {lam3!r}"[:200])
         meta["lambda3"] = float(lam3)
     if compact:
-        want = set(_NGRAM_BASE) | ({b"HN12"} if est == "kn" else set())
+        want = set(_COMPACT_NGRAM_BASE) | (set(_COMPACT_KN) if est == "kn" else set())
         want |= (set(_TRIGRAM) - set(_PLAIN_TRIGRAM_ONLY)) | set(_COMPACT_TRIGRAM) if order == 3 else set()
         have = tags & (set(_OPTIONAL) - set(_COMPACT_BASE))
     else:
@@ -1647,12 +1750,13 @@ def _check_ngram_arrays(name: str, meta: dict[str, Any], a: dict[str, np.ndarray
     n = meta["n_words"]
     n_pos, n_hist = n + 2, n + 3
     kn = meta["estimator"] == "kn"
-    if len(a["HIST"]) != n_hist:
+    if "HIST" in a and len(a["HIST"]) != n_hist:
         raise _fail(name, f"section HIST holds {len(a['HIST'])} entries, expected {n_hist}")
-    if kn and len(a["HN13"]) != 3 * n_hist:
+    if kn and "HN13" in a and len(a["HN13"]) != 3 * n_hist:
         raise _fail(name, f"section HN13 holds {len(a['HN13'])} entries, expected {3 * n_hist}")
     _sorted_sparse(name, "HDRI/HDRV", a["HDRI"], a["HDRV"], n_hist)
-    if len(a["HDRI"]) and bool(np.any(a["HDRV"] > a["HIST"][a["HDRI"]])):
+    # (a 1.6 file opened without verify reads HIST per query, which compares each dropped mass with its total)
+    if "HIST" in a and len(a["HDRI"]) and bool(np.any(a["HDRV"] > a["HIST"][a["HDRI"]])):
         raise _fail(name, "section HDRV holds dropped mass above its context total")
     codec = codec_named(name, meta["codec"])
     if meta["order"] == 3:
@@ -1664,7 +1768,8 @@ def _check_ngram_arrays(name: str, meta: dict[str, Any], a: dict[str, np.ndarray
         nseg, K = len(a["TSGS"]), meta["skyband_k"]
         expected = {
             **({"TCTB": b // CTX_BLOCK + 1, "TSUC": t} if plain else {}),
-            "TLNV": 4 * len(a["TLNI"]), "TDRV": len(a["TDRI"]), "TSGE": nseg, "TSKP": nseg + 1, "TSKC": nseg * K,
+            **({"TDRV": len(a["TDRI"])} if "TDRI" in a else {}),
+            "TLNV": 4 * len(a["TLNI"]), "TSGE": nseg, "TSKP": nseg + 1, "TSKC": nseg * K,
         }  # fmt: skip
         for label, want in expected.items():
             if len(a[label]) != want:
@@ -1676,7 +1781,8 @@ def _check_ngram_arrays(name: str, meta: dict[str, Any], a: dict[str, np.ndarray
             if tctb[0] != 0 or np.any(tctb[1:] < tctb[:-1]) or int(tctb[-1]) + sum(tail) != t:
                 raise _fail(name, f"sections TCTB/TLEN do not run from 0 to {t}")
         _sorted_sparse(name, "TLNI/TLNV", a["TLNI"], np.ones(len(a["TLNI"]), np.int64), b)
-        _sorted_sparse(name, "TDRI/TDRV", a["TDRI"], a["TDRV"], b)
+        if "TDRI" in a:  # absent: a 1.6 file opened without verify (its sequences checked by _expand_compact)
+            _sorted_sparse(name, "TDRI/TDRV", a["TDRI"], a["TDRV"], b)
         if a["TSKP"][0] != 0 or int(a["TSKP"][-1]) != len(a["TSKI"]):
             raise _fail(name, "section TSKP does not run from 0 to the end of TSKI")
     if keys is None:
@@ -1805,9 +1911,9 @@ def _check_arrays(
     disi = a["DISI"]
     if len(disi) and (disi[-1] >= n or np.any(disi[1:] <= disi[:-1])):
         raise _fail(name, "section DISI is not an increasing list of word ids")
-    if codec is EXACT:
+    if codec is EXACT and ("HIST" in a or "successors" not in meta):  # (1.6 without verify: the queries compare)
         _check_escaped_counts(name, a, n, b)
-    ngram = meta["estimator"] != "jm" or meta["order"] != 2 or codec is not EXACT
+    ngram = meta["estimator"] != "jm" or meta["order"] != 2 or codec is not EXACT or "successors" in meta
     if ngram:
         _check_ngram_arrays(name, meta, a, keys=None)
     if not full:

@@ -27,7 +27,7 @@ import numpy as np
 
 from .errors import InvalidArgumentError, ModelFormatError
 
-__all__ = ["CHUNK", "EF_PAD", "ChunkedEF", "ef_encode", "ef_chunk_bits", "ef_check_headers"]
+__all__ = ["CHUNK", "EF_PAD", "ChunkedEF", "PrefixSums", "ef_encode", "ef_chunk_bits", "ef_check_headers"]
 
 #: values per chunk (a power of two; fixed for version 1 of the layout)
 CHUNK: Final = 64
@@ -40,13 +40,8 @@ _U32: Final = 0xFFFFFFFF
 def _low_bits(r: np.ndarray, m: np.ndarray) -> np.ndarray:
     """L = ⌊log₂(⌊r / m⌋)⌋ for ⌊r / m⌋ ≥ 1, else 0 (integer arithmetic, no float rounding)."""
     q = r // np.maximum(m, 1)
-    out = np.zeros(len(q), dtype=np.int64)
-    for k in range(1, 64):
-        hit = q >= (np.int64(1) << k)
-        if not hit.any():
-            break
-        out[hit] = k
-    return out
+    # ⌊log₂ q⌋ = frexp's exponent − 1, exact for integers below 2⁵³
+    return np.where(q >= 1, np.frexp(np.maximum(q, 1).astype(np.float64))[1] - 1, 0).astype(np.int64)
 
 
 def ef_chunk_bits(r: np.ndarray, m: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -99,21 +94,32 @@ def ef_encode(y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return head, stream
 
 
-def ef_check_headers(where: str, label: str, head: np.ndarray, stream: np.ndarray, n: int, *, strict: bool) -> None:
-    """Every check that needs only the headers (run on every load; O(chunks), numpy).
+def ef_check_headers(where: str, label: str, head: np.ndarray, stream: np.ndarray, n: int, *, strict: bool,
+                     chunks: bool = True) -> None:
+    """The checks that need only the headers (on every load).
 
-    After these, every chunk's bits lie inside the stream, so a decoder reads in bounds;
-    the values inside a chunk are checked as they are decoded.
+    Always (O(1)): the number of headers, the first offset 0, the stream's length from the
+    sentinel offset and its zero tail. With ``chunks`` (O(chunks), numpy; the
+    vocabulary-sized sequences, and every sequence with ``verify=True``): every chunk's
+    size, offsets and first values increasing. Without it, :class:`ChunkedEF` checks a
+    chunk's header when it decodes the chunk, so a decoder always reads inside the stream.
     """
     c = (n + CHUNK - 1) >> _SHIFT
     if len(head) != 2 * (c + 1):
         raise ModelFormatError(f"{where}: {label} has {len(head)} header entries, expected {2 * (c + 1)} for {n} values")
+    if not chunks:
+        end = int(head[-1])
+        if int(head[1]) != 0 or (n == 0 and int(head[0]) != 0):
+            raise ModelFormatError(f"{where}: {label} chunk offsets do not start at 0")
+        _check_tail(where, label, stream, end)
+        return
     h = head.astype(np.int64)
     first, off = h[0::2], h[1::2]
     if off[0] != 0 or bool((np.diff(off) < 0).any()):
         raise ModelFormatError(f"{where}: {label} chunk offsets do not start at 0 and increase")
     step = np.diff(first)
-    if bool((step < 0).any()) or (strict and n and bool((step[:-1] < CHUNK).any())):
+    m_all = np.minimum(CHUNK, n - (np.arange(c, dtype=np.int64) << _SHIFT))
+    if bool((step < 0).any()) or (strict and n and bool((step < m_all).any())):
         raise ModelFormatError(f"{where}: {label} chunk first values are not increasing")
     if n == 0 and first[0] != 0:
         raise ModelFormatError(f"{where}: {label} is empty but ends at {first[0]}")
@@ -122,12 +128,17 @@ def ef_check_headers(where: str, label: str, head: np.ndarray, stream: np.ndarra
     if c and not np.array_equal(size, np.diff(off)):
         bad = int(np.flatnonzero(size != np.diff(off))[0])
         raise ModelFormatError(f"{where}: {label} chunk {bad} has {int(off[bad + 1] - off[bad])} bits, its values need {int(size[bad])}")
-    want = ((int(off[-1]) + 7) >> 3) + EF_PAD
+    _check_tail(where, label, stream, int(off[-1]))
+
+
+def _check_tail(where: str, label: str, stream: np.ndarray, end: int) -> None:
+    """The stream has ⌈end/8⌉ + 8 bytes and no bit set from bit ``end`` on."""
+    want = ((end + 7) >> 3) + EF_PAD
     if len(stream) != want:
         raise ModelFormatError(f"{where}: {label} stream has {len(stream)} bytes, expected {want}")
-    tail = stream[int(off[-1]) >> 3 :]
-    if int(off[-1]) & 7:
-        if int(tail[0]) >> (int(off[-1]) & 7):
+    tail = stream[end >> 3 :]
+    if end & 7:
+        if int(tail[0]) >> (end & 7):
             raise ModelFormatError(f"{where}: {label} stream has bits set past its end")
         tail = tail[1:]
     if bool(tail.any()):
@@ -145,10 +156,9 @@ class ChunkedEF:
 
     def __init__(self, where: str, label: str, head: np.ndarray, stream: np.ndarray, n: int, *, cache: int = 2048) -> None:
         self._where, self._label, self._n = where, label, n
-        h = head.astype(np.int64)
-        self._first = h[0::2]
-        self._off = h[1::2]
-        self._first_l: list[int] = self._first.tolist()
+        self._head = head
+        # scalar reads of the headers without converting them (opening stays O(1) per sequence)
+        self._h = memoryview(np.ascontiguousarray(head)).cast("B").cast("Q" if head.dtype.itemsize == 8 else "I")  # type: ignore[arg-type]
         self._stream = stream
         self._cache: dict[int, np.ndarray] = {}
         self._cache_max = cache
@@ -158,11 +168,11 @@ class ChunkedEF:
 
     def first(self) -> int:
         """Y₀ (0 for an empty sequence): the first chunk's header value."""
-        return self._first_l[0]
+        return self._h[0]  # type: ignore[no-any-return]
 
     def end(self) -> int:
         """Y_{N−1} + 1 (0 for an empty sequence): the sentinel header value."""
-        return self._first_l[-1]
+        return self._h[len(self._h) - 2]  # type: ignore[no-any-return]
 
     def _bad(self, c: int) -> ModelFormatError:
         return ModelFormatError(f"{self._where}: {self._label} chunk {c} does not decode to its values")
@@ -172,12 +182,16 @@ class ChunkedEF:
         got = self._cache.get(c)
         if got is not None:
             return got
-        first, nxt = self._first_l[c], self._first_l[c + 1]
+        h = self._h
+        first, nxt = h[2 * c], h[2 * c + 2]
         m = min(CHUNK, self._n - (c << _SHIFT))
-        o0, o1 = int(self._off[c]), int(self._off[c + 1])
+        o0, o1 = h[2 * c + 1], h[2 * c + 3]
         r = nxt - first
-        q = r // m
+        q = r // m if r >= 0 else 0
         low = q.bit_length() - 1 if q else 0
+        # this chunk's header (checked here when the load checked only the counts): inside the stream, the right size
+        if r < 0 or o1 > h[len(h) - 1] or o1 - o0 != m * low + (r >> low) + m:
+            raise self._bad(c)
         raw = np.unpackbits(self._stream[o0 >> 3 : (o1 + 7) >> 3], bitorder="little")[o0 & 7 : (o0 & 7) + (o1 - o0)]
         ones = np.flatnonzero(raw[m * low :])
         if len(ones) != m:
@@ -187,7 +201,8 @@ class ChunkedEF:
             vals <<= low
             vals |= raw[: m * low].reshape(m, low).astype(np.int64) @ (np.int64(1) << np.arange(low, dtype=np.int64))
         vals += first
-        if vals[-1] > nxt:
+        # the first value is the header's; the sequence's last value is one below the sentinel
+        if vals[0] != first or vals[-1] > nxt or (c == (len(h) >> 1) - 2 and vals[-1] != nxt - 1):
             raise self._bad(c)
         vals.flags.writeable = False
         if len(self._cache) >= self._cache_max:
@@ -221,10 +236,10 @@ class ChunkedEF:
         c0, c1 = s >> _SHIFT, (e - 1) >> _SHIFT
         # the last chunk in [c0, c1] whose first value is < y holds the answer or ends before it
         lo, hi = c0, c1 + 1
-        fl = self._first_l
+        h = self._h
         while lo < hi:
             mid = (lo + hi) >> 1
-            if fl[mid] < y:
+            if h[2 * mid] < y:
                 lo = mid + 1
             else:
                 hi = mid
@@ -249,50 +264,95 @@ class ChunkedEF:
         c0, c1 = int(ch.min()), int(ch.max())
         if c1 - c0 < 8:
             block = np.concatenate([self.chunk(c) for c in range(c0, c1 + 1)])
-        else:
-            block = self._decode(c0, c1 + 1)
-        return block[idx - (c0 << _SHIFT)]
+            return block[idx - (c0 << _SHIFT)]
+        used = np.unique(ch)
+        if len(used) <= 16:  # a few chunks far apart: each from the cache
+            out = np.empty(len(idx), dtype=np.int64)
+            for c in used.tolist():
+                sel = ch == c
+                out[sel] = self.chunk(c)[idx[sel] - (c << _SHIFT)]
+            return out
+        return self._decode(c0, c1 + 1)[idx - (c0 << _SHIFT)]
 
     def all(self) -> np.ndarray:
         """Every value (int64): the whole stream decoded at once (verification, export, prune)."""
         return self._decode(0, (self._n + CHUNK - 1) >> _SHIFT)
 
     def _decode(self, c0: int, c1: int) -> np.ndarray:
-        """The values of chunks c0 … c1−1, vectorised (long ranges; the cache is not used)."""
+        """The values of chunks c0 … c1−1, vectorised (long ranges and whole sequences; the cache is not used)."""
         if c1 <= c0:
             return np.zeros(0, dtype=np.int64)
         n = min(self._n, c1 << _SHIFT) - (c0 << _SHIFT)
+        h = self._head[2 * c0 : 2 * c1 + 2].astype(np.int64)
+        first, off = h[0::2], h[1::2]
         cs = np.arange(c0, c1, dtype=np.int64)
-        first, off = self._first[c0 : c1 + 1], self._off[c0 : c1 + 1]
         m = np.minimum(CHUNK, self._n - (cs << _SHIFT))
-        low, _ = ef_chunk_bits(first[1:] - first[:-1], m)
+        step = first[1:] - first[:-1]
+        low, size = ef_chunk_bits(np.maximum(step, 0), m)
+        if bool((step < 0).any()) or not np.array_equal(size, np.diff(off)) or int(off[-1]) > int(self._head[-1]):
+            raise ModelFormatError(f"{self._where}: {self._label} chunk headers do not match their sizes")
         b0 = int(off[0]) >> 3
-        bits = np.unpackbits(self._stream[b0 : (int(off[-1]) + 7) >> 3], bitorder="little")
+        raw = self._stream[b0 : ((int(off[-1]) + 7) >> 3) + EF_PAD]
         off = off - 8 * b0
         ch = np.arange(n, dtype=np.int64) >> _SHIFT
         i = np.arange(n, dtype=np.int64) - (ch << _SHIFT)
         lw = low[ch]
+        # low parts: the bytes from each value's first low bit, as many as the widest needs
+        # (7 + ℓ bits, at most 8 bytes: the stream's zero padding keeps every read inside it)
         start = off[ch] + i * lw
-        lo = np.zeros(n, dtype=np.int64)
-        for k in range(int(lw.max())):
-            sel = lw > k
-            lo[sel] |= bits[start[sel] + k].astype(np.int64) << k
-        # high parts: the set bits of each chunk's unary region, in order
+        at = start >> 3
+        nb = min((int(lw.max(initial=0)) + 14) // 8, 8)
+        word = np.zeros(n, dtype=np.uint64)
+        for k in range(nb):
+            word |= raw[np.minimum(at + k, len(raw) - 1)].astype(np.uint64) << np.uint64(8 * k)
+        lo = ((word >> (start & 7).astype(np.uint64)) & ((np.uint64(1) << lw.astype(np.uint64)) - np.uint64(1))).astype(np.int64)
+        # high parts: a mask of every chunk's high region, its set bits in order are the values' (m_c per chunk)
         hstart = off[:-1] + m * low
-        hend = off[1:]
-        mark = np.zeros(len(bits) + 1, dtype=np.int64)
-        np.add.at(mark, hstart, 1)
-        np.add.at(mark, hend, -1)
-        inside = np.cumsum(mark[:-1]) > 0
-        ones = np.flatnonzero((bits == 1) & inside)
+        lengths = np.column_stack([m * low, off[1:] - hstart]).reshape(-1)
+        region = np.repeat(np.tile(np.array([False, True]), c1 - c0), lengths)
+        bits = np.unpackbits(raw, bitorder="little")[int(off[0]) : int(off[-1])].astype(bool)
+        ones = np.flatnonzero(bits & region) + int(off[0])
         if len(ones) != n:
             raise ModelFormatError(f"{self._where}: {self._label} high bits hold {len(ones)} values, expected {n}")
-        owner = np.searchsorted(hstart, ones, side="right") - 1
-        if not np.array_equal(owner, ch):
-            raise ModelFormatError(f"{self._where}: {self._label} high bits do not match the chunk sizes")
         hi = ones - hstart[ch] - i
+        if len(hi) and int(hi.min()) < 0:
+            raise ModelFormatError(f"{self._where}: {self._label} high bits do not match the chunk sizes")
         vals = first[:-1][ch] + ((hi << lw) | lo)
-        over = vals > first[1:][ch]
+        over = (vals > first[1:][ch]) | ((i == 0) & (vals != first[:-1][ch]))
         if bool(over.any()):
             raise self._bad(c0 + (int(np.flatnonzero(over)[0]) >> _SHIFT))
+        if c1 == (len(self._head) >> 1) - 1 and n and vals[-1] != first[-1] - 1:
+            raise self._bad(c1 - 1)
         return vals
+
+
+class PrefixSums:
+    """Values x₀ … x_{m−1} stored as the sequence of their prefix sums: x_i = P_{i+1} − P_i.
+
+    Read by index like an array (two reads of the sequence, usually one cached chunk), so
+    a vocabulary-sized table need not be decoded when a file is opened; ``all`` decodes it.
+    """
+
+    def __init__(self, where: str, label: str, ef: ChunkedEF) -> None:
+        self._where, self._label, self._ef = where, label, ef
+
+    def __len__(self) -> int:
+        return max(len(self._ef) - 1, 0)
+
+    def first(self) -> int:
+        """P₀ (0 in a valid file)."""
+        return self._ef.first()
+
+    def __getitem__(self, i: int) -> int:
+        if not 0 <= i < len(self):
+            raise IndexError(i)
+        x = self._ef.at(i + 1) - self._ef.at(i)
+        if x < 0 or x > _U32:
+            raise ModelFormatError(f"{self._where}: damaged model data: {self._label} holds a value outside 32 bits")
+        return x
+
+    def all(self) -> np.ndarray:
+        x = np.diff(self._ef.all())
+        if len(x) and (int(x.min()) < 0 or int(x.max()) > _U32):
+            raise ModelFormatError(f"{self._where}: damaged model data: {self._label} holds a value outside 32 bits")
+        return x

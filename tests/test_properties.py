@@ -191,7 +191,7 @@ def test_unsupported_version_is_named() -> None:
     head = bytearray(model_bytes[:32])
     head[8:10] = struct.pack("<H", 7)
     head[28:32] = struct.pack("<I", zlib.crc32(bytes(head[:28])))
-    with pytest.raises(ModelFormatError, match=r"unsupported format version 7.0 \(this library reads 1.0 to 1.2, 1.4 and 1.5\)"):
+    with pytest.raises(ModelFormatError, match=r"unsupported format version 7.0 \(this library reads 1.0 to 1.2 and 1.4 to 1.6\)"):
         nextword.load(_write(bytes(head) + model_bytes[32:]))
 
 

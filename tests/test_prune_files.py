@@ -172,7 +172,7 @@ def test_the_written_file_is_store_build_of_the_pruned_model(tmp_path: Path, smo
 def test_a_bigram_context_of_a_kept_trigram_is_never_pruned() -> None:
     # the structural rule, on a model where the bigram alone scores lowest: a bigram (u, v)
     # with a valuable trigram (u, v, w) ranks with that trigram's value
-    from nextword.prune import context_bigrams, keep_best, keep_contexts, with_dependants
+    from nextword.prune import context_bigrams, keep_best, keep_contexts, suffix_bigrams, with_dependants
 
     counts = NgramCounts.from_sentences([[0, 1, 2], [0, 1, 2], [1, 0]], 3, 3)
     fitted = KneserNey().fit(counts)
@@ -182,11 +182,14 @@ def test_a_bigram_context_of_a_kept_trigram_is_never_pruned() -> None:
     values[2][t] = 1.0  # the one trigram worth keeping; every bigram worth nothing alone
     ctx = context_bigrams(fitted)
     assert lev2.grams[ctx[t]].tolist() == [0, 1]
+    sfx = suffix_bigrams(fitted)
+    assert lev2.grams[sfx[t]].tolist() == [1, 2]
     ranked = with_dependants(fitted, values)
-    assert ranked[1][ctx[t]] == 1.0 and ranked[2][t] == 1.0
-    keep = keep_contexts(fitted, keep_best(values, 1))  # by the raw values only the trigram: the rule adds (0, 1)
+    assert ranked[1][ctx[t]] == 1.0 and ranked[1][sfx[t]] == 1.0 and ranked[2][t] == 1.0
+    # by the raw values only the trigram: the rule adds its context (0, 1) and its suffix (1, 2)
+    keep = keep_contexts(fitted, keep_best(values, 1))
     assert keep[2] is not None and keep[1] is not None
-    assert bool(keep[2][t]) and bool(keep[1][ctx[t]]) and int(keep[1].sum()) == 1
+    assert bool(keep[2][t]) and bool(keep[1][ctx[t]]) and bool(keep[1][sfx[t]]) and int(keep[1].sum()) == 2
     with pytest.raises(InvalidArgumentError, match="not a stored bigram"):
         from nextword.prune import prune_fitted
 

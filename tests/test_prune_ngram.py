@@ -256,11 +256,12 @@ def test_a_budget_is_met_by_the_most_valuable_ngrams_and_every_context_sums_to_o
     # probabilities sum to 1 in every context (the dropped mass backs off)
     assert all(s == pytest.approx(1.0, abs=1e-9) for s in _context_sums(pruned))
     # each kept n-gram is worth at least as much per byte as each dropped one of the same order,
-    # except bigrams kept as the context (u, v) of a kept trigram (u, v, w) — every such bigram is kept
-    # (common practice in back-off n-gram pruning: a longer n-gram keeps its context)
+    # except bigrams kept as the context (u, v) or the suffix (v, w) of a kept trigram (u, v, w) — every
+    # such bigram is kept (common practice in back-off n-gram pruning: a longer n-gram keeps its context
+    # and its suffix)
     scores = ngram_scores(fitted, counts)
     kept3 = {tuple(r) for r in pruned.levels[2].grams.tolist()} if order == 3 else set()
-    contexts = {g[:2] for g in kept3}
+    contexts = {g[:2] for g in kept3} | {g[1:] for g in kept3}
     for m in range(2, order + 1):
         before = {tuple(r) for r in fitted.levels[m - 1].grams.tolist()}
         kept = {tuple(r) for r in pruned.levels[m - 1].grams.tolist()}
