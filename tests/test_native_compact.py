@@ -149,9 +149,9 @@ def test_u64_chunks_with_wide_low_parts(ef_tool: Path, tmp_path: Path) -> None:
     # low parts of 58 … 62 bits (values up to 2⁶³, only a u64 header holds them): a low part then
     # straddles the 64-bit load at most bit offsets, the one read of a ninth byte in ef.c
     rng = random.Random(3)
-    for m in (1, 7, 40, 64):
+    for m in (2, 7, 40, 64):
         values = sorted(rng.randrange(1 << 62, 1 << 63) for _ in range(m))
-        end = values[-1] + 1 + rng.randrange(1 << 62)
+        end = values[-1] + 1  # the sentinel: the last value + 1 (checked when the last chunk is decoded)
         head, stream = _one_chunk(values, end)
         queries = [f"g {j}" for j in range(m)] + ["a"] + [f"l {values[j]} 0 {m}" for j in range(m)] + [f"l {end} 0 {m}"]
         out = _run(ef_tool, tmp_path, np.array(head, dtype=np.uint64), 8, np.frombuffer(stream, dtype=np.uint8), m, False,
@@ -276,11 +276,14 @@ def test_the_files_are_what_the_comparison_needs(cmodels: dict[str, Path]) -> No
             continue
         assert arrays.version == (1, 6), name
         assert arrays.meta["successors"] == {"name": "ef", "version": 1}
+        # compact files write the quant codec's version 2 (a ones bitmap, codes for the other values)
         assert arrays.meta["codec"]["name"] == ("quant" if "q5" in name else "exact"), name
+        assert arrays.meta["codec"]["version"] == (2 if "q5" in name else 1), name
         tags = set(_sections(path.read_bytes()))
-        assert {b"RWEH", b"RWEB", b"SEFH", b"SEFB"} <= tags and not tags & {b"SUCC", b"ROWS", b"IDTK", b"APOS", b"TSUC"}
-        assert ({b"TPTH", b"TPTB", b"TEFH", b"TEFB"} <= tags) == ("3" in name), name
-        assert (b"HN12" in tags) == name.startswith("kn"), name
+        base = {b"RWEH", b"RWEB", b"SEFH", b"SEFB", b"UNEH", b"UNEB", b"HSEH", b"HSEB", b"HDIH", b"HDIB", b"HDVH", b"HDVB"}
+        assert base <= tags and not tags & {b"SUCC", b"ROWS", b"IDTK", b"APOS", b"TSUC", b"UNIG", b"HIST", b"HDRI", b"HN13"}
+        assert ({b"TPTH", b"TPTB", b"TEFH", b"TEFB", b"TDIH", b"TDIB", b"TDVH", b"TDVB"} <= tags) == ("3" in name), name
+        assert ({b"N1EH", b"N1EB", b"N2EH", b"N2EB"} <= tags) == name.startswith("kn"), name
     assert len(read_model(cmodels["kn3-pruned"]).arrays["HDRI"]) > 0
 
 
@@ -407,7 +410,7 @@ def _rename(buf: bytearray, old: bytes, new: bytes) -> None:
     raise AssertionError(old)
 
 
-@pytest.mark.parametrize("seq", ["RWE", "SEF", "TPT", "TEF"])
+@pytest.mark.parametrize("seq", ["RWE", "UNE", "HSE", "N1E", "SEF", "TPT", "TEF"])
 def test_every_sequence_load_check_refuses_what_python_refuses(native: Native, cmodels: dict[str, Path], tmp_path: Path,
                                                                seq: str) -> None:
     # §7.18 "Checks on load", each on a crafted file with every checksum fixed: the stream one byte
@@ -446,11 +449,23 @@ def test_every_sequence_load_check_refuses_what_python_refuses(native: Native, c
         _retable(b, f"{seq}H".encode(), h_off, h_len - 8)
 
     def replaced(b: bytearray) -> None:
-        _rename(b, f"{seq}H".encode(), b"SUCC" if seq != "TEF" else b"TSUC")
+        _rename(b, f"{seq}H".encode(), {"TEF": b"TSUC", "UNE": b"UNIG", "HSE": b"HIST", "N1E": b"HN13"}.get(seq, b"SUCC"))
 
-    for edit, says in ((short_stream, "stream has"), (padding, "stream"), (offset, ""), (first, ""),
-                       (short_head, "header entries"), (replaced, "")):
+    for edit, says in ((short_stream, "stream has"), (padding, "stream"), (short_head, "header entries"), (replaced, "")):
         _both_refuse(native, tmp_path, crafted(edit), {NW_E_FORMAT}, says)
+    # a chunk's header: checked on load for the vocabulary-sized sequences; for the n-gram-sized ones
+    # Python checks it when a query decodes the chunk (or with verify=True), the C open checks every
+    # chunk header once (O(chunks), part of its open time)
+    for edit in (offset, first):
+        if seq in ("SEF", "TPT", "TEF"):
+            path = tmp_path / "bad.nwm"
+            path.write_bytes(crafted(edit))
+            with pytest.raises(nextword.ModelFormatError):
+                nextword.load(path, verify=True)
+            code, msg, _ = native.open(path)
+            assert code == NW_E_FORMAT, msg
+        else:
+            _both_refuse(native, tmp_path, crafted(edit), {NW_E_FORMAT}, "")
 
 
 def test_a_damaged_stream_is_caught_by_the_query_that_reads_it(native: Native, cmodels: dict[str, Path],

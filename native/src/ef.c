@@ -89,6 +89,7 @@ typedef struct chunk_view {
     uint64_t first, r, lo_at, hs, he;
     unsigned l;
     int m;
+    int last; /* the sequence's last chunk */
 } chunk_view;
 
 static inline void view(const nw_ef *e, uint64_t c, chunk_view *v) {
@@ -99,16 +100,18 @@ static inline void view(const nw_ef *e, uint64_t c, chunk_view *v) {
     v->lo_at = head_at(e, 2 * c + 1);
     v->he = head_at(e, 2 * c + 3);
     v->m = (int)m;
+    v->last = c + 1 == e->chunks;
     v->l = low_width(v->r, m);
     v->hs = v->lo_at + m * v->l;
 }
 
-/* first + (high·2^ℓ + low), refused above F_{c+1} */
+/* first + (high·2^ℓ + low), refused above F_{c+1}; a chunk's first value must be F_c and the
+ * sequence's last value F_C − 1 (§7.18, "Checks when a chunk is decoded") */
 static inline int value_of(const nw_ef *e, const chunk_view *v, uint64_t high, int k, uint64_t *out) {
     if (high > (v->r >> v->l)) return -1;
     uint64_t d = high << v->l;
     if (v->l) d |= read_bits(e->bits, v->lo_at + (uint64_t)k * v->l, v->l);
-    if (d > v->r) return -1;
+    if (d > v->r || (k == 0 && d != 0) || (v->last && k == v->m - 1 && d + 1 != v->r)) return -1;
     *out = v->first + d;
     return 0;
 }

@@ -6,8 +6,9 @@
  * runs every check that needs only the headers (O(chunks)); after it, every chunk's bits
  * lie inside the stream, so the readers below never read out of bounds, whatever the
  * stream holds. Values inside a chunk are checked as they are decoded (each ≤ F_{c+1},
- * the chunk's high region holding its m values): a damaged chunk gives -1, never a wrong
- * read. Nothing here allocates.
+ * the first equal to F_c, the sequence's last equal to F_C − 1, the chunk's high region
+ * holding its m values): a damaged chunk gives -1, never a read outside it. Nothing here
+ * allocates.
  */
 #ifndef NW_EF_H
 #define NW_EF_H

@@ -60,6 +60,7 @@ typedef struct nw_level_values {
     const char *tags;  /* e.g. "CNTS/BIGI/BIGC", for messages */
     uint64_t count;    /* the level's number of values */
     int bits;          /* quant: the code width q (2 .. 8) */
+    uint64_t codes;    /* quant version 2: how many values have a code (set by its check) */
 } nw_level_values;
 
 struct nw_model;
@@ -67,7 +68,7 @@ typedef struct nw_codec {
     const char *name;
     int version;
     /* load-time checks of one level holding `n` values (lengths, escape table) */
-    int (*check)(const struct nw_model *m, const nw_level_values *lv, uint64_t n, nw_error *err);
+    int (*check)(const struct nw_model *m, nw_level_values *lv, uint64_t n, nw_error *err);
     /* value of n-gram i; 0 on success, -1 if the data is damaged */
     int (*value)(const nw_level_values *lv, uint64_t i, uint64_t *out);
 } nw_codec;
@@ -97,11 +98,12 @@ struct nw_model {
     nw_arr TKID, IDTK, ALPH, APOS, KEY4, TOPK, UNIG, ROWS, SUCC, SEGS, SEGE, SKYP, SKYI, SKYC, DISI, DISO;
     nw_arr HIST, HN13, HDRI, HDRV, TCTB, TSUC, TLNI, TLNV, TDRI, TDRV, TSGS, TSGE, TSKP, TSKI, TSKC;
     nw_level_values v2, v3, tlen;
-    /* format 1.6 (§7.18): the lists as chunked Elias-Fano sequences; ROWS, IDTK and APOS are
-     * then arrays made on open in `lists` (one allocation), HN13 is read from HN12 */
+    /* format 1.6 (§7.18): the n-gram-sized lists stay chunked Elias-Fano sequences, read in
+     * place; the vocabulary-sized ones (ROWS, UNIG, HIST, HN13, HDRI/HDRV) and the inverse
+     * permutations IDTK, APOS are arrays made on open in `lists` (one allocation) */
     int ef;
-    nw_ef rwe, sef, tpt, tef; /* ROWS; v·(n+2) + SUCC; trigram starts; remapped trigram successors */
-    nw_arr HN12;
+    nw_ef sef, tpt, tef, tdi, tdv; /* v·(n+2) + SUCC; trigram starts; remapped trigram successors; TDRI; Σ TDRV */
+    uint64_t d2, d3;               /* META dropped_contexts */
     uint8_t *lists;
     const uint8_t *disb;
     uint64_t disb_len;

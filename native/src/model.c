@@ -125,11 +125,15 @@ static const spec SPECS[] = {
     {"TLNI", K_U4, 0, 1},  {"TLNV", K_U4, 0, 1},  {"TDRI", K_U4, 0, 1}, {"TDRV", K_U4, 0, 1},
     {"TSGS", K_U4, 0, 0},  {"TSGE", K_U4, 0, 0},  {"TSKP", K_U4, 0, 0}, {"TSKI", K_U24, 0, 0},
     {"TSKC", K_U24, 0, 0},
-    /* format 1.6 (§7.18): chunked Elias-Fano sequences (header u32 or u64, stream u8) and HN12;
-     * (in an older file they are sections its kind does not have: refused) */
+    /* format 1.6 (§7.18): chunked Elias-Fano sequences (header u32 or u64, stream u8); in an
+     * older file they are sections its kind does not have (refused). The vocabulary-sized ones
+     * are checksummed on every load, the n-gram-sized ones with verify=True (as in Python). */
     {"RWEH", K_U48, 0, 1}, {"RWEB", K_U1, 0, 1},  {"SEFH", K_U48, 0, 0}, {"SEFB", K_U1, 0, 0},
+    {"UNEH", K_U48, 0, 1}, {"UNEB", K_U1, 0, 1},  {"HSEH", K_U48, 0, 1}, {"HSEB", K_U1, 0, 1},
+    {"N1EH", K_U48, 0, 1}, {"N1EB", K_U1, 0, 1},  {"N2EH", K_U48, 0, 1}, {"N2EB", K_U1, 0, 1},
+    {"HDIH", K_U48, 0, 1}, {"HDIB", K_U1, 0, 1},  {"HDVH", K_U48, 0, 1}, {"HDVB", K_U1, 0, 1},
     {"TPTH", K_U48, 0, 0}, {"TPTB", K_U1, 0, 0},  {"TEFH", K_U48, 0, 0}, {"TEFB", K_U1, 0, 0},
-    {"HN12", K_ID, 0, 1},
+    {"TDIH", K_U48, 0, 0}, {"TDIB", K_U1, 0, 0},  {"TDVH", K_U48, 0, 0}, {"TDVB", K_U1, 0, 0},
 };
 #define N_SPECS ((int)(sizeof SPECS / sizeof SPECS[0]))
 #define N_REQUIRED 22
@@ -137,7 +141,17 @@ static const char *const TRIGRAM_TAGS[] = {"TCTB", "TLEN", "TLEI", "TLEV", "TSUC
                                            "TLNV", "TDRI", "TDRV", "TSGS", "TSGE", "TSKP", "TSKI", "TSKC"};
 
 /* the sections a 1.6 file replaces (§7.18), and those that replace them */
-static const char *const REMOVED_16[] = {"IDTK", "APOS", "ROWS", "SUCC", "HN13", "TCTB", "TLEN", "TLEI", "TLEV", "TSUC"};
+static const char *const REMOVED_16[] = {"IDTK", "APOS", "ROWS", "SUCC", "UNIG", "HIST", "HN13", "HDRI", "HDRV",
+                                         "TCTB", "TLEN", "TLEI", "TLEV", "TSUC", "TDRI", "TDRV"};
+/* the chunked Elias-Fano sequences of a 1.6 file (§7.18), by the first three letters of their tags */
+enum { S_RWE, S_SEF, S_UNE, S_HSE, S_N1E, S_N2E, S_HDI, S_HDV, S_TPT, S_TEF, S_TDI, S_TDV, S_COUNT };
+static const char *const SEQ_TAGS[S_COUNT] = {"RWE", "SEF", "UNE", "HSE", "N1E", "N2E", "HDI", "HDV", "TPT", "TEF", "TDI", "TDV"};
+/* which sequences a 1.6 file of a kind has: every kind, KN only, order 3 only */
+static int seq_wanted(int q, int kn, int order) {
+    if (q == S_N1E || q == S_N2E) return kn;
+    if (q >= S_TPT) return order == 3;
+    return 1;
+}
 static int tag_in(const char *tag, const char *const *list, size_t n) {
     for (size_t j = 0; j < n; j++)
         if (!strcmp(tag, list[j])) return 1;
@@ -163,7 +177,7 @@ static int exact_value(const nw_level_values *lv, uint64_t i, uint64_t *out) {
     return 0;
 }
 
-static int exact_check(const struct nw_model *m, const nw_level_values *lv, uint64_t n, nw_error *err) {
+static int exact_check(const struct nw_model *m, nw_level_values *lv, uint64_t n, nw_error *err) {
     (void)m;
     if (lv->small.n != n)
         return nw_fail(err, NW_E_FORMAT, "section %.4s holds %llu entries, expected %llu", lv->tags,
@@ -196,7 +210,7 @@ static int quant_value(const nw_level_values *lv, uint64_t i, uint64_t *out) {
     return 0;
 }
 
-static int quant_check(const struct nw_model *m, const nw_level_values *lv, uint64_t n, nw_error *err) {
+static int quant_check(const struct nw_model *m, nw_level_values *lv, uint64_t n, nw_error *err) {
     (void)m;
     int q = lv->bits;
     uint64_t want = (n * (uint64_t)q + 7) / 8, ncb = lv->esc_i.n, maxcb = 1ull << q;
@@ -219,8 +233,83 @@ static int quant_check(const struct nw_model *m, const nw_level_values *lv, uint
 }
 
 static const nw_codec nw_codec_quant = {"quant", 1, quant_check, quant_value};
+
+/* -- the quant codec, version 2 (§7.18, 1.6 files only): a ones bitmap with a rank per 512
+ *    n-grams, q-bit codes for the other values ------------------------------------------ */
+
+#define ONES_BLOCK 512
+#define BLOCK_BYTES (4 + ONES_BLOCK / 8)
+
+static inline unsigned popcount8(unsigned x) {
+    x = x - ((x >> 1) & 0x55u);
+    x = (x & 0x33u) + ((x >> 2) & 0x33u);
+    return (x + (x >> 4)) & 0x0Fu;
+}
+
+/* small: the bitmap (68 bytes per block); esc_i: the codebook; esc_v: the codes (u32 words,
+ * read as bytes); count: n-grams; codes: how many have a code (set on load) */
+static int quant2_value(const nw_level_values *lv, uint64_t i, uint64_t *out) {
+    if (i >= lv->count) return -1;
+    const uint8_t *blk = lv->small.p + (i / ONES_BLOCK) * BLOCK_BYTES;
+    unsigned j = (unsigned)(i % ONES_BLOCK);
+    if ((blk[4 + j / 8] >> (j % 8)) & 1) { *out = 1; return 0; }
+    uint64_t ones = (uint64_t)blk[0] | ((uint64_t)blk[1] << 8) | ((uint64_t)blk[2] << 16) | ((uint64_t)blk[3] << 24);
+    for (unsigned b = 0; b < j / 8; b++) ones += popcount8(blk[4 + b]);
+    ones += popcount8(blk[4 + j / 8] & ((1u << (j % 8)) - 1u));
+    if (ones > i || i - ones >= lv->codes) return -1; /* a rank past the value codes */
+    uint64_t r = i - ones;
+    int q = lv->bits;
+    uint64_t bit = r * (uint64_t)q, at = bit >> 3;
+    unsigned sh = (unsigned)(bit & 7);
+    const uint8_t *cb = lv->esc_v.p; /* the code words' bytes, in file order */
+    uint32_t w = cb[at];
+    if (sh + (unsigned)q > 8) w |= (uint32_t)cb[at + 1] << 8; /* inside: r < codes, length checked */
+    uint32_t code = (w >> sh) & ((1u << q) - 1u);
+    if (code >= lv->esc_i.n) return -1;
+    *out = nw_at(&lv->esc_i, code);
+    return 0;
+}
+
+static int quant2_check(const struct nw_model *m, nw_level_values *lv, uint64_t n, nw_error *err) {
+    (void)m;
+    int q = lv->bits;
+    uint64_t blocks = (n + ONES_BLOCK - 1) / ONES_BLOCK, ncb = lv->esc_i.n, maxcb = 1ull << q;
+    if (lv->small.n != blocks * BLOCK_BYTES)
+        return nw_fail(err, NW_E_FORMAT, "section %.4s holds %llu bytes, expected %llu for %llu n-grams", lv->tags,
+                       (unsigned long long)lv->small.n, (unsigned long long)(blocks * BLOCK_BYTES), (unsigned long long)n), -1;
+    if (!(ncb >= 1 && ncb <= maxcb) && !(n == 0 && ncb == 0))
+        return nw_fail(err, NW_E_FORMAT, "section %.4s holds %llu codebook entries, expected 1 to %llu", lv->tags + 5,
+                       (unsigned long long)ncb, (unsigned long long)maxcb), -1;
+    int ok = ncb == 0 || nw_at(&lv->esc_i, 0) >= 1;
+    for (uint64_t j = 1; ok && j < ncb; j++) ok = nw_at(&lv->esc_i, j) > nw_at(&lv->esc_i, j - 1);
+    if (!ok)
+        return nw_fail(err, NW_E_FORMAT, "section %.4s is not a strictly increasing codebook of values >= 1", lv->tags + 5), -1;
+    uint64_t ones = 0;
+    if (blocks) {
+        const uint8_t *last = lv->small.p + (blocks - 1) * BLOCK_BYTES, *first = lv->small.p;
+        uint64_t used = n - (blocks - 1) * ONES_BLOCK; /* bits of the last block that belong to n-grams */
+        for (uint64_t j = used; j < ONES_BLOCK; j++)
+            if ((last[4 + j / 8] >> (j % 8)) & 1)
+                return nw_fail(err, NW_E_FORMAT, "section %.4s has bits set after the last n-gram", lv->tags), -1;
+        ones = (uint64_t)last[0] | ((uint64_t)last[1] << 8) | ((uint64_t)last[2] << 16) | ((uint64_t)last[3] << 24);
+        for (unsigned b = 0; b < ONES_BLOCK / 8; b++) ones += popcount8(last[4 + b]);
+        if ((first[0] | first[1] | first[2] | first[3]) != 0 || ones > n)
+            return nw_fail(err, NW_E_FORMAT, "section %.4s has ranks that do not start at 0 or exceed the n-grams", lv->tags), -1;
+    }
+    uint64_t codes = n - ones, want = (codes * (uint64_t)q + 31) / 32;
+    if (lv->esc_v.n != want)
+        return nw_fail(err, NW_E_FORMAT, "section %.4s holds %llu words, expected %llu for %llu %d-bit codes", lv->tags + 10,
+                       (unsigned long long)lv->esc_v.n, (unsigned long long)want, (unsigned long long)codes, q), -1;
+    unsigned tail = (unsigned)(codes * (uint64_t)q % 32);
+    if (tail && (nw_at(&lv->esc_v, lv->esc_v.n - 1) >> tail))
+        return nw_fail(err, NW_E_FORMAT, "section %.4s has non-zero bits after the last code", lv->tags + 10), -1;
+    lv->codes = codes;
+    return 0;
+}
+
+static const nw_codec nw_codec_quant2 = {"quant", 2, quant2_check, quant2_value};
 /* every codec this library reads, and the format minor version each belongs to */
-static const nw_codec *const CODECS[] = {&nw_codec_exact, &nw_codec_quant};
+static const nw_codec *const CODECS[] = {&nw_codec_exact, &nw_codec_quant, &nw_codec_quant2};
 #define EXACT_MINOR 4
 #define QUANT_MINOR 5
 #define EF_MINOR 6 /* compressed successor lists (§7.18), with either codec */
@@ -229,12 +318,12 @@ static const nw_codec *const CODECS[] = {&nw_codec_exact, &nw_codec_quant};
 
 enum { F_N_WORDS, F_LAMBDA, F_TOTAL, F_BIGRAMS, F_SKY_K, F_SKY_MIN, F_FANOUT, F_MAX_KEY, F_STATS, F_BUCKETS,
        F_ESTIMATOR, F_ORDER, F_CODEC, F_DISCOUNTS, F_NOTES, F_LAMBDA3, F_TRIGRAMS, F_TCTX, F_TSUMMIN, F_TSKYMIN, F_TEXT_RULES,
-       F_SUCCESSORS, F_COUNT };
+       F_SUCCESSORS, F_DROPPED, F_COUNT };
 static const char *const FIELDS[F_COUNT] = {"n_words", "lambda", "total", "bigrams", "skyband_k", "skyband_min",
                                             "topk_fanout", "max_key_chars", "stats", "lambda_buckets", "estimator",
                                             "order", "codec", "discounts", "discount_notes", "lambda3", "trigrams",
                                             "trigram_contexts", "trigram_summary_min", "trigram_skyband_min", "text_rules",
-                                            "successors"};
+                                            "successors", "dropped_contexts"};
 
 typedef struct meta_view {
     const uint8_t *p;
@@ -429,10 +518,11 @@ static nw_status read_kind(nw_model *m, const meta_view *mv, nw_error *err) {
             if (nw_mp_str_eq(&name, CODECS[c]->name) && ver.u == (uint64_t)CODECS[c]->version) m->codec = CODECS[c];
         if (m->codec == NULL)
             return nw_fail(err, NW_E_UNSUPPORTED,
-                           "unknown value codec '%.*s' version %llu (this library reads 'exact' version 1 and 'quant' version 1)",
+                           "unknown value codec '%.*s' version %llu (this library reads 'exact' version 1 and 'quant' versions 1 and 2)",
                            (int)(name.len > 40 ? 40 : name.len), (const char *)name.s, (unsigned long long)ver.u);
         m->quant_bits = 0;
-        if (m->codec == &nw_codec_quant) { /* codecs.codec_named: bits an int in 2 .. 8, booleans refused */
+        int quant = m->codec == &nw_codec_quant || m->codec == &nw_codec_quant2;
+        if (quant) { /* codecs.codec_named: bits an int in 2 .. 8, booleans refused */
             if (!have_bits)
                 return nw_fail(err, NW_E_UNSUPPORTED, "codec 'quant' without bits (this library reads 2 to 8)");
             if (bits.t != MP_POS)
@@ -442,8 +532,11 @@ static nw_status read_kind(nw_model *m, const meta_view *mv, nw_error *err) {
                                (unsigned long long)bits.u);
             m->quant_bits = (int)bits.u;
         }
-        /* a 1.4 file names 'exact', a 1.5 file 'quant', a 1.6 file either (store._check_model_kind) */
-        if (m->minor != EF_MINOR && (m->codec == &nw_codec_quant) != (m->minor == QUANT_MINOR))
+        /* a 1.4 file names 'exact', a 1.5 file 'quant', a 1.6 file either; 'quant' version 2 is
+         * for 1.6 files only (store._check_model_kind) */
+        if (m->codec == &nw_codec_quant2 && m->minor != EF_MINOR)
+            return nw_fail(err, NW_E_VERSION, "codec 'quant' version 2 belongs to format 1.%d files, not 1.%u", EF_MINOR, m->minor);
+        if (m->minor != EF_MINOR && quant != (m->minor == QUANT_MINOR))
             return nw_fail(err, NW_E_VERSION, "format 1.%u files do not use codec '%s' (1.%d: exact values, 1.%d: quantised)",
                            m->minor, m->codec->name, EXACT_MINOR, QUANT_MINOR);
     }
@@ -492,6 +585,18 @@ static nw_status read_kind(nw_model *m, const meta_view *mv, nw_error *err) {
         if ((m->lam3 = 0, need_num(mv, F_LAMBDA3, 0.0, 1.0, &m->lam3, err)))
             return nw_fail(err, NW_E_FORMAT, "metadata field 'lambda3' is invalid");
         if (m->lam3 > MAX_LAMBDA) m->lam3 = MAX_LAMBDA;
+    }
+    if (m->ef) { /* dropped_contexts: [D2] or [D2, D3], 0 <= D2 <= n+3, 0 <= D3 <= b (§7.18) */
+        int ok = field(mv, F_DROPPED, &v) == 1 && v.t == MP_ARR && v.u == (uint64_t)(m->order - 1);
+        nw_mp q = {mv->p, mv->n, mv->at[F_DROPPED]};
+        nw_mpv tmp, x;
+        if (ok) nw_mp_read(&q, &tmp);
+        m->d2 = m->d3 = 0;
+        for (int j = 0; ok && j < m->order - 1; j++) {
+            ok = nw_mp_read(&q, &x) == 0 && x.t == MP_POS && x.u <= (j == 0 ? (uint64_t)m->n + 3 : m->b);
+            if (ok && x.t == MP_POS) *(j == 0 ? &m->d2 : &m->d3) = x.u;
+        }
+        if (!ok) return nw_fail(err, NW_E_FORMAT, "metadata field 'dropped_contexts' is invalid");
     }
     return NW_OK;
 }
@@ -557,64 +662,133 @@ static nw_status invert(const nw_arr *a, uint64_t len, uint8_t *inv, const char 
     return NW_OK;
 }
 
-/* Format 1.6 (§7.18 "Checks on load"): every sequence's headers and stream, ROWS decoded
- * (n+4 values), TKID and ALPH checked to be permutations and inverted into IDTK and APOS.
- * The arrays are u32 in `lists`, so every other check and query reads them as in 1.4. */
+/* One sequence opened (every chunk's header checked: §7.18's checks on load, and for the
+ * n-gram-sized ones the chunk checks a query would make, done once here). */
+static nw_status open_seq(nw_ef *e, const ef_raw *raw, int q, uint64_t count, int strict, nw_error *err) {
+    char label[16];
+    snprintf(label, sizeof label, "%sH/%sB", SEQ_TAGS[q], SEQ_TAGS[q]);
+    const ef_raw *r = &raw[q];
+    return nw_ef_open(e, label, r->head, r->head_n, r->hw, r->stream, r->stream_len, count, strict, err);
+}
+
+/* Every value of a sequence (count values), each ≤ limit, as u32 into out. */
+static nw_status decode_seq(const nw_ef *e, int q, uint64_t limit, uint8_t *out, nw_error *err) {
+    uint64_t vals[NW_EF_CHUNK];
+    for (uint64_t c = 0; c < e->chunks; c++) {
+        int cnt;
+        if (nw_ef_chunk(e, c, vals, &cnt))
+            return nw_fail(err, NW_E_FORMAT, "sections %sH/%sB: chunk %llu does not decode to its values", SEQ_TAGS[q], SEQ_TAGS[q],
+                           (unsigned long long)c);
+        for (int k = 0; k < cnt; k++) {
+            if (vals[k] > limit)
+                return nw_fail(err, NW_E_FORMAT, "sections %sH/%sB: value %llu above %llu", SEQ_TAGS[q], SEQ_TAGS[q],
+                               (unsigned long long)vals[k], (unsigned long long)limit);
+            put32(out + 4 * (c * NW_EF_CHUNK + (uint64_t)k), vals[k]);
+        }
+    }
+    return NW_OK;
+}
+
+/* Values stored as their prefix sums (count + 1 values from 0, §7.18): the count values,
+ * each ≥ lo (0 or 1) and within 32 bits, as u32 into out. */
+static nw_status decode_sums(const ef_raw *raw, int q, uint64_t count, uint64_t lo, uint8_t *out, nw_error *err) {
+    nw_ef e;
+    nw_status st = open_seq(&e, raw, q, count + 1, lo > 0, err);
+    if (st) return st;
+    uint64_t vals[NW_EF_CHUNK], prev = 0;
+    for (uint64_t c = 0; c < e.chunks; c++) {
+        int cnt;
+        if (nw_ef_chunk(&e, c, vals, &cnt))
+            return nw_fail(err, NW_E_FORMAT, "sections %sH/%sB: chunk %llu does not decode to its values", SEQ_TAGS[q], SEQ_TAGS[q],
+                           (unsigned long long)c);
+        for (int k = 0; k < cnt; k++) {
+            uint64_t j = c * NW_EF_CHUNK + (uint64_t)k;
+            if (j == 0 ? vals[k] != 0 : vals[k] < prev + lo || vals[k] - prev > 0xFFFFFFFFu)
+                return nw_fail(err, NW_E_FORMAT, "sections %sH/%sB do not hold prefix sums from 0 of %s32-bit values", SEQ_TAGS[q],
+                               SEQ_TAGS[q], lo ? "positive " : "");
+            if (j) put32(out + 4 * (j - 1), vals[k] - prev);
+            prev = vals[k];
+        }
+    }
+    return NW_OK;
+}
+
+/* Format 1.6 (§7.18 "Checks on load"): every sequence's headers and stream; ROWS, UNIG,
+ * HIST, HN13 and HDRI/HDRV decoded into u32 arrays as a 1.4/1.5 file holds them; TKID and
+ * ALPH checked to be permutations and inverted into IDTK and APOS. Every other check and
+ * query then reads these arrays as in 1.4; SUCC, the trigram lists and TDRI/TDRV stay coded
+ * (m->sef, tpt, tef, tdi, tdv). */
 static nw_status open_lists(nw_model *m, const ef_raw *raw, nw_error *err) {
     uint64_t n = m->n, npos = n + 2, nhist = n + 3, b = m->b;
     if (m->TKID.n != n || m->ALPH.n != npos)
         return nw_fail(err, NW_E_FORMAT, "section %s holds %llu entries, expected %llu", m->TKID.n != n ? "TKID" : "ALPH",
                        (unsigned long long)(m->TKID.n != n ? m->TKID.n : m->ALPH.n),
                        (unsigned long long)(m->TKID.n != n ? n : npos));
-    nw_status st;
-    const ef_raw *r = raw;
     if (b > 0xFFFFFFFFu) /* ROWS is made as u32 below (a 1.4 file's ROWS is u32 too) */
         return nw_fail(err, NW_E_FORMAT, "a format 1.6 file of %llu bigrams: more than this library reads", (unsigned long long)b);
-    if ((st = nw_ef_open(&m->rwe, "RWEH/RWEB", r[0].head, r[0].head_n, r[0].hw, r[0].stream, r[0].stream_len, nhist + 1, 0, err)))
-        return st;
-    if ((st = nw_ef_open(&m->sef, "SEFH/SEFB", r[1].head, r[1].head_n, r[1].hw, r[1].stream, r[1].stream_len, b, 1, err)))
-        return st;
+    nw_status st;
+    nw_ef rwe;
+    if ((st = open_seq(&rwe, raw, S_RWE, nhist + 1, 0, err))) return st;
+    if ((st = open_seq(&m->sef, raw, S_SEF, b, 1, err))) return st;
     if (nw_ef_first(&m->sef, m->sef.chunks) > nhist * npos)
-        return nw_fail(err, NW_E_FORMAT, "SEFH/SEFB ends at %llu, past the last row's positions",
-                       (unsigned long long)nw_ef_first(&m->sef, m->sef.chunks));
+        return nw_fail(err, NW_E_FORMAT, "sections SEFH/SEFB: a successor past the last row");
     if (m->order == 3) {
         uint64_t t = m->t;
-        if ((st = nw_ef_open(&m->tpt, "TPTH/TPTB", r[2].head, r[2].head_n, r[2].hw, r[2].stream, r[2].stream_len, b + 1, 0, err)))
-            return st;
+        if ((st = open_seq(&m->tpt, raw, S_TPT, b + 1, 0, err))) return st;
         if (nw_ef_first(&m->tpt, 0) != 0 || nw_ef_first(&m->tpt, m->tpt.chunks) != t + 1)
-            return nw_fail(err, NW_E_FORMAT, "TPTH/TPTB does not run from 0 to %llu", (unsigned long long)t);
-        if ((st = nw_ef_open(&m->tef, "TEFH/TEFB", r[3].head, r[3].head_n, r[3].hw, r[3].stream, r[3].stream_len, t, 1, err)))
-            return st;
+            return nw_fail(err, NW_E_FORMAT, "sections TPTH/TPTB do not run from 0 to %llu", (unsigned long long)t);
+        if ((st = open_seq(&m->tef, raw, S_TEF, t, 1, err))) return st;
+        if ((st = open_seq(&m->tdi, raw, S_TDI, m->d3, 1, err))) return st;
+        if ((st = open_seq(&m->tdv, raw, S_TDV, m->d3 + 1, 1, err))) return st;
+        if (nw_ef_first(&m->tdi, m->tdi.chunks) > b || nw_ef_first(&m->tdv, 0) != 0)
+            return nw_fail(err, NW_E_FORMAT, "sections TDIH/TDVH do not index bigram entries, or their sums do not start at 0");
     }
-    /* one allocation: ROWS (n+4), IDTK (n), APOS (n+2), u32 each */
-    m->lists = (uint8_t *)malloc(4 * ((nhist + 1) + n + npos));
+    /* one allocation, u32 each: ROWS (n+4), IDTK (n), APOS (n+2), UNIG (n+2), HIST (n+3),
+     * HN13 (3·(n+3), KN), HDRI and HDRV (D2 each) */
+    uint64_t words = (nhist + 1) + n + npos + npos + nhist + (m->kn ? 3 * nhist : 0) + 2 * m->d2;
+    m->lists = (uint8_t *)malloc(4 * words + 4);
     if (!m->lists) return nw_fail(err, NW_E_NOMEM, "out of memory");
-    uint8_t *rows = m->lists, *idtk = rows + 4 * (nhist + 1), *apos = idtk + 4 * n;
-    uint64_t vals[NW_EF_CHUNK];
-    for (uint64_t c = 0; c < m->rwe.chunks; c++) {
-        int cnt;
-        if (nw_ef_chunk(&m->rwe, c, vals, &cnt))
-            return nw_fail(err, NW_E_FORMAT, "RWEH/RWEB chunk %llu does not decode to its values", (unsigned long long)c);
-        for (int k = 0; k < cnt; k++) {
-            if (vals[k] > b) return nw_fail(err, NW_E_FORMAT, "section ROWS offsets are not increasing from 0 to %llu", (unsigned long long)b);
-            put32(rows + 4 * (c * NW_EF_CHUNK + (uint64_t)k), vals[k]);
-        }
-    }
+    uint8_t *rows = m->lists, *idtk = rows + 4 * (nhist + 1), *apos = idtk + 4 * n, *unig = apos + 4 * npos;
+    uint8_t *hist = unig + 4 * npos, *hn13 = hist + 4 * nhist, *hdri = hn13 + (m->kn ? 12 * nhist : 0), *hdrv = hdri + 4 * m->d2;
+    if ((st = decode_seq(&rwe, S_RWE, b, rows, err))) return st;
     m->ROWS = (nw_arr){rows, nhist + 1, 4};
     if ((st = invert(&m->TKID, n, idtk, "TKID", err))) return st;
     m->IDTK = (nw_arr){idtk, n, 4};
     if ((st = invert(&m->ALPH, npos, apos, "ALPH", err))) return st;
     m->APOS = (nw_arr){apos, npos, 4};
-    if (m->kn) {
-        if (m->HN12.n != 2 * nhist)
-            return nw_fail(err, NW_E_FORMAT, "section HN12 holds %llu entries, expected %llu", (unsigned long long)m->HN12.n,
-                           (unsigned long long)(2 * nhist));
-        for (uint64_t v = 0; v < nhist; v++) { /* ROWS is checked non-decreasing by check_arrays, before any query */
-            uint64_t len = (uint64_t)nw_at(&m->ROWS, v + 1) - nw_at(&m->ROWS, v);
-            if ((uint64_t)nw_at(&m->HN12, 2 * v) + nw_at(&m->HN12, 2 * v + 1) > len)
-                return nw_fail(err, NW_E_FORMAT, "section HN12: N1 + N2 of row %llu above its length", (unsigned long long)v);
+    if ((st = decode_sums(raw, S_UNE, npos, 0, unig, err))) return st;
+    m->UNIG = (nw_arr){unig, npos, 4};
+    if ((st = decode_sums(raw, S_HSE, nhist, 0, hist, err))) return st;
+    m->HIST = (nw_arr){hist, nhist, 4};
+    if (m->kn) { /* N1 and N2 per row from their prefix sums, N3+ = row length - N1 - N2 (>= 0) */
+        uint8_t *tmp = (uint8_t *)malloc(8 * nhist); /* N1 then N2, for the open only */
+        if (!tmp) return nw_fail(err, NW_E_NOMEM, "out of memory");
+        if ((st = decode_sums(raw, S_N1E, nhist, 0, tmp, err)) || (st = decode_sums(raw, S_N2E, nhist, 0, tmp + 4 * nhist, err))) {
+            free(tmp);
+            return st;
         }
+        nw_arr n12 = {tmp, 2 * nhist, 4};
+        for (uint64_t v = 0; v < nhist; v++) {
+            uint64_t a1 = nw_at(&n12, v), a2 = nw_at(&n12, nhist + v), r0 = nw_at(&m->ROWS, v), r1 = nw_at(&m->ROWS, v + 1);
+            if (r1 < r0 || a1 + a2 > r1 - r0) {
+                free(tmp);
+                return nw_fail(err, NW_E_FORMAT, "sections N1EH/N2EH count more entries than row %llu has", (unsigned long long)v);
+            }
+            put32(hn13 + 12 * v, a1);
+            put32(hn13 + 12 * v + 4, a2);
+            put32(hn13 + 12 * v + 8, (r1 - r0) - a1 - a2);
+        }
+        free(tmp);
+        m->HN13 = (nw_arr){hn13, 3 * nhist, 4};
     }
+    nw_ef hdi;
+    if ((st = open_seq(&hdi, raw, S_HDI, m->d2, 1, err))) return st;
+    if (m->d2 && nw_ef_first(&hdi, hdi.chunks) > nhist)
+        return nw_fail(err, NW_E_FORMAT, "sections HDIH/HDIB: a history id not below %llu", (unsigned long long)nhist);
+    if ((st = decode_seq(&hdi, S_HDI, nhist - 1, hdri, err))) return st;
+    m->HDRI = (nw_arr){hdri, m->d2, 4};
+    if ((st = decode_sums(raw, S_HDV, m->d2, 1, hdrv, err))) return st;
+    m->HDRV = (nw_arr){hdrv, m->d2, 4};
     return NW_OK;
 }
 
@@ -851,10 +1025,8 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
                 if (m->order == 3 && !strcmp(tag, TRIGRAM_TAGS[j])) want = 1;
             if (m->ef) { /* §7.18: the replaced sections out, the sequences in */
                 if (IN(tag, REMOVED_16)) want = 0;
-                if (!strcmp(tag, "RWEH") || !strcmp(tag, "RWEB") || !strcmp(tag, "SEFH") || !strcmp(tag, "SEFB")) want = 1;
-                if (m->order == 3 && (!strcmp(tag, "TPTH") || !strcmp(tag, "TPTB") || !strcmp(tag, "TEFH") || !strcmp(tag, "TEFB")))
-                    want = 1;
-                if (m->kn && !strcmp(tag, "HN12")) want = 1;
+                for (int q = 0; q < S_COUNT; q++)
+                    if (!strncmp(tag, SEQ_TAGS[q], 3) && (tag[3] == 'H' || tag[3] == 'B')) want = seq_wanted(q, m->kn, m->order);
             }
             if (want != secs[i].present)
                 return nw_fail(err, NW_E_FORMAT, "a %s order-%d file: section %s is %s", m->kn ? "kn" : "jm", m->order, tag,
@@ -889,8 +1061,8 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
     }
 #define A(name) m->name = arr_of(m, &secs[spec_index(#name)])
 #define OPT(name) if (secs[spec_index(#name)].present) A(name)
-    A(TKID); A(ALPH); A(KEY4); A(TOPK); A(UNIG); A(SEGS); A(SEGE); A(SKYP); A(SKYI); A(SKYC); A(DISI); A(DISO);
-    OPT(IDTK); OPT(APOS); OPT(ROWS); OPT(SUCC); OPT(HN12); /* 1.6: IDTK, APOS, ROWS made on open (open_lists) */
+    A(TKID); A(ALPH); A(KEY4); A(TOPK); A(SEGS); A(SEGE); A(SKYP); A(SKYI); A(SKYC); A(DISI); A(DISO);
+    OPT(IDTK); OPT(APOS); OPT(ROWS); OPT(SUCC); OPT(UNIG); /* 1.6: these five made on open (open_lists) */
     OPT(HIST); OPT(HN13); OPT(HDRI); OPT(HDRV); OPT(TCTB); OPT(TSUC); OPT(TLNI); OPT(TLNV); OPT(TDRI); OPT(TDRV);
     OPT(TSGS); OPT(TSGE); OPT(TSKP); OPT(TSKI); OPT(TSKC);
     m->v2.small = arr_of(m, &secs[spec_index("CNTS")]);
@@ -899,12 +1071,15 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
     m->v2.tags = "CNTS/BIGI/BIGC";
     m->v2.count = m->b;
     m->v2.bits = m->quant_bits;
-    ef_raw raw[4];
+    ef_raw raw[S_COUNT];
     memset(raw, 0, sizeof raw);
     if (m->ef) {
-        static const char *const EF_TAGS[4][2] = {{"RWEH", "RWEB"}, {"SEFH", "SEFB"}, {"TPTH", "TPTB"}, {"TEFH", "TEFB"}};
-        for (int q = 0; q < (m->order == 3 ? 4 : 2); q++) {
-            const sec *h = &secs[spec_index(EF_TAGS[q][0])], *b = &secs[spec_index(EF_TAGS[q][1])];
+        for (int q = 0; q < S_COUNT; q++) {
+            if (!seq_wanted(q, m->kn, m->order)) continue;
+            char th[5], tb[5];
+            snprintf(th, sizeof th, "%sH", SEQ_TAGS[q]);
+            snprintf(tb, sizeof tb, "%sB", SEQ_TAGS[q]);
+            const sec *h = &secs[spec_index(th)], *b = &secs[spec_index(tb)];
             raw[q].head = buf + h->off;
             raw[q].hw = (int)ITEM[h->code];
             raw[q].head_n = h->len / ITEM[h->code];
@@ -927,10 +1102,10 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
         m->tlen.tags = "TLEN/TLEI/TLEV";
         m->tlen.count = m->b;
     }
-    m->has_hist = secs[hist].present;
-    /* Model._general: a quantised JM bigram with dropped mass goes through the general scorer */
-    m->jm_path = !m->kn && m->order == 2 &&
-                 !(m->codec == &nw_codec_quant && secs[spec_index("HDRI")].present && secs[spec_index("HDRI")].len > 0);
+    m->has_hist = secs[hist].present || m->ef; /* 1.6: HIST from its prefix sums (open_lists) */
+    /* Model._general: a JM bigram with dropped mass (HDRI not empty) goes through the general scorer */
+    m->jm_path = !m->kn && m->order == 2 && !(secs[spec_index("HDRI")].present && secs[spec_index("HDRI")].len > 0) &&
+                 !(m->ef && m->d2 > 0);
     m->disb = buf + secs[spec_index("DISB")].off;
     m->disb_len = secs[spec_index("DISB")].len;
     /* stored λ above 0.999 are clamped, not refused (Model.lambda_clamped) */

@@ -210,18 +210,21 @@ static int tri_lower(const nw_model *m, const cstate *cs, uint64_t a, uint64_t p
     return 0;
 }
 
-/* N₁, N₂, N₃₊ of row v (KN) */
-static void row_n123(const nw_model *m, uint32_t v, uint64_t *n1, uint64_t *n2, uint64_t *n3) {
+/* the dropped mass of the trigram context at bigram entry i (0 if none): TDRI/TDRV, or (1.6)
+ * TDI and the prefix sums TDV, the mass checked ≥ 1 and within 32 bits */
+static int tri_dropped(const nw_model *m, uint64_t i, uint64_t *mass) {
+    *mass = 0;
     if (!m->ef) {
-        *n1 = nw_at(&m->HN13, 3 * (uint64_t)v);
-        *n2 = nw_at(&m->HN13, 3 * (uint64_t)v + 1);
-        *n3 = nw_at(&m->HN13, 3 * (uint64_t)v + 2);
-        return;
+        uint64_t j = nw_lower(&m->TDRI, 0, m->TDRI.n, (uint32_t)i);
+        if (j < m->TDRI.n && nw_at(&m->TDRI, j) == i) *mass = nw_at(&m->TDRV, j);
+        return 0;
     }
-    uint64_t len = (uint64_t)nw_at(&m->ROWS, v + 1) - nw_at(&m->ROWS, v);
-    *n1 = nw_at(&m->HN12, 2 * (uint64_t)v);
-    *n2 = nw_at(&m->HN12, 2 * (uint64_t)v + 1);
-    *n3 = len - *n1 - *n2; /* N₁ + N₂ ≤ the row's length: checked on open */
+    uint64_t j, y = 0, a, b;
+    if (nw_ef_lower(&m->tdi, i, 0, m->tdi.n, &j, &y)) return -1;
+    if (j >= m->tdi.n || y != i) return 0;
+    if (nw_ef_get(&m->tdv, j, &a) || nw_ef_get(&m->tdv, j + 1, &b) || b <= a || b - a > 0xFFFFFFFFu) return -1;
+    *mass = b - a;
+    return 0;
 }
 
 /* -- values ------------------------------------------------------------------------------ */
@@ -302,7 +305,10 @@ static nw_status level3(const nw_model *m, uint32_t u, uint32_t v, cstate *cs, n
         }
         n3 = (end - start) - n1 - n2;
     }
-    uint64_t tot = sm + sparse(&m->TDRI, &m->TDRV, i);
+    uint64_t dropped;
+    if (tri_dropped(m, i, &dropped))
+        return DAMAGED("%s: damaged model data: the dropped mass of trigram context %llu does not decode", m->path, (unsigned long long)i);
+    uint64_t tot = sm + dropped;
     if (tot == 0) return DAMAGED("%s: damaged model data: trigram context %llu has a total of 0", m->path, (unsigned long long)i);
     cs->has3 = 1;
     cs->s3 = start;
@@ -337,8 +343,9 @@ static nw_status context(const nw_model *m, const uint32_t *ids, int nids, cstat
         cs->tot2 = tot;
         if (m->kn) {
             const double *d = m->d[1];
-            uint64_t n1, n2, n3;
-            row_n123(m, v, &n1, &n2, &n3);
+            /* HN13: stored (1.4/1.5) or made on open from N1/N2's prefix sums (1.6) */
+            uint64_t n1 = nw_at(&m->HN13, 3 * (uint64_t)v), n2 = nw_at(&m->HN13, 3 * (uint64_t)v + 1);
+            uint64_t n3 = nw_at(&m->HN13, 3 * (uint64_t)v + 2);
             cs->g2 = ((double)dropped + d[0] * (double)n1 + d[1] * (double)n2 + d[2] * (double)n3) / (double)tot;
         } else {
             cs->g2 = (1.0 - cs->lam2) + cs->lam2 * ((double)dropped / (double)tot);
