@@ -231,17 +231,18 @@ KINDS = {
     "jm3": dict(order=3),
     "kn3": dict(smoothing="kn", order=3, skyband_min=8, skyband_k=4),
 }
-FILES = ["jm2", "jm2-q5", "kn2", "kn2-q5", "kn3", "kn3-q5", "jm3-q5", "kn3-pruned"]
+FILES = ["jm2", "jm2-q5", "kn2", "kn2-q5", "kn3", "kn3-q5", "jm3-q5", "kn3-pruned", "jm2-pruned"]
 
 
 @pytest.fixture(scope="module")
 def cmodels(corpus: tuple[list[str], list[str]], tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
-    """1.6 files of every kind, exact and 5-bit; a pruned 1.6 KN trigram (dropped mass); and the
-    1.4/1.5 file of the same model beside each KN trigram (name + "-plain")."""
+    """1.6 files of every kind, exact and 5-bit; a pruned 1.6 KN trigram and JM bigram (dropped mass:
+    Model answers the JM bigram with its general scorer); and the 1.4/1.5 file of the same model
+    beside each KN trigram (name + "-plain")."""
     train, _ = corpus
     d = tmp_path_factory.mktemp("native-compact-models")
     out: dict[str, Path] = {}
-    for name in [f for f in FILES if f != "kn3-pruned"]:
+    for name in [f for f in FILES if not f.endswith("-pruned")]:
         kind, _, q = name.partition("-q")
         out[name] = d / f"{name}.nwm"
         nextword.train_texts(train, out[name], min_count=2, quantize=int(q) if q else None, compact=True, **KINDS[kind])  # type: ignore[arg-type]
@@ -249,9 +250,10 @@ def cmodels(corpus: tuple[list[str], list[str]], tmp_path_factory: pytest.TempPa
         out[f"{name}-plain"] = d / f"{name}-plain.nwm"
         q = 5 if name.endswith("q5") else None
         nextword.train_texts(train, out[f"{name}-plain"], min_count=2, quantize=q, **KINDS["kn3"])  # type: ignore[arg-type]
-    chunks, _ = prune_model(nextword.load(out["kn3"]), int(out["kn3"].stat().st_size * 0.6))
-    out["kn3-pruned"] = d / "kn3-pruned.nwm"
-    atomic_write(out["kn3-pruned"], chunks)
+    for name, keep in (("kn3", 0.6), ("jm2", 0.9)):  # a file read back keeps its words: a budget above the vocabulary
+        chunks, _ = prune_model(nextword.load(out[name]), int(out[name].stat().st_size * keep))
+        out[f"{name}-pruned"] = d / f"{name}-pruned.nwm"
+        atomic_write(out[f"{name}-pruned"], chunks)
     return out
 
 
@@ -284,7 +286,8 @@ def test_the_files_are_what_the_comparison_needs(cmodels: dict[str, Path]) -> No
         assert base <= tags and not tags & {b"SUCC", b"ROWS", b"IDTK", b"APOS", b"TSUC", b"UNIG", b"HIST", b"HDRI", b"HN13"}
         assert ({b"TPTH", b"TPTB", b"TEFH", b"TEFB", b"TDIH", b"TDIB", b"TDVH", b"TDVB"} <= tags) == ("3" in name), name
         assert ({b"N1EH", b"N1EB", b"N2EH", b"N2EB"} <= tags) == name.startswith("kn"), name
-    assert len(read_model(cmodels["kn3-pruned"]).arrays["HDRI"]) > 0
+    assert len(read_model(cmodels["kn3-pruned"]).arrays["HDRI"]) > 0 and len(read_model(cmodels["jm2-pruned"]).arrays["HDRI"]) > 0
+    assert read_model(cmodels["kn3-pruned"]).meta["dropped_contexts"][1] > 0  # trigram contexts with dropped mass (TDI/TDV)
 
 
 @pytest.mark.parametrize("name", FILES)
@@ -312,7 +315,7 @@ def test_compact_suggest_equals_python_on_held_out_queries(native: Native, cmode
         _close(native, m, s)
 
 
-@pytest.mark.parametrize("name", ["jm2-q5", "kn2", "kn3", "kn3-q5", "kn3-pruned"])
+@pytest.mark.parametrize("name", ["jm2-q5", "kn2", "kn3", "kn3-q5", "kn3-pruned", "jm2-pruned"])
 def test_compact_prob_equals_prob_after(native: Native, cmodels: dict[str, Path], corpus: tuple[list[str], list[str]],
                                         name: str) -> None:
     # reference: nextword.Model.prob_after (every history form: start, <unk>, one or two words)
