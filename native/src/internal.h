@@ -71,7 +71,10 @@ typedef struct nw_codec {
     int (*check)(const struct nw_model *m, nw_level_values *lv, uint64_t n, nw_error *err);
     /* value of n-gram i; 0 on success, -1 if the data is damaged */
     int (*value)(const nw_level_values *lv, uint64_t i, uint64_t *out);
+    /* values of n-grams s … e−1 (e − s ≤ NW_RUN_MAX) into out: a run read in one pass; 0, or -1 */
+    int (*run)(const nw_level_values *lv, uint64_t s, uint64_t e, uint64_t *out);
 } nw_codec;
+#define NW_RUN_MAX 64
 
 extern const nw_codec nw_codec_exact;
 

@@ -193,7 +193,16 @@ static int exact_check(const struct nw_model *m, nw_level_values *lv, uint64_t n
     return 0;
 }
 
-const nw_codec nw_codec_exact = {"exact", 1, exact_check, exact_value};
+/* a run through the codec's value() (the exact codec and quant version 1: one read each) */
+static int run_by_value(int (*value)(const nw_level_values *, uint64_t, uint64_t *), const nw_level_values *lv, uint64_t s,
+                        uint64_t e, uint64_t *out) {
+    for (uint64_t i = s; i < e; i++)
+        if (value(lv, i, &out[i - s])) return -1;
+    return 0;
+}
+static int exact_run(const nw_level_values *lv, uint64_t s, uint64_t e, uint64_t *out) { return run_by_value(exact_value, lv, s, e, out); }
+
+const nw_codec nw_codec_exact = {"exact", 1, exact_check, exact_value, exact_run};
 
 /* -- the quant codec (§7.17): q-bit codes, one little-endian bit stream, into a codebook -- */
 
@@ -232,7 +241,9 @@ static int quant_check(const struct nw_model *m, nw_level_values *lv, uint64_t n
     return 0;
 }
 
-static const nw_codec nw_codec_quant = {"quant", 1, quant_check, quant_value};
+static int quant_run(const nw_level_values *lv, uint64_t s, uint64_t e, uint64_t *out) { return run_by_value(quant_value, lv, s, e, out); }
+
+static const nw_codec nw_codec_quant = {"quant", 1, quant_check, quant_value, quant_run};
 
 /* -- the quant codec, version 2 (§7.18, 1.6 files only): a ones bitmap with a rank per 512
  *    n-grams, q-bit codes for the other values ------------------------------------------ */
@@ -246,6 +257,35 @@ static inline unsigned popcount8(unsigned x) {
     return (x + (x >> 4)) & 0x0Fu;
 }
 
+/* 8 bytes as a little-endian word */
+static inline uint64_t le64(const uint8_t *p) {
+    uint64_t x;
+    memcpy(&x, p, 8);
+#if defined(__BYTE_ORDER__) && __BYTE_ORDER__ == __ORDER_BIG_ENDIAN__
+    x = __builtin_bswap64(x);
+#endif
+    return x;
+}
+
+/* set bits of a word (SWAR: no popcount instruction needed) */
+static inline unsigned popcount64(uint64_t x) {
+    x = x - ((x >> 1) & 0x5555555555555555ull);
+    x = (x & 0x3333333333333333ull) + ((x >> 2) & 0x3333333333333333ull);
+    x = (x + (x >> 4)) & 0x0F0F0F0F0F0F0F0Full;
+    return (unsigned)((x * 0x0101010101010101ull) >> 56);
+}
+
+/* the set bits of block blk's bitmap before bit j (j < 512), plus the block's rank */
+static inline uint64_t ones_before(const uint8_t *blk, unsigned j) {
+    uint64_t ones = (uint64_t)blk[0] | ((uint64_t)blk[1] << 8) | ((uint64_t)blk[2] << 16) | ((uint64_t)blk[3] << 24);
+    unsigned w = 0;
+    for (; w < j / 64; w++) ones += popcount64(le64(blk + 4 + 8 * w));
+    if (j % 64) ones += popcount64(le64(blk + 4 + 8 * w) & ((1ull << (j % 64)) - 1));
+    return ones;
+}
+
+static int quant2_code(const nw_level_values *lv, uint64_t r, uint64_t *out);
+
 /* small: the bitmap (68 bytes per block); esc_i: the codebook; esc_v: the codes (u32 words,
  * read as bytes); count: n-grams; codes: how many have a code (set on load) */
 static int quant2_value(const nw_level_values *lv, uint64_t i, uint64_t *out) {
@@ -253,22 +293,11 @@ static int quant2_value(const nw_level_values *lv, uint64_t i, uint64_t *out) {
     const uint8_t *blk = lv->small.p + (i / ONES_BLOCK) * BLOCK_BYTES;
     unsigned j = (unsigned)(i % ONES_BLOCK);
     if ((blk[4 + j / 8] >> (j % 8)) & 1) { *out = 1; return 0; }
-    uint64_t ones = (uint64_t)blk[0] | ((uint64_t)blk[1] << 8) | ((uint64_t)blk[2] << 16) | ((uint64_t)blk[3] << 24);
-    for (unsigned b = 0; b < j / 8; b++) ones += popcount8(blk[4 + b]);
-    ones += popcount8(blk[4 + j / 8] & ((1u << (j % 8)) - 1u));
+    uint64_t ones = ones_before(blk, j);
     if (ones > i || i - ones >= lv->codes) return -1; /* a rank past the value codes */
-    uint64_t r = i - ones;
-    int q = lv->bits;
-    uint64_t bit = r * (uint64_t)q, at = bit >> 3;
-    unsigned sh = (unsigned)(bit & 7);
-    const uint8_t *cb = lv->esc_v.p; /* the code words' bytes, in file order */
-    uint32_t w = cb[at];
-    if (sh + (unsigned)q > 8) w |= (uint32_t)cb[at + 1] << 8; /* inside: r < codes, length checked */
-    uint32_t code = (w >> sh) & ((1u << q) - 1u);
-    if (code >= lv->esc_i.n) return -1;
-    *out = nw_at(&lv->esc_i, code);
-    return 0;
+    return quant2_code(lv, i - ones, out);
 }
+
 
 static int quant2_check(const struct nw_model *m, nw_level_values *lv, uint64_t n, nw_error *err) {
     (void)m;
@@ -307,7 +336,44 @@ static int quant2_check(const struct nw_model *m, nw_level_values *lv, uint64_t 
     return 0;
 }
 
-static const nw_codec nw_codec_quant2 = {"quant", 2, quant2_check, quant2_value};
+/* code r of a version-2 level (r < codes: inside the checked code words) */
+static int quant2_code(const nw_level_values *lv, uint64_t r, uint64_t *out) {
+    int q = lv->bits;
+    uint64_t bit = r * (uint64_t)q, at = bit >> 3;
+    unsigned sh = (unsigned)(bit & 7);
+    const uint8_t *cb = lv->esc_v.p;
+    uint32_t w = cb[at];
+    if (sh + (unsigned)q > 8) w |= (uint32_t)cb[at + 1] << 8;
+    uint32_t code = (w >> sh) & ((1u << q) - 1u);
+    if (code >= lv->esc_i.n) return -1;
+    *out = nw_at(&lv->esc_i, code);
+    return 0;
+}
+
+/* a run: the rank of its first n-gram once, then its bits and codes in order */
+static int quant2_run(const nw_level_values *lv, uint64_t s, uint64_t e, uint64_t *out) {
+    if (s >= e) return 0;
+    if (e > lv->count) return -1;
+    uint64_t r = 0; /* the code number of the next value that is not 1 */
+    for (uint64_t i = s; i < e; i++) {
+        const uint8_t *blk = lv->small.p + (i / ONES_BLOCK) * BLOCK_BYTES;
+        unsigned j = (unsigned)(i % ONES_BLOCK);
+        if (i == s || j == 0) { /* the run's first n-gram, or a new block: its rank */
+            uint64_t ones = ones_before(blk, j);
+            if (ones > i) return -1;
+            r = i - ones;
+        }
+        if ((blk[4 + j / 8] >> (j % 8)) & 1) {
+            out[i - s] = 1;
+            continue;
+        }
+        if (r >= lv->codes || quant2_code(lv, r, &out[i - s])) return -1;
+        r++;
+    }
+    return 0;
+}
+
+static const nw_codec nw_codec_quant2 = {"quant", 2, quant2_check, quant2_value, quant2_run};
 /* every codec this library reads, and the format minor version each belongs to */
 static const nw_codec *const CODECS[] = {&nw_codec_exact, &nw_codec_quant, &nw_codec_quant2};
 #define EXACT_MINOR 4

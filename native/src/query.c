@@ -122,6 +122,25 @@ static int scan_at(ef_scan *sc, uint64_t j, uint64_t *y) {
     return 0;
 }
 
+/* The values of a scan's consecutive n-grams, read NW_RUN_MAX at a time (codec.run). */
+typedef struct value_run {
+    uint64_t s, e; /* the n-grams in vals (NONE: none yet) */
+    uint64_t vals[NW_RUN_MAX];
+} value_run;
+
+/* value of n-gram i (< end, the scan's end) through the run that holds it */
+static int run_value(const nw_model *m, const nw_level_values *lv, value_run *vr, uint64_t i, uint64_t end, uint64_t *out) {
+    if (vr->s == NONE || i < vr->s || i >= vr->e) {
+        uint64_t e = end - i > NW_RUN_MAX ? i + NW_RUN_MAX : end;
+        vr->s = NONE;
+        if (e <= i || m->codec->run(lv, i, e, vr->vals)) return -1;
+        vr->s = i;
+        vr->e = e;
+    }
+    *out = vr->vals[i - vr->s];
+    return 0;
+}
+
 /* position of SEF value y in row v (§7.18: y − v·(n+2), which must be below n+2) */
 static int succ_of(const nw_model *m, uint32_t v, uint64_t y, uint32_t *pos) {
     uint64_t npos = (uint64_t)m->n + 2, base = (uint64_t)v * npos;
@@ -296,9 +315,11 @@ static nw_status level3(const nw_model *m, uint32_t u, uint32_t v, cstate *cs, n
             return DAMAGED("%s: damaged model data: trigram context %llu has a summary that does not fit its row", m->path,
                            (unsigned long long)i);
     } else {
-        for (uint64_t q = start; q < end; q++) {
-            uint64_t x;
-            if (m->codec->value(&m->v3, q, &x)) return DAMAGED("%s: escaped value without an entry at n-gram %llu", m->path, (unsigned long long)q);
+        uint64_t vals[NW_RUN_MAX]; /* at most SUMMARY_MIN values: one run */
+        if (m->codec->run(&m->v3, start, end, vals))
+            return DAMAGED("%s: damaged model data: the values of trigram context %llu do not decode", m->path, (unsigned long long)i);
+        for (uint64_t q = 0; q < end - start; q++) {
+            uint64_t x = vals[q];
             sm += x;
             n1 += x == 1;
             n2 += x == 2;
@@ -512,6 +533,7 @@ static nw_status rank(nw_session *s, const cstate *cs, uint64_t lo, uint64_t hi,
         uint64_t count = found ? to - from : b - a;
         ef_scan scan = {&m->sef, NONE, 0, {0}}; /* 1.6: the entries [a, b) in order (no band) */
         ef_scan *scp = found || count < SCAN_MIN ? NULL : &scan;
+        value_run vr = {NONE, NONE, {0}};
         for (uint64_t x = 0; x < count; x++) {
             uint64_t i = a + x;
             if (found) {
@@ -524,7 +546,8 @@ static nw_status rank(nw_session *s, const cstate *cs, uint64_t lo, uint64_t hi,
                 return DAMAGED("%s: damaged model data: the successor list of row %u does not decode", m->path, cs->v);
             if (pos < lo || pos >= hi) return DAMAGED("%s: damaged model data: successor position %u out of order", m->path, pos);
             uint64_t c2;
-            if (row_value(m, i, &c2)) return DAMAGED("%s: escaped count without a value at entry %llu", m->path, (unsigned long long)i);
+            if (scp ? run_value(m, &m->v2, &vr, i, b, &c2) : row_value(m, i, &c2))
+                return DAMAGED("%s: escaped count without a value at entry %llu", m->path, (unsigned long long)i);
             uint32_t w = nw_at(&m->ALPH, pos);
             if ((st = score(m, cs, w, pos, c2, i, NONE, &sc, err))) return st;
             offer(s, sc, w);
@@ -544,6 +567,7 @@ static nw_status rank(nw_session *s, const cstate *cs, uint64_t lo, uint64_t hi,
         uint64_t count = found ? to - from : b - a;
         ef_scan scan = {&m->tef, NONE, 0, {0}};
         ef_scan *scp = found || count < SCAN_MIN ? NULL : &scan;
+        value_run vr = {NONE, NONE, {0}};
         for (uint64_t x = 0; x < count; x++) {
             uint64_t i = a + x;
             if (found) {
@@ -557,7 +581,8 @@ static nw_status rank(nw_session *s, const cstate *cs, uint64_t lo, uint64_t hi,
                 return DAMAGED("%s: damaged model data: the trigram successors of a context do not decode", m->path);
             if (pos < lo || pos >= hi) return DAMAGED("%s: damaged model data: trigram successor %u out of order", m->path, pos);
             uint64_t c3;
-            if (m->codec->value(&m->v3, i, &c3)) return DAMAGED("%s: escaped value without an entry at n-gram %llu", m->path, (unsigned long long)i);
+            if (scp ? run_value(m, &m->v3, &vr, i, b, &c3) : m->codec->value(&m->v3, i, &c3))
+                return DAMAGED("%s: escaped value without an entry at n-gram %llu", m->path, (unsigned long long)i);
             /* 1.6: the successor is read through its bigram entry (v, w), which holds c(v, w) */
             if (bi != NONE && cs->tot2 > 0 && row_value(m, bi, &c2))
                 return DAMAGED("%s: escaped count without a value at entry %llu", m->path, (unsigned long long)bi);
