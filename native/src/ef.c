@@ -92,17 +92,24 @@ typedef struct chunk_view {
     int last; /* the sequence's last chunk */
 } chunk_view;
 
-static inline void view(const nw_ef *e, uint64_t c, chunk_view *v) {
+/* chunk c's header, checked (§7.18 "Checks when a chunk is decoded": F_c ≤ F_{c+1}, at least m
+ * apart in a strictly increasing sequence, O_c ≤ O_{c+1} ≤ O_C, the size its values need): then
+ * every bit the readers touch lies in [O_c, O_{c+1}), inside the stream. -1 if not. */
+static inline int view(const nw_ef *e, uint64_t c, chunk_view *v) {
     uint64_t m = e->n - c * NW_EF_CHUNK;
     if (m > NW_EF_CHUNK) m = NW_EF_CHUNK;
-    v->first = head_at(e, 2 * c);
-    v->r = head_at(e, 2 * c + 2) - v->first; /* F non-decreasing: checked on open */
-    v->lo_at = head_at(e, 2 * c + 1);
-    v->he = head_at(e, 2 * c + 3);
+    uint64_t f0 = head_at(e, 2 * c), f1 = head_at(e, 2 * c + 2), o0 = head_at(e, 2 * c + 1), o1 = head_at(e, 2 * c + 3);
+    if (f1 < f0 || (e->strict && f1 - f0 < m) || o1 < o0 || o1 > e->total) return -1;
+    v->first = f0;
+    v->r = f1 - f0;
+    v->lo_at = o0;
+    v->he = o1;
     v->m = (int)m;
     v->last = c + 1 == e->chunks;
     v->l = low_width(v->r, m);
-    v->hs = v->lo_at + m * v->l;
+    v->hs = o0 + m * v->l;
+    if (m * v->l + (v->r >> v->l) + m != o1 - o0) return -1; /* < 64·63 + 3·64: ⌊r/2^ℓ⌋ < 2m */
+    return 0;
 }
 
 /* first + (high·2^ℓ + low), refused above F_{c+1}; a chunk's first value must be F_c and the
@@ -119,7 +126,7 @@ static inline int value_of(const nw_ef *e, const chunk_view *v, uint64_t high, i
 int nw_ef_get(const nw_ef *e, uint64_t j, uint64_t *out) {
     if (j >= e->n) return -1;
     chunk_view v;
-    view(e, j / NW_EF_CHUNK, &v);
+    if (view(e, j / NW_EF_CHUNK, &v)) return -1;
     int k = (int)(j % NW_EF_CHUNK);
     unsigned left = (unsigned)k;
     for (uint64_t p = v.hs; p < v.he;) {
@@ -138,7 +145,7 @@ int nw_ef_get(const nw_ef *e, uint64_t j, uint64_t *out) {
 int nw_ef_chunk(const nw_ef *e, uint64_t c, uint64_t vals[NW_EF_CHUNK], int *m) {
     if (c >= e->chunks) return -1;
     chunk_view v;
-    view(e, c, &v);
+    if (view(e, c, &v)) return -1;
     int k = 0;
     for (uint64_t p = v.hs; p < v.he;) {
         uint64_t avail, w = region_word(e->bits, p, v.he, &avail);
@@ -216,7 +223,7 @@ int nw_ef_lower(const nw_ef *e, uint64_t y, uint64_t s, uint64_t end, uint64_t *
     }
     uint64_t c = lo - 1, base = c * NW_EF_CHUNK;
     chunk_view v;
-    view(e, c, &v);
+    if (view(e, c, &v)) return -1;
     int kk;
     uint64_t kv = 0;
     if (chunk_lower(e, &v, y, &kk, &kv)) return -1;
@@ -232,7 +239,7 @@ int nw_ef_lower(const nw_ef *e, uint64_t y, uint64_t s, uint64_t end, uint64_t *
 }
 
 nw_status nw_ef_open(nw_ef *e, const char *label, const uint8_t *head, uint64_t head_n, int hw, const uint8_t *stream,
-                     uint64_t stream_len, uint64_t n, int strict, nw_error *err) {
+                     uint64_t stream_len, uint64_t n, int strict, int chunks, nw_error *err) {
     memset(e, 0, sizeof *e);
     if (hw != 4 && hw != 8) return nw_fail(err, NW_E_FORMAT, "%s header is neither u32 nor u64", label);
     uint64_t c = n / NW_EF_CHUNK + (n % NW_EF_CHUNK != 0);
@@ -244,15 +251,16 @@ nw_status nw_ef_open(nw_ef *e, const char *label, const uint8_t *head, uint64_t 
     e->bits = stream;
     e->n = n;
     e->chunks = c;
+    e->strict = strict;
     if (head_at(e, 1) != 0) return nw_fail(err, NW_E_FORMAT, "%s chunk offsets do not start at 0 and increase", label);
-    uint64_t total = head_at(e, 2 * c + 1);
+    uint64_t total = e->total = head_at(e, 2 * c + 1);
     uint64_t want = (total >> 3) + ((total & 7) != 0) + NW_EF_PAD;
     if (stream_len != want)
         return nw_fail(err, NW_E_FORMAT, "%s stream has %llu bytes, expected %llu", label, (unsigned long long)stream_len,
                        (unsigned long long)want);
     if (n == 0 && head_at(e, 0) != 0) return nw_fail(err, NW_E_FORMAT, "%s is empty but ends at %llu", label,
                                                      (unsigned long long)head_at(e, 0));
-    for (uint64_t i = 0; i < c; i++) {
+    for (uint64_t i = 0; chunks && i < c; i++) {
         uint64_t f0 = head_at(e, 2 * i), f1 = head_at(e, 2 * i + 2), o0 = head_at(e, 2 * i + 1), o1 = head_at(e, 2 * i + 3);
         uint64_t m = n - i * NW_EF_CHUNK;
         if (m > NW_EF_CHUNK) m = NW_EF_CHUNK;

@@ -3,9 +3,8 @@
  *
  * A sequence of N non-decreasing values is a header of 2·(C+1) u32 or u64 entries (chunk
  * c's first value F_c and bit offset O_c, then a sentinel) and a bit stream. nw_ef_open
- * runs every check that needs only the headers (O(chunks)); after it, every chunk's bits
- * lie inside the stream, so the readers below never read out of bounds, whatever the
- * stream holds. Values inside a chunk are checked as they are decoded (each ≤ F_{c+1},
+ * runs the checks that need only the headers; every reader below checks the header of the
+ * chunk it reads (a few comparisons), so no read leaves the stream, whatever the file holds. Values inside a chunk are checked as they are decoded (each ≤ F_{c+1},
  * the first equal to F_c, the sequence's last equal to F_C − 1, the chunk's high region
  * holding its m values): a damaged chunk gives -1, never a read outside it. Nothing here
  * allocates.
@@ -28,13 +27,18 @@ typedef struct nw_ef {
     const uint8_t *bits; /* the stream: ⌈O_C/8⌉ + NW_EF_PAD bytes */
     uint64_t n;          /* number of values */
     uint64_t chunks;     /* C */
+    uint64_t total;      /* O_C: the stream's length in bits */
+    int strict;          /* a strictly increasing sequence */
 } nw_ef;
 
 /* Check one sequence's header and stream (§7.18 "Checks on load") and fill *e.
  * `label` names it in messages (e.g. "SEFH/SEFB"); strict: a strictly increasing
- * sequence (every chunk spans at least its number of values). NW_E_FORMAT on failure. */
+ * sequence (every chunk spans at least its number of values); chunks: check every chunk's
+ * header now (the vocabulary-sized sequences; O(chunks)) — either way each chunk's header
+ * is checked again whenever it is read, so the readers stay inside the stream. NW_E_FORMAT
+ * on failure. */
 nw_status nw_ef_open(nw_ef *e, const char *label, const uint8_t *head, uint64_t head_n, int hw, const uint8_t *stream,
-                     uint64_t stream_len, uint64_t n, int strict, nw_error *err);
+                     uint64_t stream_len, uint64_t n, int strict, int chunks, nw_error *err);
 
 /* F_c, chunk c's first value (c ≤ C: F_C is the sentinel, last value + 1) */
 uint64_t nw_ef_first(const nw_ef *e, uint64_t c);

@@ -728,13 +728,15 @@ static nw_status invert(const nw_arr *a, uint64_t len, uint8_t *inv, const char 
     return NW_OK;
 }
 
-/* One sequence opened (every chunk's header checked: §7.18's checks on load, and for the
- * n-gram-sized ones the chunk checks a query would make, done once here). */
+/* One sequence opened (§7.18's checks on load). */
 static nw_status open_seq(nw_ef *e, const ef_raw *raw, int q, uint64_t count, int strict, nw_error *err) {
     char label[16];
     snprintf(label, sizeof label, "%sH/%sB", SEQ_TAGS[q], SEQ_TAGS[q]);
     const ef_raw *r = &raw[q];
-    return nw_ef_open(e, label, r->head, r->head_n, r->hw, r->stream, r->stream_len, count, strict, err);
+    /* the n-gram-sized sequences' chunk headers are checked when a query reads them (as Python
+     * does): opening stays O(vocabulary) */
+    int ngram_sized = q == S_SEF || q == S_TPT || q == S_TEF || q == S_TDI || q == S_TDV;
+    return nw_ef_open(e, label, r->head, r->head_n, r->hw, r->stream, r->stream_len, count, strict, !ngram_sized, err);
 }
 
 /* Every value of a sequence (count values), each ≤ limit, as u32 into out. */

@@ -2,10 +2,11 @@
  * so a test can compare it with nextword/succinct.py value by value (built with the
  * sanitizers by `make ef-tool`: a read outside the header or stream aborts).
  *
- *   nwef HEAD HW STREAM N STRICT < QUERIES
+ *   nwef HEAD HW STREAM N STRICT [CHUNKS] < QUERIES
  *
  * HEAD: the header's raw bytes (HW = 4 or 8 bytes per entry), STREAM: the stream's bytes,
- * N: the number of values, STRICT: 1 for a strictly increasing sequence. Prints "open OK"
+ * N: the number of values, STRICT: 1 for a strictly increasing sequence, CHUNKS: 0 to leave
+ * the chunk headers to the readers (as for the n-gram-sized sequences; default 1). Prints "open OK"
  * or "open ERR <message>", then one line per query line:
  *   g J          -> Y_J, or "E" if the chunk is damaged
  *   l Y S E      -> "J V" (the first J in [S, E) with Y_J >= Y, and Y_J; V is "-" when J = E), or "E"
@@ -32,7 +33,7 @@ static uint8_t *slurp(const char *path, uint64_t *len) {
 }
 
 int main(int argc, char **argv) {
-    if (argc != 6) { fprintf(stderr, "usage: nwef HEAD HW STREAM N STRICT < QUERIES\n"); return 2; }
+    if (argc != 6 && argc != 7) { fprintf(stderr, "usage: nwef HEAD HW STREAM N STRICT [CHUNKS] < QUERIES\n"); return 2; }
     uint64_t hlen, slen;
     uint8_t *head = slurp(argv[1], &hlen), *stream = slurp(argv[3], &slen);
     int hw = atoi(argv[2]);
@@ -40,7 +41,8 @@ int main(int argc, char **argv) {
     nw_ef e;
     nw_error err;
     if (hw != 4 && hw != 8) return 2;
-    if (nw_ef_open(&e, "SEQ", head, hlen / (uint64_t)hw, hw, stream, slen, n, atoi(argv[5]), &err) != NW_OK) {
+    int chunks = argc == 7 ? atoi(argv[6]) : 1;
+    if (nw_ef_open(&e, "SEQ", head, hlen / (uint64_t)hw, hw, stream, slen, n, atoi(argv[5]), chunks, &err) != NW_OK) {
         printf("open ERR %s\n", err.message);
         free(head);
         free(stream);
