@@ -54,14 +54,15 @@ def figure_files(data: Path = DATA) -> dict[str, tuple[list[Path], list[Path]]]:
     return {"quant: exact against quantised values, 5M-word corpus": ([data / "train.txt"], [data / "test.txt"])}
 
 
-def timed_queries(model: nextword.Model, queries: list[tuple[str, str]]) -> list[float]:
-    """Seconds per suggest(k=3) call over ``queries`` ((kind, typed text) pairs)."""
-    out = []
-    clock = time.perf_counter
+def interleaved_times(models: list[nextword.Model], queries: list[tuple[str, str]]) -> list[list[float]]:
+    """CPU seconds per suggest(k=3) call of every model over ``queries``, each query asked of all models in turn."""
+    out: list[list[float]] = [[] for _ in models]
+    clock = time.thread_time
     for _, typed in queries:
-        t = clock()
-        model.suggest(typed, 3)
-        out.append(clock() - t)
+        for i, m in enumerate(models):
+            t = clock()
+            m.suggest(typed, 3)
+            out[i].append(clock() - t)
     return out
 
 
@@ -164,17 +165,24 @@ def main(argv: list[str] | None = None) -> int:
             models.append(m)
             print(f"  {label} {name}: {m.file_size:,} B, {m.file_size / grams:.3f} B/n-gram, ppl {ppl:.2f}, "
                   f"KSR@3 {100 * overall.per_k[3].ksr:.2f}% ({time.perf_counter() - t0:.0f} s)", file=sys.stderr, flush=True)
-        # timing: every model of the kind in this process, interleaved round by round
+        # timing: every model of the kind in this process, interleaved query by query (each query
+        # asked of every model in turn), in CPU time of this thread (the shared machine's other
+        # jobs do not count); the first round also pays the compact files' first decodes
         p50s: list[list[float]] = [[] for _ in models]
         p99s: list[list[float]] = [[] for _ in models]
-        for _ in range(args.rounds):
-            for i, m in enumerate(models):
-                ts = sorted(timed_queries(m, queries))
+        first_p99: list[float] = []
+        for rnd in range(args.rounds):
+            per = interleaved_times(models, queries)
+            for i, ts in enumerate(per):
+                ts.sort()
                 p50s[i].append(ts[len(ts) // 2])
                 p99s[i].append(ts[int(0.99 * (len(ts) - 1))])
+                if rnd == 0:
+                    first_p99.append(ts[int(0.99 * (len(ts) - 1))])
         for i, r in enumerate(rows):
             r["p50"] = statistics.median(p50s[i]) * 1e6
             r["p99"] = statistics.median(p99s[i]) * 1e6
+            r["p99_first"] = first_p99[i] * 1e6
             r["load"] = load_ms(r["path"], 21)
             models[i].close()
         ex = rows[0]
@@ -186,17 +194,19 @@ def main(argv: list[str] | None = None) -> int:
                 f"{r['ppl']:.2f} | {100 * (r['ppl'] / ex['ppl'] - 1):+.2f}% | {100 * r['ksr']:.2f}% | "
                 f"{100 * (r['ksr'] - ex['ksr']):+.2f} | {r['load']:.2f} | {r['p50']:.0f} | {r['p99']:.0f} | {r['p99'] / ex['p99']:.2f} |"
             )
-        best = min((r for r in rows if r["name"].startswith("compact")), key=lambda r: r["bytes"] / r["grams"])
         q5 = next(r for r in rows if r["name"] == "compact, quant 5-bit")
+        best = q5  # the width that meets the quantisation targets (4 bits costs > 1% perplexity)
         cex = next(r for r in rows if r["name"] == "compact, exact")
         verdict = (
-            f"Targets: smallest file **{best['bytes'] / best['grams']:.3f} bytes / n-gram** ({best['name']}; ≤ 2.0: "
+            f"Targets: **{best['bytes'] / best['grams']:.3f} bytes / n-gram** ({best['name']}; ≤ 2.0: "
             f"{'met' if best['bytes'] / best['grams'] <= 2.0 else 'NOT met'}); compact 5-bit against exact: "
             f"{100 * (q5['ksr'] - ex['ksr']):+.2f} KSR@3 points (≥ −0.1: {'met' if q5['ksr'] - ex['ksr'] >= -0.001 else 'NOT met'}), "
             f"{100 * (q5['ppl'] / ex['ppl'] - 1):+.2f}% perplexity (≤ 1%: {'met' if q5['ppl'] / ex['ppl'] <= 1.01 else 'NOT met'}), "
             f"load {q5['load']:.2f} ms (≤ 5: {'met' if q5['load'] <= 5 else 'NOT met'}), p99 {q5['p99'] / ex['p99']:.2f}× the exact "
             f"file's (≤ 1.3: {'met' if q5['p99'] / ex['p99'] <= 1.3 else 'NOT met'}); the compact layout alone (exact values) "
-            f"{cex['p99'] / ex['p99']:.2f}×, with answers identical to the exact file's (tests/test_compact.py)."
+            f"{cex['p99'] / ex['p99']:.2f}×, with answers identical to the exact file's (tests/test_compact.py); first round "
+            f"(the compact files' rows and contexts decoded on first use): p99 {q5['p99_first']:.0f} µs against "
+            f"{ex['p99_first']:.0f} µs ({q5['p99_first'] / ex['p99_first']:.2f}×)."
         )
         sections.append(f"""#### {label}
 
@@ -215,8 +225,8 @@ Command: `python bench/bench_quant.py {' '.join(argv if argv is not None else sy
 Training `bench/data/train.txt`; held out `bench/data/test.txt` ({len(held):,} messages): KSR@3 on the first
 {len(ksr_msgs):,}, perplexity on the first {len(ppl_msgs):,} (every token, `</s>` included), both by the engine.
 n-grams = stored bigrams + trigrams; bytes / n-gram = the whole file (vocabulary included) ÷ n-grams. Timing: one
-process, the models of a kind interleaved for {args.rounds} rounds of {len(queries):,} `suggest(k=3)` queries
-(median of the rounds' p50/p99); load = median of 21 `nextword.load` calls. Targets (issue 15): ≤ 2.0 bytes /
+process, CPU time of the calling thread, every query asked of every model of a kind in turn, {args.rounds} rounds of
+{len(queries):,} `suggest(k=3)` queries (median of the rounds' p50/p99); load = median of 21 `nextword.load` calls. Targets (issue 15): ≤ 2.0 bytes /
 n-gram; quantisation ≤ 0.1 KSR@3 points and ≤ 1% perplexity; load ≤ 5 ms; p99 ≤ 1.3× exact.
 Rows "compact, …": format 1.6 (`compact=True`: chunked Elias-Fano successor lists, starts and counts, docs/FORMAT.md
 §7.18); quantised compact files use the `quant` codec version 2 (a ones bitmap, codes only for the other values).

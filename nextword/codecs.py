@@ -429,7 +429,8 @@ class _QuantOnesView(ValueView):
         if int(idx.min()) < 0 or int(idx.max()) >= self._n:
             raise IndexError("value index out of range")
         if len(idx) > 16 and int(idx[-1]) - int(idx[0]) == len(idx) - 1 and bool((np.diff(idx) == 1).all()):
-            return self._range(int(idx[0]), int(idx[-1]) + 1)  # a run of entries (a row or a context)
+            s, e = int(idx[0]), int(idx[-1]) + 1  # a run of entries (a row or a context)
+            return self._range(s, e) if e - s > 96 else np.array(self.slice(s, e), dtype=np.int64)
         blk, off = idx >> 9, idx & (ONES_BLOCK - 1)
         bm = self._bm
         if self._pre is None:  # built on first use: the ones before each byte within its block (u16)

@@ -32,15 +32,13 @@ from .keyboard import Channel
 from .store import (
     BIGRAM_TAGS,
     COUNT_ESCAPE,
-    CONTEXT_TAGS,
-    CTX_BLOCK,
     MAX_LAMBDA,
     SUMMARY_MIN,
     TRIGRAM_TAGS,
     ModelArrays,
     read_model,
 )
-from .successors import SparseTable, TrigramLists
+from .successors import PlainSparseTable, SparseTable, TrigramLists, native_view
 from .text import BOS, EOS, UNK, fold, parse_typed, recase, sentences
 
 __all__ = ["Model", "Suggestion", "load", "check_k", "check_lam"]
@@ -87,12 +85,7 @@ def check_k(k: int) -> int:
     return k
 
 
-def _native_view(arr: np.ndarray) -> memoryview:
-    """A memoryview for fast scalar reads (Python ints) of a little-endian array."""
-    if sys.byteorder != "little":  # pragma: no cover - no big-endian CI
-        arr = arr.astype(arr.dtype.newbyteorder("="))
-    fmt = {1: "B", 2: "H", 4: "I", 8: "Q"}[arr.dtype.itemsize]
-    return memoryview(np.ascontiguousarray(arr)).cast("B").cast(fmt)  # type: ignore[arg-type,call-overload]
+_native_view = native_view  # a memoryview for fast scalar reads of a little-endian array
 
 
 class Model:
@@ -1252,7 +1245,7 @@ class _NgramScorer:
         if not bool(np.all((self.floor >= 0.0) & (self.floor <= 1.0 + 1e-9))):
             raise ModelFormatError(f"{m.path}: damaged model data: a unigram probability outside [0, 1]")
         self._floor_list: list[float] = self.floor.tolist()
-        self._hdri, self._hdrv = _native_view(a["HDRI"]), _native_view(a["HDRV"])
+        self._dropped2 = PlainSparseTable(a["HDRI"], a["HDRV"])  # vocabulary-sized: decoded in every layout
         self._ctx_cache: dict[tuple[tuple[int, ...], tuple[float, float]], tuple[int, float, int, int, int, int, float]] = {}
         # the trigram skybands hold for the stored parameters (KN: always; JM: stored λs, λ₃ > 0)
         self._band_lams = (m.stored_lam, m.stored_lam3) if not self.kn else None
@@ -1271,12 +1264,6 @@ class _NgramScorer:
     def _damaged(self, what: str) -> ModelFormatError:
         return ModelFormatError(f"{self.m.path}: damaged model data: {what}")
 
-    @staticmethod
-    def _sparse(idx: memoryview, val: memoryview, i: int) -> int:
-        """val at index i of a sorted sparse table, else 0."""
-        j = bisect.bisect_left(idx, i)
-        return val[j] if j < len(idx) and idx[j] == i else 0  # type: ignore[no-any-return]
-
     # -- per-context weights -------------------------------------------------------------
 
     def _level2(self, v: int, lam2: float) -> tuple[int, float]:
@@ -1284,7 +1271,7 @@ class _NgramScorer:
         tot = self.m._hist(v)
         if tot <= 0:
             return 0, 1.0
-        dropped = self._sparse(self._hdri, self._hdrv, v)
+        dropped = self._dropped2.get(v)
         if dropped > tot:
             raise self._damaged(f"dropped mass {dropped} above its context total {tot}")
         if self.kn:

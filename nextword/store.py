@@ -25,6 +25,7 @@ import numpy as np
 from .codecs import COUNT_ESCAPE as COUNT_ESCAPE  # one source: the codec owns the escape byte
 from .codecs import EXACT, Codec, ExactCodec, codec_named
 from .succinct import ChunkedEF, PrefixSums, ef_check_headers, ef_encode
+from .successors import CTX_BLOCK as CTX_BLOCK  # one source: the plain layout's trigram block (re-exported)
 from .successors import (
     BigramLists, EFBigramLists, EFSparseTable, EFTrigramLists, PlainBigramLists, PlainSparseTable, PlainTrigramLists,
     RowCounts, SparseTable, TrigramLists,
@@ -82,9 +83,6 @@ QUANT_MINOR: Final = 5
 COMPACT_MINOR: Final = 6
 #: META "successors" of a 1.6 file (the only layout so far)
 SUCCESSORS_META: Final = {"name": "ef", "version": 1}
-#: bigram entries per block of TCTB (an entry's trigram start = its block's base + the
-#: lengths of the entries before it in the block)
-CTX_BLOCK: Final = 16
 #: a trigram context with more successors than this has (Σ values, n₁, n₂, n₃₊) stored in
 #: TLNI/TLNV; shorter ones are summed from their row at query time
 SUMMARY_MIN: Final = 32

@@ -29,14 +29,14 @@ from .succinct import ChunkedEF, PrefixSums
 
 __all__ = [
     "BigramLists", "TrigramLists", "PlainBigramLists", "EFBigramLists", "PlainTrigramLists", "EFTrigramLists",
-    "SparseTable", "PlainSparseTable", "EFSparseTable", "RowCounts",
+    "SparseTable", "PlainSparseTable", "EFSparseTable", "RowCounts", "CTX_BLOCK", "native_view",
 ]
 
 #: bigram entries per block of the plain layout's TCTB (docs/FORMAT.md §7.14)
 CTX_BLOCK: Final = 16
 
 
-def _view(arr: np.ndarray) -> memoryview:
+def native_view(arr: np.ndarray) -> memoryview:
     """A memoryview for fast scalar reads (Python ints) of a little-endian array."""
     if sys.byteorder != "little":  # pragma: no cover - no big-endian CI
         arr = arr.astype(arr.dtype.newbyteorder("="))
@@ -78,7 +78,7 @@ class PlainBigramLists(BigramLists):
 
     def __init__(self, succ: np.ndarray) -> None:
         self._a = succ
-        self._mv = _view(succ)
+        self._mv = native_view(succ)
 
     def lower_bound(self, v: int, pos: int, s: int, e: int) -> int:
         return bisect.bisect_left(self._mv, pos, s, e)
@@ -113,8 +113,8 @@ class EFBigramLists(BigramLists):
 
     def __init__(self, where: str, ef: ChunkedEF, rows: np.ndarray, n_pos: int) -> None:
         self._where, self._ef, self._u = where, ef, n_pos
-        self._rows = np.asarray(rows, dtype=np.int64)
-        self._rows_l: list[int] = self._rows.tolist()
+        self._rows = np.ascontiguousarray(rows, dtype=np.int64)
+        self._rows_l = memoryview(self._rows).cast("B").cast("q")  # type: ignore[arg-type]  # scalar reads
         self._cache: OrderedDict[int, tuple[int, np.ndarray, memoryview]] = OrderedDict()
         self._cached = 0
 
@@ -199,8 +199,8 @@ class PlainTrigramLists(TrigramLists):
     """Formats 1.4/1.5: ``TSUC`` positions, lengths in ``TLEN`` (a codec view) with block bases ``TCTB``."""
 
     def __init__(self, where: str, tsuc: np.ndarray, tctb: np.ndarray, tlen: ValueView, bigrams: BigramLists, rows: memoryview) -> None:
-        self._where, self._a, self._mv = where, tsuc, _view(tsuc)
-        self._tctb, self._tlen = _view(tctb), tlen
+        self._where, self._a, self._mv = where, tsuc, native_view(tsuc)
+        self._tctb, self._tlen = native_view(tctb), tlen
         self._t = len(tsuc)
         self._s2, self._rows = bigrams, rows
 
@@ -340,7 +340,7 @@ class PlainSparseTable(SparseTable):
 
     def __init__(self, idx: np.ndarray, val: np.ndarray) -> None:
         self._idx, self._val = idx, val
-        self._mi, self._mv = _view(idx), _view(val)
+        self._mi, self._mv = native_view(idx), native_view(val)
 
     def get(self, i: int) -> int:
         j = bisect.bisect_left(self._mi, i)
@@ -384,7 +384,8 @@ class RowCounts:
 
     def __init__(self, where: str, n1: PrefixSums, n2: PrefixSums, rows: np.ndarray) -> None:
         self._where, self._n1, self._n2 = where, n1, n2
-        self._rows: list[int] = np.asarray(rows, dtype=np.int64).tolist()
+        self._rows_a = np.ascontiguousarray(rows, dtype=np.int64)
+        self._rows = memoryview(self._rows_a).cast("B").cast("q")  # type: ignore[arg-type]  # scalar reads
 
     def __len__(self) -> int:
         return 3 * len(self._n1)
@@ -402,7 +403,7 @@ class RowCounts:
 
     def all(self) -> np.ndarray:
         n1, n2 = self._n1.all(), self._n2.all()
-        n3 = np.diff(np.asarray(self._rows, dtype=np.int64)) - n1 - n2
+        n3 = np.diff(self._rows_a) - n1 - n2
         if bool((n3 < 0).any()):
             raise ModelFormatError(f"{self._where}: damaged model data: a row counts more entries than it has")
         return np.column_stack([n1, n2, n3]).reshape(-1)

@@ -30,7 +30,7 @@ from pathlib import Path
 import msgpack
 import numpy as np
 import pytest
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, given, reject, settings
 from hypothesis import strategies as st
 
 import nextword
@@ -142,8 +142,8 @@ def test_a_compact_file_is_the_same_model(tmp_path_factory: pytest.TempPathFacto
     try:
         plain, compact = _twins(tmp_path_factory.mktemp("c") / "m.nwm", msgs, smoothing, order, codec,
                                 prune_seed=seed if pruned else None)
-    except InvalidArgumentError as e:  # a corpus too small for the estimator (e.g. no KN discount) is not the point here
-        pytest.skip(str(e))
+    except InvalidArgumentError:  # a corpus too small for the estimator (e.g. no KN discount) is not the point here
+        reject()
     assert compact.format_version == (1, 6) and compact.info()["successors"] == {"name": "ef", "version": 1}
     ctxs = contexts_of(compact, rng)
     check_sums(compact, ctxs)
