@@ -1523,7 +1523,7 @@ def _expand_compact(name: str, meta: dict[str, Any], a: dict[str, np.ndarray], *
     def seq(tag: str, count: int, *, strict: bool, chunks: bool = True) -> ChunkedEF:
         head, stream = a.pop(tag + "H"), a.pop(tag + "B")
         ef_check_headers(name, f"sections {tag}H/{tag}B", head, stream, count, strict=strict, chunks=chunks or full)
-        return ChunkedEF(name, f"sections {tag}H/{tag}B", head, stream, count)
+        return ChunkedEF(name, f"sections {tag}H/{tag}B", head, stream, count, strict=strict)
 
     def counts(tag: str, count: int, *, positive: bool = False) -> np.ndarray:
         """Values stored as their prefix sums (count + 1 values from 0): the values, checked ≥ 0 (≥ 1) and ≤ 32 bits."""

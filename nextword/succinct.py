@@ -109,8 +109,10 @@ def ef_check_headers(where: str, label: str, head: np.ndarray, stream: np.ndarra
         raise ModelFormatError(f"{where}: {label} has {len(head)} header entries, expected {2 * (c + 1)} for {n} values")
     if not chunks:
         end = int(head[-1])
-        if int(head[1]) != 0 or (n == 0 and int(head[0]) != 0):
+        if int(head[1]) != 0:
             raise ModelFormatError(f"{where}: {label} chunk offsets do not start at 0")
+        if n == 0 and int(head[0]) != 0:
+            raise ModelFormatError(f"{where}: {label} is empty but ends at {int(head[0])}")
         _check_tail(where, label, stream, end)
         return
     h = head.astype(np.int64)
@@ -154,8 +156,11 @@ class ChunkedEF:
     (64 int64 each), so it costs at most ``cache`` × 512 bytes.
     """
 
-    def __init__(self, where: str, label: str, head: np.ndarray, stream: np.ndarray, n: int, *, cache: int = 2048) -> None:
+    def __init__(self, where: str, label: str, head: np.ndarray, stream: np.ndarray, n: int, *, cache: int = 2048,
+                 strict: bool = False) -> None:
         self._where, self._label, self._n = where, label, n
+        #: a strictly increasing sequence (successor lists, sparse indices, positive prefix sums): a decoded chunk must be too
+        self._strict = strict
         self._head = head
         # scalar reads of the headers without converting them (opening stays O(1) per sequence)
         self._h = memoryview(np.ascontiguousarray(head)).cast("B").cast("Q" if head.dtype.itemsize == 8 else "I")  # type: ignore[arg-type]
@@ -190,7 +195,7 @@ class ChunkedEF:
         q = r // m if r >= 0 else 0
         low = q.bit_length() - 1 if q else 0
         # this chunk's header (checked here when the load checked only the counts): inside the stream, the right size
-        if r < 0 or o1 > h[len(h) - 1] or o1 - o0 != m * low + (r >> low) + m:
+        if r < 0 or o1 > h[len(h) - 1] or o1 - o0 != m * low + (r >> low) + m or (self._strict and r < m):
             raise self._bad(c)
         raw = np.unpackbits(self._stream[o0 >> 3 : (o1 + 7) >> 3], bitorder="little")[o0 & 7 : (o0 & 7) + (o1 - o0)]
         ones = np.flatnonzero(raw[m * low :])
@@ -203,6 +208,8 @@ class ChunkedEF:
         vals += first
         # the first value is the header's; the sequence's last value is one below the sentinel
         if vals[0] != first or vals[-1] > nxt or (c == (len(h) >> 1) - 2 and vals[-1] != nxt - 1):
+            raise self._bad(c)
+        if self._strict and m > 1 and bool((vals[1:] <= vals[:-1]).any()):
             raise self._bad(c)
         vals.flags.writeable = False
         if len(self._cache) >= self._cache_max:
@@ -323,6 +330,8 @@ class ChunkedEF:
             raise self._bad(c0 + (int(np.flatnonzero(over)[0]) >> _SHIFT))
         if c1 == (len(self._head) >> 1) - 1 and n and vals[-1] != first[-1] - 1:
             raise self._bad(c1 - 1)
+        if self._strict and n > 1 and bool((vals[1:] <= vals[:-1]).any()):
+            raise ModelFormatError(f"{self._where}: {self._label} is not strictly increasing")
         return vals
 
 

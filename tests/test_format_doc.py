@@ -8,6 +8,13 @@ probabilities, rankings and display spellings as ``nextword.load(...)``. A last 
 retrains the worked example of FORMAT.md §10 and compares it with the bytes and arrays
 quoted there, so the document fails CI when the format changes.
 
+Format 1.6 (§7.18) is read by the same classes: ``ef_decode`` decodes a chunked
+Elias-Fano sequence bit by bit from the text of §7.18 (it does not use
+``nextword.succinct``), and the reader rebuilds the arrays of the plain layout from it.
+The 1.6 tests compare with the library's encoder (a property test), with the plain file
+of the same model, with the worked example of §10.9, and damage files for each check §8
+lists for 1.6 (``write_file`` lays a file out again by §11 with its CRCs right).
+
 The main training corpus is real text: the first lines of the Python documentation
 topics in the standard library (``pydoc_data.topics``) and the "I am Sam" sentences of
 Jurafsky & Martin, *Speech and Language Processing* (3rd ed. draft, ch. 3), repeated so
@@ -28,6 +35,7 @@ import struct
 import zlib
 from collections import Counter, defaultdict
 from dataclasses import dataclass
+from collections.abc import Callable
 from pathlib import Path
 from pydoc_data.topics import topics  # standard library: the text of help() topics
 
@@ -35,6 +43,8 @@ import marisa_trie
 import msgpack
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 import nextword
 from nextword.text import fold, sentences
@@ -59,11 +69,99 @@ LAYOUT = {
 }  # fmt: skip
 # §8 item 6: not checksummed on every load by the Python reader
 BIGRAM_SIZED = ("SUCC", "CNTS", "BIGI", "BIGC", "SEGS", "SEGE", "SKYP", "SKYI", "SKYC")
-CODE_OF = {"raw": 0, "u8": 1, "u16": 2, "u32": 3}
+CODE_OF = {"raw": 0, "u8": 1, "u16": 2, "u32": 3, "u64": 4}
+# §7.18: a 1.6 file drops the inverse permutations, the plain bigram lists and UNIG, and
+# holds chunked Elias-Fano sequences instead (two sections each: header u32 or u64, stream u8)
+DROPPED_16 = ("IDTK", "APOS", "ROWS", "SUCC", "UNIG")
+LAYOUT_16 = {**{t: k for t, k in LAYOUT.items() if t not in DROPPED_16},
+             "RWEH": "u32|u64", "RWEB": "u8", "SEFH": "u32|u64", "SEFB": "u8",
+             "UNEH": "u32|u64", "UNEB": "u8"}  # fmt: skip
+SUCCESSORS_16 = {"name": "ef", "version": 1}  # §7.18: META.successors
+EF_CHUNK = 64  # §7.18: values per chunk
+EF_PAD = 8  # §7.18: zero bytes after the stream
 
 
 class FormatError(Exception):
     """The independent reader rejected a file."""
+
+
+def ef_low_width(r: int, m: int) -> int:
+    """§7.18: ℓ = ⌊log₂ ⌊r / m⌋⌋ when r ≥ m, else 0."""
+    q, low = r // m, 0
+    while q >= 2:
+        q //= 2
+        low += 1
+    return low
+
+
+def ef_decode(head: list[int], stream: bytes, count: int, *, strict: bool) -> list[int]:
+    """§7.18: the ``count`` values of a chunked Elias-Fano sequence, read bit by bit, with
+    every check the section lists (``strict``: a strictly increasing sequence)."""
+    chunks = -(-count // EF_CHUNK)
+    if len(head) != 2 * (chunks + 1):
+        raise FormatError(f"EF header has {len(head)} entries, expected {2 * (chunks + 1)}")
+    first, off = head[0::2], head[1::2]
+    if off[0] != 0 or any(b < a for a, b in zip(off, off[1:])):
+        raise FormatError("EF bit offsets")
+    if count == 0 and first[0] != 0:
+        raise FormatError("empty EF sequence with a non-zero end")
+    end = off[chunks]
+    if len(stream) != -(-end // 8) + EF_PAD:
+        raise FormatError("EF stream length")
+
+    def bit(p: int) -> int:  # stream bit p: bit (p mod 8) of byte ⌊p/8⌋
+        return (stream[p // 8] >> (p % 8)) & 1
+
+    if any(bit(p) for p in range(end, 8 * len(stream))):
+        raise FormatError("EF bit set past the end")
+    out: list[int] = []
+    for c in range(chunks):
+        m = min(EF_CHUNK, count - EF_CHUNK * c)
+        r = first[c + 1] - first[c]
+        if r < 0 or (strict and r < m):
+            raise FormatError(f"EF chunk {c} first values")
+        low = ef_low_width(r, m)
+        if off[c + 1] - off[c] != m * low + (r >> low) + m:
+            raise FormatError(f"EF chunk {c} size")
+        lows = [sum(bit(off[c] + k * low + j) << j for j in range(low)) for k in range(m)]
+        region = off[c] + m * low
+        ones = [p - region for p in range(region, off[c + 1]) if bit(p)]
+        if len(ones) != m:
+            raise FormatError(f"EF chunk {c} has {len(ones)} high bits set, expected {m}")
+        vals = [first[c] + (ones[k] - k) * 2**low + lows[k] for k in range(m)]
+        if vals[0] != first[c] or vals[-1] > first[c + 1]:
+            raise FormatError(f"EF chunk {c} values outside [F_c, F_c+1]")
+        out += vals
+    if count and out[-1] + 1 != first[chunks]:
+        raise FormatError("EF sentinel is not the last value + 1")
+    if any(b < a or (strict and b == a) for a, b in zip(out, out[1:])):
+        raise FormatError("EF sequence not increasing")
+    return out
+
+
+def ef_encode_doc(values: list[int]) -> tuple[list[int], bytes]:
+    """§7.18 the other way round: the header values and the stream of a non-decreasing
+    sequence (used to craft files; the library's encoder must give the same bytes)."""
+    count = len(values)
+    chunks = -(-count // EF_CHUNK)
+    first = [values[EF_CHUNK * c] for c in range(chunks)] + [values[-1] + 1 if count else 0]
+    bits: list[int] = []
+    head: list[int] = []
+    for c in range(chunks):
+        m = min(EF_CHUNK, count - EF_CHUNK * c)
+        r = first[c + 1] - first[c]
+        low = ef_low_width(r, m)
+        head += [first[c], len(bits)]
+        d = [values[EF_CHUNK * c + k] - first[c] for k in range(m)]
+        for x in d:
+            bits += [(x >> j) & 1 for j in range(low)]
+        high = [0] * ((r >> low) + m)
+        for k, x in enumerate(d):
+            high[(x >> low) + k] = 1
+        bits += high
+    head += [first[chunks], len(bits)]
+    stream = bytes(sum(b << j for j, b in enumerate(bits[i : i + 8])) for i in range(0, len(bits), 8))
+    return head, stream + bytes(EF_PAD)
 
 
 def id_type(n: int) -> str:
@@ -140,7 +238,8 @@ class NwmReader:
         if len(data) != prev_end + (-prev_end % 8) or any(data[prev_end:]):
             raise FormatError("bytes after the last section")
         self.sections = {e.tag: e for e in self.entries}
-        missing = set(LAYOUT) - set(self.sections)
+        self.layout = LAYOUT_16 if self.version == (1, 6) else LAYOUT  # §7.18
+        missing = set(self.layout) - set(self.sections)
         if missing:
             raise FormatError(f"missing {sorted(missing)}")
         for e in self.entries:  # this reader always checks every CRC (§8, item 13)
@@ -152,7 +251,7 @@ class NwmReader:
         n = self.n = self.meta["n_words"]
         self.id_type = id_type(n)
         self.a: dict[str, np.ndarray] = {}
-        for tag, kind in LAYOUT.items():
+        for tag, kind in self.layout.items():
             want = self.id_type if kind == "id" else kind
             e = self.sections[tag]
             if e.code not in [CODE_OF[t] for t in want.split("|")]:
@@ -165,6 +264,15 @@ class NwmReader:
         self.trie.frombytes(self.raw("TRIE"))
         self.total = self.meta["total"]
         self.lam = self.meta["lambda"]
+        codec = self.meta.get("codec")
+        # §7.17, §7.18: the value sections hold codes in a 1.5 file and in a 1.6 file of codec quant
+        self.coded = self.version == (1, 5) or (
+            self.version == (1, 6) and isinstance(codec, dict) and codec.get("name") == "quant"
+        )
+        if self.version == (1, 6):
+            self._expand_16()
+        elif "successors" in self.meta:  # §7.18: refused in files 1.0–1.5
+            raise FormatError("META successors in a file older than 1.6")
         self._check_arrays()
         self.keys = [self.trie.restore_key(int(m)) for m in self.a["IDTK"]]  # key of each word id
         self.alpha_keys = [self.keys[w] for w in self.a["ALPH"][: self.n]]  # key at each position
@@ -172,6 +280,46 @@ class NwmReader:
     def raw(self, tag: str) -> bytes:
         e = self.sections[tag]
         return self.data[e.offset : e.offset + e.length]
+
+    def ef(self, name: str, count: int, *, strict: bool) -> list[int]:
+        """§7.18: the sequence of sections ``name``H/``name``B."""
+        return ef_decode(self.a[name + "H"].tolist(), self.raw(name + "B"), count, strict=strict)
+
+    def prefix_sums(self, name: str, count: int, *, positive: bool = False) -> np.ndarray:
+        """§7.18: ``count`` values stored as their count + 1 prefix sums 0, x₀, x₀+x₁, …
+        (x_i = P_{i+1} − P_i; ``positive``: every x ≥ 1, a strictly increasing sequence);
+        each x must fit the u32 of the section it replaces."""
+        cum = np.array(self.ef(name, count + 1, strict=positive), dtype=np.int64)
+        x = np.diff(cum)
+        if cum[0] != 0 or (count and int(x.max()) > 0xFFFFFFFF):
+            raise FormatError(f"{name} does not hold prefix sums from 0 of 32-bit values")
+        return x
+
+    def _expand_16(self) -> None:
+        """§7.18: rebuild ROWS, SUCC, UNIG, IDTK and APOS of a 1.6 file from its sequences;
+        the checks of §8 then run on them as for any other file."""
+        a, n, b = self.a, self.n, self.meta["bigrams"]
+        if self.meta.get("successors") != SUCCESSORS_16:
+            raise FormatError(f"META successors = {self.meta.get('successors')!r}")
+        rows = np.array(self.ef("RWE", n + 4, strict=False), dtype=np.int64)
+        a["UNIG"] = self.prefix_sums("UNE", n + 2)
+        for tag, inv, m in (("TKID", "IDTK", n), ("ALPH", "APOS", n + 2)):  # permutations first
+            perm = a[tag].astype(np.int64)
+            if not np.array_equal(np.sort(perm), np.arange(m)):
+                raise FormatError(f"{tag} is not a permutation")
+            out = np.zeros(m, dtype=np.int64)
+            out[perm] = np.arange(m)
+            a[inv] = out
+        y = np.array(self.ef("SEF", b, strict=True), dtype=np.int64)
+        if len(y) and y[-1] >= (n + 3) * (n + 2):
+            raise FormatError("SEF value past the last row")
+        if rows[0] != 0 or rows[-1] != b or np.any(np.diff(rows) < 0):
+            raise FormatError("ROWS offsets")
+        row_of = np.repeat(np.arange(n + 3), np.diff(rows))
+        succ = y - row_of * (n + 2)  # the position of entry i of row v: Y_i − v·(n+2)
+        if np.any(succ < 0) or np.any(succ >= n + 2):
+            raise FormatError("SEF value outside its row")
+        a["ROWS"], a["SUCC"] = rows, succ
 
     def _check_meta(self) -> None:  # §7.1
         m = self.meta
@@ -201,7 +349,7 @@ class NwmReader:
             "SKYP": len(a["SEGS"]) + 1, "SKYC": len(a["SEGS"]) * K,
             "TOPK": F * sum(topk_levels(n)), "DISO": len(a["DISI"]) + 1,
         }  # fmt: skip
-        if self.version != (1, 5):  # §7.17: a 1.5 file's value sections hold codes (NgramReader reads them)
+        if not self.coded:  # §7.17: a 1.5 (or quant 1.6) file's value sections hold codes (NgramReader reads them)
             lengths |= {"CNTS": b, "BIGC": len(a["BIGI"])}
         for tag, want in lengths.items():
             if len(a[tag]) != want:
@@ -233,7 +381,7 @@ class NwmReader:
         if np.any(np.diff(row_of * (n + 2) + succ) <= 0):
             raise FormatError("SUCC not strictly increasing within a row")
         cnts, bigi = a["CNTS"], a["BIGI"].astype(np.int64)
-        if self.version != (1, 5) and (
+        if not self.coded and (
             np.any(cnts == 0) or not np.array_equal(np.flatnonzero(cnts == ESCAPE), bigi) or np.any(a["BIGC"] < ESCAPE)
         ):
             raise FormatError("CNTS/BIGI/BIGC")
@@ -311,7 +459,7 @@ class NwmReader:
         i = bisect.bisect_left(succ, p, s, e)
         if i == e or succ[i] != p:
             return 0
-        if self.version == (1, 5):
+        if self.coded:
             return int(self.full_counts()[i])
         c = int(self.a["CNTS"][i])
         if c == ESCAPE:
@@ -1017,22 +1165,80 @@ TRIGRAM_14 = {"TCTB": "u32", "TLEN": "u8", "TLEI": "u32", "TLEV": "u32", "TSUC":
               "TSGS": "u32", "TSGE": "u32", "TSKP": "u32", "TSKI": "u16|u32", "TSKC": "u16|u32"}  # fmt: skip
 BASE_14 = {"HIST": "u32", "HDRI": "id", "HDRV": "u32"}
 OPTIONAL_14 = {**BASE_14, "HN13": "u32", **TRIGRAM_14}
-KIND_SECTIONS = {  # §7.11; (jm, 2) only in a 1.5 file (§7.17)
+KIND_SECTIONS = {  # §7.11; (jm, 2) only in a 1.5 or 1.6 file (§7.17, §7.18)
     ("jm", 2): {*BASE_14},
     ("kn", 2): {*BASE_14, "HN13"},
     ("kn", 3): {*BASE_14, "HN13", *TRIGRAM_14},
     ("jm", 3): {*BASE_14, *TRIGRAM_14},
 }
+# §7.18: in a 1.6 file sequences (…H u32|u64, …B u8) replace these sections of the 1.4 layout
+REPLACED_16 = {
+    "HIST": ("HSE",), "HDRI": ("HDI",), "HDRV": ("HDV",), "HN13": ("N1E", "N2E"),
+    "TCTB": ("TPT",), "TLEN": (), "TLEI": (), "TLEV": (), "TSUC": ("TEF",), "TDRI": ("TDI",), "TDRV": ("TDV",),
+}  # fmt: skip
+OPTIONAL_16 = {name + s: k for names in REPLACED_16.values() for name in names for s, k in (("H", "u32|u64"), ("B", "u8"))}
+KIND_SECTIONS_16 = {
+    kind: (tags - set(REPLACED_16)) | {name + s for t in tags & set(REPLACED_16) for name in REPLACED_16[t] for s in "HB"}
+    for kind, tags in KIND_SECTIONS.items()
+}
 SUMMARY_MIN = 32  # §7.15
+
+
+ONES_BLOCK = 512  # §7.18, the quant codec version 2: n-grams per block of the ones bitmap
+ONES_BLOCK_BYTES = 4 + ONES_BLOCK // 8  # a u32 rank, then 64 bytes of bits
+
+
+def check_codebook(codebook: np.ndarray, q: int, count: int) -> np.ndarray:
+    """§7.17: 1 … 2^q strictly increasing values ≥ 1 (0 entries for an empty level)."""
+    cb = codebook.astype(np.int64)
+    if count and (len(cb) < 1 or len(cb) > 1 << q or cb[0] < 1 or np.any(np.diff(cb) <= 0)):
+        raise FormatError("codebook")
+    return cb
+
+
+def quant2_values(bitmap: bytes, codebook: np.ndarray, code_words: bytes, q: int, count: int) -> np.ndarray:
+    """§7.18 "The quant codec, version 2": the ``count`` values of a level from its ones
+    bitmap (per block of 512 n-grams a u32 rank and 64 bytes of bits; bit set ⇔ value 1)
+    and the q-bit codes of the other values, read one n-gram at a time as the text says."""
+    blocks = -(-count // ONES_BLOCK)
+    if len(bitmap) != ONES_BLOCK_BYTES * blocks:
+        raise FormatError("ones bitmap length")
+    cb = check_codebook(codebook, q, count)
+
+    def bit(blk: int, j: int) -> int:  # bit j of block blk: bit j mod 8 of the block's byte ⌊j/8⌋
+        return (bitmap[ONES_BLOCK_BYTES * blk + 4 + j // 8] >> (j % 8)) & 1
+
+    ranks = [struct.unpack_from("<I", bitmap, ONES_BLOCK_BYTES * blk)[0] for blk in range(blocks)]
+    ones_in = [sum(bit(blk, j) for j in range(ONES_BLOCK)) for blk in range(blocks)]
+    if ranks != list(itertools.accumulate(ones_in, initial=0))[:blocks]:  # the first is 0
+        raise FormatError("ones bitmap ranks")
+    if any(bit(blocks - 1, j) for j in range(count - ONES_BLOCK * (blocks - 1), ONES_BLOCK)) if blocks else False:
+        raise FormatError("ones bitmap bits after the last n-gram")
+    m = count - (ranks[-1] + ones_in[-1] if blocks else 0)  # the values other than 1
+    if len(code_words) != 4 * (-(-m * q // 32)):
+        raise FormatError("code section length")
+    stream = code_words  # the u32 words' bytes in file order: the bit stream of §7.17
+    if any((stream[p // 8] >> (p % 8)) & 1 for p in range(m * q, 8 * len(stream))):
+        raise FormatError("bits after the last code")
+    out = np.zeros(count, dtype=np.int64)
+    for i in range(count):
+        blk, j = divmod(i, ONES_BLOCK)
+        if bit(blk, j):
+            out[i] = 1
+            continue
+        r = i - ranks[blk] - sum(bit(blk, k) for k in range(j))  # code number r of the stream
+        code = sum(((stream[(r * q + k) // 8] >> ((r * q + k) % 8)) & 1) << k for k in range(q))
+        if r >= m or code >= len(cb):
+            raise FormatError("code past the codebook")
+        out[i] = cb[code]
+    return out
 
 
 def quant_values(codes: np.ndarray, codebook: np.ndarray, q: int, count: int) -> np.ndarray:
     """§7.17: ``count`` q-bit codes of a little-endian bit stream, each looked up in the codebook."""
     if len(codes) != (count * q + 7) // 8:
         raise FormatError("code section length")
-    cb = codebook.astype(np.int64)
-    if count and (len(cb) < 1 or len(cb) > 1 << q or cb[0] < 1 or np.any(np.diff(cb) <= 0)):
-        raise FormatError("codebook")
+    cb = check_codebook(codebook, q, count)
     tail = count * q % 8
     if tail and int(codes[-1]) >> tail:
         raise FormatError("unused bits of the last code byte")
@@ -1053,30 +1259,34 @@ class NgramReader(NwmReader):
 
     def __init__(self, path: str | Path) -> None:
         super().__init__(path)
-        if self.version not in ((1, 4), (1, 5)):
-            raise FormatError("not a 1.4 or 1.5 file")
+        if self.version not in ((1, 4), (1, 5), (1, 6)):
+            raise FormatError("not a 1.4, 1.5 or 1.6 file")
         m = self.meta
         codec = m.get("codec")
         self.q: int | None = None
-        if self.version == (1, 4) and codec != {"name": "exact", "version": 1}:  # §7.11, §7.12
+        exact = codec == {"name": "exact", "version": 1}
+        if (self.version == (1, 4) or self.version == (1, 6) and not self.coded) and not exact:  # §7.11, §7.12, §7.18
             raise FormatError("unknown codec")
-        if self.version == (1, 5):  # §7.17
+        self.quant_version = 0
+        if self.coded:  # §7.17 (1.5, or 1.6 with codec quant: §7.18; version 2 in 1.6 files only)
+            versions = (1, 2) if self.version == (1, 6) else (1,)
             if not isinstance(codec, dict) or set(codec) != {"name", "version", "bits"} or codec["name"] != "quant" \
-                    or codec["version"] != 1 or codec["bits"] not in range(2, 9) or isinstance(codec["bits"], bool):
+                    or codec["version"] not in versions or isinstance(codec["version"], bool) \
+                    or codec["bits"] not in range(2, 9) or isinstance(codec["bits"], bool):
                 raise FormatError("unknown codec")
-            self.q = codec["bits"]
-            if len(self.a["BIGC"]):
-                raise FormatError("BIGC not empty")
-            self._counts = quant_values(self.a["CNTS"], self.a["BIGI"], self.q, m["bigrams"])
+            self.q, self.quant_version = codec["bits"], codec["version"]
+            self._counts = self.level_values("CNTS", "BIGI", "BIGC", m["bigrams"])
         self.kind = (m["estimator"], m["order"])
-        if self.kind == ("jm", 2) and self.version != (1, 5):
-            raise FormatError("a JM bigram is 1.5 only among the n-gram layouts")
-        if set(self.sections) - set(LAYOUT) != KIND_SECTIONS[self.kind]:
+        if self.kind == ("jm", 2) and self.version == (1, 4):
+            raise FormatError("a JM bigram is 1.5 or 1.6 only among the n-gram layouts")
+        kind_sections = (KIND_SECTIONS_16 if self.version == (1, 6) else KIND_SECTIONS)[self.kind]  # §7.18
+        if set(self.sections) - set(self.layout) != kind_sections:
             raise FormatError("optional sections do not fit the kind")
         n = self.n
-        for tag in KIND_SECTIONS[self.kind]:
+        for tag in kind_sections:
             e = self.sections[tag]
-            want = self.id_type if OPTIONAL_14[tag] == "id" else OPTIONAL_14[tag]
+            kind = {**OPTIONAL_14, **OPTIONAL_16}[tag]
+            want = self.id_type if kind == "id" else kind
             if e.code not in [CODE_OF[x] for x in want.split("|")]:
                 raise FormatError(f"{tag}: element code {e.code}")
             dt = ELEMENTS[e.code]
@@ -1085,6 +1295,8 @@ class NgramReader(NwmReader):
         rows = a["ROWS"].astype(np.int64)
         counts = self.full_counts()
         row_of = np.repeat(np.arange(n + 3), np.diff(rows))
+        if self.version == (1, 6):
+            self._expand_ngram_16(rows)
         # §7.13: HIST = row sums + dropped mass; HDRI/HDRV sparse
         hdri = a["HDRI"].astype(np.int64)
         if len(hdri) != len(a["HDRV"]) or np.any(np.diff(hdri) <= 0) or np.any(hdri >= n + 3) or np.any(a["HDRV"] < 1):
@@ -1105,33 +1317,67 @@ class NgramReader(NwmReader):
         if self.kind[1] == 3:
             self._read_trigrams()
 
+    def level_values(self, packed: str, codebook: str, rest: str, count: int) -> np.ndarray:
+        """The stored values of a quantised level: §7.17 (version 1), §7.18 (version 2)."""
+        a = self.a
+        assert self.q is not None
+        if self.quant_version == 2:
+            return quant2_values(self.raw(packed), a[codebook], self.raw(rest), self.q, count)
+        if len(a[rest]):
+            raise FormatError(f"{rest} not empty")
+        return quant_values(a[packed], a[codebook], self.q, count)
+
+    def _expand_ngram_16(self, rows: np.ndarray) -> None:
+        """§7.18: HIST, HDRI/HDRV, HN13 (and TDRI/TDRV) of a 1.6 file from its sequences;
+        the checks of §7.11–7.16 then run on them. META dropped_contexts gives D₂ (and D₃)."""
+        a, n, m = self.a, self.n, self.meta
+        d = m.get("dropped_contexts")
+        if not (isinstance(d, list) and len(d) == m["order"] - 1 and all(type(x) is int for x in d)
+                and 0 <= d[0] <= n + 3 and (len(d) == 1 or 0 <= d[1] <= m["bigrams"])):
+            raise FormatError(f"META dropped_contexts = {d!r}")
+        a["HIST"] = self.prefix_sums("HSE", n + 3)
+        a["HDRI"] = np.array(self.ef("HDI", d[0], strict=True), dtype=np.int64)
+        a["HDRV"] = self.prefix_sums("HDV", d[0], positive=True)
+        if "N1EH" in a:  # N₁, N₂ per row; N₃₊ = row length − N₁ − N₂
+            n1, n2 = self.prefix_sums("N1E", n + 3), self.prefix_sums("N2E", n + 3)
+            n3 = np.diff(rows) - n1 - n2
+            if np.any(n3 < 0):
+                raise FormatError("N1E/N2E count more entries than a row has")
+            a["HN13"] = np.column_stack([n1, n2, n3]).reshape(-1)
+        if "TDIH" in a:
+            a["TDRI"] = np.array(self.ef("TDI", d[1], strict=True), dtype=np.int64)
+            a["TDRV"] = self.prefix_sums("TDV", d[1], positive=True)
+
     def _read_trigrams(self) -> None:
         a, n, m = self.a, self.n, self.meta
         c, t = m["trigram_contexts"], m["trigrams"]
         if m["trigram_summary_min"] != SUMMARY_MIN:
             raise FormatError("trigram_summary_min")
         b = m["bigrams"]
-        # §7.14: a context is a bigram entry; TLEN (escapes as §7.12) gives its number of trigrams
-        lens = a["TLEN"].astype(np.int64)
-        tlei = a["TLEI"].astype(np.int64)
-        if len(lens) != b or not np.array_equal(np.flatnonzero(lens == ESCAPE), tlei) or len(a["TLEV"]) != len(tlei):
-            raise FormatError("TLEN/TLEI/TLEV")
-        if np.any(a["TLEV"] < ESCAPE):
-            raise FormatError("TLEV")
-        lens[tlei] = a["TLEV"]
+        if self.version == (1, 6):
+            all_starts, lens = self._trigram_lists_16(b, t)
+        else:
+            # §7.14: a context is a bigram entry; TLEN (escapes as §7.12) gives its number of trigrams
+            lens = a["TLEN"].astype(np.int64)
+            tlei = a["TLEI"].astype(np.int64)
+            if len(lens) != b or not np.array_equal(np.flatnonzero(lens == ESCAPE), tlei) or len(a["TLEV"]) != len(tlei):
+                raise FormatError("TLEN/TLEI/TLEV")
+            if np.any(a["TLEV"] < ESCAPE):
+                raise FormatError("TLEV")
+            lens[tlei] = a["TLEV"]
+            all_starts = np.concatenate([[0], np.cumsum(lens)])
+            if len(a["TCTB"]) != b // 16 + 1 or not np.array_equal(a["TCTB"], all_starts[: b + 1 : 16]) or all_starts[-1] != t:
+                raise FormatError("TCTB")
         self.lengths = lens
-        all_starts = np.concatenate([[0], np.cumsum(lens)])
-        if len(a["TCTB"]) != b // 16 + 1 or not np.array_equal(a["TCTB"], all_starts[: b + 1 : 16]) or all_starts[-1] != t:
-            raise FormatError("TCTB")
         self.all_starts = all_starts
         self.ctx_entry = np.flatnonzero(lens)  # the bigram entry of each context, in order
         if len(self.ctx_entry) != c:
             raise FormatError("trigram_contexts")
         self.starts = np.concatenate([all_starts[self.ctx_entry], [t]])
-        if self.q is not None:  # §7.17: codes into the trigram codebook
-            if len(a["TBGC"]) or len(a["TSUC"]) != t:
-                raise FormatError("TBGC not empty, or TSUC")
-            val = quant_values(a["TVAL"], a["TBGI"], self.q, t)
+        if self.q is not None:  # §7.17, §7.18: codes into the trigram codebook
+            if len(a["TSUC"]) != t:
+                raise FormatError("TSUC")
+            val = self.level_values("TVAL", "TBGI", "TBGC", t)
         else:  # §7.12: the exact codec
             val = a["TVAL"].astype(np.int64)
             tbgi = a["TBGI"].astype(np.int64)
@@ -1156,13 +1402,40 @@ class NgramReader(NwmReader):
             if tlnv[i].tolist() != want:
                 raise FormatError("TLNV")
         tdri = a["TDRI"].astype(np.int64)
-        if len(tdri) != len(a["TDRV"]) or np.any(np.diff(tdri) <= 0) or np.any(lens[tdri] == 0) or np.any(a["TDRV"] < 1):
+        if len(tdri) != len(a["TDRV"]) or np.any(np.diff(tdri) <= 0) or np.any(tdri >= b) or np.any(lens[tdri[tdri < b]] == 0) \
+                or np.any(a["TDRV"] < 1):
             raise FormatError("TDRI/TDRV")
         self.dropped3 = np.zeros(b, dtype=np.int64)  # by bigram entry
         self.dropped3[tdri] = a["TDRV"]
 
+    def _trigram_lists_16(self, b: int, t: int) -> tuple[np.ndarray, np.ndarray]:
+        """§7.18: start(0 … b) from TPTH/TPTB, and TSUC rebuilt from the remapped successors
+        of TEFH/TEFB (x = Y − B_i, position = SUCC[ROWS[v] + x]); returns (starts, lengths)."""
+        a, n = self.a, self.n
+        starts = np.array(self.ef("TPT", b + 1, strict=False), dtype=np.int64)
+        if starts[0] != 0 or starts[-1] != t:
+            raise FormatError("TPT does not run from 0 to t")
+        y = self.ef("TEF", t, strict=True)
+        rows, succ = a["ROWS"], a["SUCC"]
+        tsuc = np.zeros(t, dtype=np.int64)
+        self.remapped: list[tuple[int, int, list[int]]] = []  # (bigram entry i, B_i, [x …]) per context (§10.9)
+        for i in range(b):
+            s, e = int(starts[i]), int(starts[i + 1])
+            if s == e:
+                continue
+            base = 0 if s == 0 else y[s - 1] + 1
+            v = int(a["ALPH"][succ[i]])  # the context (u, v) is bigram entry i: v is its successor
+            xs = [y[j] - base for j in range(s, e)]
+            length = int(rows[v + 1] - rows[v])
+            if min(xs) < 0 or max(xs) >= length:
+                raise FormatError(f"remapped successor outside the row of {v}")
+            tsuc[s:e] = succ[int(rows[v]) + np.array(xs)]
+            self.remapped.append((i, base, xs))
+        a["TSUC"] = tsuc
+        return starts, np.diff(starts)
+
     def full_counts(self) -> np.ndarray:
-        if self.version == (1, 5):
+        if self.coded:
             return self._counts  # §7.17: the stored (decoded) values
         return super().full_counts()
 
@@ -1395,7 +1668,7 @@ def _exact_twin(tmp_path: Path, smoothing: str, order: int, wide: list[str]) -> 
 def test_worked_quantised_example(tmp_path: Path) -> None:
     # §10.8: retrain the example, compare the quoted arrays, the bit arithmetic and the hand computation
     text = DOC.read_text(encoding="utf-8")
-    part = text[text.index("### 10.8") : text.index("## 11.")]
+    part = text[text.index("### 10.8") : text.index("### 10.9")]
     quoted = {m.group(1): [int(x) for x in m.group(2).split(",") if x.strip()]
               for m in re.finditer(r"^([A-Z0-9]{4}) = \[([^\]]*)\]$", part, re.M)}  # fmt: skip
     assert set(quoted) == {"CNTS", "BIGI", "BIGC", "HIST"}
@@ -1422,3 +1695,757 @@ def test_worked_quantised_example(tmp_path: Path) -> None:
     stream = sum(c << (5 * i) for i, c in enumerate(codes)).to_bytes(4, "little")
     assert ((stream[1] + 256 * stream[2]) >> 7) & 31 == 22
     assert quant_values(np.frombuffer(stream, dtype=np.uint8), np.arange(1, 33, dtype=np.uint32), 5, 5).tolist() == [c + 1 for c in codes]
+
+
+# ---------------------------------------------------------------------------------------
+# Format 1.6 (§7.18): compressed successor lists, read by the reader above (ef_decode).
+
+
+def file_sections(path: str | Path) -> tuple[int, list[tuple[str, int, bytes]]]:
+    """(minor version, [(tag, element code, bytes)]) of a file, in table order (§3, §4)."""
+    data = Path(path).read_bytes()
+    _, _, minor, count, *_ = HEADER.unpack_from(data, 0)
+    out = []
+    for i in range(count):
+        tag, code, _, off, length, _, _ = ENTRY.unpack_from(data, HEADER.size + i * ENTRY.size)
+        out.append((tag.decode("ascii"), code, data[off : off + length]))
+    return minor, out
+
+
+def write_file(minor: int, sections: list[tuple[str, int, bytes]]) -> bytes:
+    """§11 and §2–4: lay ``sections`` out from offset 32 + 32·S, each padded to 8 bytes, with
+    every CRC (used to craft damaged files whose checksums are right)."""
+    table_end = HEADER.size + ENTRY.size * len(sections)
+    body, table, off = b"", b"", table_end
+    for tag, code, data in sections:
+        table += ENTRY.pack(tag.encode("ascii"), code, b"\0\0\0", off, len(data), zlib.crc32(data), b"\0" * 4)
+        padded = data + bytes(-len(data) % 8)
+        body += padded
+        off += len(padded)
+    head = HEADER.pack(MAGIC, 1, minor, len(sections), off, zlib.crc32(table), 0)[:28]
+    return head + struct.pack("<I", zlib.crc32(head)) + table + body
+
+
+def _doc_part(start: str, end: str) -> str:
+    text = DOC.read_text(encoding="utf-8")
+    return text[text.index(start) : text.index(end)]
+
+
+def _bits(stream: bytes, start: int, stop: int) -> list[int]:
+    """§7.18 (as §7.17): stream bit p is bit (p mod 8) of byte ⌊p/8⌋."""
+    return [(stream[p // 8] >> (p % 8)) & 1 for p in range(start, stop)]
+
+
+SEQUENCES_16 = ("UNE", "RWE", "SEF", "HSE", "HDI", "HDV", "N1E", "N2E", "TPT", "TEF", "TDI", "TDV")  # §10.9's file
+REPLACED_14 = {"IDTK", "APOS", "UNIG", "ROWS", "SUCC", "HIST", "HDRI", "HDRV", "HN13",
+               "TCTB", "TLEN", "TLEI", "TLEV", "TSUC", "TDRI", "TDRV"}  # fmt: skip
+
+
+def _ones(stream: bytes, stop: int) -> list[int]:
+    return [q for q, b in enumerate(_bits(stream, 0, stop)) if b]
+
+
+def test_worked_compact_example(tmp_path: Path) -> None:
+    # §10.9: retrain §10.7's model with compact=True, compare the quoted header, table,
+    # sections, bit strings, decoded sequences and the hand decodes with the file
+    part = _doc_part("### 10.9", "## 11.")
+    msgs = ["I am Sam.", "Sam I am.", "I do not like green eggs and ham."]
+    path, plain = tmp_path / "c.nwm", tmp_path / "p.nwm"
+    nextword.train_texts(msgs, path, smoothing="kn", order=3, min_count=1, compact=True)
+    nextword.train_texts(msgs, plain, smoothing="kn", order=3, min_count=1)
+    data = path.read_bytes()
+    (want_head,) = re.findall(r"^compact-header-hex: ([0-9a-f]{64})$", part, re.M)
+    assert data[:32].hex() == want_head, f"regenerate docs/FORMAT.md §10.9 (new header: {data[:32].hex()})"
+    assert len(data) == 7224 and plain.stat().st_size == 7016  # quoted in the text
+    r, p = NgramReader(path), NgramReader(plain)
+    assert r.version == (1, 6) and p.version == (1, 4)
+    assert r.meta["codec"] == {"name": "exact", "version": 1} and r.meta["successors"] == SUCCESSORS_16
+    # the section table, row by row
+    rows = re.findall(r"^\| `(0x[0-9a-f]+)` \| `(\w{4})` \| (\d) \((\w+)\) \| `(0x[0-9a-f]+)` \((\d+)\) \| (\d+) \| `([0-9a-f]{8})` \| (\d+) \|",
+                      part, re.M)  # fmt: skip
+    assert len(rows) == len(r.entries) == 51 and len(p.entries) == 43
+    ends = [e.offset + e.length for e in r.entries]
+    nxt = [e.offset for e in r.entries[1:]] + [len(data)]
+    for i, (row, e) in enumerate(zip(rows, r.entries)):
+        at, tag, code, _, off, off_dec, length, crc, pad = row
+        assert (int(at, 16), tag, int(code), int(off, 16), int(off_dec), int(length), int(crc, 16), int(pad)) == (
+            32 + 32 * i, e.tag, e.code, e.offset, e.offset, e.length, e.crc, nxt[i] - ends[i]), tag
+    new = {name + s for name in SEQUENCES_16 for s in "HB"}
+    assert set(r.sections) == set(p.sections) - REPLACED_14 | new and len(new) == 24 and len(REPLACED_14) == 16
+    for tag in set(r.sections) - new - {"META"}:  # "every other section holds the same bytes"
+        assert r.raw(tag) == p.raw(tag), tag
+    extra = bytes.fromhex("aa73756363657373 6f7273 82a46e616d65a26566a776657273696f6e01")
+    extra2 = b"\xb0dropped_contexts\x92\x00\x00"
+    assert len(extra) == 29 and len(extra2) == 20
+    assert len(r.raw("META")) == len(p.raw("META")) + 49 == 773 and extra in r.raw("META") and extra2 in r.raw("META")
+    assert r.meta["dropped_contexts"] == [0, 0]
+    assert (r.meta["trigram_skyband_min"], p.meta["trigram_skyband_min"]) == (r.meta["skyband_min"], 24) == (64, 24)
+    skip = {"successors", "dropped_contexts", "trigram_skyband_min"}
+    assert {k: v for k, v in r.meta.items() if k not in skip} == {k: v for k, v in p.meta.items() if k not in skip}
+    # the sequence table: N, H, r₀, ⌊r₀/m₀⌋, ℓ₀, the size sum and the stream's bytes
+    counts = dict(zip(SEQUENCES_16, [r.n + 3, r.n + 4, 15, r.n + 4, 0, 1, r.n + 4, r.n + 4, 16, 14, 0, 1]))
+    table = re.findall(r"^\| `(\w{3})` \([^|]*\) \| (\d+) \| ([0-9, ]+) \|([^|]*)\|([^|]*)\|([^|]*)\|([^|]*)\| (\d+) \+ 8 \|$",
+                       part, re.M)  # fmt: skip
+    assert [t[0] for t in table] == list(SEQUENCES_16)
+    for name, count, head_s, r0, quot, low, size, nbytes in table:
+        h = r.a[name + "H"].tolist()
+        assert int(count) == counts[name] and [int(x) for x in head_s.split(",")] == h, name
+        assert len(r.raw(name + "B")) == int(nbytes) + EF_PAD == -(-h[-1] // 8) + EF_PAD, name
+        if counts[name]:
+            rr, m = h[2] - h[0], counts[name]
+            assert (int(r0), int(quot), int(low)) == (rr, rr // m, ef_low_width(rr, m)), name
+            terms = [int(x) for x in re.findall(r"\d+", size)]
+            lw = ef_low_width(rr, m)
+            assert terms == [m * lw, rr >> lw, m, h[3]], name
+        else:
+            assert not (r0 + quot + low + size).strip() and h == [0, 0], name
+    # the quoted sections: headers as numbers, streams as hex bytes
+    block = re.search(r"^compact-sections:\n(.*?)^```", part, re.M | re.S)
+    assert block
+    quoted_lists = dict(re.findall(r"^(\w{4}) = \[([0-9, ]*)\]$", block.group(1), re.M))
+    quoted_hex = dict(re.findall(r"^(\w{4}): ([0-9a-f ]+)$", block.group(1), re.M))
+    assert set(quoted_lists) == {s + "H" for s in SEQUENCES_16} and set(quoted_hex) == {s + "B" for s in SEQUENCES_16}
+    for tag, values in quoted_lists.items():
+        assert r.a[tag].tolist() == [int(x) for x in values.split(",")], tag
+    for tag, hexes in quoted_hex.items():
+        assert r.raw(tag) == bytes.fromhex(hexes), tag
+    # the bit strings: low parts in groups of ℓ, then the high region, from bit 0
+    strings = re.findall(r"^(\w{3})?\s+(low|high)\s+([01 ]+)$", part, re.M)
+    shown: dict[str, str] = {}
+    name = ""
+    for seq, kind, bits in strings:
+        name = seq or name
+        shown[name] = shown.get(name, "") + bits.replace(" ", "")
+    assert set(shown) == {"UNE", "RWE", "SEF", "HSE", "N1E", "N2E", "TPT", "TEF"}
+    for name in shown:
+        h = r.a[name + "H"].tolist()
+        assert shown[name] == "".join(map(str, _bits(r.raw(name + "B"), 0, h[3]))), name
+    for name in ("HDV", "TDV"):  # "the single high bits 10"
+        assert "".join(map(str, _bits(r.raw(name + "B"), 0, r.a[name + "H"][3]))) == "10"
+    # decoded sequences equal §10.7's arrays
+    rows_q = [0, 2, 4, 6, 7, 8, 9, 10, 11, 12, 13, 13, 13, 15]
+    assert r.ef("RWE", 14, strict=False) == rows_q == p.a["ROWS"].tolist()
+    y2 = [0, 2, 18, 22, 33, 34, 41, 56, 61, 75, 94, 100, 115, 150, 153]
+    assert r.ef("SEF", 15, strict=True) == y2
+    assert r.a["SUCC"].tolist() == [0, 2, 6, 10, 9, 10, 5, 8, 1, 3, 10, 4, 7, 6, 9] == p.a["SUCC"].tolist()
+    une = [0, 2, 4, 5, 6, 7, 8, 9, 10, 11, 12, 15, 15]
+    assert r.ef("UNE", 13, strict=False) == une and une[-1] == r.total
+    assert r.a["UNIG"].tolist() == [2, 2, 1, 1, 1, 1, 1, 1, 1, 1, 3, 0] == p.a["UNIG"].tolist() == np.diff(une).tolist()
+    hse = [0, 3, 5, 7, 8, 9, 10, 11, 12, 13, 14, 14, 14, 17]
+    assert r.ef("HSE", 14, strict=False) == hse
+    assert r.a["HIST"].tolist() == [3, 2, 2, 1, 1, 1, 1, 1, 1, 1, 0, 0, 3] == p.a["HIST"].tolist() == np.diff(hse).tolist()
+    starts = [0, 2, 3, 4, 4, 5, 5, 6, 7, 8, 9, 9, 10, 11, 13, 14]
+    assert r.ef("TPT", 16, strict=False) == starts and np.diff(starts).tolist() == p.a["TLEN"].tolist()
+    remapped = _doc_arrays("compact-remapped")
+    assert r.ef("TEF", 14, strict=True) == remapped["Y3"]
+    assert [i for i, _, _ in r.remapped] == remapped["CTX"]
+    assert [base for _, base, _ in r.remapped] == remapped["BASE"]
+    assert [x for _, _, xs in r.remapped for x in xs] == remapped["X"]
+    assert r.a["TSUC"].tolist() == remapped["TSUC"] == p.a["TSUC"].tolist()
+    for tag in ("IDTK", "APOS", "HN13", "HDRI", "HDRV", "TDRI", "TDRV"):
+        assert r.a[tag].tolist() == p.a[tag].tolist(), tag
+    assert r.ef("HDI", 0, strict=True) == r.ef("TDI", 0, strict=True) == [] and r.ef("HDV", 1, strict=True) == [0]
+    # the hand decodes of the text
+    sef = r.raw("SEFB")
+    low13 = sum(b << j for j, b in enumerate(_bits(sef, 39, 42)))
+    ones = [q for q, b in enumerate(_bits(sef, 45, 79)) if b]
+    assert (low13, ones) == (6, [0, 1, 4, 5, 8, 9, 11, 14, 15, 18, 21, 23, 26, 31, 33])
+    assert ones[13] - 13 == 18 and 18 * 2**3 + 6 == 150 == y2[13] and 150 - 12 * (r.n + 2) == 6 == r.a["APOS"][0]
+    assert _ones(r.raw("RWEB"), 30)[13] == 28
+    une_ones = _ones(r.raw("UNEB"), 29)
+    assert une_ones[:2] == [0, 3] and une_ones[10:12] == [22, 26] and (26 - 11) - (22 - 10) == 3 == r.a["UNIG"][10]
+    assert _ones(r.raw("HSEB"), 32)[12:] == [26, 30] and (30 - 13) - (26 - 12) == 3 == r.a["HIST"][12]
+    assert _ones(r.raw("HSEB"), 32)[2:4] == [7, 10] and (10 - 3) - (7 - 2) == 2 == r.a["HIST"][2]
+    n1, n2 = _ones(r.raw("N1EB"), 28), _ones(r.raw("N2EB"), 17)
+    assert n1[:2] == n2[:2] == [0, 2] and n1[12:] == [24, 26] and n2[12:] == [13, 15]
+    assert r.a["HN13"][[0, 1, 2, 6, 7, 8, 36, 37, 38]].tolist() == [1, 1, 0, 2, 0, 0, 1, 1, 0]
+    tpt_ones = _ones(r.raw("TPTB"), 31)
+    assert tpt_ones[13:] == [24, 27, 29]
+    tef_ones = _ones(r.raw("TEFB"), 29)
+    assert tef_ones[8:] == [17, 19, 21, 23, 25, 27]
+    # P(sam | i am), and the library reads the same file
+    assert r.prob3((0, 2), 1) == p.prob3((0, 2), 1) == pytest.approx(329 / 918, rel=1e-12)
+    model = nextword.load(path)
+    assert model.format_version == (1, 6)
+    assert [(s.word, round(s.prob, 6)) for s in model.suggest("I am ", 3)] == [("Sam", 0.358388), ("I", 0.049564), ("am", 0.024074)]
+    # the same model with quantize=2: the quant codec version 2 (§7.18), by hand
+    qpath = tmp_path / "q.nwm"
+    nextword.train_texts(msgs, qpath, smoothing="kn", order=3, min_count=1, quantize=2, compact=True)
+    qdata = qpath.read_bytes()
+    (want_q,) = re.findall(r"^compact-quant-header-hex: ([0-9a-f]{64})$", part, re.M)
+    assert qdata[:32].hex() == want_q, f"regenerate docs/FORMAT.md §10.9 (new header: {qdata[:32].hex()})"
+    rq = NgramReader(qpath)
+    assert len(qdata) == 7368 and len(rq.entries) == 51
+    assert rq.meta["codec"] == {"name": "quant", "version": 2, "bits": 2} and rq.quant_version == 2
+    values = {"CNTS", "BIGI", "BIGC", "TVAL", "TBGI", "TBGC"}
+    assert [e.tag for e in rq.entries] == [e.tag for e in r.entries]
+    for tag in set(rq.sections) - values - {"META"}:
+        assert rq.raw(tag) == r.raw(tag), tag
+    qblock = re.search(r"^compact-quant-sections:\n(.*?)^```", part, re.M | re.S)
+    assert qblock
+    for tag, hexes, zeros in re.findall(r"^(\w{4}): ([0-9a-f ]+?) \+ (\d+) × 00$", qblock.group(1), re.M):
+        assert rq.raw(tag) == bytes.fromhex(hexes) + bytes(int(zeros)) and len(rq.raw(tag)) == ONES_BLOCK_BYTES, tag
+    qlists = dict(re.findall(r"^(\w{4}) = \[([0-9, ]*)\]$", qblock.group(1), re.M))
+    assert set(qlists) == {"BIGI", "BIGC", "TBGI", "TBGC"}
+    for tag, vals in qlists.items():
+        assert rq.a[tag].tolist() == [int(x) for x in vals.split(",") if x.strip()], tag
+    bitmap = rq.raw("CNTS")
+    assert struct.unpack_from("<I", bitmap, 0)[0] == 0 and (bitmap[4], bitmap[5]) == (0xFE, 0x5F)
+    set_before_13 = sum(_bits(bitmap[4:], 0, 13))
+    assert _bits(bitmap[4:], 13, 14) == [0] and set_before_13 == 12 and 13 - 0 - set_before_13 == 1
+    code1 = sum(b << j for j, b in enumerate(_bits(rq.raw("BIGC"), 2, 4)))
+    assert code1 == 1 and rq.a["BIGI"][code1] == 2 == rq.full_counts()[13] == r.full_counts()[13]
+    assert np.array_equal(rq.full_counts(), r.full_counts()) and np.array_equal(rq.tval, r.tval)  # without loss
+    assert rq.full_counts().tolist() == [2] + [1] * 12 + [2, 1]
+    assert rq.prob3((0, 2), 1) == pytest.approx(329 / 918, rel=1e-12)
+    assert nextword.load(qpath).suggest("I am ", 3) == model.suggest("I am ", 3)
+
+
+COMPACT_KINDS = [("jm", 2, None), ("kn", 2, 5), ("kn", 3, None), ("kn", 3, 4)]
+
+
+@pytest.mark.parametrize("smoothing,order,bits", COMPACT_KINDS)
+def test_compact_files_answer_like_their_plain_twins(tmp_path: Path, smoothing: str, order: int, bits: int | None) -> None:
+    # §7.18: "the same model as a 1.4 or 1.5 file of the same kind": the doc's reader
+    # decodes the sequences into the arrays of the plain file, and the reader's and the
+    # library's probabilities and rankings on the 1.6 file equal those on the plain one
+    wide = [f"Of the {w}." for w in _syllable_words(70)]
+    opts = dict(smoothing=smoothing, order=order, min_count=1, skyband_min=4, skyband_k=3, quantize=bits)
+    path, twin = tmp_path / "c.nwm", tmp_path / "p.nwm"
+    nextword.train_texts(REAL + wide, path, compact=True, **opts)  # type: ignore[arg-type]
+    nextword.train_texts(REAL + wide, twin, **opts)  # type: ignore[arg-type]
+    r, model, plain = NgramReader(path), nextword.load(path), nextword.load(twin)
+    assert r.version == model.format_version == (1, 6) and r.kind == (smoothing, order) and r.q == bits
+    plain_minor = 0 if (smoothing, order, bits) == ("jm", 2, None) else 4 if bits is None else 5
+    assert plain.format_version == (1, plain_minor)
+    assert len(r.a["RWEH"]) > 4 and len(r.a["SEFH"]) > 4  # several chunks
+    rp = NwmReader(twin) if plain_minor == 0 else NgramReader(twin)
+    for tag in ("ROWS", "SUCC", "IDTK", "APOS", *(("HN13",) if smoothing == "kn" else ()), *(("TSUC",) if order == 3 else ())):
+        assert r.a[tag].tolist() == rp.a[tag].tolist(), tag
+    assert np.array_equal(r.full_counts(), rp.full_counts())
+    if order == 3:
+        assert len(r.a["TEFH"]) > 4 and r.check_trigram_bands() > 0
+        assert np.array_equal(r.lengths, rp.lengths) and np.array_equal(r.tval, rp.tval)  # type: ignore[attr-defined]
+    rng = random.Random(16)
+    words = [r.keys[i] for i in range(min(r.n, 60))]
+    ctxs = [["<s>"], ["i"], ["the"], ["of", "the"], ["<s>", "i"], ["i", "am"], ["<unk>", "<unk>"], ["the", "zzz"]]
+    ctxs += [[rng.choice(words), rng.choice(words)] for _ in range(5)]
+    for hist in ctxs:
+        ids = _ctx_ids(r, hist)
+        total = 0.0
+        for w in range(r.n + 2):
+            key = "</s>" if w == r.n else "<unk>" if w == r.n + 1 else r.keys[w]
+            got = r.prob3(ids, w)
+            if plain_minor:
+                assert got == rp.prob3(ids, w), (hist, key)  # type: ignore[attr-defined]
+            else:  # the 1.0 twin: §9.3, the same numbers by another formula
+                assert got == pytest.approx(rp.prob(ids[-1], w, rp.lam), rel=1e-12), (hist, key)
+            lib = model.prob_after(key, hist)
+            assert lib == plain.prob_after(key, hist), (hist, key)
+            assert lib == pytest.approx(got, rel=1e-12, abs=0), (hist, key)
+            total += got
+        assert total == pytest.approx(1.0, rel=1e-9)
+        for prefix in ["", "s", "t", "a", "re"]:
+            for k in (1, 3, 5):
+                got_rank = model.rank_after(hist, prefix, k)
+                assert got_rank == plain.rank_after(hist, prefix, k), (hist, prefix, k)
+                assert [w for w, _ in got_rank] == [w for w, _ in r.brute_rank(ids, prefix, k)], (hist, prefix, k)
+    for word, before in (("am", "i"), ("the", None), ("i", "<unk>"), ("zzz", "of")):
+        assert model.prob(word, before) == plain.prob(word, before)
+    for typed in ("", "I ", "I am ", "of the ", "of the b", "The assert st", "Sam I a"):
+        assert model.suggest(typed, 4) == plain.suggest(typed, 4), typed
+
+
+# §7.18 and the encoder nextword.succinct.ef_encode: any non-decreasing sequence (runs of
+# equal values, gaps from 0 to millions, 0 … 300 values: zero to five chunks)
+@st.composite
+def _gaps(draw: st.DrawFn) -> list[int]:
+    size = draw(st.integers(0, 300))  # drawn first, so that long (several-chunk) sequences are common
+    gap = st.one_of(st.just(0), st.integers(1, 3), st.integers(0, 1000), st.integers(0, 1 << 22))
+    return draw(st.lists(gap, min_size=size, max_size=size))
+
+
+@settings(max_examples=120, deadline=None)
+@given(start=st.integers(0, 1 << 20), gaps=_gaps())
+def test_the_doc_decoder_reads_the_library_encoder(start: int, gaps: list[int]) -> None:
+    from nextword.succinct import ef_encode  # the writer under test; the decoder is the doc's
+
+    values = list(itertools.accumulate(gaps, initial=start))[1:]
+    head, stream = ef_encode(np.array(values, dtype=np.int64))
+    strict = all(b > a for a, b in zip(values, values[1:]))
+    assert ef_decode(head.tolist(), bytes(stream), len(values), strict=strict) == values  # the doc, §7.18
+    # and §7.18 written the other way round gives the same bytes: the text fixes the layout
+    assert ef_encode_doc(values) == (head.tolist(), bytes(stream))
+
+
+@pytest.fixture(scope="module")
+def compact_kn3(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
+    """A KN trigram model of the real text as 1.6 (exact, and quant version 2), and as 1.4
+    and 1.5 (for the cases that need a plain file): every long sequence has several chunks."""
+    d = tmp_path_factory.mktemp("compact")
+    wide = [f"Of the {w}." for w in _syllable_words(70)]
+    out = {}
+    for name, extra in (("c", {"compact": True}), ("q", {"compact": True, "quantize": 4}), ("p14", {}), ("p15", {"quantize": 4})):
+        out[name] = d / f"{name}.nwm"
+        nextword.train_texts(REAL + wide, out[name], smoothing="kn", order=3, min_count=1, skyband_min=4, skyband_k=3,
+                             **extra)  # type: ignore[arg-type]
+    return out
+
+
+Sections = dict[str, list]  # tag -> [element code, bytes], in table order
+
+
+def _craft(src: Path, dst: Path, edit: Callable[[Sections, dict], int | None]) -> Path:
+    """A copy of ``src`` changed by ``edit`` (sections and META; it may return another
+    minor version), laid out again by §11 with every CRC right."""
+    minor, listed = file_sections(src)
+    secs: Sections = {tag: [code, data] for tag, code, data in listed}
+    meta = msgpack.unpackb(secs["META"][1], raw=False)
+    minor = edit(secs, meta) or minor
+    secs["META"][1] = msgpack.packb(meta, use_bin_type=True)
+    dst.write_bytes(write_file(minor, [(tag, code, data) for tag, (code, data) in secs.items()]))
+    return dst
+
+
+def _head(secs: Sections, name: str) -> list[int]:
+    code, data = secs[name + "H"]
+    return np.frombuffer(data, dtype="<u4" if code == 3 else "<u8").tolist()
+
+
+def _set_head(secs: Sections, name: str, head: list[int]) -> None:
+    secs[name + "H"] = [3, np.array(head, dtype="<u4").tobytes()]
+
+
+def _set_seq(secs: Sections, name: str, values: list[int]) -> None:
+    """Code ``values`` by §7.18 (a valid coding of a wrong sequence)."""
+    head, stream = ef_encode_doc(values)
+    _set_head(secs, name, head)
+    secs[name + "B"] = [1, stream]
+
+
+def _seq(secs: Sections, name: str, count: int) -> list[int]:
+    return ef_decode(_head(secs, name), secs[name + "B"][1], count, strict=False)
+
+
+def _flip(stream: bytes, p: int) -> bytes:
+    b = bytearray(stream)
+    b[p // 8] ^= 1 << (p % 8)
+    return bytes(b)
+
+
+def _chunk_parts(head: list[int], values: list[int], c: int) -> tuple[int, int, int, list[int], list[int]]:
+    """(m, ℓ, O_c, highs, lows) of chunk c (§7.18)."""
+    m = min(EF_CHUNK, len(values) - EF_CHUNK * c)
+    low = ef_low_width(head[2 * c + 2] - head[2 * c], m)
+    d = [y - head[2 * c] for y in values[EF_CHUNK * c : EF_CHUNK * c + m]]
+    return m, low, head[2 * c + 1], [x >> low for x in d], [x & ((1 << low) - 1) for x in d]
+
+
+def _set_bits(stream: bytes, start: int, width: int, value: int) -> bytes:
+    for j in range(width):
+        if ((stream[(start + j) // 8] >> ((start + j) % 8)) & 1) != (value >> j) & 1:
+            stream = _flip(stream, start + j)
+    return stream
+
+
+def _swap_lows(secs: Sections, name: str, count: int) -> None:
+    """Make the sequence decrease: swap the low parts of two neighbours with equal high parts."""
+    head, stream = _head(secs, name), secs[name + "B"][1]
+    values = _seq(secs, name, count)
+    for c in range(len(head) // 2 - 1):
+        m, low, off, highs, lows = _chunk_parts(head, values, c)
+        for k in range(m - 1):
+            if low and highs[k] == highs[k + 1] and lows[k] < lows[k + 1]:
+                stream = _set_bits(stream, off + k * low, low, lows[k + 1])
+                secs[name + "B"][1] = _set_bits(stream, off + (k + 1) * low, low, lows[k])
+                return
+    raise AssertionError(f"no two neighbours of {name} to swap")
+
+
+def _beyond_chunk(secs: Sections, name: str, count: int) -> int:
+    """Make the last value of a chunk decode above F_{c+1} (§7.18: it must be ≤ F_{c+1}); its index."""
+    head, stream = _head(secs, name), secs[name + "B"][1]
+    values = _seq(secs, name, count)
+    for c in range(len(head) // 2 - 1):
+        m, low, off, highs, lows = _chunk_parts(head, values, c)
+        r = head[2 * c + 2] - head[2 * c]
+        if low and r % (1 << low) < (1 << low) - 1:
+            region = off + m * low
+            stream = _flip(stream, region + highs[-1] + m - 1)  # the last value's high bit …
+            stream = _flip(stream, region + (r >> low) + m - 1)  # … moved to the region's end
+            secs[name + "B"][1] = _set_bits(stream, off + (m - 1) * low, low, (1 << low) - 1)
+            return EF_CHUNK * c + m - 1
+    raise AssertionError(f"no chunk of {name} to damage")
+
+
+def _history(r: NwmReader, v: int) -> str:
+    return "<s>" if v == r.n + 2 else "<unk>" if v == r.n + 1 else r.keys[v]
+
+
+def _ask_all(model: nextword.Model, hist: list[str], r: NwmReader) -> None:
+    for w in [*r.keys, "</s>", "<unk>"]:
+        model.prob_after(w, hist)
+    model.rank_after(hist, "", 5)
+
+
+def _pop(d: dict, key: str) -> None:
+    del d[key]
+
+
+def _pop_all(d: dict, *keys: str) -> None:
+    for key in keys:
+        del d[key]
+
+
+def _add_successors(secs: Sections, meta: dict) -> None:
+    meta["successors"] = dict(SUCCESSORS_16)
+
+
+def _h(name: str, change: Callable[[list[int]], None]) -> Callable[[Sections, dict], None]:
+    def edit(secs: Sections, meta: dict) -> None:
+        head = _head(secs, name)
+        change(head)
+        _set_head(secs, name, head)
+    return edit
+
+
+def _counts(meta: dict) -> dict[str, int]:
+    """N of every sequence (§7.18's table)."""
+    n, b = meta["n_words"], meta["bigrams"]
+    d2, d3 = meta["dropped_contexts"]
+    return {"RWE": n + 4, "SEF": b, "TPT": b + 1, "TEF": meta["trigrams"], "UNE": n + 3, "HSE": n + 4,
+            "N1E": n + 4, "N2E": n + 4, "HDI": d2, "HDV": d2 + 1, "TDI": d3, "TDV": d3 + 1}
+
+
+def _reseq(name: str, change: Callable[[list[int], dict], None]) -> Callable[[Sections, dict], None]:
+    def edit(secs: Sections, meta: dict) -> None:
+        values = _seq(secs, name, _counts(meta)[name])
+        change(values, meta)
+        _set_seq(secs, name, values)
+    return edit
+
+
+def _set(values: list[int], i: int, x: int) -> None:
+    values[i] = x
+
+
+def _past_end(secs: Sections, meta: dict) -> None:
+    for name in ("RWE", "SEF", "TPT", "TEF"):
+        end = _head(secs, name)[-1]
+        if end % 8:
+            secs[name + "B"][1] = _flip(secs[name + "B"][1], end)  # a bit of the last byte, after O_C
+            return
+    raise AssertionError("every stream ends on a byte boundary")
+
+
+def _retype(tag: str, code: int) -> Callable[[Sections, dict], None]:
+    def edit(secs: Sections, meta: dict) -> None:
+        secs[tag][0] = code
+    return edit
+
+
+def _n1_above_row(secs: Sections, meta: dict) -> None:
+    """N₁ of row 0 = its length + 1 (re-coded validly: only N₃₊ = length − N₁ − N₂ < 0 shows it)."""
+    rows = _seq(secs, "RWE", meta["n_words"] + 4)
+    cum = _seq(secs, "N1E", meta["n_words"] + 4)
+    x = np.diff(cum)
+    x[0] = rows[1] - rows[0] + 1
+    _set_seq(secs, "N1E", [0, *itertools.accumulate(x.tolist())])
+
+
+def _id_array(tag: str, i: int, value: Callable[[np.ndarray, dict], int]) -> Callable[[Sections, dict], None]:
+    def edit(s: Sections, meta: dict) -> None:
+        a = np.frombuffer(s[tag][1], dtype="<u2").copy()
+        a[i] = value(a, meta)
+        s[tag][1] = a.tobytes()
+    return edit
+
+
+def _dropped3(idx: int | None, cum: list[int]) -> Callable[[Sections, dict], None]:
+    """One trigram context with dropped mass: TDI = [idx] (None: b, past the last bigram entry), TDV = cum."""
+    def edit(secs: Sections, meta: dict) -> None:
+        meta["dropped_contexts"] = [meta["dropped_contexts"][0], 1]
+        _set_seq(secs, "TDI", [meta["bigrams"] if idx is None else idx])
+        _set_seq(secs, "TDV", cum)
+    return edit
+
+
+def _bitmap(edit: Callable[[bytearray, dict], None]) -> Callable[[Sections, dict], None]:
+    def run(secs: Sections, meta: dict) -> None:
+        b = bytearray(secs["CNTS"][1])
+        edit(b, meta)
+        secs["CNTS"][1] = bytes(b)
+    return run
+
+
+def _set_bit_after_n(b: bytearray, meta: dict) -> None:
+    j = meta["bigrams"] % ONES_BLOCK  # the first bit past the last n-gram (of the last block)
+    assert j, "the bigram level fills its last block"
+    b[len(b) - ONES_BLOCK_BYTES + 4 + j // 8] |= 1 << (j % 8)
+
+
+def _code_tail(secs: Sections, meta: dict) -> None:
+    """A bit after the last code of BIGC (the words' unused high bits)."""
+    w = np.frombuffer(secs["BIGC"][1], dtype="<u4").copy()
+    q = meta["codec"]["bits"]
+    bitmap = secs["CNTS"][1]
+    blocks = len(bitmap) // ONES_BLOCK_BYTES
+    last = bitmap[(blocks - 1) * ONES_BLOCK_BYTES :]
+    ones = struct.unpack_from("<I", last, 0)[0] + sum(bin(x).count("1") for x in last[4:])
+    tail = (meta["bigrams"] - ones) * q % 32
+    assert tail, "the codes fill their last word"
+    w[-1] |= np.uint32(1 << tail)
+    secs["BIGC"][1] = w.tobytes()
+
+
+# docs/FORMAT.md §8 items 19–26 (format 1.6, checks on every load): one damaged file per
+# check, CRCs fixed; (source file, edit, the library's message). A plain load refuses it.
+LOAD_CASES: dict[str, tuple[str, Callable[[Sections, dict], int | None], str]] = {
+    "19 successors missing": ("c", lambda s, m: _pop(m, "successors"), "'successors' belongs to format 1.6"),
+    "19 successors version 2": ("c", lambda s, m: m.update(successors={"name": "ef", "version": 2}), "unknown successor layout"),
+    "19 successors name": ("c", lambda s, m: m.update(successors={"name": "pef", "version": 1}), "unknown successor layout"),
+    "19 successors in 1.4": ("p14", _add_successors, "'successors' belongs to format 1.6"),
+    "19 successors in 1.5": ("p15", _add_successors, "'successors' belongs to format 1.6"),
+    "19 dropped_contexts missing": ("c", lambda s, m: _pop(m, "dropped_contexts"), "'dropped_contexts' is invalid"),
+    "19 dropped_contexts of order 2": ("c", lambda s, m: m.update(dropped_contexts=[0]), "'dropped_contexts' is invalid"),
+    "19 D2 above n+3": ("c", lambda s, m: m.update(dropped_contexts=[m["n_words"] + 4, 0]), "'dropped_contexts' is invalid"),
+    "19 D3 above b": ("c", lambda s, m: m.update(dropped_contexts=[0, m["bigrams"] + 1]), "'dropped_contexts' is invalid"),
+    "20 a sequence missing": ("c", lambda s, m: _pop(s, "SEFB"), "missing sections SEFB"),
+    "20 N1E missing": ("c", lambda s, m: _pop_all(s, "N1EH", "N1EB"), "missing sections"),
+    "20 HN13 in a 1.6 file": ("c", lambda s, m: s.update(HN13=[3, bytes(12 * (m["n_words"] + 3))]), "unexpected sections"),
+    "20 HIST in a 1.6 file": ("c", lambda s, m: s.update(HIST=[3, bytes(4 * (m["n_words"] + 3))]), "unexpected sections"),
+    "20 TSUC in a 1.6 file": ("c", lambda s, m: s.update(TSUC=[2, bytes(2 * m["trigrams"])]), "unexpected sections"),
+    "20 stream not u8": ("c", _retype("TEFB", 2), "TEFB has element type"),
+    "20 header not u32/u64": ("c", _retype("SEFH", 2), "SEFH has element type"),
+    "20 prefix-sum header not u32/u64": ("c", _retype("HSEH", 2), "HSEH has element type"),
+    "20 quant version 2 in a 1.5 file": ("p15", lambda s, m: m["codec"].update(version=2), "version 2 belongs to format 1.6"),
+    "22 RWE header entries": ("c", _h("RWE", lambda h: h.extend(h[-2:])), "RWEH/RWEB has .* header entries"),
+    "22 SEF header entries": ("c", _h("SEF", lambda h: h.extend(h[-2:])), "SEFH/SEFB has .* header entries"),
+    "22 TPT header entries": ("c", _h("TPT", lambda h: h.extend(h[-2:])), "TPTH/TPTB has .* header entries"),
+    "22 TEF header entries": ("c", _h("TEF", lambda h: h.extend(h[-2:])), "TEFH/TEFB has .* header entries"),
+    "22 UNE header entries": ("c", _h("UNE", lambda h: h.extend(h[-2:])), "UNEH/UNEB has .* header entries"),
+    "22 TDV header entries": ("c", _h("TDV", lambda h: h.extend(h[-2:])), "TDVH/TDVB has .* header entries"),
+    "22 HDI of N = 0 ends above 0": ("c", _h("HDI", lambda h: _set(h, 0, 1)), "HDIH/HDIB (is empty but ends|chunk offsets)"),
+    "22 O0 not 0": ("c", _h("SEF", lambda h: _set(h, 1, 1)), "chunk offsets do not start at 0"),
+    "22 stream length": ("c", lambda s, m: s["SEFB"].__setitem__(1, s["SEFB"][1] + bytes(8)), r"SEFH/SEFB stream has \d+ bytes"),
+    "22 bit past the end": ("c", _past_end, "stream has bits set past its end"),
+    "22 padding": ("c", lambda s, m: s["RWEB"].__setitem__(1, s["RWEB"][1][:-1] + b"\x80"), "RWEH/RWEB stream padding"),
+    "22 TEF padding": ("c", lambda s, m: s["TEFB"].__setitem__(1, s["TEFB"][1][:-1] + b"\x80"), "TEFH/TEFB stream padding"),
+    "23 RWE O decreasing": ("c", _h("RWE", lambda h: _set(h, 3, h[5] + 1)), "RWEH/RWEB chunk offsets do not start at 0 and increase"),
+    "23 HSE F decreasing": ("c", _h("HSE", lambda h: _set(h, 2, h[4] + 1)), "HSEH/HSEB chunk first values are not increasing"),
+    "23 UNE chunk size": ("c", _h("UNE", lambda h: _set(h, 3, h[3] + 1)), r"UNEH/UNEB chunk 0 has \d+ bits, its values need"),
+    "23 N2E chunk size": ("c", _h("N2E", lambda h: _set(h, len(h) - 1, h[-1] + 1)), r"N2EH/N2EB chunk \d+ has \d+ bits"),
+    "23 HDV last chunk shorter than m": ("c", _h("HDV", lambda h: _set(h, len(h) - 2, h[-4])), "HDVH/HDVB chunk first values"),
+    "24 ROWS does not end at b": ("c", _reseq("RWE", lambda v, m: _set(v, -1, m["bigrams"] - 1)), "row starts are not increasing"),
+    "24 ROWS does not start at 0": ("c", _reseq("RWE", lambda v, m: _set(v, 0, 1)), "row starts are not increasing"),
+    "24 ROWS decreasing": ("c", lambda s, m: _swap_lows(s, "RWE", m["n_words"] + 4), "row starts are not increasing"),
+    "24 UNE not from 0": ("c", _reseq("UNE", lambda v, m: v.__setitem__(slice(None), [x + 1 for x in v])), "UNEH/UNEB do not hold prefix sums from 0"),
+    "24 HSE not from 0": ("c", _reseq("HSE", lambda v, m: v.__setitem__(slice(None), [x + 1 for x in v])), "HSEH/HSEB do not hold prefix sums from 0"),
+    "24 TPT does not start at 0": ("c", _reseq("TPT", lambda v, m: v.__setitem__(slice(None), [x + 1 for x in v])), "TPTH/TPTB do not run from 0"),
+    "24 TPT does not end at t": ("c", _reseq("TPT", lambda v, m: _set(v, -1, m["trigrams"] - 1)), "TPTH/TPTB do not run from 0"),
+    "24 SEF past the last row": ("c", _reseq("SEF", lambda v, m: _set(v, -1, (m["n_words"] + 3) * (m["n_words"] + 2))), "past the last row"),
+    "24 TDI past b": ("c", _dropped3(None, [0, 1]), "TDIH/TDVH do not index bigram entries"),
+    "24 TDV not from 0": ("c", _dropped3(0, [1, 2]), "TDIH/TDVH do not index bigram entries, or their sums do not start at 0"),
+    "25 TKID not a permutation": ("c", _id_array("TKID", 1, lambda a, m: int(a[0])), "TKID"),
+    "25 ALPH not a permutation": ("c", _id_array("ALPH", 0, lambda a, m: m["n_words"] + 2), "ALPH is not a valid permutation"),
+    "26 bitmap length": ("q", lambda s, m: s["CNTS"].__setitem__(1, s["CNTS"][1] + bytes(ONES_BLOCK_BYTES)), r"section CNTS holds \d+ bytes, expected"),
+    "26 first rank": ("q", _bitmap(lambda b, m: b.__setitem__(0, 1)), "ranks that do not start at 0"),
+    "26 bit after the last n-gram": ("q", _bitmap(_set_bit_after_n), "bits set after the last n-gram"),
+    "26 code section length": ("q", lambda s, m: s["BIGC"].__setitem__(1, s["BIGC"][1] + bytes(4)), r"section BIGC holds \d+ words, expected"),
+    "26 bits after the last code": ("q", _code_tail, "BIGC has non-zero bits after the last code"),
+    "26 codebook not increasing": ("q", lambda s, m: s["BIGI"].__setitem__(1, s["BIGI"][1][4:8] + s["BIGI"][1][4:]), "not a strictly increasing codebook"),
+}
+
+
+def test_the_crafting_writer_reproduces_the_file(compact_kn3: dict[str, Path], tmp_path: Path) -> None:
+    # §11 (and §2–4) rebuild the library's file byte for byte, so the damaged files below
+    # differ from it only by their edit
+    for name, src in compact_kn3.items():
+        assert _craft(src, tmp_path / f"{name}.nwm", lambda s, m: None).read_bytes() == src.read_bytes(), name
+
+
+@pytest.mark.parametrize("case", list(LOAD_CASES))
+def test_compact_load_checks(compact_kn3: dict[str, Path], tmp_path: Path, case: str) -> None:
+    src, edit, message = LOAD_CASES[case]
+    path = _craft(compact_kn3[src], tmp_path / "bad.nwm", edit)
+    with pytest.raises(nextword.ModelFormatError, match=message):
+        nextword.load(path)
+    with pytest.raises(FormatError):  # the doc's reader refuses it too
+        NgramReader(path)
+
+
+def test_compact_checksums(compact_kn3: dict[str, Path], tmp_path: Path) -> None:
+    # §8 item 21: the vocabulary-sized sequences are checksummed on every load, the
+    # n-gram-sized ones only with verify=True (a flipped stream bit keeps every header check)
+    data = compact_kn3["c"].read_bytes()
+    r = NgramReader(compact_kn3["c"])
+    on_load = ("RWEH", "RWEB", "UNEB", "HSEB", "N1EB", "N2EH", "HDVB", "HDIH")
+    for tag in (*on_load, "SEFB", "TPTB", "TEFB", "TDVB"):
+        b = bytearray(data)
+        b[r.sections[tag].offset] ^= 0x01  # bit 0 of the first byte (the first low or high bit)
+        path = tmp_path / f"{tag}.nwm"
+        path.write_bytes(bytes(b))
+        with pytest.raises(FormatError, match=f"{tag} CRC"):
+            NwmReader(path)
+        if tag in on_load:
+            with pytest.raises(nextword.ModelFormatError, match=f"section {tag} checksum"):
+                nextword.load(path)
+        else:
+            nextword.load(path).close()
+            with pytest.raises(nextword.ModelFormatError, match=f"section {tag} checksum"):
+                nextword.load(path, verify=True)
+
+
+def _entry_history(r: NgramReader, i: int) -> list[str]:
+    """The two-word history (u, v) of bigram entry i (§7.14: a trigram context is a bigram entry)."""
+    u = int(np.searchsorted(r.a["ROWS"], i, side="right")) - 1
+    return [_history(r, u), _history(r, int(r.a["ALPH"][r.a["SUCC"][i]]))]
+
+
+def _bad_position(secs: Sections, meta: dict, r: NgramReader) -> list[str]:
+    """The last entry of a word's row decodes to position n+2 (still below the next row's values)."""
+    n, rows, y = r.n, r.a["ROWS"].tolist(), _seq(secs, "SEF", meta["bigrams"])
+    for v in range(n):
+        last = rows[v + 1] - 1
+        if rows[v] <= last and last + 1 < len(y) and y[last + 1] > (v + 1) * (n + 2):
+            y[last] = (v + 1) * (n + 2)
+            _set_seq(secs, "SEF", y)
+            return [r.keys[v]]
+    raise AssertionError("no row to damage")
+
+
+def _bad_x(secs: Sections, meta: dict, r: NgramReader) -> list[str]:
+    """The last trigram successor of the last context gets x = the length of its row."""
+    i, base, xs = r.remapped[-1]
+    v = int(r.a["ALPH"][r.a["SUCC"][i]])
+    y = _seq(secs, "TEF", meta["trigrams"])
+    y[-1] = base + int(r.a["ROWS"][v + 1] - r.a["ROWS"][v])
+    _set_seq(secs, "TEF", y)
+    return _entry_history(r, i)
+
+
+def _bad_chunk(secs: Sections, meta: dict, r: NgramReader) -> list[str]:
+    i = _beyond_chunk(secs, "SEF", meta["bigrams"])
+    return [_history(r, int(np.searchsorted(r.a["ROWS"], i, side="right")) - 1)]
+
+
+def _bad_high_bits(secs: Sections, meta: dict, r: NgramReader) -> list[str]:
+    """Chunk 0 of SEF loses a set bit of its high region (m − 1 values left)."""
+    head, values = _head(secs, "SEF"), _seq(secs, "SEF", meta["bigrams"])
+    m, low, off, highs, _ = _chunk_parts(head, values, 0)
+    secs["SEFB"][1] = _flip(secs["SEFB"][1], off + m * low + highs[0])
+    return [r.keys[0]]
+
+
+def _header(name: str, change: Callable[[list[int]], None], hist: Callable[[NgramReader], list[str]]
+            ) -> Callable[[Sections, dict, NgramReader], list[str]]:
+    """A chunk header of an n-gram-sized sequence changed: §8 item 27 finds it when the chunk is decoded."""
+    def edit(secs: Sections, meta: dict, r: NgramReader) -> list[str]:
+        _h(name, change)(secs, meta)
+        return hist(r)
+    return edit
+
+
+def _first_context(r: NgramReader) -> list[str]:
+    return _entry_history(r, int(r.ctx_entry[0]))
+
+
+def _last_context(r: NgramReader) -> list[str]:
+    return _entry_history(r, int(r.ctx_entry[-1]))
+
+
+def _n3_below_zero(secs: Sections, meta: dict, r: NgramReader) -> list[str]:
+    _n1_above_row(secs, meta)
+    return [r.keys[0]]
+
+
+def _dropped_zero(secs: Sections, meta: dict, r: NgramReader) -> list[str]:
+    """The first trigram context gets a dropped mass of 0 (TDV prefix sums [0, 0]: not strict)."""
+    i = int(r.ctx_entry[0])
+    _dropped3(i, [0, 0])(secs, meta)
+    return _entry_history(r, i)
+
+
+# §7.18 / §8 items 27–28, checks when a chunk is decoded: a plain load opens the file, a
+# query that decodes the damaged chunk refuses it, and so does verify=True; (edit, message)
+DECODE_CASES: dict[str, tuple[Callable[[Sections, dict, NgramReader], list[str]], str]] = {
+    "27 SEF O decreasing": (_header("SEF", lambda h: _set(h, 3, h[5] + 1), lambda r: [r.keys[0]]), "does not decode to its values"),
+    "27 SEF chunk shorter than m": (_header("SEF", lambda h: _set(h, 2, h[0] + 63), lambda r: [r.keys[0]]), "does not decode to its values"),
+    "27 TPT F decreasing": (_header("TPT", lambda h: _set(h, 2, h[4] + 1), _first_context), "does not decode to its values"),
+    "27 TEF chunk shorter than m": (_header("TEF", lambda h: _set(h, 2, h[0] + 63), _first_context), "does not decode to its values"),
+    "27 TEF last chunk size": (_header("TEF", lambda h: _set(h, len(h) - 1, h[-1] + 1), _last_context), "does not decode to its values"),
+    "27 a value above F_c+1": (_bad_chunk, "does not decode to its values"),
+    "27 m_c - 1 high bits": (_bad_high_bits, "does not decode to its values"),
+    "28 a position past n+1": (_bad_position, "outside the positions"),
+    "28 an x past its row": (_bad_x, "outside the row of its last word"),
+    "28 N3+ below 0": (_n3_below_zero, "counts more entries than it has"),
+    "28 a dropped mass of 0": (_dropped_zero, "holds a value below 1|does not decode to its values"),
+}
+
+
+@pytest.mark.parametrize("case", list(DECODE_CASES))
+def test_compact_decode_checks(compact_kn3: dict[str, Path], tmp_path: Path, case: str) -> None:
+    edit, message = DECODE_CASES[case]
+    r = NgramReader(compact_kn3["c"])
+    hist: list[str] = []
+    path = _craft(compact_kn3["c"], tmp_path / "bad.nwm", lambda s, m: hist.extend(edit(s, m, r)))
+    model = nextword.load(path)  # the load checks pass: opening does not decode these values
+    with pytest.raises(nextword.ModelFormatError, match=message):
+        _ask_all(model, hist, r)
+    with pytest.raises(nextword.ModelFormatError):
+        nextword.load(path, verify=True)
+    with pytest.raises(FormatError):
+        NgramReader(path)
+
+
+def _quant_rank(secs: Sections, meta: dict) -> None:
+    """Block 1's rank one too high (the ones before it): seen only with verify=True."""
+    b = bytearray(secs["CNTS"][1])
+    at = ONES_BLOCK_BYTES  # block 1
+    b[at : at + 4] = struct.pack("<I", struct.unpack_from("<I", b, at)[0] + 1)
+    secs["CNTS"][1] = bytes(b)
+
+
+def _quant_code(secs: Sections, meta: dict) -> None:
+    """The first code of BIGC set to the codebook's length (past it), if the codebook has room."""
+    q, cb = meta["codec"]["bits"], np.frombuffer(secs["BIGI"][1], dtype="<u4")
+    assert len(cb) < 1 << q, "a full codebook"
+    w = np.frombuffer(secs["BIGC"][1], dtype="<u4").copy()
+    w[0] = (int(w[0]) & ~((1 << q) - 1)) | len(cb)
+    secs["BIGC"][1] = w.tobytes()
+
+
+def test_compact_quant_checks(tmp_path: Path) -> None:
+    # §7.18, the quant codec version 2: a middle block's rank and a code are checked with
+    # verify=True; a plain load opens the file (the last block's rank is checked on load,
+    # through M: test_compact_load_checks)
+    src = tmp_path / "q.nwm"
+    wide = [f"Of the {w}." for w in _syllable_words(400)]
+    nextword.train_texts(REAL + wide, src, smoothing="kn", order=3, min_count=1, quantize=4, compact=True)
+    r = NgramReader(src)
+    assert r.quant_version == 2 and len(r.raw("CNTS")) >= 3 * ONES_BLOCK_BYTES  # a middle block
+    for name, edit in (("rank", _quant_rank), ("code", _quant_code)):
+        path = _craft(src, tmp_path / f"{name}.nwm", edit)
+        nextword.load(path).close()
+        with pytest.raises(nextword.ModelFormatError, match="rank that is not the ones before it" if name == "rank" else "code past the codebook"):
+            nextword.load(path, verify=True)
+        with pytest.raises(FormatError):
+            NgramReader(path)
+
+
+def test_compact_headers_may_be_u64(compact_kn3: dict[str, Path], tmp_path: Path) -> None:
+    # §7.18: "…H (element type u32 or u64, declared in the section table)": the same file
+    # with every header widened to u64 is read by both readers with the same answers
+    def widen(secs: Sections, meta: dict) -> None:
+        for name in _counts(meta):
+            secs[name + "H"] = [4, np.array(_head(secs, name), dtype="<u8").tobytes()]
+
+    path = _craft(compact_kn3["c"], tmp_path / "wide.nwm", widen)
+    r, r32 = NgramReader(path), NgramReader(compact_kn3["c"])
+    assert r.sections["SEFH"].code == 4 and r.sections["SEFH"].length == 2 * r32.sections["SEFH"].length
+    for tag in ("ROWS", "SUCC", "TSUC"):
+        assert np.array_equal(r.a[tag], r32.a[tag]), tag
+    wide, narrow = nextword.load(path, verify=True), nextword.load(compact_kn3["c"])
+    for hist in (["<s>"], ["of", "the"], ["i", "am"], ["<s>", "i"]):
+        assert wide.rank_after(hist, "", 5) == narrow.rank_after(hist, "", 5)
+        assert [wide.prob_after(w, hist) for w in r.keys[:50]] == [narrow.prob_after(w, hist) for w in r.keys[:50]]
