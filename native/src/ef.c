@@ -154,6 +154,8 @@ int nw_ef_chunk(const nw_ef *e, uint64_t c, uint64_t vals[NW_EF_CHUNK], int *m) 
             uint64_t at = p + CTZ(w) - v.hs;
             w &= w - 1;
             if (value_of(e, &v, at - (uint64_t)k, k, &vals[k])) return -1;
+            /* in order: strictly so in a strictly increasing sequence (a whole chunk is at hand here) */
+            if (k && (e->strict ? vals[k] <= vals[k - 1] : vals[k] < vals[k - 1])) return -1;
             k++;
         }
         p += avail;
