@@ -10,7 +10,11 @@ the library), in this one run, on the same files. Also: open time (mmap + every 
 check, median of 21 opens) against ``nextword.load``, the RSS of the C process with the
 model open after all queries, and the answers compared word for word.
 
-A third row is the mixture of the two (a ``.nwx`` file, weights 0.3 / 0.7): the C library
+The fourth row is the same 5-bit KN trigram with its successor lists coded by chunked Elias-Fano
+(format 1.6, ``--compact``; docs/FORMAT.md §7.18): compare it with the 1.5 row (same values, other
+list layout) for the cost of decoding the lists in C and Python, and for the smaller file.
+
+The last row is the mixture of the first two (a ``.nwx`` file, weights 0.3 / 0.7): the C library
 opens it with ``nw_open`` and answers as ``nextword.mix.MixedModel.suggest`` (timed against
 ``load_mix(...).suggest`` on the same queries, in the same run). Its open time includes
 what ``load_mix`` does too: the SHA-256 of both parts and the union vocabulary.
@@ -48,6 +52,7 @@ MODELS: tuple[tuple[str, dict[str, Any]], ...] = (
     ("JM bigram (defaults)", {}),
     ("KN trigram", {"order": 3, "smoothing": "kn"}),
     ("KN trigram, quantised 5 bits (format 1.5)", {"order": 3, "smoothing": "kn", "quantize": 5}),
+    ("KN trigram, quantised 5 bits, compact (format 1.6)", {"order": 3, "smoothing": "kn", "quantize": 5, "compact": True}),
 )
 #: the mixture row: the two models above, mixed with these weights
 MIX_WEIGHTS = (0.3, 0.7)
@@ -111,10 +116,11 @@ def measure(label: str, path: Path, queries: list[str], qfile: Path, tools: Path
     py_p99 = statistics.median(_percentile(t, 0.99) * 1e6 for t in py)
     c_p50 = statistics.median(r["p50_us"] for r in c)
     c_p99 = statistics.median(r["p99_us"] for r in c)
-    info = model.info()
+    # a model file's version from the model itself (Model.info() does not describe a 1.6 file's sections yet)
+    version = "mixture 1.0" if mixture else ".".join(map(str, model.format_version))
     return {
-        "label": label, "file_bytes": info["file_bytes"] if mixture else path.stat().st_size,
-        "version": "mixture 1.0" if mixture else info["format_version"],
+        "label": label, "file_bytes": model.info()["file_bytes"] if mixture else path.stat().st_size,
+        "version": version,
         "py_p50": py_p50, "py_p99": py_p99, "c_p50": c_p50, "c_p99": c_p99, "c_max": statistics.median(r["max_us"] for r in c),
         "c_open_ms": statistics.median(r["open_ms"] for r in c), "py_load_ms": statistics.median(loads) * 1e3,
         "rss_kb": statistics.median(r["rss_kb"] for r in c), "rss_before_kb": statistics.median(r["rss_kb_before_open"] for r in c),
@@ -143,8 +149,11 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("-k", type=int, default=3, help="suggestions per query (default 3)")
     ap.add_argument("--rounds", type=int, default=3, help="timed rounds per side; medians reported (default 3)")
     ap.add_argument("--data", type=Path, default=DATA, help="directory with train.txt and test.txt")
+    ap.add_argument("--rows", default=None,
+                    help="comma-separated model rows to run (0-based, default all; the mixture needs rows 0 and 1)")
     ap.add_argument("--no-results", action="store_true", help="do not edit bench/RESULTS.md")
     args = ap.parse_args(argv)
+    shown = argv if argv is not None else sys.argv[1:]
     train, test = args.data / "train.txt", args.data / "test.txt"
     if not train.exists():
         print("bench_native: run bench/prepare_corpus.py first", file=sys.stderr)
@@ -156,17 +165,19 @@ def main(argv: list[str] | None = None) -> int:
         tools = build(tmp / "build")
         qfile = tmp / "queries.txt"
         qfile.write_text("".join(q + "\n" for q in queries), encoding="utf-8")
-        paths = []
-        for i, (_, kw) in enumerate(MODELS):
-            paths.append(tmp / f"model{i}.nwm")
-            nextword.train(train, paths[-1], **kw)
-        write_mix(tmp / "mix.nwx", paths[:2], list(MIX_WEIGHTS))  # the exact JM bigram and KN trigram
-        rows = [measure(label, path, queries, qfile, tools, args.k, args.rounds) for (label, _), path in zip(MODELS, paths)]
-        mix_label = f"mixture {MIX_WEIGHTS[0]} × JM bigram + {MIX_WEIGHTS[1]} × KN trigram (.nwx)"
-        rows.append(measure(mix_label, tmp / "mix.nwx", queries, qfile, tools, args.k, args.rounds))
+        chosen = sorted({int(x) for x in args.rows.split(",")}) if args.rows else list(range(len(MODELS)))
+        paths: dict[int, Path] = {}
+        for i in chosen:
+            paths[i] = tmp / f"model{i}.nwm"
+            nextword.train(train, paths[i], **MODELS[i][1])
+        rows = [measure(MODELS[i][0], paths[i], queries, qfile, tools, args.k, args.rounds) for i in chosen]
+        if 0 in paths and 1 in paths:
+            write_mix(tmp / "mix.nwx", [paths[0], paths[1]], list(MIX_WEIGHTS))  # the exact JM bigram and KN trigram
+            mix_label = f"mixture {MIX_WEIGHTS[0]} × JM bigram + {MIX_WEIGHTS[1]} × KN trigram (.nwx)"
+            rows.append(measure(mix_label, tmp / "mix.nwx", queries, qfile, tools, args.k, args.rounds))
     md = f"""### Native C runtime against the Python library (`bench/bench_native.py`)
 
-Command: `python bench/prepare_corpus.py && python bench/bench_native.py` — {time.strftime('%Y-%m-%d')}
+Command: `python bench/prepare_corpus.py && python bench/bench_native.py{' ' + ' '.join(shown) if shown else ''}` — {time.strftime('%Y-%m-%d')}
 Machine: {machine()} (shared; compare within the table). {len(queries):,} held-out typed texts
 (`baselines.sample_queries`), k = {args.k}, single calls, median of {args.rounds} rounds per side in this one run;
 C timed inside its process (`nwsuggest --bench`, built with native/Makefile, -O2), Python with `time_queries`.

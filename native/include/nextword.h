@@ -1,7 +1,7 @@
 /*
  * nextword.h — the C99 API of the nextword native runtime.
  *
- * Reads a nextword model file (docs/FORMAT.md, formats 1.0–1.2, 1.4 and 1.5) through a
+ * Reads a nextword model file (docs/FORMAT.md, formats 1.0–1.2 and 1.4–1.6) through a
  * read-only memory map and answers the same queries as the Python library:
  *
  *   nw_suggest  = nextword.Model.suggest(typed, k)      (words recased, probabilities)
@@ -51,8 +51,8 @@ typedef enum nw_status {
     NW_E_ARG = 1,         /* bad argument: NULL, k out of [1, NW_MAX_K], invalid UTF-8 text */
     NW_E_IO = 2,          /* the file cannot be opened or mapped (or a mixture's part is missing) */
     NW_E_FORMAT = 3,      /* not a valid model file (checks of docs/FORMAT.md §8 failed) */
-    NW_E_VERSION = 4,     /* a format version this library does not read (1.3, 1.6+, 2.x), or a codec that does not belong to it */
-    NW_E_UNSUPPORTED = 5, /* a valid file of a kind this library does not read (unknown codec) */
+    NW_E_VERSION = 4,     /* a format version this library does not read (1.3, 1.7+, 2.x), or a codec that does not belong to it */
+    NW_E_UNSUPPORTED = 5, /* a valid file of a kind this library does not read (unknown codec or successor coding) */
     NW_E_DAMAGED = 6,     /* a query read a value that breaks the format (damaged model data) */
     NW_E_BUFFER = 7,      /* the caller's text buffer is too small for the answer */
     NW_E_NOMEM = 8        /* out of memory (open and session creation only) */

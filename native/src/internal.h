@@ -26,6 +26,7 @@ int nw_trie_restore(const void *trie, void *cursor, size_t key_id, const char **
 #ifndef __cplusplus
 #include <string.h>
 
+#include "ef.h"
 #include "nextword.h"
 
 /* One typed array inside the mapped file: n elements of w bytes (1, 2, 4), little-endian. */
@@ -59,6 +60,7 @@ typedef struct nw_level_values {
     const char *tags;  /* e.g. "CNTS/BIGI/BIGC", for messages */
     uint64_t count;    /* the level's number of values */
     int bits;          /* quant: the code width q (2 .. 8) */
+    uint64_t codes;    /* quant version 2: how many values have a code (set by its check) */
 } nw_level_values;
 
 struct nw_model;
@@ -66,10 +68,13 @@ typedef struct nw_codec {
     const char *name;
     int version;
     /* load-time checks of one level holding `n` values (lengths, escape table) */
-    int (*check)(const struct nw_model *m, const nw_level_values *lv, uint64_t n, nw_error *err);
+    int (*check)(const struct nw_model *m, nw_level_values *lv, uint64_t n, nw_error *err);
     /* value of n-gram i; 0 on success, -1 if the data is damaged */
     int (*value)(const nw_level_values *lv, uint64_t i, uint64_t *out);
+    /* values of n-grams s … e−1 (e − s ≤ NW_RUN_MAX) into out: a run read in one pass; 0, or -1 */
+    int (*run)(const nw_level_values *lv, uint64_t s, uint64_t e, uint64_t *out);
 } nw_codec;
+#define NW_RUN_MAX 64
 
 extern const nw_codec nw_codec_exact;
 
@@ -96,6 +101,13 @@ struct nw_model {
     nw_arr TKID, IDTK, ALPH, APOS, KEY4, TOPK, UNIG, ROWS, SUCC, SEGS, SEGE, SKYP, SKYI, SKYC, DISI, DISO;
     nw_arr HIST, HN13, HDRI, HDRV, TCTB, TSUC, TLNI, TLNV, TDRI, TDRV, TSGS, TSGE, TSKP, TSKI, TSKC;
     nw_level_values v2, v3, tlen;
+    /* format 1.6 (§7.18): the n-gram-sized lists stay chunked Elias-Fano sequences, read in
+     * place; the vocabulary-sized ones (ROWS, UNIG, HIST, HN13, HDRI/HDRV) and the inverse
+     * permutations IDTK, APOS are arrays made on open in `lists` (one allocation) */
+    int ef;
+    nw_ef sef, tpt, tef, tdi, tdv; /* v·(n+2) + SUCC; trigram starts; remapped trigram successors; TDRI; Σ TDRV */
+    uint64_t d2, d3;               /* META dropped_contexts */
+    uint8_t *lists;
     const uint8_t *disb;
     uint64_t disb_len;
     int has_hist;

@@ -15,6 +15,7 @@
 #include <sys/stat.h>
 #include <unistd.h>
 
+#include "ef.h"
 #include "internal.h"
 #include "meta.h"
 #include "query.h"
@@ -102,7 +103,7 @@ typedef struct sec {
     int present;
 } sec;
 
-enum kind { K_RAW, K_ID, K_U1, K_U4, K_U24 };
+enum kind { K_RAW, K_ID, K_U1, K_U4, K_U24, K_U48 };
 typedef struct spec {
     const char *tag;
     enum kind kind;
@@ -124,11 +125,39 @@ static const spec SPECS[] = {
     {"TLNI", K_U4, 0, 1},  {"TLNV", K_U4, 0, 1},  {"TDRI", K_U4, 0, 1}, {"TDRV", K_U4, 0, 1},
     {"TSGS", K_U4, 0, 0},  {"TSGE", K_U4, 0, 0},  {"TSKP", K_U4, 0, 0}, {"TSKI", K_U24, 0, 0},
     {"TSKC", K_U24, 0, 0},
+    /* format 1.6 (§7.18): chunked Elias-Fano sequences (header u32 or u64, stream u8); in an
+     * older file they are sections its kind does not have (refused). The vocabulary-sized ones
+     * are checksummed on every load, the n-gram-sized ones with verify=True (as in Python). */
+    {"RWEH", K_U48, 0, 1}, {"RWEB", K_U1, 0, 1},  {"SEFH", K_U48, 0, 0}, {"SEFB", K_U1, 0, 0},
+    {"UNEH", K_U48, 0, 1}, {"UNEB", K_U1, 0, 1},  {"HSEH", K_U48, 0, 1}, {"HSEB", K_U1, 0, 1},
+    {"N1EH", K_U48, 0, 1}, {"N1EB", K_U1, 0, 1},  {"N2EH", K_U48, 0, 1}, {"N2EB", K_U1, 0, 1},
+    {"HDIH", K_U48, 0, 1}, {"HDIB", K_U1, 0, 1},  {"HDVH", K_U48, 0, 1}, {"HDVB", K_U1, 0, 1},
+    {"TPTH", K_U48, 0, 0}, {"TPTB", K_U1, 0, 0},  {"TEFH", K_U48, 0, 0}, {"TEFB", K_U1, 0, 0},
+    {"TDIH", K_U48, 0, 0}, {"TDIB", K_U1, 0, 0},  {"TDVH", K_U48, 0, 0}, {"TDVB", K_U1, 0, 0},
 };
 #define N_SPECS ((int)(sizeof SPECS / sizeof SPECS[0]))
 #define N_REQUIRED 22
 static const char *const TRIGRAM_TAGS[] = {"TCTB", "TLEN", "TLEI", "TLEV", "TSUC", "TVAL", "TBGI", "TBGC", "TLNI",
                                            "TLNV", "TDRI", "TDRV", "TSGS", "TSGE", "TSKP", "TSKI", "TSKC"};
+
+/* the sections a 1.6 file replaces (§7.18), and those that replace them */
+static const char *const REMOVED_16[] = {"IDTK", "APOS", "ROWS", "SUCC", "UNIG", "HIST", "HN13", "HDRI", "HDRV",
+                                         "TCTB", "TLEN", "TLEI", "TLEV", "TSUC", "TDRI", "TDRV"};
+/* the chunked Elias-Fano sequences of a 1.6 file (§7.18), by the first three letters of their tags */
+enum { S_RWE, S_SEF, S_UNE, S_HSE, S_N1E, S_N2E, S_HDI, S_HDV, S_TPT, S_TEF, S_TDI, S_TDV, S_COUNT };
+static const char *const SEQ_TAGS[S_COUNT] = {"RWE", "SEF", "UNE", "HSE", "N1E", "N2E", "HDI", "HDV", "TPT", "TEF", "TDI", "TDV"};
+/* which sequences a 1.6 file of a kind has: every kind, KN only, order 3 only */
+static int seq_wanted(int q, int kn, int order) {
+    if (q == S_N1E || q == S_N2E) return kn;
+    if (q >= S_TPT) return order == 3;
+    return 1;
+}
+static int tag_in(const char *tag, const char *const *list, size_t n) {
+    for (size_t j = 0; j < n; j++)
+        if (!strcmp(tag, list[j])) return 1;
+    return 0;
+}
+#define IN(tag, list) tag_in(tag, list, sizeof list / sizeof list[0])
 
 static int spec_index(const char *tag) {
     for (int i = 0; i < N_SPECS; i++)
@@ -148,7 +177,7 @@ static int exact_value(const nw_level_values *lv, uint64_t i, uint64_t *out) {
     return 0;
 }
 
-static int exact_check(const struct nw_model *m, const nw_level_values *lv, uint64_t n, nw_error *err) {
+static int exact_check(const struct nw_model *m, nw_level_values *lv, uint64_t n, nw_error *err) {
     (void)m;
     if (lv->small.n != n)
         return nw_fail(err, NW_E_FORMAT, "section %.4s holds %llu entries, expected %llu", lv->tags,
@@ -164,7 +193,16 @@ static int exact_check(const struct nw_model *m, const nw_level_values *lv, uint
     return 0;
 }
 
-const nw_codec nw_codec_exact = {"exact", 1, exact_check, exact_value};
+/* a run through the codec's value() (the exact codec and quant version 1: one read each) */
+static int run_by_value(int (*value)(const nw_level_values *, uint64_t, uint64_t *), const nw_level_values *lv, uint64_t s,
+                        uint64_t e, uint64_t *out) {
+    for (uint64_t i = s; i < e; i++)
+        if (value(lv, i, &out[i - s])) return -1;
+    return 0;
+}
+static int exact_run(const nw_level_values *lv, uint64_t s, uint64_t e, uint64_t *out) { return run_by_value(exact_value, lv, s, e, out); }
+
+const nw_codec nw_codec_exact = {"exact", 1, exact_check, exact_value, exact_run};
 
 /* -- the quant codec (§7.17): q-bit codes, one little-endian bit stream, into a codebook -- */
 
@@ -181,7 +219,7 @@ static int quant_value(const nw_level_values *lv, uint64_t i, uint64_t *out) {
     return 0;
 }
 
-static int quant_check(const struct nw_model *m, const nw_level_values *lv, uint64_t n, nw_error *err) {
+static int quant_check(const struct nw_model *m, nw_level_values *lv, uint64_t n, nw_error *err) {
     (void)m;
     int q = lv->bits;
     uint64_t want = (n * (uint64_t)q + 7) / 8, ncb = lv->esc_i.n, maxcb = 1ull << q;
@@ -203,20 +241,155 @@ static int quant_check(const struct nw_model *m, const nw_level_values *lv, uint
     return 0;
 }
 
-static const nw_codec nw_codec_quant = {"quant", 1, quant_check, quant_value};
+static int quant_run(const nw_level_values *lv, uint64_t s, uint64_t e, uint64_t *out) { return run_by_value(quant_value, lv, s, e, out); }
+
+static const nw_codec nw_codec_quant = {"quant", 1, quant_check, quant_value, quant_run};
+
+/* -- the quant codec, version 2 (§7.18, 1.6 files only): a ones bitmap with a rank per 512
+ *    n-grams, q-bit codes for the other values ------------------------------------------ */
+
+#define ONES_BLOCK 512
+#define BLOCK_BYTES (4 + ONES_BLOCK / 8)
+
+static inline unsigned popcount8(unsigned x) {
+    x = x - ((x >> 1) & 0x55u);
+    x = (x & 0x33u) + ((x >> 2) & 0x33u);
+    return (x + (x >> 4)) & 0x0Fu;
+}
+
+/* 8 bytes as a little-endian word */
+static inline uint64_t le64(const uint8_t *p) {
+    uint64_t x;
+    memcpy(&x, p, 8);
+#if defined(__BYTE_ORDER__) && __BYTE_ORDER__ == __ORDER_BIG_ENDIAN__
+    x = __builtin_bswap64(x);
+#endif
+    return x;
+}
+
+/* set bits of a word (SWAR: no popcount instruction needed) */
+static inline unsigned popcount64(uint64_t x) {
+    x = x - ((x >> 1) & 0x5555555555555555ull);
+    x = (x & 0x3333333333333333ull) + ((x >> 2) & 0x3333333333333333ull);
+    x = (x + (x >> 4)) & 0x0F0F0F0F0F0F0F0Full;
+    return (unsigned)((x * 0x0101010101010101ull) >> 56);
+}
+
+/* the set bits of block blk's bitmap before bit j (j < 512), plus the block's rank */
+static inline uint64_t ones_before(const uint8_t *blk, unsigned j) {
+    uint64_t ones = (uint64_t)blk[0] | ((uint64_t)blk[1] << 8) | ((uint64_t)blk[2] << 16) | ((uint64_t)blk[3] << 24);
+    unsigned w = 0;
+    for (; w < j / 64; w++) ones += popcount64(le64(blk + 4 + 8 * w));
+    if (j % 64) ones += popcount64(le64(blk + 4 + 8 * w) & ((1ull << (j % 64)) - 1));
+    return ones;
+}
+
+static int quant2_code(const nw_level_values *lv, uint64_t r, uint64_t *out);
+
+/* small: the bitmap (68 bytes per block); esc_i: the codebook; esc_v: the codes (u32 words,
+ * read as bytes); count: n-grams; codes: how many have a code (set on load) */
+static int quant2_value(const nw_level_values *lv, uint64_t i, uint64_t *out) {
+    if (i >= lv->count) return -1;
+    const uint8_t *blk = lv->small.p + (i / ONES_BLOCK) * BLOCK_BYTES;
+    unsigned j = (unsigned)(i % ONES_BLOCK);
+    if ((blk[4 + j / 8] >> (j % 8)) & 1) { *out = 1; return 0; }
+    uint64_t ones = ones_before(blk, j);
+    if (ones > i || i - ones >= lv->codes) return -1; /* a rank past the value codes */
+    return quant2_code(lv, i - ones, out);
+}
+
+
+static int quant2_check(const struct nw_model *m, nw_level_values *lv, uint64_t n, nw_error *err) {
+    (void)m;
+    int q = lv->bits;
+    uint64_t blocks = (n + ONES_BLOCK - 1) / ONES_BLOCK, ncb = lv->esc_i.n, maxcb = 1ull << q;
+    if (lv->small.n != blocks * BLOCK_BYTES)
+        return nw_fail(err, NW_E_FORMAT, "section %.4s holds %llu bytes, expected %llu for %llu n-grams", lv->tags,
+                       (unsigned long long)lv->small.n, (unsigned long long)(blocks * BLOCK_BYTES), (unsigned long long)n), -1;
+    if (!(ncb >= 1 && ncb <= maxcb) && !(n == 0 && ncb == 0))
+        return nw_fail(err, NW_E_FORMAT, "section %.4s holds %llu codebook entries, expected 1 to %llu", lv->tags + 5,
+                       (unsigned long long)ncb, (unsigned long long)maxcb), -1;
+    int ok = ncb == 0 || nw_at(&lv->esc_i, 0) >= 1;
+    for (uint64_t j = 1; ok && j < ncb; j++) ok = nw_at(&lv->esc_i, j) > nw_at(&lv->esc_i, j - 1);
+    if (!ok)
+        return nw_fail(err, NW_E_FORMAT, "section %.4s is not a strictly increasing codebook of values >= 1", lv->tags + 5), -1;
+    uint64_t ones = 0;
+    if (blocks) {
+        const uint8_t *last = lv->small.p + (blocks - 1) * BLOCK_BYTES, *first = lv->small.p;
+        uint64_t used = n - (blocks - 1) * ONES_BLOCK; /* bits of the last block that belong to n-grams */
+        for (uint64_t j = used; j < ONES_BLOCK; j++)
+            if ((last[4 + j / 8] >> (j % 8)) & 1)
+                return nw_fail(err, NW_E_FORMAT, "section %.4s has bits set after the last n-gram", lv->tags), -1;
+        ones = (uint64_t)last[0] | ((uint64_t)last[1] << 8) | ((uint64_t)last[2] << 16) | ((uint64_t)last[3] << 24);
+        for (unsigned b = 0; b < ONES_BLOCK / 8; b++) ones += popcount8(last[4 + b]);
+        if ((first[0] | first[1] | first[2] | first[3]) != 0 || ones > n)
+            return nw_fail(err, NW_E_FORMAT, "section %.4s has ranks that do not start at 0 or exceed the n-grams", lv->tags), -1;
+    }
+    uint64_t codes = n - ones, want = (codes * (uint64_t)q + 31) / 32;
+    if (lv->esc_v.n != want)
+        return nw_fail(err, NW_E_FORMAT, "section %.4s holds %llu words, expected %llu for %llu %d-bit codes", lv->tags + 10,
+                       (unsigned long long)lv->esc_v.n, (unsigned long long)want, (unsigned long long)codes, q), -1;
+    unsigned tail = (unsigned)(codes * (uint64_t)q % 32);
+    if (tail && (nw_at(&lv->esc_v, lv->esc_v.n - 1) >> tail))
+        return nw_fail(err, NW_E_FORMAT, "section %.4s has non-zero bits after the last code", lv->tags + 10), -1;
+    lv->codes = codes;
+    return 0;
+}
+
+/* code r of a version-2 level (r < codes: inside the checked code words) */
+static int quant2_code(const nw_level_values *lv, uint64_t r, uint64_t *out) {
+    int q = lv->bits;
+    uint64_t bit = r * (uint64_t)q, at = bit >> 3;
+    unsigned sh = (unsigned)(bit & 7);
+    const uint8_t *cb = lv->esc_v.p;
+    uint32_t w = cb[at];
+    if (sh + (unsigned)q > 8) w |= (uint32_t)cb[at + 1] << 8;
+    uint32_t code = (w >> sh) & ((1u << q) - 1u);
+    if (code >= lv->esc_i.n) return -1;
+    *out = nw_at(&lv->esc_i, code);
+    return 0;
+}
+
+/* a run: the rank of its first n-gram once, then its bits and codes in order */
+static int quant2_run(const nw_level_values *lv, uint64_t s, uint64_t e, uint64_t *out) {
+    if (s >= e) return 0;
+    if (e > lv->count) return -1;
+    uint64_t r = 0; /* the code number of the next value that is not 1 */
+    for (uint64_t i = s; i < e; i++) {
+        const uint8_t *blk = lv->small.p + (i / ONES_BLOCK) * BLOCK_BYTES;
+        unsigned j = (unsigned)(i % ONES_BLOCK);
+        if (i == s || j == 0) { /* the run's first n-gram, or a new block: its rank */
+            uint64_t ones = ones_before(blk, j);
+            if (ones > i) return -1;
+            r = i - ones;
+        }
+        if ((blk[4 + j / 8] >> (j % 8)) & 1) {
+            out[i - s] = 1;
+            continue;
+        }
+        if (r >= lv->codes || quant2_code(lv, r, &out[i - s])) return -1;
+        r++;
+    }
+    return 0;
+}
+
+static const nw_codec nw_codec_quant2 = {"quant", 2, quant2_check, quant2_value, quant2_run};
 /* every codec this library reads, and the format minor version each belongs to */
-static const nw_codec *const CODECS[] = {&nw_codec_exact, &nw_codec_quant};
+static const nw_codec *const CODECS[] = {&nw_codec_exact, &nw_codec_quant, &nw_codec_quant2};
 #define EXACT_MINOR 4
 #define QUANT_MINOR 5
+#define EF_MINOR 6 /* compressed successor lists (§7.18), with either codec */
 
 /* -- META (§7.1, §7.11) ----------------------------------------------------------------- */
 
 enum { F_N_WORDS, F_LAMBDA, F_TOTAL, F_BIGRAMS, F_SKY_K, F_SKY_MIN, F_FANOUT, F_MAX_KEY, F_STATS, F_BUCKETS,
-       F_ESTIMATOR, F_ORDER, F_CODEC, F_DISCOUNTS, F_NOTES, F_LAMBDA3, F_TRIGRAMS, F_TCTX, F_TSUMMIN, F_TSKYMIN, F_TEXT_RULES, F_COUNT };
+       F_ESTIMATOR, F_ORDER, F_CODEC, F_DISCOUNTS, F_NOTES, F_LAMBDA3, F_TRIGRAMS, F_TCTX, F_TSUMMIN, F_TSKYMIN, F_TEXT_RULES,
+       F_SUCCESSORS, F_DROPPED, F_COUNT };
 static const char *const FIELDS[F_COUNT] = {"n_words", "lambda", "total", "bigrams", "skyband_k", "skyband_min",
                                             "topk_fanout", "max_key_chars", "stats", "lambda_buckets", "estimator",
                                             "order", "codec", "discounts", "discount_notes", "lambda3", "trigrams",
-                                            "trigram_contexts", "trigram_summary_min", "trigram_skyband_min", "text_rules"};
+                                            "trigram_contexts", "trigram_summary_min", "trigram_skyband_min", "text_rules",
+                                            "successors", "dropped_contexts"};
 
 typedef struct meta_view {
     const uint8_t *p;
@@ -336,9 +509,42 @@ static nw_status read_meta(nw_model *m, const uint8_t *p, size_t n, uint64_t siz
     return NW_OK;
 }
 
+/* META successors (§7.18): {"name": "ef", "version": 1} in a 1.6 file, absent elsewhere */
+static nw_status read_successors(nw_model *m, const meta_view *mv, nw_error *err) {
+    nw_mpv v;
+    m->ef = m->minor == EF_MINOR;
+    if (!m->ef) {
+        if (mv->at[F_SUCCESSORS] != (size_t)-1)
+            return nw_fail(err, NW_E_FORMAT, "format 1.%u files have no 'successors' field (their lists are plain arrays)", m->minor);
+        return NW_OK;
+    }
+    if (field(mv, F_SUCCESSORS, &v) != 1 || v.t != MP_MAP)
+        return nw_fail(err, NW_E_FORMAT, "metadata field 'successors' is invalid");
+    nw_mp q = {mv->p, mv->n, mv->at[F_SUCCESSORS]};
+    nw_mpv tmp, name = {0}, ver = {0};
+    int have_name = 0, have_ver = 0;
+    nw_mp_read(&q, &tmp);
+    for (uint64_t j = 0; j < v.u; j++) {
+        nw_mpv key, val;
+        if (nw_mp_read(&q, &key)) return nw_fail(err, NW_E_FORMAT, "metadata field 'successors' is invalid");
+        nw_mp r = {mv->p, mv->n, q.i};
+        if (nw_mp_read(&r, &val) || nw_mp_skip(&q, 1)) return nw_fail(err, NW_E_FORMAT, "metadata field 'successors' is invalid");
+        if (nw_mp_str_eq(&key, "name")) { name = val; have_name = 1; }
+        else if (nw_mp_str_eq(&key, "version")) { ver = val; have_ver = 1; }
+    }
+    if (!have_name || name.t != MP_STR || !have_ver || ver.t != MP_POS)
+        return nw_fail(err, NW_E_FORMAT, "metadata field 'successors' is invalid");
+    if (!nw_mp_str_eq(&name, "ef") || ver.u != 1)
+        return nw_fail(err, NW_E_UNSUPPORTED, "unknown successor list coding '%.*s' version %llu (this library reads 'ef' version 1)",
+                       (int)(name.len > 40 ? 40 : name.len), (const char *)name.s, (unsigned long long)ver.u);
+    return NW_OK;
+}
+
 /* format 1.4 fields and the optional sections each kind has (store._check_model_kind) */
 static nw_status read_kind(nw_model *m, const meta_view *mv, nw_error *err) {
     nw_mpv v;
+    nw_status st0 = read_successors(m, mv, err);
+    if (st0) return st0;
     if (m->minor < 3) {
         int bad = 0;
         if (field(mv, F_ESTIMATOR, &v) == 1 && !nw_mp_str_eq(&v, "jm")) bad = 1;
@@ -378,10 +584,11 @@ static nw_status read_kind(nw_model *m, const meta_view *mv, nw_error *err) {
             if (nw_mp_str_eq(&name, CODECS[c]->name) && ver.u == (uint64_t)CODECS[c]->version) m->codec = CODECS[c];
         if (m->codec == NULL)
             return nw_fail(err, NW_E_UNSUPPORTED,
-                           "unknown value codec '%.*s' version %llu (this library reads 'exact' version 1 and 'quant' version 1)",
+                           "unknown value codec '%.*s' version %llu (this library reads 'exact' version 1 and 'quant' versions 1 and 2)",
                            (int)(name.len > 40 ? 40 : name.len), (const char *)name.s, (unsigned long long)ver.u);
         m->quant_bits = 0;
-        if (m->codec == &nw_codec_quant) { /* codecs.codec_named: bits an int in 2 .. 8, booleans refused */
+        int quant = m->codec == &nw_codec_quant || m->codec == &nw_codec_quant2;
+        if (quant) { /* codecs.codec_named: bits an int in 2 .. 8, booleans refused */
             if (!have_bits)
                 return nw_fail(err, NW_E_UNSUPPORTED, "codec 'quant' without bits (this library reads 2 to 8)");
             if (bits.t != MP_POS)
@@ -391,8 +598,11 @@ static nw_status read_kind(nw_model *m, const meta_view *mv, nw_error *err) {
                                (unsigned long long)bits.u);
             m->quant_bits = (int)bits.u;
         }
-        /* a 1.4 file names 'exact', a 1.5 file 'quant' (store._check_model_kind) */
-        if ((m->codec == &nw_codec_quant) != (m->minor == QUANT_MINOR))
+        /* a 1.4 file names 'exact', a 1.5 file 'quant', a 1.6 file either; 'quant' version 2 is
+         * for 1.6 files only (store._check_model_kind) */
+        if (m->codec == &nw_codec_quant2 && m->minor != EF_MINOR)
+            return nw_fail(err, NW_E_VERSION, "codec 'quant' version 2 belongs to format 1.%d files, not 1.%u", EF_MINOR, m->minor);
+        if (m->minor != EF_MINOR && quant != (m->minor == QUANT_MINOR))
             return nw_fail(err, NW_E_VERSION, "format 1.%u files do not use codec '%s' (1.%d: exact values, 1.%d: quantised)",
                            m->minor, m->codec->name, EXACT_MINOR, QUANT_MINOR);
     }
@@ -402,9 +612,9 @@ static nw_status read_kind(nw_model *m, const meta_view *mv, nw_error *err) {
     if (field(mv, F_ORDER, &v) != 1 || v.t != MP_POS || (v.u != 2 && v.u != 3))
         return nw_fail(err, NW_E_FORMAT, "metadata field 'order' is invalid");
     m->order = (int)v.u;
-    if (!m->kn && m->order == 2 && m->minor != QUANT_MINOR)
-        return nw_fail(err, NW_E_FORMAT, "a Jelinek-Mercer bigram model is a format 1.0-1.2 or 1.%d file, not 1.%u", QUANT_MINOR,
-                       m->minor);
+    if (!m->kn && m->order == 2 && m->minor != QUANT_MINOR && m->minor != EF_MINOR)
+        return nw_fail(err, NW_E_FORMAT, "a Jelinek-Mercer bigram model is a format 1.0-1.2, 1.%d or 1.%d file, not 1.%u",
+                       QUANT_MINOR, EF_MINOR, m->minor);
     if (m->kn) {
         int ok = field(mv, F_DISCOUNTS, &v) == 1 && v.t == MP_ARR && v.u == (uint64_t)m->order;
         nw_mp q = {mv->p, mv->n, mv->at[F_DISCOUNTS]};
@@ -441,6 +651,18 @@ static nw_status read_kind(nw_model *m, const meta_view *mv, nw_error *err) {
         if ((m->lam3 = 0, need_num(mv, F_LAMBDA3, 0.0, 1.0, &m->lam3, err)))
             return nw_fail(err, NW_E_FORMAT, "metadata field 'lambda3' is invalid");
         if (m->lam3 > MAX_LAMBDA) m->lam3 = MAX_LAMBDA;
+    }
+    if (m->ef) { /* dropped_contexts: [D2] or [D2, D3], 0 <= D2 <= n+3, 0 <= D3 <= b (§7.18) */
+        int ok = field(mv, F_DROPPED, &v) == 1 && v.t == MP_ARR && v.u == (uint64_t)(m->order - 1);
+        nw_mp q = {mv->p, mv->n, mv->at[F_DROPPED]};
+        nw_mpv tmp, x;
+        if (ok) nw_mp_read(&q, &tmp);
+        m->d2 = m->d3 = 0;
+        for (int j = 0; ok && j < m->order - 1; j++) {
+            ok = nw_mp_read(&q, &x) == 0 && x.t == MP_POS && x.u <= (j == 0 ? (uint64_t)m->n + 3 : m->b);
+            if (ok && x.t == MP_POS) *(j == 0 ? &m->d2 : &m->d3) = x.u;
+        }
+        if (!ok) return nw_fail(err, NW_E_FORMAT, "metadata field 'dropped_contexts' is invalid");
     }
     return NW_OK;
 }
@@ -479,14 +701,175 @@ static nw_status check_perm(const nw_arr *arr, const nw_arr *inv, uint64_t mlen,
     return NW_OK;
 }
 
-static nw_status check_arrays(nw_model *m, nw_error *err) {
+/* one chunked Elias-Fano sequence as the section table gives it (opened by open_lists) */
+typedef struct ef_raw {
+    const uint8_t *head, *stream;
+    uint64_t head_n, stream_len;
+    int hw;
+} ef_raw;
+
+static void put32(uint8_t *p, uint64_t x) {
+    p[0] = (uint8_t)x;
+    p[1] = (uint8_t)(x >> 8);
+    p[2] = (uint8_t)(x >> 16);
+    p[3] = (uint8_t)(x >> 24);
+}
+
+/* inverse of permutation `a` of 0 .. len-1 into `inv` (u32 entries), refusing a non-permutation */
+static nw_status invert(const nw_arr *a, uint64_t len, uint8_t *inv, const char *label, nw_error *err) {
+    memset(inv, 0xFF, 4 * len);
+    for (uint64_t i = 0; i < len; i++) {
+        uint32_t x = nw_at(a, i);
+        const uint8_t *q = inv + 4 * (uint64_t)x;
+        if (x >= len || (q[0] & q[1] & q[2] & q[3]) != 0xFF)
+            return nw_fail(err, NW_E_FORMAT, "section %s is not a valid permutation", label);
+        put32(inv + 4 * (uint64_t)x, i);
+    }
+    return NW_OK;
+}
+
+/* One sequence opened (§7.18's checks on load). */
+static nw_status open_seq(nw_ef *e, const ef_raw *raw, int q, uint64_t count, int strict, nw_error *err) {
+    char label[16];
+    snprintf(label, sizeof label, "%sH/%sB", SEQ_TAGS[q], SEQ_TAGS[q]);
+    const ef_raw *r = &raw[q];
+    /* the n-gram-sized sequences' chunk headers are checked when a query reads them (as Python
+     * does): opening stays O(vocabulary) */
+    int ngram_sized = q == S_SEF || q == S_TPT || q == S_TEF || q == S_TDI || q == S_TDV;
+    return nw_ef_open(e, label, r->head, r->head_n, r->hw, r->stream, r->stream_len, count, strict, !ngram_sized, err);
+}
+
+/* Every value of a sequence (count values), each ≤ limit, as u32 into out. */
+static nw_status decode_seq(const nw_ef *e, int q, uint64_t limit, uint8_t *out, nw_error *err) {
+    uint64_t vals[NW_EF_CHUNK];
+    for (uint64_t c = 0; c < e->chunks; c++) {
+        int cnt;
+        if (nw_ef_chunk(e, c, vals, &cnt))
+            return nw_fail(err, NW_E_FORMAT, "sections %sH/%sB: chunk %llu does not decode to its values", SEQ_TAGS[q], SEQ_TAGS[q],
+                           (unsigned long long)c);
+        for (int k = 0; k < cnt; k++) {
+            if (vals[k] > limit)
+                return nw_fail(err, NW_E_FORMAT, "sections %sH/%sB: value %llu above %llu", SEQ_TAGS[q], SEQ_TAGS[q],
+                               (unsigned long long)vals[k], (unsigned long long)limit);
+            put32(out + 4 * (c * NW_EF_CHUNK + (uint64_t)k), vals[k]);
+        }
+    }
+    return NW_OK;
+}
+
+/* Values stored as their prefix sums (count + 1 values from 0, §7.18): the count values,
+ * each ≥ lo (0 or 1) and within 32 bits, as u32 into out. */
+static nw_status decode_sums(const ef_raw *raw, int q, uint64_t count, uint64_t lo, uint8_t *out, nw_error *err) {
+    nw_ef e;
+    nw_status st = open_seq(&e, raw, q, count + 1, lo > 0, err);
+    if (st) return st;
+    uint64_t vals[NW_EF_CHUNK], prev = 0;
+    for (uint64_t c = 0; c < e.chunks; c++) {
+        int cnt;
+        if (nw_ef_chunk(&e, c, vals, &cnt))
+            return nw_fail(err, NW_E_FORMAT, "sections %sH/%sB: chunk %llu does not decode to its values", SEQ_TAGS[q], SEQ_TAGS[q],
+                           (unsigned long long)c);
+        for (int k = 0; k < cnt; k++) {
+            uint64_t j = c * NW_EF_CHUNK + (uint64_t)k;
+            if (j == 0 ? vals[k] != 0 : vals[k] < prev + lo || vals[k] - prev > 0xFFFFFFFFu)
+                return nw_fail(err, NW_E_FORMAT, "sections %sH/%sB do not hold prefix sums from 0 of %s32-bit values", SEQ_TAGS[q],
+                               SEQ_TAGS[q], lo ? "positive " : "");
+            if (j) put32(out + 4 * (j - 1), vals[k] - prev);
+            prev = vals[k];
+        }
+    }
+    return NW_OK;
+}
+
+/* Format 1.6 (§7.18 "Checks on load"): every sequence's headers and stream; ROWS, UNIG,
+ * HIST, HN13 and HDRI/HDRV decoded into u32 arrays as a 1.4/1.5 file holds them; TKID and
+ * ALPH checked to be permutations and inverted into IDTK and APOS. Every other check and
+ * query then reads these arrays as in 1.4; SUCC, the trigram lists and TDRI/TDRV stay coded
+ * (m->sef, tpt, tef, tdi, tdv). */
+static nw_status open_lists(nw_model *m, const ef_raw *raw, nw_error *err) {
+    uint64_t n = m->n, npos = n + 2, nhist = n + 3, b = m->b;
+    if (m->TKID.n != n || m->ALPH.n != npos)
+        return nw_fail(err, NW_E_FORMAT, "section %s holds %llu entries, expected %llu", m->TKID.n != n ? "TKID" : "ALPH",
+                       (unsigned long long)(m->TKID.n != n ? m->TKID.n : m->ALPH.n),
+                       (unsigned long long)(m->TKID.n != n ? n : npos));
+    if (b > 0xFFFFFFFFu) /* ROWS is made as u32 below (a 1.4 file's ROWS is u32 too) */
+        return nw_fail(err, NW_E_FORMAT, "a format 1.6 file of %llu bigrams: more than this library reads", (unsigned long long)b);
+    nw_status st;
+    nw_ef rwe;
+    if ((st = open_seq(&rwe, raw, S_RWE, nhist + 1, 0, err))) return st;
+    if ((st = open_seq(&m->sef, raw, S_SEF, b, 1, err))) return st;
+    if (nw_ef_first(&m->sef, m->sef.chunks) > nhist * npos)
+        return nw_fail(err, NW_E_FORMAT, "sections SEFH/SEFB: a successor past the last row");
+    if (m->order == 3) {
+        uint64_t t = m->t;
+        if ((st = open_seq(&m->tpt, raw, S_TPT, b + 1, 0, err))) return st;
+        if (nw_ef_first(&m->tpt, 0) != 0 || nw_ef_first(&m->tpt, m->tpt.chunks) != t + 1)
+            return nw_fail(err, NW_E_FORMAT, "sections TPTH/TPTB do not run from 0 to %llu", (unsigned long long)t);
+        if ((st = open_seq(&m->tef, raw, S_TEF, t, 1, err))) return st;
+        if ((st = open_seq(&m->tdi, raw, S_TDI, m->d3, 1, err))) return st;
+        if ((st = open_seq(&m->tdv, raw, S_TDV, m->d3 + 1, 1, err))) return st;
+        if (nw_ef_first(&m->tdi, m->tdi.chunks) > b || nw_ef_first(&m->tdv, 0) != 0)
+            return nw_fail(err, NW_E_FORMAT, "sections TDIH/TDVH do not index bigram entries, or their sums do not start at 0");
+    }
+    /* one allocation, u32 each: ROWS (n+4), IDTK (n), APOS (n+2), UNIG (n+2), HIST (n+3),
+     * HN13 (3·(n+3), KN), HDRI and HDRV (D2 each) */
+    uint64_t words = (nhist + 1) + n + npos + npos + nhist + (m->kn ? 3 * nhist : 0) + 2 * m->d2;
+    m->lists = (uint8_t *)malloc(4 * words + 4);
+    if (!m->lists) return nw_fail(err, NW_E_NOMEM, "out of memory");
+    uint8_t *rows = m->lists, *idtk = rows + 4 * (nhist + 1), *apos = idtk + 4 * n, *unig = apos + 4 * npos;
+    uint8_t *hist = unig + 4 * npos, *hn13 = hist + 4 * nhist, *hdri = hn13 + (m->kn ? 12 * nhist : 0), *hdrv = hdri + 4 * m->d2;
+    if ((st = decode_seq(&rwe, S_RWE, b, rows, err))) return st;
+    m->ROWS = (nw_arr){rows, nhist + 1, 4};
+    if ((st = invert(&m->TKID, n, idtk, "TKID", err))) return st;
+    m->IDTK = (nw_arr){idtk, n, 4};
+    if ((st = invert(&m->ALPH, npos, apos, "ALPH", err))) return st;
+    m->APOS = (nw_arr){apos, npos, 4};
+    if ((st = decode_sums(raw, S_UNE, npos, 0, unig, err))) return st;
+    m->UNIG = (nw_arr){unig, npos, 4};
+    if ((st = decode_sums(raw, S_HSE, nhist, 0, hist, err))) return st;
+    m->HIST = (nw_arr){hist, nhist, 4};
+    if (m->kn) { /* N1 and N2 per row from their prefix sums, N3+ = row length - N1 - N2 (>= 0) */
+        uint8_t *tmp = (uint8_t *)malloc(8 * nhist); /* N1 then N2, for the open only */
+        if (!tmp) return nw_fail(err, NW_E_NOMEM, "out of memory");
+        if ((st = decode_sums(raw, S_N1E, nhist, 0, tmp, err)) || (st = decode_sums(raw, S_N2E, nhist, 0, tmp + 4 * nhist, err))) {
+            free(tmp);
+            return st;
+        }
+        nw_arr n12 = {tmp, 2 * nhist, 4};
+        for (uint64_t v = 0; v < nhist; v++) {
+            uint64_t a1 = nw_at(&n12, v), a2 = nw_at(&n12, nhist + v), r0 = nw_at(&m->ROWS, v), r1 = nw_at(&m->ROWS, v + 1);
+            if (r1 < r0 || a1 + a2 > r1 - r0) {
+                free(tmp);
+                return nw_fail(err, NW_E_FORMAT, "sections N1EH/N2EH count more entries than row %llu has", (unsigned long long)v);
+            }
+            put32(hn13 + 12 * v, a1);
+            put32(hn13 + 12 * v + 4, a2);
+            put32(hn13 + 12 * v + 8, (r1 - r0) - a1 - a2);
+        }
+        free(tmp);
+        m->HN13 = (nw_arr){hn13, 3 * nhist, 4};
+    }
+    nw_ef hdi;
+    if ((st = open_seq(&hdi, raw, S_HDI, m->d2, 1, err))) return st;
+    if (m->d2 && nw_ef_first(&hdi, hdi.chunks) > nhist)
+        return nw_fail(err, NW_E_FORMAT, "sections HDIH/HDIB: a history id not below %llu", (unsigned long long)nhist);
+    if ((st = decode_seq(&hdi, S_HDI, nhist - 1, hdri, err))) return st;
+    m->HDRI = (nw_arr){hdri, m->d2, 4};
+    if ((st = decode_sums(raw, S_HDV, m->d2, 1, hdrv, err))) return st;
+    m->HDRV = (nw_arr){hdrv, m->d2, 4};
+    return NW_OK;
+}
+
+static nw_status check_arrays(nw_model *m, const ef_raw *raw, nw_error *err) {
     uint64_t n = m->n, npos = n + 2, nhist = n + 3, b = m->b;
     uint64_t topk = 0;
     for (int l = 0; l < m->n_levels; l++) topk += m->level_nb[l];
+    nw_status st;
+    if (m->ef && (st = open_lists(m, raw, err))) return st;
     struct { const char *label; const nw_arr *a; uint64_t want; } exp[] = {
         {"TKID", &m->TKID, n}, {"IDTK", &m->IDTK, n}, {"ALPH", &m->ALPH, npos}, {"APOS", &m->APOS, npos},
         {"KEY4", &m->KEY4, n}, {"TOPK", &m->TOPK, topk * TOPK_FANOUT}, {"UNIG", &m->UNIG, npos},
-        {"ROWS", &m->ROWS, nhist + 1}, {"SUCC", &m->SUCC, b},
+        {"ROWS", &m->ROWS, nhist + 1}, {"SUCC", &m->SUCC, m->ef ? 0 : b}, /* 1.6: read through m->sef */
         {"SEGE", &m->SEGE, m->SEGS.n}, {"SKYP", &m->SKYP, m->SEGS.n + 1}, {"SKYC", &m->SKYC, m->SEGS.n * m->sky_k},
         {"HIST", &m->HIST, m->has_hist ? nhist : m->HIST.n}, {"DISO", &m->DISO, m->DISI.n + 1},
     };
@@ -496,7 +879,6 @@ static nw_status check_arrays(nw_model *m, nw_error *err) {
                            (unsigned long long)exp[i].a->n, (unsigned long long)exp[i].want);
     /* the bigram level's values through the file's codec (codec.check) */
     if (m->codec->check(m, &m->v2, b, err)) return err ? err->code : NW_E_FORMAT;
-    nw_status st;
     if ((st = check_perm(&m->TKID, &m->IDTK, n, "TKID", err))) return st;
     if ((st = check_perm(&m->ALPH, &m->APOS, npos, "ALPH", err))) return st;
     if (nw_at(&m->ALPH, n) != n || nw_at(&m->ALPH, n + 1) != n + 1)
@@ -539,7 +921,7 @@ static nw_status check_arrays(nw_model *m, nw_error *err) {
     }
     if (m->minor < 3) return NW_OK;
     /* store._check_ngram_arrays (the always-on part) */
-    if (m->kn && m->HN13.n != 3 * nhist)
+    if (m->kn && !m->ef && m->HN13.n != 3 * nhist)
         return nw_fail(err, NW_E_FORMAT, "section HN13 holds %llu entries, expected %llu", (unsigned long long)m->HN13.n,
                        (unsigned long long)(3 * nhist));
     if (!sparse_ok(&m->HDRI, &m->HDRV, nhist, 0))
@@ -551,10 +933,11 @@ static nw_status check_arrays(nw_model *m, nw_error *err) {
     if (m->order == 3) {
         uint64_t t = m->t;
         if (m->codec->check(m, &m->v3, t, err)) return err ? err->code : NW_E_FORMAT;
-        if (nw_codec_exact.check(m, &m->tlen, b, err)) return err ? err->code : NW_E_FORMAT;
+        if (!m->ef && nw_codec_exact.check(m, &m->tlen, b, err)) return err ? err->code : NW_E_FORMAT;
         uint64_t nseg = m->TSGS.n;
         struct { const char *label; const nw_arr *a; uint64_t want; } e3[] = {
-            {"TCTB", &m->TCTB, b / CTX_BLOCK + 1}, {"TSUC", &m->TSUC, t}, {"TLNV", &m->TLNV, 4 * m->TLNI.n},
+            {"TCTB", &m->TCTB, m->ef ? 0 : b / CTX_BLOCK + 1}, {"TSUC", &m->TSUC, m->ef ? 0 : t}, /* 1.6: m->tpt, m->tef */
+            {"TLNV", &m->TLNV, 4 * m->TLNI.n},
             {"TDRV", &m->TDRV, m->TDRI.n}, {"TSGE", &m->TSGE, nseg}, {"TSKP", &m->TSKP, nseg + 1},
             {"TSKC", &m->TSKC, nseg * m->sky_k},
         };
@@ -563,10 +946,10 @@ static nw_status check_arrays(nw_model *m, nw_error *err) {
                 return nw_fail(err, NW_E_FORMAT, "section %s holds %llu entries, expected %llu", e3[i].label,
                                (unsigned long long)e3[i].a->n, (unsigned long long)e3[i].want);
         const nw_arr *tctb = &m->TCTB;
-        int ok = nw_at(tctb, 0) == 0;
+        int ok = m->ef || nw_at(tctb, 0) == 0;
         for (uint64_t j = 1; ok && j < tctb->n; j++) ok = nw_at(tctb, j) >= nw_at(tctb, j - 1);
-        uint64_t end = ok ? nw_at(tctb, tctb->n - 1) : 0;
-        for (uint64_t i = (b / CTX_BLOCK) * CTX_BLOCK; ok && i < b; i++) {
+        uint64_t end = m->ef ? t : ok ? nw_at(tctb, tctb->n - 1) : 0;
+        for (uint64_t i = (b / CTX_BLOCK) * CTX_BLOCK; ok && !m->ef && i < b; i++) {
             uint64_t len;
             if (nw_codec_exact.value(&m->tlen, i, &len)) return nw_fail(err, NW_E_FORMAT, "damaged model: escaped value without an entry");
             end += len;
@@ -623,8 +1006,8 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
     if (nw_crc32(buf, 28) != (uint32_t)le(buf + 28, 4)) return nw_fail(err, NW_E_FORMAT, "header checksum mismatch (damaged file)");
     m->major = (uint16_t)le(buf + 8, 2);
     m->minor = (uint16_t)le(buf + 10, 2);
-    if (m->major != 1 || m->minor > QUANT_MINOR)
-        return nw_fail(err, NW_E_VERSION, "unsupported format version %u.%u (this library reads 1.0 to 1.2, 1.4 and 1.5)",
+    if (m->major != 1 || m->minor > EF_MINOR)
+        return nw_fail(err, NW_E_VERSION, "unsupported format version %u.%u (this library reads 1.0 to 1.2 and 1.4 to 1.6)",
                        m->major, m->minor);
     if (m->minor == 3)
         return nw_fail(err, NW_E_VERSION,
@@ -675,6 +1058,12 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
     if ((8 - prev_end % 8) % 8 != size - prev_end) return nw_fail(err, NW_E_FORMAT, "unexpected bytes after the last section");
     for (uint64_t q = prev_end; q < size; q++)
         if (buf[q]) return nw_fail(err, NW_E_FORMAT, "unexpected bytes after the last section");
+    /* the sections a 1.6 file replaces may not be in it (the 1.6 ones are refused in older
+     * files below, with the other sections a file's kind does not have) */
+    for (int i = 0; i < N_SPECS; i++) {
+        if (m->minor == EF_MINOR && IN(SPECS[i].tag, REMOVED_16) && secs[i].present)
+            return nw_fail(err, NW_E_FORMAT, "format 1.6 files have no section %s (its lists are Elias-Fano coded)", SPECS[i].tag);
+    }
     int hist = spec_index("HIST");
     if (m->minor < 3) {
         if (secs[hist].present != (m->minor == 2))
@@ -684,7 +1073,8 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
                 return nw_fail(err, NW_E_FORMAT, "format 1.%u files have no Kneser-Ney or trigram sections", m->minor);
     }
     for (int i = 0; i < N_REQUIRED; i++)
-        if (!secs[i].present) return nw_fail(err, NW_E_FORMAT, "missing sections %s", SPECS[i].tag);
+        if (!secs[i].present && !(m->minor == EF_MINOR && IN(SPECS[i].tag, REMOVED_16)))
+            return nw_fail(err, NW_E_FORMAT, "missing sections %s", SPECS[i].tag);
     for (int i = 0; i < N_SPECS; i++)
         if (secs[i].present && SPECS[i].crc_on_load && nw_crc32(buf + secs[i].off, secs[i].len) != secs[i].crc)
             return nw_fail(err, NW_E_FORMAT, "section %s checksum mismatch (damaged file)", SPECS[i].tag);
@@ -701,6 +1091,11 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
             int want = !strcmp(tag, "HIST") || !strcmp(tag, "HDRI") || !strcmp(tag, "HDRV") || (m->kn && !strcmp(tag, "HN13"));
             for (size_t j = 0; j < sizeof TRIGRAM_TAGS / sizeof TRIGRAM_TAGS[0]; j++)
                 if (m->order == 3 && !strcmp(tag, TRIGRAM_TAGS[j])) want = 1;
+            if (m->ef) { /* §7.18: the replaced sections out, the sequences in */
+                if (IN(tag, REMOVED_16)) want = 0;
+                for (int q = 0; q < S_COUNT; q++)
+                    if (!strncmp(tag, SEQ_TAGS[q], 3) && (tag[3] == 'H' || tag[3] == 'B')) want = seq_wanted(q, m->kn, m->order);
+            }
             if (want != secs[i].present)
                 return nw_fail(err, NW_E_FORMAT, "a %s order-%d file: section %s is %s", m->kn ? "kn" : "jm", m->order, tag,
                                want ? "missing" : "unexpected");
@@ -726,6 +1121,7 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
         case K_ID: want = idw; break;
         case K_U1: want = 1; break;
         case K_U4: want = 3; break;
+        case K_U48: want = secs[i].code == 4 ? 4 : 3; break;
         default: want = secs[i].code == 2 ? 2 : 3; break;
         }
         if (secs[i].code != want)
@@ -733,8 +1129,8 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
     }
 #define A(name) m->name = arr_of(m, &secs[spec_index(#name)])
 #define OPT(name) if (secs[spec_index(#name)].present) A(name)
-    A(TKID); A(IDTK); A(ALPH); A(APOS); A(KEY4); A(TOPK); A(UNIG); A(ROWS); A(SUCC); A(SEGS); A(SEGE);
-    A(SKYP); A(SKYI); A(SKYC); A(DISI); A(DISO);
+    A(TKID); A(ALPH); A(KEY4); A(TOPK); A(SEGS); A(SEGE); A(SKYP); A(SKYI); A(SKYC); A(DISI); A(DISO);
+    OPT(IDTK); OPT(APOS); OPT(ROWS); OPT(SUCC); OPT(UNIG); /* 1.6: these five made on open (open_lists) */
     OPT(HIST); OPT(HN13); OPT(HDRI); OPT(HDRV); OPT(TCTB); OPT(TSUC); OPT(TLNI); OPT(TLNV); OPT(TDRI); OPT(TDRV);
     OPT(TSGS); OPT(TSGE); OPT(TSKP); OPT(TSKI); OPT(TSKC);
     m->v2.small = arr_of(m, &secs[spec_index("CNTS")]);
@@ -743,6 +1139,22 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
     m->v2.tags = "CNTS/BIGI/BIGC";
     m->v2.count = m->b;
     m->v2.bits = m->quant_bits;
+    ef_raw raw[S_COUNT];
+    memset(raw, 0, sizeof raw);
+    if (m->ef) {
+        for (int q = 0; q < S_COUNT; q++) {
+            if (!seq_wanted(q, m->kn, m->order)) continue;
+            char th[5], tb[5];
+            snprintf(th, sizeof th, "%sH", SEQ_TAGS[q]);
+            snprintf(tb, sizeof tb, "%sB", SEQ_TAGS[q]);
+            const sec *h = &secs[spec_index(th)], *b = &secs[spec_index(tb)];
+            raw[q].head = buf + h->off;
+            raw[q].hw = (int)ITEM[h->code];
+            raw[q].head_n = h->len / ITEM[h->code];
+            raw[q].stream = buf + b->off;
+            raw[q].stream_len = b->len;
+        }
+    }
     if (m->order == 3) {
         m->v3.small = arr_of(m, &secs[spec_index("TVAL")]);
         m->v3.esc_i = arr_of(m, &secs[spec_index("TBGI")]);
@@ -750,16 +1162,18 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
         m->v3.tags = "TVAL/TBGI/TBGC";
         m->v3.count = m->t;
         m->v3.bits = m->quant_bits;
+    }
+    if (m->order == 3 && !m->ef) {
         m->tlen.small = arr_of(m, &secs[spec_index("TLEN")]);
         m->tlen.esc_i = arr_of(m, &secs[spec_index("TLEI")]);
         m->tlen.esc_v = arr_of(m, &secs[spec_index("TLEV")]);
         m->tlen.tags = "TLEN/TLEI/TLEV";
         m->tlen.count = m->b;
     }
-    m->has_hist = secs[hist].present;
-    /* Model._general: a quantised JM bigram with dropped mass goes through the general scorer */
-    m->jm_path = !m->kn && m->order == 2 &&
-                 !(m->codec == &nw_codec_quant && secs[spec_index("HDRI")].present && secs[spec_index("HDRI")].len > 0);
+    m->has_hist = secs[hist].present || m->ef; /* 1.6: HIST from its prefix sums (open_lists) */
+    /* Model._general: a JM bigram with dropped mass (HDRI not empty) goes through the general scorer */
+    m->jm_path = !m->kn && m->order == 2 && !(secs[spec_index("HDRI")].present && secs[spec_index("HDRI")].len > 0) &&
+                 !(m->ef && m->d2 > 0);
     m->disb = buf + secs[spec_index("DISB")].off;
     m->disb_len = secs[spec_index("DISB")].len;
     /* stored λ above 0.999 are clamped, not refused (Model.lambda_clamped) */
@@ -786,7 +1200,7 @@ static nw_status parse(nw_model *m, uint64_t size, nw_error *err) {
     m->trie = nw_trie_map(buf + trie->off, trie->len, &n_keys);
     if (!m->trie) return nw_fail(err, NW_E_FORMAT, "damaged model: the trie cannot be mapped");
     if (n_keys != m->n) return nw_fail(err, NW_E_FORMAT, "trie holds %zu words, metadata says %u", n_keys, m->n);
-    if ((st = check_arrays(m, err))) return st;
+    if ((st = check_arrays(m, raw, err))) return st;
     return make_floor(m, err);
 }
 
@@ -868,6 +1282,7 @@ void nw_close(nw_model *m) {
     if (m->trie) nw_trie_free(m->trie);
     if (m->map) munmap(m->map, m->map_len);
     free(m->floor);
+    free(m->lists);
     free(m);
 }
 

@@ -88,17 +88,179 @@ static nw_status word_id_cps(nw_session *s, const int32_t *cps, int32_t a, int32
     return st ? st : id_of_key(s, id, err);
 }
 
+/* -- the successor lists, in either layout ------------------------------------------------
+ *
+ * Every read of SUCC, TSUC, TCTB/TLEN and HN13 goes through these: plain arrays in files
+ * 1.0-1.5, chunked Elias-Fano sequences in 1.6 (§7.18). ROWS, IDTK and APOS are arrays in
+ * both (made on open for 1.6). Each returns -1 when a decoded value breaks the format
+ * (the caller answers NW_E_DAMAGED): a chunk that does not decode, a position ≥ n+2 or
+ * outside its row, a remapped trigram successor past its row. */
+
+#define NONE UINT64_MAX
+#define SCAN_MIN 12 /* consecutive entries from which a 1.6 scan decodes whole chunks */
+#define ABSENT (UINT64_MAX - 1) /* a bigram entry known not to exist */
+
+/* One decoded chunk of a sequence, for a scan of consecutive entries (a chunk decoded at
+ * once costs about what a few reads by position cost; on the stack, per scan). */
+typedef struct ef_scan {
+    const nw_ef *e;
+    uint64_t chunk; /* NONE: nothing decoded yet */
+    int m;
+    uint64_t vals[NW_EF_CHUNK];
+} ef_scan;
+
+/* Y_j of the scan's sequence, through its decoded chunk */
+static int scan_at(ef_scan *sc, uint64_t j, uint64_t *y) {
+    uint64_t c = j / NW_EF_CHUNK, k = j % NW_EF_CHUNK;
+    if (c != sc->chunk) {
+        sc->chunk = NONE;
+        if (nw_ef_chunk(sc->e, c, sc->vals, &sc->m)) return -1;
+        sc->chunk = c;
+    }
+    if (k >= (uint64_t)sc->m) return -1;
+    *y = sc->vals[k];
+    return 0;
+}
+
+/* The values of a scan's consecutive n-grams, read NW_RUN_MAX at a time (codec.run). */
+typedef struct value_run {
+    uint64_t s, e; /* the n-grams in vals (NONE: none yet) */
+    uint64_t vals[NW_RUN_MAX];
+} value_run;
+
+/* value of n-gram i (< end, the scan's end) through the run that holds it */
+static int run_value(const nw_model *m, const nw_level_values *lv, value_run *vr, uint64_t i, uint64_t end, uint64_t *out) {
+    if (vr->s == NONE || i < vr->s || i >= vr->e) {
+        uint64_t e = end - i > NW_RUN_MAX ? i + NW_RUN_MAX : end;
+        vr->s = NONE;
+        if (e <= i || m->codec->run(lv, i, e, vr->vals)) return -1;
+        vr->s = i;
+        vr->e = e;
+    }
+    *out = vr->vals[i - vr->s];
+    return 0;
+}
+
+/* position of SEF value y in row v (§7.18: y − v·(n+2), which must be below n+2) */
+static int succ_of(const nw_model *m, uint32_t v, uint64_t y, uint32_t *pos) {
+    uint64_t npos = (uint64_t)m->n + 2, base = (uint64_t)v * npos;
+    if (y < base || y - base >= npos) return -1;
+    *pos = (uint32_t)(y - base);
+    return 0;
+}
+
+/* alphabetical position of bigram entry i of row v (sc: a scan of consecutive entries, or NULL) */
+static int succ_pos(const nw_model *m, uint32_t v, uint64_t i, uint32_t *pos, ef_scan *sc) {
+    if (!m->ef) { *pos = nw_at(&m->SUCC, i); return 0; }
+    uint64_t y;
+    if (sc ? scan_at(sc, i, &y) : nw_ef_get(&m->sef, i, &y)) return -1;
+    return succ_of(m, v, y, pos);
+}
+
+/* the first entry in [a, re) of row v whose position is ≥ pos (re if none); *hit: it is pos */
+static int succ_lower(const nw_model *m, uint32_t v, uint64_t a, uint64_t re, uint64_t pos, uint64_t *at, int *hit) {
+    *hit = 0;
+    if (!m->ef) {
+        *at = nw_lower(&m->SUCC, a, re, (uint32_t)pos);
+        *hit = *at < re && nw_at(&m->SUCC, *at) == pos;
+        return 0;
+    }
+    uint64_t y = (uint64_t)v * ((uint64_t)m->n + 2) + pos, val = 0;
+    if (nw_ef_lower(&m->sef, y, a, re, at, &val)) return -1;
+    *hit = *at < re && val == y;
+    return 0;
+}
+
+/* the trigram entries [s, e) of the context at bigram entry i (s == e: not a context), and
+ * (1.6) the base B_i of its remapped successors */
+static int tri_range(const nw_model *m, uint64_t i, uint64_t *s, uint64_t *e, uint64_t *base) {
+    *base = 0;
+    if (m->ef) {
+        uint64_t y = 0;
+        if (nw_ef_get(&m->tpt, i, s) || nw_ef_get(&m->tpt, i + 1, e)) return -1;
+        if (*s >= *e) return *s > *e ? -1 : 0;
+        if (*e > m->t) return -1;
+        if (*s && nw_ef_get(&m->tef, *s - 1, &y)) return -1;
+        *base = *s ? y + 1 : 0;
+        return *base == 0 && *s ? -1 : 0; /* y + 1 wrapped */
+    }
+    uint64_t len;
+    if (nw_codec_exact.value(&m->tlen, i, &len)) return -1;
+    *s = *e = 0;
+    if (len == 0) return 0;
+    uint64_t b0 = i - i % CTX_BLOCK, start = nw_at(&m->TCTB, i / CTX_BLOCK);
+    for (uint64_t q = b0; q < i; q++) {
+        uint64_t l;
+        if (nw_codec_exact.value(&m->tlen, q, &l)) return -1;
+        start += l;
+    }
+    *s = start;
+    *e = start + len;
+    return 0;
+}
+
+/* alphabetical position of trigram entry j of context cs (1.6: bigram entry *bi of row v
+ * holds it; 1.4/1.5: *bi = NONE); sc: a scan of consecutive entries, or NULL */
+static int tri_pos(const nw_model *m, const cstate *cs, uint64_t j, uint32_t *pos, uint64_t *bi, ef_scan *sc) {
+    *bi = NONE;
+    if (!m->ef) { *pos = nw_at(&m->TSUC, j); return 0; }
+    uint64_t y, rs = nw_at(&m->ROWS, cs->v), re = nw_at(&m->ROWS, cs->v + 1);
+    if ((sc ? scan_at(sc, j, &y) : nw_ef_get(&m->tef, j, &y)) || y < cs->tb || y - cs->tb >= re - rs) return -1;
+    *bi = rs + (y - cs->tb);
+    return succ_pos(m, cs->v, *bi, pos, NULL);
+}
+
+/* the first trigram entry in [a, cs->e3) whose position is ≥ pos; *hit: it is pos. bi: the
+ * bigram entry of (v, w) when the caller knows it (1.6), else NONE */
+static int tri_lower(const nw_model *m, const cstate *cs, uint64_t a, uint64_t pos, uint64_t bi, uint64_t *at, int *hit) {
+    *hit = 0;
+    if (!m->ef) {
+        *at = nw_lower(&m->TSUC, a, cs->e3, (uint32_t)pos);
+        *hit = *at < cs->e3 && nw_at(&m->TSUC, *at) == pos;
+        return 0;
+    }
+    uint64_t rs = nw_at(&m->ROWS, cs->v), re = nw_at(&m->ROWS, cs->v + 1), x, val = 0;
+    int in_row = 1;
+    if (bi == NONE && succ_lower(m, cs->v, rs, re, pos, &bi, &in_row)) return -1;
+    x = bi - rs; /* the row-v index of pos, or of the first position after it */
+    if (x > UINT64_MAX - cs->tb) return -1;
+    if (nw_ef_lower(&m->tef, cs->tb + x, a, cs->e3, at, &val)) return -1;
+    *hit = in_row && *at < cs->e3 && val == cs->tb + x;
+    return 0;
+}
+
+/* the dropped mass of the trigram context at bigram entry i (0 if none): TDRI/TDRV, or (1.6)
+ * TDI and the prefix sums TDV, the mass checked ≥ 1 and within 32 bits */
+static int tri_dropped(const nw_model *m, uint64_t i, uint64_t *mass) {
+    *mass = 0;
+    if (!m->ef) {
+        uint64_t j = nw_lower(&m->TDRI, 0, m->TDRI.n, (uint32_t)i);
+        if (j < m->TDRI.n && nw_at(&m->TDRI, j) == i) *mass = nw_at(&m->TDRV, j);
+        return 0;
+    }
+    uint64_t j, y = 0, a, b;
+    if (nw_ef_lower(&m->tdi, i, 0, m->tdi.n, &j, &y)) return -1;
+    if (j >= m->tdi.n || y != i) return 0;
+    if (nw_ef_get(&m->tdv, j, &a) || nw_ef_get(&m->tdv, j + 1, &b) || b <= a || b - a > 0xFFFFFFFFu) return -1;
+    *mass = b - a;
+    return 0;
+}
+
 /* -- values ------------------------------------------------------------------------------ */
 
 static int row_value(const nw_model *m, uint64_t i, uint64_t *c) { return m->codec->value(&m->v2, i, c); }
 
-/* c(v, w) by binary search of w's position in row v; 0 if absent */
-static nw_status pair_count(const nw_model *m, uint32_t v, uint32_t pos, uint64_t *c, nw_error *err) {
-    uint64_t rs = nw_at(&m->ROWS, v), re = nw_at(&m->ROWS, v + 1);
-    uint64_t i = nw_lower(&m->SUCC, rs, re, pos);
+/* c(v, w) by binary search of w's position in row v (0 if absent); *bi: its entry, or ABSENT */
+static nw_status pair_count(const nw_model *m, uint32_t v, uint32_t pos, uint64_t *c, uint64_t *bi, nw_error *err) {
+    uint64_t rs = nw_at(&m->ROWS, v), re = nw_at(&m->ROWS, v + 1), i;
+    int hit;
     *c = 0;
-    if (i < re && nw_at(&m->SUCC, i) == pos && row_value(m, i, c))
-        return DAMAGED("%s: escaped count without a value at entry %llu", m->path, (unsigned long long)i);
+    *bi = ABSENT;
+    if (succ_lower(m, v, rs, re, pos, &i, &hit))
+        return DAMAGED("%s: damaged model data: the successor list of row %u does not decode", m->path, v);
+    if (!hit) return NW_OK;
+    *bi = i;
+    if (row_value(m, i, c)) return DAMAGED("%s: escaped count without a value at entry %llu", m->path, (unsigned long long)i);
     return NW_OK;
 }
 
@@ -128,20 +290,15 @@ static inline double alpha(const nw_model *m, int order, uint64_t c, uint64_t to
 /* the bigram entry of trigram context (u, v), or 0 if none; fills s3/e3/tot3/g3 */
 static nw_status level3(const nw_model *m, uint32_t u, uint32_t v, cstate *cs, nw_error *err) {
     cs->has3 = 0;
-    uint64_t rs = nw_at(&m->ROWS, u), re = nw_at(&m->ROWS, u + 1);
+    uint64_t rs = nw_at(&m->ROWS, u), re = nw_at(&m->ROWS, u + 1), i, start, end, base;
     uint32_t pos = nw_at(&m->APOS, v);
-    uint64_t i = nw_lower(&m->SUCC, rs, re, pos);
-    if (i >= re || nw_at(&m->SUCC, i) != pos) return NW_OK;
-    uint64_t len;
-    if (nw_codec_exact.value(&m->tlen, i, &len)) return DAMAGED("%s: escaped value without an entry at n-gram %llu", m->path, (unsigned long long)i);
-    if (len == 0) return NW_OK;
-    uint64_t b0 = i - i % CTX_BLOCK, start = nw_at(&m->TCTB, i / CTX_BLOCK);
-    for (uint64_t q = b0; q < i; q++) {
-        uint64_t l;
-        if (nw_codec_exact.value(&m->tlen, q, &l)) return DAMAGED("%s: escaped value without an entry at n-gram %llu", m->path, (unsigned long long)q);
-        start += l;
-    }
-    uint64_t end = start + len;
+    int hit;
+    if (succ_lower(m, u, rs, re, pos, &i, &hit))
+        return DAMAGED("%s: damaged model data: the successor list of row %u does not decode", m->path, u);
+    if (!hit) return NW_OK;
+    if (tri_range(m, i, &start, &end, &base))
+        return DAMAGED("%s: damaged model data: the trigram entries of context %llu do not decode", m->path, (unsigned long long)i);
+    if (start == end) return NW_OK;
     if (!(start < end && end <= m->t))
         return DAMAGED("%s: damaged model data: trigram context %llu has entries [%llu, %llu)", m->path,
                        (unsigned long long)i, (unsigned long long)start, (unsigned long long)end);
@@ -158,20 +315,26 @@ static nw_status level3(const nw_model *m, uint32_t u, uint32_t v, cstate *cs, n
             return DAMAGED("%s: damaged model data: trigram context %llu has a summary that does not fit its row", m->path,
                            (unsigned long long)i);
     } else {
-        for (uint64_t q = start; q < end; q++) {
-            uint64_t x;
-            if (m->codec->value(&m->v3, q, &x)) return DAMAGED("%s: escaped value without an entry at n-gram %llu", m->path, (unsigned long long)q);
+        uint64_t vals[NW_RUN_MAX]; /* at most SUMMARY_MIN values: one run */
+        if (m->codec->run(&m->v3, start, end, vals))
+            return DAMAGED("%s: damaged model data: the values of trigram context %llu do not decode", m->path, (unsigned long long)i);
+        for (uint64_t q = 0; q < end - start; q++) {
+            uint64_t x = vals[q];
             sm += x;
             n1 += x == 1;
             n2 += x == 2;
         }
         n3 = (end - start) - n1 - n2;
     }
-    uint64_t tot = sm + sparse(&m->TDRI, &m->TDRV, i);
+    uint64_t dropped;
+    if (tri_dropped(m, i, &dropped))
+        return DAMAGED("%s: damaged model data: the dropped mass of trigram context %llu does not decode", m->path, (unsigned long long)i);
+    uint64_t tot = sm + dropped;
     if (tot == 0) return DAMAGED("%s: damaged model data: trigram context %llu has a total of 0", m->path, (unsigned long long)i);
     cs->has3 = 1;
     cs->s3 = start;
     cs->e3 = end;
+    cs->tb = base;
     cs->tot3 = tot;
     if (m->kn) {
         const double *d = m->d[2];
@@ -201,9 +364,10 @@ static nw_status context(const nw_model *m, const uint32_t *ids, int nids, cstat
         cs->tot2 = tot;
         if (m->kn) {
             const double *d = m->d[1];
-            cs->g2 = ((double)dropped + d[0] * (double)nw_at(&m->HN13, 3 * (uint64_t)v) +
-                      d[1] * (double)nw_at(&m->HN13, 3 * (uint64_t)v + 1) + d[2] * (double)nw_at(&m->HN13, 3 * (uint64_t)v + 2)) /
-                     (double)tot;
+            /* HN13: stored (1.4/1.5) or made on open from N1/N2's prefix sums (1.6) */
+            uint64_t n1 = nw_at(&m->HN13, 3 * (uint64_t)v), n2 = nw_at(&m->HN13, 3 * (uint64_t)v + 1);
+            uint64_t n3 = nw_at(&m->HN13, 3 * (uint64_t)v + 2);
+            cs->g2 = ((double)dropped + d[0] * (double)n1 + d[1] * (double)n2 + d[2] * (double)n3) / (double)tot;
         } else {
             cs->g2 = (1.0 - cs->lam2) + cs->lam2 * ((double)dropped / (double)tot);
         }
@@ -212,23 +376,28 @@ static nw_status context(const nw_model *m, const uint32_t *ids, int nids, cstat
     return NW_OK;
 }
 
-/* full score of word id w at position pos; c2/c3 given when known (else UINT64_MAX) */
-static nw_status score(const nw_model *m, const cstate *cs, uint32_t w, uint32_t pos, uint64_t c2, uint64_t c3,
+/* full score of word id w at position pos; c2/c3 given when known (else NONE), bi the bigram
+ * entry of (v, w) when c2 is given (ABSENT: none; NONE: not known) */
+static nw_status score(const nw_model *m, const cstate *cs, uint32_t w, uint32_t pos, uint64_t c2, uint64_t bi, uint64_t c3,
                        double *out, nw_error *err) {
     double p = m->floor[w];
     nw_status st;
     if (cs->tot2 > 0) {
-        if (c2 == UINT64_MAX && (st = pair_count(m, cs->v, pos, &c2, err))) return st;
+        if (c2 == NONE && (st = pair_count(m, cs->v, pos, &c2, &bi, err))) return st;
         if (c2 > cs->tot2)
             return DAMAGED("%s: damaged model data: pair count %llu above its history count %llu", m->path,
                            (unsigned long long)c2, (unsigned long long)cs->tot2);
         p = alpha(m, 2, c2, cs->tot2, cs->lam2) + cs->g2 * p;
     }
     if (cs->has3) {
-        if (c3 == UINT64_MAX) {
-            uint64_t i = nw_lower(&m->TSUC, cs->s3, cs->e3, pos);
+        if (c3 == NONE) {
+            uint64_t i;
+            int hit = 0;
             c3 = 0;
-            if (i < cs->e3 && nw_at(&m->TSUC, i) == pos && m->codec->value(&m->v3, i, &c3))
+            /* 1.6: a trigram (u, v, w) is stored as its suffix bigram's entry, so none without it */
+            if (!(m->ef && bi == ABSENT) && tri_lower(m, cs, cs->s3, pos, bi, &i, &hit))
+                return DAMAGED("%s: damaged model data: the trigram successors of a context do not decode", m->path);
+            if (hit && m->codec->value(&m->v3, i, &c3))
                 return DAMAGED("%s: escaped value without an entry at n-gram %llu", m->path, (unsigned long long)i);
         }
         if (c3 > cs->tot3)
@@ -346,13 +515,15 @@ static nw_status rank(nw_session *s, const cstate *cs, uint64_t lo, uint64_t hi,
     top_ids(s, lo, hi);
     for (int i = 0; i < s->ntop; i++) {
         uint32_t w = s->top[i];
-        if ((st = score(m, cs, w, nw_at(&m->APOS, w), UINT64_MAX, UINT64_MAX, &sc, err))) return st;
+        if ((st = score(m, cs, w, nw_at(&m->APOS, w), NONE, NONE, NONE, &sc, err))) return st;
         offer(s, sc, w);
     }
     /* (b) the bigram successors of v in the range, or their stored skyband */
     if (cs->tot2 > 0) {
-        uint64_t rs = nw_at(&m->ROWS, cs->v), re = nw_at(&m->ROWS, cs->v + 1);
-        uint64_t a = nw_lower(&m->SUCC, rs, re, (uint32_t)lo), b = nw_lower(&m->SUCC, a, re, (uint32_t)hi);
+        uint64_t rs = nw_at(&m->ROWS, cs->v), re = nw_at(&m->ROWS, cs->v + 1), a, b;
+        int hit;
+        if (succ_lower(m, cs->v, rs, re, lo, &a, &hit) || succ_lower(m, cs->v, a, re, hi, &b, &hit))
+            return DAMAGED("%s: damaged model data: the successor list of row %u does not decode", m->path, cs->v);
         uint64_t from = 0, to = 0;
         int found = 0;
         if (b - a > m->sky_min && (uint32_t)k <= m->sky_k &&
@@ -360,6 +531,9 @@ static nw_status rank(nw_session *s, const cstate *cs, uint64_t lo, uint64_t hi,
             return st;
         if (found && from == to) found = 0; /* an empty band: scan (Model._rank) */
         uint64_t count = found ? to - from : b - a;
+        ef_scan scan = {&m->sef, NONE, 0, {0}}; /* 1.6: the entries [a, b) in order (no band) */
+        ef_scan *scp = found || count < SCAN_MIN ? NULL : &scan;
+        value_run vr = {NONE, NONE, {0}};
         for (uint64_t x = 0; x < count; x++) {
             uint64_t i = a + x;
             if (found) {
@@ -367,24 +541,33 @@ static nw_status rank(nw_session *s, const cstate *cs, uint64_t lo, uint64_t hi,
                 if (off >= b - a) return DAMAGED("%s: damaged model data: skyband points outside its segment", m->path);
                 i = a + off;
             }
-            uint32_t pos = nw_at(&m->SUCC, i);
+            uint32_t pos;
+            if (succ_pos(m, cs->v, i, &pos, scp))
+                return DAMAGED("%s: damaged model data: the successor list of row %u does not decode", m->path, cs->v);
             if (pos < lo || pos >= hi) return DAMAGED("%s: damaged model data: successor position %u out of order", m->path, pos);
             uint64_t c2;
-            if (row_value(m, i, &c2)) return DAMAGED("%s: escaped count without a value at entry %llu", m->path, (unsigned long long)i);
+            if (scp ? run_value(m, &m->v2, &vr, i, b, &c2) : row_value(m, i, &c2))
+                return DAMAGED("%s: escaped count without a value at entry %llu", m->path, (unsigned long long)i);
             uint32_t w = nw_at(&m->ALPH, pos);
-            if ((st = score(m, cs, w, pos, c2, UINT64_MAX, &sc, err))) return st;
+            if ((st = score(m, cs, w, pos, c2, i, NONE, &sc, err))) return st;
             offer(s, sc, w);
         }
     }
     /* (c) the trigram successors of (u, v) in the range, or their stored skyband */
     if (cs->has3) {
-        uint64_t a = nw_lower(&m->TSUC, cs->s3, cs->e3, (uint32_t)lo), b = nw_lower(&m->TSUC, a, cs->e3, (uint32_t)hi);
+        uint64_t a, b;
+        int hit;
+        if (tri_lower(m, cs, cs->s3, lo, NONE, &a, &hit) || tri_lower(m, cs, a, hi, NONE, &b, &hit))
+            return DAMAGED("%s: damaged model data: the trigram successors of a context do not decode", m->path);
         uint64_t from = 0, to = 0;
         int found = 0;
         if (b - a > m->tsky_min && (uint32_t)k <= m->sky_k && (m->kn || cs->lam3 > 0.0) &&
             (st = band(m, &m->TSGS, &m->TSGE, &m->TSKP, &m->TSKI, &m->TSKC, a, b, k, &from, &to, &found, err)))
             return st;
         uint64_t count = found ? to - from : b - a;
+        ef_scan scan = {&m->tef, NONE, 0, {0}};
+        ef_scan *scp = found || count < SCAN_MIN ? NULL : &scan;
+        value_run vr = {NONE, NONE, {0}};
         for (uint64_t x = 0; x < count; x++) {
             uint64_t i = a + x;
             if (found) {
@@ -392,12 +575,19 @@ static nw_status rank(nw_session *s, const cstate *cs, uint64_t lo, uint64_t hi,
                 if (off >= b - a) return DAMAGED("%s: damaged model data: trigram skyband points outside its segment", m->path);
                 i = a + off;
             }
-            uint32_t pos = nw_at(&m->TSUC, i);
+            uint32_t pos;
+            uint64_t bi, c2 = NONE;
+            if (tri_pos(m, cs, i, &pos, &bi, scp))
+                return DAMAGED("%s: damaged model data: the trigram successors of a context do not decode", m->path);
             if (pos < lo || pos >= hi) return DAMAGED("%s: damaged model data: trigram successor %u out of order", m->path, pos);
             uint64_t c3;
-            if (m->codec->value(&m->v3, i, &c3)) return DAMAGED("%s: escaped value without an entry at n-gram %llu", m->path, (unsigned long long)i);
+            if (scp ? run_value(m, &m->v3, &vr, i, b, &c3) : m->codec->value(&m->v3, i, &c3))
+                return DAMAGED("%s: escaped value without an entry at n-gram %llu", m->path, (unsigned long long)i);
+            /* 1.6: the successor is read through its bigram entry (v, w), which holds c(v, w) */
+            if (bi != NONE && cs->tot2 > 0 && row_value(m, bi, &c2))
+                return DAMAGED("%s: escaped count without a value at entry %llu", m->path, (unsigned long long)bi);
             uint32_t w = nw_at(&m->ALPH, pos);
-            if ((st = score(m, cs, w, pos, UINT64_MAX, c3, &sc, err))) return st;
+            if ((st = score(m, cs, w, pos, c2, bi, c3, &sc, err))) return st;
             offer(s, sc, w);
         }
     }
@@ -583,7 +773,7 @@ nw_status nw_q_rank(nw_session *s, const cstate *cs, uint64_t lo, uint64_t hi, i
 }
 
 nw_status nw_q_score(const nw_session *s, const cstate *cs, uint32_t w, double *out, nw_error *err) {
-    return score(s->m, cs, w, nw_at(&s->m->APOS, w), UINT64_MAX, UINT64_MAX, out, err);
+    return score(s->m, cs, w, nw_at(&s->m->APOS, w), NONE, NONE, NONE, out, err);
 }
 
 nw_status nw_suggest(nw_session *s, const char *text, size_t len, int k, nw_suggestion *out, size_t *n_out, char *buf,
@@ -653,7 +843,7 @@ nw_status nw_q_prob(nw_session *s, const char *word, const char *const *history,
     *word_id = w;
     cstate cs;
     if ((st = context(m, ids, nids, &cs, err))) return st;
-    return score(m, &cs, w, nw_at(&m->APOS, w), UINT64_MAX, UINT64_MAX, out, err);
+    return score(m, &cs, w, nw_at(&m->APOS, w), NONE, NONE, NONE, out, err);
 }
 
 nw_status nw_prob(nw_session *s, const char *word, const char *const *history, size_t n_history, double *out,

@@ -41,6 +41,7 @@ typedef struct cstate {
     double g2, lam2;
     int has3;
     uint64_t s3, e3, tot3;
+    uint64_t tb; /* format 1.6: the base B of the trigram context's remapped successors (§7.18) */
     double g3, lam3;
 } cstate;
 
