@@ -354,7 +354,8 @@ class EFSparseTable(SparseTable):
     """Format 1.6: the indices as one Elias-Fano sequence, the values as the prefix sums of another (§7.18)."""
 
     def __init__(self, where: str, label: str, idx: ChunkedEF, cum: ChunkedEF) -> None:
-        self._where, self._label, self._idx, self._cum = where, label, idx, cum
+        self._where, self._label, self._idx = where, label, idx
+        self._val = PrefixSums(where, label, cum)
 
     def _bad(self) -> ModelFormatError:
         return ModelFormatError(f"{self._where}: damaged model data: {self._label} holds a value below 1")
@@ -364,13 +365,13 @@ class EFSparseTable(SparseTable):
         j = self._idx.lower_bound(i, 0, n)
         if j >= n or self._idx.at(j) != i:
             return 0
-        v = self._cum.at(j + 1) - self._cum.at(j)
+        v = self._val[j]
         if v < 1:
             raise self._bad()
         return v
 
     def all(self) -> tuple[np.ndarray, np.ndarray]:
-        val = np.diff(self._cum.all())
+        val = self._val.all()
         if len(val) and int(val.min()) < 1:
             raise self._bad()
         return self._idx.all(), val

@@ -22,12 +22,10 @@ from __future__ import annotations
 
 import os
 import random
-import struct
 import subprocess
 import sys
 from pathlib import Path
 
-import msgpack
 import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, reject, settings
@@ -42,8 +40,8 @@ from nextword.prune import keep_contexts, ngram_file, prune_fitted, prune_model,
 from nextword.store import ENTRY, HEADER, atomic_write, read_model
 from nextword.succinct import CHUNK, ChunkedEF, ef_check_headers, ef_encode
 from test_dropped_mass import _recrc  # the file's CRCs after an edit
-from test_model_trigram import _ask_everything  # every query kind, answers in [0, 1] or ModelFormatError
-from test_quant import HOSTILE_MSGS, WORDS, _sections, brute_force, check_rankings, check_sums, contexts_of, random_messages
+from test_model_trigram import _ask_everything, mutate_and_ask  # every query kind, answers in [0, 1] or ModelFormatError
+from test_quant import HOSTILE_MSGS, WORDS, _minor, _patched, _sections, _with_meta, brute_force, check_rankings, check_sums, contexts_of, random_messages
 
 SETTINGS = settings(max_examples=int(os.environ.get("NW_COMPACT_EXAMPLES", "25")), deadline=None,
                     suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
@@ -93,6 +91,19 @@ def test_strict_sequences_have_no_chunk_narrower_than_its_values() -> None:
     bad[2] = bad[0] + 10  # chunk 1 starts 10 after chunk 0: too close for 64 distinct values
     with pytest.raises(ModelFormatError):
         ef_check_headers("t", "seq", bad, stream, len(y), strict=True)
+
+
+def test_a_strict_sequence_whose_last_chunk_is_too_narrow_is_refused() -> None:
+    # one chunk of 15 distinct values needs a range ≥ 15 (§7.18: F_{c+1} − F_c ≥ m_c, the last chunk included)
+    y = np.arange(15, dtype=np.int64)
+    head, stream = ef_encode(y)
+    narrow = ef_encode(np.concatenate([np.zeros(5, np.int64), np.arange(10, dtype=np.int64)]))  # non-decreasing, range 10
+    ef_check_headers("t", "seq", *narrow, 15, strict=False)
+    with pytest.raises(ModelFormatError, match="not increasing"):
+        ef_check_headers("t", "seq", *narrow, 15, strict=True)
+    with pytest.raises(ModelFormatError, match="does not decode"):  # the same check when a chunk is read
+        ChunkedEF("t", "seq", *narrow, 15, strict=True).at(0)
+    assert ChunkedEF("t", "seq", head, stream, 15, strict=True).at(14) == 14
 
 
 def test_coder_refuses_what_the_headers_cannot_hold() -> None:
@@ -223,45 +234,11 @@ def test_the_undamaged_compact_files_answer_everything(c3_bytes: bytes, c2_bytes
         _ask_everything(m)
 
 
-def _patched(data: bytes, tag: bytes, at: int, raw: bytes) -> bytes:
-    buf = bytearray(data)
-    _, off, length = _sections(buf)[tag]
-    at = at if at >= 0 else length + at
-    assert 0 <= at and at + len(raw) <= length
-    buf[off + at : off + at + len(raw)] = raw
-    _recrc(buf)
-    return bytes(buf)
-
-
 def _head_value(data: bytes, tag: bytes, i: int, delta: int) -> bytes:
     code, off, _ = _sections(data)[tag]
     width = 4 if code == 3 else 8
     old = int.from_bytes(data[off + i * width : off + (i + 1) * width], "little")
     return _patched(data, tag, i * width, (old + delta).to_bytes(width, "little"))
-
-
-def _with_meta(data: bytes, change: dict[str, object]) -> bytes:
-    """The file with META fields replaced, at the same length (the free-text "generator" and "stats" absorb the difference)."""
-    buf = bytearray(data)
-    _, off, length = _sections(buf)[b"META"]
-    meta = msgpack.unpackb(bytes(buf[off : off + length]), raw=False)
-    meta.update(change)
-    meta["stats"] = {}
-    for pad in range(0, 600):
-        meta["generator"] = "x" * pad
-        raw = msgpack.packb(meta, use_bin_type=True)
-        if len(raw) == length:
-            buf[off : off + length] = raw
-            _recrc(buf)
-            return bytes(buf)
-    raise AssertionError("could not rewrite META in place")
-
-
-def _minor(data: bytes, minor: int) -> bytes:
-    buf = bytearray(data)
-    struct.pack_into("<H", buf, 10, minor)
-    _recrc(buf)
-    return bytes(buf)
 
 
 @pytest.mark.parametrize("change,message", [
@@ -303,6 +280,15 @@ def test_a_plain_file_claiming_the_compact_layout_is_refused(tmp_path: Path) -> 
         nextword.load(bad)
 
 
+def test_the_compact_layout_field_is_refused_in_a_plain_bigram_file(tmp_path: Path) -> None:
+    path = tmp_path / "m.nwm"
+    nextword.train_texts(HOSTILE_MSGS, path, min_count=1)  # format 1.0
+    bad = tmp_path / "bad.nwm"
+    bad.write_bytes(_with_meta(path.read_bytes(), {"successors": {"name": "ef", "version": 1}}))
+    with pytest.raises(ModelFormatError, match="'successors' belongs to format 1.6"):
+        nextword.load(bad)
+
+
 def test_a_damaged_chunk_is_refused_when_a_query_reads_it(c3_bytes: bytes, tmp_path: Path) -> None:
     # flip bits inside the successor streams (sizes unchanged): a plain load checks headers only, so the
     # queries that decode a damaged chunk must refuse it (or answer within [0, 1]); verify=True refuses the file
@@ -335,23 +321,9 @@ def test_a_damaged_chunk_is_refused_when_a_query_reads_it(c3_bytes: bytes, tmp_p
 def test_crafted_compact_files_raise_only_model_format_errors(c3_bytes: bytes, c2_bytes: bytes,
                                                               tmp_path_factory: pytest.TempPathFactory,
                                                               data: st.DataObject, which: str) -> None:
-    # random bytes in any section but the trie (trusted after its CRC, FORMAT.md §8), every CRC fixed
-    buf = bytearray(c3_bytes if which == "kn3" else c2_bytes)
-    spans = {tag: (off, length) for tag, (_, off, length) in _sections(buf).items() if tag != b"TRIE" and length}
-    new = [t for t in spans if t[3:] in (b"H", b"B") and t not in (b"TBGI",)]
-    tag = data.draw(st.sampled_from(sorted(spans) + new * 3))
-    off, length = spans[tag]
-    for i, b in data.draw(st.lists(st.tuples(st.integers(0, length - 1), st.integers(0, 255)), min_size=1, max_size=4)):
-        buf[off + i] = b
-    _recrc(buf)
-    path = tmp_path_factory.mktemp("bad") / "bad.nwm"
-    path.write_bytes(bytes(buf))
-    for verify in (False, True):
-        try:
-            m = nextword.load(path, verify=verify)
-        except ModelFormatError:
-            continue
-        _ask_everything(m)
+    # random bytes in any section but the trie, every CRC fixed; the Elias-Fano sections more often (what 1.6 adds)
+    model = c3_bytes if which == "kn3" else c2_bytes
+    mutate_and_ask(model, data, tmp_path_factory, [t for t in _sections(model) if t[3:] in (b"H", b"B")])
 
 
 # -- training, pruning, command line ------------------------------------------------------
