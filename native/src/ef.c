@@ -12,11 +12,6 @@
 #include "internal.h"
 
 /* per-byte bit counts of x (SWAR): byte i holds popcount(byte i of x) */
-static inline uint64_t byte_counts(uint64_t x) {
-    x = x - ((x >> 1) & 0x5555555555555555ull);
-    x = (x & 0x3333333333333333ull) + ((x >> 2) & 0x3333333333333333ull);
-    return (x + (x >> 4)) & 0x0F0F0F0F0F0F0F0Full;
-}
 
 #if defined(__GNUC__) || defined(__clang__)
 #define CTZ(x) ((unsigned)__builtin_ctzll(x))
@@ -25,25 +20,11 @@ static inline uint64_t byte_counts(uint64_t x) {
 static unsigned CTZ(uint64_t x) { unsigned c = 0; while (!(x & 1)) { x >>= 1; c++; } return c; }
 static unsigned CLZ(uint64_t x) { unsigned c = 0; while (!(x >> 63)) { x <<= 1; c++; } return c; }
 #endif
-#if (defined(__GNUC__) || defined(__clang__)) && (defined(__POPCNT__) || defined(__aarch64__))
-#define POPCNT(x) ((unsigned)__builtin_popcountll(x)) /* one instruction on this target */
-#else
-/* without a popcount instruction (x86-64 baseline) the builtin is a libgcc call: SWAR instead */
-static inline unsigned POPCNT(uint64_t x) { return (unsigned)((byte_counts(x) * 0x0101010101010101ull) >> 56); }
-#endif
 
-static inline uint64_t load64(const uint8_t *p) {
-    uint64_t x;
-    memcpy(&x, p, 8);
-#if defined(__BYTE_ORDER__) && __BYTE_ORDER__ == __ORDER_BIG_ENDIAN__
-    x = __builtin_bswap64(x);
-#endif
-    return x;
-}
 
 static inline uint64_t head_at(const nw_ef *e, uint64_t i) {
     const uint8_t *p = e->head + i * (uint64_t)e->hw;
-    if (e->hw == 8) return load64(p);
+    if (e->hw == 8) return nw_le64(p);
     return (uint64_t)p[0] | ((uint64_t)p[1] << 8) | ((uint64_t)p[2] << 16) | ((uint64_t)p[3] << 24);
 }
 
@@ -58,7 +39,7 @@ static inline unsigned low_width(uint64_t r, uint64_t m) {
 /* ℓ bits (1 ≤ ℓ ≤ 63) at bit p, least significant first; p + ℓ ≤ O_C */
 static inline uint64_t read_bits(const uint8_t *bits, uint64_t p, unsigned l) {
     unsigned sh = (unsigned)(p & 7);
-    uint64_t w = load64(bits + (p >> 3)) >> sh;
+    uint64_t w = nw_le64(bits + (p >> 3)) >> sh;
     if (l + sh > 64) w |= (uint64_t)bits[(p >> 3) + 8] << (64 - sh);
     return w & ((1ull << l) - 1);
 }
@@ -66,7 +47,7 @@ static inline uint64_t read_bits(const uint8_t *bits, uint64_t p, unsigned l) {
 /* the bits [p, p + avail) of the region as one word, avail = min(64 − (p mod 8), he − p) */
 static inline uint64_t region_word(const uint8_t *bits, uint64_t p, uint64_t he, uint64_t *avail) {
     unsigned sh = (unsigned)(p & 7);
-    uint64_t w = load64(bits + (p >> 3)) >> sh, a = 64 - sh;
+    uint64_t w = nw_le64(bits + (p >> 3)) >> sh, a = 64 - sh;
     if (a > he - p) a = he - p;
     if (a < 64) w &= (1ull << a) - 1;
     *avail = a;
@@ -76,7 +57,7 @@ static inline uint64_t region_word(const uint8_t *bits, uint64_t p, uint64_t he,
 /* position of the r-th set bit of w (r < popcount(w)): the byte that holds it from the
  * prefix sums of the byte counts, then at most 7 steps inside that byte */
 static inline unsigned select64(uint64_t w, unsigned r) {
-    uint64_t prefix = byte_counts(w) * 0x0101010101010101ull; /* byte i: bits set in bytes 0 … i */
+    uint64_t prefix = nw_byte_counts(w) * 0x0101010101010101ull; /* byte i: bits set in bytes 0 … i */
     unsigned base = 0;
     while (((prefix >> base) & 0xFF) <= r) base += 8;
     if (base) r -= (unsigned)((prefix >> (base - 8)) & 0xFF);
@@ -131,7 +112,7 @@ int nw_ef_get(const nw_ef *e, uint64_t j, uint64_t *out) {
     unsigned left = (unsigned)k;
     for (uint64_t p = v.hs; p < v.he;) {
         uint64_t avail, w = region_word(e->bits, p, v.he, &avail);
-        unsigned pc = POPCNT(w);
+        unsigned pc = nw_popcount64(w);
         if (left < pc) {
             uint64_t at = p + select64(w, left) - v.hs; /* offset of the k-th set bit in the region */
             return value_of(e, &v, at - (uint64_t)k, k, out);
@@ -180,7 +161,7 @@ static int chunk_lower(const nw_ef *e, const chunk_view *v, uint64_t y, int *k_o
             if (p >= v->he) return -1;
             uint64_t avail, w = region_word(e->bits, p, v->he, &avail);
             uint64_t z = ~w & (avail < 64 ? (1ull << avail) - 1 : ~0ull);
-            unsigned zc = POPCNT(z);
+            unsigned zc = nw_popcount64(z);
             if (left < zc) {
                 p += select64(z, (unsigned)left) + 1;
                 break;

@@ -29,6 +29,31 @@ int nw_trie_restore(const void *trie, void *cursor, size_t key_id, const char **
 #include "ef.h"
 #include "nextword.h"
 
+/* 8 bytes as a little-endian word (ef.c's sequences, model.c's ones bitmaps) */
+static inline uint64_t nw_le64(const uint8_t *p) {
+    uint64_t x;
+    memcpy(&x, p, 8);
+#if defined(__BYTE_ORDER__) && __BYTE_ORDER__ == __ORDER_BIG_ENDIAN__
+    x = __builtin_bswap64(x);
+#endif
+    return x;
+}
+
+/* per byte of x, its number of set bits (SWAR) */
+static inline uint64_t nw_byte_counts(uint64_t x) {
+    x = x - ((x >> 1) & 0x5555555555555555ull);
+    x = (x & 0x3333333333333333ull) + ((x >> 2) & 0x3333333333333333ull);
+    return (x + (x >> 4)) & 0x0F0F0F0F0F0F0F0Full;
+}
+
+/* set bits of a word: one instruction where the target has it, else SWAR (on x86-64 baseline the
+   builtin would be a libgcc call) */
+#if (defined(__GNUC__) || defined(__clang__)) && (defined(__POPCNT__) || defined(__aarch64__))
+static inline unsigned nw_popcount64(uint64_t x) { return (unsigned)__builtin_popcountll(x); }
+#else
+static inline unsigned nw_popcount64(uint64_t x) { return (unsigned)((nw_byte_counts(x) * 0x0101010101010101ull) >> 56); }
+#endif
+
 /* One typed array inside the mapped file: n elements of w bytes (1, 2, 4), little-endian. */
 typedef struct nw_arr {
     const uint8_t *p;

@@ -257,30 +257,12 @@ static inline unsigned popcount8(unsigned x) {
     return (x + (x >> 4)) & 0x0Fu;
 }
 
-/* 8 bytes as a little-endian word */
-static inline uint64_t le64(const uint8_t *p) {
-    uint64_t x;
-    memcpy(&x, p, 8);
-#if defined(__BYTE_ORDER__) && __BYTE_ORDER__ == __ORDER_BIG_ENDIAN__
-    x = __builtin_bswap64(x);
-#endif
-    return x;
-}
-
-/* set bits of a word (SWAR: no popcount instruction needed) */
-static inline unsigned popcount64(uint64_t x) {
-    x = x - ((x >> 1) & 0x5555555555555555ull);
-    x = (x & 0x3333333333333333ull) + ((x >> 2) & 0x3333333333333333ull);
-    x = (x + (x >> 4)) & 0x0F0F0F0F0F0F0F0Full;
-    return (unsigned)((x * 0x0101010101010101ull) >> 56);
-}
-
 /* the set bits of block blk's bitmap before bit j (j < 512), plus the block's rank */
 static inline uint64_t ones_before(const uint8_t *blk, unsigned j) {
     uint64_t ones = (uint64_t)blk[0] | ((uint64_t)blk[1] << 8) | ((uint64_t)blk[2] << 16) | ((uint64_t)blk[3] << 24);
     unsigned w = 0;
-    for (; w < j / 64; w++) ones += popcount64(le64(blk + 4 + 8 * w));
-    if (j % 64) ones += popcount64(le64(blk + 4 + 8 * w) & ((1ull << (j % 64)) - 1));
+    for (; w < j / 64; w++) ones += nw_popcount64(nw_le64(blk + 4 + 8 * w));
+    if (j % 64) ones += nw_popcount64(nw_le64(blk + 4 + 8 * w) & ((1ull << (j % 64)) - 1));
     return ones;
 }
 
