@@ -1945,10 +1945,12 @@ def _check_arrays(
     if meta["estimator"] == "kn":
         # Kneser-Ney: a word's unigram value is its number of distinct predecessors (§7.13),
         # at least the rows still holding it when the bigram level is pruned: dropped mass
-        # stored, or a word with no row at all (a context pruned whole; in a trained file
-        # every word has a row, as every word is followed by a token) — h-prune's change
+        # stored, or a history with no row at all (a context pruned whole; in a trained file
+        # every word and <s> has a row, and <unk> when it occurs, as each is followed by a
+        # token) — h-prune's change
         cont = np.bincount(a["ALPH"][succ], minlength=n_pos)
-        pruned2 = len(a["HDRI"]) > 0 or bool(np.any(np.diff(rows)[:n] == 0))
+        empty = np.diff(rows) == 0
+        pruned2 = len(a["HDRI"]) > 0 or bool(np.any(empty[:n])) or bool(empty[n + 2]) or (bool(empty[n + 1]) and int(a["UNIG"][n + 1]) > 0)
         if not (np.array_equal(cont, a["UNIG"]) or (pruned2 and not np.any(cont > a["UNIG"]))):
             raise _fail(name, "section UNIG disagrees with the bigram rows (continuation counts)")
     elif "HIST" not in a and not np.array_equal(col, a["UNIG"]):

@@ -349,3 +349,26 @@ def test_trigram_skyband_min_is_recorded_and_checked(kn3: bytes, tmp_path: Path)
     bad.write_bytes(_with_meta(kn3, {"trigram_skyband_min": 0}))
     with pytest.raises(nextword.ModelFormatError, match="skyband data of the trigram rows"):
         nextword.load(bad, verify=True)
+
+
+def test_a_kn_bigram_whose_sentence_start_row_is_pruned_whole_verifies(tmp_path: Path) -> None:
+    # Every bigram after <s> removed: the <s> context is dropped whole (no dropped-mass entry), so the
+    # continuation counts of UNIG (fitted before pruning) exceed the rows' — a pruned file that
+    # verify=True must accept, as it does when a word's row is dropped whole (§7.13). Found by
+    # tests/test_compact.py's hypothesis search (seed 54, two words, three messages).
+    from nextword.prune import keep_contexts, ngram_file, prune_fitted
+    from nextword.store import atomic_write
+
+    b = CountBuilder(order=2)
+    b.add_texts(["a b a.", "b a b", "a a."])
+    tables, counts = b.ngram_counts(min_count=1)
+    fitted = KneserNey().fit(counts)
+    g2 = fitted.levels[1].grams
+    keep2 = g2[:, 0] != counts.n_words + 2  # <s> is id n + 2
+    pruned = prune_fitted(fitted, keep_contexts(fitted, [None, keep2]))
+    path = tmp_path / "p.nwm"
+    atomic_write(path, ngram_file(counts, tables, pruned))
+    model = nextword.load(path, verify=True)
+    assert model.rank_after(["<s>"], "", 2)  # after <s> the unigram floor answers
+    total = sum(model.prob_after(w, ["<s>"]) for w in model.word_keys() + ["</s>", "<unk>"])
+    assert total == pytest.approx(1.0, abs=1e-12)
